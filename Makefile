@@ -1,0 +1,61 @@
+# Loam: `make` prepares the demo corpus, `make test` runs the tests.
+# Pick another dump with RAW=..., OUT=..., CONFIG=... (CONFIG may be empty for defaults).
+
+PYTHON ?= python3
+VENV   := .venv
+BIN    := $(VENV)/bin
+STAMP  := $(VENV)/.installed-stamp
+
+RAW    ?= demo_corpus
+OUT    ?= build/demo
+CONFIG ?= demo_corpus/corpus.toml
+WORKERS ?=
+BENCH_OUT ?= build/bench
+
+CONFIG_FLAG  := $(if $(CONFIG),--config "$(CONFIG)",)
+WORKERS_FLAG := $(if $(WORKERS),--workers $(WORKERS),)
+
+.PHONY: all prepare test validate report bench lint clean distclean help
+
+all: prepare report
+
+help:
+	@echo "make            create .venv, install, prepare $(RAW) into $(OUT), write its report"
+	@echo "make test       run the test suite"
+	@echo "make validate   check the manifests in OUT before training"
+	@echo "make report     write OUT/report/index.html and summary.json"
+	@echo "make bench      throughput, memory and rebuild benchmarks"
+	@echo "make lint       ruff"
+	@echo "make clean      remove build outputs (keeps .venv)"
+	@echo "variables: RAW=$(RAW) OUT=$(OUT) CONFIG=$(CONFIG) WORKERS=$(WORKERS)"
+
+$(STAMP): pyproject.toml
+	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[dev]'
+	touch $(STAMP)
+
+prepare: $(STAMP)
+	$(BIN)/loam prepare "$(RAW)" "$(OUT)" $(CONFIG_FLAG) $(WORKERS_FLAG)
+
+report: prepare
+	$(BIN)/loam report "$(OUT)"
+
+validate: $(STAMP)
+	$(BIN)/loam validate "$(OUT)"
+
+test: $(STAMP)
+	$(BIN)/python -m pytest -q
+
+bench: $(STAMP)
+	$(BIN)/python bench/run.py --out "$(BENCH_OUT)"
+
+lint: $(STAMP)
+	$(BIN)/ruff check pipeline tests bench demo_corpus
+
+clean:
+	rm -rf build .pytest_cache .ruff_cache .hypothesis
+	find . -name __pycache__ -type d -not -path './$(VENV)/*' -prune -exec rm -rf {} +
+
+distclean: clean
+	rm -rf $(VENV) *.egg-info

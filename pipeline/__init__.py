@@ -1,0 +1,3 @@
+"""Loam: data preparation for low-resource speech corpora."""
+
+__version__ = "0.1.0"

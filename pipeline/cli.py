@@ -1,0 +1,175 @@
+"""The ``loam`` command line.
+
+Exit codes: 0 done, 1 data problems stopped the run (or validation found errors),
+2 usage or configuration error.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import traceback
+from pathlib import Path
+from typing import Any
+
+from pipeline import __version__
+from pipeline.errors import LoamError, UsageError
+
+EPILOG = """\
+exit codes: 0 done; 1 data problems stopped the run (validate: errors found);
+2 usage or configuration error.
+
+Voice recordings are personal data: prepare only audio you have consent and a
+licence to use, and follow the data-protection law that applies to you.
+"""
+
+
+def _parse_override(text: str) -> tuple[str, Any]:
+    """``section.key=value`` with the value read as TOML (falls back to a plain string)."""
+    if "=" not in text:
+        raise UsageError(f"--set {text!r}: expected KEY=VALUE, e.g. --set audio.sample_rate=22050")
+    key, value = text.split("=", 1)
+    from pipeline.config import tomllib
+
+    try:
+        parsed = tomllib.loads(f"v = {value}")["v"]
+    except tomllib.TOMLDecodeError:
+        parsed = value
+    return key.strip(), parsed
+
+
+def _overrides(args: argparse.Namespace) -> dict[str, Any]:
+    out: dict[str, Any] = dict(_parse_override(s) for s in getattr(args, "set", None) or [])
+    if getattr(args, "workers", None) is not None:
+        out["run.workers"] = args.workers
+    if getattr(args, "scheduler", None):
+        out["run.scheduler"] = args.scheduler
+    if getattr(args, "no_progress", False):
+        out["run.progress"] = False
+    return out
+
+
+def _add_run_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("raw", type=Path, metavar="RAW", help="the raw dump (never modified)")
+    p.add_argument("out", type=Path, metavar="OUT", help="output folder")
+    p.add_argument("--config", type=Path, metavar="FILE", help="corpus config (TOML); defaults apply without one")
+    p.add_argument("--workers", type=int, metavar="N", help="worker processes for per-file work (default: all cores)")
+    p.add_argument("--scheduler", metavar="ADDRESS", help="run per-file work on a dask.distributed scheduler, e.g. tcp://10.0.0.5:8786")
+    p.add_argument("--set", action="append", metavar="KEY=VALUE", help="override one config value, e.g. --set audio.sample_rate=22050 (repeatable)")
+    p.add_argument("--no-cache", action="store_true", help="ignore and do not fill the per-file caches under OUT/cache")
+    p.add_argument("--no-progress", action="store_true", help="no progress bars")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="loam",
+        description="Turn a raw dump of speech recordings into clean audio, phoneme transcriptions and "
+        "speaker-disjoint labelled / unlabelled / held-out Parquet manifests.",
+        epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    parser.add_argument("--version", action="version", version=f"loam {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    p = sub.add_parser("prepare", help="run every stage: ingest, audio, text, split",
+                       description="Run every stage on RAW and write manifests, audio and rejects into OUT. "
+                       "Stages whose inputs, parameters and code are unchanged are reused.",
+                       epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    _add_run_options(p)
+    p.add_argument("--fresh", action="store_true", help="ignore the split ledger and assign every clip anew")
+
+    p = sub.add_parser("stage", help="run one stage (its inputs must already be in OUT)",
+                       description="Run a single stage; the manifests of the stages before it must exist in OUT.",
+                       epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("name", metavar="NAME", help="ingest, audio, text or split")
+    _add_run_options(p)
+    p.add_argument("--fresh", action="store_true", help="(split) ignore the split ledger")
+
+    p = sub.add_parser("validate", help="check the manifests and audio of OUT before training",
+                       description="Check every manifest against its schema, the audio files against the manifests, "
+                       "and the split for leaks between held-out and training.",
+                       epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("out", type=Path, metavar="OUT")
+    p.add_argument("--json", action="store_true", help="print a machine-readable report")
+    p.add_argument("--deep", action="store_true", help="also decode every clip, re-hash it and re-measure its loudness")
+    p.add_argument("--strict", action="store_true", help="warnings count as errors for the exit code")
+
+    p = sub.add_parser("report", help="write OUT/report/index.html and summary.json",
+                       description="Summarise OUT in a self-contained HTML page and a JSON file.",
+                       epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("out", type=Path, metavar="OUT")
+    return parser
+
+
+def _cmd_prepare(args: argparse.Namespace, stages: tuple[str, ...] | None = None) -> int:
+    from pipeline.config import load_config
+    from pipeline.runner import STAGE_ORDER, Runner, setup_logging
+
+    if not args.raw.is_dir():
+        raise UsageError(f"RAW {str(args.raw)!r} is not a folder")
+    if args.out.resolve() == args.raw.resolve() or args.raw.resolve() in args.out.resolve().parents:
+        raise UsageError(f"OUT {str(args.out)!r} must not be inside RAW {str(args.raw)!r}: the raw dump is never written to")
+    config = load_config(args.config, overrides=_overrides(args))
+    try:
+        args.out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise UsageError(f"OUT {str(args.out)!r}: cannot create the folder ({exc.strerror})") from exc
+    log, log_path = setup_logging(args.out, args.command)
+    log.info("loam %s %s %s -> %s (log: %s)", __version__, args.command, args.raw, args.out, log_path)
+    runner = Runner(args.raw, args.out, config, workers=config.run.workers, scheduler=config.run.scheduler,
+                    use_cache=not args.no_cache, options={"fresh": getattr(args, "fresh", False)}, log=log)
+    runner.prepare(stages or STAGE_ORDER)
+    return 0
+
+
+def _cmd_stage(args: argparse.Namespace) -> int:
+    from pipeline.runner import stage_module
+
+    stage_module(args.name)
+    return _cmd_prepare(args, stages=(args.name,))
+
+
+def _cmd_validate(args: argparse.Namespace) -> int:
+    from pipeline.validate import exit_code, format_table, validate_out
+
+    result = validate_out(args.out, deep=args.deep)
+    if args.json:
+        print(json.dumps(result.to_json(), indent=2, ensure_ascii=False))
+    else:
+        print(format_table(result))
+    return exit_code(result, strict=args.strict)
+
+
+def _cmd_report(args: argparse.Namespace) -> int:
+    from pipeline.report import write_report
+
+    index = write_report(args.out)
+    print(f"report: {index}")
+    return 0
+
+
+COMMANDS = {"prepare": _cmd_prepare, "stage": _cmd_stage, "validate": _cmd_validate, "report": _cmd_report}
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:  # argparse exits 2 on usage errors, 0 on --help
+        return int(exc.code or 0)
+    if not args.command:
+        parser.print_help()
+        return 2
+    try:
+        return COMMANDS[args.command](args)
+    except LoamError as exc:
+        print(f"loam: error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("loam: interrupted", file=sys.stderr)
+        return 130
+    except Exception:  # a bug: say so plainly, keep the traceback for the report
+        print("loam: internal error (please report it with this traceback):", file=sys.stderr)
+        traceback.print_exc()
+        return 1

@@ -1,0 +1,320 @@
+"""Corpus configuration: TOML in, a frozen dataclass out.
+
+The JSON Schema in ``schemas/config.schema.json`` is the single source of
+truth for keys, types, ranges and defaults; the dataclasses below mirror it and
+a test keeps the two in step.
+"""
+
+from __future__ import annotations
+
+import copy
+import dataclasses
+import hashlib
+import json
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from pipeline.errors import ConfigError
+from pipeline.schemas_io import load_schema
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover - exercised on 3.10 only
+    import tomli as tomllib
+
+
+@dataclass(frozen=True)
+class RunConfig:
+    workers: int
+    scheduler: str
+    progress: bool
+
+
+@dataclass(frozen=True)
+class IngestConfig:
+    extensions: tuple[str, ...]
+    speaker_from: str
+    speaker_path_level: int
+    sidecar_extension: str
+    metadata: str
+    metadata_path_column: str
+    metadata_transcript_column: str
+    metadata_speaker_column: str
+
+
+@dataclass(frozen=True)
+class AudioConfig:
+    sample_rate: int
+    channel: str | int
+    resample_quality: str
+    upsampled: str
+    vad_aggressiveness: int
+    vad_frame_ms: int
+    min_speech_ms: int
+    min_pause_ms: int
+    hangover_ms: int
+    pad_ms: int
+    max_clip_s: float
+    segment_min_s: float
+    segment_max_s: float
+    min_duration_s: float
+    min_speech_ratio: float
+    clip_level: float
+    max_clipped_fraction: float
+    target_lufs: float
+    peak_ceiling_dbfs: float
+    true_peak: bool
+    format: str
+
+
+@dataclass(frozen=True)
+class TextConfig:
+    backend: str
+    lexicon: str
+    override_lexicon: str
+    oov: str
+    punctuation: str
+    keep_stress: bool
+    word_boundary: str
+    alphabet: str
+    verbalise_numbers: bool
+    abbreviations: tuple[tuple[str, str], ...]
+
+
+@dataclass(frozen=True)
+class SplitConfig:
+    group_by: str
+    heldout: str
+    labelled_budgets: tuple[str, ...]
+    selection: str
+    keep_transcripts: bool
+    ledger: str
+
+
+@dataclass(frozen=True)
+class QualityConfig:
+    min_snr_db: float
+    noisy_to_unlabelled: bool
+    rate_max_abs_z: float
+    rate_min_clips: int
+    near_duplicate_min_similarity: float
+    min_bandwidth_hz: float
+    narrowband_to_unlabelled: bool
+
+
+@dataclass(frozen=True)
+class PrivacyConfig:
+    pseudonymise: bool
+    key_file: str
+    mapping_file: str
+
+
+@dataclass(frozen=True)
+class Config:
+    seed: int
+    run: RunConfig
+    ingest: IngestConfig
+    audio: AudioConfig
+    text: TextConfig
+    split: SplitConfig
+    quality: QualityConfig
+    privacy: PrivacyConfig
+    # Folder that relative paths in the file (lexicons, ledger, key) resolve against.
+    base_dir: str = field(default=".", compare=False)
+    source: str = field(default="", compare=False)
+
+    def section(self, name: str) -> dict[str, Any]:
+        """One section as plain JSON-ready data (used for stage parameter hashes)."""
+        return _jsonable(getattr(self, name))
+
+    def to_json(self) -> dict[str, Any]:
+        """The resolved configuration, every default filled in."""
+        out = {"seed": self.seed}
+        for f in dataclasses.fields(self):
+            if f.name in ("seed", "base_dir", "source"):
+                continue
+            out[f.name] = self.section(f.name)
+        return out
+
+    def sha256(self) -> str:
+        return hashlib.sha256(canonical_json(self.to_json())).hexdigest()
+
+    def resolve_path(self, value: str) -> Path:
+        """A path from the config file, relative to the config file's folder."""
+        path = Path(value).expanduser()
+        return path if path.is_absolute() else Path(self.base_dir) / path
+
+
+SECTIONS = {
+    "run": RunConfig,
+    "ingest": IngestConfig,
+    "audio": AudioConfig,
+    "text": TextConfig,
+    "split": SplitConfig,
+    "quality": QualityConfig,
+    "privacy": PrivacyConfig,
+}
+
+
+def canonical_json(data: Any) -> bytes:
+    """JSON with sorted keys and no whitespace: the bytes every hash is taken over."""
+    return json.dumps(data, sort_keys=True, separators=(",", ":"), ensure_ascii=False).encode()
+
+
+def _jsonable(section: Any) -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for f in dataclasses.fields(section):
+        value = getattr(section, f.name)
+        if f.name == "abbreviations":
+            value = dict(value)
+        elif isinstance(value, tuple):
+            value = list(value)
+        out[f.name] = value
+    return out
+
+
+def _fill_defaults(schema: dict[str, Any], data: dict[str, Any]) -> dict[str, Any]:
+    """Apply the schema's defaults, recursing into object-valued properties."""
+    out = copy.deepcopy(data)
+    for key, sub in schema.get("properties", {}).items():
+        if key not in out and "default" in sub:
+            out[key] = copy.deepcopy(sub["default"])
+        if sub.get("type") == "object" and "properties" in sub and isinstance(out.get(key), dict):
+            out[key] = _fill_defaults(sub, out[key])
+    return out
+
+
+def _describe_allowed(rule_schema: dict[str, Any]) -> str:
+    """A short phrase for what a schema node accepts."""
+    if "enum" in rule_schema:
+        return "one of " + ", ".join(json.dumps(v) for v in rule_schema["enum"])
+    if "oneOf" in rule_schema:
+        return " or ".join(_describe_allowed(s) for s in rule_schema["oneOf"])
+    if "const" in rule_schema:
+        return json.dumps(rule_schema["const"])
+    kind = rule_schema.get("type", "value")
+    parts = [kind if isinstance(kind, str) else "/".join(kind)]
+    if "minimum" in rule_schema:
+        parts.append(f">= {rule_schema['minimum']}")
+    if "exclusiveMinimum" in rule_schema:
+        parts.append(f"> {rule_schema['exclusiveMinimum']}")
+    if "maximum" in rule_schema:
+        parts.append(f"<= {rule_schema['maximum']}")
+    if "pattern" in rule_schema:
+        parts.append(f"matching {rule_schema['pattern']}")
+    if kind == "array" and "items" in rule_schema:
+        parts.append("of " + _describe_allowed(rule_schema["items"]))
+    return " ".join(parts)
+
+
+def _format_error(source: str, error: Any, schema: dict[str, Any]) -> str:
+    path = ".".join(str(p) for p in error.absolute_path)
+    if error.validator == "additionalProperties":
+        extra = sorted(set(error.instance) - set(error.schema.get("properties", {})))
+        where = f"{path}." if path else ""
+        allowed = ", ".join(sorted(error.schema.get("properties", {})))
+        return (
+            f"{source}: unknown key '{where}{extra[0]}'; allowed keys"
+            f"{' in [' + path + ']' if path else ''}: {allowed}"
+        )
+    # Describe the property's own schema, not the failing sub-rule, so the message
+    # says everything that is allowed.
+    node: dict[str, Any] = schema
+    for part in error.absolute_path:
+        node = node.get("properties", {}).get(part, node.get("items", {})) if isinstance(part, str) else node.get("items", {})
+    return (
+        f"{source}: key '{path}' has value {json.dumps(error.instance)}; "
+        f"allowed: {_describe_allowed(node)}"
+    )
+
+
+def validate_config_data(data: dict[str, Any], *, source: str = "<config>") -> dict[str, Any]:
+    """Check raw config data against the schema and return it with defaults filled."""
+    from jsonschema import Draft202012Validator
+
+    schema = load_schema("config")
+    errors = sorted(Draft202012Validator(schema).iter_errors(data), key=lambda e: list(e.absolute_path))
+    if errors:
+        raise ConfigError(_format_error(source, errors[0], schema))
+    return _fill_defaults(schema, data)
+
+
+def _set_override(data: dict[str, Any], dotted: str, value: Any) -> None:
+    node = data
+    *parents, leaf = dotted.split(".")
+    for part in parents:
+        node = node.setdefault(part, {})
+        if not isinstance(node, dict):
+            raise ConfigError(f"override '{dotted}': '{part}' is not a section")
+    node[leaf] = value
+
+
+def build_config(
+    data: dict[str, Any],
+    *,
+    source: str = "<config>",
+    base_dir: str = ".",
+    overrides: dict[str, Any] | None = None,
+) -> Config:
+    """Validate raw data (plus dotted-key overrides from the command line) into a Config."""
+    data = copy.deepcopy(data)
+    for dotted, value in (overrides or {}).items():
+        _set_override(data, dotted, value)
+    full = validate_config_data(data, source=source)
+    sections = {}
+    for name, cls in SECTIONS.items():
+        values = dict(full[name])
+        for f in dataclasses.fields(cls):
+            if f.name == "abbreviations":
+                values[f.name] = tuple(sorted(values[f.name].items()))
+            elif isinstance(values[f.name], list):
+                values[f.name] = tuple(values[f.name])
+        sections[name] = cls(**values)
+    cfg = Config(seed=full["seed"], base_dir=base_dir, source=source, **sections)
+    _check_cross_field(cfg)
+    return cfg
+
+
+def _check_cross_field(cfg: Config) -> None:
+    """Rules a JSON Schema cannot express between two keys."""
+    a = cfg.audio
+    if a.segment_min_s >= a.segment_max_s:
+        raise ConfigError(
+            f"{cfg.source}: key 'audio.segment_min_s' has value {a.segment_min_s}; "
+            f"allowed: a number below audio.segment_max_s ({a.segment_max_s})"
+        )
+    if a.segment_max_s > a.max_clip_s:
+        raise ConfigError(
+            f"{cfg.source}: key 'audio.segment_max_s' has value {a.segment_max_s}; "
+            f"allowed: a number at most audio.max_clip_s ({a.max_clip_s})"
+        )
+    if cfg.privacy.pseudonymise and not cfg.privacy.key_file:
+        raise ConfigError(
+            f"{cfg.source}: key 'privacy.key_file' is empty; allowed: a path to the secret key "
+            "file (required when privacy.pseudonymise is true)"
+        )
+    if cfg.text.backend == "lexicon" and not cfg.text.lexicon:
+        raise ConfigError(
+            f"{cfg.source}: key 'text.lexicon' is empty; allowed: a path to a lexicon TSV "
+            "(required when text.backend is \"lexicon\")"
+        )
+
+
+def load_config(path: str | Path | None, *, overrides: dict[str, Any] | None = None) -> Config:
+    """Read, validate and resolve a TOML config file (None: all defaults)."""
+    if path is None:
+        return build_config({}, source="<defaults>", overrides=overrides)
+    path = Path(path)
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise ConfigError(f"{path}: cannot read config file: {exc.strerror}") from exc
+    try:
+        data = tomllib.loads(raw.decode("utf-8"))
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"{path}: config file is not UTF-8 (byte {exc.start})") from exc
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{path}: not valid TOML: {exc}") from exc
+    return build_config(data, source=str(path), base_dir=str(path.parent), overrides=overrides)

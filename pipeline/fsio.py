@@ -1,0 +1,73 @@
+"""File-system helpers shared by every stage: atomic writes and content hashes."""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import os
+import tempfile
+from collections.abc import Iterator
+from pathlib import Path
+
+HASH_BLOCK_BYTES = 1 << 20
+
+
+def sha256_file(path: str | os.PathLike[str]) -> str:
+    """Hex SHA-256 of a file's bytes, read in 1 MiB blocks."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(HASH_BLOCK_BYTES), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def sha256_bytes(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
+
+
+@contextlib.contextmanager
+def atomic_output(path: str | os.PathLike[str], *, suffix: str = "") -> Iterator[Path]:
+    """Yield a temporary path in the target's folder; rename it over the target on success.
+
+    The temporary name starts with ``.loam-`` so a crash leaves only hidden debris that
+    no reader mistakes for output. The rename is atomic on POSIX file systems, so a
+    reader sees either the old file or the complete new one.
+    """
+    target = Path(path)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp_name = tempfile.mkstemp(
+        prefix=f".loam-{target.name}.", suffix=(suffix or target.suffix) + ".tmp", dir=target.parent
+    )
+    os.close(fd)
+    tmp = Path(tmp_name)
+    try:
+        yield tmp
+        with open(tmp, "rb+") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp, target)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            tmp.unlink()
+        raise
+
+
+def write_bytes_atomic(path: str | os.PathLike[str], data: bytes) -> None:
+    with atomic_output(path) as tmp:
+        tmp.write_bytes(data)
+
+
+def write_text_atomic(path: str | os.PathLike[str], text: str) -> None:
+    write_bytes_atomic(path, text.encode("utf-8"))
+
+
+def remove_stale_temporaries(folder: str | os.PathLike[str]) -> int:
+    """Delete ``.loam-*.tmp`` files a killed run left behind; returns how many."""
+    count = 0
+    root = Path(folder)
+    if not root.is_dir():
+        return 0
+    for tmp in root.rglob(".loam-*.tmp"):
+        with contextlib.suppress(FileNotFoundError):
+            tmp.unlink()
+            count += 1
+    return count

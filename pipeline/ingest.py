@@ -1,0 +1,402 @@
+"""Ingest stage: scan the raw dump, probe every audio file, pair transcripts, quarantine.
+
+Nothing here writes inside RAW or follows a path out of it. Every audio file found
+and every metadata row ends up exactly once in ``stages/ingest.parquet`` or in the
+rejects: a metadata row is accounted for by the ingest row that uses it
+(``metadata_line``), by its own reject (``<table>:<line>``), or by the reject of the
+audio file it names.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import os
+import posixpath
+import re
+import unicodedata
+from collections import defaultdict
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from pipeline.cache import FileCache, cache_key
+from pipeline.errors import DataError
+from pipeline.fsio import sha256_file
+from pipeline.manifest import table_from_rows
+from pipeline.parallel import map_ordered
+from pipeline.stage import StageContext, StageResult, reject
+
+NAME = "ingest"
+INPUTS: tuple[str, ...] = ()
+CONFIG_SECTIONS = ("ingest",)
+CODE_VERSION = "1"
+# The raw folder is its input: it is rescanned every run (unchanged files hit the probe cache).
+ALWAYS_RUN = True
+
+_SLUG_KEEP = re.compile(r"[^a-z0-9_-]+")
+_SPEAKER_KEEP = re.compile(r"[^A-Za-z0-9_.-]+")
+
+
+def slug(text: str, *, max_chars: int = 40) -> str:
+    """Lower-case ASCII id fragment of ``text`` (accents folded, other runs -> '-')."""
+    ascii_text = unicodedata.normalize("NFKD", text).encode("ascii", "ignore").decode()
+    cleaned = _SLUG_KEEP.sub("-", ascii_text.lower()).strip("-_")[:max_chars].strip("-_")
+    return cleaned or "clip"
+
+
+def source_id(stem: str, sha256: str) -> str:
+    """Stable source id: a readable slug plus the content hash, so renames are visible."""
+    return f"{slug(stem)}-{sha256[:10]}"
+
+
+def speaker_id(name: str) -> str:
+    """A file-name-safe speaker id; a name that needs changing gets a hash suffix so two
+    different names can never map to one id."""
+    import hashlib
+
+    safe = _SPEAKER_KEEP.sub("_", unicodedata.normalize("NFKD", name).encode("ascii", "ignore").decode())
+    safe = safe.strip("._-") or "speaker"
+    if safe != name:
+        safe = f"{safe}-{hashlib.sha256(name.encode('utf-8', 'surrogateescape')).hexdigest()[:6]}"
+    return safe
+
+
+@dataclass(frozen=True)
+class ProbeJob:
+    path: str
+    rel: str
+
+
+def probe_file(job: ProbeJob) -> dict[str, Any]:
+    """Header facts and content hash of one file, or ``{"error": (reason, sentence)}``."""
+    import soundfile as sf
+
+    try:
+        size = os.path.getsize(job.path)
+    except OSError as exc:
+        return {"error": ("unreadable", f"{job.rel}: cannot read the file ({exc.strerror})")}
+    if size == 0:
+        return {"error": ("empty", f"{job.rel}: the file is empty (0 bytes); expected audio data")}
+    try:
+        digest = sha256_file(job.path)
+        info = sf.info(job.path)
+    except OSError as exc:
+        return {"error": ("unreadable", f"{job.rel}: cannot read the file ({exc.strerror})")}
+    except (RuntimeError, sf.LibsndfileError) as exc:  # libsndfile's own errors
+        message = str(exc).replace(job.path, job.rel)
+        return {"error": ("undecodable", f"{job.rel}: not a decodable audio file ({message})")}
+    if info.frames <= 0 or info.samplerate <= 0 or info.channels <= 0:
+        return {"error": ("empty", f"{job.rel}: the audio holds no samples (frames={info.frames}); expected at least one")}
+    return {
+        "format": info.format,
+        "subtype": info.subtype or "unknown",
+        "channels": int(info.channels),
+        "sample_rate": int(info.samplerate),
+        "num_frames": int(info.frames),
+        "duration_s": info.frames / info.samplerate,
+        "size_bytes": size,
+        "sha256": digest,
+    }
+
+
+@dataclass
+class MetadataRow:
+    line: int
+    path: str
+    transcript: str
+    speaker: str | None
+
+
+def _inside(root: Path, candidate: Path) -> bool:
+    try:
+        candidate.resolve().relative_to(root.resolve())
+        return True
+    except (ValueError, OSError, RuntimeError):
+        return False
+
+
+def check_relative_path(raw: Path, text: str) -> tuple[str | None, str | None]:
+    """Normalise a path from metadata; returns (relative path, problem sentence).
+
+    Absolute paths, ``..`` that climbs out, and symlinks resolving outside RAW are
+    refused without opening anything.
+    """
+    cleaned = text.strip().replace("\\", "/")
+    if not cleaned:
+        return None, "the path is empty"
+    if cleaned.startswith("/") or re.match(r"^[A-Za-z]:/", cleaned):
+        return None, f"the path {cleaned!r} is absolute; expected a path relative to the raw folder"
+    norm = posixpath.normpath(cleaned)
+    if norm == ".." or norm.startswith("../"):
+        return None, f"the path {cleaned!r} leaves the raw folder"
+    if not _inside(raw, raw / norm):
+        return None, f"the path {cleaned!r} resolves outside the raw folder (a symbolic link)"
+    return norm, None
+
+
+def read_metadata_table(
+    raw: Path, table_rel: str, *, path_column: str, transcript_column: str, speaker_column: str,
+    need_speaker: bool,
+) -> tuple[list[MetadataRow], list[dict[str, Any]]]:
+    """Parse a CSV/TSV table; rows that fail are returned as rejects with their line."""
+    path, problem = check_relative_path(raw, table_rel)
+    if problem or path is None:
+        raise DataError(f"ingest.metadata = {table_rel!r}: {problem}")
+    file = raw / path
+    try:
+        data = file.read_bytes()
+    except OSError as exc:
+        raise DataError(f"{table_rel}: cannot read the metadata table ({exc.strerror})") from exc
+    if data.startswith(b"\xef\xbb\xbf"):
+        data = data[3:]
+    # surrogateescape keeps undecodable bytes visible per row instead of failing the file.
+    text = data.decode("utf-8", "surrogateescape")
+    delimiter = "\t" if table_rel.lower().endswith(".tsv") else ","
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter, strict=True)
+    rejects: list[dict[str, Any]] = []
+    rows: list[MetadataRow] = []
+    try:
+        header = next(reader)
+    except StopIteration:
+        return [], []
+    except csv.Error as exc:
+        raise DataError(f"{table_rel}: line 1: the header does not parse ({exc})") from exc
+    header = [h.strip() for h in header]
+    required = [path_column, transcript_column] + ([speaker_column] if need_speaker else [])
+    missing = [c for c in required if c not in header]
+    if missing:
+        raise DataError(
+            f"{table_rel}: line 1: missing column(s) {', '.join(repr(m) for m in missing)}; "
+            f"found {', '.join(repr(h) for h in header)} (column names are set in [ingest] of the config)"
+        )
+    index = {name: header.index(name) for name in (path_column, transcript_column, speaker_column) if name in header}
+    line = 1
+    while True:
+        start_line = reader.line_num + 1
+        try:
+            fields = next(reader)
+        except StopIteration:
+            break
+        except csv.Error as exc:
+            rejects.append(reject(NAME, f"{table_rel}:{start_line}", "metadata_parse_error",
+                                  f"{table_rel}: line {start_line}: the row does not parse as {'TSV' if delimiter == chr(9) else 'CSV'} ({exc})"))
+            continue
+        line = start_line
+        where = f"{table_rel}:{line}"
+        if not fields or all(not f.strip() for f in fields):
+            continue
+        if len(fields) != len(header):
+            rejects.append(reject(NAME, where, "metadata_parse_error",
+                                  f"{table_rel}: line {line}: found {len(fields)} fields; expected {len(header)} as in the header"))
+            continue
+        if any(_has_surrogates(f) for f in fields):
+            rejects.append(reject(NAME, where, "transcript_encoding",
+                                  f"{table_rel}: line {line}: bytes that are not UTF-8; expected a UTF-8 table"))
+            continue
+        speaker = fields[index[speaker_column]].strip() if speaker_column in index else None
+        rows.append(MetadataRow(line, fields[index[path_column]], fields[index[transcript_column]], speaker or None))
+    return rows, rejects
+
+
+def _has_surrogates(text: str) -> bool:
+    return any("\udc80" <= ch <= "\udcff" for ch in text)
+
+
+def _read_sidecar(path: Path, rel: str) -> tuple[str | None, tuple[str, str] | None]:
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        return None, ("unreadable", f"{rel}: cannot read the transcript file ({exc.strerror})")
+    if data.startswith(b"\xef\xbb\xbf"):
+        data = data[3:]
+    try:
+        return data.decode("utf-8").strip(), None
+    except UnicodeDecodeError as exc:
+        return None, ("transcript_encoding",
+                      f"{rel}: byte {exc.start} (0x{data[exc.start]:02x}) is not UTF-8; expected a UTF-8 transcript")
+
+
+def scan(raw: Path, extensions: tuple[str, ...], sidecar_extension: str) -> tuple[list[str], set[str], list[dict[str, Any]]]:
+    """Sorted relative paths of audio files, the set of sidecar paths, and rejects for
+    links that leave RAW. Sorting makes every later choice independent of walk order."""
+    wanted = {"." + e.lower() for e in extensions}
+    side = "." + sidecar_extension.lower()
+    audio: list[str] = []
+    sidecars: set[str] = set()
+    rejects: list[dict[str, Any]] = []
+    root = raw.resolve()
+    for folder, dirs, files in os.walk(raw, followlinks=False):
+        rel_folder = os.path.relpath(folder, raw)
+        for d in dirs:
+            full = Path(folder) / d
+            if full.is_symlink() and not _inside(root, full):
+                rel = posixpath.normpath(posixpath.join(rel_folder.replace(os.sep, "/"), d))
+                rejects.append(reject(NAME, rel, "path_outside_root",
+                                      f"{rel}: a symbolic link to a folder outside the raw folder; not followed"))
+        for name in files:
+            rel = posixpath.normpath(posixpath.join(rel_folder.replace(os.sep, "/"), name))
+            ext = os.path.splitext(name)[1].lower()
+            if ext in wanted:
+                audio.append(rel)
+            elif ext == side:
+                sidecars.add(rel)
+    audio.sort()
+    kept = []
+    for rel in audio:
+        full = raw / rel
+        if full.is_symlink() and not _inside(root, full):
+            rejects.append(reject(NAME, rel, "path_outside_root",
+                                  f"{rel}: a symbolic link to a file outside the raw folder; not opened"))
+        else:
+            kept.append(rel)
+    return kept, sidecars, rejects
+
+
+def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str, Any]]:
+    """Probe results for ``paths``, reusing earlier results for files whose size,
+    modification time and inode are unchanged (hashing is most of ingest's cost)."""
+    cache = FileCache(ctx.cache_dir, "ingest", enabled=ctx.use_cache)
+    results: list[dict[str, Any] | None] = []
+    keys: list[str | None] = []
+    todo: list[int] = []
+    for i, rel in enumerate(paths):
+        try:
+            st = os.stat(raw / rel)
+            key = cache_key("probe", CODE_VERSION, rel, st.st_size, st.st_mtime_ns, st.st_ino)
+        except OSError:
+            key = None
+        hit = cache.get(key) if key else None
+        keys.append(key)
+        results.append(hit)
+        if hit is None:
+            todo.append(i)
+    fresh = map_ordered(probe_file, [ProbeJob(str(raw / paths[i]), paths[i]) for i in todo],
+                        workers=ctx.workers, scheduler=ctx.scheduler, desc="probe", progress=ctx.progress)
+    for i, res in zip(todo, fresh, strict=True):
+        results[i] = res
+        if keys[i] and "error" not in res:
+            cache.put(keys[i], res)
+    ctx.log.info("ingest: %d files probed, %d reused from cache", len(todo), len(paths) - len(todo))
+    return [r for r in results if r is not None]
+
+
+def run(ctx: StageContext) -> StageResult:
+    cfg = ctx.config.ingest
+    raw = ctx.raw
+    paths, sidecars, rejects = scan(raw, cfg.extensions, cfg.sidecar_extension)
+    path_set = set(paths)
+
+    meta_rows: list[MetadataRow] = []
+    table_rel = cfg.metadata
+    if table_rel:
+        meta_rows, meta_rejects = read_metadata_table(
+            raw, table_rel, path_column=cfg.metadata_path_column,
+            transcript_column=cfg.metadata_transcript_column,
+            speaker_column=cfg.metadata_speaker_column, need_speaker=cfg.speaker_from == "metadata")
+        rejects.extend(meta_rejects)
+
+    # Metadata rows by the audio file they name; bad paths are rejected before any open.
+    by_audio: dict[str, list[MetadataRow]] = defaultdict(list)
+    for row in meta_rows:
+        where = f"{table_rel}:{row.line}"
+        rel, problem = check_relative_path(raw, row.path)
+        if problem or rel is None:
+            rejects.append(reject(NAME, where, "path_outside_root", f"{table_rel}: line {row.line}: column '{cfg.metadata_path_column}': {problem}"))
+        elif rel not in path_set:
+            exists = (raw / rel).is_file()
+            why = ("is not an audio file with a configured extension" if exists else "does not exist")
+            rejects.append(reject(NAME, where, "metadata_missing_audio",
+                                  f"{table_rel}: line {row.line}: audio file {rel!r} {why}"))
+        else:
+            by_audio[rel].append(row)
+
+    probes = _probe_all(ctx, raw, paths)
+    accepted: list[dict[str, Any]] = []
+    first_by_hash: dict[str, str] = {}
+    for rel, probe in zip(paths, probes, strict=True):
+        rows = by_audio.get(rel, [])
+        lines = ", ".join(str(r.line) for r in rows)
+        via = f" (named on line {lines} of {table_rel})" if rows else ""
+        if "error" in probe:
+            reason, sentence = probe["error"]
+            rejects.append(reject(NAME, rel, reason, sentence + via))
+            continue
+        if probe["sha256"] in first_by_hash:
+            rejects.append(reject(NAME, rel, "duplicate_content",
+                                  f"{rel}: byte-identical to {first_by_hash[probe['sha256']]!r}, which is kept{via}"))
+            continue
+        first_by_hash[probe["sha256"]] = rel
+
+        # One transcript per file: identical metadata rows collapse, different ones conflict.
+        distinct: dict[str, MetadataRow] = {}
+        for row in rows:
+            key = f"{row.transcript.strip()}\x00{row.speaker or ''}"
+            if key in distinct:
+                rejects.append(reject(NAME, f"{table_rel}:{row.line}", "metadata_duplicate_row",
+                                      f"{table_rel}: line {row.line}: repeats line {distinct[key].line} for {rel!r}"))
+            else:
+                distinct[key] = row
+        candidates: list[tuple[str, str]] = [(r.transcript.strip(), f"line {r.line} of {table_rel}") for r in distinct.values()]
+        stem = posixpath.splitext(rel)[0]
+        sidecar_rel = f"{stem}.{cfg.sidecar_extension}"
+        sidecar_rel = next((s for s in sidecars if s.lower() == sidecar_rel.lower() and s.rsplit(".", 1)[0] == stem), None)
+        if sidecar_rel is not None:
+            text, problem = _read_sidecar(raw / sidecar_rel, sidecar_rel)
+            if problem:
+                rejects.append(reject(NAME, rel, problem[0], problem[1] + f"; the audio {rel!r} is set aside with it"))
+                continue
+            candidates.append((text or "", sidecar_rel))
+        texts = {t for t, _ in candidates}
+        if len(texts) > 1:
+            sources = "; ".join(f"{origin}: {t!r}" for t, origin in candidates)
+            rejects.append(reject(NAME, rel, "conflicting_transcripts",
+                                  f"{rel}: {len(texts)} different transcripts ({sources}); expected one"))
+            for row in distinct.values():
+                rejects.append(reject(NAME, f"{table_rel}:{row.line}", "conflicting_transcripts",
+                                      f"{table_rel}: line {row.line}: transcript for {rel!r} conflicts with another source"))
+            continue
+        speakers = {r.speaker for r in distinct.values() if r.speaker}
+        if cfg.speaker_from == "metadata":
+            if len(speakers) != 1:
+                found = "none" if not speakers else ", ".join(sorted(speakers))
+                rejects.append(reject(NAME, rel, "missing_speaker",
+                                      f"{rel}: column '{cfg.metadata_speaker_column}' gives speaker {found}; expected exactly one{via}"))
+                continue
+            speaker_name = speakers.pop()
+        else:
+            parts = rel.split("/")[:-1]
+            if len(parts) <= cfg.speaker_path_level:
+                rejects.append(reject(NAME, rel, "missing_speaker",
+                                      f"{rel}: no folder at level {cfg.speaker_path_level} to name the speaker; "
+                                      f"expected RAW/<speaker>/.../<file>{via}"))
+                continue
+            speaker_name = parts[cfg.speaker_path_level]
+        transcript = candidates[0][0] if candidates else None
+        origin = None
+        if candidates:
+            origin = "sidecar" if sidecar_rel is not None and not distinct else "metadata"
+        used_row = min(distinct.values(), key=lambda r: r.line) if distinct else None
+        accepted.append({
+            "source_id": source_id(posixpath.basename(stem), probe["sha256"]),
+            "source_path": rel,
+            "speaker": speaker_id(speaker_name),
+            **probe,
+            "transcript": transcript,
+            "transcript_origin": origin,
+            "metadata_line": used_row.line if used_row else None,
+        })
+
+    accepted.sort(key=lambda r: r["source_path"])
+    audio_rejected = sum(1 for r in rejects if r["source_path"] in path_set)
+    summary = {
+        "audio_files_found": len(paths),
+        "audio_files_accepted": len(accepted),
+        "audio_files_rejected": audio_rejected,
+        "metadata_rows": len(meta_rows) + sum(1 for r in rejects if ":" in r["source_path"] and r["reason"] == "metadata_parse_error"),
+        "transcribed": sum(1 for r in accepted if r["transcript"] is not None),
+        "hours": sum(r["duration_s"] for r in accepted) / 3600,
+        "speakers": len({r["speaker"] for r in accepted}),
+    }
+    return StageResult(manifests={"stages/ingest.parquet": ("ingest", table_from_rows("ingest", accepted))},
+                       rejects=rejects, summary=summary)

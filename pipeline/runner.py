@@ -1,0 +1,256 @@
+"""Runs the stages in order, checks every manifest between them, and skips a stage
+whose inputs, parameters and code are unchanged since its manifest was written."""
+
+from __future__ import annotations
+
+import hashlib
+import importlib
+import importlib.util
+import json
+import logging
+import os
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from types import ModuleType
+from typing import Any
+
+import pyarrow as pa
+
+from pipeline import __version__
+from pipeline.config import Config, canonical_json
+from pipeline.errors import DataError, UsageError
+from pipeline.fsio import remove_stale_temporaries, write_text_atomic
+from pipeline.lock import output_lock
+from pipeline.manifest import (
+    read_manifest,
+    read_metadata,
+    table_from_rows,
+    validate_table,
+    write_manifest,
+)
+from pipeline.stage import StageContext, StageResult
+
+STAGE_ORDER = ("ingest", "audio", "text", "split")
+REJECTED_PATH = "manifests/rejected.parquet"
+
+
+def stage_module(name: str) -> ModuleType:
+    if name not in STAGE_ORDER:
+        raise UsageError(f"unknown stage {name!r}; stages are: {', '.join(STAGE_ORDER)}")
+    return importlib.import_module(f"pipeline.{name}")
+
+
+def manifest_path(name: str) -> str:
+    return f"stages/{name}.parquet"
+
+
+def rejects_path(name: str) -> str:
+    return f"stages/{name}.rejects.parquet"
+
+
+def summary_path(name: str) -> str:
+    return f"stages/{name}.summary.json"
+
+
+def params_sha256(module: ModuleType, config: Config) -> str:
+    """Hash of everything in the config and code that a stage's output depends on."""
+    parts = {
+        "stage": module.NAME,
+        "code_version": module.CODE_VERSION,
+        "loam_version": __version__,
+        "seed": config.seed,
+        "sections": {s: config.section(s) for s in module.CONFIG_SECTIONS},
+    }
+    return hashlib.sha256(canonical_json(parts)).hexdigest()
+
+
+def inputs_sha256(out: Path, module: ModuleType, ctx: StageContext) -> str:
+    """Hash of the upstream manifests' bytes plus any extra files the stage reads."""
+    digest = hashlib.sha256()
+    for name in module.INPUTS:
+        digest.update(name.encode() + b"\0")
+        digest.update(hashlib.sha256((out / manifest_path(name)).read_bytes()).digest())
+    extra = getattr(module, "extra_inputs", None)
+    for path in extra(ctx) if extra else []:
+        digest.update(str(path).encode() + b"\0")
+        try:
+            digest.update(hashlib.sha256(Path(path).read_bytes()).digest())
+        except FileNotFoundError:
+            digest.update(b"<missing>")
+    return digest.hexdigest()
+
+
+@dataclass
+class StageRecord:
+    name: str
+    ran: bool
+    seconds: float
+    summary: dict[str, Any]
+
+
+def setup_logging(out: Path, command: str) -> tuple[logging.Logger, Path]:
+    logs = out / "logs"
+    logs.mkdir(parents=True, exist_ok=True)
+    stamp = time.strftime("%Y%m%dT%H%M%S", time.gmtime())
+    log_path = logs / f"{command}-{stamp}-{os.getpid()}.log"
+    logger = logging.getLogger("loam")
+    logger.setLevel(logging.INFO)
+    for handler in list(logger.handlers):
+        logger.removeHandler(handler)
+        handler.close()
+    file_handler = logging.FileHandler(log_path, encoding="utf-8")
+    file_handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
+    logger.addHandler(file_handler)
+    console = logging.StreamHandler()
+    console.setFormatter(logging.Formatter("%(message)s"))
+    logger.addHandler(console)
+    logger.propagate = False
+    return logger, log_path
+
+
+class Runner:
+    """One ``loam prepare`` (or ``loam stage``) invocation on an output folder."""
+
+    def __init__(
+        self,
+        raw: Path,
+        out: Path,
+        config: Config,
+        *,
+        workers: int = 0,
+        scheduler: str = "",
+        use_cache: bool = True,
+        options: dict[str, Any] | None = None,
+        log: logging.Logger | None = None,
+    ) -> None:
+        self.raw = Path(raw)
+        self.out = Path(out)
+        self.config = config
+        self.workers = workers
+        self.scheduler = scheduler
+        self.use_cache = use_cache
+        self.options = options or {}
+        self.log = log or logging.getLogger("loam")
+        self.records: list[StageRecord] = []
+
+    def _context(self, inputs: dict[str, pa.Table]) -> StageContext:
+        return StageContext(
+            raw=self.raw, out=self.out, config=self.config, inputs=inputs, workers=self.workers,
+            scheduler=self.scheduler, progress=self.config.run.progress, log=self.log,
+            use_cache=self.use_cache, options=self.options,
+        )
+
+    def _load_input(self, name: str) -> pa.Table:
+        path = self.out / manifest_path(name)
+        if not path.exists():
+            raise DataError(f"{path}: missing; run the '{name}' stage first (loam prepare runs all stages)")
+        table = read_manifest(path)
+        validate_table(name, table, where=str(path))
+        return table
+
+    def _up_to_date(self, module: ModuleType, params: str, inputs: str) -> bool:
+        if getattr(module, "ALWAYS_RUN", False):
+            return False
+        main = self.out / manifest_path(module.NAME)
+        if not (main.exists() and (self.out / rejects_path(module.NAME)).exists()
+                and (self.out / summary_path(module.NAME)).exists()):
+            return False
+        try:
+            meta = read_metadata(main)
+        except Exception:  # unreadable or foreign file: rebuild it
+            return False
+        return meta.get("params_sha256") == params and meta.get("inputs_sha256") == inputs
+
+    def _metadata(self, module: ModuleType, params: str, inputs: str, extra: dict[str, str]) -> dict[str, str]:
+        meta = {
+            "version": __version__,
+            "stage": module.NAME,
+            "code_version": module.CODE_VERSION,
+            "config_sha256": self.config.sha256(),
+            "params_sha256": params,
+            "inputs_sha256": inputs,
+        }
+        meta.update({k: v for k, v in extra.items()})
+        return meta
+
+    def run_stage(self, name: str) -> StageRecord:
+        module = stage_module(name)
+        start = time.perf_counter()
+        inputs = {n: self._load_input(n) for n in module.INPUTS}
+        ctx = self._context(inputs)
+        params = params_sha256(module, self.config)
+        in_hash = inputs_sha256(self.out, module, ctx)
+        if self._up_to_date(module, params, in_hash):
+            self._refresh_config_hash(module)
+            summary = json.loads((self.out / summary_path(name)).read_text(encoding="utf-8"))
+            record = StageRecord(name, False, time.perf_counter() - start, summary)
+            self.log.info("%-6s reused: inputs, parameters and code unchanged", name)
+        else:
+            self.log.info("%-6s running", name)
+            result: StageResult = module.run(ctx)
+            self._write_result(module, result, params, in_hash)
+            record = StageRecord(name, True, time.perf_counter() - start, result.summary)
+            self.log.info("%-6s done in %.1f s: %s", name, record.seconds, _short(result.summary))
+        self.records.append(record)
+        return record
+
+    def _write_result(self, module: ModuleType, result: StageResult, params: str, inputs: str) -> None:
+        meta = self._metadata(module, params, inputs, result.metadata)
+        if manifest_path(module.NAME) not in result.manifests:
+            raise RuntimeError(f"stage {module.NAME} returned no {manifest_path(module.NAME)}")
+        rejects = result.rejects_table()
+        # Validate everything before writing anything, so a bad row leaves the old files.
+        for rel, (schema, table) in result.manifests.items():
+            validate_table(schema, table, where=str(self.out / rel))
+        validate_table("rejected", rejects, where=str(self.out / rejects_path(module.NAME)))
+        write_manifest(self.out / rejects_path(module.NAME), "rejected", rejects, metadata=meta)
+        write_text_atomic(self.out / summary_path(module.NAME),
+                          json.dumps(result.summary, indent=2, sort_keys=True, ensure_ascii=False) + "\n")
+        # The main manifest goes last: its metadata is what marks the stage up to date.
+        for rel, (schema, table) in sorted(result.manifests.items(), key=lambda kv: kv[0] == manifest_path(module.NAME)):
+            write_manifest(self.out / rel, schema, table, metadata=meta)
+
+    def _refresh_config_hash(self, module: ModuleType) -> None:
+        """A reused manifest still records the hash of the config in force now."""
+        current = self.config.sha256()
+        for rel in (manifest_path(module.NAME), rejects_path(module.NAME)):
+            path = self.out / rel
+            meta = read_metadata(path)
+            if meta.get("config_sha256") != current:
+                table = read_manifest(path)
+                meta["config_sha256"] = current
+                write_manifest(path, meta.get("schema", module.NAME), table.replace_schema_metadata(None), metadata={k: v for k, v in meta.items() if k != "schema"})
+
+    def write_rejected(self) -> int:
+        """Gather every stage's rejects into ``manifests/rejected.parquet``."""
+        tables = []
+        for name in STAGE_ORDER:
+            path = self.out / rejects_path(name)
+            if path.exists():
+                tables.append(read_manifest(path).replace_schema_metadata(None))
+        table = pa.concat_tables(tables) if tables else table_from_rows("rejected", [])
+        meta = {"version": __version__, "stage": "all", "config_sha256": self.config.sha256()}
+        write_manifest(self.out / REJECTED_PATH, "rejected", table, metadata=meta)
+        return table.num_rows
+
+    def prepare(self, stages: tuple[str, ...] = STAGE_ORDER) -> list[StageRecord]:
+        with output_lock(self.out):
+            removed = remove_stale_temporaries(self.out)
+            if removed:
+                self.log.info("removed %d temporary files left by an interrupted run", removed)
+            write_text_atomic(self.out / "config.resolved.json",
+                              json.dumps(self.config.to_json(), indent=2, sort_keys=True, ensure_ascii=False) + "\n")
+            for name in stages:
+                if importlib.util.find_spec(f"pipeline.{name}") is None:
+                    continue
+                self.run_stage(name)
+            n = self.write_rejected()
+            self.log.info("rejected: %d rows in %s", n, self.out / REJECTED_PATH)
+        return self.records
+
+
+def _short(summary: dict[str, Any]) -> str:
+    items = [f"{k}={v:.3g}" if isinstance(v, float) else f"{k}={v}" for k, v in summary.items()
+             if isinstance(v, (int, float, str)) and not isinstance(v, bool)]
+    return ", ".join(items[:8])

@@ -1,0 +1,71 @@
+"""The stage contract.
+
+A stage is a module under ``pipeline/`` exposing:
+
+``NAME``            the stage name (``OUT/stages/<NAME>.parquet`` is its manifest);
+``INPUTS``          names of the upstream stages whose manifests it reads;
+``CONFIG_SECTIONS`` config sections its output depends on (plus ``seed``);
+``CODE_VERSION``    bumped whenever a code change alters its output;
+``run(ctx) -> StageResult``.
+
+The runner hands the stage its validated input tables in ``ctx.inputs``, and
+validates and writes whatever the stage returns. A stage never writes a
+manifest itself; it may write other files (audio, lexicons) through
+``pipeline.fsio.atomic_output``.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import pyarrow as pa
+
+from pipeline.config import Config
+from pipeline.manifest import table_from_rows
+
+
+@dataclass
+class StageContext:
+    raw: Path
+    out: Path
+    config: Config
+    inputs: dict[str, pa.Table]
+    workers: int
+    scheduler: str = ""
+    progress: bool = False
+    log: logging.Logger = field(default_factory=lambda: logging.getLogger("loam"))
+    # Whether to use and fill the per-file caches under OUT/cache.
+    use_cache: bool = True
+    # Options that do not come from the config file (e.g. --fresh for the ledger).
+    options: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def cache_dir(self) -> Path:
+        return self.out / "cache"
+
+
+@dataclass
+class StageResult:
+    """What a stage hands back to the runner.
+
+    ``manifests`` maps a path relative to OUT to (schema name, table); the stage's
+    main manifest is ``stages/<NAME>.parquet``. ``rejects`` are rows of the
+    ``rejected`` schema. ``summary`` (JSON-ready) is written for the report, and
+    ``metadata`` is added to every manifest's Parquet key-value metadata.
+    """
+
+    manifests: dict[str, tuple[str, pa.Table]]
+    rejects: list[dict[str, Any]] = field(default_factory=list)
+    summary: dict[str, Any] = field(default_factory=dict)
+    metadata: dict[str, str] = field(default_factory=dict)
+
+    def rejects_table(self) -> pa.Table:
+        return table_from_rows("rejected", self.rejects)
+
+
+def reject(stage: str, source_path: str, reason: str, detail: str, clip_id: str | None = None) -> dict[str, Any]:
+    """One row for ``rejected.parquet``: a reason code and a sentence a person can act on."""
+    return {"source_path": source_path, "reason": reason, "detail": detail, "stage": stage, "clip_id": clip_id}

@@ -1,0 +1,196 @@
+"""Ingest: probing, pairing, quarantine, conservation, order independence, path safety."""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import wave
+from pathlib import Path
+from unittest import mock
+
+import pyarrow.parquet as pq
+import pytest
+
+from pipeline import ingest
+from pipeline.config import build_config
+from pipeline.runner import Runner
+
+META = {"ingest": {"metadata": "meta.csv"}}
+
+
+def run_ingest(raw: Path, out: Path, data: dict | None = None, workers: int = 1) -> tuple[list[dict], list[dict]]:
+    runner = Runner(raw, out, build_config(data if data is not None else META), workers=workers)
+    runner.prepare(("ingest",))
+    rows = pq.read_table(out / "stages" / "ingest.parquet").to_pylist()
+    rejects = pq.read_table(out / "manifests" / "rejected.parquet").to_pylist()
+    return rows, rejects
+
+
+def test_small_raw_counts_reasons_and_conservation(small_raw: Path, tmp_path: Path) -> None:
+    rows, rejects = run_ingest(small_raw, tmp_path / "out")
+    by_path = {r["source_path"]: r for r in rows}
+    assert sorted(by_path) == ["spk_a/a1.wav", "spk_a/a2.flac", "spk_b/b1.wav", "spk_b/b2.ogg"]
+    reasons = {r["source_path"]: r["reason"] for r in rejects}
+    assert reasons == {
+        "spk_b/broken.wav": "empty",
+        "spk_b/copy.wav": "duplicate_content",
+        "meta.csv:3": "metadata_missing_audio",
+        "meta.csv:4": "path_outside_root",
+    }
+    assert by_path["spk_a/a1.wav"]["transcript"] == "the first line"
+    assert by_path["spk_a/a1.wav"]["transcript_origin"] == "sidecar"
+    assert by_path["spk_b/b1.wav"]["transcript"] == "a second line"
+    assert by_path["spk_b/b1.wav"]["metadata_line"] == 2
+    assert by_path["spk_a/a2.flac"]["transcript"] is None
+    # Conservation: every audio file found and every metadata row is accounted for once.
+    audio_found = {str(p.relative_to(small_raw)) for p in small_raw.rglob("*") if p.suffix in {".wav", ".flac", ".ogg"}}
+    assert audio_found == set(by_path) | {r["source_path"] for r in rejects if not r["source_path"].startswith("meta.csv")}
+    assert len(audio_found) == len(rows) + sum(1 for r in rejects if not r["source_path"].startswith("meta.csv"))
+    meta_lines = {2, 3, 4}
+    accounted = {r["metadata_line"] for r in rows if r["metadata_line"]} | {
+        int(r["source_path"].split(":")[1]) for r in rejects if r["source_path"].startswith("meta.csv:")}
+    assert accounted == meta_lines
+    for r in rejects:
+        assert r["detail"].startswith(r["source_path"].split(":")[0]), r["detail"]
+
+
+def test_header_facts_match_stdlib_wave(small_raw: Path, tmp_path: Path) -> None:
+    """Cross-check against Python's standard-library ``wave`` module (an outside reader)."""
+    import soundfile as sf
+
+    sf.write(small_raw / "spk_a" / "w8.wav", (ingest_tone := __import__("tests.conftest", fromlist=["tone"]).tone)(0.7, 8000), 8000, subtype="PCM_16")
+    del ingest_tone
+    rows, _ = run_ingest(small_raw, tmp_path / "out")
+    checked = 0
+    for row in rows:
+        if row["format"] != "WAV" or row["subtype"] != "PCM_16":
+            continue  # ``wave`` reads integer PCM only
+        with wave.open(str(small_raw / row["source_path"]), "rb") as w:
+            assert w.getframerate() == row["sample_rate"]
+            assert w.getnchannels() == row["channels"]
+            assert w.getnframes() == row["num_frames"]
+            assert w.getsampwidth() == 2
+        checked += 1
+    assert checked >= 2
+    for row in rows:
+        # hashlib directly on the bytes (an independent read of the file)
+        assert row["sha256"] == hashlib.sha256((small_raw / row["source_path"]).read_bytes()).hexdigest()
+        assert row["size_bytes"] == (small_raw / row["source_path"]).stat().st_size
+
+
+def test_walk_order_does_not_matter(small_raw: Path, tmp_path: Path) -> None:
+    first = run_ingest(small_raw, tmp_path / "a")
+    real_walk = os.walk
+
+    def reversed_walk(*args, **kwargs):  # type: ignore[no-untyped-def]
+        for folder, dirs, files in real_walk(*args, **kwargs):
+            dirs.reverse()
+            yield folder, dirs, list(reversed(files))
+
+    with mock.patch("pipeline.ingest.os.walk", reversed_walk):
+        second = run_ingest(small_raw, tmp_path / "b")
+    assert first == second
+    assert (tmp_path / "a/stages/ingest.parquet").read_bytes() == (tmp_path / "b/stages/ingest.parquet").read_bytes()
+
+
+def test_worker_count_does_not_matter(small_raw: Path, tmp_path: Path) -> None:
+    run_ingest(small_raw, tmp_path / "a", workers=1)
+    run_ingest(small_raw, tmp_path / "b", workers=2)
+    for rel in ("stages/ingest.parquet", "manifests/rejected.parquet"):
+        assert (tmp_path / "a" / rel).read_bytes() == (tmp_path / "b" / rel).read_bytes()
+
+
+@pytest.mark.parametrize("bad", ["../x.wav", "/etc/passwd", "spk_a/../../x.wav", "link_out/x.wav", "C:\\\\x.wav"])
+def test_metadata_paths_leaving_raw_are_rejected_unopened(small_raw: Path, tmp_path: Path, bad: str) -> None:
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    (outside / "x.wav").write_bytes((small_raw / "spk_a" / "a1.wav").read_bytes())
+    (small_raw / "link_out").symlink_to(outside, target_is_directory=True)
+    (small_raw / "meta.csv").write_text(f"path,transcript,speaker\n{bad},secret,spk_a\n", encoding="utf-8")
+    opened: list[str] = []
+    real_open = open
+
+    def spy_open(file, *a, **k):  # type: ignore[no-untyped-def]
+        opened.append(str(file))
+        return real_open(file, *a, **k)
+
+    with mock.patch("builtins.open", spy_open):
+        rows, rejects = run_ingest(small_raw, tmp_path / "out")
+    reasons = {r["source_path"]: r["reason"] for r in rejects}
+    assert reasons["meta.csv:2"] == "path_outside_root"
+    assert reasons["link_out"] == "path_outside_root"
+    assert not any(str(outside) in p for p in opened)
+    assert all(r["transcript"] != "secret" for r in rows)
+
+
+def test_symlinked_audio_file_out_of_root_is_rejected(small_raw: Path, tmp_path: Path) -> None:
+    outside = tmp_path / "elsewhere.wav"
+    outside.write_bytes((small_raw / "spk_a" / "a1.wav").read_bytes() + b"\0")
+    (small_raw / "spk_a" / "linked.wav").symlink_to(outside)
+    _, rejects = run_ingest(small_raw, tmp_path / "out")
+    assert {r["source_path"]: r["reason"] for r in rejects}["spk_a/linked.wav"] == "path_outside_root"
+
+
+def test_conflicting_transcripts_quarantine_the_file(small_raw: Path, tmp_path: Path) -> None:
+    (small_raw / "meta.csv").write_text("path,transcript,speaker\nspk_a/a1.wav,another text,spk_a\n", encoding="utf-8")
+    rows, rejects = run_ingest(small_raw, tmp_path / "out")
+    reasons = {r["source_path"]: r["reason"] for r in rejects}
+    assert reasons["spk_a/a1.wav"] == "conflicting_transcripts"
+    assert reasons["meta.csv:2"] == "conflicting_transcripts"
+    assert "spk_a/a1.wav" not in {r["source_path"] for r in rows}
+
+
+def test_metadata_table_faults(small_raw: Path, tmp_path: Path) -> None:
+    (small_raw / "meta.csv").write_bytes(
+        b"\xef\xbb\xbfpath,transcript,speaker,extra\n"
+        b"spk_b/b1.wav,a line,spk_b,x\n"
+        b"spk_b/b1.wav,a line,spk_b,x\n"
+        b"spk_b/b2.ogg,caf\xe9,spk_b,x\n"
+        b"spk_a/a2.flac,too,many,fields,here\n"
+    )
+    rows, rejects = run_ingest(small_raw, tmp_path / "out")
+    reasons = {r["source_path"]: r["reason"] for r in rejects}
+    assert reasons["meta.csv:3"] == "metadata_duplicate_row"
+    assert reasons["meta.csv:4"] == "transcript_encoding"
+    assert reasons["meta.csv:5"] == "metadata_parse_error"
+    assert "line 5: found 5 fields; expected 4" in next(r["detail"] for r in rejects if r["source_path"] == "meta.csv:5")
+    assert {r["source_path"]: r["transcript"] for r in rows}["spk_b/b1.wav"] == "a line"
+
+
+def test_missing_metadata_column_stops_with_message(small_raw: Path, tmp_path: Path) -> None:
+    from pipeline.errors import DataError
+
+    (small_raw / "meta.csv").write_text("file,text\nspk_b/b1.wav,x\n", encoding="utf-8")
+    with pytest.raises(DataError, match=r"meta.csv: line 1: missing column\(s\) 'path', 'transcript'; found 'file', 'text'"):
+        run_ingest(small_raw, tmp_path / "out")
+
+
+def test_sidecar_not_utf8_is_rejected(small_raw: Path, tmp_path: Path) -> None:
+    (small_raw / "spk_a" / "a2.txt").write_bytes(b"na\xefve")
+    _, rejects = run_ingest(small_raw, tmp_path / "out")
+    r = next(r for r in rejects if r["source_path"] == "spk_a/a2.flac")
+    assert r["reason"] == "transcript_encoding" and "0xef" in r["detail"]
+
+
+def test_file_at_root_has_no_speaker(small_raw: Path, tmp_path: Path) -> None:
+    (small_raw / "loose.wav").write_bytes((small_raw / "spk_a" / "a1.wav").read_bytes()[:-2] + b"\1\0")
+    _, rejects = run_ingest(small_raw, tmp_path / "out")
+    assert {r["source_path"]: r["reason"] for r in rejects}["loose.wav"] == "missing_speaker"
+
+
+def test_ids_are_safe_and_stable() -> None:
+    sha = "ab" * 32
+    assert ingest.source_id("Ünïcode name (take 2)", sha) == "unicode-name-take-2-abababab" + "ab"
+    assert ingest.source_id("---", sha) == "clip-ababababab"
+    assert ingest.speaker_id("spk_a") == "spk_a"
+    odd = ingest.speaker_id("Ana María; rm -rf")
+    assert odd.startswith("Ana_Maria_rm_-rf-") and "/" not in odd
+    assert ingest.speaker_id("a b") != ingest.speaker_id("a_b")
+
+
+def test_raw_is_not_modified(small_raw: Path, tmp_path: Path) -> None:
+    from tests.conftest import tree_hash
+
+    before = tree_hash(small_raw)
+    run_ingest(small_raw, tmp_path / "out")
+    assert tree_hash(small_raw) == before

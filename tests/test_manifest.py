@@ -1,0 +1,121 @@
+"""Manifest schemas: Arrow types derived from JSON Schema, row rules, loud failures."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from pipeline.errors import ManifestError
+from pipeline.manifest import (
+    arrow_schema,
+    check_table,
+    read_metadata,
+    table_from_rows,
+    validate_table,
+    write_manifest,
+)
+from pipeline.schemas_io import SCHEMA_DIR
+
+MANIFESTS = sorted(p.name.split(".")[0] for p in SCHEMA_DIR.glob("*.schema.json") if p.name != "config.schema.json")
+
+
+def good_reject(**kw: object) -> dict:
+    row = {"source_path": "a/b.wav", "reason": "empty", "detail": "a/b.wav: empty", "stage": "ingest", "clip_id": None}
+    row.update(kw)
+    return row
+
+
+@pytest.mark.parametrize("name", MANIFESTS)
+def test_every_schema_derives_an_arrow_schema(name: str) -> None:
+    schema = arrow_schema(name)
+    assert len(schema) > 0
+    # An empty table of the schema is itself valid.
+    assert check_table(name, schema.empty_table(), where="empty") == []
+
+
+def test_bad_row_names_row_column_value_and_rule() -> None:
+    rows = [good_reject(), good_reject(reason="because"), good_reject()]
+    with pytest.raises(ManifestError) as err:
+        validate_table("rejected", table_from_rows("rejected", rows), where="x.parquet")
+    text = str(err.value)
+    assert "x.parquet: row 1, column 'reason'" in text
+    assert '"because"' in text and "enum" in text
+
+
+def test_missing_and_mistyped_columns() -> None:
+    table = table_from_rows("rejected", [good_reject()]).drop_columns(["detail"])
+    problems = check_table("rejected", table, where="t")
+    assert [(p.column, p.found) for p in problems] == [("detail", "no such column")]
+    table = pa.table({**{c: table_from_rows("rejected", [good_reject()]).column(c) for c in arrow_schema("rejected").names if c != "stage"},
+                      "stage": pa.array([3])})
+    problems = check_table("rejected", table, where="t")
+    assert any(p.column == "stage" and "int64" in p.found for p in problems)
+
+
+def test_null_in_required_column_is_caught() -> None:
+    table = table_from_rows("rejected", [good_reject(detail=None)])
+    problems = check_table("rejected", table, where="t")
+    assert problems and problems[0].row == 0 and problems[0].column == "detail"
+
+
+def test_write_is_atomic_and_records_metadata(tmp_path: Path) -> None:
+    path = tmp_path / "stages" / "r.parquet"
+    write_manifest(path, "rejected", table_from_rows("rejected", [good_reject()]), metadata={"stage": "ingest"})
+    assert read_metadata(path)["stage"] == "ingest"
+    assert read_metadata(path)["schema"] == "rejected"
+    assert [p.name for p in path.parent.iterdir()] == ["r.parquet"]
+    # A bad table leaves the good file in place and no temporary behind.
+    before = path.read_bytes()
+    with pytest.raises(ManifestError):
+        write_manifest(path, "rejected", table_from_rows("rejected", [good_reject(stage="nowhere")]), metadata={})
+    assert path.read_bytes() == before
+    assert [p.name for p in path.parent.iterdir()] == ["r.parquet"]
+
+
+def test_writes_are_byte_identical(tmp_path: Path) -> None:
+    table = table_from_rows("rejected", [good_reject(), good_reject(source_path="c.wav")])
+    write_manifest(tmp_path / "a.parquet", "rejected", table, metadata={"k": "v"})
+    write_manifest(tmp_path / "b.parquet", "rejected", table, metadata={"k": "v"})
+    assert (tmp_path / "a.parquet").read_bytes() == (tmp_path / "b.parquet").read_bytes()
+    assert pq.read_table(tmp_path / "a.parquet").num_rows == 2
+
+
+# Random, partly malformed rows: the columnar checker and jsonschema on every row agree.
+row_strategy = st.fixed_dictionaries({
+    "source_path": st.text(max_size=5),
+    "reason": st.sampled_from(["empty", "undecodable", "bogus", ""]),
+    "detail": st.one_of(st.none(), st.text(max_size=3)),
+    "stage": st.sampled_from(["ingest", "audio", "nope"]),
+    "clip_id": st.one_of(st.none(), st.text(max_size=3)),
+})
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.lists(row_strategy, max_size=12))
+def test_columnar_checker_agrees_with_jsonschema(rows: list[dict]) -> None:
+    table = table_from_rows("rejected", rows)
+    fast = {(p.row, p.column) for p in check_table("rejected", table, where="t")}
+    slow = {(p.row, p.column) for p in check_table("rejected", table, where="t", exhaustive=True)}
+    assert fast == slow
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.lists(st.fixed_dictionaries({
+    "clip_id": st.text(max_size=4),
+    "transcript": st.text(max_size=4),
+    "norm_text": st.text(max_size=4),
+    "words": st.lists(st.text(max_size=2), max_size=3),
+    "phones": st.lists(st.text(max_size=2), max_size=3),
+    "word_backends": st.lists(st.sampled_from(["cmudict", "neural", "oops"]), max_size=3),
+    "oov_words": st.lists(st.text(max_size=2), max_size=2),
+}), max_size=8))
+def test_list_columns_agree_with_jsonschema(rows: list[dict]) -> None:
+    table = table_from_rows("text", rows)
+    fast = {(p.row, p.column) for p in check_table("text", table, where="t")}
+    slow = {(p.row, p.column) for p in check_table("text", table, where="t", exhaustive=True)}
+    assert fast == slow
