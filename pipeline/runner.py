@@ -42,7 +42,9 @@ def stage_module(name: str) -> ModuleType:
 
 
 def manifest_path(name: str) -> str:
-    return f"stages/{name}.parquet"
+    """The stage's main manifest (``MAIN_MANIFEST`` in the module, else stages/<name>.parquet)."""
+    module = importlib.import_module(f"pipeline.{name}")
+    return getattr(module, "MAIN_MANIFEST", f"stages/{name}.parquet")
 
 
 def rejects_path(name: str) -> str:
