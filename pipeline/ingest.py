@@ -281,6 +281,22 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str,
     return [r for r in results if r is not None]
 
 
+def _pseudonymise(ctx: StageContext, rows: list[dict[str, Any]]) -> None:
+    """Replace speaker ids by keyed pseudonyms, and drop file stems (which often carry
+    names) from source ids."""
+    from pipeline.privacy import load_key, pseudonym, write_mapping
+
+    privacy = ctx.config.privacy
+    key = load_key(ctx.config.resolve_path(privacy.key_file), out=ctx.out)
+    mapping: dict[str, str] = {}
+    for row in rows:
+        original = row["speaker"]
+        row["speaker"] = mapping.setdefault(original, pseudonym(original, key=key))
+        row["source_id"] = source_id("clip", row["sha256"])
+    if privacy.mapping_file:
+        write_mapping(ctx.config.resolve_path(privacy.mapping_file), mapping, out=ctx.out)
+
+
 def run(ctx: StageContext) -> StageResult:
     cfg = ctx.config.ingest
     raw = ctx.raw
@@ -387,6 +403,8 @@ def run(ctx: StageContext) -> StageResult:
             "metadata_line": used_row.line if used_row else None,
         })
 
+    if ctx.config.privacy.pseudonymise:
+        _pseudonymise(ctx, accepted)
     accepted.sort(key=lambda r: r["source_path"])
     audio_rejected = sum(1 for r in rejects if r["source_path"] in path_set)
     summary = {

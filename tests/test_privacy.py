@@ -1,0 +1,53 @@
+"""Speaker pseudonyms: HMAC-SHA-256 (RFC 2104) checked against RFC 4231 and hmac."""
+
+from __future__ import annotations
+
+import hashlib
+import hmac
+from pathlib import Path
+
+import pyarrow.parquet as pq
+import pytest
+
+from pipeline.config import build_config
+from pipeline.errors import UsageError
+from pipeline.privacy import load_key, pseudonym
+from pipeline.runner import Runner
+
+
+def test_hmac_primitive_matches_rfc4231_case_2() -> None:
+    # RFC 4231, test case 2: key "Jefe", data "what do ya want for nothing?"
+    expected = "5bdcc146bf60754e6a042426089575c75a003f089d2739839dec58b964ec3843"
+    assert hmac.new(b"Jefe", b"what do ya want for nothing?", hashlib.sha256).hexdigest() == expected
+    assert pseudonym("what do ya want for nothing?", key=b"Jefe") == "spk-" + expected[:16]
+
+
+def test_key_rules(tmp_path: Path) -> None:
+    out = tmp_path / "out"
+    out.mkdir()
+    (tmp_path / "short.key").write_text("abc")
+    with pytest.raises(UsageError, match="expected at least 16"):
+        load_key(tmp_path / "short.key", out=out)
+    (out / "in.key").write_text("x" * 40)
+    with pytest.raises(UsageError, match="inside OUT"):
+        load_key(out / "in.key", out=out)
+
+
+def test_ingest_pseudonymises_and_writes_mapping_only_where_asked(small_raw: Path, tmp_path: Path) -> None:
+    key = tmp_path / "secret.key"
+    key.write_text("0123456789abcdef0123456789abcdef\n")
+    mapping = tmp_path / "private" / "speakers.tsv"
+    cfg = build_config({"ingest": {"metadata": "meta.csv"},
+                        "privacy": {"pseudonymise": True, "key_file": str(key), "mapping_file": str(mapping)}})
+    out = tmp_path / "out"
+    Runner(small_raw, out, cfg, workers=1).prepare(("ingest",))
+    rows = pq.read_table(out / "stages" / "ingest.parquet").to_pylist()
+    expected = {"spk_a": pseudonym("spk_a", key=key.read_bytes().strip()), "spk_b": pseudonym("spk_b", key=key.read_bytes().strip())}
+    assert {r["speaker"] for r in rows} == set(expected.values())
+    assert all(r["source_id"].startswith("clip-") for r in rows)
+    assert mapping.read_text().splitlines()[1:] == [f"{s}\t{p}" for s, p in sorted(expected.items())]
+    # Nothing in OUT names the speakers except the source paths' folders.
+    for path in out.rglob("*.parquet"):
+        table = pq.read_table(path)
+        if "speaker" in table.column_names:
+            assert not {"spk_a", "spk_b"} & set(table.column("speaker").to_pylist())
