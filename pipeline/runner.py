@@ -249,6 +249,11 @@ class Runner:
                 self.run_stage(name)
             n = self.write_rejected()
             self.log.info("rejected: %d rows in %s", n, self.out / REJECTED_PATH)
+            # Timings live under logs/, never in a manifest, so manifests stay byte-identical.
+            write_text_atomic(self.out / "logs" / "last-run.json", json.dumps({
+                "stages": [{"name": r.name, "ran": r.ran, "seconds": round(r.seconds, 4)} for r in self.records],
+                "workers": self.workers, "scheduler": self.scheduler,
+            }, indent=2) + "\n")
         return self.records
 
 

@@ -1,0 +1,1 @@
+"""Benchmarks (``make bench``); not part of the installed package."""

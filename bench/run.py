@@ -1,0 +1,162 @@
+"""``make bench``: throughput, memory, rebuild costs and scaling of ``loam prepare``.
+
+Prints a table and writes the same figures as JSON (``<out>/results.json``).
+Every figure is measured in this run on this machine; nothing is a timed test.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+REPO = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(REPO))
+
+from bench.floor import run_floor  # noqa: E402
+from bench.workload import Spec, make_workload  # noqa: E402
+
+LOAM = [sys.executable, "-m", "pipeline.cli"]
+MEASURE = (
+    "import resource, subprocess, sys, time\n"
+    "t = time.perf_counter(); rc = subprocess.run(sys.argv[1:]).returncode\n"
+    "print(time.perf_counter() - t, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss, rc)\n"
+)
+
+
+def measured(cmd: list[str]) -> tuple[float, float]:
+    """Wall seconds and peak RSS (MB, the largest process among the command's tree)."""
+    out = subprocess.run([sys.executable, "-c", MEASURE, *cmd], capture_output=True, text=True, check=True)
+    wall, rss_kb, rc = out.stdout.split()[-3:]
+    if rc != "0":
+        raise SystemExit(f"bench: {' '.join(cmd)} failed with exit code {rc}:\n{out.stderr[-3000:]}")
+    return float(wall), int(rss_kb) / 1024
+
+
+def prepare(raw: Path, out: Path, workers: int, *extra: str) -> tuple[float, float]:
+    cmd = [*LOAM, "prepare", str(raw), str(out), "--config", str(REPO / "bench" / "bench.toml"),
+           "--workers", str(workers), "--no-progress", *extra]
+    return measured(cmd)
+
+
+def stage_seconds(out: Path) -> dict[str, float]:
+    data = json.loads((out / "logs" / "last-run.json").read_text())
+    return {s["name"]: s["seconds"] for s in data["stages"]}
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__)
+    parser.add_argument("--out", type=Path, default=REPO / "build" / "bench")
+    parser.add_argument("--minutes", type=float, default=30.0, help="audio in the workload")
+    parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--skip-long", action="store_true", help="skip the 60-minute single-file memory case")
+    args = parser.parse_args()
+    work = args.out.resolve()
+    work.mkdir(parents=True, exist_ok=True)
+    os.chdir(REPO)
+
+    facts = make_workload(work / "workload", Spec(minutes=args.minutes))
+    raw = work / "workload" / "raw"
+    audio_s = float(facts["seconds"])
+    results: dict[str, object] = {"audio_hours": audio_s / 3600, "files": facts["files"], "workers": args.workers}
+
+    cold_out = work / "out"
+    shutil.rmtree(cold_out, ignore_errors=True)
+    cold, cold_rss = prepare(raw, cold_out, args.workers)
+    results.update(cold_wall_s=cold, x_real_time=audio_s / cold, peak_rss_mb=cold_rss,
+                   stage_seconds=stage_seconds(cold_out))
+    summary = json.loads((cold_out / "stages" / "audio.summary.json").read_text())
+    if "gate_seconds" in summary and "work_seconds" in summary:
+        results["gates_share_of_audio_work"] = summary["gate_seconds"] / max(summary["work_seconds"], 1e-9)
+
+    with tempfile.TemporaryDirectory(dir=work) as scratch:
+        t = time.perf_counter()
+        run_floor(raw, Path(scratch), workers=args.workers)
+        floor = time.perf_counter() - t
+    results.update(floor_wall_s=floor, pipeline_over_floor=cold / floor)
+
+    rerun, _ = prepare(raw, cold_out, args.workers)
+    results.update(rerun_wall_s=rerun, rerun_over_cold=rerun / cold)
+
+    # 5 % new audio: the old files are hard links (same inode and mtime), the new ones copies.
+    grown = work / "raw_grown"
+    shutil.rmtree(grown, ignore_errors=True)
+    shutil.copytree(raw, grown, copy_function=os.link)
+    for src in sorted((work / "workload" / "extra").rglob("*")):
+        if src.is_file():
+            dst = grown / src.relative_to(work / "workload" / "extra")
+            dst.parent.mkdir(parents=True, exist_ok=True)
+            shutil.copy2(src, dst)
+    rebuild, _ = prepare(grown, cold_out, args.workers)
+    results.update(rebuild_5pct_wall_s=rebuild, rebuild_over_cold=rebuild / cold,
+                   rebuild_stage_seconds=stage_seconds(cold_out))
+
+    one_out = work / "out_1worker"
+    shutil.rmtree(one_out, ignore_errors=True)
+    one, _ = prepare(raw, one_out, 1)
+    results.update(one_worker_wall_s=one, speedup_1_to_2=one / cold)
+    shutil.rmtree(one_out, ignore_errors=True)
+    shutil.rmtree(grown, ignore_errors=True)
+
+    from pipeline.validate import bench_validate
+
+    with tempfile.TemporaryDirectory(dir=work) as scratch:
+        results["validate"] = bench_validate(100_000, Path(scratch))
+
+    if not args.skip_long:
+        long = subprocess.run([sys.executable, str(REPO / "bench" / "bench_long_file.py"), "--json"],
+                              capture_output=True, text=True)
+        if long.returncode == 0:
+            results["long_file"] = json.loads(long.stdout.strip().splitlines()[-1])
+        else:
+            results["long_file"] = {"error": long.stderr[-500:]}
+
+    (work / "results.json").write_text(json.dumps(results, indent=2) + "\n")
+    print_table(results)
+    print(json.dumps(results))
+    return 0
+
+
+def print_table(r: dict) -> None:
+    targets = {
+        "pipeline_over_floor": ("<= 1.3", lambda v: v <= 1.3),
+        "speedup_1_to_2": (">= 1.7", lambda v: v >= 1.7),
+        "rerun_over_cold": ("<= 0.05", lambda v: v <= 0.05),
+        "rebuild_over_cold": ("<= 0.12", lambda v: v <= 0.12),
+    }
+    rows = [
+        ("audio hours", f"{r['audio_hours']:.3f}", ""),
+        ("cold wall (s)", f"{r['cold_wall_s']:.1f}", ""),
+        ("x real time", f"{r['x_real_time']:.1f}", ""),
+        ("peak RSS (MB)", f"{r['peak_rss_mb']:.0f}", ""),
+        ("floor wall (s)", f"{r['floor_wall_s']:.1f}", ""),
+    ]
+    for key, label in [("pipeline_over_floor", "pipeline / floor"), ("speedup_1_to_2", "1 -> 2 worker speedup"),
+                       ("rerun_over_cold", "no-change rerun / cold"), ("rebuild_over_cold", "rebuild +5 % / cold")]:
+        target, ok = targets[key]
+        rows.append((label, f"{r[key]:.3f}", f"target {target}: {'met' if ok(r[key]) else 'MISSED'}"))
+    rows.append(("no-change rerun (s)", f"{r['rerun_wall_s']:.2f}", ""))
+    for name, sec in r["stage_seconds"].items():
+        rows.append((f"  stage {name} (s)", f"{sec:.2f}", ""))
+    if "gates_share_of_audio_work" in r:
+        rows.append(("gates share of audio work", f"{r['gates_share_of_audio_work']:.3f}", "target <= 0.25"))
+    v = r.get("validate", {})
+    if "rows_per_second" in v:
+        rows.append(("validate rows/s", f"{v['rows_per_second']:.0f}", "target >= 20000"))
+    lf = r.get("long_file", {})
+    for key in ("x_real_time", "peak_rss_mb"):
+        if key in lf:
+            rows.append((f"60-min 48 kHz stereo {key}", f"{lf[key]:.1f}", "target < 500 MB" if "rss" in key else ""))
+    width = max(len(a) for a, _, _ in rows)
+    for a, b, c in rows:
+        print(f"{a:<{width}}  {b:>10}  {c}")
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
