@@ -263,14 +263,14 @@ def compare_with_pyloudnorm(clip: np.ndarray, sample_rate: int) -> None:
     [(16_000, 0.45, 1), (16_000, 6.0, 2), (22_050, 3.3, 1), (44_100, 2.0, 2), (48_000, 4.7, 5)],
 )
 def test_noise_matches_pyloudnorm(sample_rate: int, seconds: float, channels: int) -> None:
-    # Source: pyloudnorm 0.1.x (reference implementation of BS.1770-4).
+    # Source: pyloudnorm 0.2 (reference implementation of BS.1770-4).
     rng = np.random.default_rng(sample_rate + channels)
     clip = 0.1 * rng.standard_normal((round(seconds * sample_rate), channels))
     compare_with_pyloudnorm(clip[:, 0] if channels == 1 else clip, sample_rate)
 
 
 def test_gated_noise_matches_pyloudnorm() -> None:
-    # Source: pyloudnorm 0.1.x. Noise bursts at levels spread across both gates, so the
+    # Source: pyloudnorm 0.2. Noise bursts at levels spread across both gates, so the
     # relative and absolute gates each drop some blocks.
     rng = np.random.default_rng(7)
     levels_db = [-20.0, -45.0, -80.0, -26.0, -33.0, -60.0, -18.0]
@@ -303,7 +303,7 @@ def speech(tmp_path_factory: pytest.TempPathFactory) -> tuple[np.ndarray, int]:
 
 @pytest.mark.parametrize("sample_rate", [16_000, 48_000, None])
 def test_speech_matches_pyloudnorm(speech: tuple[np.ndarray, int], sample_rate: int | None) -> None:
-    # Source: pyloudnorm 0.1.x, on espeak-ng speech at its own rate (None) and resampled.
+    # Source: pyloudnorm 0.2, on espeak-ng speech at its own rate (None) and resampled.
     samples, native_rate = speech
     if sample_rate is None:
         sample_rate = native_rate
