@@ -22,7 +22,7 @@ sys.path.insert(0, str(REPO))
 from bench.floor import run_floor  # noqa: E402
 from bench.workload import Spec, make_workload  # noqa: E402
 
-LOAM = [sys.executable, "-m", "pipeline.cli"]
+LOAM = [sys.executable, "-m", "pipeline"]
 MEASURE = (
     "import resource, subprocess, sys, time\n"
     "t = time.perf_counter(); rc = subprocess.run(sys.argv[1:]).returncode\n"

@@ -166,6 +166,11 @@ def main(argv: list[str] | None = None) -> int:
     except LoamError as exc:
         print(f"loam: error: {exc}", file=sys.stderr)
         return exc.exit_code
+    except OSError as exc:  # disk full, permissions: the environment, not the data
+        where = f"{exc.filename}: " if exc.filename else ""
+        print(f"loam: error: {where}{exc.strerror or exc}; nothing half-written was left under a final name",
+              file=sys.stderr)
+        return 1
     except KeyboardInterrupt:
         print("loam: interrupted", file=sys.stderr)
         return 130

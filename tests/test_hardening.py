@@ -1,0 +1,135 @@
+"""Crashes, concurrent runs and disk errors never leave a corrupt or half-written output."""
+
+from __future__ import annotations
+
+import errno
+import os
+import random
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+from unittest import mock
+
+import pyarrow.parquet as pq
+import pytest
+
+from pipeline.cli import main
+from pipeline.lock import LOCK_NAME
+
+STAGES_PRESENT = all((Path(__file__).resolve().parent.parent / "pipeline" / f"{s}.py").exists()
+                     for s in ("audio", "text", "split"))
+
+
+def loam(*args: str, timeout: float | None = None) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "pipeline", *args], capture_output=True, text=True, timeout=timeout)
+
+
+def outputs(out: Path) -> dict[str, bytes]:
+    """Every manifest and audio file by relative path (logs and caches excluded)."""
+    files = {}
+    for sub in ("stages", "manifests", "audio", "lexicon"):
+        for p in sorted((out / sub).rglob("*")) if (out / sub).exists() else []:
+            if p.is_file():
+                files[str(p.relative_to(out))] = p.read_bytes()
+    return files
+
+
+def test_second_run_exits_at_once_while_one_holds_the_lock(small_raw: Path, tmp_path: Path) -> None:
+    out = tmp_path / "out"
+    out.mkdir()
+    holder = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    try:
+        (out / LOCK_NAME).write_text(f"{holder.pid}\n")
+        # A hang guard, not a timing check: waiting for the holder would take its full minute.
+        result = loam("prepare", str(small_raw), str(out), timeout=50)
+        assert result.returncode == 2
+        assert f"in use by another loam run (pid {holder.pid}" in result.stderr
+        assert not (out / "stages").exists()
+    finally:
+        holder.kill()
+        holder.wait()
+
+
+def test_stale_lock_is_taken_over(small_raw: Path, tmp_path: Path) -> None:
+    out = tmp_path / "out"
+    out.mkdir()
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()
+    (out / LOCK_NAME).write_text(f"{dead.pid}\n")
+    assert main(["stage", "ingest", str(small_raw), str(out), "--set", 'ingest.metadata="meta.csv"']) == 0
+    assert not (out / LOCK_NAME).exists()
+    assert (out / "stages" / "ingest.parquet").exists()
+
+
+def test_full_disk_midway_leaves_old_manifest_intact(small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    out = tmp_path / "out"
+    args = ["stage", "ingest", str(small_raw), str(out), "--set", 'ingest.metadata="meta.csv"']
+    assert main(args) == 0
+    before = (out / "stages" / "ingest.parquet").read_bytes()
+    (small_raw / "spk_a" / "new.txt").write_text("changes nothing audible")
+    real_write = pq.write_table
+    calls = {"n": 0}
+
+    def failing_write(table, where, *a, **k):  # type: ignore[no-untyped-def]
+        calls["n"] += 1
+        with open(where, "wb") as fh:  # half a file, then the disk is full
+            fh.write(b"PAR1" + b"\0" * 100)
+        raise OSError(errno.ENOSPC, "No space left on device", str(where))
+
+    with mock.patch("pipeline.manifest.pq.write_table", failing_write):
+        code = main(args)
+    assert code == 1 and calls["n"] >= 1
+    assert "No space left on device" in capsys.readouterr().err
+    assert (out / "stages" / "ingest.parquet").read_bytes() == before
+    assert not list(out.rglob(".loam-*.tmp"))
+    pq.read_table(out / "stages" / "ingest.parquet")
+    assert real_write is pq.write_table
+
+
+def test_unwritable_out_is_a_clear_error(small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    blocker = tmp_path / "file"
+    blocker.write_text("not a folder")
+    assert main(["prepare", str(small_raw), str(blocker / "out")]) == 2
+    assert "cannot create the folder" in capsys.readouterr().err
+
+    out = tmp_path / "out"
+    with mock.patch("pipeline.fsio.tempfile.mkstemp", side_effect=PermissionError(errno.EACCES, "Permission denied", str(out))):
+        assert main(["stage", "ingest", str(small_raw), str(out)]) == 1
+    assert "Permission denied" in capsys.readouterr().err
+    assert not (out / "stages" / "ingest.parquet").exists()
+
+
+def test_out_inside_raw_is_refused(small_raw: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["prepare", str(small_raw), str(small_raw / "out")]) == 2
+    assert "must not be inside RAW" in capsys.readouterr().err
+    assert not (small_raw / "out").exists()
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not STAGES_PRESENT, reason="needs every stage")
+def test_sigkill_at_random_points_then_rerun_is_byte_identical(small_raw: Path, tmp_path: Path) -> None:
+    args = ["--set", 'ingest.metadata="meta.csv"', "--set", 'split.labelled_budgets=["1s"]',
+            "--set", 'split.heldout="1s"', "--set", 'split.group_by="clip"', "--workers", "2"]
+    clean = tmp_path / "clean"
+    done = loam("prepare", str(small_raw), str(clean), *args)
+    assert done.returncode == 0, done.stderr
+    expected = outputs(clean)
+    rng = random.Random(8)  # fixed seed: the kill points are reproducible
+    out = tmp_path / "killed"
+    for _ in range(4):
+        proc = subprocess.Popen([sys.executable, "-m", "pipeline", "prepare", str(small_raw), str(out), *args],
+                                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)
+        time.sleep(rng.uniform(0.2, 3.0))
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)
+        proc.wait()
+        # Whatever is visible under a final name is complete: every Parquet file reads.
+        for rel in outputs(out):
+            if rel.endswith(".parquet"):
+                pq.read_table(out / rel)
+    final = loam("prepare", str(small_raw), str(out), *args)
+    assert final.returncode == 0, final.stderr
+    assert outputs(out) == expected
+    assert not list(out.rglob(".loam-*.tmp"))
