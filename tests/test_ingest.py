@@ -194,3 +194,39 @@ def test_raw_is_not_modified(small_raw: Path, tmp_path: Path) -> None:
     before = tree_hash(small_raw)
     run_ingest(small_raw, tmp_path / "out")
     assert tree_hash(small_raw) == before
+
+
+def test_demo_corpus_counts_conservation_and_reasons(tmp_path: Path) -> None:
+    """The demo's deliberate faults (listed in demo_corpus/README.md) each get their reason."""
+    from pipeline.config import load_config
+    from tests.conftest import DEMO
+
+    cfg = load_config(DEMO / "corpus.toml")
+    out = tmp_path / "out"
+    Runner(DEMO, out, cfg, workers=2).prepare(("ingest",))
+    rows = pq.read_table(out / "stages" / "ingest.parquet").to_pylist()
+    rejects = pq.read_table(out / "manifests" / "rejected.parquet").to_pylist()
+    reasons = {r["source_path"]: r["reason"] for r in rejects}
+    assert reasons == {
+        "plover/plover_09.wav": "empty",
+        "alder/alder_tape_label.wav": "undecodable",
+        "wren/wren_09.wav": "undecodable",
+        "wren/wren_10.flac": "duplicate_content",
+        "sedge/sedge_03.wav": "conflicting_transcripts",
+        "metadata.csv:6": "conflicting_transcripts",
+        "metadata.csv:11": "metadata_missing_audio",
+        "metadata.csv:12": "path_outside_root",
+    }
+    audio_found = sorted(str(p.relative_to(DEMO)) for p in DEMO.rglob("*")
+                         if p.suffix.lower() in {".wav", ".flac", ".ogg"})
+    accepted = sorted(r["source_path"] for r in rows)
+    assert len(audio_found) >= 40
+    assert sorted(accepted + [p for p in reasons if ":" not in p]) == audio_found
+    assert len({r["speaker"] for r in rows}) >= 5
+    # Every metadata row (lines 2..N) is used by an ingest row or rejected.
+    n_lines = len((DEMO / "metadata.csv").read_text(encoding="utf-8").strip().splitlines())
+    used = {r["metadata_line"] for r in rows if r["metadata_line"]}
+    rejected_lines = {int(p.split(":")[1]) for p in reasons if p.startswith("metadata.csv:")}
+    assert used | rejected_lines == set(range(2, n_lines + 1))
+    assert not used & rejected_lines
+    assert sum(r["transcript"] is not None for r in rows) >= 12
