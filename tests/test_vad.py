@@ -1,0 +1,190 @@
+"""Voice activity: webrtcvad's documented limits, no-speech signals, trimming real
+synthetic speech (espeak-ng), and the smoothing rules of pipeline.vad."""
+
+from __future__ import annotations
+
+import shutil
+import subprocess
+from pathlib import Path
+
+import numpy as np
+import pytest
+import soundfile as sf
+import soxr
+import webrtcvad
+
+from pipeline.errors import ParameterError
+from pipeline.vad import (
+    NOISE_FLATNESS,
+    VAD_FRAME_MS,
+    VAD_SAMPLE_RATES,
+    VoiceActivityStream,
+    frame_decisions,
+    frame_length,
+    majority3,
+    smooth_decisions,
+    spectral_flatness,
+    trim_frames,
+    trim_span,
+)
+
+RATE = 16000
+DEFAULTS = {"min_speech_ms": 90, "min_pause_ms": 150, "hangover_ms": 90}  # schemas/config.schema.json defaults
+
+
+def speak(text: str, path: Path) -> tuple[np.ndarray, int]:
+    if shutil.which("espeak-ng") is None:
+        pytest.skip("espeak-ng is not installed")
+    subprocess.run(["espeak-ng", "-w", str(path), text], check=True, capture_output=True)
+    samples, rate = sf.read(path, dtype="float32")
+    return samples, rate
+
+
+def speech_ratio(samples: np.ndarray, *, sample_rate: int = RATE, aggressiveness: int = 2) -> float:
+    analysis = frame_decisions(samples, sample_rate=sample_rate, frame_ms=30, aggressiveness=aggressiveness)
+    return float(smooth_decisions(analysis.decisions, frame_ms=30, **DEFAULTS).mean())
+
+
+@pytest.mark.parametrize("sample_rate", VAD_SAMPLE_RATES)
+@pytest.mark.parametrize("frame_ms", VAD_FRAME_MS)
+def test_frames_are_the_sizes_webrtcvad_accepts(sample_rate: int, frame_ms: int):
+    # webrtcvad documentation: 16-bit mono PCM, 8/16/32/48 kHz, 10/20/30 ms frames;
+    # webrtcvad.valid_rate_and_frame_length is its own check of exactly that.
+    n = frame_length(sample_rate=sample_rate, frame_ms=frame_ms)
+    assert webrtcvad.valid_rate_and_frame_length(sample_rate, n)
+    noise = np.random.default_rng(0).standard_normal(sample_rate // 2) * 0.01
+    stream = VoiceActivityStream(sample_rate=sample_rate, frame_ms=frame_ms, aggressiveness=1)
+    stream.push(noise)  # webrtcvad raises on a frame it does not accept
+    assert len(stream.result().decisions) == len(noise) // n
+
+
+@pytest.mark.parametrize(("sample_rate", "frame_ms"), [(44100, 30), (22050, 20), (11025, 10), (16000, 15)])
+def test_unsupported_rates_and_frames_are_refused_like_webrtcvad(sample_rate: int, frame_ms: int):
+    assert not webrtcvad.valid_rate_and_frame_length(sample_rate, sample_rate * frame_ms // 1000)
+    with pytest.raises(ParameterError, match=r"(sample_rate|frame_ms)="):
+        frame_length(sample_rate=sample_rate, frame_ms=frame_ms)
+
+
+def test_digital_silence_is_no_speech():
+    analysis = frame_decisions(np.zeros(3 * RATE), sample_rate=RATE, frame_ms=30, aggressiveness=0)
+    assert not analysis.decisions.any()
+    speech = smooth_decisions(analysis.decisions, frame_ms=30, **DEFAULTS)
+    assert trim_span(speech, frame_ms=30, pad_ms=150, duration_s=3.0) is None
+
+
+@pytest.mark.parametrize("rms", [0.02, 0.1, 0.3])
+def test_white_noise_is_no_speech(rms: float):
+    noise = np.random.default_rng(int(rms * 100)).standard_normal(4 * RATE) * rms
+    # webrtcvad on its own takes loud white noise for speech, which is why the
+    # flatness veto exists; below the 5 % default min_speech_ratio counts as none.
+    assert speech_ratio(noise) < 0.05
+
+
+def test_white_noise_flatness_is_near_its_analytic_value():
+    # Exponentially distributed periodogram bins: geometric / arithmetic mean = exp(-gamma).
+    frames = np.random.default_rng(5).standard_normal((400, 480))
+    flat = spectral_flatness(frames)
+    assert abs(np.median(flat) - np.exp(-0.5772156649)) < 0.03
+    assert np.mean(flat >= NOISE_FLATNESS) > 0.95
+    assert spectral_flatness(np.zeros((1, 480)))[0] == 0.0
+
+
+def test_trim_keeps_all_speech_and_drops_most_silence(tmp_path: Path):
+    voice, rate = speak("the lighthouse keeper counts the boats that pass the point each morning",
+                        tmp_path / "voice.wav")
+    voice = soxr.resample(voice, rate, RATE)
+    active = np.flatnonzero(np.abs(voice) > 1e-3)
+    lead_s, tail_s = 1.0, 1.5
+    signal = np.concatenate([np.zeros(int(lead_s * RATE)), voice, np.zeros(int(tail_s * RATE))])
+    # A -65 dBFS noise floor, as in a quiet room, instead of exact zeros.
+    signal += np.random.default_rng(1).standard_normal(len(signal)) * 10 ** (-65 / 20)
+    speech_start = lead_s + active[0] / RATE
+    speech_end = lead_s + (active[-1] + 1) / RATE
+
+    analysis = frame_decisions(signal, sample_rate=RATE, frame_ms=30, aggressiveness=2)
+    speech = smooth_decisions(analysis.decisions, frame_ms=30, **DEFAULTS)
+    span = trim_span(speech, frame_ms=30, pad_ms=150, duration_s=len(signal) / RATE)
+    assert span is not None
+    start, end = span
+    assert start <= speech_start and end >= speech_end  # all speech kept
+    # At most the pad (plus hangover after) and two frames of slack stay on either side.
+    assert speech_start - start <= 0.15 + 0.06
+    assert end - speech_end <= 0.15 + 0.09 + 0.06
+    assert (speech_start - start) + (end - speech_end) < 0.25 * (lead_s + tail_s)
+
+
+def test_streaming_decisions_equal_one_shot():
+    rng = np.random.default_rng(2)
+    signal = np.concatenate([np.zeros(4000), np.sin(np.arange(12000) * 0.2) * 0.3, rng.standard_normal(5000) * 1e-3])
+    whole = frame_decisions(signal, sample_rate=RATE, frame_ms=20, aggressiveness=2)
+    stream = VoiceActivityStream(sample_rate=RATE, frame_ms=20, aggressiveness=2)
+    for piece in np.array_split(signal, [1, 333, 334, 9000, 15000]):
+        stream.push(piece)
+    pieces = stream.result()
+    np.testing.assert_array_equal(pieces.decisions, whole.decisions)
+    np.testing.assert_allclose(pieces.energy_db, whole.energy_db)
+
+
+def _pattern() -> np.ndarray:
+    # Runs of 12 speech, 8 pause, 20 speech, 3 pause, 6 speech, 15 pause, 10 speech.
+    parts = [(1, 12), (0, 8), (1, 20), (0, 3), (1, 6), (0, 15), (1, 10), (0, 6)]
+    return np.concatenate([np.full(n, bool(v)) for v, n in parts])
+
+
+@pytest.mark.parametrize("settings", [DEFAULTS, {"min_speech_ms": 0, "min_pause_ms": 0, "hangover_ms": 0}])
+def test_a_single_frame_flip_does_not_move_a_boundary(settings: dict[str, int]):
+    decisions = _pattern()
+    base = smooth_decisions(decisions, frame_ms=30, **settings)
+    # Frame b is a boundary when frame b - 1 differs from it. A flip at i leaves the
+    # three-frame vote unchanged when frames i - 2 .. i + 2 agree, i.e. when no
+    # boundary lies in i - 1 .. i + 2; flips closer than that are the boundary itself.
+    # The two ends of the signal count as boundaries.
+    changes = np.flatnonzero(np.diff(decisions.astype(np.int8))) + 1
+    boundaries = np.concatenate([[0], changes, [len(decisions)]])
+    tested = 0
+    for i in range(len(decisions)):
+        if np.any((boundaries >= i - 1) & (boundaries <= i + 2)):
+            continue
+        tested += 1
+        flipped = decisions.copy()
+        flipped[i] = not flipped[i]
+        np.testing.assert_array_equal(smooth_decisions(flipped, frame_ms=30, **settings), base,
+                                      err_msg=f"flipping frame {i} changed the result")
+    assert tested >= 45  # most of the 80 frames
+
+
+def test_smoothing_bridges_short_pauses_and_drops_short_bursts():
+    # Worked by hand from the rules in smooth_decisions' docstring, 10 ms frames:
+    # the 3-frame pause (< 50 ms) is bridged, the 8-frame one is kept, the 3-frame
+    # burst (< 40 ms) is dropped, and the runs get 2 frames (20 ms) of hangover.
+    d = np.zeros(40, dtype=bool)
+    d[2:10] = True
+    d[13:20] = True
+    d[28:31] = True
+    out = smooth_decisions(d, frame_ms=10, min_speech_ms=40, min_pause_ms=50, hangover_ms=20)
+    expected = np.zeros(40, dtype=bool)
+    expected[2:22] = True
+    np.testing.assert_array_equal(out, expected)
+
+
+def test_majority_vote_removes_lone_frames_only():
+    d = np.array([0, 0, 1, 0, 0, 1, 1, 0, 1, 1, 1], dtype=bool)
+    np.testing.assert_array_equal(majority3(d), np.array([0, 0, 0, 0, 0, 1, 1, 1, 1, 1, 1], dtype=bool))
+
+
+def test_padding_never_passes_the_file_edges():
+    speech = np.zeros(20, dtype=bool)
+    speech[[0, 19]] = True
+    assert trim_frames(speech, pad_frames=5) == (0, 20)
+    assert trim_span(speech, frame_ms=30, pad_ms=150, duration_s=0.61) == (0.0, 0.61)
+    middle = np.zeros(20, dtype=bool)
+    middle[8:10] = True
+    assert trim_frames(middle, pad_frames=3, start=7, stop=11) == (7, 11)
+    assert trim_span(middle, frame_ms=30, pad_ms=60, duration_s=0.61) == pytest.approx((0.18, 0.36))
+
+
+def test_bad_parameters_name_themselves():
+    with pytest.raises(ParameterError, match="aggressiveness=4"):
+        VoiceActivityStream(sample_rate=RATE, frame_ms=30, aggressiveness=4)
+    with pytest.raises(ParameterError, match="hangover_ms=-1"):
+        smooth_decisions(np.zeros(3, bool), frame_ms=30, min_speech_ms=0, min_pause_ms=0, hangover_ms=-1)
