@@ -1,0 +1,781 @@
+"""Signal-level quality gates: blind SNR, near-duplicate fingerprints, bandwidth, outliers.
+
+Every function here is pure: numpy arrays in, numbers or arrays out, no files and no
+global state beyond cached constant tables. The stages decide what to do with the
+numbers (thresholds live in the ``quality`` section of the configuration).
+
+- :func:`wada_snr_db` estimates the SNR of a clip without a clean reference.
+- :func:`fingerprint`, :func:`fingerprint_similarity` and :func:`find_near_duplicates`
+  find clips that are the same recording after resampling, re-encoding or a gain change.
+- :func:`effective_bandwidth_hz` finds where the long-term spectrum ends, which exposes
+  telephone or low-rate audio that was upsampled.
+- :func:`robust_z_scores` scores a per-clip value (such as speaking rate) against the
+  clip's group (such as its speaker), robustly to the outliers it is meant to find.
+
+librosa is deliberately not used: its first call in a process spends seconds on JIT
+compilation, which a per-file worker pays again and again, while numpy, scipy and soxr
+do the same work here without start-up cost.
+"""
+
+from __future__ import annotations
+
+import base64
+import functools
+from collections.abc import Sequence
+
+import numpy as np
+import scipy.fft
+import scipy.signal
+import soxr
+from scipy import special
+
+from pipeline.errors import ParameterError
+
+__all__ = [
+    "OUTLIER_ABS_Z",
+    "WADA_MAX_SNR_DB",
+    "WADA_MIN_SNR_DB",
+    "bandwidth_from_psd",
+    "decode_fingerprint",
+    "effective_bandwidth_hz",
+    "encode_fingerprint",
+    "find_near_duplicates",
+    "fingerprint",
+    "fingerprint_similarity",
+    "long_term_psd",
+    "robust_z_scores",
+    "wada_snr_db",
+]
+
+
+def _mono_float(samples: np.ndarray, *, name: str = "samples") -> np.ndarray:
+    """A 1-D float64 view or copy of ``samples``; refuses other shapes and non-finite data."""
+    x = np.asarray(samples)
+    if x.ndim != 1:
+        raise ParameterError(f"{name} must be a 1-D (mono) array, got shape {x.shape}")
+    if not (np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer)):
+        raise ParameterError(f"{name} must hold numbers, got dtype {x.dtype}")
+    x = x.astype(np.float64, copy=False)
+    if not np.all(np.isfinite(x)):
+        raise ParameterError(f"{name} contains NaN or infinite values")
+    return x
+
+
+def _check_sample_rate(sample_rate: int) -> None:
+    if isinstance(sample_rate, bool) or not isinstance(sample_rate, (int, np.integer)) or sample_rate <= 0:
+        raise ParameterError(f"sample_rate={sample_rate!r} must be a positive integer")
+
+
+# ---------------------------------------------------------------------------------------
+# Blind SNR: WADA
+# ---------------------------------------------------------------------------------------
+
+WADA_MIN_SNR_DB = -20.0
+WADA_MAX_SNR_DB = 100.0
+_WADA_STEP_DB = 0.1
+# Shape of the Gamma distribution of clean speech amplitudes (Kim and Stern 2008).
+_WADA_GAMMA_SHAPE = 0.4
+
+
+@functools.cache
+def _wada_table() -> tuple[np.ndarray, np.ndarray]:
+    """G(SNR) for Gamma-amplitude speech plus Gaussian noise, on a 0.1 dB grid.
+
+    The model: x = s + n, with |s| ~ Gamma(k=0.4, scale theta) and a random sign, and
+    n ~ N(0, 1) (G does not depend on scale, so the noise is fixed at unit variance).
+    E[s^2] = k (k + 1) theta^2, so theta follows from the SNR. Then
+
+        G = log E|x| - E log|x|
+
+    Both expectations are taken over the speech amplitude a = |s| of an expectation
+    over the noise that is known in closed form for each a:
+
+    - E|a + n| is the mean of a folded normal: sqrt(2/pi) exp(-a^2/2) + a erf(a/sqrt 2).
+    - (a + n)^2 is non-central chi-square with one degree of freedom and non-centrality
+      a^2, a Poisson(a^2/2) mixture of central chi-squares with 1 + 2j degrees of
+      freedom, and E log chi2_nu = log 2 + digamma(nu/2). So
+      E log|a + n| = (log 2 + sum_j Poisson(j; a^2/2) digamma(j + 1/2)) / 2.
+      For a > 20 the series needs hundreds of terms, and the expansion
+      log a - 1/(2a^2) - 3/(4a^4) is already exact to 1e-7.
+
+    The outer integral over a uses the trapezoid rule on a grid uniform in log a, where
+    the Gamma density is smooth at both ends. It integrates h(a) - h(0) rather than
+    h(a): that difference vanishes like a^2 at a -> 0, so cutting the grid at
+    a = 1e-6 loses nothing, while the Gamma mass below the cut (up to 1 % at -20 dB)
+    is carried exactly by h(0). Doubling the grid changes G by < 1e-10, and a
+    4-million-sample Monte Carlo simulation of the same model agrees to its own
+    sampling error (about 1e-3). Computing takes about 0.1 s, once per process.
+
+    Returns (snr_db, g), both increasing.
+    """
+    k = _WADA_GAMMA_SHAPE
+    steps = round((WADA_MAX_SNR_DB - WADA_MIN_SNR_DB) / _WADA_STEP_DB)
+    snr_db = np.linspace(WADA_MIN_SNR_DB, WADA_MAX_SNR_DB, steps + 1)
+    theta = np.sqrt(10.0 ** (snr_db / 10.0) / (k * (k + 1.0)))
+
+    log_a = np.linspace(np.log(1e-6), np.log(60.0 * theta.max()), 2000)
+    a = np.exp(log_a)
+    step = log_a[1] - log_a[0]
+
+    mean_abs = np.sqrt(2.0 / np.pi) * np.exp(-0.5 * a * a) + a * special.erf(a / np.sqrt(2.0))
+    mean_log = np.empty_like(a)
+    far = a > 20.0
+    mean_log[far] = np.log(a[far]) - 0.5 / a[far] ** 2 - 0.75 / a[far] ** 4
+    near = ~far
+    j = np.arange(500.0)
+    rate = 0.5 * a[near, None] ** 2
+    poisson = np.exp(special.xlogy(j, rate) - rate - special.gammaln(j + 1.0))
+    mean_log[near] = 0.5 * (np.log(2.0) + poisson @ special.digamma(j + 0.5))
+    mean_abs_0 = np.sqrt(2.0 / np.pi)
+    mean_log_0 = -0.5 * (np.euler_gamma + np.log(2.0))
+
+    # Gamma density of a, times da = a d(log a).
+    log_weight = (
+        k * (log_a[None, :] - np.log(theta[:, None]))
+        - a[None, :] / theta[:, None]
+        - special.gammaln(k)
+    )
+    weight = np.exp(log_weight) * step
+    weight[:, [0, -1]] *= 0.5
+    expected_abs = mean_abs_0 + weight @ (mean_abs - mean_abs_0)
+    expected_log = mean_log_0 + weight @ (mean_log - mean_log_0)
+    g = np.log(expected_abs) - expected_log
+    return snr_db, g
+
+
+def wada_snr_db(samples: np.ndarray) -> float:
+    """Blind SNR estimate of a speech clip by Waveform Amplitude Distribution Analysis.
+
+    Method of C. Kim and R. M. Stern, "Robust signal-to-noise ratio estimation based on
+    waveform amplitude distribution analysis", Interspeech 2008: clean speech amplitude
+    is modelled as Gamma-distributed (shape 0.4) and the noise as Gaussian; the
+    statistic ``G = log(mean|x|) - mean(log|x|)`` grows monotonically with the SNR of
+    such a mixture, so the SNR is read off a table of G against SNR. The table is
+    computed here from the model (see ``_wada_table``), not copied.
+
+    The SNR is the ratio of the speech power to the noise power over the whole clip,
+    pauses included. Exact zeros are left out of the statistic: they are digital
+    silence or padding, say nothing about the noise, and have no logarithm.
+
+    Parameters
+    ----------
+    samples : np.ndarray
+        Mono waveform, any sample rate (G depends only on the amplitude distribution),
+        any scale (G is scale invariant).
+
+    Returns
+    -------
+    float
+        Estimated SNR in dB, clamped to ``[WADA_MIN_SNR_DB, WADA_MAX_SNR_DB]``
+        (-20..100 dB), the range of the table. Below about -5 dB G hardly changes, so
+        estimates there are coarse. NaN when the clip is empty or all zeros.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> speech = rng.gamma(0.4, size=160_000) * rng.choice([-1.0, 1.0], size=160_000)
+    >>> noise = rng.normal(scale=np.sqrt(np.mean(speech**2)) / 10.0, size=160_000)
+    >>> round(wada_snr_db(speech + noise))
+    20
+    """
+    x = np.abs(_mono_float(samples))
+    x = x[x > 0.0]
+    if x.size == 0:
+        return float("nan")
+    # Scale first so the mean of tiny integers or huge floats cannot under- or overflow.
+    x = x / x.max()
+    g = np.log(np.mean(x)) - np.mean(np.log(x))
+    snr_db, g_table = _wada_table()
+    # np.interp clamps to the end values outside the table, which is the documented clamp.
+    return float(np.interp(g, g_table, snr_db))
+
+
+# ---------------------------------------------------------------------------------------
+# Near-duplicate fingerprints: Haitsma-Kalker
+# ---------------------------------------------------------------------------------------
+
+# All parameters follow J. Haitsma and T. Kalker, "A Highly Robust Audio Fingerprinting
+# System", ISMIR 2002: 0.37 s Hann frames, hop 1/32 of a frame, 33 logarithmically
+# spaced bands between 300 and 2000 Hz giving 32 bits per frame. The paper works at
+# 5512.5 Hz; 5000 Hz keeps 2000 Hz well inside the band and the frame an integer.
+FP_SAMPLE_RATE = 5000
+FP_FRAME = 1850  # 0.37 s
+FP_HOP = 58  # 11.6 ms
+FP_BAND_EDGES_HZ = np.geomspace(300.0, 2000.0, 34)
+# Band energies below this level relative to the clip's mean band energy are raised to
+# it, so frames of silence give the sub-fingerprint 0 whatever faint codec or
+# resampler residue they hold. An addition: the paper does not treat silence.
+FP_FLOOR_DB = -60.0
+# Frames per block of the STFT: bounds memory (about 4 MB) without a per-frame loop.
+_FP_BLOCK_FRAMES = 512
+_BIT_WEIGHTS = (np.uint64(1) << np.arange(31, -1, -1, dtype=np.uint64)).astype(np.uint64)
+
+
+@functools.cache
+def _fp_band_matrix() -> tuple[int, int, np.ndarray]:
+    """(first bin, last bin + 1, bins x 33 matrix) summing FFT bins into bands."""
+    freqs = scipy.fft.rfftfreq(FP_FRAME, d=1.0 / FP_SAMPLE_RATE)
+    band = np.searchsorted(FP_BAND_EDGES_HZ, freqs, side="right") - 1
+    inside = (band >= 0) & (band < FP_BAND_EDGES_HZ.size - 1)
+    first, last = int(np.argmax(inside)), int(inside.size - np.argmax(inside[::-1]))
+    matrix = np.zeros((last - first, FP_BAND_EDGES_HZ.size - 1), dtype=np.float32)
+    matrix[np.arange(last - first), band[first:last]] = 1.0
+    return first, last, matrix
+
+
+def _fp_band_energies(x: np.ndarray) -> np.ndarray:
+    """Frames x 33 band energies of a 5 kHz signal, computed block by block."""
+    first, last, matrix = _fp_band_matrix()
+    frames = np.lib.stride_tricks.sliding_window_view(x, FP_FRAME)[::FP_HOP]
+    window = scipy.signal.get_window("hann", FP_FRAME).astype(np.float32)
+    out = np.empty((frames.shape[0], matrix.shape[1]), dtype=np.float32)
+    for start in range(0, frames.shape[0], _FP_BLOCK_FRAMES):
+        block = frames[start : start + _FP_BLOCK_FRAMES] * window
+        spectrum = scipy.fft.rfft(block, axis=1)[:, first:last]
+        power = spectrum.real**2 + spectrum.imag**2
+        out[start : start + block.shape[0]] = power @ matrix
+    return out
+
+
+def fingerprint(samples: np.ndarray, *, sample_rate: int) -> np.ndarray:
+    """Haitsma-Kalker audio fingerprint: one 32-bit sub-fingerprint every 11.6 ms.
+
+    After J. Haitsma and T. Kalker, "A Highly Robust Audio Fingerprinting System",
+    ISMIR 2002. The clip is resampled (soxr) to 5000 Hz, cut into 0.37 s Hann frames
+    every 11.6 ms, and the energy of 33 log-spaced bands between 300 and 2000 Hz is
+    measured in each. Bit m of frame n is 1 when the energy difference between bands m
+    and m + 1 grew since frame n - 1. Bit 31 (the most significant) belongs to the
+    lowest bands. Band energies are floored at 60 dB below the clip's mean so silence
+    gives 0 (an addition to the paper). Resampling, lossy coding and gain leave most
+    bits unchanged, which :func:`fingerprint_similarity` measures.
+
+    Parameters
+    ----------
+    samples : np.ndarray
+        Mono waveform.
+    sample_rate : int
+        Sample rate of ``samples`` in Hz; the result does not depend on it.
+
+    Returns
+    -------
+    np.ndarray
+        ``uint32`` array of sub-fingerprints, one per frame after the first; empty when
+        the clip is shorter than two frames (about 0.38 s).
+
+    Examples
+    --------
+    >>> t = np.arange(16000 * 2) / 16000
+    >>> fingerprint(np.sin(2 * np.pi * 440 * t) * t, sample_rate=16000).shape
+    (140,)
+    """
+    _check_sample_rate(sample_rate)
+    x = _mono_float(samples)
+    if sample_rate != FP_SAMPLE_RATE and x.size:
+        x = soxr.resample(x, sample_rate, FP_SAMPLE_RATE)
+    if x.size < FP_FRAME + FP_HOP:
+        return np.zeros(0, dtype=np.uint32)
+    energy = _fp_band_energies(x.astype(np.float32))
+    mean = float(energy.mean(dtype=np.float64))
+    if mean > 0.0:
+        np.maximum(energy, np.float32(mean * 10.0 ** (FP_FLOOR_DB / 10.0)), out=energy)
+    across = energy[:, :-1] - energy[:, 1:]
+    bits = (across[1:] - across[:-1]) > 0.0
+    return (bits.astype(np.uint64) @ _BIT_WEIGHTS).astype(np.uint32)
+
+
+def encode_fingerprint(fp: np.ndarray) -> str:
+    """Fingerprint as base64 text of its little-endian uint32 bytes (for a string column).
+
+    Parameters
+    ----------
+    fp : np.ndarray
+        Sub-fingerprints as returned by :func:`fingerprint`.
+
+    Returns
+    -------
+    str
+        ASCII text, 4/3 of the byte size (about 460 characters per second of audio).
+
+    Examples
+    --------
+    >>> encode_fingerprint(np.array([1, 2**32 - 1], dtype=np.uint32))
+    'AQAAAP////8='
+    """
+    arr = np.asarray(fp)
+    if arr.ndim != 1 or (arr.size and not np.issubdtype(arr.dtype, np.integer)):
+        raise ParameterError(f"fp must be a 1-D integer array, got {arr.dtype} shape {arr.shape}")
+    if arr.size and (arr.min() < 0 or arr.max() > 0xFFFFFFFF):
+        raise ParameterError("fp holds values outside the uint32 range")
+    return base64.b64encode(arr.astype("<u4").tobytes()).decode("ascii")
+
+
+def decode_fingerprint(s: str) -> np.ndarray:
+    """Inverse of :func:`encode_fingerprint`: base64 text back to a ``uint32`` array.
+
+    Parameters
+    ----------
+    s : str
+        Text made by :func:`encode_fingerprint`.
+
+    Returns
+    -------
+    np.ndarray
+        ``uint32`` sub-fingerprints in native byte order.
+
+    Examples
+    --------
+    >>> decode_fingerprint('AQAAAP////8=').tolist()
+    [1, 4294967295]
+    """
+    try:
+        raw = base64.b64decode(s.encode("ascii"), validate=True)
+    except (ValueError, AttributeError, UnicodeEncodeError) as exc:
+        raise ParameterError(f"s={str(s)[:40]!r} is not base64 text: {exc}") from None
+    if len(raw) % 4:
+        raise ParameterError(f"s decodes to {len(raw)} bytes, not a multiple of 4")
+    return np.frombuffer(raw, dtype="<u4").astype(np.uint32)
+
+
+if hasattr(np, "bitwise_count"):
+    def _popcount(x: np.ndarray) -> np.ndarray:
+        return np.bitwise_count(x)
+else:  # numpy < 2.0
+    _BYTE_BITS = np.array([bin(i).count("1") for i in range(256)], dtype=np.uint8)
+
+    def _popcount(x: np.ndarray) -> np.ndarray:
+        b = np.ascontiguousarray(x, dtype=np.uint32).view(np.uint8).reshape(-1, 4)
+        return _BYTE_BITS[b].sum(axis=1, dtype=np.uint32).reshape(x.shape)
+
+
+DEFAULT_MAX_OFFSET_FRAMES = 16  # about 0.19 s: codec delay and edge trimming
+DEFAULT_MIN_OVERLAP_FRAMES = 64  # about 0.74 s of hops, two frame lengths
+
+
+def fingerprint_similarity(
+    a: np.ndarray,
+    b: np.ndarray,
+    *,
+    max_offset_frames: int = DEFAULT_MAX_OFFSET_FRAMES,
+    min_overlap_frames: int = DEFAULT_MIN_OVERLAP_FRAMES,
+) -> float:
+    """Best bit agreement (1 - bit error rate) of two fingerprints over small shifts.
+
+    ``b`` is shifted against ``a`` by every offset from ``-max_offset_frames`` to
+    ``+max_offset_frames`` (one frame is 11.6 ms) and the share of equal bits is taken
+    over the overlapping sub-fingerprints; the best offset wins. Positions where both
+    sub-fingerprints are 0 (silence in both, see :func:`fingerprint`) are left out:
+    shared silence is no evidence of shared content. Haitsma and Kalker (ISMIR 2002)
+    declare a match at a bit error rate below 0.35 over 256 sub-fingerprints; copies
+    after resampling, Vorbis or MP3 coding score above 0.9, unrelated speech about 0.5
+    to 0.65 in this module's tests.
+
+    Short overlaps: an offset counts only if it leaves at least
+    ``min(min_overlap_frames, len(a), len(b))`` comparable positions, so fingerprints
+    shorter than ``min_overlap_frames`` are compared where they overlap fully. When no
+    offset qualifies (for example an empty fingerprint) the result is 0.0. A clip that
+    is the start of a longer one scores as a duplicate; compare durations if that
+    matters.
+
+    Parameters
+    ----------
+    a, b : np.ndarray
+        ``uint32`` fingerprints from :func:`fingerprint`.
+    max_offset_frames : int
+        Largest shift tried, in sub-fingerprints.
+    min_overlap_frames : int
+        Fewest compared positions for an offset to count.
+
+    Returns
+    -------
+    float
+        Similarity in [0, 1]; 1.0 for identical fingerprints.
+
+    Examples
+    --------
+    >>> fp = np.random.default_rng(0).integers(1, 2**32, size=300, dtype=np.uint32)
+    >>> fingerprint_similarity(fp, fp[3:])  # b starts 3 frames into a
+    1.0
+    >>> round(fingerprint_similarity(fp, fp[::-1]), 1)  # unrelated bits agree half the time
+    0.5
+    """
+    if isinstance(max_offset_frames, bool) or not isinstance(max_offset_frames, (int, np.integer)) or max_offset_frames < 0:
+        raise ParameterError(f"max_offset_frames={max_offset_frames!r} must be an integer >= 0")
+    if isinstance(min_overlap_frames, bool) or not isinstance(min_overlap_frames, (int, np.integer)) or min_overlap_frames < 1:
+        raise ParameterError(f"min_overlap_frames={min_overlap_frames!r} must be an integer >= 1")
+    a = np.asarray(a, dtype=np.uint32)
+    b = np.asarray(b, dtype=np.uint32)
+    need = min(min_overlap_frames, a.size, b.size)
+    if need == 0:
+        return 0.0
+    best = 0.0
+    for offset in range(-max_offset_frames, max_offset_frames + 1):
+        # Pair a[i] with b[i + offset].
+        start = max(0, -offset)
+        stop = min(a.size, b.size - offset)
+        if stop - start < need:
+            continue
+        x = a[start:stop]
+        y = b[start + offset : stop + offset]
+        informative = (x | y) != 0
+        n = int(np.count_nonzero(informative))
+        if n < need:
+            continue
+        errors = int(_popcount(x[informative] ^ y[informative]).sum(dtype=np.int64))
+        best = max(best, 1.0 - errors / (32.0 * n))
+    return best
+
+
+DEFAULT_MAX_CLIPS_PER_KEY = 64
+
+
+def find_near_duplicates(
+    fingerprints: Sequence[np.ndarray],
+    *,
+    min_similarity: float,
+    max_offset_frames: int = DEFAULT_MAX_OFFSET_FRAMES,
+    min_overlap_frames: int = DEFAULT_MIN_OVERLAP_FRAMES,
+    max_clips_per_key: int = DEFAULT_MAX_CLIPS_PER_KEY,
+    min_shared_keys: int = 2,
+) -> list[tuple[int, int, float]]:
+    """All pairs of clips whose fingerprints agree at or above ``min_similarity``.
+
+    As in Haitsma and Kalker (ISMIR 2002), candidates come from exact matches of
+    32-bit sub-fingerprints: every distinct non-zero sub-fingerprint of every clip goes
+    into a table keyed by its value, and two clips become a candidate pair when they
+    share at least ``min_shared_keys`` keys. Distorted copies keep many bit-exact
+    sub-fingerprints (over half of them after Vorbis or MP3 coding in the tests), while
+    a single shared key is mostly chance; requiring two halved the candidates among
+    unrelated synthetic speech in the tests. Keys held by more than
+    ``max_clips_per_key`` clips (near-silence and other patterns common to much of a
+    corpus) are skipped, which bounds the pairs per key; 0, the silence pattern, is
+    never a key. Each candidate is then verified with :func:`fingerprint_similarity`.
+
+    Complexity: building and sorting the table is O(F log F) for F sub-fingerprints in
+    total (sorting is the only super-linear step), and each key yields at most
+    ``max_clips_per_key**2 / 2`` pairs, so candidates grow at most linearly with F;
+    in practice unrelated clips rarely share a key. Each verification costs
+    O((2 * max_offset_frames + 1) * frames). Memory is O(F).
+
+    A group of more than ``max_clips_per_key`` copies of one recording has all its keys
+    skipped and is not found here; exact copies are cheaper to find by content hash.
+
+    Parameters
+    ----------
+    fingerprints : Sequence[np.ndarray]
+        One fingerprint per clip (empty arrays allowed; they never match).
+    min_similarity : float
+        Threshold in (0, 1] on :func:`fingerprint_similarity`.
+    max_offset_frames, min_overlap_frames : int
+        Passed to :func:`fingerprint_similarity`.
+    max_clips_per_key : int
+        Keys shared by more clips than this generate no candidates.
+    min_shared_keys : int
+        Distinct shared keys a pair needs to be verified.
+
+    Returns
+    -------
+    list of (int, int, float)
+        ``(i, j, similarity)`` with ``i < j`` indices into ``fingerprints``, sorted by
+        ``i`` then ``j``.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> fps = [rng.integers(1, 2**32, size=200, dtype=np.uint32) for _ in range(3)]
+    >>> fps.append(fps[0].copy())
+    >>> find_near_duplicates(fps, min_similarity=0.85)
+    [(0, 3, 1.0)]
+    """
+    if not (isinstance(min_similarity, (int, float, np.floating)) and 0.0 < min_similarity <= 1.0):
+        raise ParameterError(f"min_similarity={min_similarity!r} must be in (0, 1]")
+    if isinstance(max_clips_per_key, bool) or not isinstance(max_clips_per_key, (int, np.integer)) or max_clips_per_key < 2:
+        raise ParameterError(f"max_clips_per_key={max_clips_per_key!r} must be an integer >= 2")
+    if isinstance(min_shared_keys, bool) or not isinstance(min_shared_keys, (int, np.integer)) or min_shared_keys < 1:
+        raise ParameterError(f"min_shared_keys={min_shared_keys!r} must be an integer >= 1")
+    fps = [np.asarray(fp, dtype=np.uint32) for fp in fingerprints]
+
+    keys_per_clip = [np.unique(fp[fp != 0]) for fp in fps]
+    sizes = np.array([k.size for k in keys_per_clip], dtype=np.int64)
+    if sizes.sum() == 0:
+        return []
+    keys = np.concatenate(keys_per_clip).astype(np.int64)
+    clips = np.repeat(np.arange(len(fps), dtype=np.int64), sizes)
+    order = np.lexsort((clips, keys))
+    keys, clips = keys[order], clips[order]
+    starts = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1]])
+    counts = np.diff(np.r_[starts, keys.size])
+
+    pair_codes = []
+    n_clips = np.int64(len(fps))
+    for size in np.unique(counts[(counts >= 2) & (counts <= max_clips_per_key)]):
+        # All groups of this size at once: rows of clip indices, ascending in each row.
+        group_starts = starts[counts == size]
+        members = clips[group_starts[:, None] + np.arange(size)]
+        left, right = np.triu_indices(int(size), k=1)
+        pair_codes.append((members[:, left] * n_clips + members[:, right]).ravel())
+    if not pair_codes:
+        return []
+    codes, shared = np.unique(np.concatenate(pair_codes), return_counts=True)
+    candidates = codes[shared >= min_shared_keys]
+
+    found = []
+    for code in candidates.tolist():
+        i, j = divmod(code, int(n_clips))
+        sim = fingerprint_similarity(
+            fps[i], fps[j], max_offset_frames=max_offset_frames, min_overlap_frames=min_overlap_frames
+        )
+        if sim >= min_similarity:
+            found.append((i, j, sim))
+    return found
+
+
+# ---------------------------------------------------------------------------------------
+# Effective bandwidth
+# ---------------------------------------------------------------------------------------
+
+DEFAULT_REFERENCE_BAND_HZ = (300.0, 3400.0)  # the telephone band, present in any speech channel
+DEFAULT_DROP_DB = 50.0
+DEFAULT_SMOOTHING_HZ = 300.0
+_WELCH_SEGMENT_S = 0.032
+
+
+def long_term_psd(samples: np.ndarray, *, sample_rate: int) -> tuple[np.ndarray, np.ndarray]:
+    """Welch power spectral density of a clip (32 ms Hann segments, half overlap).
+
+    The segment length in samples is the power of two nearest to 32 ms, so PSDs of
+    blocks or files at one sample rate share their frequency grid and can be averaged
+    (weighted by duration) before :func:`bandwidth_from_psd`.
+
+    Parameters
+    ----------
+    samples : np.ndarray
+        Mono waveform.
+    sample_rate : int
+        Sample rate in Hz.
+
+    Returns
+    -------
+    (np.ndarray, np.ndarray)
+        Frequencies in Hz and the PSD (from ``scipy.signal.welch``). Both are empty
+        when the clip is shorter than one segment.
+
+    Examples
+    --------
+    >>> freqs, psd = long_term_psd(np.ones(16000), sample_rate=16000)
+    >>> freqs.size, float(freqs[1])
+    (257, 31.25)
+    """
+    _check_sample_rate(sample_rate)
+    x = _mono_float(samples)
+    segment = 1 << max(4, round(np.log2(_WELCH_SEGMENT_S * sample_rate)))
+    if x.size < segment:
+        return np.zeros(0), np.zeros(0)
+    return scipy.signal.welch(x, fs=sample_rate, window="hann", nperseg=segment, detrend=False)
+
+
+def bandwidth_from_psd(
+    freqs: np.ndarray,
+    psd: np.ndarray,
+    *,
+    drop_db: float = DEFAULT_DROP_DB,
+    reference_band_hz: tuple[float, float] = DEFAULT_REFERENCE_BAND_HZ,
+    smoothing_hz: float = DEFAULT_SMOOTHING_HZ,
+) -> float:
+    """Highest frequency where a long-term spectrum is still within ``drop_db`` of speech.
+
+    The reference level is the median level (dB) of the PSD inside
+    ``reference_band_hz``. The level curve is median-filtered over ``smoothing_hz`` so
+    isolated bins (a whistle, a hum harmonic, a single noisy bin) neither extend nor
+    cut the band, and the result is the highest frequency whose smoothed level is at
+    least ``reference - drop_db``. A resampler's or codec's low-pass lies 60 dB or more
+    below the passband, while the speech spectrum at 8 kHz sits roughly 10 to 30 dB
+    below the band median (long-term speech spectra; common practice, no source for
+    the exact margin), so 50 dB separates the two.
+
+    Parameters
+    ----------
+    freqs : np.ndarray
+        Increasing, evenly spaced frequencies in Hz starting at 0 (as from
+        :func:`long_term_psd` or ``scipy.signal.welch``).
+    psd : np.ndarray
+        Power at ``freqs``, any linear unit.
+    drop_db : float
+        How far below the reference a frequency may be and still count as in band.
+    reference_band_hz : (float, float)
+        Band whose median level is the reference.
+    smoothing_hz : float
+        Width of the median filter.
+
+    Returns
+    -------
+    float
+        Bandwidth in Hz; NaN when the PSD is empty or silent in the reference band.
+
+    Examples
+    --------
+    >>> freqs = np.linspace(0, 8000, 257)
+    >>> round(bandwidth_from_psd(freqs, np.where(freqs < 4000, 1.0, 1e-9)))
+    3969
+    """
+    f = np.asarray(freqs, dtype=np.float64)
+    p = np.asarray(psd, dtype=np.float64)
+    if f.shape != p.shape or f.ndim != 1:
+        raise ParameterError(f"freqs and psd must be 1-D of one length, got {f.shape} and {p.shape}")
+    if not drop_db > 0:
+        raise ParameterError(f"drop_db={drop_db!r} must be > 0")
+    low, high = reference_band_hz
+    if not 0 <= low < high:
+        raise ParameterError(f"reference_band_hz={reference_band_hz!r} must be (low, high) with 0 <= low < high")
+    if not smoothing_hz >= 0:
+        raise ParameterError(f"smoothing_hz={smoothing_hz!r} must be >= 0")
+    if f.size < 2:
+        return float("nan")
+    in_ref = (f >= low) & (f <= high)
+    if not in_ref.any():
+        raise ParameterError(f"reference_band_hz={reference_band_hz!r} holds no frequency of freqs")
+    tiny = np.finfo(np.float64).tiny
+    level_db = 10.0 * np.log10(np.maximum(p, tiny))
+    reference = float(np.median(level_db[in_ref]))
+    if not np.any(p[in_ref] > 0):
+        return float("nan")
+    width = int(round(smoothing_hz / (f[1] - f[0])))
+    width += 1 - width % 2  # medfilt needs an odd length
+    if width > 1:
+        level_db = scipy.signal.medfilt(level_db, width)
+    above = np.flatnonzero(level_db >= reference - drop_db)
+    return float(f[above[-1]]) if above.size else float("nan")
+
+
+def effective_bandwidth_hz(
+    samples: np.ndarray,
+    *,
+    sample_rate: int,
+    drop_db: float = DEFAULT_DROP_DB,
+    reference_band_hz: tuple[float, float] = DEFAULT_REFERENCE_BAND_HZ,
+    smoothing_hz: float = DEFAULT_SMOOTHING_HZ,
+) -> float:
+    """Effective audio bandwidth of a clip: where its long-term spectrum falls off.
+
+    :func:`long_term_psd` followed by :func:`bandwidth_from_psd`. Telephone audio
+    upsampled to 16 kHz comes out near 4 kHz; full-band audio near ``sample_rate / 2``.
+
+    Parameters
+    ----------
+    samples : np.ndarray
+        Mono waveform.
+    sample_rate : int
+        Sample rate in Hz.
+    drop_db, reference_band_hz, smoothing_hz
+        See :func:`bandwidth_from_psd`.
+
+    Returns
+    -------
+    float
+        Bandwidth in Hz; NaN for clips shorter than 32 ms or silent.
+
+    Examples
+    --------
+    >>> noise = np.random.default_rng(0).normal(size=16000)
+    >>> effective_bandwidth_hz(noise, sample_rate=16000) > 7500
+    True
+    """
+    freqs, psd = long_term_psd(samples, sample_rate=sample_rate)
+    if freqs.size == 0:
+        return float("nan")
+    return bandwidth_from_psd(
+        freqs, psd, drop_db=drop_db, reference_band_hz=reference_band_hz, smoothing_hz=smoothing_hz
+    )
+
+
+# ---------------------------------------------------------------------------------------
+# Robust z-scores
+# ---------------------------------------------------------------------------------------
+
+# Iglewicz and Hoaglin (1993) recommend labelling |modified z| > 3.5 as potential outliers.
+OUTLIER_ABS_Z = 3.5
+_MAD_TO_Z = 0.6745  # the 0.75 quantile of the standard normal, as in Iglewicz and Hoaglin
+_MEAN_AD_TO_Z = 1.253314  # sqrt(pi/2): mean absolute deviation to sigma for a normal
+
+
+def _modified_z(x: np.ndarray, ref: np.ndarray) -> np.ndarray:
+    med = np.median(ref)
+    dev = x - med
+    mad = np.median(np.abs(ref - med))
+    if mad > 0:
+        return _MAD_TO_Z * dev / mad
+    mean_ad = np.mean(np.abs(ref - med))
+    if mean_ad > 0:
+        return dev / (_MEAN_AD_TO_Z * mean_ad)
+    return np.zeros_like(dev)  # every reference value equals the median, and so does x
+
+
+def robust_z_scores(values: np.ndarray, groups: np.ndarray, *, min_group_size: int) -> np.ndarray:
+    """Per-group modified z-scores, ``0.6745 * (x - median) / MAD``.
+
+    The modified z-score of B. Iglewicz and D. C. Hoaglin, "How to Detect and Handle
+    Outliers", ASQC Quality Press, 1993, who suggest |z| > 3.5 (``OUTLIER_ABS_Z``) as
+    the mark of a potential outlier. Median and MAD (median absolute deviation from
+    the median) are taken within each group, so one speaker's fast or slow speech is
+    judged against that speaker; groups with fewer than ``min_group_size`` finite
+    values are scored against all finite values instead.
+
+    When the MAD is 0 (more than half the reference values are equal) the score falls
+    back to ``(x - median) / (1.253314 * mean absolute deviation)``, the same scale for
+    normal data (a common convention, given from memory, not from the book); when that
+    is 0 too, every reference value equals the median and the scores are 0. The result
+    is therefore always finite for finite input.
+
+    Parameters
+    ----------
+    values : np.ndarray
+        One number per item, such as phones per second; NaN marks a missing value,
+        which gets a NaN score and counts in no statistic.
+    groups : np.ndarray
+        One hashable label per item, such as a speaker; None or NaN labels are scored
+        against the whole set.
+    min_group_size : int
+        Smallest group (finite values) with its own median and MAD; >= 2.
+
+    Returns
+    -------
+    np.ndarray
+        float64 scores, same length as ``values``.
+
+    Examples
+    --------
+    >>> robust_z_scores(np.array([10.0, 11, 12, 13, 40]), np.zeros(5), min_group_size=3)
+    array([-1.349 , -0.6745,  0.    ,  0.6745, 18.886 ])
+    """
+    import pandas as pd  # only for factorize: hashable labels of any type, None included
+
+    x = np.asarray(values, dtype=np.float64)
+    if x.ndim != 1:
+        raise ParameterError(f"values must be 1-D, got shape {x.shape}")
+    labels = np.asarray(groups, dtype=object) if not isinstance(groups, np.ndarray) else groups
+    if labels.shape != x.shape:
+        raise ParameterError(f"groups must have the shape of values {x.shape}, got {labels.shape}")
+    if isinstance(min_group_size, bool) or not isinstance(min_group_size, (int, np.integer)) or min_group_size < 2:
+        raise ParameterError(f"min_group_size={min_group_size!r} must be an integer >= 2")
+    if np.isinf(x).any():
+        raise ParameterError("values contains infinite entries (use NaN for missing)")
+
+    out = np.full(x.shape, np.nan)
+    finite = ~np.isnan(x)
+    if not finite.any():
+        return out
+    codes, _ = pd.factorize(labels, use_na_sentinel=True)
+    codes = np.asarray(codes)
+    sizes = np.bincount(codes[finite & (codes >= 0)], minlength=max(int(codes.max()) + 1, 1))
+    own = finite & (codes >= 0) & (sizes[np.maximum(codes, 0)] >= min_group_size)
+
+    # Sort once and cut into groups: a mask per group would cost groups x items.
+    index = np.flatnonzero(own)
+    index = index[np.argsort(codes[index], kind="stable")]
+    cuts = np.flatnonzero(np.diff(codes[index])) + 1
+    for members in np.split(index, cuts):
+        if members.size:
+            out[members] = _modified_z(x[members], x[members])
+    rest = finite & ~own
+    if rest.any():
+        out[rest] = _modified_z(x[rest], x[finite])
+    return out
