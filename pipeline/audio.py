@@ -1,0 +1,483 @@
+"""Audio stage: decode, downmix, resample, trim to speech, cut long recordings,
+normalise loudness, gate on quality, and write 16-bit clips.
+
+Each accepted ingest row goes through ``condition_file`` (one process per file):
+
+1. one streaming pass over the source (``pipeline.decode``): soundfile blocks are
+   checked for NaN/inf, counted for clipping and DC, fed to a long-term PSD for the
+   bandwidth, downmixed and resampled to the output rate into a spool file on disk,
+   and resampled to 16 kHz for webrtcvad (``pipeline.vad``);
+2. the frame decisions are smoothed and trimmed; a trimmed span longer than
+   ``audio.max_clip_s`` is cut at pauses (``pipeline.segment``) or, when the file has
+   a transcript, rejected;
+3. each clip is read back from the spool, measured (BS.1770-4 loudness, peak, WADA
+   SNR), gained to the target under the peak ceiling, rounded to 16 bits, measured
+   again and written atomically.
+
+Memory therefore depends on the longest clip, not on the length of the recording.
+Raw files are only ever opened for reading.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import math
+import os
+from collections import Counter
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from pipeline.cache import FileCache, cache_key
+from pipeline.config import AudioConfig
+from pipeline.decode import (
+    PCM16_SCALE,
+    Spool,
+    StreamResampler,
+    check_channel,
+    downmix,
+    float_to_pcm16,
+    read_blocks,
+)
+from pipeline.errors import ParameterError
+from pipeline.fsio import atomic_output, sha256_file
+from pipeline.manifest import table_from_rows
+from pipeline.parallel import map_ordered
+from pipeline.segment import segment_id, split_frames
+from pipeline.stage import StageContext, StageResult, reject
+from pipeline.vad import (
+    ANALYSIS_SAMPLE_RATE,
+    VoiceActivityStream,
+    ms_to_frames,
+    smooth_decisions,
+    speech_seconds,
+    trim_frames,
+)
+
+NAME = "audio"
+INPUTS = ("ingest",)
+CONFIG_SECTIONS = ("audio",)
+CODE_VERSION = "1"
+
+OUTPUT_FORMATS = {"flac": "FLAC", "wav": "WAV"}
+AUDIO_DIR = "audio"
+TMP_DIR = "tmp"
+
+
+@dataclass(frozen=True)
+class AudioJob:
+    """Everything one worker needs for one source file (small and picklable)."""
+
+    row: dict[str, Any]  # the ingest row
+    source: str  # absolute path of the raw file (read only)
+    out: str  # absolute OUT folder; clips go to OUT/audio/<speaker>/
+    tmp: str  # folder for the spool file
+    config: AudioConfig
+
+
+@dataclass
+class FileOutcome:
+    """What one source turned into: manifest rows, reject rows, and the files written.
+
+    ``written`` maps each row's ``audio_path`` to ``[size, mtime_ns, inode]`` of the
+    file, so a cache hit can confirm the file is still the one this result wrote.
+    """
+
+    rows: list[dict[str, Any]] = field(default_factory=list)
+    rejects: list[dict[str, Any]] = field(default_factory=list)
+    written: dict[str, list[int]] = field(default_factory=dict)
+
+    def to_json(self) -> dict[str, Any]:
+        return asdict(self)
+
+    @classmethod
+    def from_json(cls, data: dict[str, Any]) -> FileOutcome:
+        return cls(rows=list(data["rows"]), rejects=list(data["rejects"]), written=dict(data["written"]))
+
+
+class LongTermPsd:
+    """Welch PSD of a stream, block by block, equal to ``quality.long_term_psd`` of
+    the whole signal.
+
+    Each block is joined to the unused tail of the previous one and only whole Welch
+    segments (half overlap, as ``long_term_psd`` uses) are taken, so every segment of
+    the full signal is counted exactly once; the per-block PSDs are averaged weighted
+    by their segment counts.
+    """
+
+    def __init__(self, *, sample_rate: int) -> None:
+        self.sample_rate = sample_rate
+        self._carry = np.zeros(0, dtype=np.float32)
+        self._sum: np.ndarray | None = None
+        self._freqs: np.ndarray | None = None
+        self._segments = 0
+
+    def push(self, samples: np.ndarray) -> None:
+        from pipeline.quality import long_term_psd
+
+        data = np.concatenate([self._carry, np.asarray(samples, dtype=np.float32)])
+        freqs, psd = long_term_psd(data, sample_rate=self.sample_rate)
+        if freqs.size == 0:
+            self._carry = data
+            return
+        segment = 2 * (freqs.size - 1)
+        hop = segment // 2
+        count = (len(data) - segment) // hop + 1
+        self._sum = psd * count if self._sum is None else self._sum + psd * count
+        self._freqs = freqs
+        self._segments += count
+        self._carry = data[count * hop:].copy()
+
+    def bandwidth_hz(self) -> float | None:
+        from pipeline.quality import bandwidth_from_psd
+
+        if self._sum is None or self._freqs is None:
+            return None
+        value = bandwidth_from_psd(self._freqs, self._sum / self._segments)
+        return value if math.isfinite(value) else None
+
+
+@dataclass
+class SourceScan:
+    """Results of the streaming pass over one source."""
+
+    sample_rate: int
+    frames: int = 0
+    clipped: int = 0
+    counted: int = 0
+    dc_sum: float = 0.0
+    non_finite_at: int | None = None
+    out_samples: int = 0
+    decisions: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=bool))
+    energy_db: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    bandwidth_hz: float | None = None
+
+
+def scan_source(path: str, *, cfg: AudioConfig, spool: Spool, sample_rate: int) -> SourceScan:
+    """Decode ``path`` once, block by block, filling ``spool`` with the output-rate mono.
+
+    Stops at the first block holding a NaN or infinite sample (``non_finite_at`` is
+    then the frame index of the first one).
+    """
+    scan = SourceScan(sample_rate=sample_rate)
+    out_rs = StreamResampler(in_rate=sample_rate, out_rate=cfg.sample_rate, quality=cfg.resample_quality)
+    vad_rs = (None if cfg.sample_rate == ANALYSIS_SAMPLE_RATE else
+              StreamResampler(in_rate=sample_rate, out_rate=ANALYSIS_SAMPLE_RATE, quality=cfg.resample_quality))
+    vad = VoiceActivityStream(sample_rate=ANALYSIS_SAMPLE_RATE, frame_ms=cfg.vad_frame_ms,
+                              aggressiveness=cfg.vad_aggressiveness)
+    psd = LongTermPsd(sample_rate=sample_rate)
+
+    def feed(mono: np.ndarray, *, last: bool) -> None:
+        resampled = out_rs.process(mono, last=last)
+        spool.append(resampled)
+        scan.out_samples += len(resampled)
+        vad.push(resampled if vad_rs is None else vad_rs.process(mono, last=last))
+
+    for block in read_blocks(path):
+        finite = np.isfinite(block)
+        if not finite.all():
+            scan.non_finite_at = scan.frames + int(np.flatnonzero(~finite.all(axis=1))[0])
+            return scan
+        used = block if cfg.channel == "average" else block[:, int(cfg.channel)]
+        scan.clipped += int(np.count_nonzero(np.abs(used) >= cfg.clip_level))
+        scan.counted += used.size
+        mono = downmix(block, channel=cfg.channel)
+        scan.dc_sum += float(mono.sum(dtype=np.float64))
+        scan.frames += len(mono)
+        psd.push(mono)
+        feed(mono, last=False)
+    feed(np.zeros(0, dtype=np.float32), last=True)
+    analysis = vad.result()
+    scan.decisions, scan.energy_db = analysis.decisions, analysis.energy_db
+    scan.bandwidth_hz = psd.bandwidth_hz()
+    return scan
+
+
+def _frame_to_sample(frame: int, *, frame_ms: int, sample_rate: int) -> int:
+    return (frame * frame_ms * sample_rate + 500) // 1000
+
+
+def _finite_or_none(value: float) -> float | None:
+    return float(value) if math.isfinite(value) else None
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}{'' if n == 1 else 's'}"
+
+
+def condition_file(job: AudioJob) -> FileOutcome:
+    """Turn one ingest row into clips and/or rejects; never raises for a bad file.
+
+    Any exception (an unreadable or corrupt file, a decoder error) becomes an
+    ``undecodable`` reject carrying the error text.
+    """
+    rel = job.row["source_path"]
+    try:
+        return _condition(job)
+    except Exception as exc:  # one bad file must never stop the run
+        return FileOutcome(rejects=[reject(NAME, rel, "undecodable",
+                                           f"{rel}: could not be decoded: {type(exc).__name__}: {exc}")])
+
+
+def _condition(job: AudioJob) -> FileOutcome:
+    import soundfile as sf
+
+    cfg, row = job.config, job.row
+    rel, source_id = row["source_path"], row["source_id"]
+    info = sf.info(job.source)
+    rate, channels = int(info.samplerate), int(info.channels)
+    try:
+        check_channel(channel=cfg.channel, channels=channels)
+    except ParameterError:
+        return FileOutcome(rejects=[reject(NAME, rel, "undecodable",
+                                           f"{rel}: audio.channel is {cfg.channel} but the file has "
+                                           f"{_plural(channels, 'channel')}; expected \"average\" or an "
+                                           f"index below {channels}")])
+    if rate < cfg.sample_rate and cfg.upsampled == "reject":
+        return FileOutcome(rejects=[reject(NAME, rel, "upsampled",
+                                           f"{rel}: sample rate {rate} Hz is below audio.sample_rate "
+                                           f"({cfg.sample_rate} Hz) and audio.upsampled is \"reject\"")])
+    with Spool(folder=job.tmp, label=source_id) as spool:
+        scan = scan_source(job.source, cfg=cfg, spool=spool, sample_rate=rate)
+        return _cut_and_write(job, scan, spool)
+
+
+def _cut_and_write(job: AudioJob, scan: SourceScan, spool: Spool) -> FileOutcome:
+    cfg, row = job.config, job.row
+    rel, source_id = row["source_path"], row["source_id"]
+    if scan.non_finite_at is not None:
+        at = scan.non_finite_at
+        return FileOutcome(rejects=[reject(NAME, rel, "non_finite_samples",
+                                           f"{rel}: frame {at} (at {at / scan.sample_rate:.3f} s) holds a NaN "
+                                           "or infinite sample; expected finite samples")])
+    clipped_fraction = scan.clipped / scan.counted if scan.counted else 0.0
+    if clipped_fraction > cfg.max_clipped_fraction:
+        return FileOutcome(rejects=[reject(NAME, rel, "clipped",
+                                           f"{rel}: {100 * clipped_fraction:.3f}% of samples reach |x| >= "
+                                           f"{cfg.clip_level} (audio.clip_level); at most "
+                                           f"{100 * cfg.max_clipped_fraction:.3f}% allowed "
+                                           "(audio.max_clipped_fraction)")])
+    frame_ms = cfg.vad_frame_ms
+    speech = smooth_decisions(scan.decisions, frame_ms=frame_ms, min_speech_ms=cfg.min_speech_ms,
+                              min_pause_ms=cfg.min_pause_ms, hangover_ms=cfg.hangover_ms)
+    n_frames = len(speech)
+    ratio = float(np.count_nonzero(speech)) / n_frames if n_frames else 0.0
+    region = trim_frames(speech, pad_frames=ms_to_frames(cfg.pad_ms, frame_ms=frame_ms))
+    if region is None or ratio < cfg.min_speech_ratio:
+        return FileOutcome(rejects=[reject(NAME, rel, "no_speech",
+                                           f"{rel}: voice activity in {100 * ratio:.1f}% of "
+                                           f"{_plural(n_frames, f'{frame_ms} ms frame')}; at least "
+                                           f"{100 * cfg.min_speech_ratio:.1f}% expected (audio.min_speech_ratio)")])
+
+    rate = cfg.sample_rate
+
+    def to_samples(span: tuple[int, int]) -> tuple[int, int]:
+        start = _frame_to_sample(span[0], frame_ms=frame_ms, sample_rate=rate)
+        stop = (scan.out_samples if span[1] >= n_frames else
+                min(scan.out_samples, _frame_to_sample(span[1], frame_ms=frame_ms, sample_rate=rate)))
+        return start, stop
+
+    r0, r1 = to_samples(region)
+    transcribed = row["transcript"] is not None
+    if (r1 - r0) / rate <= cfg.max_clip_s:
+        plan = [(region, source_id)]
+    elif transcribed:
+        return FileOutcome(rejects=[reject(NAME, rel, "too_long_transcribed",
+                                           f"{rel}: speech spans {(r1 - r0) / rate:.1f} s, longer than "
+                                           f"audio.max_clip_s ({cfg.max_clip_s} s); a transcribed file is "
+                                           "not cut, as its transcript cannot be split with it")])
+    else:
+        spans = split_frames(speech, scan.energy_db, frame_ms=frame_ms, segment_min_s=cfg.segment_min_s,
+                             segment_max_s=cfg.segment_max_s, pad_ms=cfg.pad_ms,
+                             start=region[0], stop=region[1])
+        plan = [(span, segment_id(source_id, start_ms=span[0] * frame_ms)) for span in spans]
+
+    shared = {
+        "source_id": source_id,
+        "source_path": rel,
+        "speaker": row["speaker"],
+        "sample_rate": rate,
+        "source_sample_rate": scan.sample_rate,
+        "upsampled_from": scan.sample_rate if scan.sample_rate < rate else None,
+        "clipped_fraction": clipped_fraction,
+        "dc_offset": scan.dc_sum / scan.frames if scan.frames else 0.0,
+        "bandwidth_hz": scan.bandwidth_hz,
+        "transcribed": transcribed,
+    }
+    outcome = FileOutcome()
+    for index, (span, clip_id) in enumerate(plan):
+        start, stop = to_samples(span)
+        clip = spool.read(start=start, stop=stop)
+        clip_ratio = ratio if len(plan) == 1 else float(np.count_nonzero(speech[span[0]:span[1]])) / (span[1] - span[0])
+        placed = {
+            **shared,
+            "clip_id": clip_id,
+            "segment_index": index,
+            "source_start_s": start / rate,
+            "source_end_s": stop / rate,
+            "speech_s": min(speech_seconds(speech, frame_ms=frame_ms, start=span[0], stop=span[1]),
+                            len(clip) / rate),
+            "speech_ratio": clip_ratio,
+        }
+        made = _write_clip(job, clip, placed)
+        if "reason" in made:
+            outcome.rejects.append(made)
+        else:
+            outcome.rows.append(made["row"])
+            outcome.written[made["row"]["audio_path"]] = made["stat"]
+    return outcome
+
+
+def _write_clip(job: AudioJob, clip: np.ndarray, placed: dict[str, Any]) -> dict[str, Any]:
+    """Gate, normalise, encode and write one clip; a reject row or {"row", "stat"}."""
+    import soundfile as sf
+
+    from pipeline import loudness, quality
+
+    cfg = job.config
+    rate = cfg.sample_rate
+    rel, clip_id = placed["source_path"], placed["clip_id"]
+    duration = len(clip) / rate
+    where = f"{rel}: clip {clip_id}" if clip_id != placed["source_id"] else rel
+    if duration < cfg.min_duration_s:
+        return reject(NAME, rel, "too_short", f"{where} lasts {duration:.2f} s after trimming; at least "
+                      f"{cfg.min_duration_s} s expected (audio.min_duration_s)", clip_id)
+    if placed["speech_ratio"] < cfg.min_speech_ratio:
+        return reject(NAME, rel, "no_speech", f"{where}: voice activity in {100 * placed['speech_ratio']:.1f}% "
+                      f"of its frames; at least {100 * cfg.min_speech_ratio:.1f}% expected "
+                      "(audio.min_speech_ratio)", clip_id)
+
+    def peak_of(samples: np.ndarray) -> float:
+        if cfg.true_peak:
+            return loudness.true_peak_dbfs(samples, sample_rate=rate)
+        return loudness.sample_peak_dbfs(samples)
+
+    loudness_in = loudness.integrated_loudness(clip, sample_rate=rate)
+    if not math.isfinite(loudness_in):
+        return reject(NAME, rel, "loudness_unmeasurable",
+                      f"{where}: integrated loudness (ITU-R BS.1770-4) is not measurable: every 400 ms "
+                      "block is below the -70 LUFS absolute gate; expected audible sound", clip_id)
+    gain_db, shortfall_db = loudness.normalisation_gain(
+        loudness_lufs=loudness_in, peak_dbfs=peak_of(clip), target_lufs=cfg.target_lufs,
+        ceiling_dbfs=cfg.peak_ceiling_dbfs)
+    # A sample-peak ceiling is also enforced on the integers, which rounding could
+    # otherwise lift by half a step; a true-peak ceiling only needs full scale kept.
+    limit = 1.0 if cfg.true_peak else min(1.0, 10 ** (cfg.peak_ceiling_dbfs / 20))
+    pcm = float_to_pcm16(clip.astype(np.float64) * 10 ** (gain_db / 20), peak_limit=limit)
+    written = pcm.astype(np.float32) / np.float32(PCM16_SCALE)
+    loudness_out = loudness.integrated_loudness(written, sample_rate=rate)
+
+    audio_path = f"{AUDIO_DIR}/{placed['speaker']}/{clip_id}.{cfg.format}"
+    target = Path(job.out) / audio_path
+    with atomic_output(target) as tmp:
+        sf.write(tmp, pcm, rate, format=OUTPUT_FORMATS[cfg.format], subtype="PCM_16")
+    st = os.stat(target)
+    row = {
+        **placed,
+        "audio_path": audio_path,
+        "audio_sha256": sha256_file(target),
+        "num_samples": len(pcm),
+        "duration_s": len(pcm) / rate,
+        "loudness_in_lufs": loudness_in,
+        "loudness_lufs": loudness_out if math.isfinite(loudness_out) else loudness_in + gain_db,
+        "gain_db": gain_db,
+        "peak_limited_db": max(0.0, shortfall_db),
+        "peak_dbfs": peak_of(written),
+        "snr_db": _finite_or_none(quality.wada_snr_db(clip)),
+        "fingerprint": quality.encode_fingerprint(quality.fingerprint(written, sample_rate=rate)),
+    }
+    return {"row": row, "stat": [st.st_size, st.st_mtime_ns, st.st_ino]}
+
+
+def _outputs_intact(out: Path, outcome: dict[str, Any]) -> bool:
+    """Whether every file a cached result wrote is still there, untouched since."""
+    try:
+        for rel, (size, mtime_ns, inode) in outcome["written"].items():
+            st = os.stat(out / rel)
+            if (st.st_size, st.st_mtime_ns, st.st_ino) != (size, mtime_ns, inode):
+                return False
+    except (OSError, KeyError, TypeError, ValueError):
+        return False
+    return True
+
+
+def remove_orphans(folder: Path, keep: set[str], *, base: Path) -> int:
+    """Delete files under ``folder`` whose path relative to ``base`` is not in ``keep``,
+    then empty folders; returns how many files went."""
+    if not folder.is_dir():
+        return 0
+    removed = 0
+    for path in sorted(folder.rglob("*"), reverse=True):
+        if path.is_dir():
+            with contextlib.suppress(OSError):
+                path.rmdir()  # only succeeds when empty
+        elif path.relative_to(base).as_posix() not in keep:
+            with contextlib.suppress(FileNotFoundError):
+                path.unlink()
+                removed += 1
+    return removed
+
+
+def _cache_key(row: dict[str, Any], section: dict[str, Any]) -> str:
+    # source_id and source_path are in the key because they are copied into the rows.
+    return cache_key("audio", row["sha256"], section, CODE_VERSION, row["source_id"], row["source_path"],
+                     row["speaker"], row["transcript"] is not None)
+
+
+def run(ctx: StageContext) -> StageResult:
+    cfg = ctx.config.audio
+    out = Path(os.path.abspath(ctx.out))
+    raw = Path(os.path.abspath(ctx.raw))
+    sources = ctx.inputs["ingest"].to_pylist()
+    cache = FileCache(ctx.cache_dir, NAME, enabled=ctx.use_cache)
+    section = ctx.config.section(NAME)
+
+    keys = [_cache_key(row, section) for row in sources]
+    outcomes: list[FileOutcome | None] = []
+    todo: list[int] = []
+    for i, key in enumerate(keys):
+        hit = cache.get(key)
+        if hit is not None and _outputs_intact(out, hit):
+            outcomes.append(FileOutcome.from_json(hit))
+        else:
+            outcomes.append(None)
+            todo.append(i)
+    jobs = [AudioJob(sources[i], str(raw / sources[i]["source_path"]), str(out), str(out / TMP_DIR), cfg)
+            for i in todo]
+    fresh = map_ordered(condition_file, jobs, workers=ctx.workers, scheduler=ctx.scheduler,
+                        desc="audio", progress=ctx.progress)
+    for i, outcome in zip(todo, fresh, strict=True):
+        outcomes[i] = outcome
+        # A decoder error may be passing (a file still being copied): not remembered.
+        if not any(r["reason"] == "undecodable" for r in outcome.rejects):
+            cache.put(keys[i], outcome.to_json())
+    ctx.log.info("audio: %d files processed, %d reused from cache", len(todo), len(sources) - len(todo))
+
+    done = [o for o in outcomes if o is not None]
+    rows = sorted((r for o in done for r in o.rows), key=lambda r: r["clip_id"])
+    rejects = [r for o in done for r in o.rejects]
+    removed = remove_orphans(out / AUDIO_DIR, {r["audio_path"] for r in rows}, base=out)
+    if removed:
+        ctx.log.info("audio: removed %s no current row refers to", _plural(removed, "clip file"))
+    with contextlib.suppress(OSError):
+        (out / TMP_DIR).rmdir()
+
+    by_source = Counter(r["source_id"] for r in rows)
+    summary = {
+        "sources": len(sources),
+        "sources_processed": len(todo),
+        "sources_reused": len(sources) - len(todo),
+        "sources_with_clips": len(by_source),
+        "sources_segmented": len({r["source_id"] for r in rows if r["clip_id"] != r["source_id"]}),
+        "clips": len(rows),
+        "hours": sum(r["duration_s"] for r in rows) / 3600,
+        "upsampled_sources": len({r["source_id"] for r in rows if r["upsampled_from"] is not None}),
+        "peak_limited_clips": sum(1 for r in rows if r["peak_limited_db"] > 0.0),
+        "rejects": len(rejects),
+        "rejects_by_reason": dict(sorted(Counter(r["reason"] for r in rejects).items())),
+        "orphans_removed": removed,
+    }
+    return StageResult(manifests={f"stages/{NAME}.parquet": (NAME, table_from_rows(NAME, rows))},
+                       rejects=rejects, summary=summary)

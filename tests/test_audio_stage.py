@@ -1,0 +1,310 @@
+"""The audio stage end to end on a small generated raw folder.
+
+Speech is synthesised with espeak-ng; every other fault (NaN, clipping, silence, a
+long transcribed take, a long untranscribed session) is made from it with numpy.
+Written clips are re-read with soundfile and re-measured with pyloudnorm."""
+
+from __future__ import annotations
+
+import hashlib
+import logging
+import shutil
+import subprocess
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyloudnorm
+import pytest
+import scipy.signal
+import soundfile as sf
+import soxr
+
+from pipeline import audio
+from pipeline.config import build_config
+from pipeline.manifest import table_from_rows, validate_table
+from pipeline.quality import effective_bandwidth_hz, encode_fingerprint, fingerprint
+from pipeline.stage import StageContext
+
+LINES = [
+    "the ferry leaves the harbour at seven and comes back before the evening tide",
+    "nets are mended on the quay while the gulls wait on the warm stones",
+    "a lamp is lit in the tower when the fog rolls in from the open sea",
+    "the baker sends bread to the island every morning on the first boat",
+    "children count the buoys that bob along the channel near the point",
+]
+SPEECH_RATE = 22050  # what espeak-ng writes
+
+
+@pytest.fixture(scope="module")
+def voices(tmp_path_factory: pytest.TempPathFactory) -> list[np.ndarray]:
+    if shutil.which("espeak-ng") is None:
+        pytest.skip("espeak-ng is not installed")
+    folder = tmp_path_factory.mktemp("voices")
+    out = []
+    for i, line in enumerate(LINES):
+        path = folder / f"{i}.wav"
+        subprocess.run(["espeak-ng", "-s", "150", "-w", str(path), line], check=True, capture_output=True)
+        samples, rate = sf.read(path, dtype="float64")
+        assert rate == SPEECH_RATE
+        out.append(samples)
+    return out
+
+
+def at_rate(x: np.ndarray, rate: int) -> np.ndarray:
+    return x if rate == SPEECH_RATE else soxr.resample(x, SPEECH_RATE, rate)
+
+
+def silence(seconds: float, rate: int) -> np.ndarray:
+    return np.zeros(int(seconds * rate))
+
+
+def session(voices: list[np.ndarray], *, seconds: float, rate: int, pauses: list[float]) -> np.ndarray:
+    """Sentences in turn with the given pauses between them, cut or padded to ``seconds``."""
+    parts, total, i = [silence(0.5, rate)], 0.5, 0
+    while total < seconds:
+        voice = at_rate(voices[i % len(voices)], rate)
+        pause = silence(pauses[i % len(pauses)], rate)
+        parts += [voice, pause]
+        total += (len(voice) + len(pause)) / rate
+        i += 1
+    x = np.concatenate(parts)[: int(seconds * rate)]
+    return x
+
+
+@pytest.fixture(scope="module")
+def raw(voices: list[np.ndarray], tmp_path_factory: pytest.TempPathFactory) -> Path:
+    root = tmp_path_factory.mktemp("raw")
+    for speaker in ("ana", "ben", "cara"):
+        (root / speaker).mkdir()
+    a = at_rate(voices[0], 44100)
+    stereo = np.concatenate([silence(1.0, 44100), a, silence(0.8, 44100)])
+    sf.write(root / "ana/stereo44.wav", np.stack([stereo, 0.6 * stereo], axis=1), 44100, subtype="PCM_16")
+    sf.write(root / "ana/take22.flac", np.concatenate([voices[1], silence(0.5, SPEECH_RATE)]), SPEECH_RATE,
+             subtype="PCM_16")
+    (root / "ana/take22.txt").write_text(LINES[1] + "\n", encoding="utf-8")
+    sf.write(root / "ana/phone8k.wav", 0.3 * at_rate(voices[2], 8000), 8000, subtype="PCM_16")
+    broken = at_rate(voices[3], 16000).astype(np.float32)
+    broken[5000] = np.nan
+    sf.write(root / "ben/broken_float.wav", broken, 16000, subtype="FLOAT")
+    sf.write(root / "ben/hot.wav", np.clip(6 * at_rate(voices[4], 16000), -1, 1), 16000, subtype="PCM_16")
+    sf.write(root / "ben/quiet.wav", silence(2.0, 16000), 16000, subtype="PCM_16")
+    sf.write(root / "cara/read25.ogg", session(voices, seconds=25, rate=16000, pauses=[0.3]), 16000)
+    (root / "cara/read25.txt").write_text(" ".join(LINES) + "\n", encoding="utf-8")
+    sf.write(root / "cara/session60.flac", 0.5 * session(voices, seconds=60, rate=48000, pauses=[0.7, 1.6, 0.4, 1.1]),
+             48000, subtype="PCM_24")
+    return root
+
+
+def ingest_table(raw: Path) -> pa.Table:
+    """Ingest rows made here from soundfile.info and hashlib (the contract in
+    schemas/ingest.schema.json), so this test does not depend on the ingest stage."""
+    rows = []
+    for path in sorted(raw.rglob("*")):
+        if path.suffix not in (".wav", ".flac", ".ogg"):
+            continue
+        info = sf.info(path)
+        digest = hashlib.sha256(path.read_bytes()).hexdigest()
+        sidecar = path.with_suffix(".txt")
+        transcript = sidecar.read_text(encoding="utf-8").strip() if sidecar.exists() else None
+        rows.append({
+            "source_id": f"{path.stem.replace('_', '-')}-{digest[:10]}",
+            "source_path": path.relative_to(raw).as_posix(),
+            "speaker": path.parent.name,
+            "format": info.format, "subtype": info.subtype, "channels": info.channels,
+            "sample_rate": info.samplerate, "num_frames": info.frames, "duration_s": info.duration,
+            "size_bytes": path.stat().st_size, "sha256": digest, "transcript": transcript,
+            "transcript_origin": "sidecar" if transcript is not None else None, "metadata_line": None,
+        })
+    table = table_from_rows("ingest", rows)
+    validate_table("ingest", table, where="test ingest")
+    return table
+
+
+def run_stage(raw: Path, out: Path, *, workers: int = 1, overrides: dict[str, Any] | None = None):
+    cfg = build_config({}, overrides=overrides)
+    ctx = StageContext(raw=raw, out=out, config=cfg, inputs={"ingest": ingest_table(raw)}, workers=workers,
+                       log=logging.getLogger("loam.test"))
+    return audio.run(ctx)
+
+
+@pytest.fixture(scope="module")
+def first_run(raw: Path, tmp_path_factory: pytest.TempPathFactory):
+    out = tmp_path_factory.mktemp("out")
+    result = run_stage(raw, out)
+    return out, result
+
+
+def rows_of(result) -> list[dict[str, Any]]:
+    return result.manifests["stages/audio.parquet"][1].to_pylist()
+
+
+def test_rows_and_rejects(first_run):
+    out, result = first_run
+    table = result.manifests["stages/audio.parquet"][1]
+    validate_table("audio", table, where="audio")  # schemas/audio.schema.json
+    validate_table("rejected", result.rejects_table(), where="rejects")
+    rows = rows_of(result)
+    assert [r["clip_id"] for r in rows] == sorted(r["clip_id"] for r in rows)
+    reasons = {r["source_path"]: r["reason"] for r in result.rejects}
+    assert reasons == {
+        "ben/broken_float.wav": "non_finite_samples",
+        "ben/hot.wav": "clipped",
+        "ben/quiet.wav": "no_speech",
+        "cara/read25.ogg": "too_long_transcribed",
+    }
+    assert all(r["stage"] == "audio" and r["detail"].startswith(r["source_path"]) for r in result.rejects)
+    by_path: dict[str, list[dict[str, Any]]] = {}
+    for r in rows:
+        by_path.setdefault(r["source_path"], []).append(r)
+    assert set(by_path) == {"ana/stereo44.wav", "ana/take22.flac", "ana/phone8k.wav", "cara/session60.flac"}
+    single = {p: rs[0] for p, rs in by_path.items() if len(rs) == 1}
+    assert set(single) == {"ana/stereo44.wav", "ana/take22.flac", "ana/phone8k.wav"}
+    for r in single.values():
+        assert r["clip_id"] == r["source_id"] and r["segment_index"] == 0
+    assert single["ana/phone8k.wav"]["upsampled_from"] == 8000
+    assert single["ana/stereo44.wav"]["upsampled_from"] is None
+    assert single["ana/stereo44.wav"]["source_sample_rate"] == 44100
+    assert [r["transcribed"] for r in rows] == [r["source_path"] == "ana/take22.flac" for r in rows]
+    # 1 s of leading silence is trimmed to about the 150 ms pad.
+    assert 0.75 <= single["ana/stereo44.wav"]["source_start_s"] <= 0.9
+    assert all(r["speech_ratio"] >= 0.05 and 0 < r["speech_s"] <= r["duration_s"] for r in rows)
+    assert all(r["clipped_fraction"] == 0 and r["snr_db"] is not None for r in rows)
+    assert (out / "tmp").exists() is False
+    assert not list(out.rglob(".loam-*"))
+
+
+def test_long_session_is_cut_into_ordered_segments(first_run):
+    _, result = first_run
+    segments = [r for r in rows_of(result) if r["source_path"] == "cara/session60.flac"]
+    assert len(segments) >= 4
+    segments.sort(key=lambda r: r["source_start_s"])
+    assert [r["segment_index"] for r in segments] == list(range(len(segments)))
+    cfg = build_config({}).audio
+    for r in segments:
+        assert r["clip_id"] == f"{r['source_id']}_{round(r['source_start_s'] * 1000):08d}"
+        assert r["duration_s"] <= cfg.segment_max_s
+        assert 0 <= r["source_start_s"] < r["source_end_s"] <= 60
+    for left, right in zip(segments, segments[1:], strict=False):
+        assert left["source_end_s"] <= right["source_start_s"]
+
+
+def test_written_files_match_their_rows(first_run, raw: Path):
+    out, result = first_run
+    written = sorted(p.relative_to(out).as_posix() for p in (out / "audio").rglob("*") if p.is_file())
+    rows = rows_of(result)
+    assert written == sorted(r["audio_path"] for r in rows)
+    for r in rows:
+        path = out / r["audio_path"]
+        assert hashlib.sha256(path.read_bytes()).hexdigest() == r["audio_sha256"]  # hashlib reference
+        info = sf.info(path)
+        assert (info.format, info.subtype, info.samplerate, info.channels) == ("FLAC", "PCM_16", 16000, 1)
+        assert info.frames == r["num_samples"]
+        samples, _ = sf.read(path, dtype="float64")
+        # Fingerprint of the clip as written (Haitsma-Kalker, pipeline.quality).
+        assert encode_fingerprint(fingerprint(samples, sample_rate=16000)) == r["fingerprint"]
+
+
+def test_peak_ceiling_and_loudness_of_written_files(first_run):
+    out, result = first_run
+    checked = 0
+    for r in rows_of(result):
+        samples, rate = sf.read(out / r["audio_path"], dtype="float64")
+        peak_db = 20 * np.log10(np.max(np.abs(samples)))
+        assert peak_db <= -1.0 + 1e-9  # audio.peak_ceiling_dbfs default, sample peak
+        assert peak_db == pytest.approx(r["peak_dbfs"], abs=1e-6)
+        if r["peak_limited_db"] == 0:
+            # pyloudnorm 0.2 (BS.1770-4 meter) within 0.2 LU of audio.target_lufs (-23).
+            assert pyloudnorm.Meter(rate).integrated_loudness(samples) == pytest.approx(-23.0, abs=0.2)
+            checked += 1
+        assert r["loudness_lufs"] == pytest.approx(-23.0 - r["peak_limited_db"], abs=0.05)
+    assert checked >= 4
+
+
+def test_source_measures_match_direct_computation(first_run, raw: Path):
+    _, result = first_run
+    row = next(r for r in rows_of(result) if r["source_path"] == "ana/stereo44.wav")
+    block, rate = sf.read(raw / "ana/stereo44.wav", dtype="float32", always_2d=True)
+    mono = block.mean(axis=1)
+    # The blockwise PSD must give what quality.effective_bandwidth_hz gives on the whole file.
+    assert row["bandwidth_hz"] == pytest.approx(effective_bandwidth_hz(mono, sample_rate=rate))
+    assert row["dc_offset"] == pytest.approx(float(np.mean(mono, dtype=np.float64)), abs=1e-7)
+
+
+def test_second_run_reuses_the_cache_and_clears_orphans(first_run, raw: Path, monkeypatch, caplog):
+    out, result = first_run
+    stale = out / "audio" / "ana" / "old-clip-0000000000.flac"
+    stale.write_bytes(b"left over from an earlier configuration")
+
+    def no_decoding(job):
+        raise AssertionError(f"decoded {job.row['source_path']} despite a cache hit")
+
+    monkeypatch.setattr(audio, "condition_file", no_decoding)
+    with caplog.at_level(logging.INFO, logger="loam.test"):
+        again = run_stage(raw, out)
+    assert "0 files processed, 8 reused from cache" in caplog.text
+    assert again.summary["sources_reused"] == 8
+    assert rows_of(again) == rows_of(result)
+    assert again.rejects == result.rejects
+    assert not stale.exists()
+
+
+def test_fresh_run_with_two_workers_gives_identical_bytes(first_run, raw: Path, tmp_path: Path):
+    out, result = first_run
+    other = run_stage(raw, tmp_path / "out2", workers=2)
+    assert rows_of(other) == rows_of(result)
+    assert other.rejects == result.rejects
+    for r in rows_of(other):
+        assert (tmp_path / "out2" / r["audio_path"]).read_bytes() == (out / r["audio_path"]).read_bytes()
+
+
+def job_for(raw: Path, out: Path, rel: str, **overrides: Any) -> audio.AudioJob:
+    table = ingest_table(raw)
+    row = next(r for r in table.to_pylist() if r["source_path"] == rel)
+    cfg = build_config({}, overrides={f"audio.{k}": v for k, v in overrides.items()}).audio
+    return audio.AudioJob(row, str(raw / rel), str(out), str(out / "tmp"), cfg)
+
+
+@pytest.mark.parametrize("true_peak", [False, True])
+def test_peak_limited_clip_stays_under_the_ceiling(raw: Path, tmp_path: Path, true_peak: bool):
+    job = job_for(raw, tmp_path, "ana/stereo44.wav", target_lufs=-8.0, true_peak=true_peak)
+    outcome = audio.condition_file(job)
+    (row,) = outcome.rows
+    assert row["peak_limited_db"] > 1.0
+    samples, rate = sf.read(tmp_path / row["audio_path"], dtype="float64")
+    if true_peak:
+        # BS.1770-4 Annex 2 style check with scipy: 12x oversampling of 16 kHz (192 kHz).
+        peak = np.max(np.abs(scipy.signal.resample_poly(samples, 12, 1)))
+        assert 20 * np.log10(peak) <= -1.0 + 0.05
+    else:
+        assert 20 * np.log10(np.max(np.abs(samples))) <= -1.0
+    # Gain fell short by peak_limited_db: pyloudnorm 0.2 confirms the loudness reached.
+    measured = pyloudnorm.Meter(rate).integrated_loudness(samples)
+    assert measured == pytest.approx(-8.0 - row["peak_limited_db"], abs=0.2)
+
+
+def test_unusable_inputs_become_rejects(raw: Path, tmp_path: Path):
+    garbage = tmp_path / "garbage"
+    garbage.mkdir()
+    (garbage / "ana").mkdir()
+    shutil.copy(raw / "ana/phone8k.wav", garbage / "ana/phone8k.wav")
+    job = job_for(garbage, tmp_path, "ana/phone8k.wav")
+    (garbage / "ana/phone8k.wav").write_bytes(b"RIFF0000WAVEnot really audio")
+    (rej,) = audio.condition_file(job).rejects
+    assert rej["reason"] == "undecodable" and "Error" in rej["detail"]
+
+    (rej,) = audio.condition_file(job_for(raw, tmp_path, "ana/stereo44.wav", channel=3)).rejects
+    assert rej["reason"] == "undecodable" and "audio.channel is 3 but the file has 2 channels" in rej["detail"]
+    (rej,) = audio.condition_file(job_for(raw, tmp_path, "ana/phone8k.wav", upsampled="reject")).rejects
+    assert rej["reason"] == "upsampled" and "8000 Hz" in rej["detail"]
+
+
+def test_picking_one_channel_and_wav_output(raw: Path, tmp_path: Path):
+    outcome = audio.condition_file(job_for(raw, tmp_path, "ana/stereo44.wav", channel=1, format="wav"))
+    (row,) = outcome.rows
+    assert row["audio_path"].endswith(".wav")
+    info = sf.info(tmp_path / row["audio_path"])
+    assert (info.format, info.subtype) == ("WAV", "PCM_16")
+    block, _ = sf.read(raw / "ana/stereo44.wav", dtype="float32", always_2d=True)
+    assert row["dc_offset"] == pytest.approx(float(np.mean(block[:, 1], dtype=np.float64)), abs=1e-7)
