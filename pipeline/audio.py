@@ -158,8 +158,23 @@ class SourceScan:
 def scan_source(path: str, *, cfg: AudioConfig, spool: Spool, sample_rate: int) -> SourceScan:
     """Decode ``path`` once, block by block, filling ``spool`` with the output-rate mono.
 
-    Stops at the first block holding a NaN or infinite sample (``non_finite_at`` is
-    then the frame index of the first one).
+    Parameters
+    ----------
+    path : the source file (opened for reading only).
+    cfg : the audio section (channel, rates, VAD settings, clip level).
+    spool : receives the downmixed stream resampled to ``cfg.sample_rate``.
+    sample_rate : the source's rate in Hz.
+
+    Returns
+    -------
+    SourceScan with the clipping and DC sums, the VAD frames at 16 kHz and the
+    source bandwidth. Decoding stops at the first block holding a NaN or infinite
+    sample; ``non_finite_at`` is then the frame index of the first one.
+
+    Example
+    -------
+    >>> with Spool(folder=tmp) as spool:  # doctest: +SKIP
+    ...     scan = scan_source("take.flac", cfg=cfg, spool=spool, sample_rate=44100)
     """
     scan = SourceScan(sample_rate=sample_rate)
     out_rs = StreamResampler(in_rate=sample_rate, out_rate=cfg.sample_rate, quality=cfg.resample_quality)
@@ -210,8 +225,24 @@ def _plural(n: int, word: str) -> str:
 def condition_file(job: AudioJob) -> FileOutcome:
     """Turn one ingest row into clips and/or rejects; never raises for a bad file.
 
-    Any exception (an unreadable or corrupt file, a decoder error) becomes an
-    ``undecodable`` reject carrying the error text.
+    This is the per-file function the stage maps over its sources (it runs in a
+    worker process). Any exception (an unreadable or corrupt file, a decoder error)
+    becomes an ``undecodable`` reject carrying the error text.
+
+    Parameters
+    ----------
+    job : the ingest row, the absolute source path, OUT, the spool folder, the config.
+
+    Returns
+    -------
+    FileOutcome: audio manifest rows (schemas/audio.schema.json), reject rows
+    (schemas/rejected.schema.json) and the stat of each file written.
+
+    Example
+    -------
+    >>> outcome = condition_file(AudioJob(row, "/raw/ana/take.wav", "/out", "/out/tmp", cfg))  # doctest: +SKIP
+    >>> [r["clip_id"] for r in outcome.rows]  # doctest: +SKIP
+    ['take-0a1b2c3d4e']
     """
     rel = job.row["source_path"]
     try:
@@ -259,6 +290,12 @@ def _cut_and_write(job: AudioJob, scan: SourceScan, spool: Spool) -> FileOutcome
                                            f"{cfg.clip_level} (audio.clip_level); at most "
                                            f"{100 * cfg.max_clipped_fraction:.3f}% allowed "
                                            "(audio.max_clipped_fraction)")])
+    rate = cfg.sample_rate
+    if scan.out_samples / rate < cfg.min_duration_s:
+        # No clip can come out of it, so say so rather than judging its speech.
+        return FileOutcome(rejects=[reject(NAME, rel, "too_short",
+                                           f"{rel} lasts {scan.out_samples / rate:.2f} s; at least "
+                                           f"{cfg.min_duration_s} s expected (audio.min_duration_s)")])
     frame_ms = cfg.vad_frame_ms
     speech = smooth_decisions(scan.decisions, frame_ms=frame_ms, min_speech_ms=cfg.min_speech_ms,
                               min_pause_ms=cfg.min_pause_ms, hangover_ms=cfg.hangover_ms)
@@ -271,7 +308,6 @@ def _cut_and_write(job: AudioJob, scan: SourceScan, spool: Spool) -> FileOutcome
                                            f"{_plural(n_frames, f'{frame_ms} ms frame')}; at least "
                                            f"{100 * cfg.min_speech_ratio:.1f}% expected (audio.min_speech_ratio)")])
 
-    rate = cfg.sample_rate
 
     def to_samples(span: tuple[int, int]) -> tuple[int, int]:
         start = _frame_to_sample(span[0], frame_ms=frame_ms, sample_rate=rate)
@@ -404,8 +440,25 @@ def _outputs_intact(out: Path, outcome: dict[str, Any]) -> bool:
 
 
 def remove_orphans(folder: Path, keep: set[str], *, base: Path) -> int:
-    """Delete files under ``folder`` whose path relative to ``base`` is not in ``keep``,
-    then empty folders; returns how many files went."""
+    """Delete files under ``folder`` whose path relative to ``base`` is not in ``keep``.
+
+    Empty folders left behind go too.
+
+    Parameters
+    ----------
+    folder : the tree to clean (OUT/audio).
+    keep : '/'-separated paths relative to ``base`` that stay.
+    base : the folder ``keep`` is relative to (OUT).
+
+    Returns
+    -------
+    How many files were deleted.
+
+    Example
+    -------
+    >>> remove_orphans(out / "audio", {"audio/ana/take-0a1b2c3d4e.flac"}, base=out)  # doctest: +SKIP
+    0
+    """
     if not folder.is_dir():
         return 0
     removed = 0
@@ -427,6 +480,11 @@ def _cache_key(row: dict[str, Any], section: dict[str, Any]) -> str:
 
 
 def run(ctx: StageContext) -> StageResult:
+    """Condition every ingest row (cached per file), then drop clip files no row names.
+
+    Returns the ``stages/audio.parquet`` table sorted by ``clip_id``, the rejects in
+    source order, and a summary of counts for the report.
+    """
     cfg = ctx.config.audio
     out = Path(os.path.abspath(ctx.out))
     raw = Path(os.path.abspath(ctx.raw))
