@@ -294,8 +294,10 @@ def test_unusable_inputs_become_rejects(raw: Path, tmp_path: Path):
     (rej,) = audio.condition_file(job).rejects
     assert rej["reason"] == "undecodable" and "Error" in rej["detail"]
 
-    sf.write(garbage / "ana/blip.wav", 0.3 * np.sin(np.arange(3200) * 0.3), 16000, subtype="PCM_16")
-    (rej,) = audio.condition_file(job_for(garbage, tmp_path, "ana/blip.wav")).rejects
+    short = tmp_path / "short"
+    (short / "ana").mkdir(parents=True)
+    sf.write(short / "ana/blip.wav", 0.3 * np.sin(np.arange(3200) * 0.3), 16000, subtype="PCM_16")
+    (rej,) = audio.condition_file(job_for(short, tmp_path, "ana/blip.wav")).rejects
     assert rej["reason"] == "too_short" and "0.20 s" in rej["detail"]  # 3200 samples at 16 kHz
 
     (rej,) = audio.condition_file(job_for(raw, tmp_path, "ana/stereo44.wav", channel=3)).rejects
