@@ -190,19 +190,20 @@ def scan_source(path: str, *, cfg: AudioConfig, spool: Spool, sample_rate: int) 
         scan.out_samples += len(resampled)
         vad.push(resampled if vad_rs is None else vad_rs.process(mono, last=last))
 
-    for block in read_blocks(path):
-        finite = np.isfinite(block)
-        if not finite.all():
-            scan.non_finite_at = scan.frames + int(np.flatnonzero(~finite.all(axis=1))[0])
-            return scan
-        used = block if cfg.channel == "average" else block[:, int(cfg.channel)]
-        scan.clipped += int(np.count_nonzero(np.abs(used) >= cfg.clip_level))
-        scan.counted += used.size
-        mono = downmix(block, channel=cfg.channel)
-        scan.dc_sum += float(mono.sum(dtype=np.float64))
-        scan.frames += len(mono)
-        psd.push(mono)
-        feed(mono, last=False)
+    with contextlib.closing(read_blocks(path)) as blocks:  # closes the file on an early return
+        for block in blocks:
+            finite = np.isfinite(block)
+            if not finite.all():
+                scan.non_finite_at = scan.frames + int(np.flatnonzero(~finite.all(axis=1))[0])
+                return scan
+            used = block if cfg.channel == "average" else block[:, int(cfg.channel)]
+            scan.clipped += int(np.count_nonzero(np.abs(used) >= cfg.clip_level))
+            scan.counted += used.size
+            mono = downmix(block, channel=cfg.channel)
+            scan.dc_sum += float(mono.sum(dtype=np.float64))
+            scan.frames += len(mono)
+            psd.push(mono)
+            feed(mono, last=False)
     feed(np.zeros(0, dtype=np.float32), last=True)
     analysis = vad.result()
     scan.decisions, scan.energy_db = analysis.decisions, analysis.energy_db
