@@ -161,13 +161,14 @@ def test_wada_snr_rejects_bad_input() -> None:
 
 
 def test_fingerprint_length_dtype_and_short_input() -> None:
-    # Analytic frame count: at 5000 Hz, frames of 1850 samples every 58 give
-    # 1 + (n - 1850) // 58 frames, and one sub-fingerprint per frame after the first.
+    # Analytic frame count: at 5000 Hz, frames of 1850 samples every 116 (the module's
+    # documented hop, 23.2 ms) give 1 + (n - 1850) // 116 frames, and one sub-fingerprint
+    # per frame after the first.
     rng = np.random.default_rng(0)
     x = rng.normal(size=5000 * 3)
     fp = quality.fingerprint(x, sample_rate=5000)
     assert fp.dtype == np.uint32
-    assert fp.size == (5000 * 3 - 1850) // 58
+    assert fp.size == (5000 * 3 - 1850) // 116
     assert quality.fingerprint(x[:1850], sample_rate=5000).size == 0
     assert quality.fingerprint(np.zeros(0), sample_rate=16000).size == 0
     with pytest.raises(ParameterError, match="sample_rate"):
@@ -184,7 +185,7 @@ def test_fingerprint_bits_follow_haitsma_kalker_rule() -> None:
     freqs = np.fft.rfftfreq(1850, d=1 / 5000)
     edges = np.geomspace(300.0, 2000.0, 34)
     energies = []
-    for start in range(0, x.size - 1850 + 1, 58):
+    for start in range(0, x.size - 1850 + 1, 116):
         power = np.abs(np.fft.rfft(x[start : start + 1850] * window)) ** 2
         energies.append([power[(freqs >= lo) & (freqs < hi)].sum() for lo, hi in zip(edges[:-1], edges[1:], strict=True)])
     e = np.array(energies)
@@ -374,6 +375,19 @@ def test_bandwidth_of_white_noise_and_analytic_psd() -> None:
     psd[int(7000 / 31.25)] = 10.0
     assert quality.bandwidth_from_psd(freqs, psd) == pytest.approx(3968.75)
     assert quality.bandwidth_from_psd(freqs, psd, smoothing_hz=0) == pytest.approx(7000)
+
+
+@pytest.mark.parametrize(("sample_rate", "n"), [(16000, 48_123), (44100, 100_000), (8000, 256)])
+def test_long_term_psd_equals_scipy_welch(sample_rate: int, n: int) -> None:
+    # Reference: scipy.signal.welch with the documented settings (float32 inside the
+    # module, so relative tolerance 1e-4).
+    x = np.random.default_rng(n).normal(size=n).astype(np.float32)
+    freqs, psd = quality.long_term_psd(x, sample_rate=sample_rate)
+    segment = 2 * (freqs.size - 1)
+    assert segment == {16000: 512, 44100: 1024, 8000: 256}[sample_rate]  # nearest 2**k to 32 ms
+    ref_f, ref_p = scipy.signal.welch(x.astype(np.float64), fs=sample_rate, window="hann", nperseg=segment, detrend=False)
+    np.testing.assert_allclose(freqs, ref_f)
+    np.testing.assert_allclose(psd, ref_p, rtol=1e-4)
 
 
 def test_bandwidth_block_wise_psd_average() -> None:
