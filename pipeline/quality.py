@@ -163,7 +163,7 @@ def wada_snr_db(samples: np.ndarray) -> float:
     pauses included. Exact zeros are left out of the statistic: they are digital
     silence or padding, say nothing about the noise, and have no logarithm. So padding
     does not change the estimate, but clean synthetic speech whose pauses are exact
-    zeros is judged by its other samples alone (espeak-ng output reads 17 to 18 dB).
+    zeros is judged by its other samples alone (espeak-ng output reads 17 to 19 dB).
 
     Parameters
     ----------
