@@ -1,0 +1,355 @@
+"""Labelled selection: which transcribed clips fill each nested labelled tier.
+
+Two orders are offered. ``coverage`` is a greedy choice that prefers clips bringing
+phones and diphones not yet in the selection, per second of audio, while holding
+back speakers that already have their share. ``random`` is a seeded shuffle.
+Either way a tier takes clips in order until its total reaches the budget, so the
+last clip overshoots it by less than its own duration, and tiers grow one on top
+of the other, so every clip of a smaller tier is in each larger one.
+
+:func:`fill_tiers` also grows tiers on top of a kept selection (from the split
+ledger): kept clips stay, a shrunk budget drops the clips that the order puts
+last, and a tier below its budget is topped up.
+"""
+
+from __future__ import annotations
+
+import heapq
+import itertools
+import math
+from collections.abc import Collection, Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from pipeline.errors import ParameterError
+
+# A new phone counts as much as this many new diphones: there are ~39 phones and
+# ~1,500 diphones in English, and a missing phone is the worse gap. A design choice,
+# no source.
+PHONE_WEIGHT = 10.0
+# A speaker with ``share`` times its fair part of the budget has its scores divided
+# by (1 + SPEAKER_PENALTY * share): at its fair part, halved. A design choice, no source.
+SPEAKER_PENALTY = 1.0
+METHODS = ("coverage", "random")
+
+
+@dataclass(frozen=True)
+class Candidate:
+    """A transcribed clip that may be labelled.
+
+    ``phones`` is the phone sequence without word-boundary symbols.
+    """
+
+    clip_id: str
+    speaker: str
+    duration_s: float
+    phones: tuple[str, ...]
+
+
+def units(phones: Sequence[str]) -> tuple[set[str], set[tuple[str, str]]]:
+    """The distinct phones and diphones (adjacent pairs) of a phone sequence.
+
+    Examples
+    --------
+    >>> units(["HH", "AH", "L", "OW", "L"])[1] == {("HH", "AH"), ("AH", "L"), ("L", "OW"), ("OW", "L")}
+    True
+    """
+    return set(phones), set(itertools.pairwise(phones))
+
+
+def _unit_keys(c: Candidate) -> list[tuple[str, ...]]:
+    phones, diphones = units(c.phones)
+    return [("p", p) for p in phones] + [("d", *d) for d in diphones]
+
+
+def _check_candidates(candidates: Sequence[Candidate], name: str = "candidates") -> list[Candidate]:
+    items = sorted(candidates, key=lambda c: c.clip_id)
+    for a, b in itertools.pairwise(items):
+        if a.clip_id == b.clip_id:
+            raise ParameterError(f"{name} holds clip_id {a.clip_id!r} twice")
+    for c in items:
+        if not (c.duration_s > 0 and math.isfinite(c.duration_s)):
+            raise ParameterError(f"{name}: clip {c.clip_id!r} has duration_s={c.duration_s!r}; expected a positive number")
+    return items
+
+
+def coverage_order(
+    candidates: Sequence[Candidate],
+    *,
+    budget_s: float,
+    chosen: Sequence[Candidate] = (),
+    stop_s: float | None = None,
+) -> list[str]:
+    """Greedy phone- and diphone-coverage order of ``candidates``, after ``chosen``.
+
+    Each step takes the candidate with the highest score
+
+        score = sum(w_u / (1 + n_u) for each distinct unit u of the clip) / duration_s
+                / (1 + SPEAKER_PENALTY * speaker_s / quota_s)
+
+    where the units are the clip's distinct phones (``w_u = PHONE_WEIGHT``) and
+    diphones (``w_u = 1``), ``n_u`` counts the selected clips (``chosen`` included)
+    holding the unit, ``speaker_s`` is the selected duration of the clip's speaker
+    and ``quota_s = budget_s / speakers`` (speakers among candidates and chosen).
+    A unit nobody has yet counts fully, one held by one clip half, and so on: new
+    phones and diphones come first, and after that the score keeps spreading the
+    selection over rare units and over speakers. Ties go to the smaller clip_id.
+
+    Every term only shrinks as clips are selected, so a lazy greedy (re-scoring a
+    candidate only when it reaches the top of the heap) makes exactly the choices of
+    the plain greedy at a fraction of the cost. Sums use ``math.fsum``, which is
+    exactly rounded, so the order never depends on the order of the input.
+
+    Parameters
+    ----------
+    candidates : Sequence[Candidate]
+        Clips to order (clip ids unique).
+    budget_s : float
+        The tier budget in seconds (>= 0); sets the speaker quota.
+    chosen : Sequence[Candidate]
+        Clips already selected (a smaller tier, or kept from the ledger).
+    stop_s : float or None
+        Stop once chosen plus selected durations reach this total; None means
+        ``budget_s``, ``math.inf`` orders every candidate.
+
+    Returns
+    -------
+    list of str
+        Clip ids in selection order.
+
+    Examples
+    --------
+    >>> c = [Candidate("a", "s1", 1.0, ("AA", "B")), Candidate("b", "s1", 1.0, ("AA", "B")),
+    ...      Candidate("c", "s2", 1.0, ("IY", "K"))]
+    >>> coverage_order(c, budget_s=2.0)
+    ['a', 'c']
+    """
+    if not budget_s >= 0:
+        raise ParameterError(f"budget_s={budget_s!r} must be >= 0")
+    items = _check_candidates(candidates)
+    chosen_items = list(chosen)
+    stop = budget_s if stop_s is None else stop_s
+    total = math.fsum(c.duration_s for c in chosen_items)
+    if not items or total >= stop:
+        return []
+
+    # Units get integer ids in sorted order, so the arithmetic below never depends on
+    # the input order; each clip holds the ids of its distinct units and their weights.
+    unit_lists = [_unit_keys(c) for c in chosen_items] + [_unit_keys(c) for c in items]
+    vocabulary = {u: k for k, u in enumerate(sorted(set().union(*unit_lists)))}
+    ids = [np.array(sorted(vocabulary[u] for u in keys), dtype=np.int64) for keys in unit_lists]
+    weights = np.array([PHONE_WEIGHT if u[0] == "p" else 1.0 for u in sorted(vocabulary)], dtype=np.float64)
+    counts = np.zeros(len(vocabulary), dtype=np.float64)
+    speaker_s: dict[str, float] = {}
+
+    def add(c: Candidate, unit_ids: np.ndarray) -> None:
+        counts[unit_ids] += 1.0  # ids are distinct within a clip
+        speaker_s[c.speaker] = speaker_s.get(c.speaker, 0.0) + c.duration_s
+
+    for c, unit_ids in zip(chosen_items, ids[: len(chosen_items)], strict=True):
+        add(c, unit_ids)
+    item_ids = ids[len(chosen_items):]
+    item_weights = [weights[unit_ids] for unit_ids in item_ids]
+    speakers = {c.speaker for c in items} | {c.speaker for c in chosen_items}
+    # A zero budget selects nothing, but an ordering asked of it has no quota to share.
+    quota_s = budget_s / len(speakers) if budget_s > 0 else math.inf
+
+    def score(i: int) -> float:
+        c = items[i]
+        # Each quotient is correctly rounded and fsum is exact, so the score is the
+        # same on every platform and for every input order.
+        gain = math.fsum((item_weights[i] / (1.0 + counts[item_ids[i]])).tolist())
+        balance = 1.0 + SPEAKER_PENALTY * speaker_s.get(c.speaker, 0.0) / quota_s
+        return gain / c.duration_s / balance
+
+    step = 0
+    heap = [(-score(i), items[i].clip_id, i, step) for i in range(len(items))]
+    heapq.heapify(heap)
+    order: list[str] = []
+    while heap and total < stop:
+        neg, cid, i, stamp = heapq.heappop(heap)
+        if stamp != step:
+            heapq.heappush(heap, (-score(i), cid, i, step))
+            continue
+        order.append(cid)
+        add(items[i], item_ids[i])
+        total += items[i].duration_s
+        step += 1
+    return order
+
+
+def random_order(candidates: Sequence[Candidate], *, seed: int) -> list[str]:
+    """A seeded shuffle: ``numpy.random.default_rng(seed).permutation`` of the clip ids sorted.
+
+    Parameters
+    ----------
+    candidates : Sequence[Candidate]
+    seed : int
+        The corpus seed.
+
+    Returns
+    -------
+    list of str
+        Every clip id once, in shuffled order (independent of the input order).
+
+    Examples
+    --------
+    >>> c = [Candidate(x, "s", 1.0, ("AA",)) for x in "abcd"]
+    >>> sorted(random_order(c, seed=3)) == list("abcd")
+    True
+    """
+    items = _check_candidates(candidates)
+    perm = np.random.default_rng(seed).permutation(len(items))
+    return [items[int(i)].clip_id for i in perm]
+
+
+def selection_order(
+    candidates: Sequence[Candidate],
+    *,
+    method: str,
+    budget_s: float,
+    chosen: Sequence[Candidate] = (),
+    seed: int = 0,
+    stop_s: float | None = None,
+) -> list[str]:
+    """The order of ``method`` ("coverage" or "random"); see :func:`coverage_order`."""
+    if method == "coverage":
+        return coverage_order(candidates, budget_s=budget_s, chosen=chosen, stop_s=stop_s)
+    if method == "random":
+        return random_order(candidates, seed=seed)
+    raise ParameterError(f"method={method!r} is not one of {', '.join(METHODS)}")
+
+
+def take_until(order: Sequence[str], *, durations: Mapping[str, float], start_s: float, budget_s: float) -> list[str]:
+    """The prefix of ``order`` that brings a total of ``start_s`` up to ``budget_s``.
+
+    Clips are taken until the total reaches the budget, so the last one overshoots
+    it by less than its own duration; with too few clips all are taken.
+
+    Examples
+    --------
+    >>> take_until(["a", "b", "c"], durations={"a": 4.0, "b": 4.0, "c": 4.0}, start_s=0.0, budget_s=6.0)
+    ['a', 'b']
+    """
+    taken: list[str] = []
+    total = start_s
+    for cid in order:
+        if total >= budget_s:
+            break
+        taken.append(cid)
+        total += durations[cid]
+    return taken
+
+
+@dataclass(frozen=True)
+class TierPlan:
+    """One configured tier and what the ledger says about it.
+
+    ``kept``: clips the ledger has in this tier (matched across a renamed budget).
+    ``may_drop``: the budget shrank, so kept clips that the order puts last may leave.
+    ``may_reopen``: the budget grew or is new, so clips the ledger left unlabelled
+    may join.
+    """
+
+    name: str
+    budget_s: float
+    kept: frozenset[str] = frozenset()
+    may_drop: bool = False
+    may_reopen: bool = False
+
+
+@dataclass(frozen=True)
+class TierOutcome:
+    name: str
+    budget_s: float
+    clips: tuple[str, ...]
+    total_s: float
+    dropped: tuple[str, ...]
+    shortfall_s: float
+
+
+def fill_tiers(
+    plans: Sequence[TierPlan],
+    *,
+    items: Mapping[str, Candidate],
+    labelled_before: Collection[str] = (),
+    new: Collection[str] = (),
+    reopened: Collection[str] = (),
+    method: str,
+    seed: int = 0,
+) -> list[TierOutcome]:
+    """Grow nested tiers, smallest first, on top of what the ledger kept.
+
+    For each tier: start from the smaller tier's clips plus this tier's ``kept``
+    clips (ordered by ``method`` after the smaller tier). If the budget shrank,
+    drop the last of the kept clips while the tier stays at or above its budget
+    without them. If the tier is below budget, top it up by ``method``, first from
+    ``labelled_before`` (clips already labelled in a larger tier, so no clip changes
+    subset needlessly), then from ``new`` plus, when the budget grew, ``reopened``.
+
+    Parameters
+    ----------
+    plans : Sequence[TierPlan]
+        Tiers ascending by budget.
+    items : Mapping[str, Candidate]
+        Every clip named anywhere in the arguments.
+    labelled_before, new, reopened : Collection[str]
+        The candidate pools described above; clips in them must be eligible.
+    method : str
+        "coverage" or "random".
+    seed : int
+        For "random".
+
+    Returns
+    -------
+    list of TierOutcome
+        One per plan, in order; ``clips`` in selection order, each tier's clips
+        a superset of the previous tier's.
+
+    Examples
+    --------
+    >>> items = {x: Candidate(x, "s", 5.0, ("AA", x.upper())) for x in "abcd"}
+    >>> out = fill_tiers([TierPlan("10s", 10.0), TierPlan("20s", 20.0)], items=items, new="abcd",
+    ...                  method="coverage")
+    >>> [len(t.clips) for t in out]
+    [2, 4]
+    """
+    if method not in METHODS:
+        raise ParameterError(f"method={method!r} is not one of {', '.join(METHODS)}")
+    for a, b in itertools.pairwise(plans):
+        if b.budget_s < a.budget_s:
+            raise ParameterError(f"plans must ascend by budget_s; {b.name} ({b.budget_s}) follows {a.name} ({a.budget_s})")
+    durations = {cid: c.duration_s for cid, c in items.items()}
+    members: list[str] = []
+    outcomes: list[TierOutcome] = []
+    for plan in plans:
+        prev = list(members)
+        inside = set(prev)
+        kept = [items[c] for c in sorted(plan.kept) if c not in inside]
+        order = selection_order(kept, method=method, budget_s=plan.budget_s,
+                                chosen=[items[c] for c in prev], seed=seed, stop_s=math.inf)
+        base = prev + order
+        dropped: list[str] = []
+        if plan.may_drop:
+            total = math.fsum(durations[c] for c in base)
+            while len(base) > len(prev) and total - durations[base[-1]] >= plan.budget_s:
+                total -= durations[base[-1]]
+                dropped.append(base.pop())
+        inside = set(base) | set(dropped)
+        total = math.fsum(durations[c] for c in base)
+        pools = [sorted(set(labelled_before) - inside),
+                 sorted((set(new) | (set(reopened) if plan.may_reopen else set())) - inside)]
+        for pool in pools:
+            if total >= plan.budget_s or not pool:
+                continue
+            order = selection_order([items[c] for c in pool], method=method, budget_s=plan.budget_s,
+                                    chosen=[items[c] for c in base], seed=seed)
+            taken = take_until(order, durations=durations, start_s=total, budget_s=plan.budget_s)
+            base += taken
+            inside.update(taken)
+            total = math.fsum(durations[c] for c in base)
+        members = base
+        outcomes.append(TierOutcome(plan.name, plan.budget_s, tuple(base), total, tuple(dropped),
+                                    max(0.0, plan.budget_s - total)))
+    return outcomes
