@@ -21,8 +21,10 @@ Raw files are only ever opened for reading.
 from __future__ import annotations
 
 import contextlib
+import functools
 import math
 import os
+import sys
 from collections import Counter
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -46,7 +48,7 @@ from pipeline.fsio import atomic_output, sha256_file
 from pipeline.manifest import table_from_rows
 from pipeline.parallel import map_ordered
 from pipeline.segment import segment_id, split_frames
-from pipeline.stage import StageContext, StageResult, reject
+from pipeline.stage import StageContext, StageResult, code_version, reject
 from pipeline.vad import (
     ANALYSIS_SAMPLE_RATE,
     VoiceActivityStream,
@@ -60,6 +62,9 @@ NAME = "audio"
 INPUTS = ("ingest",)
 CONFIG_SECTIONS = ("audio",)
 CODE_VERSION = "1"
+# Modules whose code shapes this stage's output; their source is hashed into the
+# stage's code version (pipeline.stage.code_version).
+CODE_DEPENDS = ("pipeline.decode", "pipeline.vad", "pipeline.segment", "pipeline.loudness", "pipeline.quality")
 
 OUTPUT_FORMATS = {"flac": "FLAC", "wav": "WAV"}
 AUDIO_DIR = "audio"
@@ -474,9 +479,14 @@ def remove_orphans(folder: Path, keep: set[str], *, base: Path) -> int:
     return removed
 
 
+@functools.cache
+def _code_version() -> str:
+    return code_version(sys.modules[__name__])
+
+
 def _cache_key(row: dict[str, Any], section: dict[str, Any]) -> str:
     # source_id and source_path are in the key because they are copied into the rows.
-    return cache_key("audio", row["sha256"], section, CODE_VERSION, row["source_id"], row["source_path"],
+    return cache_key("audio", row["sha256"], section, _code_version(), row["source_id"], row["source_path"],
                      row["speaker"], row["transcript"] is not None)
 
 

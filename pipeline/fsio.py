@@ -42,6 +42,10 @@ def atomic_output(path: str | os.PathLike[str], *, suffix: str = "") -> Iterator
     tmp = Path(tmp_name)
     try:
         yield tmp
+        if _same_bytes(tmp, target):
+            # Unchanged output: leave the old file (and its mtime) alone and skip the fsync.
+            tmp.unlink()
+            return
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp, target)
@@ -49,6 +53,21 @@ def atomic_output(path: str | os.PathLike[str], *, suffix: str = "") -> Iterator
         with contextlib.suppress(FileNotFoundError):
             tmp.unlink()
         raise
+
+
+def _same_bytes(a: Path, b: Path) -> bool:
+    try:
+        if a.stat().st_size != b.stat().st_size:
+            return False
+    except FileNotFoundError:
+        return False
+    with open(a, "rb") as fa, open(b, "rb") as fb:
+        while True:
+            block = fa.read(HASH_BLOCK_BYTES)
+            if block != fb.read(HASH_BLOCK_BYTES):
+                return False
+            if not block:
+                return True
 
 
 def write_bytes_atomic(path: str | os.PathLike[str], data: bytes) -> None:

@@ -275,7 +275,8 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str,
                         workers=ctx.workers, scheduler=ctx.scheduler, desc="probe", progress=ctx.progress)
     for i, res in zip(todo, fresh, strict=True):
         results[i] = res
-        if keys[i] and "error" not in res:
+        if keys[i]:
+            # Failures are cached too: they depend only on the bytes, like successes.
             cache.put(keys[i], res)
     ctx.log.info("ingest: %d files probed, %d reused from cache", len(todo), len(paths) - len(todo))
     return [r for r in results if r is not None]

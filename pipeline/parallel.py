@@ -94,7 +94,8 @@ def _map_dask(func: Callable[[T], R], items: Sequence[T], *, scheduler: str, des
         futures = client.map(func, list(items), pure=False)
         index = {f.key: i for i, f in enumerate(futures)}
         results: list[Any] = [None] * len(items)
-        for fut in as_completed(futures):
+        # The client is not the default one, so as_completed must be told which to use.
+        for fut in as_completed(futures, loop=client.loop):
             results[index[fut.key]] = fut.result()
             bar.update(1)
     bar.close()

@@ -24,13 +24,16 @@ import functools
 from collections.abc import Sequence
 
 import numpy as np
-import scipy.fft
-import scipy.ndimage
-import scipy.signal
 import soxr
-from scipy import special
 
 from pipeline.errors import ParameterError
+
+
+def _periodic_hann(length: int) -> np.ndarray:
+    """scipy.signal.get_window("hann", length) (periodic), without importing
+    scipy.signal, whose import costs about a second in every process that loads it."""
+    n = np.arange(length)
+    return (0.5 - 0.5 * np.cos(2.0 * np.pi * n / length)).astype(np.float32)
 
 __all__ = [
     "OUTLIER_ABS_Z",
@@ -114,6 +117,7 @@ def _wada_table() -> tuple[np.ndarray, np.ndarray]:
 
     Returns (snr_db, g), both increasing.
     """
+    from scipy import special  # imported here: only the table needs it
     k = _WADA_GAMMA_SHAPE
     steps = round((WADA_MAX_SNR_DB - WADA_MIN_SNR_DB) / _WADA_STEP_DB)
     snr_db = np.linspace(WADA_MIN_SNR_DB, WADA_MAX_SNR_DB, steps + 1)
@@ -231,6 +235,7 @@ _FP_BLOCK_FRAMES = 128
 @functools.cache
 def _fp_bands() -> tuple[int, int, np.ndarray]:
     """First FFT bin, last bin + 1, and each band's first bin relative to the first."""
+    import scipy.fft
     freqs = scipy.fft.rfftfreq(FP_FRAME, d=1.0 / FP_SAMPLE_RATE)
     # Bin k belongs to band m when edge[m] <= f_k < edge[m + 1]; bands are contiguous.
     starts = np.searchsorted(freqs, FP_BAND_EDGES_HZ, side="left")
@@ -239,9 +244,10 @@ def _fp_bands() -> tuple[int, int, np.ndarray]:
 
 def _fp_band_energies(x: np.ndarray) -> np.ndarray:
     """Frames x 33 band energies of a float32 5 kHz signal, computed block by block."""
+    import scipy.fft
     first, last, band_starts = _fp_bands()
     frames = np.lib.stride_tricks.sliding_window_view(x, FP_FRAME)[::FP_HOP]
-    window = scipy.signal.get_window("hann", FP_FRAME).astype(np.float32)
+    window = _periodic_hann(FP_FRAME)
     # The spectrum is read as interleaved (re, im) float32 pairs: squaring them in place
     # and summing each band's run of pairs with reduceat gives the band powers without a
     # complex-magnitude temporary or a dense band matrix.
@@ -591,12 +597,13 @@ def long_term_psd(samples: np.ndarray, *, sample_rate: int) -> tuple[np.ndarray,
     >>> freqs.size, float(freqs[1])
     (257, 31.25)
     """
+    import scipy.fft
     _check_sample_rate(sample_rate)
     x = _mono_float(samples)
     segment = 1 << max(4, round(np.log2(_WELCH_SEGMENT_S * sample_rate)))
     if x.size < segment:
         return np.zeros(0), np.zeros(0)
-    window = scipy.signal.get_window("hann", segment).astype(np.float32)
+    window = _periodic_hann(segment)
     frames = np.lib.stride_tricks.sliding_window_view(x.astype(np.float32, copy=False), segment)
     frames = frames[:: segment // 2]
     power = np.zeros(segment // 2 + 1)
@@ -680,6 +687,8 @@ def bandwidth_from_psd(
     width += 1 - width % 2  # odd, so the window is centred on its bin
     if width > 1:
         # Edges repeat the end values: zero padding would drag the top bins towards 0 dB.
+        import scipy.ndimage
+
         level_db = scipy.ndimage.median_filter(level_db, size=width, mode="nearest")
     above = np.flatnonzero(level_db >= reference - drop_db)
     return float(f[above[-1]]) if above.size else float("nan")

@@ -29,7 +29,7 @@ from pipeline.manifest import (
     validate_table,
     write_manifest,
 )
-from pipeline.stage import StageContext, StageResult
+from pipeline.stage import StageContext, StageResult, code_version
 
 STAGE_ORDER = ("ingest", "audio", "text", "split")
 REJECTED_PATH = "manifests/rejected.parquet"
@@ -59,7 +59,7 @@ def params_sha256(module: ModuleType, config: Config) -> str:
     """Hash of everything in the config and code that a stage's output depends on."""
     parts = {
         "stage": module.NAME,
-        "code_version": module.CODE_VERSION,
+        "code_version": code_version(module),
         "loam_version": __version__,
         "seed": config.seed,
         "sections": {s: config.section(s) for s in module.CONFIG_SECTIONS},
@@ -168,7 +168,7 @@ class Runner:
         meta = {
             "version": __version__,
             "stage": module.NAME,
-            "code_version": module.CODE_VERSION,
+            "code_version": code_version(module),
             "config_sha256": self.config.sha256(),
             "params_sha256": params,
             "inputs_sha256": inputs,

@@ -19,6 +19,18 @@ def tone(seconds: float, sample_rate: int, *, freq_hz: float = 220.0, level: flo
     return np.stack([x] * channels, axis=1) if channels > 1 else x
 
 
+def speechlike(seconds: float, sample_rate: int, *, seed: int, channels: int = 1, level: float = 0.5) -> np.ndarray:
+    """Voiced bursts with pauses: a 140 Hz pulse train with a little noise, shaped by a
+    3 Hz syllable envelope, silent for 0.3 s at each end. Not speech, but it has the
+    harmonic structure and rhythm that a voice-activity detector reacts to."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(int(seconds * sample_rate)) / sample_rate
+    pulse = np.sign(np.sin(2 * np.pi * 140 * t)) * 0.3 + 0.05 * rng.standard_normal(len(t))
+    envelope = np.clip(np.sin(2 * np.pi * 3.0 * t), 0, None) * (t > 0.3) * (t < seconds - 0.3)
+    x = (pulse * envelope * level).astype(np.float32)
+    return np.stack([x] * channels, axis=1) if channels > 1 else x
+
+
 def tree_hash(root: Path) -> dict[str, str]:
     """Path -> SHA-256 of every file and link under ``root`` (links by their target text)."""
     out = {}
@@ -38,11 +50,11 @@ def small_raw(tmp_path: Path) -> Path:
     raw = tmp_path / "raw"
     (raw / "spk_a").mkdir(parents=True)
     (raw / "spk_b").mkdir()
-    sf.write(raw / "spk_a" / "a1.wav", tone(1.0, 16000), 16000, subtype="PCM_16")
-    sf.write(raw / "spk_a" / "a2.flac", tone(1.5, 22050, freq_hz=330), 22050)
+    sf.write(raw / "spk_a" / "a1.wav", speechlike(1.6, 16000, seed=1), 16000, subtype="PCM_16")
+    sf.write(raw / "spk_a" / "a2.flac", speechlike(2.0, 22050, seed=2), 22050)
     (raw / "spk_a" / "a1.txt").write_text("the first line\n", encoding="utf-8")
-    sf.write(raw / "spk_b" / "b1.wav", tone(2.0, 44100, channels=2), 44100, subtype="PCM_24")
-    sf.write(raw / "spk_b" / "b2.ogg", tone(1.0, 48000, freq_hz=440), 48000)
+    sf.write(raw / "spk_b" / "b1.wav", speechlike(2.2, 44100, seed=3, channels=2), 44100, subtype="PCM_24")
+    sf.write(raw / "spk_b" / "b2.ogg", speechlike(1.8, 48000, seed=4, level=0.2), 48000)
     (raw / "spk_b" / "broken.wav").write_bytes(b"")
     (raw / "spk_b" / "copy.wav").write_bytes((raw / "spk_a" / "a1.wav").read_bytes())
     (raw / "meta.csv").write_text(

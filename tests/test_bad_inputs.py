@@ -20,18 +20,9 @@ from pipeline.cli import main
 from pipeline.errors import DataError
 from pipeline.ingest import read_metadata_table
 from pipeline.manifest import check_table
-from tests.conftest import tree_hash
+from tests.conftest import speechlike, tree_hash
 
 SR = 16000
-
-
-def speechlike(seconds: float, rate: int, *, seed: int) -> np.ndarray:
-    """Voiced bursts with pauses: a 140 Hz pulse train shaped by syllable-rate envelopes."""
-    rng = np.random.default_rng(seed)
-    t = np.arange(int(seconds * rate)) / rate
-    pulse = np.sign(np.sin(2 * np.pi * 140 * t)) * 0.3 + 0.05 * rng.standard_normal(len(t))
-    envelope = np.clip(np.sin(2 * np.pi * 3.0 * t), 0, None) * (t > 0.3) * (t < seconds - 0.3)
-    return (pulse * envelope * 0.5).astype(np.float32)
 
 
 def float_wav_with(value: float) -> bytes:

@@ -18,20 +18,19 @@ import pytest
 from pipeline.cli import main
 from pipeline.lock import LOCK_NAME
 
-STAGES_PRESENT = all((Path(__file__).resolve().parent.parent / "pipeline" / f"{s}.py").exists()
-                     for s in ("audio", "text", "split"))
-
 
 def loam(*args: str, timeout: float | None = None) -> subprocess.CompletedProcess:
     return subprocess.run([sys.executable, "-m", "pipeline", *args], capture_output=True, text=True, timeout=timeout)
 
 
 def outputs(out: Path) -> dict[str, bytes]:
-    """Every manifest and audio file by relative path (logs and caches excluded)."""
-    files = {}
+    """Every manifest, audio file and the ledger by relative path. Logs and caches are
+    excluded, and so is the split summary, whose change report rightly differs when an
+    earlier (killed) run had already written a ledger."""
+    files = {"ledger.tsv": (out / "ledger.tsv").read_bytes()} if (out / "ledger.tsv").exists() else {}
     for sub in ("stages", "manifests", "audio", "lexicon"):
         for p in sorted((out / sub).rglob("*")) if (out / sub).exists() else []:
-            if p.is_file():
+            if p.is_file() and p.name != "split.summary.json":
                 files[str(p.relative_to(out))] = p.read_bytes()
     return files
 
@@ -108,10 +107,9 @@ def test_out_inside_raw_is_refused(small_raw: Path, capsys: pytest.CaptureFixtur
 
 
 @pytest.mark.slow
-@pytest.mark.skipif(not STAGES_PRESENT, reason="needs every stage")
 def test_sigkill_at_random_points_then_rerun_is_byte_identical(small_raw: Path, tmp_path: Path) -> None:
     args = ["--set", 'ingest.metadata="meta.csv"', "--set", 'split.labelled_budgets=["1s"]',
-            "--set", 'split.heldout="1s"', "--set", 'split.group_by="clip"', "--workers", "2"]
+            "--set", 'split.heldout="0%"', "--set", 'split.group_by="clip"', "--workers", "2"]
     clean = tmp_path / "clean"
     done = loam("prepare", str(small_raw), str(clean), *args)
     assert done.returncode == 0, done.stderr
