@@ -307,6 +307,12 @@ def _figure() -> tuple[Any, Any]:
     return fig, ax
 
 
+def _integer_counts(ax: Any) -> None:
+    from matplotlib.ticker import MaxNLocator
+
+    ax.yaxis.set_major_locator(MaxNLocator(integer=True))
+
+
 def _png(fig: Any) -> str:
     import matplotlib.pyplot as plt
 
@@ -336,6 +342,7 @@ def plot_durations(clips: pd.DataFrame) -> str | None:
     # Side-by-side bars per bin, so equal counts in two subsets never hide each other.
     ax.hist([x for _, x in groups], bins=_bins(values), color=[SUBSET_COLOURS[n] for n, _ in groups],
             label=[f"{n} ({x.size})" for n, x in groups])
+    _integer_counts(ax)
     ax.set_title("Clip duration by subset")
     ax.set_xlabel("duration (s)")
     ax.set_ylabel("clips")
@@ -354,6 +361,7 @@ def plot_loudness(clips: pd.DataFrame, target_lufs: float) -> str | None:
     ax.hist(before, bins=bins, histtype="stepfilled", alpha=0.5, color="#9aa5b1", label="before normalisation")
     ax.hist(after, bins=bins, histtype="step", linewidth=2, color="#1b6ca8", label="as written")
     ax.axvline(target_lufs, color="#d9822b", linestyle="--", label=f"target {target_lufs:g} LUFS")
+    _integer_counts(ax)
     ax.set_title("Integrated loudness (ITU-R BS.1770-4)")
     ax.set_xlabel("loudness (LUFS)")
     ax.set_ylabel("clips")
@@ -367,6 +375,7 @@ def plot_speaking_rate(clips: pd.DataFrame) -> str | None:
         return None
     fig, ax = _figure()
     ax.hist(x, bins=_bins(x), color="#1b6ca8")
+    _integer_counts(ax)
     ax.set_title("Speaking rate of transcribed clips")
     ax.set_xlabel("phones per second of speech")
     ax.set_ylabel("clips")
@@ -381,6 +390,7 @@ def plot_phones(counts: dict[str, int]) -> str | None:
     ax.bar(range(len(names)), [counts[n] for n in names], color="#1b6ca8")
     ax.set_xticks(range(len(names)))
     ax.set_xticklabels(names, rotation=90, fontsize=FONT_PT - 2 if len(names) > 30 else FONT_PT - 1)
+    _integer_counts(ax)
     ax.set_title("Phone frequency in labelled")
     ax.set_xlabel("phone")
     ax.set_ylabel("occurrences")
@@ -447,18 +457,18 @@ def _stats_rows(label: str, stats: dict[str, float] | None) -> list[list[str]]:
              _num(stats["max"], 2)]]
 
 
-def _value_html(value: Any) -> str:
-    """Nested JSON data (from a stage summary) as nested definition lists, escaped."""
+def _inline(value: Any) -> str:
+    """Nested JSON data on one line: ``{"a": 1, "b": {}}`` -> ``a 1, b none``."""
     if isinstance(value, dict):
-        if not value:
-            return '<span class="none">none</span>'
-        items = "".join(f"<dt>{esc(k)}</dt><dd>{_value_html(v)}</dd>" for k, v in value.items())
-        return f"<dl>{items}</dl>"
+        return ", ".join(f"{k} {_inline(v)}" for k, v in value.items()) or "none"
     if isinstance(value, list):
-        if not value:
-            return '<span class="none">none</span>'
-        return esc(", ".join(json.dumps(v, ensure_ascii=False) if not isinstance(v, str) else v for v in value))
-    return esc(_num(value))
+        return ", ".join(_inline(v) for v in value) or "none"
+    return _num(value)
+
+
+def _value_table(value: dict[str, Any], headers: Sequence[str]) -> str:
+    """A stage summary's section as a two-column table, one row per key (escaped)."""
+    return table(headers, [[k, _inline(v)] for k, v in value.items()])
 
 
 CSS = """
@@ -472,7 +482,6 @@ th { background: #f0f4f8; } td.n, th.n { text-align: right; }
 .caution { background: #fff4e5; border-left: 4px solid #d9822b; padding: .7rem 1rem; }
 .none { color: #616e7c; font-style: italic; }
 figure { margin: .8rem 0; } img { max-width: 100%; height: auto; }
-dl { margin: .2rem 0; } dt { font-weight: 600; } dd { margin: 0 0 .3rem 1.2rem; }
 pre { background: #f5f7fa; padding: .6rem; overflow-x: auto; font-size: .85rem; }
 code { font-size: .9rem; }
 """
@@ -557,8 +566,8 @@ def render_html(summary: dict[str, Any], clips: pd.DataFrame, figures: dict[str,
     add("<h2>Speakers</h2>")
     add(_img(figures.get("speakers"), "Audio per speaker"))
     spk = list(s["speakers"].items())
-    add(table(["speaker", *[f"{n} (h)" for n in SUBSETS]],
-              [[k, *[_num(v[n], 4) for n in SUBSETS]] for k, v in spk[:SPEAKERS_LISTED]]))
+    add(table(["speaker", *[f"{n} (h:mm:ss)" for n in SUBSETS]],
+              [[k, *[hms(3600 * v[n]) for n in SUBSETS]] for k, v in spk[:SPEAKERS_LISTED]]))
     if len(spk) > SPEAKERS_LISTED:
         add(f"<p>and {len(spk) - SPEAKERS_LISTED} more speakers (all in summary.json).</p>")
 
@@ -567,14 +576,15 @@ def render_html(summary: dict[str, Any], clips: pd.DataFrame, figures: dict[str,
     add(table(["flag", *SUBSETS], [[f, *[v[n] for n in SUBSETS]] for f, v in q["flags"].items()]))
     if q["gates_from_split"]:
         add("<p>Counted by the split stage over every clip, including clips it set aside:</p>")
-        add(_value_html(q["gates_from_split"]))
+        add(_value_table(q["gates_from_split"], ["gate", "clips"]))
     add(f"<h3>Near-duplicate pairs ({len(q['near_duplicate_pairs'])})</h3>")
     add(table(["clip", "near-duplicate of", "similarity"],
               [[*(x.get("clips") or ["", ""])[:2], _num(x.get("similarity"), 3)]
                for x in q["near_duplicate_pairs"][:100] if isinstance(x, dict)]))
 
     add("<h2>Changes in the last rebuild</h2>")
-    add(_value_html(s["changes"]) if s["changes"] else '<p class="none">none recorded (no split summary)</p>')
+    add(_value_table(s["changes"], ["change", "clips"]) if s["changes"]
+        else '<p class="none">none recorded (no split summary)</p>')
 
     add("<h2>Configuration</h2>")
     if s["config"] is None:

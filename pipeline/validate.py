@@ -683,6 +683,9 @@ def _check_audio_subset(s: _Subsets, name: str, out: Path, *, deep: bool) -> lis
 
 
 def _deep_checks(s: _Subsets, name: str, rows: list[int], paths: list[str]) -> list[Problem]:
+    # Imported here, before the pool forks, so workers inherit scipy instead of each
+    # spending seconds importing it.
+    import pipeline.loudness  # noqa: F401
     from pipeline.parallel import map_ordered
 
     file = subset_file(name)
