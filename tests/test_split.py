@@ -1,0 +1,590 @@
+"""Split stage: groups, gates, held-out ranking, nested tiers, determinism, rebuild stability.
+
+Audio and text tables are built here with ``table_from_rows`` (the audio and text
+stages are tested on their own); the stage's ``run`` is called directly.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import itertools
+import logging
+import math
+import re
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow.parquet as pq
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from pipeline import quality, split
+from pipeline.config import build_config
+from pipeline.errors import DataError, UsageError
+from pipeline.manifest import table_from_rows, validate_table
+from pipeline.stage import StageContext, StageResult
+
+REPO = Path(__file__).resolve().parent.parent
+# The 39 stressless ARPAbet phones of the CMU Pronouncing Dictionary.
+ARPABET = ["AA", "AE", "AH", "AO", "AW", "AY", "B", "CH", "D", "DH", "EH", "ER", "EY", "F", "G", "HH", "IH", "IY", "JH", "K", "L", "M", "N", "NG", "OW", "OY", "P", "R", "S", "SH", "T", "TH", "UH", "UW", "V", "W", "Y", "Z", "ZH"]
+SPEAKERS = ("alder", "heron", "otter", "plover", "sedge", "wren", "linnet", "teal")
+MIN_SNR_DB = 5.0  # the schema default of quality.min_snr_db
+MIN_BANDWIDTH_HZ = 5000.0  # the schema default of quality.min_bandwidth_hz
+
+
+# ---------------------------------------------------------------------------------------
+# Corpus builder
+# ---------------------------------------------------------------------------------------
+
+def _seed_of(text: str) -> int:
+    return int.from_bytes(hashlib.sha256(text.encode()).digest()[:8], "little")
+
+
+def random_fingerprint(key: str, duration_s: float) -> np.ndarray:
+    rng = np.random.default_rng(_seed_of(key))
+    return rng.integers(1, 2**32, size=max(8, min(int(duration_s * 86), 256)), dtype=np.uint32)
+
+
+@dataclass
+class Corpus:
+    """Audio rows (one per clip) and text rows (one per accepted transcript)."""
+
+    audio: list[dict[str, Any]] = field(default_factory=list)
+    text: list[dict[str, Any]] = field(default_factory=list)
+    counter: int = 0
+
+    def add(self, speaker: str, duration_s: float, *, transcribed: bool = True, phones: list[str] | None = None,
+            rate: float = 12.0, accepted: bool = True, source_id: str | None = None, start_ms: int | None = None,
+            snr_db: float | None = 25.0, bandwidth_hz: float | None = 7500.0, sha: str | None = None,
+            fingerprint: np.ndarray | None = None, upsampled_from: int | None = None,
+            peak_limited_db: float = 0.0) -> str:
+        self.counter += 1
+        source = source_id or f"{speaker}-{self.counter:010x}"
+        cid = source if start_ms is None else f"{source}_{start_ms:08d}"
+        speech_s = 0.9 * duration_s
+        fp = random_fingerprint(cid, duration_s) if fingerprint is None else fingerprint
+        self.audio.append({
+            "clip_id": cid, "source_id": source, "source_path": f"{speaker}/{source}.wav", "speaker": speaker,
+            "audio_path": f"audio/{speaker}/{cid}.flac",
+            "audio_sha256": sha or hashlib.sha256(cid.encode()).hexdigest(),
+            "sample_rate": 16000, "num_samples": max(1, round(duration_s * 16000)), "duration_s": duration_s,
+            "source_start_s": (start_ms or 0) / 1000, "source_end_s": (start_ms or 0) / 1000 + duration_s,
+            "source_sample_rate": 16000 if upsampled_from is None else upsampled_from,
+            "upsampled_from": upsampled_from, "segment_index": 0, "speech_s": speech_s, "speech_ratio": 0.9,
+            "loudness_in_lufs": -31.0, "loudness_lufs": -23.0, "gain_db": 8.0, "peak_limited_db": peak_limited_db,
+            "peak_dbfs": -2.0, "clipped_fraction": 0.0, "dc_offset": 0.0, "snr_db": snr_db,
+            "bandwidth_hz": bandwidth_hz, "fingerprint": quality.encode_fingerprint(fp), "transcribed": transcribed,
+        })
+        if transcribed and accepted:
+            if phones is None:
+                rng = np.random.default_rng(_seed_of(cid))
+                phones = list(rng.choice(ARPABET, size=max(1, round(rate * speech_s))))
+            self.text.append({
+                "clip_id": cid, "transcript": f"words of {cid}", "norm_text": f"words of {cid}",
+                "words": ["words", "of", cid], "phones": phones, "word_backends": ["cmudict"] * 3, "oov_words": [],
+            })
+        return cid
+
+    def subset(self, ids: set[str]) -> Corpus:
+        return Corpus([r for r in self.audio if r["clip_id"] in ids], [r for r in self.text if r["clip_id"] in ids],
+                      self.counter)
+
+    def inputs(self, order: np.random.Generator | None = None) -> dict[str, Any]:
+        audio, text = list(self.audio), list(self.text)
+        if order is not None:
+            audio = [audio[i] for i in order.permutation(len(audio))]
+            text = [text[i] for i in order.permutation(len(text))]
+        return {"audio": table_from_rows("audio", audio), "text": table_from_rows("text", text)}
+
+
+def make_ctx(root: Path, corpus: Corpus, data: dict[str, Any] | None = None, *, fresh: bool = False,
+             order: np.random.Generator | None = None, source: str | None = None) -> StageContext:
+    data = {"seed": 7, **(data or {})}
+    cfg = build_config(data) if source is None else build_config(data, source=source, base_dir=str(Path(source).parent))
+    log = logging.getLogger("split-tests")  # not under "loam", whose handlers the runner replaces
+    log.setLevel(logging.INFO)
+    return StageContext(raw=root / "raw", out=root / "out", config=cfg, inputs=corpus.inputs(order), workers=1,
+                        log=log, options={"fresh": fresh})
+
+
+def rows_by_subset(result: StageResult) -> dict[str, list[dict[str, Any]]]:
+    return {s: result.manifests[split.SUBSET_PATHS[s]][1].to_pylist() for s in split.SUBSETS}
+
+
+def all_rows(result: StageResult) -> dict[str, dict[str, Any]]:
+    return {r["clip_id"]: r for rows in rows_by_subset(result).values() for r in rows}
+
+
+def eligible_ids(corpus: Corpus, *, narrowband_gates: bool = True) -> set[str]:
+    """Eligibility recomputed from the inputs (rate gate disabled where this is used)."""
+    has_text = {t["clip_id"] for t in corpus.text}
+    out = set()
+    for a in corpus.audio:
+        noisy = a["snr_db"] is not None and a["snr_db"] < MIN_SNR_DB
+        narrow = a["bandwidth_hz"] is not None and a["bandwidth_hz"] < MIN_BANDWIDTH_HZ
+        if a["clip_id"] in has_text and not noisy and not (narrow and narrowband_gates):
+            out.add(a["clip_id"])
+    return out
+
+
+# ---------------------------------------------------------------------------------------
+# Ranking hash and the worked example
+# ---------------------------------------------------------------------------------------
+
+def test_sha256_reference_and_rank_key() -> None:
+    # FIPS 180-4 (Secure Hash Standard), example "abc" for SHA-256.
+    assert hashlib.sha256(b"abc").hexdigest() == "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
+    # The documented formula, computed by hashlib: SHA-256 of f"{seed}\t{group}" in UTF-8.
+    for seed, group in [(0, "alder"), (7, "wren"), (12345, "spk_3"), (7, "grèbe-ü")]:
+        expected = hashlib.sha256(f"{seed}\t{group}".encode()).hexdigest()
+        assert split.group_rank_key(group, seed=seed) == expected
+    assert split.group_rank_key("grèbe-ü", seed=1) == hashlib.sha256("1\tgrèbe-ü".encode()).hexdigest()
+    ranked = split.rank_groups(["c", "a", "b"], seed=3)
+    assert ranked == sorted("abc", key=lambda g: hashlib.sha256(f"3\t{g}".encode()).hexdigest())
+
+
+def parse_worked_example() -> list[dict[str, str]]:
+    text = (REPO / "docs" / "split.md").read_text(encoding="utf-8")
+    section = text.split("## Worked example", 1)[1].split("\n## ", 1)[0]
+    lines = [ln.strip() for ln in section.splitlines() if ln.strip().startswith("|")]
+    header = [c.strip() for c in lines[0].strip("|").split("|")]
+    rows = []
+    for ln in lines[2:]:
+        cells = [c.strip() for c in ln.strip("|").split("|")]
+        rows.append(dict(zip(header, cells, strict=True)))
+    return rows
+
+
+def test_worked_example_in_docs(tmp_path: Path) -> None:
+    rows = parse_worked_example()
+    seed = int(re.search(r"`seed = (\d+)`", (REPO / "docs" / "split.md").read_text()).group(1))
+    heldout = re.search(r'`split.heldout = "([^"]+)"`', (REPO / "docs" / "split.md").read_text().split(
+        "## Worked example", 1)[1]).group(1)
+    key_column = next(k for k in rows[0] if k.startswith("key"))
+    assert len(rows) >= 5
+    for row in rows:
+        # Every key recomputed with hashlib.
+        assert row[key_column] == hashlib.sha256(f"{seed}\t{row['group']}".encode()).hexdigest()
+    by_key = sorted(rows, key=lambda r: r[key_column])
+    assert [int(r["rank"]) for r in by_key] == list(range(1, len(rows) + 1))
+
+    corpus = Corpus()
+    for row in rows:
+        for column, transcribed in (("eligible transcribed s", True), ("untranscribed s", False)):
+            left = float(row[column])
+            while left > 1e-9:  # 10 s clips, so held-out totals are the table's sums
+                corpus.add(row["group"], min(10.0, left), transcribed=transcribed)
+                left -= min(10.0, left)
+    result = split.run(make_ctx(tmp_path, corpus, {"seed": seed, "split": {"heldout": heldout,
+                                                                           "labelled_budgets": ["1m"]}}))
+    side_of = {}
+    for r in all_rows(result).values():
+        side_of.setdefault(r["group"], set()).add("heldout" if r["subset"] == "heldout" else "training")
+    assert {g: s.pop() for g, s in side_of.items()} == {r["group"]: r["side"] for r in rows}
+
+
+# ---------------------------------------------------------------------------------------
+# Random corpora and the invariants every split must keep
+# ---------------------------------------------------------------------------------------
+
+def random_corpus(sizes: list[int], seed: int, *, dup_share: float) -> tuple[Corpus, set[str]]:
+    """Speakers with random clips; the first clip of the first two speakers is always
+    eligible (returned as ``anchors``), the rest random in duration, transcript, SNR,
+    bandwidth and, for speakers after the first two, byte-identical copies."""
+    rng = np.random.default_rng(seed)
+    corpus = Corpus()
+    anchors = set()
+    copyable: list[str] = []
+    for s, n in enumerate(sizes):
+        for k in range(n):
+            anchor = k == 0 and s < 2
+            duration = float(rng.uniform(0.5, 20.0))
+            transcribed = anchor or bool(rng.random() < 0.7)
+            sha = None
+            if not anchor and s >= 2 and copyable and rng.random() < dup_share:
+                source = copyable[int(rng.integers(len(copyable)))]
+                sha = next(r["audio_sha256"] for r in corpus.audio if r["clip_id"] == source)
+            cid = corpus.add(
+                SPEAKERS[s], duration, transcribed=transcribed, accepted=anchor or bool(rng.random() < 0.9),
+                rate=float(rng.uniform(10.0, 14.0)), sha=sha,
+                snr_db=25.0 if anchor else float(rng.choice([2.0, 25.0, 30.0], p=[0.2, 0.4, 0.4])),
+                bandwidth_hz=7500.0 if anchor else float(rng.choice([3400.0, 7500.0], p=[0.15, 0.85])),
+            )
+            if anchor:
+                anchors.add(cid)
+            elif s >= 2:
+                copyable.append(cid)
+    return corpus, anchors
+
+
+NO_RATE_GATE = {"rate_max_abs_z": 1e9}  # rate gating is tested on its own below
+
+configs = st.fixed_dictionaries({
+    "seed": st.integers(0, 2**31),
+    "split": st.fixed_dictionaries({
+        "group_by": st.sampled_from(["speaker", "recording", "clip"]),
+        "heldout": st.sampled_from(["20%", "45s", "0%", "60%", "10m"]),
+        "labelled_budgets": st.sampled_from([["20s", "1m"], ["10s", "30s", "2m"], ["1m"], [], ["5m", "10h"]]),
+        "selection": st.sampled_from(["coverage", "random"]),
+    }),
+    "quality": st.just(NO_RATE_GATE),
+})
+corpus_shapes = st.tuples(st.lists(st.integers(1, 6), min_size=2, max_size=6), st.integers(0, 2**32 - 1),
+                          st.sampled_from([0.0, 0.15]))
+PROPERTY_SETTINGS = settings(max_examples=40, deadline=None,
+                             suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+
+
+def check_invariants(corpus: Corpus, data: dict[str, Any], result: StageResult, *, fresh: bool) -> None:
+    rows = rows_by_subset(result)
+    for s, table_rows in rows.items():
+        assert all(r["subset"] == s for r in table_rows)
+        assert [r["clip_id"] for r in table_rows] == sorted(r["clip_id"] for r in table_rows)
+        validate_table("subset", result.manifests[split.SUBSET_PATHS[s]][1], where=s)
+    by_id = all_rows(result)
+    rejected = {r["clip_id"] for r in result.rejects}
+    # Disjoint and complete: every audio clip exactly once in a subset or the rejects.
+    ids = [r["clip_id"] for rs in rows.values() for r in rs] + sorted(rejected)
+    assert len(ids) == len(set(ids))
+    assert set(ids) == {a["clip_id"] for a in corpus.audio}
+
+    eligible = eligible_ids(corpus)
+    durations = {a["clip_id"]: a["duration_s"] for a in corpus.audio}
+    training = {r["group"] for s in ("labelled", "unlabelled") for r in rows[s]}
+    heldout_groups = {r["group"] for r in rows["heldout"]}
+    straddling = set(result.summary["changes"]["straddling_groups"])
+    assert not (training & heldout_groups) - straddling
+    assert all(r["clip_id"] in eligible for r in rows["labelled"])
+    if fresh:
+        assert not straddling
+    assert all(r["transcript"] is None and r["phones"] is None for r in rows["unlabelled"])
+    assert all(r["tiers"] == [] for s in ("unlabelled", "heldout") for r in rows[s])
+    assert all(("heldout_untranscribed" in r["flags"]) == (r["transcript"] is None) for r in rows["heldout"])
+
+    budgets = sorted(data["split"]["labelled_budgets"], key=split.parse_duration_s)
+    members = {b: [r["clip_id"] for r in rows["labelled"] if b in r["tiers"]] for b in budgets}
+    for r in rows["labelled"]:
+        assert r["tiers"] and r["tiers"] == budgets[len(budgets) - len(r["tiers"]):]  # a run of the largest
+    for small, large in itertools.pairwise(budgets):
+        assert set(members[small]) <= set(members[large])
+    shortfalls = {s["tier"]: s for s in result.summary["shortfalls"]}
+    waiting = [r["clip_id"] for r in rows["unlabelled"] if r["clip_id"] in eligible]
+    for b in budgets:
+        total = math.fsum(durations[c] for c in members[b])
+        budget = split.parse_duration_s(b)
+        if total >= budget:
+            assert b not in shortfalls
+            assert total - budget < max(durations[c] for c in members[b])  # within one clip
+        else:
+            assert shortfalls[b]["shortfall_s"] == pytest.approx(budget - total, abs=1e-3)
+            if fresh:
+                assert not waiting  # every eligible training clip was taken
+
+    # Held-out: a prefix of the ranking of groups with eligible audio (fresh runs).
+    group_of = {c: r["group"] for c, r in by_id.items()}
+    eligible_s: dict[str, float] = {}
+    for c in eligible - rejected:
+        eligible_s[group_of[c]] = eligible_s.get(group_of[c], 0.0) + durations[c]
+    if len(eligible_s) >= 2:
+        assert any(g in training for g in eligible_s)  # one group always trains
+    if fresh:
+        target = split.heldout_target_s(data["split"]["heldout"], transcribed_s=math.fsum(eligible_s.values()))
+        ranked = sorted(eligible_s, key=lambda g: hashlib.sha256(f"{data.get('seed', 7)}\t{g}".encode()).hexdigest())
+        expected, total = [], 0.0
+        for k, g in enumerate(ranked):
+            if total >= target or k == len(ranked) - 1:
+                break
+            expected.append(g)
+            total += eligible_s[g]
+        assert {g for g in heldout_groups if g in eligible_s} == set(expected)
+        assert heldout_groups <= set(expected)
+
+
+@PROPERTY_SETTINGS
+@given(shape=corpus_shapes, data=configs)
+def test_random_corpora_keep_every_invariant(shape: tuple[list[int], int, float], data: dict[str, Any]) -> None:
+    sizes, seed, dup_share = shape
+    corpus, _ = random_corpus(sizes, seed, dup_share=dup_share)
+    with tempfile.TemporaryDirectory() as tmp:
+        result = split.run(make_ctx(Path(tmp), corpus, data))
+    check_invariants(corpus, data, result, fresh=True)
+
+
+@PROPERTY_SETTINGS
+@given(shape=corpus_shapes, data=configs, arrival_seed=st.integers(0, 2**32 - 1), batches=st.integers(2, 4))
+def test_rebuilds_under_random_arrivals_keep_old_assignments(
+        shape: tuple[list[int], int, float], data: dict[str, Any], arrival_seed: int, batches: int) -> None:
+    sizes, seed, dup_share = shape
+    corpus, anchors = random_corpus(sizes, seed, dup_share=dup_share)
+    rng = np.random.default_rng(arrival_seed)
+    others = [a["clip_id"] for a in corpus.audio if a["clip_id"] not in anchors]
+    arrival = [int(b) for b in rng.integers(0, batches, size=len(others))]
+    previous: dict[str, dict[str, Any]] = {}
+    ever_heldout: set[str] = set()
+    with tempfile.TemporaryDirectory() as tmp:
+        for b in range(batches):
+            present = anchors | {c for c, when in zip(others, arrival, strict=True) if when <= b}
+            part = corpus.subset(present)
+            result = split.run(make_ctx(Path(tmp), part, data, order=rng))
+            check_invariants(part, data, result, fresh=b == 0)
+            now = all_rows(result)
+            for cid, before in previous.items():
+                # Same config: an old clip keeps its subset and its tiers.
+                assert (now[cid]["subset"], now[cid]["tiers"]) == (before["subset"], before["tiers"]), cid
+            assert all(now[c]["subset"] == "heldout" for c in ever_heldout)
+            ever_heldout |= {c for c, r in now.items() if r["subset"] == "heldout"}
+            changes = result.summary["changes"]
+            assert sum(changes["added"].values()) == len(set(now) - set(previous))
+            assert changes["moved"] == {}
+            previous = now
+
+
+changed_configs = st.lists(configs, min_size=2, max_size=4)
+
+
+@PROPERTY_SETTINGS
+@given(shape=corpus_shapes, runs=changed_configs, arrival_seed=st.integers(0, 2**32 - 1))
+def test_heldout_clip_never_moves_to_training_whatever_changes(
+        shape: tuple[list[int], int, float], runs: list[dict[str, Any]], arrival_seed: int) -> None:
+    sizes, seed, dup_share = shape
+    corpus, anchors = random_corpus(sizes, seed, dup_share=dup_share)
+    rng = np.random.default_rng(arrival_seed)
+    others = [a["clip_id"] for a in corpus.audio if a["clip_id"] not in anchors]
+    arrival = [int(b) for b in rng.integers(0, len(runs), size=len(others))]
+    ever_heldout: set[str] = set()
+    with tempfile.TemporaryDirectory() as tmp:
+        for b, data in enumerate(runs):
+            present = anchors | {c for c, when in zip(others, arrival, strict=True) if when <= b}
+            try:
+                result = split.run(make_ctx(Path(tmp), corpus.subset(present), data))
+            except DataError:
+                continue  # e.g. the group_by of this run binds the anchors into one group
+            now = all_rows(result)
+            assert all(now[c]["subset"] == "heldout" for c in ever_heldout if c in now)
+            ever_heldout |= {c for c, r in now.items() if r["subset"] == "heldout"}
+
+
+# ---------------------------------------------------------------------------------------
+# Groups
+# ---------------------------------------------------------------------------------------
+
+def single_speaker_corpus() -> Corpus:
+    corpus = Corpus()
+    for k in range(8):
+        corpus.add("alder", 3.0 + k % 3)
+    for start_ms in (0, 12000, 24000):  # one long untranscribed recording in three segments
+        corpus.add("alder", 12.0, transcribed=False, source_id="alder-marsh-0123456789", start_ms=start_ms)
+    return corpus
+
+
+def test_single_speaker_needs_another_grouping(tmp_path: Path) -> None:
+    with pytest.raises(DataError) as info:
+        split.run(make_ctx(tmp_path, single_speaker_corpus(), {"split": {"heldout": "20%"}}))
+    message = str(info.value)
+    assert "only 1 group (alder)" in message
+    assert 'split.group_by = "recording"' in message
+
+
+@pytest.mark.parametrize("group_by", ["recording", "clip"])
+def test_single_speaker_by_recording_or_clip(tmp_path: Path, group_by: str) -> None:
+    corpus = single_speaker_corpus()
+    data = {"split": {"group_by": group_by, "heldout": "20%", "labelled_budgets": ["10s"]}}
+    result = split.run(make_ctx(tmp_path, corpus, data))
+    rows = rows_by_subset(result)
+    assert rows["heldout"] and rows["labelled"]
+    check_invariants(corpus, data, result, fresh=True)
+    source_sides: dict[str, set[str]] = {}
+    sources = {a["clip_id"]: a["source_id"] for a in corpus.audio}
+    for s, rs in rows.items():
+        for r in rs:
+            source_sides.setdefault(sources[r["clip_id"]], set()).add(s == "heldout")
+    if group_by == "recording":
+        # All segments of a recording on one side; the group is the source.
+        assert all(len(v) == 1 for v in source_sides.values())
+        assert all(r["group"] == sources[r["clip_id"]] for rs in rows.values() for r in rs)
+    else:
+        assert all(r["group"] == r["clip_id"] for rs in rows.values() for r in rs)
+
+
+def test_near_duplicates_bind_groups(tmp_path: Path) -> None:
+    corpus = Corpus()
+    for spk in SPEAKERS[:4]:
+        for k in range(4):
+            corpus.add(spk, 4.0 + k)
+    # heron's clip is alder's first clip re-encoded: a few flipped fingerprint bits.
+    original = next(r for r in corpus.audio if r["speaker"] == "alder")
+    fp = quality.decode_fingerprint(original["fingerprint"]).copy()
+    rng = np.random.default_rng(5)
+    hit = rng.choice(fp.size, size=fp.size // 10, replace=False)
+    fp[hit] ^= np.uint32(1) << rng.integers(0, 32, size=hit.size).astype(np.uint32)
+    copy_id = corpus.add("heron", original["duration_s"], fingerprint=fp)
+    # otter and plover hold byte-identical audio (same SHA-256), fingerprints unrelated.
+    twin_a = next(r for r in corpus.audio if r["speaker"] == "otter")
+    twin_b = corpus.add("plover", 3.0, sha=twin_a["audio_sha256"])
+    result = split.run(make_ctx(tmp_path, corpus, {"split": {"heldout": "40%", "labelled_budgets": ["10s"]}}))
+    rows = all_rows(result)
+    groups = {r["speaker"]: r["group"] for r in rows.values()}
+    # Merged groups take the smallest member id.
+    assert groups["alder"] == groups["heron"] == "alder"
+    assert groups["otter"] == groups["plover"] == "otter"
+    assert rows[copy_id]["near_duplicate_of"] == original["clip_id"]
+    assert rows[original["clip_id"]]["near_duplicate_of"] == copy_id
+    assert rows[twin_b]["near_duplicate_of"] == twin_a["clip_id"]
+    assert "near_duplicate" in rows[copy_id]["flags"] and "near_duplicate" in rows[twin_b]["flags"]
+    pairs = {tuple(p["clips"]): p for p in result.summary["near_duplicate_pairs"]}
+    assert pairs[tuple(sorted([copy_id, original["clip_id"]]))]["similarity"] >= 0.85
+    assert pairs[tuple(sorted([twin_b, twin_a["clip_id"]]))]["identical"] is True
+    assert result.summary["gates"]["near_duplicate"] == 4
+    sides = {}
+    for r in rows.values():
+        sides.setdefault(r["group"], set()).add(r["subset"] == "heldout")
+    assert all(len(v) == 1 for v in sides.values())
+
+
+# ---------------------------------------------------------------------------------------
+# Quality gates
+# ---------------------------------------------------------------------------------------
+
+def gated_corpus() -> tuple[Corpus, dict[str, str]]:
+    corpus = Corpus()
+    special = {}
+    rng = np.random.default_rng(11)
+    def rate() -> float:
+        # A natural spread of speaking rate, 8 % around 12 phones/s (common practice, no source).
+        return 12.0 * float(1 + 0.08 * rng.standard_normal())
+
+    for spk in SPEAKERS[:5]:
+        for _ in range(20):  # enough clips for a steady median and MAD
+            corpus.add(spk, float(rng.uniform(2.0, 4.0)), rate=rate())
+        special[f"{spk}:noisy"] = corpus.add(spk, 3.0, snr_db=1.0, rate=rate())
+        special[f"{spk}:narrow"] = corpus.add(spk, 3.0, bandwidth_hz=3300.0, rate=rate())
+        long_text = corpus.add(spk, 9.0, rate=rate())
+        mismatched = corpus.add(spk, 2.0, transcribed=True, accepted=False)
+        # The short clip gets the long clip's transcript: 4.5x its plausible phone count.
+        donor = next(t for t in corpus.text if t["clip_id"] == long_text)
+        corpus.text.append({**donor, "clip_id": mismatched})
+        special[f"{spk}:mismatch"] = mismatched
+    return corpus, special
+
+
+def test_gates_keep_flagged_clips_out_of_labelled_and_scoring(tmp_path: Path) -> None:
+    corpus, special = gated_corpus()
+    result = split.run(make_ctx(tmp_path, corpus, {"split": {"heldout": "40%", "labelled_budgets": ["10h"]}}))
+    rows = all_rows(result)
+    flagged = {cid: kind.split(":")[1] for kind, cid in special.items()}
+    expected_flag = {"noisy": "noisy", "narrow": "narrowband", "mismatch": "rate_outlier"}
+    for cid, kind in flagged.items():
+        assert expected_flag[kind] in rows[cid]["flags"], (cid, rows[cid]["flags"], rows[cid]["rate_z"])
+        assert rows[cid]["subset"] != "labelled"
+    # Correct transcripts are not rate outliers.
+    assert not [c for c, r in rows.items() if "rate_outlier" in r["flags"] and c not in flagged]
+    assert all(abs(r["rate_z"]) <= 3.5 for c, r in rows.items() if r["rate_z"] is not None and c not in flagged)
+    # The 10h tier is short, so every eligible training clip is labelled, and nothing else.
+    for r in rows.values():
+        if r["subset"] != "heldout":
+            assert (r["subset"] == "labelled") == (r["clip_id"] not in flagged)
+    sides = {r["subset"] == "heldout" for c, r in rows.items() if c in flagged}
+    assert sides == {True, False}  # flagged clips on both sides of the split
+    heldout = [r for r in rows.values() if r["subset"] == "heldout"]
+    scored = [r for r in heldout if r["clip_id"] not in flagged]
+    assert result.summary["subsets"]["heldout"]["scored_clips"] == len(scored)
+    assert result.summary["gates"] == {"noisy": 5, "narrowband": 5, "rate_outlier": 5, "near_duplicate": 0,
+                                       "rejected_noisy": 0}
+
+
+def test_narrowband_gate_can_be_a_note_and_noisy_clips_rejected(tmp_path: Path) -> None:
+    corpus, special = gated_corpus()
+    data = {"split": {"heldout": "40%", "labelled_budgets": ["10h"]},
+            "quality": {"narrowband_to_unlabelled": False, "noisy_to_unlabelled": False}}
+    result = split.run(make_ctx(tmp_path, corpus, data))
+    rows = all_rows(result)
+    noisy = {cid for kind, cid in special.items() if kind.endswith(":noisy")}
+    assert {r["clip_id"] for r in result.rejects} == noisy
+    assert all(r["reason"] == "noisy" and r["stage"] == "split" and "min_snr_db" in r["detail"]
+               for r in result.rejects)
+    assert not noisy & set(rows)
+    narrow = [rows[cid] for kind, cid in special.items() if kind.endswith(":narrow")]
+    assert all("narrowband" in r["flags"] for r in narrow)
+    assert any(r["subset"] == "labelled" for r in narrow)
+
+
+def test_notes_and_rejected_transcripts(tmp_path: Path) -> None:
+    corpus = Corpus()
+    for spk in SPEAKERS[:3]:
+        for _ in range(3):
+            corpus.add(spk, 3.0)
+    up = corpus.add("alder", 3.0, upsampled_from=8000, bandwidth_hz=None)
+    limited = corpus.add("heron", 3.0, peak_limited_db=1.5)
+    lost = corpus.add("otter", 3.0, transcribed=True, accepted=False)
+    result = split.run(make_ctx(tmp_path, corpus, {"split": {"labelled_budgets": ["1h"], "keep_transcripts": True}}))
+    rows = all_rows(result)
+    assert "upsampled" in rows[up]["flags"] and "peak_limited" in rows[limited]["flags"]
+    assert "transcript_rejected" in rows[lost]["flags"]
+    assert rows[lost]["subset"] != "labelled" and rows[lost]["transcript"] is None
+    # keep_transcripts keeps them in unlabelled.
+    assert all(r["transcript"] is not None for r in rows.values() if r["subset"] == "unlabelled"
+               and r["clip_id"] != lost)
+
+
+# ---------------------------------------------------------------------------------------
+# Determinism
+# ---------------------------------------------------------------------------------------
+
+def parquet_bytes(table: Any) -> bytes:
+    buf = io.BytesIO()
+    pq.write_table(table, buf, compression="zstd")
+    return buf.getvalue()
+
+
+@pytest.mark.parametrize("selection", ["coverage", "random"])
+def test_same_inputs_in_any_row_order_give_identical_bytes(tmp_path: Path, selection: str) -> None:
+    corpus, _ = random_corpus([5, 6, 4, 7, 3], 99, dup_share=0.15)
+    data = {"split": {"labelled_budgets": ["20s", "1m"], "heldout": "25%", "selection": selection},
+            "quality": NO_RATE_GATE}
+    outputs = []
+    for k in range(3):
+        order = None if k == 0 else np.random.default_rng(k)
+        result = split.run(make_ctx(tmp_path / str(k), corpus, data, order=order))
+        blobs = {rel: parquet_bytes(t) for rel, (_s, t) in result.manifests.items()}
+        blobs["rejects"] = parquet_bytes(result.rejects_table())
+        blobs["ledger"] = (tmp_path / str(k) / "out" / "ledger.tsv").read_bytes()
+        outputs.append(blobs)
+    assert outputs[0] == outputs[1] == outputs[2]
+    check_invariants(corpus, data, result, fresh=True)
+
+
+# ---------------------------------------------------------------------------------------
+# Through the runner, and configuration edge cases
+# ---------------------------------------------------------------------------------------
+
+def test_runner_writes_the_three_manifests_and_rejects(tmp_path: Path) -> None:
+    from pipeline.manifest import read_manifest, read_metadata, write_manifest
+    from pipeline.runner import Runner
+
+    corpus, special = gated_corpus()
+    out = tmp_path / "out"
+    inputs = corpus.inputs()
+    for name in ("audio", "text"):
+        write_manifest(out / "stages" / f"{name}.parquet", name, inputs[name], metadata={"stage": name})
+    cfg = build_config({"seed": 7, "split": {"labelled_budgets": ["30s"]}, "quality": {"noisy_to_unlabelled": False}})
+    (tmp_path / "raw").mkdir()
+    Runner(tmp_path / "raw", out, cfg, workers=1).prepare(("split",))
+    counts = {s: read_manifest(out / split.SUBSET_PATHS[s]).num_rows for s in split.SUBSETS}
+    rejected = read_manifest(out / "manifests" / "rejected.parquet").to_pylist()
+    assert sum(counts.values()) + len(rejected) == len(corpus.audio)
+    assert {r["reason"] for r in rejected} == {"noisy"} and len(rejected) == 5
+    assert read_metadata(out / split.MAIN_MANIFEST)["stage"] == "split"
+    assert (out / "ledger.tsv").exists() and (out / "stages" / "split.summary.json").exists()
+
+
+def test_zero_heldout_needs_no_second_group_and_budgets_are_unique(tmp_path: Path) -> None:
+    result = split.run(make_ctx(tmp_path, single_speaker_corpus(), {"split": {"heldout": "0%"}}))
+    assert rows_by_subset(result)["heldout"] == [] and rows_by_subset(result)["labelled"]
+    with pytest.raises(UsageError, match=r"split.labelled_budgets.*1h appears twice"):
+        split.run(make_ctx(tmp_path, single_speaker_corpus(), {"split": {"heldout": "0%",
+                                                                          "labelled_budgets": ["1h", "1h"]}}))
