@@ -1,0 +1,229 @@
+"""Split ledger: format round trip, messages for malformed files, where it lives (never
+inside RAW), and what a rebuild does with it (budget shrink, removals, returning groups)."""
+
+from __future__ import annotations
+
+import logging
+from pathlib import Path
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from pipeline import split
+from pipeline.config import build_config
+from pipeline.errors import UsageError
+from pipeline.ledger import (
+    MAGIC,
+    ClipRecord,
+    Ledger,
+    format_ledger,
+    locate_ledger,
+    parse_ledger,
+    read_ledger,
+)
+from tests.conftest import tree_hash
+from tests.test_split import SPEAKERS, Corpus, all_rows, make_ctx
+
+SETTINGS = {"group_by": "speaker", "seed": "7", "heldout": "10%", "budgets": "10m,1h", "selection": "coverage"}
+HEADER = "\t".join([MAGIC] + [f"{k}={v}" for k, v in SETTINGS.items()])
+
+ids = st.text("abcdefghijklmnopqrstuvwxyz0123456789_-", min_size=1, max_size=12)
+
+
+@st.composite
+def ledgers(draw: st.DrawFn) -> Ledger:
+    budgets = draw(st.sampled_from([(), ("10m",), ("10m", "1h"), ("30s", "5m", "2h")]))
+    groups = draw(st.dictionaries(ids, st.sampled_from(["heldout", "training"]), min_size=1, max_size=6))
+    clips = {}
+    for cid in draw(st.lists(ids, unique=True, max_size=20)):
+        group = draw(st.sampled_from(sorted(groups)))
+        subset = draw(st.sampled_from(["labelled", "unlabelled", "heldout"] if budgets else ["unlabelled", "heldout"]))
+        tiers: tuple[str, ...] = ()
+        if subset == "labelled":
+            tiers = budgets[draw(st.integers(0, len(budgets) - 1)):]
+        clips[cid] = ClipRecord(subset, tiers, group)
+    settings_ = dict(SETTINGS, budgets=",".join(budgets) or "-")
+    return Ledger(settings_, groups, clips)
+
+
+@settings(max_examples=100, deadline=None)
+@given(ledger=ledgers())
+def test_round_trip(ledger: Ledger) -> None:
+    text = format_ledger(ledger)
+    back = parse_ledger(text, source="x.tsv")
+    assert back == ledger
+    assert format_ledger(back) == text
+    lines = text.splitlines()
+    assert lines[0].startswith(MAGIC + "\t")
+    keys = [(ln.split("\t")[0], ln.split("\t")[1]) for ln in lines[1:]]
+    assert keys == sorted(keys)  # sorted by kind, then id
+    assert all(len(ln.split("\t")) == (5 if ln.startswith("clip\t") else 3) for ln in lines[1:])
+
+
+@pytest.mark.parametrize(("body", "line", "expected"), [
+    ("", 1, "expected the header line"),
+    ("# some other file\n", 1, "expected the header line"),
+    (HEADER.replace("\tseed=7", "") + "\n", 1, "seed=VALUE"),
+    (HEADER.replace("budgets=10m,1h", "budgets=ten") + "\n", 1, "comma-separated durations"),
+    (HEADER + "\ngroup\talder\n", 2, "'group<TAB>id<TAB>side'"),
+    (HEADER + "\ngroup\talder\tleft\n", 2, "a side: heldout or training"),
+    (HEADER + "\ngroup\talder\ttraining\ngroup\talder\theldout\n", 3, "each group id once"),
+    (HEADER + "\nspeaker\talder\ttraining\n", 2, "a row starting with 'clip' or 'group'"),
+    (HEADER + "\nclip\ta-1\tlabelled\t10m,1h\n", 2, "5 tab-separated fields"),
+    (HEADER + "\nclip\ta-1\ttrain\t-\talder\ngroup\talder\ttraining\n", 2, "labelled, unlabelled or heldout"),
+    (HEADER + "\nclip\ta-1\tlabelled\t-\talder\ngroup\talder\ttraining\n", 2, "the tiers of a labelled clip"),
+    (HEADER + "\nclip\ta-1\tunlabelled\t1h\talder\ngroup\talder\ttraining\n", 2, "only labelled clips have tiers"),
+    (HEADER + "\nclip\ta-1\tlabelled\t10m\talder\ngroup\talder\ttraining\n", 2, "as tiers are nested"),
+    (HEADER + "\nclip\ta-1\tlabelled\t1h,10m\talder\ngroup\talder\ttraining\n", 2, "as tiers are nested"),
+    (HEADER + "\nclip\ta-1\theldout\t-\twren\ngroup\talder\ttraining\n", 2, "its own 'group' row"),
+    (HEADER + "\nclip\ta-1\theldout\t-\talder\nclip\ta-1\theldout\t-\talder\ngroup\talder\theldout\n", 3,
+     "each clip id once"),
+])
+def test_malformed_ledger_names_file_line_and_expectation(tmp_path: Path, body: str, line: int, expected: str) -> None:
+    path = tmp_path / "corpus.ledger.tsv"
+    path.write_text(body, encoding="utf-8")
+    with pytest.raises(UsageError) as info:
+        read_ledger(path)
+    message = str(info.value)
+    assert message.startswith(f"{path}: line {line}: found ")
+    assert expected in message
+    assert "--fresh" in message
+
+
+def test_read_ledger_missing_crlf_and_bad_bytes(tmp_path: Path) -> None:
+    assert read_ledger(tmp_path / "none.tsv") is None
+    path = tmp_path / "l.tsv"
+    path.write_bytes((HEADER + "\r\n\r\ngroup\talder\ttraining\r\n").encode())
+    assert read_ledger(path).groups == {"alder": "training"}
+    path.write_bytes((HEADER + "\ngroup\tal\xe9der\ttraining\n").encode("latin-1"))
+    with pytest.raises(UsageError, match=r"line 2: found bytes that are not UTF-8"):
+        read_ledger(path)
+
+
+# ---------------------------------------------------------------------------------------
+# Where the ledger lives
+# ---------------------------------------------------------------------------------------
+
+def test_location_rules(tmp_path: Path) -> None:
+    raw, out = tmp_path / "raw", tmp_path / "out"
+    raw.mkdir()
+    conf = tmp_path / "conf" / "field.toml"
+    cfg = build_config({}, source=str(conf), base_dir=str(conf.parent))
+    assert locate_ledger(cfg, raw=raw, out=out) == (conf.parent / "field.ledger.tsv", "beside the config file")
+    assert locate_ledger(build_config({}, source="<defaults>"), raw=raw, out=out)[0] == out / "ledger.tsv"
+    assert locate_ledger(build_config({}), raw=raw, out=out)[0] == out / "ledger.tsv"
+    inside = raw / "corpus.toml"
+    cfg = build_config({}, source=str(inside), base_dir=str(raw))
+    path, why = locate_ledger(cfg, raw=raw, out=out)
+    assert path == out / "ledger.tsv" and "inside RAW" in why
+    cfg = build_config({"split": {"ledger": "../kept/split.tsv"}}, source=str(inside), base_dir=str(raw))
+    assert locate_ledger(cfg, raw=raw, out=out)[0] == raw / ".." / "kept" / "split.tsv"
+    cfg = build_config({"split": {"ledger": "sub/split.tsv"}}, source=str(inside), base_dir=str(raw))
+    with pytest.raises(UsageError, match=r"key 'split.ledger' has value 'sub/split.tsv'.*inside RAW"):
+        locate_ledger(cfg, raw=raw, out=out)
+
+
+def small_corpus(speakers: int = 4, clips: int = 6) -> Corpus:
+    corpus = Corpus()
+    for spk in SPEAKERS[:speakers]:
+        for k in range(clips):
+            corpus.add(spk, 3.0 + k)
+    return corpus
+
+
+def test_stage_never_writes_inside_raw(tmp_path: Path, caplog: pytest.LogCaptureFixture) -> None:
+    raw = tmp_path / "raw"
+    (raw / "alder").mkdir(parents=True)
+    (raw / "alder" / "a.txt").write_text("a line\n", encoding="utf-8")
+    config = raw / "corpus.toml"
+    config.write_text("seed = 7\n", encoding="utf-8")
+    before = tree_hash(raw)
+    caplog.set_level(logging.INFO)
+    result = split.run(make_ctx(tmp_path, small_corpus(), {"split": {"labelled_budgets": ["20s"]}}, source=str(config)))
+    assert tree_hash(raw) == before
+    ledger = read_ledger(tmp_path / "out" / "ledger.tsv")
+    assert set(ledger.clips) == set(all_rows(result))
+    assert result.summary["ledger"]["path"] == str(tmp_path / "out" / "ledger.tsv")
+    assert any("inside RAW" in r.getMessage() for r in caplog.records)
+    with pytest.raises(UsageError, match="inside RAW"):
+        split.run(make_ctx(tmp_path, small_corpus(), {"split": {"ledger": "l.tsv"}}, source=str(config)))
+    assert tree_hash(raw) == before
+
+
+# ---------------------------------------------------------------------------------------
+# Rebuilds
+# ---------------------------------------------------------------------------------------
+
+def test_stage_ledger_matches_manifests_and_reruns_unchanged(tmp_path: Path) -> None:
+    corpus = small_corpus()
+    data = {"split": {"labelled_budgets": ["10s", "30s"], "heldout": "25%"}}
+    first = split.run(make_ctx(tmp_path, corpus, data))
+    path = tmp_path / "out" / "ledger.tsv"
+    text = path.read_text(encoding="utf-8")
+    ledger = parse_ledger(text, source=str(path))
+    for cid, row in all_rows(first).items():
+        assert ledger.clips[cid] == ClipRecord(row["subset"], tuple(row["tiers"]), row["group"])
+        side = "heldout" if row["subset"] == "heldout" else "training"
+        assert ledger.groups[row["group"]] == side
+    again = split.run(make_ctx(tmp_path, corpus, data))
+    assert path.read_text(encoding="utf-8") == text
+    assert all_rows(again) == all_rows(first)
+    assert again.summary["changes"]["added"] == {"labelled": 0, "unlabelled": 0, "heldout": 0}
+    assert again.summary["ledger"]["read"] is True
+
+
+def test_budget_shrink_drops_clips_added_last_and_says_so(tmp_path: Path, caplog: pytest.LogCaptureFixture) -> None:
+    corpus = small_corpus(speakers=5, clips=10)
+    split.run(make_ctx(tmp_path, corpus, {"split": {"labelled_budgets": ["20s", "2m"], "heldout": "20%"}}))
+    before = all_rows(split.run(make_ctx(tmp_path, corpus, {"split": {"labelled_budgets": ["20s", "2m"],
+                                                                      "heldout": "20%"}})))
+    caplog.set_level(logging.INFO)
+    result = split.run(make_ctx(tmp_path, corpus, {"split": {"labelled_budgets": ["20s", "1m"], "heldout": "20%"}}))
+    after = all_rows(result)
+    messages = [r.getMessage() for r in caplog.records]
+    assert any("budget 1m is smaller than the ledger's 2m" in m and "left tier 1m" in m for m in messages), messages
+    small_before = {c for c, r in before.items() if "20s" in r["tiers"]}
+    big_before = {c for c, r in before.items() if "2m" in r["tiers"]}
+    small_after = {c for c, r in after.items() if "20s" in r["tiers"]}
+    big_after = {c for c, r in after.items() if "1m" in r["tiers"]}
+    assert small_after == small_before  # the unchanged tier keeps every clip
+    assert small_after <= big_after <= big_before  # the shrunk tier only loses clips
+    total = sum(after[c]["duration_s"] for c in big_after)
+    assert 60.0 <= total < 60.0 + max(after[c]["duration_s"] for c in big_after)
+    left = big_before - big_after
+    assert left and all(after[c]["subset"] == "unlabelled" for c in left)
+    changes = result.summary["changes"]
+    assert changes["renamed_tiers"] == {"1m": "2m"}
+    assert changes["tiers_left"] == {"1m": len(left)} and changes["moved"] == {"labelled->unlabelled": len(left)}
+    # Held-out is untouched by a budget change.
+    assert {c for c, r in after.items() if r["subset"] == "heldout"} == \
+        {c for c, r in before.items() if r["subset"] == "heldout"}
+
+
+def test_removed_clips_and_returning_groups(tmp_path: Path) -> None:
+    corpus = small_corpus(speakers=5, clips=4)
+    data = {"split": {"labelled_budgets": ["20s"], "heldout": "20%"}}
+    first = all_rows(split.run(make_ctx(tmp_path, corpus, data)))
+    held = sorted({r["speaker"] for r in first.values() if r["subset"] == "heldout"})
+    assert held
+    gone = {c for c, r in first.items() if r["speaker"] == held[0]}
+    second = split.run(make_ctx(tmp_path, corpus.subset(set(first) - gone), data))
+    assert second.summary["changes"]["removed"]["heldout"] == len(gone)
+    assert read_ledger(tmp_path / "out" / "ledger.tsv").groups[held[0]] == "heldout"  # kept for its return
+    # The speaker comes back with new recordings: they follow the group's side.
+    returning = corpus.subset(set(first) - gone)
+    new_ids = {returning.add(held[0], 5.0) for _ in range(3)}
+    third = all_rows(split.run(make_ctx(tmp_path, returning, data)))
+    assert all(third[c]["subset"] == "heldout" for c in new_ids)
+
+
+def test_fresh_ignores_a_malformed_ledger_and_rewrites_it(tmp_path: Path) -> None:
+    path = tmp_path / "out" / "ledger.tsv"
+    path.parent.mkdir(parents=True)
+    path.write_text("not a ledger\n", encoding="utf-8")
+    with pytest.raises(UsageError, match=r"ledger.tsv: line 1"):
+        split.run(make_ctx(tmp_path, small_corpus(), {}))
+    result = split.run(make_ctx(tmp_path, small_corpus(), {}, fresh=True))
+    assert result.summary["ledger"] == {"path": str(path), "where": "no config file", "read": False, "fresh": True}
+    assert set(read_ledger(path).clips) == set(all_rows(result))
