@@ -61,7 +61,7 @@ def main() -> int:
     work.mkdir(parents=True, exist_ok=True)
     os.chdir(REPO)
 
-    facts = make_workload(work / "workload", Spec(minutes=args.minutes))
+    facts = make_workload(work / "workload", Spec(minutes=args.minutes, long_minutes=min(3.0, args.minutes / 10)))
     raw = work / "workload" / "raw"
     audio_s = float(facts["seconds"])
     results: dict[str, object] = {"audio_hours": audio_s / 3600, "files": facts["files"], "workers": args.workers}

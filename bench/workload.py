@@ -81,7 +81,11 @@ def _condition(speech: np.ndarray, rate: int, fmt: tuple[str, str, int, int], rn
 
 def _write(path: Path, audio: np.ndarray, fmt: tuple[str, str, int, int]) -> None:
     path.parent.mkdir(parents=True, exist_ok=True)
-    sf.write(path, audio, fmt[2], format=fmt[0], subtype=fmt[1])
+    channels = 1 if audio.ndim == 1 else audio.shape[1]
+    # Written in blocks: one long write of Vorbis crashes libsndfile 1.2.2 (seen here).
+    with sf.SoundFile(path, "w", samplerate=fmt[2], channels=channels, format=fmt[0], subtype=fmt[1]) as fh:
+        for start in range(0, len(audio), 65536):
+            fh.write(audio[start : start + 65536])
 
 
 def _generate(raw: Path, spec: Spec, *, seconds: float, seed: int, prefix: str, long_count: int) -> float:

@@ -187,11 +187,16 @@ def scan_source(path: str, *, cfg: AudioConfig, spool: Spool, sample_rate: int) 
               StreamResampler(in_rate=sample_rate, out_rate=ANALYSIS_SAMPLE_RATE, quality=cfg.resample_quality))
     vad = VoiceActivityStream(sample_rate=ANALYSIS_SAMPLE_RATE, frame_ms=cfg.vad_frame_ms,
                               aggressiveness=cfg.vad_aggressiveness)
-    psd = LongTermPsd(sample_rate=sample_rate)
+    # Bandwidth is measured on the stream at the output rate: what matters is what the
+    # corpus will hold (telephone audio upsampled into it shows as ~4 kHz), and it is
+    # cheaper than at a 44.1 or 48 kHz source rate.
+    psd = LongTermPsd(sample_rate=cfg.sample_rate) if cfg.quality_measures else None
 
     def feed(mono: np.ndarray, *, last: bool) -> None:
         resampled = out_rs.process(mono, last=last)
         spool.append(resampled)
+        if psd is not None:
+            psd.push(resampled)
         scan.out_samples += len(resampled)
         vad.push(resampled if vad_rs is None else vad_rs.process(mono, last=last))
 
@@ -207,12 +212,11 @@ def scan_source(path: str, *, cfg: AudioConfig, spool: Spool, sample_rate: int) 
             mono = downmix(block, channel=cfg.channel)
             scan.dc_sum += float(mono.sum(dtype=np.float64))
             scan.frames += len(mono)
-            psd.push(mono)
             feed(mono, last=False)
     feed(np.zeros(0, dtype=np.float32), last=True)
     analysis = vad.result()
     scan.decisions, scan.energy_db = analysis.decisions, analysis.energy_db
-    scan.bandwidth_hz = psd.bandwidth_hz()
+    scan.bandwidth_hz = psd.bandwidth_hz() if psd is not None else None
     return scan
 
 
@@ -409,7 +413,12 @@ def _write_clip(job: AudioJob, clip: np.ndarray, placed: dict[str, Any]) -> dict
     limit = 1.0 if cfg.true_peak else min(1.0, 10 ** (cfg.peak_ceiling_dbfs / 20))
     pcm = float_to_pcm16(clip.astype(np.float64) * 10 ** (gain_db / 20), peak_limit=limit)
     written = pcm.astype(np.float32) / np.float32(PCM16_SCALE)
-    loudness_out = loudness.integrated_loudness(written, sample_rate=rate)
+    # BS.1770 loudness is homogeneous: a gain g moves every block, and so the relative
+    # gate, by 20 log10 g. Only the fixed -70 LUFS absolute gate could react, and it
+    # cannot once the clip is louder than before, so the written clip's loudness is the
+    # measured input plus the gain (16-bit rounding adds < 0.01 LU; the tests re-measure
+    # written files). Measuring again would cost as much as the first measurement.
+    loudness_out = loudness_in + gain_db if gain_db >= 0 else loudness.integrated_loudness(written, sample_rate=rate)
 
     audio_path = f"{AUDIO_DIR}/{placed['speaker']}/{clip_id}.{cfg.format}"
     target = Path(job.out) / audio_path
@@ -427,8 +436,9 @@ def _write_clip(job: AudioJob, clip: np.ndarray, placed: dict[str, Any]) -> dict
         "gain_db": gain_db,
         "peak_limited_db": max(0.0, shortfall_db),
         "peak_dbfs": peak_of(written),
-        "snr_db": _finite_or_none(quality.wada_snr_db(clip)),
-        "fingerprint": quality.encode_fingerprint(quality.fingerprint(written, sample_rate=rate)),
+        "snr_db": _finite_or_none(quality.wada_snr_db(clip)) if cfg.quality_measures else None,
+        "fingerprint": (quality.encode_fingerprint(quality.fingerprint(written, sample_rate=rate))
+                        if cfg.quality_measures else ""),
     }
     return {"row": row, "stat": [st.st_size, st.st_mtime_ns, st.st_ino]}
 
@@ -479,6 +489,24 @@ def remove_orphans(folder: Path, keep: set[str], *, base: Path) -> int:
     return removed
 
 
+def warm_up(cfg: AudioConfig) -> None:
+    """Import the per-file libraries and build their tables once, in this process.
+
+    Worker processes are forked from here, so they start with all of it in memory
+    instead of each paying about 3 s of imports and table building per process.
+    """
+    import soundfile  # noqa: F401
+    import soxr  # noqa: F401
+    import webrtcvad  # noqa: F401
+
+    from pipeline import loudness, quality
+
+    loudness.k_weighting_sos(sample_rate=cfg.sample_rate)
+    if cfg.quality_measures:
+        quality.wada_snr_db(np.linspace(-1.0, 1.0, 1024, dtype=np.float32))
+        quality.fingerprint(np.zeros(cfg.sample_rate, dtype=np.float32), sample_rate=cfg.sample_rate)
+
+
 @functools.cache
 def _code_version() -> str:
     return code_version(sys.modules[__name__])
@@ -515,6 +543,8 @@ def run(ctx: StageContext) -> StageResult:
             todo.append(i)
     jobs = [AudioJob(sources[i], str(raw / sources[i]["source_path"]), str(out), str(out / TMP_DIR), cfg)
             for i in todo]
+    if jobs:
+        warm_up(cfg)
     fresh = map_ordered(condition_file, jobs, workers=ctx.workers, scheduler=ctx.scheduler,
                         desc="audio", progress=ctx.progress)
     for i, outcome in zip(todo, fresh, strict=True):

@@ -67,6 +67,7 @@ class AudioConfig:
     peak_ceiling_dbfs: float
     true_peak: bool
     format: str
+    quality_measures: bool
 
 
 @dataclass(frozen=True)

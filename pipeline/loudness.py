@@ -11,6 +11,7 @@ the filtered, squared signal, so the cost is linear in the clip length.
 
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -91,6 +92,16 @@ def _peak_to_dbfs(peak: float) -> float:
 
 
 def k_weighting_sos(*, sample_rate: int) -> np.ndarray:
+    """K-weighting second-order sections for ``sample_rate`` (see ``_k_weighting_sos``).
+
+    Designed once per rate and cached: the design costs more than filtering a clip.
+    """
+    _check_sample_rate(sample_rate)  # before the cache, which would take 16000.0 for 16000
+    return _k_weighting_sos(sample_rate).copy()
+
+
+@functools.cache
+def _k_weighting_sos(sample_rate: int) -> np.ndarray:
     """K-weighting pre-filter of ITU-R BS.1770-4 as second-order sections.
 
     Parameters
