@@ -304,8 +304,8 @@ def fill_tiers(
     Returns
     -------
     list of TierOutcome
-        One per plan, in order; ``clips`` in selection order, each tier's clips
-        a superset of the previous tier's.
+        One per plan, in order; ``clips`` starts with the previous tier's clips,
+        then the kept ones, then those added in selection order.
 
     Examples
     --------
@@ -327,9 +327,12 @@ def fill_tiers(
         prev = list(members)
         inside = set(prev)
         kept = [items[c] for c in sorted(plan.kept) if c not in inside]
-        order = selection_order(kept, method=method, budget_s=plan.budget_s,
-                                chosen=[items[c] for c in prev], seed=seed, stop_s=math.inf)
-        base = prev + order
+        if plan.may_drop:  # only a drop needs to know which kept clips came last
+            kept_ids = selection_order(kept, method=method, budget_s=plan.budget_s,
+                                       chosen=[items[c] for c in prev], seed=seed, stop_s=math.inf)
+        else:
+            kept_ids = [c.clip_id for c in kept]
+        base = prev + kept_ids
         dropped: list[str] = []
         if plan.may_drop:
             total = math.fsum(durations[c] for c in base)
