@@ -29,12 +29,12 @@ from pipeline import __version__
 from pipeline.errors import ManifestError
 from pipeline.fsio import write_text_atomic
 from pipeline.manifest import read_manifest
+from pipeline.split import parse_duration_s
 from pipeline.validate import (
     CONFIG_FILE,
     REJECTED_FILE,
     STAGES,
     SUBSETS,
-    budget_seconds,
     check_out_folder,
     load_resolved_config,
     phone_inventory,
@@ -207,12 +207,12 @@ def build_summary(out: Path, *, clips: pd.DataFrame | None = None) -> dict[str, 
     inventory = {p for p in (inventory or set()) if p != boundary}
     labelled = clips[clips["subset_file"] == "labelled"]
     tiers = {}
-    for tier in sorted(config.split.labelled_budgets, key=budget_seconds):
+    for tier in sorted(config.split.labelled_budgets, key=parse_duration_s):
         part = labelled[labelled["tiers"].map(lambda ts, t=tier: t in ts).astype(bool)]
         counts = _phone_counts(part["phones"], boundary)
         tiers[tier] = {
             **_describe(part),
-            "budget_s": budget_seconds(tier),
+            "budget_s": parse_duration_s(tier),
             "phones": len(counts),
             "phone_coverage": round(len(set(counts) & inventory) / len(inventory), 4) if inventory else None,
             "missing_phones": sorted(inventory - set(counts)),

@@ -16,7 +16,6 @@ from __future__ import annotations
 import json
 import math
 import os
-import re
 import time
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
@@ -39,6 +38,7 @@ from pipeline.manifest import (
     read_metadata,
 )
 from pipeline.schemas_io import SCHEMA_DIR
+from pipeline.split import parse_duration_s
 
 SUBSETS = ("labelled", "unlabelled", "heldout")
 TRAINING = ("labelled", "unlabelled")
@@ -53,37 +53,11 @@ LOUDNESS_TOLERANCE_LU = 0.5
 # quality.min_snr_db), a speaking rate that betrays a mismatched transcript, a transcript
 # the text stage set aside. Narrowband joins them when quality.narrowband_to_unlabelled.
 ALWAYS_GATED_FLAGS = ("noisy", "rate_outlier", "transcript_rejected")
-_BUDGET = re.compile(r"^([0-9]+(?:\.[0-9]+)?)(s|m|h)$")
-_UNIT_S = {"s": 1.0, "m": 60.0, "h": 3600.0}
 _FOUND_CHARS = 70
 
 
 def subset_file(name: str) -> str:
     return f"manifests/{name}.parquet"
-
-
-def budget_seconds(text: str) -> float:
-    """Seconds in a duration budget such as ``"10m"``, ``"1.5h"`` or ``"90s"``.
-
-    Parameters
-    ----------
-    text : str
-        A number followed by ``s``, ``m`` or ``h`` (the pattern of split.labelled_budgets).
-
-    Returns
-    -------
-    float
-        The duration in seconds.
-
-    Examples
-    --------
-    >>> budget_seconds("1.5h")
-    5400.0
-    """
-    match = _BUDGET.match(text)
-    if not match:
-        raise ParameterError(f"budget={text!r} is not a number followed by s, m or h")
-    return float(match.group(1)) * _UNIT_S[match.group(2)]
 
 
 @dataclass
@@ -482,7 +456,7 @@ def check_durations(s: _Subsets, config: Config) -> list[Problem]:
 
 
 def check_tiers(s: _Subsets, config: Config) -> list[Problem]:
-    budgets = sorted(config.split.labelled_budgets, key=budget_seconds)
+    budgets = sorted(config.split.labelled_budgets, key=parse_duration_s)
     problems: list[Problem] = []
     for name in SUBSETS:
         if not s.usable(name, "tiers"):
@@ -522,7 +496,7 @@ def _check_budgets(s: _Subsets, budgets: list[str], member: dict[str, np.ndarray
     # the budget; either way it lands within the longest clip of the subset.
     slack = float(durations.max()) if durations.size else config.audio.max_clip_s
     for budget in budgets:
-        target = budget_seconds(budget)
+        target = parse_duration_s(budget)
         total = float(durations[member[budget]].sum())
         found = f"{total:.1f} s in {int(member[budget].sum())} clips"
         if total > target + slack:

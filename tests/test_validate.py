@@ -27,7 +27,6 @@ from pipeline.errors import UsageError
 from pipeline.manifest import Problem, empty_table, table_from_rows
 from pipeline.validate import (
     bench_validate,
-    budget_seconds,
     exit_code,
     format_table,
     validate_out,
@@ -346,12 +345,6 @@ def test_tier_short_of_budget_is_a_warning(out: Out) -> None:
     out.set_config(split={"labelled_budgets": ["4s", "8s", "1h"]})
     problem = only(out.validate(), "tier_budget", LAB, None, "tiers", severity="warning")
     assert problem.found.startswith("tier 1h: 8.0 s")
-
-
-def test_budget_seconds_reads_the_config_pattern() -> None:
-    assert budget_seconds("10m") == 600.0
-    assert budget_seconds("1.5h") == 5400.0
-    assert budget_seconds("90s") == 90.0
 
 
 # ----------------------------------------------------------------------------- text and phones
