@@ -50,6 +50,7 @@ def ledgers(draw: st.DrawFn) -> Ledger:
 @settings(max_examples=100, deadline=None)
 @given(ledger=ledgers())
 def test_round_trip(ledger: Ledger) -> None:
+    # Source: the format in the docstring of pipeline/ledger.py and docs/split.md, The ledger.
     text = format_ledger(ledger)
     back = parse_ledger(text, source="x.tsv")
     assert back == ledger
@@ -81,6 +82,7 @@ def test_round_trip(ledger: Ledger) -> None:
      "each clip id once"),
 ])
 def test_malformed_ledger_names_file_line_and_expectation(tmp_path: Path, body: str, line: int, expected: str) -> None:
+    # Source: RULES.md / README.md message style: file, line, what was found and what was expected.
     path = tmp_path / "corpus.ledger.tsv"
     path.write_text(body, encoding="utf-8")
     with pytest.raises(UsageError) as info:
@@ -92,6 +94,7 @@ def test_malformed_ledger_names_file_line_and_expectation(tmp_path: Path, body: 
 
 
 def test_read_ledger_missing_crlf_and_bad_bytes(tmp_path: Path) -> None:
+    # Source: UTF-8 (RFC 3629): 0xE9 alone is not a valid UTF-8 sequence.
     assert read_ledger(tmp_path / "none.tsv") is None
     path = tmp_path / "l.tsv"
     path.write_bytes((HEADER + "\r\n\r\ngroup\talder\ttraining\r\n").encode())
@@ -106,6 +109,7 @@ def test_read_ledger_missing_crlf_and_bad_bytes(tmp_path: Path) -> None:
 # ---------------------------------------------------------------------------------------
 
 def test_location_rules(tmp_path: Path) -> None:
+    # Source: the split.ledger description in schemas/config.schema.json and README.md (never inside RAW).
     raw, out = tmp_path / "raw", tmp_path / "out"
     raw.mkdir()
     conf = tmp_path / "conf" / "field.toml"
@@ -133,6 +137,7 @@ def small_corpus(speakers: int = 4, clips: int = 6) -> Corpus:
 
 
 def test_stage_never_writes_inside_raw(tmp_path: Path, caplog: pytest.LogCaptureFixture) -> None:
+    # Source: README.md, "RAW is only ever read"; the tree is hashed with hashlib before and after.
     raw = tmp_path / "raw"
     (raw / "alder").mkdir(parents=True)
     (raw / "alder" / "a.txt").write_text("a line\n", encoding="utf-8")
@@ -156,6 +161,7 @@ def test_stage_never_writes_inside_raw(tmp_path: Path, caplog: pytest.LogCapture
 # ---------------------------------------------------------------------------------------
 
 def test_stage_ledger_matches_manifests_and_reruns_unchanged(tmp_path: Path) -> None:
+    # Source: docs/split.md, The ledger: one row per clip and group, unchanged when nothing changed.
     corpus = small_corpus()
     data = {"split": {"labelled_budgets": ["10s", "30s"], "heldout": "25%"}}
     first = split.run(make_ctx(tmp_path, corpus, data))
@@ -174,6 +180,7 @@ def test_stage_ledger_matches_manifests_and_reruns_unchanged(tmp_path: Path) -> 
 
 
 def test_budget_shrink_drops_clips_added_last_and_says_so(tmp_path: Path, caplog: pytest.LogCaptureFixture) -> None:
+    # Source: docs/split.md, The ledger: a shrunk budget drops the clips added last, within one clip.
     corpus = small_corpus(speakers=5, clips=10)
     split.run(make_ctx(tmp_path, corpus, {"split": {"labelled_budgets": ["20s", "2m"], "heldout": "20%"}}))
     before = all_rows(split.run(make_ctx(tmp_path, corpus, {"split": {"labelled_budgets": ["20s", "2m"],
@@ -202,6 +209,7 @@ def test_budget_shrink_drops_clips_added_last_and_says_so(tmp_path: Path, caplog
 
 
 def test_removed_clips_and_returning_groups(tmp_path: Path) -> None:
+    # Source: docs/split.md, The ledger: removed clips are counted; group rows outlive their clips.
     corpus = small_corpus(speakers=5, clips=4)
     data = {"split": {"labelled_budgets": ["20s"], "heldout": "20%"}}
     first = all_rows(split.run(make_ctx(tmp_path, corpus, data)))
@@ -219,6 +227,7 @@ def test_removed_clips_and_returning_groups(tmp_path: Path) -> None:
 
 
 def test_fresh_ignores_a_malformed_ledger_and_rewrites_it(tmp_path: Path) -> None:
+    # Source: the --fresh help of pipeline/cli.py: ignore the split ledger.
     path = tmp_path / "out" / "ledger.tsv"
     path.parent.mkdir(parents=True)
     path.write_text("not a ledger\n", encoding="utf-8")

@@ -116,6 +116,7 @@ def documented_greedy(cands: list[Candidate], *, budget_s: float, chosen: list[C
 @settings(max_examples=40, deadline=None)
 @given(seed=st.integers(0, 2**32 - 1), n=st.integers(1, 30), budget=st.floats(1.0, 60.0), n_chosen=st.integers(0, 3))
 def test_lazy_greedy_matches_the_documented_plain_greedy(seed: int, n: int, budget: float, n_chosen: int) -> None:
+    # Source: the score formula of docs/split.md, evaluated in exact fractions.
     rng = np.random.default_rng(seed)
     inventory = ["AA", "IY", "K", "S", "T", "N", "M"]
     cands = [Candidate(f"c{k:02d}", f"s{int(rng.integers(3))}", float(rng.choice([1.0, 2.0, 2.5, 4.0])),
@@ -126,6 +127,7 @@ def test_lazy_greedy_matches_the_documented_plain_greedy(seed: int, n: int, budg
 
 
 def test_order_ignores_input_order_and_ties_go_to_smaller_id() -> None:
+    # Source: docs/split.md, Labelled tiers: ties go to the smaller clip_id.
     cands = cmu_corpus(3, clips=80)
     forward = coverage_order(cands, budget_s=40.0)
     assert coverage_order(list(reversed(cands)), budget_s=40.0) == forward
@@ -136,6 +138,7 @@ def test_order_ignores_input_order_and_ties_go_to_smaller_id() -> None:
 
 
 def test_speakers_are_balanced_when_content_is_alike() -> None:
+    # Source: docs/split.md, Labelled tiers: the speaker term of the score.
     # Identical phone content from a dominant and a rare speaker: the penalty on a
     # speaker's share must keep taking the rare speaker's clips.
     cands = [Candidate(f"a{k:02d}", "many", 2.0, ("AA", "K", "S")) for k in range(20)]
@@ -154,6 +157,7 @@ def test_random_order_is_the_numpy_permutation_of_sorted_ids() -> None:
 
 
 def test_take_until_stops_at_the_budget_within_one_clip() -> None:
+    # Source: docs/split.md, Labelled tiers: stop when the total reaches the budget.
     durations = {"a": 3.0, "b": 5.0, "c": 2.0, "d": 9.0}
     taken = take_until(["a", "b", "c", "d"], durations=durations, start_s=1.0, budget_s=9.0)
     assert taken == ["a", "b"]  # 1 + 3 + 5 = 9 reaches the budget exactly
@@ -166,6 +170,7 @@ def test_take_until_stops_at_the_budget_within_one_clip() -> None:
 @given(seed=st.integers(0, 2**32 - 1), budgets=st.lists(st.floats(1.0, 120.0), min_size=1, max_size=4),
        method=st.sampled_from(["coverage", "random"]))
 def test_fill_tiers_nests_and_meets_budgets(seed: int, budgets: list[float], method: str) -> None:
+    # Source: docs/split.md, Labelled tiers: nested, within one clip of the budget or short.
     cands = cmu_corpus(seed % 1000, clips=40)
     items = {c.clip_id: c for c in cands}
     plans = [TierPlan(f"t{k}", b) for k, b in enumerate(sorted(budgets))]
@@ -184,6 +189,7 @@ def test_fill_tiers_nests_and_meets_budgets(seed: int, budgets: list[float], met
 
 
 def test_fill_tiers_keeps_drops_last_and_prefers_labelled_clips() -> None:
+    # Source: docs/split.md, The ledger: kept clips stay, a shrink drops the last added.
     cands = {c: Candidate(c, "s" + c[-1], 10.0, ("AA", c.upper())) for c in ("k1", "k2", "k3", "l1", "n1", "n2", "r1")}
     # Shrink: the tier kept three clips of 10 s for a budget now 15 s; the two kept
     # first stay (20 s >= 15 s) and the last in order leaves.
@@ -205,6 +211,7 @@ def test_fill_tiers_keeps_drops_last_and_prefers_labelled_clips() -> None:
 
 
 def test_bad_parameters_name_themselves() -> None:
+    # Source: RULES.md, Style: a ParameterError names the parameter and the value.
     c = [Candidate("a", "s", 1.0, ("AA",))]
     with pytest.raises(ParameterError, match="budget_s=-1"):
         coverage_order(c, budget_s=-1.0)

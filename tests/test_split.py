@@ -161,6 +161,7 @@ def parse_worked_example() -> list[dict[str, str]]:
 
 
 def test_worked_example_in_docs(tmp_path: Path) -> None:
+    # Source: the table in docs/split.md, keys recomputed with hashlib.
     rows = parse_worked_example()
     seed = int(re.search(r"`seed = (\d+)`", (REPO / "docs" / "split.md").read_text()).group(1))
     heldout = re.search(r'`split.heldout = "([^"]+)"`', (REPO / "docs" / "split.md").read_text().split(
@@ -308,6 +309,7 @@ def check_invariants(corpus: Corpus, data: dict[str, Any], result: StageResult, 
 @PROPERTY_SETTINGS
 @given(shape=corpus_shapes, data=configs)
 def test_random_corpora_keep_every_invariant(shape: tuple[list[int], int, float], data: dict[str, Any]) -> None:
+    # Source: the split rules of docs/split.md (Groups, Held-out groups, Labelled tiers); ranking keys by hashlib.
     sizes, seed, dup_share = shape
     corpus, _ = random_corpus(sizes, seed, dup_share=dup_share)
     with tempfile.TemporaryDirectory() as tmp:
@@ -319,6 +321,7 @@ def test_random_corpora_keep_every_invariant(shape: tuple[list[int], int, float]
 @given(shape=corpus_shapes, data=configs, arrival_seed=st.integers(0, 2**32 - 1), batches=st.integers(2, 4))
 def test_rebuilds_under_random_arrivals_keep_old_assignments(
         shape: tuple[list[int], int, float], data: dict[str, Any], arrival_seed: int, batches: int) -> None:
+    # Source: the rebuild rules of docs/split.md (The ledger): same config, old clips keep subset and tiers.
     sizes, seed, dup_share = shape
     corpus, anchors = random_corpus(sizes, seed, dup_share=dup_share)
     rng = np.random.default_rng(arrival_seed)
@@ -351,6 +354,7 @@ changed_configs = st.lists(configs, min_size=2, max_size=4)
 @given(shape=corpus_shapes, runs=changed_configs, arrival_seed=st.integers(0, 2**32 - 1))
 def test_heldout_clip_never_moves_to_training_whatever_changes(
         shape: tuple[list[int], int, float], runs: list[dict[str, Any]], arrival_seed: int) -> None:
+    # Source: docs/split.md, The ledger: "a held-out clip never moves to training".
     sizes, seed, dup_share = shape
     corpus, anchors = random_corpus(sizes, seed, dup_share=dup_share)
     rng = np.random.default_rng(arrival_seed)
@@ -383,6 +387,7 @@ def single_speaker_corpus() -> Corpus:
 
 
 def test_single_speaker_needs_another_grouping(tmp_path: Path) -> None:
+    # Source: docs/split.md, Groups: fewer than two groups stop the run with advice.
     with pytest.raises(DataError) as info:
         split.run(make_ctx(tmp_path, single_speaker_corpus(), {"split": {"heldout": "20%"}}))
     message = str(info.value)
@@ -392,6 +397,7 @@ def test_single_speaker_needs_another_grouping(tmp_path: Path) -> None:
 
 @pytest.mark.parametrize("group_by", ["recording", "clip"])
 def test_single_speaker_by_recording_or_clip(tmp_path: Path, group_by: str) -> None:
+    # Source: docs/split.md, Groups: a recording's segments share a group; "clip" makes each clip one.
     corpus = single_speaker_corpus()
     data = {"split": {"group_by": group_by, "heldout": "20%", "labelled_budgets": ["10s"]}}
     result = split.run(make_ctx(tmp_path, corpus, data))
@@ -412,6 +418,7 @@ def test_single_speaker_by_recording_or_clip(tmp_path: Path, group_by: str) -> N
 
 
 def test_near_duplicates_bind_groups(tmp_path: Path) -> None:
+    # Source: docs/split.md, Groups; similarity by quality.fingerprint_similarity (Haitsma-Kalker bit agreement).
     corpus = Corpus()
     for spk in SPEAKERS[:4]:
         for k in range(4):
@@ -473,6 +480,7 @@ def gated_corpus() -> tuple[Corpus, dict[str, str]]:
 
 
 def test_gates_keep_flagged_clips_out_of_labelled_and_scoring(tmp_path: Path) -> None:
+    # Source: docs/split.md, Quality gates; |z| > 3.5 after Iglewicz and Hoaglin (1993).
     corpus, special = gated_corpus()
     result = split.run(make_ctx(tmp_path, corpus, {"split": {"heldout": "40%", "labelled_budgets": ["10h"]}}))
     rows = all_rows(result)
@@ -498,6 +506,7 @@ def test_gates_keep_flagged_clips_out_of_labelled_and_scoring(tmp_path: Path) ->
 
 
 def test_narrowband_gate_can_be_a_note_and_noisy_clips_rejected(tmp_path: Path) -> None:
+    # Source: the [quality] keys of schemas/config.schema.json and the reasons of schemas/rejected.schema.json.
     corpus, special = gated_corpus()
     data = {"split": {"heldout": "40%", "labelled_budgets": ["10h"]},
             "quality": {"narrowband_to_unlabelled": False, "noisy_to_unlabelled": False}}
@@ -514,6 +523,7 @@ def test_narrowband_gate_can_be_a_note_and_noisy_clips_rejected(tmp_path: Path) 
 
 
 def test_notes_and_rejected_transcripts(tmp_path: Path) -> None:
+    # Source: the flag list of schemas/subset.schema.json and docs/split.md, Quality gates.
     corpus = Corpus()
     for spk in SPEAKERS[:3]:
         for _ in range(3):
@@ -543,6 +553,7 @@ def parquet_bytes(table: Any) -> bytes:
 
 @pytest.mark.parametrize("selection", ["coverage", "random"])
 def test_same_inputs_in_any_row_order_give_identical_bytes(tmp_path: Path, selection: str) -> None:
+    # Source: the reproducibility promise of README.md (same inputs, config and seed: same bytes).
     corpus, _ = random_corpus([5, 6, 4, 7, 3], 99, dup_share=0.15)
     data = {"split": {"labelled_budgets": ["20s", "1m"], "heldout": "25%", "selection": selection},
             "quality": NO_RATE_GATE}
@@ -563,6 +574,7 @@ def test_same_inputs_in_any_row_order_give_identical_bytes(tmp_path: Path, selec
 # ---------------------------------------------------------------------------------------
 
 def test_runner_writes_the_three_manifests_and_rejects(tmp_path: Path) -> None:
+    # Source: the stage contract of pipeline/stage.py and DEVELOPERS.md (the runner validates and writes).
     from pipeline.manifest import read_manifest, read_metadata, write_manifest
     from pipeline.runner import Runner
 
@@ -583,6 +595,7 @@ def test_runner_writes_the_three_manifests_and_rejects(tmp_path: Path) -> None:
 
 
 def test_zero_heldout_needs_no_second_group_and_budgets_are_unique(tmp_path: Path) -> None:
+    # Source: docs/split.md, Groups (zero target) and Labelled tiers (one tier per budget).
     result = split.run(make_ctx(tmp_path, single_speaker_corpus(), {"split": {"heldout": "0%"}}))
     assert rows_by_subset(result)["heldout"] == [] and rows_by_subset(result)["labelled"]
     with pytest.raises(UsageError, match=r"split.labelled_budgets.*1h appears twice"):
