@@ -12,6 +12,17 @@ from pathlib import Path
 HASH_BLOCK_BYTES = 1 << 20
 
 
+def _current_umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
+# mkstemp creates files readable by their owner only; outputs get the permissions an
+# ordinary open() would give them, so a team sharing OUT through a group can read it.
+FILE_MODE = 0o666 & ~_current_umask()
+
+
 def sha256_file(path: str | os.PathLike[str]) -> str:
     """Hex SHA-256 of a file's bytes, read in 1 MiB blocks."""
     digest = hashlib.sha256()
@@ -40,6 +51,7 @@ def atomic_output(path: str | os.PathLike[str], *, suffix: str = "") -> Iterator
     )
     os.close(fd)
     tmp = Path(tmp_name)
+    os.chmod(tmp, FILE_MODE)
     try:
         yield tmp
         if _same_bytes(tmp, target):
