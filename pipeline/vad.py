@@ -143,7 +143,7 @@ class VoiceActivityStream:
         vad_says = np.fromiter(
             (self._vad.is_speech(row.tobytes(), self.sample_rate) for row in pcm), dtype=bool, count=whole)
         noise_like = spectral_flatness(frames) >= self.max_flatness
-        mean_square = np.mean(frames.astype(np.float64) ** 2, axis=1)
+        mean_square = np.einsum("ij,ij->i", frames, frames, dtype=np.float64) / self.frame_samples
         with np.errstate(divide="ignore"):
             energy = np.maximum(10 * np.log10(mean_square), SILENT_FRAME_DB)
         self._decisions.append(vad_says & ~noise_like)
