@@ -41,7 +41,7 @@ def measured(cmd: list[str]) -> tuple[float, float]:
 
 def prepare(raw: Path, out: Path, workers: int, *extra: str) -> tuple[float, float]:
     cmd = [*LOAM, "prepare", str(raw), str(out), "--config", str(REPO / "bench" / "bench.toml"),
-           "--workers", str(workers), "--no-progress", *extra]
+           "--workers", str(workers), "--no-progress", "--set", f'split.ledger="{out / "ledger.tsv"}"', *extra]
     return measured(cmd)
 
 
