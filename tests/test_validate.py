@@ -565,3 +565,23 @@ def test_copy_of_out_validates_the_same(out: Out, tmp_path: Path) -> None:
     moved = tmp_path / "moved"
     shutil.copytree(out.root, moved)
     assert validate_out(moved).problems == []
+
+
+def test_flac_header_parse_agrees_with_libsndfile(tmp_path: Path) -> None:
+    """The direct STREAMINFO parse (FLAC format specification) against soundfile.info."""
+    import numpy as np
+    import soundfile as sf
+
+    from pipeline.validate import _flac_streaminfo, read_header
+
+    for rate, frames, channels in [(16000, 12345, 1), (44100, 1, 2), (96000, 300000, 6), (8000, 2**20 + 7, 1)]:
+        path = tmp_path / f"{rate}_{frames}_{channels}.flac"
+        sf.write(path, np.zeros((frames, channels), np.float32), rate, subtype="PCM_16")
+        info = sf.info(path)
+        assert _flac_streaminfo(path.read_bytes()[:42]) == (info.samplerate, info.frames, info.channels)
+        assert read_header(str(path)) == (rate, frames, channels)
+    wav = tmp_path / "x.wav"
+    sf.write(wav, np.zeros(100, np.float32), 22050)
+    assert _flac_streaminfo(wav.read_bytes()[:42]) is None
+    assert read_header(str(wav)) == (22050, 100, 1)
+    assert read_header(str(tmp_path / "missing.flac")) == "no such file"
