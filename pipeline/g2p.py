@@ -178,8 +178,8 @@ def grapheme_units(word: str) -> tuple[str, ...]:
 
     Examples
     --------
-    >>> grapheme_units("n\\u0303aka")
-    ('ñ', 'a', 'k', 'a')
+    >>> [len(unit) for unit in grapheme_units("n\\u0303aka")]  # n + combining tilde is one unit
+    [2, 1, 1, 1]
     """
     units: list[str] = []
     for ch in word:

@@ -88,6 +88,7 @@ def _map_char(ch: str) -> str:
     return ch
 
 
+# Character classes, used for word boundaries (steps 2 to 4) and by step 5.
 _WORD, _MARK, _APOSTROPHE, _SPACE, _PUNCT, _OTHER = range(6)
 # Punctuation by Unicode category, but read as nothing: treated like symbols.
 _SILENT_PUNCTUATION = frozenset("#%&*@/\\§¶†‡•‰‱※⁂_")
@@ -161,53 +162,7 @@ def fold(text: str) -> str:
     return text
 
 
-# --- step 2: abbreviations ----------------------------------------------------------
-
-
-def load_abbreviations(path: str | Path = ABBREVIATIONS_FILE) -> dict[str, str]:
-    """Read an abbreviation table: ``key<TAB>expansion`` lines, ``#`` comments.
-
-    Parameters
-    ----------
-    path : str or Path
-        The table; the built-in English one by default.
-
-    Returns
-    -------
-    dict
-        Lower-case key to expansion, in file order.
-
-    Raises
-    ------
-    ParameterError
-        When a line has no tab or an empty key or expansion; the message names
-        the file and line.
-
-    Examples
-    --------
-    >>> load_abbreviations()["dr."]
-    'doctor'
-    """
-    table: dict[str, str] = {}
-    for number, line in enumerate(Path(path).read_text(encoding="utf-8").splitlines(), start=1):
-        if not line.strip() or line.startswith("#"):
-            continue
-        key, tab, expansion = line.partition("\t")
-        if not tab or not key.strip() or not expansion.strip():
-            raise ParameterError(f"{path}: line {number}: expected 'key<TAB>expansion', found {line!r}")
-        table[key.strip().casefold()] = expansion.strip()
-    return table
-
-
-@functools.lru_cache(maxsize=32)
-def _abbreviation_table(items: tuple[tuple[str, str], ...]) -> tuple[re.Pattern[str] | None, dict[str, str]]:
-    table = {_canon(key).casefold(): value for key, value in items if key.strip()}
-    parts = []
-    for key in sorted(table, key=lambda k: (-len(k), k)):
-        part = re.escape(key)
-        parts.append(part)
-    pattern = re.compile("|".join(parts), re.IGNORECASE) if parts else None
-    return pattern, table
+# --- word boundaries (steps 2 to 4) ----------------------------------------------------
 
 
 def _attached(text: str, i: int) -> bool:
@@ -239,20 +194,7 @@ def _padded(match: re.Match[str], words: str) -> str:
     return f"{left}{words}{right}"
 
 
-def _expand_abbreviations(text: str, abbreviations: Mapping[str, str]) -> str:
-    pattern, table = _abbreviation_table(tuple(sorted(abbreviations.items())))
-    if pattern is None:
-        return text
-
-    def expand(m: re.Match[str]) -> str:
-        # Word-like keys must stand alone ("co." is not the end of "taco."); symbol
-        # keys such as "&" apply anywhere, as in "R&D".
-        return m.group(0) if _glued(m) else _padded(m, table[m.group(0).casefold()])
-
-    return pattern.sub(expand, text)
-
-
-# --- step 3: numbers ------------------------------------------------------------------
+# --- step 2: numbers ------------------------------------------------------------------
 
 
 @functools.cache
@@ -452,7 +394,7 @@ def _number_words(m: re.Match[str]) -> str:
 
 
 def verbalise(text: str) -> str:
-    """Spell out the numbers in English text (step 3 alone).
+    """Spell out the numbers in English text (step 2 alone).
 
     Parameters
     ----------
@@ -474,6 +416,68 @@ def verbalise(text: str) -> str:
         return text
     text = _LETTER_DIGIT_HYPHEN.sub(" ", text)
     return _NUMBERS.sub(lambda m: _padded(m, _number_words(m)), text)
+
+
+# --- step 3: abbreviations ----------------------------------------------------------
+
+
+def load_abbreviations(path: str | Path = ABBREVIATIONS_FILE) -> dict[str, str]:
+    """Read an abbreviation table: ``key<TAB>expansion`` lines, ``#`` comments.
+
+    Parameters
+    ----------
+    path : str or Path
+        The table; the built-in English one by default.
+
+    Returns
+    -------
+    dict
+        Lower-case key to expansion, in file order.
+
+    Raises
+    ------
+    ParameterError
+        When a line has no tab or an empty key or expansion; the message names
+        the file and line.
+
+    Examples
+    --------
+    >>> load_abbreviations()["dr."]
+    'doctor'
+    """
+    table: dict[str, str] = {}
+    for number, line in enumerate(Path(path).read_text(encoding="utf-8").splitlines(), start=1):
+        if not line.strip() or line.startswith("#"):
+            continue
+        key, tab, expansion = line.partition("\t")
+        if not tab or not key.strip() or not expansion.strip():
+            raise ParameterError(f"{path}: line {number}: expected 'key<TAB>expansion', found {line!r}")
+        table[key.strip().casefold()] = expansion.strip()
+    return table
+
+
+@functools.lru_cache(maxsize=32)
+def _abbreviation_table(items: tuple[tuple[str, str], ...]) -> tuple[re.Pattern[str] | None, dict[str, str]]:
+    table = {_canon(key).casefold(): value for key, value in items if key.strip()}
+    parts = []
+    for key in sorted(table, key=lambda k: (-len(k), k)):
+        part = re.escape(key)
+        parts.append(part)
+    pattern = re.compile("|".join(parts), re.IGNORECASE) if parts else None
+    return pattern, table
+
+
+def _expand_abbreviations(text: str, abbreviations: Mapping[str, str]) -> str:
+    pattern, table = _abbreviation_table(tuple(sorted(abbreviations.items())))
+    if pattern is None:
+        return text
+
+    def expand(m: re.Match[str]) -> str:
+        # Word-like keys must stand alone ("co." is not the end of "taco."); symbol
+        # keys such as "&" apply anywhere, as in "R&D".
+        return m.group(0) if _glued(m) else _padded(m, table[m.group(0).casefold()])
+
+    return pattern.sub(expand, text)
 
 
 # --- step 4: initialisms --------------------------------------------------------------
@@ -504,6 +508,7 @@ def _spell_initialisms(text: str, is_known: Callable[[str], bool] | None) -> str
 
 
 # --- step 5: case and character classes --------------------------------------------
+
 
 def _classify(text: str, *, keep_punctuation: bool) -> str:
     kinds = []

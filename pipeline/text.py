@@ -181,6 +181,9 @@ def run(ctx: StageContext) -> StageResult:
             "oov_words": list(dict.fromkeys(w for w, p in zip(norm.words, found, strict=True) if p.oov)),
         })
     pronouncer.save_cache()
+    if pronouncer.cache_misses or pronouncer.cache_hits:
+        ctx.log.info("text: %d out-of-vocabulary words predicted with g2p-en, %d taken from the cache",
+                     len(pronouncer.cache_misses), len(pronouncer.cache_hits))
     _write_predicted(ctx.out / PREDICTED_LEXICON, oov_counts, oov_phones, backend=cfg.backend)
 
     rejects.sort(key=lambda r: (r["clip_id"], r["reason"]))

@@ -22,8 +22,9 @@ import pytest
 from pipeline import text
 from pipeline.config import build_config
 from pipeline.errors import UsageError
-from pipeline.g2p import read_lexicon, strip_stress
+from pipeline.g2p import SOURCES, read_lexicon, strip_stress
 from pipeline.manifest import table_from_rows, validate_table
+from pipeline.schemas_io import load_schema
 from pipeline.stage import StageContext
 
 REPO = Path(__file__).resolve().parent.parent
@@ -232,3 +233,8 @@ def test_whole_stage_runs_offline_in_a_fresh_process(tmp_path: Path) -> None:
     # g2p-en asked NLTK for its data while being imported; the request was refused.
     assert set(report["summary"]["refused_downloads"]) == {"averaged_perceptron_tagger", "cmudict"}
     assert report["rows"] == 2
+
+
+def test_backend_names_match_the_schema() -> None:
+    # Reference: schemas/text.schema.json, word_backends enum.
+    assert set(load_schema("text")["properties"]["word_backends"]["items"]["enum"]) == set(SOURCES)
