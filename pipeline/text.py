@@ -23,6 +23,7 @@ abbreviations of ``[text.abbreviations]`` apply with every backend.
 from __future__ import annotations
 
 from collections import Counter
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -117,6 +118,58 @@ def _bad_characters_detail(source: str, found: dict[str, list[str]], cfg: TextCo
             f"{describe_characters(chars)} (in {where}); expected {expected}")
 
 
+@dataclass
+class TranscriptOutcome:
+    """What became of one transcript: a manifest row or a reject, and its OOV words."""
+
+    row: dict[str, Any] | None = None
+    rejected: tuple[str, str] | None = None  # (reason, detail)
+    oov: list[tuple[str, Pronunciation | None]] = field(default_factory=list)
+
+
+def process_transcript(source: str, transcript: str, *, pronouncer: Pronouncer, options: dict[str, Any],
+                       cfg: TextConfig) -> TranscriptOutcome:
+    """Normalise and pronounce one transcript (``clip_id`` is filled in by the caller)."""
+    norm: Normalised = normalise(transcript, **options)
+    if not norm.text:
+        return TranscriptOutcome(rejected=("empty_transcript", f"{source}: transcript {_shown(transcript)} is empty "
+                                  "after normalisation; expected at least one letter or digit"))
+    bad = {w: chars for w in dict.fromkeys(norm.words) if (chars := pronouncer.bad_characters(w))}
+    if bad:
+        return TranscriptOutcome(rejected=("bad_characters", _bad_characters_detail(source, bad, cfg)))
+    if not norm.words:
+        return TranscriptOutcome(rejected=("unpronounceable", f"{source}: transcript {_shown(transcript)} has no word "
+                                  f"after normalisation ({_shown(norm.text)}); expected at least one word to pronounce"))
+    prons = pronouncer.pronounce(norm.words)
+    pairs = list(zip(norm.words, prons, strict=True))
+    outcome = TranscriptOutcome(oov=[(w, p) for w, p in pairs if p is None or p.oov])
+    missing = list(dict.fromkeys(w for w, p in pairs if p is None))
+    if missing:
+        outcome.rejected = ("oov", f"{source}: transcript words not in text.lexicon: {_quoted(missing)}; expected "
+                            "every word in text.lexicon or text.override_lexicon (or text.oov = \"graphemes\")")
+        return outcome
+    found = [(w, p) for w, p in pairs if p is not None]
+    silent = [w for w, p in found if not p.phones]
+    if silent:
+        outcome.rejected = ("unpronounceable", f"{source}: transcript words with no phones: {_quoted(silent)}; "
+                            "expected a pronunciation for every word (add them to text.override_lexicon)")
+        return outcome
+    phones: list[str] = []
+    for i, (_, pron) in enumerate(found):
+        if i and cfg.word_boundary:
+            phones.append(cfg.word_boundary)
+        phones.extend(pron.phones)
+    outcome.row = {
+        "transcript": transcript,
+        "norm_text": norm.text,
+        "words": list(norm.words),
+        "phones": phones,
+        "word_backends": [p.source for _, p in found],
+        "oov_words": list(dict.fromkeys(w for w, p in found if p.oov)),
+    }
+    return outcome
+
+
 def run(ctx: StageContext) -> StageResult:
     cfg = ctx.config.text
     cache_dir = ctx.cache_dir if ctx.use_cache else None
@@ -130,56 +183,17 @@ def run(ctx: StageContext) -> StageResult:
     oov_counts: Counter[str] = Counter()
     oov_phones: dict[str, tuple[tuple[str, ...], str]] = {}
     for item in items:
-        clip_id, source, transcript = item["source_id"], item["source_path"], item["transcript"]
-        norm: Normalised = normalise(transcript, **options)
-
-        def set_aside(reason: str, detail: str, clip_id: str = clip_id, source: str = source) -> None:
-            rejects.append(reject(NAME, source, reason, detail, clip_id=clip_id))
-
-        if not norm.text:
-            set_aside("empty_transcript", f"{source}: transcript {_shown(transcript)} is empty after "
-                      "normalisation; expected at least one letter or digit")
-            continue
-        bad = {w: chars for w in dict.fromkeys(norm.words) if (chars := pronouncer.bad_characters(w))}
-        if bad:
-            set_aside("bad_characters", _bad_characters_detail(source, bad, cfg))
-            continue
-        if not norm.words:
-            set_aside("unpronounceable", f"{source}: transcript {_shown(transcript)} has no word after "
-                      f"normalisation ({_shown(norm.text)}); expected at least one word to pronounce")
-            continue
-        prons = pronouncer.pronounce(norm.words)
-        for word, pron in zip(norm.words, prons, strict=True):
-            if pron is None or pron.oov:
-                oov_counts[word] += 1
-                if word not in oov_phones:
-                    # A rejected word gets its letters as a starting point for the reviewer.
-                    oov_phones[word] = (pron.phones, pron.source) if pron else (grapheme_units(word), "graphemes")
-        missing = [w for w, p in zip(norm.words, prons, strict=True) if p is None]
-        if missing:
-            set_aside("oov", f"{source}: transcript words not in text.lexicon: {_quoted(list(dict.fromkeys(missing)))}; "
-                      "expected every word in text.lexicon or text.override_lexicon (or text.oov = \"graphemes\")")
-            continue
-        found: list[Pronunciation] = [p for p in prons if p is not None]
-        silent = [w for w, p in zip(norm.words, found, strict=True) if not p.phones]
-        if silent:
-            set_aside("unpronounceable", f"{source}: transcript words with no phones: {_quoted(silent)}; "
-                      "expected a pronunciation for every word (add them to text.override_lexicon)")
-            continue
-        phones: list[str] = []
-        for i, pron in enumerate(found):
-            if i and cfg.word_boundary:
-                phones.append(cfg.word_boundary)
-            phones.extend(pron.phones)
-        rows.append({
-            "clip_id": clip_id,
-            "transcript": transcript,
-            "norm_text": norm.text,
-            "words": list(norm.words),
-            "phones": phones,
-            "word_backends": [p.source for p in found],
-            "oov_words": list(dict.fromkeys(w for w, p in zip(norm.words, found, strict=True) if p.oov)),
-        })
+        outcome = process_transcript(item["source_path"], item["transcript"], pronouncer=pronouncer,
+                                     options=options, cfg=cfg)
+        for word, pron in outcome.oov:
+            oov_counts[word] += 1
+            # A word the lexicon backend rejected gets its letters, as a starting point for the reviewer.
+            oov_phones.setdefault(word, (pron.phones, pron.source) if pron else (grapheme_units(word), "graphemes"))
+        if outcome.rejected:
+            reason, detail = outcome.rejected
+            rejects.append(reject(NAME, item["source_path"], reason, detail, clip_id=item["source_id"]))
+        elif outcome.row is not None:
+            rows.append({"clip_id": item["source_id"], **outcome.row})
     pronouncer.save_cache()
     if pronouncer.cache_misses or pronouncer.cache_hits:
         ctx.log.info("text: %d out-of-vocabulary words predicted with g2p-en, %d taken from the cache",
