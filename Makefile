@@ -18,9 +18,12 @@ WORKERS_FLAG := $(if $(WORKERS),--workers $(WORKERS),)
 .PHONY: all prepare test validate report bench lint clean distclean help
 
 all: prepare report
+	@$(BIN)/loam validate "$(OUT)" > "$(OUT)/logs/validate.txt" || (cat "$(OUT)/logs/validate.txt"; exit 1)
+	@tail -n 1 "$(OUT)/logs/validate.txt"
+	@echo "manifests: $(OUT)/manifests/  report: $(OUT)/report/index.html"
 
 help:
-	@echo "make            create .venv, install, prepare $(RAW) into $(OUT), write its report"
+	@echo "make            create .venv, install, prepare $(RAW) into $(OUT), write its report, validate it"
 	@echo "make test       run the test suite"
 	@echo "make validate   check the manifests in OUT before training"
 	@echo "make report     write OUT/report/index.html and summary.json"
