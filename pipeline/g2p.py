@@ -460,11 +460,18 @@ class Pronouncer:
 
     def is_known(self, word: str) -> bool:
         """Whether the override lexicon or the backend's dictionary has ``word``."""
-        if word in self.override:
-            return True
+        return word in self.override or (self.backend != "graphemes" and self.in_dictionary(word))
+
+    def in_dictionary(self, word: str) -> bool:
+        """Whether the backend's own dictionary (CMUdict or the lexicon) has ``word``.
+
+        A word it lacks is out of vocabulary even when the override lexicon supplies
+        it, so a reviewed word stays listed in ``lexicon/predicted.tsv``. The
+        graphemes backend has no dictionary and no out-of-vocabulary words.
+        """
         if self.backend == "english":
             return english_key(word) in self._cmudict
-        return word in self.lexicon
+        return self.backend == "graphemes" or word in self.lexicon
 
     def bad_characters(self, word: str) -> list[str]:
         """Characters of ``word`` the backend cannot take (none for override words)."""
@@ -499,7 +506,7 @@ class Pronouncer:
     def _pronounce(self, word: str, previous: str | None, following: str | None) -> tuple[Pronunciation | None, bool]:
         """The pronunciation, and whether another context could change it."""
         if word in self.override:
-            return Pronunciation(self.override[word], "override"), False
+            return Pronunciation(self.override[word], "override", oov=not self.in_dictionary(word)), False
         if self.backend == "graphemes":
             return Pronunciation(grapheme_units(word), "graphemes"), False
         if self.backend == "lexicon":

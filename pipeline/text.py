@@ -10,10 +10,12 @@ rejects                    ``empty_transcript`` (nothing left after normalisatio
                            ``oov`` (lexicon backend, a word the lexicon lacks, with
                            ``text.oov = "reject"``) and ``unpronounceable`` (no word,
                            or a word with no phones);
-``lexicon/predicted.tsv``  every out-of-vocabulary word with the pronunciation it was
-                           given and its count, most frequent first (ties by word).
-                           Correct lines, point ``text.override_lexicon`` at the file
-                           and run again: override entries win over every backend.
+``lexicon/predicted.tsv``  every out-of-vocabulary word (one CMUdict or the lexicon
+                           lacks) with the pronunciation it was given and its count,
+                           most frequent first (ties by word). Correct lines, point
+                           ``text.override_lexicon`` at the file (or a copy) and run
+                           again: override entries win over every backend, and stay
+                           listed in the file with source "override".
 
 English-only steps (the built-in abbreviation table and spelled initialisms) run
 with the english backend only. Numbers follow ``text.verbalise_numbers``, and the
@@ -187,13 +189,15 @@ def run(ctx: StageContext) -> StageResult:
                                      options=options, cfg=cfg)
         for word, pron in outcome.oov:
             oov_counts[word] += 1
-            # A word the lexicon backend rejected gets its letters, as a starting point for the reviewer.
-            oov_phones.setdefault(word, (pron.phones, pron.source) if pron else (grapheme_units(word), "graphemes"))
+            if word not in oov_phones:
+                oov_phones[word] = _listed(word, pron, pronouncer)
         if outcome.rejected:
             reason, detail = outcome.rejected
             rejects.append(reject(NAME, item["source_path"], reason, detail, clip_id=item["source_id"]))
         elif outcome.row is not None:
             rows.append({"clip_id": item["source_id"], **outcome.row})
+    # Before predicted.tsv is rewritten: it may itself be the override lexicon just read.
+    metadata = _metadata(ctx.config, pronouncer)
     pronouncer.save_cache()
     if pronouncer.cache_misses or pronouncer.cache_hits:
         ctx.log.info("text: %d out-of-vocabulary words predicted with g2p-en, %d taken from the cache",
@@ -205,15 +209,27 @@ def run(ctx: StageContext) -> StageResult:
         manifests={MAIN_MANIFEST: ("text", table_from_rows("text", rows))},
         rejects=rejects,
         summary=_summary(rows, rejects, len(items), pronouncer, cfg, cache_dir is not None),
-        metadata=_metadata(ctx.config, pronouncer),
+        metadata=metadata,
     )
+
+
+def _listed(word: str, pron: Pronunciation | None, pronouncer: Pronouncer) -> tuple[tuple[str, ...], str]:
+    """The phones and source a word gets in predicted.tsv."""
+    if pron is None:
+        # Rejected by the lexicon backend: its letters, as a starting point for the reviewer.
+        return grapheme_units(word), "graphemes"
+    if pron.source == "override":
+        # As written in the override file, so a reviewed file read back is rewritten unchanged.
+        return pronouncer.override[word], "override"
+    return pron.phones, pron.source
 
 
 def _write_predicted(path: Path, counts: Counter[str], phones: dict[str, tuple[tuple[str, ...], str]],
                      *, backend: str) -> None:
     lines = [
         "# Out-of-vocabulary words: word<TAB>phones<TAB>count<TAB>source, most frequent first.\n",
-        "# Correct the phones, set text.override_lexicon to this file (or a copy) and run again.\n",
+        "# Correct the phones, set text.override_lexicon to this file (or a copy) and run again;\n",
+        "# words the override supplies stay listed, with source 'override'.\n",
     ]
     if backend == "lexicon":
         lines.append("# source 'graphemes': the word's letters, a starting point only.\n")

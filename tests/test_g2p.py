@@ -228,9 +228,10 @@ def test_graphemes_backend_and_alphabet() -> None:
 def test_override_applies_on_top_of_every_backend(tmp_path: Path) -> None:
     override = {"sulo": ("S", "UW", "L", "OW"), "kélo": ("k", "e", "l", "o")}
     lexicon = {"sulo": ("s", "u", "l", "o")}
-    for backend in ("english", "lexicon", "graphemes"):
+    # "sulo" is out of CMUdict's vocabulary but in the lexicon; graphemes has no vocabulary.
+    for backend, oov in (("english", True), ("lexicon", False), ("graphemes", False)):
         p = Pronouncer(backend=backend, lexicon=lexicon, override=override, alphabet="aeiklmnostuv")
-        assert p.pronounce(["sulo"])[0] == Pronunciation(("S", "UW", "L", "OW"), "override")
+        assert p.pronounce(["sulo"])[0] == Pronunciation(("S", "UW", "L", "OW"), "override", oov=oov)
         assert p.bad_characters("kélo") == []  # override entries are trusted
         assert p.is_known("kélo")
 

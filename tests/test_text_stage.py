@@ -166,6 +166,26 @@ def test_lexicon_backend_review_loop(tmp_path: Path) -> None:
         == sorted([tmp_path / "reviewed.tsv", tmp_path / "tavuni.tsv"])
 
 
+def test_override_pointing_at_predicted_tsv_itself(tmp_path: Path) -> None:
+    # The review loop in place: corrections made in OUT/lexicon/predicted.tsv are used,
+    # kept in the file when it is rewritten, and a further run leaves it unchanged.
+    (tmp_path / "tavuni.tsv").write_text(TAVUNI_LEXICON, encoding="utf-8")
+    config = {"backend": "lexicon", "lexicon": "tavuni.tsv", "override_lexicon": "out/lexicon/predicted.tsv"}
+    predicted = tmp_path / "out" / "lexicon" / "predicted.tsv"
+    predicted.parent.mkdir(parents=True)
+    predicted.write_text("", encoding="utf-8")
+    result, _ = run_stage(tmp_path, {"t2": TAVUNI["t2"]}, **config)
+    assert [r["reason"] for r in result.rejects] == ["oov"]
+    predicted.write_text(predicted.read_text(encoding="utf-8").replace("k e l u", "k ɛ l u"), encoding="utf-8")
+    result, table = run_stage(tmp_path, {"t2": TAVUNI["t2"]}, **config)
+    (row,) = table.to_pylist()
+    assert row["phones"][4:8] == ["k", "ɛ", "l", "u"] and row["oov_words"] == ["kelu"]
+    after = predicted.read_text(encoding="utf-8")
+    assert "kelu\tk ɛ l u\t2\toverride\n" in after
+    run_stage(tmp_path, {"t2": TAVUNI["t2"]}, **config)
+    assert predicted.read_text(encoding="utf-8") == after
+
+
 def test_lexicon_oov_as_graphemes_and_graphemes_backend(tmp_path: Path) -> None:
     (tmp_path / "tavuni.tsv").write_text(TAVUNI_LEXICON, encoding="utf-8")
     result, table = run_stage(tmp_path, {"t2": TAVUNI["t2"]}, backend="lexicon", lexicon="tavuni.tsv", oov="graphemes")
