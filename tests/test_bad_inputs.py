@@ -112,7 +112,7 @@ def test_every_fault_gets_its_reason_and_nothing_is_lost(faulty_raw, tmp_path: P
     out = tmp_path / "out"
     code = main(["prepare", str(raw), str(out), "--workers", "2", "--no-progress",
                  "--set", 'ingest.metadata="meta.csv"', "--set", 'split.group_by="clip"',
-                 "--set", 'split.heldout="2s"', "--set", 'split.labelled_budgets=["2s"]'])
+                 "--set", 'split.heldout="0%"', "--set", 'split.labelled_budgets=["2s"]'])
     assert code == 0
     assert tree_hash(raw) == before, "the raw dump changed"
     assert not (Path.cwd() / "pwned").exists() and not (raw / "spk" / "pwned").exists()
