@@ -45,6 +45,14 @@ def prepare(raw: Path, out: Path, workers: int, *extra: str) -> tuple[float, flo
     return measured(cmd)
 
 
+def last_json_line(script: list[str]) -> dict:
+    """Run a companion benchmark; its last output line is its figures as JSON."""
+    done = subprocess.run([sys.executable, *script], capture_output=True, text=True)
+    if done.returncode != 0:
+        return {"error": done.stderr[-500:]}
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
 def stage_seconds(out: Path) -> dict[str, float]:
     data = json.loads((out / "logs" / "last-run.json").read_text())
     return {s["name"]: s["seconds"] for s in data["stages"]}
@@ -113,13 +121,9 @@ def main() -> int:
     with tempfile.TemporaryDirectory(dir=work) as scratch:
         results["validate"] = bench_validate(100_000, Path(scratch))
 
+    results["text"] = last_json_line([str(REPO / "bench" / "bench_text.py")])
     if not args.skip_long:
-        long = subprocess.run([sys.executable, str(REPO / "bench" / "bench_long_file.py"), "--json"],
-                              capture_output=True, text=True)
-        if long.returncode == 0:
-            results["long_file"] = json.loads(long.stdout.strip().splitlines()[-1])
-        else:
-            results["long_file"] = {"error": long.stderr[-500:]}
+        results["long_file"] = last_json_line([str(REPO / "bench" / "bench_long_file.py")])
 
     (work / "results.json").write_text(json.dumps(results, indent=2) + "\n")
     print_table(results)
@@ -157,6 +161,11 @@ def print_table(r: dict) -> None:
                        ("rows_per_second_manifests_only", "validate rows/s (manifests only)")):
         if key in v:
             rows.append((label, f"{v[key]:.0f}", f"target >= 20000: {'met' if v[key] >= 20000 else 'MISSED'}"))
+    t = r.get("text", {})
+    for run in ("cold", "warm"):
+        if run in t:
+            rows.append((f"text sentences/s ({run}, 10,000)", f"{t[run]['sentences_per_s']:.0f}",
+                         f"word cache hits {t[run]['hit_rate_distinct']:.2f} per distinct OOV word"))
     lf = r.get("long_file", {})
     for key in ("x_real_time", "peak_rss_mb"):
         if key in lf:
