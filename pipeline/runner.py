@@ -74,8 +74,10 @@ def inputs_sha256(out: Path, module: ModuleType, ctx: StageContext) -> str:
         digest.update(name.encode() + b"\0")
         digest.update(hashlib.sha256((out / manifest_path(name)).read_bytes()).digest())
     extra = getattr(module, "extra_inputs", None)
+    # Content only, not the paths: the same inputs under another OUT or checkout must
+    # give byte-identical manifests, metadata included.
     for path in extra(ctx) if extra else []:
-        digest.update(str(path).encode() + b"\0")
+        digest.update(b"extra\0")
         try:
             digest.update(hashlib.sha256(Path(path).read_bytes()).digest())
         except FileNotFoundError:
@@ -154,6 +156,8 @@ class Runner:
     def _up_to_date(self, module: ModuleType, params: str, inputs: str) -> bool:
         if getattr(module, "ALWAYS_RUN", False):
             return False
+        if any(self.options.get(o) for o in getattr(module, "RUN_WHEN_OPTIONS", ())):
+            return False
         main = self.out / manifest_path(module.NAME)
         if not (main.exists() and (self.out / rejects_path(module.NAME)).exists()
                 and (self.out / summary_path(module.NAME)).exists()):
@@ -188,9 +192,15 @@ class Runner:
             summary = json.loads((self.out / summary_path(name)).read_text(encoding="utf-8"))
             record = StageRecord(name, False, time.perf_counter() - start, summary)
             self.log.info("%-6s reused: inputs, parameters and code unchanged", name)
+            if hasattr(module, "reuse_note"):
+                self.log.info("%s", module.reuse_note(summary))
         else:
             self.log.info("%-6s running", name)
             result: StageResult = module.run(ctx)
+            if getattr(module, "INPUTS_AFTER_RUN", False):
+                # The stage rewrote one of its own inputs (the split ledger): record the
+                # state it left, which a rerun would reproduce.
+                in_hash = inputs_sha256(self.out, module, ctx)
             self._write_result(module, result, params, in_hash)
             record = StageRecord(name, True, time.perf_counter() - start, result.summary)
             self.log.info("%-6s done in %.1f s: %s", name, record.seconds, _short(result.summary))

@@ -29,6 +29,7 @@ import re
 from collections import Counter, defaultdict
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -47,7 +48,19 @@ CONFIG_SECTIONS = ("split", "quality")
 CODE_VERSION = "1"
 CODE_DEPENDS = ("pipeline.selection", "pipeline.ledger", "pipeline.quality")
 # The ledger is an input the runner cannot hash: run every time.
-ALWAYS_RUN = True
+# The ledger is an input the stage rewrites itself: the runner hashes it after the
+# run (INPUTS_AFTER_RUN), so a rerun with nothing changed is reused, and --fresh
+# always runs the stage.
+INPUTS_AFTER_RUN = True
+RUN_WHEN_OPTIONS = ("fresh",)
+
+
+def extra_inputs(ctx: StageContext) -> list[Path]:
+    return [locate_ledger(ctx.config, raw=ctx.raw, out=ctx.out)[0]]
+
+
+def reuse_note(summary: dict[str, Any]) -> str:
+    return "split changes: none (audio, text, config and ledger unchanged since the last run)"
 MAIN_MANIFEST = "manifests/labelled.parquet"
 SUBSETS = ("labelled", "unlabelled", "heldout")
 SUBSET_PATHS = {s: f"manifests/{s}.parquet" for s in SUBSETS}
