@@ -43,13 +43,16 @@ def map_ordered(
     scheduler: str = "",
     desc: str = "",
     progress: bool = False,
+    costs: Sequence[float] | None = None,
 ) -> list[R]:
     """Apply ``func`` to every item and return the results in input order.
 
     ``func`` must be a module-level function (it is pickled). With one worker or a
     single item the work runs in this process, which keeps small runs free of pool
     start-up cost. ``scheduler`` is a dask.distributed address; workers there must
-    see the same file paths.
+    see the same file paths. ``costs`` (e.g. durations) makes the pool start the
+    largest items first, so one long recording does not leave a worker finishing
+    alone at the end (longest-processing-time-first scheduling).
     """
     if not items:
         return []
@@ -68,8 +71,9 @@ def map_ordered(
         # fork shares the already-imported modules with the children; the stages
         # import their heavy libraries lazily, inside the per-file functions.
         context = multiprocessing.get_context("fork" if sys.platform.startswith("linux") else "spawn")
+        order = range(len(items)) if costs is None else sorted(range(len(items)), key=lambda i: -costs[i])
         with ProcessPoolExecutor(max_workers=n, mp_context=context) as pool:
-            futures = {pool.submit(func, item): i for i, item in enumerate(items)}
+            futures = {pool.submit(func, items[i]): i for i in order}
             from concurrent.futures import as_completed
 
             for fut in as_completed(futures):
