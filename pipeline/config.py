@@ -11,12 +11,13 @@ import copy
 import dataclasses
 import hashlib
 import json
+import re
 import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from pipeline.errors import ConfigError
+from pipeline.errors import ConfigError, ParameterError
 from pipeline.schemas_io import load_schema
 
 if sys.version_info >= (3, 11):
@@ -146,6 +147,25 @@ class Config:
         """A path from the config file, relative to the config file's folder."""
         path = Path(value).expanduser()
         return path if path.is_absolute() else Path(self.base_dir) / path
+
+
+_DURATION_RE = re.compile(r"^([0-9]+(?:\.[0-9]+)?)(s|m|h)$")
+_UNIT_SECONDS = {"s": 1.0, "m": 60.0, "h": 3600.0}
+
+
+def parse_duration_s(text: str) -> float:
+    """Seconds in a duration such as "45s", "30m" or "1.5h".
+
+    Examples
+    --------
+    >>> parse_duration_s("1.5h")
+    5400.0
+    """
+    m = _DURATION_RE.match(text)
+    if not m:
+        raise ParameterError(f"text={text!r} is not a duration such as 45s, 30m or 2h")
+    return float(m.group(1)) * _UNIT_SECONDS[m.group(2)]
+
 
 
 SECTIONS = {

@@ -62,6 +62,10 @@ def speaker_id(name: str) -> str:
     return safe
 
 
+# Containers libsndfile may have been built without, by file extension.
+_EXTENSION_FORMATS = {".mp3": "MP3", ".ogg": "OGG", ".flac": "FLAC", ".opus": "OGG"}
+
+
 @dataclass(frozen=True)
 class ProbeJob:
     path: str
@@ -78,6 +82,11 @@ def probe_file(job: ProbeJob) -> dict[str, Any]:
         return {"error": ("unreadable", f"{job.rel}: cannot read the file ({exc.strerror})")}
     if size == 0:
         return {"error": ("empty", f"{job.rel}: the file is empty (0 bytes); expected audio data")}
+    container = _EXTENSION_FORMATS.get(os.path.splitext(job.rel)[1].lower())
+    if container and container not in sf.available_formats():
+        return {"error": ("unsupported_format",
+                          f"{job.rel}: this libsndfile build ({sf.__libsndfile_version__}) cannot read {container}; "
+                          "expected a build that can (libsndfile 1.1 or newer reads MP3)")}
     try:
         digest = sha256_file(job.path)
         info = sf.info(job.path)

@@ -26,10 +26,10 @@ import pandas as pd
 import pyarrow as pa
 
 from pipeline import __version__
+from pipeline.config import parse_duration_s
 from pipeline.errors import ManifestError
 from pipeline.fsio import write_text_atomic
 from pipeline.manifest import read_manifest
-from pipeline.split import parse_duration_s
 from pipeline.validate import (
     CONFIG_FILE,
     REJECTED_FILE,

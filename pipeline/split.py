@@ -36,7 +36,8 @@ import numpy as np
 import pyarrow as pa
 
 from pipeline import quality
-from pipeline.errors import DataError, ParameterError, UsageError
+from pipeline.config import parse_duration_s
+from pipeline.errors import DataError, UsageError
 from pipeline.ledger import ClipRecord, Ledger, locate_ledger, read_ledger, write_ledger
 from pipeline.manifest import table_from_rows, validate_table
 from pipeline.selection import Candidate, TierOutcome, TierPlan, fill_tiers
@@ -72,28 +73,12 @@ FLAG_ORDER = ("upsampled", "peak_limited", "noisy", "narrowband", "rate_outlier"
               "transcript_rejected", "heldout_untranscribed")
 GATES = ("noisy", "narrowband", "rate_outlier", "near_duplicate")
 
-_DURATION = re.compile(r"^([0-9]+(?:\.[0-9]+)?)(s|m|h)$")
 _SHARE = re.compile(r"^([0-9]+(?:\.[0-9]+)?)%$")
-_UNIT_S = {"s": 1.0, "m": 60.0, "h": 3600.0}
 
 
 # ---------------------------------------------------------------------------------------
 # Small pure helpers
 # ---------------------------------------------------------------------------------------
-
-def parse_duration_s(text: str) -> float:
-    """Seconds in a duration such as "45s", "30m" or "1.5h".
-
-    Examples
-    --------
-    >>> parse_duration_s("1.5h")
-    5400.0
-    """
-    m = _DURATION.match(text)
-    if not m:
-        raise ParameterError(f"text={text!r} is not a duration such as 45s, 30m or 2h")
-    return float(m.group(1)) * _UNIT_S[m.group(2)]
-
 
 def heldout_target_s(spec: str, *, transcribed_s: float) -> float:
     """The held-out target in seconds: a duration, or a share ("10%") of ``transcribed_s``.

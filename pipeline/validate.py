@@ -27,7 +27,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from pipeline.config import Config, build_config
+from pipeline.config import Config, build_config, parse_duration_s
 from pipeline.errors import ConfigError, ManifestError, ParameterError, UsageError
 from pipeline.manifest import (
     SHOWN_FAILURES,
@@ -38,7 +38,6 @@ from pipeline.manifest import (
     read_metadata,
 )
 from pipeline.schemas_io import SCHEMA_DIR
-from pipeline.split import parse_duration_s
 
 SUBSETS = ("labelled", "unlabelled", "heldout")
 TRAINING = ("labelled", "unlabelled")

@@ -230,3 +230,13 @@ def test_demo_corpus_counts_conservation_and_reasons(tmp_path: Path) -> None:
     assert used | rejected_lines == set(range(2, n_lines + 1))
     assert not used & rejected_lines
     assert sum(r["transcript"] is not None for r in rows) >= 12
+
+
+def test_container_missing_from_libsndfile_is_unsupported(small_raw: Path, tmp_path: Path) -> None:
+    import soundfile as sf
+
+    formats = {k: v for k, v in sf.available_formats().items() if k != "OGG"}
+    with mock.patch("soundfile.available_formats", return_value=formats):
+        _, rejects = run_ingest(small_raw, tmp_path / "out", workers=1)
+    r = next(r for r in rejects if r["source_path"] == "spk_b/b2.ogg")
+    assert r["reason"] == "unsupported_format" and "cannot read OGG" in r["detail"]
