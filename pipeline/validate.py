@@ -562,6 +562,41 @@ def check_near_duplicates(s: _Subsets) -> list[Problem]:
 # --------------------------------------------------------------------------- audio files
 
 
+def check_conservation(s: _Subsets, stages: dict[str, pa.Table], rejected: pa.Table | None) -> list[Problem]:
+    """Nothing lost between the stages: every accepted source has clips or an audio
+    reject, and every clip is in exactly one subset or has a split reject.
+
+    Skipped for a stage whose manifest is absent (a hand-made OUT need not have them).
+    """
+    problems: list[Problem] = []
+    rej = rejected.to_pandas() if rejected is not None else pd.DataFrame(columns=["stage", "source_path", "clip_id"])
+    in_subsets: set[str] = set()
+    for name in SUBSETS:
+        if name in s.tables:
+            in_subsets.update(s.tables[name].column("clip_id").to_pylist())
+    if "audio" in stages:
+        audio = stages["audio"].select(["clip_id", "source_path"]).to_pandas()
+        clips = set(audio["clip_id"])
+        split_rejected = set(rej.loc[rej["stage"] == "split", "clip_id"].dropna())
+        lost = sorted(clips - in_subsets - split_rejected)
+        for clip in lost[:SHOWN_FAILURES]:
+            problems.append(Problem("error", "conservation", "stages/audio.parquet", None, "clip_id",
+                                    f"clip {clip!r} in no subset and not rejected",
+                                    "every clip in labelled, unlabelled or heldout, or in rejected.parquet"))
+        for clip in sorted(in_subsets - clips)[:SHOWN_FAILURES]:
+            problems.append(Problem("error", "conservation", "manifests/", None, "clip_id",
+                                    f"clip {clip!r} with no row in stages/audio.parquet",
+                                    "only clips the audio stage wrote"))
+        if "ingest" in stages:
+            sources = set(stages["ingest"].column("source_path").to_pylist())
+            handled = set(audio["source_path"]) | set(rej.loc[rej["stage"] == "audio", "source_path"])
+            for source in sorted(sources - handled)[:SHOWN_FAILURES]:
+                problems.append(Problem("error", "conservation", "stages/ingest.parquet", None, "source_path",
+                                        f"source {source!r} with no clip and no audio reject",
+                                        "every accepted source in stages/audio.parquet or rejected.parquet"))
+    return problems
+
+
 def _flac_streaminfo(head: bytes) -> tuple[int, int, int] | None:
     """(sample rate, frames, channels) from a FLAC file's first 42 bytes.
 
@@ -743,10 +778,13 @@ def validate_out(out: Path, *, deep: bool = False, audio_files: bool = True) -> 
             problems += _check_config_hash(out, subset_file(name), config)
     rejected = _read(out, REJECTED_FILE, "rejected", required=True, problems=problems)
     rows += rejected.num_rows if rejected is not None else 0
+    stage_tables: dict[str, pa.Table] = {}
     for stage in STAGES:
         if (SCHEMA_DIR / f"{stage}.schema.json").exists():
             table = _read(out, f"stages/{stage}.parquet", stage, required=False, problems=problems)
             rows += table.num_rows if table is not None else 0
+            if table is not None:
+                stage_tables[stage] = table
         table = _read(out, f"stages/{stage}.rejects.parquet", "rejected", required=False, problems=problems)
         rows += table.num_rows if table is not None else 0
 
@@ -764,6 +802,7 @@ def validate_out(out: Path, *, deep: bool = False, audio_files: bool = True) -> 
         ("duration_bounds", lambda: check_durations(s, config)),
         ("quality_gate", lambda: check_quality_gates(s, config)),
         ("near_duplicate_split", lambda: check_near_duplicates(s)),
+        ("conservation", lambda: check_conservation(s, stage_tables, rejected)),
     ]
     if audio_files:
         checks.append(("audio_header", lambda: check_audio_files(s, out, deep=deep)))

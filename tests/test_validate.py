@@ -584,3 +584,22 @@ def test_flac_header_parse_agrees_with_libsndfile(tmp_path: Path) -> None:
     assert _flac_streaminfo(wav.read_bytes()[:42]) is None
     assert read_header(str(wav)) == (22050, 100, 1)
     assert read_header(str(tmp_path / "missing.flac")) == "no such file"
+
+
+def test_conservation_fires_when_a_clip_goes_missing(demo_build: Path, tmp_path: Path) -> None:
+    """Drop one clip from unlabelled.parquet: it is then in no subset and not rejected."""
+    import pyarrow.parquet as pq
+
+    from pipeline.manifest import read_metadata, write_manifest
+
+    out = tmp_path / "out"
+    shutil.copytree(demo_build, out)
+    path = out / "manifests" / "unlabelled.parquet"
+    table = pq.read_table(path)
+    dropped = table.column("clip_id")[0].as_py()
+    meta = {k: v for k, v in read_metadata(path).items() if k != "schema"}
+    write_manifest(path, "subset", table.slice(1).replace_schema_metadata(None), metadata=meta)
+    result = validate_out(out)
+    found = [p for p in result.problems if p.check == "conservation"]
+    assert len(found) == 1 and dropped in found[0].found and found[0].severity == "error"
+    assert exit_code(result, strict=False) == 1
