@@ -90,15 +90,17 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Check every manifest against its schema, the audio files against the manifests, "
                        "and the split for leaks between held-out and training.",
                        epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("out", type=Path, metavar="OUT")
+    p.add_argument("out", type=Path, metavar="OUT", help="a folder written by loam prepare")
     p.add_argument("--json", action="store_true", help="print a machine-readable report")
+    p.add_argument("--manifests-only", action="store_true",
+                   help="check the manifests alone, without opening the audio files (fastest)")
     p.add_argument("--deep", action="store_true", help="also decode every clip, re-hash it and re-measure its loudness")
     p.add_argument("--strict", action="store_true", help="warnings count as errors for the exit code")
 
     p = sub.add_parser("report", help="write OUT/report/index.html and summary.json",
                        description="Summarise OUT in a self-contained HTML page and a JSON file.",
                        epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("out", type=Path, metavar="OUT")
+    p.add_argument("out", type=Path, metavar="OUT", help="a folder written by loam prepare")
     return parser
 
 
@@ -133,7 +135,9 @@ def _cmd_stage(args: argparse.Namespace) -> int:
 def _cmd_validate(args: argparse.Namespace) -> int:
     from pipeline.validate import exit_code, format_table, validate_out
 
-    result = validate_out(args.out, deep=args.deep)
+    if args.deep and args.manifests_only:
+        raise UsageError("--deep and --manifests-only exclude each other")
+    result = validate_out(args.out, deep=args.deep, audio_files=not args.manifests_only)
     if args.json:
         print(json.dumps(result.to_json(), indent=2, ensure_ascii=False))
     else:

@@ -603,3 +603,16 @@ def test_conservation_fires_when_a_clip_goes_missing(demo_build: Path, tmp_path:
     found = [p for p in result.problems if p.check == "conservation"]
     assert len(found) == 1 and dropped in found[0].found and found[0].severity == "error"
     assert exit_code(result, strict=False) == 1
+
+
+def test_manifests_only_skips_the_audio_files(demo_build: Path, tmp_path: Path, capsys) -> None:
+    """With --manifests-only a missing audio file goes unnoticed; without it, it is an error."""
+    from pipeline.cli import main
+
+    out = tmp_path / "out"
+    shutil.copytree(demo_build, out)
+    next((out / "audio").rglob("*.flac")).unlink()
+    assert main(["validate", str(out), "--manifests-only"]) == 0
+    assert main(["validate", str(out)]) == 1
+    assert "audio_missing" in capsys.readouterr().out
+    assert main(["validate", str(out), "--manifests-only", "--deep"]) == 2
