@@ -145,7 +145,10 @@ class VoiceActivityStream:
         pcm = float_to_pcm16(frames).astype("<i2")
         vad_says = np.fromiter(
             (self._vad.is_speech(row.tobytes(), self.sample_rate) for row in pcm), dtype=bool, count=whole)
-        noise_like = spectral_flatness(frames) >= self.max_flatness
+        # The veto can only remove speech, so the spectra are needed on speech frames only.
+        noise_like = np.zeros(whole, dtype=bool)
+        if vad_says.any():
+            noise_like[vad_says] = spectral_flatness(frames[vad_says]) >= self.max_flatness
         mean_square = np.einsum("ij,ij->i", frames, frames, dtype=np.float64) / self.frame_samples
         with np.errstate(divide="ignore"):
             energy = np.maximum(10 * np.log10(mean_square), SILENT_FRAME_DB)
