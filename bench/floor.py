@@ -42,3 +42,12 @@ def run_floor(raw: Path, scratch: Path, *, workers: int, sample_rate: int = 1600
     for job in jobs:
         os.unlink(job.target)
     return seconds
+
+
+if __name__ == "__main__":
+    # Run as its own process, like `loam prepare`, so both include interpreter start-up.
+    import sys
+    import tempfile
+
+    with tempfile.TemporaryDirectory() as scratch:
+        run_floor(Path(sys.argv[1]), Path(scratch), workers=int(sys.argv[2]))
