@@ -101,6 +101,7 @@ class QualityConfig:
     noisy_to_unlabelled: bool
     rate_max_abs_z: float
     rate_min_clips: int
+    rate_min_spread: float
     near_duplicate_min_similarity: float
     min_bandwidth_hz: float
     narrowband_to_unlabelled: bool

@@ -745,10 +745,10 @@ _MAD_TO_Z = 0.6745  # the 0.75 quantile of the standard normal, as in Iglewicz a
 _MEAN_AD_TO_Z = 1.253314  # sqrt(pi/2): mean absolute deviation to sigma for a normal
 
 
-def _modified_z(x: np.ndarray, ref: np.ndarray) -> np.ndarray:
+def _modified_z(x: np.ndarray, ref: np.ndarray, min_mad_fraction: float = 0.0) -> np.ndarray:
     med = np.median(ref)
     dev = x - med
-    mad = np.median(np.abs(ref - med))
+    mad = max(float(np.median(np.abs(ref - med))), min_mad_fraction * abs(float(med)))
     if mad > 0:
         return _MAD_TO_Z * dev / mad
     mean_ad = np.mean(np.abs(ref - med))
@@ -757,7 +757,8 @@ def _modified_z(x: np.ndarray, ref: np.ndarray) -> np.ndarray:
     return np.zeros_like(dev)  # every reference value equals the median, and so does x
 
 
-def robust_z_scores(values: np.ndarray, groups: np.ndarray, *, min_group_size: int) -> np.ndarray:
+def robust_z_scores(values: np.ndarray, groups: np.ndarray, *, min_group_size: int,
+                    min_mad_fraction: float = 0.0) -> np.ndarray:
     """Per-group modified z-scores, ``0.6745 * (x - median) / MAD``.
 
     The modified z-score of B. Iglewicz and D. C. Hoaglin, "How to Detect and Handle
@@ -783,6 +784,10 @@ def robust_z_scores(values: np.ndarray, groups: np.ndarray, *, min_group_size: i
         against the whole set.
     min_group_size : int
         Smallest group (finite values) with its own median and MAD; >= 2.
+    min_mad_fraction : float
+        Smallest MAD used, as a share of the median (0 for none). A small group can have
+        a MAD far below the natural spread of what is measured, and then flags ordinary
+        values; a floor keeps the score on a realistic scale (common practice, no source).
 
     Returns
     -------
@@ -806,6 +811,8 @@ def robust_z_scores(values: np.ndarray, groups: np.ndarray, *, min_group_size: i
         raise ParameterError(f"min_group_size={min_group_size!r} must be an integer >= 2")
     if np.isinf(x).any():
         raise ParameterError("values contains infinite entries (use NaN for missing)")
+    if not 0.0 <= min_mad_fraction < 1.0:
+        raise ParameterError(f"min_mad_fraction={min_mad_fraction!r} must be in [0, 1)")
 
     out = np.full(x.shape, np.nan)
     finite = ~np.isnan(x)
@@ -822,8 +829,8 @@ def robust_z_scores(values: np.ndarray, groups: np.ndarray, *, min_group_size: i
     cuts = np.flatnonzero(np.diff(codes[index])) + 1
     for members in np.split(index, cuts):
         if members.size:
-            out[members] = _modified_z(x[members], x[members])
+            out[members] = _modified_z(x[members], x[members], min_mad_fraction)
     rest = finite & ~own
     if rest.any():
-        out[rest] = _modified_z(x[rest], x[finite])
+        out[rest] = _modified_z(x[rest], x[finite], min_mad_fraction)
     return out

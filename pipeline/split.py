@@ -331,7 +331,7 @@ def find_duplicates(clips: Sequence[Clip], fingerprints: Sequence[np.ndarray], *
 
 
 def apply_gates(clips: Sequence[Clip], *, min_snr_db: float, min_bandwidth_hz: float, narrowband_gates: bool,
-                rate_max_abs_z: float, rate_min_clips: int) -> None:
+                rate_max_abs_z: float, rate_min_clips: int, rate_min_spread: float = 0.0) -> None:
     """Speaking rate and its robust z-score per speaker, the gate flags, and eligibility.
 
     ``speaking_rate`` is phones (word boundaries left out) per second of speech;
@@ -347,7 +347,8 @@ def apply_gates(clips: Sequence[Clip], *, min_snr_db: float, min_bandwidth_hz: f
             c.speaking_rate = len(c.plain_phones) / speech_s
     rates = np.array([np.nan if c.speaking_rate is None else c.speaking_rate for c in clips], dtype=np.float64)
     speakers = np.array([c.speaker for c in clips], dtype=object)
-    z = quality.robust_z_scores(rates, speakers, min_group_size=rate_min_clips) if clips else np.zeros(0)
+    z = (quality.robust_z_scores(rates, speakers, min_group_size=rate_min_clips, min_mad_fraction=rate_min_spread)
+         if clips else np.zeros(0))
     for c, zc in zip(clips, z.tolist(), strict=True):
         c.rate_z = _finite(zc)
         snr = _finite(c.audio["snr_db"])
@@ -626,7 +627,7 @@ def run(ctx: StageContext) -> StageResult:
         c.group = g
     apply_gates(clips, min_snr_db=qc.min_snr_db, min_bandwidth_hz=qc.min_bandwidth_hz,
                 narrowband_gates=qc.narrowband_to_unlabelled, rate_max_abs_z=qc.rate_max_abs_z,
-                rate_min_clips=qc.rate_min_clips)
+                rate_min_clips=qc.rate_min_clips, rate_min_spread=qc.rate_min_spread)
 
     rejects = []
     if not qc.noisy_to_unlabelled:

@@ -470,3 +470,21 @@ def test_robust_z_zero_mad_missing_values_and_labels() -> None:
         quality.robust_z_scores(values, groups, min_group_size=1)
     with pytest.raises(ParameterError, match="groups"):
         quality.robust_z_scores(values, groups[:3], min_group_size=3)
+
+
+def test_mad_floor_keeps_ordinary_variation_unflagged() -> None:
+    """Twelve clips spread like ordinary reading (about +-8 %, values invented) whose MAD
+    happens to be tiny: without a floor a clip 12 % off scores past Iglewicz and
+    Hoaglin's 3.5; with a 5 % floor it does not, while a doubled rate still does."""
+    rates = np.array([10.0, 10.02, 9.98, 10.01, 9.99, 10.0, 10.03, 9.97, 10.0, 9.2, 10.8, 11.2])
+    groups = np.zeros(len(rates))
+    plain = quality.robust_z_scores(rates, groups, min_group_size=5)
+    floored = quality.robust_z_scores(rates, groups, min_group_size=5, min_mad_fraction=0.05)
+    assert abs(plain[-1]) > 3.5 and abs(floored[-1]) < 3.5
+    # The floor never raises a score, and leaves a gross mismatch flagged.
+    assert np.all(np.abs(floored) <= np.abs(plain) + 1e-12)
+    doubled = quality.robust_z_scores(np.append(rates, 20.0), np.zeros(13), min_group_size=5, min_mad_fraction=0.05)
+    assert doubled[-1] > 3.5
+    # With the floor in force the score is 0.6745 * (x - median) / (0.05 * median).
+    med = np.median(rates)
+    assert floored[-1] == pytest.approx(0.6745 * (rates[-1] - med) / (0.05 * med))
