@@ -10,6 +10,7 @@ audio file it names.
 from __future__ import annotations
 
 import csv
+import hashlib
 import io
 import os
 import posixpath
@@ -53,8 +54,6 @@ def source_id(stem: str, sha256: str) -> str:
 def speaker_id(name: str) -> str:
     """A file-name-safe speaker id; a name that needs changing gets a hash suffix so two
     different names can never map to one id."""
-    import hashlib
-
     safe = _SPEAKER_KEEP.sub("_", unicodedata.normalize("NFKD", name).encode("ascii", "ignore").decode())
     safe = safe.strip("._-") or "speaker"
     if safe != name:
@@ -314,6 +313,7 @@ def run(ctx: StageContext) -> StageResult:
     path_set = set(paths)
 
     meta_rows: list[MetadataRow] = []
+    meta_rejects: list[dict[str, Any]] = []
     table_rel = cfg.metadata
     if table_rel:
         meta_rows, meta_rejects = read_metadata_table(
@@ -421,7 +421,7 @@ def run(ctx: StageContext) -> StageResult:
         "audio_files_found": len(paths),
         "audio_files_accepted": len(accepted),
         "audio_files_rejected": audio_rejected,
-        "metadata_rows": len(meta_rows) + sum(1 for r in rejects if ":" in r["source_path"] and r["reason"] == "metadata_parse_error"),
+        "metadata_rows": len(meta_rows) + len(meta_rejects),
         "transcribed": sum(1 for r in accepted if r["transcript"] is not None),
         "hours": sum(r["duration_s"] for r in accepted) / 3600,
         "speakers": len({r["speaker"] for r in accepted}),

@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import hashlib
 import importlib
-import importlib.util
 import json
 import logging
 import os
@@ -254,8 +253,6 @@ class Runner:
             write_text_atomic(self.out / "config.resolved.json",
                               json.dumps(self.config.to_json(), indent=2, sort_keys=True, ensure_ascii=False) + "\n")
             for name in stages:
-                if importlib.util.find_spec(f"pipeline.{name}") is None:
-                    continue
                 self.run_stage(name)
             n = self.write_rejected()
             self.log.info("rejected: %d rows in %s", n, self.out / REJECTED_PATH)
