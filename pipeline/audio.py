@@ -443,6 +443,11 @@ def _write_clip(job: AudioJob, clip: np.ndarray, placed: dict[str, Any]) -> dict
     return {"row": row, "stat": [st.st_size, st.st_mtime_ns, st.st_ino]}
 
 
+def written_files(out: Path, table: Any) -> list[str]:
+    """The clip files the audio manifest names (see pipeline.stage)."""
+    return [str(p) for p in table.column("audio_path").to_pylist()]
+
+
 def _outputs_intact(out: Path, outcome: dict[str, Any]) -> bool:
     """Whether every file a cached result wrote is still there, untouched since."""
     try:

@@ -104,15 +104,51 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def _cmd_prepare(args: argparse.Namespace, stages: tuple[str, ...] | None = None) -> int:
-    from pipeline.config import load_config
-    from pipeline.runner import STAGE_ORDER, Runner, setup_logging
+def _nothing_changed(args: argparse.Namespace, invocation: str) -> bool:
+    """End a ``prepare`` at once when RAW, OUT, config and code are exactly as the last
+    finished run left them (``pipeline.snapshot``); False means do the full run."""
+    from pipeline import snapshot
+    from pipeline.fsio import write_text_atomic
+    from pipeline.lock import output_lock
+    from pipeline.runlog import setup_logging
 
+    state = snapshot.load(args.out) if args.out.is_dir() else None
+    if state is None:
+        return False
+    with output_lock(args.out):
+        if not snapshot.unchanged(state, invocation=invocation, raw=args.raw, out=args.out):
+            return False
+        log, log_path = setup_logging(args.out, args.command)
+        log.info("loam %s %s %s -> %s (log: %s)", __version__, args.command, args.raw, args.out, log_path)
+        log.info("nothing changed since the last run (RAW, OUT, config and code are as it left them): "
+                 "every stage reused")
+        for note in state.get("notes", []):
+            log.info("%s", note)
+        write_text_atomic(args.out / "logs" / "last-run.json", json.dumps({
+            "stages": [], "unchanged_since_last_run": True}, indent=2) + "\n")
+    return True
+
+
+def _cmd_prepare(args: argparse.Namespace, stages: tuple[str, ...] | None = None) -> int:
     if not args.raw.is_dir():
         raise UsageError(f"RAW {str(args.raw)!r} is not a folder")
     if args.out.resolve() == args.raw.resolve() or args.raw.resolve() in args.out.resolve().parents:
         raise UsageError(f"OUT {str(args.out)!r} must not be inside RAW {str(args.raw)!r}: the raw dump is never written to")
-    config = load_config(args.config, overrides=_overrides(args))
+    overrides = _overrides(args)
+    invocation = None
+    if stages is None and not args.fresh and not args.no_cache and (args.config is None or args.config.is_file()):
+        from pipeline import snapshot
+
+        invocation = snapshot.invocation_digest(raw=args.raw, out=args.out, config_path=args.config,
+                                                overrides=overrides, version=__version__)
+        if _nothing_changed(args, invocation):
+            return 0
+
+    from pipeline.config import load_config
+    from pipeline.runlog import setup_logging
+    from pipeline.runner import STAGE_ORDER, Runner
+
+    config = load_config(args.config, overrides=overrides)
     try:
         args.out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
@@ -120,7 +156,8 @@ def _cmd_prepare(args: argparse.Namespace, stages: tuple[str, ...] | None = None
     log, log_path = setup_logging(args.out, args.command)
     log.info("loam %s %s %s -> %s (log: %s)", __version__, args.command, args.raw, args.out, log_path)
     runner = Runner(args.raw, args.out, config, workers=config.run.workers, scheduler=config.run.scheduler,
-                    use_cache=not args.no_cache, options={"fresh": getattr(args, "fresh", False)}, log=log)
+                    use_cache=not args.no_cache, options={"fresh": getattr(args, "fresh", False)}, log=log,
+                    invocation=invocation)
     runner.prepare(stages or STAGE_ORDER)
     return 0
 

@@ -290,6 +290,14 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str,
     return [r for r in results if r is not None]
 
 
+def extra_inputs(ctx: StageContext) -> list[Path]:
+    """Files outside RAW this stage reads or writes: the pseudonym key and mapping."""
+    privacy = ctx.config.privacy
+    if not privacy.pseudonymise:
+        return []
+    return [ctx.config.resolve_path(p) for p in (privacy.key_file, privacy.mapping_file) if p]
+
+
 def _pseudonymise(ctx: StageContext, rows: list[dict[str, Any]]) -> None:
     """Replace speaker ids by keyed pseudonyms, and drop file stems (which often carry
     names) from source ids."""

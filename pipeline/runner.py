@@ -16,7 +16,7 @@ from typing import Any
 
 import pyarrow as pa
 
-from pipeline import __version__
+from pipeline import __version__, snapshot
 from pipeline.config import Config, canonical_json
 from pipeline.errors import DataError, UsageError
 from pipeline.fsio import remove_stale_temporaries, write_text_atomic
@@ -54,6 +54,21 @@ def summary_path(name: str) -> str:
     return f"stages/{name}.summary.json"
 
 
+def outputs_record_path(name: str) -> str:
+    return f"cache/stages/{name}.json"
+
+
+def _stat_of(out: Path, rels: list[str]) -> list[list[Any]]:
+    state: list[list[Any]] = []
+    for rel in sorted(set(rels)):
+        try:
+            st = os.stat(out / rel)
+            state.append([rel, st.st_size, st.st_mtime_ns, st.st_ino])
+        except OSError:
+            state.append([rel, None])
+    return state
+
+
 def params_sha256(module: ModuleType, config: Config) -> str:
     """Hash of everything in the config and code that a stage's output depends on."""
     parts = {
@@ -66,8 +81,10 @@ def params_sha256(module: ModuleType, config: Config) -> str:
     return hashlib.sha256(canonical_json(parts)).hexdigest()
 
 
-def inputs_sha256(out: Path, module: ModuleType, ctx: StageContext) -> str:
-    """Hash of the upstream manifests' bytes plus any extra files the stage reads."""
+def inputs_sha256(out: Path, module: ModuleType, ctx: StageContext, watched: set[str] | None = None) -> str:
+    """Hash of the upstream manifests' bytes plus any extra files the stage reads
+    (their absolute paths are added to ``watched``)."""
+    watched = set() if watched is None else watched
     digest = hashlib.sha256()
     for name in module.INPUTS:
         digest.update(name.encode() + b"\0")
@@ -76,6 +93,7 @@ def inputs_sha256(out: Path, module: ModuleType, ctx: StageContext) -> str:
     # Content only, not the paths: the same inputs under another OUT or checkout must
     # give byte-identical manifests, metadata included.
     for path in extra(ctx) if extra else []:
+        watched.add(os.path.abspath(path))
         digest.update(b"extra\0")
         try:
             digest.update(hashlib.sha256(Path(path).read_bytes()).digest())
@@ -92,26 +110,6 @@ class StageRecord:
     summary: dict[str, Any]
 
 
-def setup_logging(out: Path, command: str) -> tuple[logging.Logger, Path]:
-    logs = out / "logs"
-    logs.mkdir(parents=True, exist_ok=True)
-    stamp = time.strftime("%Y%m%dT%H%M%S", time.gmtime())
-    log_path = logs / f"{command}-{stamp}-{os.getpid()}.log"
-    logger = logging.getLogger("loam")
-    logger.setLevel(logging.INFO)
-    for handler in list(logger.handlers):
-        logger.removeHandler(handler)
-        handler.close()
-    file_handler = logging.FileHandler(log_path, encoding="utf-8")
-    file_handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
-    logger.addHandler(file_handler)
-    console = logging.StreamHandler()
-    console.setFormatter(logging.Formatter("%(message)s"))
-    logger.addHandler(console)
-    logger.propagate = False
-    return logger, log_path
-
-
 class Runner:
     """One ``loam prepare`` (or ``loam stage``) invocation on an output folder."""
 
@@ -126,6 +124,7 @@ class Runner:
         use_cache: bool = True,
         options: dict[str, Any] | None = None,
         log: logging.Logger | None = None,
+        invocation: str | None = None,
     ) -> None:
         self.raw = Path(raw)
         self.out = Path(out)
@@ -136,6 +135,11 @@ class Runner:
         self.options = options or {}
         self.log = log or logging.getLogger("loam")
         self.records: list[StageRecord] = []
+        # Digest of the command (pipeline.snapshot); when set, a finished full run
+        # records a snapshot that lets an identical rerun end at once.
+        self.invocation = invocation
+        # Files outside RAW a stage read or wrote: the snapshot watches them too.
+        self.watched: set[str] = set()
 
     def _context(self, inputs: dict[str, pa.Table]) -> StageContext:
         return StageContext(
@@ -165,7 +169,25 @@ class Runner:
             meta = read_metadata(main)
         except Exception:  # unreadable or foreign file: rebuild it
             return False
-        return meta.get("params_sha256") == params and meta.get("inputs_sha256") == inputs
+        if meta.get("params_sha256") != params or meta.get("inputs_sha256") != inputs:
+            return False
+        return self._outputs_unchanged(module.NAME)
+
+    def _outputs_unchanged(self, name: str) -> bool:
+        """Whether every file the stage wrote last time is still as it left it."""
+        try:
+            recorded = json.loads((self.out / outputs_record_path(name)).read_text(encoding="utf-8"))["files"]
+        except (OSError, ValueError, KeyError, TypeError):
+            return False
+        return _stat_of(self.out, [entry[0] for entry in recorded]) == recorded
+
+    def _record_outputs(self, module: ModuleType, manifests: list[str]) -> None:
+        rels = [*manifests, rejects_path(module.NAME), summary_path(module.NAME)]
+        written = getattr(module, "written_files", None)
+        if written is not None:
+            rels += written(self.out, read_manifest(self.out / manifest_path(module.NAME)))
+        write_text_atomic(self.out / outputs_record_path(module.NAME),
+                          json.dumps({"files": _stat_of(self.out, rels)}) + "\n")
 
     def _metadata(self, module: ModuleType, params: str, inputs: str, extra: dict[str, str]) -> dict[str, str]:
         meta = {
@@ -185,7 +207,7 @@ class Runner:
         inputs = {n: self._load_input(n) for n in module.INPUTS}
         ctx = self._context(inputs)
         params = params_sha256(module, self.config)
-        in_hash = inputs_sha256(self.out, module, ctx)
+        in_hash = inputs_sha256(self.out, module, ctx, self.watched)
         if self._up_to_date(module, params, in_hash):
             self._refresh_config_hash(module)
             summary = json.loads((self.out / summary_path(name)).read_text(encoding="utf-8"))
@@ -199,7 +221,7 @@ class Runner:
             if getattr(module, "INPUTS_AFTER_RUN", False):
                 # The stage rewrote one of its own inputs (the split ledger): record the
                 # state it left, which a rerun would reproduce.
-                in_hash = inputs_sha256(self.out, module, ctx)
+                in_hash = inputs_sha256(self.out, module, ctx, self.watched)
             self._write_result(module, result, params, in_hash)
             record = StageRecord(name, True, time.perf_counter() - start, result.summary)
             self.log.info("%-6s done in %.1f s: %s", name, record.seconds, _short(result.summary))
@@ -221,17 +243,26 @@ class Runner:
         # The main manifest goes last: its metadata is what marks the stage up to date.
         for rel, (schema, table) in sorted(result.manifests.items(), key=lambda kv: kv[0] == manifest_path(module.NAME)):
             write_manifest(self.out / rel, schema, table, metadata=meta)
+        self._record_outputs(module, list(result.manifests))
 
     def _refresh_config_hash(self, module: ModuleType) -> None:
-        """A reused manifest still records the hash of the config in force now."""
+        """A reused stage's manifests still record the hash of the config in force now
+        (a change in a section the stage does not read)."""
         current = self.config.sha256()
-        for rel in (manifest_path(module.NAME), rejects_path(module.NAME)):
+        recorded = json.loads((self.out / outputs_record_path(module.NAME)).read_text(encoding="utf-8"))
+        manifests = [entry[0] for entry in recorded["files"] if entry[0].endswith(".parquet")]
+        rewritten = False
+        for rel in manifests:
             path = self.out / rel
             meta = read_metadata(path)
             if meta.get("config_sha256") != current:
+                rewritten = True
                 table = read_manifest(path)
                 meta["config_sha256"] = current
-                write_manifest(path, meta.get("schema", module.NAME), table.replace_schema_metadata(None), metadata={k: v for k, v in meta.items() if k != "schema"})
+                write_manifest(path, meta.get("schema", module.NAME), table.replace_schema_metadata(None),
+                               metadata={k: v for k, v in meta.items() if k != "schema"})
+        if rewritten:
+            self._record_outputs(module, manifests)
 
     def write_rejected(self) -> int:
         """Gather every stage's rejects into ``manifests/rejected.parquet``."""
@@ -247,6 +278,11 @@ class Runner:
 
     def prepare(self, stages: tuple[str, ...] = STAGE_ORDER) -> list[StageRecord]:
         with output_lock(self.out):
+            # RAW is listed before any work, so a file that arrives during the run
+            # makes the next run a full one.
+            record_snapshot = self.invocation is not None and tuple(stages) == STAGE_ORDER
+            raw_listing = snapshot.raw_digest(self.raw) if record_snapshot else ""
+            snapshot.forget(self.out)
             removed = remove_stale_temporaries(self.out)
             if removed:
                 self.log.info("removed %d temporary files left by an interrupted run", removed)
@@ -261,6 +297,12 @@ class Runner:
                 "stages": [{"name": r.name, "ran": r.ran, "seconds": round(r.seconds, 4)} for r in self.records],
                 "workers": self.workers, "scheduler": self.scheduler,
             }, indent=2) + "\n")
+            if record_snapshot and self.invocation is not None:
+                notes = [module.reuse_note(r.summary) for r in self.records
+                         if hasattr(module := stage_module(r.name), "reuse_note")]
+                notes.append(f"rejected: {n} rows in {self.out / REJECTED_PATH}")
+                snapshot.save(self.out, snapshot.capture(invocation=self.invocation, raw_digest=raw_listing,
+                                                         out=self.out, watched=sorted(self.watched), notes=notes))
         return self.records
 
 

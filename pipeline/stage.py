@@ -8,6 +8,12 @@ A stage is a module under ``pipeline/`` exposing:
 ``CODE_VERSION``    bumped whenever a code change alters its output;
 ``run(ctx) -> StageResult``.
 
+Optional: ``written_files(out, table) -> list[str]``, the files besides manifests the
+stage wrote (paths relative to OUT, e.g. its audio clips), given its main manifest.
+The runner records the stat of those and of every manifest the stage wrote in
+``OUT/cache/stages/<NAME>.json``, and reuses the stage only while they all match, so
+a deleted clip or an edited manifest makes the stage run again.
+
 The runner hands the stage its validated input tables in ``ctx.inputs``, and
 validates and writes whatever the stage returns. A stage never writes a
 manifest itself; it may write other files (audio, lexicons) through

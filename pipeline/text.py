@@ -67,6 +67,11 @@ def extra_inputs(ctx: StageContext) -> list[Path]:
     return sorted(_lexicon_paths(ctx.config).values())
 
 
+def written_files(out: Path, table: object) -> list[str]:
+    """The predicted lexicon beside the manifest (see pipeline.stage)."""
+    return [PREDICTED_LEXICON]
+
+
 def build_pronouncer(config: Config, *, cache_dir: Path | None) -> Pronouncer:
     """The Pronouncer for ``config.text``; lexicon files are read (UsageError if malformed)."""
     cfg = config.text

@@ -1,0 +1,148 @@
+"""The no-change check (pipeline.snapshot): an identical rerun ends at once, and any
+change to RAW, OUT, the config, the overrides or a watched file makes a full run."""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from pipeline import snapshot
+from pipeline.cli import main
+from tests.conftest import REPO, tree_hash
+
+NOTHING = "nothing changed since the last run"
+
+
+def _run(raw: Path, out: Path, capsys: pytest.CaptureFixture[str], *extra: str) -> str:
+    capsys.readouterr()
+    assert main(["prepare", str(raw), str(out), "--workers", "1", "--no-progress", *extra]) == 0
+    return capsys.readouterr().err
+
+
+def _outputs(out: Path) -> dict[str, str]:
+    """Manifests, clips and lexicon; the stage summaries count what was redone, so differ."""
+    return {k: v for k, v in tree_hash(out).items()
+            if not k.startswith(("logs", "cache")) and not k.endswith(".summary.json")}
+
+
+def test_identical_rerun_ends_at_once_with_the_same_outputs(small_raw: Path, tmp_path: Path,
+                                                           capsys: pytest.CaptureFixture[str]) -> None:
+    out = tmp_path / "out"
+    first = _run(small_raw, out, capsys)
+    assert NOTHING not in first
+    assert (out / snapshot.STATE_PATH).is_file()
+    before = _outputs(out)
+    again = _run(small_raw, out, capsys)
+    assert NOTHING in again
+    assert "ingest running" not in again and "reused from cache" not in again
+    # The last run's closing lines are repeated, so the console says the same thing.
+    assert "split changes: none" in again and "rejected: 2 rows in" in again
+    assert _outputs(out) == before
+    assert json.loads((out / "logs" / "last-run.json").read_text())["unchanged_since_last_run"] is True
+
+
+def test_the_check_imports_nothing_heavy(small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    out = tmp_path / "out"
+    _run(small_raw, out, capsys)
+    probe = ("import sys\nfrom pipeline.cli import main\n"
+             f"rc = main(['prepare', {str(small_raw)!r}, {str(out)!r}, '--workers', '1', '--no-progress'])\n"
+             "print(rc, sorted(m for m in ('numpy', 'pyarrow', 'jsonschema', 'soundfile') if m in sys.modules))\n")
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, cwd=REPO, check=True)
+    assert NOTHING in done.stderr
+    assert done.stdout.split("\n")[0] == "0 []"
+
+
+@pytest.mark.parametrize("change", ["touch_raw", "add_raw", "remove_raw", "delete_clip", "edit_manifest",
+                                    "override", "fresh", "no_cache"])
+def test_any_change_makes_a_full_run(change: str, small_raw: Path, tmp_path: Path,
+                                     capsys: pytest.CaptureFixture[str]) -> None:
+    import soundfile as sf
+
+    from tests.conftest import speechlike
+
+    out = tmp_path / "out"
+    _run(small_raw, out, capsys)
+    before = _outputs(out)
+    extra: list[str] = []
+    if change == "touch_raw":
+        st = os.stat(small_raw / "spk_a" / "a1.txt")
+        os.utime(small_raw / "spk_a" / "a1.txt", ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000))
+    elif change == "add_raw":
+        sf.write(small_raw / "spk_a" / "a3.wav", speechlike(1.5, 16000, seed=9), 16000)
+    elif change == "remove_raw":
+        (small_raw / "spk_b" / "b2.ogg").unlink()
+    elif change == "delete_clip":
+        next((out / "audio").rglob("*.flac")).unlink()
+    elif change == "edit_manifest":
+        (out / "manifests" / "unlabelled.parquet").write_bytes(b"not parquet")
+    elif change == "override":
+        extra = ["--set", "audio.target_lufs=-20"]
+    elif change == "fresh":
+        extra = ["--fresh"]
+    elif change == "no_cache":
+        extra = ["--no-cache"]
+    log = _run(small_raw, out, capsys, *extra)
+    assert NOTHING not in log
+    assert "ingest running" in log
+    if change in {"touch_raw", "delete_clip", "edit_manifest", "fresh", "no_cache"}:
+        # Nothing that matters changed, so the full run puts back the same outputs.
+        assert _outputs(out) == before
+    if change == "no_cache":
+        # A run that skips the caches records no snapshot, so the next one is full too.
+        assert not (out / snapshot.STATE_PATH).exists()
+
+
+def test_a_changed_config_file_or_ledger_makes_a_full_run(small_raw: Path, tmp_path: Path,
+                                                          capsys: pytest.CaptureFixture[str]) -> None:
+    out = tmp_path / "out"
+    config = tmp_path / "corpus.toml"
+    ledger = tmp_path / "splits.tsv"
+    config.write_text(f'seed = 3\n[split]\nledger = "{ledger}"\n', encoding="utf-8")
+    _run(small_raw, out, capsys, "--config", str(config))
+    assert NOTHING in _run(small_raw, out, capsys, "--config", str(config))
+    # The ledger lives outside OUT: it is watched by its own stat.
+    ledger.write_text(ledger.read_text(encoding="utf-8") + "\n", encoding="utf-8")
+    assert NOTHING not in _run(small_raw, out, capsys, "--config", str(config))
+    assert NOTHING in _run(small_raw, out, capsys, "--config", str(config))
+    config.write_text(config.read_text(encoding="utf-8") + "# a comment\n", encoding="utf-8")
+    assert NOTHING not in _run(small_raw, out, capsys, "--config", str(config))
+
+
+def test_a_run_that_stops_half_way_leaves_no_snapshot(small_raw: Path, tmp_path: Path,
+                                                      capsys: pytest.CaptureFixture[str],
+                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    out = tmp_path / "out"
+    _run(small_raw, out, capsys)
+    (small_raw / "spk_a" / "a1.txt").write_text("changed words\n", encoding="utf-8")
+    import pipeline.text
+
+    def broken(ctx: object) -> None:
+        raise RuntimeError("stopped")
+
+    monkeypatch.setattr(pipeline.text, "run", broken)
+    assert main(["prepare", str(small_raw), str(out), "--workers", "1", "--no-progress"]) == 1
+    assert not (out / snapshot.STATE_PATH).exists()
+    monkeypatch.undo()
+    assert NOTHING not in _run(small_raw, out, capsys)
+
+
+def test_loam_stage_forgets_the_snapshot(small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    out = tmp_path / "out"
+    _run(small_raw, out, capsys)
+    assert main(["stage", "text", str(small_raw), str(out), "--workers", "1", "--no-progress"]) == 0
+    assert not (out / snapshot.STATE_PATH).exists()
+
+
+def test_listing_sees_symlink_targets(tmp_path: Path) -> None:
+    root = tmp_path / "root"
+    root.mkdir()
+    (tmp_path / "target.wav").write_bytes(b"1")
+    (root / "link.wav").symlink_to(tmp_path / "target.wav")
+    before = snapshot.tree_listing(root)
+    (tmp_path / "target.wav").write_bytes(b"22")
+    assert snapshot.tree_listing(root) != before
