@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 import traceback
 from pathlib import Path
@@ -193,7 +194,15 @@ def _cmd_report(args: argparse.Namespace) -> int:
 COMMANDS = {"prepare": _cmd_prepare, "stage": _cmd_stage, "validate": _cmd_validate, "report": _cmd_report}
 
 
+# Parallelism is one process per core (pipeline.parallel); a BLAS thread pool in each
+# of them would only fight the others for the same cores. Set before numpy is imported,
+# and only as defaults, so a user's own setting wins.
+BLAS_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+
+
 def main(argv: list[str] | None = None) -> int:
+    for variable in BLAS_THREAD_VARIABLES:
+        os.environ.setdefault(variable, "1")
     parser = build_parser()
     try:
         args = parser.parse_args(argv)

@@ -6,7 +6,9 @@ or ``(n, channels)``, with full scale at 1.0.
 The K-weighting filter is built from an analog prototype and the bilinear transform, so it
 works at any sample rate and reproduces the coefficients published in BS.1770-4 (Tables 1
 and 2) at 48 kHz. Block energies for the gated measurement come from one cumulative sum of
-the filtered, squared signal, so the cost is linear in the clip length.
+the filtered, squared signal, so the cost is linear in the clip length. The filter runs in
+``pipeline.iir`` (numpy alone), so measuring loudness never imports scipy.signal; only the
+true-peak interpolator does.
 """
 
 from __future__ import annotations
@@ -15,8 +17,8 @@ import functools
 import math
 
 import numpy as np
-import scipy.signal
 
+from pipeline import iir
 from pipeline.errors import ParameterError
 
 # Analog prototypes of the two K-weighting stages, derived by inverting the bilinear transform
@@ -114,7 +116,7 @@ def _k_weighting_sos(sample_rate: int) -> np.ndarray:
     -------
     np.ndarray
         Shape (2, 6), rows ``(b0, b1, b2, 1, a1, a2)`` for the high shelf (stage 1) and the
-        high pass (stage 2), ready for ``scipy.signal.sosfilt``. At 48 kHz the rows equal
+        high pass (stage 2), ready for ``pipeline.iir.sosfilt`` (or ``scipy.signal.sosfilt``). At 48 kHz the rows equal
         the coefficients of BS.1770-4 Tables 1 and 2.
 
     Notes
@@ -148,9 +150,22 @@ def _k_weighting_sos(sample_rate: int) -> np.ndarray:
         w0 = 2.0 * sample_rate * math.tan(math.pi * f0_hz / sample_rate)
         b_analog = [numerator[0], numerator[1] * w0, numerator[2] * w0 * w0]
         a_analog = [1.0, w0 / q, w0 * w0]
-        b, a = scipy.signal.bilinear(b_analog, a_analog, fs=sample_rate)
-        rows.append(np.concatenate([b, a]))
+        rows.append(_bilinear_biquad(b_analog, a_analog, sample_rate=sample_rate))
     return np.vstack(rows)
+
+
+def _bilinear_biquad(b_analog: list[float], a_analog: list[float], *, sample_rate: int) -> np.ndarray:
+    """Digital section (b0, b1, b2, 1, a1, a2) of the analog second-order section
+    (b[0] s^2 + b[1] s + b[2]) / (a[0] s^2 + a[1] s + a[2]) by the bilinear transform
+    s = 2 fs (1 - 1/z) / (1 + 1/z), the mapping ``scipy.signal.bilinear`` uses; written
+    out because second order is three lines, and scipy.signal costs a second to import."""
+    k = 2.0 * sample_rate
+
+    def digital(c: list[float]) -> tuple[float, float, float]:
+        return (c[0] * k * k + c[1] * k + c[2], 2.0 * (c[2] - c[0] * k * k), c[0] * k * k - c[1] * k + c[2])
+
+    b, a = digital(b_analog), digital(a_analog)
+    return np.array([b[0] / a[0], b[1] / a[0], b[2] / a[0], 1.0, a[1] / a[0], a[2] / a[0]])
 
 
 def integrated_loudness(samples: np.ndarray, *, sample_rate: int) -> float:
@@ -199,9 +214,10 @@ def integrated_loudness(samples: np.ndarray, *, sample_rate: int) -> float:
     if n_frames < block_frames:
         return -math.inf
 
-    filtered = scipy.signal.sosfilt(sos, frames, axis=0)
     energy = np.zeros((n_frames + 1, channels))
-    np.cumsum(np.square(filtered), axis=0, out=energy[1:])
+    for channel in range(channels):
+        filtered = iir.sosfilt(sos, frames[:, channel])
+        np.cumsum(np.square(filtered, dtype=np.float64), out=energy[1:, channel])
 
     # Block j starts at floor(j * rate / 10); the last block is the last that fits whole.
     n_blocks = (BLOCKS_PER_S * (n_frames - block_frames) + BLOCKS_PER_S - 1) // sample_rate + 1
@@ -289,6 +305,8 @@ def true_peak_dbfs(samples: np.ndarray, *, sample_rate: int) -> float:
     factor = -(-TRUE_PEAK_MIN_RATE_HZ // sample_rate)
     if factor <= 1 or sample_peak == 0.0:
         return _peak_to_dbfs(sample_peak)
+
+    import scipy.signal  # only here: the import costs about a second
 
     taps = scipy.signal.firwin(
         2 * TRUE_PEAK_HALF_TAPS * factor + 1,

@@ -436,8 +436,9 @@ def test_gain_applied_to_a_clip(peak_ratio_db: float) -> None:
     )
     gained = clip * 10 ** (gain_db / 20)
     assert shortfall_db >= 0.0
+    # The K-weighting runs in float32 (pipeline.iir): homogeneous to ~1e-7 LU, not 1e-12.
     assert integrated_loudness(gained, sample_rate=16_000) == pytest.approx(
-        -16.0 - shortfall_db, abs=1e-9
+        -16.0 - shortfall_db, abs=1e-5
     )
     assert true_peak_dbfs(gained, sample_rate=16_000) <= -1.0 + 1e-9
     if shortfall_db > 0.0:
