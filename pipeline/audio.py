@@ -107,7 +107,7 @@ class LongTermPsd:
     the whole signal.
 
     Each block is joined to the unused tail of the previous one and only whole Welch
-    segments (half overlap, as ``long_term_psd`` uses) are taken, so every segment of
+    segments (side by side, as ``long_term_psd`` takes them) are used, so every segment of
     the full signal is counted exactly once; the per-block PSDs are averaged weighted
     by their segment counts.
     """
@@ -127,9 +127,8 @@ class LongTermPsd:
         if freqs.size == 0:
             self._carry = data
             return
-        segment = 2 * (freqs.size - 1)
-        hop = segment // 2
-        count = (len(data) - segment) // hop + 1
+        hop = 2 * (freqs.size - 1)  # the segment length
+        count = len(data) // hop
         self._sum = psd * count if self._sum is None else self._sum + psd * count
         self._freqs = freqs
         self._segments += count
@@ -500,6 +499,7 @@ def warm_up(cfg: AudioConfig) -> None:
     Worker processes are forked from here, so they start with all of it in memory
     instead of each paying about 3 s of imports and table building per process.
     """
+    import scipy.fft  # noqa: F401  (the VAD's noise veto and the quality gates)
     import soundfile  # noqa: F401
     import soxr  # noqa: F401
     import webrtcvad  # noqa: F401

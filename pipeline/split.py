@@ -181,21 +181,22 @@ def merge_groups(base_groups: Sequence[str], pairs: Iterable[tuple[int, int]]) -
     >>> merge_groups(["b", "c", "a", "d"], [(0, 1), (1, 2)])
     ['a', 'a', 'a', 'd']
     """
-    from scipy.sparse import coo_matrix
-    from scipy.sparse.csgraph import connected_components
+    # Union-find with path halving: near-linear, and for a few thousand pairs cheaper
+    # than importing scipy.sparse.csgraph for connected_components.
+    parent = {g: g for g in base_groups}
 
-    ids = sorted(set(base_groups))
-    index = {g: k for k, g in enumerate(ids)}
-    edges = [(index[base_groups[i]], index[base_groups[j]]) for i, j in pairs]
-    if not edges:
-        return list(base_groups)
-    rows, cols = zip(*edges, strict=True)
-    graph = coo_matrix((np.ones(len(edges)), (rows, cols)), shape=(len(ids), len(ids)))
-    _, labels = connected_components(graph, directed=False)
-    smallest: dict[int, str] = {}
-    for k, label in enumerate(labels.tolist()):
-        smallest.setdefault(label, ids[k])  # ids ascend, so the first seen is the smallest
-    return [smallest[int(labels[index[g]])] for g in base_groups]
+    def root(g: str) -> str:
+        while parent[g] != g:
+            parent[g] = parent[parent[g]]
+            g = parent[g]
+        return g
+
+    for i, j in pairs:
+        a, b = root(base_groups[i]), root(base_groups[j])
+        if a != b:
+            # The smaller id becomes the root, so every merged group is named by its smallest.
+            parent[max(a, b)] = min(a, b)
+    return [root(g) for g in base_groups]
 
 
 def match_tiers(old: Sequence[str], new: Sequence[str], *, seconds: Mapping[str, float]) -> dict[str, str]:

@@ -14,6 +14,7 @@ or 30 ms; ``frame_length`` enforces exactly that.
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 
@@ -62,6 +63,11 @@ def frame_length(*, sample_rate: int, frame_ms: int) -> int:
     return sample_rate * frame_ms // 1000
 
 
+@functools.cache
+def _hann32(length: int) -> np.ndarray:
+    return np.hanning(length).astype(np.float32)
+
+
 def spectral_flatness(frames: np.ndarray) -> np.ndarray:
     """Geometric over arithmetic mean of each frame's Hann-windowed power spectrum.
 
@@ -81,9 +87,12 @@ def spectral_flatness(frames: np.ndarray) -> np.ndarray:
     """
     # float32 spectra (sums in float64): the ratio moves by about 1e-6, well inside the
     # margin of the 0.45 threshold, at 60 % of the float64 cost.
+    # scipy.fft rather than numpy.fft: it transforms many short rows about three times
+    # faster, and the quality gates import it anyway.
+    import scipy.fft
+
     frames = np.atleast_2d(np.asarray(frames, dtype=np.float32))
-    window = np.hanning(frames.shape[1]).astype(np.float32)
-    spectrum = np.fft.rfft(frames * window, axis=1)[:, 1:]
+    spectrum = scipy.fft.rfft(frames * _hann32(frames.shape[1]), axis=1)[:, 1:]
     power = spectrum.real**2 + spectrum.imag**2
     mean = power.mean(axis=1, dtype=np.float64)
     out = np.zeros(len(frames))

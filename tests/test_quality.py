@@ -182,12 +182,13 @@ def test_fingerprint_bits_follow_haitsma_kalker_rule() -> None:
     rng = np.random.default_rng(1)
     x = rng.normal(size=5000) * np.linspace(0.2, 1.0, 5000)
     fp = quality.fingerprint(x, sample_rate=5000)
+    # 0.37 s Hann frames, each zero-padded to 1920 samples for the FFT (quality.FP_FFT).
     window = scipy.signal.get_window("hann", 1850)
-    freqs = np.fft.rfftfreq(1850, d=1 / 5000)
+    freqs = np.fft.rfftfreq(1920, d=1 / 5000)
     edges = np.geomspace(300.0, 2000.0, 34)
     energies = []
     for start in range(0, x.size - 1850 + 1, 116):
-        power = np.abs(np.fft.rfft(x[start : start + 1850] * window)) ** 2
+        power = np.abs(np.fft.rfft(x[start : start + 1850] * window, n=1920)) ** 2
         energies.append([power[(freqs >= lo) & (freqs < hi)].sum() for lo, hi in zip(edges[:-1], edges[1:], strict=True)])
     e = np.array(energies)
     for n in range(1, e.shape[0]):
@@ -387,7 +388,8 @@ def test_long_term_psd_equals_scipy_welch(sample_rate: int, n: int) -> None:
     freqs, psd = quality.long_term_psd(x, sample_rate=sample_rate)
     segment = 2 * (freqs.size - 1)
     assert segment == {16000: 512, 44100: 1024, 8000: 256}[sample_rate]  # nearest 2**k to 32 ms
-    ref_f, ref_p = scipy.signal.welch(x.astype(np.float64), fs=sample_rate, window="hann", nperseg=segment, detrend=False)
+    ref_f, ref_p = scipy.signal.welch(x.astype(np.float64), fs=sample_rate, window="hann", nperseg=segment,
+                                      noverlap=0, detrend=False)
     np.testing.assert_allclose(freqs, ref_f)
     np.testing.assert_allclose(psd, ref_p, rtol=1e-4)
 
@@ -488,3 +490,60 @@ def test_mad_floor_keeps_ordinary_variation_unflagged() -> None:
     # With the floor in force the score is 0.6745 * (x - median) / (0.05 * median).
     med = np.median(rates)
     assert floored[-1] == pytest.approx(0.6745 * (rates[-1] - med) / (0.05 * med))
+
+
+def test_wada_table_special_functions_match_scipy_special() -> None:
+    # Source: scipy.special, the reference implementation the closed forms replace.
+    import math
+
+    from scipy import special
+
+    j = np.arange(500.0)
+    np.testing.assert_allclose(quality.digamma_half_integers(500), special.digamma(j + 0.5), rtol=1e-13, atol=1e-13)
+    np.testing.assert_allclose(np.concatenate([[0.0], np.cumsum(np.log(j[1:]))]), special.gammaln(j + 1.0),
+                               rtol=1e-12, atol=1e-12)
+    x = np.linspace(0.0, 8.0, 101)
+    np.testing.assert_allclose([math.erf(v) for v in x], special.erf(x), rtol=1e-15, atol=1e-16)
+
+
+def test_bandwidth_median_smoothing_matches_scipy_ndimage() -> None:
+    # Source: scipy.ndimage.median_filter(mode="nearest"), which the sliding window replaces.
+    import scipy.ndimage
+
+    rng = np.random.default_rng(8)
+    freqs = np.linspace(0.0, 8000.0, 257)
+    level = np.where(freqs < 3500.0, 0.0, -80.0) + rng.normal(0.0, 6.0, freqs.size)
+    psd = 10.0 ** (level / 10.0)
+    for smoothing_hz in (0.0, 100.0, 250.0, 700.0):
+        width = int(round(smoothing_hz / (freqs[1] - freqs[0])))
+        width += 1 - width % 2
+        smoothed = scipy.ndimage.median_filter(10.0 * np.log10(psd), size=width, mode="nearest")
+        above = np.flatnonzero(smoothed >= float(np.median(10.0 * np.log10(psd)[(freqs >= 300) & (freqs <= 3000)])) - 30.0)
+        got = quality.bandwidth_from_psd(freqs, psd, smoothing_hz=smoothing_hz, reference_band_hz=(300.0, 3000.0),
+                                         drop_db=30.0)
+        assert got == float(freqs[above[-1]])
+
+
+def test_robust_z_labels_factorised_like_pandas() -> None:
+    import pandas as pd
+
+    labels = np.array(["b", None, "a", "b", float("nan"), "a", 3, 3], dtype=object)
+    want, _ = pd.factorize(labels, use_na_sentinel=True)
+    np.testing.assert_array_equal(quality._factorize(labels), want)
+
+
+def test_streamed_psd_equals_the_whole_signal_psd() -> None:
+    # The audio stage feeds blocks of any size; the segment-count-weighted average must be
+    # the PSD of the whole signal (which test_long_term_psd_equals_scipy_welch pins down).
+    from pipeline.audio import LongTermPsd
+
+    rng = np.random.default_rng(12)
+    x = rng.normal(size=16000 * 3).astype(np.float32)
+    stream = LongTermPsd(sample_rate=16000)
+    cuts = np.sort(rng.integers(0, x.size, size=9))
+    for part in np.split(x, cuts):
+        stream.push(part)
+    freqs, whole = quality.long_term_psd(x[: (x.size // 512) * 512], sample_rate=16000)
+    assert stream._freqs is not None and stream._sum is not None
+    np.testing.assert_allclose(stream._sum / stream._segments, whole, rtol=1e-5)
+    assert stream.bandwidth_hz() == quality.bandwidth_from_psd(freqs, whole)

@@ -601,3 +601,31 @@ def test_zero_heldout_needs_no_second_group_and_budgets_are_unique(tmp_path: Pat
     with pytest.raises(UsageError, match=r"split.labelled_budgets.*1h appears twice"):
         split.run(make_ctx(tmp_path, single_speaker_corpus(), {"split": {"heldout": "0%",
                                                                           "labelled_budgets": ["1h", "1h"]}}))
+
+
+def test_merge_groups_matches_connected_components() -> None:
+    # Source: scipy.sparse.csgraph.connected_components, the reference the union-find replaces.
+    import random
+
+    import numpy as np
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    from pipeline.split import merge_groups
+
+    assert merge_groups(["b", "c", "a", "d"], [(0, 1), (1, 2)]) == ["a", "a", "a", "d"]
+    assert merge_groups(["x", "y"], []) == ["x", "y"]
+    rng = random.Random(4)
+    for _ in range(50):
+        groups = [f"g{rng.randrange(40):02d}" for _ in range(120)]
+        pairs = [(rng.randrange(120), rng.randrange(120)) for _ in range(rng.randrange(60))]
+        ids = sorted(set(groups))
+        index = {g: k for k, g in enumerate(ids)}
+        rows = [index[groups[i]] for i, _ in pairs] or [0]
+        cols = [index[groups[j]] for _, j in pairs] or [0]
+        graph = coo_matrix((np.ones(len(rows)), (rows, cols)), shape=(len(ids), len(ids)))
+        _, labels = connected_components(graph, directed=False)
+        smallest: dict[int, str] = {}
+        for k, label in enumerate(labels.tolist()):
+            smallest.setdefault(label, ids[k])
+        assert merge_groups(groups, pairs) == [smallest[int(labels[index[g]])] for g in groups]
