@@ -552,7 +552,8 @@ def run(ctx: StageContext) -> StageResult:
         warm_up(cfg)
     fresh = map_ordered(condition_file, jobs, workers=ctx.workers, scheduler=ctx.scheduler,
                         desc="audio", progress=ctx.progress,
-                        costs=[sources[i]["num_frames"] * sources[i]["channels"] for i in todo])
+                        costs=[sources[i]["num_frames"] * sources[i]["channels"] for i in todo],
+                        meanwhile=ctx.meanwhile)
     for i, outcome in zip(todo, fresh, strict=True):
         outcomes[i] = outcome
         # A decoder error may be passing (a file still being copied): not remembered.

@@ -142,7 +142,10 @@ class Config:
         return out
 
     def sha256(self) -> str:
-        return hashlib.sha256(canonical_json(self.to_json())).hexdigest()
+        """Hash of every setting that can change an output byte, i.e. all but ``run``
+        (workers, scheduler, progress), so the worker count never changes a manifest."""
+        settings = {k: v for k, v in self.to_json().items() if k != "run"}
+        return hashlib.sha256(canonical_json(settings)).hexdigest()
 
     def resolve_path(self, value: str) -> Path:
         """A path from the config file, relative to the config file's folder."""

@@ -44,6 +44,7 @@ def map_ordered(
     desc: str = "",
     progress: bool = False,
     costs: Sequence[float] | None = None,
+    meanwhile: Callable[[], None] | None = None,
 ) -> list[R]:
     """Apply ``func`` to every item and return the results in input order.
 
@@ -53,11 +54,17 @@ def map_ordered(
     see the same file paths. ``costs`` (e.g. durations) makes the pool start the
     largest items first, so one long recording does not leave a worker finishing
     alone at the end (longest-processing-time-first scheduling).
+
+    ``meanwhile`` is other work for this process (the runner's next stages that do not
+    need these results). When there is a pool or a cluster to wait for, it is called
+    once, after every item has been handed over, so it runs while the workers do and
+    after the pool's processes have been forked (forking while it ran could copy a lock
+    it holds). Without one it is not called: the caller does that work afterwards.
     """
     if not items:
         return []
     if scheduler:
-        return _map_dask(func, items, scheduler=scheduler, desc=desc, progress=progress)
+        return _map_dask(func, items, scheduler=scheduler, desc=desc, progress=progress, meanwhile=meanwhile)
     n = min(resolve_workers(workers), len(items))
     bar = _progress(len(items), desc, progress)
     try:
@@ -76,6 +83,8 @@ def map_ordered(
             futures = {pool.submit(func, items[i]): i for i in order}
             from concurrent.futures import as_completed
 
+            if meanwhile is not None:
+                meanwhile()
             for fut in as_completed(futures):
                 results[futures[fut]] = fut.result()
                 bar.update(1)
@@ -84,7 +93,8 @@ def map_ordered(
         bar.close()
 
 
-def _map_dask(func: Callable[[T], R], items: Sequence[T], *, scheduler: str, desc: str, progress: bool) -> list[R]:
+def _map_dask(func: Callable[[T], R], items: Sequence[T], *, scheduler: str, desc: str, progress: bool,
+              meanwhile: Callable[[], None] | None = None) -> list[R]:
     try:
         from distributed import Client
     except ImportError as exc:
@@ -96,6 +106,8 @@ def _map_dask(func: Callable[[T], R], items: Sequence[T], *, scheduler: str, des
     bar = _progress(len(items), desc, progress)
     with Client(scheduler, set_as_default=False) as client:
         futures = client.map(func, list(items), pure=False)
+        if meanwhile is not None:
+            meanwhile()
         index = {f.key: i for i, f in enumerate(futures)}
         results: list[Any] = [None] * len(items)
         # The client is not the default one, so as_completed must be told which to use.

@@ -9,6 +9,7 @@ import json
 import logging
 import os
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from types import ModuleType
@@ -140,13 +141,25 @@ class Runner:
         self.invocation = invocation
         # Files outside RAW a stage read or wrote: the snapshot watches them too.
         self.watched: set[str] = set()
+        # Stages finished (run or reused) in this invocation.
+        self.done: set[str] = set()
 
-    def _context(self, inputs: dict[str, pa.Table]) -> StageContext:
+    def _context(self, inputs: dict[str, pa.Table], meanwhile: Callable[[], None] | None = None) -> StageContext:
         return StageContext(
             raw=self.raw, out=self.out, config=self.config, inputs=inputs, workers=self.workers,
             scheduler=self.scheduler, progress=self.config.run.progress, log=self.log,
-            use_cache=self.use_cache, options=self.options,
+            use_cache=self.use_cache, options=self.options, meanwhile=meanwhile,
         )
+
+    def _ready_stages(self, pending: list[str]) -> Callable[[], None]:
+        """Runs, in order, the pending stages whose inputs are all done: the work this
+        process can do while a stage's workers are busy (text, while audio's pool runs)."""
+        def run_ready() -> None:
+            for name in list(pending):
+                if all(i in self.done for i in stage_module(name).INPUTS):
+                    pending.remove(name)
+                    self.run_stage(name)
+        return run_ready
 
     def _load_input(self, name: str) -> pa.Table:
         path = self.out / manifest_path(name)
@@ -201,11 +214,11 @@ class Runner:
         meta.update({k: v for k, v in extra.items()})
         return meta
 
-    def run_stage(self, name: str) -> StageRecord:
+    def run_stage(self, name: str, *, meanwhile: Callable[[], None] | None = None) -> StageRecord:
         module = stage_module(name)
         start = time.perf_counter()
         inputs = {n: self._load_input(n) for n in module.INPUTS}
-        ctx = self._context(inputs)
+        ctx = self._context(inputs, meanwhile)
         params = params_sha256(module, self.config)
         in_hash = inputs_sha256(self.out, module, ctx, self.watched)
         if self._up_to_date(module, params, in_hash):
@@ -226,6 +239,7 @@ class Runner:
             record = StageRecord(name, True, time.perf_counter() - start, result.summary)
             self.log.info("%-6s done in %.1f s: %s", name, record.seconds, _short(result.summary))
         self.records.append(record)
+        self.done.add(name)
         return record
 
     def _write_result(self, module: ModuleType, result: StageResult, params: str, inputs: str) -> None:
@@ -288,8 +302,11 @@ class Runner:
                 self.log.info("removed %d temporary files left by an interrupted run", removed)
             write_text_atomic(self.out / "config.resolved.json",
                               json.dumps(self.config.to_json(), indent=2, sort_keys=True, ensure_ascii=False) + "\n")
-            for name in stages:
-                self.run_stage(name)
+            pending = list(stages)
+            while pending:
+                self.run_stage(pending.pop(0), meanwhile=self._ready_stages(pending))
+            # Stages may finish out of order (see _ready_stages); logs list them in order.
+            self.records.sort(key=lambda r: STAGE_ORDER.index(r.name))
             n = self.write_rejected()
             self.log.info("rejected: %d rows in %s", n, self.out / REJECTED_PATH)
             # Timings live under logs/, never in a manifest, so manifests stay byte-identical.

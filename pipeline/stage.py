@@ -23,6 +23,7 @@ manifest itself; it may write other files (audio, lexicons) through
 from __future__ import annotations
 
 import logging
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -47,6 +48,9 @@ class StageContext:
     use_cache: bool = True
     # Options that do not come from the config file (e.g. --fresh for the ledger).
     options: dict[str, Any] = field(default_factory=dict)
+    # Later stages the runner can run in this process while this one waits for its
+    # workers; a stage with a pool hands it to map_ordered(meanwhile=...).
+    meanwhile: Callable[[], None] | None = None
 
     @property
     def cache_dir(self) -> Path:

@@ -1,0 +1,39 @@
+"""The runner: stages finish out of order when they can, and the outputs never show it."""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import pytest
+
+from pipeline.cli import main
+from tests.conftest import tree_hash
+
+
+def _outputs(out: Path) -> dict[str, str]:
+    """Everything but logs, caches and config.resolved.json (which records the workers)."""
+    return {k: v for k, v in tree_hash(out).items()
+            if not k.startswith(("logs", "cache")) and k != "config.resolved.json"}
+
+
+def test_text_runs_while_the_audio_pool_works_and_outputs_do_not_change(
+        small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    logs, outputs, stages = {}, {}, {}
+    out = tmp_path / "out"  # the same path for both runs: the summaries name it
+    for workers in (1, 2):
+        shutil.rmtree(out, ignore_errors=True)
+        capsys.readouterr()
+        assert main(["prepare", str(small_raw), str(out), "--workers", str(workers), "--no-progress"]) == 0
+        logs[workers] = capsys.readouterr().err
+        outputs[workers] = _outputs(out)
+        stages[workers] = [s["name"] for s in json.loads((out / "logs" / "last-run.json").read_text())["stages"]]
+    # With a pool, the text stage (which needs only ingest) runs in the driver while the
+    # workers condition audio; with one worker the driver does both, one after the other.
+    two = logs[2]
+    assert two.index("text   running") < two.index("audio  done")
+    one = logs[1]
+    assert one.index("audio  done") < one.index("text   running")
+    assert outputs[1] == outputs[2]
+    assert stages[1] == stages[2] == ["ingest", "audio", "text", "split"]
