@@ -512,6 +512,12 @@ def warm_up(cfg: AudioConfig) -> None:
         quality.fingerprint(np.zeros(cfg.sample_rate, dtype=np.float32), sample_rate=cfg.sample_rate)
 
 
+def prepare_driver(config: Any) -> None:
+    """Stage hook (pipeline.stage): the warm-up, for the runner to do while an earlier
+    stage waits for its workers."""
+    warm_up(config.audio)
+
+
 @functools.cache
 def _code_version() -> str:
     return code_version(sys.modules[__name__])

@@ -46,4 +46,6 @@ class FileCache:
 
     def put(self, key: str, value: Any) -> None:
         if self.enabled:
-            write_bytes_atomic(self._path(key), canonical_json(value))
+            # No fsync: an entry a power cut leaves empty or torn does not parse, and
+            # get() takes that as a miss; a thousand fsyncs would cost more than that.
+            write_bytes_atomic(self._path(key), canonical_json(value), durable=False)

@@ -37,12 +37,14 @@ def sha256_bytes(data: bytes) -> str:
 
 
 @contextlib.contextmanager
-def atomic_output(path: str | os.PathLike[str], *, suffix: str = "") -> Iterator[Path]:
+def atomic_output(path: str | os.PathLike[str], *, suffix: str = "", durable: bool = True) -> Iterator[Path]:
     """Yield a temporary path in the target's folder; rename it over the target on success.
 
     The temporary name starts with ``.loam-`` so a crash leaves only hidden debris that
     no reader mistakes for output. The rename is atomic on POSIX file systems, so a
-    reader sees either the old file or the complete new one.
+    reader sees either the old file or the complete new one. ``durable`` flushes the
+    bytes to disk before the rename, so even a power cut cannot leave a renamed file
+    without its content; ``False`` is for files a reader checks anyway (cache entries).
     """
     target = Path(path)
     target.parent.mkdir(parents=True, exist_ok=True)
@@ -58,8 +60,9 @@ def atomic_output(path: str | os.PathLike[str], *, suffix: str = "") -> Iterator
             # Unchanged output: leave the old file (and its mtime) alone and skip the fsync.
             tmp.unlink()
             return
-        with open(tmp, "rb+") as fh:
-            os.fsync(fh.fileno())
+        if durable:
+            with open(tmp, "rb+") as fh:
+                os.fsync(fh.fileno())
         os.replace(tmp, target)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
@@ -82,8 +85,8 @@ def _same_bytes(a: Path, b: Path) -> bool:
                 return True
 
 
-def write_bytes_atomic(path: str | os.PathLike[str], data: bytes) -> None:
-    with atomic_output(path) as tmp:
+def write_bytes_atomic(path: str | os.PathLike[str], data: bytes, *, durable: bool = True) -> None:
+    with atomic_output(path, durable=durable) as tmp:
         tmp.write_bytes(data)
 
 

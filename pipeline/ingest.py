@@ -280,7 +280,8 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str,
         if hit is None:
             todo.append(i)
     fresh = map_ordered(probe_file, [ProbeJob(str(raw / paths[i]), paths[i]) for i in todo],
-                        workers=ctx.workers, scheduler=ctx.scheduler, desc="probe", progress=ctx.progress)
+                        workers=ctx.workers, scheduler=ctx.scheduler, desc="probe", progress=ctx.progress,
+                        meanwhile=ctx.meanwhile)
     for i, res in zip(todo, fresh, strict=True):
         results[i] = res
         if keys[i]:

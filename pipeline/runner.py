@@ -152,13 +152,19 @@ class Runner:
         )
 
     def _ready_stages(self, pending: list[str]) -> Callable[[], None]:
-        """Runs, in order, the pending stages whose inputs are all done: the work this
-        process can do while a stage's workers are busy (text, while audio's pool runs)."""
+        """The work this process can do while a stage's workers are busy: run, in order,
+        the pending stages whose inputs are all done (text, while audio's pool runs),
+        then let the others load what they will need (``prepare_driver``: audio's
+        imports and tables while ingest's probing pool runs)."""
         def run_ready() -> None:
             for name in list(pending):
                 if all(i in self.done for i in stage_module(name).INPUTS):
                     pending.remove(name)
                     self.run_stage(name)
+            for name in pending:
+                hook = getattr(stage_module(name), "prepare_driver", None)
+                if hook is not None:
+                    hook(self.config)
         return run_ready
 
     def _load_input(self, name: str) -> pa.Table:

@@ -8,6 +8,10 @@ A stage is a module under ``pipeline/`` exposing:
 ``CODE_VERSION``    bumped whenever a code change alters its output;
 ``run(ctx) -> StageResult``.
 
+Optional: ``prepare_driver(config)`` loads into this process what the stage's work
+will need (imports, tables), so that workers forked later inherit it; the runner calls
+it while an earlier stage waits for its pool, when this process would be idle anyway.
+
 Optional: ``written_files(out, table) -> list[str]``, the files besides manifests the
 stage wrote (paths relative to OUT, e.g. its audio clips), given its main manifest.
 The runner records the stat of those and of every manifest the stage wrote in
