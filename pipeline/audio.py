@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import contextlib
 import functools
+import io
 import math
 import os
 import sys
@@ -44,7 +45,7 @@ from pipeline.decode import (
     read_blocks,
 )
 from pipeline.errors import ParameterError
-from pipeline.fsio import atomic_output, sha256_file
+from pipeline.fsio import sha256_bytes, write_bytes_atomic
 from pipeline.manifest import table_from_rows
 from pipeline.parallel import map_ordered
 from pipeline.segment import segment_id, split_frames
@@ -221,6 +222,14 @@ def scan_source(path: str, *, cfg: AudioConfig, spool: Spool, sample_rate: int) 
 
 def _frame_to_sample(frame: int, *, frame_ms: int, sample_rate: int) -> int:
     return (frame * frame_ms * sample_rate + 500) // 1000
+
+
+def _pcm16_peak_dbfs(pcm: np.ndarray) -> float:
+    """Sample peak of int16 samples in dBFS, as libsndfile reads them (x / 32768)."""
+    if pcm.size == 0:
+        return -math.inf
+    peak = max(int(pcm.max()), -int(pcm.min()))
+    return 20.0 * math.log10(peak / PCM16_SCALE) if peak else -math.inf
 
 
 def _finite_or_none(value: float) -> float | None:
@@ -421,20 +430,25 @@ def _write_clip(job: AudioJob, clip: np.ndarray, placed: dict[str, Any]) -> dict
 
     audio_path = f"{AUDIO_DIR}/{placed['speaker']}/{clip_id}.{cfg.format}"
     target = Path(job.out) / audio_path
-    with atomic_output(target) as tmp:
-        sf.write(tmp, pcm, rate, format=OUTPUT_FORMATS[cfg.format], subtype="PCM_16")
+    # Encoded in memory, so the hash is taken from the bytes rather than a re-read.
+    encoded = io.BytesIO()
+    sf.write(encoded, pcm, rate, format=OUTPUT_FORMATS[cfg.format], subtype="PCM_16")
+    data = encoded.getvalue()
+    write_bytes_atomic(target, data)
     st = os.stat(target)
     row = {
         **placed,
         "audio_path": audio_path,
-        "audio_sha256": sha256_file(target),
+        "audio_sha256": sha256_bytes(data),
         "num_samples": len(pcm),
         "duration_s": len(pcm) / rate,
         "loudness_in_lufs": loudness_in,
         "loudness_lufs": loudness_out if math.isfinite(loudness_out) else loudness_in + gain_db,
         "gain_db": gain_db,
         "peak_limited_db": max(0.0, shortfall_db),
-        "peak_dbfs": peak_of(written),
+        # The sample peak of the integers is exact and cheaper than of their float copy.
+        "peak_dbfs": (loudness.true_peak_dbfs(written, sample_rate=rate) if cfg.true_peak
+                      else _pcm16_peak_dbfs(pcm)),
         "snr_db": _finite_or_none(quality.wada_snr_db(clip)) if cfg.quality_measures else None,
         "fingerprint": (quality.encode_fingerprint(quality.fingerprint(written, sample_rate=rate))
                         if cfg.quality_measures else ""),

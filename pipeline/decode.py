@@ -181,8 +181,14 @@ def float_to_pcm16(samples: np.ndarray, *, peak_limit: float = 1.0) -> np.ndarra
         raise ParameterError(f"peak_limit={peak_limit} must be in (0, 1]")
     top = min(32767.0, np.floor(peak_limit * PCM16_SCALE))
     bottom = -32768.0 if peak_limit >= 1 else -top
-    scaled = np.rint(np.asarray(samples, dtype=np.float64) * PCM16_SCALE)
-    return np.clip(scaled, bottom, top).astype(np.int16)
+    x = np.asarray(samples)
+    # float32 input stays float32: scaling by 2**15 is exact in it, and every integer up
+    # to 2**24 is representable, so the result equals the float64 computation.
+    scaled = x.astype(np.float32 if x.dtype == np.float32 else np.float64)  # a copy, worked in place
+    scaled *= PCM16_SCALE
+    np.rint(scaled, out=scaled)
+    np.clip(scaled, bottom, top, out=scaled)
+    return scaled.astype(np.int16)
 
 
 class Spool:

@@ -70,8 +70,9 @@ def _check_sample_rate(sample_rate: int) -> None:
         raise ParameterError(f"sample_rate={sample_rate} must be > 0")
 
 
-def _as_frames(samples: np.ndarray) -> np.ndarray:
-    """Return ``samples`` as a float64 array of shape (n, channels), checking it first."""
+def _as_frames(samples: np.ndarray, *, as_float64: bool = True) -> np.ndarray:
+    """Return ``samples`` as an array of shape (n, channels) (float64 unless
+    ``as_float64`` is False, when the floating type is kept), checking it first."""
     if not isinstance(samples, np.ndarray):
         raise ParameterError(f"samples is a {type(samples).__name__}, not a numpy array")
     if not np.issubdtype(samples.dtype, np.floating):
@@ -86,7 +87,7 @@ def _as_frames(samples: np.ndarray) -> np.ndarray:
         raise ParameterError(f"samples.shape={samples.shape} has no channels")
     if not np.isfinite(frames).all():
         raise ParameterError("samples contain NaN or infinite values")
-    return frames.astype(np.float64, copy=False)
+    return frames.astype(np.float64, copy=False) if as_float64 else frames
 
 
 def _peak_to_dbfs(peak: float) -> float:
@@ -203,7 +204,8 @@ def integrated_loudness(samples: np.ndarray, *, sample_rate: int) -> float:
     -23.0
     """
     sos = k_weighting_sos(sample_rate=sample_rate)
-    frames = _as_frames(samples)
+    # The filter computes in float32 whatever it is given (pipeline.iir).
+    frames = _as_frames(samples, as_float64=False)
     channels = frames.shape[1]
     if channels not in CHANNEL_WEIGHTS:
         raise ParameterError(

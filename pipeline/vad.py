@@ -151,7 +151,7 @@ class VoiceActivityStream:
         if whole == 0:
             return
         frames = data[: whole * self.frame_samples].reshape(whole, self.frame_samples)
-        pcm = float_to_pcm16(frames).astype("<i2")
+        pcm = float_to_pcm16(frames).astype("<i2", copy=False)
         vad_says = np.fromiter(
             (self._vad.is_speech(row.tobytes(), self.sample_rate) for row in pcm), dtype=bool, count=whole)
         # The veto can only remove speech, so the spectra are needed on speech frames only.

@@ -318,3 +318,12 @@ def test_picking_one_channel_and_wav_output(raw: Path, tmp_path: Path):
     assert (info.format, info.subtype) == ("WAV", "PCM_16")
     block, _ = sf.read(raw / "ana/stereo44.wav", dtype="float32", always_2d=True)
     assert row["dc_offset"] == pytest.approx(float(np.mean(block[:, 1], dtype=np.float64)), abs=1e-7)
+
+
+def test_pcm16_peak_equals_the_float_sample_peak():
+    from pipeline.loudness import sample_peak_dbfs
+
+    rng = np.random.default_rng(2)
+    for pcm in (rng.integers(-32768, 32768, 999).astype(np.int16), np.array([-32768, 5], dtype=np.int16),
+                np.array([3, -7, 0], dtype=np.int16), np.zeros(4, dtype=np.int16)):
+        assert audio._pcm16_peak_dbfs(pcm) == sample_peak_dbfs(pcm.astype(np.float32) / np.float32(32768))

@@ -114,6 +114,17 @@ def test_pcm16_round_trip_matches_libsndfile(tmp_path):
     assert np.max(np.abs(back - x)) <= 0.5 / 32768 + 1e-9  # rounding: half a step at most
 
 
+def test_pcm16_float32_path_equals_float64_rounding():
+    # Analytic: x * 2**15 is exact in float32, so rounding there equals rounding in float64,
+    # ties (k + 0.5) / 32768 included (half to even in both).
+    rng = np.random.default_rng(9)
+    x = np.concatenate([rng.uniform(-1.2, 1.2, 20000), (np.arange(-40, 40) + 0.5) / 32768,
+                        [1.0, -1.0, 0.0, -0.0, 32767 / 32768, 1e-30]]).astype(np.float32)
+    reference = np.clip(np.rint(x.astype(np.float64) * 32768.0), -32768, 32767).astype(np.int16)
+    np.testing.assert_array_equal(float_to_pcm16(x), reference)
+    np.testing.assert_array_equal(float_to_pcm16(x.reshape(-1, 2)), reference.reshape(-1, 2))
+
+
 def test_pcm16_peak_limit_is_never_exceeded():
     limit = 10 ** (-1 / 20)  # -1 dBFS
     x = np.array([limit, -limit, limit * (1 - 1e-7), 0.3])
