@@ -13,7 +13,6 @@ import shutil
 import subprocess
 import sys
 import tempfile
-from collections.abc import Callable
 from pathlib import Path
 
 REPO = Path(__file__).resolve().parent.parent
@@ -62,21 +61,17 @@ def last_json_line(script: list[str]) -> dict:
     return json.loads(done.stdout.strip().splitlines()[-1])
 
 
-def best_of(repeat: int, run: Callable[[], tuple[float, float]]) -> tuple[float, float]:
-    """The fastest of ``repeat`` runs (and the largest peak RSS): single runs on a shared
-    virtual machine vary by 20 % or more, and the minimum is the least disturbed one."""
-    walls, rss = zip(*(run() for _ in range(repeat)), strict=True)
-    return min(walls), max(rss)
-
-
 def fresh_prepare(raw: Path, out: Path, workers: int, *extra: str, label: str = "") -> tuple[float, float]:
     shutil.rmtree(out, ignore_errors=True)
     return prepare(raw, out, workers, *extra, label=label)
 
 
 def stage_seconds(out: Path) -> dict[str, float]:
+    """Wall seconds per stage; a stage that ran in the driver while another stage's
+    workers were busy is listed as "text (during audio)", its time inside the other's."""
     data = json.loads((out / "logs" / "last-run.json").read_text())
-    return {s["name"]: s["seconds"] for s in data["stages"]}
+    return {(f"{s['name']} (during {s['during']})" if s.get("during") else s["name"]): s["seconds"]
+            for s in data["stages"]}
 
 
 def main() -> int:
@@ -97,17 +92,34 @@ def main() -> int:
     results: dict[str, object] = {"audio_hours": audio_s / 3600, "files": facts["files"], "workers": args.workers}
 
     cold_out = work / "out"
-    cold, cold_rss = best_of(args.repeat, lambda: fresh_prepare(raw, cold_out, args.workers, label="cold"))
-    results.update(cold_wall_s=cold, x_real_time=audio_s / cold, peak_rss_mb=cold_rss,
-                   stage_seconds=stage_seconds(cold_out))
-
-    # The floor runs as a process of its own, measured like the pipeline run.
-    floor, _ = best_of(args.repeat, lambda: measured(
-        [sys.executable, str(REPO / "bench" / "floor.py"), str(raw), str(args.workers)], label="floor"))
-    results.update(floor_wall_s=floor, pipeline_over_floor=cold / floor)
-
-    rerun, _ = best_of(args.repeat, lambda: prepare(raw, cold_out, args.workers))
-    results.update(rerun_wall_s=rerun, rerun_over_cold=rerun / cold)
+    nogates_out = work / "out_nogates"
+    one_out = work / "out_1worker"
+    floor_cmd = [sys.executable, str(REPO / "bench" / "floor.py"), str(raw), str(args.workers)]
+    # The runs are interleaved, round after round, and the fastest of each kind kept:
+    # on a shared virtual machine speed drifts over minutes, and a slow spell should
+    # hit every kind of run alike rather than all the runs of one kind.
+    timings: dict[str, list[float]] = {"cold": [], "floor": [], "rerun": [], "nogates": [], "one": []}
+    peak_rss: list[float] = []
+    cold_stages: list[dict[str, float]] = []
+    for _ in range(args.repeat):
+        wall, rss = fresh_prepare(raw, cold_out, args.workers, label="cold")
+        timings["cold"].append(wall)
+        peak_rss.append(rss)
+        cold_stages.append(stage_seconds(cold_out))
+        timings["rerun"].append(prepare(raw, cold_out, args.workers)[0])
+        timings["floor"].append(measured(floor_cmd, label="floor")[0])
+        # The quality gates' share: the same cold run with the per-clip measures off.
+        timings["nogates"].append(fresh_prepare(raw, nogates_out, args.workers, "--set",
+                                                "audio.quality_measures=false", label="nogates")[0])
+        timings["one"].append(fresh_prepare(raw, one_out, 1)[0])
+    shutil.rmtree(nogates_out, ignore_errors=True)
+    shutil.rmtree(one_out, ignore_errors=True)
+    best = {k: min(v) for k, v in timings.items()}
+    cold = best["cold"]
+    results.update(cold_wall_s=cold, x_real_time=audio_s / cold, peak_rss_mb=max(peak_rss),
+                   stage_seconds=cold_stages[timings["cold"].index(cold)])
+    results.update(floor_wall_s=best["floor"], pipeline_over_floor=cold / best["floor"])
+    results.update(rerun_wall_s=best["rerun"], rerun_over_cold=best["rerun"] / cold)
 
     # 5 % new audio: the old files are hard links (same inode and mtime), the new ones copies.
     grown = work / "raw_grown"
@@ -121,23 +133,14 @@ def main() -> int:
     rebuild, _ = prepare(grown, cold_out, args.workers)
     results.update(rebuild_5pct_wall_s=rebuild, rebuild_over_cold=rebuild / cold,
                    rebuild_stage_seconds=stage_seconds(cold_out))
+    shutil.rmtree(grown, ignore_errors=True)
 
-    # The quality gates' share: the same cold run with the per-clip measures switched off.
-    nogates_out = work / "out_nogates"
-    nogates, _ = best_of(args.repeat, lambda: fresh_prepare(raw, nogates_out, args.workers,
-                                                            "--set", "audio.quality_measures=false",
-                                                            label="nogates"))
     cpu = {k: min(v) for k, v in CPU_SECONDS.items()}
-    results.update(cold_without_gates_wall_s=nogates, cpu_seconds=cpu,
+    results.update(cold_without_gates_wall_s=best["nogates"], cpu_seconds=cpu,
                    gates_over_cold_without=cpu["cold"] / cpu["nogates"] - 1,
                    pipeline_over_floor_cpu=cpu["cold"] / cpu["floor"])
-    shutil.rmtree(nogates_out, ignore_errors=True)
-
-    one_out = work / "out_1worker"
-    one, _ = best_of(args.repeat, lambda: fresh_prepare(raw, one_out, 1))
-    results.update(one_worker_wall_s=one, speedup_1_to_2=one / cold)
-    shutil.rmtree(one_out, ignore_errors=True)
-    shutil.rmtree(grown, ignore_errors=True)
+    results.update(one_worker_wall_s=best["one"], speedup_1_to_2=best["one"] / cold,
+                   all_runs_wall_s=timings)
 
     from pipeline.validate import bench_validate
 

@@ -109,6 +109,8 @@ class StageRecord:
     ran: bool
     seconds: float
     summary: dict[str, Any]
+    # The stage whose workers were busy while this one ran in the driver, if any.
+    during: str | None = None
 
 
 class Runner:
@@ -141,8 +143,9 @@ class Runner:
         self.invocation = invocation
         # Files outside RAW a stage read or wrote: the snapshot watches them too.
         self.watched: set[str] = set()
-        # Stages finished (run or reused) in this invocation.
+        # Stages finished (run or reused) in this invocation, and those under way.
         self.done: set[str] = set()
+        self.records_running: list[str] = []
 
     def _context(self, inputs: dict[str, pa.Table], meanwhile: Callable[[], None] | None = None) -> StageContext:
         return StageContext(
@@ -157,10 +160,11 @@ class Runner:
         then let the others load what they will need (``prepare_driver``: audio's
         imports and tables while ingest's probing pool runs)."""
         def run_ready() -> None:
+            waiting = self.records_running[-1] if self.records_running else None
             for name in list(pending):
                 if all(i in self.done for i in stage_module(name).INPUTS):
                     pending.remove(name)
-                    self.run_stage(name)
+                    self.run_stage(name).during = waiting
             for name in pending:
                 hook = getattr(stage_module(name), "prepare_driver", None)
                 if hook is not None:
@@ -221,6 +225,13 @@ class Runner:
         return meta
 
     def run_stage(self, name: str, *, meanwhile: Callable[[], None] | None = None) -> StageRecord:
+        self.records_running.append(name)
+        try:
+            return self._run_stage(name, meanwhile)
+        finally:
+            self.records_running.pop()
+
+    def _run_stage(self, name: str, meanwhile: Callable[[], None] | None) -> StageRecord:
         module = stage_module(name)
         start = time.perf_counter()
         inputs = {n: self._load_input(n) for n in module.INPUTS}
@@ -317,7 +328,8 @@ class Runner:
             self.log.info("rejected: %d rows in %s", n, self.out / REJECTED_PATH)
             # Timings live under logs/, never in a manifest, so manifests stay byte-identical.
             write_text_atomic(self.out / "logs" / "last-run.json", json.dumps({
-                "stages": [{"name": r.name, "ran": r.ran, "seconds": round(r.seconds, 4)} for r in self.records],
+                "stages": [{"name": r.name, "ran": r.ran, "seconds": round(r.seconds, 4),
+                            **({"during": r.during} if r.during else {})} for r in self.records],
                 "workers": self.workers, "scheduler": self.scheduler,
             }, indent=2) + "\n")
             if record_snapshot and self.invocation is not None:

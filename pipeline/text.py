@@ -67,15 +67,6 @@ def extra_inputs(ctx: StageContext) -> list[Path]:
     return sorted(_lexicon_paths(ctx.config).values())
 
 
-def prepare_driver(config: Config) -> None:
-    """Stage hook (pipeline.stage): parse CMUdict ahead, while an earlier stage waits
-    for its workers."""
-    if config.text.backend == "english":
-        from pipeline.g2p import _cmudict_entries
-
-        _cmudict_entries()
-
-
 def written_files(out: Path, table: object) -> list[str]:
     """The predicted lexicon beside the manifest (see pipeline.stage)."""
     return [PREDICTED_LEXICON]

@@ -28,7 +28,9 @@ def test_text_runs_while_the_audio_pool_works_and_outputs_do_not_change(
         assert main(["prepare", str(small_raw), str(out), "--workers", str(workers), "--no-progress"]) == 0
         logs[workers] = capsys.readouterr().err
         outputs[workers] = _outputs(out)
-        stages[workers] = [s["name"] for s in json.loads((out / "logs" / "last-run.json").read_text())["stages"]]
+        recorded = json.loads((out / "logs" / "last-run.json").read_text())["stages"]
+        stages[workers] = [s["name"] for s in recorded]
+        assert [s.get("during") for s in recorded] == [None, None, "audio" if workers == 2 else None, None]
     # With a pool, the text stage (which needs only ingest) runs in the driver while the
     # workers condition audio; with one worker the driver does both, one after the other.
     two = logs[2]
