@@ -6,7 +6,8 @@ or ``(n, channels)``, with full scale at 1.0.
 The K-weighting filter is built from an analog prototype and the bilinear transform, so it
 works at any sample rate and reproduces the coefficients published in BS.1770-4 (Tables 1
 and 2) at 48 kHz. Block energies for the gated measurement come from one cumulative sum of
-the filtered, squared signal, so the cost is linear in the clip length. The filter runs in
+the filtered, squared signal (per 100 ms step when the rate is a multiple of 10 Hz), so the
+cost is linear in the clip length. The filter runs in
 ``pipeline.iir`` (numpy alone), so measuring loudness never imports scipy.signal; only the
 true-peak interpolator does.
 """
@@ -216,15 +217,25 @@ def integrated_loudness(samples: np.ndarray, *, sample_rate: int) -> float:
     if n_frames < block_frames:
         return -math.inf
 
-    energy = np.zeros((n_frames + 1, channels))
-    for channel in range(channels):
-        filtered = iir.sosfilt(sos, frames[:, channel])
-        np.cumsum(np.square(filtered, dtype=np.float64), out=energy[1:, channel])
-
     # Block j starts at floor(j * rate / 10); the last block is the last that fits whole.
     n_blocks = (BLOCKS_PER_S * (n_frames - block_frames) + BLOCKS_PER_S - 1) // sample_rate + 1
-    starts = (np.arange(n_blocks, dtype=np.int64) * sample_rate) // BLOCKS_PER_S
-    mean_square = (energy[starts + block_frames] - energy[starts]) / block_frames
+    mean_square = np.zeros((n_blocks, channels))
+    step = sample_rate // BLOCKS_PER_S
+    whole_steps = sample_rate % BLOCKS_PER_S == 0 and block_frames == 4 * step
+    if not whole_steps:
+        starts = (np.arange(n_blocks, dtype=np.int64) * sample_rate) // BLOCKS_PER_S
+    for channel in range(channels):
+        squared = iir.sosfilt(sos, frames[:, channel])
+        np.square(squared, out=squared)
+        if whole_steps:
+            # Blocks are four whole 100 ms steps: sum each step once (float64
+            # accumulation), then each block is four consecutive step sums.
+            steps = squared[: (n_blocks + 3) * step].reshape(n_blocks + 3, step).sum(axis=1, dtype=np.float64)
+            running = np.concatenate([[0.0], np.cumsum(steps)])
+            mean_square[:, channel] = (running[4:] - running[:-4]) / block_frames
+        else:
+            running = np.concatenate([[0.0], np.cumsum(squared, dtype=np.float64)])
+            mean_square[:, channel] = (running[starts + block_frames] - running[starts]) / block_frames
     # Rounding in the running sum can leave a digitally silent block a hair below zero.
     np.maximum(mean_square, 0.0, out=mean_square)
     block_power = mean_square @ np.asarray(CHANNEL_WEIGHTS[channels])

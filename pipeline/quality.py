@@ -247,9 +247,9 @@ FP_BAND_EDGES_HZ = np.geomspace(300.0, 2000.0, 34)
 # it, so frames of silence give the sub-fingerprint 0 whatever faint codec or
 # resampler residue they hold. An addition: the paper does not treat silence.
 FP_FLOOR_DB = -60.0
-# Frames per block of the short-time FFT: keeps the working set in cache (blocks of
-# 128 were fastest of 64..512) without a Python loop per frame.
-_FP_BLOCK_FRAMES = 128
+# Frames per block of the short-time FFT: keeps the working set in cache without a
+# Python loop per frame (32, 64 and 128 were equally fast on 15 s clips, 256 slower).
+_FP_BLOCK_FRAMES = 64
 
 
 @functools.cache
@@ -273,11 +273,17 @@ def _fp_band_energies(x: np.ndarray) -> np.ndarray:
     # complex-magnitude temporary or a dense band matrix.
     pair_starts = 2 * band_starts
     out = np.empty((frames.shape[0], band_starts.size), dtype=np.float32)
+    # Windowed frames are written into one zero-padded buffer, which the FFT reads as
+    # is: no temporary per block and no padding copy inside the transform (a third of
+    # the cost, same numbers).
+    padded = np.zeros((_FP_BLOCK_FRAMES, FP_FFT), dtype=np.float32)
     for start in range(0, frames.shape[0], _FP_BLOCK_FRAMES):
-        block = frames[start : start + _FP_BLOCK_FRAMES] * window
-        pairs = scipy.fft.rfft(block, n=FP_FFT, axis=1).view(np.float32)[:, 2 * first : 2 * last]
+        block = frames[start : start + _FP_BLOCK_FRAMES]
+        count = block.shape[0]
+        np.multiply(block, window, out=padded[:count, :FP_FRAME])
+        pairs = scipy.fft.rfft(padded[:count], axis=1).view(np.float32)[:, 2 * first : 2 * last]
         np.square(pairs, out=pairs)
-        out[start : start + block.shape[0]] = np.add.reduceat(pairs, pair_starts, axis=1)
+        out[start : start + count] = np.add.reduceat(pairs, pair_starts, axis=1)
     return out
 
 
@@ -627,14 +633,18 @@ def long_term_psd(samples: np.ndarray, *, sample_rate: int) -> tuple[np.ndarray,
     if x.size < segment:
         return np.zeros(0), np.zeros(0)
     window = _periodic_hann(segment)
-    frames = np.lib.stride_tricks.sliding_window_view(x.astype(np.float32, copy=False), segment)
-    frames = frames[::segment]
+    count = x.size // segment
+    frames = x.astype(np.float32, copy=False)[: count * segment].reshape(count, segment)
     power = np.zeros(segment // 2 + 1)
-    for start in range(0, frames.shape[0], _WELCH_BLOCK_SEGMENTS):
-        spectrum = scipy.fft.rfft(frames[start : start + _WELCH_BLOCK_SEGMENTS] * window, axis=1)
-        power += (spectrum.real**2 + spectrum.imag**2).sum(axis=0, dtype=np.float64)
+    for start in range(0, count, _WELCH_BLOCK_SEGMENTS):
+        windowed = frames[start : start + _WELCH_BLOCK_SEGMENTS] * window
+        # The spectrum as interleaved (re, im) float32 pairs, squared in place: no
+        # complex-magnitude temporaries.
+        pairs = scipy.fft.rfft(windowed, axis=1, overwrite_x=True).view(np.float32)
+        np.square(pairs, out=pairs)
+        power += pairs.sum(axis=0, dtype=np.float64).reshape(-1, 2).sum(axis=1)
     # One-sided density: every bin but DC and Nyquist also carries its negative twin.
-    power *= 2.0 / (frames.shape[0] * sample_rate * float(np.sum(window.astype(np.float64) ** 2)))
+    power *= 2.0 / (count * sample_rate * float(np.sum(window.astype(np.float64) ** 2)))
     power[0] /= 2.0
     power[-1] /= 2.0
     return scipy.fft.rfftfreq(segment, d=1.0 / sample_rate), power
