@@ -30,11 +30,15 @@ import soxr
 from pipeline.errors import ParameterError
 
 
+@functools.cache
 def _periodic_hann(length: int) -> np.ndarray:
     """scipy.signal.get_window("hann", length) (periodic), without importing
-    scipy.signal, whose import costs about a second in every process that loads it."""
+    scipy.signal, whose import costs about a second in every process that loads it.
+    Cached, and read-only so that no caller can change the shared copy."""
     n = np.arange(length)
-    return (0.5 - 0.5 * np.cos(2.0 * np.pi * n / length)).astype(np.float32)
+    window = (0.5 - 0.5 * np.cos(2.0 * np.pi * n / length)).astype(np.float32)
+    window.flags.writeable = False
+    return window
 
 __all__ = [
     "OUTLIER_ABS_Z",
