@@ -1,3 +1,3 @@
-from pipeline.cli import main
+from pipeline.cli import console
 
-raise SystemExit(main())
+console()

@@ -39,3 +39,23 @@ def test_text_runs_while_the_audio_pool_works_and_outputs_do_not_change(
     assert one.index("audio  done") < one.index("text   running")
     assert outputs[1] == outputs[2]
     assert stages[1] == stages[2] == ["ingest", "audio", "text", "split"]
+
+
+def test_the_command_flushes_everything_before_its_fast_exit(small_raw: Path, tmp_path: Path) -> None:
+    # `loam` ends with os._exit (no interpreter teardown): the log file, the console and
+    # the exit code must still be complete.
+    import subprocess
+    import sys
+
+    from tests.conftest import REPO
+
+    out = tmp_path / "out"
+    done = subprocess.run([sys.executable, "-m", "pipeline", "prepare", str(small_raw), str(out), "--workers", "2",
+                           "--no-progress"], capture_output=True, text=True, cwd=REPO)
+    assert done.returncode == 0, done.stderr
+    assert done.stderr.rstrip().splitlines()[-1].startswith("rejected: 2 rows in")
+    (log,) = (out / "logs").glob("prepare-*.log")
+    assert log.read_text(encoding="utf-8").rstrip().splitlines()[-1].endswith("manifests/rejected.parquet")
+    bad = subprocess.run([sys.executable, "-m", "pipeline", "validate", str(tmp_path / "nowhere")],
+                         capture_output=True, text=True, cwd=REPO)
+    assert bad.returncode == 2 and "does not exist" in bad.stderr
