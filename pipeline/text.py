@@ -270,7 +270,6 @@ def _summary(rows: list[dict[str, Any]], rejects: list[dict[str, Any]], transcri
         "word_backends": dict(sorted(sources.items())),
         "g2p_cache": {"enabled": cached, "hits": len(pronouncer.cache_hits), "misses": len(pronouncer.cache_misses)},
         "neural_model_loaded": pronouncer.neural_loaded,
-        "refused_downloads": list(pronouncer.refused_downloads),
         "predicted_lexicon": PREDICTED_LEXICON,
     }
 

