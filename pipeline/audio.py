@@ -447,8 +447,7 @@ def _write_clip(job: AudioJob, clip: np.ndarray, placed: dict[str, Any]) -> dict
         "gain_db": gain_db,
         "peak_limited_db": max(0.0, shortfall_db),
         # The sample peak of the integers is exact and cheaper than of their float copy.
-        "peak_dbfs": (loudness.true_peak_dbfs(written, sample_rate=rate) if cfg.true_peak
-                      else _pcm16_peak_dbfs(pcm)),
+        "peak_dbfs": peak_of(written) if cfg.true_peak else _pcm16_peak_dbfs(pcm),
         "snr_db": _finite_or_none(quality.wada_snr_db(clip)) if cfg.quality_measures else None,
         "fingerprint": (quality.encode_fingerprint(quality.fingerprint(written, sample_rate=rate))
                         if cfg.quality_measures else ""),

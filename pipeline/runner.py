@@ -145,7 +145,7 @@ class Runner:
         self.watched: set[str] = set()
         # Stages finished (run or reused) in this invocation, and those under way.
         self.done: set[str] = set()
-        self.records_running: list[str] = []
+        self.running: list[str] = []
 
     def _context(self, inputs: dict[str, pa.Table], meanwhile: Callable[[], None] | None = None) -> StageContext:
         return StageContext(
@@ -160,7 +160,7 @@ class Runner:
         then let the others load what they will need (``prepare_driver``: audio's
         imports and tables while ingest's probing pool runs)."""
         def run_ready() -> None:
-            waiting = self.records_running[-1] if self.records_running else None
+            waiting = self.running[-1] if self.running else None
             for name in list(pending):
                 if all(i in self.done for i in stage_module(name).INPUTS):
                     pending.remove(name)
@@ -204,11 +204,14 @@ class Runner:
             return False
         return _stat_of(self.out, [entry[0] for entry in recorded]) == recorded
 
-    def _record_outputs(self, module: ModuleType, manifests: list[str]) -> None:
+    def _record_outputs(self, module: ModuleType, manifests: list[str], main: pa.Table | None = None) -> None:
+        """Record the stat of every file the stage wrote (``main``: its main manifest's
+        table when the caller holds it, else it is read back)."""
         rels = [*manifests, rejects_path(module.NAME), summary_path(module.NAME)]
         written = getattr(module, "written_files", None)
         if written is not None:
-            rels += written(self.out, read_manifest(self.out / manifest_path(module.NAME)))
+            table = main if main is not None else read_manifest(self.out / manifest_path(module.NAME))
+            rels += written(self.out, table)
         write_text_atomic(self.out / outputs_record_path(module.NAME),
                           json.dumps({"files": _stat_of(self.out, rels)}) + "\n")
 
@@ -225,11 +228,11 @@ class Runner:
         return meta
 
     def run_stage(self, name: str, *, meanwhile: Callable[[], None] | None = None) -> StageRecord:
-        self.records_running.append(name)
+        self.running.append(name)
         try:
             return self._run_stage(name, meanwhile)
         finally:
-            self.records_running.pop()
+            self.running.pop()
 
     def _run_stage(self, name: str, meanwhile: Callable[[], None] | None) -> StageRecord:
         module = stage_module(name)
@@ -274,7 +277,7 @@ class Runner:
         # The main manifest goes last: its metadata is what marks the stage up to date.
         for rel, (schema, table) in sorted(result.manifests.items(), key=lambda kv: kv[0] == manifest_path(module.NAME)):
             write_manifest(self.out / rel, schema, table, metadata=meta)
-        self._record_outputs(module, list(result.manifests))
+        self._record_outputs(module, list(result.manifests), result.manifests[manifest_path(module.NAME)][1])
 
     def _refresh_config_hash(self, module: ModuleType) -> None:
         """A reused stage's manifests still record the hash of the config in force now

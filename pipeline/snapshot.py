@@ -20,6 +20,7 @@ import contextlib
 import hashlib
 import json
 import os
+import stat
 import sys
 from pathlib import Path
 from typing import Any
@@ -48,20 +49,17 @@ def tree_listing(root: Path, *, ignored: frozenset[str] = frozenset()) -> list[l
         if rel_folder == ".":
             dirs[:] = [d for d in dirs if d not in ignored]
             files = [f for f in files if f not in ignored]
-        dirs.sort()
-        for name in sorted(files) + dirs:
+        for name in [*files, *dirs]:
             path = os.path.join(folder, name)
             st = os.lstat(path)
             target: list[int] | None = None
-            if os.path.islink(path):
-                try:
+            if stat.S_ISLNK(st.st_mode):
+                with contextlib.suppress(OSError):
                     target = _stat_entry(os.stat(path))
-                except OSError:
-                    target = None
             rel = name if rel_folder == "." else f"{rel_folder}/{name}"
             # A folder's own mtime changes with its entries, which are listed anyway.
-            listing.append([rel, *([st.st_mode, 0, 0, 0] if os.path.isdir(path) and target is None
-                                   else _stat_entry(st)), target])
+            entry = [st.st_mode, 0, 0, 0] if stat.S_ISDIR(st.st_mode) else _stat_entry(st)
+            listing.append([rel, *entry, target])
     return sorted(listing, key=lambda entry: entry[0])
 
 
