@@ -571,15 +571,17 @@ def run(ctx: StageContext) -> StageResult:
             for i in todo]
     if jobs:
         warm_up(cfg)
+    def remember(j: int, outcome: FileOutcome) -> None:
+        # A decoder error may be passing (a file still being copied): not remembered.
+        if not any(r["reason"] == "undecodable" for r in outcome.rejects):
+            cache.put(keys[todo[j]], outcome.to_json())
+
     fresh = map_ordered(condition_file, jobs, workers=ctx.workers, scheduler=ctx.scheduler,
                         desc="audio", progress=ctx.progress,
                         costs=[sources[i]["num_frames"] * sources[i]["channels"] for i in todo],
-                        meanwhile=ctx.meanwhile)
+                        meanwhile=ctx.meanwhile, on_result=remember)
     for i, outcome in zip(todo, fresh, strict=True):
         outcomes[i] = outcome
-        # A decoder error may be passing (a file still being copied): not remembered.
-        if not any(r["reason"] == "undecodable" for r in outcome.rejects):
-            cache.put(keys[i], outcome.to_json())
     ctx.log.info("audio: %d files processed, %d reused from cache", len(todo), len(sources) - len(todo))
 
     done = [o for o in outcomes if o is not None]

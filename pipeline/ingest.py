@@ -279,14 +279,17 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str,
         results.append(hit)
         if hit is None:
             todo.append(i)
+    def remember(j: int, res: dict[str, Any]) -> None:
+        key = keys[todo[j]]
+        if key:
+            # Failures are cached too: they depend only on the bytes, like successes.
+            cache.put(key, res)
+
     fresh = map_ordered(probe_file, [ProbeJob(str(raw / paths[i]), paths[i]) for i in todo],
                         workers=ctx.workers, scheduler=ctx.scheduler, desc="probe", progress=ctx.progress,
-                        meanwhile=ctx.meanwhile)
+                        meanwhile=ctx.meanwhile, on_result=remember)
     for i, res in zip(todo, fresh, strict=True):
         results[i] = res
-        if keys[i]:
-            # Failures are cached too: they depend only on the bytes, like successes.
-            cache.put(keys[i], res)
     ctx.log.info("ingest: %d files probed, %d reused from cache", len(todo), len(paths) - len(todo))
     return [r for r in results if r is not None]
 

@@ -45,6 +45,7 @@ def map_ordered(
     progress: bool = False,
     costs: Sequence[float] | None = None,
     meanwhile: Callable[[], None] | None = None,
+    on_result: Callable[[int, R], None] | None = None,
 ) -> list[R]:
     """Apply ``func`` to every item and return the results in input order.
 
@@ -60,18 +61,25 @@ def map_ordered(
     once, after every item has been handed over, so it runs while the workers do and
     after the pool's processes have been forked (forking while it ran could copy a lock
     it holds). Without one it is not called: the caller does that work afterwards.
+
+    ``on_result(index, result)`` is called in this process as each result arrives, in
+    completion order, while the workers go on with the rest (storing results in the
+    cache, say). Whatever it writes must not depend on that order.
     """
     if not items:
         return []
     if scheduler:
-        return _map_dask(func, items, scheduler=scheduler, desc=desc, progress=progress, meanwhile=meanwhile)
+        return _map_dask(func, items, scheduler=scheduler, desc=desc, progress=progress, meanwhile=meanwhile,
+                         on_result=on_result)
     n = min(resolve_workers(workers), len(items))
     bar = _progress(len(items), desc, progress)
     try:
         if n == 1:
             out = []
-            for item in items:
+            for i, item in enumerate(items):
                 out.append(func(item))
+                if on_result is not None:
+                    on_result(i, out[-1])
                 bar.update(1)
             return out
         results: list[Any] = [None] * len(items)
@@ -86,7 +94,10 @@ def map_ordered(
             if meanwhile is not None:
                 meanwhile()
             for fut in as_completed(futures):
-                results[futures[fut]] = fut.result()
+                i = futures[fut]
+                results[i] = fut.result()
+                if on_result is not None:
+                    on_result(i, results[i])
                 bar.update(1)
         return results
     finally:
@@ -94,7 +105,8 @@ def map_ordered(
 
 
 def _map_dask(func: Callable[[T], R], items: Sequence[T], *, scheduler: str, desc: str, progress: bool,
-              meanwhile: Callable[[], None] | None = None) -> list[R]:
+              meanwhile: Callable[[], None] | None = None,
+              on_result: Callable[[int, R], None] | None = None) -> list[R]:
     try:
         from distributed import Client
     except ImportError as exc:
@@ -112,7 +124,10 @@ def _map_dask(func: Callable[[T], R], items: Sequence[T], *, scheduler: str, des
         results: list[Any] = [None] * len(items)
         # The client is not the default one, so as_completed must be told which to use.
         for fut in as_completed(futures, loop=client.loop):
-            results[index[fut.key]] = fut.result()
+            i = index[fut.key]
+            results[i] = fut.result()
+            if on_result is not None:
+                on_result(i, results[i])
             bar.update(1)
     bar.close()
     return results
