@@ -571,6 +571,7 @@ def run(ctx: StageContext) -> StageResult:
             for i in todo]
     if jobs:
         warm_up(cfg)
+
     def remember(j: int, outcome: FileOutcome) -> None:
         # A decoder error may be passing (a file still being copied): not remembered.
         if not any(r["reason"] == "undecodable" for r in outcome.rejects):

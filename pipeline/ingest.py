@@ -279,6 +279,7 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str,
         results.append(hit)
         if hit is None:
             todo.append(i)
+
     def remember(j: int, res: dict[str, Any]) -> None:
         key = keys[todo[j]]
         if key:
