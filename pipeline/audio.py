@@ -46,8 +46,8 @@ from pipeline.decode import (
 )
 from pipeline.errors import ParameterError
 from pipeline.fsio import sha256_bytes, write_bytes_atomic
-from pipeline.manifest import table_from_rows
-from pipeline.parallel import map_ordered
+from pipeline.manifest import ManifestBuilder
+from pipeline.parallel import each_result
 from pipeline.segment import segment_id, split_frames
 from pipeline.stage import StageContext, StageResult, code_version, reject
 from pipeline.vad import (
@@ -558,56 +558,66 @@ def run(ctx: StageContext) -> StageResult:
     section = ctx.config.section(NAME)
 
     keys = [_cache_key(row, section) for row in sources]
-    outcomes: list[FileOutcome | None] = []
+    # Rows go straight into Arrow batches as each outcome arrives (cached or fresh);
+    # no list of every outcome is kept. Rejects are few, and kept in source order.
+    builder = ManifestBuilder(NAME)
+    rejects_at: dict[int, list[dict[str, Any]]] = {}
+
+    def take(i: int, outcome: FileOutcome) -> None:
+        builder.extend(outcome.rows)
+        if outcome.rejects:
+            rejects_at[i] = outcome.rejects
+
     todo: list[int] = []
     for i, key in enumerate(keys):
         hit = cache.get(key)
         if hit is not None and _outputs_intact(out, hit):
-            outcomes.append(FileOutcome.from_json(hit))
+            take(i, FileOutcome.from_json(hit))
         else:
-            outcomes.append(None)
             todo.append(i)
     jobs = [AudioJob(sources[i], str(raw / sources[i]["source_path"]), str(out), str(out / TMP_DIR), cfg)
             for i in todo]
     if jobs:
         warm_up(cfg)
 
-    def remember(j: int, outcome: FileOutcome) -> None:
+    def arrived(j: int, outcome: FileOutcome) -> None:
         # A decoder error may be passing (a file still being copied): not remembered.
         if not any(r["reason"] == "undecodable" for r in outcome.rejects):
             cache.put(keys[todo[j]], outcome.to_json())
+        take(todo[j], outcome)
 
-    fresh = map_ordered(condition_file, jobs, workers=ctx.workers, scheduler=ctx.scheduler,
-                        desc="audio", progress=ctx.progress,
-                        costs=[sources[i]["num_frames"] * sources[i]["channels"] for i in todo],
-                        meanwhile=ctx.meanwhile, on_result=remember)
-    for i, outcome in zip(todo, fresh, strict=True):
-        outcomes[i] = outcome
+    each_result(condition_file, jobs, arrived, workers=ctx.workers, scheduler=ctx.scheduler,
+                desc="audio", progress=ctx.progress,
+                costs=[sources[i]["num_frames"] * sources[i]["channels"] for i in todo],
+                meanwhile=ctx.meanwhile)
     ctx.log.info("audio: %d files processed, %d reused from cache", len(todo), len(sources) - len(todo))
 
-    done = [o for o in outcomes if o is not None]
-    rows = sorted((r for o in done for r in o.rows), key=lambda r: r["clip_id"])
-    rejects = [r for o in done for r in o.rejects]
-    removed = remove_orphans(out / AUDIO_DIR, {r["audio_path"] for r in rows}, base=out)
+    table = builder.table(sort_by="clip_id")
+    rejects = [r for i in sorted(rejects_at) for r in rejects_at[i]]
+    removed = remove_orphans(out / AUDIO_DIR, set(table.column("audio_path").to_pylist()), base=out)
     if removed:
         ctx.log.info("audio: removed %s no current row refers to", _plural(removed, "clip file"))
     with contextlib.suppress(OSError):
         (out / TMP_DIR).rmdir()
 
-    by_source = Counter(r["source_id"] for r in rows)
+    import pyarrow.compute as pc  # here: the workers never need it
+
+    source_ids = table.column("source_id")
+    segmented = pc.not_equal(table.column("clip_id"), source_ids)
+    upsampled = pc.is_valid(table.column("upsampled_from"))
     summary = {
         "sources": len(sources),
         "sources_processed": len(todo),
         "sources_reused": len(sources) - len(todo),
-        "sources_with_clips": len(by_source),
-        "sources_segmented": len({r["source_id"] for r in rows if r["clip_id"] != r["source_id"]}),
-        "clips": len(rows),
-        "hours": sum(r["duration_s"] for r in rows) / 3600,
-        "upsampled_sources": len({r["source_id"] for r in rows if r["upsampled_from"] is not None}),
-        "peak_limited_clips": sum(1 for r in rows if r["peak_limited_db"] > 0.0),
+        "sources_with_clips": pc.count_distinct(source_ids).as_py(),
+        "sources_segmented": pc.count_distinct(pc.filter(source_ids, segmented)).as_py(),
+        "clips": table.num_rows,
+        # Summed in clip order in Python, as before the rows became columns.
+        "hours": sum(table.column("duration_s").to_pylist()) / 3600,
+        "upsampled_sources": pc.count_distinct(pc.filter(source_ids, upsampled)).as_py(),
+        "peak_limited_clips": len(pc.filter(source_ids, pc.greater(table.column("peak_limited_db"), 0.0))),
         "rejects": len(rejects),
         "rejects_by_reason": dict(sorted(Counter(r["reason"] for r in rejects).items())),
         "orphans_removed": removed,
     }
-    return StageResult(manifests={f"stages/{NAME}.parquet": (NAME, table_from_rows(NAME, rows))},
-                       rejects=rejects, summary=summary)
+    return StageResult(manifests={f"stages/{NAME}.parquet": (NAME, table)}, rejects=rejects, summary=summary)

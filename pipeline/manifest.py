@@ -19,7 +19,7 @@ import functools
 import json
 import sys
 import threading
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
@@ -151,6 +151,80 @@ def table_from_columns(name: str, columns: dict[str, Any]) -> pa.Table:
         raise ManifestError(f"manifest '{name}': columns missing: {', '.join(missing)}")
     with pandas_left_unloaded():
         return pa.table({f.name: columns[f.name] for f in schema}, schema=schema)
+
+
+class ManifestBuilder:
+    """Rows in, one manifest table out, held as Arrow record batches rather than rows.
+
+    A stage appends its rows as they come (from workers or the cache, in any order);
+    every ``batch_rows`` rows the pending values become an Arrow record batch, so a
+    corpus of a million clips is never a million Python dicts in memory, only compact
+    columns and at most one batch of pending rows. ``table(sort_by=...)`` gives the
+    rows in key order whatever the order they arrived in, as one chunk per column, so
+    the Parquet bytes depend only on the rows.
+
+    Example
+    -------
+    >>> b = ManifestBuilder("rejected", batch_rows=2)
+    >>> for path in ("b.wav", "a.wav", "c.wav"):
+    ...     b.append({"source_path": path, "reason": "empty", "detail": path + ": empty",
+    ...               "stage": "ingest", "clip_id": None})
+    >>> b.table(sort_by="source_path").column("source_path").to_pylist()
+    ['a.wav', 'b.wav', 'c.wav']
+    """
+
+    def __init__(self, name: str, *, batch_rows: int = 8192) -> None:
+        if batch_rows < 1:
+            raise ValueError(f"batch_rows={batch_rows} must be at least 1")
+        self.name = name
+        self.schema = arrow_schema(name)
+        self.batch_rows = batch_rows
+        self._pending: dict[str, list[Any]] = {f.name: [] for f in self.schema}
+        self._count = 0
+        self._batches: list[pa.RecordBatch] = []
+
+    def __len__(self) -> int:
+        return sum(b.num_rows for b in self._batches) + self._count
+
+    @property
+    def pending_rows(self) -> int:
+        """Rows not yet turned into a record batch (at most ``batch_rows``)."""
+        return self._count
+
+    def append(self, row: dict[str, Any]) -> None:
+        """Add one row (missing keys become nulls, as in :func:`table_from_rows`)."""
+        for column, values in self._pending.items():
+            values.append(row.get(column))
+        self._count += 1
+        if self._count >= self.batch_rows:
+            self._flush()
+
+    def extend(self, rows: Iterable[dict[str, Any]]) -> None:
+        for row in rows:
+            self.append(row)
+
+    def _flush(self) -> None:
+        if not self._count:
+            return
+        with pandas_left_unloaded():
+            arrays = [pa.array(self._pending[f.name], type=f.type) for f in self.schema]
+        self._batches.append(pa.RecordBatch.from_arrays(arrays, schema=self.schema))
+        for values in self._pending.values():
+            values.clear()
+        self._count = 0
+
+    def table(self, *, sort_by: str | None = None) -> pa.Table:
+        """Every row appended so far, sorted by ``sort_by`` (ascending) when given.
+
+        The builder is left empty: its batches move into the table, so the unsorted
+        copy is freed as soon as the sorted one exists.
+        """
+        self._flush()
+        table = pa.Table.from_batches(self._batches, schema=self.schema)
+        self._batches = []
+        if sort_by is not None:
+            table = table.sort_by(sort_by)
+        return table.combine_chunks()
 
 
 def empty_table(name: str) -> pa.Table:

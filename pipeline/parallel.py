@@ -35,6 +35,68 @@ def _progress(total: int, desc: str, enabled: bool) -> Any:
                 leave=False, dynamic_ncols=True)
 
 
+def each_result(
+    func: Callable[[T], R],
+    items: Sequence[T],
+    on_result: Callable[[int, R], None],
+    *,
+    workers: int,
+    scheduler: str = "",
+    desc: str = "",
+    progress: bool = False,
+    costs: Sequence[float] | None = None,
+    meanwhile: Callable[[], None] | None = None,
+) -> None:
+    """Apply ``func`` to every item and hand each result to ``on_result(index, result)``.
+
+    Results are handed over in this process as they arrive, in completion order, while
+    the workers go on with the rest, and none is kept here: a stage that folds them
+    into a manifest builder never holds every result at once. Whatever ``on_result``
+    produces must not depend on that order (sort by a key afterwards).
+
+    ``func`` must be a module-level function (it is pickled). With one worker or a
+    single item the work runs in this process, in input order, which keeps small runs
+    free of pool start-up cost. ``scheduler`` is a dask.distributed address; workers
+    there must see the same file paths. ``costs`` (e.g. durations) makes the pool start
+    the largest items first, so one long recording does not leave a worker finishing
+    alone at the end (longest-processing-time-first scheduling).
+
+    ``meanwhile`` is other work for this process (the runner's next stages that do not
+    need these results). When there is a pool or a cluster to wait for, it is called
+    once, after every item has been handed over, so it runs while the workers do and
+    after the pool's processes have been forked (forking while it ran could copy a lock
+    it holds). Without one it is not called: the caller does that work afterwards.
+    """
+    if not items:
+        return
+    if scheduler:
+        _each_dask(func, items, on_result, scheduler=scheduler, desc=desc, progress=progress, meanwhile=meanwhile)
+        return
+    n = min(resolve_workers(workers), len(items))
+    bar = _progress(len(items), desc, progress)
+    try:
+        if n == 1:
+            for i, item in enumerate(items):
+                on_result(i, func(item))
+                bar.update(1)
+            return
+        # fork shares the already-imported modules with the children; the stages
+        # import their heavy libraries lazily, inside the per-file functions.
+        context = multiprocessing.get_context("fork" if sys.platform.startswith("linux") else "spawn")
+        order = range(len(items)) if costs is None else sorted(range(len(items)), key=lambda i: -costs[i])
+        with ProcessPoolExecutor(max_workers=n, mp_context=context) as pool:
+            futures = {pool.submit(func, items[i]): i for i in order}
+            from concurrent.futures import as_completed
+
+            if meanwhile is not None:
+                meanwhile()
+            for fut in as_completed(futures):
+                on_result(futures.pop(fut), fut.result())
+                bar.update(1)
+    finally:
+        bar.close()
+
+
 def map_ordered(
     func: Callable[[T], R],
     items: Sequence[T],
@@ -47,66 +109,25 @@ def map_ordered(
     meanwhile: Callable[[], None] | None = None,
     on_result: Callable[[int, R], None] | None = None,
 ) -> list[R]:
-    """Apply ``func`` to every item and return the results in input order.
+    """:func:`each_result`, with the results also returned in input order.
 
-    ``func`` must be a module-level function (it is pickled). With one worker or a
-    single item the work runs in this process, which keeps small runs free of pool
-    start-up cost. ``scheduler`` is a dask.distributed address; workers there must
-    see the same file paths. ``costs`` (e.g. durations) makes the pool start the
-    largest items first, so one long recording does not leave a worker finishing
-    alone at the end (longest-processing-time-first scheduling).
-
-    ``meanwhile`` is other work for this process (the runner's next stages that do not
-    need these results). When there is a pool or a cluster to wait for, it is called
-    once, after every item has been handed over, so it runs while the workers do and
-    after the pool's processes have been forked (forking while it ran could copy a lock
-    it holds). Without one it is not called: the caller does that work afterwards.
-
-    ``on_result(index, result)`` is called in this process as each result arrives, in
-    completion order, while the workers go on with the rest (storing results in the
-    cache, say). Whatever it writes must not depend on that order.
+    ``on_result``, when given, still sees each result as it arrives (storing results
+    in the cache, say).
     """
-    if not items:
-        return []
-    if scheduler:
-        return _map_dask(func, items, scheduler=scheduler, desc=desc, progress=progress, meanwhile=meanwhile,
-                         on_result=on_result)
-    n = min(resolve_workers(workers), len(items))
-    bar = _progress(len(items), desc, progress)
-    try:
-        if n == 1:
-            out = []
-            for i, item in enumerate(items):
-                out.append(func(item))
-                if on_result is not None:
-                    on_result(i, out[-1])
-                bar.update(1)
-            return out
-        results: list[Any] = [None] * len(items)
-        # fork shares the already-imported modules with the children; the stages
-        # import their heavy libraries lazily, inside the per-file functions.
-        context = multiprocessing.get_context("fork" if sys.platform.startswith("linux") else "spawn")
-        order = range(len(items)) if costs is None else sorted(range(len(items)), key=lambda i: -costs[i])
-        with ProcessPoolExecutor(max_workers=n, mp_context=context) as pool:
-            futures = {pool.submit(func, items[i]): i for i in order}
-            from concurrent.futures import as_completed
+    results: list[Any] = [None] * len(items)
 
-            if meanwhile is not None:
-                meanwhile()
-            for fut in as_completed(futures):
-                i = futures[fut]
-                results[i] = fut.result()
-                if on_result is not None:
-                    on_result(i, results[i])
-                bar.update(1)
-        return results
-    finally:
-        bar.close()
+    def keep(i: int, result: R) -> None:
+        results[i] = result
+        if on_result is not None:
+            on_result(i, result)
+
+    each_result(func, items, keep, workers=workers, scheduler=scheduler, desc=desc, progress=progress,
+                costs=costs, meanwhile=meanwhile)
+    return results
 
 
-def _map_dask(func: Callable[[T], R], items: Sequence[T], *, scheduler: str, desc: str, progress: bool,
-              meanwhile: Callable[[], None] | None = None,
-              on_result: Callable[[int, R], None] | None = None) -> list[R]:
+def _each_dask(func: Callable[[T], R], items: Sequence[T], on_result: Callable[[int, R], None], *,
+               scheduler: str, desc: str, progress: bool, meanwhile: Callable[[], None] | None = None) -> None:
     try:
         from distributed import Client
     except ImportError as exc:
@@ -121,13 +142,8 @@ def _map_dask(func: Callable[[T], R], items: Sequence[T], *, scheduler: str, des
         if meanwhile is not None:
             meanwhile()
         index = {f.key: i for i, f in enumerate(futures)}
-        results: list[Any] = [None] * len(items)
         # The client is not the default one, so as_completed must be told which to use.
         for fut in as_completed(futures, loop=client.loop):
-            i = index[fut.key]
-            results[i] = fut.result()
-            if on_result is not None:
-                on_result(i, results[i])
+            on_result(index[fut.key], fut.result())
             bar.update(1)
     bar.close()
-    return results

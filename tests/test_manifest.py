@@ -156,3 +156,35 @@ def test_list_columns_agree_with_jsonschema(rows: list[dict]) -> None:
     fast = {(p.row, p.column) for p in check_table("text", table, where="t")}
     slow = {(p.row, p.column) for p in check_table("text", table, where="t", exhaustive=True)}
     assert fast == slow
+
+
+@pytest.mark.parametrize("batch_rows", [1, 3, 7, 8192])
+def test_builder_gives_the_table_of_the_sorted_rows_whatever_the_arrival_order(batch_rows: int) -> None:
+    import random
+
+    from pipeline.manifest import ManifestBuilder
+
+    rows = [good_reject(source_path=f"s{i:03d}.wav", detail=f"s{i:03d}.wav: empty",
+                        clip_id=None if i % 4 else f"c{i:03d}") for i in range(50)]
+    expected = table_from_rows("rejected", rows)  # rows are already in key order
+    shuffled = rows[:]
+    random.Random(batch_rows).shuffle(shuffled)
+    builder = ManifestBuilder("rejected", batch_rows=batch_rows)
+    for row in shuffled:
+        builder.append(row)
+        # Never more pending Python rows than one batch: the rest are Arrow columns.
+        assert builder.pending_rows < batch_rows
+    assert len(builder) == 50
+    table = builder.table(sort_by="source_path")
+    assert table.equals(expected)
+    assert all(table.column(i).num_chunks == 1 for i in range(table.num_columns))
+    assert check_table("rejected", table, where="built") == []
+
+
+def test_builder_with_no_rows_gives_an_empty_valid_table() -> None:
+    from pipeline.manifest import ManifestBuilder
+
+    table = ManifestBuilder("audio").table(sort_by="clip_id")
+    assert table.num_rows == 0 and table.schema.equals(arrow_schema("audio"))
+    with pytest.raises(ValueError, match="batch_rows=0"):
+        ManifestBuilder("audio", batch_rows=0)

@@ -1,4 +1,4 @@
-"""map_ordered: input order whatever the completion order, and its two callbacks."""
+"""map_ordered and each_result: input order whatever the completion order, and the callbacks."""
 
 from __future__ import annotations
 
