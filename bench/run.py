@@ -130,6 +130,9 @@ def main() -> int:
         timings["one"].append(fresh_prepare(raw, one_out, 1)[0])
     shutil.rmtree(nogates_out, ignore_errors=True)
     shutil.rmtree(one_out, ignore_errors=True)
+    # The per-file path alone, in one process: steadier than end-to-end runs. cold_out
+    # holds the last rebuild, whose ingest manifest lists the grown dump's files.
+    results["per_file"] = last_json_line([str(REPO / "bench" / "bench_per_file.py"), str(cold_out), str(grown)])
     shutil.rmtree(grown, ignore_errors=True)
     best = {k: min(v) for k, v in timings.items()}
     cpu = {k: min(v) for k, v in CPU_SECONDS.items()}
@@ -195,6 +198,11 @@ def print_table(r: dict) -> None:
         ok = r["gates_over_cold_without"] <= 0.25
         rows.append(("gates' cost / cold run without (CPU)", f"{r['gates_over_cold_without']:.3f}",
                      f"target <= 0.25: {'met' if ok else 'MISSED'}"))
+    pf = r.get("per_file", {})
+    if "per_file_over_floor" in pf:
+        rows.append(("per-file work / floor (CPU, one process)", f"{pf['per_file_over_floor']:.3f}", ""))
+        rows.append(("  the same without the gates", f"{pf['per_file_over_floor_without_gates']:.3f}", ""))
+        rows.append(("  gates' share of the per-file work", f"{pf['gates_over_per_file_without']:.3f}", ""))
     v = r.get("validate", {})
     for key, label in (("rows_per_second_with_headers", "validate rows/s (with audio headers)"),
                        ("rows_per_second_manifests_only", "validate rows/s (manifests only)")):
