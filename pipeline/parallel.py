@@ -101,15 +101,11 @@ def map_ordered(
     func: Callable[[T], R],
     items: Sequence[T],
     *,
-    workers: int,
-    scheduler: str = "",
-    desc: str = "",
-    progress: bool = False,
-    costs: Sequence[float] | None = None,
-    meanwhile: Callable[[], None] | None = None,
     on_result: Callable[[int, R], None] | None = None,
+    **options: Any,
 ) -> list[R]:
-    """:func:`each_result`, with the results also returned in input order.
+    """:func:`each_result` (the same keyword options), with the results also returned
+    in input order.
 
     ``on_result``, when given, still sees each result as it arrives (storing results
     in the cache, say).
@@ -121,8 +117,7 @@ def map_ordered(
         if on_result is not None:
             on_result(i, result)
 
-    each_result(func, items, keep, workers=workers, scheduler=scheduler, desc=desc, progress=progress,
-                costs=costs, meanwhile=meanwhile)
+    each_result(func, items, keep, **options)
     return results
 
 
