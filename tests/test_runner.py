@@ -59,3 +59,20 @@ def test_the_command_flushes_everything_before_its_fast_exit(small_raw: Path, tm
     bad = subprocess.run([sys.executable, "-m", "pipeline", "validate", str(tmp_path / "nowhere")],
                          capture_output=True, text=True, cwd=REPO)
     assert bad.returncode == 2 and "does not exist" in bad.stderr
+
+
+def test_a_full_prepare_never_loads_pandas_or_scipy_signal(small_raw: Path, tmp_path: Path) -> None:
+    # Their imports cost more than the work a run asks of them (DEVELOPERS.md, start-up
+    # cost); a fresh interpreter, since this test process may hold both already.
+    import subprocess
+    import sys
+
+    script = (
+        "import sys\n"
+        "from pipeline.cli import main\n"
+        f"rc = main(['prepare', {str(small_raw)!r}, {str(tmp_path / 'out')!r}, '--workers', '2', '--no-progress'])\n"
+        "print(rc, sorted(m for m in ('pandas', 'scipy.signal', 'g2p_en', 'nltk') if m in sys.modules))\n"
+    )
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, check=True)
+    assert done.stdout.strip().splitlines()[-1] == "0 []"
+    assert (tmp_path / "out" / "manifests" / "labelled.parquet").is_file()
