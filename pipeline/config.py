@@ -98,13 +98,20 @@ class SplitConfig:
 @dataclass(frozen=True)
 class QualityConfig:
     min_snr_db: float
-    noisy_to_unlabelled: bool
+    noisy_action: str
     rate_max_abs_z: float
     rate_min_clips: int
     rate_min_spread: float
+    rate_outlier_action: str
     near_duplicate_min_similarity: float
     min_bandwidth_hz: float
-    narrowband_to_unlabelled: bool
+    narrowband_action: str
+
+    @property
+    def gate_actions(self) -> dict[str, str]:
+        """What each gate of :mod:`pipeline.gates` does to the clips it flags."""
+        return {"noisy": self.noisy_action, "narrowband": self.narrowband_action,
+                "rate_outlier": self.rate_outlier_action}
 
 
 @dataclass(frozen=True)

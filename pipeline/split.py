@@ -7,7 +7,9 @@ stage
    and binds near-duplicate and byte-identical clips into one group, so copies can
    never straddle held-out and training;
 2. applies the quality gates of ``[quality]`` (noisy, narrowband, speaking-rate
-   outlier), which keep a clip out of labelled and out of held-out scoring;
+   outlier, see :mod:`pipeline.gates`): each flags its clips, and a gate whose action
+   is "demote" (by default noisy and speaking-rate outlier) keeps them out of labelled
+   and out of held-out scoring;
 3. holds out whole groups, chosen in a seeded hash order (see
    :func:`group_rank_key`) until the held-out target is reached;
 4. fills the nested labelled tiers from the training groups
@@ -35,7 +37,7 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 
-from pipeline import quality
+from pipeline import gates, quality
 from pipeline.config import parse_duration_s
 from pipeline.errors import DataError, UsageError
 from pipeline.ledger import ClipRecord, Ledger, locate_ledger, read_ledger, write_ledger
@@ -47,7 +49,7 @@ NAME = "split"
 INPUTS = ("audio", "text")
 CONFIG_SECTIONS = ("split", "quality")
 CODE_VERSION = "1"
-CODE_DEPENDS = ("pipeline.selection", "pipeline.ledger", "pipeline.quality")
+CODE_DEPENDS = ("pipeline.selection", "pipeline.ledger", "pipeline.quality", "pipeline.gates")
 # The ledger is an input the runner cannot hash: run every time.
 # The ledger is an input the stage rewrites itself: the runner hashes it after the
 # run (INPUTS_AFTER_RUN), so a rerun with nothing changed is reused, and --fresh
@@ -331,16 +333,17 @@ def find_duplicates(clips: Sequence[Clip], fingerprints: Sequence[np.ndarray], *
     return pairs
 
 
-def apply_gates(clips: Sequence[Clip], *, min_snr_db: float, min_bandwidth_hz: float, narrowband_gates: bool,
-                rate_max_abs_z: float, rate_min_clips: int, rate_min_spread: float = 0.0) -> None:
+def apply_gates(clips: Sequence[Clip], *, min_snr_db: float, min_bandwidth_hz: float, rate_max_abs_z: float,
+                rate_min_clips: int, actions: Mapping[str, str], rate_min_spread: float = 0.0) -> None:
     """Speaking rate and its robust z-score per speaker, the gate flags, and eligibility.
 
     ``speaking_rate`` is phones (word boundaries left out) per second of speech;
     ``rate_z`` is :func:`pipeline.quality.robust_z_scores` of it within the speaker
     (speakers with fewer than ``rate_min_clips`` transcribed clips are scored
-    against all of them). A clip is eligible for labelled and held-out scoring when
-    it has a transcript and no gate flag (narrowband counts only when
-    ``narrowband_gates``).
+    against all of them). The flags and what they do come from
+    :mod:`pipeline.gates`, which ``loam validate`` checks with too: a clip is eligible
+    for labelled and held-out scoring when it has a transcript and no gate whose
+    action (``actions``, gate to "flag", "demote" or "reject") holds it back flagged it.
     """
     for c in clips:
         speech_s = float(c.audio["speech_s"])
@@ -350,18 +353,15 @@ def apply_gates(clips: Sequence[Clip], *, min_snr_db: float, min_bandwidth_hz: f
     speakers = np.array([c.speaker for c in clips], dtype=object)
     z = (quality.robust_z_scores(rates, speakers, min_group_size=rate_min_clips, min_mad_fraction=rate_min_spread)
          if clips else np.zeros(0))
-    for c, zc in zip(clips, z.tolist(), strict=True):
-        c.rate_z = _finite(zc)
-        snr = _finite(c.audio["snr_db"])
-        bandwidth = _finite(c.audio["bandwidth_hz"])
-        if snr is not None and snr < min_snr_db:
-            c.flags.add("noisy")
-        if bandwidth is not None and bandwidth < min_bandwidth_hz:
-            c.flags.add("narrowband")
-        if c.rate_z is not None and abs(c.rate_z) > rate_max_abs_z:
-            c.flags.add("rate_outlier")
-        gated = {"noisy", "rate_outlier"} | ({"narrowband"} if narrowband_gates else set())
-        c.eligible = c.transcribed and not (c.flags & gated)
+    flags = gates.gate_flags(
+        snr_db=[np.nan if c.audio["snr_db"] is None else c.audio["snr_db"] for c in clips],
+        bandwidth_hz=[np.nan if c.audio["bandwidth_hz"] is None else c.audio["bandwidth_hz"] for c in clips],
+        rate_z=z, min_snr_db=min_snr_db, min_bandwidth_hz=min_bandwidth_hz, rate_max_abs_z=rate_max_abs_z)
+    held = gates.held_back(flags, actions=actions)
+    for k, c in enumerate(clips):
+        c.rate_z = _finite(z[k])
+        c.flags.update(g for g in gates.GATES if flags[g][k])
+        c.eligible = c.transcribed and not held[k]
 
 
 # ---------------------------------------------------------------------------------------
@@ -627,11 +627,11 @@ def run(ctx: StageContext) -> StageResult:
     for c, g in zip(clips, merged, strict=True):
         c.group = g
     apply_gates(clips, min_snr_db=qc.min_snr_db, min_bandwidth_hz=qc.min_bandwidth_hz,
-                narrowband_gates=qc.narrowband_to_unlabelled, rate_max_abs_z=qc.rate_max_abs_z,
-                rate_min_clips=qc.rate_min_clips, rate_min_spread=qc.rate_min_spread)
+                rate_max_abs_z=qc.rate_max_abs_z, rate_min_clips=qc.rate_min_clips,
+                rate_min_spread=qc.rate_min_spread, actions=qc.gate_actions)
 
     rejects = []
-    if not qc.noisy_to_unlabelled:
+    if qc.noisy_action == "reject":
         for c in clips:
             if "noisy" in c.flags:
                 c.rejected = True
@@ -639,7 +639,7 @@ def run(ctx: StageContext) -> StageResult:
                     NAME, c.audio["source_path"], "noisy",
                     f"{c.audio['source_path']}: clip {c.clip_id} has an estimated SNR (WADA-SNR) of "
                     f"{c.audio['snr_db']:.1f} dB, below quality.min_snr_db = {qc.min_snr_db:g}; "
-                    "with quality.noisy_to_unlabelled = false noisy clips are set aside",
+                    'with quality.noisy_action = "reject" noisy clips are set aside',
                     c.clip_id))
     kept = [c for c in clips if not c.rejected]
 
@@ -738,8 +738,8 @@ def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment
         row.update({"budget_s": round(outcome.budget_s, 3), "selected_s": round(outcome.total_s, 3),
                     "shortfall_s": round(outcome.shortfall_s, 3)})
         tiers[outcome.name] = row
-    gates = {g: sum(g in c.flags for c in clips) for g in GATES}
-    gates["rejected_noisy"] = rejected
+    gate_counts = {g: sum(g in c.flags for c in clips) for g in GATES}
+    gate_counts["rejected_noisy"] = rejected
     notes = {f: sum(f in c.flags for c in kept) for f in ("upsampled", "peak_limited", "transcript_rejected")}
     notes["heldout_untranscribed"] = sum(not c.transcribed for c in by_subset["heldout"])
     notes["orphan_transcripts"] = orphans
@@ -757,7 +757,7 @@ def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment
         "phone_inventory": len(inventory),
         "subsets": subsets,
         "tiers": tiers,
-        "gates": gates,
+        "gates": gate_counts,
         "notes": notes,
         "near_duplicate_pairs": [
             {"clips": [clips[p.first].clip_id, clips[p.second].clip_id], "similarity": round(p.similarity, 4),

@@ -27,6 +27,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from pipeline import gates
 from pipeline.config import Config, build_config, parse_duration_s
 from pipeline.errors import ConfigError, ManifestError, ParameterError, UsageError
 from pipeline.manifest import (
@@ -48,10 +49,10 @@ REJECTED_FILE = "manifests/rejected.parquet"
 # written clip moves BS.1770 loudness by hundredths of an LU, so 0.5 LU only trips on a
 # clip that was edited or replaced (common practice, no source).
 LOUDNESS_TOLERANCE_LU = 0.5
-# Flags that keep a clip out of labelled whatever the config says: a noisy clip (below
-# quality.min_snr_db), a speaking rate that betrays a mismatched transcript, a transcript
-# the text stage set aside. Narrowband joins them when quality.narrowband_to_unlabelled.
-ALWAYS_GATED_FLAGS = ("noisy", "rate_outlier", "transcript_rejected")
+# Flags that keep a clip out of labelled whatever the config says: a transcript the text
+# stage set aside. The quality gates whose action demotes or rejects (pipeline.gates)
+# join it.
+ALWAYS_GATED_FLAGS = ("transcript_rejected",)
 _FOUND_CHARS = 70
 
 
@@ -510,28 +511,42 @@ def _check_budgets(s: _Subsets, budgets: list[str], member: dict[str, np.ndarray
 
 
 def check_quality_gates(s: _Subsets, config: Config) -> list[Problem]:
+    """No labelled clip that a gate holds back, decided as the split stage decides
+    (:mod:`pipeline.gates`), from the flags and from the measured values; and no clip at
+    all flagged noisy when noisy clips are rejected."""
     q = config.quality
-    gated = list(ALWAYS_GATED_FLAGS) + (["narrowband"] if q.narrowband_to_unlabelled else [])
+    holding = gates.holding_gates(q.gate_actions)
+    barred = [*holding, *ALWAYS_GATED_FLAGS]
     problems: list[Problem] = []
     if s.usable("labelled", "flags"):
         flags = s.column("labelled", "flags")
-        hit = s.list_members("labelled", "flags", gated)
+        hit = s.list_members("labelled", "flags", barred)
         problems += _row_problems("error", "quality_gate", subset_file("labelled"), np.flatnonzero(hit), "flags",
                                   lambda r: _text(flags[r].as_py()),
-                                  f"no labelled clip flagged {', '.join(gated)}")
+                                  f"no labelled clip flagged {', '.join(barred)}")
     # The measured values too, so a hand-cleared flag does not hide a gated clip.
-    limits: list[tuple[str, Callable[[pd.Series], pd.Series], str]] = [
-        ("snr_db", lambda v: v < q.min_snr_db, f"snr_db >= {q.min_snr_db} dB (quality.min_snr_db)"),
-        ("rate_z", lambda v: v.abs() > q.rate_max_abs_z, f"|rate_z| <= {q.rate_max_abs_z} (quality.rate_max_abs_z)"),
-    ]
-    if q.narrowband_to_unlabelled:
-        limits.append(("bandwidth_hz", lambda v: v < q.min_bandwidth_hz,
-                       f"bandwidth_hz >= {q.min_bandwidth_hz} Hz (quality.min_bandwidth_hz)"))
-    for column, test, expected in limits:
+    measured = {
+        "noisy": ("snr_db", f"snr_db >= {q.min_snr_db} dB (quality.min_snr_db)"),
+        "narrowband": ("bandwidth_hz", f"bandwidth_hz >= {q.min_bandwidth_hz} Hz (quality.min_bandwidth_hz)"),
+        "rate_outlier": ("rate_z", f"|rate_z| <= {q.rate_max_abs_z} (quality.rate_max_abs_z)"),
+    }
+    for gate in holding:
+        column, expected = measured[gate]
         f = s.frame([column], names=("labelled",))
-        values = f[column].astype(float)
-        problems += _frame_problems("error", "quality_gate", f, test(values).fillna(False), column,
+        values = {c: np.full(len(f), np.nan) for c, _ in measured.values()}
+        values[column] = f[column].astype(float).to_numpy(dtype=np.float64, na_value=np.nan)
+        hit = gates.gate_flags(**values, min_snr_db=q.min_snr_db, min_bandwidth_hz=q.min_bandwidth_hz,
+                               rate_max_abs_z=q.rate_max_abs_z)[gate]
+        problems += _frame_problems("error", "quality_gate", f, hit, column,
                                     lambda r, c=column: f"{r[c]:.2f}", expected)
+    if q.noisy_action == "reject":
+        for name in SUBSETS:
+            if s.usable(name, "flags"):
+                flags = s.column(name, "flags")
+                hit = s.list_members(name, "flags", ["noisy"])
+                problems += _row_problems("error", "quality_gate", subset_file(name), np.flatnonzero(hit), "flags",
+                                          lambda r, flags=flags: _text(flags[r].as_py()),
+                                          'no clip flagged noisy: quality.noisy_action = "reject" sets them aside')
     return problems
 
 

@@ -120,14 +120,19 @@ def all_rows(result: StageResult) -> dict[str, dict[str, Any]]:
     return {r["clip_id"]: r for rows in rows_by_subset(result).values() for r in rows}
 
 
-def eligible_ids(corpus: Corpus, *, narrowband_gates: bool = True) -> set[str]:
-    """Eligibility recomputed from the inputs (rate gate disabled where this is used)."""
+def eligible_ids(corpus: Corpus, quality_config: dict[str, Any] | None = None) -> set[str]:
+    """Eligibility recomputed from the inputs (rate gate disabled where this is used).
+
+    Defaults from schemas/config.schema.json: noisy clips are demoted, narrowband ones
+    only flagged."""
+    q = {"noisy_action": "demote", "narrowband_action": "flag", **(quality_config or {})}
     has_text = {t["clip_id"] for t in corpus.text}
     out = set()
     for a in corpus.audio:
         noisy = a["snr_db"] is not None and a["snr_db"] < MIN_SNR_DB
         narrow = a["bandwidth_hz"] is not None and a["bandwidth_hz"] < MIN_BANDWIDTH_HZ
-        if a["clip_id"] in has_text and not noisy and not (narrow and narrowband_gates):
+        held = (noisy and q["noisy_action"] != "flag") or (narrow and q["narrowband_action"] == "demote")
+        if a["clip_id"] in has_text and not held:
             out.add(a["clip_id"])
     return out
 
@@ -233,7 +238,9 @@ configs = st.fixed_dictionaries({
         "labelled_budgets": st.sampled_from([["20s", "1m"], ["10s", "30s", "2m"], ["1m"], [], ["5m", "10h"]]),
         "selection": st.sampled_from(["coverage", "random"]),
     }),
-    "quality": st.just(NO_RATE_GATE),
+    "quality": st.fixed_dictionaries({**{k: st.just(v) for k, v in NO_RATE_GATE.items()},
+                                      "noisy_action": st.sampled_from(["demote", "flag"]),
+                                      "narrowband_action": st.sampled_from(["flag", "demote"])}),
 })
 corpus_shapes = st.tuples(st.lists(st.integers(1, 6), min_size=2, max_size=6), st.integers(0, 2**32 - 1),
                           st.sampled_from([0.0, 0.15]))
@@ -254,7 +261,7 @@ def check_invariants(corpus: Corpus, data: dict[str, Any], result: StageResult, 
     assert len(ids) == len(set(ids))
     assert set(ids) == {a["clip_id"] for a in corpus.audio}
 
-    eligible = eligible_ids(corpus)
+    eligible = eligible_ids(corpus, data.get("quality"))
     durations = {a["clip_id"]: a["duration_s"] for a in corpus.audio}
     training = {r["group"] for s in ("labelled", "unlabelled") for r in rows[s]}
     heldout_groups = {r["group"] for r in rows["heldout"]}
@@ -479,37 +486,45 @@ def gated_corpus() -> tuple[Corpus, dict[str, str]]:
     return corpus, special
 
 
-def test_gates_keep_flagged_clips_out_of_labelled_and_scoring(tmp_path: Path) -> None:
+@pytest.mark.parametrize("narrowband_action", ["flag", "demote"])
+def test_gates_flag_and_demote_as_configured(tmp_path: Path, narrowband_action: str) -> None:
     # Source: docs/split.md, Quality gates; |z| > 3.5 after Iglewicz and Hoaglin (1993).
+    # Noisy and rate-outlier clips are demoted by default; narrowband ones only when asked.
     corpus, special = gated_corpus()
-    result = split.run(make_ctx(tmp_path, corpus, {"split": {"heldout": "40%", "labelled_budgets": ["10h"]}}))
+    data = {"split": {"heldout": "40%", "labelled_budgets": ["10h"]},
+            "quality": {"narrowband_action": narrowband_action}}
+    result = split.run(make_ctx(tmp_path, corpus, data))
     rows = all_rows(result)
     flagged = {cid: kind.split(":")[1] for kind, cid in special.items()}
     expected_flag = {"noisy": "noisy", "narrow": "narrowband", "mismatch": "rate_outlier"}
+    demoted = {cid for cid, kind in flagged.items() if kind != "narrow" or narrowband_action == "demote"}
     for cid, kind in flagged.items():
         assert expected_flag[kind] in rows[cid]["flags"], (cid, rows[cid]["flags"], rows[cid]["rate_z"])
-        assert rows[cid]["subset"] != "labelled"
+        assert rows[cid]["transcript"] is not None or rows[cid]["subset"] == "unlabelled"
+        if cid in demoted:
+            assert rows[cid]["subset"] != "labelled"
     # Correct transcripts are not rate outliers.
     assert not [c for c, r in rows.items() if "rate_outlier" in r["flags"] and c not in flagged]
     assert all(abs(r["rate_z"]) <= 3.5 for c, r in rows.items() if r["rate_z"] is not None and c not in flagged)
-    # The 10h tier is short, so every eligible training clip is labelled, and nothing else.
+    # The 10h tier is short, so every eligible training clip is labelled, and nothing else:
+    # a flagged narrowband clip keeps its transcript and its place unless demotion is on.
     for r in rows.values():
         if r["subset"] != "heldout":
-            assert (r["subset"] == "labelled") == (r["clip_id"] not in flagged)
+            assert (r["subset"] == "labelled") == (r["clip_id"] not in demoted)
     sides = {r["subset"] == "heldout" for c, r in rows.items() if c in flagged}
     assert sides == {True, False}  # flagged clips on both sides of the split
     heldout = [r for r in rows.values() if r["subset"] == "heldout"]
-    scored = [r for r in heldout if r["clip_id"] not in flagged]
+    scored = [r for r in heldout if r["clip_id"] not in demoted]
     assert result.summary["subsets"]["heldout"]["scored_clips"] == len(scored)
     assert result.summary["gates"] == {"noisy": 5, "narrowband": 5, "rate_outlier": 5, "near_duplicate": 0,
                                        "rejected_noisy": 0}
 
 
-def test_narrowband_gate_can_be_a_note_and_noisy_clips_rejected(tmp_path: Path) -> None:
+def test_every_gate_can_be_a_flag_only_and_noisy_clips_rejected(tmp_path: Path) -> None:
     # Source: the [quality] keys of schemas/config.schema.json and the reasons of schemas/rejected.schema.json.
     corpus, special = gated_corpus()
     data = {"split": {"heldout": "40%", "labelled_budgets": ["10h"]},
-            "quality": {"narrowband_to_unlabelled": False, "noisy_to_unlabelled": False}}
+            "quality": {"noisy_action": "reject", "rate_outlier_action": "flag"}}
     result = split.run(make_ctx(tmp_path, corpus, data))
     rows = all_rows(result)
     noisy = {cid for kind, cid in special.items() if kind.endswith(":noisy")}
@@ -517,9 +532,13 @@ def test_narrowband_gate_can_be_a_note_and_noisy_clips_rejected(tmp_path: Path) 
     assert all(r["reason"] == "noisy" and r["stage"] == "split" and "min_snr_db" in r["detail"]
                for r in result.rejects)
     assert not noisy & set(rows)
-    narrow = [rows[cid] for kind, cid in special.items() if kind.endswith(":narrow")]
-    assert all("narrowband" in r["flags"] for r in narrow)
-    assert any(r["subset"] == "labelled" for r in narrow)
+    for kind, flag in (("narrow", "narrowband"), ("mismatch", "rate_outlier")):
+        marked = [rows[cid] for k, cid in special.items() if k.endswith(":" + kind)]
+        assert all(flag in r["flags"] for r in marked)
+        assert any(r["subset"] == "labelled" for r in marked)
+    result = split.run(make_ctx(tmp_path, corpus, {**data, "quality": {"noisy_action": "flag"}}, fresh=True))
+    rows = all_rows(result)
+    assert not result.rejects and any(rows[cid]["subset"] == "labelled" for cid in noisy)
 
 
 def test_notes_and_rejected_transcripts(tmp_path: Path) -> None:
@@ -583,7 +602,7 @@ def test_runner_writes_the_three_manifests_and_rejects(tmp_path: Path) -> None:
     inputs = corpus.inputs()
     for name in ("audio", "text"):
         write_manifest(out / "stages" / f"{name}.parquet", name, inputs[name], metadata={"stage": name})
-    cfg = build_config({"seed": 7, "split": {"labelled_budgets": ["30s"]}, "quality": {"noisy_to_unlabelled": False}})
+    cfg = build_config({"seed": 7, "split": {"labelled_budgets": ["30s"]}, "quality": {"noisy_action": "reject"}})
     (tmp_path / "raw").mkdir()
     Runner(tmp_path / "raw", out, cfg, workers=1).prepare(("split",))
     counts = {s: read_manifest(out / split.SUBSET_PATHS[s]).num_rows for s in split.SUBSETS}

@@ -409,18 +409,46 @@ def test_duration_must_match_samples(out: Out) -> None:
 # ----------------------------------------------------------------------------- quality gates
 
 
-@pytest.mark.parametrize("flag", ["noisy", "rate_outlier", "narrowband"])
+@pytest.mark.parametrize("flag", ["noisy", "rate_outlier", "transcript_rejected"])
 def test_gated_flag_in_labelled(out: Out, flag: str) -> None:
+    # Source: the defaults of quality.noisy_action and quality.rate_outlier_action (demote).
     out.rows["labelled"][2]["flags"] = ["upsampled", flag]
     out.write()
     only(out.validate(), "quality_gate", LAB, 2, "flags")
 
 
-def test_narrowband_allowed_when_the_config_lets_it_in(out: Out) -> None:
+def test_narrowband_in_labelled_is_allowed_by_default_and_an_error_when_demoted(out: Out) -> None:
+    # Source: quality.narrowband_action in schemas/config.schema.json ("flag" by default).
     out.rows["labelled"][2]["flags"] = ["narrowband"]
     out.rows["labelled"][2]["bandwidth_hz"] = 3400.0
-    out.set_config(quality={"narrowband_to_unlabelled": False})
+    out.write()
     assert out.validate() == []
+    out.set_config(quality={"narrowband_action": "demote"})
+    problems = out.validate()
+    only(problems, "quality_gate", LAB, 2, "flags")
+    only(problems, "quality_gate", LAB, 2, "bandwidth_hz")
+
+
+@pytest.mark.parametrize(("flag", "column", "value", "key"), [
+    ("noisy", "snr_db", 2.0, "noisy_action"),
+    ("rate_outlier", "rate_z", 4.2, "rate_outlier_action"),
+])
+def test_a_gate_set_to_flag_lets_its_clips_into_labelled(out: Out, flag: str, column: str, value: float,
+                                                         key: str) -> None:
+    out.rows["labelled"][1]["flags"] = [flag]
+    out.rows["labelled"][1][column] = value
+    out.set_config(quality={key: "flag"})
+    assert out.validate() == []
+
+
+def test_rejected_noisy_clips_must_be_in_no_subset(out: Out) -> None:
+    # Source: quality.noisy_action = "reject" sets noisy clips aside (docs/split.md, Quality gates).
+    out.rows["heldout"][1]["flags"] = ["noisy"]
+    out.rows["heldout"][1]["snr_db"] = 1.0
+    out.write()
+    assert out.validate() == []  # demoted: a held-out clip keeps its flag, unscored
+    out.set_config(quality={"noisy_action": "reject"})
+    only(out.validate(), "quality_gate", HELD, 1, "flags")
 
 
 def test_heldout_keeps_flagged_clips(out: Out) -> None:
