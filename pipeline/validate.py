@@ -16,6 +16,7 @@ from __future__ import annotations
 import json
 import math
 import os
+import re
 import time
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
@@ -495,11 +496,18 @@ def _check_budgets(s: _Subsets, budgets: list[str], member: dict[str, np.ndarray
     # "Within one clip": a greedy fill stops when the next clip would not fit, or just past
     # the budget; either way it lands within the longest clip of the subset.
     slack = float(durations.max()) if durations.size else config.audio.max_clip_s
+    if not durations.size:
+        return problems  # an empty labelled subset is one finding (check_empty_subsets), not one per tier
     for budget in budgets:
         target = parse_duration_s(budget)
         total = float(durations[member[budget]].sum())
         found = f"{total:.1f} s in {int(member[budget].sum())} clips"
-        if total > target + slack:
+        if target > 0 and not member[budget].any():
+            problems.append(Problem("error", "tier_empty", subset_file("labelled"), None, "tiers",
+                                    f"tier {budget}: no clip",
+                                    f"clips up to {target:.0f} s (split.labelled_budgets); a tier the config "
+                                    "asks for that holds nothing cannot be trained on"))
+        elif total > target + slack:
             problems.append(Problem("error", "tier_budget", subset_file("labelled"), None, "tiers",
                                     f"tier {budget}: {found}",
                                     f"at most {target:.0f} s plus one clip ({slack:.1f} s)"))
@@ -507,6 +515,44 @@ def _check_budgets(s: _Subsets, budgets: list[str], member: dict[str, np.ndarray
             problems.append(Problem("warning", "tier_budget", subset_file("labelled"), None, "tiers",
                                     f"tier {budget}: {found}, short of the budget",
                                     f"{target:.0f} s within one clip ({slack:.1f} s); not enough eligible transcribed audio"))
+    return problems
+
+
+def _asks_for_heldout(spec: str) -> bool:
+    """split.heldout asks for held-out clips unless it is zero ("0%", "0s", "0.0h")."""
+    match = re.match(r"[0-9]+(?:\.[0-9]+)?", spec)
+    return match is None or float(match.group()) > 0
+
+
+def check_empty_subsets(s: _Subsets, config: Config) -> list[Problem]:
+    """A subset the config asks for holds clips: labelled when a budget of
+    split.labelled_budgets is above zero, held-out (with a clip to score) when split.heldout
+    is. An empty one means every transcript was rejected or held back, and nothing can be
+    trained or scored on it. (Unlabelled is whatever is left, and may be empty.)"""
+    problems: list[Problem] = []
+    budgets = [b for b in config.split.labelled_budgets if parse_duration_s(b) > 0]
+    why = ("none qualified: see manifests/rejected.parquet (rejected transcripts) and the flags of "
+           "the other subsets (transcript_rejected, gates)")
+    labelled = s.tables.get("labelled")
+    if budgets and labelled is not None and labelled.num_rows == 0:
+        problems.append(Problem("error", "subset_empty", subset_file("labelled"), None, None, "no clip",
+                                f"clips for the tiers {budgets} of split.labelled_budgets; {why}"))
+    heldout = s.tables.get("heldout")
+    spec = config.split.heldout
+    if heldout is None or not _asks_for_heldout(spec):
+        return problems
+    if heldout.num_rows == 0:
+        problems.append(Problem("error", "subset_empty", subset_file("heldout"), None, None, "no clip",
+                                f"held-out clips for split.heldout = {spec!r}; {why}"))
+    elif s.usable("heldout", "transcript") and s.usable("heldout", "flags"):
+        barred = [*gates.holding_gates(config.quality.gate_actions), *ALWAYS_GATED_FLAGS]
+        transcribed = np.asarray(pc.is_valid(s.column("heldout", "transcript")), dtype=bool)
+        scored = transcribed & ~s.list_members("heldout", "flags", barred)
+        if not scored.any():
+            problems.append(Problem("error", "subset_empty", subset_file("heldout"), None, "transcript",
+                                    f"{heldout.num_rows} clips, none with a transcript to score",
+                                    f"at least one transcribed clip that no gate holds back, for split.heldout = "
+                                    f"{spec!r}; {why}"))
     return problems
 
 
@@ -815,6 +861,7 @@ def validate_out(out: Path, *, deep: bool = False, audio_files: bool = True) -> 
         ("labelled_text", lambda: check_labelled_text(s)),
         ("phone_inventory", lambda: check_phones(s, out, config)),
         ("duration_bounds", lambda: check_durations(s, config)),
+        ("subset_empty", lambda: check_empty_subsets(s, config)),
         ("quality_gate", lambda: check_quality_gates(s, config)),
         ("near_duplicate_split", lambda: check_near_duplicates(s)),
         ("conservation", lambda: check_conservation(s, stage_tables, rejected)),

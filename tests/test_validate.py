@@ -346,6 +346,80 @@ def test_tier_short_of_budget_is_a_warning(out: Out) -> None:
     assert problem.found.startswith("tier 1h: 8.0 s")
 
 
+# ----------------------------------------------------------------------------- empty subsets
+# Source: issue 14 item 6: a subset the config asks for that comes out empty is an error,
+# and so is a labelled tier that holds nothing.
+
+
+def test_empty_labelled_subset_is_an_error(out: Out) -> None:
+    out.rows["unlabelled"] += [dict(r, subset="unlabelled", tiers=[], transcript=None, norm_text=None, phones=None)
+                               for r in out.rows["labelled"]]
+    out.rows["labelled"] = []
+    out.write()
+    problems = out.validate()
+    problem = only(problems, "subset_empty", LAB)
+    assert "split.labelled_budgets" in problem.expected
+    assert not found(problems, "tier_empty", LAB)  # one finding, not one per tier
+    # A config that asks for no tier asks for no labelled clip.
+    out.set_config(split={"labelled_budgets": []})
+    assert out.validate() == []
+
+
+def test_a_tier_that_holds_nothing_is_an_error(out: Out) -> None:
+    for row in out.rows["labelled"]:
+        row["tiers"] = ["8s"]
+    out.write()
+    problem = only(out.validate(), "tier_empty", LAB, None, "tiers")
+    assert problem.found == "tier 4s: no clip"
+
+
+def test_empty_heldout_is_an_error_unless_the_config_asks_for_none(out: Out) -> None:
+    moved = out.rows["heldout"]
+    out.rows["heldout"] = []
+    out.rows["unlabelled"] += [dict(r, subset="unlabelled", transcript=None, norm_text=None, phones=None)
+                               for r in moved]
+    out.write()
+    problem = only(out.validate(), "subset_empty", HELD)
+    assert "'10%'" in problem.expected  # the default split.heldout
+    for none in ("0%", "0s", "0.0h"):
+        out.set_config(split={"heldout": none})
+        assert out.validate() == [], none
+
+
+def test_heldout_with_nothing_to_score_is_an_error(out: Out) -> None:
+    held = out.rows["heldout"]
+    held[0].update(transcript=None, norm_text=None, phones=None, speaking_rate=None, rate_z=None,
+                   flags=["heldout_untranscribed"])
+    held[1].update(flags=["rate_outlier"], rate_z=5.0)
+    out.write()
+    only(out.validate(), "subset_empty", HELD, None, "transcript")
+    out.set_config(quality={"rate_outlier_action": "flag"})  # the second clip is scored again
+    assert out.validate() == []
+
+
+def test_every_transcript_rejected_fails_validation(demo_build: Path, tmp_path: Path,
+                                                   capsys: pytest.CaptureFixture[str]) -> None:
+    # The demo rebuilt with a lexicon that knows none of its words and rejects unknown
+    # words: prepare finishes (with a warning), validate must not pass it.
+    from pipeline.config import load_config
+    from pipeline.runner import Runner
+    from tests.conftest import DEMO
+
+    out = tmp_path / "out"
+    shutil.copytree(demo_build, out)
+    lexicon = tmp_path / "lexicon.tsv"
+    lexicon.write_text("quern\tk w er n\n", encoding="utf-8")
+    config = load_config(DEMO / "corpus.toml", overrides={
+        "text.backend": "lexicon", "text.lexicon": str(lexicon), "text.oov": "reject"})
+    Runner(DEMO, out, config, workers=1, options={"fresh": True}).prepare(("text", "split"))
+    assert pq.read_table(out / "stages" / "text.parquet").num_rows == 0
+    problems = validate_out(out, audio_files=False).problems
+    assert {(p.check, p.file) for p in problems if p.severity == "error"} == {
+        ("subset_empty", LAB), ("subset_empty", HELD)}
+    assert main(["validate", str(out), "--manifests-only"]) == 1
+    assert "subset_empty" in capsys.readouterr().out
+
+
 # ----------------------------------------------------------------------------- text and phones
 
 
