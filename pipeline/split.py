@@ -210,9 +210,9 @@ def match_tiers(old: Sequence[str], new: Sequence[str], *, seconds: Mapping[str,
 
     Examples
     --------
-    >>> s = {"10m": 600.0, "30m": 1800.0, "1h": 3600.0, "10h": 36000.0}
-    >>> match_tiers(["10m", "1h", "10h"], ["10m", "30m", "10h"], seconds=s)
-    {'10h': '10h', '10m': '10m', '30m': '1h'}
+    >>> s = {"15m": 900.0, "30m": 1800.0, "1h": 3600.0, "4h": 14400.0}
+    >>> match_tiers(["15m", "1h", "4h"], ["15m", "30m", "4h"], seconds=s)
+    {'15m': '15m', '30m': '1h', '4h': '4h'}
     """
     same = set(old) & set(new)
     mapping = {n: n for n in sorted(same)}

@@ -613,6 +613,17 @@ def test_runner_writes_the_three_manifests_and_rejects(tmp_path: Path) -> None:
     assert (out / "ledger.tsv").exists() and (out / "stages" / "split.summary.json").exists()
 
 
+def test_default_tiers_double_across_minutes_to_hours() -> None:
+    # Source: README.md's opening paragraph (a few minutes to a few hours of transcribed
+    # speech) and the reasoning in the split.labelled_budgets description of
+    # schemas/config.schema.json: each tier twice the one before, evenly spaced on a log scale.
+    budgets = [split.parse_duration_s(b) for b in build_config({}).split.labelled_budgets]
+    assert budgets == sorted(budgets) and len(budgets) >= 3
+    assert all(large == 2 * small for small, large in itertools.pairwise(budgets))
+    assert 60 <= budgets[0] <= 30 * 60  # minutes
+    assert 2 * 3600 <= budgets[-1] <= 6 * 3600  # a few hours
+
+
 def test_zero_heldout_needs_no_second_group_and_budgets_are_unique(tmp_path: Path) -> None:
     # Source: docs/split.md, Groups (zero target) and Labelled tiers (one tier per budget).
     result = split.run(make_ctx(tmp_path, single_speaker_corpus(), {"split": {"heldout": "0%"}}))
