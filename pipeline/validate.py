@@ -485,19 +485,18 @@ def check_tiers(s: _Subsets, config: Config) -> list[Problem]:
                                           lambda r, arr=arr: _text(arr[r].as_py()),
                                           f"every clip of tier {small} also in tier {large}")
         if s.usable(name, "duration_s"):
-            problems += _check_budgets(s, budgets, member, config)
+            problems += _check_budgets(s, budgets, member)
     return problems
 
 
-def _check_budgets(s: _Subsets, budgets: list[str], member: dict[str, np.ndarray],
-                   config: Config) -> list[Problem]:
+def _check_budgets(s: _Subsets, budgets: list[str], member: dict[str, np.ndarray]) -> list[Problem]:
     problems = []
     durations = np.asarray(s.column("labelled", "duration_s").fill_null(0.0), dtype=np.float64)
-    # "Within one clip": a greedy fill stops when the next clip would not fit, or just past
-    # the budget; either way it lands within the longest clip of the subset.
-    slack = float(durations.max()) if durations.size else config.audio.max_clip_s
     if not durations.size:
         return problems  # an empty labelled subset is one finding (check_empty_subsets), not one per tier
+    # "Within one clip": a greedy fill stops when the next clip would not fit, or just past
+    # the budget; either way it lands within the longest clip of the subset.
+    slack = float(durations.max())
     for budget in budgets:
         target = parse_duration_s(budget)
         total = float(durations[member[budget]].sum())
