@@ -295,6 +295,16 @@ def _condition(job: AudioJob) -> FileOutcome:
         return _cut_and_write(job, scan, spool)
 
 
+def crashed_outcome(job: AudioJob, how: str) -> FileOutcome:
+    """The reject for a source whose worker process died outright while conditioning
+    it, twice, the second time alone (``how``: see ``pool.describe_exit``); a crash in
+    a C library cannot be caught as an exception."""
+    rel = job.row["source_path"]
+    return FileOutcome(rejects=[reject(NAME, rel, "decoder_crashed",
+                                       f"{rel}: the worker process conditioning it died ({how}), also when it "
+                                       "ran alone; expected a file the audio libraries can decode without crashing")])
+
+
 def _cut_and_write(job: AudioJob, scan: SourceScan, spool: Spool) -> FileOutcome:
     cfg, row = job.config, job.row
     rel, source_id = row["source_path"], row["source_id"]
@@ -581,15 +591,16 @@ def run(ctx: StageContext) -> StageResult:
         warm_up(cfg)
 
     def arrived(j: int, outcome: FileOutcome) -> None:
-        # A decoder error may be passing (a file still being copied): not remembered.
-        if not any(r["reason"] == "undecodable" for r in outcome.rejects):
+        # A decoder error may be passing (a file still being copied), and a crash may be
+        # the library's fault (fixed by an upgrade): neither is remembered.
+        if not any(r["reason"] in ("undecodable", "decoder_crashed") for r in outcome.rejects):
             cache.put(keys[todo[j]], outcome.to_json())
         take(todo[j], outcome)
 
     each_result(condition_file, jobs, arrived, workers=ctx.workers, scheduler=ctx.scheduler,
                 desc="audio", progress=ctx.progress,
                 costs=[sources[i]["num_frames"] * sources[i]["channels"] for i in todo],
-                meanwhile=ctx.meanwhile)
+                meanwhile=ctx.meanwhile, on_crash=lambda j, how: crashed_outcome(jobs[j], how))
     ctx.log.info("audio: %d files processed, %d reused from cache", len(todo), len(sources) - len(todo))
 
     table = builder.table(sort_by="clip_id")

@@ -282,13 +282,19 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str,
 
     def remember(j: int, res: dict[str, Any]) -> None:
         key = keys[todo[j]]
-        if key:
-            # Failures are cached too: they depend only on the bytes, like successes.
+        # Failures are cached too: they depend only on the bytes, like successes. A crash
+        # may be the library's fault (fixed by an upgrade), so it is not remembered.
+        if key and res.get("error", ("",))[0] != "decoder_crashed":
             cache.put(key, res)
+
+    def crashed(j: int, how: str) -> dict[str, Any]:
+        rel = paths[todo[j]]
+        return {"error": ("decoder_crashed", f"{rel}: the worker process probing it died ({how}), also when it "
+                          "ran alone; expected a file the audio library can read without crashing")}
 
     fresh = map_ordered(probe_file, [ProbeJob(str(raw / paths[i]), paths[i]) for i in todo],
                         workers=ctx.workers, scheduler=ctx.scheduler, desc="probe", progress=ctx.progress,
-                        meanwhile=ctx.meanwhile, on_result=remember)
+                        meanwhile=ctx.meanwhile, on_result=remember, on_crash=crashed)
     for i, res in zip(todo, fresh, strict=True):
         results[i] = res
     ctx.log.info("ingest: %d files probed, %d reused from cache", len(todo), len(paths) - len(todo))

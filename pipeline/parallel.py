@@ -6,12 +6,12 @@ what keeps manifests byte-identical across worker counts and schedulers.
 
 from __future__ import annotations
 
-import multiprocessing
 import os
 import sys
 from collections.abc import Callable, Sequence
-from concurrent.futures import ProcessPoolExecutor
 from typing import Any, TypeVar
+
+from pipeline.pool import run_pool
 
 T = TypeVar("T")
 R = TypeVar("R")
@@ -46,6 +46,7 @@ def each_result(
     progress: bool = False,
     costs: Sequence[float] | None = None,
     meanwhile: Callable[[], None] | None = None,
+    on_crash: Callable[[int, str], R] | None = None,
 ) -> None:
     """Apply ``func`` to every item and hand each result to ``on_result(index, result)``.
 
@@ -66,6 +67,14 @@ def each_result(
     once, after every item has been handed over, so it runs while the workers do and
     after the pool's processes have been forked (forking while it ran could copy a lock
     it holds). Without one it is not called: the caller does that work afterwards.
+
+    Local workers end by themselves when this process is killed (``pipeline.pool``).
+    ``on_crash(index, how)`` gives the result for an item whose worker process died
+    outright twice, the second time alone (a decoder's segmentation fault); the other
+    items are not affected, whichever shared the pool with it. With ``on_crash`` the work
+    always runs in worker processes, even with one worker, so that such a crash never
+    takes this process down and results do not depend on the worker count. Without it a
+    worker's death raises ``BrokenProcessPool``.
     """
     if not items:
         return
@@ -74,25 +83,18 @@ def each_result(
         return
     n = min(resolve_workers(workers), len(items))
     bar = _progress(len(items), desc, progress)
-    try:
-        if n == 1:
-            for i, item in enumerate(items):
-                on_result(i, func(item))
-                bar.update(1)
-            return
-        # fork shares the already-imported modules with the children; the stages
-        # import their heavy libraries lazily, inside the per-file functions.
-        context = multiprocessing.get_context("fork" if sys.platform.startswith("linux") else "spawn")
-        order = range(len(items)) if costs is None else sorted(range(len(items)), key=lambda i: -costs[i])
-        with ProcessPoolExecutor(max_workers=n, mp_context=context) as pool:
-            futures = {pool.submit(func, items[i]): i for i in order}
-            from concurrent.futures import as_completed
 
-            if meanwhile is not None:
-                meanwhile()
-            for fut in as_completed(futures):
-                on_result(futures.pop(fut), fut.result())
-                bar.update(1)
+    def handed(i: int, result: R) -> None:
+        on_result(i, result)
+        bar.update(1)
+
+    try:
+        if n == 1 and on_crash is None:
+            for i, item in enumerate(items):
+                handed(i, func(item))
+            return
+        order = range(len(items)) if costs is None else sorted(range(len(items)), key=lambda i: -costs[i])
+        run_pool(func, items, handed, workers=n, order=order, meanwhile=meanwhile, on_crash=on_crash)
     finally:
         bar.close()
 

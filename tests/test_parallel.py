@@ -40,3 +40,57 @@ def test_no_items_no_calls() -> None:
     assert map_ordered(slow_square, [], workers=2, meanwhile=lambda: calls.append(1),
                        on_result=lambda i, r: calls.append(i)) == []
     assert calls == []
+
+
+CRASH_ON = 3
+
+
+def crash_on_three(x: int) -> int:
+    """x * 10, except that the process dies of a segmentation fault on x == CRASH_ON."""
+    if x == CRASH_ON:
+        import faulthandler
+        import resource
+        import signal
+
+        faulthandler.disable()  # no traceback dump on the test's terminal
+        resource.setrlimit(resource.RLIMIT_CORE, (0, 0))  # and no core file
+        os.kill(os.getpid(), signal.SIGSEGV)
+    time.sleep(0.05 if x % 2 else 0.0)  # neighbours still running when the crash comes
+    return x * 10
+
+
+def fail_on_three(x: int) -> int:
+    if x == CRASH_ON:
+        raise ValueError("three")
+    return x
+
+
+@pytest.mark.parametrize("workers", [1, 2, 3])
+def test_a_crashing_item_costs_only_itself_whatever_the_worker_count(workers: int) -> None:
+    seen: list[int] = []
+    crashes: list[tuple[int, str]] = []
+
+    def on_crash(i: int, how: str) -> int:
+        crashes.append((i, how))
+        return -1
+
+    items = list(range(10))
+    out = map_ordered(crash_on_three, items, workers=workers, on_crash=on_crash,
+                      on_result=lambda i, r: seen.append(i))
+    assert out == [-1 if x == CRASH_ON else x * 10 for x in items]
+    assert sorted(seen) == items  # each handed over exactly once
+    assert crashes == [(CRASH_ON, "killed by signal SIGSEGV (Segmentation fault)")]
+
+
+def test_without_on_crash_a_worker_death_stops_the_run() -> None:
+    from concurrent.futures.process import BrokenProcessPool
+
+    with pytest.raises(BrokenProcessPool, match=rf"item\(s\) \[.*{CRASH_ON}.*\]"):
+        map_ordered(crash_on_three, list(range(6)), workers=2)
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_an_ordinary_exception_still_reaches_the_caller(workers: int) -> None:
+    # Only a dead process is a crash; an exception is the function's own business.
+    with pytest.raises(ValueError, match="three"):
+        map_ordered(fail_on_three, list(range(6)), workers=workers, on_crash=lambda i, how: -1)
