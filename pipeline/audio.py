@@ -45,7 +45,7 @@ from pipeline.decode import (
     read_blocks,
 )
 from pipeline.errors import ParameterError
-from pipeline.fsio import sha256_bytes, write_bytes_atomic
+from pipeline.fsio import remove_stale_temporaries, sha256_bytes, write_bytes_atomic
 from pipeline.manifest import ManifestBuilder
 from pipeline.parallel import each_result
 from pipeline.segment import segment_id, split_frames
@@ -608,6 +608,9 @@ def run(ctx: StageContext) -> StageResult:
     removed = remove_orphans(out / AUDIO_DIR, set(table.column("audio_path").to_pylist()), base=out)
     if removed:
         ctx.log.info("audio: removed %s no current row refers to", _plural(removed, "clip file"))
+    # A worker stopped mid-file (the neighbour of a crash) leaves its spool file behind;
+    # no worker runs any more, so whatever is left is debris.
+    remove_stale_temporaries(out / TMP_DIR)
     with contextlib.suppress(OSError):
         (out / TMP_DIR).rmdir()
 
