@@ -1,8 +1,8 @@
 """Worker processes that die, and a driver that dies: what `loam prepare` leaves behind.
 
 A decoder that crashes its worker costs that one file (a ``decoder_crashed`` reject),
-and a driver killed with SIGKILL leaves no worker running. Both are checked on a real
-`loam prepare` in a separate process (pipeline/pool.py describes the mechanisms).
+and a driver killed with SIGKILL leaves no worker running (pipeline/pool.py describes
+the mechanisms).
 """
 
 from __future__ import annotations
@@ -19,36 +19,39 @@ from pathlib import Path
 import pyarrow.parquet as pq
 import pytest
 
-from pipeline.cli import BLAS_THREAD_VARIABLES
+from pipeline.audio import AudioJob, FileOutcome, condition_file
+from pipeline.cli import main
+from pipeline.config import build_config
+from pipeline.ingest import ProbeJob, probe_file
+from pipeline.runner import Runner
 from tests.conftest import REPO, speechlike, tree_hash
 
 CRASHING = "spk1/take04.wav"
 
-# Imported by every Python process of the run (driver and workers, forked or spawned)
-# through PYTHONPATH: the audio stage's per-file work dies of a segmentation fault on
-# one file, as a C decoder's bug would make it. Only this test puts it on the path.
-CRASH_HOOK = f'''
-import os
-import signal
-
-import pipeline.audio as _audio
-
-_condition = _audio._condition
 
 
-def _crashing(job):
-    if job.row["source_path"] == {CRASHING!r}:
-        import faulthandler
-        import resource
+def _segfault() -> None:
+    """Die as a C library's invalid memory access would make this process die."""
+    import faulthandler
+    import resource
 
-        faulthandler.disable()
-        resource.setrlimit(resource.RLIMIT_CORE, (0, 0))
-        os.kill(os.getpid(), signal.SIGSEGV)
-    return _condition(job)
+    faulthandler.disable()  # no traceback dump on the test's terminal
+    resource.setrlimit(resource.RLIMIT_CORE, (0, 0))  # and no core file
+    os.kill(os.getpid(), signal.SIGSEGV)
 
 
-_audio._condition = _crashing
-'''
+# Stand-ins for the stages' per-file functions, with a decoder that crashes on one
+# file. Module-level, so that a spawned worker finds them too (it imports this module).
+def condition_crashing_on_one_file(job: AudioJob) -> FileOutcome:
+    if job.row["source_path"] == CRASHING:
+        _segfault()
+    return condition_file(job)
+
+
+def probe_crashing_on_one_file(job: ProbeJob) -> dict[str, object]:
+    if job.rel == CRASHING:
+        _segfault()
+    return probe_file(job)
 
 
 def _write_raw(raw: Path, *, files: int, seconds: float) -> None:
@@ -60,11 +63,11 @@ def _write_raw(raw: Path, *, files: int, seconds: float) -> None:
         sf.write(folder / f"take{i:02d}.wav", speechlike(seconds, 16000, seed=i), 16000, subtype="PCM_16")
 
 
-def _prepare(raw: Path, out: Path, *, workers: int, env: dict[str, str] | None = None,
-             **popen: object) -> subprocess.Popen[str]:
+def _prepare(raw: Path, out: Path, *, workers: int) -> subprocess.Popen[bytes]:
+    """`loam prepare` in a process of its own."""
     return subprocess.Popen([sys.executable, "-m", "pipeline", "prepare", str(raw), str(out),
                              "--workers", str(workers), "--no-progress"],
-                            cwd=REPO, env=env, text=True, **popen)  # type: ignore[call-overload]
+                            cwd=REPO, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
 
 
 def _compared(out: Path) -> dict[str, object]:
@@ -88,21 +91,15 @@ def _compared(out: Path) -> dict[str, object]:
 
 
 @pytest.mark.parametrize("workers", [1, 2])
-def test_a_file_that_crashes_its_decoder_is_rejected_and_the_run_goes_on(tmp_path: Path, workers: int) -> None:
+def test_a_file_that_crashes_its_decoder_is_rejected_and_the_run_goes_on(
+        tmp_path: Path, workers: int, monkeypatch: pytest.MonkeyPatch) -> None:
     raw = tmp_path / "raw"
     _write_raw(raw, files=6, seconds=2.5)
-    hook = tmp_path / "hook"
-    hook.mkdir()
-    (hook / "sitecustomize.py").write_text(CRASH_HOOK, encoding="utf-8")
-    # The hook imports numpy before loam sets its BLAS thread defaults (pipeline/cli.py);
-    # both runs set them here, so that only the crash differs between them.
-    blas = {name: "1" for name in BLAS_THREAD_VARIABLES}
-    env = {**os.environ, **blas, "PYTHONPATH": os.pathsep.join([str(hook), str(REPO)])}
-
     out = tmp_path / "out"  # the same path for both runs: the summaries name it
-    run = _prepare(raw, out, workers=workers, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
-    _, stderr = run.communicate(timeout=300)
-    assert run.returncode == 0, stderr
+    argv = ["prepare", str(raw), str(out), "--workers", str(workers), "--no-progress"]
+    with monkeypatch.context() as patch:
+        patch.setattr("pipeline.audio.condition_file", condition_crashing_on_one_file)
+        assert main(argv) == 0
 
     rejected = pq.read_table(out / "manifests" / "rejected.parquet").to_pylist()
     (row,) = [r for r in rejected if r["source_path"] == CRASHING]
@@ -112,13 +109,30 @@ def test_a_file_that_crashes_its_decoder_is_rejected_and_the_run_goes_on(tmp_pat
     assert CRASHING not in audio and len(set(audio)) == 5
     crashed = _compared(out)
 
-    # The same dump without that file, and without the hook: the same outputs.
+    # The same dump without that file, and no crash: the same outputs.
     shutil.rmtree(out)
     (raw / CRASHING).unlink()
-    assert _prepare(raw, out, workers=2, env={**os.environ, **blas}).wait(timeout=300) == 0
+    assert main(argv) == 0
     assert crashed == _compared(out)
     others = [r for r in rejected if r["source_path"] != CRASHING]
     assert others == pq.read_table(out / "manifests" / "rejected.parquet").to_pylist()
+
+
+def test_a_file_that_crashes_the_probe_is_rejected_at_ingest_and_not_remembered(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    raw, out = tmp_path / "raw", tmp_path / "out"
+    _write_raw(raw, files=6, seconds=1.0)
+    cfg = build_config({})
+    with monkeypatch.context() as patch:
+        patch.setattr("pipeline.ingest.probe_file", probe_crashing_on_one_file)
+        Runner(raw, out, cfg, workers=2).prepare(("ingest",))
+    (row,) = pq.read_table(out / "stages" / "ingest.rejects.parquet").to_pylist()
+    assert row["source_path"] == CRASHING and row["reason"] == "decoder_crashed"
+    assert row["detail"].startswith(f"{CRASHING}: the worker process probing it died (killed by signal SIGSEGV")
+    assert CRASHING not in pq.read_table(out / "stages" / "ingest.parquet").column("source_path").to_pylist()
+    # The crash may have been the library's fault: the next run probes the file again.
+    Runner(raw, out, cfg, workers=2).prepare(("ingest",))
+    assert CRASHING in pq.read_table(out / "stages" / "ingest.parquet").column("source_path").to_pylist()
 
 
 def _children(pid: int) -> set[int]:
@@ -171,7 +185,7 @@ def test_a_killed_run_leaves_no_worker_behind(tmp_path: Path) -> None:
     # What the out-of-memory killer or a batch scheduler's pre-emption does to `loam`.
     raw, out = tmp_path / "raw", tmp_path / "out"
     _write_raw(raw, files=16, seconds=60)  # several seconds of audio-stage work on 2 workers
-    driver = _prepare(raw, out, workers=2, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    driver = _prepare(raw, out, workers=2)
     workers: dict[int, str | None] = {}
     try:
         # Mid audio stage: a first clip is written and the pool's workers are running.
