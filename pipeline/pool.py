@@ -123,20 +123,21 @@ def _marked(func: Callable[[Any], Any], index: int, item: Any) -> Any:
 def describe_exit(exitcode: int | None) -> str:
     """A phrase for how a worker process ended, from its exit code.
 
+    Only the signal's name: it goes into reject details, which must read the same on
+    every platform (``signal.strsignal`` words differ between Linux and macOS).
+
     Examples
     --------
     >>> describe_exit(-11)
-    'killed by signal SIGSEGV (Segmentation fault)'
+    'killed by signal SIGSEGV'
     >>> describe_exit(3)
     'exited with status 3'
     """
     if exitcode is not None and exitcode < 0:
         try:
-            sig = signal.Signals(-exitcode)
+            return f"killed by signal {signal.Signals(-exitcode).name}"
         except ValueError:
             return f"killed by signal {-exitcode}"
-        text = signal.strsignal(sig)
-        return f"killed by signal {sig.name}" + (f" ({text})" if text else "")
     return f"exited with status {exitcode}"
 
 
