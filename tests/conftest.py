@@ -1,4 +1,5 @@
-"""Shared fixtures: small raw dumps generated in the test, never committed binaries."""
+"""Shared fixtures: small raw dumps generated in the test; the only committed audio is the
+demo corpus and the speech in tests/fixtures/ (see tests/fixtures/make_speech.py)."""
 
 from __future__ import annotations
 
@@ -11,6 +12,7 @@ import pytest
 
 REPO = Path(__file__).resolve().parent.parent
 DEMO = REPO / "demo_corpus"
+FIXTURES = REPO / "tests" / "fixtures"
 
 
 def tone(seconds: float, sample_rate: int, *, freq_hz: float = 220.0, level: float = 0.3, channels: int = 1) -> np.ndarray:
@@ -29,6 +31,36 @@ def speechlike(seconds: float, sample_rate: int, *, seed: int, channels: int = 1
     envelope = np.clip(np.sin(2 * np.pi * 3.0 * t), 0, None) * (t > 0.3) * (t < seconds - 0.3)
     x = (pulse * envelope * level).astype(np.float32)
     return np.stack([x] * channels, axis=1) if channels > 1 else x
+
+
+# The clean recordings of the demo corpus (espeak-ng speech with digitally silent edges)
+# and what they say (demo_corpus/generate.py).
+DEMO_CLEAN = {
+    "heron/heron_08.wav": "Nobody ever paid the fare on a Sunday.",
+    "otter/otter_08.ogg": "My aunt could tie a knot faster than anyone in the village.",
+    "sedge/sedge_08.ogg": "Eels hid under the cut reeds in the ditches.",
+    "alder/alder_08.ogg": "We washed the plates in rainwater from the roof.",
+    "plover/plover_08.flac": "Supplies came out by boat once a fortnight.",
+    "wren/wren_08.wav": "My grandmother wrote every recipe on a card.",
+}
+# What the speech fixtures say (tests/fixtures/make_speech.py).
+FIXTURE_SPEECH = {
+    "harbour": "Half the harbour froze that March, and the ferry stayed tied up until spring.",
+    "salt": "Fifty sacks of salt sat on the shelf beside the door of the net loft.",
+    "thistle": "Thistles grew along the path from the forge to the old sluice.",
+}
+
+
+def speech_only(path: Path, *, threshold_db: float = -60.0) -> tuple[np.ndarray, int]:
+    """A clean recording averaged to mono and cut to its speech: from the first to the
+    last sample within ``threshold_db`` of the peak (its edges are digital silence, so
+    any threshold far below speech finds the same edges to within a few samples)."""
+    import soundfile as sf
+
+    samples, rate = sf.read(path, dtype="float64", always_2d=True)
+    mono = samples.mean(axis=1)
+    loud = np.flatnonzero(np.abs(mono) >= np.abs(mono).max() * 10 ** (threshold_db / 20))
+    return mono[loud[0]:loud[-1] + 1], rate
 
 
 def tree_hash(root: Path) -> dict[str, str]:
@@ -78,3 +110,4 @@ def demo_build(tmp_path_factory: pytest.TempPathFactory) -> Path:
     Runner(DEMO, out, load_config(DEMO / "corpus.toml"), workers=2).prepare()
     write_report(out)
     return out
+

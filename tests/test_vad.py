@@ -1,11 +1,8 @@
-"""Voice activity: webrtcvad's documented limits, no-speech signals, trimming real
-synthetic speech (espeak-ng), and the smoothing rules of pipeline.vad."""
+"""Voice activity: webrtcvad's documented limits, no-speech signals, the detector's
+start-up, trimming synthetic speech (espeak-ng, from the committed demo corpus), and the
+smoothing rules of pipeline.vad. tests/test_trimming.py checks trimming on a whole set."""
 
 from __future__ import annotations
-
-import shutil
-import subprocess
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -15,6 +12,7 @@ import webrtcvad
 
 from pipeline.errors import ParameterError
 from pipeline.vad import (
+    LEAD_IN_MS,
     NOISE_FLATNESS,
     VAD_FRAME_MS,
     VAD_SAMPLE_RATES,
@@ -27,17 +25,16 @@ from pipeline.vad import (
     trim_frames,
     trim_span,
 )
+from tests.conftest import DEMO
 
 RATE = 16000
 DEFAULTS = {"min_speech_ms": 90, "min_pause_ms": 150, "hangover_ms": 90}  # schemas/config.schema.json defaults
 
 
-def speak(text: str, path: Path) -> tuple[np.ndarray, int]:
-    if shutil.which("espeak-ng") is None:
-        pytest.skip("espeak-ng is not installed")
-    subprocess.run(["espeak-ng", "-w", str(path), text], check=True, capture_output=True)
-    samples, rate = sf.read(path, dtype="float32")
-    return samples, rate
+def demo_speech(rel: str) -> tuple[np.ndarray, int]:
+    """A clean clip of the demo corpus (espeak-ng speech, digitally silent edges), mono."""
+    samples, rate = sf.read(DEMO / rel, dtype="float32", always_2d=True)
+    return samples.mean(axis=1), rate
 
 
 def speech_ratio(samples: np.ndarray, *, sample_rate: int = RATE, aggressiveness: int = 2) -> float:
@@ -89,9 +86,9 @@ def test_white_noise_flatness_is_near_its_analytic_value():
     assert spectral_flatness(np.zeros((1, 480)))[0] == 0.0
 
 
-def test_trim_keeps_all_speech_and_drops_most_silence(tmp_path: Path):
-    voice, rate = speak("the lighthouse keeper counts the boats that pass the point each morning",
-                        tmp_path / "voice.wav")
+def test_trim_keeps_all_speech_and_drops_most_silence():
+    # "My grandmother wrote every recipe on a card." (demo_corpus/generate.py), 16 kHz WAV.
+    voice, rate = demo_speech("wren/wren_08.wav")
     voice = soxr.resample(voice, rate, RATE)
     active = np.flatnonzero(np.abs(voice) > 1e-3)
     lead_s, tail_s = 1.0, 1.5
@@ -111,6 +108,50 @@ def test_trim_keeps_all_speech_and_drops_most_silence(tmp_path: Path):
     assert speech_start - start <= 0.15 + 0.06
     assert end - speech_end <= 0.15 + 0.09 + 0.06
     assert (speech_start - start) + (end - speech_end) < 0.25 * (lead_s + tail_s)
+
+
+def band_limited_noise(level_dbfs: float, *, source_rate: int, seconds: float, seed: int) -> np.ndarray:
+    """White noise at ``source_rate``, resampled to 16 kHz as the audio stage does."""
+    noise = np.random.default_rng(seed).standard_normal(int(seconds * source_rate)) * 10 ** (level_dbfs / 20)
+    return soxr.resample(noise, source_rate, RATE)
+
+
+@pytest.mark.parametrize(("source_rate", "level_dbfs"),
+                         [(8000, -70), (8000, -60), (8000, -50), (44100, -60), (44100, -50)])
+def test_the_detector_start_up_is_not_speech(level_dbfs: int, source_rate: int):
+    # webrtcvad calls the first frames of a stream speech while its noise model
+    # settles; white noise from an 8 or 44.1 kHz source, resampled, is not flat enough
+    # for the noise veto, so without a lead-in that start-up survives min_speech_ms.
+    noise = band_limited_noise(level_dbfs, source_rate=source_rate, seconds=2.0, seed=level_dbfs + 100)
+    bare = VoiceActivityStream(sample_rate=RATE, frame_ms=30, aggressiveness=2, lead_in_ms=0)
+    bare.push(noise)
+    startup = smooth_decisions(bare.result().decisions, frame_ms=30, **DEFAULTS)
+    assert startup[:6].any()  # the fault the lead-in exists for is real
+    primed = frame_decisions(noise, sample_rate=RATE, frame_ms=30, aggressiveness=2)
+    assert not smooth_decisions(primed.decisions, frame_ms=30, **DEFAULTS).any()
+
+
+def test_speech_at_the_very_start_is_still_speech():
+    # The lead-in mirrors the first LEAD_IN_MS, so speech that starts at sample 0 looks
+    # continuous to the detector and its first frames stay speech.
+    voice, rate = demo_speech("wren/wren_08.wav")
+    active = np.flatnonzero(np.abs(voice) > 1e-3)
+    voice = voice[active[0]:]
+    speech = smooth_decisions(frame_decisions(voice, sample_rate=rate, frame_ms=30, aggressiveness=2).decisions,
+                              frame_ms=30, **DEFAULTS)
+    assert speech[:2].all()
+
+
+@pytest.mark.parametrize("seconds", [0.0, 0.05, LEAD_IN_MS / 1000 - 0.01, LEAD_IN_MS / 1000, 0.5])
+def test_signals_near_the_lead_in_length_give_every_frame(seconds: float):
+    signal = band_limited_noise(-40, source_rate=8000, seconds=seconds, seed=3)
+    stream = VoiceActivityStream(sample_rate=RATE, frame_ms=10, aggressiveness=2)
+    for piece in np.array_split(signal, 7):
+        stream.push(piece)
+    result = stream.result()
+    assert len(result.decisions) == len(result.energy_db) == len(signal) // 160
+    np.testing.assert_array_equal(result.decisions, frame_decisions(signal, sample_rate=RATE, frame_ms=10,
+                                                                    aggressiveness=2).decisions)
 
 
 def test_streaming_decisions_equal_one_shot():
@@ -186,5 +227,7 @@ def test_padding_never_passes_the_file_edges():
 def test_bad_parameters_name_themselves():
     with pytest.raises(ParameterError, match="aggressiveness=4"):
         VoiceActivityStream(sample_rate=RATE, frame_ms=30, aggressiveness=4)
+    with pytest.raises(ParameterError, match="lead_in_ms=-1"):
+        VoiceActivityStream(sample_rate=RATE, frame_ms=30, aggressiveness=2, lead_in_ms=-1)
     with pytest.raises(ParameterError, match="hangover_ms=-1"):
         smooth_decisions(np.zeros(3, bool), frame_ms=30, min_speech_ms=0, min_pause_ms=0, hangover_ms=-1)
