@@ -1,7 +1,8 @@
 """The audio stage end to end on a small generated raw folder.
 
-Speech is synthesised with espeak-ng; every other fault (NaN, clipping, silence, a
-long transcribed take, a long untranscribed session) is made from it with numpy.
+Speech is committed espeak-ng speech (tests/fixtures/speech/ and two clean demo corpus
+clips, at 22.05 kHz and cut to their speech); every other fault (NaN, clipping, silence,
+a long transcribed take, a long untranscribed session) is made from it with numpy.
 Written clips are re-read with soundfile and re-measured with pyloudnorm."""
 
 from __future__ import annotations
@@ -9,7 +10,6 @@ from __future__ import annotations
 import hashlib
 import logging
 import shutil
-import subprocess
 from pathlib import Path
 from typing import Any
 
@@ -26,29 +26,20 @@ from pipeline.config import build_config
 from pipeline.manifest import table_from_rows, validate_table
 from pipeline.quality import effective_bandwidth_hz, encode_fingerprint, fingerprint
 from pipeline.stage import StageContext
+from tests.conftest import DEMO, DEMO_CLEAN, FIXTURE_SPEECH, FIXTURES, speech_only
 
-LINES = [
-    "the ferry leaves the harbour at seven and comes back before the evening tide",
-    "nets are mended on the quay while the gulls wait on the warm stones",
-    "a lamp is lit in the tower when the fog rolls in from the open sea",
-    "the baker sends bread to the island every morning on the first boat",
-    "children count the buoys that bob along the channel near the point",
-]
+VOICES = {FIXTURES / "speech" / f"{name}.flac": text for name, text in FIXTURE_SPEECH.items()}
+VOICES.update({DEMO / rel: DEMO_CLEAN[rel] for rel in ("plover/plover_08.flac", "wren/wren_08.wav")})
+LINES = list(VOICES.values())
 SPEECH_RATE = 22050  # what espeak-ng writes
 
 
 @pytest.fixture(scope="module")
-def voices(tmp_path_factory: pytest.TempPathFactory) -> list[np.ndarray]:
-    if shutil.which("espeak-ng") is None:
-        pytest.skip("espeak-ng is not installed")
-    folder = tmp_path_factory.mktemp("voices")
+def voices() -> list[np.ndarray]:
     out = []
-    for i, line in enumerate(LINES):
-        path = folder / f"{i}.wav"
-        subprocess.run(["espeak-ng", "-s", "150", "-w", str(path), line], check=True, capture_output=True)
-        samples, rate = sf.read(path, dtype="float64")
-        assert rate == SPEECH_RATE
-        out.append(samples)
+    for path in VOICES:
+        samples, rate = speech_only(path)
+        out.append(samples if rate == SPEECH_RATE else soxr.resample(samples, rate, SPEECH_RATE))
     return out
 
 
@@ -88,7 +79,8 @@ def raw(voices: list[np.ndarray], tmp_path_factory: pytest.TempPathFactory) -> P
     broken = at_rate(voices[3], 16000).astype(np.float32)
     broken[5000] = np.nan
     sf.write(root / "ben/broken_float.wav", broken, 16000, subtype="FLOAT")
-    sf.write(root / "ben/hot.wav", np.clip(6 * at_rate(voices[4], 16000), -1, 1), 16000, subtype="PCM_16")
+    loud = at_rate(voices[4], 16000)
+    sf.write(root / "ben/hot.wav", np.clip(6 * loud / np.abs(loud).max(), -1, 1), 16000, subtype="PCM_16")
     sf.write(root / "ben/quiet.wav", silence(2.0, 16000), 16000, subtype="PCM_16")
     sf.write(root / "cara/read25.ogg", session(voices, seconds=25, rate=16000, pauses=[0.3]), 16000)
     (root / "cara/read25.txt").write_text(" ".join(LINES) + "\n", encoding="utf-8")

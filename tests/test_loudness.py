@@ -3,8 +3,6 @@
 from __future__ import annotations
 
 import math
-import shutil
-import subprocess
 
 import numpy as np
 import pyloudnorm
@@ -20,6 +18,7 @@ from pipeline.loudness import (
     sample_peak_dbfs,
     true_peak_dbfs,
 )
+from tests.conftest import FIXTURE_SPEECH, FIXTURES
 
 # ITU-R BS.1770-4 (10/2015), Annex 1, Table 1 (stage 1, pre-filter) and Table 2 (stage 2,
 # RLB high pass), 48 kHz. Values from memory; test_published_table_is_self_consistent checks
@@ -280,25 +279,13 @@ def test_gated_noise_matches_pyloudnorm() -> None:
     compare_with_pyloudnorm(clip, 16_000)
 
 
-SPEECH_TEXT = (
-    "The ferry to the northern islands leaves at dawn. "
-    "Pack a warm coat, because the wind on the water is sharp, "
-    "and the crossing takes most of the morning."
-)
-
-
 @pytest.fixture(scope="module")
-def speech(tmp_path_factory: pytest.TempPathFactory) -> tuple[np.ndarray, int]:
-    """Synthetic speech from espeak-ng, with natural pauses between phrases."""
-    espeak = shutil.which("espeak-ng")
-    if espeak is None:
-        pytest.skip("espeak-ng is not installed")
-    path = tmp_path_factory.mktemp("speech") / "ferry.wav"
-    subprocess.run(
-        [espeak, "-w", str(path), "-s", "150", SPEECH_TEXT], check=True, capture_output=True
-    )
-    samples, sample_rate = soundfile.read(path, dtype="float64")
-    return samples, sample_rate
+def speech() -> tuple[np.ndarray, int]:
+    """espeak-ng speech (tests/fixtures/speech/, 22.05 kHz), its lines joined with the
+    synthesiser's own pauses between them."""
+    parts = [soundfile.read(FIXTURES / "speech" / f"{name}.flac", dtype="float64") for name in FIXTURE_SPEECH]
+    assert {rate for _, rate in parts} == {22050}
+    return np.concatenate([samples for samples, _ in parts]), 22050
 
 
 @pytest.mark.parametrize("sample_rate", [16_000, 48_000, None])
