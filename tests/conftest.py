@@ -111,3 +111,12 @@ def demo_build(tmp_path_factory: pytest.TempPathFactory) -> Path:
     write_report(out)
     return out
 
+
+def pytest_sessionfinish(session: pytest.Session, exitstatus: int) -> None:
+    """A skipped test fails the run: `make test` must run every test (DEVELOPERS.md)."""
+    reporter = session.config.pluginmanager.get_plugin("terminalreporter")
+    skipped = len(reporter.stats.get("skipped", [])) if reporter is not None else 0
+    if skipped and exitstatus == 0:
+        reporter.write("\n")
+        reporter.write_sep("=", f"{skipped} skipped, and every test must run: see the SKIPPED lines", red=True)
+        session.exitstatus = pytest.ExitCode.TESTS_FAILED
