@@ -21,11 +21,9 @@ Raw files are only ever opened for reading.
 from __future__ import annotations
 
 import contextlib
-import functools
 import io
 import math
 import os
-import sys
 from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -34,6 +32,7 @@ from typing import Any
 import numpy as np
 
 from pipeline.cache import FileCache, cache_key
+from pipeline.codeversion import code_version
 from pipeline.config import AudioConfig
 from pipeline.decode import (
     PCM16_SCALE,
@@ -49,7 +48,7 @@ from pipeline.fsio import remove_stale_temporaries, sha256_bytes, write_bytes_at
 from pipeline.manifest import ManifestBuilder
 from pipeline.parallel import each_result
 from pipeline.segment import segment_id, split_frames
-from pipeline.stage import StageContext, StageResult, code_version, reject
+from pipeline.stage import StageContext, StageResult, reject
 from pipeline.vad import (
     ANALYSIS_SAMPLE_RATE,
     VoiceActivityStream,
@@ -62,10 +61,6 @@ from pipeline.vad import (
 NAME = "audio"
 INPUTS = ("ingest",)
 CONFIG_SECTIONS = ("audio",)
-CODE_VERSION = "1"
-# Modules whose code shapes this stage's output; their source is hashed into the
-# stage's code version (pipeline.stage.code_version).
-CODE_DEPENDS = ("pipeline.decode", "pipeline.vad", "pipeline.segment", "pipeline.loudness", "pipeline.quality")
 
 OUTPUT_FORMATS = {"flac": "FLAC", "wav": "WAV"}
 AUDIO_DIR = "audio"
@@ -543,14 +538,10 @@ def prepare_driver(config: Any) -> None:
     warm_up(config.audio)
 
 
-@functools.cache
-def _code_version() -> str:
-    return code_version(sys.modules[__name__])
-
-
 def _cache_key(row: dict[str, Any], section: dict[str, Any]) -> str:
     # source_id and source_path are in the key because they are copied into the rows.
-    return cache_key("audio", row["sha256"], section, _code_version(), row["source_id"], row["source_path"],
+    # The stage's code version: any edit within its reach misses every entry.
+    return cache_key("audio", row["sha256"], section, code_version(NAME), row["source_id"], row["source_path"],
                      row["speaker"], row["transcript"] is not None)
 
 

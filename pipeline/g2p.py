@@ -51,8 +51,6 @@ from pipeline.normalise import fold
 BACKENDS = ("english", "lexicon", "graphemes")
 OOV_POLICIES = ("reject", "graphemes")
 SOURCES = ("override", "cmudict", "neural", "lexicon", "graphemes")
-# Bump when the way predictions are made changes, so old cache files are not reused.
-NEURAL_CACHE_VERSION = 1
 # What g2p-en's model can read: its grapheme table is a-z, and CMUdict spells
 # words with the same letters plus apostrophes.
 ENGLISH_LETTERS = frozenset("abcdefghijklmnopqrstuvwxyz'")
@@ -436,12 +434,14 @@ class NeuralModel:
         return tuple(phones)
 
 
-def neural_cache_name() -> str:
-    """File name of the prediction cache: a hash of the model package, checkpoint and method."""
+def neural_cache_name(*, code_version: str) -> str:
+    """File name of the prediction cache: a hash of the checkpoint and of ``code_version``,
+    the code version of the stage that uses it (pipeline.codeversion: it covers this
+    module, the g2p-en package's version and everything else that makes predictions)."""
     folder = _g2p_en_dir()
     checkpoint = folder / "checkpoint20.npz"
     digest = sha256_file(checkpoint) if checkpoint.exists() else ""
-    return cache_key("g2p-en", _version("g2p-en"), digest, NEURAL_CACHE_VERSION)[:16] + ".tsv"
+    return cache_key("g2p-en", code_version, digest)[:16] + ".tsv"
 
 
 def _version(distribution: str) -> str:

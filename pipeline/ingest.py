@@ -22,6 +22,7 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.cache import FileCache, cache_key
+from pipeline.codeversion import code_version
 from pipeline.errors import DataError
 from pipeline.fsio import sha256_file
 from pipeline.manifest import table_from_rows
@@ -31,7 +32,6 @@ from pipeline.stage import StageContext, StageResult, reject
 NAME = "ingest"
 INPUTS: tuple[str, ...] = ()
 CONFIG_SECTIONS = ("ingest",)
-CODE_VERSION = "1"
 # The raw folder is its input: it is rescanned every run (unchanged files hit the probe cache).
 ALWAYS_RUN = True
 
@@ -268,10 +268,12 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str,
     results: list[dict[str, Any] | None] = []
     keys: list[str | None] = []
     todo: list[int] = []
+    # The stage's code version: any edit within its reach probes every file again.
+    code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
     for i, rel in enumerate(paths):
         try:
             st = os.stat(raw / rel)
-            key = cache_key("probe", CODE_VERSION, rel, st.st_size, st.st_mtime_ns, st.st_ino)
+            key = cache_key("probe", code, rel, st.st_size, st.st_mtime_ns, st.st_ino)
         except OSError:
             key = None
         hit = cache.get(key) if key else None

@@ -18,6 +18,7 @@ from typing import Any
 import pyarrow as pa
 
 from pipeline import __version__, snapshot
+from pipeline.codeversion import code_version
 from pipeline.config import Config, canonical_json
 from pipeline.errors import DataError, UsageError
 from pipeline.fsio import remove_stale_temporaries, write_text_atomic
@@ -29,7 +30,7 @@ from pipeline.manifest import (
     validate_table,
     write_manifest,
 )
-from pipeline.stage import StageContext, StageResult, code_version
+from pipeline.stage import StageContext, StageResult
 
 STAGE_ORDER = ("ingest", "audio", "text", "split")
 REJECTED_PATH = "manifests/rejected.parquet"
@@ -70,11 +71,12 @@ def _stat_of(out: Path, rels: list[str]) -> list[list[Any]]:
     return state
 
 
-def params_sha256(module: ModuleType, config: Config) -> str:
-    """Hash of everything in the config and code that a stage's output depends on."""
+def params_sha256(module: ModuleType, config: Config, *, cache_dir: Path | None = None) -> str:
+    """Hash of everything in the config and code that a stage's output depends on
+    (``cache_dir`` keeps what the code version parsed, see pipeline.codeversion)."""
     parts = {
         "stage": module.NAME,
-        "code_version": code_version(module),
+        "code_version": code_version(module.NAME, cache_dir=cache_dir),
         "loam_version": __version__,
         "seed": config.seed,
         "sections": {s: config.section(s) for s in module.CONFIG_SECTIONS},
@@ -219,7 +221,7 @@ class Runner:
         meta = {
             "version": __version__,
             "stage": module.NAME,
-            "code_version": code_version(module),
+            "code_version": code_version(module.NAME),
             "config_sha256": self.config.sha256(),
             "params_sha256": params,
             "inputs_sha256": inputs,
@@ -239,7 +241,7 @@ class Runner:
         start = time.perf_counter()
         inputs = {n: self._load_input(n) for n in module.INPUTS}
         ctx = self._context(inputs, meanwhile)
-        params = params_sha256(module, self.config)
+        params = params_sha256(module, self.config, cache_dir=ctx.cache_dir if ctx.use_cache else None)
         in_hash = inputs_sha256(self.out, module, ctx, self.watched)
         if self._up_to_date(module, params, in_hash):
             self._refresh_config_hash(module)

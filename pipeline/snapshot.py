@@ -68,13 +68,39 @@ def _digest(value: Any) -> str:
 
 
 def code_digest() -> str:
-    """Hash of loam's own Python sources and JSON Schemas (what shapes the output)."""
+    """Hash of everything any stage's code version covers (pipeline.codeversion), and
+    more: all of loam's Python sources, data files and JSON Schemas, the installed
+    distributions and Python's version. A superset, so that no change which would
+    rerun a stage can pass for no change."""
     digest = hashlib.sha256()
-    for folder, pattern in ((_PACKAGE, "*.py"), (_PACKAGE / "schemas", "*.json")):
-        for path in sorted(folder.glob(pattern)):
-            digest.update(path.name.encode() + b"\0" + path.read_bytes())
+    for rel in _package_files():
+        digest.update(rel.encode() + b"\0" + (_PACKAGE / rel).read_bytes())
     digest.update(sys.version.encode())
+    digest.update(json.dumps(_distributions()).encode())
     return digest.hexdigest()
+
+
+def _package_files() -> list[str]:
+    """Loam's sources (in every subpackage), data files and schemas, relative to the package."""
+    found: list[str] = []
+    for folder, dirs, files in os.walk(_PACKAGE):
+        dirs[:] = [d for d in dirs if d.isidentifier() and d != "__pycache__"]
+        rel = os.path.relpath(folder, _PACKAGE)
+        found += [os.path.normpath(os.path.join(rel, f)) for f in files if f.endswith(".py")]
+    for sub in ("data", "schemas"):
+        with contextlib.suppress(FileNotFoundError):
+            found += [f"{sub}/{entry.name}" for entry in os.scandir(_PACKAGE / sub) if entry.is_file()]
+    return sorted(set(found))
+
+
+def _distributions() -> list[str]:
+    """The installed distributions and their versions, from the names of the
+    ``<name>-<version>.dist-info`` folders on sys.path: any upgrade changes it."""
+    names: list[str] = []
+    for entry in sys.path:
+        with contextlib.suppress(OSError):
+            names += sorted(e.name for e in os.scandir(entry or ".") if e.name.endswith((".dist-info", ".egg-info")))
+    return names
 
 
 def invocation_digest(*, raw: Path, out: Path, config_path: Path | None, overrides: dict[str, Any],

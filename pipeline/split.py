@@ -48,8 +48,6 @@ from pipeline.stage import StageContext, StageResult, reject
 NAME = "split"
 INPUTS = ("audio", "text")
 CONFIG_SECTIONS = ("split", "quality")
-CODE_VERSION = "1"
-CODE_DEPENDS = ("pipeline.selection", "pipeline.ledger", "pipeline.quality", "pipeline.gates")
 # The ledger is an input the runner cannot hash: run every time.
 # The ledger is an input the stage rewrites itself: the runner hashes it after the
 # run (INPUTS_AFTER_RUN), so a rerun with nothing changed is reused, and --fresh

@@ -5,8 +5,11 @@ A stage is a module under ``pipeline/`` exposing:
 ``NAME``            the stage name (``OUT/stages/<NAME>.parquet`` is its manifest);
 ``INPUTS``          names of the upstream stages whose manifests it reads;
 ``CONFIG_SECTIONS`` config sections its output depends on (plus ``seed``);
-``CODE_VERSION``    bumped whenever a code change alters its output;
 ``run(ctx) -> StageResult``.
+
+Its code version is derived, never declared: ``pipeline.codeversion`` hashes every
+package module the stage can execute (found from the imports in the sources), the data
+files and schemas they use, and the versions of the libraries they import.
 
 Optional: ``prepare_driver(config)`` loads into this process what the stage's work
 will need (imports, tables), so that workers forked later inherit it; the runner calls
@@ -84,18 +87,3 @@ def reject(stage: str, source_path: str, reason: str, detail: str, clip_id: str 
     """One row for ``rejected.parquet``: a reason code and a sentence a person can act on."""
     return {"source_path": source_path, "reason": reason, "detail": detail, "stage": stage, "clip_id": clip_id}
 
-
-def code_version(module: Any) -> str:
-    """The stage's ``CODE_VERSION`` plus a hash of its source and of the modules it
-    lists in ``CODE_DEPENDS``, so a code change can never reuse a stale cache entry
-    even when nobody remembered to bump the version."""
-    import hashlib
-    import importlib.util
-
-    digest = hashlib.sha256(str(module.CODE_VERSION).encode())
-    for name in (module.__name__, *getattr(module, "CODE_DEPENDS", ())):
-        spec = importlib.util.find_spec(name)
-        if spec is None or spec.origin is None:
-            raise RuntimeError(f"{module.__name__}: CODE_DEPENDS names {name!r}, which is not importable")
-        digest.update(name.encode() + b"\0" + Path(spec.origin).read_bytes())
-    return f"{module.CODE_VERSION}+{digest.hexdigest()[:12]}"

@@ -29,6 +29,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from pipeline.codeversion import code_version
 from pipeline.config import Config, TextConfig
 from pipeline.fsio import sha256_file, write_text_atomic
 from pipeline.g2p import (
@@ -46,7 +47,6 @@ from pipeline.stage import StageContext, StageResult, reject
 NAME = "text"
 INPUTS = ("ingest",)
 CONFIG_SECTIONS = ("text",)
-CODE_VERSION = "1"
 MAIN_MANIFEST = "stages/text.parquet"
 PREDICTED_LEXICON = "lexicon/predicted.tsv"
 _SHOWN_CHARS = 60
@@ -78,7 +78,7 @@ def build_pronouncer(config: Config, *, cache_dir: Path | None) -> Pronouncer:
     paths = _lexicon_paths(config)
     cache_path = None
     if cfg.backend == "english" and cache_dir is not None:
-        cache_path = cache_dir / "g2p" / neural_cache_name()
+        cache_path = cache_dir / "g2p" / neural_cache_name(code_version=code_version(NAME, cache_dir=cache_dir))
     return Pronouncer(
         backend=cfg.backend,
         lexicon=read_lexicon(paths["lexicon"]) if "lexicon" in paths else None,
