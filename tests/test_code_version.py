@@ -1,0 +1,237 @@
+"""Code versions (pipeline.codeversion): a stage's version covers every package module
+it can execute, found from the imports in the sources, with the data files, schemas and
+libraries they use; an edit within a stage's reach reruns it and misses its per-file
+caches, an edit outside leaves it reused."""
+
+from __future__ import annotations
+
+import importlib.metadata
+import json
+import os
+import re
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pyarrow.parquet as pq
+import pytest
+
+from pipeline import codeversion
+from pipeline.codeversion import code_version, library_version, stage_code
+from tests.conftest import REPO
+
+STAGES = ("ingest", "audio", "text", "split")
+
+
+@pytest.fixture(autouse=True)
+def _fresh() -> None:
+    # Versions are computed once per process; these tests edit sources between calls.
+    codeversion.forget()
+
+
+def _copy_package(dest: Path) -> Path:
+    """A copy of the repository's pipeline/ and schemas/ under ``dest``; returns the package folder."""
+    shutil.copytree(REPO / "schemas", dest / "schemas")
+    shutil.copytree(REPO / "pipeline", dest / "pipeline", symlinks=True,
+                    ignore=shutil.ignore_patterns("__pycache__"))
+    return dest / "pipeline"
+
+
+def _versions(package: Path, cache_dir: Path | None = None) -> dict[str, str]:
+    codeversion.forget()
+    return {s: code_version(s, package_dir=package, cache_dir=cache_dir) for s in STAGES}
+
+
+def _write(path: Path, files: dict[str, str]) -> Path:
+    for rel, text in files.items():
+        (path / rel).parent.mkdir(parents=True, exist_ok=True)
+        (path / rel).write_text(text, encoding="utf-8")
+    return path
+
+
+def test_every_form_of_import_is_followed(tmp_path: Path) -> None:
+    package = _write(tmp_path / "pkg", {
+        "__init__.py": "CONSTANT = 1\n",
+        "stagex.py": (
+            "import importlib\n"
+            "import pkg.a\n"
+            "from pkg import b, CONSTANT\n"
+            "from pkg.c import thing\n"
+            "from . import d\n"
+            "from .e import thing as other\n"
+            "def later():\n"
+            "    import pkg.f as f\n"
+            "    from .sub import h\n"
+            "    return importlib.import_module('pkg.g')\n"
+        ),
+        "a.py": "from pkg import j\n", "b.py": "", "c.py": "thing = 1\n", "d.py": "", "e.py": "thing = 2\n",
+        "f.py": "", "g.py": "", "j.py": "", "i.py": "",
+        "sub/__init__.py": "", "sub/h.py": "from .. import i\n",
+        "unused.py": "import pkg.stagex\n",
+    })
+    modules = dict(stage_code("stagex", package_dir=package).modules)
+    assert sorted(modules) == ["__init__.py", "a.py", "b.py", "c.py", "d.py", "e.py", "f.py", "g.py", "i.py",
+                               "j.py", "stagex.py", "sub/__init__.py", "sub/h.py"]
+
+
+def test_libraries_imported_or_located_are_versioned(tmp_path: Path) -> None:
+    package = _write(tmp_path / "pkg", {
+        "__init__.py": "",
+        "stagex.py": "import os\nimport importlib.util\ndef f():\n    import numpy\n"
+                     "    return importlib.util.find_spec('soxr')\n",
+    })
+    code = stage_code("stagex", package_dir=package)
+    # Reference: importlib.metadata, the standard library's reader of the same records.
+    assert code.libraries == (("numpy", f"numpy {importlib.metadata.version('numpy')}"),
+                              ("soxr", f"soxr {importlib.metadata.version('soxr')}"))
+
+
+def test_a_module_from_a_distribution_named_otherwise_is_found() -> None:
+    # webrtcvad is installed by a distribution of another name; packages_distributions()
+    # (the standard library's full mapping) is the reference.
+    (dist,) = importlib.metadata.packages_distributions()["webrtcvad"]
+    assert library_version("webrtcvad").split() == [dist.replace("-", "_"), importlib.metadata.version(dist)]
+
+
+def test_what_each_stage_reaches_in_this_package() -> None:
+    reach = {s: dict(stage_code(s).modules) for s in STAGES}
+    assert "normalise.py" in reach["text"] and "g2p.py" in reach["text"]
+    assert "iir.py" in reach["audio"] and "loudness.py" in reach["audio"]
+    assert "ledger.py" in reach["split"] and "selection.py" in reach["split"]
+    for s in STAGES:
+        assert {"__init__.py", f"{s}.py", "stage.py", "manifest.py"} <= set(reach[s])
+        assert not {"cli.py", "report.py", "validate.py", "runner.py"} & set(reach[s])
+    audio = dict(stage_code("audio").libraries)
+    assert {"numpy", "soxr", "soundfile", "webrtcvad"} <= set(audio)
+    assert dict(stage_code("text").data_files).keys() == {"data/abbreviations.tsv"}
+    assert dict(stage_code("split").schemas).keys() == {"schemas/rejected.schema.json", "schemas/subset.schema.json"}
+
+
+# (file edited in a copy of the package, how, the stages whose version must change)
+EDITS = [
+    ("normalise.py", ("} percent\"", "} per cent\""), {"text"}),
+    ("g2p.py", None, {"text"}),
+    ("data/abbreviations.tsv", None, {"text"}),
+    ("iir.py", None, {"audio"}),
+    ("vad.py", None, {"audio"}),
+    ("privacy.py", None, {"ingest"}),
+    ("ledger.py", None, {"split"}),
+    ("selection.py", None, {"split"}),
+    ("quality.py", None, {"audio", "split"}),
+    ("manifest.py", None, set(STAGES)),
+    ("__init__.py", None, set(STAGES)),
+    ("../schemas/text.schema.json", None, {"text"}),
+    ("../schemas/subset.schema.json", None, {"split"}),
+    ("../schemas/rejected.schema.json", None, set(STAGES)),
+    ("../schemas/config.schema.json", None, set()),
+    ("report.py", None, set()),
+    ("validate.py", None, set()),
+    ("cli.py", None, set()),
+]
+
+
+@pytest.mark.parametrize(("rel", "change", "expected"), EDITS, ids=[e[0] for e in EDITS])
+def test_an_edit_changes_exactly_the_versions_of_the_stages_that_reach_it(
+        rel: str, change: tuple[str, str] | None, expected: set[str], tmp_path: Path) -> None:
+    package = _copy_package(tmp_path)
+    before = _versions(package, tmp_path / "cache")
+    path = package / rel
+    text = path.read_text(encoding="utf-8")
+    if change is None:
+        text += "\n# edited\n" if path.suffix == ".py" else "\n"
+    else:
+        assert change[0] in text
+        text = text.replace(change[0], change[1], 1)
+    path.write_text(text, encoding="utf-8")
+    after = _versions(package, tmp_path / "cache")
+    assert {s for s in STAGES if after[s] != before[s]} == expected
+    # The facts kept in OUT/cache give what a fresh parse gives.
+    assert _versions(package) == after
+
+
+def test_a_damaged_facts_file_is_rebuilt(tmp_path: Path) -> None:
+    package = _copy_package(tmp_path)
+    fresh = _versions(package)
+    facts = tmp_path / "cache" / codeversion.FACTS_FILE
+    facts.parent.mkdir()
+    facts.write_text('{"extractor": 1, "modules": [', encoding="utf-8")
+    assert _versions(package, facts.parent) == fresh
+    assert json.loads(facts.read_text(encoding="utf-8"))["modules"]
+    # An entry whose hash matches but whose content is the wrong shape is parsed again.
+    data = json.loads(facts.read_text(encoding="utf-8"))
+    data["modules"] = {name: [entry[0], "x", 3] for name, entry in data["modules"].items()}
+    facts.write_text(json.dumps(data), encoding="utf-8")
+    assert _versions(package, facts.parent) == fresh
+
+
+def _prepare(src: Path, raw: Path, out: Path) -> str:
+    """``loam prepare`` run from the copied package; returns its log (stderr)."""
+    env = {**os.environ, "PYTHONPATH": str(src)}
+    done = subprocess.run([sys.executable, "-m", "pipeline", "prepare", str(raw), str(out), "--workers", "1",
+                           "--no-progress"], capture_output=True, text=True, cwd=src, env=env)
+    assert done.returncode == 0, done.stderr
+    return done.stderr
+
+
+def _reused(log: str) -> set[str]:
+    return {s for s in STAGES if re.search(rf"^.*\b{s}\s+reused: ", log, re.MULTILINE)}
+
+
+def _texts(out: Path) -> list[str]:
+    return pq.read_table(out / "stages/text.parquet")["norm_text"].to_pylist()
+
+
+def _edit(path: Path, old: str | None = None, new: str = "") -> None:
+    text = path.read_text(encoding="utf-8")
+    path.write_text(text + "\n# edited\n" if old is None else text.replace(old, new, 1), encoding="utf-8")
+
+
+@pytest.mark.slow
+def test_editing_a_helper_reruns_its_stage_and_only_its_stage(small_raw: Path, tmp_path: Path) -> None:
+    src = tmp_path / "src"
+    package = _copy_package(src)
+    env = {**os.environ, "PYTHONPATH": str(src)}
+    where = subprocess.run([sys.executable, "-c", "import pipeline; print(pipeline.__file__)"],
+                           capture_output=True, text=True, cwd=src, env=env, check=True).stdout
+    assert Path(where.strip()).parent == package
+    (small_raw / "spk_a" / "a1.txt").write_text("up 40% on the day\n", encoding="utf-8")
+    out = tmp_path / "out"
+    _prepare(src, small_raw, out)
+    assert "up forty percent on the day" in _texts(out)
+    audio_bytes = (out / "stages/audio.parquet").read_bytes()
+
+    # The number words: the text stage runs again and says "per cent"; audio is reused.
+    _edit(package / "normalise.py", '} percent"', '} per cent"')
+    log = _prepare(src, small_raw, out)
+    assert _reused(log) == {"audio"}
+    assert "up forty per cent on the day" in _texts(out)
+    assert (out / "stages/audio.parquet").read_bytes() == audio_bytes
+
+    # A filter helper of audio's: audio runs and conditions every file again (its cache
+    # missed); text is reused. Split runs too: audio's manifest records its new code version.
+    _edit(package / "iir.py")
+    log = _prepare(src, small_raw, out)
+    assert _reused(log) == {"text"}
+    assert re.search(r"audio: [1-9]\d* files processed, 0 reused from cache", log)
+
+    # An ingest-only helper: every file is probed again. Its manifest records the new code
+    # version, so the later stages run, but audio's per-file cache still holds.
+    _edit(package / "privacy.py")
+    log = _prepare(src, small_raw, out)
+    assert re.search(r"ingest: [1-9]\d* files probed, 0 reused from cache", log)
+    assert re.search(r"audio: 0 files processed, [1-9]\d* reused from cache", log)
+
+    # The split ledger's module: split runs, nothing else.
+    _edit(package / "ledger.py")
+    log = _prepare(src, small_raw, out)
+    assert _reused(log) == {"audio", "text"}
+    assert re.search(r"ingest: 0 files probed, [1-9]\d* reused from cache", log)
+
+    # A module no stage uses: a full run (the no-change check sees every source), in
+    # which every stage is reused.
+    _edit(package / "report.py")
+    log = _prepare(src, small_raw, out)
+    assert _reused(log) == {"audio", "text", "split"}
+    assert "nothing changed since the last run" not in log
+    assert "nothing changed since the last run" in _prepare(src, small_raw, out)
