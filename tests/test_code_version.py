@@ -235,3 +235,25 @@ def test_editing_a_helper_reruns_its_stage_and_only_its_stage(small_raw: Path, t
     assert _reused(log) == {"audio", "text", "split"}
     assert "nothing changed since the last run" not in log
     assert "nothing changed since the last run" in _prepare(src, small_raw, out)
+
+
+def test_the_no_change_check_sees_everything_a_code_version_covers(tmp_path: Path,
+                                                                  monkeypatch: pytest.MonkeyPatch) -> None:
+    from pipeline import snapshot
+
+    listed = set(snapshot._package_files())
+    installed = set(snapshot._distributions())
+    for s in STAGES:
+        code = stage_code(s)
+        assert {label for label, _ in code.modules + code.data_files + code.schemas} <= listed
+        for _, found in code.libraries:
+            if found != "not installed":
+                assert "{}-{}.dist-info".format(*found.split()) in installed
+    # And a change to a data file or to the installed distributions changes its digest.
+    monkeypatch.setattr(snapshot, "_PACKAGE", _copy_package(tmp_path))
+    before = snapshot.code_digest()
+    _edit(snapshot._PACKAGE / "data/abbreviations.tsv", None)
+    assert snapshot.code_digest() != before
+    before = snapshot.code_digest()
+    monkeypatch.setattr(snapshot, "_distributions", lambda: ["numpy-0.0.1.dist-info"])
+    assert snapshot.code_digest() != before
