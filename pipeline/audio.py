@@ -538,10 +538,10 @@ def prepare_driver(config: Any) -> None:
     warm_up(config.audio)
 
 
-def _cache_key(row: dict[str, Any], section: dict[str, Any]) -> str:
+def _cache_key(row: dict[str, Any], section: dict[str, Any], code: str) -> str:
     # source_id and source_path are in the key because they are copied into the rows.
-    # The stage's code version: any edit within its reach misses every entry.
-    return cache_key("audio", row["sha256"], section, code_version(NAME), row["source_id"], row["source_path"],
+    # ``code`` is the stage's code version: any edit within its reach misses every entry.
+    return cache_key("audio", row["sha256"], section, code, row["source_id"], row["source_path"],
                      row["speaker"], row["transcript"] is not None)
 
 
@@ -558,7 +558,8 @@ def run(ctx: StageContext) -> StageResult:
     cache = FileCache(ctx.cache_dir, NAME, enabled=ctx.use_cache)
     section = ctx.config.section(NAME)
 
-    keys = [_cache_key(row, section) for row in sources]
+    code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
+    keys = [_cache_key(row, section, code) for row in sources]
     # Rows go straight into Arrow batches as each outcome arrives (cached or fresh);
     # no list of every outcome is kept. Rejects are few, and kept in source order.
     builder = ManifestBuilder(NAME)

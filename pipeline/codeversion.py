@@ -33,6 +33,7 @@ from __future__ import annotations
 
 import ast
 import contextlib
+import functools
 import hashlib
 import json
 import os
@@ -72,7 +73,7 @@ class StageCode:
     libraries: tuple[tuple[str, str], ...]  # top-level module name, distribution and version
     python: str
 
-    @property
+    @functools.cached_property
     def version(self) -> str:
         """16 hex digits of the SHA-256 of all of the above."""
         parts = (self.stage, self.modules, self.data_files, self.schemas, self.libraries, self.python)
@@ -246,7 +247,7 @@ def stage_code(stage: str, *, package_dir: Path = PACKAGE_DIR, cache_dir: Path |
     >>> "normalise.py" in dict(code.modules), "iir.py" in dict(code.modules)
     (True, False)
     """
-    key = (stage, Path(package_dir))
+    key = (stage, package_dir)
     if key not in _MEMO:
         store = _store(cache_dir)
         _MEMO[key] = _collect(stage, Path(package_dir), store)
