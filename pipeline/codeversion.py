@@ -11,7 +11,7 @@ The hash covers:
   ``importlib.import_module("pipeline.x")``. Importing a module also runs the
   ``__init__`` of each package above it, so those count too;
 - the data files those modules name (a string constant equal to the name of a file in
-  ``pipeline/data``, such as ``"abbreviations.tsv"``);
+  ``pipeline/data``, such as ``"abbreviations.tsv"``, or ending in ``data/<name>``);
 - the JSON Schemas of the manifests the stage writes: its own, ``rejected``, and any
   other schema a reached module names (such as ``"subset"``);
 - the version of every other distribution those modules import or locate
@@ -45,8 +45,8 @@ from pathlib import Path
 PACKAGE_DIR = Path(__file__).resolve().parent
 FACTS_FILE = "code-facts.json"
 _LOADERS = frozenset({"find_spec", "import_module"})
-# String constants worth keeping: names of files and schemas, not sentences.
-_NAME_LIKE = re.compile(r"[\w.-]{1,100}")
+# String constants worth keeping: names and paths of files and schemas, not sentences.
+_NAME_LIKE = re.compile(r"[\w./-]{1,200}")
 
 
 @dataclass(frozen=True)
@@ -149,7 +149,7 @@ def _module_index(package_dir: Path) -> dict[str, str]:
         package = package_dir.name
         index: dict[str, str] = {}
         for folder, dirs, files in os.walk(package_dir):
-            dirs[:] = sorted(d for d in dirs if d.isidentifier())
+            dirs[:] = sorted(d for d in dirs if d.isidentifier() and d != "__pycache__")
             rel = Path(folder).relative_to(package_dir)
             prefix = ".".join((package, *rel.parts))
             for file in files:
@@ -301,7 +301,7 @@ def _collect(stage: str, package_dir: Path, store: _FactsStore) -> StageCode:
         stage=stage,
         modules=tuple(sorted((index[name], sha) for name, sha in modules.items())),
         data_files=tuple(_hashed(package_dir, f"data/{name}") for name in _files(package_dir / "data")
-                         if name in names),
+                         if name in names or any(n.endswith(f"data/{name}") for n in names)),
         schemas=tuple(_hashed(package_dir, f"schemas/{name}.schema.json")
                       for name in _schema_names(stage, names, package_dir)),
         libraries=tuple((name, library_version(name)) for name in libraries),

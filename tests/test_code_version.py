@@ -75,6 +75,17 @@ def test_every_form_of_import_is_followed(tmp_path: Path) -> None:
                                "j.py", "stagex.py", "sub/__init__.py", "sub/h.py"]
 
 
+def test_data_files_named_by_a_reached_module_are_hashed(tmp_path: Path) -> None:
+    package = _write(tmp_path / "pkg", {
+        "__init__.py": "",
+        "stagex.py": "from pathlib import Path\nfrom pkg import helper\nWORDS = Path(__file__).parent / 'data/words.tsv'\n",
+        "helper.py": "from pathlib import Path\nTABLE = Path(__file__).parent / 'data' / 'table.tsv'\n",
+        "other.py": "NAME = 'unused.tsv'\n",
+        "data/words.tsv": "a\n", "data/table.tsv": "b\n", "data/unused.tsv": "c\n",
+    })
+    assert dict(stage_code("stagex", package_dir=package).data_files).keys() == {"data/table.tsv", "data/words.tsv"}
+
+
 def test_libraries_imported_or_located_are_versioned(tmp_path: Path) -> None:
     package = _write(tmp_path / "pkg", {
         "__init__.py": "",
