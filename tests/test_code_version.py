@@ -129,6 +129,8 @@ EDITS = [
     ("privacy.py", None, {"ingest"}),
     ("ledger.py", None, {"split"}),
     ("selection.py", None, {"split"}),
+    ("gates.py", None, {"split"}),
+    ("pool.py", None, {"ingest", "audio"}),
     ("quality.py", None, {"audio", "split"}),
     ("manifest.py", None, set(STAGES)),
     ("__init__.py", None, set(STAGES)),
