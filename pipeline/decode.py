@@ -13,24 +13,34 @@ import os
 import tempfile
 from collections.abc import Iterator
 from pathlib import Path
+from typing import BinaryIO
 
 import numpy as np
 
 from pipeline.errors import ParameterError
 
 BLOCK_FRAMES = 1 << 16
+# Samples per decoded block, all channels together: a header claiming 1,024 channels
+# gets blocks of 128 frames rather than 64 MB ones.
+BLOCK_SAMPLES = 1 << 17
 RESAMPLE_QUALITIES = ("QQ", "LQ", "MQ", "HQ", "VHQ")
 # Full scale of signed 16-bit PCM as libsndfile reads it back: int16 / 32768.
 PCM16_SCALE = 32768.0
 
 
-def read_blocks(path: str | os.PathLike[str], *, block_frames: int = BLOCK_FRAMES) -> Iterator[np.ndarray]:
+def read_blocks(path: str | os.PathLike[str] | BinaryIO, *, block_frames: int = BLOCK_FRAMES) -> Iterator[np.ndarray]:
     """Decode a sound file as float32 blocks of shape (frames, channels).
+
+    Reading stops at the first short block: the end of what the decoder can give,
+    which for a damaged file can come before the frame count its header declares
+    (compare the frames yielded with ``soundfile.info(path).frames`` to tell). A
+    block never holds more than ``BLOCK_SAMPLES`` samples, whatever the channel count
+    the header claims, so memory stays bounded by the block, not by the header.
 
     Parameters
     ----------
     path : the file to read (never written).
-    block_frames : frames per block; the last block may be shorter.
+    block_frames : at most this many frames per block; the last block may be shorter.
 
     Returns
     -------
@@ -38,14 +48,29 @@ def read_blocks(path: str | os.PathLike[str], *, block_frames: int = BLOCK_FRAME
 
     Example
     -------
-    >>> total = sum(len(b) for b in read_blocks("take.flac"))  # doctest: +SKIP
+    >>> import io, soundfile as sf
+    >>> buf = io.BytesIO()
+    >>> sf.write(buf, np.zeros((1000, 2), np.float32), 8000, format="WAV")
+    >>> _ = buf.seek(0)
+    >>> [b.shape for b in read_blocks(buf, block_frames=600)]
+    [(600, 2), (400, 2)]
     """
     import soundfile as sf
 
     if block_frames < 1:
         raise ParameterError(f"block_frames={block_frames} must be at least 1")
-    with sf.SoundFile(os.fspath(path)) as fh:
-        yield from fh.blocks(blocksize=block_frames, dtype="float32", always_2d=True)
+    source = path if hasattr(path, "read") else os.fspath(path)
+    with sf.SoundFile(source) as fh:
+        frames = max(1, min(block_frames, BLOCK_SAMPLES // max(1, fh.channels)))
+        # Not SoundFile.blocks: it counts down the header's frame count and, when the
+        # decoder ends early, goes on yielding its previous buffer until that count is
+        # reached (2**35 frames for a damaged FLAC header).
+        while True:
+            block = fh.read(frames, dtype="float32", always_2d=True)
+            if len(block):
+                yield block
+            if len(block) < frames:
+                return
 
 
 def check_channel(*, channel: str | int, channels: int) -> None:
