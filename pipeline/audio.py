@@ -141,6 +141,18 @@ class LongTermPsd:
         return value if math.isfinite(value) else None
 
 
+# The largest sample magnitude taken as audio. Float formats put full scale at 1.0
+# (PCM formats cannot exceed it). A float recording can go above it by the headroom of
+# whatever mixed or amplified it, but sustained overshoot is rejected as clipping
+# anyway (audio.max_clipped_fraction); an isolated sample 24 dB over full scale (x16)
+# is beyond any gain staging (a judgement, not a standard) and is damaged bytes: read
+# as float32 they decode as magnitudes anywhere up to 3.4e38, whose squares overflow
+# the loudness and SNR sums. Such a file is rejected here, before any arithmetic. The
+# bound also keeps one stray sample from lifting a 400 ms BS.1770 block above the
+# manifest's 10 LUFS maximum (16**2 spread over 3,200 samples at 8 kHz is -11 dB).
+MAX_SAMPLE_MAGNITUDE = 16.0
+
+
 @dataclass
 class SourceScan:
     """Results of the streaming pass over one source."""
@@ -150,7 +162,10 @@ class SourceScan:
     clipped: int = 0
     counted: int = 0
     dc_sum: float = 0.0
-    non_finite_at: int | None = None
+    # The first frame holding a sample that is NaN, infinite or beyond
+    # MAX_SAMPLE_MAGNITUDE, and that sample's value.
+    bad_sample_at: int | None = None
+    bad_sample: float = 0.0
     out_samples: int = 0
     decisions: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=bool))
     energy_db: np.ndarray = field(default_factory=lambda: np.zeros(0))
@@ -170,8 +185,10 @@ def scan_source(path: str, *, cfg: AudioConfig, spool: Spool, sample_rate: int) 
     Returns
     -------
     SourceScan with the clipping and DC sums, the VAD frames at 16 kHz and the
-    source bandwidth. Decoding stops at the first block holding a NaN or infinite
-    sample; ``non_finite_at`` is then the frame index of the first one.
+    source bandwidth. Decoding stops at the first block holding a NaN, infinite or
+    out-of-range sample (beyond ``MAX_SAMPLE_MAGNITUDE``); ``bad_sample_at`` is then
+    the frame index of the first one and ``bad_sample`` its value. ``frames`` counts
+    the frames decoded, which a damaged file can hold fewer of than its header says.
 
     Example
     -------
@@ -199,12 +216,16 @@ def scan_source(path: str, *, cfg: AudioConfig, spool: Spool, sample_rate: int) 
 
     with contextlib.closing(read_blocks(path)) as blocks:  # closes the file on an early return
         for block in blocks:
-            finite = np.isfinite(block)
-            if not finite.all():
-                scan.non_finite_at = scan.frames + int(np.flatnonzero(~finite.all(axis=1))[0])
+            magnitude = np.abs(block)
+            # False for NaN as well as for values out of range: one test for both.
+            within = magnitude <= MAX_SAMPLE_MAGNITUDE
+            if not within.all():
+                frame = int(np.flatnonzero(~within.all(axis=1))[0])
+                scan.bad_sample_at = scan.frames + frame
+                scan.bad_sample = float(block[frame][~within[frame]][0])
                 return scan
-            used = block if cfg.channel == "average" else block[:, int(cfg.channel)]
-            scan.clipped += int(np.count_nonzero(np.abs(used) >= cfg.clip_level))
+            used = magnitude if cfg.channel == "average" else magnitude[:, int(cfg.channel)]
+            scan.clipped += int(np.count_nonzero(used >= cfg.clip_level))
             scan.counted += used.size
             mono = downmix(block, channel=cfg.channel)
             scan.dc_sum += float(mono.sum(dtype=np.float64))
@@ -287,7 +308,7 @@ def _condition(job: AudioJob) -> FileOutcome:
                                            f"({cfg.sample_rate} Hz) and audio.upsampled is \"reject\"")])
     with Spool(folder=job.tmp, label=source_id) as spool:
         scan = scan_source(job.source, cfg=cfg, spool=spool, sample_rate=rate)
-        return _cut_and_write(job, scan, spool)
+        return _cut_and_write(job, scan, spool, declared_frames=int(info.frames))
 
 
 def crashed_outcome(job: AudioJob, how: str) -> FileOutcome:
@@ -300,14 +321,27 @@ def crashed_outcome(job: AudioJob, how: str) -> FileOutcome:
                                        "ran alone; expected a file the audio libraries can decode without crashing")])
 
 
-def _cut_and_write(job: AudioJob, scan: SourceScan, spool: Spool) -> FileOutcome:
+def _cut_and_write(job: AudioJob, scan: SourceScan, spool: Spool, *, declared_frames: int | None = None) -> FileOutcome:
+    """Reject, or cut and write the clips of, a scanned source; ``declared_frames`` is the
+    header's frame count when a shorter decode means the file was cut short."""
     cfg, row = job.config, job.row
     rel, source_id = row["source_path"], row["source_id"]
-    if scan.non_finite_at is not None:
-        at = scan.non_finite_at
-        return FileOutcome(rejects=[reject(NAME, rel, "non_finite_samples",
-                                           f"{rel}: frame {at} (at {at / scan.sample_rate:.3f} s) holds a NaN "
-                                           "or infinite sample; expected finite samples")])
+    if scan.bad_sample_at is not None:
+        at, value = scan.bad_sample_at, scan.bad_sample
+        when = f"frame {at} (at {at / scan.sample_rate:.3f} s)"
+        if not math.isfinite(value):
+            return FileOutcome(rejects=[reject(NAME, rel, "non_finite_samples",
+                                               f"{rel}: {when} holds a NaN or infinite sample ({value}); "
+                                               "expected finite samples")])
+        return FileOutcome(rejects=[reject(NAME, rel, "out_of_range_samples",
+                                           f"{rel}: {when} holds the sample value {value:.6g}; expected "
+                                           f"magnitudes up to {MAX_SAMPLE_MAGNITUDE:g} (full scale is 1.0), "
+                                           "so the file is damaged rather than loud")])
+    if declared_frames is not None and scan.frames < declared_frames:
+        return FileOutcome(rejects=[reject(NAME, rel, "truncated",
+                                           f"{rel}: the header declares {declared_frames} frames but "
+                                           f"only {scan.frames} could be decoded; expected the whole "
+                                           "recording (the file was probably cut short)")])
     clipped_fraction = scan.clipped / scan.counted if scan.counted else 0.0
     if clipped_fraction > cfg.max_clipped_fraction:
         return FileOutcome(rejects=[reject(NAME, rel, "clipped",

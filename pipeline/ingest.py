@@ -65,6 +65,13 @@ def speaker_id(name: str) -> str:
 _EXTENSION_FORMATS = {".mp3": "MP3", ".ogg": "OGG", ".flac": "FLAC", ".opus": "OGG"}
 
 
+# Source sample rates taken as audio. Below 4 kHz no speech band is left (half the
+# 8 kHz telephone rate of ITU-T G.711); 768 kHz is the highest rate of common audio
+# converters (from memory). A damaged header outside these would make the resampler
+# produce hours of samples from seconds of data, or none at all.
+SOURCE_RATE_RANGE_HZ = (4000, 768000)
+
+
 @dataclass(frozen=True)
 class ProbeJob:
     path: str
@@ -96,6 +103,14 @@ def probe_file(job: ProbeJob) -> dict[str, Any]:
         return {"error": ("undecodable", f"{job.rel}: not a decodable audio file ({message})")}
     if info.frames <= 0 or info.samplerate <= 0 or info.channels <= 0:
         return {"error": ("empty", f"{job.rel}: the audio holds no samples (frames={info.frames}); expected at least one")}
+    low, high = SOURCE_RATE_RANGE_HZ
+    if not low <= info.samplerate <= high:
+        return {"error": ("unsupported_sample_rate",
+                          f"{job.rel}: the header gives a sample rate of {info.samplerate} Hz; expected "
+                          f"{low} to {high} Hz (a damaged header, or not a recording)")}
+    cut = _truncation(job, info)
+    if cut:
+        return {"error": ("truncated", cut)}
     return {
         "format": info.format,
         "subtype": info.subtype or "unknown",
@@ -106,6 +121,31 @@ def probe_file(job: ProbeJob) -> dict[str, Any]:
         "size_bytes": size,
         "sha256": digest,
     }
+
+
+def _truncation(job: ProbeJob, info: Any) -> str | None:
+    """A sentence when a WAV's data chunk declares more than the file holds, else None.
+
+    Only WAV needs this here: libsndfile reads its length from the file size. Other
+    containers give a length the audio stage checks against what it decodes.
+    """
+    if info.format not in ("WAV", "WAVEX"):
+        return None
+    from pipeline.wavchunks import declared_frames, wav_data_extent
+
+    try:
+        with open(job.path, "rb") as fh:
+            extent = wav_data_extent(fh)
+    except OSError:
+        return None  # the probe above read the file; a vanished file shows up later
+    if extent is None or not extent.truncated:
+        return None
+    declared = declared_frames(extent, subtype=info.subtype or "", channels=info.channels, frames_present=info.frames)
+    if declared <= info.frames:
+        return None  # less than one frame missing
+    return (f"{job.rel}: the header declares {declared} frames ({extent.declared_bytes} bytes of data) but the "
+            f"file holds {info.frames} ({extent.present_bytes} bytes); expected the whole recording "
+            "(the file was probably cut short)")
 
 
 @dataclass

@@ -58,6 +58,7 @@ def faulty_raw(tmp_path: Path) -> tuple[Path, dict[str, str | None]]:
     put("spk/text.wav", b"this is not audio\n", "undecodable")
     put("spk/nan.wav", float_wav_with(float("nan")), "non_finite_samples")
     put("spk/inf.wav", float_wav_with(float("inf")), "non_finite_samples")
+    put("spk/huge.wav", float_wav_with(9e29), "out_of_range_samples")
     put("spk/u8.wav", audio(speechlike(2.0, SR, seed=3), SR, subtype="PCM_U8"), None)
     put("spk/s24.wav", audio(speechlike(2.0, 48000, seed=4), 48000, subtype="PCM_24"), None)
     put("spk/f32.wav", audio(speechlike(2.0, 22050, seed=5), 22050, subtype="FLOAT"), None)
@@ -73,8 +74,8 @@ def faulty_raw(tmp_path: Path) -> tuple[Path, dict[str, str | None]]:
     put("spk/dup_a.wav", audio(speechlike(2.0, SR, seed=14), SR), None)
     put("spk/dup_b.wav", (raw / "spk/dup_a.wav").read_bytes(), "duplicate_content")
     # Truncated data: a header that promises more frames than the file holds. libsndfile
-    # trusts the file size, so the audio present is decoded and accepted.
-    put("spk/data_cut.wav", good[: len(good) // 2], None)
+    # trusts the file size and would decode what is present; the data chunk says more.
+    put("spk/data_cut.wav", good[: len(good) // 2], "truncated")
     (raw / "spk" / "with_html.txt").write_text("<b>bold</b> <script>alert(1)</script> words", encoding="utf-8")
     put("spk/with_html.wav", audio(speechlike(2.0, SR, seed=15), SR), None)
     (raw / "spk" / "emoji.txt").write_text("hello 🎉 there\x07 friend\u200b", encoding="utf-8")
