@@ -247,6 +247,21 @@ def read_metadata_table(
     return rows, rejects
 
 
+def _storable(text: str) -> bool:
+    """Whether ``text`` can be stored as UTF-8 (a name os.walk decoded with
+    surrogateescape from bytes that are not UTF-8 cannot)."""
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        return False
+    return True
+
+
+def _shown_path(text: str) -> str:
+    """A path that is not UTF-8, with its undecodable bytes written as \\xNN."""
+    return os.fsencode(text).decode("utf-8", "backslashreplace")
+
+
 def _has_surrogates(text: str) -> bool:
     return any("\udc80" <= ch <= "\udcff" for ch in text)
 
@@ -279,13 +294,18 @@ def scan(raw: Path, extensions: tuple[str, ...], sidecar_extension: str) -> tupl
         for d in dirs:
             full = Path(folder) / d
             if full.is_symlink() and not _inside(root, full):
-                rel = posixpath.normpath(posixpath.join(rel_folder.replace(os.sep, "/"), d))
+                rel = _shown_path(posixpath.normpath(posixpath.join(rel_folder.replace(os.sep, "/"), d)))
                 rejects.append(reject(NAME, rel, "path_outside_root",
                                       f"{rel}: a symbolic link to a folder outside the raw folder; not followed"))
         for name in files:
             rel = posixpath.normpath(posixpath.join(rel_folder.replace(os.sep, "/"), name))
             ext = os.path.splitext(name)[1].lower()
-            if ext in wanted:
+            if ext in wanted and not _storable(rel):
+                shown = _shown_path(rel)
+                rejects.append(reject(NAME, shown, "file_name_encoding",
+                                      f"{shown}: the path is not valid UTF-8 (its undecodable bytes shown as \\x "
+                                      "escapes); expected UTF-8 names: rename the file or folder"))
+            elif ext in wanted:
                 audio.append(rel)
             elif ext == side:
                 sidecars.add(rel)

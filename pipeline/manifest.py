@@ -284,7 +284,8 @@ def check_table(name: str, table: pa.Table, *, where: str, exhaustive: bool = Fa
         return _check_table(name, table, where=where, exhaustive=exhaustive)
 
 
-def _check_table(name: str, table: pa.Table, *, where: str, exhaustive: bool) -> list[Problem]:
+def _structure_problems(name: str, table: pa.Table, *, where: str) -> list[Problem]:
+    """Columns missing, undeclared or of the wrong Arrow type."""
     expected = arrow_schema(name)
     problems: list[Problem] = []
     names = set(table.column_names)
@@ -297,42 +298,114 @@ def _check_table(name: str, table: pa.Table, *, where: str, exhaustive: bool) ->
     for extra in sorted(names - {f.name for f in expected}):
         problems.append(Problem("error", "schema", where, None, extra, "an undeclared column",
                                 f"only the columns of schemas/{name}.schema.json"))
-    if problems:
-        return problems
+    return problems
 
+
+def _failing_rows(name: str, table: pa.Table, *, exhaustive: bool = False) -> dict[str, list[int]]:
+    """Column -> indices of the rows breaking that column's rules (structure checked)."""
     schema = load_schema(name)
     if exhaustive:
         validator = row_validator(name)
-        failing = {
+        return {
             column: [i for i, row in enumerate(table.to_pylist())
                      if any(e.absolute_path and e.absolute_path[0] == column for e in validator.iter_errors(row))]
             for column in schema["properties"]
         }
-    else:
-        failing = {}
-        for column, prop in schema["properties"].items():
-            values = table.column(column).combine_chunks() if table.num_rows else pa.array([], expected.field(column).type)
-            bad = _rule_mask(values, prop)
-            if not _types(prop)[1]:
-                bad = pc.or_(bad, pc.is_null(values))
-            failing[column] = pc.indices_nonzero(bad).to_pylist() if pc.any(bad).as_py() else []
-    for column, rows in failing.items():
-        if not rows:
-            continue
-        # Compiled only when a row fails: a clean table never needs jsonschema's wording.
-        validator = row_validator(name)
+    expected = arrow_schema(name)
+    failing = {}
+    for column, prop in schema["properties"].items():
+        values = table.column(column).combine_chunks() if table.num_rows else pa.array([], expected.field(column).type)
+        bad = _rule_mask(values, prop)
+        if not _types(prop)[1]:
+            bad = pc.or_(bad, pc.is_null(values))
+        failing[column] = pc.indices_nonzero(bad).to_pylist() if pc.any(bad).as_py() else []
+    return failing
+
+
+def _row_error(name: str, row: dict[str, Any], column: str) -> tuple[str, str]:
+    """(found, expected) in jsonschema's words for the first rule ``row`` breaks in ``column``."""
+    # Compiled only when a row fails: a clean table never needs jsonschema's wording.
+    validator = row_validator(name)
+    errors = [e for e in validator.iter_errors(row) if e.absolute_path and e.absolute_path[0] == column]
+    if errors:
+        return _describe_jsonschema_error(errors[0])
+    return repr(row[column]), "agreement between the columnar and row checkers"  # pragma: no cover
+
+
+def _check_table(name: str, table: pa.Table, *, where: str, exhaustive: bool) -> list[Problem]:
+    problems = _structure_problems(name, table, where=where)
+    if problems:
+        return problems
+    for column, rows in _failing_rows(name, table, exhaustive=exhaustive).items():
         for i in rows[:SHOWN_FAILURES]:
-            row = table.slice(i, 1).to_pylist()[0]
-            errors = [e for e in validator.iter_errors(row) if e.absolute_path and e.absolute_path[0] == column]
-            if errors:
-                found, expected_text = _describe_jsonschema_error(errors[0])
-            else:  # pragma: no cover - would mean the two checkers disagree
-                found, expected_text = repr(row[column]), "agreement between the columnar and row checkers"
+            found, expected_text = _row_error(name, table.slice(i, 1).to_pylist()[0], column)
             problems.append(Problem("error", "schema", where, i, column, found, expected_text))
         if len(rows) > SHOWN_FAILURES:
             problems.append(Problem("error", "schema", where, None, column,
                                     f"{len(rows) - SHOWN_FAILURES} more failing rows", "no failures"))
     return problems
+
+
+@dataclass(frozen=True)
+class InvalidRow:
+    """A row set aside because its values break the schema: the row and what it breaks."""
+
+    row: dict[str, Any]
+    detail: str
+
+
+def partition_rows(name: str, table: pa.Table, *, where: str) -> tuple[pa.Table, list[InvalidRow]]:
+    """Split ``table`` into the rows that meet schema ``name`` and those that do not.
+
+    A value that breaks a rule in a few rows (a loudness beyond the maximum, a string
+    a pattern refuses) comes from those rows' inputs: they are returned, with the
+    jsonschema wording of every rule they break, for the caller to reject, and the
+    rest is kept. A table whose columns are missing, undeclared or of the wrong Arrow
+    type, or whose rules are broken by most of its rows (more than half, and at least
+    two), points at the code that built it, and raises ManifestError instead.
+
+    Parameters
+    ----------
+    name : the manifest schema (``schemas/<name>.schema.json``).
+    table : the rows to check.
+    where : the file the table is for, named in the error.
+
+    Returns
+    -------
+    The valid rows (``table`` itself when all are valid) and the invalid ones.
+
+    Example
+    -------
+    >>> rows = [{"source_path": p, "reason": "empty", "detail": d, "stage": "ingest", "clip_id": None}
+    ...         for p, d in (("a.wav", "a.wav: empty"), ("b.wav", ""), ("c.wav", "c.wav: empty"))]
+    >>> kept, invalid = partition_rows("rejected", table_from_rows("rejected", rows), where="r.parquet")
+    >>> kept.num_rows, invalid[0].row["source_path"]
+    (2, 'b.wav')
+    >>> print(invalid[0].detail)
+    column 'detail': found "" (minLength: 1)
+    """
+    with pandas_left_unloaded():
+        problems = _structure_problems(name, table, where=where)
+        if problems:
+            raise ManifestError(f"manifest {where} breaks schemas/{name}.schema.json in its structure:\n  "
+                                + "\n  ".join(str(p) for p in problems))
+        failing = _failing_rows(name, table)
+        bad = sorted({i for rows in failing.values() for i in rows})
+        if not bad:
+            return table, []
+        if len(bad) >= 2 and 2 * len(bad) > table.num_rows:
+            validate_table(name, table, where=f"{where} ({len(bad)} of {table.num_rows} rows failing: "
+                           "a rule most rows break points at the code, not at the inputs)")
+        invalid = []
+        for i in bad:
+            row = table.slice(i, 1).to_pylist()[0]
+            words = [f"column '{column}': found {_row_error(name, row, column)[0]}"
+                     for column, rows in failing.items() if i in rows]
+            invalid.append(InvalidRow(row, "; ".join(words)))
+        keep = [True] * table.num_rows
+        for i in bad:
+            keep[i] = False
+        return table.filter(pa.array(keep, pa.bool_())), invalid
 
 
 def validate_table(name: str, table: pa.Table, *, where: str) -> None:

@@ -24,13 +24,14 @@ from pipeline.errors import DataError, UsageError
 from pipeline.fsio import remove_stale_temporaries, write_text_atomic
 from pipeline.lock import output_lock
 from pipeline.manifest import (
+    partition_rows,
     read_manifest,
     read_metadata,
     table_from_rows,
     validate_table,
     write_manifest,
 )
-from pipeline.stage import StageContext, StageResult
+from pipeline.stage import StageContext, StageResult, reject
 
 STAGE_ORDER = ("ingest", "audio", "text", "split")
 REJECTED_PATH = "manifests/rejected.parquet"
@@ -268,10 +269,9 @@ class Runner:
         meta = self._metadata(module, params, inputs, result.metadata)
         if manifest_path(module.NAME) not in result.manifests:
             raise RuntimeError(f"stage {module.NAME} returned no {manifest_path(module.NAME)}")
+        # Validate everything before writing anything, so a bad table leaves the old files.
+        self._set_aside_invalid_rows(module, result)
         rejects = result.rejects_table()
-        # Validate everything before writing anything, so a bad row leaves the old files.
-        for rel, (schema, table) in result.manifests.items():
-            validate_table(schema, table, where=str(self.out / rel))
         validate_table("rejected", rejects, where=str(self.out / rejects_path(module.NAME)))
         write_manifest(self.out / rejects_path(module.NAME), "rejected", rejects, metadata=meta)
         write_text_atomic(self.out / summary_path(module.NAME),
@@ -280,6 +280,46 @@ class Runner:
         for rel, (schema, table) in sorted(result.manifests.items(), key=lambda kv: kv[0] == manifest_path(module.NAME)):
             write_manifest(self.out / rel, schema, table, metadata=meta)
         self._record_outputs(module, list(result.manifests), result.manifests[manifest_path(module.NAME)][1])
+
+    def _set_aside_invalid_rows(self, module: ModuleType, result: StageResult) -> None:
+        """Move rows whose values break their schema from the manifests to the rejects.
+
+        ``manifest.partition_rows`` tells a row whose inputs gave a value the schema
+        refuses (rejected as ``invalid_measurement``; the run goes on) from a table
+        the stage's code got wrong (ManifestError: the run stops). Files the main
+        manifest's invalid rows wrote (the stage's ``written_files``) are deleted.
+        """
+        set_aside = 0
+        main = manifest_path(module.NAME)
+        for rel, (schema, table) in sorted(result.manifests.items()):
+            kept, invalid = partition_rows(schema, table, where=str(self.out / rel))
+            if not invalid:
+                continue
+            result.manifests[rel] = (schema, kept)
+            set_aside += len(invalid)
+            for bad in invalid:
+                row = bad.row
+                source = row.get("source_path") or row.get("clip_id") or rel
+                clip = row.get("clip_id")
+                what = f"clip {clip}" if clip and clip != row.get("source_id") else "its row"
+                detail = (f"{source}: {what} in {rel} breaks schemas/{schema}.schema.json ({bad.detail}); "
+                          "expected values within the schema, so the row is set aside")
+                self.log.warning("%s", detail)
+                result.rejects.append(reject(module.NAME, str(source), "invalid_measurement", detail,
+                                             clip if isinstance(clip, str) else None))
+            written = getattr(module, "written_files", None)
+            if rel == main and written is not None:
+                self._remove_written(written(self.out, table_from_rows(schema, [b.row for b in invalid])))
+        if set_aside:
+            result.summary["invalid_rows"] = set_aside
+
+    def _remove_written(self, rels: list[str]) -> None:
+        """Delete files a stage wrote for rows that were set aside (only inside OUT)."""
+        root = self.out.resolve()
+        for rel in rels:
+            path = (self.out / rel).resolve()
+            if path.is_relative_to(root) and path.is_file():
+                path.unlink()
 
     def _refresh_config_hash(self, module: ModuleType) -> None:
         """A reused stage's manifests still record the hash of the config in force now
