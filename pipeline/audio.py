@@ -308,7 +308,8 @@ def _condition(job: AudioJob) -> FileOutcome:
                                            f"({cfg.sample_rate} Hz) and audio.upsampled is \"reject\"")])
     with Spool(folder=job.tmp, label=source_id) as spool:
         scan = scan_source(job.source, cfg=cfg, spool=spool, sample_rate=rate)
-        return _cut_and_write(job, scan, spool, declared_frames=int(info.frames))
+        declared = int(info.frames) if _length_is_exact(job.source, info.format) else None
+        return _cut_and_write(job, scan, spool, declared_frames=declared)
 
 
 def crashed_outcome(job: AudioJob, how: str) -> FileOutcome:
@@ -319,6 +320,17 @@ def crashed_outcome(job: AudioJob, how: str) -> FileOutcome:
     return FileOutcome(rejects=[reject(NAME, rel, "decoder_crashed",
                                        f"{rel}: the worker process conditioning it died ({how}), also when it "
                                        "ran alone; expected a file the audio libraries can decode without crashing")])
+
+
+def _length_is_exact(path: str, container: str) -> bool:
+    """Whether the header's frame count is a promise a shorter decode breaks: always,
+    except for an MP3 without a frame that records it (see pipeline.declared)."""
+    if container != "MP3":
+        return True
+    from pipeline.declared import mp3_length_is_exact
+
+    with open(path, "rb") as fh:
+        return mp3_length_is_exact(fh)
 
 
 def _cut_and_write(job: AudioJob, scan: SourceScan, spool: Spool, *, declared_frames: int | None = None) -> FileOutcome:

@@ -131,7 +131,7 @@ def _truncation(job: ProbeJob, info: Any) -> str | None:
     """
     if info.format not in ("WAV", "WAVEX"):
         return None
-    from pipeline.wavchunks import declared_frames, wav_data_extent
+    from pipeline.declared import declared_frames, wav_data_extent
 
     try:
         with open(job.path, "rb") as fh:

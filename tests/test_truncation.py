@@ -15,9 +15,9 @@ import soundfile as sf
 
 from pipeline import audio
 from pipeline.config import build_config
+from pipeline.declared import DataExtent, mp3_length_is_exact, wav_data_extent
 from pipeline.decode import BLOCK_SAMPLES, read_blocks
 from pipeline.ingest import ProbeJob, probe_file
-from pipeline.wavchunks import DataExtent, wav_data_extent
 from tests.conftest import speechlike
 
 SR = 16000
@@ -150,3 +150,15 @@ def test_implausible_sample_rate_is_rejected_at_probe(tmp_path: Path, rate: int)
     data[24:28] = struct.pack("<I", rate)  # WAVE fmt chunk: sample rate at byte 24
     reason, detail = probe(put(tmp_path, "rate.wav", bytes(data)))["error"]
     assert reason == "unsupported_sample_rate" and f"{rate} Hz" in detail
+
+
+def test_mp3_without_a_length_frame_is_not_judged_by_its_estimate(tmp_path: Path) -> None:
+    data = encoded(speechlike(2.0, SR, seed=4), SR, "MP3", "MPEG_LAYER_III")
+    assert mp3_length_is_exact(io.BytesIO(data))
+    # The Xing/Info tag renamed: libsndfile then estimates the length from size and bitrate.
+    at = data.index(b"Info") if b"Info" in data[:200] else data.index(b"Xing")
+    blind = data[:at] + b"Nope" + data[at + 4:]
+    assert not mp3_length_is_exact(io.BytesIO(blind))
+    path = put(tmp_path, "blind.mp3", blind[: len(blind) * 9 // 10])
+    outcome = condition(path, tmp_path / "out")
+    assert not [r for r in outcome.rejects if r["reason"] == "truncated"], outcome.rejects

@@ -1,11 +1,16 @@
-"""How much audio a RIFF/WAVE file's header declares against how much the file holds.
+"""How long a file's header says it is, for telling a recording cut short.
 
-libsndfile trusts the file size: a WAV cut short in transfer opens and decodes as the
-shorter recording, with nothing to say that its end is missing. The header still
-says how long it was meant to be: the ``data`` chunk's size field (Microsoft/IBM
-"Multimedia Programming Interface and Data Specifications 1.0", 1991: a RIFF file is
-a chain of chunks, each a 4-byte id, a 4-byte size and the data padded to an even
-length; RIFX is the same chain with big-endian sizes).
+WAV: libsndfile trusts the file size, so a WAV cut short in transfer opens and
+decodes as the shorter recording, with nothing to say that its end is missing. The
+header still says how long it was meant to be: the ``data`` chunk's size field
+(Microsoft/IBM "Multimedia Programming Interface and Data Specifications 1.0", 1991:
+a RIFF file is a chain of chunks, each a 4-byte id, a 4-byte size and the data padded
+to an even length; RIFX is the same chain with big-endian sizes).
+
+MP3: libsndfile's frame count is exact only when the stream starts with a frame
+that records it (a Xing/Info or VBRI header); otherwise it is estimated from the
+file size and the first frame's bitrate, which a variable-bitrate file can miss
+either way, so a shortfall against it proves nothing.
 """
 
 from __future__ import annotations
@@ -96,3 +101,47 @@ def declared_frames(extent: DataExtent, *, subtype: str, channels: int, frames_p
     if extent.present_bytes <= 0:
         return 0
     return extent.declared_bytes * frames_present // extent.present_bytes
+
+
+# Tags of the first MPEG frame that records the stream's frame count: "Xing" (VBR) and
+# "Info" (CBR) from the LAME/Xing header, "VBRI" from the Fraunhofer encoder (common
+# practice, not an ISO field; from memory). They sit within the first frame, after
+# the side information: 36 bytes in at most, so 200 bytes cover any frame header.
+_MP3_LENGTH_TAGS = (b"Xing", b"Info", b"VBRI")
+
+
+def mp3_length_is_exact(fh: BinaryIO) -> bool:
+    """Whether an MP3 stream's first frame records its frame count.
+
+    Parameters
+    ----------
+    fh : the file, opened for binary reading.
+
+    Returns
+    -------
+    True when a Xing, Info or VBRI header follows the first frame sync (after any
+    ID3v2 tag, whose size is a 28-bit "syncsafe" integer in bytes 6-9, ID3v2.4 s3.1).
+
+    Example
+    -------
+    >>> import io
+    >>> mp3_length_is_exact(io.BytesIO(b"\\xff\\xfb\\x90\\x00" + bytes(32) + b"Info" + bytes(100)))
+    True
+    >>> mp3_length_is_exact(io.BytesIO(b"\\xff\\xfb\\x90\\x00" + bytes(200)))
+    False
+    """
+    fh.seek(0)
+    head = fh.read(10)
+    start = 0
+    if len(head) == 10 and head[:3] == b"ID3":
+        size = 0
+        for byte in head[6:10]:
+            size = (size << 7) | (byte & 0x7F)
+        start = 10 + size + (10 if head[5] & 0x10 else 0)  # a footer when flagged
+    fh.seek(start)
+    window = fh.read(4096)
+    sync = next((i for i in range(len(window) - 1) if window[i] == 0xFF and window[i + 1] & 0xE0 == 0xE0), None)
+    if sync is None:
+        return False
+    first = window[sync:sync + 200]
+    return any(tag in first for tag in _MP3_LENGTH_TAGS)
