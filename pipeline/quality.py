@@ -215,6 +215,10 @@ def wada_snr_db(samples: np.ndarray) -> float:
         return float("nan")
     # Scale first so tiny or huge values cannot under- or overflow; sums in float64.
     x *= 1.0 / x.max()
+    if not x.all():
+        # Subnormal float32 samples (a damaged MP3 decodes to some) can round to zero
+        # when scaled; log(0) would warn and drive the statistic to infinity.
+        x = x[x > 0.0]
     g = np.log(np.mean(x, dtype=np.float64)) - np.mean(np.log(x), dtype=np.float64)
     snr_db, g_table = _wada_table()
     # np.interp clamps to the end values outside the table, which is the documented clamp.

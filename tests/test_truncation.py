@@ -162,3 +162,14 @@ def test_mp3_without_a_length_frame_is_not_judged_by_its_estimate(tmp_path: Path
     path = put(tmp_path, "blind.mp3", blind[: len(blind) * 9 // 10])
     outcome = condition(path, tmp_path / "out")
     assert not [r for r in outcome.rejects if r["reason"] == "truncated"], outcome.rejects
+
+
+def test_wada_snr_of_subnormal_samples_warns_nothing() -> None:
+    from pipeline.quality import wada_snr_db
+
+    x = speechlike(1.0, SR, seed=8).astype(np.float32) * 16
+    x[::97] = np.float32(1e-45)  # the smallest subnormal float32 (IEEE 754 binary32)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        value = wada_snr_db(x)
+    assert np.isfinite(value)
