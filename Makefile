@@ -11,11 +11,12 @@ OUT    ?= build/demo
 CONFIG ?= demo_corpus/corpus.toml
 WORKERS ?=
 BENCH_OUT ?= build/bench
+FUZZ_FILES ?= 3000
 
 CONFIG_FLAG  := $(if $(CONFIG),--config "$(CONFIG)",)
 WORKERS_FLAG := $(if $(WORKERS),--workers $(WORKERS),)
 
-.PHONY: all prepare test validate report bench lint clean distclean help
+.PHONY: all prepare test fuzz validate report bench lint clean distclean help
 
 all: prepare report
 	@$(BIN)/loam validate "$(OUT)" > "$(OUT)/logs/validate.txt" || (cat "$(OUT)/logs/validate.txt"; exit 1)
@@ -27,6 +28,7 @@ help:
 	@echo "make test       run the test suite"
 	@echo "make validate   check the manifests in OUT before training"
 	@echo "make report     write OUT/report/index.html and summary.json"
+	@echo "make fuzz       prepare $(FUZZ_FILES) damaged audio files (make test runs 300) and print the outcomes"
 	@echo "make bench      throughput, memory and rebuild benchmarks"
 	@echo "make lint       ruff"
 	@echo "make clean      remove build outputs (keeps .venv)"
@@ -63,6 +65,9 @@ test: $(STAMP)
 	  fi; \
 	fi
 	$(BIN)/python -m pytest -q
+
+fuzz: $(STAMP)
+	LOAM_FUZZ_FILES=$(FUZZ_FILES) $(BIN)/python -m pytest -q -s -p no:cacheprovider tests/test_fuzz.py
 
 bench: $(STAMP)
 	$(BIN)/python bench/run.py --out "$(BENCH_OUT)"
