@@ -104,12 +104,13 @@ def _field_problem(value: str, *, encoding: str) -> str | None:
     return f"{where} (0x{bad:02x}{after}) is not valid {encoding}"
 
 
-def _decode_table(data: bytes, table_rel: str, *, encoding: str) -> str:
+def _decode_table(data: bytes, table_rel: str, *, encoding: str) -> tuple[str, str]:
+    """The table's text and the encoding it was read with (UTF-8 after a byte-order mark)."""
     if data.startswith(UTF8_BOM):
         data, encoding = data[len(UTF8_BOM):], "utf-8"
     try:
         # surrogateescape keeps undecodable bytes visible per row instead of failing the file.
-        return data.decode(encoding, "surrogateescape")
+        return data.decode(encoding, "surrogateescape"), encoding
     except UnicodeError as exc:
         start = int(getattr(exc, "start", 0))
         raise DataError(f"{table_rel}: byte {start} is not valid {encoding}, and the table cannot be read row "
@@ -159,8 +160,8 @@ def read_metadata_table(
         raise ConfigError(f"{origin('ingest.metadata')}: key 'ingest.metadata' has value {table_rel!r}: cannot "
                           f"read the metadata table ({exc.strerror}); expected a CSV or TSV file inside RAW") from exc
     delimiter = "\t" if table_rel.lower().endswith(".tsv") else ","
-    reader = csv.reader(io.StringIO(_decode_table(data, table_rel, encoding=encoding), newline=""),
-                        delimiter=delimiter, strict=True)
+    text, encoding = _decode_table(data, table_rel, encoding=encoding)
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter, strict=True)
     required = {"metadata_path_column": path_column, "metadata_transcript_column": transcript_column}
     if need_speaker:
         required["metadata_speaker_column"] = speaker_column

@@ -418,3 +418,13 @@ def test_sidecar_with_utf8_mark_is_judged_as_utf8(tmp_path: Path) -> None:
     text, problem = read_sidecar(tmp_path, "a.txt", encoding="cp1252")
     assert text is None and problem is not None
     assert problem[1] == "a.txt: byte 6 (0xff, after 'ok ') is not valid utf-8"
+
+
+def test_table_with_utf8_mark_is_judged_as_utf8(small_raw: Path, tmp_path: Path) -> None:
+    (small_raw / "meta.csv").write_bytes(b"\xef\xbb\xbfpath,transcript,speaker\nspk_b/b1.wav,na\xefve,spk_b\n")
+    rows, rejects = run_ingest(small_raw, tmp_path / "out", {"ingest": {"metadata": "meta.csv",
+                                                                         "transcript_encoding": "cp1252"}})
+    r = next(r for r in rejects if r["source_path"] == "meta.csv:2")
+    assert r["detail"].startswith("meta.csv: line 2: column 'transcript': byte 2 of the field (0xef, after 'na') "
+                                  "is not valid utf-8")
+    assert {r["source_path"]: r["transcript"] for r in rows}["spk_b/b1.wav"] is None
