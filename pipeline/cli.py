@@ -40,15 +40,25 @@ def _parse_override(text: str) -> tuple[str, Any]:
     return key.strip(), parsed
 
 
-def _overrides(args: argparse.Namespace) -> dict[str, Any]:
-    out: dict[str, Any] = dict(_parse_override(s) for s in getattr(args, "set", None) or [])
+def _overrides(args: argparse.Namespace) -> tuple[dict[str, Any], dict[str, str]]:
+    """Config overrides from the command line (dotted key -> value), and for each key the
+    option as typed, so a message about a bad value can name it."""
+    out: dict[str, Any] = {}
+    flags: dict[str, str] = {}
+    for text in getattr(args, "set", None) or []:
+        key, value = _parse_override(text)
+        out[key] = value
+        flags[key] = f"--set {text.strip()}"
     if getattr(args, "workers", None) is not None:
         out["run.workers"] = args.workers
+        flags["run.workers"] = f"--workers {args.workers}"
     if getattr(args, "scheduler", None):
         out["run.scheduler"] = args.scheduler
+        flags["run.scheduler"] = f"--scheduler {args.scheduler}"
     if getattr(args, "no_progress", False):
         out["run.progress"] = False
-    return out
+        flags["run.progress"] = "--no-progress"
+    return out, flags
 
 
 def _add_run_options(p: argparse.ArgumentParser) -> None:
@@ -135,7 +145,7 @@ def _cmd_prepare(args: argparse.Namespace, stages: tuple[str, ...] | None = None
         raise UsageError(f"RAW {str(args.raw)!r} is not a folder")
     if args.out.resolve() == args.raw.resolve() or args.raw.resolve() in args.out.resolve().parents:
         raise UsageError(f"OUT {str(args.out)!r} must not be inside RAW {str(args.raw)!r}: the raw dump is never written to")
-    overrides = _overrides(args)
+    overrides, override_flags = _overrides(args)
     invocation = None
     if stages is None and not args.fresh and not args.no_cache and (args.config is None or args.config.is_file()):
         from pipeline import snapshot
@@ -149,7 +159,7 @@ def _cmd_prepare(args: argparse.Namespace, stages: tuple[str, ...] | None = None
     from pipeline.runlog import setup_logging
     from pipeline.runner import STAGE_ORDER, Runner
 
-    config = load_config(args.config, overrides=overrides)
+    config = load_config(args.config, overrides=overrides, override_flags=override_flags)
     try:
         args.out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:

@@ -4,14 +4,14 @@ Nothing here writes inside RAW or follows a path out of it. Every audio file fou
 and every metadata row ends up exactly once in ``stages/ingest.parquet`` or in the
 rejects: a metadata row is accounted for by the ingest row that uses it
 (``metadata_line``), by its own reject (``<table>:<line>``), or by the reject of the
-audio file it names.
+audio file it names; a row whose speaker is used while its transcript is set aside
+has both. A transcript problem (``pipeline.transcripts``) costs only the transcript:
+the audio goes on as untranscribed audio.
 """
 
 from __future__ import annotations
 
-import csv
 import hashlib
-import io
 import os
 import posixpath
 import re
@@ -23,15 +23,18 @@ from typing import Any
 
 from pipeline.cache import FileCache, cache_key
 from pipeline.codeversion import code_version
-from pipeline.errors import DataError
 from pipeline.fsio import sha256_file
 from pipeline.manifest import table_from_rows
 from pipeline.parallel import map_ordered
 from pipeline.stage import StageContext, StageResult, reject
+from pipeline.transcripts import MetadataRow, collapse_rows, pair_transcript, read_metadata_table
 
 NAME = "ingest"
 INPUTS: tuple[str, ...] = ()
 CONFIG_SECTIONS = ("ingest",)
+# Reasons for which ingest sets aside a transcript and keeps its audio.
+TRANSCRIPT_REASONS = frozenset({"transcript_encoding", "transcript_unreadable", "empty_transcript",
+                                "conflicting_transcripts"})
 # The raw folder is its input: it is rescanned every run (unchanged files hit the probe cache).
 ALWAYS_RUN = True
 
@@ -148,14 +151,6 @@ def _truncation(job: ProbeJob, info: Any) -> str | None:
             "(the file was probably cut short)")
 
 
-@dataclass
-class MetadataRow:
-    line: int
-    path: str
-    transcript: str
-    speaker: str | None
-
-
 def _inside(root: Path, candidate: Path) -> bool:
     try:
         candidate.resolve().relative_to(root.resolve())
@@ -183,70 +178,6 @@ def check_relative_path(raw: Path, text: str) -> tuple[str | None, str | None]:
     return norm, None
 
 
-def read_metadata_table(
-    raw: Path, table_rel: str, *, path_column: str, transcript_column: str, speaker_column: str,
-    need_speaker: bool,
-) -> tuple[list[MetadataRow], list[dict[str, Any]]]:
-    """Parse a CSV/TSV table; rows that fail are returned as rejects with their line."""
-    path, problem = check_relative_path(raw, table_rel)
-    if problem or path is None:
-        raise DataError(f"ingest.metadata = {table_rel!r}: {problem}")
-    file = raw / path
-    try:
-        data = file.read_bytes()
-    except OSError as exc:
-        raise DataError(f"{table_rel}: cannot read the metadata table ({exc.strerror})") from exc
-    if data.startswith(b"\xef\xbb\xbf"):
-        data = data[3:]
-    # surrogateescape keeps undecodable bytes visible per row instead of failing the file.
-    text = data.decode("utf-8", "surrogateescape")
-    delimiter = "\t" if table_rel.lower().endswith(".tsv") else ","
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter, strict=True)
-    rejects: list[dict[str, Any]] = []
-    rows: list[MetadataRow] = []
-    try:
-        header = next(reader)
-    except StopIteration:
-        return [], []
-    except csv.Error as exc:
-        raise DataError(f"{table_rel}: line 1: the header does not parse ({exc})") from exc
-    header = [h.strip() for h in header]
-    required = [path_column, transcript_column] + ([speaker_column] if need_speaker else [])
-    missing = [c for c in required if c not in header]
-    if missing:
-        raise DataError(
-            f"{table_rel}: line 1: missing column(s) {', '.join(repr(m) for m in missing)}; "
-            f"found {', '.join(repr(h) for h in header)} (column names are set in [ingest] of the config)"
-        )
-    index = {name: header.index(name) for name in (path_column, transcript_column, speaker_column) if name in header}
-    line = 1
-    while True:
-        start_line = reader.line_num + 1
-        try:
-            fields = next(reader)
-        except StopIteration:
-            break
-        except csv.Error as exc:
-            rejects.append(reject(NAME, f"{table_rel}:{start_line}", "metadata_parse_error",
-                                  f"{table_rel}: line {start_line}: the row does not parse as {'TSV' if delimiter == chr(9) else 'CSV'} ({exc})"))
-            continue
-        line = start_line
-        where = f"{table_rel}:{line}"
-        if not fields or all(not f.strip() for f in fields):
-            continue
-        if len(fields) != len(header):
-            rejects.append(reject(NAME, where, "metadata_parse_error",
-                                  f"{table_rel}: line {line}: found {len(fields)} fields; expected {len(header)} as in the header"))
-            continue
-        if any(_has_surrogates(f) for f in fields):
-            rejects.append(reject(NAME, where, "transcript_encoding",
-                                  f"{table_rel}: line {line}: bytes that are not UTF-8; expected a UTF-8 table"))
-            continue
-        speaker = fields[index[speaker_column]].strip() if speaker_column in index else None
-        rows.append(MetadataRow(line, fields[index[path_column]], fields[index[transcript_column]], speaker or None))
-    return rows, rejects
-
-
 def _storable(text: str) -> bool:
     """Whether ``text`` can be stored as UTF-8 (a name os.walk decoded with
     surrogateescape from bytes that are not UTF-8 cannot)."""
@@ -260,24 +191,6 @@ def _storable(text: str) -> bool:
 def _shown_path(text: str) -> str:
     """A path that is not UTF-8, with its undecodable bytes written as \\xNN."""
     return os.fsencode(text).decode("utf-8", "backslashreplace")
-
-
-def _has_surrogates(text: str) -> bool:
-    return any("\udc80" <= ch <= "\udcff" for ch in text)
-
-
-def _read_sidecar(path: Path, rel: str) -> tuple[str | None, tuple[str, str] | None]:
-    try:
-        data = path.read_bytes()
-    except OSError as exc:
-        return None, ("unreadable", f"{rel}: cannot read the transcript file ({exc.strerror})")
-    if data.startswith(b"\xef\xbb\xbf"):
-        data = data[3:]
-    try:
-        return data.decode("utf-8").strip(), None
-    except UnicodeDecodeError as exc:
-        return None, ("transcript_encoding",
-                      f"{rel}: byte {exc.start} (0x{data[exc.start]:02x}) is not UTF-8; expected a UTF-8 transcript")
 
 
 def scan(raw: Path, extensions: tuple[str, ...], sidecar_extension: str) -> tuple[list[str], set[str], list[dict[str, Any]]]:
@@ -387,24 +300,18 @@ def _pseudonymise(ctx: StageContext, rows: list[dict[str, Any]]) -> None:
         write_mapping(ctx.config.resolve_path(privacy.mapping_file), mapping, out=ctx.out)
 
 
-def run(ctx: StageContext) -> StageResult:
-    cfg = ctx.config.ingest
-    raw = ctx.raw
-    paths, sidecars, rejects = scan(raw, cfg.extensions, cfg.sidecar_extension)
-    path_set = set(paths)
-
-    meta_rows: list[MetadataRow] = []
-    meta_rejects: list[dict[str, Any]] = []
-    table_rel = cfg.metadata
-    if table_rel:
-        meta_rows, meta_rejects = read_metadata_table(
-            raw, table_rel, path_column=cfg.metadata_path_column,
-            transcript_column=cfg.metadata_transcript_column,
-            speaker_column=cfg.metadata_speaker_column, need_speaker=cfg.speaker_from == "metadata")
-        rejects.extend(meta_rejects)
-
-    # Metadata rows by the audio file they name; bad paths are rejected before any open.
+def _metadata_by_audio(ctx: StageContext, path_set: set[str]) -> tuple[dict[str, list[MetadataRow]], int, list[dict[str, Any]]]:
+    """Metadata rows by the audio file they name, the number of rows read, and the
+    rejects of rows that cannot be used; bad paths are rejected before any open."""
+    cfg, raw, table_rel = ctx.config.ingest, ctx.raw, ctx.config.ingest.metadata
     by_audio: dict[str, list[MetadataRow]] = defaultdict(list)
+    if not table_rel:
+        return by_audio, 0, []
+    meta_rows, rejects = read_metadata_table(
+        raw, table_rel, path_column=cfg.metadata_path_column, transcript_column=cfg.metadata_transcript_column,
+        speaker_column=cfg.metadata_speaker_column, need_speaker=cfg.speaker_from == "metadata",
+        encoding=cfg.transcript_encoding, origin=ctx.config.origin)
+    count = len(meta_rows) + len(rejects)
     for row in meta_rows:
         where = f"{table_rel}:{row.line}"
         rel, problem = check_relative_path(raw, row.path)
@@ -417,6 +324,40 @@ def run(ctx: StageContext) -> StageResult:
                                   f"{table_rel}: line {row.line}: audio file {rel!r} {why}"))
         else:
             by_audio[rel].append(row)
+    return by_audio, count, rejects
+
+
+def _speaker(ctx: StageContext, rel: str, rows: list[MetadataRow], via: str) -> str | dict[str, Any]:
+    """The speaker name of one audio file, or the reject row saying why there is none."""
+    cfg = ctx.config.ingest
+    if cfg.speaker_from == "metadata":
+        speakers = {r.speaker for r in rows if r.speaker}
+        if len(speakers) != 1:
+            found = "none" if not speakers else ", ".join(sorted(speakers))
+            return reject(NAME, rel, "missing_speaker",
+                          f"{rel}: column '{cfg.metadata_speaker_column}' gives speaker {found}; expected exactly one{via}")
+        return speakers.pop()
+    parts = rel.split("/")[:-1]
+    if len(parts) <= cfg.speaker_path_level:
+        return reject(NAME, rel, "missing_speaker",
+                      f"{rel}: no folder at level {cfg.speaker_path_level} to name the speaker; "
+                      f"expected RAW/<speaker>/.../<file>{via}")
+    return parts[cfg.speaker_path_level]
+
+
+def run(ctx: StageContext) -> StageResult:
+    cfg = ctx.config.ingest
+    raw = ctx.raw
+    paths, sidecars, rejects = scan(raw, cfg.extensions, cfg.sidecar_extension)
+    path_set = set(paths)
+    # Sidecars by the stem they transcribe (the extension matches in any case; the first
+    # in sorted order wins, so the choice never depends on walk order).
+    sidecar_by_stem: dict[str, str] = {}
+    for side in sorted(sidecars):
+        sidecar_by_stem.setdefault(side.rsplit(".", 1)[0], side)
+    table_rel = cfg.metadata
+    by_audio, metadata_rows, meta_rejects = _metadata_by_audio(ctx, path_set)
+    rejects.extend(meta_rejects)
 
     probes = _probe_all(ctx, raw, paths)
     accepted: list[dict[str, Any]] = []
@@ -434,64 +375,24 @@ def run(ctx: StageContext) -> StageResult:
                                   f"{rel}: byte-identical to {first_by_hash[probe['sha256']]!r}, which is kept{via}"))
             continue
         first_by_hash[probe["sha256"]] = rel
-
-        # One transcript per file: identical metadata rows collapse, different ones conflict.
-        distinct: dict[str, MetadataRow] = {}
-        for row in rows:
-            key = f"{row.transcript.strip()}\x00{row.speaker or ''}"
-            if key in distinct:
-                rejects.append(reject(NAME, f"{table_rel}:{row.line}", "metadata_duplicate_row",
-                                      f"{table_rel}: line {row.line}: repeats line {distinct[key].line} for {rel!r}"))
-            else:
-                distinct[key] = row
-        candidates: list[tuple[str, str]] = [(r.transcript.strip(), f"line {r.line} of {table_rel}") for r in distinct.values()]
-        stem = posixpath.splitext(rel)[0]
-        sidecar_rel = f"{stem}.{cfg.sidecar_extension}"
-        sidecar_rel = next((s for s in sidecars if s.lower() == sidecar_rel.lower() and s.rsplit(".", 1)[0] == stem), None)
-        if sidecar_rel is not None:
-            text, problem = _read_sidecar(raw / sidecar_rel, sidecar_rel)
-            if problem:
-                rejects.append(reject(NAME, rel, problem[0], problem[1] + f"; the audio {rel!r} is set aside with it"))
-                continue
-            candidates.append((text or "", sidecar_rel))
-        texts = {t for t, _ in candidates}
-        if len(texts) > 1:
-            sources = "; ".join(f"{origin}: {t!r}" for t, origin in candidates)
-            rejects.append(reject(NAME, rel, "conflicting_transcripts",
-                                  f"{rel}: {len(texts)} different transcripts ({sources}); expected one"))
-            for row in distinct.values():
-                rejects.append(reject(NAME, f"{table_rel}:{row.line}", "conflicting_transcripts",
-                                      f"{table_rel}: line {row.line}: transcript for {rel!r} conflicts with another source"))
+        rows, repeats = collapse_rows(rows, rel, table_rel)
+        rejects.extend(repeats)
+        speaker_name = _speaker(ctx, rel, rows, via)
+        if isinstance(speaker_name, dict):
+            rejects.append(speaker_name)
             continue
-        speakers = {r.speaker for r in distinct.values() if r.speaker}
-        if cfg.speaker_from == "metadata":
-            if len(speakers) != 1:
-                found = "none" if not speakers else ", ".join(sorted(speakers))
-                rejects.append(reject(NAME, rel, "missing_speaker",
-                                      f"{rel}: column '{cfg.metadata_speaker_column}' gives speaker {found}; expected exactly one{via}"))
-                continue
-            speaker_name = speakers.pop()
-        else:
-            parts = rel.split("/")[:-1]
-            if len(parts) <= cfg.speaker_path_level:
-                rejects.append(reject(NAME, rel, "missing_speaker",
-                                      f"{rel}: no folder at level {cfg.speaker_path_level} to name the speaker; "
-                                      f"expected RAW/<speaker>/.../<file>{via}"))
-                continue
-            speaker_name = parts[cfg.speaker_path_level]
-        transcript = candidates[0][0] if candidates else None
-        origin = None
-        if candidates:
-            origin = "sidecar" if sidecar_rel is not None and not distinct else "metadata"
-        used_row = min(distinct.values(), key=lambda r: r.line) if distinct else None
+        pairing = pair_transcript(raw, rel, rows, sidecar_by_stem.get(posixpath.splitext(rel)[0]),
+                                  table_rel=table_rel, transcript_column=cfg.metadata_transcript_column,
+                                  encoding=cfg.transcript_encoding, speaker_from_metadata=cfg.speaker_from == "metadata")
+        rejects.extend(pairing.rejects)
         accepted.append({
-            "source_id": source_id(posixpath.basename(stem), probe["sha256"]),
+            "source_id": source_id(posixpath.basename(posixpath.splitext(rel)[0]), probe["sha256"]),
             "source_path": rel,
             "speaker": speaker_id(speaker_name),
             **probe,
-            "transcript": transcript,
-            "transcript_origin": origin,
-            "metadata_line": used_row.line if used_row else None,
+            "transcript": pairing.transcript,
+            "transcript_origin": pairing.origin,
+            "metadata_line": pairing.metadata_line,
         })
 
     if ctx.config.privacy.pseudonymise:
@@ -502,8 +403,9 @@ def run(ctx: StageContext) -> StageResult:
         "audio_files_found": len(paths),
         "audio_files_accepted": len(accepted),
         "audio_files_rejected": audio_rejected,
-        "metadata_rows": len(meta_rows) + len(meta_rejects),
+        "metadata_rows": metadata_rows,
         "transcribed": sum(1 for r in accepted if r["transcript"] is not None),
+        "transcripts_set_aside": sum(1 for r in rejects if r["reason"] in TRANSCRIPT_REASONS),
         "hours": sum(r["duration_s"] for r in accepted) / 3600,
         "speakers": len({r["speaker"] for r in accepted}),
     }

@@ -130,7 +130,8 @@ def _each_dask(func: Callable[[T], R], items: Sequence[T], on_result: Callable[[
     except ImportError as exc:
         from pipeline.errors import UsageError
 
-        raise UsageError("--scheduler needs the cluster extra: pip install 'loam[cluster]'") from exc
+        raise UsageError("--scheduler needs dask.distributed, which is not installed: run pip install '.[cluster]' "
+                         "in a Loam checkout (or pip install 'dask[distributed]>=2024.1')") from exc
     from distributed import as_completed
 
     bar = _progress(len(items), desc, progress)

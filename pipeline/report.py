@@ -90,7 +90,7 @@ def load_clips(out: Path) -> pd.DataFrame:
     """The three subsets as one frame with a ``subset_file`` column (missing files: no rows).
 
     Columns a file lacks are filled with nulls, so a hand-edited manifest still reports.
-    List columns (``phones``, ``tiers``, ``flags``) become Python lists.
+    List columns (``phones``, ``tiers``, ``quality_flags``) become Python lists.
     """
     parts = []
     for name in SUBSETS:
@@ -100,14 +100,14 @@ def load_clips(out: Path) -> pd.DataFrame:
         columns: dict[str, Any] = {}
         for col in _SCALARS:
             columns[col] = table.column(col).to_pylist() if col in table.column_names else [None] * table.num_rows
-        for col in ("phones", "tiers", "flags"):
+        for col in ("phones", "tiers", "quality_flags"):
             values = table.column(col).to_pylist() if col in table.column_names else [None] * table.num_rows
             columns[col] = [v if isinstance(v, list) else [] for v in values]
         part = pd.DataFrame(columns)
         part["subset_file"] = name
         parts.append(part)
     if not parts:
-        return pd.DataFrame({c: [] for c in [*_SCALARS, "phones", "tiers", "flags", "subset_file"]})
+        return pd.DataFrame({c: [] for c in [*_SCALARS, "phones", "tiers", "quality_flags", "subset_file"]})
     frame = pd.concat(parts, ignore_index=True)
     for col in ("duration_s", "loudness_lufs", "loudness_in_lufs", "speaking_rate", "rate_z"):
         frame[col] = pd.to_numeric(frame[col], errors="coerce")
@@ -218,8 +218,8 @@ def build_summary(out: Path, *, clips: pd.DataFrame | None = None) -> dict[str, 
             "missing_phones": sorted(inventory - set(counts)),
         }
 
-    flat = clips[["subset_file", "flags"]].explode("flags").dropna()
-    per_flag = flat.groupby(["flags", "subset_file"]).size()
+    flat = clips[["subset_file", "quality_flags"]].explode("quality_flags").dropna()
+    per_flag = flat.groupby(["quality_flags", "subset_file"]).size()
     flags = {f: {name: int(per_flag.get((f, name), 0)) for name in SUBSETS} for f in QUALITY_FLAGS}
     pairs = split_summary.get("near_duplicate_pairs")
     if not isinstance(pairs, list):  # no split summary: the pairs the manifests name, without similarity

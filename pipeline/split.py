@@ -525,7 +525,7 @@ def _subset_row(c: Clip, subset: str, tiers: tuple[str, ...], *, keep_text: bool
         "speaking_rate": c.speaking_rate,
         "rate_z": c.rate_z,
         "near_duplicate_of": c.near_duplicate_of,
-        "flags": [f for f in FLAG_ORDER if f in flags],
+        "quality_flags": [f for f in FLAG_ORDER if f in flags],
     }
 
 

@@ -530,7 +530,7 @@ def check_empty_subsets(s: _Subsets, config: Config) -> list[Problem]:
     trained or scored on it. (Unlabelled is whatever is left, and may be empty.)"""
     problems: list[Problem] = []
     budgets = [b for b in config.split.labelled_budgets if parse_duration_s(b) > 0]
-    why = ("none qualified: see manifests/rejected.parquet (rejected transcripts) and the flags of "
+    why = ("none qualified: see manifests/rejected.parquet (rejected transcripts) and the quality_flags of "
            "the other subsets (transcript_rejected, gates)")
     labelled = s.tables.get("labelled")
     if budgets and labelled is not None and labelled.num_rows == 0:
@@ -543,10 +543,10 @@ def check_empty_subsets(s: _Subsets, config: Config) -> list[Problem]:
     if heldout.num_rows == 0:
         problems.append(Problem("error", "subset_empty", subset_file("heldout"), None, None, "no clip",
                                 f"held-out clips for split.heldout = {spec!r}; {why}"))
-    elif s.usable("heldout", "transcript") and s.usable("heldout", "flags"):
+    elif s.usable("heldout", "transcript") and s.usable("heldout", "quality_flags"):
         barred = [*gates.holding_gates(config.quality.gate_actions), *ALWAYS_GATED_FLAGS]
         transcribed = np.asarray(pc.is_valid(s.column("heldout", "transcript")), dtype=bool)
-        scored = transcribed & ~s.list_members("heldout", "flags", barred)
+        scored = transcribed & ~s.list_members("heldout", "quality_flags", barred)
         if not scored.any():
             problems.append(Problem("error", "subset_empty", subset_file("heldout"), None, "transcript",
                                     f"{heldout.num_rows} clips, none with a transcript to score",
@@ -563,10 +563,10 @@ def check_quality_gates(s: _Subsets, config: Config) -> list[Problem]:
     holding = gates.holding_gates(q.gate_actions)
     barred = [*holding, *ALWAYS_GATED_FLAGS]
     problems: list[Problem] = []
-    if s.usable("labelled", "flags"):
-        flags = s.column("labelled", "flags")
-        hit = s.list_members("labelled", "flags", barred)
-        problems += _row_problems("error", "quality_gate", subset_file("labelled"), np.flatnonzero(hit), "flags",
+    if s.usable("labelled", "quality_flags"):
+        flags = s.column("labelled", "quality_flags")
+        hit = s.list_members("labelled", "quality_flags", barred)
+        problems += _row_problems("error", "quality_gate", subset_file("labelled"), np.flatnonzero(hit), "quality_flags",
                                   lambda r: _text(flags[r].as_py()),
                                   f"no labelled clip flagged {', '.join(barred)}")
     # The measured values too, so a hand-cleared flag does not hide a gated clip.
@@ -586,10 +586,10 @@ def check_quality_gates(s: _Subsets, config: Config) -> list[Problem]:
                                     lambda r, c=column: f"{r[c]:.2f}", expected)
     if q.noisy_action == "reject":
         for name in SUBSETS:
-            if s.usable(name, "flags"):
-                flags = s.column(name, "flags")
-                hit = s.list_members(name, "flags", ["noisy"])
-                problems += _row_problems("error", "quality_gate", subset_file(name), np.flatnonzero(hit), "flags",
+            if s.usable(name, "quality_flags"):
+                flags = s.column(name, "quality_flags")
+                hit = s.list_members(name, "quality_flags", ["noisy"])
+                problems += _row_problems("error", "quality_gate", subset_file(name), np.flatnonzero(hit), "quality_flags",
                                           lambda r, flags=flags: _text(flags[r].as_py()),
                                           'no clip flagged noisy: quality.noisy_action = "reject" sets them aside')
     return problems
@@ -956,7 +956,7 @@ def synthetic_out(out: Path, *, n_rows: int, speakers: int = 200) -> Path:
             "speaking_rate": [5.0 if transcribed else None for _ in sel],
             "rate_z": [0.0 if transcribed else None for _ in sel],
             "near_duplicate_of": [None] * n,
-            "flags": [[] for _ in sel],
+            "quality_flags": [[] for _ in sel],
         }
         write_manifest(out / subset_file(name), "subset", table_from_columns("subset", columns), metadata=meta)
     from pipeline.manifest import empty_table

@@ -17,7 +17,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from pipeline.cli import main
-from pipeline.errors import DataError
+from pipeline.errors import ConfigError, DataError
 from pipeline.ingest import read_metadata_table
 from pipeline.manifest import check_table
 from tests.conftest import speechlike, tree_hash
@@ -60,7 +60,7 @@ def faulty_raw(tmp_path: Path) -> tuple[Path, dict[str, str | None]]:
     put("spk/inf.wav", float_wav_with(float("inf")), "non_finite_samples")
     put("spk/huge.wav", float_wav_with(9e29), "out_of_range_samples")
     put("spk/u8.wav", audio(speechlike(2.0, SR, seed=3), SR, subtype="PCM_U8"), None)
-    put("spk/s24.wav", audio(speechlike(2.0, 48000, seed=4), 48000, subtype="PCM_24"), None)
+    put("spk/s24.wav", audio(speechlike(2.0, 48000, seed=4), 48000, subtype="PCM_24"), None)  # kept, untranscribed
     put("spk/f32.wav", audio(speechlike(2.0, 22050, seed=5), 22050, subtype="FLOAT"), None)
     six = np.stack([speechlike(2.0, SR, seed=6)] * 6, axis=1)
     put("spk/six_channels.wav", audio(six, SR), None)
@@ -103,7 +103,6 @@ def faulty_raw(tmp_path: Path) -> tuple[Path, dict[str, str | None]]:
                    "meta.csv:7": "path_outside_root", "meta.csv:8": "path_outside_root",
                    "meta.csv:9": "metadata_missing_audio", "meta.csv:10": "metadata_parse_error",
                    "meta.csv:11": "transcript_encoding"})
-    expect["spk/s24.wav"] = "conflicting_transcripts"
     return raw, expect
 
 
@@ -155,8 +154,9 @@ def test_missing_metadata_column_is_a_clear_error(faulty_raw, tmp_path: Path, ca
     raw, _ = faulty_raw
     (raw / "meta.csv").write_text("path,speaker\nspk/u8.wav,spk\n", encoding="utf-8")
     code = main(["prepare", str(raw), str(tmp_path / "out"), "--set", 'ingest.metadata="meta.csv"'])
-    assert code == 1
-    assert "meta.csv: line 1: missing column(s) 'transcript'" in capsys.readouterr().err
+    assert code == 2  # a configuration error (README, "Exit codes")
+    assert ("meta.csv: line 1: the header has no column 'transcript' (ingest.metadata_transcript_column, from "
+            "the default); the columns present are 'path', 'speaker'.") in capsys.readouterr().err
 
 
 cell = st.text(alphabet=st.characters(blacklist_categories=("Cs",)), max_size=12)
@@ -166,7 +166,8 @@ cell = st.text(alphabet=st.characters(blacklist_categories=("Cs",)), max_size=12
 @given(st.lists(st.lists(cell, min_size=0, max_size=5), max_size=8), st.binary(max_size=40),
        st.sampled_from([",", "\t"]))
 def test_metadata_reader_fuzz(tmp_path: Path, rows: list[list[str]], junk: bytes, delimiter: str) -> None:
-    """Random malformed tables: a DataError or rejects, never another exception."""
+    """Random malformed tables: a DataError, a ConfigError (a column the config names is
+    missing) or rejects, never another exception."""
     raw = tmp_path / "fuzzraw"
     raw.mkdir(exist_ok=True)
     name = "t.tsv" if delimiter == "\t" else "t.csv"
@@ -175,7 +176,7 @@ def test_metadata_reader_fuzz(tmp_path: Path, rows: list[list[str]], junk: bytes
     try:
         parsed, rejects = read_metadata_table(raw, name, path_column="path", transcript_column="transcript",
                                               speaker_column="speaker", need_speaker=False)
-    except DataError as exc:
+    except (DataError, ConfigError) as exc:
         assert name in str(exc)
         return
     for r in rejects:

@@ -133,3 +133,107 @@ def test_reference_generator_matches_readme() -> None:
 
 def test_demo_config_is_valid() -> None:
     load_config(REPO / "demo_corpus" / "corpus.toml")
+
+
+# --- where a bad value came from, and exit codes (README: "2 usage or configuration error")
+
+
+def test_bad_set_value_is_reported_from_the_command_line_not_the_defaults() -> None:
+    with pytest.raises(ConfigError) as err:
+        load_config(None, overrides={"audio.sample_rate": "abc"},
+                    override_flags={"audio.sample_rate": "--set audio.sample_rate=abc"})
+    assert str(err.value) == ('the command line (--set audio.sample_rate=abc): key \'audio.sample_rate\' has value '
+                              '"abc"; allowed: integer >= 8000 <= 96000')
+    assert err.value.exit_code == 2
+
+
+def test_bad_value_is_reported_from_where_it_was_given(tmp_path: Path) -> None:
+    path = write(tmp_path, "[audio]\nvad_aggressiveness = 7\n")
+    # A good override beside a bad file value: the file is at fault.
+    with pytest.raises(ConfigError, match=rf"^{re.escape(str(path))}: key 'audio.vad_aggressiveness' has value 7"):
+        load_config(path, overrides={"audio.sample_rate": 22050})
+    path = write(tmp_path, "[audio]\nsample_rate = 22050\n")
+    # Without the option as typed, the message shows it as --set would.
+    with pytest.raises(ConfigError, match=r"^the command line \(--set audio.sample_rate=10\): key 'audio.sample_rate'"):
+        load_config(path, overrides={"audio.sample_rate": 10})
+    with pytest.raises(ConfigError, match=r"^the command line \(--set audio.smaple_rate=1\): unknown key "
+                                          r"'audio.smaple_rate'; allowed keys in \[audio\]: "):
+        load_config(path, overrides={"audio.smaple_rate": 1})
+
+
+def test_set_into_a_key_that_is_not_a_section(tmp_path: Path) -> None:
+    path = write(tmp_path, "seed = 3\n")
+    with pytest.raises(ConfigError, match=r"^the command line \(--set seed.x=1\): 'seed' is a key, not a section"):
+        load_config(path, overrides={"seed.x": 1}, override_flags={"seed.x": "--set seed.x=1"})
+    # With no seed in the file, the override makes seed a table: still the command line's fault.
+    with pytest.raises(ConfigError, match=r"^the command line \(--set seed.x=1\): key 'seed' has value"):
+        load_config(None, overrides={"seed.x": 1}, override_flags={"seed.x": "--set seed.x=1"})
+
+
+def test_cross_field_rule_names_the_key_that_came_from_the_command_line(tmp_path: Path) -> None:
+    with pytest.raises(ConfigError) as err:
+        load_config(None, overrides={"audio.max_clip_s": 10})
+    assert str(err.value) == ("the command line (--set audio.max_clip_s=10): key 'audio.segment_max_s' has value 15; "
+                              "allowed: a number at most audio.max_clip_s (10)")
+    path = write(tmp_path, "[audio]\nmax_clip_s = 10\n")
+    with pytest.raises(ConfigError, match=rf"^{re.escape(str(path))}: key 'audio.segment_max_s' has value 15"):
+        load_config(path)
+
+
+@pytest.mark.parametrize("name", ["utf-9", "base64", "rot13"])
+def test_transcript_encoding_must_be_a_text_encoding(tmp_path: Path, name: str) -> None:
+    # base64 and rot13 are codecs Python knows, but not text encodings (bytes -> str).
+    path = write(tmp_path, f'[ingest]\ntranscript_encoding = "{name}"\n')
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    assert str(err.value).startswith(f"{path}: key 'ingest.transcript_encoding' has value \"{name}\"; allowed: a "
+                                     "text encoding Python knows, such as \"utf-8\", \"cp1252\"")
+
+
+@pytest.mark.parametrize("name", ["utf-8", "Latin-1", "cp1252", "iso8859_15", "utf-16", "shift_jis"])
+def test_transcript_encoding_accepts_python_codecs(tmp_path: Path, name: str) -> None:
+    assert load_config(write(tmp_path, f'[ingest]\ntranscript_encoding = "{name}"\n')).ingest.transcript_encoding == name
+
+
+def test_speakers_from_metadata_need_a_metadata_table(tmp_path: Path) -> None:
+    path = write(tmp_path, '[ingest]\nspeaker_from = "metadata"\n')
+    with pytest.raises(ConfigError, match=rf"^{re.escape(str(path))}: key 'ingest.metadata' is empty; allowed: the "
+                                          r"metadata table"):
+        load_config(path)
+
+
+def test_duplicate_budget_stops_at_load(tmp_path: Path) -> None:
+    path = write(tmp_path, '[split]\nlabelled_budgets = ["1h", "10m", "1h"]\n')
+    with pytest.raises(ConfigError, match=rf"^{re.escape(str(path))}: key 'split.labelled_budgets' has value "
+                                          r"\['1h', '10m', '1h'\]; allowed: each budget once \(1h appears twice\)"):
+        load_config(path)
+
+
+@pytest.mark.parametrize(("argv", "message"), [
+    (["--set", "audio.sample_rate=abc"],
+     "the command line (--set audio.sample_rate=abc): key 'audio.sample_rate' has value \"abc\""),
+    (["--workers", "-1"], "the command line (--workers -1): key 'run.workers' has value -1; allowed: integer >= 0"),
+    (["--set", "audio.sample_rate"], "--set 'audio.sample_rate': expected KEY=VALUE"),
+    (["--set", "ingest.speaker_from=metadata"],
+     "the command line (--set ingest.speaker_from=metadata): key 'ingest.metadata' is empty"),
+])
+def test_cli_configuration_errors_exit_2_and_name_the_option(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str], argv: list[str], message: str) -> None:
+    from pipeline.cli import main
+
+    (tmp_path / "raw").mkdir()
+    assert main(["prepare", str(tmp_path / "raw"), str(tmp_path / "out"), *argv]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("loam: error: ") and message in err, err
+    assert "<defaults>" not in err
+
+
+def test_cli_bad_config_file_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    from pipeline.cli import main
+
+    (tmp_path / "raw").mkdir()
+    path = write(tmp_path, "[audio]\nsample_rate = 7\n")
+    assert main(["prepare", str(tmp_path / "raw"), str(tmp_path / "out"), "--config", str(path)]) == 2
+    assert f"{path}: key 'audio.sample_rate' has value 7" in capsys.readouterr().err
+    assert main(["prepare", str(tmp_path / "raw"), str(tmp_path / "out"), "--config", str(tmp_path / "none.toml")]) == 2
+    assert "none.toml: cannot read config file" in capsys.readouterr().err

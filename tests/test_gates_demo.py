@@ -25,8 +25,8 @@ def clips_by_id(out: Path) -> dict[str, dict]:
 
 def test_demo_has_no_rate_outlier_and_flags_its_narrowband_files(demo_build: Path) -> None:
     clips = clips_by_id(demo_build)
-    assert not [c for c, r in clips.items() if "rate_outlier" in r["flags"]]
-    narrow = {c for c, r in clips.items() if "narrowband" in r["flags"]}
+    assert not [c for c, r in clips.items() if "rate_outlier" in r["quality_flags"]]
+    narrow = {c for c, r in clips.items() if "narrowband" in r["quality_flags"]}
     # The 8 kHz telephone-rate files of the demo (demo_corpus/README.md) and nothing else.
     ingest = {r["source_id"]: r for r in pq.read_table(demo_build / "stages" / "ingest.parquet").to_pylist()}
     audio = {r["clip_id"]: r for r in pq.read_table(demo_build / "stages" / "audio.parquet").to_pylist()}
@@ -56,7 +56,7 @@ def test_swapped_transcript_is_flagged_as_rate_outlier(demo_build: Path, tmp_pat
     write_manifest(text_path, "text", table, metadata={k: v for k, v in meta.items() if k != "schema"})
     Runner(DEMO, out, load_config(DEMO / "corpus.toml"), workers=1, options={"fresh": True}).prepare(("split",))
     clips = clips_by_id(out)
-    flagged = {c for c, r in clips.items() if "rate_outlier" in r["flags"]}
+    flagged = {c for c, r in clips.items() if "rate_outlier" in r["quality_flags"]}
     assert flagged == {short}
     assert clips[short]["subset"] != "labelled"
     assert abs(clips[short]["rate_z"]) > 3.5  # quality.rate_max_abs_z default
@@ -91,12 +91,12 @@ def test_transcribed_narrowband_clip_stays_labelled_unless_demotion_is_on(demo_b
     kept = resplit(demo_build, tmp_path / "default")
     cid = narrow_clip(kept)
     assert kept[cid]["subset"] == "labelled" and kept[cid]["tiers"] == ["10m"]
-    assert {"narrowband", "upsampled"} <= set(kept[cid]["flags"]) and kept[cid]["transcript"]
+    assert {"narrowband", "upsampled"} <= set(kept[cid]["quality_flags"]) and kept[cid]["transcript"]
     assert errors_only(tmp_path / "default") == []
 
     demoted = resplit(demo_build, tmp_path / "demote", narrowband_action="demote")
     assert demoted[cid]["subset"] == "unlabelled" and demoted[cid]["transcript"] is None
-    assert "narrowband" in demoted[cid]["flags"]
+    assert "narrowband" in demoted[cid]["quality_flags"]
     assert errors_only(tmp_path / "demote") == []
     # The other clips do not move: only the narrowband gate changed.
     assert {c: r["subset"] for c, r in kept.items() if c != cid} == {c: r["subset"] for c, r in demoted.items()
@@ -107,7 +107,7 @@ def test_transcribed_narrowband_clip_stays_labelled_unless_demotion_is_on(demo_b
     shutil.copy(tmp_path / "demote" / "config.resolved.json", tmp_path / "default" / "config.resolved.json")
     errors = errors_only(tmp_path / "default", warnings=("tier_budget", "config_hash"))
     assert {(p.check, p.file, p.column) for p in errors} == {
-        ("quality_gate", "manifests/labelled.parquet", "flags"),
+        ("quality_gate", "manifests/labelled.parquet", "quality_flags"),
         ("quality_gate", "manifests/labelled.parquet", "bandwidth_hz")}
     labelled = pq.read_table(tmp_path / "default" / "manifests" / "labelled.parquet").column("clip_id").to_pylist()
     assert {labelled[p.row] for p in errors} == {cid}

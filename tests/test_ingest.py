@@ -131,13 +131,29 @@ def test_symlinked_audio_file_out_of_root_is_rejected(small_raw: Path, tmp_path:
     assert {r["source_path"]: r["reason"] for r in rejects}["spk_a/linked.wav"] == "path_outside_root"
 
 
-def test_conflicting_transcripts_quarantine_the_file(small_raw: Path, tmp_path: Path) -> None:
+def test_conflicting_transcripts_cost_the_transcripts_not_the_audio(small_raw: Path, tmp_path: Path) -> None:
     (small_raw / "meta.csv").write_text("path,transcript,speaker\nspk_a/a1.wav,another text,spk_a\n", encoding="utf-8")
     rows, rejects = run_ingest(small_raw, tmp_path / "out")
     reasons = {r["source_path"]: r["reason"] for r in rejects}
-    assert reasons["spk_a/a1.wav"] == "conflicting_transcripts"
-    assert reasons["meta.csv:2"] == "conflicting_transcripts"
-    assert "spk_a/a1.wav" not in {r["source_path"] for r in rows}
+    assert reasons == {"spk_a/a1.txt": "conflicting_transcripts", "meta.csv:2": "conflicting_transcripts",
+                       "spk_b/broken.wav": "empty", "spk_b/copy.wav": "duplicate_content"}
+    row = {r["source_path"]: r for r in rows}["spk_a/a1.wav"]
+    assert (row["transcript"], row["transcript_origin"], row["metadata_line"]) == (None, None, None)
+    detail = {r["source_path"]: r["detail"] for r in rejects}
+    # Each sentence names its source, the other transcript and what became of the audio.
+    assert detail["spk_a/a1.txt"].startswith("spk_a/a1.txt: transcript 'the first line' for 'spk_a/a1.wav' "
+                                             "differs from line 2 of meta.csv: 'another text'")
+    assert detail["meta.csv:2"].startswith("meta.csv: line 2: transcript 'another text'")
+    assert "'spk_a/a1.wav' is kept as untranscribed audio" in detail["meta.csv:2"]
+
+
+def test_agreeing_sources_give_one_transcript(small_raw: Path, tmp_path: Path) -> None:
+    (small_raw / "meta.csv").write_text("path,transcript,speaker\nspk_a/a1.wav,  the first line ,spk_a\n",
+                                        encoding="utf-8")
+    rows, rejects = run_ingest(small_raw, tmp_path / "out")
+    row = {r["source_path"]: r for r in rows}["spk_a/a1.wav"]
+    assert (row["transcript"], row["transcript_origin"], row["metadata_line"]) == ("the first line", "metadata", 2)
+    assert not [r for r in rejects if r["source_path"] in ("spk_a/a1.txt", "meta.csv:2")]
 
 
 def test_metadata_table_faults(small_raw: Path, tmp_path: Path) -> None:
@@ -157,19 +173,135 @@ def test_metadata_table_faults(small_raw: Path, tmp_path: Path) -> None:
     assert {r["source_path"]: r["transcript"] for r in rows}["spk_b/b1.wav"] == "a line"
 
 
-def test_missing_metadata_column_stops_with_message(small_raw: Path, tmp_path: Path) -> None:
-    from pipeline.errors import DataError
+def test_missing_metadata_column_is_a_configuration_error(small_raw: Path, tmp_path: Path) -> None:
+    from pipeline.errors import ConfigError
 
     (small_raw / "meta.csv").write_text("file,text\nspk_b/b1.wav,x\n", encoding="utf-8")
-    with pytest.raises(DataError, match=r"meta.csv: line 1: missing column\(s\) 'path', 'transcript'; found 'file', 'text'"):
+    with pytest.raises(ConfigError) as err:
+        run_ingest(small_raw, tmp_path / "out")
+    assert err.value.exit_code == 2
+    assert str(err.value).startswith(
+        "meta.csv: line 1: the header has no column 'path' (ingest.metadata_path_column, from the default); "
+        "column 'transcript' (ingest.metadata_transcript_column, from the default); "
+        "the columns present are 'file', 'text'.")
+
+
+def test_metadata_table_named_wrongly_is_a_configuration_error(small_raw: Path, tmp_path: Path) -> None:
+    from pipeline.errors import ConfigError
+
+    with pytest.raises(ConfigError, match=r"key 'ingest.metadata' has value 'nowhere.csv': cannot read the "
+                                          r"metadata table \(No such file or directory\)"):
+        run_ingest(small_raw, tmp_path / "out", {"ingest": {"metadata": "nowhere.csv"}})
+    with pytest.raises(ConfigError, match=r"key 'ingest.metadata' has value '../meta.csv': the path '../meta.csv' "
+                                          r"leaves the raw folder"):
+        run_ingest(small_raw, tmp_path / "out", {"ingest": {"metadata": "../meta.csv"}})
+
+
+def test_empty_metadata_table_stops_with_message(small_raw: Path, tmp_path: Path) -> None:
+    from pipeline.errors import DataError
+
+    (small_raw / "meta.csv").write_bytes(b"")
+    with pytest.raises(DataError, match=r"meta.csv: the metadata table is empty; expected a header line"):
         run_ingest(small_raw, tmp_path / "out")
 
 
-def test_sidecar_not_utf8_is_rejected(small_raw: Path, tmp_path: Path) -> None:
-    (small_raw / "spk_a" / "a2.txt").write_bytes(b"na\xefve")
-    _, rejects = run_ingest(small_raw, tmp_path / "out")
-    r = next(r for r in rejects if r["source_path"] == "spk_a/a2.flac")
-    assert r["reason"] == "transcript_encoding" and "0xef" in r["detail"]
+def test_latin1_sidecar_costs_its_transcript_not_its_audio(small_raw: Path, tmp_path: Path) -> None:
+    (small_raw / "spk_a" / "a2.txt").write_bytes("the na\u00efve caf\u00e9".encode("latin-1"))
+    rows, rejects = run_ingest(small_raw, tmp_path / "out")
+    row = {r["source_path"]: r for r in rows}["spk_a/a2.flac"]
+    assert (row["transcript"], row["transcript_origin"]) == (None, None)
+    assert "spk_a/a2.flac" not in {r["source_path"] for r in rejects}
+    r = next(r for r in rejects if r["source_path"] == "spk_a/a2.txt")
+    assert (r["reason"], r["stage"], r["clip_id"]) == ("transcript_encoding", "ingest", None)
+    # 0xEF is 'ï' in ISO 8859-1, and a UTF-8 lead byte that 'v' (0x76) cannot follow (RFC 3629, section 3).
+    assert r["detail"] == (
+        "spk_a/a2.txt: byte 6 (0xef, after 'the na') is not valid utf-8; the transcript is set aside and "
+        "'spk_a/a2.flac' is kept as untranscribed audio; save the file as utf-8, or set "
+        "ingest.transcript_encoding to the encoding it was written in (for example \"cp1252\" for Windows "
+        "Western European text), then run again")
+
+
+@pytest.mark.parametrize("encoding", ["latin-1", "cp1252", "iso8859_15"])
+def test_transcript_encoding_reads_sidecars_and_the_table(small_raw: Path, tmp_path: Path, encoding: str) -> None:
+    (small_raw / "spk_a" / "a2.txt").write_bytes("the na\u00efve caf\u00e9".encode(encoding))
+    (small_raw / "meta.csv").write_bytes("path,transcript,speaker\nspk_b/b1.wav,cr\u00e8me br\u00fbl\u00e9e,spk_b\n"
+                                         .encode(encoding))
+    # A UTF-8 byte-order mark declares UTF-8 whatever the setting (Unicode Standard, section 23.8, cited from memory).
+    (small_raw / "spk_b" / "b2.txt").write_bytes(b"\xef\xbb\xbf" + "\u00e0 bient\u00f4t".encode("utf-8"))
+    rows, rejects = run_ingest(small_raw, tmp_path / "out", {"ingest": {"metadata": "meta.csv",
+                                                                         "transcript_encoding": encoding}})
+    transcripts = {r["source_path"]: r["transcript"] for r in rows}
+    assert transcripts["spk_a/a2.flac"] == "the na\u00efve caf\u00e9"
+    assert transcripts["spk_b/b1.wav"] == "cr\u00e8me br\u00fbl\u00e9e"
+    assert transcripts["spk_b/b2.ogg"] == "\u00e0 bient\u00f4t"
+    assert not [r for r in rejects if r["reason"] == "transcript_encoding"]
+
+
+def test_metadata_transcript_in_the_wrong_encoding_keeps_row_speaker_and_audio(small_raw: Path, tmp_path: Path) -> None:
+    (small_raw / "meta.csv").write_bytes(b"path,transcript,speaker\n"
+                                         b"spk_b/b1.wav,a second line,reed\n"
+                                         b"spk_b/b2.ogg,caf\xe9 au lait,heron\n")
+    rows, rejects = run_ingest(small_raw, tmp_path / "out", {"ingest": {"metadata": "meta.csv",
+                                                                         "speaker_from": "metadata"}})
+    by_path = {r["source_path"]: r for r in rows}
+    # The row still names the speaker, so the audio keeps it; only the transcript goes.
+    assert (by_path["spk_b/b2.ogg"]["speaker"], by_path["spk_b/b2.ogg"]["transcript"]) == ("heron", None)
+    assert by_path["spk_b/b2.ogg"]["metadata_line"] == 3
+    r = next(r for r in rejects if r["source_path"] == "meta.csv:3")
+    assert r["reason"] == "transcript_encoding"
+    assert r["detail"].startswith("meta.csv: line 3: column 'transcript': byte 3 of the field (0xe9, after 'caf') "
+                                  "is not valid utf-8; the transcript is set aside and 'spk_b/b2.ogg' is kept as "
+                                  "untranscribed audio; save the table as utf-8")
+    assert "spk_b/b2.ogg" not in {r["source_path"] for r in rejects}
+
+
+def test_metadata_path_in_the_wrong_encoding_rejects_the_row_only(small_raw: Path, tmp_path: Path) -> None:
+    (small_raw / "meta.csv").write_bytes(b"path,transcript,speaker\nspk_b/b\xe91.wav,some words,spk_b\n")
+    rows, rejects = run_ingest(small_raw, tmp_path / "out")
+    r = next(r for r in rejects if r["source_path"] == "meta.csv:2")
+    assert r["reason"] == "metadata_parse_error"
+    assert r["detail"].startswith("meta.csv: line 2: column 'path': byte 7 of the field (0xe9, after 'spk_b/b') "
+                                  "is not valid utf-8")
+    assert {"spk_b/b1.wav", "spk_b/b2.ogg"} <= {r["source_path"] for r in rows}
+
+
+def test_empty_transcripts_mean_none_and_keep_the_audio(small_raw: Path, tmp_path: Path) -> None:
+    (small_raw / "spk_a" / "a2.txt").write_text(" \n\t\n", encoding="utf-8")
+    (small_raw / "meta.csv").write_text("path,transcript,speaker\nspk_b/b1.wav,,spk_b\nspk_b/b2.ogg,  ,spk_b\n",
+                                        encoding="utf-8")
+    rows, rejects = run_ingest(small_raw, tmp_path / "out")
+    by_path = {r["source_path"]: r for r in rows}
+    assert {p: by_path[p]["transcript"] for p in ("spk_a/a2.flac", "spk_b/b1.wav", "spk_b/b2.ogg")} == {
+        "spk_a/a2.flac": None, "spk_b/b1.wav": None, "spk_b/b2.ogg": None}
+    # An empty field says "no transcript" and the row is used; an empty file is set aside, visibly.
+    assert (by_path["spk_b/b1.wav"]["metadata_line"], by_path["spk_b/b2.ogg"]["metadata_line"]) == (2, 3)
+    r = next(r for r in rejects if r["source_path"] == "spk_a/a2.txt")
+    assert r["reason"] == "empty_transcript" and r["stage"] == "ingest"
+    assert r["detail"] == ("spk_a/a2.txt: the transcript file is empty; the transcript is set aside and "
+                           "'spk_a/a2.flac' is kept as untranscribed audio; write the transcript into it, or "
+                           "delete it if the audio has none")
+    assert not [r for r in rejects if r["source_path"].startswith("meta.csv")]
+
+
+def test_bad_sidecar_beside_a_good_metadata_transcript(small_raw: Path, tmp_path: Path) -> None:
+    (small_raw / "spk_b" / "b1.txt").write_bytes(b"\xff\xfe")
+    rows, rejects = run_ingest(small_raw, tmp_path / "out")
+    assert {r["source_path"]: r["transcript"] for r in rows}["spk_b/b1.wav"] == "a second line"
+    r = next(r for r in rejects if r["source_path"] == "spk_b/b1.txt")
+    assert "the transcript is set aside and 'spk_b/b1.wav' keeps the transcript from line 2 of meta.csv" in r["detail"]
+
+
+def test_unreadable_and_outside_sidecars_keep_their_audio(small_raw: Path, tmp_path: Path) -> None:
+    secret = tmp_path / "secret.txt"
+    secret.write_text("not for reading", encoding="utf-8")
+    (small_raw / "spk_a" / "a2.txt").symlink_to(secret)
+    (small_raw / "spk_b" / "b2.txt").symlink_to("gone.txt")  # dangling: cannot be read
+    rows, rejects = run_ingest(small_raw, tmp_path / "out")
+    by_path = {r["source_path"]: r for r in rows}
+    assert by_path["spk_a/a2.flac"]["transcript"] is None and by_path["spk_b/b2.ogg"]["transcript"] is None
+    reasons = {r["source_path"]: r["reason"] for r in rejects}
+    assert (reasons["spk_a/a2.txt"], reasons["spk_b/b2.txt"]) == ("path_outside_root", "transcript_unreadable")
+    assert all("not for reading" not in r["detail"] for r in rejects)
 
 
 def test_file_at_root_has_no_speaker(small_raw: Path, tmp_path: Path) -> None:
@@ -212,7 +344,7 @@ def test_demo_corpus_counts_conservation_and_reasons(tmp_path: Path) -> None:
         "alder/alder_tape_label.wav": "undecodable",
         "wren/wren_09.wav": "undecodable",
         "wren/wren_10.flac": "duplicate_content",
-        "sedge/sedge_03.wav": "conflicting_transcripts",
+        "sedge/sedge_03.txt": "conflicting_transcripts",
         "metadata.csv:6": "conflicting_transcripts",
         "metadata.csv:11": "metadata_missing_audio",
         "metadata.csv:12": "path_outside_root",
@@ -221,7 +353,9 @@ def test_demo_corpus_counts_conservation_and_reasons(tmp_path: Path) -> None:
                          if p.suffix.lower() in {".wav", ".flac", ".ogg"})
     accepted = sorted(r["source_path"] for r in rows)
     assert len(audio_found) >= 40
-    assert sorted(accepted + [p for p in reasons if ":" not in p]) == audio_found
+    assert sorted(accepted + [p for p in reasons if p.endswith((".wav", ".flac", ".ogg"))]) == audio_found
+    # The conflicting sidecar and row cost only the transcript: the audio is kept, untranscribed.
+    assert {r["source_path"]: r["transcript"] for r in rows}["sedge/sedge_03.wav"] is None
     assert len({r["speaker"] for r in rows}) >= 5
     # Every metadata row (lines 2..N) is used by an ingest row or rejected.
     n_lines = len((DEMO / "metadata.csv").read_text(encoding="utf-8").strip().splitlines())
@@ -240,3 +374,57 @@ def test_container_missing_from_libsndfile_is_unsupported(small_raw: Path, tmp_p
         _, rejects = run_ingest(small_raw, tmp_path / "out", workers=1)
     r = next(r for r in rejects if r["source_path"] == "spk_b/b2.ogg")
     assert r["reason"] == "unsupported_format" and "cannot read OGG" in r["detail"]
+
+
+def test_latin1_sidecar_end_to_end_then_fixed_by_the_setting(small_raw: Path, tmp_path: Path) -> None:
+    """The audio of a Latin-1 sidecar reaches a subset; naming the encoding brings the transcript back."""
+    from pipeline.cli import main
+
+    (small_raw / "spk_a" / "a2.txt").write_bytes("the na\u00efve caf\u00e9".encode("latin-1"))
+    out = tmp_path / "out"
+    common = ["--workers", "1", "--no-progress", "--set", 'ingest.metadata="meta.csv"', "--set", 'split.heldout="0%"',
+              "--set", 'split.labelled_budgets=["2s"]', "--set", "split.keep_transcripts=true"]
+    assert main(["prepare", str(small_raw), str(out), *common]) == 0
+    subsets = {r["source_path"]: r for n in ("labelled", "unlabelled", "heldout")
+               for r in pq.read_table(out / "manifests" / f"{n}.parquet").to_pylist()}
+    assert subsets["spk_a/a2.flac"]["subset"] == "unlabelled" and subsets["spk_a/a2.flac"]["transcript"] is None
+    rejected = {r["source_path"]: r for r in pq.read_table(out / "manifests" / "rejected.parquet").to_pylist()}
+    assert rejected["spk_a/a2.txt"]["reason"] == "transcript_encoding"
+    assert "spk_a/a2.flac" not in rejected
+    assert main(["validate", str(out), "--manifests-only"]) == 0
+
+    assert main(["prepare", str(small_raw), str(out), *common, "--set", 'ingest.transcript_encoding="latin-1"']) == 0
+    ingest_rows = {r["source_path"]: r for r in pq.read_table(out / "stages" / "ingest.parquet").to_pylist()}
+    assert ingest_rows["spk_a/a2.flac"]["transcript"] == "the na\u00efve caf\u00e9"
+    rejected = {r["source_path"] for r in pq.read_table(out / "manifests" / "rejected.parquet").to_pylist()}
+    assert "spk_a/a2.txt" not in rejected
+
+
+def test_decode_text_reports_the_byte_offset_in_the_file() -> None:
+    from pipeline.transcripts import decode_text
+
+    assert decode_text(b"ok \xe9", encoding="utf-8") == (None, 3)
+    # The offset counts the byte-order mark, so it points into the file as stored.
+    assert decode_text(b"\xef\xbb\xbfok \xff", encoding="cp1252") == (None, 6)
+    assert decode_text("h\u00e9".encode("utf-16"), encoding="utf-16") == ("h\u00e9", None)
+    # 0x81 is one of the five bytes cp1252 leaves undefined (Python's cp1252 codec table).
+    assert decode_text(b"a\x81", encoding="cp1252") == (None, 1)
+
+
+def test_sidecar_with_utf8_mark_is_judged_as_utf8(tmp_path: Path) -> None:
+    from pipeline.transcripts import read_sidecar
+
+    (tmp_path / "a.txt").write_bytes(b"\xef\xbb\xbfok \xff")
+    text, problem = read_sidecar(tmp_path, "a.txt", encoding="cp1252")
+    assert text is None and problem is not None
+    assert problem[1] == "a.txt: byte 6 (0xff, after 'ok ') is not valid utf-8"
+
+
+def test_table_with_utf8_mark_is_judged_as_utf8(small_raw: Path, tmp_path: Path) -> None:
+    (small_raw / "meta.csv").write_bytes(b"\xef\xbb\xbfpath,transcript,speaker\nspk_b/b1.wav,na\xefve,spk_b\n")
+    rows, rejects = run_ingest(small_raw, tmp_path / "out", {"ingest": {"metadata": "meta.csv",
+                                                                         "transcript_encoding": "cp1252"}})
+    r = next(r for r in rejects if r["source_path"] == "meta.csv:2")
+    assert r["detail"].startswith("meta.csv: line 2: column 'transcript': byte 2 of the field (0xef, after 'na') "
+                                  "is not valid utf-8")
+    assert {r["source_path"]: r["transcript"] for r in rows}["spk_b/b1.wav"] is None

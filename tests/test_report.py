@@ -35,8 +35,8 @@ EVIL_DETAIL = 'spk/x.wav: header says <img src=x onerror="alert(2)"> & more'
 def built(tmp_path_factory: pytest.TempPathFactory) -> Out:
     out = Out(tmp_path_factory.mktemp("report") / "out")
     out.rows["labelled"][0]["transcript"] = EVIL_TRANSCRIPT
-    out.rows["labelled"][1]["flags"] = ["upsampled"]
-    out.rows["unlabelled"][0]["flags"] = ["noisy", "near_duplicate"]
+    out.rows["labelled"][1]["quality_flags"] = ["upsampled"]
+    out.rows["unlabelled"][0]["quality_flags"] = ["noisy", "near_duplicate"]
     out.rows["unlabelled"][0]["near_duplicate_of"] = out.rows["unlabelled"][1]["clip_id"]
     out.write()
     rejects = [

@@ -272,7 +272,7 @@ def check_invariants(corpus: Corpus, data: dict[str, Any], result: StageResult, 
         assert not straddling
     assert all(r["transcript"] is None and r["phones"] is None for r in rows["unlabelled"])
     assert all(r["tiers"] == [] for s in ("unlabelled", "heldout") for r in rows[s])
-    assert all(("heldout_untranscribed" in r["flags"]) == (r["transcript"] is None) for r in rows["heldout"])
+    assert all(("heldout_untranscribed" in r["quality_flags"]) == (r["transcript"] is None) for r in rows["heldout"])
 
     budgets = sorted(data["split"]["labelled_budgets"], key=split.parse_duration_s)
     members = {b: [r["clip_id"] for r in rows["labelled"] if b in r["tiers"]] for b in budgets}
@@ -449,7 +449,7 @@ def test_near_duplicates_bind_groups(tmp_path: Path) -> None:
     assert rows[copy_id]["near_duplicate_of"] == original["clip_id"]
     assert rows[original["clip_id"]]["near_duplicate_of"] == copy_id
     assert rows[twin_b]["near_duplicate_of"] == twin_a["clip_id"]
-    assert "near_duplicate" in rows[copy_id]["flags"] and "near_duplicate" in rows[twin_b]["flags"]
+    assert "near_duplicate" in rows[copy_id]["quality_flags"] and "near_duplicate" in rows[twin_b]["quality_flags"]
     pairs = {tuple(p["clips"]): p for p in result.summary["near_duplicate_pairs"]}
     assert pairs[tuple(sorted([copy_id, original["clip_id"]]))]["similarity"] >= 0.85
     assert pairs[tuple(sorted([twin_b, twin_a["clip_id"]]))]["identical"] is True
@@ -499,12 +499,12 @@ def test_gates_flag_and_demote_as_configured(tmp_path: Path, narrowband_action: 
     expected_flag = {"noisy": "noisy", "narrow": "narrowband", "mismatch": "rate_outlier"}
     demoted = {cid for cid, kind in flagged.items() if kind != "narrow" or narrowband_action == "demote"}
     for cid, kind in flagged.items():
-        assert expected_flag[kind] in rows[cid]["flags"], (cid, rows[cid]["flags"], rows[cid]["rate_z"])
+        assert expected_flag[kind] in rows[cid]["quality_flags"], (cid, rows[cid]["quality_flags"], rows[cid]["rate_z"])
         assert rows[cid]["transcript"] is not None or rows[cid]["subset"] == "unlabelled"
         if cid in demoted:
             assert rows[cid]["subset"] != "labelled"
     # Correct transcripts are not rate outliers.
-    assert not [c for c, r in rows.items() if "rate_outlier" in r["flags"] and c not in flagged]
+    assert not [c for c, r in rows.items() if "rate_outlier" in r["quality_flags"] and c not in flagged]
     assert all(abs(r["rate_z"]) <= 3.5 for c, r in rows.items() if r["rate_z"] is not None and c not in flagged)
     # The 10h tier is short, so every eligible training clip is labelled, and nothing else:
     # a flagged narrowband clip keeps its transcript and its place unless demotion is on.
@@ -534,7 +534,7 @@ def test_every_gate_can_be_a_flag_only_and_noisy_clips_rejected(tmp_path: Path) 
     assert not noisy & set(rows)
     for kind, flag in (("narrow", "narrowband"), ("mismatch", "rate_outlier")):
         marked = [rows[cid] for k, cid in special.items() if k.endswith(":" + kind)]
-        assert all(flag in r["flags"] for r in marked)
+        assert all(flag in r["quality_flags"] for r in marked)
         assert any(r["subset"] == "labelled" for r in marked)
     result = split.run(make_ctx(tmp_path, corpus, {**data, "quality": {"noisy_action": "flag"}}, fresh=True))
     rows = all_rows(result)
@@ -552,8 +552,8 @@ def test_notes_and_rejected_transcripts(tmp_path: Path) -> None:
     lost = corpus.add("otter", 3.0, transcribed=True, accepted=False)
     result = split.run(make_ctx(tmp_path, corpus, {"split": {"labelled_budgets": ["1h"], "keep_transcripts": True}}))
     rows = all_rows(result)
-    assert "upsampled" in rows[up]["flags"] and "peak_limited" in rows[limited]["flags"]
-    assert "transcript_rejected" in rows[lost]["flags"]
+    assert "upsampled" in rows[up]["quality_flags"] and "peak_limited" in rows[limited]["quality_flags"]
+    assert "transcript_rejected" in rows[lost]["quality_flags"]
     assert rows[lost]["subset"] != "labelled" and rows[lost]["transcript"] is None
     # keep_transcripts keeps them in unlabelled.
     assert all(r["transcript"] is not None for r in rows.values() if r["subset"] == "unlabelled"

@@ -85,7 +85,7 @@ def clip_row(out: Path, *, clip_id: str, speaker: str, subset: str, freq_hz: flo
         "norm_text": text, "phones": None if text is None else cmu_phones(text),
         "subset": subset, "tiers": list(tiers), "speech_ratio": 0.9, "snr_db": 35.0,
         "bandwidth_hz": 7800.0, "speaking_rate": None if text is None else 5.0,
-        "rate_z": None if text is None else 0.1, "near_duplicate_of": None, "flags": [],
+        "rate_z": None if text is None else 0.1, "near_duplicate_of": None, "quality_flags": [],
         **audio,
     }
 
@@ -247,12 +247,12 @@ def test_schema_rule_names_row_column_and_rule(out: Out) -> None:
 
 
 def test_missing_and_mistyped_columns_are_findings_not_tracebacks(out: Out) -> None:
-    table = table_from_rows("subset", out.rows["labelled"]).drop_columns(["flags", "tiers"])
+    table = table_from_rows("subset", out.rows["labelled"]).drop_columns(["quality_flags", "tiers"])
     table = table.set_column(table.schema.get_field_index("duration_s"), "duration_s",
                              pa.array([str(r["duration_s"]) for r in out.rows["labelled"]]))
     write_table(out.root, LAB, table, build_config(CONFIG).sha256())
     problems = out.validate()
-    only(problems, "schema", LAB, None, "flags")
+    only(problems, "schema", LAB, None, "quality_flags")
     only(problems, "schema", LAB, None, "tiers")
     assert "string" in only(problems, "schema", LAB, None, "duration_s").found
     assert not [p for p in problems if "could not run" in p.found], "\n".join(map(str, problems))
@@ -389,8 +389,8 @@ def test_empty_heldout_is_an_error_unless_the_config_asks_for_none(out: Out) -> 
 def test_heldout_with_nothing_to_score_is_an_error(out: Out) -> None:
     held = out.rows["heldout"]
     held[0].update(transcript=None, norm_text=None, phones=None, speaking_rate=None, rate_z=None,
-                   flags=["heldout_untranscribed"])
-    held[1].update(flags=["rate_outlier"], rate_z=5.0)
+                   quality_flags=["heldout_untranscribed"])
+    held[1].update(quality_flags=["rate_outlier"], rate_z=5.0)
     out.write()
     only(out.validate(), "subset_empty", HELD, None, "transcript")
     out.set_config(quality={"rate_outlier_action": "flag"})  # the second clip is scored again
@@ -486,20 +486,20 @@ def test_duration_must_match_samples(out: Out) -> None:
 @pytest.mark.parametrize("flag", ["noisy", "rate_outlier", "transcript_rejected"])
 def test_gated_flag_in_labelled(out: Out, flag: str) -> None:
     # Source: the defaults of quality.noisy_action and quality.rate_outlier_action (demote).
-    out.rows["labelled"][2]["flags"] = ["upsampled", flag]
+    out.rows["labelled"][2]["quality_flags"] = ["upsampled", flag]
     out.write()
-    only(out.validate(), "quality_gate", LAB, 2, "flags")
+    only(out.validate(), "quality_gate", LAB, 2, "quality_flags")
 
 
 def test_narrowband_in_labelled_is_allowed_by_default_and_an_error_when_demoted(out: Out) -> None:
     # Source: quality.narrowband_action in schemas/config.schema.json ("flag" by default).
-    out.rows["labelled"][2]["flags"] = ["narrowband"]
+    out.rows["labelled"][2]["quality_flags"] = ["narrowband"]
     out.rows["labelled"][2]["bandwidth_hz"] = 3400.0
     out.write()
     assert out.validate() == []
     out.set_config(quality={"narrowband_action": "demote"})
     problems = out.validate()
-    only(problems, "quality_gate", LAB, 2, "flags")
+    only(problems, "quality_gate", LAB, 2, "quality_flags")
     only(problems, "quality_gate", LAB, 2, "bandwidth_hz")
 
 
@@ -509,7 +509,7 @@ def test_narrowband_in_labelled_is_allowed_by_default_and_an_error_when_demoted(
 ])
 def test_a_gate_set_to_flag_lets_its_clips_into_labelled(out: Out, flag: str, column: str, value: float,
                                                          key: str) -> None:
-    out.rows["labelled"][1]["flags"] = [flag]
+    out.rows["labelled"][1]["quality_flags"] = [flag]
     out.rows["labelled"][1][column] = value
     out.set_config(quality={key: "flag"})
     assert out.validate() == []
@@ -517,16 +517,16 @@ def test_a_gate_set_to_flag_lets_its_clips_into_labelled(out: Out, flag: str, co
 
 def test_rejected_noisy_clips_must_be_in_no_subset(out: Out) -> None:
     # Source: quality.noisy_action = "reject" sets noisy clips aside (docs/split.md, Quality gates).
-    out.rows["heldout"][1]["flags"] = ["noisy"]
+    out.rows["heldout"][1]["quality_flags"] = ["noisy"]
     out.rows["heldout"][1]["snr_db"] = 1.0
     out.write()
     assert out.validate() == []  # demoted: a held-out clip keeps its flag, unscored
     out.set_config(quality={"noisy_action": "reject"})
-    only(out.validate(), "quality_gate", HELD, 1, "flags")
+    only(out.validate(), "quality_gate", HELD, 1, "quality_flags")
 
 
 def test_heldout_keeps_flagged_clips(out: Out) -> None:
-    out.rows["heldout"][0]["flags"] = ["noisy"]
+    out.rows["heldout"][0]["quality_flags"] = ["noisy"]
     out.rows["heldout"][0]["snr_db"] = 1.0
     out.write()
     assert out.validate() == []
@@ -543,7 +543,7 @@ def test_gate_applies_to_values_as_well_as_flags(out: Out) -> None:
 
 def test_near_duplicates_split_across_heldout(out: Out) -> None:
     out.rows["unlabelled"][0]["near_duplicate_of"] = out.rows["heldout"][1]["clip_id"]
-    out.rows["unlabelled"][0]["flags"] = ["near_duplicate"]
+    out.rows["unlabelled"][0]["quality_flags"] = ["near_duplicate"]
     out.write()
     problem = only(out.validate(), "near_duplicate_split", UNL, 0, "near_duplicate_of")
     assert f"{HELD} row 1" in problem.found
@@ -630,13 +630,13 @@ def test_exit_codes_and_json_through_the_cli(out: Out, tmp_path: Path, capsys: p
 
 
 def test_table_lists_every_problem_then_a_count(out: Out) -> None:
-    out.rows["labelled"][0]["flags"] = ["noisy"]
+    out.rows["labelled"][0]["quality_flags"] = ["noisy"]
     out.rows["heldout"][1]["norm_text"] = out.rows["labelled"][1]["norm_text"]
     out.write()
     text = format_table(validate_out(out.root))
     lines = text.splitlines()
     assert lines[0].split() == ["severity", "check", "where", "found", "expected"]
-    assert any(line.startswith("error") and "quality_gate" in line and f"{LAB}:0 [flags]" in line for line in lines)
+    assert any(line.startswith("error") and "quality_gate" in line and f"{LAB}:0 [quality_flags]" in line for line in lines)
     assert any(line.startswith("warning") and "text_leak" in line for line in lines)
     assert lines[-1].startswith("FAILED: 1 error, 1 warning; 8 rows checked")
 
