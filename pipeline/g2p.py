@@ -403,8 +403,11 @@ class NeuralModel:
     def _gru_cell(x: Any, h: Any, w_ih: Any, w_hh: Any, b_ih: Any, b_hh: Any) -> Any:
         import numpy as np
 
-        gates_x = np.matmul(x, w_ih.T) + b_ih
-        gates_h = np.matmul(h, w_hh.T) + b_hh
+        # np.einsum runs numpy's own loops; np.matmul would call BLAS, whose order of
+        # summation follows its threads and CPU kernel, and a last-digit difference
+        # can change which phone wins an argmax below.
+        gates_x = np.einsum("bi,oi->bo", x, w_ih, optimize=False) + b_ih
+        gates_h = np.einsum("bi,oi->bo", h, w_hh, optimize=False) + b_hh
         split = gates_x.shape[-1] * 2 // 3
         rz = 1 / (1 + np.exp(-(gates_x[:, :split] + gates_h[:, :split])))
         reset, update = np.split(rz, 2, -1)
@@ -426,7 +429,7 @@ class NeuralModel:
         phones: list[str] = []
         for _ in range(_MAX_PHONES):
             h = self._gru_cell(step, h, w["dec_w_ih"], w["dec_w_hh"], w["dec_b_ih"], w["dec_b_hh"])
-            best = int((np.matmul(h, w["fc_w"].T) + w["fc_b"]).argmax())
+            best = int((np.einsum("bi,oi->bo", h, w["fc_w"], optimize=False) + w["fc_b"]).argmax())
             if best == _END:
                 break
             phones.append(NEURAL_PHONEMES[best] if best < len(NEURAL_PHONEMES) else "<unk>")

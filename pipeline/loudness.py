@@ -238,7 +238,11 @@ def integrated_loudness(samples: np.ndarray, *, sample_rate: int) -> float:
             mean_square[:, channel] = (running[starts + block_frames] - running[starts]) / block_frames
     # Rounding in the running sum can leave a digitally silent block a hair below zero.
     np.maximum(mean_square, 0.0, out=mean_square)
-    block_power = mean_square @ np.asarray(CHANNEL_WEIGHTS[channels])
+    # Weighted sum over channels, one channel after another: a fixed order of
+    # additions, where a BLAS product (``@``) would follow its threads and CPU kernel.
+    block_power = np.zeros(n_blocks)
+    for channel, weight in enumerate(CHANNEL_WEIGHTS[channels]):
+        block_power += weight * mean_square[:, channel]
 
     # Gate in the power domain, where no block needs a logarithm:
     # l_j > gate  <=>  power_j > 10 ** ((gate + 0.691) / 10).
