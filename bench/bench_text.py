@@ -100,7 +100,7 @@ def timed_run(out: Path, table: Any, *, use_cache: bool) -> dict[str, Any]:
     result = text.run(ctx)
     seconds = time.perf_counter() - start
     s = result.summary
-    hits, misses = s["g2p_cache"]["hits"], s["g2p_cache"]["misses"]
+    hits, misses = result.run_stats["g2p_cache"]["hits"], result.run_stats["g2p_cache"]["misses"]
     return {
         "seconds": round(seconds, 3),
         "sentences_per_s": round(table.num_rows / seconds, 1),

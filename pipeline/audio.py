@@ -659,8 +659,6 @@ def run(ctx: StageContext) -> StageResult:
     upsampled = pc.is_valid(table.column("upsampled_from"))
     summary = {
         "sources": len(sources),
-        "sources_processed": len(todo),
-        "sources_reused": len(sources) - len(todo),
         "sources_with_clips": pc.count_distinct(source_ids).as_py(),
         "sources_segmented": pc.count_distinct(pc.filter(source_ids, segmented)).as_py(),
         "clips": table.num_rows,
@@ -670,6 +668,9 @@ def run(ctx: StageContext) -> StageResult:
         "peak_limited_clips": len(pc.filter(source_ids, pc.greater(table.column("peak_limited_db"), 0.0))),
         "rejects": len(rejects),
         "rejects_by_reason": dict(sorted(Counter(r["reason"] for r in rejects).items())),
-        "orphans_removed": removed,
     }
-    return StageResult(manifests={f"stages/{NAME}.parquet": (NAME, table)}, rejects=rejects, summary=summary)
+    # These depend on what earlier runs left in the cache and under audio/: the log's.
+    run_stats = {"sources_processed": len(todo), "sources_reused": len(sources) - len(todo),
+                 "orphans_removed": removed}
+    return StageResult(manifests={f"stages/{NAME}.parquet": (NAME, table)}, rejects=rejects, summary=summary,
+                       run_stats=run_stats)

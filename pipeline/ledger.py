@@ -293,5 +293,5 @@ def locate_ledger(config: Config, *, raw: Path, out: Path) -> tuple[Path, str]:
     source = Path(config.source)
     beside = source.parent / f"{source.stem}.ledger.tsv"
     if _inside(beside, raw):
-        return out / "ledger.tsv", f"{beside} would be inside RAW, which is never written to"
+        return out / "ledger.tsv", "the default place beside the config file is inside RAW, which is never written to"
     return beside, "beside the config file"

@@ -10,7 +10,7 @@ import logging
 import os
 import time
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from types import ModuleType
 from typing import Any
@@ -112,6 +112,8 @@ class StageRecord:
     ran: bool
     seconds: float
     summary: dict[str, Any]
+    # What depends on this run's history (StageResult.run_stats); logged, not in OUT.
+    run_stats: dict[str, Any] = field(default_factory=dict)
     # The stage whose workers were busy while this one ran in the driver, if any.
     during: str | None = None
 
@@ -259,8 +261,10 @@ class Runner:
                 # state it left, which a rerun would reproduce.
                 in_hash = inputs_sha256(self.out, module, ctx, self.watched)
             self._write_result(module, result, params, in_hash)
-            record = StageRecord(name, True, time.perf_counter() - start, result.summary)
+            record = StageRecord(name, True, time.perf_counter() - start, result.summary, result.run_stats)
             self.log.info("%-6s done in %.1f s: %s", name, record.seconds, _short(result.summary))
+            if result.run_stats:
+                self.log.info("%-6s this run: %s", name, _short(result.run_stats))
         self.records.append(record)
         self.done.add(name)
         return record
@@ -374,7 +378,8 @@ class Runner:
             # Timings live under logs/, never in a manifest, so manifests stay byte-identical.
             write_text_atomic(self.out / "logs" / "last-run.json", json.dumps({
                 "stages": [{"name": r.name, "ran": r.ran, "seconds": round(r.seconds, 4),
-                            **({"during": r.during} if r.during else {})} for r in self.records],
+                            **({"during": r.during} if r.during else {}),
+                            **({"run_stats": r.run_stats} if r.run_stats else {})} for r in self.records],
                 "workers": self.workers, "scheduler": self.scheduler,
             }, indent=2) + "\n")
             if record_snapshot and self.invocation is not None:

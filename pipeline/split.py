@@ -705,7 +705,9 @@ def run(ctx: StageContext) -> StageResult:
                        group_by=sc.group_by, orphans=orphans, rejected=len(rejects))
     summary["changes"] = changes
     summary["shortfalls"] = shortfalls
-    summary["ledger"] = {"path": str(ledger_path), "where": where, "read": ledger is not None, "fresh": fresh}
+    # Inside OUT the path is given from OUT, so the summary does not change with where OUT is.
+    shown = ledger_path.relative_to(ctx.out) if ledger_path.is_relative_to(ctx.out) else ledger_path
+    summary["ledger"] = {"path": str(shown), "where": where, "read": ledger is not None, "fresh": fresh}
     return StageResult(manifests=tables, rejects=rejects, summary=summary)
 
 

@@ -70,14 +70,20 @@ class StageResult:
 
     ``manifests`` maps a path relative to OUT to (schema name, table); the stage's
     main manifest is ``stages/<NAME>.parquet``. ``rejects`` are rows of the
-    ``rejected`` schema. ``summary`` (JSON-ready) is written for the report, and
-    ``metadata`` is added to every manifest's Parquet key-value metadata.
+    ``rejected`` schema. ``summary`` (JSON-ready) is written to
+    ``stages/<NAME>.summary.json`` for the report, and ``metadata`` is added to every
+    manifest's Parquet key-value metadata: both must depend only on RAW, the config
+    and the ledger, like the manifests. ``run_stats`` holds what depends on this run's
+    history instead (files reused from the cache or processed, orphans removed, cache
+    hits): the runner logs it and keeps it in ``logs/last-run.json``, never in OUT's
+    outputs, which are compared, hashed and shipped.
     """
 
     manifests: dict[str, tuple[str, pa.Table]]
     rejects: list[dict[str, Any]] = field(default_factory=list)
     summary: dict[str, Any] = field(default_factory=dict)
     metadata: dict[str, str] = field(default_factory=dict)
+    run_stats: dict[str, Any] = field(default_factory=dict)
 
     def rejects_table(self) -> pa.Table:
         return table_from_rows("rejected", self.rejects)

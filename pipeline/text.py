@@ -213,8 +213,9 @@ def run(ctx: StageContext) -> StageResult:
     return StageResult(
         manifests={MAIN_MANIFEST: ("text", table_from_rows("text", rows))},
         rejects=rejects,
-        summary=_summary(rows, rejects, len(items), pronouncer, cfg, cache_dir is not None),
+        summary=_summary(rows, rejects, len(items), cfg),
         metadata=metadata,
+        run_stats=_run_stats(pronouncer, cache_dir is not None),
     )
 
 
@@ -245,7 +246,7 @@ def _write_predicted(path: Path, counts: Counter[str], phones: dict[str, tuple[t
 
 
 def _summary(rows: list[dict[str, Any]], rejects: list[dict[str, Any]], transcripts: int,
-             pronouncer: Pronouncer, cfg: TextConfig, cached: bool) -> dict[str, Any]:
+             cfg: TextConfig) -> dict[str, Any]:
     inventory: Counter[str] = Counter()
     sources: Counter[str] = Counter()
     words: Counter[str] = Counter()
@@ -268,10 +269,15 @@ def _summary(rows: list[dict[str, Any]], rejects: list[dict[str, Any]], transcri
         "phones": sum(inventory.values()),
         "phone_inventory": dict(sorted(inventory.items())),
         "word_backends": dict(sorted(sources.items())),
-        "g2p_cache": {"enabled": cached, "hits": len(pronouncer.cache_hits), "misses": len(pronouncer.cache_misses)},
-        "neural_model_loaded": pronouncer.neural_loaded,
         "predicted_lexicon": PREDICTED_LEXICON,
     }
+
+
+def _run_stats(pronouncer: Pronouncer, cached: bool) -> dict[str, Any]:
+    """What depends on the prediction cache earlier runs filled: for the log only."""
+    return {"g2p_cache": {"enabled": cached, "hits": len(pronouncer.cache_hits),
+                          "misses": len(pronouncer.cache_misses)},
+            "neural_model_loaded": pronouncer.neural_loaded}
 
 
 def _metadata(config: Config, pronouncer: Pronouncer) -> dict[str, str]:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import errno
+import json
 import os
 import random
 import signal
@@ -24,14 +25,21 @@ def loam(*args: str, timeout: float | None = None) -> subprocess.CompletedProces
 
 
 def outputs(out: Path) -> dict[str, bytes]:
-    """Every manifest, audio file and the ledger by relative path. Logs and caches are
-    excluded, and so is the split summary, whose change report rightly differs when an
-    earlier (killed) run had already written a ledger."""
+    """Every manifest, summary, audio file and the ledger by relative path. Logs and
+    caches are excluded, and so is the part of the split summary that describes the
+    ledger as it was read (its change report and whether one existed), which rightly
+    differs when an earlier (killed) run had already written a ledger."""
     files = {"ledger.tsv": (out / "ledger.tsv").read_bytes()} if (out / "ledger.tsv").exists() else {}
     for sub in ("stages", "manifests", "audio", "lexicon"):
         for p in sorted((out / sub).rglob("*")) if (out / sub).exists() else []:
-            if p.is_file() and p.name != "split.summary.json":
+            if p.is_file():
                 files[str(p.relative_to(out))] = p.read_bytes()
+    split_summary = files.get("stages/split.summary.json")
+    if split_summary is not None:
+        summary = json.loads(split_summary)
+        summary.pop("changes", None)
+        summary.get("ledger", {}).pop("read", None)
+        files["stages/split.summary.json"] = json.dumps(summary, sort_keys=True).encode()
     return files
 
 

