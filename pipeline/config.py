@@ -11,6 +11,7 @@ import copy
 import dataclasses
 import hashlib
 import json
+import os
 import re
 import sys
 from collections.abc import Callable, Mapping
@@ -171,9 +172,10 @@ class Config:
         return f"the default (not set in {self.source})" if _is_file(self.source) else "the default"
 
     def resolve_path(self, value: str) -> Path:
-        """A path from the config file, relative to the config file's folder."""
+        """A path from the config file, relative to the config file's folder; always
+        absolute, so it means the same file in a worker started elsewhere."""
         path = Path(value).expanduser()
-        return path if path.is_absolute() else Path(self.base_dir) / path
+        return Path(os.path.abspath(path if path.is_absolute() else Path(self.base_dir) / path))
 
 
 _DURATION_RE = re.compile(r"^([0-9]+(?:\.[0-9]+)?)(s|m|h)$")

@@ -257,9 +257,11 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str,
 
     def remember(j: int, res: dict[str, Any]) -> None:
         key = keys[todo[j]]
-        # Failures are cached too: they depend only on the bytes, like successes. A crash
-        # may be the library's fault (fixed by an upgrade), so it is not remembered.
-        if key and res.get("error", ("",))[0] != "decoder_crashed":
+        # Failures are cached too: they depend only on the bytes, like successes. Not a
+        # crash, which may be the library's fault (fixed by an upgrade), nor an unreadable
+        # file, which says something about this run's machine (a permission, a worker
+        # that does not see RAW): the next run must look again.
+        if key and res.get("error", ("",))[0] not in ("decoder_crashed", "unreadable"):
             cache.put(key, res)
 
     def crashed(j: int, how: str) -> dict[str, Any]:
@@ -410,4 +412,30 @@ def run(ctx: StageContext) -> StageResult:
         "speakers": len({r["speaker"] for r in accepted}),
     }
     return StageResult(manifests={"stages/ingest.parquet": ("ingest", table_from_rows("ingest", accepted))},
-                       rejects=rejects, summary=summary)
+                       rejects=rejects, summary=summary,
+                       stop=environment_failure(rejects, paths=path_set, metadata_rows=metadata_rows,
+                                                accepted=len(accepted)))
+
+
+def environment_failure(rejects: list[dict[str, Any]], *, paths: set[str], metadata_rows: int,
+                        accepted: int) -> str:
+    """A sentence when no audio file got through and every one was rejected for a
+    reason that points at the machine rather than the files: all unreadable, or (no
+    audio found at all) every metadata row naming a file that is not there; else "".
+
+    Such a run would finish with empty manifests and exit 0, though nothing is wrong
+    with the data: a permission, an unmounted share, a wrong RAW.
+    """
+    if accepted:
+        return ""
+    unreadable = [r for r in rejects if r["reason"] == "unreadable" and r["source_path"] in paths]
+    if paths and len(unreadable) == len(paths):
+        return (f"every one of the {len(paths)} audio files was rejected as unreadable (the first: "
+                f"{unreadable[0]['detail']}): the environment is the likely cause, not the files; check that "
+                "this user (and, on a cluster, every worker) can read RAW at this path")
+    missing = [r for r in rejects if r["reason"] == "metadata_missing_audio"]
+    if not paths and metadata_rows and len(missing) == metadata_rows:
+        return (f"RAW holds none of the {metadata_rows} audio files the metadata table names (the first: "
+                f"{missing[0]['detail']}): the environment is the likely cause, not the table; check that RAW "
+                "is the folder the table's paths are relative to, and that it is mounted here")
+    return ""

@@ -23,6 +23,7 @@ it is in :mod:`pipeline.split`.
 
 from __future__ import annotations
 
+import os
 import re
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -290,7 +291,7 @@ def locate_ledger(config: Config, *, raw: Path, out: Path) -> tuple[Path, str]:
         return path, "split.ledger"
     if not _has_config_file(config):
         return out / "ledger.tsv", "no config file"
-    source = Path(config.source)
+    source = Path(os.path.abspath(config.source))
     beside = source.parent / f"{source.stem}.ledger.tsv"
     if _inside(beside, raw):
         return out / "ledger.tsv", "the default place beside the config file is inside RAW, which is never written to"

@@ -145,3 +145,75 @@ def _each_dask(func: Callable[[T], R], items: Sequence[T], on_result: Callable[[
             on_result(index[fut.key], fut.result())
             bar.update(1)
     bar.close()
+
+
+# Seconds to wait for a first worker to join the scheduler before the paths check.
+WORKER_WAIT_S = 60.0
+
+
+def _what_a_worker_sees(raw: str, raw_file: str | None, raw_file_size: int | None, out: str) -> dict[str, Any]:
+    """Run on a worker: its host and working folder, and what it cannot see of RAW
+    (a folder, and one file of the size the driver sees) and OUT (a writable folder)."""
+    import socket
+
+    problems = []
+    if not os.path.isdir(raw):
+        problems.append(f"RAW {raw} is not a folder there")
+    elif raw_file is not None:
+        try:
+            size = os.stat(raw_file).st_size
+        except OSError as exc:
+            problems.append(f"cannot stat {raw_file} ({exc.strerror})")
+        else:
+            if size != raw_file_size:
+                problems.append(f"{raw_file} holds {size} bytes there and {raw_file_size} on the driver")
+            elif not os.access(raw_file, os.R_OK):
+                problems.append(f"cannot read {raw_file}")
+    if not os.path.isdir(out):
+        problems.append(f"OUT {out} is not a folder there")
+    elif not os.access(out, os.W_OK | os.X_OK):
+        problems.append(f"cannot write into OUT {out}")
+    return {"host": socket.gethostname(), "cwd": os.getcwd(), "problems": problems}
+
+
+def check_cluster_paths(scheduler: str, *, raw: str, raw_file: str | None, out: str) -> dict[str, dict[str, Any]]:
+    """Before any per-file work on a cluster: make sure every worker sees RAW and OUT
+    at the paths this process sees them (absolute paths, a shared file system).
+
+    Runs :func:`_what_a_worker_sees` once on every worker connected to ``scheduler``
+    (waiting up to ``WORKER_WAIT_S`` for a first one) and returns each worker's host,
+    working folder and problems by worker address. Raises UsageError naming the worker,
+    its host and working folder and the path it cannot see; the run then stops before
+    it would have rejected every file as unreadable.
+    """
+    import asyncio
+
+    from pipeline.errors import UsageError
+
+    try:
+        from distributed import Client
+    except ImportError as exc:
+        raise UsageError("--scheduler needs dask.distributed, which is not installed: run pip install '.[cluster]' "
+                         "in a Loam checkout (or pip install 'dask[distributed]>=2024.1')") from exc
+    for path in (raw, out, raw_file or raw):
+        if not os.path.isabs(path):
+            raise UsageError(f"{path!r} is a relative path; a worker would read it from its own working folder")
+    size = os.stat(raw_file).st_size if raw_file is not None else None
+    try:
+        client = Client(scheduler, set_as_default=False)
+    except OSError as exc:
+        raise UsageError(f"cannot reach the dask scheduler at {scheduler}: {exc}") from exc
+    with client:
+        try:
+            client.wait_for_workers(1, timeout=WORKER_WAIT_S)
+        except (TimeoutError, asyncio.TimeoutError) as exc:
+            raise UsageError(f"no worker joined the scheduler {scheduler} within {WORKER_WAIT_S:.0f} s") from exc
+        seen = client.run(_what_a_worker_sees, raw, raw_file, size, out)
+    for address, report in sorted(seen.items()):
+        if report["problems"]:
+            raise UsageError(
+                f"dask worker {address} (host {report['host']}, working folder {report['cwd']}) does not see "
+                f"this run's files: {'; '.join(report['problems'])}. Every worker must see RAW and OUT at the "
+                "same absolute paths as the machine running loam (a shared file system), RAW readable and "
+                "OUT writable")
+    return seen

@@ -134,8 +134,10 @@ class Runner:
         log: logging.Logger | None = None,
         invocation: str | None = None,
     ) -> None:
-        self.raw = Path(raw)
-        self.out = Path(out)
+        # Absolute from here on: every path handed to a worker, which may run in another
+        # working folder or on another machine, must mean the same file there.
+        self.raw = Path(os.path.abspath(raw))
+        self.out = Path(os.path.abspath(out))
         self.config = config
         self.workers = workers
         self.scheduler = scheduler
@@ -151,6 +153,20 @@ class Runner:
         # Stages finished (run or reused) in this invocation, and those under way.
         self.done: set[str] = set()
         self.running: list[str] = []
+        # Set by a stage whose result says the run cannot usefully go on (StageResult.stop).
+        self.stop_reason = ""
+
+    def _check_cluster(self) -> None:
+        """Before any per-file work on a cluster: every worker must see RAW and OUT
+        (``parallel.check_cluster_paths``, which raises UsageError when one does not)."""
+        from pipeline.parallel import check_cluster_paths
+
+        self.out.mkdir(parents=True, exist_ok=True)
+        seen = check_cluster_paths(self.scheduler, raw=str(self.raw), raw_file=_first_file(self.raw),
+                                   out=str(self.out))
+        hosts = sorted({report["host"] for report in seen.values()})
+        self.log.info("cluster: %d workers (on %s) see RAW and OUT at this machine's paths", len(seen),
+                      ", ".join(hosts))
 
     def _context(self, inputs: dict[str, pa.Table], meanwhile: Callable[[], None] | None = None) -> StageContext:
         return StageContext(
@@ -261,6 +277,8 @@ class Runner:
                 # state it left, which a rerun would reproduce.
                 in_hash = inputs_sha256(self.out, module, ctx, self.watched)
             self._write_result(module, result, params, in_hash)
+            if result.stop:
+                self.stop_reason = f"{name}: {result.stop}"
             record = StageRecord(name, True, time.perf_counter() - start, result.summary, result.run_stats)
             self.log.info("%-6s done in %.1f s: %s", name, record.seconds, _short(result.summary))
             if result.run_stats:
@@ -368,8 +386,10 @@ class Runner:
                 self.log.info("removed %d temporary files left by an interrupted run", removed)
             write_text_atomic(self.out / "config.resolved.json",
                               json.dumps(self.config.to_json(), indent=2, sort_keys=True, ensure_ascii=False) + "\n")
+            if self.scheduler:
+                self._check_cluster()
             pending = list(stages)
-            while pending:
+            while pending and not self.stop_reason:
                 self.run_stage(pending.pop(0), meanwhile=self._ready_stages(pending))
             # Stages may finish out of order (see _ready_stages); logs list them in order.
             self.records.sort(key=lambda r: STAGE_ORDER.index(r.name))
@@ -382,6 +402,9 @@ class Runner:
                             **({"run_stats": r.run_stats} if r.run_stats else {})} for r in self.records],
                 "workers": self.workers, "scheduler": self.scheduler,
             }, indent=2) + "\n")
+            if self.stop_reason:
+                # No snapshot: the next run must look at RAW again.
+                raise DataError(self.stop_reason)
             if record_snapshot and self.invocation is not None:
                 notes = [module.reuse_note(r.summary) for r in self.records
                          if hasattr(module := stage_module(r.name), "reuse_note")]
@@ -389,6 +412,17 @@ class Runner:
                 snapshot.save(self.out, snapshot.capture(invocation=self.invocation, raw_digest=raw_listing,
                                                          out=self.out, watched=sorted(self.watched), notes=notes))
         return self.records
+
+
+def _first_file(raw: Path) -> str | None:
+    """A regular file of RAW (the first in sorted order), for workers to look for."""
+    for folder, dirs, files in os.walk(raw):
+        dirs.sort()
+        for name in sorted(files):
+            path = os.path.join(folder, name)
+            if os.path.isfile(path) and not os.path.islink(path):
+                return path
+    return None
 
 
 def _short(summary: dict[str, Any]) -> str:

@@ -84,6 +84,9 @@ class StageResult:
     summary: dict[str, Any] = field(default_factory=dict)
     metadata: dict[str, str] = field(default_factory=dict)
     run_stats: dict[str, Any] = field(default_factory=dict)
+    # Non-empty: a sentence saying why the run must stop (exit 1) once this stage's
+    # outputs and the rejects are written, e.g. every input unreadable.
+    stop: str = ""
 
     def rejects_table(self) -> pa.Table:
         return table_from_rows("rejected", self.rejects)

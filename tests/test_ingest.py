@@ -428,3 +428,29 @@ def test_table_with_utf8_mark_is_judged_as_utf8(small_raw: Path, tmp_path: Path)
     assert r["detail"].startswith("meta.csv: line 2: column 'transcript': byte 2 of the field (0xef, after 'na') "
                                   "is not valid utf-8")
     assert {r["source_path"]: r["transcript"] for r in rows}["spk_b/b1.wav"] is None
+
+
+def test_environment_failure_only_when_nothing_got_through_for_a_machine_reason() -> None:
+    # Source: README.md, exit codes: every audio file unreadable points at the machine.
+    from pipeline.ingest import environment_failure
+
+    def rej(path: str, reason: str) -> dict:
+        return {"source_path": path, "reason": reason, "detail": f"{path}: {reason}"}
+
+    paths = {"a/1.wav", "a/2.wav"}
+    unreadable = [rej("a/1.wav", "unreadable"), rej("a/2.wav", "unreadable")]
+    assert "every one of the 2 audio files was rejected as unreadable" in environment_failure(
+        unreadable, paths=paths, metadata_rows=0, accepted=0)
+    # One file of another reason, or one accepted, and the data may well be the cause.
+    assert environment_failure([unreadable[0], rej("a/2.wav", "undecodable")], paths=paths, metadata_rows=0,
+                               accepted=0) == ""
+    assert environment_failure(unreadable[:1], paths=paths, metadata_rows=0, accepted=1) == ""
+    # An unreadable transcript is not an unreadable audio file.
+    assert environment_failure([unreadable[0], rej("a/2.txt", "unreadable")], paths=paths, metadata_rows=0,
+                               accepted=0) == ""
+    # No audio found, and every metadata row names a file that is not there.
+    missing = [rej("meta.csv:2", "metadata_missing_audio"), rej("meta.csv:3", "metadata_missing_audio")]
+    assert "RAW holds none of the 2 audio files" in environment_failure(missing, paths=set(), metadata_rows=2,
+                                                                         accepted=0)
+    assert environment_failure(missing[:1], paths=set(), metadata_rows=2, accepted=0) == ""
+    assert environment_failure([], paths=set(), metadata_rows=0, accepted=0) == ""

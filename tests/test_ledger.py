@@ -122,7 +122,8 @@ def test_location_rules(tmp_path: Path) -> None:
     path, why = locate_ledger(cfg, raw=raw, out=out)
     assert path == out / "ledger.tsv" and "inside RAW" in why
     cfg = build_config({"split": {"ledger": "../kept/split.tsv"}}, source=str(inside), base_dir=str(raw))
-    assert locate_ledger(cfg, raw=raw, out=out)[0] == raw / ".." / "kept" / "split.tsv"
+    # Absolute and normalised: a worker in another folder would read the same file.
+    assert locate_ledger(cfg, raw=raw, out=out)[0] == tmp_path / "kept" / "split.tsv"
     cfg = build_config({"split": {"ledger": "sub/split.tsv"}}, source=str(inside), base_dir=str(raw))
     with pytest.raises(UsageError, match=r"key 'split.ledger' has value 'sub/split.tsv'.*inside RAW"):
         locate_ledger(cfg, raw=raw, out=out)
