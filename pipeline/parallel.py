@@ -153,7 +153,17 @@ WORKER_WAIT_S = 60.0
 
 def _what_a_worker_sees(raw: str, raw_file: str | None, raw_file_size: int | None, out: str) -> dict[str, Any]:
     """Run on a worker: its host and working folder, and what it cannot see of RAW
-    (a folder, and one file of the size the driver sees) and OUT (a writable folder)."""
+    (a folder, and one file of the size the driver sees) and OUT (a writable folder).
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> with tempfile.TemporaryDirectory() as folder:
+    ...     _what_a_worker_sees(folder, None, None, folder)["problems"]
+    []
+    >>> _what_a_worker_sees("/nowhere/raw", None, None, "/nowhere/out")["problems"]
+    ['RAW /nowhere/raw is not a folder there', 'OUT /nowhere/out is not a folder there']
+    """
     import socket
 
     problems = []
@@ -181,10 +191,30 @@ def check_cluster_paths(scheduler: str, *, raw: str, raw_file: str | None, out: 
     at the paths this process sees them (absolute paths, a shared file system).
 
     Runs :func:`_what_a_worker_sees` once on every worker connected to ``scheduler``
-    (waiting up to ``WORKER_WAIT_S`` for a first one) and returns each worker's host,
-    working folder and problems by worker address. Raises UsageError naming the worker,
-    its host and working folder and the path it cannot see; the run then stops before
-    it would have rejected every file as unreadable.
+    (waiting up to ``WORKER_WAIT_S`` for a first one). tests/test_cluster.py runs it on
+    a real scheduler and workers.
+
+    Parameters
+    ----------
+    scheduler : str
+        The dask.distributed scheduler's address, e.g. ``tcp://10.0.0.5:8786``.
+    raw, out : str
+        Absolute paths of RAW and OUT as this process sees them.
+    raw_file : str or None
+        An absolute path of one file in RAW (None when RAW holds none).
+
+    Returns
+    -------
+    dict
+        By worker address: its ``host``, working folder (``cwd``) and ``problems`` (empty).
+
+    Raises
+    ------
+    UsageError
+        When a worker cannot see RAW or the file, or cannot write into OUT (naming the
+        worker, its host, its working folder and the path), when a path is relative,
+        or when the scheduler cannot be reached or no worker joins it. The run then
+        stops before it would have rejected every file as unreadable.
     """
     import asyncio
 
