@@ -17,8 +17,9 @@ from __future__ import annotations
 import heapq
 import itertools
 import math
-from collections.abc import Collection, Mapping, Sequence
+from collections.abc import Collection, Iterable, Mapping, Sequence
 from dataclasses import dataclass
+from fractions import Fraction
 
 import numpy as np
 
@@ -31,6 +32,15 @@ PHONE_WEIGHT = 10.0
 # A speaker with ``share`` times its fair part of the budget has its scores divided
 # by (1 + SPEAKER_PENALTY * share): at its fair part, halved. A design choice, no source.
 SPEAKER_PENALTY = 1.0
+# The same weights as exact rationals, for the exact scores of coverage_order.
+_PHONE_WEIGHT = Fraction(PHONE_WEIGHT)
+_SPEAKER_PENALTY = Fraction(SPEAKER_PENALTY)
+# Float scores within this relative distance of the best are compared exactly. The
+# float score takes about ten correctly rounded steps (quotients, an exactly rounded
+# fsum, the speaker term), each off by at most 2**-53 relative, so it is within ~1e-15
+# of the exact score and a stale heap bound within ~2e-15 of its own; 1e-9 leaves a
+# margin of a million, and only true ties or near-ties pay for exact arithmetic.
+_NEAR_TIE = 1e-9
 METHODS = ("coverage", "random")
 
 
@@ -98,8 +108,13 @@ def coverage_order(
 
     Every term only shrinks as clips are selected, so a lazy greedy (re-scoring a
     candidate only when it reaches the top of the heap) makes exactly the choices of
-    the plain greedy at a fraction of the cost. Sums use ``math.fsum``, which is
-    exactly rounded, so the order never depends on the order of the input.
+    the plain greedy at a fraction of the cost. The heap holds float scores, but a
+    choice is made on exact rationals: rounded floats can split a true tie
+    (``fsum([10/3, 1/3])`` and ``fsum([2/3, 3])`` differ in the last bit, yet both are
+    11/3), and the tie would then go to whichever rounded up, not to the smaller
+    clip_id. So every candidate whose float score is within :data:`_NEAR_TIE` of the
+    best is scored again in :class:`fractions.Fraction`, and the exact best wins.
+    Totals are exact too, so the order never depends on the order of the input.
 
     Parameters
     ----------
@@ -128,55 +143,116 @@ def coverage_order(
     if not budget_s >= 0:
         raise ParameterError(f"budget_s={budget_s!r} must be >= 0")
     items = _check_candidates(candidates)
-    chosen_items = list(chosen)
-    stop = budget_s if stop_s is None else stop_s
-    total = math.fsum(c.duration_s for c in chosen_items)
-    if not items or total >= stop:
+    stop_at = budget_s if stop_s is None else stop_s
+    stop = None if stop_at == math.inf else Fraction(stop_at)
+    total = _exact_total(c.duration_s for c in chosen)
+    if not items or (stop is not None and total >= stop):
         return []
-
-    # Units get integer ids in sorted order, so the arithmetic below never depends on
-    # the input order; each clip holds the ids of its distinct units and their weights.
-    unit_lists = [_unit_keys(c) for c in chosen_items] + [_unit_keys(c) for c in items]
-    vocabulary = {u: k for k, u in enumerate(sorted(set().union(*unit_lists)))}
-    ids = [np.array(sorted(vocabulary[u] for u in keys), dtype=np.int64) for keys in unit_lists]
-    weights = np.array([PHONE_WEIGHT if u[0] == "p" else 1.0 for u in sorted(vocabulary)], dtype=np.float64)
-    counts = np.zeros(len(vocabulary), dtype=np.float64)
-    speaker_s: dict[str, float] = {}
-
-    def add(c: Candidate, unit_ids: np.ndarray) -> None:
-        counts[unit_ids] += 1.0  # ids are distinct within a clip
-        speaker_s[c.speaker] = speaker_s.get(c.speaker, 0.0) + c.duration_s
-
-    for c, unit_ids in zip(chosen_items, ids[: len(chosen_items)], strict=True):
-        add(c, unit_ids)
-    item_ids = ids[len(chosen_items):]
-    item_weights = [weights[unit_ids] for unit_ids in item_ids]
-    speakers = {c.speaker for c in items} | {c.speaker for c in chosen_items}
-    # A zero budget selects nothing, but an ordering asked of it has no quota to share.
-    quota_s = budget_s / len(speakers) if budget_s > 0 else math.inf
-
-    def score(i: int) -> float:
-        c = items[i]
-        # Each quotient is correctly rounded and fsum is exact, so the score is the
-        # same on every platform and for every input order.
-        gain = math.fsum((item_weights[i] / (1.0 + counts[item_ids[i]])).tolist())
-        balance = 1.0 + SPEAKER_PENALTY * speaker_s.get(c.speaker, 0.0) / quota_s
-        return gain / c.duration_s / balance
-
+    scorer = _Scorer(items, chosen=chosen, budget_s=budget_s)
     step = 0
-    heap = [(-score(i), items[i].clip_id, i, step) for i in range(len(items))]
+    heap = [(-scorer.rough(i), items[i].clip_id, i, step) for i in range(len(items))]
     heapq.heapify(heap)
     order: list[str] = []
-    while heap and total < stop:
+    while heap and (stop is None or total < stop):
         neg, cid, i, stamp = heapq.heappop(heap)
-        if stamp != step:
-            heapq.heappush(heap, (-score(i), cid, i, step))
+        if stamp != step:  # a stale score is an upper bound: score again, put back
+            heapq.heappush(heap, (-scorer.rough(i), cid, i, step))
             continue
-        order.append(cid)
-        add(items[i], item_ids[i])
-        total += items[i].duration_s
+        near = [(neg, cid, i, stamp)]
+        while heap and -heap[0][0] >= -neg * (1.0 - _NEAR_TIE):
+            entry = heapq.heappop(heap)
+            if entry[3] != step:
+                heapq.heappush(heap, (-scorer.rough(entry[2]), entry[1], entry[2], step))
+            else:
+                near.append(entry)
+        if len(near) > 1:
+            near.sort(key=lambda e: (-scorer.exact(e[2]), e[1]))
+            for entry in near[1:]:
+                heapq.heappush(heap, entry)
+        i = near[0][2]
+        order.append(items[i].clip_id)
+        scorer.add(i)
+        total += Fraction(items[i].duration_s)
         step += 1
     return order
+
+
+class _Scorer:
+    """The score of :func:`coverage_order` for each candidate, as the selection grows.
+
+    ``rough`` is the float score (within a few units in the last place of the exact
+    one), ``exact`` the same formula in exact rationals of the float inputs.
+    """
+
+    def __init__(self, items: Sequence[Candidate], *, chosen: Sequence[Candidate], budget_s: float) -> None:
+        # Units get integer ids in sorted order, so nothing depends on the input order;
+        # each clip holds the ids of its distinct units.
+        unit_lists = [_unit_keys(c) for c in items] + [_unit_keys(c) for c in chosen]
+        vocabulary = {u: k for k, u in enumerate(sorted(set().union(*unit_lists)))}
+        is_phone = np.array([u[0] == "p" for u in sorted(vocabulary)], dtype=bool)
+        self.items = items
+        self.ids = [np.array(sorted(vocabulary[u] for u in keys), dtype=np.int64) for keys in unit_lists]
+        self.phone_ids = [u[is_phone[u]] for u in self.ids]
+        self.diphone_ids = [u[~is_phone[u]] for u in self.ids]
+        self.weights = np.where(is_phone, PHONE_WEIGHT, 1.0)
+        self.counts = np.zeros(len(vocabulary), dtype=np.int64)
+        self.speaker_s: dict[str, Fraction] = {}
+        self.speaker_rough: dict[str, float] = {}
+        speakers = {c.speaker for c in items} | {c.speaker for c in chosen}
+        # A zero budget selects nothing, but an ordering asked of it has no quota to
+        # share (nor has an unbounded one): the speaker term is then 1.
+        self.quota_s = Fraction(budget_s) / len(speakers) if 0 < budget_s < math.inf else None
+        for k, c in enumerate(chosen):
+            self._take(c, self.ids[len(items) + k])
+
+    def _take(self, c: Candidate, unit_ids: np.ndarray) -> None:
+        self.counts[unit_ids] += 1  # ids are distinct within a clip
+        held = self.speaker_s.get(c.speaker, Fraction(0)) + Fraction(c.duration_s)
+        self.speaker_s[c.speaker] = held
+        self.speaker_rough[c.speaker] = float(held)  # correctly rounded, however many clips
+
+    def add(self, i: int) -> None:
+        self._take(self.items[i], self.ids[i])
+
+    def rough(self, i: int) -> float:
+        c = self.items[i]
+        gain = math.fsum((self.weights[self.ids[i]] / (1.0 + self.counts[self.ids[i]])).tolist())
+        if self.quota_s is None:
+            return gain / c.duration_s
+        share = self.speaker_rough.get(c.speaker, 0.0) / float(self.quota_s)
+        return gain / c.duration_s / (1.0 + SPEAKER_PENALTY * share)
+
+    def exact(self, i: int) -> Fraction:
+        c = self.items[i]
+        gain = _gain(self.counts[self.phone_ids[i]], self.counts[self.diphone_ids[i]])
+        if self.quota_s is None:
+            return gain / Fraction(c.duration_s)
+        share = self.speaker_s.get(c.speaker, Fraction(0)) / self.quota_s
+        return gain / Fraction(c.duration_s) / (1 + _SPEAKER_PENALTY * share)
+
+
+def _gain(phone_counts: np.ndarray, diphone_counts: np.ndarray) -> Fraction:
+    """Exact ``sum(PHONE_WEIGHT / (1 + n_p)) + sum(1 / (1 + n_d))`` over the given counts.
+
+    Units held by the same number of clips share a denominator, so the sum has one
+    term per distinct count (a handful) rather than one per unit.
+
+    Examples
+    --------
+    >>> _gain(np.array([0, 2]), np.array([1, 1, 3]))  # 10 + 10/3 + 1/2 + 1/2 + 1/4
+    Fraction(175, 12)
+    """
+    weight: dict[int, Fraction] = {}
+    for unit_counts, unit_weight in ((phone_counts, _PHONE_WEIGHT), (diphone_counts, Fraction(1))):
+        held, units_held = np.unique(unit_counts, return_counts=True)
+        for n, k in zip(held.tolist(), units_held.tolist(), strict=True):
+            weight[n] = weight.get(n, Fraction(0)) + k * unit_weight
+    return sum((w / (1 + n) for n, w in weight.items()), Fraction(0))
+
+
+def _exact_total(durations: Iterable[float]) -> Fraction:
+    """The exact sum of float durations (no rounding, so no order dependence)."""
+    return sum((Fraction(d) for d in durations), Fraction(0))
 
 
 def random_order(candidates: Sequence[Candidate], *, seed: int) -> list[str]:
@@ -221,11 +297,13 @@ def selection_order(
     raise ParameterError(f"method={method!r} is not one of {', '.join(METHODS)}")
 
 
-def take_until(order: Sequence[str], *, durations: Mapping[str, float], start_s: float, budget_s: float) -> list[str]:
+def take_until(order: Sequence[str], *, durations: Mapping[str, float], start_s: float | Fraction,
+               budget_s: float) -> list[str]:
     """The prefix of ``order`` that brings a total of ``start_s`` up to ``budget_s``.
 
     Clips are taken until the total reaches the budget, so the last one overshoots
-    it by less than its own duration; with too few clips all are taken.
+    it by less than its own duration; with too few clips all are taken. The total is
+    kept exactly, as in :func:`coverage_order`, so both stop at the same clip.
 
     Examples
     --------
@@ -233,12 +311,12 @@ def take_until(order: Sequence[str], *, durations: Mapping[str, float], start_s:
     ['a', 'b']
     """
     taken: list[str] = []
-    total = start_s
+    total, budget = Fraction(start_s), Fraction(budget_s)
     for cid in order:
-        if total >= budget_s:
+        if total >= budget:
             break
         taken.append(cid)
-        total += durations[cid]
+        total += Fraction(durations[cid])
     return taken
 
 
@@ -326,6 +404,7 @@ def fill_tiers(
     for plan in plans:
         prev = list(members)
         inside = set(prev)
+        budget = Fraction(plan.budget_s)  # totals are exact, as in coverage_order
         kept = [items[c] for c in sorted(plan.kept) if c not in inside]
         if plan.may_drop:  # only a drop needs to know which kept clips came last
             kept_ids = selection_order(kept, method=method, budget_s=plan.budget_s,
@@ -335,24 +414,24 @@ def fill_tiers(
         base = prev + kept_ids
         dropped: list[str] = []
         if plan.may_drop:
-            total = math.fsum(durations[c] for c in base)
-            while len(base) > len(prev) and total - durations[base[-1]] >= plan.budget_s:
-                total -= durations[base[-1]]
+            total = _exact_total(durations[c] for c in base)
+            while len(base) > len(prev) and total - Fraction(durations[base[-1]]) >= budget:
+                total -= Fraction(durations[base[-1]])
                 dropped.append(base.pop())
         inside = set(base) | set(dropped)
-        total = math.fsum(durations[c] for c in base)
+        total = _exact_total(durations[c] for c in base)
         pools = [sorted(set(labelled_before) - inside),
                  sorted((set(new) | (set(reopened) if plan.may_reopen else set())) - inside)]
         for pool in pools:
-            if total >= plan.budget_s or not pool:
+            if total >= budget or not pool:
                 continue
             order = selection_order([items[c] for c in pool], method=method, budget_s=plan.budget_s,
                                     chosen=[items[c] for c in base], seed=seed)
             taken = take_until(order, durations=durations, start_s=total, budget_s=plan.budget_s)
             base += taken
             inside.update(taken)
-            total = math.fsum(durations[c] for c in base)
+            total = _exact_total(durations[c] for c in base)
         members = base
-        outcomes.append(TierOutcome(plan.name, plan.budget_s, tuple(base), total, tuple(dropped),
-                                    max(0.0, plan.budget_s - total)))
+        outcomes.append(TierOutcome(plan.name, plan.budget_s, tuple(base), float(total), tuple(dropped),
+                                    float(max(Fraction(0), budget - total))))
     return outcomes

@@ -9,7 +9,7 @@ import re
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 from pipeline.errors import ParameterError
@@ -115,6 +115,9 @@ def documented_greedy(cands: list[Candidate], *, budget_s: float, chosen: list[C
 
 @settings(max_examples=40, deadline=None)
 @given(seed=st.integers(0, 2**32 - 1), n=st.integers(1, 30), budget=st.floats(1.0, 60.0), n_chosen=st.integers(0, 3))
+# c06 and c09 tie exactly at step 5 (6716/1785 each, same speaker); float scores put
+# c09 one bit higher, so the tie went to the larger clip_id.
+@example(seed=53012310, n=10, budget=46.0, n_chosen=3)
 def test_lazy_greedy_matches_the_documented_plain_greedy(seed: int, n: int, budget: float, n_chosen: int) -> None:
     # Source: the score formula of docs/split.md, evaluated in exact fractions.
     rng = np.random.default_rng(seed)
