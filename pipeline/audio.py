@@ -143,13 +143,14 @@ class LongTermPsd:
 
 # The largest sample magnitude taken as audio. Float formats put full scale at 1.0
 # (PCM formats cannot exceed it). A float recording can go above it by the headroom of
-# whatever mixed or amplified it, but sustained overshoot is rejected as clipping
-# anyway (audio.max_clipped_fraction); an isolated sample 24 dB over full scale (x16)
-# is beyond any gain staging (a judgement, not a standard) and is damaged bytes: read
-# as float32 they decode as magnitudes anywhere up to 3.4e38, whose squares overflow
-# the loudness and SNR sums. Such a file is rejected here, before any arithmetic. The
-# bound also keeps one stray sample from lifting a 400 ms BS.1770 block above the
-# manifest's 10 LUFS maximum (16**2 spread over 3,200 samples at 8 kHz is -11 dB).
+# whatever mixed or amplified it, but sustained overshoot counts as clipping anyway
+# (flagged past audio.max_clipped_fraction, rejected past audio.unusable_clipped_fraction);
+# an isolated sample 24 dB over full scale (x16) is beyond any gain staging (a
+# judgement, not a standard) and is damaged bytes: read as float32 they decode as
+# magnitudes anywhere up to 3.4e38, whose squares overflow the loudness and SNR sums.
+# Such a file is rejected here, before any arithmetic. The bound also keeps one stray
+# sample from lifting a 400 ms BS.1770 block above the manifest's 10 LUFS maximum
+# (16**2 spread over 3,200 samples at 8 kHz is -11 dB).
 MAX_SAMPLE_MAGNITUDE = 16.0
 
 
@@ -355,12 +356,15 @@ def _cut_and_write(job: AudioJob, scan: SourceScan, spool: Spool, *, declared_fr
                                            f"only {scan.frames} could be decoded; expected the whole "
                                            "recording (the file was probably cut short)")])
     clipped_fraction = scan.clipped / scan.counted if scan.counted else 0.0
-    if clipped_fraction > cfg.max_clipped_fraction:
+    # Mild clipping (above audio.max_clipped_fraction) is a quality gate of the split
+    # stage, which flags the clip and by default keeps its transcript; only audio too
+    # clipped to be speech any more is rejected here.
+    if clipped_fraction > cfg.unusable_clipped_fraction:
         return FileOutcome(rejects=[reject(NAME, rel, "clipped",
                                            f"{rel}: {100 * clipped_fraction:.3f}% of samples reach |x| >= "
                                            f"{cfg.clip_level} (audio.clip_level); at most "
-                                           f"{100 * cfg.max_clipped_fraction:.3f}% allowed "
-                                           "(audio.max_clipped_fraction)")])
+                                           f"{100 * cfg.unusable_clipped_fraction:.3f}% expected of usable audio "
+                                           "(audio.unusable_clipped_fraction)")])
     rate = cfg.sample_rate
     if scan.out_samples / rate < cfg.min_duration_s:
         # No clip can come out of it, so say so rather than judging its speech.

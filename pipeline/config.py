@@ -67,6 +67,7 @@ class AudioConfig:
     min_speech_ratio: float
     clip_level: float
     max_clipped_fraction: float
+    unusable_clipped_fraction: float
     target_lufs: float
     peak_ceiling_dbfs: float
     true_peak: bool
@@ -109,12 +110,13 @@ class QualityConfig:
     near_duplicate_min_similarity: float
     min_bandwidth_hz: float
     narrowband_action: str
+    clipped_action: str
 
     @property
     def gate_actions(self) -> dict[str, str]:
         """What each gate of :mod:`pipeline.gates` does to the clips it flags."""
         return {"noisy": self.noisy_action, "narrowband": self.narrowband_action,
-                "rate_outlier": self.rate_outlier_action}
+                "rate_outlier": self.rate_outlier_action, "clipped": self.clipped_action}
 
 
 @dataclass(frozen=True)

@@ -52,7 +52,7 @@ OUTLIER_CLIPS = 10
 SPEAKERS_PLOTTED = 30
 SPEAKERS_LISTED = 200
 SUBSET_COLOURS = {"labelled": "#1b6ca8", "unlabelled": "#9aa5b1", "heldout": "#d9822b"}
-QUALITY_FLAGS = ("noisy", "narrowband", "rate_outlier", "near_duplicate", "upsampled", "peak_limited",
+QUALITY_FLAGS = ("noisy", "narrowband", "rate_outlier", "clipped", "near_duplicate", "upsampled", "peak_limited",
                  "transcript_rejected", "heldout_untranscribed")
 CAUTION = (
     "Voice recordings are personal data. Use this corpus only where every speaker consented to this "

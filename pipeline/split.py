@@ -7,9 +7,9 @@ stage
    and binds near-duplicate and byte-identical clips into one group, so copies can
    never straddle held-out and training;
 2. applies the quality gates of ``[quality]`` (noisy, narrowband, speaking-rate
-   outlier, see :mod:`pipeline.gates`): each flags its clips, and a gate whose action
-   is "demote" (by default noisy and speaking-rate outlier) keeps them out of labelled
-   and out of held-out scoring;
+   outlier, clipped, see :mod:`pipeline.gates`): each flags its clips, and a gate whose
+   action is "demote" (by default noisy and speaking-rate outlier) keeps them out of
+   labelled and out of held-out scoring, one whose action is "reject" sets them aside;
 3. holds out whole groups, chosen in a seeded hash order (see
    :func:`group_rank_key`) until the held-out target is reached;
 4. fills the nested labelled tiers from the training groups
@@ -38,7 +38,7 @@ import numpy as np
 import pyarrow as pa
 
 from pipeline import gates, quality
-from pipeline.config import parse_duration_s
+from pipeline.config import Config, parse_duration_s
 from pipeline.errors import DataError, UsageError
 from pipeline.ledger import ClipRecord, Ledger, locate_ledger, read_ledger, write_ledger
 from pipeline.manifest import table_from_rows, validate_table
@@ -47,7 +47,8 @@ from pipeline.stage import StageContext, StageResult, reject
 
 NAME = "split"
 INPUTS = ("audio", "text")
-CONFIG_SECTIONS = ("split", "quality")
+# audio for audio.max_clipped_fraction, the threshold of the clipped gate.
+CONFIG_SECTIONS = ("split", "quality", "audio")
 # The ledger is an input the runner cannot hash: run every time.
 # The ledger is an input the stage rewrites itself: the runner hashes it after the
 # run (INPUTS_AFTER_RUN), so a rerun with nothing changed is reused, and --fresh
@@ -69,9 +70,9 @@ SUBSET_PATHS = {s: f"manifests/{s}.parquet" for s in SUBSETS}
 # below 0.05 dB the shortfall is inaudible. Common practice, no source.
 PEAK_LIMITED_MIN_DB = 0.05
 # Flags in the order of schemas/subset.schema.json.
-FLAG_ORDER = ("upsampled", "peak_limited", "noisy", "narrowband", "rate_outlier", "near_duplicate",
+FLAG_ORDER = ("upsampled", "peak_limited", "noisy", "narrowband", "rate_outlier", "clipped", "near_duplicate",
               "transcript_rejected", "heldout_untranscribed")
-GATES = ("noisy", "narrowband", "rate_outlier", "near_duplicate")
+GATES = ("noisy", "narrowband", "rate_outlier", "clipped", "near_duplicate")
 
 _SHARE = re.compile(r"^([0-9]+(?:\.[0-9]+)?)%$")
 
@@ -332,7 +333,8 @@ def find_duplicates(clips: Sequence[Clip], fingerprints: Sequence[np.ndarray], *
 
 
 def apply_gates(clips: Sequence[Clip], *, min_snr_db: float, min_bandwidth_hz: float, rate_max_abs_z: float,
-                rate_min_clips: int, actions: Mapping[str, str], rate_min_spread: float = 0.0) -> None:
+                rate_min_clips: int, actions: Mapping[str, str], rate_min_spread: float = 0.0,
+                max_clipped_fraction: float = 1.0) -> None:
     """Speaking rate and its robust z-score per speaker, the gate flags, and eligibility.
 
     ``speaking_rate`` is phones (word boundaries left out) per second of speech;
@@ -354,7 +356,8 @@ def apply_gates(clips: Sequence[Clip], *, min_snr_db: float, min_bandwidth_hz: f
     flags = gates.gate_flags(
         snr_db=[np.nan if c.audio["snr_db"] is None else c.audio["snr_db"] for c in clips],
         bandwidth_hz=[np.nan if c.audio["bandwidth_hz"] is None else c.audio["bandwidth_hz"] for c in clips],
-        rate_z=z, min_snr_db=min_snr_db, min_bandwidth_hz=min_bandwidth_hz, rate_max_abs_z=rate_max_abs_z)
+        rate_z=z, clipped_fraction=[c.audio["clipped_fraction"] for c in clips], min_snr_db=min_snr_db,
+        min_bandwidth_hz=min_bandwidth_hz, rate_max_abs_z=rate_max_abs_z, max_clipped_fraction=max_clipped_fraction)
     held = gates.held_back(flags, actions=actions)
     for k, c in enumerate(clips):
         c.rate_z = _finite(z[k])
@@ -525,6 +528,7 @@ def _subset_row(c: Clip, subset: str, tiers: tuple[str, ...], *, keep_text: bool
         "speaking_rate": c.speaking_rate,
         "rate_z": c.rate_z,
         "near_duplicate_of": c.near_duplicate_of,
+        "clipped_fraction": float(a["clipped_fraction"]),
         "quality_flags": [f for f in FLAG_ORDER if f in flags],
     }
 
@@ -610,6 +614,28 @@ def _log_changes(ctx: StageContext, changes: dict[str, Any], ledger_path: str, u
                         "moved to unlabelled", changes["lost_transcript"])
 
 
+def _gate_rejects(clips: Sequence[Clip], cfg: Config) -> list[dict[str, Any]]:
+    """Set aside the clips that a gate whose action is "reject" flagged (the first such
+    gate names the reason), marking them ``rejected``; their reject rows."""
+    qc = cfg.quality
+    why = {
+        "noisy": lambda c: (f"has an estimated SNR (WADA-SNR) of {c.audio['snr_db']:.1f} dB, below "
+                            f"quality.min_snr_db = {qc.min_snr_db:g}"),
+        "clipped": lambda c: (f"comes from a source with {100 * c.audio['clipped_fraction']:.3f}% of its samples at "
+                              f"audio.clip_level, above audio.max_clipped_fraction = "
+                              f"{100 * cfg.audio.max_clipped_fraction:g}%"),
+    }
+    rejects = []
+    for gate in gates.rejecting_gates(qc.gate_actions):
+        for c in clips:
+            if gate in c.flags and not c.rejected:
+                c.rejected = True
+                path = c.audio["source_path"]
+                rejects.append(reject(NAME, path, gate, f"{path}: clip {c.clip_id} {why[gate](c)}; with "
+                                      f'quality.{gate}_action = "reject" {gate} clips are set aside', c.clip_id))
+    return rejects
+
+
 def run(ctx: StageContext) -> StageResult:
     cfg = ctx.config
     sc, qc = cfg.split, cfg.quality
@@ -626,19 +652,9 @@ def run(ctx: StageContext) -> StageResult:
         c.group = g
     apply_gates(clips, min_snr_db=qc.min_snr_db, min_bandwidth_hz=qc.min_bandwidth_hz,
                 rate_max_abs_z=qc.rate_max_abs_z, rate_min_clips=qc.rate_min_clips,
-                rate_min_spread=qc.rate_min_spread, actions=qc.gate_actions)
-
-    rejects = []
-    if qc.noisy_action == "reject":
-        for c in clips:
-            if "noisy" in c.flags:
-                c.rejected = True
-                rejects.append(reject(
-                    NAME, c.audio["source_path"], "noisy",
-                    f"{c.audio['source_path']}: clip {c.clip_id} has an estimated SNR (WADA-SNR) of "
-                    f"{c.audio['snr_db']:.1f} dB, below quality.min_snr_db = {qc.min_snr_db:g}; "
-                    'with quality.noisy_action = "reject" noisy clips are set aside',
-                    c.clip_id))
+                rate_min_spread=qc.rate_min_spread, actions=qc.gate_actions,
+                max_clipped_fraction=cfg.audio.max_clipped_fraction)
+    rejects = _gate_rejects(clips, cfg)
     kept = [c for c in clips if not c.rejected]
 
     eligible_s = math.fsum(c.duration_s for c in kept if c.eligible)
@@ -702,7 +718,8 @@ def run(ctx: StageContext) -> StageResult:
     _log_changes(ctx, changes, str(ledger_path), ledger is not None)
 
     summary = _summary(kept, clips, assignment, pairs, by_subset, target_s=target_s, eligible_s=eligible_s,
-                       group_by=sc.group_by, orphans=orphans, rejected=len(rejects))
+                       group_by=sc.group_by, orphans=orphans,
+                       rejected={f"rejected_{g}": sum(r["reason"] == g for r in rejects) for g in ("noisy", "clipped")})
     summary["changes"] = changes
     summary["shortfalls"] = shortfalls
     # Inside OUT the path is given from OUT, so the summary does not change with where OUT is.
@@ -725,7 +742,7 @@ def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[C
 
 def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment, pairs: Sequence[DuplicatePair],
              by_subset: Mapping[str, list[Clip]], *, target_s: float, eligible_s: float, group_by: str,
-             orphans: int, rejected: int) -> dict[str, Any]:
+             orphans: int, rejected: dict[str, int]) -> dict[str, Any]:
     inventory = set().union(*(set(c.plain_phones) for c in kept if c.transcribed)) if kept else set()
     subsets = {s: _describe(by_subset[s], inventory) for s in SUBSETS}
     scored = [c for c in by_subset["heldout"] if c.eligible]
@@ -739,7 +756,7 @@ def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment
                     "shortfall_s": round(outcome.shortfall_s, 3)})
         tiers[outcome.name] = row
     gate_counts = {g: sum(g in c.flags for c in clips) for g in GATES}
-    gate_counts["rejected_noisy"] = rejected
+    gate_counts.update(rejected)
     notes = {f: sum(f in c.flags for c in kept) for f in ("upsampled", "peak_limited", "transcript_rejected")}
     notes["heldout_untranscribed"] = sum(not c.transcribed for c in by_subset["heldout"])
     notes["orphan_transcripts"] = orphans

@@ -558,7 +558,7 @@ def check_empty_subsets(s: _Subsets, config: Config) -> list[Problem]:
 def check_quality_gates(s: _Subsets, config: Config) -> list[Problem]:
     """No labelled clip that a gate holds back, decided as the split stage decides
     (:mod:`pipeline.gates`), from the flags and from the measured values; and no clip at
-    all flagged noisy when noisy clips are rejected."""
+    all flagged by a gate whose action rejects."""
     q = config.quality
     holding = gates.holding_gates(q.gate_actions)
     barred = [*holding, *ALWAYS_GATED_FLAGS]
@@ -571,27 +571,30 @@ def check_quality_gates(s: _Subsets, config: Config) -> list[Problem]:
                                   f"no labelled clip flagged {', '.join(barred)}")
     # The measured values too, so a hand-cleared flag does not hide a gated clip.
     measured = {
-        "noisy": ("snr_db", f"snr_db >= {q.min_snr_db} dB (quality.min_snr_db)"),
-        "narrowband": ("bandwidth_hz", f"bandwidth_hz >= {q.min_bandwidth_hz} Hz (quality.min_bandwidth_hz)"),
-        "rate_outlier": ("rate_z", f"|rate_z| <= {q.rate_max_abs_z} (quality.rate_max_abs_z)"),
+        "noisy": ("snr_db", f"snr_db >= {q.min_snr_db} dB (quality.min_snr_db)", ".2f"),
+        "narrowband": ("bandwidth_hz", f"bandwidth_hz >= {q.min_bandwidth_hz} Hz (quality.min_bandwidth_hz)", ".2f"),
+        "rate_outlier": ("rate_z", f"|rate_z| <= {q.rate_max_abs_z} (quality.rate_max_abs_z)", ".2f"),
+        "clipped": ("clipped_fraction", f"clipped_fraction <= {config.audio.max_clipped_fraction} "
+                                        "(audio.max_clipped_fraction)", ".6f"),
     }
     for gate in holding:
-        column, expected = measured[gate]
+        column, expected, fmt = measured[gate]
         f = s.frame([column], names=("labelled",))
-        values = {c: np.full(len(f), np.nan) for c, _ in measured.values()}
+        values = {c: np.full(len(f), np.nan) for c, _, _ in measured.values()}
         values[column] = f[column].astype(float).to_numpy(dtype=np.float64, na_value=np.nan)
         hit = gates.gate_flags(**values, min_snr_db=q.min_snr_db, min_bandwidth_hz=q.min_bandwidth_hz,
-                               rate_max_abs_z=q.rate_max_abs_z)[gate]
+                               rate_max_abs_z=q.rate_max_abs_z,
+                               max_clipped_fraction=config.audio.max_clipped_fraction)[gate]
         problems += _frame_problems("error", "quality_gate", f, hit, column,
-                                    lambda r, c=column: f"{r[c]:.2f}", expected)
-    if q.noisy_action == "reject":
+                                    lambda r, c=column, fmt=fmt: format(r[c], fmt), expected)
+    for gate in gates.rejecting_gates(q.gate_actions):
         for name in SUBSETS:
             if s.usable(name, "quality_flags"):
                 flags = s.column(name, "quality_flags")
-                hit = s.list_members(name, "quality_flags", ["noisy"])
+                hit = s.list_members(name, "quality_flags", [gate])
                 problems += _row_problems("error", "quality_gate", subset_file(name), np.flatnonzero(hit), "quality_flags",
                                           lambda r, flags=flags: _text(flags[r].as_py()),
-                                          'no clip flagged noisy: quality.noisy_action = "reject" sets them aside')
+                                          f'no clip flagged {gate}: quality.{gate}_action = "reject" sets them aside')
     return problems
 
 
@@ -953,6 +956,7 @@ def synthetic_out(out: Path, *, n_rows: int, speakers: int = 200) -> Path:
             "speech_ratio": [0.8] * n,
             "snr_db": [30.0] * n,
             "bandwidth_hz": [7500.0] * n,
+            "clipped_fraction": [0.0] * n,
             "speaking_rate": [5.0 if transcribed else None for _ in sel],
             "rate_z": [0.0 if transcribed else None for _ in sel],
             "near_duplicate_of": [None] * n,

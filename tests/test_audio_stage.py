@@ -132,7 +132,7 @@ def rows_of(result) -> list[dict[str, Any]]:
     return result.manifests["stages/audio.parquet"][1].to_pylist()
 
 
-def test_rows_and_rejects(first_run):
+def test_rows_and_rejects(first_run, raw: Path):
     out, result = first_run
     table = result.manifests["stages/audio.parquet"][1]
     validate_table("audio", table, where="audio")  # schemas/audio.schema.json
@@ -142,7 +142,6 @@ def test_rows_and_rejects(first_run):
     reasons = {r["source_path"]: r["reason"] for r in result.rejects}
     assert reasons == {
         "ben/broken_float.wav": "non_finite_samples",
-        "ben/hot.wav": "clipped",
         "ben/quiet.wav": "no_speech",
         "cara/read25.ogg": "too_long_transcribed",
     }
@@ -150,9 +149,12 @@ def test_rows_and_rejects(first_run):
     by_path: dict[str, list[dict[str, Any]]] = {}
     for r in rows:
         by_path.setdefault(r["source_path"], []).append(r)
-    assert set(by_path) == {"ana/stereo44.wav", "ana/take22.flac", "ana/phone8k.wav", "cara/session60.flac"}
+    # ben/hot.wav (speech overdriven by 15.6 dB) has about a quarter of its samples on the
+    # rails, short of the unusable level: kept, its clipped share measured.
+    assert set(by_path) == {"ana/stereo44.wav", "ana/take22.flac", "ana/phone8k.wav", "ben/hot.wav",
+                            "cara/session60.flac"}
     single = {p: rs[0] for p, rs in by_path.items() if len(rs) == 1}
-    assert set(single) == {"ana/stereo44.wav", "ana/take22.flac", "ana/phone8k.wav"}
+    assert set(single) == {"ana/stereo44.wav", "ana/take22.flac", "ana/phone8k.wav", "ben/hot.wav"}
     for r in single.values():
         assert r["clip_id"] == r["source_id"] and r["segment_index"] == 0
     assert single["ana/phone8k.wav"]["upsampled_from"] == 8000
@@ -162,7 +164,14 @@ def test_rows_and_rejects(first_run):
     # 1 s of leading silence is trimmed to about the 150 ms pad.
     assert 0.75 <= single["ana/stereo44.wav"]["source_start_s"] <= 0.9
     assert all(r["speech_ratio"] >= 0.05 and 0 < r["speech_s"] <= r["duration_s"] for r in rows)
-    assert all(r["clipped_fraction"] == 0 and r["snr_db"] is not None for r in rows)
+    assert all(r["snr_db"] is not None for r in rows)
+    assert all(r["clipped_fraction"] == 0 for r in rows if r["source_path"] != "ben/hot.wav")
+    # The share of samples at |x| >= audio.clip_level (0.999), counted by numpy on the file
+    # as soundfile reads it: above audio.max_clipped_fraction (0.001), below
+    # audio.unusable_clipped_fraction (0.5).
+    hot, _ = sf.read(raw / "ben/hot.wav", dtype="float32")
+    assert single["ben/hot.wav"]["clipped_fraction"] == pytest.approx(np.mean(np.abs(hot) >= 0.999), abs=1e-12)
+    assert 0.001 < single["ben/hot.wav"]["clipped_fraction"] < 0.5
     assert (out / "tmp").exists() is False
     assert not list(out.rglob(".loam-*"))
 
@@ -301,6 +310,18 @@ def test_unusable_inputs_become_rejects(raw: Path, tmp_path: Path):
     assert rej["reason"] == "undecodable" and "audio.channel is 3 but the file has 2 channels" in rej["detail"]
     (rej,) = audio.condition_file(job_for(raw, tmp_path, "ana/phone8k.wav", upsampled="reject")).rejects
     assert rej["reason"] == "upsampled" and "8000 Hz" in rej["detail"]
+
+    # Clipped beyond audio.unusable_clipped_fraction: speech overdriven by 60 dB is
+    # nearly a square wave (most samples on the rails), rejected by default.
+    railed = tmp_path / "railed"
+    (railed / "ben").mkdir(parents=True)
+    hot, rate = sf.read(raw / "ben/hot.wav", dtype="float64")
+    sf.write(railed / "ben/rail.wav", np.clip(1000 * hot, -1, 1), rate, subtype="PCM_16")
+    (rej,) = audio.condition_file(job_for(railed, tmp_path, "ben/rail.wav")).rejects
+    assert rej["reason"] == "clipped" and "(audio.unusable_clipped_fraction)" in rej["detail"]
+    # ben/hot.wav is kept by default, and rejected when its share is declared unusable.
+    (rej,) = audio.condition_file(job_for(raw, tmp_path, "ben/hot.wav", unusable_clipped_fraction=0.01)).rejects
+    assert rej["reason"] == "clipped" and "at most 1.000%" in rej["detail"]
 
 
 def test_picking_one_channel_and_wav_output(raw: Path, tmp_path: Path):

@@ -35,6 +35,7 @@ ARPABET = ["AA", "AE", "AH", "AO", "AW", "AY", "B", "CH", "D", "DH", "EH", "ER",
 SPEAKERS = ("alder", "heron", "otter", "plover", "sedge", "wren", "linnet", "teal")
 MIN_SNR_DB = 5.0  # the schema default of quality.min_snr_db
 MIN_BANDWIDTH_HZ = 5000.0  # the schema default of quality.min_bandwidth_hz
+MAX_CLIPPED_FRACTION = 0.001  # the schema default of audio.max_clipped_fraction
 
 
 # ---------------------------------------------------------------------------------------
@@ -62,7 +63,7 @@ class Corpus:
             rate: float = 12.0, accepted: bool = True, source_id: str | None = None, start_ms: int | None = None,
             snr_db: float | None = 25.0, bandwidth_hz: float | None = 7500.0, sha: str | None = None,
             fingerprint: np.ndarray | None = None, upsampled_from: int | None = None,
-            peak_limited_db: float = 0.0) -> str:
+            peak_limited_db: float = 0.0, clipped_fraction: float = 0.0) -> str:
         self.counter += 1
         source = source_id or f"{speaker}-{self.counter:010x}"
         cid = source if start_ms is None else f"{source}_{start_ms:08d}"
@@ -77,7 +78,7 @@ class Corpus:
             "source_sample_rate": 16000 if upsampled_from is None else upsampled_from,
             "upsampled_from": upsampled_from, "segment_index": 0, "speech_s": speech_s, "speech_ratio": 0.9,
             "loudness_in_lufs": -31.0, "loudness_lufs": -23.0, "gain_db": 8.0, "peak_limited_db": peak_limited_db,
-            "peak_dbfs": -2.0, "clipped_fraction": 0.0, "dc_offset": 0.0, "snr_db": snr_db,
+            "peak_dbfs": -2.0, "clipped_fraction": clipped_fraction, "dc_offset": 0.0, "snr_db": snr_db,
             "bandwidth_hz": bandwidth_hz, "fingerprint": quality.encode_fingerprint(fp), "transcribed": transcribed,
         })
         if transcribed and accepted:
@@ -123,15 +124,17 @@ def all_rows(result: StageResult) -> dict[str, dict[str, Any]]:
 def eligible_ids(corpus: Corpus, quality_config: dict[str, Any] | None = None) -> set[str]:
     """Eligibility recomputed from the inputs (rate gate disabled where this is used).
 
-    Defaults from schemas/config.schema.json: noisy clips are demoted, narrowband ones
-    only flagged."""
-    q = {"noisy_action": "demote", "narrowband_action": "flag", **(quality_config or {})}
+    Defaults from schemas/config.schema.json: noisy clips are demoted, narrowband and
+    clipped ones only flagged."""
+    q = {"noisy_action": "demote", "narrowband_action": "flag", "clipped_action": "flag", **(quality_config or {})}
     has_text = {t["clip_id"] for t in corpus.text}
     out = set()
     for a in corpus.audio:
         noisy = a["snr_db"] is not None and a["snr_db"] < MIN_SNR_DB
         narrow = a["bandwidth_hz"] is not None and a["bandwidth_hz"] < MIN_BANDWIDTH_HZ
-        held = (noisy and q["noisy_action"] != "flag") or (narrow and q["narrowband_action"] == "demote")
+        clipped = a["clipped_fraction"] > MAX_CLIPPED_FRACTION
+        held = ((noisy and q["noisy_action"] != "flag") or (narrow and q["narrowband_action"] == "demote")
+                or (clipped and q["clipped_action"] != "flag"))
         if a["clip_id"] in has_text and not held:
             out.add(a["clip_id"])
     return out
@@ -220,6 +223,7 @@ def random_corpus(sizes: list[int], seed: int, *, dup_share: float) -> tuple[Cor
                 rate=float(rng.uniform(10.0, 14.0)), sha=sha,
                 snr_db=25.0 if anchor else float(rng.choice([2.0, 25.0, 30.0], p=[0.2, 0.4, 0.4])),
                 bandwidth_hz=7500.0 if anchor else float(rng.choice([3400.0, 7500.0], p=[0.15, 0.85])),
+                clipped_fraction=0.0 if anchor else float(rng.choice([0.0, 0.0004, 0.02], p=[0.8, 0.1, 0.1])),
             )
             if anchor:
                 anchors.add(cid)
@@ -240,7 +244,8 @@ configs = st.fixed_dictionaries({
     }),
     "quality": st.fixed_dictionaries({**{k: st.just(v) for k, v in NO_RATE_GATE.items()},
                                       "noisy_action": st.sampled_from(["demote", "flag"]),
-                                      "narrowband_action": st.sampled_from(["flag", "demote"])}),
+                                      "narrowband_action": st.sampled_from(["flag", "demote"]),
+                                      "clipped_action": st.sampled_from(["flag", "demote", "reject"])}),
 })
 corpus_shapes = st.tuples(st.lists(st.integers(1, 6), min_size=2, max_size=6), st.integers(0, 2**32 - 1),
                           st.sampled_from([0.0, 0.15]))
@@ -486,6 +491,45 @@ def gated_corpus() -> tuple[Corpus, dict[str, str]]:
     return corpus, special
 
 
+@pytest.mark.parametrize("clipped_action", ["flag", "demote", "reject"])
+def test_clipped_transcribed_clips_stay_labelled_unless_the_config_demotes_or_rejects(
+        tmp_path: Path, clipped_action: str) -> None:
+    # Source: issue 14 item 4 and quality.clipped_action in schemas/config.schema.json
+    # ("flag" by default; the threshold is audio.max_clipped_fraction, 0.001).
+    corpus = Corpus()
+    clipped, at_threshold = set(), set()
+    for spk in SPEAKERS[:4]:
+        for k in range(6):
+            fraction = {0: 0.004, 1: 0.02, 2: MAX_CLIPPED_FRACTION}.get(k, 0.0)
+            cid = corpus.add(spk, 3.0 + k / 10, clipped_fraction=fraction)
+            (clipped if k < 2 else at_threshold if k == 2 else set()).add(cid)
+    data = {"split": {"heldout": "50%", "labelled_budgets": ["10h"]}, "quality": {"clipped_action": clipped_action}}
+    result = split.run(make_ctx(tmp_path, corpus, data))
+    rows = all_rows(result)
+    rejected = {r["clip_id"]: r for r in result.rejects}
+    if clipped_action == "reject":
+        assert set(rejected) == clipped and not clipped & set(rows)
+        for r in rejected.values():
+            assert (r["reason"], r["stage"]) == ("clipped", "split")
+            assert r["detail"].startswith(r["source_path"]) and "audio.max_clipped_fraction" in r["detail"]
+    else:
+        assert not rejected
+        assert all(rows[c]["quality_flags"] == ["clipped"] and rows[c]["clipped_fraction"] > 0.001 for c in clipped)
+        demoted = clipped_action == "demote"
+        training = [c for c in clipped if rows[c]["subset"] != "heldout"]
+        heldout = [c for c in clipped if rows[c]["subset"] == "heldout"]
+        assert training and heldout  # clipped clips on both sides of the split
+        # The 10h tier is short, so every eligible training clip is labelled.
+        assert all(rows[c]["subset"] == ("unlabelled" if demoted else "labelled") for c in training)
+        assert all((rows[c]["transcript"] is None) == demoted for c in training)
+        scored = result.summary["subsets"]["heldout"]["scored_clips"]
+        assert scored == sum(1 for r in rows.values() if r["subset"] == "heldout") - (len(heldout) if demoted else 0)
+    # At the threshold is not above it: never flagged.
+    assert all(rows[c]["quality_flags"] == [] and rows[c]["subset"] != "unlabelled" for c in at_threshold)
+    gates = result.summary["gates"]
+    assert (gates["clipped"], gates["rejected_clipped"]) == (8, 8 if clipped_action == "reject" else 0)
+
+
 @pytest.mark.parametrize("narrowband_action", ["flag", "demote"])
 def test_gates_flag_and_demote_as_configured(tmp_path: Path, narrowband_action: str) -> None:
     # Source: docs/split.md, Quality gates; |z| > 3.5 after Iglewicz and Hoaglin (1993).
@@ -516,8 +560,8 @@ def test_gates_flag_and_demote_as_configured(tmp_path: Path, narrowband_action: 
     heldout = [r for r in rows.values() if r["subset"] == "heldout"]
     scored = [r for r in heldout if r["clip_id"] not in demoted]
     assert result.summary["subsets"]["heldout"]["scored_clips"] == len(scored)
-    assert result.summary["gates"] == {"noisy": 5, "narrowband": 5, "rate_outlier": 5, "near_duplicate": 0,
-                                       "rejected_noisy": 0}
+    assert result.summary["gates"] == {"noisy": 5, "narrowband": 5, "rate_outlier": 5, "clipped": 0,
+                                       "near_duplicate": 0, "rejected_noisy": 0, "rejected_clipped": 0}
 
 
 def test_every_gate_can_be_a_flag_only_and_noisy_clips_rejected(tmp_path: Path) -> None:

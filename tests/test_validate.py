@@ -84,7 +84,7 @@ def clip_row(out: Path, *, clip_id: str, speaker: str, subset: str, freq_hz: flo
         "transcript": None if text is None else text.capitalize() + ".",
         "norm_text": text, "phones": None if text is None else cmu_phones(text),
         "subset": subset, "tiers": list(tiers), "speech_ratio": 0.9, "snr_db": 35.0,
-        "bandwidth_hz": 7800.0, "speaking_rate": None if text is None else 5.0,
+        "bandwidth_hz": 7800.0, "clipped_fraction": 0.0, "speaking_rate": None if text is None else 5.0,
         "rate_z": None if text is None else 0.1, "near_duplicate_of": None, "quality_flags": [],
         **audio,
     }
@@ -501,6 +501,26 @@ def test_narrowband_in_labelled_is_allowed_by_default_and_an_error_when_demoted(
     problems = out.validate()
     only(problems, "quality_gate", LAB, 2, "quality_flags")
     only(problems, "quality_gate", LAB, 2, "bandwidth_hz")
+
+
+@pytest.mark.parametrize("action", ["flag", "demote", "reject"])
+def test_clipped_clips_follow_clipped_action(out: Out, action: str) -> None:
+    # Source: quality.clipped_action in schemas/config.schema.json ("flag" by default) and
+    # audio.max_clipped_fraction (0.001): allowed anywhere, barred from labelled when
+    # demoted, from every subset when rejected.
+    for name in ("labelled", "heldout"):
+        out.rows[name][1]["quality_flags"] = ["clipped"]
+        out.rows[name][1]["clipped_fraction"] = 0.004
+    out.set_config(quality={"clipped_action": action})
+    problems = out.validate()
+    if action == "flag":
+        assert problems == []
+        return
+    only(problems, "quality_gate", LAB, 1, "clipped_fraction")
+    assert [(p.row, p.column) for p in found(problems, "quality_gate", LAB) if p.column == "quality_flags"] == [
+        (1, "quality_flags")] * (2 if action == "reject" else 1)
+    assert bool(found(problems, "quality_gate", HELD)) == (action == "reject")
+    assert "0.004000" in next(p.found for p in problems if p.column == "clipped_fraction")
 
 
 @pytest.mark.parametrize(("flag", "column", "value", "key"), [
