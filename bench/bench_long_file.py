@@ -2,7 +2,7 @@
 
 Generates (in a temporary folder) a recording of ``--minutes`` minutes at 48 kHz
 stereo, 16-bit WAV: espeak-ng sentences in several voices, looped with pauses of
-0.2 to 2.5 s over a -60 dBFS noise floor. Then runs ``pipeline.audio.condition_file``
+0.2 to 2.5 s over a -60 dBFS noise floor. Then runs ``pipeline.stages.audio.condition_file``
 on it in a fresh child process and reports wall time, times real time, and the
 child's peak resident memory (``ru_maxrss``), next to the same child doing only its
 imports. Prints a table, then the same figures as one JSON line.
@@ -43,10 +43,10 @@ VOICES = ["en-us", "en", "en-us+f3", "en+m3"]
 CHILD = r"""
 import json, resource, sys, time
 t0 = time.perf_counter()
-from pipeline import audio
-from pipeline.config import build_config
+from pipeline.stages import audio
+from pipeline.core.config import build_config
 if sys.argv[1] == "imports-only":
-    import pipeline.loudness, pipeline.quality, soundfile, soxr, webrtcvad  # what the work imports
+    import pipeline.signal.loudness, pipeline.signal.quality, soundfile, soxr, webrtcvad  # what the work imports
     print(json.dumps({"rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
     raise SystemExit
 row, source, out = json.loads(sys.argv[2]), sys.argv[3], sys.argv[4]
@@ -166,7 +166,7 @@ def main() -> None:
 
 def _sha256(path: Path) -> str:
     sys.path.insert(0, str(REPO))
-    from pipeline.fsio import sha256_file
+    from pipeline.core.fsio import sha256_file
 
     return sha256_file(path)
 

@@ -32,16 +32,16 @@ from pathlib import Path
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
-from pipeline.cli import BLAS_THREAD_VARIABLES  # noqa: E402
+from pipeline.commands.cli import BLAS_THREAD_VARIABLES  # noqa: E402
 
 # As `loam` does, before numpy loads: one thread per process.
 for variable in BLAS_THREAD_VARIABLES:
     os.environ.setdefault(variable, "1")
 
 from bench.floor import FloorJob, floor_one  # noqa: E402
-from pipeline import audio  # noqa: E402
-from pipeline.config import load_config  # noqa: E402
-from pipeline.manifest import read_manifest  # noqa: E402
+from pipeline.core.config import load_config  # noqa: E402
+from pipeline.core.manifest import read_manifest  # noqa: E402
+from pipeline.stages import audio  # noqa: E402
 
 
 def main() -> int:

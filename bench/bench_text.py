@@ -3,7 +3,7 @@
 Generates ``--sentences`` sentences from a fixed seed: words drawn with a
 Zipf-like frequency from CMUdict words and from invented, out-of-vocabulary
 words, with some numbers, money, clock times, initialisms and punctuation.
-Runs ``pipeline.text.run`` on them three times in one process, in a temporary
+Runs ``pipeline.stages.text.run`` on them three times in one process, in a temporary
 OUT folder:
 
 ``cold``     empty cache; includes importing inflect, nltk and g2p-en;
@@ -36,11 +36,11 @@ from typing import Any
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
-from pipeline import text  # noqa: E402
-from pipeline.config import build_config  # noqa: E402
-from pipeline.manifest import table_from_rows  # noqa: E402
-from pipeline.normalise import normalise  # noqa: E402
-from pipeline.stage import StageContext  # noqa: E402
+from pipeline.core.config import build_config  # noqa: E402
+from pipeline.core.manifest import table_from_rows  # noqa: E402
+from pipeline.core.stage import StageContext  # noqa: E402
+from pipeline.stages import text  # noqa: E402
+from pipeline.text.normalise import normalise  # noqa: E402
 
 EXTRAS = ["at 10:30", "for $5.20", "in 1998", "the 3rd", "50%", "5-10", "the FBX", "Dr. Okapi", "2,400"]
 

@@ -10,7 +10,7 @@ import os
 from dataclasses import dataclass
 from pathlib import Path
 
-from pipeline.parallel import map_ordered
+from pipeline.core.parallel import map_ordered
 
 
 @dataclass(frozen=True)
@@ -26,7 +26,7 @@ def floor_one(job: FloorJob) -> float:
     import soundfile as sf
     import soxr
 
-    from pipeline.decode import downmix
+    from pipeline.signal.decode import downmix
 
     audio, rate = sf.read(job.source, dtype="float32", always_2d=True)
     # The pipeline's own downmix: numpy's mean over the channel axis takes several

@@ -1,3 +1,3 @@
-from pipeline.cli import console
+from pipeline.commands.cli import console
 
 console()

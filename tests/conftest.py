@@ -102,12 +102,13 @@ def small_raw(tmp_path: Path) -> Path:
 @pytest.fixture(scope="session")
 def demo_build(tmp_path_factory: pytest.TempPathFactory) -> Path:
     """The demo corpus prepared once per test session (as `make` does), with its report."""
-    from pipeline.config import load_config
-    from pipeline.report import write_report
-    from pipeline.runner import Runner
+    from pipeline.commands.report import write_report
+    from pipeline.core.config import load_config
+    from pipeline.core.runner import Runner
+    from pipeline.stages import STAGES
 
     out = tmp_path_factory.mktemp("demo") / "out"
-    Runner(DEMO, out, load_config(DEMO / "corpus.toml"), workers=2).prepare()
+    Runner(DEMO, out, load_config(DEMO / "corpus.toml"), stages=STAGES, workers=2).prepare()
     write_report(out)
     return out
 

@@ -21,11 +21,11 @@ import scipy.signal
 import soundfile as sf
 import soxr
 
-from pipeline import audio
-from pipeline.config import build_config
-from pipeline.manifest import table_from_rows, validate_table
-from pipeline.quality import effective_bandwidth_hz, encode_fingerprint, fingerprint
-from pipeline.stage import StageContext
+from pipeline.core.config import build_config
+from pipeline.core.manifest import table_from_rows, validate_table
+from pipeline.core.stage import StageContext
+from pipeline.signal.quality import effective_bandwidth_hz, encode_fingerprint, fingerprint
+from pipeline.stages import audio
 from tests.conftest import DEMO, DEMO_CLEAN, FIXTURE_SPEECH, FIXTURES, speech_only
 
 VOICES = {FIXTURES / "speech" / f"{name}.flac": text for name, text in FIXTURE_SPEECH.items()}
@@ -203,7 +203,7 @@ def test_written_files_match_their_rows(first_run, raw: Path):
         assert (info.format, info.subtype, info.samplerate, info.channels) == ("FLAC", "PCM_16", 16000, 1)
         assert info.frames == r["num_samples"]
         samples, _ = sf.read(path, dtype="float64")
-        # Fingerprint of the clip as written (Haitsma-Kalker, pipeline.quality).
+        # Fingerprint of the clip as written (Haitsma-Kalker, pipeline.signal.quality).
         assert encode_fingerprint(fingerprint(samples, sample_rate=16000)) == r["fingerprint"]
 
 
@@ -335,7 +335,7 @@ def test_picking_one_channel_and_wav_output(raw: Path, tmp_path: Path):
 
 
 def test_pcm16_peak_equals_the_float_sample_peak():
-    from pipeline.loudness import sample_peak_dbfs
+    from pipeline.signal.loudness import sample_peak_dbfs
 
     rng = np.random.default_rng(2)
     for pcm in (rng.integers(-32768, 32768, 999).astype(np.int16), np.array([-32768, 5], dtype=np.int16),

@@ -16,10 +16,10 @@ import soundfile as sf
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pipeline.cli import main
-from pipeline.errors import ConfigError, DataError
-from pipeline.ingest import read_metadata_table
-from pipeline.manifest import check_table
+from pipeline.commands.cli import main
+from pipeline.core.errors import ConfigError, DataError
+from pipeline.core.manifest import check_table
+from pipeline.stages.ingest import read_metadata_table
 from tests.conftest import speechlike, tree_hash
 
 SR = 16000

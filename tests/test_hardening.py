@@ -16,8 +16,8 @@ from unittest import mock
 import pyarrow.parquet as pq
 import pytest
 
-from pipeline.cli import main
-from pipeline.lock import LOCK_NAME
+from pipeline.commands.cli import main
+from pipeline.core.lock import LOCK_NAME
 
 
 def loam(*args: str, timeout: float | None = None) -> subprocess.CompletedProcess:
@@ -85,7 +85,7 @@ def test_full_disk_midway_leaves_old_manifest_intact(small_raw: Path, tmp_path: 
             fh.write(b"PAR1" + b"\0" * 100)
         raise OSError(errno.ENOSPC, "No space left on device", str(where))
 
-    with mock.patch("pipeline.manifest.pq.write_table", failing_write):
+    with mock.patch("pipeline.core.manifest.pq.write_table", failing_write):
         code = main(args)
     assert code == 1 and calls["n"] >= 1
     assert "No space left on device" in capsys.readouterr().err
@@ -102,7 +102,7 @@ def test_unwritable_out_is_a_clear_error(small_raw: Path, tmp_path: Path, capsys
     assert "cannot create the folder" in capsys.readouterr().err
 
     out = tmp_path / "out"
-    with mock.patch("pipeline.fsio.tempfile.mkstemp", side_effect=PermissionError(errno.EACCES, "Permission denied", str(out))):
+    with mock.patch("pipeline.core.fsio.tempfile.mkstemp", side_effect=PermissionError(errno.EACCES, "Permission denied", str(out))):
         assert main(["stage", "ingest", str(small_raw), str(out)]) == 1
     assert "Permission denied" in capsys.readouterr().err
     assert not (out / "stages" / "ingest.parquet").exists()

@@ -1,4 +1,4 @@
-"""pipeline.iir against the reference library: scipy.signal.sosfilt and scipy.signal.bilinear."""
+"""pipeline.signal.iir against the reference library: scipy.signal.sosfilt and scipy.signal.bilinear."""
 
 from __future__ import annotations
 
@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from pipeline import iir, loudness
-from pipeline.errors import ParameterError
+from pipeline.core.errors import ParameterError
+from pipeline.signal import iir, loudness
 
 # float32 products, float64 state: the block form rounds like float32 arithmetic.
 RELATIVE_TOLERANCE = 1e-5

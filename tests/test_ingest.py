@@ -11,15 +11,15 @@ from unittest import mock
 import pyarrow.parquet as pq
 import pytest
 
-from pipeline import ingest
-from pipeline.config import build_config
-from pipeline.runner import Runner
+from pipeline.core.config import build_config
+from pipeline.core.runner import Runner
+from pipeline.stages import STAGES, ingest
 
 META = {"ingest": {"metadata": "meta.csv"}}
 
 
 def run_ingest(raw: Path, out: Path, data: dict | None = None, workers: int = 1) -> tuple[list[dict], list[dict]]:
-    runner = Runner(raw, out, build_config(data if data is not None else META), workers=workers)
+    runner = Runner(raw, out, build_config(data if data is not None else META), stages=STAGES, workers=workers)
     runner.prepare(("ingest",))
     rows = pq.read_table(out / "stages" / "ingest.parquet").to_pylist()
     rejects = pq.read_table(out / "manifests" / "rejected.parquet").to_pylist()
@@ -87,7 +87,7 @@ def test_walk_order_does_not_matter(small_raw: Path, tmp_path: Path) -> None:
             dirs.reverse()
             yield folder, dirs, list(reversed(files))
 
-    with mock.patch("pipeline.ingest.os.walk", reversed_walk):
+    with mock.patch("pipeline.stages.ingest.os.walk", reversed_walk):
         second = run_ingest(small_raw, tmp_path / "b")
     assert first == second
     assert (tmp_path / "a/stages/ingest.parquet").read_bytes() == (tmp_path / "b/stages/ingest.parquet").read_bytes()
@@ -174,7 +174,7 @@ def test_metadata_table_faults(small_raw: Path, tmp_path: Path) -> None:
 
 
 def test_missing_metadata_column_is_a_configuration_error(small_raw: Path, tmp_path: Path) -> None:
-    from pipeline.errors import ConfigError
+    from pipeline.core.errors import ConfigError
 
     (small_raw / "meta.csv").write_text("file,text\nspk_b/b1.wav,x\n", encoding="utf-8")
     with pytest.raises(ConfigError) as err:
@@ -187,7 +187,7 @@ def test_missing_metadata_column_is_a_configuration_error(small_raw: Path, tmp_p
 
 
 def test_metadata_table_named_wrongly_is_a_configuration_error(small_raw: Path, tmp_path: Path) -> None:
-    from pipeline.errors import ConfigError
+    from pipeline.core.errors import ConfigError
 
     with pytest.raises(ConfigError, match=r"key 'ingest.metadata' has value 'nowhere.csv': cannot read the "
                                           r"metadata table \(No such file or directory\)"):
@@ -198,7 +198,7 @@ def test_metadata_table_named_wrongly_is_a_configuration_error(small_raw: Path, 
 
 
 def test_empty_metadata_table_stops_with_message(small_raw: Path, tmp_path: Path) -> None:
-    from pipeline.errors import DataError
+    from pipeline.core.errors import DataError
 
     (small_raw / "meta.csv").write_bytes(b"")
     with pytest.raises(DataError, match=r"meta.csv: the metadata table is empty; expected a header line"):
@@ -330,12 +330,12 @@ def test_raw_is_not_modified(small_raw: Path, tmp_path: Path) -> None:
 
 def test_demo_corpus_counts_conservation_and_reasons(tmp_path: Path) -> None:
     """The demo's deliberate faults (listed in demo_corpus/README.md) each get their reason."""
-    from pipeline.config import load_config
+    from pipeline.core.config import load_config
     from tests.conftest import DEMO
 
     cfg = load_config(DEMO / "corpus.toml")
     out = tmp_path / "out"
-    Runner(DEMO, out, cfg, workers=2).prepare(("ingest",))
+    Runner(DEMO, out, cfg, stages=STAGES, workers=2).prepare(("ingest",))
     rows = pq.read_table(out / "stages" / "ingest.parquet").to_pylist()
     rejects = pq.read_table(out / "manifests" / "rejected.parquet").to_pylist()
     reasons = {r["source_path"]: r["reason"] for r in rejects}
@@ -378,7 +378,7 @@ def test_container_missing_from_libsndfile_is_unsupported(small_raw: Path, tmp_p
 
 def test_latin1_sidecar_end_to_end_then_fixed_by_the_setting(small_raw: Path, tmp_path: Path) -> None:
     """The audio of a Latin-1 sidecar reaches a subset; naming the encoding brings the transcript back."""
-    from pipeline.cli import main
+    from pipeline.commands.cli import main
 
     (small_raw / "spk_a" / "a2.txt").write_bytes("the na\u00efve caf\u00e9".encode("latin-1"))
     out = tmp_path / "out"
@@ -401,7 +401,7 @@ def test_latin1_sidecar_end_to_end_then_fixed_by_the_setting(small_raw: Path, tm
 
 
 def test_decode_text_reports_the_byte_offset_in_the_file() -> None:
-    from pipeline.transcripts import decode_text
+    from pipeline.stages.transcripts import decode_text
 
     assert decode_text(b"ok \xe9", encoding="utf-8") == (None, 3)
     # The offset counts the byte-order mark, so it points into the file as stored.
@@ -412,7 +412,7 @@ def test_decode_text_reports_the_byte_offset_in_the_file() -> None:
 
 
 def test_sidecar_with_utf8_mark_is_judged_as_utf8(tmp_path: Path) -> None:
-    from pipeline.transcripts import read_sidecar
+    from pipeline.stages.transcripts import read_sidecar
 
     (tmp_path / "a.txt").write_bytes(b"\xef\xbb\xbfok \xff")
     text, problem = read_sidecar(tmp_path, "a.txt", encoding="cp1252")
@@ -432,7 +432,7 @@ def test_table_with_utf8_mark_is_judged_as_utf8(small_raw: Path, tmp_path: Path)
 
 def test_environment_failure_only_when_nothing_got_through_for_a_machine_reason() -> None:
     # Source: README.md, exit codes: every audio file unreadable points at the machine.
-    from pipeline.ingest import environment_failure
+    from pipeline.stages.ingest import environment_failure
 
     def rej(path: str, reason: str) -> dict:
         return {"source_path": path, "reason": reason, "detail": f"{path}: {reason}"}

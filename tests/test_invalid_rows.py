@@ -13,11 +13,11 @@ import pyarrow.parquet as pq
 import pytest
 import soundfile as sf
 
-from pipeline import audio
-from pipeline.cli import main
-from pipeline.errors import ManifestError
-from pipeline.manifest import partition_rows, table_from_rows
-from pipeline.validate import validate_out
+from pipeline.commands.cli import main
+from pipeline.commands.validate import validate_out
+from pipeline.core.errors import ManifestError
+from pipeline.core.manifest import partition_rows, table_from_rows
+from pipeline.stages import audio
 from tests.conftest import speechlike
 
 SR = 16000

@@ -10,10 +10,10 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline import split
-from pipeline.config import build_config
-from pipeline.errors import UsageError
-from pipeline.ledger import (
+from pipeline.core.config import build_config
+from pipeline.core.errors import UsageError
+from pipeline.stages import split
+from pipeline.stages.ledger import (
     MAGIC,
     ClipRecord,
     Ledger,
@@ -50,7 +50,7 @@ def ledgers(draw: st.DrawFn) -> Ledger:
 @settings(max_examples=100, deadline=None)
 @given(ledger=ledgers())
 def test_round_trip(ledger: Ledger) -> None:
-    # Source: the format in the docstring of pipeline/ledger.py and docs/split.md, The ledger.
+    # Source: the format in the docstring of pipeline/stages/ledger.py and docs/split.md, The ledger.
     text = format_ledger(ledger)
     back = parse_ledger(text, source="x.tsv")
     assert back == ledger
@@ -228,7 +228,7 @@ def test_removed_clips_and_returning_groups(tmp_path: Path) -> None:
 
 
 def test_fresh_ignores_a_malformed_ledger_and_rewrites_it(tmp_path: Path) -> None:
-    # Source: the --fresh help of pipeline/cli.py: ignore the split ledger.
+    # Source: the --fresh help of pipeline/commands/cli.py: ignore the split ledger.
     path = tmp_path / "out" / "ledger.tsv"
     path.parent.mkdir(parents=True)
     path.write_text("not a ledger\n", encoding="utf-8")

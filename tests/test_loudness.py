@@ -1,4 +1,4 @@
-"""Tests for pipeline.loudness against BS.1770-4, EBU Tech 3341, pyloudnorm and analytic signals."""
+"""Tests for pipeline.signal.loudness against BS.1770-4, EBU Tech 3341, pyloudnorm and analytic signals."""
 
 from __future__ import annotations
 
@@ -10,8 +10,8 @@ import pytest
 import scipy.signal
 import soundfile
 
-from pipeline.errors import ParameterError
-from pipeline.loudness import (
+from pipeline.core.errors import ParameterError
+from pipeline.signal.loudness import (
     integrated_loudness,
     k_weighting_sos,
     normalisation_gain,
@@ -423,7 +423,7 @@ def test_gain_applied_to_a_clip(peak_ratio_db: float) -> None:
     )
     gained = clip * 10 ** (gain_db / 20)
     assert shortfall_db >= 0.0
-    # The K-weighting runs in float32 (pipeline.iir): homogeneous to ~1e-7 LU, not 1e-12.
+    # The K-weighting runs in float32 (pipeline.signal.iir): homogeneous to ~1e-7 LU, not 1e-12.
     assert integrated_loudness(gained, sample_rate=16_000) == pytest.approx(
         -16.0 - shortfall_db, abs=1e-5
     )

@@ -13,8 +13,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pipeline.errors import ManifestError
-from pipeline.manifest import (
+from pipeline.core.errors import ManifestError
+from pipeline.core.manifest import (
     arrow_schema,
     check_table,
     read_metadata,
@@ -22,7 +22,7 @@ from pipeline.manifest import (
     validate_table,
     write_manifest,
 )
-from pipeline.schemas_io import SCHEMA_DIR
+from pipeline.core.schemas_io import SCHEMA_DIR
 
 MANIFESTS = sorted(p.name.split(".")[0] for p in SCHEMA_DIR.glob("*.schema.json") if p.name != "config.schema.json")
 
@@ -32,7 +32,7 @@ def test_every_schema_is_valid_draft_2020_12(name: str) -> None:
     # Checked here rather than at run time: a clean table never compiles its validator.
     from jsonschema import Draft202012Validator
 
-    from pipeline.schemas_io import load_schema
+    from pipeline.core.schemas_io import load_schema
 
     Draft202012Validator.check_schema(load_schema(name))
 
@@ -41,7 +41,7 @@ def test_building_and_checking_manifests_leaves_pandas_unloaded(tmp_path: Path) 
     # A fresh interpreter: this test process may have imported pandas already.
     script = textwrap.dedent(f"""
         import sys
-        from pipeline.manifest import check_table, read_manifest, table_from_rows, write_manifest
+        from pipeline.core.manifest import check_table, read_manifest, table_from_rows, write_manifest
         row = {{"source_path": "a/b.wav", "reason": "empty", "detail": "a/b.wav: empty",
                 "stage": "ingest", "clip_id": None}}
         table = table_from_rows("rejected", [row, dict(row, reason="nonsense")])
@@ -162,7 +162,7 @@ def test_list_columns_agree_with_jsonschema(rows: list[dict]) -> None:
 def test_builder_gives_the_table_of_the_sorted_rows_whatever_the_arrival_order(batch_rows: int) -> None:
     import random
 
-    from pipeline.manifest import ManifestBuilder
+    from pipeline.core.manifest import ManifestBuilder
 
     rows = [good_reject(source_path=f"s{i:03d}.wav", detail=f"s{i:03d}.wav: empty",
                         clip_id=None if i % 4 else f"c{i:03d}") for i in range(50)]
@@ -182,7 +182,7 @@ def test_builder_gives_the_table_of_the_sorted_rows_whatever_the_arrival_order(b
 
 
 def test_builder_with_no_rows_gives_an_empty_valid_table() -> None:
-    from pipeline.manifest import ManifestBuilder
+    from pipeline.core.manifest import ManifestBuilder
 
     table = ManifestBuilder("audio").table(sort_by="clip_id")
     assert table.num_rows == 0 and table.schema.equals(arrow_schema("audio"))

@@ -1,4 +1,4 @@
-"""Transcript normalisation (pipeline/normalise.py).
+"""Transcript normalisation (pipeline/text/normalise.py).
 
 Number words are checked against the inflect library (the reference the module
 builds on) for random integers; the worked examples for years, money, times and
@@ -17,8 +17,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pipeline.errors import ParameterError
-from pipeline.normalise import (
+from pipeline.core.errors import ParameterError
+from pipeline.text.normalise import (
     MAX_CARDINAL_DIGITS,
     Normalised,
     _classify,
@@ -162,7 +162,7 @@ def test_verbalise_off_keeps_digits_as_words() -> None:
 
 def test_text_without_digits_does_not_import_inflect() -> None:
     code = (
-        "import sys; from pipeline.normalise import normalise; "
+        "import sys; from pipeline.text.normalise import normalise; "
         "normalise('Dr. Okapi walks home'); assert 'inflect' not in sys.modules; "
         "normalise('at 5'); assert 'inflect' in sys.modules"
     )
@@ -302,7 +302,7 @@ def test_words_equal_an_ordinarily_imported_inflect() -> None:
     script = (
         "import json\n"
         "{pre}"
-        "from pipeline.normalise import normalise\n"
+        "from pipeline.text.normalise import normalise\n"
         f"print(json.dumps([normalise(t).text for t in {NUMBER_SENTENCES!r}]))\n"
     )
     outputs = []

@@ -22,7 +22,7 @@ ROOT = Path(__file__).resolve().parent.parent
 def test_distribution_name_is_not_the_taken_one_and_the_command_is_loam() -> None:
     project = tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))["project"]
     assert project["name"] == "loam-speech"
-    assert project["scripts"] == {"loam": "pipeline.cli:console"}
+    assert project["scripts"] == {"loam": "pipeline.commands.cli:console"}
     assert "cluster" in project["optional-dependencies"]
 
 
@@ -33,4 +33,4 @@ def test_every_pip_install_in_the_readme_installs_from_a_checkout_or_a_third_par
     for target in targets:
         # A checkout ('.', '.[extra]') or a named third-party package; never the index's "loam".
         assert target.startswith(".") or not re.match(r"loam\b", target), target
-    assert "'loam[" not in (ROOT / "pipeline" / "parallel.py").read_text(encoding="utf-8")
+    assert "'loam[" not in (ROOT / "pipeline" / "core" / "parallel.py").read_text(encoding="utf-8")

@@ -7,7 +7,7 @@ import time
 
 import pytest
 
-from pipeline.parallel import map_ordered
+from pipeline.core.parallel import map_ordered
 
 
 def slow_square(x: int) -> tuple[int, int]:

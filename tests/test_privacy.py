@@ -9,10 +9,11 @@ from pathlib import Path
 import pyarrow.parquet as pq
 import pytest
 
-from pipeline.config import build_config
-from pipeline.errors import UsageError
-from pipeline.privacy import load_key, pseudonym
-from pipeline.runner import Runner
+from pipeline.core.config import build_config
+from pipeline.core.errors import UsageError
+from pipeline.core.runner import Runner
+from pipeline.stages import STAGES
+from pipeline.stages.privacy import load_key, pseudonym
 
 
 def test_hmac_primitive_matches_rfc4231_case_2() -> None:
@@ -40,7 +41,7 @@ def test_ingest_pseudonymises_and_writes_mapping_only_where_asked(small_raw: Pat
     cfg = build_config({"ingest": {"metadata": "meta.csv"},
                         "privacy": {"pseudonymise": True, "key_file": str(key), "mapping_file": str(mapping)}})
     out = tmp_path / "out"
-    Runner(small_raw, out, cfg, workers=1).prepare(("ingest",))
+    Runner(small_raw, out, cfg, stages=STAGES, workers=1).prepare(("ingest",))
     rows = pq.read_table(out / "stages" / "ingest.parquet").to_pylist()
     expected = {"spk_a": pseudonym("spk_a", key=key.read_bytes().strip()), "spk_b": pseudonym("spk_b", key=key.read_bytes().strip())}
     assert {r["speaker"] for r in rows} == set(expected.values())

@@ -1,4 +1,4 @@
-"""Tests of the signal-level quality gates in pipeline.quality.
+"""Tests of the signal-level quality gates in pipeline.signal.quality.
 
 References used: the statistical model of Kim and Stern (Interspeech 2008) simulated
 directly with numpy, analytic moments of the normal distribution, espeak-ng speech (the
@@ -20,8 +20,8 @@ import scipy.signal
 import soundfile as sf
 import soxr
 
-from pipeline import quality
-from pipeline.errors import ParameterError
+from pipeline.core.errors import ParameterError
+from pipeline.signal import quality
 from tests.conftest import DEMO, FIXTURE_SPEECH, FIXTURES, speech_only
 
 # The default of quality.near_duplicate_min_similarity in schemas/config.schema.json.
@@ -527,7 +527,7 @@ def test_robust_z_labels_factorised_like_pandas() -> None:
 def test_streamed_psd_equals_the_whole_signal_psd() -> None:
     # The audio stage feeds blocks of any size; the segment-count-weighted average must be
     # the PSD of the whole signal (which test_long_term_psd_equals_scipy_welch pins down).
-    from pipeline.audio import LongTermPsd
+    from pipeline.stages.audio import LongTermPsd
 
     rng = np.random.default_rng(12)
     x = rng.normal(size=16000 * 3).astype(np.float32)

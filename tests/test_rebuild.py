@@ -9,7 +9,7 @@ import pyarrow.parquet as pq
 import pytest
 import soundfile as sf
 
-from pipeline.cli import main
+from pipeline.commands.cli import main
 from tests.conftest import DEMO, speechlike
 
 SUBSETS = ("labelled", "unlabelled", "heldout")

@@ -20,10 +20,10 @@ import pandas as pd
 import pyarrow.parquet as pq
 import pytest
 
-from pipeline.cli import main
-from pipeline.config import build_config
-from pipeline.manifest import table_from_rows
-from pipeline.report import build_summary, hms, write_report
+from pipeline.commands.cli import main
+from pipeline.commands.report import build_summary, hms, write_report
+from pipeline.core.config import build_config
+from pipeline.core.manifest import table_from_rows
 from tests.test_validate import CONFIG, LAB, Out, write_table
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")

@@ -1,4 +1,4 @@
-"""Resampling, downmix and 16-bit helpers of pipeline.decode, checked against analytic
+"""Resampling, downmix and 16-bit helpers of pipeline.signal.decode, checked against analytic
 signals, scipy.signal.resample_poly, soxr itself and libsndfile (soundfile)."""
 
 from __future__ import annotations
@@ -9,7 +9,8 @@ import scipy.signal
 import soundfile as sf
 import soxr
 
-from pipeline.decode import (
+from pipeline.core.errors import ParameterError
+from pipeline.signal.decode import (
     Spool,
     StreamResampler,
     check_channel,
@@ -18,7 +19,6 @@ from pipeline.decode import (
     read_blocks,
     resample,
 )
-from pipeline.errors import ParameterError
 
 SOURCE_RATE = 44100
 TARGET_RATE = 16000

@@ -8,7 +8,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.cli import main
+from pipeline.commands.cli import main
 from tests.conftest import tree_hash
 
 
@@ -33,7 +33,7 @@ def test_text_runs_while_the_audio_pool_works_and_outputs_do_not_change(
         assert [s.get("during") for s in recorded] == [None, None, "audio", None]
     # The text stage (which needs only ingest) runs in the driver while the workers
     # condition audio; audio has worker processes even with one worker, so that a
-    # decoder's crash never takes the driver down (pipeline/pool.py).
+    # decoder's crash never takes the driver down (pipeline/core/pool.py).
     for workers in (1, 2):
         assert logs[workers].index("text   running") < logs[workers].index("audio  done")
     assert outputs[1] == outputs[2]
@@ -68,7 +68,7 @@ def test_a_full_prepare_never_loads_pandas_or_scipy_signal(small_raw: Path, tmp_
 
     script = (
         "import sys\n"
-        "from pipeline.cli import main\n"
+        "from pipeline.commands.cli import main\n"
         f"rc = main(['prepare', {str(small_raw)!r}, {str(tmp_path / 'out')!r}, '--workers', '2', '--no-progress'])\n"
         "print(rc, sorted(m for m in ('pandas', 'scipy.signal', 'g2p_en', 'nltk') if m in sys.modules))\n"
     )

@@ -1,4 +1,4 @@
-"""Segmentation of long recordings (pipeline.segment) on synthetic decision sequences.
+"""Segmentation of long recordings (pipeline.signal.segment) on synthetic decision sequences.
 
 Expected cuts are worked out by hand from the rule in the module docstring; the
 general properties are checked with hypothesis on random sequences."""
@@ -12,9 +12,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline.errors import ParameterError
-from pipeline.schemas_io import load_schema
-from pipeline.segment import segment_id, split_frames
+from pipeline.core.errors import ParameterError
+from pipeline.core.schemas_io import load_schema
+from pipeline.signal.segment import segment_id, split_frames
 
 FRAME_MS = 100  # 10 frames a second keeps hand-worked examples readable
 

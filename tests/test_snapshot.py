@@ -1,4 +1,4 @@
-"""The no-change check (pipeline.snapshot): an identical rerun ends at once, and any
+"""The no-change check (pipeline.core.snapshot): an identical rerun ends at once, and any
 change to RAW, OUT, the config, the overrides or a watched file makes a full run."""
 
 from __future__ import annotations
@@ -11,8 +11,8 @@ from pathlib import Path
 
 import pytest
 
-from pipeline import snapshot
-from pipeline.cli import main
+from pipeline.commands.cli import main
+from pipeline.core import snapshot
 from tests.conftest import REPO, tree_hash
 
 NOTHING = "nothing changed since the last run"
@@ -49,7 +49,7 @@ def test_identical_rerun_ends_at_once_with_the_same_outputs(small_raw: Path, tmp
 def test_the_check_imports_nothing_heavy(small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     out = tmp_path / "out"
     _run(small_raw, out, capsys)
-    probe = ("import sys\nfrom pipeline.cli import main\n"
+    probe = ("import sys\nfrom pipeline.commands.cli import main\n"
              f"rc = main(['prepare', {str(small_raw)!r}, {str(out)!r}, '--workers', '1', '--no-progress'])\n"
              "print(rc, sorted(m for m in ('numpy', 'pyarrow', 'jsonschema', 'soundfile') if m in sys.modules))\n")
     done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, cwd=REPO, check=True)
@@ -119,12 +119,12 @@ def test_a_run_that_stops_half_way_leaves_no_snapshot(small_raw: Path, tmp_path:
     out = tmp_path / "out"
     _run(small_raw, out, capsys)
     (small_raw / "spk_a" / "a1.txt").write_text("changed words\n", encoding="utf-8")
-    import pipeline.text
+    import pipeline.stages.text
 
     def broken(ctx: object) -> None:
         raise RuntimeError("stopped")
 
-    monkeypatch.setattr(pipeline.text, "run", broken)
+    monkeypatch.setattr(pipeline.stages.text, "run", broken)
     assert main(["prepare", str(small_raw), str(out), "--workers", "1", "--no-progress"]) == 1
     assert not (out / snapshot.STATE_PATH).exists()
     monkeypatch.undo()

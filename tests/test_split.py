@@ -23,11 +23,12 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pipeline import quality, split
-from pipeline.config import build_config
-from pipeline.errors import DataError, UsageError
-from pipeline.manifest import table_from_rows, validate_table
-from pipeline.stage import StageContext, StageResult
+from pipeline.core.config import build_config
+from pipeline.core.errors import DataError, UsageError
+from pipeline.core.manifest import table_from_rows, validate_table
+from pipeline.core.stage import StageContext, StageResult
+from pipeline.signal import quality
+from pipeline.stages import split
 
 REPO = Path(__file__).resolve().parent.parent
 # The 39 stressless ARPAbet phones of the CMU Pronouncing Dictionary.
@@ -637,9 +638,10 @@ def test_same_inputs_in_any_row_order_give_identical_bytes(tmp_path: Path, selec
 # ---------------------------------------------------------------------------------------
 
 def test_runner_writes_the_three_manifests_and_rejects(tmp_path: Path) -> None:
-    # Source: the stage contract of pipeline/stage.py and DEVELOPERS.md (the runner validates and writes).
-    from pipeline.manifest import read_manifest, read_metadata, write_manifest
-    from pipeline.runner import Runner
+    # Source: the stage contract of pipeline/core/stage.py and DEVELOPERS.md (the runner validates and writes).
+    from pipeline.core.manifest import read_manifest, read_metadata, write_manifest
+    from pipeline.core.runner import Runner
+    from pipeline.stages import STAGES
 
     corpus, special = gated_corpus()
     out = tmp_path / "out"
@@ -648,7 +650,7 @@ def test_runner_writes_the_three_manifests_and_rejects(tmp_path: Path) -> None:
         write_manifest(out / "stages" / f"{name}.parquet", name, inputs[name], metadata={"stage": name})
     cfg = build_config({"seed": 7, "split": {"labelled_budgets": ["30s"]}, "quality": {"noisy_action": "reject"}})
     (tmp_path / "raw").mkdir()
-    Runner(tmp_path / "raw", out, cfg, workers=1).prepare(("split",))
+    Runner(tmp_path / "raw", out, cfg, stages=STAGES, workers=1).prepare(("split",))
     counts = {s: read_manifest(out / split.SUBSET_PATHS[s]).num_rows for s in split.SUBSETS}
     rejected = read_manifest(out / "manifests" / "rejected.parquet").to_pylist()
     assert sum(counts.values()) + len(rejected) == len(corpus.audio)
@@ -685,7 +687,7 @@ def test_merge_groups_matches_connected_components() -> None:
     from scipy.sparse import coo_matrix
     from scipy.sparse.csgraph import connected_components
 
-    from pipeline.split import merge_groups
+    from pipeline.stages.split import merge_groups
 
     assert merge_groups(["b", "c", "a", "d"], [(0, 1), (1, 2)]) == ["a", "a", "a", "d"]
     assert merge_groups(["x", "y"], []) == ["x", "y"]

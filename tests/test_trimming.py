@@ -10,7 +10,7 @@ edges to within a few samples).
 Each case puts 0.3-2 s of silence before and after the speech, sets the speech peak
 40-55 dB above a white-noise floor of -70 to -50 dBFS RMS (or digital silence), and is
 written as 16-bit WAV at one of the input rates the stage supports. It then goes through
-the real per-file path, ``pipeline.audio.condition_file``, with the default settings.
+the real per-file path, ``pipeline.stages.audio.condition_file``, with the default settings.
 
 Target (the project's requirement for trimming): every edge within ``pad_ms`` + 0.25 s of
 the true speech edge, and no speech cut by more than 30 ms.
@@ -26,8 +26,8 @@ import pytest
 import soundfile as sf
 import soxr
 
-from pipeline import audio
-from pipeline.config import build_config
+from pipeline.core.config import build_config
+from pipeline.stages import audio
 from tests.conftest import DEMO, DEMO_CLEAN, FIXTURE_SPEECH, FIXTURES, speech_only
 
 RATES = (8000, 11025, 16000, 22050, 44100, 48000)

@@ -13,11 +13,11 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from pipeline import audio
-from pipeline.config import build_config
-from pipeline.declared import DataExtent, mp3_length_is_exact, wav_data_extent
-from pipeline.decode import BLOCK_SAMPLES, read_blocks
-from pipeline.ingest import ProbeJob, probe_file
+from pipeline.core.config import build_config
+from pipeline.signal.declared import DataExtent, mp3_length_is_exact, wav_data_extent
+from pipeline.signal.decode import BLOCK_SAMPLES, read_blocks
+from pipeline.stages import audio
+from pipeline.stages.ingest import ProbeJob, probe_file
 from tests.conftest import speechlike
 
 SR = 16000
@@ -165,7 +165,7 @@ def test_mp3_without_a_length_frame_is_not_judged_by_its_estimate(tmp_path: Path
 
 
 def test_wada_snr_of_subnormal_samples_warns_nothing() -> None:
-    from pipeline.quality import wada_snr_db
+    from pipeline.signal.quality import wada_snr_db
 
     x = speechlike(1.0, SR, seed=8).astype(np.float32) * 16
     x[::97] = np.float32(1e-45)  # the smallest subnormal float32 (IEEE 754 binary32)

@@ -1,6 +1,6 @@
 """Voice activity: webrtcvad's documented limits, no-speech signals, the detector's
 start-up, trimming synthetic speech (espeak-ng, from the committed demo corpus), and the
-smoothing rules of pipeline.vad. tests/test_trimming.py checks trimming on a whole set."""
+smoothing rules of pipeline.signal.vad. tests/test_trimming.py checks trimming on a whole set."""
 
 from __future__ import annotations
 
@@ -10,8 +10,8 @@ import soundfile as sf
 import soxr
 import webrtcvad
 
-from pipeline.errors import ParameterError
-from pipeline.vad import (
+from pipeline.core.errors import ParameterError
+from pipeline.signal.vad import (
     LEAD_IN_MS,
     NOISE_FLATNESS,
     VAD_FRAME_MS,

@@ -21,16 +21,16 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from pipeline.cli import main
-from pipeline.config import build_config
-from pipeline.errors import UsageError
-from pipeline.manifest import Problem, empty_table, table_from_rows
-from pipeline.validate import (
+from pipeline.commands.cli import main
+from pipeline.commands.validate import (
     bench_validate,
     exit_code,
     format_table,
     validate_out,
 )
+from pipeline.core.config import build_config
+from pipeline.core.errors import UsageError
+from pipeline.core.manifest import Problem, empty_table, table_from_rows
 
 REPO = Path(__file__).resolve().parent.parent
 RATE = 16000
@@ -401,8 +401,9 @@ def test_every_transcript_rejected_fails_validation(demo_build: Path, tmp_path: 
                                                    capsys: pytest.CaptureFixture[str]) -> None:
     # The demo rebuilt with a lexicon that knows none of its words and rejects unknown
     # words: prepare finishes (with a warning), validate must not pass it.
-    from pipeline.config import load_config
-    from pipeline.runner import Runner
+    from pipeline.core.config import load_config
+    from pipeline.core.runner import Runner
+    from pipeline.stages import STAGES
     from tests.conftest import DEMO
 
     out = tmp_path / "out"
@@ -411,7 +412,7 @@ def test_every_transcript_rejected_fails_validation(demo_build: Path, tmp_path: 
     lexicon.write_text("quern\tk w er n\n", encoding="utf-8")
     config = load_config(DEMO / "corpus.toml", overrides={
         "text.backend": "lexicon", "text.lexicon": str(lexicon), "text.oov": "reject"})
-    Runner(DEMO, out, config, workers=1, options={"fresh": True}).prepare(("text", "split"))
+    Runner(DEMO, out, config, stages=STAGES, workers=1, options={"fresh": True}).prepare(("text", "split"))
     assert pq.read_table(out / "stages" / "text.parquet").num_rows == 0
     problems = validate_out(out, audio_files=False).problems
     assert {(p.check, p.file) for p in problems if p.severity == "error"} == {
@@ -693,7 +694,7 @@ def test_flac_header_parse_agrees_with_libsndfile(tmp_path: Path) -> None:
     import numpy as np
     import soundfile as sf
 
-    from pipeline.validate import _flac_streaminfo, read_header
+    from pipeline.commands.validate import _flac_streaminfo, read_header
 
     for rate, frames, channels in [(16000, 12345, 1), (44100, 1, 2), (96000, 300000, 6), (8000, 2**20 + 7, 1)]:
         path = tmp_path / f"{rate}_{frames}_{channels}.flac"
@@ -712,7 +713,7 @@ def test_conservation_fires_when_a_clip_goes_missing(demo_build: Path, tmp_path:
     """Drop one clip from unlabelled.parquet: it is then in no subset and not rejected."""
     import pyarrow.parquet as pq
 
-    from pipeline.manifest import read_metadata, write_manifest
+    from pipeline.core.manifest import read_metadata, write_manifest
 
     out = tmp_path / "out"
     shutil.copytree(demo_build, out)
@@ -729,7 +730,7 @@ def test_conservation_fires_when_a_clip_goes_missing(demo_build: Path, tmp_path:
 
 def test_manifests_only_skips_the_audio_files(demo_build: Path, tmp_path: Path, capsys) -> None:
     """With --manifests-only a missing audio file goes unnoticed; without it, it is an error."""
-    from pipeline.cli import main
+    from pipeline.commands.cli import main
 
     out = tmp_path / "out"
     shutil.copytree(demo_build, out)

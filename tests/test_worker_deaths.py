@@ -1,7 +1,7 @@
 """Worker processes that die, and a driver that dies: what `loam prepare` leaves behind.
 
 A decoder that crashes its worker costs that one file (a ``decoder_crashed`` reject),
-and a driver killed with SIGKILL leaves no worker running (pipeline/pool.py describes
+and a driver killed with SIGKILL leaves no worker running (pipeline/core/pool.py describes
 the mechanisms).
 """
 
@@ -19,11 +19,12 @@ from pathlib import Path
 import pyarrow.parquet as pq
 import pytest
 
-from pipeline.audio import AudioJob, FileOutcome, condition_file
-from pipeline.cli import main
-from pipeline.config import build_config
-from pipeline.ingest import ProbeJob, probe_file
-from pipeline.runner import Runner
+from pipeline.commands.cli import main
+from pipeline.core.config import build_config
+from pipeline.core.runner import Runner
+from pipeline.stages import STAGES
+from pipeline.stages.audio import AudioJob, FileOutcome, condition_file
+from pipeline.stages.ingest import ProbeJob, probe_file
 from tests.conftest import REPO, speechlike, tree_hash
 
 CRASHING = "spk1/take04.wav"
@@ -98,7 +99,7 @@ def test_a_file_that_crashes_its_decoder_is_rejected_and_the_run_goes_on(
     out = tmp_path / "out"  # the same path for both runs: the summaries name it
     argv = ["prepare", str(raw), str(out), "--workers", str(workers), "--no-progress"]
     with monkeypatch.context() as patch:
-        patch.setattr("pipeline.audio.condition_file", condition_crashing_on_one_file)
+        patch.setattr("pipeline.stages.audio.condition_file", condition_crashing_on_one_file)
         assert main(argv) == 0
 
     rejected = pq.read_table(out / "manifests" / "rejected.parquet").to_pylist()
@@ -125,15 +126,15 @@ def test_a_file_that_crashes_the_probe_is_rejected_at_ingest_and_not_remembered(
     _write_raw(raw, files=6, seconds=1.0)
     cfg = build_config({})
     with monkeypatch.context() as patch:
-        patch.setattr("pipeline.ingest.probe_file", probe_crashing_on_one_file)
-        Runner(raw, out, cfg, workers=2).prepare(("ingest",))
+        patch.setattr("pipeline.stages.ingest.probe_file", probe_crashing_on_one_file)
+        Runner(raw, out, cfg, stages=STAGES, workers=2).prepare(("ingest",))
     (row,) = pq.read_table(out / "stages" / "ingest.rejects.parquet").to_pylist()
     assert row["source_path"] == CRASHING and row["reason"] == "decoder_crashed"
     assert row["detail"].startswith(f"{CRASHING}: the worker process probing it died (killed by signal SIGSEGV), "
                                   "also when it ran alone; expected a file")
     assert CRASHING not in pq.read_table(out / "stages" / "ingest.parquet").column("source_path").to_pylist()
     # The crash may have been the library's fault: the next run probes the file again.
-    Runner(raw, out, cfg, workers=2).prepare(("ingest",))
+    Runner(raw, out, cfg, stages=STAGES, workers=2).prepare(("ingest",))
     assert CRASHING in pq.read_table(out / "stages" / "ingest.parquet").column("source_path").to_pylist()
 
 

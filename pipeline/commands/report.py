@@ -1,0 +1,635 @@
+"""``loam report``: one self-contained HTML page and a JSON file describing an OUT folder.
+
+Every number comes from the manifests themselves (:func:`build_summary`), so the page
+describes what a trainer will read, even after a hand edit; the split stage's summary
+adds only what the manifests cannot tell (near-duplicate similarities, rejected noisy
+clips, the changes of the last rebuild). The page needs no network and no JavaScript:
+plots are PNG images from matplotlib's Agg backend, embedded as base64, and the styles
+are inline. Text that comes from the inputs (transcripts, paths, speaker ids, reject
+details) is always HTML-escaped.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+import json
+import math
+import platform
+from collections.abc import Iterable, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+
+from pipeline import __version__
+from pipeline.commands.validate import (
+    CONFIG_FILE,
+    REJECTED_FILE,
+    STAGES,
+    SUBSETS,
+    check_out_folder,
+    load_resolved_config,
+    phone_inventory,
+    subset_file,
+)
+from pipeline.core.config import parse_duration_s
+from pipeline.core.errors import ManifestError
+from pipeline.core.fsio import write_text_atomic
+from pipeline.core.manifest import read_manifest
+
+REPORT_DIR = "report"
+# 7 x 3.5 inches at 100 dpi: legible at the page's width without scaling down.
+FIGURE_IN = (7.0, 3.5)
+FIGURE_DPI = 100
+FONT_PT = 11
+EXAMPLES_PER_REASON = 3
+SAMPLE_CLIPS = 8
+OUTLIER_CLIPS = 10
+SPEAKERS_PLOTTED = 30
+SPEAKERS_LISTED = 200
+SUBSET_COLOURS = {"labelled": "#1b6ca8", "unlabelled": "#9aa5b1", "heldout": "#d9822b"}
+QUALITY_FLAGS = ("noisy", "narrowband", "rate_outlier", "clipped", "near_duplicate", "upsampled", "peak_limited",
+                 "transcript_rejected", "heldout_untranscribed")
+CAUTION = (
+    "Voice recordings are personal data. Use this corpus only where every speaker consented to this "
+    "use and the recordings' licence allows it, and follow the data-protection law that applies to you "
+    "and to the speakers (in the EU the GDPR treats voice as personal data, and as biometric data when "
+    "it is used to identify someone). Transcripts, file names and speaker ids can carry names: keep "
+    "this report as protected as the recordings themselves."
+)
+
+
+# --------------------------------------------------------------------------- reading
+
+
+def _read_optional(path: Path) -> pa.Table | None:
+    if not path.exists():
+        return None
+    try:
+        return read_manifest(path)
+    except ManifestError:
+        return None
+
+
+def _read_json(path: Path) -> Any:
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+
+
+_SCALARS = ("clip_id", "speaker", "group", "duration_s", "loudness_lufs", "loudness_in_lufs",
+            "speaking_rate", "rate_z", "transcript", "norm_text", "near_duplicate_of", "source_path")
+
+
+def load_clips(out: Path) -> pd.DataFrame:
+    """The three subsets as one frame with a ``subset_file`` column (missing files: no rows).
+
+    Columns a file lacks are filled with nulls, so a hand-edited manifest still reports.
+    List columns (``phones``, ``tiers``, ``quality_flags``) become Python lists.
+    """
+    parts = []
+    for name in SUBSETS:
+        table = _read_optional(out / subset_file(name))
+        if table is None:
+            continue
+        columns: dict[str, Any] = {}
+        for col in _SCALARS:
+            columns[col] = table.column(col).to_pylist() if col in table.column_names else [None] * table.num_rows
+        for col in ("phones", "tiers", "quality_flags"):
+            values = table.column(col).to_pylist() if col in table.column_names else [None] * table.num_rows
+            columns[col] = [v if isinstance(v, list) else [] for v in values]
+        part = pd.DataFrame(columns)
+        part["subset_file"] = name
+        parts.append(part)
+    if not parts:
+        return pd.DataFrame({c: [] for c in [*_SCALARS, "phones", "tiers", "quality_flags", "subset_file"]})
+    frame = pd.concat(parts, ignore_index=True)
+    for col in ("duration_s", "loudness_lufs", "loudness_in_lufs", "speaking_rate", "rate_z"):
+        frame[col] = pd.to_numeric(frame[col], errors="coerce")
+    return frame
+
+
+def load_rejects(out: Path) -> pd.DataFrame:
+    """manifests/rejected.parquet, or the stages' own reject files when it is missing."""
+    table = _read_optional(out / REJECTED_FILE)
+    if table is None:
+        tables = [t for t in (_read_optional(out / f"stages/{s}.rejects.parquet") for s in STAGES) if t is not None]
+        table = pa.concat_tables([t.replace_schema_metadata(None) for t in tables]) if tables else None
+    columns = ("source_path", "reason", "detail", "stage", "clip_id")
+    if table is None:
+        return pd.DataFrame({c: [] for c in columns})
+    return pd.DataFrame({c: table.column(c).to_pylist() if c in table.column_names else [None] * table.num_rows
+                         for c in columns})
+
+
+# --------------------------------------------------------------------------- numbers
+
+
+def _hours(seconds: float) -> float:
+    return round(seconds / 3600.0, 4)
+
+
+def hms(seconds: float | None) -> str:
+    """A duration as h:mm:ss, e.g. ``hms(3725.4) == "1:02:05"``; "none" for None."""
+    if seconds is None or not math.isfinite(seconds):
+        return "none"
+    total = int(round(seconds))
+    return f"{total // 3600}:{total % 3600 // 60:02d}:{total % 60:02d}"
+
+
+def _stats(values: Iterable[float]) -> dict[str, float] | None:
+    x = np.asarray([v for v in values if v is not None and math.isfinite(v)], dtype=np.float64)
+    if not x.size:
+        return None
+    p5, p50, p95 = np.percentile(x, [5, 50, 95])
+    return {"n": int(x.size), "min": round(float(x.min()), 3), "p5": round(float(p5), 3),
+            "median": round(float(p50), 3), "mean": round(float(x.mean()), 3), "p95": round(float(p95), 3),
+            "max": round(float(x.max()), 3)}
+
+
+def _describe(part: pd.DataFrame) -> dict[str, Any]:
+    seconds = float(part["duration_s"].fillna(0.0).sum())
+    return {
+        "clips": int(len(part)),
+        "seconds": round(seconds, 3),
+        "hours": _hours(seconds),
+        "speakers": int(part["speaker"].dropna().nunique()),
+        "groups": int(part["group"].dropna().nunique()),
+        "transcribed_clips": int(part["transcript"].notna().sum()),
+    }
+
+
+def _phone_counts(phone_lists: pd.Series, boundary: str) -> dict[str, int]:
+    """Occurrences of each phone (the word-boundary symbol left out), most frequent first."""
+    flat = phone_lists.explode().dropna()
+    counts = flat[flat != boundary].value_counts()
+    return dict(sorted(((str(k), int(v)) for k, v in counts.items()), key=lambda kv: (-kv[1], kv[0])))
+
+
+def _finite(value: Any) -> Any:
+    """``value`` with every non-finite float replaced by None (JSON has no NaN)."""
+    if isinstance(value, dict):
+        return {k: _finite(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_finite(v) for v in value]
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+def build_summary(out: Path, *, clips: pd.DataFrame | None = None) -> dict[str, Any]:
+    """Every number the report shows, JSON-ready; the content of ``report/summary.json``.
+
+    ``clips`` is :func:`load_clips` of ``out`` when the caller has it already.
+    """
+    out = check_out_folder(out)
+    config, config_problems = load_resolved_config(out)
+    clips = load_clips(out) if clips is None else clips
+    rejects = load_rejects(out)
+    split_summary = _read_json(out / "stages/split.summary.json")
+    split_summary = split_summary if isinstance(split_summary, dict) else {}
+    boundary = config.text.word_boundary
+
+    present = {name: (out / subset_file(name)).exists() for name in SUBSETS}
+    subsets = {name: {**_describe(clips[clips["subset_file"] == name]), "file_present": present[name]}
+               for name in SUBSETS}
+    heldout = clips[clips["subset_file"] == "heldout"]
+    scored = heldout[heldout["transcript"].notna()]
+    subsets["heldout"]["scored_clips"] = int(len(scored))
+    subsets["heldout"]["scored_hours"] = _hours(float(scored["duration_s"].fillna(0.0).sum()))
+
+    inventory, inventory_source = phone_inventory(out, config)
+    inventory = {p for p in (inventory or set()) if p != boundary}
+    labelled = clips[clips["subset_file"] == "labelled"]
+    tiers = {}
+    for tier in sorted(config.split.labelled_budgets, key=parse_duration_s):
+        part = labelled[labelled["tiers"].map(lambda ts, t=tier: t in ts).astype(bool)]
+        counts = _phone_counts(part["phones"], boundary)
+        tiers[tier] = {
+            **_describe(part),
+            "budget_s": parse_duration_s(tier),
+            "phones": len(counts),
+            "phone_coverage": round(len(set(counts) & inventory) / len(inventory), 4) if inventory else None,
+            "missing_phones": sorted(inventory - set(counts)),
+        }
+
+    flat = clips[["subset_file", "quality_flags"]].explode("quality_flags").dropna()
+    per_flag = flat.groupby(["quality_flags", "subset_file"]).size()
+    flags = {f: {name: int(per_flag.get((f, name), 0)) for name in SUBSETS} for f in QUALITY_FLAGS}
+    pairs = split_summary.get("near_duplicate_pairs")
+    if not isinstance(pairs, list):  # no split summary: the pairs the manifests name, without similarity
+        named = clips[clips["near_duplicate_of"].notna()]
+        pairs = [{"clips": [a, b], "similarity": None} for a, b in zip(named["clip_id"], named["near_duplicate_of"], strict=True)]
+
+    speakers: dict[str, dict[str, float]] = {}
+    if len(clips):
+        per = clips.groupby(["speaker", "subset_file"])["duration_s"].sum().unstack(fill_value=0.0)
+        per = per.reindex(columns=list(SUBSETS), fill_value=0.0)
+        per = per.loc[per.sum(axis=1).sort_values(ascending=False, kind="stable").index]
+        speakers = {str(spk): {name: _hours(float(row[name])) for name in SUBSETS} for spk, row in per.iterrows()}
+
+    reasons = rejects.groupby("reason").size().sort_values(ascending=False, kind="stable") if len(rejects) else pd.Series(dtype=int)
+    examples = {}
+    for reason in reasons.index:
+        some = rejects[rejects["reason"] == reason].sort_values("source_path", kind="stable").head(EXAMPLES_PER_REASON)
+        examples[str(reason)] = [{"source_path": r.source_path, "stage": r.stage, "detail": r.detail}
+                                 for r in some.itertuples()]
+
+    transcribed = clips[clips["speaking_rate"].notna()]
+    return _finite({
+        "loam_version": __version__,
+        "totals": {**_describe(clips)},
+        "subsets": subsets,
+        "tiers": tiers,
+        "durations": {name: _stats(clips.loc[clips["subset_file"] == name, "duration_s"]) for name in SUBSETS},
+        "loudness": {"target_lufs": config.audio.target_lufs,
+                     "before": _stats(clips["loudness_in_lufs"]), "after": _stats(clips["loudness_lufs"])},
+        "speaking_rate": _stats(transcribed["speaking_rate"]),
+        "phones": {
+            "inventory_source": inventory_source or None,
+            "inventory": sorted(inventory),
+            "labelled_counts": _phone_counts(labelled["phones"], boundary),
+        },
+        "rejects": {
+            "total": int(len(rejects)),
+            "by_reason": {str(k): int(v) for k, v in reasons.items()},
+            "by_stage": {str(k): int(v) for k, v in rejects.groupby("stage").size().items()} if len(rejects) else {},
+            "examples": examples,
+        },
+        "speakers": speakers,
+        "quality": {
+            "flags": flags,
+            "gates_from_split": split_summary.get("gates"),
+            "near_duplicate_pairs": pairs,
+        },
+        "shortfalls": split_summary.get("shortfalls"),
+        "changes": split_summary.get("changes"),
+        "config": _read_json(out / CONFIG_FILE) if not config_problems else None,
+        "config_sha256": config.sha256() if not config_problems else None,
+        "versions": versions(),
+    })
+
+
+def versions() -> dict[str, str]:
+    """Versions of Loam and the libraries that shape its output."""
+    import soundfile
+
+    return {
+        "loam": __version__,
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "pyarrow": pa.__version__,
+        "pandas": pd.__version__,
+        "soundfile": soundfile.__version__,
+        "libsndfile": soundfile.__libsndfile_version__,
+    }
+
+
+# --------------------------------------------------------------------------- plots
+
+
+def _figure() -> tuple[Any, Any]:
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    import matplotlib.pyplot as plt
+
+    plt.rcParams.update({"font.size": FONT_PT, "axes.titlesize": FONT_PT + 1, "axes.labelsize": FONT_PT,
+                         "xtick.labelsize": FONT_PT - 1, "ytick.labelsize": FONT_PT - 1,
+                         "legend.fontsize": FONT_PT - 1})
+    fig, ax = plt.subplots(figsize=FIGURE_IN, dpi=FIGURE_DPI)
+    ax.grid(True, alpha=0.3)
+    return fig, ax
+
+
+def _integer_counts(ax: Any) -> None:
+    from matplotlib.ticker import MaxNLocator
+
+    ax.yaxis.set_major_locator(MaxNLocator(integer=True))
+
+
+def _png(fig: Any) -> str:
+    import matplotlib.pyplot as plt
+
+    buf = io.BytesIO()
+    fig.tight_layout()
+    # No timestamp or software stamp in the file: the same OUT gives the same page.
+    fig.savefig(buf, format="png", dpi=FIGURE_DPI, metadata={"Software": None})
+    plt.close(fig)
+    return base64.b64encode(buf.getvalue()).decode("ascii")
+
+
+def _bins(values: np.ndarray, n: int = 30) -> np.ndarray:
+    lo, hi = float(values.min()), float(values.max())
+    if hi - lo < 1e-9:
+        lo, hi = lo - 0.5, hi + 0.5
+    return np.linspace(lo, hi, n + 1)
+
+
+def plot_durations(clips: pd.DataFrame) -> str | None:
+    values = clips["duration_s"].dropna().to_numpy(dtype=float)
+    if not values.size:
+        return None
+    fig, ax = _figure()
+    groups = [(name, clips.loc[clips["subset_file"] == name, "duration_s"].dropna().to_numpy(dtype=float))
+              for name in SUBSETS]
+    groups = [(name, x) for name, x in groups if x.size]
+    # Side-by-side bars per bin, so equal counts in two subsets never hide each other.
+    ax.hist([x for _, x in groups], bins=_bins(values), color=[SUBSET_COLOURS[n] for n, _ in groups],
+            label=[f"{n} ({x.size})" for n, x in groups])
+    _integer_counts(ax)
+    ax.set_title("Clip duration by subset")
+    ax.set_xlabel("duration (s)")
+    ax.set_ylabel("clips")
+    ax.legend()
+    return _png(fig)
+
+
+def plot_loudness(clips: pd.DataFrame, target_lufs: float) -> str | None:
+    before = clips["loudness_in_lufs"].to_numpy(dtype=float)
+    after = clips["loudness_lufs"].to_numpy(dtype=float)
+    before, after = before[np.isfinite(before)], after[np.isfinite(after)]
+    if not (before.size or after.size):
+        return None
+    fig, ax = _figure()
+    bins = _bins(np.concatenate([before, after]), 40)
+    ax.hist(before, bins=bins, histtype="stepfilled", alpha=0.5, color="#9aa5b1", label="before normalisation")
+    ax.hist(after, bins=bins, histtype="step", linewidth=2, color="#1b6ca8", label="as written")
+    ax.axvline(target_lufs, color="#d9822b", linestyle="--", label=f"target {target_lufs:g} LUFS")
+    _integer_counts(ax)
+    ax.set_title("Integrated loudness (ITU-R BS.1770-4)")
+    ax.set_xlabel("loudness (LUFS)")
+    ax.set_ylabel("clips")
+    ax.legend()
+    return _png(fig)
+
+
+def plot_speaking_rate(clips: pd.DataFrame) -> str | None:
+    x = clips["speaking_rate"].dropna().to_numpy(dtype=float)
+    if not x.size:
+        return None
+    fig, ax = _figure()
+    ax.hist(x, bins=_bins(x), color="#1b6ca8")
+    _integer_counts(ax)
+    ax.set_title("Speaking rate of transcribed clips")
+    ax.set_xlabel("phones per second of speech")
+    ax.set_ylabel("clips")
+    return _png(fig)
+
+
+def plot_phones(counts: dict[str, int]) -> str | None:
+    if not counts:
+        return None
+    fig, ax = _figure()
+    names = list(counts)
+    ax.bar(range(len(names)), [counts[n] for n in names], color="#1b6ca8")
+    ax.set_xticks(range(len(names)))
+    ax.set_xticklabels(names, rotation=90, fontsize=FONT_PT - 2 if len(names) > 30 else FONT_PT - 1)
+    _integer_counts(ax)
+    ax.set_title("Phone frequency in labelled")
+    ax.set_xlabel("phone")
+    ax.set_ylabel("occurrences")
+    return _png(fig)
+
+
+def plot_speakers(speakers: dict[str, dict[str, float]]) -> str | None:
+    if not speakers:
+        return None
+    shown = list(speakers)[:SPEAKERS_PLOTTED][::-1]
+    total = max(sum(v.values()) for v in speakers.values())
+    unit, scale = ("hours", 1.0) if total >= 1.0 else ("minutes", 60.0)
+    fig, ax = _figure()
+    left = np.zeros(len(shown))
+    for name in SUBSETS:
+        widths = np.array([speakers[s][name] * scale for s in shown])
+        ax.barh(range(len(shown)), widths, left=left, color=SUBSET_COLOURS[name], label=name)
+        left += widths
+    ax.set_yticks(range(len(shown)))
+    ax.set_yticklabels(shown)
+    more = f" (the {SPEAKERS_PLOTTED} largest of {len(speakers)})" if len(speakers) > SPEAKERS_PLOTTED else ""
+    ax.set_title(f"Audio per speaker{more}")
+    ax.set_xlabel(unit)
+    ax.set_ylabel("speaker")
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0))
+    fig.set_size_inches(FIGURE_IN[0], max(FIGURE_IN[1], 0.8 + 0.25 * len(shown)))
+    return _png(fig)
+
+
+# --------------------------------------------------------------------------- HTML
+
+
+def esc(value: Any) -> str:
+    return html.escape("" if value is None else str(value), quote=True)
+
+
+def _num(value: Any, digits: int = 3) -> str:
+    if value is None:
+        return "none"
+    if isinstance(value, float):
+        return f"{value:.{digits}f}" if math.isfinite(value) else str(value)
+    return str(value)
+
+
+def table(headers: Sequence[str], rows: Sequence[Sequence[Any]], *, empty: str = "none") -> str:
+    """An HTML table; every cell is escaped."""
+    if not rows:
+        return f'<p class="none">{esc(empty)}</p>'
+    head = "".join(f"<th>{esc(h)}</th>" for h in headers)
+    body = "".join("<tr>" + "".join(f"<td>{esc(c)}</td>" for c in row) + "</tr>" for row in rows)
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def _img(png: str | None, alt: str) -> str:
+    if png is None:
+        return f'<p class="none">none: no clips to plot for {esc(alt.lower())}</p>'
+    return f'<figure><img alt="{esc(alt)}" src="data:image/png;base64,{png}" width="700"></figure>'
+
+
+def _stats_rows(label: str, stats: dict[str, float] | None) -> list[list[str]]:
+    if stats is None:
+        return [[label, "none", "", "", "", ""]]
+    return [[label, str(stats["n"]), _num(stats["min"], 2), _num(stats["median"], 2), _num(stats["p95"], 2),
+             _num(stats["max"], 2)]]
+
+
+def _inline(value: Any) -> str:
+    """Nested JSON data on one line: ``{"a": 1, "b": {}}`` -> ``a 1, b none``."""
+    if isinstance(value, dict):
+        return ", ".join(f"{k} {_inline(v)}" for k, v in value.items()) or "none"
+    if isinstance(value, list):
+        return ", ".join(_inline(v) for v in value) or "none"
+    return _num(value)
+
+
+def _value_table(value: dict[str, Any], headers: Sequence[str]) -> str:
+    """A stage summary's section as a two-column table, one row per key (escaped)."""
+    return table(headers, [[k, _inline(v)] for k, v in value.items()])
+
+
+CSS = """
+body { font-family: system-ui, -apple-system, "Segoe UI", sans-serif; max-width: 60rem; margin: 2rem auto;
+       padding: 0 1rem; color: #1f2933; line-height: 1.45; font-size: 16px; }
+h1 { font-size: 1.7rem; margin-bottom: .2rem; } h2 { font-size: 1.3rem; margin-top: 2.2rem;
+     border-bottom: 2px solid #d9e2ec; padding-bottom: .2rem; } h3 { font-size: 1.05rem; }
+table { border-collapse: collapse; margin: .6rem 0; font-size: .92rem; }
+th, td { border: 1px solid #d9e2ec; padding: .25rem .55rem; text-align: left; vertical-align: top; }
+th { background: #f0f4f8; } td.n, th.n { text-align: right; }
+.caution { background: #fff4e5; border-left: 4px solid #d9822b; padding: .7rem 1rem; }
+.none { color: #616e7c; font-style: italic; }
+figure { margin: .8rem 0; } img { max-width: 100%; height: auto; }
+pre { background: #f5f7fa; padding: .6rem; overflow-x: auto; font-size: .85rem; }
+code { font-size: .9rem; }
+"""
+
+
+def render_html(summary: dict[str, Any], clips: pd.DataFrame, figures: dict[str, str | None]) -> str:
+    """The report page for ``summary`` (from :func:`build_summary`)."""
+    s = summary
+    parts: list[str] = []
+    add = parts.append
+    add("<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">"
+        "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
+        f"<title>Loam corpus report</title><style>{CSS}</style></head><body>")
+    t = s["totals"]
+    add("<h1>Loam corpus report</h1>")
+    add(f"<p>{t['clips']} clips, {hms(t['seconds'])} ({_num(t['hours'], 2)} h), {t['speakers']} speakers; "
+        f"{s['rejects']['total']} inputs set aside. Loam {esc(s['loam_version'])}.</p>")
+    add(f'<p class="caution"><strong>Personal data.</strong> {esc(CAUTION)}</p>')
+
+    add("<h2>Subsets</h2>")
+    rows = [[name, v["clips"], _num(v["hours"], 3), hms(v["seconds"]), v["speakers"], v["groups"],
+             v["transcribed_clips"], "" if v["file_present"] else "file missing"] for name, v in s["subsets"].items()]
+    add(table(["subset", "clips", "hours", "h:mm:ss", "speakers", "groups", "transcribed", "note"], rows))
+    h = s["subsets"]["heldout"]
+    add(f"<p>Held-out clips with a transcript (scored): {h['scored_clips']}, {_num(h['scored_hours'], 3)} h.</p>")
+
+    add("<h2>Labelled tiers</h2>")
+    rows = [[tier, hms(v["budget_s"]), v["clips"], hms(v["seconds"]), v["speakers"], v["phones"],
+             "none" if v["phone_coverage"] is None else f"{100 * v['phone_coverage']:.1f} %",
+             " ".join(v["missing_phones"]) or "none"] for tier, v in s["tiers"].items()]
+    add(table(["tier", "budget", "clips", "selected", "speakers", "phones", "phone coverage", "missing phones"], rows))
+    if s["shortfalls"]:
+        add(table(["tier", "budget (s)", "selected (s)", "short by (s)"],
+                  [[x.get("tier"), x.get("budget_s"), x.get("selected_s"), x.get("shortfall_s")] for x in s["shortfalls"]
+                   if isinstance(x, dict)]))
+
+    add("<h2>Durations</h2>")
+    add(_img(figures.get("durations"), "Clip duration by subset"))
+    add(table(["subset", "clips", "min (s)", "median (s)", "95th pct (s)", "max (s)"],
+              [r for name in SUBSETS for r in _stats_rows(name, s["durations"][name])]))
+
+    add("<h2>Loudness</h2>")
+    add(_img(figures.get("loudness"), "Integrated loudness"))
+    add(table(["loudness", "clips", "min (LUFS)", "median (LUFS)", "95th pct (LUFS)", "max (LUFS)"],
+              _stats_rows("before normalisation", s["loudness"]["before"])
+              + _stats_rows("as written", s["loudness"]["after"])))
+    add(f"<p>Target: {_num(s['loudness']['target_lufs'], 1)} LUFS.</p>")
+
+    add("<h2>Speaking rate</h2>")
+    add(_img(figures.get("speaking_rate"), "Speaking rate"))
+    add(table(["", "clips", "min", "median", "95th pct", "max"],
+              _stats_rows("phones per second", s["speaking_rate"])))
+    outliers = clips[clips["rate_z"].notna()].copy()
+    outliers["abs_z"] = outliers["rate_z"].abs()
+    outliers = outliers.sort_values(["abs_z", "clip_id"], ascending=[False, True], kind="stable").head(OUTLIER_CLIPS)
+    add("<h3>Clips furthest from their speaker's rate</h3>")
+    add(table(["clip", "speaker", "subset", "phones/s", "z", "transcript"],
+              [[r.clip_id, r.speaker, r.subset_file, _num(r.speaking_rate, 2), _num(r.rate_z, 2), r.transcript]
+               for r in outliers.itertuples()]))
+
+    add("<h2>Phones</h2>")
+    p = s["phones"]
+    add(f"<p>Inventory: {len(p['inventory'])} phones"
+        f"{' from ' + esc(p['inventory_source']) if p['inventory_source'] else ''}.</p>")
+    add(_img(figures.get("phones"), "Phone frequency in labelled"))
+
+    add("<h2>Sample of labelled clips</h2>")
+    sample = clips[clips["subset_file"] == "labelled"].sort_values("clip_id", kind="stable").head(SAMPLE_CLIPS)
+    add(table(["clip", "speaker", "duration (s)", "transcript", "phones"],
+              [[r.clip_id, r.speaker, _num(r.duration_s, 2), r.transcript, " ".join(r.phones)]
+               for r in sample.itertuples()]))
+
+    add("<h2>Rejected inputs</h2>")
+    rj = s["rejects"]
+    add(table(["reason", "inputs"], list(rj["by_reason"].items())))
+    if rj["by_stage"]:
+        add("<p>By stage: " + esc(", ".join(f"{k} {v}" for k, v in rj["by_stage"].items())) + ".</p>")
+    for reason, items in rj["examples"].items():
+        add(f"<h3>{esc(reason)}</h3>")
+        add(table(["input", "stage", "detail"], [[x["source_path"], x["stage"], x["detail"]] for x in items]))
+
+    add("<h2>Speakers</h2>")
+    add(_img(figures.get("speakers"), "Audio per speaker"))
+    spk = list(s["speakers"].items())
+    add(table(["speaker", *[f"{n} (h:mm:ss)" for n in SUBSETS]],
+              [[k, *[hms(3600 * v[n]) for n in SUBSETS]] for k, v in spk[:SPEAKERS_LISTED]]))
+    if len(spk) > SPEAKERS_LISTED:
+        add(f"<p>and {len(spk) - SPEAKERS_LISTED} more speakers (all in summary.json).</p>")
+
+    add("<h2>Quality gates</h2>")
+    q = s["quality"]
+    add(table(["flag", *SUBSETS], [[f, *[v[n] for n in SUBSETS]] for f, v in q["flags"].items()]))
+    if q["gates_from_split"]:
+        add("<p>Counted by the split stage over every clip, including clips it set aside:</p>")
+        add(_value_table(q["gates_from_split"], ["gate", "clips"]))
+    add(f"<h3>Near-duplicate pairs ({len(q['near_duplicate_pairs'])})</h3>")
+    add(table(["clip", "near-duplicate of", "similarity"],
+              [[*(x.get("clips") or ["", ""])[:2], _num(x.get("similarity"), 3)]
+               for x in q["near_duplicate_pairs"][:100] if isinstance(x, dict)]))
+
+    add("<h2>Changes in the last rebuild</h2>")
+    add(_value_table(s["changes"], ["change", "clips"]) if s["changes"]
+        else '<p class="none">none recorded (no split summary)</p>')
+
+    add("<h2>Configuration</h2>")
+    if s["config"] is None:
+        add(f'<p class="none">none: {esc(CONFIG_FILE)} is missing or unreadable</p>')
+    else:
+        add(f"<p>SHA-256 {esc(s['config_sha256'])}</p>")
+        add(f"<pre>{esc(json.dumps(s['config'], indent=2, sort_keys=True, ensure_ascii=False))}</pre>")
+    add("<h2>Versions</h2>")
+    add(table(["component", "version"], list(s["versions"].items())))
+    add("</body></html>\n")
+    return "".join(parts)
+
+
+def write_report(out: Path) -> Path:
+    """Write ``OUT/report/index.html`` and ``OUT/report/summary.json``; returns the page's path.
+
+    Parameters
+    ----------
+    out : Path
+        A folder written by ``loam prepare`` (UsageError otherwise). Missing subsets,
+        rejects or summaries show as "none".
+
+    Returns
+    -------
+    Path
+        ``out / "report" / "index.html"``.
+
+    Examples
+    --------
+    >>> write_report(Path("build/demo"))  # doctest: +SKIP
+    PosixPath('build/demo/report/index.html')
+    """
+    out = check_out_folder(Path(out))
+    clips = load_clips(out)
+    summary = build_summary(out, clips=clips)
+    figures = {
+        "durations": plot_durations(clips),
+        "loudness": plot_loudness(clips, summary["loudness"]["target_lufs"]),
+        "speaking_rate": plot_speaking_rate(clips),
+        "phones": plot_phones(summary["phones"]["labelled_counts"]),
+        "speakers": plot_speakers(summary["speakers"]),
+    }
+    page = render_html(summary, clips, figures)
+    folder = out / REPORT_DIR
+    write_text_atomic(folder / "summary.json", json.dumps(summary, indent=2, ensure_ascii=False, allow_nan=False) + "\n")
+    write_text_atomic(folder / "index.html", page)
+    return folder / "index.html"
+

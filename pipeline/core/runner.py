@@ -1,0 +1,426 @@
+"""Runs the stages in order, checks every manifest between them, and skips a stage
+whose inputs, parameters and code are unchanged since its manifest was written."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import logging
+import os
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from types import ModuleType
+from typing import Any
+
+import pyarrow as pa
+
+from pipeline import __version__
+from pipeline.core import snapshot
+from pipeline.core.codeversion import code_version
+from pipeline.core.config import Config, canonical_json
+from pipeline.core.errors import DataError
+from pipeline.core.fsio import remove_stale_temporaries, write_text_atomic
+from pipeline.core.lock import output_lock
+from pipeline.core.manifest import (
+    partition_rows,
+    read_manifest,
+    read_metadata,
+    table_from_rows,
+    validate_table,
+    write_manifest,
+)
+from pipeline.core.stage import StageContext, StageRegistry, StageResult, reject
+
+REJECTED_PATH = "manifests/rejected.parquet"
+
+
+def rejects_path(name: str) -> str:
+    return f"stages/{name}.rejects.parquet"
+
+
+def summary_path(name: str) -> str:
+    return f"stages/{name}.summary.json"
+
+
+def outputs_record_path(name: str) -> str:
+    return f"cache/stages/{name}.json"
+
+
+def _stat_of(out: Path, rels: list[str]) -> list[list[Any]]:
+    state: list[list[Any]] = []
+    for rel in sorted(set(rels)):
+        try:
+            st = os.stat(out / rel)
+            state.append([rel, st.st_size, st.st_mtime_ns, st.st_ino])
+        except OSError:
+            state.append([rel, None])
+    return state
+
+
+def params_sha256(module: ModuleType, config: Config, *, cache_dir: Path | None = None) -> str:
+    """Hash of everything in the config and code that a stage's output depends on
+    (``cache_dir`` keeps what the code version parsed, see pipeline.core.codeversion)."""
+    parts = {
+        "stage": module.NAME,
+        "code_version": code_version(module.NAME, cache_dir=cache_dir),
+        "loam_version": __version__,
+        "seed": config.seed,
+        "sections": {s: config.section(s) for s in module.CONFIG_SECTIONS},
+    }
+    return hashlib.sha256(canonical_json(parts)).hexdigest()
+
+
+def inputs_sha256(out: Path, module: ModuleType, ctx: StageContext, registry: StageRegistry,
+                  watched: set[str] | None = None) -> str:
+    """Hash of the upstream manifests' bytes (found through ``registry``) plus any extra
+    files the stage reads (their absolute paths are added to ``watched``)."""
+    watched = set() if watched is None else watched
+    digest = hashlib.sha256()
+    for name in module.INPUTS:
+        digest.update(name.encode() + b"\0")
+        digest.update(hashlib.sha256((out / registry.manifest_path(name)).read_bytes()).digest())
+    extra = getattr(module, "extra_inputs", None)
+    # Content only, not the paths: the same inputs under another OUT or checkout must
+    # give byte-identical manifests, metadata included.
+    for path in extra(ctx) if extra else []:
+        watched.add(os.path.abspath(path))
+        digest.update(b"extra\0")
+        try:
+            digest.update(hashlib.sha256(Path(path).read_bytes()).digest())
+        except FileNotFoundError:
+            digest.update(b"<missing>")
+    return digest.hexdigest()
+
+
+@dataclass
+class StageRecord:
+    name: str
+    ran: bool
+    seconds: float
+    summary: dict[str, Any]
+    # What depends on this run's history (StageResult.run_stats); logged, not in OUT.
+    run_stats: dict[str, Any] = field(default_factory=dict)
+    # The stage whose workers were busy while this one ran in the driver, if any.
+    during: str | None = None
+
+
+class Runner:
+    """One ``loam prepare`` (or ``loam stage``) invocation on an output folder."""
+
+    def __init__(
+        self,
+        raw: Path,
+        out: Path,
+        config: Config,
+        *,
+        stages: StageRegistry,
+        workers: int = 0,
+        scheduler: str = "",
+        use_cache: bool = True,
+        options: dict[str, Any] | None = None,
+        log: logging.Logger | None = None,
+        invocation: str | None = None,
+    ) -> None:
+        # Absolute from here on: every path handed to a worker, which may run in another
+        # working folder or on another machine, must mean the same file there.
+        self.raw = Path(os.path.abspath(raw))
+        self.out = Path(os.path.abspath(out))
+        self.config = config
+        # The stages this runner may run, in order (pipeline.stages.STAGES, passed in by
+        # the commands: pipeline.core never imports a stage itself).
+        self.stages = stages
+        self.workers = workers
+        self.scheduler = scheduler
+        self.use_cache = use_cache
+        self.options = options or {}
+        self.log = log or logging.getLogger("loam")
+        self.records: list[StageRecord] = []
+        # Digest of the command (pipeline.core.snapshot); when set, a finished full run
+        # records a snapshot that lets an identical rerun end at once.
+        self.invocation = invocation
+        # Files outside RAW a stage read or wrote: the snapshot watches them too.
+        self.watched: set[str] = set()
+        # Stages finished (run or reused) in this invocation, and those under way.
+        self.done: set[str] = set()
+        self.running: list[str] = []
+        # Set by a stage whose result says the run cannot usefully go on (StageResult.stop).
+        self.stop_reason = ""
+
+    def _check_cluster(self) -> None:
+        """Before any per-file work on a cluster: every worker must see RAW and OUT
+        (``parallel.check_cluster_paths``, which raises UsageError when one does not)."""
+        from pipeline.core.parallel import check_cluster_paths
+
+        self.out.mkdir(parents=True, exist_ok=True)
+        seen = check_cluster_paths(self.scheduler, raw=str(self.raw), raw_file=_first_file(self.raw),
+                                   out=str(self.out))
+        hosts = sorted({report["host"] for report in seen.values()})
+        self.log.info("cluster: %d workers (on %s) see RAW and OUT at this machine's paths", len(seen),
+                      ", ".join(hosts))
+
+    def _context(self, inputs: dict[str, pa.Table], meanwhile: Callable[[], None] | None = None) -> StageContext:
+        return StageContext(
+            raw=self.raw, out=self.out, config=self.config, inputs=inputs, workers=self.workers,
+            scheduler=self.scheduler, progress=self.config.run.progress, log=self.log,
+            use_cache=self.use_cache, options=self.options, meanwhile=meanwhile,
+        )
+
+    def _ready_stages(self, pending: list[str]) -> Callable[[], None]:
+        """The work this process can do while a stage's workers are busy: run, in order,
+        the pending stages whose inputs are all done (text, while audio's pool runs),
+        then let the others load what they will need (``prepare_driver``: audio's
+        imports and tables while ingest's probing pool runs)."""
+        def run_ready() -> None:
+            waiting = self.running[-1] if self.running else None
+            for name in list(pending):
+                if all(i in self.done for i in self.stages.module(name).INPUTS):
+                    pending.remove(name)
+                    self.run_stage(name).during = waiting
+            for name in pending:
+                hook = getattr(self.stages.module(name), "prepare_driver", None)
+                if hook is not None:
+                    hook(self.config)
+        return run_ready
+
+    def _load_input(self, name: str) -> pa.Table:
+        path = self.out / self.stages.manifest_path(name)
+        if not path.exists():
+            raise DataError(f"{path}: missing; run the '{name}' stage first (loam prepare runs all stages)")
+        table = read_manifest(path)
+        validate_table(name, table, where=str(path))
+        return table
+
+    def _up_to_date(self, module: ModuleType, params: str, inputs: str) -> bool:
+        if getattr(module, "ALWAYS_RUN", False):
+            return False
+        if any(self.options.get(o) for o in getattr(module, "RUN_WHEN_OPTIONS", ())):
+            return False
+        main = self.out / self.stages.manifest_path(module.NAME)
+        if not (main.exists() and (self.out / rejects_path(module.NAME)).exists()
+                and (self.out / summary_path(module.NAME)).exists()):
+            return False
+        try:
+            meta = read_metadata(main)
+        except Exception:  # unreadable or foreign file: rebuild it
+            return False
+        if meta.get("params_sha256") != params or meta.get("inputs_sha256") != inputs:
+            return False
+        return self._outputs_unchanged(module.NAME)
+
+    def _outputs_unchanged(self, name: str) -> bool:
+        """Whether every file the stage wrote last time is still as it left it."""
+        try:
+            recorded = json.loads((self.out / outputs_record_path(name)).read_text(encoding="utf-8"))["files"]
+        except (OSError, ValueError, KeyError, TypeError):
+            return False
+        return _stat_of(self.out, [entry[0] for entry in recorded]) == recorded
+
+    def _record_outputs(self, module: ModuleType, manifests: list[str], main: pa.Table | None = None) -> None:
+        """Record the stat of every file the stage wrote (``main``: its main manifest's
+        table when the caller holds it, else it is read back)."""
+        rels = [*manifests, rejects_path(module.NAME), summary_path(module.NAME)]
+        written = getattr(module, "written_files", None)
+        if written is not None:
+            table = main if main is not None else read_manifest(self.out / self.stages.manifest_path(module.NAME))
+            rels += written(self.out, table)
+        write_text_atomic(self.out / outputs_record_path(module.NAME),
+                          json.dumps({"files": _stat_of(self.out, rels)}) + "\n")
+
+    def _metadata(self, module: ModuleType, params: str, inputs: str, extra: dict[str, str]) -> dict[str, str]:
+        meta = {
+            "version": __version__,
+            "stage": module.NAME,
+            "code_version": code_version(module.NAME),
+            "config_sha256": self.config.sha256(),
+            "params_sha256": params,
+            "inputs_sha256": inputs,
+        }
+        meta.update({k: v for k, v in extra.items()})
+        return meta
+
+    def run_stage(self, name: str, *, meanwhile: Callable[[], None] | None = None) -> StageRecord:
+        self.running.append(name)
+        try:
+            return self._run_stage(name, meanwhile)
+        finally:
+            self.running.pop()
+
+    def _run_stage(self, name: str, meanwhile: Callable[[], None] | None) -> StageRecord:
+        module = self.stages.module(name)
+        start = time.perf_counter()
+        inputs = {n: self._load_input(n) for n in module.INPUTS}
+        ctx = self._context(inputs, meanwhile)
+        params = params_sha256(module, self.config, cache_dir=ctx.cache_dir if ctx.use_cache else None)
+        in_hash = inputs_sha256(self.out, module, ctx, self.stages, self.watched)
+        if self._up_to_date(module, params, in_hash):
+            self._refresh_config_hash(module)
+            summary = json.loads((self.out / summary_path(name)).read_text(encoding="utf-8"))
+            record = StageRecord(name, False, time.perf_counter() - start, summary)
+            self.log.info("%-6s reused: inputs, parameters and code unchanged", name)
+            if hasattr(module, "reuse_note"):
+                self.log.info("%s", module.reuse_note(summary))
+        else:
+            self.log.info("%-6s running", name)
+            result: StageResult = module.run(ctx)
+            if getattr(module, "INPUTS_AFTER_RUN", False):
+                # The stage rewrote one of its own inputs (the split ledger): record the
+                # state it left, which a rerun would reproduce.
+                in_hash = inputs_sha256(self.out, module, ctx, self.stages, self.watched)
+            self._write_result(module, result, params, in_hash)
+            if result.stop:
+                self.stop_reason = f"{name}: {result.stop}"
+            record = StageRecord(name, True, time.perf_counter() - start, result.summary, result.run_stats)
+            self.log.info("%-6s done in %.1f s: %s", name, record.seconds, _short(result.summary))
+            if result.run_stats:
+                self.log.info("%-6s this run: %s", name, _short(result.run_stats))
+        self.records.append(record)
+        self.done.add(name)
+        return record
+
+    def _write_result(self, module: ModuleType, result: StageResult, params: str, inputs: str) -> None:
+        meta = self._metadata(module, params, inputs, result.metadata)
+        if self.stages.manifest_path(module.NAME) not in result.manifests:
+            raise RuntimeError(f"stage {module.NAME} returned no {self.stages.manifest_path(module.NAME)}")
+        # Validate everything before writing anything, so a bad table leaves the old files.
+        self._set_aside_invalid_rows(module, result)
+        rejects = result.rejects_table()
+        validate_table("rejected", rejects, where=str(self.out / rejects_path(module.NAME)))
+        write_manifest(self.out / rejects_path(module.NAME), "rejected", rejects, metadata=meta)
+        write_text_atomic(self.out / summary_path(module.NAME),
+                          json.dumps(result.summary, indent=2, sort_keys=True, ensure_ascii=False) + "\n")
+        # The main manifest goes last: its metadata is what marks the stage up to date.
+        for rel, (schema, table) in sorted(result.manifests.items(), key=lambda kv: kv[0] == self.stages.manifest_path(module.NAME)):
+            write_manifest(self.out / rel, schema, table, metadata=meta)
+        self._record_outputs(module, list(result.manifests), result.manifests[self.stages.manifest_path(module.NAME)][1])
+
+    def _set_aside_invalid_rows(self, module: ModuleType, result: StageResult) -> None:
+        """Move rows whose values break their schema from the manifests to the rejects.
+
+        ``manifest.partition_rows`` tells a row whose inputs gave a value the schema
+        refuses (rejected as ``invalid_measurement``; the run goes on) from a table
+        the stage's code got wrong (ManifestError: the run stops). Files the main
+        manifest's invalid rows wrote (the stage's ``written_files``) are deleted.
+        """
+        set_aside = 0
+        main = self.stages.manifest_path(module.NAME)
+        for rel, (schema, table) in sorted(result.manifests.items()):
+            kept, invalid = partition_rows(schema, table, where=str(self.out / rel))
+            if not invalid:
+                continue
+            result.manifests[rel] = (schema, kept)
+            set_aside += len(invalid)
+            for bad in invalid:
+                row = bad.row
+                source = row.get("source_path") or row.get("clip_id") or rel
+                clip = row.get("clip_id")
+                what = f"clip {clip}" if clip and clip != row.get("source_id") else "its row"
+                detail = (f"{source}: {what} in {rel} breaks schemas/{schema}.schema.json ({bad.detail}); "
+                          "expected values within the schema, so the row is set aside")
+                self.log.warning("%s", detail)
+                result.rejects.append(reject(module.NAME, str(source), "invalid_measurement", detail,
+                                             clip if isinstance(clip, str) else None))
+            written = getattr(module, "written_files", None)
+            if rel == main and written is not None:
+                self._remove_written(written(self.out, table_from_rows(schema, [b.row for b in invalid])))
+        if set_aside:
+            result.summary["invalid_rows"] = set_aside
+
+    def _remove_written(self, rels: list[str]) -> None:
+        """Delete files a stage wrote for rows that were set aside (only inside OUT)."""
+        root = self.out.resolve()
+        for rel in rels:
+            path = (self.out / rel).resolve()
+            if path.is_relative_to(root) and path.is_file():
+                path.unlink()
+
+    def _refresh_config_hash(self, module: ModuleType) -> None:
+        """A reused stage's manifests still record the hash of the config in force now
+        (a change in a section the stage does not read)."""
+        current = self.config.sha256()
+        recorded = json.loads((self.out / outputs_record_path(module.NAME)).read_text(encoding="utf-8"))
+        manifests = [entry[0] for entry in recorded["files"] if entry[0].endswith(".parquet")]
+        rewritten = False
+        for rel in manifests:
+            path = self.out / rel
+            meta = read_metadata(path)
+            if meta.get("config_sha256") != current:
+                rewritten = True
+                table = read_manifest(path)
+                meta["config_sha256"] = current
+                write_manifest(path, meta.get("schema", module.NAME), table.replace_schema_metadata(None),
+                               metadata={k: v for k, v in meta.items() if k != "schema"})
+        if rewritten:
+            self._record_outputs(module, manifests)
+
+    def write_rejected(self) -> int:
+        """Gather every stage's rejects into ``manifests/rejected.parquet``."""
+        tables = []
+        for name in self.stages.order:
+            path = self.out / rejects_path(name)
+            if path.exists():
+                tables.append(read_manifest(path).replace_schema_metadata(None))
+        table = pa.concat_tables(tables) if tables else table_from_rows("rejected", [])
+        meta = {"version": __version__, "stage": "all", "config_sha256": self.config.sha256()}
+        write_manifest(self.out / REJECTED_PATH, "rejected", table, metadata=meta)
+        return table.num_rows
+
+    def prepare(self, stages: tuple[str, ...] | None = None) -> list[StageRecord]:
+        """Run ``stages`` (default: every registered stage) in order, reusing those up to date."""
+        order = self.stages.order
+        stages = order if stages is None else stages
+        with output_lock(self.out):
+            # RAW is listed before any work, so a file that arrives during the run
+            # makes the next run a full one.
+            record_snapshot = self.invocation is not None and tuple(stages) == order
+            raw_listing = snapshot.raw_digest(self.raw) if record_snapshot else ""
+            snapshot.forget(self.out)
+            removed = remove_stale_temporaries(self.out)
+            if removed:
+                self.log.info("removed %d temporary files left by an interrupted run", removed)
+            write_text_atomic(self.out / "config.resolved.json",
+                              json.dumps(self.config.to_json(), indent=2, sort_keys=True, ensure_ascii=False) + "\n")
+            if self.scheduler:
+                self._check_cluster()
+            pending = list(stages)
+            while pending and not self.stop_reason:
+                self.run_stage(pending.pop(0), meanwhile=self._ready_stages(pending))
+            # Stages may finish out of order (see _ready_stages); logs list them in order.
+            self.records.sort(key=lambda r: order.index(r.name))
+            n = self.write_rejected()
+            self.log.info("rejected: %d rows in %s", n, self.out / REJECTED_PATH)
+            # Timings live under logs/, never in a manifest, so manifests stay byte-identical.
+            write_text_atomic(self.out / "logs" / "last-run.json", json.dumps({
+                "stages": [{"name": r.name, "ran": r.ran, "seconds": round(r.seconds, 4),
+                            **({"during": r.during} if r.during else {}),
+                            **({"run_stats": r.run_stats} if r.run_stats else {})} for r in self.records],
+                "workers": self.workers, "scheduler": self.scheduler,
+            }, indent=2) + "\n")
+            if self.stop_reason:
+                # No snapshot: the next run must look at RAW again.
+                raise DataError(self.stop_reason)
+            if record_snapshot and self.invocation is not None:
+                notes = [module.reuse_note(r.summary) for r in self.records
+                         if hasattr(module := self.stages.module(r.name), "reuse_note")]
+                notes.append(f"rejected: {n} rows in {self.out / REJECTED_PATH}")
+                snapshot.save(self.out, snapshot.capture(invocation=self.invocation, raw_digest=raw_listing,
+                                                         out=self.out, watched=sorted(self.watched), notes=notes))
+        return self.records
+
+
+def _first_file(raw: Path) -> str | None:
+    """A regular file of RAW (the first in sorted order), for workers to look for."""
+    for folder, dirs, files in os.walk(raw):
+        dirs.sort()
+        for name in sorted(files):
+            path = os.path.join(folder, name)
+            if os.path.isfile(path) and not os.path.islink(path):
+                return path
+    return None
+
+
+def _short(summary: dict[str, Any]) -> str:
+    items = [f"{k}={v:.3g}" if isinstance(v, float) else f"{k}={v}" for k, v in summary.items()
+             if isinstance(v, (int, float, str)) and not isinstance(v, bool)]
+    return ", ".join(items[:8])

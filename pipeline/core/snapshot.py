@@ -1,0 +1,177 @@
+"""The no-change check: is a ``loam prepare`` about to redo exactly what the last one did?
+
+A run that finishes records a snapshot in ``OUT/cache/state.json``: a digest of the
+invocation (loam's own code and schemas, the config file's bytes, the overrides, RAW
+and OUT) and digests of the file listings (path, type, size, mtime, inode) of RAW, of
+what the run left in OUT, and of every other file a stage read or wrote (lexicons,
+ledger, pseudonym key and mapping). The next run compares them before importing
+anything heavy: when all agree, every stage would be reused and every file rewritten
+byte for byte, so the run ends there. This is the stat test ``make`` and the per-file
+caches already rely on; any difference, or a missing snapshot, means the full run,
+which checks content.
+
+Only the standard library is used here: the whole point is to answer in a fraction of
+a second, before numpy, pyarrow or jsonschema are imported.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import json
+import os
+import stat
+import sys
+from pathlib import Path
+from typing import Any
+
+STATE_PATH = "cache/state.json"
+FORMAT = 1
+# What prepare does not own in OUT: its own logs and caches, the report (written by
+# ``loam report``) and the run lock.
+OUT_IGNORED = frozenset({"logs", "cache", "report", ".loam.lock"})
+_PACKAGE = Path(__file__).resolve().parent.parent
+
+
+def _stat_entry(st: os.stat_result) -> list[int]:
+    return [st.st_mode, st.st_size, st.st_mtime_ns, st.st_ino]
+
+
+def tree_listing(root: Path, *, ignored: frozenset[str] = frozenset()) -> list[list[Any]]:
+    """Every entry under ``root`` (sorted, symlinks not followed but their targets
+    stat'ed too), as [relative path, mode, size, mtime_ns, inode, target stat].
+
+    Top-level names in ``ignored`` are left out.
+    """
+    listing: list[list[Any]] = []
+    for folder, dirs, files in os.walk(root):
+        rel_folder = os.path.relpath(folder, root)
+        if rel_folder == ".":
+            dirs[:] = [d for d in dirs if d not in ignored]
+            files = [f for f in files if f not in ignored]
+        for name in [*files, *dirs]:
+            path = os.path.join(folder, name)
+            st = os.lstat(path)
+            target: list[int] | None = None
+            if stat.S_ISLNK(st.st_mode):
+                with contextlib.suppress(OSError):
+                    target = _stat_entry(os.stat(path))
+            rel = name if rel_folder == "." else f"{rel_folder}/{name}"
+            # A folder's own mtime changes with its entries, which are listed anyway.
+            entry = [st.st_mode, 0, 0, 0] if stat.S_ISDIR(st.st_mode) else _stat_entry(st)
+            listing.append([rel, *entry, target])
+    return sorted(listing, key=lambda entry: entry[0])
+
+
+def _digest(value: Any) -> str:
+    return hashlib.sha256(json.dumps(value, sort_keys=True, separators=(",", ":")).encode()).hexdigest()
+
+
+def code_digest() -> str:
+    """Hash of everything any stage's code version covers (pipeline.core.codeversion), and
+    more: all of loam's Python sources, data files and JSON Schemas, the installed
+    distributions and Python's version. A superset, so that no change which would
+    rerun a stage can pass for no change."""
+    digest = hashlib.sha256()
+    for rel in _package_files():
+        digest.update(rel.encode() + b"\0" + (_PACKAGE / rel).read_bytes())
+    digest.update(sys.version.encode())
+    digest.update(json.dumps(_distributions()).encode())
+    return digest.hexdigest()
+
+
+def _package_files() -> list[str]:
+    """Loam's sources (in every subpackage), data files and schemas, relative to the package."""
+    found: list[str] = []
+    for folder, dirs, files in os.walk(_PACKAGE):
+        dirs[:] = [d for d in dirs if d.isidentifier() and d != "__pycache__"]
+        rel = os.path.relpath(folder, _PACKAGE)
+        found += [os.path.normpath(os.path.join(rel, f)) for f in files if f.endswith(".py")]
+    for sub in ("data", "schemas"):
+        with contextlib.suppress(FileNotFoundError):
+            found += [f"{sub}/{entry.name}" for entry in os.scandir(_PACKAGE / sub) if entry.is_file()]
+    return sorted(set(found))
+
+
+def _distributions() -> list[str]:
+    """The installed distributions and their versions, from the names of the
+    ``<name>-<version>.dist-info`` folders on sys.path: any upgrade changes it."""
+    names: list[str] = []
+    for entry in sys.path:
+        with contextlib.suppress(OSError):
+            names += sorted(e.name for e in os.scandir(entry or ".") if e.name.endswith((".dist-info", ".egg-info")))
+    return names
+
+
+def invocation_digest(*, raw: Path, out: Path, config_path: Path | None, overrides: dict[str, Any],
+                      version: str) -> str:
+    """Everything about the command that can change its result, as one hash."""
+    config_bytes = b"" if config_path is None else config_path.read_bytes()
+    return _digest({
+        "format": FORMAT,
+        "version": version,
+        "code": code_digest(),
+        "raw": os.path.abspath(raw),
+        "out": os.path.abspath(out),
+        "config_path": None if config_path is None else os.path.abspath(config_path),
+        "config_sha256": hashlib.sha256(config_bytes).hexdigest(),
+        "overrides": sorted((k, json.dumps(v, sort_keys=True)) for k, v in overrides.items()),
+    })
+
+
+def _files_state(paths: list[str]) -> list[list[Any]]:
+    state: list[list[Any]] = []
+    for path in sorted(set(paths)):
+        try:
+            state.append([path, *_stat_entry(os.stat(path))])
+        except OSError:
+            state.append([path, None])
+    return state
+
+
+def raw_digest(raw: Path) -> str:
+    return _digest(tree_listing(raw))
+
+
+def capture(*, invocation: str, raw_digest: str, out: Path, watched: list[str], notes: list[str]) -> dict[str, Any]:
+    """The snapshot of a run that has just finished; ``raw_digest`` was taken as it began."""
+    return {
+        "format": FORMAT,
+        "invocation": invocation,
+        "raw": raw_digest,
+        "out": _digest(tree_listing(out, ignored=OUT_IGNORED)),
+        "watched": _files_state(watched),
+        "notes": notes,
+    }
+
+
+def load(out: Path) -> dict[str, Any] | None:
+    try:
+        state = json.loads((out / STATE_PATH).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    return state if isinstance(state, dict) and state.get("format") == FORMAT else None
+
+
+def unchanged(state: dict[str, Any] | None, *, invocation: str, raw: Path, out: Path) -> bool:
+    """Whether RAW, OUT, the watched files and the invocation are as ``state`` recorded."""
+    if state is None or state.get("invocation") != invocation:
+        return False
+    watched = [entry[0] for entry in state.get("watched", []) if isinstance(entry, list) and entry]
+    if _files_state(watched) != state.get("watched"):
+        return False
+    return (state.get("raw") == raw_digest(raw)
+            and state.get("out") == _digest(tree_listing(out, ignored=OUT_IGNORED)))
+
+
+def save(out: Path, state: dict[str, Any]) -> None:
+    from pipeline.core.fsio import write_text_atomic
+
+    write_text_atomic(out / STATE_PATH, json.dumps(state, indent=1, sort_keys=True) + "\n")
+
+
+def forget(out: Path) -> None:
+    """Drop the snapshot: called before a run changes anything, so that a run which
+    stops half-way can never be mistaken for a finished one."""
+    with contextlib.suppress(FileNotFoundError):
+        (out / STATE_PATH).unlink()

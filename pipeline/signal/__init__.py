@@ -1,0 +1,2 @@
+"""Signal processing on numpy arrays: decoding, container headers, voice activity,
+segmentation, loudness and filters, quality measures. Imports only pipeline.core."""

@@ -1,0 +1,680 @@
+"""Audio stage: decode, downmix, resample, trim to speech, cut long recordings,
+normalise loudness, gate on quality, and write 16-bit clips.
+
+Each accepted ingest row goes through ``condition_file`` (one process per file):
+
+1. one streaming pass over the source (``pipeline.signal.decode``): soundfile blocks are
+   checked for NaN/inf, counted for clipping and DC, fed to a long-term PSD for the
+   bandwidth, downmixed and resampled to the output rate into a spool file on disk,
+   and resampled to 16 kHz for webrtcvad (``pipeline.signal.vad``);
+2. the frame decisions are smoothed and trimmed; a trimmed span longer than
+   ``audio.max_clip_s`` is cut at pauses (``pipeline.signal.segment``) or, when the file has
+   a transcript, rejected;
+3. each clip is read back from the spool, measured (BS.1770-4 loudness, peak, WADA
+   SNR), gained to the target under the peak ceiling, rounded to 16 bits, measured
+   again and written atomically.
+
+Memory therefore depends on the longest clip, not on the length of the recording.
+Raw files are only ever opened for reading.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import math
+import os
+from collections import Counter
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from pipeline.core.cache import FileCache, cache_key
+from pipeline.core.codeversion import code_version
+from pipeline.core.config import AudioConfig
+from pipeline.core.errors import ParameterError
+from pipeline.core.fsio import remove_stale_temporaries, sha256_bytes, write_bytes_atomic
+from pipeline.core.manifest import ManifestBuilder
+from pipeline.core.parallel import each_result
+from pipeline.core.stage import StageContext, StageResult, reject
+from pipeline.signal.decode import (
+    PCM16_SCALE,
+    Spool,
+    StreamResampler,
+    check_channel,
+    downmix,
+    float_to_pcm16,
+    read_blocks,
+)
+from pipeline.signal.segment import segment_id, split_frames
+from pipeline.signal.vad import (
+    ANALYSIS_SAMPLE_RATE,
+    VoiceActivityStream,
+    ms_to_frames,
+    smooth_decisions,
+    speech_seconds,
+    trim_frames,
+)
+
+NAME = "audio"
+INPUTS = ("ingest",)
+CONFIG_SECTIONS = ("audio",)
+
+OUTPUT_FORMATS = {"flac": "FLAC", "wav": "WAV"}
+AUDIO_DIR = "audio"
+TMP_DIR = "tmp"
+
+
+@dataclass(frozen=True)
+class AudioJob:
+    """Everything one worker needs for one source file (small and picklable)."""
+
+    row: dict[str, Any]  # the ingest row
+    source: str  # absolute path of the raw file (read only)
+    out: str  # absolute OUT folder; clips go to OUT/audio/<speaker>/
+    tmp: str  # folder for the spool file
+    config: AudioConfig
+
+
+@dataclass
+class FileOutcome:
+    """What one source turned into: manifest rows, reject rows, and the files written.
+
+    ``written`` maps each row's ``audio_path`` to ``[size, mtime_ns, inode]`` of the
+    file, so a cache hit can confirm the file is still the one this result wrote.
+    """
+
+    rows: list[dict[str, Any]] = field(default_factory=list)
+    rejects: list[dict[str, Any]] = field(default_factory=list)
+    written: dict[str, list[int]] = field(default_factory=dict)
+
+    def to_json(self) -> dict[str, Any]:
+        # The lists themselves, not dataclasses.asdict's deep copy: the result is only
+        # serialised, and the copy cost as much as the cache write.
+        return {"rows": self.rows, "rejects": self.rejects, "written": self.written}
+
+    @classmethod
+    def from_json(cls, data: dict[str, Any]) -> FileOutcome:
+        return cls(rows=list(data["rows"]), rejects=list(data["rejects"]), written=dict(data["written"]))
+
+
+class LongTermPsd:
+    """Welch PSD of a stream, block by block, equal to ``quality.long_term_psd`` of
+    the whole signal.
+
+    Each block is joined to the unused tail of the previous one and only whole Welch
+    segments (side by side, as ``long_term_psd`` takes them) are used, so every segment of
+    the full signal is counted exactly once; the per-block PSDs are averaged weighted
+    by their segment counts.
+    """
+
+    def __init__(self, *, sample_rate: int) -> None:
+        self.sample_rate = sample_rate
+        self._carry = np.zeros(0, dtype=np.float32)
+        self._sum: np.ndarray | None = None
+        self._freqs: np.ndarray | None = None
+        self._segments = 0
+
+    def push(self, samples: np.ndarray) -> None:
+        from pipeline.signal.quality import long_term_psd
+
+        data = np.concatenate([self._carry, np.asarray(samples, dtype=np.float32)])
+        freqs, psd = long_term_psd(data, sample_rate=self.sample_rate)
+        if freqs.size == 0:
+            self._carry = data
+            return
+        hop = 2 * (freqs.size - 1)  # the segment length
+        count = len(data) // hop
+        self._sum = psd * count if self._sum is None else self._sum + psd * count
+        self._freqs = freqs
+        self._segments += count
+        self._carry = data[count * hop:].copy()
+
+    def bandwidth_hz(self) -> float | None:
+        from pipeline.signal.quality import bandwidth_from_psd
+
+        if self._sum is None or self._freqs is None:
+            return None
+        value = bandwidth_from_psd(self._freqs, self._sum / self._segments)
+        return value if math.isfinite(value) else None
+
+
+# The largest sample magnitude taken as audio. Float formats put full scale at 1.0
+# (PCM formats cannot exceed it). A float recording can go above it by the headroom of
+# whatever mixed or amplified it, but sustained overshoot counts as clipping anyway
+# (flagged past audio.max_clipped_fraction, rejected past audio.unusable_clipped_fraction);
+# an isolated sample 24 dB over full scale (x16) is beyond any gain staging (a
+# judgement, not a standard) and is damaged bytes: read as float32 they decode as
+# magnitudes anywhere up to 3.4e38, whose squares overflow the loudness and SNR sums.
+# Such a file is rejected here, before any arithmetic. The bound also keeps one stray
+# sample from lifting a 400 ms BS.1770 block above the manifest's 10 LUFS maximum
+# (16**2 spread over 3,200 samples at 8 kHz is -11 dB).
+MAX_SAMPLE_MAGNITUDE = 16.0
+
+
+@dataclass
+class SourceScan:
+    """Results of the streaming pass over one source."""
+
+    sample_rate: int
+    frames: int = 0
+    clipped: int = 0
+    counted: int = 0
+    dc_sum: float = 0.0
+    # The first frame holding a sample that is NaN, infinite or beyond
+    # MAX_SAMPLE_MAGNITUDE, and that sample's value.
+    bad_sample_at: int | None = None
+    bad_sample: float = 0.0
+    out_samples: int = 0
+    decisions: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=bool))
+    energy_db: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    bandwidth_hz: float | None = None
+
+
+def scan_source(path: str, *, cfg: AudioConfig, spool: Spool, sample_rate: int) -> SourceScan:
+    """Decode ``path`` once, block by block, filling ``spool`` with the output-rate mono.
+
+    Parameters
+    ----------
+    path : the source file (opened for reading only).
+    cfg : the audio section (channel, rates, VAD settings, clip level).
+    spool : receives the downmixed stream resampled to ``cfg.sample_rate``.
+    sample_rate : the source's rate in Hz.
+
+    Returns
+    -------
+    SourceScan with the clipping and DC sums, the VAD frames at 16 kHz and the
+    source bandwidth. Decoding stops at the first block holding a NaN, infinite or
+    out-of-range sample (beyond ``MAX_SAMPLE_MAGNITUDE``); ``bad_sample_at`` is then
+    the frame index of the first one and ``bad_sample`` its value. ``frames`` counts
+    the frames decoded, which a damaged file can hold fewer of than its header says.
+
+    Example
+    -------
+    >>> with Spool(folder=tmp) as spool:  # doctest: +SKIP
+    ...     scan = scan_source("take.flac", cfg=cfg, spool=spool, sample_rate=44100)
+    """
+    scan = SourceScan(sample_rate=sample_rate)
+    out_rs = StreamResampler(in_rate=sample_rate, out_rate=cfg.sample_rate, quality=cfg.resample_quality)
+    vad_rs = (None if cfg.sample_rate == ANALYSIS_SAMPLE_RATE else
+              StreamResampler(in_rate=sample_rate, out_rate=ANALYSIS_SAMPLE_RATE, quality=cfg.resample_quality))
+    vad = VoiceActivityStream(sample_rate=ANALYSIS_SAMPLE_RATE, frame_ms=cfg.vad_frame_ms,
+                              aggressiveness=cfg.vad_aggressiveness)
+    # Bandwidth is measured on the stream at the output rate: what matters is what the
+    # corpus will hold (telephone audio upsampled into it shows as ~4 kHz), and it is
+    # cheaper than at a 44.1 or 48 kHz source rate.
+    psd = LongTermPsd(sample_rate=cfg.sample_rate) if cfg.quality_measures else None
+
+    def feed(mono: np.ndarray, *, last: bool) -> None:
+        resampled = out_rs.process(mono, last=last)
+        spool.append(resampled)
+        if psd is not None:
+            psd.push(resampled)
+        scan.out_samples += len(resampled)
+        vad.push(resampled if vad_rs is None else vad_rs.process(mono, last=last))
+
+    with contextlib.closing(read_blocks(path)) as blocks:  # closes the file on an early return
+        for block in blocks:
+            magnitude = np.abs(block)
+            # False for NaN as well as for values out of range: one test for both.
+            within = magnitude <= MAX_SAMPLE_MAGNITUDE
+            if not within.all():
+                frame = int(np.flatnonzero(~within.all(axis=1))[0])
+                scan.bad_sample_at = scan.frames + frame
+                scan.bad_sample = float(block[frame][~within[frame]][0])
+                return scan
+            used = magnitude if cfg.channel == "average" else magnitude[:, int(cfg.channel)]
+            scan.clipped += int(np.count_nonzero(used >= cfg.clip_level))
+            scan.counted += used.size
+            mono = downmix(block, channel=cfg.channel)
+            scan.dc_sum += float(mono.sum(dtype=np.float64))
+            scan.frames += len(mono)
+            feed(mono, last=False)
+    feed(np.zeros(0, dtype=np.float32), last=True)
+    analysis = vad.result()
+    scan.decisions, scan.energy_db = analysis.decisions, analysis.energy_db
+    scan.bandwidth_hz = psd.bandwidth_hz() if psd is not None else None
+    return scan
+
+
+def _frame_to_sample(frame: int, *, frame_ms: int, sample_rate: int) -> int:
+    return (frame * frame_ms * sample_rate + 500) // 1000
+
+
+def _pcm16_peak_dbfs(pcm: np.ndarray) -> float:
+    """Sample peak of int16 samples in dBFS, as libsndfile reads them (x / 32768)."""
+    if pcm.size == 0:
+        return -math.inf
+    peak = max(int(pcm.max()), -int(pcm.min()))
+    return 20.0 * math.log10(peak / PCM16_SCALE) if peak else -math.inf
+
+
+def _finite_or_none(value: float) -> float | None:
+    return float(value) if math.isfinite(value) else None
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}{'' if n == 1 else 's'}"
+
+
+def condition_file(job: AudioJob) -> FileOutcome:
+    """Turn one ingest row into clips and/or rejects; never raises for a bad file.
+
+    This is the per-file function the stage maps over its sources (it runs in a
+    worker process). Any exception (an unreadable or corrupt file, a decoder error)
+    becomes an ``undecodable`` reject carrying the error text.
+
+    Parameters
+    ----------
+    job : the ingest row, the absolute source path, OUT, the spool folder, the config.
+
+    Returns
+    -------
+    FileOutcome: audio manifest rows (schemas/audio.schema.json), reject rows
+    (schemas/rejected.schema.json) and the stat of each file written.
+
+    Example
+    -------
+    >>> outcome = condition_file(AudioJob(row, "/raw/ana/take.wav", "/out", "/out/tmp", cfg))  # doctest: +SKIP
+    >>> [r["clip_id"] for r in outcome.rows]  # doctest: +SKIP
+    ['take-0a1b2c3d4e']
+    """
+    rel = job.row["source_path"]
+    try:
+        return _condition(job)
+    except Exception as exc:  # one bad file must never stop the run
+        return FileOutcome(rejects=[reject(NAME, rel, "undecodable",
+                                           f"{rel}: could not be decoded: {type(exc).__name__}: {exc}")])
+
+
+def _condition(job: AudioJob) -> FileOutcome:
+    import soundfile as sf
+
+    cfg, row = job.config, job.row
+    rel, source_id = row["source_path"], row["source_id"]
+    info = sf.info(job.source)
+    rate, channels = int(info.samplerate), int(info.channels)
+    try:
+        check_channel(channel=cfg.channel, channels=channels)
+    except ParameterError:
+        return FileOutcome(rejects=[reject(NAME, rel, "undecodable",
+                                           f"{rel}: audio.channel is {cfg.channel} but the file has "
+                                           f"{_plural(channels, 'channel')}; expected \"average\" or an "
+                                           f"index below {channels}")])
+    if rate < cfg.sample_rate and cfg.upsampled == "reject":
+        return FileOutcome(rejects=[reject(NAME, rel, "upsampled",
+                                           f"{rel}: sample rate {rate} Hz is below audio.sample_rate "
+                                           f"({cfg.sample_rate} Hz) and audio.upsampled is \"reject\"")])
+    with Spool(folder=job.tmp, label=source_id) as spool:
+        scan = scan_source(job.source, cfg=cfg, spool=spool, sample_rate=rate)
+        declared = int(info.frames) if _length_is_exact(job.source, info.format) else None
+        return _cut_and_write(job, scan, spool, declared_frames=declared)
+
+
+def crashed_outcome(job: AudioJob, how: str) -> FileOutcome:
+    """The reject for a source whose worker process died outright while conditioning
+    it, twice, the second time alone (``how``: see ``pool.describe_exit``); a crash in
+    a C library cannot be caught as an exception."""
+    rel = job.row["source_path"]
+    return FileOutcome(rejects=[reject(NAME, rel, "decoder_crashed",
+                                       f"{rel}: the worker process conditioning it died ({how}), also when it "
+                                       "ran alone; expected a file the audio libraries can decode without crashing")])
+
+
+def _length_is_exact(path: str, container: str) -> bool:
+    """Whether the header's frame count is a promise a shorter decode breaks: always,
+    except for an MP3 without a frame that records it (see pipeline.signal.declared)."""
+    if container != "MP3":
+        return True
+    from pipeline.signal.declared import mp3_length_is_exact
+
+    with open(path, "rb") as fh:
+        return mp3_length_is_exact(fh)
+
+
+def _cut_and_write(job: AudioJob, scan: SourceScan, spool: Spool, *, declared_frames: int | None = None) -> FileOutcome:
+    """Reject, or cut and write the clips of, a scanned source; ``declared_frames`` is the
+    header's frame count when a shorter decode means the file was cut short."""
+    cfg, row = job.config, job.row
+    rel, source_id = row["source_path"], row["source_id"]
+    if scan.bad_sample_at is not None:
+        at, value = scan.bad_sample_at, scan.bad_sample
+        when = f"frame {at} (at {at / scan.sample_rate:.3f} s)"
+        if not math.isfinite(value):
+            return FileOutcome(rejects=[reject(NAME, rel, "non_finite_samples",
+                                               f"{rel}: {when} holds a NaN or infinite sample ({value}); "
+                                               "expected finite samples")])
+        return FileOutcome(rejects=[reject(NAME, rel, "out_of_range_samples",
+                                           f"{rel}: {when} holds the sample value {value:.6g}; expected "
+                                           f"magnitudes up to {MAX_SAMPLE_MAGNITUDE:g} (full scale is 1.0), "
+                                           "so the file is damaged rather than loud")])
+    if declared_frames is not None and scan.frames < declared_frames:
+        return FileOutcome(rejects=[reject(NAME, rel, "truncated",
+                                           f"{rel}: the header declares {declared_frames} frames but "
+                                           f"only {scan.frames} could be decoded; expected the whole "
+                                           "recording (the file was probably cut short)")])
+    clipped_fraction = scan.clipped / scan.counted if scan.counted else 0.0
+    # Mild clipping (above audio.max_clipped_fraction) is a quality gate of the split
+    # stage, which flags the clip and by default keeps its transcript; only audio too
+    # clipped to be speech any more is rejected here.
+    if clipped_fraction > cfg.unusable_clipped_fraction:
+        return FileOutcome(rejects=[reject(NAME, rel, "clipped",
+                                           f"{rel}: {100 * clipped_fraction:.3f}% of samples reach |x| >= "
+                                           f"{cfg.clip_level} (audio.clip_level); at most "
+                                           f"{100 * cfg.unusable_clipped_fraction:.3f}% expected of usable audio "
+                                           "(audio.unusable_clipped_fraction)")])
+    rate = cfg.sample_rate
+    if scan.out_samples / rate < cfg.min_duration_s:
+        # No clip can come out of it, so say so rather than judging its speech.
+        return FileOutcome(rejects=[reject(NAME, rel, "too_short",
+                                           f"{rel} lasts {scan.out_samples / rate:.2f} s; at least "
+                                           f"{cfg.min_duration_s} s expected (audio.min_duration_s)")])
+    frame_ms = cfg.vad_frame_ms
+    speech = smooth_decisions(scan.decisions, frame_ms=frame_ms, min_speech_ms=cfg.min_speech_ms,
+                              min_pause_ms=cfg.min_pause_ms, hangover_ms=cfg.hangover_ms)
+    n_frames = len(speech)
+    ratio = float(np.count_nonzero(speech)) / n_frames if n_frames else 0.0
+    region = trim_frames(speech, pad_frames=ms_to_frames(cfg.pad_ms, frame_ms=frame_ms))
+    if region is None or ratio < cfg.min_speech_ratio:
+        return FileOutcome(rejects=[reject(NAME, rel, "no_speech",
+                                           f"{rel}: voice activity in {100 * ratio:.1f}% of "
+                                           f"{_plural(n_frames, f'{frame_ms} ms frame')}; at least "
+                                           f"{100 * cfg.min_speech_ratio:.1f}% expected (audio.min_speech_ratio)")])
+
+
+    def to_samples(span: tuple[int, int]) -> tuple[int, int]:
+        start = _frame_to_sample(span[0], frame_ms=frame_ms, sample_rate=rate)
+        stop = (scan.out_samples if span[1] >= n_frames else
+                min(scan.out_samples, _frame_to_sample(span[1], frame_ms=frame_ms, sample_rate=rate)))
+        return start, stop
+
+    r0, r1 = to_samples(region)
+    transcribed = row["transcript"] is not None
+    if (r1 - r0) / rate <= cfg.max_clip_s:
+        plan = [(region, source_id)]
+    elif transcribed:
+        return FileOutcome(rejects=[reject(NAME, rel, "too_long_transcribed",
+                                           f"{rel}: speech spans {(r1 - r0) / rate:.1f} s, longer than "
+                                           f"audio.max_clip_s ({cfg.max_clip_s} s); a transcribed file is "
+                                           "not cut, as its transcript cannot be split with it")])
+    else:
+        spans = split_frames(speech, scan.energy_db, frame_ms=frame_ms, segment_min_s=cfg.segment_min_s,
+                             segment_max_s=cfg.segment_max_s, pad_ms=cfg.pad_ms,
+                             start=region[0], stop=region[1])
+        plan = [(span, segment_id(source_id, start_ms=span[0] * frame_ms)) for span in spans]
+
+    shared = {
+        "source_id": source_id,
+        "source_path": rel,
+        "speaker": row["speaker"],
+        "sample_rate": rate,
+        "source_sample_rate": scan.sample_rate,
+        "upsampled_from": scan.sample_rate if scan.sample_rate < rate else None,
+        "clipped_fraction": clipped_fraction,
+        "dc_offset": scan.dc_sum / scan.frames if scan.frames else 0.0,
+        "bandwidth_hz": scan.bandwidth_hz,
+        "transcribed": transcribed,
+    }
+    outcome = FileOutcome()
+    for index, (span, clip_id) in enumerate(plan):
+        start, stop = to_samples(span)
+        clip = spool.read(start=start, stop=stop)
+        clip_ratio = ratio if len(plan) == 1 else float(np.count_nonzero(speech[span[0]:span[1]])) / (span[1] - span[0])
+        placed = {
+            **shared,
+            "clip_id": clip_id,
+            "segment_index": index,
+            "source_start_s": start / rate,
+            "source_end_s": stop / rate,
+            "speech_s": min(speech_seconds(speech, frame_ms=frame_ms, start=span[0], stop=span[1]),
+                            len(clip) / rate),
+            "speech_ratio": clip_ratio,
+        }
+        made = _write_clip(job, clip, placed)
+        if "reason" in made:
+            outcome.rejects.append(made)
+        else:
+            outcome.rows.append(made["row"])
+            outcome.written[made["row"]["audio_path"]] = made["stat"]
+    return outcome
+
+
+def _write_clip(job: AudioJob, clip: np.ndarray, placed: dict[str, Any]) -> dict[str, Any]:
+    """Gate, normalise, encode and write one clip; a reject row or {"row", "stat"}."""
+    import soundfile as sf
+
+    from pipeline.signal import loudness, quality
+
+    cfg = job.config
+    rate = cfg.sample_rate
+    rel, clip_id = placed["source_path"], placed["clip_id"]
+    duration = len(clip) / rate
+    where = f"{rel}: clip {clip_id}" if clip_id != placed["source_id"] else rel
+    if duration < cfg.min_duration_s:
+        return reject(NAME, rel, "too_short", f"{where} lasts {duration:.2f} s after trimming; at least "
+                      f"{cfg.min_duration_s} s expected (audio.min_duration_s)", clip_id)
+    if placed["speech_ratio"] < cfg.min_speech_ratio:
+        return reject(NAME, rel, "no_speech", f"{where}: voice activity in {100 * placed['speech_ratio']:.1f}% "
+                      f"of its frames; at least {100 * cfg.min_speech_ratio:.1f}% expected "
+                      "(audio.min_speech_ratio)", clip_id)
+
+    def peak_of(samples: np.ndarray) -> float:
+        if cfg.true_peak:
+            return loudness.true_peak_dbfs(samples, sample_rate=rate)
+        return loudness.sample_peak_dbfs(samples)
+
+    loudness_in = loudness.integrated_loudness(clip, sample_rate=rate)
+    if not math.isfinite(loudness_in):
+        return reject(NAME, rel, "loudness_unmeasurable",
+                      f"{where}: integrated loudness (ITU-R BS.1770-4) is not measurable: every 400 ms "
+                      "block is below the -70 LUFS absolute gate; expected audible sound", clip_id)
+    gain_db, shortfall_db = loudness.normalisation_gain(
+        loudness_lufs=loudness_in, peak_dbfs=peak_of(clip), target_lufs=cfg.target_lufs,
+        ceiling_dbfs=cfg.peak_ceiling_dbfs)
+    # A sample-peak ceiling is also enforced on the integers, which rounding could
+    # otherwise lift by half a step; a true-peak ceiling only needs full scale kept.
+    limit = 1.0 if cfg.true_peak else min(1.0, 10 ** (cfg.peak_ceiling_dbfs / 20))
+    pcm = float_to_pcm16(clip.astype(np.float64) * 10 ** (gain_db / 20), peak_limit=limit)
+    written = pcm.astype(np.float32) / np.float32(PCM16_SCALE)
+    # BS.1770 loudness is homogeneous: a gain g moves every block, and so the relative
+    # gate, by 20 log10 g. Only the fixed -70 LUFS absolute gate could react, and it
+    # cannot once the clip is louder than before, so the written clip's loudness is the
+    # measured input plus the gain (16-bit rounding adds < 0.01 LU; the tests re-measure
+    # written files). Measuring again would cost as much as the first measurement.
+    loudness_out = loudness_in + gain_db if gain_db >= 0 else loudness.integrated_loudness(written, sample_rate=rate)
+
+    audio_path = f"{AUDIO_DIR}/{placed['speaker']}/{clip_id}.{cfg.format}"
+    target = Path(job.out) / audio_path
+    # Encoded in memory, so the hash is taken from the bytes rather than a re-read.
+    encoded = io.BytesIO()
+    sf.write(encoded, pcm, rate, format=OUTPUT_FORMATS[cfg.format], subtype="PCM_16")
+    data = encoded.getvalue()
+    write_bytes_atomic(target, data)
+    st = os.stat(target)
+    row = {
+        **placed,
+        "audio_path": audio_path,
+        "audio_sha256": sha256_bytes(data),
+        "num_samples": len(pcm),
+        "duration_s": len(pcm) / rate,
+        "loudness_in_lufs": loudness_in,
+        "loudness_lufs": loudness_out if math.isfinite(loudness_out) else loudness_in + gain_db,
+        "gain_db": gain_db,
+        "peak_limited_db": max(0.0, shortfall_db),
+        # The sample peak of the integers is exact and cheaper than of their float copy.
+        "peak_dbfs": peak_of(written) if cfg.true_peak else _pcm16_peak_dbfs(pcm),
+        "snr_db": _finite_or_none(quality.wada_snr_db(clip)) if cfg.quality_measures else None,
+        "fingerprint": (quality.encode_fingerprint(quality.fingerprint(written, sample_rate=rate))
+                        if cfg.quality_measures else ""),
+    }
+    return {"row": row, "stat": [st.st_size, st.st_mtime_ns, st.st_ino]}
+
+
+def written_files(out: Path, table: Any) -> list[str]:
+    """The clip files the audio manifest names (see pipeline.core.stage)."""
+    return [str(p) for p in table.column("audio_path").to_pylist()]
+
+
+def _outputs_intact(out: Path, outcome: dict[str, Any]) -> bool:
+    """Whether every file a cached result wrote is still there, untouched since."""
+    try:
+        for rel, (size, mtime_ns, inode) in outcome["written"].items():
+            st = os.stat(out / rel)
+            if (st.st_size, st.st_mtime_ns, st.st_ino) != (size, mtime_ns, inode):
+                return False
+    except (OSError, KeyError, TypeError, ValueError):
+        return False
+    return True
+
+
+def remove_orphans(folder: Path, keep: set[str], *, base: Path) -> int:
+    """Delete files under ``folder`` whose path relative to ``base`` is not in ``keep``.
+
+    Empty folders left behind go too.
+
+    Parameters
+    ----------
+    folder : the tree to clean (OUT/audio).
+    keep : '/'-separated paths relative to ``base`` that stay.
+    base : the folder ``keep`` is relative to (OUT).
+
+    Returns
+    -------
+    How many files were deleted.
+
+    Example
+    -------
+    >>> remove_orphans(out / "audio", {"audio/ana/take-0a1b2c3d4e.flac"}, base=out)  # doctest: +SKIP
+    0
+    """
+    if not folder.is_dir():
+        return 0
+    removed = 0
+    for path in sorted(folder.rglob("*"), reverse=True):
+        if path.is_dir():
+            with contextlib.suppress(OSError):
+                path.rmdir()  # only succeeds when empty
+        elif path.relative_to(base).as_posix() not in keep:
+            with contextlib.suppress(FileNotFoundError):
+                path.unlink()
+                removed += 1
+    return removed
+
+
+def warm_up(cfg: AudioConfig) -> None:
+    """Import the per-file libraries and build their tables once, in this process.
+
+    Worker processes are forked from here, so they start with all of it in memory
+    instead of each paying about 3 s of imports and table building per process.
+    """
+    import scipy.fft  # noqa: F401  (the VAD's noise veto and the quality gates)
+    import soundfile  # noqa: F401
+    import soxr  # noqa: F401
+    import webrtcvad  # noqa: F401
+
+    from pipeline.signal import loudness, quality
+
+    loudness.k_weighting_sos(sample_rate=cfg.sample_rate)
+    if cfg.quality_measures:
+        quality.wada_snr_db(np.linspace(-1.0, 1.0, 1024, dtype=np.float32))
+        quality.fingerprint(np.zeros(cfg.sample_rate, dtype=np.float32), sample_rate=cfg.sample_rate)
+
+
+def prepare_driver(config: Any) -> None:
+    """Stage hook (pipeline.core.stage): the warm-up, for the runner to do while an earlier
+    stage waits for its workers."""
+    warm_up(config.audio)
+
+
+def _cache_key(row: dict[str, Any], section: dict[str, Any], code: str) -> str:
+    # source_id and source_path are in the key because they are copied into the rows.
+    # ``code`` is the stage's code version: any edit within its reach misses every entry.
+    return cache_key("audio", row["sha256"], section, code, row["source_id"], row["source_path"],
+                     row["speaker"], row["transcript"] is not None)
+
+
+def run(ctx: StageContext) -> StageResult:
+    """Condition every ingest row (cached per file), then drop clip files no row names.
+
+    Returns the ``stages/audio.parquet`` table sorted by ``clip_id``, the rejects in
+    source order, and a summary of counts for the report.
+    """
+    cfg = ctx.config.audio
+    out = Path(os.path.abspath(ctx.out))
+    raw = Path(os.path.abspath(ctx.raw))
+    sources = ctx.inputs["ingest"].to_pylist()
+    cache = FileCache(ctx.cache_dir, NAME, enabled=ctx.use_cache)
+    section = ctx.config.section(NAME)
+
+    code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
+    keys = [_cache_key(row, section, code) for row in sources]
+    # Rows go straight into Arrow batches as each outcome arrives (cached or fresh);
+    # no list of every outcome is kept. Rejects are few, and kept in source order.
+    builder = ManifestBuilder(NAME)
+    rejects_at: dict[int, list[dict[str, Any]]] = {}
+
+    def take(i: int, outcome: FileOutcome) -> None:
+        builder.extend(outcome.rows)
+        if outcome.rejects:
+            rejects_at[i] = outcome.rejects
+
+    todo: list[int] = []
+    for i, key in enumerate(keys):
+        hit = cache.get(key)
+        if hit is not None and _outputs_intact(out, hit):
+            take(i, FileOutcome.from_json(hit))
+        else:
+            todo.append(i)
+    jobs = [AudioJob(sources[i], str(raw / sources[i]["source_path"]), str(out), str(out / TMP_DIR), cfg)
+            for i in todo]
+    if jobs:
+        warm_up(cfg)
+
+    def arrived(j: int, outcome: FileOutcome) -> None:
+        # A decoder error may be passing (a file still being copied), and a crash may be
+        # the library's fault (fixed by an upgrade): neither is remembered.
+        if not any(r["reason"] in ("undecodable", "decoder_crashed") for r in outcome.rejects):
+            cache.put(keys[todo[j]], outcome.to_json())
+        take(todo[j], outcome)
+
+    each_result(condition_file, jobs, arrived, workers=ctx.workers, scheduler=ctx.scheduler,
+                desc="audio", progress=ctx.progress,
+                costs=[sources[i]["num_frames"] * sources[i]["channels"] for i in todo],
+                meanwhile=ctx.meanwhile, on_crash=lambda j, how: crashed_outcome(jobs[j], how))
+    ctx.log.info("audio: %d files processed, %d reused from cache", len(todo), len(sources) - len(todo))
+
+    table = builder.table(sort_by="clip_id")
+    rejects = [r for i in sorted(rejects_at) for r in rejects_at[i]]
+    removed = remove_orphans(out / AUDIO_DIR, set(table.column("audio_path").to_pylist()), base=out)
+    if removed:
+        ctx.log.info("audio: removed %s no current row refers to", _plural(removed, "clip file"))
+    # A worker stopped mid-file (the neighbour of a crash) leaves its spool file behind;
+    # no worker runs any more, so whatever is left is debris.
+    remove_stale_temporaries(out / TMP_DIR)
+    with contextlib.suppress(OSError):
+        (out / TMP_DIR).rmdir()
+
+    import pyarrow.compute as pc  # here: the workers never need it
+
+    source_ids = table.column("source_id")
+    segmented = pc.not_equal(table.column("clip_id"), source_ids)
+    upsampled = pc.is_valid(table.column("upsampled_from"))
+    summary = {
+        "sources": len(sources),
+        "sources_with_clips": pc.count_distinct(source_ids).as_py(),
+        "sources_segmented": pc.count_distinct(pc.filter(source_ids, segmented)).as_py(),
+        "clips": table.num_rows,
+        # Summed in clip order in Python, as before the rows became columns.
+        "hours": sum(table.column("duration_s").to_pylist()) / 3600,
+        "upsampled_sources": pc.count_distinct(pc.filter(source_ids, upsampled)).as_py(),
+        "peak_limited_clips": len(pc.filter(source_ids, pc.greater(table.column("peak_limited_db"), 0.0))),
+        "rejects": len(rejects),
+        "rejects_by_reason": dict(sorted(Counter(r["reason"] for r in rejects).items())),
+    }
+    # These depend on what earlier runs left in the cache and under audio/: the log's.
+    run_stats = {"sources_processed": len(todo), "sources_reused": len(sources) - len(todo),
+                 "orphans_removed": removed}
+    return StageResult(manifests={f"stages/{NAME}.parquet": (NAME, table)}, rejects=rejects, summary=summary,
+                       run_stats=run_stats)

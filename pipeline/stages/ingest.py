@@ -1,0 +1,446 @@
+"""Ingest stage: scan the raw dump, probe every audio file, pair transcripts, quarantine.
+
+Nothing here writes inside RAW or follows a path out of it. Every audio file found
+and every metadata row ends up exactly once in ``stages/ingest.parquet`` or in the
+rejects: a metadata row is accounted for by the ingest row that uses it
+(``metadata_line``), by its own reject (``<table>:<line>``), or by the reject of the
+audio file it names; a row whose speaker is used while its transcript is set aside
+has both. A transcript problem (``pipeline.stages.transcripts``) costs only the transcript:
+the audio goes on as untranscribed audio.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import posixpath
+import re
+import unicodedata
+from collections import defaultdict
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from pipeline.core.cache import FileCache, cache_key
+from pipeline.core.codeversion import code_version
+from pipeline.core.fsio import sha256_file
+from pipeline.core.manifest import table_from_rows
+from pipeline.core.parallel import map_ordered
+from pipeline.core.stage import StageContext, StageResult, reject
+from pipeline.stages.transcripts import (
+    MetadataRow,
+    collapse_rows,
+    pair_transcript,
+    read_metadata_table,
+)
+
+NAME = "ingest"
+INPUTS: tuple[str, ...] = ()
+CONFIG_SECTIONS = ("ingest",)
+# Reasons for which ingest sets aside a transcript and keeps its audio.
+TRANSCRIPT_REASONS = frozenset({"transcript_encoding", "transcript_unreadable", "empty_transcript",
+                                "conflicting_transcripts"})
+# The raw folder is its input: it is rescanned every run (unchanged files hit the probe cache).
+ALWAYS_RUN = True
+
+_SLUG_KEEP = re.compile(r"[^a-z0-9_-]+")
+_SPEAKER_KEEP = re.compile(r"[^A-Za-z0-9_.-]+")
+
+
+def slug(text: str, *, max_chars: int = 40) -> str:
+    """Lower-case ASCII id fragment of ``text`` (accents folded, other runs -> '-')."""
+    ascii_text = unicodedata.normalize("NFKD", text).encode("ascii", "ignore").decode()
+    cleaned = _SLUG_KEEP.sub("-", ascii_text.lower()).strip("-_")[:max_chars].strip("-_")
+    return cleaned or "clip"
+
+
+def source_id(stem: str, sha256: str) -> str:
+    """Stable source id: a readable slug plus the content hash, so renames are visible."""
+    return f"{slug(stem)}-{sha256[:10]}"
+
+
+def speaker_id(name: str) -> str:
+    """A file-name-safe speaker id; a name that needs changing gets a hash suffix so two
+    different names can never map to one id."""
+    safe = _SPEAKER_KEEP.sub("_", unicodedata.normalize("NFKD", name).encode("ascii", "ignore").decode())
+    safe = safe.strip("._-") or "speaker"
+    if safe != name:
+        safe = f"{safe}-{hashlib.sha256(name.encode('utf-8', 'surrogateescape')).hexdigest()[:6]}"
+    return safe
+
+
+# Containers libsndfile may have been built without, by file extension.
+_EXTENSION_FORMATS = {".mp3": "MP3", ".ogg": "OGG", ".flac": "FLAC", ".opus": "OGG"}
+
+
+# Source sample rates taken as audio. Below 4 kHz no speech band is left (half the
+# 8 kHz telephone rate of ITU-T G.711); 768 kHz is the highest rate of common audio
+# converters (from memory). A damaged header outside these would make the resampler
+# produce hours of samples from seconds of data, or none at all.
+SOURCE_RATE_RANGE_HZ = (4000, 768000)
+
+
+@dataclass(frozen=True)
+class ProbeJob:
+    path: str
+    rel: str
+
+
+def probe_file(job: ProbeJob) -> dict[str, Any]:
+    """Header facts and content hash of one file, or ``{"error": (reason, sentence)}``."""
+    import soundfile as sf
+
+    try:
+        size = os.path.getsize(job.path)
+    except OSError as exc:
+        return {"error": ("unreadable", f"{job.rel}: cannot read the file ({exc.strerror})")}
+    if size == 0:
+        return {"error": ("empty", f"{job.rel}: the file is empty (0 bytes); expected audio data")}
+    container = _EXTENSION_FORMATS.get(os.path.splitext(job.rel)[1].lower())
+    if container and container not in sf.available_formats():
+        return {"error": ("unsupported_format",
+                          f"{job.rel}: this libsndfile build ({sf.__libsndfile_version__}) cannot read {container}; "
+                          "expected a build that can (libsndfile 1.1 or newer reads MP3)")}
+    try:
+        digest = sha256_file(job.path)
+        info = sf.info(job.path)
+    except OSError as exc:
+        return {"error": ("unreadable", f"{job.rel}: cannot read the file ({exc.strerror})")}
+    except (RuntimeError, sf.LibsndfileError) as exc:  # libsndfile's own errors
+        message = str(exc).replace(job.path, job.rel)
+        return {"error": ("undecodable", f"{job.rel}: not a decodable audio file ({message})")}
+    if info.frames <= 0 or info.samplerate <= 0 or info.channels <= 0:
+        return {"error": ("empty", f"{job.rel}: the audio holds no samples (frames={info.frames}); expected at least one")}
+    low, high = SOURCE_RATE_RANGE_HZ
+    if not low <= info.samplerate <= high:
+        return {"error": ("unsupported_sample_rate",
+                          f"{job.rel}: the header gives a sample rate of {info.samplerate} Hz; expected "
+                          f"{low} to {high} Hz (a damaged header, or not a recording)")}
+    cut = _truncation(job, info)
+    if cut:
+        return {"error": ("truncated", cut)}
+    return {
+        "format": info.format,
+        "subtype": info.subtype or "unknown",
+        "channels": int(info.channels),
+        "sample_rate": int(info.samplerate),
+        "num_frames": int(info.frames),
+        "duration_s": info.frames / info.samplerate,
+        "size_bytes": size,
+        "sha256": digest,
+    }
+
+
+def _truncation(job: ProbeJob, info: Any) -> str | None:
+    """A sentence when a WAV's data chunk declares more than the file holds, else None.
+
+    Only WAV needs this here: libsndfile reads its length from the file size. Other
+    containers give a length the audio stage checks against what it decodes.
+    """
+    if info.format not in ("WAV", "WAVEX"):
+        return None
+    from pipeline.signal.declared import declared_frames, wav_data_extent
+
+    try:
+        with open(job.path, "rb") as fh:
+            extent = wav_data_extent(fh)
+    except OSError:
+        return None  # the probe above read the file; a vanished file shows up later
+    if extent is None or not extent.truncated:
+        return None
+    declared = declared_frames(extent, subtype=info.subtype or "", channels=info.channels, frames_present=info.frames)
+    if declared <= info.frames:
+        return None  # less than one frame missing
+    return (f"{job.rel}: the header declares {declared} frames ({extent.declared_bytes} bytes of data) but the "
+            f"file holds {info.frames} ({extent.present_bytes} bytes); expected the whole recording "
+            "(the file was probably cut short)")
+
+
+def _inside(root: Path, candidate: Path) -> bool:
+    try:
+        candidate.resolve().relative_to(root.resolve())
+        return True
+    except (ValueError, OSError, RuntimeError):
+        return False
+
+
+def check_relative_path(raw: Path, text: str) -> tuple[str | None, str | None]:
+    """Normalise a path from metadata; returns (relative path, problem sentence).
+
+    Absolute paths, ``..`` that climbs out, and symlinks resolving outside RAW are
+    refused without opening anything.
+    """
+    cleaned = text.strip().replace("\\", "/")
+    if not cleaned:
+        return None, "the path is empty"
+    if cleaned.startswith("/") or re.match(r"^[A-Za-z]:/", cleaned):
+        return None, f"the path {cleaned!r} is absolute; expected a path relative to the raw folder"
+    norm = posixpath.normpath(cleaned)
+    if norm == ".." or norm.startswith("../"):
+        return None, f"the path {cleaned!r} leaves the raw folder"
+    if not _inside(raw, raw / norm):
+        return None, f"the path {cleaned!r} resolves outside the raw folder (a symbolic link)"
+    return norm, None
+
+
+def _storable(text: str) -> bool:
+    """Whether ``text`` can be stored as UTF-8 (a name os.walk decoded with
+    surrogateescape from bytes that are not UTF-8 cannot)."""
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        return False
+    return True
+
+
+def _shown_path(text: str) -> str:
+    """A path that is not UTF-8, with its undecodable bytes written as \\xNN."""
+    return os.fsencode(text).decode("utf-8", "backslashreplace")
+
+
+def scan(raw: Path, extensions: tuple[str, ...], sidecar_extension: str) -> tuple[list[str], set[str], list[dict[str, Any]]]:
+    """Sorted relative paths of audio files, the set of sidecar paths, and rejects for
+    links that leave RAW. Sorting makes every later choice independent of walk order."""
+    wanted = {"." + e.lower() for e in extensions}
+    side = "." + sidecar_extension.lower()
+    audio: list[str] = []
+    sidecars: set[str] = set()
+    rejects: list[dict[str, Any]] = []
+    root = raw.resolve()
+    for folder, dirs, files in os.walk(raw, followlinks=False):
+        rel_folder = os.path.relpath(folder, raw)
+        for d in dirs:
+            full = Path(folder) / d
+            if full.is_symlink() and not _inside(root, full):
+                rel = _shown_path(posixpath.normpath(posixpath.join(rel_folder.replace(os.sep, "/"), d)))
+                rejects.append(reject(NAME, rel, "path_outside_root",
+                                      f"{rel}: a symbolic link to a folder outside the raw folder; not followed"))
+        for name in files:
+            rel = posixpath.normpath(posixpath.join(rel_folder.replace(os.sep, "/"), name))
+            ext = os.path.splitext(name)[1].lower()
+            if ext in wanted and not _storable(rel):
+                shown = _shown_path(rel)
+                rejects.append(reject(NAME, shown, "file_name_encoding",
+                                      f"{shown}: the path is not valid UTF-8 (its undecodable bytes shown as \\x "
+                                      "escapes); expected UTF-8 names: rename the file or folder"))
+            elif ext in wanted:
+                audio.append(rel)
+            elif ext == side:
+                sidecars.add(rel)
+    audio.sort()
+    kept = []
+    for rel in audio:
+        full = raw / rel
+        if full.is_symlink() and not _inside(root, full):
+            rejects.append(reject(NAME, rel, "path_outside_root",
+                                  f"{rel}: a symbolic link to a file outside the raw folder; not opened"))
+        else:
+            kept.append(rel)
+    return kept, sidecars, rejects
+
+
+def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str, Any]]:
+    """Probe results for ``paths``, reusing earlier results for files whose size,
+    modification time and inode are unchanged (hashing is most of ingest's cost)."""
+    cache = FileCache(ctx.cache_dir, "ingest", enabled=ctx.use_cache)
+    results: list[dict[str, Any] | None] = []
+    keys: list[str | None] = []
+    todo: list[int] = []
+    # The stage's code version: any edit within its reach probes every file again.
+    code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
+    for i, rel in enumerate(paths):
+        try:
+            st = os.stat(raw / rel)
+            key = cache_key("probe", code, rel, st.st_size, st.st_mtime_ns, st.st_ino)
+        except OSError:
+            key = None
+        hit = cache.get(key) if key else None
+        keys.append(key)
+        results.append(hit)
+        if hit is None:
+            todo.append(i)
+
+    def remember(j: int, res: dict[str, Any]) -> None:
+        key = keys[todo[j]]
+        # Failures are cached too: they depend only on the bytes, like successes. Not a
+        # crash, which may be the library's fault (fixed by an upgrade), nor an unreadable
+        # file, which says something about this run's machine (a permission, a worker
+        # that does not see RAW): the next run must look again.
+        if key and res.get("error", ("",))[0] not in ("decoder_crashed", "unreadable"):
+            cache.put(key, res)
+
+    def crashed(j: int, how: str) -> dict[str, Any]:
+        rel = paths[todo[j]]
+        return {"error": ("decoder_crashed", f"{rel}: the worker process probing it died ({how}), also when it "
+                          "ran alone; expected a file the audio library can read without crashing")}
+
+    fresh = map_ordered(probe_file, [ProbeJob(str(raw / paths[i]), paths[i]) for i in todo],
+                        workers=ctx.workers, scheduler=ctx.scheduler, desc="probe", progress=ctx.progress,
+                        meanwhile=ctx.meanwhile, on_result=remember, on_crash=crashed)
+    for i, res in zip(todo, fresh, strict=True):
+        results[i] = res
+    ctx.log.info("ingest: %d files probed, %d reused from cache", len(todo), len(paths) - len(todo))
+    return [r for r in results if r is not None]
+
+
+def extra_inputs(ctx: StageContext) -> list[Path]:
+    """Files outside RAW this stage reads or writes: the pseudonym key and mapping."""
+    privacy = ctx.config.privacy
+    if not privacy.pseudonymise:
+        return []
+    return [ctx.config.resolve_path(p) for p in (privacy.key_file, privacy.mapping_file) if p]
+
+
+def _pseudonymise(ctx: StageContext, rows: list[dict[str, Any]]) -> None:
+    """Replace speaker ids by keyed pseudonyms, and drop file stems (which often carry
+    names) from source ids."""
+    from pipeline.stages.privacy import load_key, pseudonym, write_mapping
+
+    privacy = ctx.config.privacy
+    key = load_key(ctx.config.resolve_path(privacy.key_file), out=ctx.out)
+    mapping: dict[str, str] = {}
+    for row in rows:
+        original = row["speaker"]
+        row["speaker"] = mapping.setdefault(original, pseudonym(original, key=key))
+        row["source_id"] = source_id("clip", row["sha256"])
+    if privacy.mapping_file:
+        write_mapping(ctx.config.resolve_path(privacy.mapping_file), mapping, out=ctx.out)
+
+
+def _metadata_by_audio(ctx: StageContext, path_set: set[str]) -> tuple[dict[str, list[MetadataRow]], int, list[dict[str, Any]]]:
+    """Metadata rows by the audio file they name, the number of rows read, and the
+    rejects of rows that cannot be used; bad paths are rejected before any open."""
+    cfg, raw, table_rel = ctx.config.ingest, ctx.raw, ctx.config.ingest.metadata
+    by_audio: dict[str, list[MetadataRow]] = defaultdict(list)
+    if not table_rel:
+        return by_audio, 0, []
+    meta_rows, rejects = read_metadata_table(
+        raw, table_rel, path_column=cfg.metadata_path_column, transcript_column=cfg.metadata_transcript_column,
+        speaker_column=cfg.metadata_speaker_column, need_speaker=cfg.speaker_from == "metadata",
+        encoding=cfg.transcript_encoding, origin=ctx.config.origin)
+    count = len(meta_rows) + len(rejects)
+    for row in meta_rows:
+        where = f"{table_rel}:{row.line}"
+        rel, problem = check_relative_path(raw, row.path)
+        if problem or rel is None:
+            rejects.append(reject(NAME, where, "path_outside_root", f"{table_rel}: line {row.line}: column '{cfg.metadata_path_column}': {problem}"))
+        elif rel not in path_set:
+            exists = (raw / rel).is_file()
+            why = ("is not an audio file with a configured extension" if exists else "does not exist")
+            rejects.append(reject(NAME, where, "metadata_missing_audio",
+                                  f"{table_rel}: line {row.line}: audio file {rel!r} {why}"))
+        else:
+            by_audio[rel].append(row)
+    return by_audio, count, rejects
+
+
+def _speaker(ctx: StageContext, rel: str, rows: list[MetadataRow], via: str) -> str | dict[str, Any]:
+    """The speaker name of one audio file, or the reject row saying why there is none."""
+    cfg = ctx.config.ingest
+    if cfg.speaker_from == "metadata":
+        speakers = {r.speaker for r in rows if r.speaker}
+        if len(speakers) != 1:
+            found = "none" if not speakers else ", ".join(sorted(speakers))
+            return reject(NAME, rel, "missing_speaker",
+                          f"{rel}: column '{cfg.metadata_speaker_column}' gives speaker {found}; expected exactly one{via}")
+        return speakers.pop()
+    parts = rel.split("/")[:-1]
+    if len(parts) <= cfg.speaker_path_level:
+        return reject(NAME, rel, "missing_speaker",
+                      f"{rel}: no folder at level {cfg.speaker_path_level} to name the speaker; "
+                      f"expected RAW/<speaker>/.../<file>{via}")
+    return parts[cfg.speaker_path_level]
+
+
+def run(ctx: StageContext) -> StageResult:
+    cfg = ctx.config.ingest
+    raw = ctx.raw
+    paths, sidecars, rejects = scan(raw, cfg.extensions, cfg.sidecar_extension)
+    path_set = set(paths)
+    # Sidecars by the stem they transcribe (the extension matches in any case; the first
+    # in sorted order wins, so the choice never depends on walk order).
+    sidecar_by_stem: dict[str, str] = {}
+    for side in sorted(sidecars):
+        sidecar_by_stem.setdefault(side.rsplit(".", 1)[0], side)
+    table_rel = cfg.metadata
+    by_audio, metadata_rows, meta_rejects = _metadata_by_audio(ctx, path_set)
+    rejects.extend(meta_rejects)
+
+    probes = _probe_all(ctx, raw, paths)
+    accepted: list[dict[str, Any]] = []
+    first_by_hash: dict[str, str] = {}
+    for rel, probe in zip(paths, probes, strict=True):
+        rows = by_audio.get(rel, [])
+        lines = ", ".join(str(r.line) for r in rows)
+        via = f" (named on line {lines} of {table_rel})" if rows else ""
+        if "error" in probe:
+            reason, sentence = probe["error"]
+            rejects.append(reject(NAME, rel, reason, sentence + via))
+            continue
+        if probe["sha256"] in first_by_hash:
+            rejects.append(reject(NAME, rel, "duplicate_content",
+                                  f"{rel}: byte-identical to {first_by_hash[probe['sha256']]!r}, which is kept{via}"))
+            continue
+        first_by_hash[probe["sha256"]] = rel
+        rows, repeats = collapse_rows(rows, rel, table_rel)
+        rejects.extend(repeats)
+        speaker_name = _speaker(ctx, rel, rows, via)
+        if isinstance(speaker_name, dict):
+            rejects.append(speaker_name)
+            continue
+        pairing = pair_transcript(raw, rel, rows, sidecar_by_stem.get(posixpath.splitext(rel)[0]),
+                                  table_rel=table_rel, transcript_column=cfg.metadata_transcript_column,
+                                  encoding=cfg.transcript_encoding, speaker_from_metadata=cfg.speaker_from == "metadata")
+        rejects.extend(pairing.rejects)
+        accepted.append({
+            "source_id": source_id(posixpath.basename(posixpath.splitext(rel)[0]), probe["sha256"]),
+            "source_path": rel,
+            "speaker": speaker_id(speaker_name),
+            **probe,
+            "transcript": pairing.transcript,
+            "transcript_origin": pairing.origin,
+            "metadata_line": pairing.metadata_line,
+        })
+
+    if ctx.config.privacy.pseudonymise:
+        _pseudonymise(ctx, accepted)
+    accepted.sort(key=lambda r: r["source_path"])
+    audio_rejected = sum(1 for r in rejects if r["source_path"] in path_set)
+    summary = {
+        "audio_files_found": len(paths),
+        "audio_files_accepted": len(accepted),
+        "audio_files_rejected": audio_rejected,
+        "metadata_rows": metadata_rows,
+        "transcribed": sum(1 for r in accepted if r["transcript"] is not None),
+        "transcripts_set_aside": sum(1 for r in rejects if r["reason"] in TRANSCRIPT_REASONS),
+        "hours": sum(r["duration_s"] for r in accepted) / 3600,
+        "speakers": len({r["speaker"] for r in accepted}),
+    }
+    return StageResult(manifests={"stages/ingest.parquet": ("ingest", table_from_rows("ingest", accepted))},
+                       rejects=rejects, summary=summary,
+                       stop=environment_failure(rejects, paths=path_set, metadata_rows=metadata_rows,
+                                                accepted=len(accepted)))
+
+
+def environment_failure(rejects: list[dict[str, Any]], *, paths: set[str], metadata_rows: int,
+                        accepted: int) -> str:
+    """A sentence when no audio file got through and every one was rejected for a
+    reason that points at the machine rather than the files: all unreadable, or (no
+    audio found at all) every metadata row naming a file that is not there; else "".
+
+    Such a run would finish with empty manifests and exit 0, though nothing is wrong
+    with the data: a permission, an unmounted share, a wrong RAW.
+    """
+    if accepted:
+        return ""
+    unreadable = [r for r in rejects if r["reason"] == "unreadable" and r["source_path"] in paths]
+    if paths and len(unreadable) == len(paths):
+        return (f"every one of the {len(paths)} audio files was rejected as unreadable (the first: "
+                f"{unreadable[0]['detail']}): the environment is the likely cause, not the files; check that "
+                "this user (and, on a cluster, every worker) can read RAW at this path")
+    missing = [r for r in rejects if r["reason"] == "metadata_missing_audio"]
+    if not paths and metadata_rows and len(missing) == metadata_rows:
+        return (f"RAW holds none of the {metadata_rows} audio files the metadata table names (the first: "
+                f"{missing[0]['detail']}): the environment is the likely cause, not the table; check that RAW "
+                "is the folder the table's paths are relative to, and that it is mounted here")
+    return ""

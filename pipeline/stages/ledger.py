@@ -1,0 +1,298 @@
+"""The split ledger: every group's side and every clip's subset, as a sorted TSV.
+
+The ledger is what makes a rebuild stable: the split stage reads it before
+assigning anything and writes it after. It is meant to be committed beside the
+corpus config, so its format is plain text that diffs well::
+
+    # loam split ledger v1<TAB>group_by=speaker<TAB>seed=7<TAB>heldout=10%<TAB>budgets=10m,1h<TAB>selection=coverage
+    clip<TAB>alder_01-0123456789<TAB>labelled<TAB>10m,1h<TAB>alder
+    clip<TAB>wren_02-abcdef0123<TAB>heldout<TAB>-<TAB>wren
+    group<TAB>alder<TAB>training
+    group<TAB>wren<TAB>heldout
+
+The header records the settings the assignment was made with (budgets smallest
+first). Rows are sorted by kind, then id. A clip row gives its subset
+(``labelled``, ``unlabelled`` or ``heldout``), its labelled tiers
+(comma-separated, ``-`` for none) and its group; a group row gives its side
+(``heldout`` or ``training``). A group row is kept after the group's clips have
+gone, so a speaker who comes back returns to the same side.
+
+This module knows the format and where the file lives; what a rebuild does with
+it is in :mod:`pipeline.stages.split`.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from pipeline.core.config import Config
+from pipeline.core.errors import UsageError
+from pipeline.core.fsio import write_text_atomic
+
+MAGIC = "# loam split ledger v1"
+SETTING_KEYS = ("group_by", "seed", "heldout", "budgets", "selection")
+SUBSETS = ("labelled", "unlabelled", "heldout")
+SIDES = ("heldout", "training")
+NO_TIERS = "-"
+_BUDGET = re.compile(r"^[0-9]+(\.[0-9]+)?(s|m|h)$")
+_HEADER_EXAMPLE = f"{MAGIC}<TAB>group_by=...<TAB>seed=...<TAB>heldout=...<TAB>budgets=...<TAB>selection=..."
+
+
+@dataclass(frozen=True)
+class ClipRecord:
+    """One clip's assignment: its subset, its labelled tiers (smallest first), its group."""
+
+    subset: str
+    tiers: tuple[str, ...]
+    group: str
+
+
+@dataclass(frozen=True)
+class Ledger:
+    """A whole ledger: the header settings, group sides and clip assignments.
+
+    ``settings`` holds the header's values as text (``budgets`` comma-separated,
+    smallest first, or ``-``); ``groups`` maps a group id to ``heldout`` or
+    ``training``; ``clips`` maps a clip id to its :class:`ClipRecord`.
+    """
+
+    settings: Mapping[str, str]
+    groups: Mapping[str, str] = field(default_factory=dict)
+    clips: Mapping[str, ClipRecord] = field(default_factory=dict)
+
+    @property
+    def budgets(self) -> tuple[str, ...]:
+        """The labelled budgets the ledger was written with, smallest first."""
+        return _split_list(self.settings.get("budgets", NO_TIERS))
+
+
+def _split_list(text: str) -> tuple[str, ...]:
+    return () if text == NO_TIERS else tuple(text.split(","))
+
+
+def _join_list(items: tuple[str, ...] | list[str]) -> str:
+    return ",".join(items) if items else NO_TIERS
+
+
+def format_ledger(ledger: Ledger) -> str:
+    """The ledger as TSV text: the header line, then rows sorted by kind and id.
+
+    Parameters
+    ----------
+    ledger : Ledger
+        Settings must hold every key of ``SETTING_KEYS``.
+
+    Returns
+    -------
+    str
+        UTF-8-ready text ending in a newline.
+
+    Examples
+    --------
+    >>> led = Ledger({"group_by": "speaker", "seed": "7", "heldout": "10%", "budgets": "1m",
+    ...               "selection": "coverage"}, {"wren": "heldout"},
+    ...              {"wren_01-0123456789": ClipRecord("heldout", (), "wren")})
+    >>> print(format_ledger(led), end="")  # doctest: +NORMALIZE_WHITESPACE
+    # loam split ledger v1	group_by=speaker	seed=7	heldout=10%	budgets=1m	selection=coverage
+    clip	wren_01-0123456789	heldout	-	wren
+    group	wren	heldout
+    """
+    missing = [k for k in SETTING_KEYS if k not in ledger.settings]
+    if missing:
+        raise ValueError(f"ledger settings lack {', '.join(missing)}")
+    header = "\t".join([MAGIC] + [f"{k}={ledger.settings[k]}" for k in SETTING_KEYS])
+    rows = [("clip", cid, f"clip\t{cid}\t{rec.subset}\t{_join_list(rec.tiers)}\t{rec.group}")
+            for cid, rec in ledger.clips.items()]
+    rows += [("group", gid, f"group\t{gid}\t{side}") for gid, side in ledger.groups.items()]
+    rows.sort(key=lambda r: (r[0], r[1]))
+    return "\n".join([header] + [r[2] for r in rows]) + "\n"
+
+
+class _Parser:
+    """Line-by-line reader that names the file and line of the first problem."""
+
+    def __init__(self, source: str) -> None:
+        self.source = source
+
+    def fail(self, line_no: int, found: str, expected: str) -> UsageError:
+        shown = found if len(found) <= 80 else found[:77] + "..."
+        return UsageError(
+            f"{self.source}: line {line_no}: found {shown!r}; expected {expected} "
+            "(fix the line, or run with --fresh to ignore the ledger and assign every clip anew)"
+        )
+
+    def header(self, line: str) -> dict[str, str]:
+        fields = line.split("\t")
+        if fields[0] != MAGIC:
+            raise self.fail(1, line, f"the header line {_HEADER_EXAMPLE!r}")
+        settings: dict[str, str] = {}
+        for item in fields[1:]:
+            key, sep, value = item.partition("=")
+            if not sep or key not in SETTING_KEYS or key in settings or not value:
+                raise self.fail(1, item, f"one of each setting {', '.join(k + '=VALUE' for k in SETTING_KEYS)}")
+            settings[key] = value
+        missing = [k for k in SETTING_KEYS if k not in settings]
+        if missing:
+            raise self.fail(1, line, f"a header with {', '.join(k + '=VALUE' for k in missing)}")
+        for budget in _split_list(settings["budgets"]):
+            if not _BUDGET.match(budget):
+                raise self.fail(1, settings["budgets"], "budgets=- or comma-separated durations such as 10m,1h")
+        return settings
+
+    def parse(self, text: str) -> Ledger:
+        lines = text.split("\n")
+        if lines and lines[-1] == "":
+            lines.pop()
+        if not lines:
+            raise self.fail(1, "", f"the header line {_HEADER_EXAMPLE!r}")
+        settings = self.header(lines[0].rstrip("\r"))
+        budgets = _split_list(settings["budgets"])
+        groups: dict[str, str] = {}
+        clips: dict[str, ClipRecord] = {}
+        clip_lines: dict[str, int] = {}
+        for line_no, raw_line in enumerate(lines[1:], start=2):
+            line = raw_line.rstrip("\r")
+            if not line.strip():
+                continue
+            fields = line.split("\t")
+            kind = fields[0]
+            if kind == "group":
+                if len(fields) != 3 or not fields[1]:
+                    raise self.fail(line_no, line, "'group<TAB>id<TAB>side' (3 tab-separated fields)")
+                if fields[2] not in SIDES:
+                    raise self.fail(line_no, fields[2], "a side: heldout or training")
+                if fields[1] in groups:
+                    raise self.fail(line_no, fields[1], "each group id once")
+                groups[fields[1]] = fields[2]
+            elif kind == "clip":
+                if len(fields) != 5 or not fields[1] or not fields[4]:
+                    raise self.fail(line_no, line, "'clip<TAB>clip_id<TAB>subset<TAB>tiers<TAB>group' (5 tab-separated fields)")
+                cid, subset, tier_text, group = fields[1:]
+                if subset not in SUBSETS:
+                    raise self.fail(line_no, subset, "a subset: labelled, unlabelled or heldout")
+                if cid in clips:
+                    raise self.fail(line_no, cid, "each clip id once")
+                tiers = self.tiers(line_no, tier_text, subset, budgets)
+                clips[cid] = ClipRecord(subset, tiers, group)
+                clip_lines[cid] = line_no
+            else:
+                raise self.fail(line_no, kind, "a row starting with 'clip' or 'group'")
+        for cid, rec in clips.items():
+            if rec.group not in groups:
+                raise self.fail(clip_lines[cid], rec.group, "a group that has its own 'group' row")
+        return Ledger(settings, groups, clips)
+
+    def tiers(self, line_no: int, text: str, subset: str, budgets: tuple[str, ...]) -> tuple[str, ...]:
+        tiers = _split_list(text)
+        if subset != "labelled":
+            if tiers:
+                raise self.fail(line_no, text, f"'-' for a {subset} clip (only labelled clips have tiers)")
+            return ()
+        if not tiers:
+            raise self.fail(line_no, text, "the tiers of a labelled clip, such as 10m,1h")
+        # Tiers are nested, so a labelled clip belongs to a run of the largest budgets.
+        if tiers != budgets[len(budgets) - len(tiers):]:
+            raise self.fail(line_no, text, f"the largest budgets of the header ({_join_list(budgets)}), "
+                                           "smallest first, as tiers are nested")
+        return tiers
+
+
+def parse_ledger(text: str, *, source: str) -> Ledger:
+    """Parse ledger text; a malformed line is a ``UsageError`` naming ``source`` and the line.
+
+    Parameters
+    ----------
+    text : str
+        The file's contents. Blank lines are ignored; CRLF line ends are accepted.
+    source : str
+        Where the text came from, for messages.
+
+    Returns
+    -------
+    Ledger
+
+    Examples
+    --------
+    >>> text = ("# loam split ledger v1\\tgroup_by=clip\\tseed=0\\theldout=1m\\tbudgets=-\\t"
+    ...         "selection=random\\ngroup\\tg\\ttraining\\n")
+    >>> parse_ledger(text, source="x.tsv").groups
+    {'g': 'training'}
+    """
+    return _Parser(source).parse(text)
+
+
+def read_ledger(path: Path) -> Ledger | None:
+    """The ledger at ``path``, or None when there is no file."""
+    try:
+        data = Path(path).read_bytes()
+    except FileNotFoundError:
+        return None
+    except OSError as exc:
+        raise UsageError(f"{path}: cannot read the split ledger: {exc.strerror}") from exc
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = data[: exc.start].count(b"\n") + 1
+        raise UsageError(f"{path}: line {line}: found bytes that are not UTF-8; expected UTF-8 text") from exc
+    return parse_ledger(text, source=str(path))
+
+
+def write_ledger(path: Path, ledger: Ledger) -> None:
+    """Write the ledger atomically (a reader sees the old file or the whole new one)."""
+    write_text_atomic(path, format_ledger(ledger))
+
+
+def _inside(path: Path, root: Path) -> bool:
+    try:
+        path.resolve().relative_to(root.resolve())
+    except ValueError:
+        return False
+    return True
+
+
+def _has_config_file(config: Config) -> bool:
+    # build_config and load_config name a missing file "<defaults>", "<config>" or "".
+    source = config.source
+    return bool(source) and not (source.startswith("<") and source.endswith(">"))
+
+
+def locate_ledger(config: Config, *, raw: Path, out: Path) -> tuple[Path, str]:
+    """Where the ledger lives, and a short phrase saying why.
+
+    ``split.ledger`` when set (relative to the config file's folder); otherwise
+    ``<config stem>.ledger.tsv`` beside the config file, or ``OUT/ledger.tsv``
+    without a config file. RAW is never written to: when the default place is
+    inside RAW the ledger goes to ``OUT/ledger.tsv``, and a configured path inside
+    RAW is a ``UsageError``.
+
+    Parameters
+    ----------
+    config : Config
+    raw, out : Path
+        The run's raw dump and output folder.
+
+    Returns
+    -------
+    (Path, str)
+        The ledger path and the reason for it (for the log).
+    """
+    if config.split.ledger:
+        path = config.resolve_path(config.split.ledger)
+        if _inside(path, raw):
+            raise UsageError(
+                f"{config.source or '<config>'}: key 'split.ledger' has value {config.split.ledger!r}, "
+                f"which resolves to {path}, inside RAW ({raw}); allowed: a path outside RAW, "
+                "as the raw dump is never written to"
+            )
+        return path, "split.ledger"
+    if not _has_config_file(config):
+        return out / "ledger.tsv", "no config file"
+    source = Path(os.path.abspath(config.source))
+    beside = source.parent / f"{source.stem}.ledger.tsv"
+    if _inside(beside, raw):
+        return out / "ledger.tsv", "the default place beside the config file is inside RAW, which is never written to"
+    return beside, "beside the config file"

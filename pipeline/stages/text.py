@@ -1,0 +1,288 @@
+"""Text stage: normalise each transcript, pronounce its words, set aside what cannot be used.
+
+Reads the ingest rows that have a transcript; a transcribed source is one clip,
+so ``clip_id`` is the ingest ``source_id``. Writes:
+
+``stages/text.parquet``    one row per accepted transcript (``schemas/text.schema.json``),
+                           sorted by clip_id;
+rejects                    ``empty_transcript`` (nothing left after normalisation),
+                           ``bad_characters`` (characters the backend cannot take),
+                           ``oov`` (lexicon backend, a word the lexicon lacks, with
+                           ``text.oov = "reject"``) and ``unpronounceable`` (no word,
+                           or a word with no phones);
+``lexicon/predicted.tsv``  every out-of-vocabulary word (one CMUdict or the lexicon
+                           lacks) with the pronunciation it was given and its count,
+                           most frequent first (ties by word). Correct lines, point
+                           ``text.override_lexicon`` at the file (or a copy) and run
+                           again: override entries win over every backend, and stay
+                           listed in the file with source "override".
+
+English-only steps (the built-in abbreviation table and spelled initialisms) run
+with the english backend only. Numbers follow ``text.verbalise_numbers``, and the
+abbreviations of ``[text.abbreviations]`` apply with every backend.
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from pipeline.core.codeversion import code_version
+from pipeline.core.config import Config, TextConfig
+from pipeline.core.fsio import sha256_file, write_text_atomic
+from pipeline.core.manifest import table_from_rows
+from pipeline.core.stage import StageContext, StageResult, reject
+from pipeline.text.g2p import (
+    Pronouncer,
+    Pronunciation,
+    describe_characters,
+    grapheme_units,
+    neural_cache_name,
+    read_lexicon,
+)
+from pipeline.text.normalise import Normalised, load_abbreviations, normalise
+
+NAME = "text"
+INPUTS = ("ingest",)
+CONFIG_SECTIONS = ("text",)
+MAIN_MANIFEST = "stages/text.parquet"
+PREDICTED_LEXICON = "lexicon/predicted.tsv"
+_SHOWN_CHARS = 60
+
+
+def _lexicon_paths(config: Config) -> dict[str, Path]:
+    cfg = config.text
+    paths = {}
+    if cfg.backend == "lexicon" and cfg.lexicon:
+        paths["lexicon"] = config.resolve_path(cfg.lexicon)
+    if cfg.override_lexicon:
+        paths["override_lexicon"] = config.resolve_path(cfg.override_lexicon)
+    return paths
+
+
+def extra_inputs(ctx: StageContext) -> list[Path]:
+    """Files besides the ingest manifest whose content changes this stage's output."""
+    return sorted(_lexicon_paths(ctx.config).values())
+
+
+def written_files(out: Path, table: object) -> list[str]:
+    """The predicted lexicon beside the manifest (see pipeline.core.stage)."""
+    return [PREDICTED_LEXICON]
+
+
+def build_pronouncer(config: Config, *, cache_dir: Path | None) -> Pronouncer:
+    """The Pronouncer for ``config.text``; lexicon files are read (UsageError if malformed)."""
+    cfg = config.text
+    paths = _lexicon_paths(config)
+    cache_path = None
+    if cfg.backend == "english" and cache_dir is not None:
+        cache_path = cache_dir / "g2p" / neural_cache_name(code_version=code_version(NAME, cache_dir=cache_dir))
+    return Pronouncer(
+        backend=cfg.backend,
+        lexicon=read_lexicon(paths["lexicon"]) if "lexicon" in paths else None,
+        override=read_lexicon(paths["override_lexicon"]) if "override_lexicon" in paths else None,
+        oov=cfg.oov,
+        alphabet=cfg.alphabet,
+        keep_stress=cfg.keep_stress,
+        cache_path=cache_path,
+    )
+
+
+def normalise_options(cfg: TextConfig, pronouncer: Pronouncer) -> dict[str, Any]:
+    """Keyword arguments for ``normalise`` under this configuration."""
+    english = cfg.backend == "english"
+    abbreviations = load_abbreviations() if english else {}
+    abbreviations.update(dict(cfg.abbreviations))
+    return {
+        "punctuation": cfg.punctuation,
+        "verbalise_numbers": cfg.verbalise_numbers,
+        "abbreviations": abbreviations,
+        "spell_initialisms": english,
+        "is_known": pronouncer.is_known if english else None,
+    }
+
+
+def _shown(text: str) -> str:
+    return repr(text if len(text) <= _SHOWN_CHARS else text[: _SHOWN_CHARS - 3] + "...")
+
+
+def _quoted(words: list[str]) -> str:
+    return ", ".join(repr(w) for w in words)
+
+
+def _bad_characters_detail(source: str, found: dict[str, list[str]], cfg: TextConfig) -> str:
+    chars = [ch for chars in found.values() for ch in chars]
+    where = _quoted(list(found))
+    if cfg.backend == "english":
+        expected = "letters a-z (accents are removed) and apostrophes, or the word in text.override_lexicon"
+    elif cfg.alphabet:
+        expected = f"only characters of text.alphabet ({cfg.alphabet!r}), or the word in text.override_lexicon"
+    else:
+        expected = "letters, combining marks and apostrophes (text.alphabet is empty)"
+    return (f"{source}: transcript has characters the {cfg.backend} backend cannot take: "
+            f"{describe_characters(chars)} (in {where}); expected {expected}")
+
+
+@dataclass
+class TranscriptOutcome:
+    """What became of one transcript: a manifest row or a reject, and its OOV words."""
+
+    row: dict[str, Any] | None = None
+    rejected: tuple[str, str] | None = None  # (reason, detail)
+    oov: list[tuple[str, Pronunciation | None]] = field(default_factory=list)
+
+
+def process_transcript(source: str, transcript: str, *, pronouncer: Pronouncer, options: dict[str, Any],
+                       cfg: TextConfig) -> TranscriptOutcome:
+    """Normalise and pronounce one transcript (``clip_id`` is filled in by the caller)."""
+    norm: Normalised = normalise(transcript, **options)
+    if not norm.text:
+        return TranscriptOutcome(rejected=("empty_transcript", f"{source}: transcript {_shown(transcript)} is empty "
+                                  "after normalisation; expected at least one letter or digit"))
+    bad = {w: chars for w in dict.fromkeys(norm.words) if (chars := pronouncer.bad_characters(w))}
+    if bad:
+        return TranscriptOutcome(rejected=("bad_characters", _bad_characters_detail(source, bad, cfg)))
+    if not norm.words:
+        return TranscriptOutcome(rejected=("unpronounceable", f"{source}: transcript {_shown(transcript)} has no word "
+                                  f"after normalisation ({_shown(norm.text)}); expected at least one word to pronounce"))
+    prons = pronouncer.pronounce(norm.words)
+    pairs = list(zip(norm.words, prons, strict=True))
+    outcome = TranscriptOutcome(oov=[(w, p) for w, p in pairs if p is None or p.oov])
+    missing = list(dict.fromkeys(w for w, p in pairs if p is None))
+    if missing:
+        outcome.rejected = ("oov", f"{source}: transcript words not in text.lexicon: {_quoted(missing)}; expected "
+                            "every word in text.lexicon or text.override_lexicon (or text.oov = \"graphemes\")")
+        return outcome
+    found = [(w, p) for w, p in pairs if p is not None]
+    silent = [w for w, p in found if not p.phones]
+    if silent:
+        outcome.rejected = ("unpronounceable", f"{source}: transcript words with no phones: {_quoted(silent)}; "
+                            "expected a pronunciation for every word (add them to text.override_lexicon)")
+        return outcome
+    phones: list[str] = []
+    for i, (_, pron) in enumerate(found):
+        if i and cfg.word_boundary:
+            phones.append(cfg.word_boundary)
+        phones.extend(pron.phones)
+    outcome.row = {
+        "transcript": transcript,
+        "norm_text": norm.text,
+        "words": list(norm.words),
+        "phones": phones,
+        "word_backends": [p.source for _, p in found],
+        "oov_words": list(dict.fromkeys(w for w, p in found if p.oov)),
+    }
+    return outcome
+
+
+def run(ctx: StageContext) -> StageResult:
+    cfg = ctx.config.text
+    cache_dir = ctx.cache_dir if ctx.use_cache else None
+    pronouncer = build_pronouncer(ctx.config, cache_dir=cache_dir)
+    options = normalise_options(cfg, pronouncer)
+    ingest = ctx.inputs["ingest"].select(["source_id", "source_path", "transcript"]).to_pylist()
+    items = sorted((r for r in ingest if r["transcript"] is not None), key=lambda r: r["source_id"])
+
+    rows: list[dict[str, Any]] = []
+    rejects: list[dict[str, Any]] = []
+    oov_counts: Counter[str] = Counter()
+    oov_phones: dict[str, tuple[tuple[str, ...], str]] = {}
+    for item in items:
+        outcome = process_transcript(item["source_path"], item["transcript"], pronouncer=pronouncer,
+                                     options=options, cfg=cfg)
+        for word, pron in outcome.oov:
+            oov_counts[word] += 1
+            if word not in oov_phones:
+                oov_phones[word] = _listed(word, pron, pronouncer)
+        if outcome.rejected:
+            reason, detail = outcome.rejected
+            rejects.append(reject(NAME, item["source_path"], reason, detail, clip_id=item["source_id"]))
+        elif outcome.row is not None:
+            rows.append({"clip_id": item["source_id"], **outcome.row})
+    # Before predicted.tsv is rewritten: it may itself be the override lexicon just read.
+    metadata = _metadata(ctx.config, pronouncer)
+    pronouncer.save_cache()
+    if pronouncer.cache_misses or pronouncer.cache_hits:
+        ctx.log.info("text: %d out-of-vocabulary words predicted with g2p-en, %d taken from the cache",
+                     len(pronouncer.cache_misses), len(pronouncer.cache_hits))
+    _write_predicted(ctx.out / PREDICTED_LEXICON, oov_counts, oov_phones, backend=cfg.backend)
+
+    rejects.sort(key=lambda r: (r["clip_id"], r["reason"]))
+    return StageResult(
+        manifests={MAIN_MANIFEST: ("text", table_from_rows("text", rows))},
+        rejects=rejects,
+        summary=_summary(rows, rejects, len(items), cfg),
+        metadata=metadata,
+        run_stats=_run_stats(pronouncer, cache_dir is not None),
+    )
+
+
+def _listed(word: str, pron: Pronunciation | None, pronouncer: Pronouncer) -> tuple[tuple[str, ...], str]:
+    """The phones and source a word gets in predicted.tsv."""
+    if pron is None:
+        # Rejected by the lexicon backend: its letters, as a starting point for the reviewer.
+        return grapheme_units(word), "graphemes"
+    if pron.source == "override":
+        # As written in the override file, so a reviewed file read back is rewritten unchanged.
+        return pronouncer.override[word], "override"
+    return pron.phones, pron.source
+
+
+def _write_predicted(path: Path, counts: Counter[str], phones: dict[str, tuple[tuple[str, ...], str]],
+                     *, backend: str) -> None:
+    lines = [
+        "# Out-of-vocabulary words: word<TAB>phones<TAB>count<TAB>source, most frequent first.\n",
+        "# Correct the phones, set text.override_lexicon to this file (or a copy) and run again;\n",
+        "# words the override supplies stay listed, with source 'override'.\n",
+    ]
+    if backend == "lexicon":
+        lines.append("# source 'graphemes': the word's letters, a starting point only.\n")
+    for word, count in sorted(counts.items(), key=lambda kv: (-kv[1], kv[0])):
+        units, source = phones[word]
+        lines.append(f"{word}\t{' '.join(units)}\t{count}\t{source}\n")
+    write_text_atomic(path, "".join(lines))
+
+
+def _summary(rows: list[dict[str, Any]], rejects: list[dict[str, Any]], transcripts: int,
+             cfg: TextConfig) -> dict[str, Any]:
+    inventory: Counter[str] = Counter()
+    sources: Counter[str] = Counter()
+    words: Counter[str] = Counter()
+    oov: Counter[str] = Counter()
+    for row in rows:
+        inventory.update(p for p in row["phones"] if not (cfg.word_boundary and p == cfg.word_boundary))
+        sources.update(row["word_backends"])
+        words.update(row["words"])
+        oov_set = set(row["oov_words"])
+        oov.update(w for w in row["words"] if w in oov_set)
+    return {
+        "backend": cfg.backend,
+        "transcripts": transcripts,
+        "accepted": len(rows),
+        "rejected": dict(sorted(Counter(r["reason"] for r in rejects).items())),
+        "words": sum(words.values()),
+        "distinct_words": len(words),
+        "oov_words": len(oov),
+        "oov_word_tokens": sum(oov.values()),
+        "phones": sum(inventory.values()),
+        "phone_inventory": dict(sorted(inventory.items())),
+        "word_backends": dict(sorted(sources.items())),
+        "predicted_lexicon": PREDICTED_LEXICON,
+    }
+
+
+def _run_stats(pronouncer: Pronouncer, cached: bool) -> dict[str, Any]:
+    """What depends on the prediction cache earlier runs filled: for the log only."""
+    return {"g2p_cache": {"enabled": cached, "hits": len(pronouncer.cache_hits),
+                          "misses": len(pronouncer.cache_misses)},
+            "neural_model_loaded": pronouncer.neural_loaded}
+
+
+def _metadata(config: Config, pronouncer: Pronouncer) -> dict[str, str]:
+    meta = pronouncer.provenance()
+    for key, path in _lexicon_paths(config).items():
+        value = getattr(config.text, key)
+        meta[f"g2p.{key}"] = f"{value} sha256={sha256_file(path)}"
+    return meta

@@ -1,0 +1,2 @@
+"""Text processing: transcript normalisation and verbalisation, lexicons and
+pronunciation. Imports only pipeline.core."""
