@@ -1,0 +1,64 @@
+"""Names that stages, commands and tests share, spelled once.
+
+Output paths are relative to OUT. Reason codes and stage names are also the enums of
+``schemas/rejected.schema.json``; a test keeps the two equal.
+"""
+
+from __future__ import annotations
+
+# The stages, in the order the runner runs them.
+STAGES = ("ingest", "audio", "text", "split")
+
+# Subsets of the split, in the order they are reported.
+LABELLED = "labelled"
+UNLABELLED = "unlabelled"
+HELDOUT = "heldout"
+SUBSETS = (LABELLED, UNLABELLED, HELDOUT)
+
+# Quality flags a subset row may carry (`quality_flags`), in the order they are listed.
+FLAGS = ("upsampled", "peak_limited", "noisy", "narrowband", "rate_outlier", "clipped", "near_duplicate",
+         "transcript_rejected", "heldout_untranscribed")
+
+# Reason codes of rejected.parquet, grouped by the stage that first uses them.
+REASONS = (
+    "undecodable", "decoder_crashed", "empty", "unsupported_format", "duplicate_content",
+    "unreadable", "transcript_encoding", "transcript_unreadable", "metadata_parse_error",
+    "metadata_missing_audio", "metadata_duplicate_row", "path_outside_root",
+    "conflicting_transcripts", "missing_speaker", "unsupported_sample_rate", "truncated",
+    "file_name_encoding", "non_finite_samples", "out_of_range_samples", "upsampled",
+    "too_long_transcribed", "no_speech", "clipped", "too_short", "loudness_unmeasurable",
+    "empty_transcript", "unpronounceable", "bad_characters", "oov", "noisy", "invalid_measurement",
+)
+
+# Files under OUT.
+REJECTED = "manifests/rejected.parquet"
+PREDICTED_LEXICON = "lexicon/predicted.tsv"
+REPORT_PAGE = "report/index.html"
+REPORT_SUMMARY = "report/summary.json"
+RESOLVED_CONFIG = "config.resolved.json"
+LAST_RUN = "logs/last-run.json"
+LEDGER_IN_OUT = "ledger.tsv"
+
+
+def subset_manifest(subset: str) -> str:
+    """``manifests/<subset>.parquet``.
+
+    >>> subset_manifest(HELDOUT)
+    'manifests/heldout.parquet'
+    """
+    return f"manifests/{subset}.parquet"
+
+
+def stage_manifest(stage: str) -> str:
+    """``stages/<stage>.parquet``, a stage's own manifest."""
+    return f"stages/{stage}.parquet"
+
+
+def stage_rejects(stage: str) -> str:
+    """``stages/<stage>.rejects.parquet``."""
+    return f"stages/{stage}.rejects.parquet"
+
+
+def stage_summary(stage: str) -> str:
+    """``stages/<stage>.summary.json``."""
+    return f"stages/{stage}.summary.json"
