@@ -19,7 +19,7 @@ SUBSETS = (LABELLED, UNLABELLED, HELDOUT)
 FLAGS = ("upsampled", "peak_limited", "noisy", "narrowband", "rate_outlier", "clipped", "near_duplicate",
          "transcript_rejected", "heldout_untranscribed")
 
-# Reason codes of rejected.parquet, grouped by the stage that first uses them.
+# Reason codes of rejected.parquet, in the order of the schema's enum.
 REASONS = (
     "undecodable", "decoder_crashed", "empty", "unsupported_format", "duplicate_content",
     "unreadable", "transcript_encoding", "transcript_unreadable", "metadata_parse_error",
