@@ -24,7 +24,8 @@ import soxr
 from pipeline.core.config import build_config
 from pipeline.core.manifest import table_from_rows, validate_table
 from pipeline.core.stage import StageContext
-from pipeline.signal.quality import effective_bandwidth_hz, encode_fingerprint, fingerprint
+from pipeline.signal.bandwidth import effective_bandwidth_hz
+from pipeline.signal.fingerprint import encode_fingerprint, fingerprint
 from pipeline.stages import audio
 from tests.conftest import DEMO, DEMO_CLEAN, FIXTURE_SPEECH, FIXTURES, speech_only
 
@@ -203,7 +204,7 @@ def test_written_files_match_their_rows(first_run, raw: Path):
         assert (info.format, info.subtype, info.samplerate, info.channels) == ("FLAC", "PCM_16", 16000, 1)
         assert info.frames == r["num_samples"]
         samples, _ = sf.read(path, dtype="float64")
-        # Fingerprint of the clip as written (Haitsma-Kalker, pipeline.signal.quality).
+        # Fingerprint of the clip as written (Haitsma-Kalker, pipeline.signal.fingerprint).
         assert encode_fingerprint(fingerprint(samples, sample_rate=16000)) == r["fingerprint"]
 
 
@@ -229,7 +230,7 @@ def test_source_measures_match_direct_computation(first_run, raw: Path):
     block, rate = sf.read(raw / "ana/stereo44.wav", dtype="float32", always_2d=True)
     mono = block.mean(axis=1)
     # The blockwise PSD of the stream at the output rate must give what
-    # quality.effective_bandwidth_hz gives on the whole file resampled in one go.
+    # bandwidth.effective_bandwidth_hz gives on the whole file resampled in one go.
     import soxr
 
     at_output = soxr.resample(mono, rate, 16000, quality="HQ")

@@ -27,7 +27,7 @@ from pipeline.core.config import build_config
 from pipeline.core.errors import DataError, UsageError
 from pipeline.core.manifest import table_from_rows, validate_table
 from pipeline.core.stage import StageContext, StageResult
-from pipeline.signal import quality
+from pipeline.signal.fingerprint import decode_fingerprint, encode_fingerprint
 from pipeline.stages import split
 
 REPO = Path(__file__).resolve().parent.parent
@@ -80,7 +80,7 @@ class Corpus:
             "upsampled_from": upsampled_from, "segment_index": 0, "speech_s": speech_s, "speech_ratio": 0.9,
             "loudness_in_lufs": -31.0, "loudness_lufs": -23.0, "gain_db": 8.0, "peak_limited_db": peak_limited_db,
             "peak_dbfs": -2.0, "clipped_fraction": clipped_fraction, "dc_offset": 0.0, "snr_db": snr_db,
-            "bandwidth_hz": bandwidth_hz, "fingerprint": quality.encode_fingerprint(fp), "transcribed": transcribed,
+            "bandwidth_hz": bandwidth_hz, "fingerprint": encode_fingerprint(fp), "transcribed": transcribed,
         })
         if transcribed and accepted:
             if phones is None:
@@ -431,14 +431,14 @@ def test_single_speaker_by_recording_or_clip(tmp_path: Path, group_by: str) -> N
 
 
 def test_near_duplicates_bind_groups(tmp_path: Path) -> None:
-    # Source: docs/split.md, Groups; similarity by quality.fingerprint_similarity (Haitsma-Kalker bit agreement).
+    # Source: docs/split.md, Groups; similarity by pipeline.signal.fingerprint.fingerprint_similarity (Haitsma-Kalker bit agreement).
     corpus = Corpus()
     for spk in SPEAKERS[:4]:
         for k in range(4):
             corpus.add(spk, 4.0 + k)
     # heron's clip is alder's first clip re-encoded: a few flipped fingerprint bits.
     original = next(r for r in corpus.audio if r["speaker"] == "alder")
-    fp = quality.decode_fingerprint(original["fingerprint"]).copy()
+    fp = decode_fingerprint(original["fingerprint"]).copy()
     rng = np.random.default_rng(5)
     hit = rng.choice(fp.size, size=fp.size // 10, replace=False)
     fp[hit] ^= np.uint32(1) << rng.integers(0, 32, size=hit.size).astype(np.uint32)

@@ -165,7 +165,7 @@ def test_mp3_without_a_length_frame_is_not_judged_by_its_estimate(tmp_path: Path
 
 
 def test_wada_snr_of_subnormal_samples_warns_nothing() -> None:
-    from pipeline.signal.quality import wada_snr_db
+    from pipeline.signal.snr import wada_snr_db
 
     x = speechlike(1.0, SR, seed=8).astype(np.float32) * 16
     x[::97] = np.float32(1e-45)  # the smallest subnormal float32 (IEEE 754 binary32)

@@ -1,2 +1,2 @@
 """Signal processing on numpy arrays: decoding, container headers, voice activity,
-segmentation, loudness and filters, quality measures. Imports only pipeline.core."""
+segmentation, loudness and filters, blind SNR, fingerprints and bandwidth. Imports only pipeline.core."""

@@ -101,7 +101,7 @@ class FileOutcome:
 
 
 class LongTermPsd:
-    """Welch PSD of a stream, block by block, equal to ``quality.long_term_psd`` of
+    """Welch PSD of a stream, block by block, equal to ``bandwidth.long_term_psd`` of
     the whole signal.
 
     Each block is joined to the unused tail of the previous one and only whole Welch
@@ -118,7 +118,7 @@ class LongTermPsd:
         self._segments = 0
 
     def push(self, samples: np.ndarray) -> None:
-        from pipeline.signal.quality import long_term_psd
+        from pipeline.signal.bandwidth import long_term_psd
 
         data = np.concatenate([self._carry, np.asarray(samples, dtype=np.float32)])
         freqs, psd = long_term_psd(data, sample_rate=self.sample_rate)
@@ -133,7 +133,7 @@ class LongTermPsd:
         self._carry = data[count * hop:].copy()
 
     def bandwidth_hz(self) -> float | None:
-        from pipeline.signal.quality import bandwidth_from_psd
+        from pipeline.signal.bandwidth import bandwidth_from_psd
 
         if self._sum is None or self._freqs is None:
             return None
@@ -445,7 +445,9 @@ def _write_clip(job: AudioJob, clip: np.ndarray, placed: dict[str, Any]) -> dict
     """Gate, normalise, encode and write one clip; a reject row or {"row", "stat"}."""
     import soundfile as sf
 
-    from pipeline.signal import loudness, quality
+    from pipeline.signal import loudness
+    from pipeline.signal.fingerprint import encode_fingerprint, fingerprint
+    from pipeline.signal.snr import wada_snr_db
 
     cfg = job.config
     rate = cfg.sample_rate
@@ -505,8 +507,8 @@ def _write_clip(job: AudioJob, clip: np.ndarray, placed: dict[str, Any]) -> dict
         "peak_limited_db": max(0.0, shortfall_db),
         # The sample peak of the integers is exact and cheaper than of their float copy.
         "peak_dbfs": peak_of(written) if cfg.true_peak else _pcm16_peak_dbfs(pcm),
-        "snr_db": _finite_or_none(quality.wada_snr_db(clip)) if cfg.quality_measures else None,
-        "fingerprint": (quality.encode_fingerprint(quality.fingerprint(written, sample_rate=rate))
+        "snr_db": _finite_or_none(wada_snr_db(clip)) if cfg.quality_measures else None,
+        "fingerprint": (encode_fingerprint(fingerprint(written, sample_rate=rate))
                         if cfg.quality_measures else ""),
     }
     return {"row": row, "stat": [st.st_size, st.st_mtime_ns, st.st_ino]}
@@ -574,12 +576,12 @@ def warm_up(cfg: AudioConfig) -> None:
     import soxr  # noqa: F401
     import webrtcvad  # noqa: F401
 
-    from pipeline.signal import loudness, quality
+    from pipeline.signal import fingerprint, loudness, snr
 
     loudness.k_weighting_sos(sample_rate=cfg.sample_rate)
     if cfg.quality_measures:
-        quality.wada_snr_db(np.linspace(-1.0, 1.0, 1024, dtype=np.float32))
-        quality.fingerprint(np.zeros(cfg.sample_rate, dtype=np.float32), sample_rate=cfg.sample_rate)
+        snr.wada_snr_db(np.linspace(-1.0, 1.0, 1024, dtype=np.float32))
+        fingerprint.fingerprint(np.zeros(cfg.sample_rate, dtype=np.float32), sample_rate=cfg.sample_rate)
 
 
 def prepare_driver(config: Any) -> None:

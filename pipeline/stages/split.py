@@ -41,7 +41,7 @@ from pipeline.core.config import Config, parse_duration_s
 from pipeline.core.errors import DataError, UsageError
 from pipeline.core.manifest import table_from_rows, validate_table
 from pipeline.core.stage import StageContext, StageResult, reject
-from pipeline.signal import quality
+from pipeline.signal.fingerprint import decode_fingerprint, find_near_duplicates
 from pipeline.stages import gates
 from pipeline.stages.ledger import ClipRecord, Ledger, locate_ledger, read_ledger, write_ledger
 from pipeline.stages.selection import Candidate, TierOutcome, TierPlan, fill_tiers
@@ -270,7 +270,7 @@ def load_clips(audio: pa.Table, text: pa.Table, *, word_boundary: str) -> tuple[
     clip has no audio row (their audio was rejected upstream).
     """
     audio = audio.sort_by("clip_id")
-    fingerprints = [quality.decode_fingerprint(s) for s in audio.column("fingerprint").to_pylist()]
+    fingerprints = [decode_fingerprint(s) for s in audio.column("fingerprint").to_pylist()]
     rows = audio.drop_columns(["fingerprint"]).to_pylist()
     texts: dict[str, dict[str, Any]] = {}
     for t in text.to_pylist():
@@ -312,7 +312,7 @@ def find_duplicates(clips: Sequence[Clip], fingerprints: Sequence[np.ndarray], *
     to the smaller clip id).
     """
     best: dict[tuple[int, int], DuplicatePair] = {}
-    for i, j, sim in quality.find_near_duplicates(fingerprints, min_similarity=min_similarity):
+    for i, j, sim in find_near_duplicates(fingerprints, min_similarity=min_similarity):
         best[(i, j)] = DuplicatePair(i, j, float(sim), False)
     by_hash: dict[str, list[int]] = defaultdict(list)
     for k, c in enumerate(clips):
@@ -339,7 +339,7 @@ def apply_gates(clips: Sequence[Clip], *, min_snr_db: float, min_bandwidth_hz: f
     """Speaking rate and its robust z-score per speaker, the gate flags, and eligibility.
 
     ``speaking_rate`` is phones (word boundaries left out) per second of speech;
-    ``rate_z`` is :func:`pipeline.signal.quality.robust_z_scores` of it within the speaker
+    ``rate_z`` is :func:`pipeline.stages.gates.robust_z_scores` of it within the speaker
     (speakers with fewer than ``rate_min_clips`` transcribed clips are scored
     against all of them). The flags and what they do come from
     :mod:`pipeline.stages.gates`, which ``loam validate`` checks with too: a clip is eligible
@@ -352,7 +352,7 @@ def apply_gates(clips: Sequence[Clip], *, min_snr_db: float, min_bandwidth_hz: f
             c.speaking_rate = len(c.plain_phones) / speech_s
     rates = np.array([np.nan if c.speaking_rate is None else c.speaking_rate for c in clips], dtype=np.float64)
     speakers = np.array([c.speaker for c in clips], dtype=object)
-    z = (quality.robust_z_scores(rates, speakers, min_group_size=rate_min_clips, min_mad_fraction=rate_min_spread)
+    z = (gates.robust_z_scores(rates, speakers, min_group_size=rate_min_clips, min_mad_fraction=rate_min_spread)
          if clips else np.zeros(0))
     flags = gates.gate_flags(
         snr_db=[np.nan if c.audio["snr_db"] is None else c.audio["snr_db"] for c in clips],

@@ -1,0 +1,401 @@
+"""Near-duplicate audio: the Haitsma-Kalker fingerprint and the search for copies.
+
+- :func:`fingerprint` gives a clip's sub-fingerprints (J. Haitsma and T. Kalker, "A
+  Highly Robust Audio Fingerprinting System", ISMIR 2002);
+  :func:`encode_fingerprint` and :func:`decode_fingerprint` keep them in a string
+  column.
+- :func:`fingerprint_similarity` compares two fingerprints over small shifts, and
+  :func:`find_near_duplicates` finds all similar pairs of a corpus: clips that are the
+  same recording after resampling, re-encoding or a gain change.
+
+Pure functions on numpy arrays. librosa is deliberately not used: its first call in a
+process spends seconds on JIT compilation, which a per-file worker pays again and
+again, while numpy, scipy and soxr do the same work here without start-up cost.
+"""
+
+from __future__ import annotations
+
+import base64
+import functools
+from collections.abc import Sequence
+
+import numpy as np
+import soxr
+
+from pipeline.core.errors import ParameterError
+from pipeline.signal.arrays import check_sample_rate, mono_float, periodic_hann
+
+__all__ = [
+    "decode_fingerprint",
+    "encode_fingerprint",
+    "find_near_duplicates",
+    "fingerprint",
+    "fingerprint_similarity",
+]
+
+# Parameters follow J. Haitsma and T. Kalker, "A Highly Robust Audio Fingerprinting
+# System", ISMIR 2002: 0.37 s Hann frames and 33 logarithmically spaced bands between
+# 300 and 2000 Hz giving 32 bits per frame. The paper works at 5512.5 Hz; 5000 Hz keeps
+# 2000 Hz well inside the band and the frame an integer.
+#
+# The hop is 1/16 of a frame (23.2 ms) where the paper uses 1/32 (11.6 ms). The short-time
+# FFT is nearly all the cost and scales with the number of frames, and these gates must
+# stay a small fraction of decode + resample + encode. A coarser hop costs robustness
+# when two copies are out of step by a fraction of a hop (different trimming, say):
+# measured on espeak-ng speech with a 30 dB noise floor, half a hop out of step and then
+# MP3 coded scored 0.92 at this hop, 0.95 at the paper's and 0.87 at twice this one,
+# against a configured threshold of 0.85.
+FP_SAMPLE_RATE = 5000
+FP_FRAME = 1850  # 0.37 s
+FP_HOP = 116  # 23.2 ms
+# Each frame is zero-padded to 1920 = 2^7 * 3 * 5 samples for its FFT: 1850 has the prime
+# factor 37, which made pocketfft 1.7 times slower per frame. Padding only samples the
+# same windowed spectrum on a finer grid; the bands keep their edges. Measured with the
+# test above on three sentences (30 dB noise floor, half a hop out of step, MP3): 0.923 to
+# 0.926 padded, 0.922 to 0.927 unpadded.
+FP_FFT = 1920
+FP_BAND_EDGES_HZ = np.geomspace(300.0, 2000.0, 34)
+# Band energies below this level relative to the clip's mean band energy are raised to
+# it, so frames of silence give the sub-fingerprint 0 whatever faint codec or
+# resampler residue they hold. An addition: the paper does not treat silence.
+FP_FLOOR_DB = -60.0
+# Frames per block of the short-time FFT: keeps the working set in cache without a
+# Python loop per frame (32, 64 and 128 were equally fast on 15 s clips, 256 slower).
+_FP_BLOCK_FRAMES = 64
+
+
+@functools.cache
+def _fp_bands() -> tuple[int, int, np.ndarray]:
+    """First FFT bin, last bin + 1, and each band's first bin relative to the first."""
+    import scipy.fft
+    freqs = scipy.fft.rfftfreq(FP_FFT, d=1.0 / FP_SAMPLE_RATE)
+    # Bin k belongs to band m when edge[m] <= f_k < edge[m + 1]; bands are contiguous.
+    starts = np.searchsorted(freqs, FP_BAND_EDGES_HZ, side="left")
+    return int(starts[0]), int(starts[-1]), starts[:-1] - starts[0]
+
+
+def _fp_band_energies(x: np.ndarray) -> np.ndarray:
+    """Frames x 33 band energies of a float32 5 kHz signal, computed block by block."""
+    import scipy.fft
+    first, last, band_starts = _fp_bands()
+    frames = np.lib.stride_tricks.sliding_window_view(x, FP_FRAME)[::FP_HOP]
+    window = periodic_hann(FP_FRAME)
+    # The spectrum is read as interleaved (re, im) float32 pairs: squaring them in place
+    # and summing each band's run of pairs with reduceat gives the band powers without a
+    # complex-magnitude temporary or a dense band matrix.
+    pair_starts = 2 * band_starts
+    out = np.empty((frames.shape[0], band_starts.size), dtype=np.float32)
+    # Windowed frames are written into one zero-padded buffer, which the FFT reads as
+    # is: no temporary per block and no padding copy inside the transform (a third of
+    # the cost, same numbers).
+    padded = np.zeros((_FP_BLOCK_FRAMES, FP_FFT), dtype=np.float32)
+    for start in range(0, frames.shape[0], _FP_BLOCK_FRAMES):
+        block = frames[start : start + _FP_BLOCK_FRAMES]
+        count = block.shape[0]
+        np.multiply(block, window, out=padded[:count, :FP_FRAME])
+        pairs = scipy.fft.rfft(padded[:count], axis=1).view(np.float32)[:, 2 * first : 2 * last]
+        np.square(pairs, out=pairs)
+        out[start : start + count] = np.add.reduceat(pairs, pair_starts, axis=1)
+    return out
+
+
+def fingerprint(samples: np.ndarray, *, sample_rate: int) -> np.ndarray:
+    """Haitsma-Kalker audio fingerprint: one 32-bit sub-fingerprint every 23.2 ms.
+
+    After J. Haitsma and T. Kalker, "A Highly Robust Audio Fingerprinting System",
+    ISMIR 2002. The clip is resampled (soxr) to 5000 Hz, cut into 0.37 s Hann frames
+    every 23.2 ms (the paper: 11.6 ms; see the note on ``FP_HOP``), and the energy of
+    33 log-spaced bands between 300 and 2000 Hz is measured in each. Bit m of frame n is 1 when the energy difference between bands m
+    and m + 1 grew since frame n - 1. Bit 31 (the most significant) belongs to the
+    lowest bands. Band energies are floored at 60 dB below the clip's mean so silence
+    gives 0 (an addition to the paper). Resampling, lossy coding and gain leave most
+    bits unchanged, which :func:`fingerprint_similarity` measures.
+
+    Parameters
+    ----------
+    samples : np.ndarray
+        Mono waveform.
+    sample_rate : int
+        Sample rate of ``samples`` in Hz; the result does not depend on it.
+
+    Returns
+    -------
+    np.ndarray
+        ``uint32`` array of sub-fingerprints, one per frame after the first; empty when
+        the clip is shorter than a frame and a hop (about 0.39 s).
+
+    Examples
+    --------
+    >>> t = np.arange(16000 * 2) / 16000
+    >>> fingerprint(np.sin(2 * np.pi * 440 * t) * t, sample_rate=16000).shape
+    (70,)
+    """
+    check_sample_rate(sample_rate)
+    x = mono_float(samples).astype(np.float32, copy=False)
+    if sample_rate != FP_SAMPLE_RATE and x.size:
+        x = soxr.resample(x, sample_rate, FP_SAMPLE_RATE)
+    if x.size < FP_FRAME + FP_HOP:
+        return np.zeros(0, dtype=np.uint32)
+    energy = _fp_band_energies(x)
+    mean = float(energy.mean(dtype=np.float64))
+    if mean > 0.0:
+        np.maximum(energy, np.float32(mean * 10.0 ** (FP_FLOOR_DB / 10.0)), out=energy)
+    across = energy[:, :-1] - energy[:, 1:]
+    bits = (across[1:] - across[:-1]) > 0.0
+    # Band 0's bit first, most significant first: four big-endian bytes per frame.
+    return np.packbits(bits, axis=1).view(">u4")[:, 0].astype(np.uint32)
+
+
+def encode_fingerprint(fp: np.ndarray) -> str:
+    """Fingerprint as base64 text of its little-endian uint32 bytes (for a string column).
+
+    Parameters
+    ----------
+    fp : np.ndarray
+        Sub-fingerprints as returned by :func:`fingerprint`.
+
+    Returns
+    -------
+    str
+        ASCII text, 4/3 of the byte size (about 230 characters per second of audio).
+
+    Examples
+    --------
+    >>> encode_fingerprint(np.array([1, 2**32 - 1], dtype=np.uint32))
+    'AQAAAP////8='
+    """
+    arr = np.asarray(fp)
+    if arr.ndim != 1 or (arr.size and not np.issubdtype(arr.dtype, np.integer)):
+        raise ParameterError(f"fp must be a 1-D integer array, got {arr.dtype} shape {arr.shape}")
+    if arr.size and (arr.min() < 0 or arr.max() > 0xFFFFFFFF):
+        raise ParameterError("fp holds values outside the uint32 range")
+    return base64.b64encode(arr.astype("<u4").tobytes()).decode("ascii")
+
+
+def decode_fingerprint(s: str) -> np.ndarray:
+    """Inverse of :func:`encode_fingerprint`: base64 text back to a ``uint32`` array.
+
+    Parameters
+    ----------
+    s : str
+        Text made by :func:`encode_fingerprint`.
+
+    Returns
+    -------
+    np.ndarray
+        ``uint32`` sub-fingerprints in native byte order.
+
+    Examples
+    --------
+    >>> decode_fingerprint('AQAAAP////8=').tolist()
+    [1, 4294967295]
+    """
+    try:
+        raw = base64.b64decode(s.encode("ascii"), validate=True)
+    except (ValueError, AttributeError, UnicodeEncodeError) as exc:
+        raise ParameterError(f"s={str(s)[:40]!r} is not base64 text: {exc}") from None
+    if len(raw) % 4:
+        raise ParameterError(f"s decodes to {len(raw)} bytes, not a multiple of 4")
+    return np.frombuffer(raw, dtype="<u4").astype(np.uint32)
+
+
+if hasattr(np, "bitwise_count"):
+    def _popcount(x: np.ndarray) -> np.ndarray:
+        return np.bitwise_count(x)
+else:  # numpy < 2.0
+    _BYTE_BITS = np.array([bin(i).count("1") for i in range(256)], dtype=np.uint8)
+
+    def _popcount(x: np.ndarray) -> np.ndarray:
+        b = np.ascontiguousarray(x, dtype=np.uint32).view(np.uint8).reshape(-1, 4)
+        return _BYTE_BITS[b].sum(axis=1, dtype=np.uint32).reshape(x.shape)
+
+
+DEFAULT_MAX_OFFSET_FRAMES = 8  # about 0.19 s: codec delay and edge trimming
+DEFAULT_MIN_OVERLAP_FRAMES = 32  # about 0.74 s of hops, two frame lengths
+
+
+def fingerprint_similarity(
+    a: np.ndarray,
+    b: np.ndarray,
+    *,
+    max_offset_frames: int = DEFAULT_MAX_OFFSET_FRAMES,
+    min_overlap_frames: int = DEFAULT_MIN_OVERLAP_FRAMES,
+) -> float:
+    """Best bit agreement (1 - bit error rate) of two fingerprints over small shifts.
+
+    ``b`` is shifted against ``a`` by every offset from ``-max_offset_frames`` to
+    ``+max_offset_frames`` (one frame is 23.2 ms) and the share of equal bits is taken
+    over the overlapping sub-fingerprints; the best offset wins. Positions where both
+    sub-fingerprints are 0 (silence in both, see :func:`fingerprint`) are left out:
+    shared silence is no evidence of shared content. Haitsma and Kalker (ISMIR 2002)
+    declare a match at a bit error rate below 0.35 over 256 sub-fingerprints (quoted
+    from memory). Measured here: copies after resampling, Vorbis or MP3 coding score
+    above 0.9; unrelated synthetic utterances 0.5 to 0.65; utterances that share their
+    last words, spoken by the same synthetic voice at the same time offset, up to 0.77.
+
+    Short overlaps: an offset counts only if it leaves at least
+    ``min(min_overlap_frames, len(a), len(b))`` comparable positions, so fingerprints
+    shorter than ``min_overlap_frames`` are compared where they overlap fully. When no
+    offset qualifies (for example an empty fingerprint) the result is 0.0. A clip that
+    is the start of a longer one scores as a duplicate; compare durations if that
+    matters.
+
+    Parameters
+    ----------
+    a, b : np.ndarray
+        ``uint32`` fingerprints from :func:`fingerprint`.
+    max_offset_frames : int
+        Largest shift tried, in sub-fingerprints.
+    min_overlap_frames : int
+        Fewest compared positions for an offset to count.
+
+    Returns
+    -------
+    float
+        Similarity in [0, 1]; 1.0 for identical fingerprints.
+
+    Examples
+    --------
+    >>> fp = np.random.default_rng(0).integers(1, 2**32, size=300, dtype=np.uint32)
+    >>> fingerprint_similarity(fp, fp[3:])  # b starts 3 frames into a
+    1.0
+    >>> round(fingerprint_similarity(fp, fp[::-1]), 1)  # unrelated bits agree half the time
+    0.5
+    """
+    if isinstance(max_offset_frames, bool) or not isinstance(max_offset_frames, (int, np.integer)) or max_offset_frames < 0:
+        raise ParameterError(f"max_offset_frames={max_offset_frames!r} must be an integer >= 0")
+    if isinstance(min_overlap_frames, bool) or not isinstance(min_overlap_frames, (int, np.integer)) or min_overlap_frames < 1:
+        raise ParameterError(f"min_overlap_frames={min_overlap_frames!r} must be an integer >= 1")
+    a = np.asarray(a, dtype=np.uint32)
+    b = np.asarray(b, dtype=np.uint32)
+    need = min(min_overlap_frames, a.size, b.size)
+    if need == 0:
+        return 0.0
+    # Every offset at once: row r pairs a[i] with b[i + r - max_offset_frames], read
+    # from b padded with zeros (a strided view, no copy). Padding pairs with a[i] where
+    # b has no frame; their share of the row sums (the bits of a[i], and a[i] != 0) is
+    # taken off again with prefix sums over a. One pass over a (2 K + 1) x len(a)
+    # matrix instead of a loop of small array operations per offset: well under half the
+    # time when the split stage verifies hundreds of candidate pairs. Integer counts, so
+    # the result equals the loop's exactly (a test keeps the loop as the reference).
+    k = max_offset_frames
+    padded = np.zeros(k + max(b.size, a.size) + k, np.uint32)
+    padded[k : k + b.size] = b
+    shifted = np.ndarray((2 * k + 1, a.size), dtype=np.uint32, buffer=padded, strides=(4, 4))
+    offsets = np.arange(-k, k + 1)
+    lo = np.minimum(np.maximum(0, -offsets), a.size)
+    hi = np.maximum(lo, np.minimum(a.size, b.size - offsets))
+    a_bits = np.concatenate([[0], np.cumsum(_popcount(a), dtype=np.int64)])
+    a_live = np.concatenate([[0], np.cumsum(a != 0, dtype=np.int64)])
+    errors = _popcount(shifted ^ a).sum(axis=1, dtype=np.int64) - (a_bits[-1] - (a_bits[hi] - a_bits[lo]))
+    n = np.count_nonzero(shifted | a, axis=1) - (a_live[-1] - (a_live[hi] - a_live[lo]))
+    usable = (hi - lo >= need) & (n >= need)
+    if not usable.any():
+        return 0.0
+    return max(0.0, float((1.0 - errors[usable] / (32.0 * n[usable])).max()))
+
+
+DEFAULT_MAX_CLIPS_PER_KEY = 64
+
+
+def find_near_duplicates(
+    fingerprints: Sequence[np.ndarray],
+    *,
+    min_similarity: float,
+    max_offset_frames: int = DEFAULT_MAX_OFFSET_FRAMES,
+    min_overlap_frames: int = DEFAULT_MIN_OVERLAP_FRAMES,
+    max_clips_per_key: int = DEFAULT_MAX_CLIPS_PER_KEY,
+    min_shared_keys: int = 2,
+) -> list[tuple[int, int, float]]:
+    """All pairs of clips whose fingerprints agree at or above ``min_similarity``.
+
+    As in Haitsma and Kalker (ISMIR 2002), candidates come from exact matches of
+    32-bit sub-fingerprints: every distinct non-zero sub-fingerprint of every clip goes
+    into a table keyed by its value, and two clips become a candidate pair when they
+    share at least ``min_shared_keys`` keys. Distorted copies keep many bit-exact
+    sub-fingerprints (over half of them after Vorbis or MP3 coding in the tests), while
+    a single shared key is mostly chance: among 100 unrelated synthetic utterances,
+    requiring two cut the candidate pairs from 292 to 66 (of 4950). Keys held by more than
+    ``max_clips_per_key`` clips (near-silence and other patterns common to much of a
+    corpus) are skipped, which bounds the pairs per key; 0, the silence pattern, is
+    never a key. Each candidate is then verified with :func:`fingerprint_similarity`.
+
+    Complexity: building and sorting the table is O(F log F) for F sub-fingerprints in
+    total (sorting is the only super-linear step). A key held by k clips yields
+    k (k - 1) / 2 pairs with k <= ``max_clips_per_key``, so there are at most
+    F * max_clips_per_key / 2 candidate entries: linear in F, and in practice far
+    fewer because unrelated clips rarely share a key. Each verification costs
+    O((2 * max_offset_frames + 1) * frames). Memory is that of the candidate entries.
+
+    A group of more than ``max_clips_per_key`` copies of one recording has all its keys
+    skipped and is not found here; exact copies are cheaper to find by content hash.
+
+    Parameters
+    ----------
+    fingerprints : Sequence[np.ndarray]
+        One fingerprint per clip (empty arrays allowed; they never match).
+    min_similarity : float
+        Threshold in (0, 1] on :func:`fingerprint_similarity`.
+    max_offset_frames, min_overlap_frames : int
+        Passed to :func:`fingerprint_similarity`.
+    max_clips_per_key : int
+        Keys shared by more clips than this generate no candidates.
+    min_shared_keys : int
+        Distinct shared keys a pair needs to be verified.
+
+    Returns
+    -------
+    list of (int, int, float)
+        ``(i, j, similarity)`` with ``i < j`` indices into ``fingerprints``, sorted by
+        ``i`` then ``j``.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> fps = [rng.integers(1, 2**32, size=200, dtype=np.uint32) for _ in range(3)]
+    >>> fps.append(fps[0].copy())
+    >>> find_near_duplicates(fps, min_similarity=0.85)
+    [(0, 3, 1.0)]
+    """
+    if not (isinstance(min_similarity, (int, float, np.floating)) and 0.0 < min_similarity <= 1.0):
+        raise ParameterError(f"min_similarity={min_similarity!r} must be in (0, 1]")
+    if isinstance(max_clips_per_key, bool) or not isinstance(max_clips_per_key, (int, np.integer)) or max_clips_per_key < 2:
+        raise ParameterError(f"max_clips_per_key={max_clips_per_key!r} must be an integer >= 2")
+    if isinstance(min_shared_keys, bool) or not isinstance(min_shared_keys, (int, np.integer)) or min_shared_keys < 1:
+        raise ParameterError(f"min_shared_keys={min_shared_keys!r} must be an integer >= 1")
+    fps = [np.asarray(fp, dtype=np.uint32) for fp in fingerprints]
+
+    keys_per_clip = [np.unique(fp[fp != 0]) for fp in fps]
+    sizes = np.array([k.size for k in keys_per_clip], dtype=np.int64)
+    if sizes.sum() == 0:
+        return []
+    keys = np.concatenate(keys_per_clip).astype(np.int64)
+    clips = np.repeat(np.arange(len(fps), dtype=np.int64), sizes)
+    order = np.lexsort((clips, keys))
+    keys, clips = keys[order], clips[order]
+    starts = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1]])
+    counts = np.diff(np.r_[starts, keys.size])
+
+    pair_codes = []
+    n_clips = np.int64(len(fps))
+    for size in np.unique(counts[(counts >= 2) & (counts <= max_clips_per_key)]):
+        # All groups of this size at once: rows of clip indices, ascending in each row.
+        group_starts = starts[counts == size]
+        members = clips[group_starts[:, None] + np.arange(size)]
+        left, right = np.triu_indices(int(size), k=1)
+        pair_codes.append((members[:, left] * n_clips + members[:, right]).ravel())
+    if not pair_codes:
+        return []
+    codes, shared = np.unique(np.concatenate(pair_codes), return_counts=True)
+    candidates = codes[shared >= min_shared_keys]
+
+    found = []
+    for code in candidates.tolist():
+        i, j = divmod(code, int(n_clips))
+        sim = fingerprint_similarity(
+            fps[i], fps[j], max_offset_frames=max_offset_frames, min_overlap_frames=min_overlap_frames
+        )
+        if sim >= min_similarity:
+            found.append((i, j, sim))
+    return found
+
