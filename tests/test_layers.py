@@ -112,7 +112,7 @@ def _copy(tmp_path: Path) -> Path:
     ("core/runner.py", "from pipeline.stages.split import run\n", "core imports pipeline.stages.split.run"),
     ("signal/vad.py", "def f():\n    from pipeline.text import normalise\n",
      "signal imports pipeline.text.normalise"),
-    ("text/g2p.py", "def f():\n    import pipeline.signal.loudness\n", "text imports pipeline.signal.loudness"),
+    ("text/pronounce.py", "def f():\n    import pipeline.signal.loudness\n", "text imports pipeline.signal.loudness"),
     ("stages/split.py", "from ..commands import validate\n", "stages imports pipeline.commands.validate"),
     ("core/cache.py", "import importlib\nimportlib.import_module('pipeline.stages.audio')\n",
      "core imports pipeline.stages.audio"),

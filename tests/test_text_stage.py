@@ -25,7 +25,9 @@ from pipeline.core.manifest import table_from_rows, validate_table
 from pipeline.core.schemas_io import load_schema
 from pipeline.core.stage import StageContext
 from pipeline.stages import text
-from pipeline.text.g2p import SOURCES, read_lexicon, strip_stress
+from pipeline.text.cmudict_index import strip_stress
+from pipeline.text.lexicon import read_lexicon
+from pipeline.text.pronounce import SOURCES
 
 REPO = Path(__file__).resolve().parent.parent
 
@@ -119,6 +121,14 @@ def test_english_rows_rejects_predicted_lexicon_and_cache(tmp_path: Path) -> Non
     assert result.run_stats["g2p_cache"] == {"enabled": True, "hits": 0, "misses": 2}
     assert result.metadata["g2p.pos_tagger"].startswith("rule-based")
     assert "g2p_en and nltk not imported" in result.metadata["g2p.neural"]
+    # The model is named by its checkpoint's content, never by where Loam's code lives.
+    # Reference: hashlib.sha256 of the installed package's checkpoint20.npz.
+    import importlib.util
+    spec = importlib.util.find_spec("g2p_en")
+    assert spec is not None and spec.submodule_search_locations
+    checkpoint = Path(next(iter(spec.submodule_search_locations))) / "checkpoint20.npz"
+    assert f"sha256={hashlib.sha256(checkpoint.read_bytes()).hexdigest()}" in result.metadata["g2p.neural"]
+    assert not any("pipeline" in result.metadata[k] for k in ("g2p.neural", "g2p.pos_tagger"))
 
     # A second run predicts nothing: every OOV word comes from the cache file.
     again, table_again = run_stage(tmp_path, ENGLISH, word_boundary="|")

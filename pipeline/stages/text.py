@@ -34,15 +34,11 @@ from pipeline.core.config import Config, TextConfig
 from pipeline.core.fsio import sha256_file, write_text_atomic
 from pipeline.core.manifest import table_from_rows
 from pipeline.core.stage import StageContext, StageResult, reject
-from pipeline.text.g2p import (
-    Pronouncer,
-    Pronunciation,
-    describe_characters,
-    grapheme_units,
-    neural_cache_name,
-    read_lexicon,
-)
+from pipeline.text.characters import describe_characters, grapheme_units
+from pipeline.text.lexicon import read_lexicon
+from pipeline.text.neural import neural_cache_name
 from pipeline.text.normalise import Normalised, load_abbreviations, normalise
+from pipeline.text.pronounce import Pronouncer, Pronunciation
 
 NAME = "text"
 INPUTS = ("ingest",)
