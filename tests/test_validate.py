@@ -694,17 +694,18 @@ def test_flac_header_parse_agrees_with_libsndfile(tmp_path: Path) -> None:
     import numpy as np
     import soundfile as sf
 
-    from pipeline.commands.validate import _flac_streaminfo, read_header
+    from pipeline.commands.validate import read_header
+    from pipeline.signal.declared import flac_streaminfo
 
     for rate, frames, channels in [(16000, 12345, 1), (44100, 1, 2), (96000, 300000, 6), (8000, 2**20 + 7, 1)]:
         path = tmp_path / f"{rate}_{frames}_{channels}.flac"
         sf.write(path, np.zeros((frames, channels), np.float32), rate, subtype="PCM_16")
         info = sf.info(path)
-        assert _flac_streaminfo(path.read_bytes()[:42]) == (info.samplerate, info.frames, info.channels)
+        assert flac_streaminfo(path.read_bytes()[:42]) == (info.samplerate, info.frames, info.channels)
         assert read_header(str(path)) == (rate, frames, channels)
     wav = tmp_path / "x.wav"
     sf.write(wav, np.zeros(100, np.float32), 22050)
-    assert _flac_streaminfo(wav.read_bytes()[:42]) is None
+    assert flac_streaminfo(wav.read_bytes()[:42]) is None
     assert read_header(str(wav)) == (22050, 100, 1)
     assert read_header(str(tmp_path / "missing.flac")) == "no such file"
 

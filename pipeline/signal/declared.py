@@ -11,6 +11,9 @@ MP3: libsndfile's frame count is exact only when the stream starts with a frame
 that records it (a Xing/Info or VBRI header); otherwise it is estimated from the
 file size and the first frame's bitrate, which a variable-bitrate file can miss
 either way, so a shortfall against it proves nothing.
+
+FLAC: the STREAMINFO block states the rate, channels and length, which
+``loam validate`` reads without opening the file with libsndfile.
 """
 
 from __future__ import annotations
@@ -145,3 +148,44 @@ def mp3_length_is_exact(fh: BinaryIO) -> bool:
         return False
     first = window[sync:sync + 200]
     return any(tag in first for tag in _MP3_LENGTH_TAGS)
+
+
+def flac_streaminfo(head: bytes) -> tuple[int, int, int] | None:
+    """(sample rate, frames, channels) from a FLAC file's first 42 bytes.
+
+    The FLAC format specification puts the mandatory STREAMINFO block first, right
+    after the "fLaC" marker and a 4-byte block header: bytes 10-17 of the block hold
+    the sample rate (20 bits), channels - 1 (3 bits), bits per sample - 1 (5 bits) and
+    the total samples (36 bits). Parsing those bytes is about ten times faster than a
+    libsndfile open, which is what validating 100,000 clips spends its time on.
+
+    Parameters
+    ----------
+    head : bytes
+        The file's first bytes (at least 42).
+
+    Returns
+    -------
+    (int, int, int) or None
+        Sample rate in Hz, frames and channels; None when ``head`` is not a FLAC
+        header with STREAMINFO first, or leaves the rate or length unknown (then ask
+        libsndfile).
+
+    Examples
+    --------
+    >>> info = (16000 << 44) | (0 << 41) | (15 << 36) | 12345  # mono, 16 bits, 12345 frames
+    >>> head = b"fLaC" + bytes([0, 0, 0, 34]) + bytes(10) + info.to_bytes(8, "big") + bytes(16)
+    >>> flac_streaminfo(head)
+    (16000, 12345, 1)
+    >>> flac_streaminfo(b"RIFF" + bytes(38)) is None
+    True
+    """
+    if len(head) < 42 or head[:4] != b"fLaC" or head[4] & 0x7F != 0:
+        return None
+    bits = int.from_bytes(head[18:26], "big")
+    rate = bits >> 44
+    channels = ((bits >> 41) & 0x7) + 1
+    frames = bits & ((1 << 36) - 1)
+    if rate == 0 or frames == 0:  # "unknown" in the specification: ask libsndfile
+        return None
+    return rate, frames, channels
