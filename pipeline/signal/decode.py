@@ -223,12 +223,19 @@ class Spool:
     named ``.loam-*.tmp`` (the runner clears such debris after a crash) and is deleted
     on ``close`` or when the ``with`` block ends.
 
-    Example
-    -------
-    >>> with Spool(folder="/tmp") as spool:  # doctest: +SKIP
-    ...     spool.append(np.ones(10, np.float32))
+    Parameters
+    ----------
+    folder : str or os.PathLike
+        Where the file is made (created when missing).
+    label : str
+        Part of the file name, for a reader of the folder.
+
+    Examples
+    --------
+    >>> with tempfile.TemporaryDirectory() as folder, Spool(folder=folder) as spool:
+    ...     spool.append(np.arange(10, dtype=np.float32))
     ...     spool.read(start=2, stop=5).tolist()
-    [1.0, 1.0, 1.0]
+    [2.0, 3.0, 4.0]
     """
 
     _ITEM = np.dtype("<f4")
