@@ -172,6 +172,11 @@ class SourceScan:
     energy_db: np.ndarray = field(default_factory=lambda: np.zeros(0))
     bandwidth_hz: float | None = None
 
+    @property
+    def clipped_fraction(self) -> float:
+        """The share of the samples counted that reach the clip level."""
+        return self.clipped / self.counted if self.counted else 0.0
+
 
 def scan_source(path: str, *, cfg: AudioConfig, spool: Spool, sample_rate: int) -> SourceScan:
     """Decode ``path`` once, block by block, filling ``spool`` with the output-rate mono.
@@ -337,40 +342,92 @@ def _length_is_exact(path: str, container: str) -> bool:
 def _cut_and_write(job: AudioJob, scan: SourceScan, spool: Spool, *, declared_frames: int | None = None) -> FileOutcome:
     """Reject, or cut and write the clips of, a scanned source; ``declared_frames`` is the
     header's frame count when a shorter decode means the file was cut short."""
-    cfg, row = job.config, job.row
-    rel, source_id = row["source_path"], row["source_id"]
+    rejected = _source_reject(job, scan, declared_frames=declared_frames)
+    if rejected is not None:
+        return FileOutcome(rejects=[rejected])
+    speech = _find_speech(job, scan)
+    if isinstance(speech, dict):
+        return FileOutcome(rejects=[speech])
+    outcome = FileOutcome()
+    shared = _shared_fields(job, scan)
+    for index, (span, clip_id) in enumerate(speech.plan):
+        samples = speech.samples(span)
+        clip = spool.read(start=samples[0], stop=samples[1])
+        made = _write_clip(job, clip, _placed(speech, shared, index=index, span=span, clip_id=clip_id,
+                                              samples=samples, clip_len=len(clip)))
+        if isinstance(made, ClipRejected):
+            outcome.rejects.append(made.row)
+        else:
+            outcome.rows.append(made.row)
+            outcome.written[made.row["audio_path"]] = made.stat
+    return outcome
+
+
+def _source_reject(job: AudioJob, scan: SourceScan, *, declared_frames: int | None) -> dict[str, Any] | None:
+    """The reject of a whole source for damaged samples, a cut-short file, heavy
+    clipping or too little audio; None when the source may be cut into clips."""
+    cfg, rel = job.config, job.row["source_path"]
     if scan.bad_sample_at is not None:
         at, value = scan.bad_sample_at, scan.bad_sample
         when = f"frame {at} (at {at / scan.sample_rate:.3f} s)"
         if not math.isfinite(value):
-            return FileOutcome(rejects=[reject(NAME, rel, "non_finite_samples",
-                                               f"{rel}: {when} holds a NaN or infinite sample ({value}); "
-                                               "expected finite samples")])
-        return FileOutcome(rejects=[reject(NAME, rel, "out_of_range_samples",
-                                           f"{rel}: {when} holds the sample value {value:.6g}; expected "
-                                           f"magnitudes up to {MAX_SAMPLE_MAGNITUDE:g} (full scale is 1.0), "
-                                           "so the file is damaged rather than loud")])
+            return reject(NAME, rel, "non_finite_samples",
+                          f"{rel}: {when} holds a NaN or infinite sample ({value}); expected finite samples")
+        return reject(NAME, rel, "out_of_range_samples",
+                      f"{rel}: {when} holds the sample value {value:.6g}; expected "
+                      f"magnitudes up to {MAX_SAMPLE_MAGNITUDE:g} (full scale is 1.0), "
+                      "so the file is damaged rather than loud")
     if declared_frames is not None and scan.frames < declared_frames:
-        return FileOutcome(rejects=[reject(NAME, rel, "truncated",
-                                           f"{rel}: the header declares {declared_frames} frames but "
-                                           f"only {scan.frames} could be decoded; expected the whole "
-                                           "recording (the file was probably cut short)")])
-    clipped_fraction = scan.clipped / scan.counted if scan.counted else 0.0
+        return reject(NAME, rel, "truncated",
+                      f"{rel}: the header declares {declared_frames} frames but "
+                      f"only {scan.frames} could be decoded; expected the whole "
+                      "recording (the file was probably cut short)")
     # Mild clipping (above audio.max_clipped_fraction) is a quality gate of the split
     # stage, which flags the clip and by default keeps its transcript; only audio too
     # clipped to be speech any more is rejected here.
-    if clipped_fraction > cfg.unusable_clipped_fraction:
-        return FileOutcome(rejects=[reject(NAME, rel, "clipped",
-                                           f"{rel}: {100 * clipped_fraction:.3f}% of samples reach |x| >= "
-                                           f"{cfg.clip_level} (audio.clip_level); at most "
-                                           f"{100 * cfg.unusable_clipped_fraction:.3f}% expected of usable audio "
-                                           "(audio.unusable_clipped_fraction)")])
-    rate = cfg.sample_rate
-    if scan.out_samples / rate < cfg.min_duration_s:
+    if scan.clipped_fraction > cfg.unusable_clipped_fraction:
+        return reject(NAME, rel, "clipped",
+                      f"{rel}: {100 * scan.clipped_fraction:.3f}% of samples reach |x| >= "
+                      f"{cfg.clip_level} (audio.clip_level); at most "
+                      f"{100 * cfg.unusable_clipped_fraction:.3f}% expected of usable audio "
+                      "(audio.unusable_clipped_fraction)")
+    if scan.out_samples / cfg.sample_rate < cfg.min_duration_s:
         # No clip can come out of it, so say so rather than judging its speech.
-        return FileOutcome(rejects=[reject(NAME, rel, "too_short",
-                                           f"{rel} lasts {scan.out_samples / rate:.2f} s; at least "
-                                           f"{cfg.min_duration_s} s expected (audio.min_duration_s)")])
+        return reject(NAME, rel, "too_short",
+                      f"{rel} lasts {scan.out_samples / cfg.sample_rate:.2f} s; at least "
+                      f"{cfg.min_duration_s} s expected (audio.min_duration_s)")
+    return None
+
+
+@dataclass(frozen=True)
+class SpeechPlan:
+    """Where a source's speech is, and the clips it is cut into.
+
+    ``plan`` holds one ``((first frame, stop frame), clip_id)`` per clip; frames are
+    VAD frames of ``frame_ms``, ``speech`` the smoothed frame decisions.
+    """
+
+    speech: np.ndarray
+    ratio: float
+    plan: list[tuple[tuple[int, int], str]]
+    frame_ms: int
+    sample_rate: int
+    out_samples: int
+
+    def samples(self, span: tuple[int, int]) -> tuple[int, int]:
+        """A frame span as output-rate samples; the last frame runs to the end of the stream."""
+        start = _frame_to_sample(span[0], frame_ms=self.frame_ms, sample_rate=self.sample_rate)
+        stop = (self.out_samples if span[1] >= len(self.speech) else
+                min(self.out_samples, _frame_to_sample(span[1], frame_ms=self.frame_ms,
+                                                       sample_rate=self.sample_rate)))
+        return start, stop
+
+
+def _find_speech(job: AudioJob, scan: SourceScan) -> SpeechPlan | dict[str, Any]:
+    """Smooth and trim the VAD frames and plan the clips: one, or pieces cut at pauses
+    of an untranscribed span longer than ``audio.max_clip_s``; else a reject row."""
+    cfg, row = job.config, job.row
+    rel, source_id = row["source_path"], row["source_id"]
     frame_ms = cfg.vad_frame_ms
     speech = smooth_decisions(scan.decisions, frame_ms=frame_ms, min_speech_ms=cfg.min_speech_ms,
                               min_pause_ms=cfg.min_pause_ms, hangover_ms=cfg.hangover_ms)
@@ -378,102 +435,94 @@ def _cut_and_write(job: AudioJob, scan: SourceScan, spool: Spool, *, declared_fr
     ratio = float(np.count_nonzero(speech)) / n_frames if n_frames else 0.0
     region = trim_frames(speech, pad_frames=ms_to_frames(cfg.pad_ms, frame_ms=frame_ms))
     if region is None or ratio < cfg.min_speech_ratio:
-        return FileOutcome(rejects=[reject(NAME, rel, "no_speech",
-                                           f"{rel}: voice activity in {100 * ratio:.1f}% of "
-                                           f"{_plural(n_frames, f'{frame_ms} ms frame')}; at least "
-                                           f"{100 * cfg.min_speech_ratio:.1f}% expected (audio.min_speech_ratio)")])
+        return reject(NAME, rel, "no_speech",
+                      f"{rel}: voice activity in {100 * ratio:.1f}% of "
+                      f"{_plural(n_frames, f'{frame_ms} ms frame')}; at least "
+                      f"{100 * cfg.min_speech_ratio:.1f}% expected (audio.min_speech_ratio)")
+    found = SpeechPlan(speech, ratio, [(region, source_id)], frame_ms, cfg.sample_rate, scan.out_samples)
+    r0, r1 = found.samples(region)
+    span_s = (r1 - r0) / cfg.sample_rate
+    if span_s <= cfg.max_clip_s:
+        return found
+    if row["transcript"] is not None:
+        return reject(NAME, rel, "too_long_transcribed",
+                      f"{rel}: speech spans {span_s:.1f} s, longer than "
+                      f"audio.max_clip_s ({cfg.max_clip_s} s); a transcribed file is "
+                      "not cut, as its transcript cannot be split with it")
+    spans = split_frames(speech, scan.energy_db, frame_ms=frame_ms, segment_min_s=cfg.segment_min_s,
+                         segment_max_s=cfg.segment_max_s, pad_ms=cfg.pad_ms, start=region[0], stop=region[1])
+    plan = [(span, segment_id(source_id, start_ms=span[0] * frame_ms)) for span in spans]
+    return SpeechPlan(speech, ratio, plan, frame_ms, cfg.sample_rate, scan.out_samples)
 
 
-    def to_samples(span: tuple[int, int]) -> tuple[int, int]:
-        start = _frame_to_sample(span[0], frame_ms=frame_ms, sample_rate=rate)
-        stop = (scan.out_samples if span[1] >= n_frames else
-                min(scan.out_samples, _frame_to_sample(span[1], frame_ms=frame_ms, sample_rate=rate)))
-        return start, stop
-
-    r0, r1 = to_samples(region)
-    transcribed = row["transcript"] is not None
-    if (r1 - r0) / rate <= cfg.max_clip_s:
-        plan = [(region, source_id)]
-    elif transcribed:
-        return FileOutcome(rejects=[reject(NAME, rel, "too_long_transcribed",
-                                           f"{rel}: speech spans {(r1 - r0) / rate:.1f} s, longer than "
-                                           f"audio.max_clip_s ({cfg.max_clip_s} s); a transcribed file is "
-                                           "not cut, as its transcript cannot be split with it")])
-    else:
-        spans = split_frames(speech, scan.energy_db, frame_ms=frame_ms, segment_min_s=cfg.segment_min_s,
-                             segment_max_s=cfg.segment_max_s, pad_ms=cfg.pad_ms,
-                             start=region[0], stop=region[1])
-        plan = [(span, segment_id(source_id, start_ms=span[0] * frame_ms)) for span in spans]
-
-    shared = {
-        "source_id": source_id,
-        "source_path": rel,
+def _shared_fields(job: AudioJob, scan: SourceScan) -> dict[str, Any]:
+    """The manifest fields every clip of a source shares."""
+    row, rate = job.row, job.config.sample_rate
+    return {
+        "source_id": row["source_id"],
+        "source_path": row["source_path"],
         "speaker": row["speaker"],
         "sample_rate": rate,
         "source_sample_rate": scan.sample_rate,
         "upsampled_from": scan.sample_rate if scan.sample_rate < rate else None,
-        "clipped_fraction": clipped_fraction,
+        "clipped_fraction": scan.clipped_fraction,
         "dc_offset": scan.dc_sum / scan.frames if scan.frames else 0.0,
         "bandwidth_hz": scan.bandwidth_hz,
-        "transcribed": transcribed,
+        "transcribed": row["transcript"] is not None,
     }
-    outcome = FileOutcome()
-    for index, (span, clip_id) in enumerate(plan):
-        start, stop = to_samples(span)
-        clip = spool.read(start=start, stop=stop)
-        clip_ratio = ratio if len(plan) == 1 else float(np.count_nonzero(speech[span[0]:span[1]])) / (span[1] - span[0])
-        placed = {
-            **shared,
-            "clip_id": clip_id,
-            "segment_index": index,
-            "source_start_s": start / rate,
-            "source_end_s": stop / rate,
-            "speech_s": min(speech_seconds(speech, frame_ms=frame_ms, start=span[0], stop=span[1]),
-                            len(clip) / rate),
-            "speech_ratio": clip_ratio,
-        }
-        made = _write_clip(job, clip, placed)
-        if "reason" in made:
-            outcome.rejects.append(made)
-        else:
-            outcome.rows.append(made["row"])
-            outcome.written[made["row"]["audio_path"]] = made["stat"]
-    return outcome
 
 
-def _write_clip(job: AudioJob, clip: np.ndarray, placed: dict[str, Any]) -> dict[str, Any]:
-    """Gate, normalise, encode and write one clip; a reject row or {"row", "stat"}."""
-    import soundfile as sf
+def _placed(speech: SpeechPlan, shared: dict[str, Any], *, index: int, span: tuple[int, int], clip_id: str,
+            samples: tuple[int, int], clip_len: int) -> dict[str, Any]:
+    """The fields that place one clip in its source: id, position and speech measures."""
+    rate, frame_ms = speech.sample_rate, speech.frame_ms
+    start, stop = samples
+    ratio = (speech.ratio if len(speech.plan) == 1 else
+             float(np.count_nonzero(speech.speech[span[0]:span[1]])) / (span[1] - span[0]))
+    return {
+        **shared,
+        "clip_id": clip_id,
+        "segment_index": index,
+        "source_start_s": start / rate,
+        "source_end_s": stop / rate,
+        "speech_s": min(speech_seconds(speech.speech, frame_ms=frame_ms, start=span[0], stop=span[1]),
+                        clip_len / rate),
+        "speech_ratio": ratio,
+    }
 
+
+@dataclass(frozen=True)
+class ClipWritten:
+    """A clip written to OUT: its manifest row and ``[size, mtime_ns, inode]`` of the file."""
+
+    row: dict[str, Any]
+    stat: list[int]
+
+
+@dataclass(frozen=True)
+class ClipRejected:
+    """A clip set aside: its reject row."""
+
+    row: dict[str, Any]
+
+
+def _write_clip(job: AudioJob, clip: np.ndarray, placed: dict[str, Any]) -> ClipWritten | ClipRejected:
+    """Gate, normalise, encode and write one clip."""
+    rejected = _clip_reject(job.config, clip, placed)
+    if rejected is not None:
+        return ClipRejected(rejected)
     from pipeline.signal import loudness
-    from pipeline.signal.fingerprint import encode_fingerprint, fingerprint
-    from pipeline.signal.snr import wada_snr_db
 
-    cfg = job.config
-    rate = cfg.sample_rate
-    rel, clip_id = placed["source_path"], placed["clip_id"]
-    duration = len(clip) / rate
-    where = f"{rel}: clip {clip_id}" if clip_id != placed["source_id"] else rel
-    if duration < cfg.min_duration_s:
-        return reject(NAME, rel, "too_short", f"{where} lasts {duration:.2f} s after trimming; at least "
-                      f"{cfg.min_duration_s} s expected (audio.min_duration_s)", clip_id)
-    if placed["speech_ratio"] < cfg.min_speech_ratio:
-        return reject(NAME, rel, "no_speech", f"{where}: voice activity in {100 * placed['speech_ratio']:.1f}% "
-                      f"of its frames; at least {100 * cfg.min_speech_ratio:.1f}% expected "
-                      "(audio.min_speech_ratio)", clip_id)
-
-    def peak_of(samples: np.ndarray) -> float:
-        if cfg.true_peak:
-            return loudness.true_peak_dbfs(samples, sample_rate=rate)
-        return loudness.sample_peak_dbfs(samples)
-
+    cfg, rate = job.config, job.config.sample_rate
     loudness_in = loudness.integrated_loudness(clip, sample_rate=rate)
     if not math.isfinite(loudness_in):
-        return reject(NAME, rel, "loudness_unmeasurable",
-                      f"{where}: integrated loudness (ITU-R BS.1770-4) is not measurable: every 400 ms "
-                      "block is below the -70 LUFS absolute gate; expected audible sound", clip_id)
+        rel, clip_id = placed["source_path"], placed["clip_id"]
+        return ClipRejected(reject(NAME, rel, "loudness_unmeasurable",
+                                   f"{_where(placed)}: integrated loudness (ITU-R BS.1770-4) is not measurable: "
+                                   "every 400 ms block is below the -70 LUFS absolute gate; expected audible "
+                                   "sound", clip_id))
     gain_db, shortfall_db = loudness.normalisation_gain(
-        loudness_lufs=loudness_in, peak_dbfs=peak_of(clip), target_lufs=cfg.target_lufs,
+        loudness_lufs=loudness_in, peak_dbfs=_peak_dbfs(clip, cfg), target_lufs=cfg.target_lufs,
         ceiling_dbfs=cfg.peak_ceiling_dbfs)
     # A sample-peak ceiling is also enforced on the integers, which rounding could
     # otherwise lift by half a step; a true-peak ceiling only needs full scale kept.
@@ -486,15 +535,7 @@ def _write_clip(job: AudioJob, clip: np.ndarray, placed: dict[str, Any]) -> dict
     # measured input plus the gain (16-bit rounding adds < 0.01 LU; the tests re-measure
     # written files). Measuring again would cost as much as the first measurement.
     loudness_out = loudness_in + gain_db if gain_db >= 0 else loudness.integrated_loudness(written, sample_rate=rate)
-
-    audio_path = f"{AUDIO_DIR}/{placed['speaker']}/{clip_id}.{cfg.format}"
-    target = Path(job.out) / audio_path
-    # Encoded in memory, so the hash is taken from the bytes rather than a re-read.
-    encoded = io.BytesIO()
-    sf.write(encoded, pcm, rate, format=OUTPUT_FORMATS[cfg.format], subtype="PCM_16")
-    data = encoded.getvalue()
-    write_bytes_atomic(target, data)
-    st = os.stat(target)
+    audio_path, data, stat = _encode_and_write(job, pcm, placed)
     row = {
         **placed,
         "audio_path": audio_path,
@@ -506,12 +547,67 @@ def _write_clip(job: AudioJob, clip: np.ndarray, placed: dict[str, Any]) -> dict
         "gain_db": gain_db,
         "peak_limited_db": max(0.0, shortfall_db),
         # The sample peak of the integers is exact and cheaper than of their float copy.
-        "peak_dbfs": peak_of(written) if cfg.true_peak else _pcm16_peak_dbfs(pcm),
-        "snr_db": _finite_or_none(wada_snr_db(clip)) if cfg.quality_measures else None,
-        "fingerprint": (encode_fingerprint(fingerprint(written, sample_rate=rate))
-                        if cfg.quality_measures else ""),
+        "peak_dbfs": _peak_dbfs(written, cfg) if cfg.true_peak else _pcm16_peak_dbfs(pcm),
+        **_quality_measures(cfg, clip, written),
     }
-    return {"row": row, "stat": [st.st_size, st.st_mtime_ns, st.st_ino]}
+    return ClipWritten(row, stat)
+
+
+def _where(placed: dict[str, Any]) -> str:
+    """How a message names a clip: the source alone when the clip is the whole source."""
+    rel, clip_id = placed["source_path"], placed["clip_id"]
+    return f"{rel}: clip {clip_id}" if clip_id != placed["source_id"] else rel
+
+
+def _clip_reject(cfg: AudioConfig, clip: np.ndarray, placed: dict[str, Any]) -> dict[str, Any] | None:
+    """The reject of a clip too short or with too little speech; None when it may be written."""
+    rel, clip_id, where = placed["source_path"], placed["clip_id"], _where(placed)
+    duration = len(clip) / cfg.sample_rate
+    if duration < cfg.min_duration_s:
+        return reject(NAME, rel, "too_short", f"{where} lasts {duration:.2f} s after trimming; at least "
+                      f"{cfg.min_duration_s} s expected (audio.min_duration_s)", clip_id)
+    if placed["speech_ratio"] < cfg.min_speech_ratio:
+        return reject(NAME, rel, "no_speech", f"{where}: voice activity in {100 * placed['speech_ratio']:.1f}% "
+                      f"of its frames; at least {100 * cfg.min_speech_ratio:.1f}% expected "
+                      "(audio.min_speech_ratio)", clip_id)
+    return None
+
+
+def _peak_dbfs(samples: np.ndarray, cfg: AudioConfig) -> float:
+    """The peak the ceiling applies to: true peak or sample peak, as configured."""
+    from pipeline.signal import loudness
+
+    if cfg.true_peak:
+        return loudness.true_peak_dbfs(samples, sample_rate=cfg.sample_rate)
+    return loudness.sample_peak_dbfs(samples)
+
+
+def _quality_measures(cfg: AudioConfig, clip: np.ndarray, written: np.ndarray) -> dict[str, Any]:
+    """SNR of the clip as cut and fingerprint of the clip as written (when measured)."""
+    from pipeline.signal.fingerprint import encode_fingerprint, fingerprint
+    from pipeline.signal.snr import wada_snr_db
+
+    if not cfg.quality_measures:
+        return {"snr_db": None, "fingerprint": ""}
+    return {"snr_db": _finite_or_none(wada_snr_db(clip)),
+            "fingerprint": encode_fingerprint(fingerprint(written, sample_rate=cfg.sample_rate))}
+
+
+def _encode_and_write(job: AudioJob, pcm: np.ndarray, placed: dict[str, Any]) -> tuple[str, bytes, list[int]]:
+    """Encode 16-bit samples and write them atomically under OUT/audio/<speaker>/;
+    the path from OUT, the bytes and ``[size, mtime_ns, inode]`` of the file."""
+    import soundfile as sf
+
+    cfg = job.config
+    audio_path = f"{AUDIO_DIR}/{placed['speaker']}/{placed['clip_id']}.{cfg.format}"
+    target = Path(job.out) / audio_path
+    # Encoded in memory, so the hash is taken from the bytes rather than a re-read.
+    encoded = io.BytesIO()
+    sf.write(encoded, pcm, cfg.sample_rate, format=OUTPUT_FORMATS[cfg.format], subtype="PCM_16")
+    data = encoded.getvalue()
+    write_bytes_atomic(target, data)
+    st = os.stat(target)
+    return audio_path, data, [st.st_size, st.st_mtime_ns, st.st_ino]
 
 
 def written_files(out: Path, table: Any) -> list[str]:
