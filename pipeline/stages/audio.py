@@ -25,6 +25,7 @@ import io
 import math
 import os
 from collections import Counter
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -37,6 +38,7 @@ from pipeline.core.config import AudioConfig
 from pipeline.core.errors import ParameterError
 from pipeline.core.fsio import remove_stale_temporaries, sha256_bytes, write_bytes_atomic
 from pipeline.core.manifest import ManifestBuilder
+from pipeline.core.names import stage_manifest
 from pipeline.core.parallel import each_result
 from pipeline.core.stage import StageContext, StageResult, reject
 from pipeline.signal.decode import (
@@ -693,6 +695,54 @@ def _cache_key(row: dict[str, Any], section: dict[str, Any], code: str) -> str:
                      row["speaker"], row["transcript"] is not None)
 
 
+def _reuse_cached(cache: FileCache, keys: list[str], *, out: Path,
+                  take: Callable[[int, FileOutcome], None]) -> list[int]:
+    """Hand every cached outcome whose files are intact to ``take(i, outcome)``; the
+    indices of the sources left to condition."""
+    todo: list[int] = []
+    for i, key in enumerate(keys):
+        hit = cache.get(key)
+        if hit is not None and _outputs_intact(out, hit):
+            take(i, FileOutcome.from_json(hit))
+        else:
+            todo.append(i)
+    return todo
+
+
+def _clean_up(ctx: StageContext, out: Path, table: Any) -> int:
+    """Remove clip files no row names and spool debris; how many clip files went."""
+    removed = remove_orphans(out / AUDIO_DIR, set(table.column("audio_path").to_pylist()), base=out)
+    if removed:
+        ctx.log.info("audio: removed %s no current row refers to", _plural(removed, "clip file"))
+    # A worker stopped mid-file (the neighbour of a crash) leaves its spool file behind;
+    # no worker runs any more, so whatever is left is debris.
+    remove_stale_temporaries(out / TMP_DIR)
+    with contextlib.suppress(OSError):
+        (out / TMP_DIR).rmdir()
+    return removed
+
+
+def _summary(table: Any, rejects: list[dict[str, Any]], *, sources: int) -> dict[str, Any]:
+    """Counts of the audio manifest and rejects for the report."""
+    import pyarrow.compute as pc  # here: the workers never need it
+
+    source_ids = table.column("source_id")
+    segmented = pc.not_equal(table.column("clip_id"), source_ids)
+    upsampled = pc.is_valid(table.column("upsampled_from"))
+    return {
+        "sources": sources,
+        "sources_with_clips": pc.count_distinct(source_ids).as_py(),
+        "sources_segmented": pc.count_distinct(pc.filter(source_ids, segmented)).as_py(),
+        "clips": table.num_rows,
+        # Summed in clip order in Python, as before the rows became columns.
+        "hours": sum(table.column("duration_s").to_pylist()) / 3600,
+        "upsampled_sources": pc.count_distinct(pc.filter(source_ids, upsampled)).as_py(),
+        "peak_limited_clips": len(pc.filter(source_ids, pc.greater(table.column("peak_limited_db"), 0.0))),
+        "rejects": len(rejects),
+        "rejects_by_reason": dict(sorted(Counter(r["reason"] for r in rejects).items())),
+    }
+
+
 def run(ctx: StageContext) -> StageResult:
     """Condition every ingest row (cached per file), then drop clip files no row names.
 
@@ -718,13 +768,7 @@ def run(ctx: StageContext) -> StageResult:
         if outcome.rejects:
             rejects_at[i] = outcome.rejects
 
-    todo: list[int] = []
-    for i, key in enumerate(keys):
-        hit = cache.get(key)
-        if hit is not None and _outputs_intact(out, hit):
-            take(i, FileOutcome.from_json(hit))
-        else:
-            todo.append(i)
+    todo = _reuse_cached(cache, keys, out=out, take=take)
     jobs = [AudioJob(sources[i], str(raw / sources[i]["source_path"]), str(out), str(out / TMP_DIR), cfg)
             for i in todo]
     if jobs:
@@ -745,34 +789,10 @@ def run(ctx: StageContext) -> StageResult:
 
     table = builder.table(sort_by="clip_id")
     rejects = [r for i in sorted(rejects_at) for r in rejects_at[i]]
-    removed = remove_orphans(out / AUDIO_DIR, set(table.column("audio_path").to_pylist()), base=out)
-    if removed:
-        ctx.log.info("audio: removed %s no current row refers to", _plural(removed, "clip file"))
-    # A worker stopped mid-file (the neighbour of a crash) leaves its spool file behind;
-    # no worker runs any more, so whatever is left is debris.
-    remove_stale_temporaries(out / TMP_DIR)
-    with contextlib.suppress(OSError):
-        (out / TMP_DIR).rmdir()
-
-    import pyarrow.compute as pc  # here: the workers never need it
-
-    source_ids = table.column("source_id")
-    segmented = pc.not_equal(table.column("clip_id"), source_ids)
-    upsampled = pc.is_valid(table.column("upsampled_from"))
-    summary = {
-        "sources": len(sources),
-        "sources_with_clips": pc.count_distinct(source_ids).as_py(),
-        "sources_segmented": pc.count_distinct(pc.filter(source_ids, segmented)).as_py(),
-        "clips": table.num_rows,
-        # Summed in clip order in Python, as before the rows became columns.
-        "hours": sum(table.column("duration_s").to_pylist()) / 3600,
-        "upsampled_sources": pc.count_distinct(pc.filter(source_ids, upsampled)).as_py(),
-        "peak_limited_clips": len(pc.filter(source_ids, pc.greater(table.column("peak_limited_db"), 0.0))),
-        "rejects": len(rejects),
-        "rejects_by_reason": dict(sorted(Counter(r["reason"] for r in rejects).items())),
-    }
+    removed = _clean_up(ctx, out, table)
+    summary = _summary(table, rejects, sources=len(sources))
     # These depend on what earlier runs left in the cache and under audio/: the log's.
     run_stats = {"sources_processed": len(todo), "sources_reused": len(sources) - len(todo),
                  "orphans_removed": removed}
-    return StageResult(manifests={f"stages/{NAME}.parquet": (NAME, table)}, rejects=rejects, summary=summary,
+    return StageResult(manifests={stage_manifest(NAME): (NAME, table)}, rejects=rejects, summary=summary,
                        run_stats=run_stats)
