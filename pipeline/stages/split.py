@@ -30,7 +30,7 @@ import math
 import re
 from collections import Counter, defaultdict
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -40,6 +40,15 @@ import pyarrow as pa
 from pipeline.core.config import Config, parse_duration_s
 from pipeline.core.errors import DataError, UsageError
 from pipeline.core.manifest import table_from_rows, validate_table
+from pipeline.core.names import (
+    FLAGS,
+    HELDOUT,
+    LABELLED,
+    SUBSETS,
+    UNLABELLED,
+    stage_manifest,
+    subset_manifest,
+)
 from pipeline.core.stage import StageContext, StageResult, reject
 from pipeline.signal.fingerprint import decode_fingerprint, find_near_duplicates
 from pipeline.stages import gates
@@ -65,15 +74,13 @@ def extra_inputs(ctx: StageContext) -> list[Path]:
 def reuse_note(summary: dict[str, Any]) -> str:
     return "split changes: none (audio, text, config and ledger unchanged since the last run)"
 MAIN_MANIFEST = "manifests/labelled.parquet"
-SUBSETS = ("labelled", "unlabelled", "heldout")
-SUBSET_PATHS = {s: f"manifests/{s}.parquet" for s in SUBSETS}
+SUBSET_PATHS = {s: subset_manifest(s) for s in SUBSETS}
 # The audio stage reports the gain it could not apply because of the peak ceiling;
 # below 0.05 dB the shortfall is inaudible. Common practice, no source.
 PEAK_LIMITED_MIN_DB = 0.05
-# Flags in the order of schemas/subset.schema.json.
-FLAG_ORDER = ("upsampled", "peak_limited", "noisy", "narrowband", "rate_outlier", "clipped", "near_duplicate",
-              "transcript_rejected", "heldout_untranscribed")
-GATES = ("noisy", "narrowband", "rate_outlier", "clipped", "near_duplicate")
+# The flags counted per gate in the summary: the gates of pipeline.stages.gates, and
+# near-duplicates, which bind groups rather than gate clips.
+GATES = (*gates.GATES, "near_duplicate")
 
 _SHARE = re.compile(r"^([0-9]+(?:\.[0-9]+)?)%$")
 
@@ -226,21 +233,23 @@ def match_tiers(old: Sequence[str], new: Sequence[str], *, seconds: Mapping[str,
 # Clips
 # ---------------------------------------------------------------------------------------
 
-@dataclass
+@dataclass(frozen=True)
 class Clip:
-    """One audio row joined with its transcript, and what the stage finds out about it."""
+    """One audio row joined with its transcript, and what the stage found out about it.
+
+    Built once, by :func:`build_clips`, when every measure is known.
+    """
 
     audio: dict[str, Any]
     text: dict[str, Any] | None
-    base_group: str = ""
-    group: str = ""
-    flags: set[str] = field(default_factory=set)
-    plain_phones: tuple[str, ...] = ()
-    speaking_rate: float | None = None
-    rate_z: float | None = None
-    near_duplicate_of: str | None = None
-    eligible: bool = False
-    rejected: bool = False
+    base_group: str
+    group: str
+    flags: frozenset[str]
+    plain_phones: tuple[str, ...]
+    speaking_rate: float | None
+    rate_z: float | None
+    near_duplicate_of: str | None
+    eligible: bool
 
     @property
     def clip_id(self) -> str:
@@ -263,36 +272,52 @@ def _finite(value: Any) -> float | None:
     return None if value is None or not math.isfinite(value) else float(value)
 
 
-def load_clips(audio: pa.Table, text: pa.Table, *, word_boundary: str) -> tuple[list[Clip], list[np.ndarray], int]:
-    """Audio rows joined with text rows, sorted by clip_id; also the decoded fingerprints.
+@dataclass(frozen=True)
+class Joined:
+    """Audio rows sorted by clip_id, each with its transcript row (or None) and its
+    decoded fingerprint; ``orphans`` counts the text rows whose clip has no audio row
+    (their audio was rejected upstream)."""
 
-    Returns the clips, one fingerprint per clip, and the number of text rows whose
-    clip has no audio row (their audio was rejected upstream).
-    """
+    audio: list[dict[str, Any]]
+    text: list[dict[str, Any] | None]
+    fingerprints: list[np.ndarray]
+    orphans: int
+
+
+def join_rows(audio: pa.Table, text: pa.Table) -> Joined:
+    """Join the audio and text stages' rows by clip_id; DataError for a clip listed twice."""
     audio = audio.sort_by("clip_id")
     fingerprints = [decode_fingerprint(s) for s in audio.column("fingerprint").to_pylist()]
     rows = audio.drop_columns(["fingerprint"]).to_pylist()
     texts: dict[str, dict[str, Any]] = {}
     for t in text.to_pylist():
         if t["clip_id"] in texts:
-            raise DataError(f"stages/text.parquet: clip {t['clip_id']} has two transcript rows; expected one")
+            raise DataError(f"{stage_manifest('text')}: clip {t['clip_id']} has two transcript rows; expected one")
         texts[t["clip_id"]] = t
-    clips = []
     for prev, row in zip([None, *rows], rows, strict=False):
         if prev is not None and prev["clip_id"] == row["clip_id"]:
-            raise DataError(f"stages/audio.parquet: clip {row['clip_id']} has two rows; expected one")
-        clip = Clip(audio=row, text=texts.get(row["clip_id"]))
-        if clip.text is not None:
-            clip.plain_phones = tuple(p for p in clip.text["phones"] if p != word_boundary or not word_boundary)
-        elif row["transcribed"]:
-            clip.flags.add("transcript_rejected")
-        if row["upsampled_from"] is not None:
-            clip.flags.add("upsampled")
-        if row["peak_limited_db"] > PEAK_LIMITED_MIN_DB:
-            clip.flags.add("peak_limited")
-        clips.append(clip)
-    orphans = len(set(texts) - {c.clip_id for c in clips})
-    return clips, fingerprints, orphans
+            raise DataError(f"{stage_manifest('audio')}: clip {row['clip_id']} has two rows; expected one")
+    orphans = len(set(texts) - {row["clip_id"] for row in rows})
+    return Joined(rows, [texts.get(row["clip_id"]) for row in rows], fingerprints, orphans)
+
+
+def plain_phones(text: dict[str, Any] | None, *, word_boundary: str) -> tuple[str, ...]:
+    """The transcript's phones without word boundaries (none without a transcript)."""
+    if text is None:
+        return ()
+    return tuple(p for p in text["phones"] if p != word_boundary or not word_boundary)
+
+
+def row_flags(audio: dict[str, Any], text: dict[str, Any] | None) -> set[str]:
+    """The flags a clip's own rows decide: upsampled, peak limited, transcript rejected."""
+    flags = set()
+    if text is None and audio["transcribed"]:
+        flags.add("transcript_rejected")
+    if audio["upsampled_from"] is not None:
+        flags.add("upsampled")
+    if audio["peak_limited_db"] > PEAK_LIMITED_MIN_DB:
+        flags.add("peak_limited")
+    return flags
 
 
 @dataclass(frozen=True)
@@ -303,20 +328,21 @@ class DuplicatePair:
     identical: bool
 
 
-def find_duplicates(clips: Sequence[Clip], fingerprints: Sequence[np.ndarray], *, min_similarity: float) -> list[DuplicatePair]:
+def find_duplicates(rows: Sequence[Mapping[str, Any]], fingerprints: Sequence[np.ndarray], *,
+                    min_similarity: float) -> tuple[list[DuplicatePair], dict[int, str]]:
     """Near-duplicate pairs by fingerprint plus byte-identical pairs by audio_sha256.
 
     Identical clips are paired with the first (smallest id) of their kind, which is
-    enough to bind them and to name the best match of each. Sets ``near_duplicate``
-    flags and ``near_duplicate_of`` (the partner with the highest similarity, ties
-    to the smaller clip id).
+    enough to bind them and to name the best match of each. Also returns, for every
+    clip in a pair, its best partner's clip_id (highest similarity, ties to the smaller
+    clip id): the clips to flag ``near_duplicate``.
     """
     best: dict[tuple[int, int], DuplicatePair] = {}
     for i, j, sim in find_near_duplicates(fingerprints, min_similarity=min_similarity):
         best[(i, j)] = DuplicatePair(i, j, float(sim), False)
     by_hash: dict[str, list[int]] = defaultdict(list)
-    for k, c in enumerate(clips):
-        by_hash[c.audio["audio_sha256"]].append(k)
+    for k, row in enumerate(rows):
+        by_hash[row["audio_sha256"]].append(k)
     for members in by_hash.values():
         for j in members[1:]:
             best[(members[0], j)] = DuplicatePair(members[0], j, 1.0, True)
@@ -324,18 +350,27 @@ def find_duplicates(clips: Sequence[Clip], fingerprints: Sequence[np.ndarray], *
     partner: dict[int, tuple[float, str]] = {}
     for p in pairs:
         for me, other in ((p.first, p.second), (p.second, p.first)):
-            mine = (-p.similarity, clips[other].clip_id)
+            mine = (-p.similarity, rows[other]["clip_id"])
             if me not in partner or mine < partner[me]:
                 partner[me] = mine
-    for k, (_neg, other_id) in partner.items():
-        clips[k].flags.add("near_duplicate")
-        clips[k].near_duplicate_of = other_id
-    return pairs
+    return pairs, {k: other_id for k, (_neg, other_id) in partner.items()}
 
 
-def apply_gates(clips: Sequence[Clip], *, min_snr_db: float, min_bandwidth_hz: float, rate_max_abs_z: float,
-                rate_min_clips: int, actions: Mapping[str, str], rate_min_spread: float = 0.0,
-                max_clipped_fraction: float = 1.0) -> None:
+@dataclass(frozen=True)
+class GateMeasures:
+    """Per clip: speaking rate, its robust z-score, the gates that flagged it, and
+    whether it is eligible for labelled and held-out scoring."""
+
+    speaking_rate: list[float | None]
+    rate_z: list[float | None]
+    flags: list[set[str]]
+    eligible: list[bool]
+
+
+def measure_gates(rows: Sequence[Mapping[str, Any]], phones: Sequence[tuple[str, ...]],
+                  transcribed: Sequence[bool], *, min_snr_db: float, min_bandwidth_hz: float,
+                  rate_max_abs_z: float, rate_min_clips: int, actions: Mapping[str, str],
+                  rate_min_spread: float = 0.0, max_clipped_fraction: float = 1.0) -> GateMeasures:
     """Speaking rate and its robust z-score per speaker, the gate flags, and eligibility.
 
     ``speaking_rate`` is phones (word boundaries left out) per second of speech;
@@ -346,24 +381,48 @@ def apply_gates(clips: Sequence[Clip], *, min_snr_db: float, min_bandwidth_hz: f
     for labelled and held-out scoring when it has a transcript and no gate whose
     action (``actions``, gate to "flag", "demote" or "reject") holds it back flagged it.
     """
-    for c in clips:
-        speech_s = float(c.audio["speech_s"])
-        if c.transcribed and speech_s > 0:
-            c.speaking_rate = len(c.plain_phones) / speech_s
-    rates = np.array([np.nan if c.speaking_rate is None else c.speaking_rate for c in clips], dtype=np.float64)
-    speakers = np.array([c.speaker for c in clips], dtype=object)
+    speaking = [len(p) / float(r["speech_s"]) if t and float(r["speech_s"]) > 0 else None
+                for r, p, t in zip(rows, phones, transcribed, strict=True)]
+    rates = np.array([np.nan if s is None else s for s in speaking], dtype=np.float64)
+    speakers = np.array([r["speaker"] for r in rows], dtype=object)
     z = (gates.robust_z_scores(rates, speakers, min_group_size=rate_min_clips, min_mad_fraction=rate_min_spread)
-         if clips else np.zeros(0))
+         if rows else np.zeros(0))
     flags = gates.gate_flags(
-        snr_db=[np.nan if c.audio["snr_db"] is None else c.audio["snr_db"] for c in clips],
-        bandwidth_hz=[np.nan if c.audio["bandwidth_hz"] is None else c.audio["bandwidth_hz"] for c in clips],
-        rate_z=z, clipped_fraction=[c.audio["clipped_fraction"] for c in clips], min_snr_db=min_snr_db,
+        snr_db=[np.nan if r["snr_db"] is None else r["snr_db"] for r in rows],
+        bandwidth_hz=[np.nan if r["bandwidth_hz"] is None else r["bandwidth_hz"] for r in rows],
+        rate_z=z, clipped_fraction=[r["clipped_fraction"] for r in rows], min_snr_db=min_snr_db,
         min_bandwidth_hz=min_bandwidth_hz, rate_max_abs_z=rate_max_abs_z, max_clipped_fraction=max_clipped_fraction)
     held = gates.held_back(flags, actions=actions)
-    for k, c in enumerate(clips):
-        c.rate_z = _finite(z[k])
-        c.flags.update(g for g in gates.GATES if flags[g][k])
-        c.eligible = c.transcribed and not held[k]
+    return GateMeasures(
+        speaking_rate=speaking,
+        rate_z=[_finite(z[k]) for k in range(len(rows))],
+        flags=[{g for g in gates.GATES if flags[g][k]} for k in range(len(rows))],
+        eligible=[bool(t and not held[k]) for k, t in enumerate(transcribed)])
+
+
+def build_clips(joined: Joined, cfg: Config) -> tuple[list[Clip], list[DuplicatePair]]:
+    """Every joined row as a Clip: groups bound by duplicates, gate measures and flags.
+
+    Returns the clips in clip_id order and the duplicate pairs (indices into them).
+    """
+    qc, group_by = cfg.quality, cfg.split.group_by
+    rows, texts = joined.audio, joined.text
+    phones = [plain_phones(t, word_boundary=cfg.text.word_boundary) for t in texts]
+    pairs, partners = find_duplicates(rows, joined.fingerprints, min_similarity=qc.near_duplicate_min_similarity)
+    base = [{"speaker": r["speaker"], "recording": r["source_id"], "clip": r["clip_id"]}[group_by] for r in rows]
+    merged = merge_groups(base, [(p.first, p.second) for p in pairs])
+    measured = measure_gates(rows, phones, [t is not None for t in texts], min_snr_db=qc.min_snr_db,
+                             min_bandwidth_hz=qc.min_bandwidth_hz, rate_max_abs_z=qc.rate_max_abs_z,
+                             rate_min_clips=qc.rate_min_clips, rate_min_spread=qc.rate_min_spread,
+                             actions=qc.gate_actions, max_clipped_fraction=cfg.audio.max_clipped_fraction)
+    clips = []
+    for k, (row, text) in enumerate(zip(rows, texts, strict=True)):
+        flags = row_flags(row, text) | measured.flags[k] | ({"near_duplicate"} if k in partners else set())
+        clips.append(Clip(audio=row, text=text, base_group=base[k], group=merged[k], flags=frozenset(flags),
+                          plain_phones=phones[k], speaking_rate=measured.speaking_rate[k],
+                          rate_z=measured.rate_z[k], near_duplicate_of=partners.get(k),
+                          eligible=measured.eligible[k]))
+    return clips, pairs
 
 
 # ---------------------------------------------------------------------------------------
@@ -416,7 +475,7 @@ def _known_sides(groups: Mapping[str, list[Clip]], ledger: Ledger | None) -> tup
         return {}, []
     fixed: dict[str, set[str]] = {}
     for g, members in groups.items():
-        sides = {"heldout" if ledger.clips[c.clip_id].subset == "heldout" else "training"
+        sides = {"heldout" if ledger.clips[c.clip_id].subset == HELDOUT else "training"
                  for c in members if c.clip_id in ledger.clips}
         if not sides:
             ids = {g} | {c.base_group for c in members}
@@ -427,37 +486,53 @@ def _known_sides(groups: Mapping[str, list[Clip]], ledger: Ledger | None) -> tup
     return fixed, straddling
 
 
-def assign(clips: Sequence[Clip], *, ledger: Ledger | None, seed: int, target_s: float,
-           budgets: list[tuple[str, float]], method: str) -> Assignment:
-    """Sides for groups, subsets for clips, tiers for labelled clips (see the module docstring)."""
-    groups: dict[str, list[Clip]] = defaultdict(list)
-    for c in clips:
-        groups[c.group].append(c)
+def _goes_heldout(c: Clip, side: str, known: Mapping[str, ClipRecord]) -> bool:
+    """Whether a clip is held out: as the ledger recorded it, else as its group's side."""
+    rec = known.get(c.clip_id)
+    return rec.subset == HELDOUT if rec is not None else side == HELDOUT
+
+
+def _choose_sides(groups: Mapping[str, list[Clip]], ledger: Ledger | None, *, seed: int,
+                  target_s: float) -> tuple[dict[str, str], list[str]]:
+    """Each group's side ("heldout" or "training"): the ledger's where it fixes one, else
+    chosen in ranking order until the held-out target is met; also the straddling groups."""
     known = ledger.clips if ledger is not None else {}
     fixed, straddling = _known_sides(groups, ledger)
-
-    def goes_heldout(c: Clip, side: str) -> bool:
-        rec = known.get(c.clip_id)
-        return rec.subset == "heldout" if rec is not None else side == "heldout"
-
     heldout_s = 0.0
     training_groups = 0
     sides: dict[str, str] = {}
     for g, side_set in fixed.items():
         # A group whose known clips sit on both sides takes its new clips to held-out:
         # a copy of a held-out clip must not be trained on.
-        side = "heldout" if "heldout" in side_set else "training"
+        side = HELDOUT if HELDOUT in side_set else "training"
         sides[g] = side
         eligible = [c for c in groups[g] if c.eligible]
-        heldout_s += math.fsum(c.duration_s for c in eligible if goes_heldout(c, side))
-        training_groups += any(not goes_heldout(c, side) for c in eligible)
+        heldout_s += math.fsum(c.duration_s for c in eligible if _goes_heldout(c, side, known))
+        training_groups += any(not _goes_heldout(c, side, known) for c in eligible)
     undecided = {g: math.fsum(c.duration_s for c in members if c.eligible)
                  for g, members in groups.items() if g not in fixed}
     chosen = set(choose_heldout(undecided, seed=seed, target_s=target_s, heldout_s=heldout_s,
                                 training_groups=training_groups))
     for g in undecided:
-        sides[g] = "heldout" if g in chosen else "training"
+        sides[g] = HELDOUT if g in chosen else "training"
+    return sides, straddling
 
+
+@dataclass(frozen=True)
+class Sorted:
+    """Clips sorted by their past: the subset each gets before tiers are filled, the
+    transcribed training candidates, and the eligible ones by what the ledger says."""
+
+    subset: dict[str, str]
+    items: dict[str, Candidate]
+    labelled_before: list[str]
+    new: list[str]
+    reopened: list[str]
+    gated_out: int
+    lost_transcript: int
+
+
+def _sort_clips(clips: Sequence[Clip], sides: Mapping[str, str], known: Mapping[str, ClipRecord]) -> Sorted:
     subset: dict[str, str] = {}
     labelled_before: list[str] = []
     new: list[str] = []
@@ -466,13 +541,13 @@ def assign(clips: Sequence[Clip], *, ledger: Ledger | None, seed: int, target_s:
     lost_transcript = gated_out = 0
     for c in clips:
         rec = known.get(c.clip_id)
-        if goes_heldout(c, sides[c.group]):
-            subset[c.clip_id] = "heldout"
+        if _goes_heldout(c, sides[c.group], known):
+            subset[c.clip_id] = HELDOUT
             continue
-        subset[c.clip_id] = "unlabelled"
+        subset[c.clip_id] = UNLABELLED
         if c.transcribed:
             items[c.clip_id] = Candidate(c.clip_id, c.speaker, c.duration_s, c.plain_phones)
-        if rec is not None and rec.subset == "labelled":
+        if rec is not None and rec.subset == LABELLED:
             # A labelled clip needs a transcript and must pass the gates (loam validate
             # checks both), so one that lost either moves to unlabelled.
             if not c.transcribed:
@@ -483,7 +558,14 @@ def assign(clips: Sequence[Clip], *, ledger: Ledger | None, seed: int, target_s:
                 labelled_before.append(c.clip_id)
         elif c.eligible:
             (reopened if rec is not None else new).append(c.clip_id)
+    return Sorted(subset, items, labelled_before, new, reopened, gated_out, lost_transcript)
 
+
+def _tier_plans(budgets: list[tuple[str, float]], ledger: Ledger | None,
+                labelled_before: Sequence[str]) -> tuple[list[TierPlan], dict[str, str]]:
+    """One plan per configured budget, continuing the ledger tier it matches; also
+    which ledger tier each budget continues."""
+    known = ledger.clips if ledger is not None else {}
     old_budgets = ledger.budgets if ledger is not None else ()
     seconds = {b: parse_duration_s(b) for b in old_budgets} | dict(budgets)
     continues = match_tiers(old_budgets, [b for b, _ in budgets], seconds=seconds)
@@ -494,25 +576,38 @@ def assign(clips: Sequence[Clip], *, ledger: Ledger | None, seed: int, target_s:
         plans.append(TierPlan(name, budget_s, kept,
                               may_drop=old is not None and budget_s < seconds[old],
                               may_reopen=old is None or budget_s > seconds[old]))
-    outcomes = fill_tiers(plans, items=items, labelled_before=labelled_before, new=new, reopened=reopened,
-                          method=method, seed=seed)
+    return plans, continues
+
+
+def assign(clips: Sequence[Clip], *, ledger: Ledger | None, seed: int, target_s: float,
+           budgets: list[tuple[str, float]], method: str) -> Assignment:
+    """Sides for groups, subsets for clips, tiers for labelled clips (see the module docstring)."""
+    groups: dict[str, list[Clip]] = defaultdict(list)
+    for c in clips:
+        groups[c.group].append(c)
+    sides, straddling = _choose_sides(groups, ledger, seed=seed, target_s=target_s)
+    found = _sort_clips(clips, sides, ledger.clips if ledger is not None else {})
+    plans, continues = _tier_plans(budgets, ledger, found.labelled_before)
+    outcomes = fill_tiers(plans, items=found.items, labelled_before=found.labelled_before, new=found.new,
+                          reopened=found.reopened, method=method, seed=seed)
     tiers: dict[str, tuple[str, ...]] = {}
     for outcome in outcomes:
         for cid in outcome.clips:
             tiers[cid] = tiers.get(cid, ()) + (outcome.name,)
+    subset = dict(found.subset)
     for cid in tiers:
-        subset[cid] = "labelled"
-    labelled = set(tiers)
+        subset[cid] = LABELLED
     short = any(o.shortfall_s > 0 for o in outcomes)
-    waiting = sum(1 for cid in reopened if cid not in labelled) if short else 0
-    return Assignment(subset, tiers, sides, outcomes, straddling, continues, gated_out, waiting, lost_transcript)
+    waiting = sum(1 for cid in found.reopened if cid not in tiers) if short else 0
+    return Assignment(subset, tiers, sides, outcomes, straddling, continues, found.gated_out, waiting,
+                      found.lost_transcript)
 
 
 def _subset_row(c: Clip, subset: str, tiers: tuple[str, ...], *, keep_text: bool) -> dict[str, Any]:
     a = c.audio
     text = c.text if keep_text else None
     flags = set(c.flags)
-    if subset == "heldout" and not c.transcribed:
+    if subset == HELDOUT and not c.transcribed:
         flags.add("heldout_untranscribed")
     return {
         **{k: a[k] for k in ("clip_id", "speaker", "audio_path", "audio_sha256", "sample_rate", "num_samples",
@@ -530,7 +625,7 @@ def _subset_row(c: Clip, subset: str, tiers: tuple[str, ...], *, keep_text: bool
         "rate_z": c.rate_z,
         "near_duplicate_of": c.near_duplicate_of,
         "clipped_fraction": float(a["clipped_fraction"]),
-        "quality_flags": [f for f in FLAG_ORDER if f in flags],
+        "quality_flags": [f for f in FLAGS if f in flags],
     }
 
 
@@ -615,9 +710,9 @@ def _log_changes(ctx: StageContext, changes: dict[str, Any], ledger_path: str, u
                         "moved to unlabelled", changes["lost_transcript"])
 
 
-def _gate_rejects(clips: Sequence[Clip], cfg: Config) -> list[dict[str, Any]]:
+def _gate_rejects(clips: Sequence[Clip], cfg: Config) -> tuple[list[dict[str, Any]], list[Clip]]:
     """Set aside the clips that a gate whose action is "reject" flagged (the first such
-    gate names the reason), marking them ``rejected``; their reject rows."""
+    gate names the reason); their reject rows, and the clips kept."""
     qc = cfg.quality
     why = {
         "noisy": lambda c: (f"has an estimated SNR (WADA-SNR) of {c.audio['snr_db']:.1f} dB, below "
@@ -627,37 +722,21 @@ def _gate_rejects(clips: Sequence[Clip], cfg: Config) -> list[dict[str, Any]]:
                               f"{100 * cfg.audio.max_clipped_fraction:g}%"),
     }
     rejects = []
+    rejected: set[str] = set()
     for gate in gates.rejecting_gates(qc.gate_actions):
         for c in clips:
-            if gate in c.flags and not c.rejected:
-                c.rejected = True
+            if gate in c.flags and c.clip_id not in rejected:
+                rejected.add(c.clip_id)
                 path = c.audio["source_path"]
                 rejects.append(reject(NAME, path, gate, f"{path}: clip {c.clip_id} {why[gate](c)}; with "
                                       f'quality.{gate}_action = "reject" {gate} clips are set aside', c.clip_id))
-    return rejects
+    return rejects, [c for c in clips if c.clip_id not in rejected]
 
 
-def run(ctx: StageContext) -> StageResult:
-    cfg = ctx.config
-    sc, qc = cfg.split, cfg.quality
-    budgets = _budgets(sc.labelled_budgets)
-    clips, fingerprints, orphans = load_clips(ctx.inputs["audio"], ctx.inputs["text"],
-                                              word_boundary=cfg.text.word_boundary)
-
-    pairs = find_duplicates(clips, fingerprints, min_similarity=qc.near_duplicate_min_similarity)
-    del fingerprints
-    for c in clips:
-        c.base_group = {"speaker": c.speaker, "recording": c.audio["source_id"], "clip": c.clip_id}[sc.group_by]
-    merged = merge_groups([c.base_group for c in clips], [(p.first, p.second) for p in pairs])
-    for c, g in zip(clips, merged, strict=True):
-        c.group = g
-    apply_gates(clips, min_snr_db=qc.min_snr_db, min_bandwidth_hz=qc.min_bandwidth_hz,
-                rate_max_abs_z=qc.rate_max_abs_z, rate_min_clips=qc.rate_min_clips,
-                rate_min_spread=qc.rate_min_spread, actions=qc.gate_actions,
-                max_clipped_fraction=cfg.audio.max_clipped_fraction)
-    rejects = _gate_rejects(clips, cfg)
-    kept = [c for c in clips if not c.rejected]
-
+def _heldout_target(ctx: StageContext, kept: Sequence[Clip]) -> tuple[float, float]:
+    """The eligible transcribed seconds and the held-out target; DataError when a
+    held-out subset is wanted but fewer than two groups could share the audio."""
+    sc = ctx.config.split
     eligible_s = math.fsum(c.duration_s for c in kept if c.eligible)
     target_s = heldout_target_s(sc.heldout, transcribed_s=eligible_s)
     eligible_groups = sorted({c.group for c in kept if c.eligible})
@@ -665,7 +744,22 @@ def run(ctx: StageContext) -> StageResult:
         raise _too_few_groups(sc.group_by, eligible_groups)
     if not eligible_groups:
         ctx.log.warning("split: no clip has an eligible transcript; labelled and held-out are empty")
+    return eligible_s, target_s
 
+
+@dataclass(frozen=True)
+class LedgerUse:
+    """Where the ledger is, how it was found, whether --fresh ignores it, and what it holds."""
+
+    path: Path
+    where: str
+    fresh: bool
+    ledger: Ledger | None
+
+
+def _open_ledger(ctx: StageContext) -> LedgerUse:
+    """Find and read the split ledger (unless --fresh), warning when its settings differ."""
+    cfg = ctx.config
     ledger_path, where = locate_ledger(cfg, raw=ctx.raw, out=ctx.out)
     if where not in ("split.ledger", "beside the config file"):
         ctx.log.info("split ledger: %s (%s)", ledger_path, where)
@@ -674,27 +768,30 @@ def run(ctx: StageContext) -> StageResult:
     if fresh:
         ctx.log.info("split: --fresh: ignoring the ledger %s and assigning every clip anew", ledger_path)
     if ledger is not None:
-        for key, now in (("group_by", sc.group_by), ("seed", str(cfg.seed))):
+        for key, now in (("group_by", cfg.split.group_by), ("seed", str(cfg.seed))):
             if ledger.settings[key] != now:
                 ctx.log.warning("split: the ledger was written with %s=%s, the config says %s; earlier "
                                 "assignments are kept (--fresh assigns every clip anew)",
                                 key, ledger.settings[key], now)
+    return LedgerUse(ledger_path, where, fresh, ledger)
 
-    assignment = assign(kept, ledger=ledger, seed=cfg.seed, target_s=target_s, budgets=budgets,
-                        method=sc.selection)
 
-    by_subset: dict[str, list[Clip]] = {s: [] for s in SUBSETS}
-    for c in kept:
-        by_subset[assignment.subset[c.clip_id]].append(c)
+def _subset_tables(ctx: StageContext, by_subset: Mapping[str, list[Clip]],
+                   assignment: Assignment) -> dict[str, tuple[str, pa.Table]]:
+    """The subset manifests, checked against their schema before the ledger records them
+    (the runner writes them later)."""
     tables = {}
     for s in SUBSETS:
         rows = [_subset_row(c, s, assignment.tiers.get(c.clip_id, ()),
-                            keep_text=s != "unlabelled" or sc.keep_transcripts) for c in by_subset[s]]
-        tables[SUBSET_PATHS[s]] = ("subset", table_from_rows("subset", rows))
-    # Check the tables before the ledger records them; the runner writes them later.
+                            keep_text=s != UNLABELLED or ctx.config.split.keep_transcripts) for c in by_subset[s]]
+        tables[subset_manifest(s)] = ("subset", table_from_rows("subset", rows))
     for rel, (schema, table) in tables.items():
         validate_table(schema, table, where=str(ctx.out / rel))
+    return tables
 
+
+def _log_tiers(ctx: StageContext, assignment: Assignment, kept: Sequence[Clip]) -> list[dict[str, Any]]:
+    """Log the clips shrunk budgets dropped and the tiers short of their budget; the shortfalls."""
     durations = {c.clip_id: c.duration_s for c in kept}
     for outcome in assignment.outcomes:
         if outcome.dropped:
@@ -709,14 +806,38 @@ def run(ctx: StageContext) -> StageResult:
             ctx.log.warning("split: tier %s holds %.1f s, %.1f s short of its budget: the training groups "
                             "have no more eligible transcribed clips", outcome.name, outcome.total_s,
                             outcome.shortfall_s)
+    return shortfalls
+
+
+def run(ctx: StageContext) -> StageResult:
+    """Group, gate, hold out, fill the tiers and record the ledger (see the module docstring)."""
+    cfg = ctx.config
+    sc = cfg.split
+    budgets = _budgets(sc.labelled_budgets)
+    joined = join_rows(ctx.inputs["audio"], ctx.inputs["text"])
+    clips, pairs = build_clips(joined, cfg)
+    orphans = joined.orphans
+    del joined
+    rejects, kept = _gate_rejects(clips, cfg)
+    eligible_s, target_s = _heldout_target(ctx, kept)
+    use = _open_ledger(ctx)
+    ledger = use.ledger
+    assignment = assign(kept, ledger=ledger, seed=cfg.seed, target_s=target_s, budgets=budgets,
+                        method=sc.selection)
+
+    by_subset: dict[str, list[Clip]] = {s: [] for s in SUBSETS}
+    for c in kept:
+        by_subset[assignment.subset[c.clip_id]].append(c)
+    tables = _subset_tables(ctx, by_subset, assignment)
+    shortfalls = _log_tiers(ctx, assignment, kept)
 
     present = {c.clip_id for c in kept}
     new_ledger = _next_ledger(ledger, assignment, kept, cfg_settings={
         "group_by": sc.group_by, "seed": str(cfg.seed), "heldout": sc.heldout,
         "budgets": ",".join(b for b, _ in budgets) or "-", "selection": sc.selection})
-    write_ledger(ledger_path, new_ledger)
+    write_ledger(use.path, new_ledger)
     changes = _changes(ledger, assignment, present)
-    _log_changes(ctx, changes, str(ledger_path), ledger is not None)
+    _log_changes(ctx, changes, str(use.path), ledger is not None)
 
     summary = _summary(kept, clips, assignment, pairs, by_subset, target_s=target_s, eligible_s=eligible_s,
                        group_by=sc.group_by, orphans=orphans,
@@ -724,8 +845,8 @@ def run(ctx: StageContext) -> StageResult:
     summary["changes"] = changes
     summary["shortfalls"] = shortfalls
     # Inside OUT the path is given from OUT, so the summary does not change with where OUT is.
-    shown = ledger_path.relative_to(ctx.out) if ledger_path.is_relative_to(ctx.out) else ledger_path
-    summary["ledger"] = {"path": str(shown), "where": where, "read": ledger is not None, "fresh": fresh}
+    shown = use.path.relative_to(ctx.out) if use.path.is_relative_to(ctx.out) else use.path
+    summary["ledger"] = {"path": str(shown), "where": use.where, "read": ledger is not None, "fresh": use.fresh}
     return StageResult(manifests=tables, rejects=rejects, summary=summary)
 
 
@@ -746,9 +867,9 @@ def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment
              orphans: int, rejected: dict[str, int]) -> dict[str, Any]:
     inventory = set().union(*(set(c.plain_phones) for c in kept if c.transcribed)) if kept else set()
     subsets = {s: _describe(by_subset[s], inventory) for s in SUBSETS}
-    scored = [c for c in by_subset["heldout"] if c.eligible]
-    subsets["heldout"]["scored_clips"] = len(scored)
-    subsets["heldout"]["scored_hours"] = _hours(math.fsum(c.duration_s for c in scored))
+    scored = [c for c in by_subset[HELDOUT] if c.eligible]
+    subsets[HELDOUT]["scored_clips"] = len(scored)
+    subsets[HELDOUT]["scored_hours"] = _hours(math.fsum(c.duration_s for c in scored))
     by_id = {c.clip_id: c for c in kept}
     tiers = {}
     for outcome in assignment.outcomes:
@@ -759,7 +880,7 @@ def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment
     gate_counts = {g: sum(g in c.flags for c in clips) for g in GATES}
     gate_counts.update(rejected)
     notes = {f: sum(f in c.flags for c in kept) for f in ("upsampled", "peak_limited", "transcript_rejected")}
-    notes["heldout_untranscribed"] = sum(not c.transcribed for c in by_subset["heldout"])
+    notes["heldout_untranscribed"] = sum(not c.transcribed for c in by_subset[HELDOUT])
     notes["orphan_transcripts"] = orphans
     sides = Counter(assignment.sides[g] for g in {c.group for c in kept})
     return {
