@@ -27,6 +27,7 @@ from pipeline.core.fsio import sha256_file
 from pipeline.core.manifest import table_from_rows
 from pipeline.core.parallel import map_ordered
 from pipeline.core.stage import StageContext, StageResult, reject
+from pipeline.stages.paths import check_relative_path, is_inside
 from pipeline.stages.transcripts import (
     MetadataRow,
     collapse_rows,
@@ -156,33 +157,6 @@ def _truncation(job: ProbeJob, info: Any) -> str | None:
             "(the file was probably cut short)")
 
 
-def _inside(root: Path, candidate: Path) -> bool:
-    try:
-        candidate.resolve().relative_to(root.resolve())
-        return True
-    except (ValueError, OSError, RuntimeError):
-        return False
-
-
-def check_relative_path(raw: Path, text: str) -> tuple[str | None, str | None]:
-    """Normalise a path from metadata; returns (relative path, problem sentence).
-
-    Absolute paths, ``..`` that climbs out, and symlinks resolving outside RAW are
-    refused without opening anything.
-    """
-    cleaned = text.strip().replace("\\", "/")
-    if not cleaned:
-        return None, "the path is empty"
-    if cleaned.startswith("/") or re.match(r"^[A-Za-z]:/", cleaned):
-        return None, f"the path {cleaned!r} is absolute; expected a path relative to the raw folder"
-    norm = posixpath.normpath(cleaned)
-    if norm == ".." or norm.startswith("../"):
-        return None, f"the path {cleaned!r} leaves the raw folder"
-    if not _inside(raw, raw / norm):
-        return None, f"the path {cleaned!r} resolves outside the raw folder (a symbolic link)"
-    return norm, None
-
-
 def _storable(text: str) -> bool:
     """Whether ``text`` can be stored as UTF-8 (a name os.walk decoded with
     surrogateescape from bytes that are not UTF-8 cannot)."""
@@ -211,7 +185,7 @@ def scan(raw: Path, extensions: tuple[str, ...], sidecar_extension: str) -> tupl
         rel_folder = os.path.relpath(folder, raw)
         for d in dirs:
             full = Path(folder) / d
-            if full.is_symlink() and not _inside(root, full):
+            if full.is_symlink() and not is_inside(full, folder=root):
                 rel = _shown_path(posixpath.normpath(posixpath.join(rel_folder.replace(os.sep, "/"), d)))
                 rejects.append(reject(NAME, rel, "path_outside_root",
                                       f"{rel}: a symbolic link to a folder outside the raw folder; not followed"))
@@ -231,7 +205,7 @@ def scan(raw: Path, extensions: tuple[str, ...], sidecar_extension: str) -> tupl
     kept = []
     for rel in audio:
         full = raw / rel
-        if full.is_symlink() and not _inside(root, full):
+        if full.is_symlink() and not is_inside(full, folder=root):
             rejects.append(reject(NAME, rel, "path_outside_root",
                                   f"{rel}: a symbolic link to a file outside the raw folder; not opened"))
         else:

@@ -32,6 +32,7 @@ from pathlib import Path
 from pipeline.core.config import Config
 from pipeline.core.errors import UsageError
 from pipeline.core.fsio import write_text_atomic
+from pipeline.stages.paths import is_inside
 
 MAGIC = "# loam split ledger v1"
 SETTING_KEYS = ("group_by", "seed", "heldout", "budgets", "selection")
@@ -246,14 +247,6 @@ def write_ledger(path: Path, ledger: Ledger) -> None:
     write_text_atomic(path, format_ledger(ledger))
 
 
-def _inside(path: Path, root: Path) -> bool:
-    try:
-        path.resolve().relative_to(root.resolve())
-    except ValueError:
-        return False
-    return True
-
-
 def _has_config_file(config: Config) -> bool:
     # build_config and load_config name a missing file "<defaults>", "<config>" or "".
     source = config.source
@@ -282,7 +275,7 @@ def locate_ledger(config: Config, *, raw: Path, out: Path) -> tuple[Path, str]:
     """
     if config.split.ledger:
         path = config.resolve_path(config.split.ledger)
-        if _inside(path, raw):
+        if is_inside(path, folder=raw):
             raise UsageError(
                 f"{config.source or '<config>'}: key 'split.ledger' has value {config.split.ledger!r}, "
                 f"which resolves to {path}, inside RAW ({raw}); allowed: a path outside RAW, "
@@ -293,6 +286,6 @@ def locate_ledger(config: Config, *, raw: Path, out: Path) -> tuple[Path, str]:
         return out / "ledger.tsv", "no config file"
     source = Path(os.path.abspath(config.source))
     beside = source.parent / f"{source.stem}.ledger.tsv"
-    if _inside(beside, raw):
+    if is_inside(beside, folder=raw):
         return out / "ledger.tsv", "the default place beside the config file is inside RAW, which is never written to"
     return beside, "beside the config file"

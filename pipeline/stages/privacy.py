@@ -14,22 +14,15 @@ from pathlib import Path
 
 from pipeline.core.errors import UsageError
 from pipeline.core.fsio import write_text_atomic
+from pipeline.stages.paths import is_inside
 
 MIN_KEY_BYTES = 16
 PREFIX = "spk-"
 
 
-def _inside(path: Path, folder: Path) -> bool:
-    try:
-        path.resolve().relative_to(folder.resolve())
-        return True
-    except ValueError:
-        return False
-
-
 def load_key(path: Path, *, out: Path) -> bytes:
     """Read the secret key file; refuse a short key or one stored inside OUT."""
-    if _inside(path, out):
+    if is_inside(path, folder=out):
         raise UsageError(f"privacy.key_file {str(path)!r} lies inside OUT; keep the key outside what you share")
     try:
         key = path.read_bytes().strip()
@@ -51,7 +44,7 @@ def pseudonym(speaker: str, *, key: bytes) -> str:
 
 def write_mapping(path: Path, mapping: dict[str, str], *, out: Path) -> None:
     """Write ``speaker<TAB>pseudonym`` lines where the user asked, never inside OUT."""
-    if _inside(path, out):
+    if is_inside(path, folder=out):
         raise UsageError(f"privacy.mapping_file {str(path)!r} lies inside OUT; it would undo the pseudonyms")
     lines = ["speaker\tpseudonym"] + [f"{s}\t{p}" for s, p in sorted(mapping.items())]
     write_text_atomic(path, "\n".join(lines) + "\n")

@@ -21,6 +21,7 @@ from typing import Any
 
 from pipeline.core.errors import ConfigError, DataError
 from pipeline.core.stage import reject
+from pipeline.stages.paths import check_relative_path, is_inside
 
 STAGE = "ingest"
 UTF8_BOM = b"\xef\xbb\xbf"
@@ -148,8 +149,6 @@ def read_metadata_table(
     speaker still count) with ``transcript_problem`` set. ``origin(dotted key)`` says
     where a config value came from, for messages.
     """
-    from pipeline.stages.ingest import check_relative_path
-
     origin = origin or (lambda key: "the config")
     path, problem = check_relative_path(raw, table_rel)
     if problem or path is None:
@@ -210,10 +209,8 @@ def _row(fields: list[str], line: int, header: list[str], index: dict[str, int],
 
 def read_sidecar(raw: Path, rel: str, *, encoding: str) -> tuple[str | None, tuple[str, str, str] | None]:
     """The stripped text of the sidecar ``RAW/rel``, or (None, (reason, problem sentence, fix))."""
-    from pipeline.stages.ingest import _inside
-
     path = raw / rel
-    if not _inside(raw, path):
+    if not is_inside(path, folder=raw):
         return None, ("path_outside_root", f"{rel}: a symbolic link to a file outside the raw folder; not opened",
                       "put the transcript itself in the raw folder")
     try:
