@@ -25,6 +25,7 @@ from pipeline.core.cache import FileCache, cache_key
 from pipeline.core.codeversion import code_version
 from pipeline.core.fsio import sha256_file
 from pipeline.core.manifest import table_from_rows
+from pipeline.core.names import stage_manifest
 from pipeline.core.parallel import map_ordered
 from pipeline.core.stage import StageContext, StageResult, reject
 from pipeline.stages.paths import check_relative_path, is_inside
@@ -326,72 +327,97 @@ def _speaker(ctx: StageContext, rel: str, rows: list[MetadataRow], via: str) -> 
     return parts[cfg.speaker_path_level]
 
 
-def run(ctx: StageContext) -> StageResult:
-    cfg = ctx.config.ingest
-    raw = ctx.raw
-    paths, sidecars, rejects = scan(raw, cfg.extensions, cfg.sidecar_extension)
-    path_set = set(paths)
-    # Sidecars by the stem they transcribe (the extension matches in any case; the first
-    # in sorted order wins, so the choice never depends on walk order).
-    sidecar_by_stem: dict[str, str] = {}
+def _sidecars_by_stem(sidecars: set[str]) -> dict[str, str]:
+    """Sidecars by the stem they transcribe (the extension matches in any case; the first
+    in sorted order wins, so the choice never depends on walk order)."""
+    by_stem: dict[str, str] = {}
     for side in sorted(sidecars):
-        sidecar_by_stem.setdefault(side.rsplit(".", 1)[0], side)
-    table_rel = cfg.metadata
-    by_audio, metadata_rows, meta_rejects = _metadata_by_audio(ctx, path_set)
-    rejects.extend(meta_rejects)
+        by_stem.setdefault(side.rsplit(".", 1)[0], side)
+    return by_stem
 
-    probes = _probe_all(ctx, raw, paths)
-    accepted: list[dict[str, Any]] = []
-    first_by_hash: dict[str, str] = {}
-    for rel, probe in zip(paths, probes, strict=True):
-        rows = by_audio.get(rel, [])
-        lines = ", ".join(str(r.line) for r in rows)
-        via = f" (named on line {lines} of {table_rel})" if rows else ""
-        if "error" in probe:
-            reason, sentence = probe["error"]
-            rejects.append(reject(NAME, rel, reason, sentence + via))
-            continue
-        if probe["sha256"] in first_by_hash:
-            rejects.append(reject(NAME, rel, "duplicate_content",
-                                  f"{rel}: byte-identical to {first_by_hash[probe['sha256']]!r}, which is kept{via}"))
-            continue
-        first_by_hash[probe["sha256"]] = rel
-        rows, repeats = collapse_rows(rows, rel, table_rel)
-        rejects.extend(repeats)
-        speaker_name = _speaker(ctx, rel, rows, via)
-        if isinstance(speaker_name, dict):
-            rejects.append(speaker_name)
-            continue
-        pairing = pair_transcript(raw, rel, rows, sidecar_by_stem.get(posixpath.splitext(rel)[0]),
-                                  table_rel=table_rel, transcript_column=cfg.metadata_transcript_column,
-                                  encoding=cfg.transcript_encoding, speaker_from_metadata=cfg.speaker_from == "metadata")
-        rejects.extend(pairing.rejects)
-        accepted.append({
-            "source_id": source_id(posixpath.basename(posixpath.splitext(rel)[0]), probe["sha256"]),
-            "source_path": rel,
-            "speaker": speaker_id(speaker_name),
-            **probe,
-            "transcript": pairing.transcript,
-            "transcript_origin": pairing.origin,
-            "metadata_line": pairing.metadata_line,
-        })
 
-    if ctx.config.privacy.pseudonymise:
-        _pseudonymise(ctx, accepted)
-    accepted.sort(key=lambda r: r["source_path"])
-    audio_rejected = sum(1 for r in rejects if r["source_path"] in path_set)
-    summary = {
+@dataclass(frozen=True)
+class Fate:
+    """What one audio file became: its ingest row (None when set aside) and the rejects
+    it caused (its own, or its metadata rows' and transcript's)."""
+
+    row: dict[str, Any] | None
+    rejects: tuple[dict[str, Any], ...] = ()
+
+
+def _ingest_file(ctx: StageContext, rel: str, probe: dict[str, Any], rows: list[MetadataRow], *,
+                 kept_by_hash: dict[str, str], sidecar: str | None) -> Fate:
+    """One audio file's fate: probe error, duplicate content, no speaker, or an ingest
+    row with its transcript paired. ``kept_by_hash`` maps the hashes of the files kept
+    so far to their paths, and gains this one when it is kept."""
+    cfg, table_rel = ctx.config.ingest, ctx.config.ingest.metadata
+    lines = ", ".join(str(r.line) for r in rows)
+    via = f" (named on line {lines} of {table_rel})" if rows else ""
+    if "error" in probe:
+        reason, sentence = probe["error"]
+        return Fate(None, (reject(NAME, rel, reason, sentence + via),))
+    if probe["sha256"] in kept_by_hash:
+        return Fate(None, (reject(NAME, rel, "duplicate_content",
+                                  f"{rel}: byte-identical to {kept_by_hash[probe['sha256']]!r}, which is kept{via}"),))
+    kept_by_hash[probe["sha256"]] = rel
+    rows, repeats = collapse_rows(rows, rel, table_rel)
+    speaker_name = _speaker(ctx, rel, rows, via)
+    if isinstance(speaker_name, dict):
+        return Fate(None, (*repeats, speaker_name))
+    pairing = pair_transcript(ctx.raw, rel, rows, sidecar, table_rel=table_rel,
+                              transcript_column=cfg.metadata_transcript_column, encoding=cfg.transcript_encoding,
+                              speaker_from_metadata=cfg.speaker_from == "metadata")
+    return Fate({
+        "source_id": source_id(posixpath.basename(posixpath.splitext(rel)[0]), probe["sha256"]),
+        "source_path": rel,
+        "speaker": speaker_id(speaker_name),
+        **probe,
+        "transcript": pairing.transcript,
+        "transcript_origin": pairing.origin,
+        "metadata_line": pairing.metadata_line,
+    }, (*repeats, *pairing.rejects))
+
+
+def _summary(accepted: list[dict[str, Any]], rejects: list[dict[str, Any]], *, paths: set[str],
+             metadata_rows: int) -> dict[str, Any]:
+    """Counts of files, rows, transcripts and hours for the report."""
+    return {
         "audio_files_found": len(paths),
         "audio_files_accepted": len(accepted),
-        "audio_files_rejected": audio_rejected,
+        "audio_files_rejected": sum(1 for r in rejects if r["source_path"] in paths),
         "metadata_rows": metadata_rows,
         "transcribed": sum(1 for r in accepted if r["transcript"] is not None),
         "transcripts_set_aside": sum(1 for r in rejects if r["reason"] in TRANSCRIPT_REASONS),
         "hours": sum(r["duration_s"] for r in accepted) / 3600,
         "speakers": len({r["speaker"] for r in accepted}),
     }
-    return StageResult(manifests={"stages/ingest.parquet": ("ingest", table_from_rows("ingest", accepted))},
-                       rejects=rejects, summary=summary,
+
+
+def run(ctx: StageContext) -> StageResult:
+    """Scan RAW, read the metadata table, probe every audio file and follow each to an
+    ingest row or a reject (see the module docstring)."""
+    cfg = ctx.config.ingest
+    paths, sidecars, rejects = scan(ctx.raw, cfg.extensions, cfg.sidecar_extension)
+    path_set = set(paths)
+    sidecar_by_stem = _sidecars_by_stem(sidecars)
+    by_audio, metadata_rows, meta_rejects = _metadata_by_audio(ctx, path_set)
+    rejects.extend(meta_rejects)
+
+    probes = _probe_all(ctx, ctx.raw, paths)
+    accepted: list[dict[str, Any]] = []
+    kept_by_hash: dict[str, str] = {}
+    for rel, probe in zip(paths, probes, strict=True):
+        fate = _ingest_file(ctx, rel, probe, by_audio.get(rel, []), kept_by_hash=kept_by_hash,
+                            sidecar=sidecar_by_stem.get(posixpath.splitext(rel)[0]))
+        rejects.extend(fate.rejects)
+        if fate.row is not None:
+            accepted.append(fate.row)
+
+    if ctx.config.privacy.pseudonymise:
+        _pseudonymise(ctx, accepted)
+    accepted.sort(key=lambda r: r["source_path"])
+    return StageResult(manifests={stage_manifest(NAME): (NAME, table_from_rows(NAME, accepted))},
+                       rejects=rejects, summary=_summary(accepted, rejects, paths=path_set, metadata_rows=metadata_rows),
                        stop=environment_failure(rejects, paths=path_set, metadata_rows=metadata_rows,
                                                 accepted=len(accepted)))
 
