@@ -154,27 +154,39 @@ def coverage_order(
     heapq.heapify(heap)
     order: list[str] = []
     while heap and (stop is None or total < stop):
-        neg, cid, i, stamp = heapq.heappop(heap)
-        if stamp != step:  # a stale score is an upper bound: score again, put back
-            heapq.heappush(heap, (-scorer.rough(i), cid, i, step))
-            continue
-        near = [(neg, cid, i, stamp)]
-        while heap and -heap[0][0] >= -neg * (1.0 - _NEAR_TIE):
-            entry = heapq.heappop(heap)
-            if entry[3] != step:
-                heapq.heappush(heap, (-scorer.rough(entry[2]), entry[1], entry[2], step))
-            else:
-                near.append(entry)
-        if len(near) > 1:
-            near.sort(key=lambda e: (-scorer.exact(e[2]), e[1]))
-            for entry in near[1:]:
-                heapq.heappush(heap, entry)
-        i = near[0][2]
+        i = _pop_best(heap, scorer, step=step)
         order.append(items[i].clip_id)
         scorer.add(i)
         total += Fraction(items[i].duration_s)
         step += 1
     return order
+
+
+def _pop_best(heap: list[tuple[float, str, int, int]], scorer: _Scorer, *, step: int) -> int:
+    """Pop the candidate :func:`coverage_order` takes at ``step``; its index.
+
+    Heap entries are ``(-float score, clip_id, index, step scored at)``. A stale entry
+    (scored at an earlier step) is an upper bound: it is scored again and put back.
+    Every fresh entry within :data:`_NEAR_TIE` of the best is scored exactly; the exact
+    best wins (ties to the smaller clip_id) and the others go back.
+    """
+    while True:
+        neg, cid, i, stamp = heapq.heappop(heap)
+        if stamp == step:
+            break
+        heapq.heappush(heap, (-scorer.rough(i), cid, i, step))
+    near = [(neg, cid, i, stamp)]
+    while heap and -heap[0][0] >= -neg * (1.0 - _NEAR_TIE):
+        entry = heapq.heappop(heap)
+        if entry[3] != step:
+            heapq.heappush(heap, (-scorer.rough(entry[2]), entry[1], entry[2], step))
+        else:
+            near.append(entry)
+    if len(near) > 1:
+        near.sort(key=lambda e: (-scorer.exact(e[2]), e[1]))
+        for entry in near[1:]:
+            heapq.heappush(heap, entry)
+    return near[0][2]
 
 
 class _Scorer:
@@ -399,39 +411,55 @@ def fill_tiers(
         if b.budget_s < a.budget_s:
             raise ParameterError(f"plans must ascend by budget_s; {b.name} ({b.budget_s}) follows {a.name} ({a.budget_s})")
     durations = {cid: c.duration_s for cid, c in items.items()}
-    members: list[str] = []
+    pools = _Pools(labelled_before=sorted(set(labelled_before)), new=set(new), reopened=set(reopened))
+    members: tuple[str, ...] = ()
     outcomes: list[TierOutcome] = []
     for plan in plans:
-        prev = list(members)
-        inside = set(prev)
-        budget = Fraction(plan.budget_s)  # totals are exact, as in coverage_order
-        kept = [items[c] for c in sorted(plan.kept) if c not in inside]
-        if plan.may_drop:  # only a drop needs to know which kept clips came last
-            kept_ids = selection_order(kept, method=method, budget_s=plan.budget_s,
-                                       chosen=[items[c] for c in prev], seed=seed, stop_s=math.inf)
-        else:
-            kept_ids = [c.clip_id for c in kept]
-        base = prev + kept_ids
-        dropped: list[str] = []
-        if plan.may_drop:
-            total = _exact_total(durations[c] for c in base)
-            while len(base) > len(prev) and total - Fraction(durations[base[-1]]) >= budget:
-                total -= Fraction(durations[base[-1]])
-                dropped.append(base.pop())
-        inside = set(base) | set(dropped)
-        total = _exact_total(durations[c] for c in base)
-        pools = [sorted(set(labelled_before) - inside),
-                 sorted((set(new) | (set(reopened) if plan.may_reopen else set())) - inside)]
-        for pool in pools:
-            if total >= budget or not pool:
-                continue
-            order = selection_order([items[c] for c in pool], method=method, budget_s=plan.budget_s,
-                                    chosen=[items[c] for c in base], seed=seed)
-            taken = take_until(order, durations=durations, start_s=total, budget_s=plan.budget_s)
-            base += taken
-            inside.update(taken)
-            total = _exact_total(durations[c] for c in base)
-        members = base
-        outcomes.append(TierOutcome(plan.name, plan.budget_s, tuple(base), float(total), tuple(dropped),
-                                    float(max(Fraction(0), budget - total))))
+        outcome = _fill_tier(plan, members, items=items, durations=durations, pools=pools, method=method, seed=seed)
+        members = outcome.clips
+        outcomes.append(outcome)
     return outcomes
+
+
+@dataclass(frozen=True)
+class _Pools:
+    """The candidate pools of :func:`fill_tiers`."""
+
+    labelled_before: list[str]
+    new: set[str]
+    reopened: set[str]
+
+
+def _fill_tier(plan: TierPlan, smaller: Sequence[str], *, items: Mapping[str, Candidate],
+               durations: Mapping[str, float], pools: _Pools, method: str, seed: int) -> TierOutcome:
+    """One tier of :func:`fill_tiers` on top of the smaller tier's clips ``smaller``."""
+    prev = list(smaller)
+    inside = set(prev)
+    budget = Fraction(plan.budget_s)  # totals are exact, as in coverage_order
+    kept = [items[c] for c in sorted(plan.kept) if c not in inside]
+    if plan.may_drop:  # only a drop needs to know which kept clips came last
+        kept_ids = selection_order(kept, method=method, budget_s=plan.budget_s,
+                                   chosen=[items[c] for c in prev], seed=seed, stop_s=math.inf)
+    else:
+        kept_ids = [c.clip_id for c in kept]
+    base = prev + kept_ids
+    dropped: list[str] = []
+    if plan.may_drop:
+        total = _exact_total(durations[c] for c in base)
+        while len(base) > len(prev) and total - Fraction(durations[base[-1]]) >= budget:
+            total -= Fraction(durations[base[-1]])
+            dropped.append(base.pop())
+    inside = set(base) | set(dropped)
+    total = _exact_total(durations[c] for c in base)
+    for pool in (sorted(set(pools.labelled_before) - inside),
+                 sorted((pools.new | (pools.reopened if plan.may_reopen else set())) - inside)):
+        if total >= budget or not pool:
+            continue
+        order = selection_order([items[c] for c in pool], method=method, budget_s=plan.budget_s,
+                                chosen=[items[c] for c in base], seed=seed)
+        taken = take_until(order, durations=durations, start_s=total, budget_s=plan.budget_s)
+        base += taken
+        inside.update(taken)
+        total = _exact_total(durations[c] for c in base)
+    return TierOutcome(plan.name, plan.budget_s, tuple(base), float(total), tuple(dropped),
+                       float(max(Fraction(0), budget - total)))
