@@ -224,26 +224,35 @@ def scan_source(path: str, *, cfg: AudioConfig, spool: Spool, sample_rate: int) 
 
     with contextlib.closing(read_blocks(path)) as blocks:  # closes the file on an early return
         for block in blocks:
-            magnitude = np.abs(block)
-            # False for NaN as well as for values out of range: one test for both.
-            within = magnitude <= MAX_SAMPLE_MAGNITUDE
-            if not within.all():
-                frame = int(np.flatnonzero(~within.all(axis=1))[0])
-                scan.bad_sample_at = scan.frames + frame
-                scan.bad_sample = float(block[frame][~within[frame]][0])
+            mono = _count_block(scan, block, cfg=cfg)
+            if mono is None:
                 return scan
-            used = magnitude if cfg.channel == "average" else magnitude[:, int(cfg.channel)]
-            scan.clipped += int(np.count_nonzero(used >= cfg.clip_level))
-            scan.counted += used.size
-            mono = downmix(block, channel=cfg.channel)
-            scan.dc_sum += float(mono.sum(dtype=np.float64))
-            scan.frames += len(mono)
             feed(mono, last=False)
     feed(np.zeros(0, dtype=np.float32), last=True)
     analysis = vad.result()
     scan.decisions, scan.energy_db = analysis.decisions, analysis.energy_db
     scan.bandwidth_hz = psd.bandwidth_hz() if psd is not None else None
     return scan
+
+
+def _count_block(scan: SourceScan, block: np.ndarray, *, cfg: AudioConfig) -> np.ndarray | None:
+    """Count one decoded block into ``scan`` (clipping, DC, frames); its downmix, or
+    None when it holds a NaN, infinite or out-of-range sample (then recorded in ``scan``)."""
+    magnitude = np.abs(block)
+    # False for NaN as well as for values out of range: one test for both.
+    within = magnitude <= MAX_SAMPLE_MAGNITUDE
+    if not within.all():
+        frame = int(np.flatnonzero(~within.all(axis=1))[0])
+        scan.bad_sample_at = scan.frames + frame
+        scan.bad_sample = float(block[frame][~within[frame]][0])
+        return None
+    used = magnitude if cfg.channel == "average" else magnitude[:, int(cfg.channel)]
+    scan.clipped += int(np.count_nonzero(used >= cfg.clip_level))
+    scan.counted += used.size
+    mono = downmix(block, channel=cfg.channel)
+    scan.dc_sum += float(mono.sum(dtype=np.float64))
+    scan.frames += len(mono)
+    return mono
 
 
 def _frame_to_sample(frame: int, *, frame_ms: int, sample_rate: int) -> int:
