@@ -32,11 +32,11 @@ from pathlib import Path
 from pipeline.core.config import Config
 from pipeline.core.errors import UsageError
 from pipeline.core.fsio import write_text_atomic
+from pipeline.core.names import LABELLED, LEDGER_IN_OUT, SUBSETS
 from pipeline.stages.paths import is_inside
 
 MAGIC = "# loam split ledger v1"
 SETTING_KEYS = ("group_by", "seed", "heldout", "budgets", "selection")
-SUBSETS = ("labelled", "unlabelled", "heldout")
 SIDES = ("heldout", "training")
 NO_TIERS = "-"
 _BUDGET = re.compile(r"^[0-9]+(\.[0-9]+)?(s|m|h)$")
@@ -189,7 +189,7 @@ class _Parser:
 
     def tiers(self, line_no: int, text: str, subset: str, budgets: tuple[str, ...]) -> tuple[str, ...]:
         tiers = _split_list(text)
-        if subset != "labelled":
+        if subset != LABELLED:
             if tiers:
                 raise self.fail(line_no, text, f"'-' for a {subset} clip (only labelled clips have tiers)")
             return ()
@@ -283,9 +283,9 @@ def locate_ledger(config: Config, *, raw: Path, out: Path) -> tuple[Path, str]:
             )
         return path, "split.ledger"
     if not _has_config_file(config):
-        return out / "ledger.tsv", "no config file"
+        return out / LEDGER_IN_OUT, "no config file"
     source = Path(os.path.abspath(config.source))
     beside = source.parent / f"{source.stem}.ledger.tsv"
     if is_inside(beside, folder=raw):
-        return out / "ledger.tsv", "the default place beside the config file is inside RAW, which is never written to"
+        return out / LEDGER_IN_OUT, "the default place beside the config file is inside RAW, which is never written to"
     return beside, "beside the config file"

@@ -841,7 +841,8 @@ def run(ctx: StageContext) -> StageResult:
 
     summary = _summary(kept, clips, assignment, pairs, by_subset, target_s=target_s, eligible_s=eligible_s,
                        group_by=sc.group_by, orphans=orphans,
-                       rejected={f"rejected_{g}": sum(r["reason"] == g for r in rejects) for g in ("noisy", "clipped")})
+                       rejected={f"rejected_{g}": sum(r["reason"] == g for r in rejects)
+                                 for g in gates.GATES if "reject" in gates.ACTIONS[g]})
     summary["changes"] = changes
     summary["shortfalls"] = shortfalls
     # Inside OUT the path is given from OUT, so the summary does not change with where OUT is.

@@ -33,6 +33,7 @@ from pipeline.core.codeversion import code_version
 from pipeline.core.config import Config, TextConfig
 from pipeline.core.fsio import sha256_file, write_text_atomic
 from pipeline.core.manifest import table_from_rows
+from pipeline.core.names import PREDICTED_LEXICON, stage_manifest
 from pipeline.core.stage import StageContext, StageResult, reject
 from pipeline.text.characters import describe_characters, grapheme_units
 from pipeline.text.lexicon import read_lexicon
@@ -44,7 +45,6 @@ NAME = "text"
 INPUTS = ("ingest",)
 CONFIG_SECTIONS = ("text",)
 MAIN_MANIFEST = "stages/text.parquet"
-PREDICTED_LEXICON = "lexicon/predicted.tsv"
 _SHOWN_CHARS = 60
 
 
@@ -207,7 +207,7 @@ def run(ctx: StageContext) -> StageResult:
 
     rejects.sort(key=lambda r: (r["clip_id"], r["reason"]))
     return StageResult(
-        manifests={MAIN_MANIFEST: ("text", table_from_rows("text", rows))},
+        manifests={stage_manifest(NAME): (NAME, table_from_rows(NAME, rows))},
         rejects=rejects,
         summary=_summary(rows, rejects, len(items), cfg),
         metadata=metadata,
