@@ -198,10 +198,18 @@ def scan_source(path: str, *, cfg: AudioConfig, spool: Spool, sample_rate: int) 
     the frame index of the first one and ``bad_sample`` its value. ``frames`` counts
     the frames decoded, which a damaged file can hold fewer of than its header says.
 
-    Example
-    -------
-    >>> with Spool(folder=tmp) as spool:  # doctest: +SKIP
-    ...     scan = scan_source("take.flac", cfg=cfg, spool=spool, sample_rate=44100)
+    Examples
+    --------
+    >>> import tempfile, soundfile
+    >>> from pipeline.core.config import load_config
+    >>> folder = tempfile.mkdtemp()
+    >>> tone = 0.5 * np.sin(2 * np.pi * 440 * np.arange(22050) / 22050)
+    >>> soundfile.write(f"{folder}/take.flac", tone, 22050)
+    >>> with Spool(folder=folder) as spool:
+    ...     scan = scan_source(f"{folder}/take.flac", cfg=load_config(None).audio, spool=spool, sample_rate=22050)
+    >>> scan.frames, scan.clipped_fraction, scan.bad_sample_at
+    (22050, 0.0, None)
+    >>> import shutil; shutil.rmtree(folder)
     """
     scan = SourceScan(sample_rate=sample_rate)
     out_rs = StreamResampler(in_rate=sample_rate, out_rate=cfg.sample_rate, quality=cfg.resample_quality)
@@ -291,11 +299,19 @@ def condition_file(job: AudioJob) -> FileOutcome:
     FileOutcome: audio manifest rows (schemas/audio.schema.json), reject rows
     (schemas/rejected.schema.json) and the stat of each file written.
 
-    Example
-    -------
-    >>> outcome = condition_file(AudioJob(row, "/raw/ana/take.wav", "/out", "/out/tmp", cfg))  # doctest: +SKIP
-    >>> [r["clip_id"] for r in outcome.rows]  # doctest: +SKIP
-    ['take-0a1b2c3d4e']
+    Examples
+    --------
+    A file that is not audio becomes one reject:
+
+    >>> import tempfile
+    >>> from pipeline.core.config import load_config
+    >>> folder = tempfile.mkdtemp()
+    >>> _ = open(f"{folder}/take.wav", "wb").write(b"not audio")
+    >>> row = {"source_path": "ana/take.wav", "source_id": "take-0a1b2c3d4e"}
+    >>> outcome = condition_file(AudioJob(row, f"{folder}/take.wav", folder, folder, load_config(None).audio))
+    >>> outcome.rows, [r["reason"] for r in outcome.rejects]
+    ([], ['undecodable'])
+    >>> import shutil; shutil.rmtree(folder)
     """
     rel = job.row["source_path"]
     try:
@@ -653,10 +669,18 @@ def remove_orphans(folder: Path, keep: set[str], *, base: Path) -> int:
     -------
     How many files were deleted.
 
-    Example
-    -------
-    >>> remove_orphans(out / "audio", {"audio/ana/take-0a1b2c3d4e.flac"}, base=out)  # doctest: +SKIP
-    0
+    Examples
+    --------
+    >>> import tempfile
+    >>> out = Path(tempfile.mkdtemp())
+    >>> for name in ("take-0a1b2c3d4e.flac", "gone-5f6a7b8c9d.flac"):
+    ...     (out / "audio" / "ana").mkdir(parents=True, exist_ok=True)
+    ...     _ = (out / "audio" / "ana" / name).write_bytes(b"")
+    >>> remove_orphans(out / "audio", {"audio/ana/take-0a1b2c3d4e.flac"}, base=out)
+    1
+    >>> sorted(p.name for p in (out / "audio" / "ana").iterdir())
+    ['take-0a1b2c3d4e.flac']
+    >>> import shutil; shutil.rmtree(out)
     """
     if not folder.is_dir():
         return 0
