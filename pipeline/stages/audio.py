@@ -31,6 +31,7 @@ from typing import Any
 
 import numpy as np
 
+from pipeline.core import names
 from pipeline.core.cache import FileCache, cache_key
 from pipeline.core.codeversion import code_version
 from pipeline.core.config import AudioConfig
@@ -38,7 +39,7 @@ from pipeline.core.errors import ParameterError
 from pipeline.core.fsio import remove_stale_temporaries, sha256_bytes, write_bytes_atomic
 from pipeline.core.manifest import ManifestBuilder
 from pipeline.core.parallel import each_result
-from pipeline.core.stage import StageContext, StageResult, reject
+from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.signal.decode import (
     PCM16_SCALE,
     Spool,
@@ -59,8 +60,6 @@ from pipeline.signal.vad import (
 )
 
 NAME = "audio"
-INPUTS = ("ingest",)
-CONFIG_SECTIONS = ("audio",)
 
 OUTPUT_FORMATS = {"flac": "FLAC", "wav": "WAV"}
 AUDIO_DIR = "audio"
@@ -680,3 +679,14 @@ def run(ctx: StageContext) -> StageResult:
                  "orphans_removed": removed}
     return StageResult(manifests={f"stages/{NAME}.parquet": (NAME, table)}, rejects=rejects, summary=summary,
                        run_stats=run_stats)
+
+
+STAGE = Stage(
+    name=NAME,
+    inputs=("ingest",),
+    outputs=(Output(names.stage_manifest(NAME), schema=NAME),),
+    config_sections=("audio",),
+    run=run,
+    written_files=written_files,
+    prepare_driver=prepare_driver,
+)
