@@ -321,20 +321,21 @@ class Runner:
         """A reused stage's manifests still record the hash of the config in force now
         (a change in a section the stage does not read)."""
         current = self.config.sha256()
-        recorded = json.loads((self.out / names.stage_outputs_record(stage.name)).read_text(encoding="utf-8"))
-        manifests = [entry[0] for entry in recorded["files"] if entry[0].endswith(".parquet")]
+        # The main manifest goes last, as in _write_result.
+        manifests = [(names.stage_rejects(stage.name), "rejected"),
+                     *((o.path, o.schema) for o in reversed(stage.outputs))]
         rewritten = False
-        for rel in manifests:
+        for rel, schema in manifests:
             path = self.out / rel
             meta = read_metadata(path)
             if meta.get("config_sha256") != current:
                 rewritten = True
                 table = read_manifest(path)
                 meta["config_sha256"] = current
-                write_manifest(path, meta.get("schema", stage.name), table.replace_schema_metadata(None),
+                write_manifest(path, schema, table.replace_schema_metadata(None),
                                metadata={k: v for k, v in meta.items() if k != "schema"})
         if rewritten:
-            self._record_outputs(stage, manifests)
+            self._record_outputs(stage, [o.path for o in stage.outputs])
 
     def write_rejected(self) -> int:
         """Gather every stage's rejects into ``manifests/rejected.parquet``."""
