@@ -17,7 +17,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from pipeline.commands.cli import main
-from pipeline.core.lock import LOCK_NAME
+from pipeline.core.names import LOCK as LOCK_NAME
 
 
 def loam(*args: str, timeout: float | None = None) -> subprocess.CompletedProcess:

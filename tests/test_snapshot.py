@@ -3,6 +3,7 @@ change to RAW, OUT, the config, the overrides or a watched file makes a full run
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
 import subprocess
@@ -12,7 +13,7 @@ from pathlib import Path
 import pytest
 
 from pipeline.commands.cli import main
-from pipeline.core import snapshot
+from pipeline.core import names, snapshot
 from tests.conftest import REPO, tree_hash
 
 NOTHING = "nothing changed since the last run"
@@ -35,7 +36,7 @@ def test_identical_rerun_ends_at_once_with_the_same_outputs(small_raw: Path, tmp
     out = tmp_path / "out"
     first = _run(small_raw, out, capsys)
     assert NOTHING not in first
-    assert (out / snapshot.STATE_PATH).is_file()
+    assert (out / names.SNAPSHOT_STATE).is_file()
     before = _outputs(out)
     again = _run(small_raw, out, capsys)
     assert NOTHING in again
@@ -94,7 +95,7 @@ def test_any_change_makes_a_full_run(change: str, small_raw: Path, tmp_path: Pat
         assert _outputs(out) == before
     if change == "no_cache":
         # A run that skips the caches records no snapshot, so the next one is full too.
-        assert not (out / snapshot.STATE_PATH).exists()
+        assert not (out / names.SNAPSHOT_STATE).exists()
 
 
 def test_a_changed_config_file_or_ledger_makes_a_full_run(small_raw: Path, tmp_path: Path,
@@ -124,9 +125,9 @@ def test_a_run_that_stops_half_way_leaves_no_snapshot(small_raw: Path, tmp_path:
     def broken(ctx: object) -> None:
         raise RuntimeError("stopped")
 
-    monkeypatch.setattr(pipeline.stages.text, "run", broken)
+    monkeypatch.setattr(pipeline.stages.text, "STAGE", dataclasses.replace(pipeline.stages.text.STAGE, run=broken))
     assert main(["prepare", str(small_raw), str(out), "--workers", "1", "--no-progress"]) == 1
-    assert not (out / snapshot.STATE_PATH).exists()
+    assert not (out / names.SNAPSHOT_STATE).exists()
     monkeypatch.undo()
     assert NOTHING not in _run(small_raw, out, capsys)
 
@@ -135,7 +136,7 @@ def test_loam_stage_forgets_the_snapshot(small_raw: Path, tmp_path: Path, capsys
     out = tmp_path / "out"
     _run(small_raw, out, capsys)
     assert main(["stage", "text", str(small_raw), str(out), "--workers", "1", "--no-progress"]) == 0
-    assert not (out / snapshot.STATE_PATH).exists()
+    assert not (out / names.SNAPSHOT_STATE).exists()
 
 
 def test_listing_sees_symlink_targets(tmp_path: Path) -> None:

@@ -655,7 +655,7 @@ def test_runner_writes_the_three_manifests_and_rejects(tmp_path: Path) -> None:
     rejected = read_manifest(out / "manifests" / "rejected.parquet").to_pylist()
     assert sum(counts.values()) + len(rejected) == len(corpus.audio)
     assert {r["reason"] for r in rejected} == {"noisy"} and len(rejected) == 5
-    assert read_metadata(out / split.MAIN_MANIFEST)["stage"] == "split"
+    assert read_metadata(out / split.STAGE.main_manifest)["stage"] == "split"
     assert (out / "ledger.tsv").exists() and (out / "stages" / "split.summary.json").exists()
 
 

@@ -178,7 +178,7 @@ def _cmd_prepare(args: argparse.Namespace, stages: tuple[str, ...] | None = None
 def _cmd_stage(args: argparse.Namespace) -> int:
     from pipeline.stages import STAGES
 
-    STAGES.module(args.name)
+    STAGES[args.name]  # UsageError for a name that is not a stage
     return _cmd_prepare(args, stages=(args.name,))
 
 

@@ -7,9 +7,8 @@ import os
 from collections.abc import Iterator
 from pathlib import Path
 
+from pipeline.core import names
 from pipeline.core.errors import LockedError
-
-LOCK_NAME = ".loam.lock"
 
 
 def _alive(pid: int) -> bool:
@@ -30,7 +29,7 @@ def output_lock(out: Path) -> Iterator[Path]:
     whose pid no longer runs was left by a crash and is taken over.
     """
     out.mkdir(parents=True, exist_ok=True)
-    path = out / LOCK_NAME
+    path = out / names.LOCK
     for _ in range(2):
         try:
             fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)

@@ -38,6 +38,13 @@ REPORT_SUMMARY = "report/summary.json"
 RESOLVED_CONFIG = "config.resolved.json"
 LAST_RUN = "logs/last-run.json"
 LEDGER_IN_OUT = "ledger.tsv"
+LOGS = "logs"
+CACHE = "cache"
+REPORT = "report"
+# The lock one run holds on OUT (pipeline.core.lock).
+LOCK = ".loam.lock"
+# The no-change snapshot of the last finished run (pipeline.core.snapshot).
+SNAPSHOT_STATE = "cache/state.json"
 
 
 def subset_manifest(subset: str) -> str:
@@ -62,3 +69,8 @@ def stage_rejects(stage: str) -> str:
 def stage_summary(stage: str) -> str:
     """``stages/<stage>.summary.json``."""
     return f"stages/{stage}.summary.json"
+
+
+def stage_outputs_record(stage: str) -> str:
+    """``cache/stages/<stage>.json``: the stat of every file the stage wrote last time."""
+    return f"cache/stages/{stage}.json"

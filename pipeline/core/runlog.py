@@ -10,9 +10,11 @@ import os
 import time
 from pathlib import Path
 
+from pipeline.core import names
+
 
 def setup_logging(out: Path, command: str) -> tuple[logging.Logger, Path]:
-    logs = out / "logs"
+    logs = out / names.LOGS
     logs.mkdir(parents=True, exist_ok=True)
     stamp = time.strftime("%Y%m%dT%H%M%S", time.gmtime())
     log_path = logs / f"{command}-{stamp}-{os.getpid()}.log"

@@ -11,13 +11,12 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from types import ModuleType
 from typing import Any
 
 import pyarrow as pa
 
 from pipeline import __version__
-from pipeline.core import snapshot
+from pipeline.core import names, snapshot
 from pipeline.core.codeversion import code_version
 from pipeline.core.config import Config, canonical_json
 from pipeline.core.errors import DataError
@@ -31,21 +30,7 @@ from pipeline.core.manifest import (
     validate_table,
     write_manifest,
 )
-from pipeline.core.stage import StageContext, StageRegistry, StageResult, reject
-
-REJECTED_PATH = "manifests/rejected.parquet"
-
-
-def rejects_path(name: str) -> str:
-    return f"stages/{name}.rejects.parquet"
-
-
-def summary_path(name: str) -> str:
-    return f"stages/{name}.summary.json"
-
-
-def outputs_record_path(name: str) -> str:
-    return f"cache/stages/{name}.json"
+from pipeline.core.stage import Stage, StageContext, StageRegistry, StageResult, reject
 
 
 def _stat_of(out: Path, rels: list[str]) -> list[list[Any]]:
@@ -59,32 +44,31 @@ def _stat_of(out: Path, rels: list[str]) -> list[list[Any]]:
     return state
 
 
-def params_sha256(module: ModuleType, config: Config, *, cache_dir: Path | None = None) -> str:
+def params_sha256(stage: Stage, config: Config, *, cache_dir: Path | None = None) -> str:
     """Hash of everything in the config and code that a stage's output depends on
     (``cache_dir`` keeps what the code version parsed, see pipeline.core.codeversion)."""
     parts = {
-        "stage": module.NAME,
-        "code_version": code_version(module.NAME, cache_dir=cache_dir),
+        "stage": stage.name,
+        "code_version": code_version(stage.name, cache_dir=cache_dir),
         "loam_version": __version__,
         "seed": config.seed,
-        "sections": {s: config.section(s) for s in module.CONFIG_SECTIONS},
+        "sections": {s: config.section(s) for s in stage.config_sections},
     }
     return hashlib.sha256(canonical_json(parts)).hexdigest()
 
 
-def inputs_sha256(out: Path, module: ModuleType, ctx: StageContext, registry: StageRegistry,
+def inputs_sha256(out: Path, stage: Stage, ctx: StageContext, registry: StageRegistry,
                   watched: set[str] | None = None) -> str:
     """Hash of the upstream manifests' bytes (found through ``registry``) plus any extra
     files the stage reads (their absolute paths are added to ``watched``)."""
     watched = set() if watched is None else watched
     digest = hashlib.sha256()
-    for name in module.INPUTS:
+    for name in stage.inputs:
         digest.update(name.encode() + b"\0")
-        digest.update(hashlib.sha256((out / registry.manifest_path(name)).read_bytes()).digest())
-    extra = getattr(module, "extra_inputs", None)
+        digest.update(hashlib.sha256((out / registry[name].main_manifest).read_bytes()).digest())
     # Content only, not the paths: the same inputs under another OUT or checkout must
     # give byte-identical manifests, metadata included.
-    for path in extra(ctx) if extra else []:
+    for path in stage.extra_inputs(ctx) if stage.extra_inputs else []:
         watched.add(os.path.abspath(path))
         digest.update(b"extra\0")
         try:
@@ -175,31 +159,31 @@ class Runner:
         def run_ready() -> None:
             waiting = self.running[-1] if self.running else None
             for name in list(pending):
-                if all(i in self.done for i in self.stages.module(name).INPUTS):
+                if all(i in self.done for i in self.stages[name].inputs):
                     pending.remove(name)
                     self.run_stage(name).during = waiting
             for name in pending:
-                hook = getattr(self.stages.module(name), "prepare_driver", None)
+                hook = self.stages[name].prepare_driver
                 if hook is not None:
                     hook(self.config)
         return run_ready
 
     def _load_input(self, name: str) -> pa.Table:
-        path = self.out / self.stages.manifest_path(name)
+        path = self.out / self.stages[name].main_manifest
         if not path.exists():
             raise DataError(f"{path}: missing; run the '{name}' stage first (loam prepare runs all stages)")
         table = read_manifest(path)
         validate_table(name, table, where=str(path))
         return table
 
-    def _up_to_date(self, module: ModuleType, params: str, inputs: str) -> bool:
-        if getattr(module, "ALWAYS_RUN", False):
+    def _up_to_date(self, stage: Stage, params: str, inputs: str) -> bool:
+        if stage.always_run:
             return False
-        if any(self.options.get(o) for o in getattr(module, "RUN_WHEN_OPTIONS", ())):
+        if any(self.options.get(o) for o in stage.run_when_options):
             return False
-        main = self.out / self.stages.manifest_path(module.NAME)
-        if not (main.exists() and (self.out / rejects_path(module.NAME)).exists()
-                and (self.out / summary_path(module.NAME)).exists()):
+        main = self.out / stage.main_manifest
+        if not (main.exists() and (self.out / names.stage_rejects(stage.name)).exists()
+                and (self.out / names.stage_summary(stage.name)).exists()):
             return False
         try:
             meta = read_metadata(main)
@@ -207,32 +191,31 @@ class Runner:
             return False
         if meta.get("params_sha256") != params or meta.get("inputs_sha256") != inputs:
             return False
-        return self._outputs_unchanged(module.NAME)
+        return self._outputs_unchanged(stage.name)
 
     def _outputs_unchanged(self, name: str) -> bool:
         """Whether every file the stage wrote last time is still as it left it."""
         try:
-            recorded = json.loads((self.out / outputs_record_path(name)).read_text(encoding="utf-8"))["files"]
+            recorded = json.loads((self.out / names.stage_outputs_record(name)).read_text(encoding="utf-8"))["files"]
         except (OSError, ValueError, KeyError, TypeError):
             return False
         return _stat_of(self.out, [entry[0] for entry in recorded]) == recorded
 
-    def _record_outputs(self, module: ModuleType, manifests: list[str], main: pa.Table | None = None) -> None:
+    def _record_outputs(self, stage: Stage, manifests: list[str], main: pa.Table | None = None) -> None:
         """Record the stat of every file the stage wrote (``main``: its main manifest's
         table when the caller holds it, else it is read back)."""
-        rels = [*manifests, rejects_path(module.NAME), summary_path(module.NAME)]
-        written = getattr(module, "written_files", None)
-        if written is not None:
-            table = main if main is not None else read_manifest(self.out / self.stages.manifest_path(module.NAME))
-            rels += written(self.out, table)
-        write_text_atomic(self.out / outputs_record_path(module.NAME),
+        rels = [*manifests, names.stage_rejects(stage.name), names.stage_summary(stage.name)]
+        if stage.written_files is not None:
+            table = main if main is not None else read_manifest(self.out / stage.main_manifest)
+            rels += stage.written_files(self.out, table)
+        write_text_atomic(self.out / names.stage_outputs_record(stage.name),
                           json.dumps({"files": _stat_of(self.out, rels)}) + "\n")
 
-    def _metadata(self, module: ModuleType, params: str, inputs: str, extra: dict[str, str]) -> dict[str, str]:
+    def _metadata(self, stage: Stage, params: str, inputs: str, extra: dict[str, str]) -> dict[str, str]:
         meta = {
             "version": __version__,
-            "stage": module.NAME,
-            "code_version": code_version(module.NAME),
+            "stage": stage.name,
+            "code_version": code_version(stage.name),
             "config_sha256": self.config.sha256(),
             "params_sha256": params,
             "inputs_sha256": inputs,
@@ -248,27 +231,27 @@ class Runner:
             self.running.pop()
 
     def _run_stage(self, name: str, meanwhile: Callable[[], None] | None) -> StageRecord:
-        module = self.stages.module(name)
+        stage = self.stages[name]
         start = time.perf_counter()
-        inputs = {n: self._load_input(n) for n in module.INPUTS}
+        inputs = {n: self._load_input(n) for n in stage.inputs}
         ctx = self._context(inputs, meanwhile)
-        params = params_sha256(module, self.config, cache_dir=ctx.cache_dir if ctx.use_cache else None)
-        in_hash = inputs_sha256(self.out, module, ctx, self.stages, self.watched)
-        if self._up_to_date(module, params, in_hash):
-            self._refresh_config_hash(module)
-            summary = json.loads((self.out / summary_path(name)).read_text(encoding="utf-8"))
+        params = params_sha256(stage, self.config, cache_dir=ctx.cache_dir if ctx.use_cache else None)
+        in_hash = inputs_sha256(self.out, stage, ctx, self.stages, self.watched)
+        if self._up_to_date(stage, params, in_hash):
+            self._refresh_config_hash(stage)
+            summary = json.loads((self.out / names.stage_summary(name)).read_text(encoding="utf-8"))
             record = StageRecord(name, False, time.perf_counter() - start, summary)
             self.log.info("%-6s reused: inputs, parameters and code unchanged", name)
-            if hasattr(module, "reuse_note"):
-                self.log.info("%s", module.reuse_note(summary))
+            if stage.reuse_note is not None:
+                self.log.info("%s", stage.reuse_note(summary))
         else:
             self.log.info("%-6s running", name)
-            result: StageResult = module.run(ctx)
-            if getattr(module, "INPUTS_AFTER_RUN", False):
+            result: StageResult = stage.run(ctx)
+            if stage.inputs_after_run:
                 # The stage rewrote one of its own inputs (the split ledger): record the
                 # state it left, which a rerun would reproduce.
-                in_hash = inputs_sha256(self.out, module, ctx, self.stages, self.watched)
-            self._write_result(module, result, params, in_hash)
+                in_hash = inputs_sha256(self.out, stage, ctx, self.stages, self.watched)
+            self._write_result(stage, result, params, in_hash)
             if result.stop:
                 self.stop_reason = f"{name}: {result.stop}"
             record = StageRecord(name, True, time.perf_counter() - start, result.summary, result.run_stats)
@@ -279,23 +262,23 @@ class Runner:
         self.done.add(name)
         return record
 
-    def _write_result(self, module: ModuleType, result: StageResult, params: str, inputs: str) -> None:
-        meta = self._metadata(module, params, inputs, result.metadata)
-        if self.stages.manifest_path(module.NAME) not in result.manifests:
-            raise RuntimeError(f"stage {module.NAME} returned no {self.stages.manifest_path(module.NAME)}")
+    def _write_result(self, stage: Stage, result: StageResult, params: str, inputs: str) -> None:
+        meta = self._metadata(stage, params, inputs, result.metadata)
+        _check_declared(stage, result)
         # Validate everything before writing anything, so a bad table leaves the old files.
-        self._set_aside_invalid_rows(module, result)
+        self._set_aside_invalid_rows(stage, result)
         rejects = result.rejects_table()
-        validate_table("rejected", rejects, where=str(self.out / rejects_path(module.NAME)))
-        write_manifest(self.out / rejects_path(module.NAME), "rejected", rejects, metadata=meta)
-        write_text_atomic(self.out / summary_path(module.NAME),
+        rejects_rel = names.stage_rejects(stage.name)
+        validate_table("rejected", rejects, where=str(self.out / rejects_rel))
+        write_manifest(self.out / rejects_rel, "rejected", rejects, metadata=meta)
+        write_text_atomic(self.out / names.stage_summary(stage.name),
                           json.dumps(result.summary, indent=2, sort_keys=True, ensure_ascii=False) + "\n")
         # The main manifest goes last: its metadata is what marks the stage up to date.
-        for rel, (schema, table) in sorted(result.manifests.items(), key=lambda kv: kv[0] == self.stages.manifest_path(module.NAME)):
+        for rel, (schema, table) in sorted(result.manifests.items(), key=lambda kv: kv[0] == stage.main_manifest):
             write_manifest(self.out / rel, schema, table, metadata=meta)
-        self._record_outputs(module, list(result.manifests), result.manifests[self.stages.manifest_path(module.NAME)][1])
+        self._record_outputs(stage, list(result.manifests), result.manifests[stage.main_manifest][1])
 
-    def _set_aside_invalid_rows(self, module: ModuleType, result: StageResult) -> None:
+    def _set_aside_invalid_rows(self, stage: Stage, result: StageResult) -> None:
         """Move rows whose values break their schema from the manifests to the rejects.
 
         ``manifest.partition_rows`` tells a row whose inputs gave a value the schema
@@ -304,7 +287,6 @@ class Runner:
         manifest's invalid rows wrote (the stage's ``written_files``) are deleted.
         """
         set_aside = 0
-        main = self.stages.manifest_path(module.NAME)
         for rel, (schema, table) in sorted(result.manifests.items()):
             kept, invalid = partition_rows(schema, table, where=str(self.out / rel))
             if not invalid:
@@ -319,11 +301,11 @@ class Runner:
                 detail = (f"{source}: {what} in {rel} breaks schemas/{schema}.schema.json ({bad.detail}); "
                           "expected values within the schema, so the row is set aside")
                 self.log.warning("%s", detail)
-                result.rejects.append(reject(module.NAME, str(source), "invalid_measurement", detail,
+                result.rejects.append(reject(stage.name, str(source), "invalid_measurement", detail,
                                              clip if isinstance(clip, str) else None))
-            written = getattr(module, "written_files", None)
-            if rel == main and written is not None:
-                self._remove_written(written(self.out, table_from_rows(schema, [b.row for b in invalid])))
+            if rel == stage.main_manifest and stage.written_files is not None:
+                rows = table_from_rows(schema, [b.row for b in invalid])
+                self._remove_written(stage.written_files(self.out, rows))
         if set_aside:
             result.summary["invalid_rows"] = set_aside
 
@@ -335,35 +317,36 @@ class Runner:
             if path.is_relative_to(root) and path.is_file():
                 path.unlink()
 
-    def _refresh_config_hash(self, module: ModuleType) -> None:
+    def _refresh_config_hash(self, stage: Stage) -> None:
         """A reused stage's manifests still record the hash of the config in force now
         (a change in a section the stage does not read)."""
         current = self.config.sha256()
-        recorded = json.loads((self.out / outputs_record_path(module.NAME)).read_text(encoding="utf-8"))
-        manifests = [entry[0] for entry in recorded["files"] if entry[0].endswith(".parquet")]
+        # The main manifest goes last, as in _write_result.
+        manifests = [(names.stage_rejects(stage.name), "rejected"),
+                     *((o.path, o.schema) for o in reversed(stage.outputs))]
         rewritten = False
-        for rel in manifests:
+        for rel, schema in manifests:
             path = self.out / rel
             meta = read_metadata(path)
             if meta.get("config_sha256") != current:
                 rewritten = True
                 table = read_manifest(path)
                 meta["config_sha256"] = current
-                write_manifest(path, meta.get("schema", module.NAME), table.replace_schema_metadata(None),
+                write_manifest(path, schema, table.replace_schema_metadata(None),
                                metadata={k: v for k, v in meta.items() if k != "schema"})
         if rewritten:
-            self._record_outputs(module, manifests)
+            self._record_outputs(stage, [o.path for o in stage.outputs])
 
     def write_rejected(self) -> int:
         """Gather every stage's rejects into ``manifests/rejected.parquet``."""
         tables = []
         for name in self.stages.order:
-            path = self.out / rejects_path(name)
+            path = self.out / names.stage_rejects(name)
             if path.exists():
                 tables.append(read_manifest(path).replace_schema_metadata(None))
         table = pa.concat_tables(tables) if tables else table_from_rows("rejected", [])
         meta = {"version": __version__, "stage": "all", "config_sha256": self.config.sha256()}
-        write_manifest(self.out / REJECTED_PATH, "rejected", table, metadata=meta)
+        write_manifest(self.out / names.REJECTED, "rejected", table, metadata=meta)
         return table.num_rows
 
     def prepare(self, stages: tuple[str, ...] | None = None) -> list[StageRecord]:
@@ -379,7 +362,7 @@ class Runner:
             removed = remove_stale_temporaries(self.out)
             if removed:
                 self.log.info("removed %d temporary files left by an interrupted run", removed)
-            write_text_atomic(self.out / "config.resolved.json",
+            write_text_atomic(self.out / names.RESOLVED_CONFIG,
                               json.dumps(self.config.to_json(), indent=2, sort_keys=True, ensure_ascii=False) + "\n")
             if self.scheduler:
                 self._check_cluster()
@@ -389,9 +372,9 @@ class Runner:
             # Stages may finish out of order (see _ready_stages); logs list them in order.
             self.records.sort(key=lambda r: order.index(r.name))
             n = self.write_rejected()
-            self.log.info("rejected: %d rows in %s", n, self.out / REJECTED_PATH)
+            self.log.info("rejected: %d rows in %s", n, self.out / names.REJECTED)
             # Timings live under logs/, never in a manifest, so manifests stay byte-identical.
-            write_text_atomic(self.out / "logs" / "last-run.json", json.dumps({
+            write_text_atomic(self.out / names.LAST_RUN, json.dumps({
                 "stages": [{"name": r.name, "ran": r.ran, "seconds": round(r.seconds, 4),
                             **({"during": r.during} if r.during else {}),
                             **({"run_stats": r.run_stats} if r.run_stats else {})} for r in self.records],
@@ -401,12 +384,22 @@ class Runner:
                 # No snapshot: the next run must look at RAW again.
                 raise DataError(self.stop_reason)
             if record_snapshot and self.invocation is not None:
-                notes = [module.reuse_note(r.summary) for r in self.records
-                         if hasattr(module := self.stages.module(r.name), "reuse_note")]
-                notes.append(f"rejected: {n} rows in {self.out / REJECTED_PATH}")
+                notes = [note(r.summary) for r in self.records
+                         if (note := self.stages[r.name].reuse_note) is not None]
+                notes.append(f"rejected: {n} rows in {self.out / names.REJECTED}")
                 snapshot.save(self.out, snapshot.capture(invocation=self.invocation, raw_digest=raw_listing,
                                                          out=self.out, watched=sorted(self.watched), notes=notes))
         return self.records
+
+
+def _check_declared(stage: Stage, result: StageResult) -> None:
+    """The manifests a stage returned must be exactly the outputs it declares, each with
+    its declared schema: anything else is the stage's code going wrong."""
+    declared = {output.path: output.schema for output in stage.outputs}
+    returned = {rel: schema for rel, (schema, _) in result.manifests.items()}
+    if returned != declared:
+        raise RuntimeError(f"stage {stage.name} returned manifests {sorted(returned.items())}; "
+                           f"its Stage declares outputs {sorted(declared.items())}")
 
 
 def _first_file(raw: Path) -> str | None:

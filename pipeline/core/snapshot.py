@@ -25,11 +25,12 @@ import sys
 from pathlib import Path
 from typing import Any
 
-STATE_PATH = "cache/state.json"
+from pipeline.core import names
+
 FORMAT = 1
 # What prepare does not own in OUT: its own logs and caches, the report (written by
 # ``loam report``) and the run lock.
-OUT_IGNORED = frozenset({"logs", "cache", "report", ".loam.lock"})
+OUT_IGNORED = frozenset({names.LOGS, names.CACHE, names.REPORT, names.LOCK})
 _PACKAGE = Path(__file__).resolve().parent.parent
 
 
@@ -147,7 +148,7 @@ def capture(*, invocation: str, raw_digest: str, out: Path, watched: list[str], 
 
 def load(out: Path) -> dict[str, Any] | None:
     try:
-        state = json.loads((out / STATE_PATH).read_text(encoding="utf-8"))
+        state = json.loads((out / names.SNAPSHOT_STATE).read_text(encoding="utf-8"))
     except (OSError, ValueError):
         return None
     return state if isinstance(state, dict) and state.get("format") == FORMAT else None
@@ -167,11 +168,11 @@ def unchanged(state: dict[str, Any] | None, *, invocation: str, raw: Path, out: 
 def save(out: Path, state: dict[str, Any]) -> None:
     from pipeline.core.fsio import write_text_atomic
 
-    write_text_atomic(out / STATE_PATH, json.dumps(state, indent=1, sort_keys=True) + "\n")
+    write_text_atomic(out / names.SNAPSHOT_STATE, json.dumps(state, indent=1, sort_keys=True) + "\n")
 
 
 def forget(out: Path) -> None:
     """Drop the snapshot: called before a run changes anything, so that a run which
     stops half-way can never be mistaken for a finished one."""
     with contextlib.suppress(FileNotFoundError):
-        (out / STATE_PATH).unlink()
+        (out / names.SNAPSHOT_STATE).unlink()

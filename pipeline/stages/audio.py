@@ -32,6 +32,7 @@ from typing import Any
 
 import numpy as np
 
+from pipeline.core import names
 from pipeline.core.cache import FileCache, cache_key
 from pipeline.core.codeversion import code_version
 from pipeline.core.config import AudioConfig
@@ -40,7 +41,7 @@ from pipeline.core.fsio import remove_stale_temporaries, sha256_bytes, write_byt
 from pipeline.core.manifest import ManifestBuilder
 from pipeline.core.names import stage_manifest
 from pipeline.core.parallel import each_result
-from pipeline.core.stage import StageContext, StageResult, reject
+from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.signal.decode import (
     PCM16_SCALE,
     Spool,
@@ -61,8 +62,6 @@ from pipeline.signal.vad import (
 )
 
 NAME = "audio"
-INPUTS = ("ingest",)
-CONFIG_SECTIONS = ("audio",)
 
 OUTPUT_FORMATS = {"flac": "FLAC", "wav": "WAV"}
 AUDIO_DIR = "audio"
@@ -829,3 +828,14 @@ def run(ctx: StageContext) -> StageResult:
                  "orphans_removed": removed}
     return StageResult(manifests={stage_manifest(NAME): (NAME, table)}, rejects=rejects, summary=summary,
                        run_stats=run_stats)
+
+
+STAGE = Stage(
+    name=NAME,
+    inputs=("ingest",),
+    outputs=(Output(names.stage_manifest(NAME), schema=NAME),),
+    config_sections=("audio",),
+    run=run,
+    written_files=written_files,
+    prepare_driver=prepare_driver,
+)

@@ -21,13 +21,14 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from pipeline.core import names
 from pipeline.core.cache import FileCache, cache_key
 from pipeline.core.codeversion import code_version
 from pipeline.core.fsio import sha256_file
 from pipeline.core.manifest import table_from_rows
 from pipeline.core.names import stage_manifest
 from pipeline.core.parallel import map_ordered
-from pipeline.core.stage import StageContext, StageResult, reject
+from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.stages.paths import check_relative_path, is_inside
 from pipeline.stages.transcripts import (
     MetadataRow,
@@ -37,13 +38,9 @@ from pipeline.stages.transcripts import (
 )
 
 NAME = "ingest"
-INPUTS: tuple[str, ...] = ()
-CONFIG_SECTIONS = ("ingest",)
 # Reasons for which ingest sets aside a transcript and keeps its audio.
 TRANSCRIPT_REASONS = frozenset({"transcript_encoding", "transcript_unreadable", "empty_transcript",
                                 "conflicting_transcripts"})
-# The raw folder is its input: it is rescanned every run (unchanged files hit the probe cache).
-ALWAYS_RUN = True
 
 _SLUG_KEEP = re.compile(r"[^a-z0-9_-]+")
 _SPEAKER_KEEP = re.compile(r"[^A-Za-z0-9_.-]+")
@@ -444,3 +441,15 @@ def environment_failure(rejects: list[dict[str, Any]], *, paths: set[str], metad
                 f"{missing[0]['detail']}): the environment is the likely cause, not the table; check that RAW "
                 "is the folder the table's paths are relative to, and that it is mounted here")
     return ""
+
+
+STAGE = Stage(
+    name=NAME,
+    inputs=(),
+    outputs=(Output(names.stage_manifest(NAME), schema=NAME),),
+    config_sections=("ingest",),
+    run=run,
+    # The raw folder is its input: it is rescanned every run (unchanged files hit the probe cache).
+    always_run=True,
+    extra_inputs=extra_inputs,
+)

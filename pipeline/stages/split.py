@@ -37,6 +37,7 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 
+from pipeline.core import names
 from pipeline.core.config import Config, parse_duration_s
 from pipeline.core.errors import DataError, UsageError
 from pipeline.core.manifest import table_from_rows, validate_table
@@ -49,22 +50,13 @@ from pipeline.core.names import (
     stage_manifest,
     subset_manifest,
 )
-from pipeline.core.stage import StageContext, StageResult, reject
+from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.signal.fingerprint import decode_fingerprint, find_near_duplicates
 from pipeline.stages import gates
 from pipeline.stages.ledger import ClipRecord, Ledger, locate_ledger, read_ledger, write_ledger
 from pipeline.stages.selection import Candidate, TierOutcome, TierPlan, fill_tiers
 
 NAME = "split"
-INPUTS = ("audio", "text")
-# audio for audio.max_clipped_fraction, the threshold of the clipped gate.
-CONFIG_SECTIONS = ("split", "quality", "audio")
-# The ledger is an input the runner cannot hash: run every time.
-# The ledger is an input the stage rewrites itself: the runner hashes it after the
-# run (INPUTS_AFTER_RUN), so a rerun with nothing changed is reused, and --fresh
-# always runs the stage.
-INPUTS_AFTER_RUN = True
-RUN_WHEN_OPTIONS = ("fresh",)
 
 
 def extra_inputs(ctx: StageContext) -> list[Path]:
@@ -73,7 +65,6 @@ def extra_inputs(ctx: StageContext) -> list[Path]:
 
 def reuse_note(summary: dict[str, Any]) -> str:
     return "split changes: none (audio, text, config and ledger unchanged since the last run)"
-MAIN_MANIFEST = "manifests/labelled.parquet"
 SUBSET_PATHS = {s: subset_manifest(s) for s in SUBSETS}
 # The audio stage reports the gain it could not apply because of the peak ceiling;
 # below 0.05 dB the shortfall is inaudible. Common practice, no source.
@@ -903,3 +894,20 @@ def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment
             {"clips": [clips[p.first].clip_id, clips[p.second].clip_id], "similarity": round(p.similarity, 4),
              "identical": p.identical} for p in pairs],
     }
+
+
+STAGE = Stage(
+    name=NAME,
+    inputs=("audio", "text"),
+    # The labelled manifest is the main one: its metadata marks the stage up to date.
+    outputs=tuple(Output(names.subset_manifest(subset), schema="subset") for subset in names.SUBSETS),
+    # audio for audio.max_clipped_fraction, the threshold of the clipped gate.
+    config_sections=("split", "quality", "audio"),
+    run=run,
+    # The ledger is an input the stage rewrites itself: the runner hashes it after the
+    # run, so a rerun with nothing changed is reused, and --fresh always runs the stage.
+    inputs_after_run=True,
+    run_when_options=("fresh",),
+    extra_inputs=extra_inputs,
+    reuse_note=reuse_note,
+)

@@ -34,7 +34,7 @@ from pipeline.core.config import Config, TextConfig
 from pipeline.core.fsio import sha256_file, write_text_atomic
 from pipeline.core.manifest import table_from_rows
 from pipeline.core.names import PREDICTED_LEXICON, stage_manifest
-from pipeline.core.stage import StageContext, StageResult, reject
+from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.text.characters import describe_characters, grapheme_units
 from pipeline.text.lexicon import read_lexicon
 from pipeline.text.neural import neural_cache_name
@@ -42,9 +42,7 @@ from pipeline.text.normalise import Normalised, load_abbreviations, normalise
 from pipeline.text.pronounce import Pronouncer, Pronunciation
 
 NAME = "text"
-INPUTS = ("ingest",)
-CONFIG_SECTIONS = ("text",)
-MAIN_MANIFEST = "stages/text.parquet"
+MAIN_MANIFEST = stage_manifest(NAME)
 _SHOWN_CHARS = 60
 
 
@@ -282,3 +280,14 @@ def _metadata(config: Config, pronouncer: Pronouncer) -> dict[str, str]:
         value = getattr(config.text, key)
         meta[f"g2p.{key}"] = f"{value} sha256={sha256_file(path)}"
     return meta
+
+
+STAGE = Stage(
+    name=NAME,
+    inputs=("ingest",),
+    outputs=(Output(MAIN_MANIFEST, schema=NAME),),
+    config_sections=("text",),
+    run=run,
+    extra_inputs=extra_inputs,
+    written_files=written_files,
+)

@@ -23,7 +23,8 @@ from pipeline.core.errors import ConfigError, DataError
 from pipeline.core.stage import reject
 from pipeline.stages.paths import check_relative_path, is_inside
 
-STAGE = "ingest"
+# Transcript problems are found while ingesting, so ingest sets them aside.
+REJECTING_STAGE = "ingest"
 UTF8_BOM = b"\xef\xbb\xbf"
 # Characters of a transcript shown in a reject sentence.
 SHOWN_CHARS = 60
@@ -175,13 +176,13 @@ def read_metadata_table(
         except StopIteration:
             break
         except csv.Error as exc:
-            rejects.append(reject(STAGE, f"{table_rel}:{line}", "metadata_parse_error",
+            rejects.append(reject(REJECTING_STAGE, f"{table_rel}:{line}", "metadata_parse_error",
                                   f"{table_rel}: line {line}: the row does not parse as {'TSV' if delimiter == chr(9) else 'CSV'} ({exc})"))
             continue
         row, problem = _row(fields, line, header, index, path_column=path_column, transcript_column=transcript_column,
                             speaker_column=speaker_column, need_speaker=need_speaker, encoding=encoding)
         if problem:
-            rejects.append(reject(STAGE, f"{table_rel}:{line}", "metadata_parse_error", f"{table_rel}: line {line}: {problem}"))
+            rejects.append(reject(REJECTING_STAGE, f"{table_rel}:{line}", "metadata_parse_error", f"{table_rel}: line {line}: {problem}"))
         elif row is not None:
             rows.append(row)
     return rows, rejects
@@ -238,7 +239,7 @@ def collapse_rows(rows: Sequence[MetadataRow], rel: str, table_rel: str) -> tupl
         text = f"\x01{row.line}" if row.transcript_problem else row.transcript.strip()
         key = f"{text}\x00{row.speaker or ''}"
         if key in distinct:
-            rejects.append(reject(STAGE, f"{table_rel}:{row.line}", "metadata_duplicate_row",
+            rejects.append(reject(REJECTING_STAGE, f"{table_rel}:{row.line}", "metadata_duplicate_row",
                                   f"{table_rel}: line {row.line}: repeats line {distinct[key].line} for {rel!r}"))
         else:
             distinct[key] = row
@@ -294,7 +295,7 @@ def pair_transcript(raw: Path, rel: str, rows: Sequence[MetadataRow], sidecar_re
     if len({f.text for f in found}) > 1:
         for f in found:
             others = "; ".join(f"{o.label}: {_shown(o.text)}" for o in found if o is not f)
-            pairing.rejects.append(reject(STAGE, f.source, "conflicting_transcripts",
+            pairing.rejects.append(reject(REJECTING_STAGE, f.source, "conflicting_transcripts",
                                           f"{f.where}: transcript {_shown(f.text)} for {rel!r} differs from {others}; "
                                           f"all {len(found)} are set aside and {untranscribed}; correct or delete "
                                           "the wrong ones, then run again"))
@@ -305,7 +306,7 @@ def pair_transcript(raw: Path, rel: str, rows: Sequence[MetadataRow], sidecar_re
         pairing.origin = "sidecar" if found[0].line is None else "metadata"
     fate = (f"{rel!r} keeps the transcript from {found[0].label}" if found else untranscribed)
     for source, reason, sentence, fix in problems:
-        pairing.rejects.append(reject(STAGE, source, reason, f"{sentence}; the transcript is set aside and {fate}; {fix}"))
+        pairing.rejects.append(reject(REJECTING_STAGE, source, reason, f"{sentence}; the transcript is set aside and {fate}; {fix}"))
     # A row is used when it gave the transcript (or said there is none) or the speaker.
     used = [r.line for r in rows if speaker_from_metadata or r.line not in set_aside]
     pairing.metadata_line = min(used) if used else None
