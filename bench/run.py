@@ -157,7 +157,7 @@ def main() -> int:
                    all_runs_wall_s=timings, all_runs_cpu_s=CPU_SECONDS,
                    ratios_method="median over rounds of the ratio within each round")
 
-    from pipeline.commands.validate import bench_validate
+    from bench.bench_validate import bench_validate
 
     with tempfile.TemporaryDirectory(dir=work) as scratch:
         results["validate"] = bench_validate(100_000, Path(scratch))

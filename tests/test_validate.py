@@ -21,9 +21,9 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
+from bench.bench_validate import bench_validate
 from pipeline.commands.cli import main
 from pipeline.commands.validate import (
-    bench_validate,
     exit_code,
     format_table,
     validate_out,

@@ -26,22 +26,28 @@ import pandas as pd
 import pyarrow as pa
 
 from pipeline import __version__
-from pipeline.commands.validate import (
-    CONFIG_FILE,
-    REJECTED_FILE,
-    STAGES,
-    SUBSETS,
-    check_out_folder,
-    load_resolved_config,
-    phone_inventory,
-    subset_file,
-)
-from pipeline.core.config import parse_duration_s
+from pipeline.commands.validate import check_out_folder, load_resolved_config, phone_inventory
+from pipeline.core.config import Config, parse_duration_s
 from pipeline.core.errors import ManifestError
 from pipeline.core.fsio import write_text_atomic
 from pipeline.core.manifest import read_manifest
+from pipeline.core.names import (
+    FLAGS,
+    HELDOUT,
+    LABELLED,
+    REJECTED,
+    REPORT_PAGE,
+    REPORT_SUMMARY,
+    RESOLVED_CONFIG,
+    STAGES,
+    SUBSETS,
+    UNLABELLED,
+    stage_rejects,
+    stage_summary,
+    subset_manifest,
+)
+from pipeline.stages.gates import GATES
 
-REPORT_DIR = "report"
 # 7 x 3.5 inches at 100 dpi: legible at the page's width without scaling down.
 FIGURE_IN = (7.0, 3.5)
 FIGURE_DPI = 100
@@ -51,9 +57,11 @@ SAMPLE_CLIPS = 8
 OUTLIER_CLIPS = 10
 SPEAKERS_PLOTTED = 30
 SPEAKERS_LISTED = 200
-SUBSET_COLOURS = {"labelled": "#1b6ca8", "unlabelled": "#9aa5b1", "heldout": "#d9822b"}
-QUALITY_FLAGS = ("noisy", "narrowband", "rate_outlier", "clipped", "near_duplicate", "upsampled", "peak_limited",
-                 "transcript_rejected", "heldout_untranscribed")
+SUBSET_COLOURS = {LABELLED: "#1b6ca8", UNLABELLED: "#9aa5b1", HELDOUT: "#d9822b"}
+# The flags in the order the page lists them: what the quality checks measured (the gates,
+# then near-duplicates) before the rest, in the schema's order.
+_MEASURED = (*GATES, "near_duplicate")
+QUALITY_FLAGS = (*_MEASURED, *(f for f in FLAGS if f not in _MEASURED))
 CAUTION = (
     "Voice recordings are personal data. Use this corpus only where every speaker consented to this "
     "use and the recordings' licence allows it, and follow the data-protection law that applies to you "
@@ -94,7 +102,7 @@ def load_clips(out: Path) -> pd.DataFrame:
     """
     parts = []
     for name in SUBSETS:
-        table = _read_optional(out / subset_file(name))
+        table = _read_optional(out / subset_manifest(name))
         if table is None:
             continue
         columns: dict[str, Any] = {}
@@ -116,9 +124,9 @@ def load_clips(out: Path) -> pd.DataFrame:
 
 def load_rejects(out: Path) -> pd.DataFrame:
     """manifests/rejected.parquet, or the stages' own reject files when it is missing."""
-    table = _read_optional(out / REJECTED_FILE)
+    table = _read_optional(out / REJECTED)
     if table is None:
-        tables = [t for t in (_read_optional(out / f"stages/{s}.rejects.parquet") for s in STAGES) if t is not None]
+        tables = [t for t in (_read_optional(out / stage_rejects(s)) for s in STAGES) if t is not None]
         table = pa.concat_tables([t.replace_schema_metadata(None) for t in tables]) if tables else None
     columns = ("source_path", "reason", "detail", "stage", "clip_id")
     if table is None:
@@ -182,30 +190,21 @@ def _finite(value: Any) -> Any:
     return value
 
 
-def build_summary(out: Path, *, clips: pd.DataFrame | None = None) -> dict[str, Any]:
-    """Every number the report shows, JSON-ready; the content of ``report/summary.json``.
-
-    ``clips`` is :func:`load_clips` of ``out`` when the caller has it already.
-    """
-    out = check_out_folder(out)
-    config, config_problems = load_resolved_config(out)
-    clips = load_clips(out) if clips is None else clips
-    rejects = load_rejects(out)
-    split_summary = _read_json(out / "stages/split.summary.json")
-    split_summary = split_summary if isinstance(split_summary, dict) else {}
-    boundary = config.text.word_boundary
-
-    present = {name: (out / subset_file(name)).exists() for name in SUBSETS}
+def _subsets_section(out: Path, clips: pd.DataFrame) -> dict[str, dict[str, Any]]:
+    """Clips, hours, speakers and groups per subset, and the held-out clips that can be scored."""
+    present = {name: (out / subset_manifest(name)).exists() for name in SUBSETS}
     subsets = {name: {**_describe(clips[clips["subset_file"] == name]), "file_present": present[name]}
                for name in SUBSETS}
-    heldout = clips[clips["subset_file"] == "heldout"]
+    heldout = clips[clips["subset_file"] == HELDOUT]
     scored = heldout[heldout["transcript"].notna()]
-    subsets["heldout"]["scored_clips"] = int(len(scored))
-    subsets["heldout"]["scored_hours"] = _hours(float(scored["duration_s"].fillna(0.0).sum()))
+    subsets[HELDOUT]["scored_clips"] = int(len(scored))
+    subsets[HELDOUT]["scored_hours"] = _hours(float(scored["duration_s"].fillna(0.0).sum()))
+    return subsets
 
-    inventory, inventory_source = phone_inventory(out, config)
-    inventory = {p for p in (inventory or set()) if p != boundary}
-    labelled = clips[clips["subset_file"] == "labelled"]
+
+def _tiers_section(labelled: pd.DataFrame, config: Config, inventory: set[str]) -> dict[str, dict[str, Any]]:
+    """Each labelled tier, smallest budget first: its clips and which phones it covers."""
+    boundary = config.text.word_boundary
     tiers = {}
     for tier in sorted(config.split.labelled_budgets, key=parse_duration_s):
         part = labelled[labelled["tiers"].map(lambda ts, t=tier: t in ts).astype(bool)]
@@ -217,35 +216,91 @@ def build_summary(out: Path, *, clips: pd.DataFrame | None = None) -> dict[str, 
             "phone_coverage": round(len(set(counts) & inventory) / len(inventory), 4) if inventory else None,
             "missing_phones": sorted(inventory - set(counts)),
         }
+    return tiers
 
+
+def _quality_section(clips: pd.DataFrame, split_summary: dict[str, Any]) -> dict[str, Any]:
+    """Clips per flag and subset, the split stage's gate counts and the near-duplicate pairs."""
     flat = clips[["subset_file", "quality_flags"]].explode("quality_flags").dropna()
     per_flag = flat.groupby(["quality_flags", "subset_file"]).size()
     flags = {f: {name: int(per_flag.get((f, name), 0)) for name in SUBSETS} for f in QUALITY_FLAGS}
     pairs = split_summary.get("near_duplicate_pairs")
     if not isinstance(pairs, list):  # no split summary: the pairs the manifests name, without similarity
         named = clips[clips["near_duplicate_of"].notna()]
-        pairs = [{"clips": [a, b], "similarity": None} for a, b in zip(named["clip_id"], named["near_duplicate_of"], strict=True)]
+        pairs = [{"clips": [a, b], "similarity": None}
+                 for a, b in zip(named["clip_id"], named["near_duplicate_of"], strict=True)]
+    return {"flags": flags, "gates_from_split": split_summary.get("gates"), "near_duplicate_pairs": pairs}
 
-    speakers: dict[str, dict[str, float]] = {}
-    if len(clips):
-        per = clips.groupby(["speaker", "subset_file"])["duration_s"].sum().unstack(fill_value=0.0)
-        per = per.reindex(columns=list(SUBSETS), fill_value=0.0)
-        per = per.loc[per.sum(axis=1).sort_values(ascending=False, kind="stable").index]
-        speakers = {str(spk): {name: _hours(float(row[name])) for name in SUBSETS} for spk, row in per.iterrows()}
 
-    reasons = rejects.groupby("reason").size().sort_values(ascending=False, kind="stable") if len(rejects) else pd.Series(dtype=int)
+def _speakers_section(clips: pd.DataFrame) -> dict[str, dict[str, float]]:
+    """Hours per speaker and subset, the speaker with the most audio first."""
+    if not len(clips):
+        return {}
+    per = clips.groupby(["speaker", "subset_file"])["duration_s"].sum().unstack(fill_value=0.0)
+    per = per.reindex(columns=list(SUBSETS), fill_value=0.0)
+    per = per.loc[per.sum(axis=1).sort_values(ascending=False, kind="stable").index]
+    return {str(spk): {name: _hours(float(row[name])) for name in SUBSETS} for spk, row in per.iterrows()}
+
+
+def _rejects_section(rejects: pd.DataFrame) -> dict[str, Any]:
+    """Rejects per reason (most frequent first) and per stage, with a few examples of each reason."""
+    if not len(rejects):
+        return {"total": 0, "by_reason": {}, "by_stage": {}, "examples": {}}
+    reasons = rejects.groupby("reason").size().sort_values(ascending=False, kind="stable")
     examples = {}
     for reason in reasons.index:
         some = rejects[rejects["reason"] == reason].sort_values("source_path", kind="stable").head(EXAMPLES_PER_REASON)
         examples[str(reason)] = [{"source_path": r.source_path, "stage": r.stage, "detail": r.detail}
                                  for r in some.itertuples()]
+    return {
+        "total": int(len(rejects)),
+        "by_reason": {str(k): int(v) for k, v in reasons.items()},
+        "by_stage": {str(k): int(v) for k, v in rejects.groupby("stage").size().items()},
+        "examples": examples,
+    }
 
+
+def build_summary(out: Path, *, clips: pd.DataFrame | None = None) -> dict[str, Any]:
+    """Every number the report shows, JSON-ready; the content of ``report/summary.json``.
+
+    Parameters
+    ----------
+    out : Path
+        A folder written by ``loam prepare`` (UsageError otherwise).
+    clips : pandas.DataFrame, optional
+        :func:`load_clips` of ``out``, when the caller has it already.
+
+    Returns
+    -------
+    dict
+        One section per part of the page (``subsets``, ``tiers``, ``rejects``, ...);
+        non-finite numbers are None.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> from pipeline.core.manifest import empty_table, write_manifest
+    >>> with tempfile.TemporaryDirectory() as tmp:
+    ...     write_manifest(Path(tmp, REJECTED), "rejected", empty_table("rejected"), metadata={})
+    ...     summary = build_summary(Path(tmp))
+    >>> summary["totals"]["clips"], summary["rejects"]["total"], summary["subsets"][LABELLED]["file_present"]
+    (0, 0, False)
+    """
+    out = check_out_folder(out)
+    config, config_problems = load_resolved_config(out)
+    clips = load_clips(out) if clips is None else clips
+    split_summary = _read_json(out / stage_summary("split"))
+    split_summary = split_summary if isinstance(split_summary, dict) else {}
+    boundary = config.text.word_boundary
+    inventory, inventory_source = phone_inventory(out, config)
+    inventory = {p for p in (inventory or set()) if p != boundary}
+    labelled = clips[clips["subset_file"] == LABELLED]
     transcribed = clips[clips["speaking_rate"].notna()]
     return _finite({
         "loam_version": __version__,
         "totals": {**_describe(clips)},
-        "subsets": subsets,
-        "tiers": tiers,
+        "subsets": _subsets_section(out, clips),
+        "tiers": _tiers_section(labelled, config, inventory),
         "durations": {name: _stats(clips.loc[clips["subset_file"] == name, "duration_s"]) for name in SUBSETS},
         "loudness": {"target_lufs": config.audio.target_lufs,
                      "before": _stats(clips["loudness_in_lufs"]), "after": _stats(clips["loudness_lufs"])},
@@ -255,21 +310,12 @@ def build_summary(out: Path, *, clips: pd.DataFrame | None = None) -> dict[str, 
             "inventory": sorted(inventory),
             "labelled_counts": _phone_counts(labelled["phones"], boundary),
         },
-        "rejects": {
-            "total": int(len(rejects)),
-            "by_reason": {str(k): int(v) for k, v in reasons.items()},
-            "by_stage": {str(k): int(v) for k, v in rejects.groupby("stage").size().items()} if len(rejects) else {},
-            "examples": examples,
-        },
-        "speakers": speakers,
-        "quality": {
-            "flags": flags,
-            "gates_from_split": split_summary.get("gates"),
-            "near_duplicate_pairs": pairs,
-        },
+        "rejects": _rejects_section(load_rejects(out)),
+        "speakers": _speakers_section(clips),
+        "quality": _quality_section(clips, split_summary),
         "shortfalls": split_summary.get("shortfalls"),
         "changes": split_summary.get("changes"),
-        "config": _read_json(out / CONFIG_FILE) if not config_problems else None,
+        "config": _read_json(out / RESOLVED_CONFIG) if not config_problems else None,
         "config_sha256": config.sha256() if not config_problems else None,
         "versions": versions(),
     })
@@ -487,114 +533,168 @@ code { font-size: .9rem; }
 """
 
 
-def render_html(summary: dict[str, Any], clips: pd.DataFrame, figures: dict[str, str | None]) -> str:
-    """The report page for ``summary`` (from :func:`build_summary`)."""
-    s = summary
-    parts: list[str] = []
-    add = parts.append
-    add("<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">"
-        "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
-        f"<title>Loam corpus report</title><style>{CSS}</style></head><body>")
+def _head_html(s: dict[str, Any]) -> list[str]:
     t = s["totals"]
-    add("<h1>Loam corpus report</h1>")
-    add(f"<p>{t['clips']} clips, {hms(t['seconds'])} ({_num(t['hours'], 2)} h), {t['speakers']} speakers; "
-        f"{s['rejects']['total']} inputs set aside. Loam {esc(s['loam_version'])}.</p>")
-    add(f'<p class="caution"><strong>Personal data.</strong> {esc(CAUTION)}</p>')
+    return [
+        "<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">"
+        "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
+        f"<title>Loam corpus report</title><style>{CSS}</style></head><body>",
+        "<h1>Loam corpus report</h1>",
+        f"<p>{t['clips']} clips, {hms(t['seconds'])} ({_num(t['hours'], 2)} h), {t['speakers']} speakers; "
+        f"{s['rejects']['total']} inputs set aside. Loam {esc(s['loam_version'])}.</p>",
+        f'<p class="caution"><strong>Personal data.</strong> {esc(CAUTION)}</p>',
+    ]
 
-    add("<h2>Subsets</h2>")
+
+def _subsets_html(s: dict[str, Any]) -> list[str]:
     rows = [[name, v["clips"], _num(v["hours"], 3), hms(v["seconds"]), v["speakers"], v["groups"],
              v["transcribed_clips"], "" if v["file_present"] else "file missing"] for name, v in s["subsets"].items()]
-    add(table(["subset", "clips", "hours", "h:mm:ss", "speakers", "groups", "transcribed", "note"], rows))
-    h = s["subsets"]["heldout"]
-    add(f"<p>Held-out clips with a transcript (scored): {h['scored_clips']}, {_num(h['scored_hours'], 3)} h.</p>")
+    h = s["subsets"][HELDOUT]
+    return [
+        "<h2>Subsets</h2>",
+        table(["subset", "clips", "hours", "h:mm:ss", "speakers", "groups", "transcribed", "note"], rows),
+        f"<p>Held-out clips with a transcript (scored): {h['scored_clips']}, {_num(h['scored_hours'], 3)} h.</p>",
+    ]
 
-    add("<h2>Labelled tiers</h2>")
+
+def _tiers_html(s: dict[str, Any]) -> list[str]:
     rows = [[tier, hms(v["budget_s"]), v["clips"], hms(v["seconds"]), v["speakers"], v["phones"],
              "none" if v["phone_coverage"] is None else f"{100 * v['phone_coverage']:.1f} %",
              " ".join(v["missing_phones"]) or "none"] for tier, v in s["tiers"].items()]
-    add(table(["tier", "budget", "clips", "selected", "speakers", "phones", "phone coverage", "missing phones"], rows))
+    parts = ["<h2>Labelled tiers</h2>",
+             table(["tier", "budget", "clips", "selected", "speakers", "phones", "phone coverage", "missing phones"],
+                   rows)]
     if s["shortfalls"]:
-        add(table(["tier", "budget (s)", "selected (s)", "short by (s)"],
-                  [[x.get("tier"), x.get("budget_s"), x.get("selected_s"), x.get("shortfall_s")] for x in s["shortfalls"]
-                   if isinstance(x, dict)]))
+        parts.append(table(["tier", "budget (s)", "selected (s)", "short by (s)"],
+                           [[x.get("tier"), x.get("budget_s"), x.get("selected_s"), x.get("shortfall_s")]
+                            for x in s["shortfalls"] if isinstance(x, dict)]))
+    return parts
 
-    add("<h2>Durations</h2>")
-    add(_img(figures.get("durations"), "Clip duration by subset"))
-    add(table(["subset", "clips", "min (s)", "median (s)", "95th pct (s)", "max (s)"],
-              [r for name in SUBSETS for r in _stats_rows(name, s["durations"][name])]))
 
-    add("<h2>Loudness</h2>")
-    add(_img(figures.get("loudness"), "Integrated loudness"))
-    add(table(["loudness", "clips", "min (LUFS)", "median (LUFS)", "95th pct (LUFS)", "max (LUFS)"],
-              _stats_rows("before normalisation", s["loudness"]["before"])
-              + _stats_rows("as written", s["loudness"]["after"])))
-    add(f"<p>Target: {_num(s['loudness']['target_lufs'], 1)} LUFS.</p>")
-
-    add("<h2>Speaking rate</h2>")
-    add(_img(figures.get("speaking_rate"), "Speaking rate"))
-    add(table(["", "clips", "min", "median", "95th pct", "max"],
-              _stats_rows("phones per second", s["speaking_rate"])))
+def _measures_html(s: dict[str, Any], clips: pd.DataFrame, figures: dict[str, str | None]) -> list[str]:
+    """Durations, loudness and speaking rate: a plot and a table of each."""
     outliers = clips[clips["rate_z"].notna()].copy()
     outliers["abs_z"] = outliers["rate_z"].abs()
     outliers = outliers.sort_values(["abs_z", "clip_id"], ascending=[False, True], kind="stable").head(OUTLIER_CLIPS)
-    add("<h3>Clips furthest from their speaker's rate</h3>")
-    add(table(["clip", "speaker", "subset", "phones/s", "z", "transcript"],
+    return [
+        "<h2>Durations</h2>",
+        _img(figures.get("durations"), "Clip duration by subset"),
+        table(["subset", "clips", "min (s)", "median (s)", "95th pct (s)", "max (s)"],
+              [r for name in SUBSETS for r in _stats_rows(name, s["durations"][name])]),
+        "<h2>Loudness</h2>",
+        _img(figures.get("loudness"), "Integrated loudness"),
+        table(["loudness", "clips", "min (LUFS)", "median (LUFS)", "95th pct (LUFS)", "max (LUFS)"],
+              _stats_rows("before normalisation", s["loudness"]["before"])
+              + _stats_rows("as written", s["loudness"]["after"])),
+        f"<p>Target: {_num(s['loudness']['target_lufs'], 1)} LUFS.</p>",
+        "<h2>Speaking rate</h2>",
+        _img(figures.get("speaking_rate"), "Speaking rate"),
+        table(["", "clips", "min", "median", "95th pct", "max"], _stats_rows("phones per second", s["speaking_rate"])),
+        "<h3>Clips furthest from their speaker's rate</h3>",
+        table(["clip", "speaker", "subset", "phones/s", "z", "transcript"],
               [[r.clip_id, r.speaker, r.subset_file, _num(r.speaking_rate, 2), _num(r.rate_z, 2), r.transcript]
-               for r in outliers.itertuples()]))
+               for r in outliers.itertuples()]),
+    ]
 
-    add("<h2>Phones</h2>")
+
+def _phones_html(s: dict[str, Any], clips: pd.DataFrame, figures: dict[str, str | None]) -> list[str]:
     p = s["phones"]
-    add(f"<p>Inventory: {len(p['inventory'])} phones"
-        f"{' from ' + esc(p['inventory_source']) if p['inventory_source'] else ''}.</p>")
-    add(_img(figures.get("phones"), "Phone frequency in labelled"))
-
-    add("<h2>Sample of labelled clips</h2>")
-    sample = clips[clips["subset_file"] == "labelled"].sort_values("clip_id", kind="stable").head(SAMPLE_CLIPS)
-    add(table(["clip", "speaker", "duration (s)", "transcript", "phones"],
+    sample = clips[clips["subset_file"] == LABELLED].sort_values("clip_id", kind="stable").head(SAMPLE_CLIPS)
+    return [
+        "<h2>Phones</h2>",
+        f"<p>Inventory: {len(p['inventory'])} phones"
+        f"{' from ' + esc(p['inventory_source']) if p['inventory_source'] else ''}.</p>",
+        _img(figures.get("phones"), "Phone frequency in labelled"),
+        "<h2>Sample of labelled clips</h2>",
+        table(["clip", "speaker", "duration (s)", "transcript", "phones"],
               [[r.clip_id, r.speaker, _num(r.duration_s, 2), r.transcript, " ".join(r.phones)]
-               for r in sample.itertuples()]))
+               for r in sample.itertuples()]),
+    ]
 
-    add("<h2>Rejected inputs</h2>")
+
+def _rejects_html(s: dict[str, Any]) -> list[str]:
     rj = s["rejects"]
-    add(table(["reason", "inputs"], list(rj["by_reason"].items())))
+    parts = ["<h2>Rejected inputs</h2>", table(["reason", "inputs"], list(rj["by_reason"].items()))]
     if rj["by_stage"]:
-        add("<p>By stage: " + esc(", ".join(f"{k} {v}" for k, v in rj["by_stage"].items())) + ".</p>")
+        parts.append("<p>By stage: " + esc(", ".join(f"{k} {v}" for k, v in rj["by_stage"].items())) + ".</p>")
     for reason, items in rj["examples"].items():
-        add(f"<h3>{esc(reason)}</h3>")
-        add(table(["input", "stage", "detail"], [[x["source_path"], x["stage"], x["detail"]] for x in items]))
+        parts.append(f"<h3>{esc(reason)}</h3>")
+        parts.append(table(["input", "stage", "detail"], [[x["source_path"], x["stage"], x["detail"]] for x in items]))
+    return parts
 
-    add("<h2>Speakers</h2>")
-    add(_img(figures.get("speakers"), "Audio per speaker"))
+
+def _speakers_html(s: dict[str, Any], figures: dict[str, str | None]) -> list[str]:
     spk = list(s["speakers"].items())
-    add(table(["speaker", *[f"{n} (h:mm:ss)" for n in SUBSETS]],
-              [[k, *[hms(3600 * v[n]) for n in SUBSETS]] for k, v in spk[:SPEAKERS_LISTED]]))
+    parts = [
+        "<h2>Speakers</h2>",
+        _img(figures.get("speakers"), "Audio per speaker"),
+        table(["speaker", *[f"{n} (h:mm:ss)" for n in SUBSETS]],
+              [[k, *[hms(3600 * v[n]) for n in SUBSETS]] for k, v in spk[:SPEAKERS_LISTED]]),
+    ]
     if len(spk) > SPEAKERS_LISTED:
-        add(f"<p>and {len(spk) - SPEAKERS_LISTED} more speakers (all in summary.json).</p>")
+        parts.append(f"<p>and {len(spk) - SPEAKERS_LISTED} more speakers (all in summary.json).</p>")
+    return parts
 
-    add("<h2>Quality gates</h2>")
+
+def _quality_html(s: dict[str, Any]) -> list[str]:
     q = s["quality"]
-    add(table(["flag", *SUBSETS], [[f, *[v[n] for n in SUBSETS]] for f, v in q["flags"].items()]))
+    parts = ["<h2>Quality gates</h2>",
+             table(["flag", *SUBSETS], [[f, *[v[n] for n in SUBSETS]] for f, v in q["flags"].items()])]
     if q["gates_from_split"]:
-        add("<p>Counted by the split stage over every clip, including clips it set aside:</p>")
-        add(_value_table(q["gates_from_split"], ["gate", "clips"]))
-    add(f"<h3>Near-duplicate pairs ({len(q['near_duplicate_pairs'])})</h3>")
-    add(table(["clip", "near-duplicate of", "similarity"],
-              [[*(x.get("clips") or ["", ""])[:2], _num(x.get("similarity"), 3)]
-               for x in q["near_duplicate_pairs"][:100] if isinstance(x, dict)]))
+        parts.append("<p>Counted by the split stage over every clip, including clips it set aside:</p>")
+        parts.append(_value_table(q["gates_from_split"], ["gate", "clips"]))
+    parts.append(f"<h3>Near-duplicate pairs ({len(q['near_duplicate_pairs'])})</h3>")
+    parts.append(table(["clip", "near-duplicate of", "similarity"],
+                       [[*(x.get("clips") or ["", ""])[:2], _num(x.get("similarity"), 3)]
+                        for x in q["near_duplicate_pairs"][:100] if isinstance(x, dict)]))
+    return parts
 
-    add("<h2>Changes in the last rebuild</h2>")
-    add(_value_table(s["changes"], ["change", "clips"]) if s["changes"]
-        else '<p class="none">none recorded (no split summary)</p>')
 
-    add("<h2>Configuration</h2>")
+def _provenance_html(s: dict[str, Any]) -> list[str]:
+    """The last rebuild's changes, the configuration and the versions."""
+    parts = ["<h2>Changes in the last rebuild</h2>",
+             _value_table(s["changes"], ["change", "clips"]) if s["changes"]
+             else '<p class="none">none recorded (no split summary)</p>',
+             "<h2>Configuration</h2>"]
     if s["config"] is None:
-        add(f'<p class="none">none: {esc(CONFIG_FILE)} is missing or unreadable</p>')
+        parts.append(f'<p class="none">none: {esc(RESOLVED_CONFIG)} is missing or unreadable</p>')
     else:
-        add(f"<p>SHA-256 {esc(s['config_sha256'])}</p>")
-        add(f"<pre>{esc(json.dumps(s['config'], indent=2, sort_keys=True, ensure_ascii=False))}</pre>")
-    add("<h2>Versions</h2>")
-    add(table(["component", "version"], list(s["versions"].items())))
-    add("</body></html>\n")
+        parts.append(f"<p>SHA-256 {esc(s['config_sha256'])}</p>")
+        parts.append(f"<pre>{esc(json.dumps(s['config'], indent=2, sort_keys=True, ensure_ascii=False))}</pre>")
+    parts += ["<h2>Versions</h2>", table(["component", "version"], list(s["versions"].items()))]
+    return parts
+
+
+def render_html(summary: dict[str, Any], clips: pd.DataFrame, figures: dict[str, str | None]) -> str:
+    """The report page for ``summary``, one section after another.
+
+    Parameters
+    ----------
+    summary : dict
+        From :func:`build_summary`.
+    clips : pandas.DataFrame
+        From :func:`load_clips`: the rows behind the sample and outlier tables.
+    figures : dict of str to str or None
+        Base64 PNG of each plot (``durations``, ``loudness``, ``speaking_rate``, ``phones``,
+        ``speakers``); None or absent shows "none" in its place.
+
+    Returns
+    -------
+    str
+        A self-contained HTML page; every value from the inputs is escaped.
+    """
+    parts = [
+        *_head_html(summary),
+        *_subsets_html(summary),
+        *_tiers_html(summary),
+        *_measures_html(summary, clips, figures),
+        *_phones_html(summary, clips, figures),
+        *_rejects_html(summary),
+        *_speakers_html(summary, figures),
+        *_quality_html(summary),
+        *_provenance_html(summary),
+        "</body></html>\n",
+    ]
     return "".join(parts)
 
 
@@ -614,8 +714,13 @@ def write_report(out: Path) -> Path:
 
     Examples
     --------
-    >>> write_report(Path("build/demo"))  # doctest: +SKIP
-    PosixPath('build/demo/report/index.html')
+    >>> import tempfile
+    >>> from pipeline.core.manifest import empty_table, write_manifest
+    >>> with tempfile.TemporaryDirectory() as tmp:
+    ...     write_manifest(Path(tmp, REJECTED), "rejected", empty_table("rejected"), metadata={})
+    ...     page = write_report(Path(tmp))
+    ...     print(page.relative_to(tmp), "<h2>Subsets</h2>" in page.read_text(encoding="utf-8"))
+    report/index.html True
     """
     out = check_out_folder(Path(out))
     clips = load_clips(out)
@@ -628,8 +733,7 @@ def write_report(out: Path) -> Path:
         "speakers": plot_speakers(summary["speakers"]),
     }
     page = render_html(summary, clips, figures)
-    folder = out / REPORT_DIR
-    write_text_atomic(folder / "summary.json", json.dumps(summary, indent=2, ensure_ascii=False, allow_nan=False) + "\n")
-    write_text_atomic(folder / "index.html", page)
-    return folder / "index.html"
-
+    write_text_atomic(out / REPORT_SUMMARY,
+                      json.dumps(summary, indent=2, ensure_ascii=False, allow_nan=False) + "\n")
+    write_text_atomic(out / REPORT_PAGE, page)
+    return out / REPORT_PAGE

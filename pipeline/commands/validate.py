@@ -29,7 +29,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from pipeline.core.config import Config, build_config, parse_duration_s
-from pipeline.core.errors import ConfigError, ManifestError, ParameterError, UsageError
+from pipeline.core.errors import ConfigError, ManifestError, UsageError
 from pipeline.core.manifest import (
     SHOWN_FAILURES,
     Problem,
@@ -38,15 +38,23 @@ from pipeline.core.manifest import (
     read_manifest,
     read_metadata,
 )
+from pipeline.core.names import (
+    HELDOUT,
+    LABELLED,
+    REJECTED,
+    RESOLVED_CONFIG,
+    STAGES,
+    SUBSETS,
+    UNLABELLED,
+    stage_manifest,
+    stage_rejects,
+    subset_manifest,
+)
 from pipeline.core.schemas_io import SCHEMA_DIR
 from pipeline.signal.declared import flac_streaminfo
 from pipeline.stages import gates
 
-SUBSETS = ("labelled", "unlabelled", "heldout")
-TRAINING = ("labelled", "unlabelled")
-STAGES = ("ingest", "audio", "text", "split")
-CONFIG_FILE = "config.resolved.json"
-REJECTED_FILE = "manifests/rejected.parquet"
+TRAINING = (LABELLED, UNLABELLED)
 # A re-measured clip may differ from its manifest by this much: the 16-bit rounding of a
 # written clip moves BS.1770 loudness by hundredths of an LU, so 0.5 LU only trips on a
 # clip that was edited or replaced (common practice, no source).
@@ -56,10 +64,6 @@ LOUDNESS_TOLERANCE_LU = 0.5
 # join it.
 ALWAYS_GATED_FLAGS = ("transcript_rejected",)
 _FOUND_CHARS = 70
-
-
-def subset_file(name: str) -> str:
-    return f"manifests/{name}.parquet"
 
 
 @dataclass
@@ -141,9 +145,9 @@ def check_out_folder(out: Path) -> Path:
         raise UsageError(f"OUT {str(out)!r} does not exist")
     if not out.is_dir():
         raise UsageError(f"OUT {str(out)!r} is not a folder")
-    if not any((out / name).exists() for name in (CONFIG_FILE, "manifests", "stages")):
+    if not any((out / name).exists() for name in (RESOLVED_CONFIG, "manifests", "stages")):
         raise UsageError(
-            f"OUT {str(out)!r} is not a Loam output: it has no {CONFIG_FILE}, manifests/ or stages/ "
+            f"OUT {str(out)!r} is not a Loam output: it has no {RESOLVED_CONFIG}, manifests/ or stages/ "
             "(run 'loam prepare RAW OUT' first)"
         )
     return out
@@ -151,18 +155,18 @@ def check_out_folder(out: Path) -> Path:
 
 def load_resolved_config(out: Path) -> tuple[Config, list[Problem]]:
     """The config in force for ``out`` (defaults, with a finding, when it cannot be read)."""
-    path = out / CONFIG_FILE
+    path = out / RESOLVED_CONFIG
     try:
         data = json.loads(path.read_text(encoding="utf-8"))
         if not isinstance(data, dict):
             raise ValueError("not a JSON object")
-        return build_config(data, source=CONFIG_FILE), []
+        return build_config(data, source=RESOLVED_CONFIG), []
     except FileNotFoundError:
         found = "no such file"
     except (OSError, ValueError, ConfigError) as exc:
         found = _clip(str(exc), 200)
     return build_config({}, source="<defaults>"), [
-        Problem("error", "config", CONFIG_FILE, None, None, found,
+        Problem("error", "config", RESOLVED_CONFIG, None, None, found,
                 "the resolved configuration written by loam prepare (checks below use the defaults)")
     ]
 
@@ -194,7 +198,7 @@ def _by_file(frame: pd.DataFrame, mask: Any) -> Iterable[tuple[str, pd.DataFrame
     for name in SUBSETS:
         part = bad[bad["_file"] == name]
         if len(part):
-            yield subset_file(name), part
+            yield subset_manifest(name), part
 
 
 def _frame_problems(
@@ -286,7 +290,7 @@ def _check_config_hash(out: Path, rel: str, config: Config) -> list[Problem]:
         return []
     if recorded and recorded != config.sha256():
         return [Problem("warning", "config_hash", rel, None, None, f"config_sha256 {recorded[:12]}...",
-                        f"{config.sha256()[:12]}..., the hash of {CONFIG_FILE} (manifest written under another config)")]
+                        f"{config.sha256()[:12]}..., the hash of {RESOLVED_CONFIG} (manifest written under another config)")]
     return []
 
 
@@ -307,7 +311,7 @@ def check_clip_ids(s: _Subsets) -> list[Problem]:
 
     def found(r: pd.Series) -> str:
         origin = first.loc[r["clip_id"]]
-        return f"{_text(r['clip_id'])}, also in {subset_file(origin['_file'])} row {origin['_row']}"
+        return f"{_text(r['clip_id'])}, also in {subset_manifest(origin['_file'])} row {origin['_row']}"
 
     return _frame_problems("error", "clip_id_unique", f, dup, "clip_id", found,
                            "each clip_id once across the three subsets")
@@ -315,10 +319,10 @@ def check_clip_ids(s: _Subsets) -> list[Problem]:
 
 def _heldout_leak(s: _Subsets, column: str, check: str, severity: str, what: str) -> list[Problem]:
     f = s.frame([column])
-    held = set(f.loc[f["_file"] == "heldout", column].dropna())
+    held = set(f.loc[f["_file"] == HELDOUT, column].dropna())
     mask = f["_file"].isin(TRAINING) & f[column].isin(held)
     return _frame_problems(severity, check, f, mask, column,
-                           lambda r: f"{_text(r[column])}, also in {subset_file('heldout')}",
+                           lambda r: f"{_text(r[column])}, also in {subset_manifest(HELDOUT)}",
                            f"no {what} of heldout in labelled or unlabelled")
 
 
@@ -345,16 +349,16 @@ def check_audio_leak(s: _Subsets) -> list[Problem]:
 
     def found(r: pd.Series) -> str:
         origin = first.loc[r["audio_sha256"]]
-        return f"audio {r['audio_sha256'][:12]}... identical to {subset_file(origin['_file'])} row {origin['_row']}"
+        return f"audio {r['audio_sha256'][:12]}... identical to {subset_manifest(origin['_file'])} row {origin['_row']}"
 
     return _frame_problems("error", "audio_leak", f, mask, "audio_sha256", found,
                            "no audio content in two subsets")
 
 
 def check_text_leak(s: _Subsets) -> list[Problem]:
-    f = s.frame(["norm_text"], names=("labelled", "heldout"))
-    seen = set(f.loc[f["_file"] == "labelled", "norm_text"].dropna())
-    mask = (f["_file"] == "heldout") & f["norm_text"].isin(seen)
+    f = s.frame(["norm_text"], names=(LABELLED, HELDOUT))
+    seen = set(f.loc[f["_file"] == LABELLED, "norm_text"].dropna())
+    mask = (f["_file"] == HELDOUT) & f["norm_text"].isin(seen)
     return _frame_problems("warning", "text_leak", f, mask, "norm_text",
                            lambda r: f"{_text(r['norm_text'])}, also transcribed in labelled",
                            "held-out sentences unseen in labelled (a shared sentence flatters held-out scores)")
@@ -362,15 +366,15 @@ def check_text_leak(s: _Subsets) -> list[Problem]:
 
 def check_labelled_text(s: _Subsets) -> list[Problem]:
     problems: list[Problem] = []
-    f = s.frame(["transcript", "norm_text"], names=("labelled",))
+    f = s.frame(["transcript", "norm_text"], names=(LABELLED,))
     for column in ("transcript", "norm_text"):
         empty = f[column].isna() | (f[column].fillna("").str.strip() == "")
         problems += _frame_problems("error", "labelled_text", f, empty, column,
                                     lambda r, c=column: _text(r[c]), f"a {column} on every labelled clip")
-    if s.usable("labelled", "phones"):
-        phones = s.column("labelled", "phones")
+    if s.usable(LABELLED, "phones"):
+        phones = s.column(LABELLED, "phones")
         bad = np.asarray(pc.fill_null(pc.equal(pc.list_value_length(phones), 0), True), dtype=bool)
-        problems += _row_problems("error", "labelled_text", subset_file("labelled"), np.flatnonzero(bad), "phones",
+        problems += _row_problems("error", "labelled_text", subset_manifest(LABELLED), np.flatnonzero(bad), "phones",
                                   lambda r: _text(phones[r].as_py()), "a phone sequence on every labelled clip")
     return problems
 
@@ -395,7 +399,7 @@ def phone_inventory(out: Path, config: Config) -> tuple[set[str] | None, str]:
     the stress digits 0, 1, 2 when ``text.keep_stress``) plus the word-boundary symbol.
     ``None`` when neither applies (a lexicon or graphemes build without its text stage).
     """
-    path = out / "stages/text.parquet"
+    path = out / stage_manifest("text")
     if path.exists():
         try:
             phones = read_manifest(path).column("phones")
@@ -417,7 +421,7 @@ def check_phones(s: _Subsets, out: Path, config: Config) -> list[Problem]:
     inventory, source = phone_inventory(out, config)
     names = [n for n in SUBSETS if s.usable(n, "phones")]
     if inventory is None:
-        return [Problem("warning", "phone_inventory", subset_file(n), None, "phones",
+        return [Problem("warning", "phone_inventory", subset_manifest(n), None, "phones",
                         f"no stages/text.parquet to take the {config.text.backend} backend's phones from",
                         "an inventory to check the phones against") for n in names]
     problems: list[Problem] = []
@@ -435,7 +439,7 @@ def check_phones(s: _Subsets, out: Path, config: Config) -> list[Problem]:
         rows = per_phone["min"].to_numpy()
         by_row = {int(r): (p, int(n)) for p, r, n in zip(per_phone.index, per_phone["min"], per_phone["nunique"], strict=True)}
         problems += _row_problems(
-            "error", "phone_inventory", subset_file(name), sorted(rows), "phones",
+            "error", "phone_inventory", subset_manifest(name), sorted(rows), "phones",
             lambda r, by_row=by_row: f"phone {by_row[r][0]!r} (in {by_row[r][1]} rows, first here)",
             f"only {source}")
     return problems
@@ -464,8 +468,8 @@ def check_tiers(s: _Subsets, config: Config) -> list[Problem]:
         if not s.usable(name, "tiers"):
             continue
         arr = s.column(name, "tiers")
-        file = subset_file(name)
-        if name != "labelled":
+        file = subset_manifest(name)
+        if name != LABELLED:
             has = np.asarray(pc.fill_null(pc.greater(pc.list_value_length(arr), 0), False), dtype=bool)
             problems += _row_problems("error", "tiers", file, np.flatnonzero(has), "tiers",
                                       lambda r, arr=arr: _text(arr[r].as_py()), "no tiers outside labelled")
@@ -492,7 +496,7 @@ def check_tiers(s: _Subsets, config: Config) -> list[Problem]:
 
 def _check_budgets(s: _Subsets, budgets: list[str], member: dict[str, np.ndarray]) -> list[Problem]:
     problems = []
-    durations = np.asarray(s.column("labelled", "duration_s").fill_null(0.0), dtype=np.float64)
+    durations = np.asarray(s.column(LABELLED, "duration_s").fill_null(0.0), dtype=np.float64)
     if not durations.size:
         return problems  # an empty labelled subset is one finding (check_empty_subsets), not one per tier
     # "Within one clip": a greedy fill stops when the next clip would not fit, or just past
@@ -503,16 +507,16 @@ def _check_budgets(s: _Subsets, budgets: list[str], member: dict[str, np.ndarray
         total = float(durations[member[budget]].sum())
         found = f"{total:.1f} s in {int(member[budget].sum())} clips"
         if target > 0 and not member[budget].any():
-            problems.append(Problem("error", "tier_empty", subset_file("labelled"), None, "tiers",
+            problems.append(Problem("error", "tier_empty", subset_manifest(LABELLED), None, "tiers",
                                     f"tier {budget}: no clip",
                                     f"clips up to {target:.0f} s (split.labelled_budgets); a tier the config "
                                     "asks for that holds nothing cannot be trained on"))
         elif total > target + slack:
-            problems.append(Problem("error", "tier_budget", subset_file("labelled"), None, "tiers",
+            problems.append(Problem("error", "tier_budget", subset_manifest(LABELLED), None, "tiers",
                                     f"tier {budget}: {found}",
                                     f"at most {target:.0f} s plus one clip ({slack:.1f} s)"))
         elif total < target - slack:
-            problems.append(Problem("warning", "tier_budget", subset_file("labelled"), None, "tiers",
+            problems.append(Problem("warning", "tier_budget", subset_manifest(LABELLED), None, "tiers",
                                     f"tier {budget}: {found}, short of the budget",
                                     f"{target:.0f} s within one clip ({slack:.1f} s); not enough eligible transcribed audio"))
     return problems
@@ -531,25 +535,25 @@ def check_empty_subsets(s: _Subsets, config: Config) -> list[Problem]:
     trained or scored on it. (Unlabelled is whatever is left, and may be empty.)"""
     problems: list[Problem] = []
     budgets = [b for b in config.split.labelled_budgets if parse_duration_s(b) > 0]
-    why = ("none qualified: see manifests/rejected.parquet (rejected transcripts) and the quality_flags of "
+    why = (f"none qualified: see {REJECTED} (rejected transcripts) and the quality_flags of "
            "the other subsets (transcript_rejected, gates)")
-    labelled = s.tables.get("labelled")
+    labelled = s.tables.get(LABELLED)
     if budgets and labelled is not None and labelled.num_rows == 0:
-        problems.append(Problem("error", "subset_empty", subset_file("labelled"), None, None, "no clip",
+        problems.append(Problem("error", "subset_empty", subset_manifest(LABELLED), None, None, "no clip",
                                 f"clips for the tiers {budgets} of split.labelled_budgets; {why}"))
-    heldout = s.tables.get("heldout")
+    heldout = s.tables.get(HELDOUT)
     spec = config.split.heldout
     if heldout is None or not _asks_for_heldout(spec):
         return problems
     if heldout.num_rows == 0:
-        problems.append(Problem("error", "subset_empty", subset_file("heldout"), None, None, "no clip",
+        problems.append(Problem("error", "subset_empty", subset_manifest(HELDOUT), None, None, "no clip",
                                 f"held-out clips for split.heldout = {spec!r}; {why}"))
-    elif s.usable("heldout", "transcript") and s.usable("heldout", "quality_flags"):
+    elif s.usable(HELDOUT, "transcript") and s.usable(HELDOUT, "quality_flags"):
         barred = [*gates.holding_gates(config.quality.gate_actions), *ALWAYS_GATED_FLAGS]
-        transcribed = np.asarray(pc.is_valid(s.column("heldout", "transcript")), dtype=bool)
-        scored = transcribed & ~s.list_members("heldout", "quality_flags", barred)
+        transcribed = np.asarray(pc.is_valid(s.column(HELDOUT, "transcript")), dtype=bool)
+        scored = transcribed & ~s.list_members(HELDOUT, "quality_flags", barred)
         if not scored.any():
-            problems.append(Problem("error", "subset_empty", subset_file("heldout"), None, "transcript",
+            problems.append(Problem("error", "subset_empty", subset_manifest(HELDOUT), None, "transcript",
                                     f"{heldout.num_rows} clips, none with a transcript to score",
                                     f"at least one transcribed clip that no gate holds back, for split.heldout = "
                                     f"{spec!r}; {why}"))
@@ -564,10 +568,10 @@ def check_quality_gates(s: _Subsets, config: Config) -> list[Problem]:
     holding = gates.holding_gates(q.gate_actions)
     barred = [*holding, *ALWAYS_GATED_FLAGS]
     problems: list[Problem] = []
-    if s.usable("labelled", "quality_flags"):
-        flags = s.column("labelled", "quality_flags")
-        hit = s.list_members("labelled", "quality_flags", barred)
-        problems += _row_problems("error", "quality_gate", subset_file("labelled"), np.flatnonzero(hit), "quality_flags",
+    if s.usable(LABELLED, "quality_flags"):
+        flags = s.column(LABELLED, "quality_flags")
+        hit = s.list_members(LABELLED, "quality_flags", barred)
+        problems += _row_problems("error", "quality_gate", subset_manifest(LABELLED), np.flatnonzero(hit), "quality_flags",
                                   lambda r: _text(flags[r].as_py()),
                                   f"no labelled clip flagged {', '.join(barred)}")
     # The measured values too, so a hand-cleared flag does not hide a gated clip.
@@ -580,7 +584,7 @@ def check_quality_gates(s: _Subsets, config: Config) -> list[Problem]:
     }
     for gate in holding:
         column, expected, fmt = measured[gate]
-        f = s.frame([column], names=("labelled",))
+        f = s.frame([column], names=(LABELLED,))
         values = {c: np.full(len(f), np.nan) for c, _, _ in measured.values()}
         values[column] = f[column].astype(float).to_numpy(dtype=np.float64, na_value=np.nan)
         hit = gates.gate_flags(**values, min_snr_db=q.min_snr_db, min_bandwidth_hz=q.min_bandwidth_hz,
@@ -593,7 +597,7 @@ def check_quality_gates(s: _Subsets, config: Config) -> list[Problem]:
             if s.usable(name, "quality_flags"):
                 flags = s.column(name, "quality_flags")
                 hit = s.list_members(name, "quality_flags", [gate])
-                problems += _row_problems("error", "quality_gate", subset_file(name), np.flatnonzero(hit), "quality_flags",
+                problems += _row_problems("error", "quality_gate", subset_manifest(name), np.flatnonzero(hit), "quality_flags",
                                           lambda r, flags=flags: _text(flags[r].as_py()),
                                           f'no clip flagged {gate}: quality.{gate}_action = "reject" sets them aside')
     return problems
@@ -607,11 +611,11 @@ def check_near_duplicates(s: _Subsets) -> list[Problem]:
     pairs = pairs[known]
     other_file = pairs["near_duplicate_of"].map(target["_file"])
     other_group = pairs["near_duplicate_of"].map(target["group"])
-    split = (pairs["_file"] == "heldout") != (other_file == "heldout")
+    split = (pairs["_file"] == HELDOUT) != (other_file == HELDOUT)
 
     def found(r: pd.Series) -> str:
         t = target.loc[r["near_duplicate_of"]]
-        return f"near-duplicate of {_text(r['near_duplicate_of'])} in {subset_file(t['_file'])} row {t['_row']}"
+        return f"near-duplicate of {_text(r['near_duplicate_of'])} in {subset_manifest(t['_file'])} row {t['_row']}"
 
     problems = _frame_problems("error", "near_duplicate_split", pairs, split, "near_duplicate_of", found,
                                "both clips of a near-duplicate pair on the same side of the held-out split")
@@ -644,7 +648,7 @@ def check_conservation(s: _Subsets, stages: dict[str, pa.Table], rejected: pa.Ta
         split_rejected = set(rej.loc[rej["stage"] == "split", "clip_id"].dropna())
         lost = sorted(clips - in_subsets - split_rejected)
         for clip in lost[:SHOWN_FAILURES]:
-            problems.append(Problem("error", "conservation", "stages/audio.parquet", None, "clip_id",
+            problems.append(Problem("error", "conservation", stage_manifest("audio"), None, "clip_id",
                                     f"clip {clip!r} in no subset and not rejected",
                                     "every clip in labelled, unlabelled or heldout, or in rejected.parquet"))
         for clip in sorted(in_subsets - clips)[:SHOWN_FAILURES]:
@@ -655,7 +659,7 @@ def check_conservation(s: _Subsets, stages: dict[str, pa.Table], rejected: pa.Ta
             sources = set(stages["ingest"].column("source_path").to_pylist())
             handled = set(audio["source_path"]) | set(rej.loc[rej["stage"] == "audio", "source_path"])
             for source in sorted(sources - handled)[:SHOWN_FAILURES]:
-                problems.append(Problem("error", "conservation", "stages/ingest.parquet", None, "source_path",
+                problems.append(Problem("error", "conservation", stage_manifest("ingest"), None, "source_path",
                                         f"source {source!r} with no clip and no audio reject",
                                         "every accepted source in stages/audio.parquet or rejected.parquet"))
     return problems
@@ -712,7 +716,7 @@ def check_audio_files(s: _Subsets, out: Path, *, deep: bool) -> list[Problem]:
 
 def _check_audio_subset(s: _Subsets, name: str, out: Path, *, deep: bool) -> list[Problem]:
     problems: list[Problem] = []
-    file = subset_file(name)
+    file = subset_manifest(name)
     rel = s.column(name, "audio_path").to_pylist()
     rows = [i for i, p in enumerate(rel) if p]
     paths = [str(out / rel[i]) for i in rows]
@@ -752,7 +756,7 @@ def _deep_checks(s: _Subsets, name: str, rows: list[int], paths: list[str]) -> l
     import pipeline.signal.loudness  # noqa: F401
     from pipeline.core.parallel import map_ordered
 
-    file = subset_file(name)
+    file = subset_manifest(name)
     measured = map_ordered(measure_file, paths, workers=0, desc=f"validate {name}")
     failed = {r: m for r, m in zip(rows, measured, strict=True) if isinstance(m, str)}
     problems = _row_problems("error", "audio_decode", file, list(failed), "audio_path",
@@ -783,6 +787,63 @@ def _deep_checks(s: _Subsets, name: str, rows: list[int], paths: list[str]) -> l
 # --------------------------------------------------------------------------- entry point
 
 
+@dataclass
+class _Manifests:
+    """The manifests of one OUT folder as read, each ``None`` when absent or unreadable."""
+
+    subsets: dict[str, pa.Table]
+    stages: dict[str, pa.Table]
+    rejected: pa.Table | None
+    rows: int
+
+
+def _read_manifests(out: Path, config: Config, problems: list[Problem]) -> _Manifests:
+    """Read the subsets, ``rejected.parquet`` and the stages' own manifests and rejects,
+    appending to ``problems`` a finding for each file that is missing, unreadable or off
+    its schema, and for each subset written under another config."""
+    rows = 0
+    subsets: dict[str, pa.Table] = {}
+    for name in SUBSETS:
+        table = _read(out, subset_manifest(name), "subset", required=True, problems=problems)
+        if table is not None:
+            subsets[name] = table
+            rows += table.num_rows
+            problems += _check_config_hash(out, subset_manifest(name), config)
+    rejected = _read(out, REJECTED, "rejected", required=True, problems=problems)
+    rows += rejected.num_rows if rejected is not None else 0
+    stages: dict[str, pa.Table] = {}
+    for stage in STAGES:
+        if (SCHEMA_DIR / f"{stage}.schema.json").exists():
+            table = _read(out, stage_manifest(stage), stage, required=False, problems=problems)
+            rows += table.num_rows if table is not None else 0
+            if table is not None:
+                stages[stage] = table
+        table = _read(out, stage_rejects(stage), "rejected", required=False, problems=problems)
+        rows += table.num_rows if table is not None else 0
+    return _Manifests(subsets, stages, rejected, rows)
+
+
+def _row_checks(s: _Subsets, read: _Manifests, out: Path,
+                config: Config) -> list[tuple[str, Callable[[], list[Problem]]]]:
+    """Every check that reads the manifests alone, named as its findings are."""
+    return [
+        ("subset_column", lambda: check_subset_column(s)),
+        ("clip_id_unique", lambda: check_clip_ids(s)),
+        ("speaker_leak", lambda: check_speaker_leak(s, config)),
+        ("group_leak", lambda: check_group_leak(s)),
+        ("audio_leak", lambda: check_audio_leak(s)),
+        ("text_leak", lambda: check_text_leak(s)),
+        ("tiers", lambda: check_tiers(s, config)),
+        ("labelled_text", lambda: check_labelled_text(s)),
+        ("phone_inventory", lambda: check_phones(s, out, config)),
+        ("duration_bounds", lambda: check_durations(s, config)),
+        ("subset_empty", lambda: check_empty_subsets(s, config)),
+        ("quality_gate", lambda: check_quality_gates(s, config)),
+        ("near_duplicate_split", lambda: check_near_duplicates(s)),
+        ("conservation", lambda: check_conservation(s, read.stages, read.rejected)),
+    ]
+
+
 def validate_out(out: Path, *, deep: bool = False, audio_files: bool = True) -> ValidationResult:
     """Check every manifest and audio file in ``out``.
 
@@ -804,51 +865,27 @@ def validate_out(out: Path, *, deep: bool = False, audio_files: bool = True) -> 
 
     Examples
     --------
-    >>> result = validate_out(Path("build/demo"))  # doctest: +SKIP
-    >>> exit_code(result, strict=False)  # doctest: +SKIP
-    0
+    A folder holding only empty manifests: nothing to train on, and no record of the
+    config it was made with.
+
+    >>> import tempfile
+    >>> from pipeline.core.manifest import empty_table, write_manifest
+    >>> with tempfile.TemporaryDirectory() as tmp:
+    ...     for name in SUBSETS:
+    ...         write_manifest(Path(tmp, subset_manifest(name)), "subset", empty_table("subset"), metadata={})
+    ...     write_manifest(Path(tmp, REJECTED), "rejected", empty_table("rejected"), metadata={})
+    ...     result = validate_out(Path(tmp))
+    >>> [(p.check, p.file) for p in result.problems]
+    [('config', 'config.resolved.json'), ('subset_empty', 'manifests/labelled.parquet'), ('subset_empty', 'manifests/heldout.parquet')]
+    >>> exit_code(result, strict=False)
+    1
     """
     start = time.perf_counter()
     out = check_out_folder(out)
     config, problems = load_resolved_config(out)
-    rows = 0
-
-    tables: dict[str, pa.Table] = {}
-    for name in SUBSETS:
-        table = _read(out, subset_file(name), "subset", required=True, problems=problems)
-        if table is not None:
-            tables[name] = table
-            rows += table.num_rows
-            problems += _check_config_hash(out, subset_file(name), config)
-    rejected = _read(out, REJECTED_FILE, "rejected", required=True, problems=problems)
-    rows += rejected.num_rows if rejected is not None else 0
-    stage_tables: dict[str, pa.Table] = {}
-    for stage in STAGES:
-        if (SCHEMA_DIR / f"{stage}.schema.json").exists():
-            table = _read(out, f"stages/{stage}.parquet", stage, required=False, problems=problems)
-            rows += table.num_rows if table is not None else 0
-            if table is not None:
-                stage_tables[stage] = table
-        table = _read(out, f"stages/{stage}.rejects.parquet", "rejected", required=False, problems=problems)
-        rows += table.num_rows if table is not None else 0
-
-    s = _Subsets(tables)
-    checks: list[tuple[str, Callable[[], list[Problem]]]] = [
-        ("subset_column", lambda: check_subset_column(s)),
-        ("clip_id_unique", lambda: check_clip_ids(s)),
-        ("speaker_leak", lambda: check_speaker_leak(s, config)),
-        ("group_leak", lambda: check_group_leak(s)),
-        ("audio_leak", lambda: check_audio_leak(s)),
-        ("text_leak", lambda: check_text_leak(s)),
-        ("tiers", lambda: check_tiers(s, config)),
-        ("labelled_text", lambda: check_labelled_text(s)),
-        ("phone_inventory", lambda: check_phones(s, out, config)),
-        ("duration_bounds", lambda: check_durations(s, config)),
-        ("subset_empty", lambda: check_empty_subsets(s, config)),
-        ("quality_gate", lambda: check_quality_gates(s, config)),
-        ("near_duplicate_split", lambda: check_near_duplicates(s)),
-        ("conservation", lambda: check_conservation(s, stage_tables, rejected)),
-    ]
+    read = _read_manifests(out, config, problems)
+    s = _Subsets(read.subsets)
+    checks = _row_checks(s, read, out, config)
     if audio_files:
         checks.append(("audio_header", lambda: check_audio_files(s, out, deep=deep)))
     for check, run in checks:
@@ -859,114 +896,4 @@ def validate_out(out: Path, *, deep: bool = False, audio_files: bool = True) -> 
                                     _clip(f"the check could not run: {type(exc).__name__}: {exc}", 200),
                                     "manifests this check can read"))
     problems.sort(key=lambda p: p.severity != "error")
-    return ValidationResult(str(out), problems, rows, time.perf_counter() - start)
-
-
-# --------------------------------------------------------------------------- benchmark
-
-
-def synthetic_out(out: Path, *, n_rows: int, speakers: int = 200) -> Path:
-    """A clean synthetic OUT of ``n_rows`` one-second clips for timing :func:`validate_out`.
-
-    Every clip's file is a hard link to one FLAC file (copies where links are refused), so
-    building 100,000 clips takes seconds; ``audio_sha256`` values are distinct stand-ins, so
-    only ``deep=False`` runs are meaningful on it. A tenth of the speakers are held out,
-    a fifth of the rest labelled, in one tier as long as the labelled clips.
-    """
-    import soundfile as sf
-
-    from pipeline import __version__
-    from pipeline.core.fsio import sha256_bytes, write_text_atomic
-    from pipeline.core.manifest import table_from_columns, write_manifest
-
-    if n_rows < 1:
-        raise ParameterError(f"n_rows={n_rows} must be >= 1")
-    rate = 16000
-    out = Path(out)
-    (out / "audio").mkdir(parents=True, exist_ok=True)
-    template = out / "audio" / "template.flac"
-    t = np.arange(rate) / rate
-    sf.write(template, 0.1 * np.sin(2 * np.pi * 220 * t), rate, subtype="PCM_16")
-
-    ids = np.arange(n_rows)
-    speaker = ids % speakers
-    heldout = speaker < max(1, speakers // 10)
-    labelled = ~heldout & (speaker % 5 == 0)
-    subset = np.where(heldout, "heldout", np.where(labelled, "labelled", "unlabelled"))
-    budget_s = max(1, int(labelled.sum()))
-    config = build_config({"split": {"labelled_budgets": [f"{budget_s}s"], "group_by": "speaker"}})
-    write_text_atomic(out / CONFIG_FILE, json.dumps(config.to_json(), indent=2, sort_keys=True) + "\n")
-
-    clip_ids = [f"clip{i:07d}-{i:010x}" for i in ids]
-    speaker_ids = [f"spk{k:04d}" for k in speaker]
-    audio_paths = [f"audio/{sp}/{c}.flac" for sp, c in zip(speaker_ids, clip_ids, strict=True)]
-    for sp in set(speaker_ids):
-        (out / "audio" / sp).mkdir(exist_ok=True)
-    for rel in audio_paths:
-        target = out / rel
-        if not target.exists():
-            try:
-                os.link(template, target)
-            except OSError:
-                target.write_bytes(template.read_bytes())
-    phones = ["DH", "AH", "K", "AE", "T"]
-    meta = {"version": __version__, "stage": "split", "config_sha256": config.sha256()}
-    for name in SUBSETS:
-        sel = np.flatnonzero(subset == name)
-        n = len(sel)
-        transcribed = name != "unlabelled"
-        columns = {
-            "clip_id": [clip_ids[i] for i in sel],
-            "speaker": [speaker_ids[i] for i in sel],
-            "group": [speaker_ids[i] for i in sel],
-            "audio_path": [audio_paths[i] for i in sel],
-            "audio_sha256": [sha256_bytes(clip_ids[i].encode()) for i in sel],
-            "sample_rate": [rate] * n,
-            "num_samples": [rate] * n,
-            "duration_s": [1.0] * n,
-            "source_path": [f"{speaker_ids[i]}/{clip_ids[i]}.wav" for i in sel],
-            "source_start_s": [0.0] * n,
-            "source_end_s": [1.0] * n,
-            "loudness_lufs": [-23.0] * n,
-            "loudness_in_lufs": [-30.0] * n,
-            "transcript": [f"the cat {i}" if transcribed else None for i in sel],
-            "norm_text": [f"the cat {i}" if transcribed else None for i in sel],
-            "phones": [phones if transcribed else None for _ in sel],
-            "subset": [name] * n,
-            "tiers": [[f"{budget_s}s"] if name == "labelled" else [] for _ in sel],
-            "speech_ratio": [0.8] * n,
-            "snr_db": [30.0] * n,
-            "bandwidth_hz": [7500.0] * n,
-            "clipped_fraction": [0.0] * n,
-            "speaking_rate": [5.0 if transcribed else None for _ in sel],
-            "rate_z": [0.0 if transcribed else None for _ in sel],
-            "near_duplicate_of": [None] * n,
-            "quality_flags": [[] for _ in sel],
-        }
-        write_manifest(out / subset_file(name), "subset", table_from_columns("subset", columns), metadata=meta)
-    from pipeline.core.manifest import empty_table
-
-    write_manifest(out / REJECTED_FILE, "rejected", empty_table("rejected"), metadata=meta)
-    template.unlink()
-    return out
-
-
-def bench_validate(n_rows: int, tmp: Path) -> dict[str, Any]:
-    """Time :func:`validate_out` on a synthetic OUT of ``n_rows`` clips.
-
-    Returns the seconds and rows per second with and without the per-file header checks,
-    and the number of problems found (0 on the clean synthetic folder).
-
-    Examples
-    --------
-    >>> bench_validate(1000, Path("/tmp/loam-bench-validate"))  # doctest: +SKIP
-    {'rows': 1000, 'seconds_manifests_only': ..., ...}
-    """
-    out = synthetic_out(Path(tmp) / f"validate-{n_rows}", n_rows=n_rows)
-    figures: dict[str, Any] = {"rows": n_rows}
-    for label, audio_files in (("manifests_only", False), ("with_headers", True)):
-        result = validate_out(out, audio_files=audio_files)
-        figures[f"seconds_{label}"] = round(result.seconds, 3)
-        figures[f"rows_per_second_{label}"] = round(n_rows / result.seconds) if result.seconds else None
-        figures[f"problems_{label}"] = len(result.problems)
-    return figures
+    return ValidationResult(str(out), problems, read.rows, time.perf_counter() - start)
