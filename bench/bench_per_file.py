@@ -22,7 +22,6 @@ from __future__ import annotations
 import argparse
 import dataclasses
 import json
-import os
 import shutil
 import sys
 import tempfile
@@ -32,11 +31,10 @@ from pathlib import Path
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
-from pipeline.commands.cli import BLAS_THREAD_VARIABLES  # noqa: E402
+from pipeline.core.startup import limit_blas_threads  # noqa: E402
 
 # As `loam` does, before numpy loads: one thread per process.
-for variable in BLAS_THREAD_VARIABLES:
-    os.environ.setdefault(variable, "1")
+limit_blas_threads()
 
 from bench.floor import FloorJob, floor_one  # noqa: E402
 from pipeline.core.config import load_config  # noqa: E402

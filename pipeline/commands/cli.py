@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import sys
 import traceback
 from pathlib import Path
@@ -16,6 +15,7 @@ from typing import Any
 
 from pipeline import __version__
 from pipeline.core.errors import LoamError, UsageError
+from pipeline.core.startup import exit_without_teardown, limit_blas_threads
 
 EPILOG = """\
 exit codes: 0 done; 1 data problems stopped the run (validate: errors found);
@@ -206,15 +206,8 @@ def _cmd_report(args: argparse.Namespace) -> int:
 COMMANDS = {"prepare": _cmd_prepare, "stage": _cmd_stage, "validate": _cmd_validate, "report": _cmd_report}
 
 
-# Parallelism is one process per core (pipeline.core.parallel); a BLAS thread pool in each
-# of them would only fight the others for the same cores. Set before numpy is imported,
-# and only as defaults, so a user's own setting wins.
-BLAS_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
-
-
 def main(argv: list[str] | None = None) -> int:
-    for variable in BLAS_THREAD_VARIABLES:
-        os.environ.setdefault(variable, "1")
+    limit_blas_threads()
     parser = build_parser()
     try:
         args = parser.parse_args(argv)
@@ -243,17 +236,6 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def console() -> None:
-    """The ``loam`` command: ``main``, then exit without tearing the interpreter down.
-
-    Freeing every object of a finished run (CMUdict's index, the imported libraries)
-    took about 0.25 s, a tenth of a small rebuild, for nothing: the process ends
-    anyway. Logs and standard streams are flushed first; every output file is already
-    closed and renamed into place by then.
-    """
-    import logging
-
-    code = main()
-    logging.shutdown()
-    sys.stdout.flush()
-    sys.stderr.flush()
-    os._exit(code)
+    """The ``loam`` command: :func:`main`, then exit without tearing the interpreter down
+    (:func:`pipeline.core.startup.exit_without_teardown`)."""
+    exit_without_teardown(main())

@@ -14,12 +14,9 @@ row (the tests assert both paths agree).
 
 from __future__ import annotations
 
-import contextlib
 import functools
 import json
-import sys
-import threading
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterable
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
@@ -31,6 +28,7 @@ import pyarrow.parquet as pq
 from pipeline.core.errors import ManifestError
 from pipeline.core.fsio import atomic_output
 from pipeline.core.schemas_io import load_schema, row_validator
+from pipeline.core.startup import pandas_left_unloaded
 
 _SCALAR_TYPES = {
     "string": pa.string(),
@@ -101,40 +99,6 @@ def arrow_schema(name: str) -> pa.Schema:
     return pa.schema(fields)
 
 
-class _RefusePandas:
-    """A meta-path finder that makes ``import pandas`` fail in one thread."""
-
-    def __init__(self) -> None:
-        self.thread = threading.get_ident()
-
-    def find_spec(self, name: str, path: Any = None, target: Any = None) -> None:
-        if threading.get_ident() == self.thread and name.partition(".")[0] == "pandas":
-            raise ModuleNotFoundError(f"{name} is not imported while loam converts to Arrow", name=name)
-
-
-@contextlib.contextmanager
-def pandas_left_unloaded() -> Iterator[None]:
-    """Convert Python values to Arrow without pyarrow importing pandas for it.
-
-    The first conversion of a Python object (``pa.array``, ``pa.table``, a scalar in
-    a compute call) imports pandas, only to ask whether the object is a pandas one:
-    0.15 to 0.3 s of a run that builds a manifest, a fifth of a small rebuild. No
-    pandas object can exist while pandas is not imported, so refusing the import for
-    the conversion changes no result. pyarrow does not count a refused import against
-    later calls that need pandas (``to_pandas``, ``Table.from_pandas``): they import
-    it then, and once pandas is loaded the refusal is bypassed (a test checks both).
-    """
-    if "pandas" in sys.modules:
-        yield
-        return
-    finder = _RefusePandas()
-    sys.meta_path.insert(0, finder)
-    try:
-        yield
-    finally:
-        sys.meta_path.remove(finder)
-
-
 def table_from_rows(name: str, rows: list[dict[str, Any]]) -> pa.Table:
     """Build a manifest table from row dicts (missing keys become nulls)."""
     schema = arrow_schema(name)
@@ -163,8 +127,8 @@ class ManifestBuilder:
     rows in key order whatever the order they arrived in, as one chunk per column, so
     the Parquet bytes depend only on the rows.
 
-    Example
-    -------
+    Examples
+    --------
     >>> b = ManifestBuilder("rejected", batch_rows=2)
     >>> for path in ("b.wav", "a.wav", "c.wav"):
     ...     b.append({"source_path": path, "reason": "empty", "detail": path + ": empty",
@@ -374,8 +338,8 @@ def partition_rows(name: str, table: pa.Table, *, where: str) -> tuple[pa.Table,
     -------
     The valid rows (``table`` itself when all are valid) and the invalid ones.
 
-    Example
-    -------
+    Examples
+    --------
     >>> rows = [{"source_path": p, "reason": "empty", "detail": d, "stage": "ingest", "clip_id": None}
     ...         for p, d in (("a.wav", "a.wav: empty"), ("b.wav", ""), ("c.wav", "c.wav: empty"))]
     >>> kept, invalid = partition_rows("rejected", table_from_rows("rejected", rows), where="r.parquet")
