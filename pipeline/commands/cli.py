@@ -73,6 +73,19 @@ def _add_run_options(p: argparse.ArgumentParser) -> None:
 
 
 def build_parser() -> argparse.ArgumentParser:
+    """The ``loam`` argument parser: ``prepare``, ``stage``, ``validate`` and ``report``.
+
+    Returns
+    -------
+    argparse.ArgumentParser
+        The parser; ``args.command`` names the sub-command chosen.
+
+    Examples
+    --------
+    >>> args = build_parser().parse_args(["validate", "build/demo", "--strict"])
+    >>> args.command, str(args.out), args.strict
+    ('validate', 'build/demo', True)
+    """
     parser = argparse.ArgumentParser(
         prog="loam",
         description="Turn a raw dump of speech recordings into clean audio, phoneme transcriptions and "
@@ -207,6 +220,29 @@ COMMANDS = {"prepare": _cmd_prepare, "stage": _cmd_stage, "validate": _cmd_valid
 
 
 def main(argv: list[str] | None = None) -> int:
+    """Run one ``loam`` command and return its exit status; never raises.
+
+    Parameters
+    ----------
+    argv : list of str, optional
+        The arguments after ``loam`` (``sys.argv[1:]`` when None).
+
+    Returns
+    -------
+    int
+        0 done; 1 data problems stopped the run (``validate``: errors found), a file
+        could not be written, or an internal error (its traceback is printed); 2 usage
+        or configuration error; 130 interrupted. Messages go to standard error.
+
+    Examples
+    --------
+    >>> import contextlib, io, os
+    >>> from unittest import mock
+    >>> with mock.patch.dict(os.environ), contextlib.redirect_stderr(io.StringIO()) as err:
+    ...     code = main(["validate", "/nonexistent/out"])
+    >>> code, err.getvalue().strip()
+    (2, "loam: error: OUT '/nonexistent/out' does not exist")
+    """
     limit_blas_threads()
     parser = build_parser()
     try:

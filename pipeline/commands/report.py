@@ -95,10 +95,28 @@ _SCALARS = ("clip_id", "speaker", "group", "duration_s", "loudness_lufs", "loudn
 
 
 def load_clips(out: Path) -> pd.DataFrame:
-    """The three subsets as one frame with a ``subset_file`` column (missing files: no rows).
+    """The three subsets as one frame with a ``subset_file`` column.
 
-    Columns a file lacks are filled with nulls, so a hand-edited manifest still reports.
-    List columns (``phones``, ``tiers``, ``quality_flags``) become Python lists.
+    Parameters
+    ----------
+    out : Path
+        An output folder.
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per clip, subset by subset (a missing or unreadable file adds none).
+        Columns a file lacks are filled with nulls, so a hand-edited manifest still
+        reports; list columns (``phones``, ``tiers``, ``quality_flags``) hold Python
+        lists.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> with tempfile.TemporaryDirectory() as tmp:
+    ...     clips = load_clips(Path(tmp))
+    >>> len(clips), "subset_file" in clips.columns
+    (0, True)
     """
     parts = []
     for name in SUBSETS:
@@ -123,7 +141,27 @@ def load_clips(out: Path) -> pd.DataFrame:
 
 
 def load_rejects(out: Path) -> pd.DataFrame:
-    """manifests/rejected.parquet, or the stages' own reject files when it is missing."""
+    """Every reject of ``out``.
+
+    Parameters
+    ----------
+    out : Path
+        An output folder.
+
+    Returns
+    -------
+    pandas.DataFrame
+        The rows of ``manifests/rejected.parquet``, or of the stages' own reject files
+        when it is missing (columns ``source_path``, ``reason``, ``detail``, ``stage``,
+        ``clip_id``).
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> with tempfile.TemporaryDirectory() as tmp:
+    ...     list(load_rejects(Path(tmp)).columns)
+    ['source_path', 'reason', 'detail', 'stage', 'clip_id']
+    """
     table = _read_optional(out / REJECTED)
     if table is None:
         tables = [t for t in (_read_optional(out / stage_rejects(s)) for s in STAGES) if t is not None]
@@ -143,7 +181,23 @@ def _hours(seconds: float) -> float:
 
 
 def hms(seconds: float | None) -> str:
-    """A duration as h:mm:ss, e.g. ``hms(3725.4) == "1:02:05"``; "none" for None."""
+    """A duration as h:mm:ss, rounded to the second.
+
+    Parameters
+    ----------
+    seconds : float or None
+        The duration.
+
+    Returns
+    -------
+    str
+        ``h:mm:ss``; "none" for None or a non-finite value.
+
+    Examples
+    --------
+    >>> hms(3725.4), hms(59.6), hms(None)
+    ('1:02:05', '0:01:00', 'none')
+    """
     if seconds is None or not math.isfinite(seconds):
         return "none"
     total = int(round(seconds))
@@ -322,7 +376,19 @@ def build_summary(out: Path, *, clips: pd.DataFrame | None = None) -> dict[str, 
 
 
 def versions() -> dict[str, str]:
-    """Versions of Loam and the libraries that shape its output."""
+    """Versions of Loam and the libraries that shape its output.
+
+    Returns
+    -------
+    dict of str to str
+        Component name to version: loam, python, numpy, pyarrow, pandas, soundfile and
+        libsndfile.
+
+    Examples
+    --------
+    >>> list(versions())
+    ['loam', 'python', 'numpy', 'pyarrow', 'pandas', 'soundfile', 'libsndfile']
+    """
     import soundfile
 
     return {
@@ -377,7 +443,7 @@ def _bins(values: np.ndarray, n: int = 30) -> np.ndarray:
     return np.linspace(lo, hi, n + 1)
 
 
-def plot_durations(clips: pd.DataFrame) -> str | None:
+def _plot_durations(clips: pd.DataFrame) -> str | None:
     values = clips["duration_s"].dropna().to_numpy(dtype=float)
     if not values.size:
         return None
@@ -396,7 +462,7 @@ def plot_durations(clips: pd.DataFrame) -> str | None:
     return _png(fig)
 
 
-def plot_loudness(clips: pd.DataFrame, target_lufs: float) -> str | None:
+def _plot_loudness(clips: pd.DataFrame, target_lufs: float) -> str | None:
     before = clips["loudness_in_lufs"].to_numpy(dtype=float)
     after = clips["loudness_lufs"].to_numpy(dtype=float)
     before, after = before[np.isfinite(before)], after[np.isfinite(after)]
@@ -415,7 +481,7 @@ def plot_loudness(clips: pd.DataFrame, target_lufs: float) -> str | None:
     return _png(fig)
 
 
-def plot_speaking_rate(clips: pd.DataFrame) -> str | None:
+def _plot_speaking_rate(clips: pd.DataFrame) -> str | None:
     x = clips["speaking_rate"].dropna().to_numpy(dtype=float)
     if not x.size:
         return None
@@ -428,7 +494,7 @@ def plot_speaking_rate(clips: pd.DataFrame) -> str | None:
     return _png(fig)
 
 
-def plot_phones(counts: dict[str, int]) -> str | None:
+def _plot_phones(counts: dict[str, int]) -> str | None:
     if not counts:
         return None
     fig, ax = _figure()
@@ -443,7 +509,7 @@ def plot_phones(counts: dict[str, int]) -> str | None:
     return _png(fig)
 
 
-def plot_speakers(speakers: dict[str, dict[str, float]]) -> str | None:
+def _plot_speakers(speakers: dict[str, dict[str, float]]) -> str | None:
     if not speakers:
         return None
     shown = list(speakers)[:SPEAKERS_PLOTTED][::-1]
@@ -470,6 +536,23 @@ def plot_speakers(speakers: dict[str, dict[str, float]]) -> str | None:
 
 
 def esc(value: Any) -> str:
+    """``value`` as text safe inside HTML, attributes included.
+
+    Parameters
+    ----------
+    value : object
+        Anything; None becomes the empty string.
+
+    Returns
+    -------
+    str
+        ``str(value)`` with ``&``, ``<``, ``>`` and both quotes escaped.
+
+    Examples
+    --------
+    >>> esc('<b>"Ed" & co</b>')
+    '&lt;b&gt;&quot;Ed&quot; &amp; co&lt;/b&gt;'
+    """
     return html.escape("" if value is None else str(value), quote=True)
 
 
@@ -482,7 +565,29 @@ def _num(value: Any, digits: int = 3) -> str:
 
 
 def table(headers: Sequence[str], rows: Sequence[Sequence[Any]], *, empty: str = "none") -> str:
-    """An HTML table; every cell is escaped."""
+    """An HTML table; every cell is escaped.
+
+    Parameters
+    ----------
+    headers : sequence of str
+        The column headings.
+    rows : sequence of sequences
+        The cells, row by row (any values; None shows empty).
+    empty : str
+        The sentence shown instead of a table when there is no row.
+
+    Returns
+    -------
+    str
+        A ``<table>`` element, or a ``<p class="none">`` with ``empty``.
+
+    Examples
+    --------
+    >>> table(["speaker", "clips"], [["<wren>", 3]])
+    '<table><thead><tr><th>speaker</th><th>clips</th></tr></thead><tbody><tr><td>&lt;wren&gt;</td><td>3</td></tr></tbody></table>'
+    >>> table(["speaker"], [], empty="no speaker")
+    '<p class="none">no speaker</p>'
+    """
     if not rows:
         return f'<p class="none">{esc(empty)}</p>'
     head = "".join(f"<th>{esc(h)}</th>" for h in headers)
@@ -726,11 +831,11 @@ def write_report(out: Path) -> Path:
     clips = load_clips(out)
     summary = build_summary(out, clips=clips)
     figures = {
-        "durations": plot_durations(clips),
-        "loudness": plot_loudness(clips, summary["loudness"]["target_lufs"]),
-        "speaking_rate": plot_speaking_rate(clips),
-        "phones": plot_phones(summary["phones"]["labelled_counts"]),
-        "speakers": plot_speakers(summary["speakers"]),
+        "durations": _plot_durations(clips),
+        "loudness": _plot_loudness(clips, summary["loudness"]["target_lufs"]),
+        "speaking_rate": _plot_speaking_rate(clips),
+        "phones": _plot_phones(summary["phones"]["labelled_counts"]),
+        "speakers": _plot_speakers(summary["speakers"]),
     }
     page = render_html(summary, clips, figures)
     write_text_atomic(out / REPORT_SUMMARY,

@@ -99,7 +99,27 @@ class ValidationResult:
 
 
 def exit_code(result: ValidationResult, *, strict: bool) -> int:
-    """0 when clean, 1 on any error (or any warning with ``strict``)."""
+    """The exit status of ``loam validate`` for ``result``.
+
+    Parameters
+    ----------
+    result : ValidationResult
+        What :func:`validate_out` found.
+    strict : bool
+        Count warnings as errors.
+
+    Returns
+    -------
+    int
+        0 when clean, 1 on any error (or on any warning with ``strict``).
+
+    Examples
+    --------
+    >>> warned = ValidationResult("OUT", [Problem("warning", "text_leak", "manifests/heldout.parquet",
+    ...                                           3, "norm_text", '"the cat sat"', "unseen sentences")], 10, 0.1)
+    >>> exit_code(warned, strict=False), exit_code(warned, strict=True)
+    (0, 1)
+    """
     if result.errors or (strict and result.warnings):
         return 1
     return 0
@@ -119,7 +139,23 @@ def _where(p: Problem) -> str:
 
 
 def format_table(result: ValidationResult) -> str:
-    """The problems as an aligned text table, ending in a one-line count."""
+    """The problems as an aligned text table, ending in a one-line count.
+
+    Parameters
+    ----------
+    result : ValidationResult
+        What :func:`validate_out` found.
+
+    Returns
+    -------
+    str
+        One line per problem under a header (none when clean), then the verdict.
+
+    Examples
+    --------
+    >>> print(format_table(ValidationResult("OUT", [], 120, 0.25)))
+    clean: 0 errors, 0 warnings; 120 rows checked in 0.25 s (OUT)
+    """
     lines = []
     if result.problems:
         header = ("severity", "check", "where", "found", "expected")
@@ -139,7 +175,28 @@ def format_table(result: ValidationResult) -> str:
 
 
 def check_out_folder(out: Path) -> Path:
-    """``out`` if it looks like a Loam output folder; UsageError otherwise."""
+    """``out`` if it looks like a Loam output folder.
+
+    Parameters
+    ----------
+    out : Path
+        The folder to check: it must hold ``config.resolved.json``, ``manifests/`` or
+        ``stages/``.
+
+    Returns
+    -------
+    Path
+        ``out`` as a Path. UsageError when it is missing, is not a folder or holds none
+        of those.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> with tempfile.TemporaryDirectory() as tmp:
+    ...     Path(tmp, "manifests").mkdir()
+    ...     check_out_folder(Path(tmp)) == Path(tmp)
+    True
+    """
     out = Path(out)
     if not out.exists():
         raise UsageError(f"OUT {str(out)!r} does not exist")
@@ -154,7 +211,27 @@ def check_out_folder(out: Path) -> Path:
 
 
 def load_resolved_config(out: Path) -> tuple[Config, list[Problem]]:
-    """The config in force for ``out`` (defaults, with a finding, when it cannot be read)."""
+    """The config in force for ``out``: its ``config.resolved.json``.
+
+    Parameters
+    ----------
+    out : Path
+        An output folder.
+
+    Returns
+    -------
+    tuple of (Config, list of Problem)
+        The config and no problem; or, when the file is missing or unreadable, the
+        defaults and one ``config`` error saying so.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> with tempfile.TemporaryDirectory() as tmp:
+    ...     config, problems = load_resolved_config(Path(tmp))
+    >>> config.split.group_by, [(p.check, p.found) for p in problems]
+    ('speaker', [('config', 'no such file')])
+    """
     path = out / RESOLVED_CONFIG
     try:
         data = json.loads(path.read_text(encoding="utf-8"))
@@ -297,14 +374,14 @@ def _check_config_hash(out: Path, rel: str, config: Config) -> list[Problem]:
 # --------------------------------------------------------------------------- row checks
 
 
-def check_subset_column(s: _Subsets) -> list[Problem]:
+def _check_subset_column(s: _Subsets) -> list[Problem]:
     f = s.frame(["subset"])
     mask = f["subset"].astype(object) != f["_file"].astype(object)
     return _frame_problems("error", "subset_column", f, mask, "subset",
                            lambda r: _text(r["subset"]), "the name of the file the row is in")
 
 
-def check_clip_ids(s: _Subsets) -> list[Problem]:
+def _check_clip_ids(s: _Subsets) -> list[Problem]:
     f = s.frame(["clip_id"])
     dup = f["clip_id"].notna() & f.duplicated("clip_id", keep="first")
     first = f[f["clip_id"].notna()].drop_duplicates("clip_id").set_index("clip_id")
@@ -326,18 +403,18 @@ def _heldout_leak(s: _Subsets, column: str, check: str, severity: str, what: str
                            f"no {what} of heldout in labelled or unlabelled")
 
 
-def check_speaker_leak(s: _Subsets, config: Config) -> list[Problem]:
+def _check_speaker_leak(s: _Subsets, config: Config) -> list[Problem]:
     # Splitting by recording or clip puts held-out voices in training by design; that
     # stays visible, as a warning.
     severity = "error" if config.split.group_by == "speaker" else "warning"
     return _heldout_leak(s, "speaker", "speaker_leak", severity, "speaker")
 
 
-def check_group_leak(s: _Subsets) -> list[Problem]:
+def _check_group_leak(s: _Subsets) -> list[Problem]:
     return _heldout_leak(s, "group", "group_leak", "error", "group")
 
 
-def check_audio_leak(s: _Subsets) -> list[Problem]:
+def _check_audio_leak(s: _Subsets) -> list[Problem]:
     f = s.frame(["audio_sha256"])
     f = f[f["audio_sha256"].notna()]
     # Only repeated hashes can spread over two subsets; grouping just those is cheap.
@@ -355,7 +432,7 @@ def check_audio_leak(s: _Subsets) -> list[Problem]:
                            "no audio content in two subsets")
 
 
-def check_text_leak(s: _Subsets) -> list[Problem]:
+def _check_text_leak(s: _Subsets) -> list[Problem]:
     f = s.frame(["norm_text"], names=(LABELLED, HELDOUT))
     seen = set(f.loc[f["_file"] == LABELLED, "norm_text"].dropna())
     mask = (f["_file"] == HELDOUT) & f["norm_text"].isin(seen)
@@ -364,7 +441,7 @@ def check_text_leak(s: _Subsets) -> list[Problem]:
                            "held-out sentences unseen in labelled (a shared sentence flatters held-out scores)")
 
 
-def check_labelled_text(s: _Subsets) -> list[Problem]:
+def _check_labelled_text(s: _Subsets) -> list[Problem]:
     problems: list[Problem] = []
     f = s.frame(["transcript", "norm_text"], names=(LABELLED,))
     for column in ("transcript", "norm_text"):
@@ -394,10 +471,29 @@ def _cmudict_inventory(*, keep_stress: bool) -> set[str]:
 def phone_inventory(out: Path, config: Config) -> tuple[set[str] | None, str]:
     """The phones a clip may use, and where that list came from.
 
-    The phones the text stage produced (``stages/text.parquet``) when it is readable;
-    otherwise, for the english backend, CMUdict's phone set (39 phones, or its vowels with
-    the stress digits 0, 1, 2 when ``text.keep_stress``) plus the word-boundary symbol.
-    ``None`` when neither applies (a lexicon or graphemes build without its text stage).
+    Parameters
+    ----------
+    out : Path
+        An output folder.
+    config : Config
+        Its config (``text.backend``, ``text.keep_stress``, ``text.word_boundary``).
+
+    Returns
+    -------
+    tuple of (set of str or None, str)
+        The phones the text stage produced (``stages/text.parquet``) when it is readable;
+        otherwise, for the english backend, CMUdict's phone set (39 phones, or its vowels
+        with the stress digits 0, 1, 2 when ``text.keep_stress``) plus the word-boundary
+        symbol. ``None`` and "" when neither applies (a lexicon or graphemes build
+        without its text stage). The string says where the set came from.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> with tempfile.TemporaryDirectory() as tmp:
+    ...     phones, source = phone_inventory(Path(tmp), build_config({"text": {"word_boundary": ""}}))
+    >>> len(phones), source
+    (39, 'the CMUdict phone set')
     """
     path = out / stage_manifest("text")
     if path.exists():
@@ -417,7 +513,7 @@ def phone_inventory(out: Path, config: Config) -> tuple[set[str] | None, str]:
     return None, ""
 
 
-def check_phones(s: _Subsets, out: Path, config: Config) -> list[Problem]:
+def _check_phones(s: _Subsets, out: Path, config: Config) -> list[Problem]:
     inventory, source = phone_inventory(out, config)
     names = [n for n in SUBSETS if s.usable(n, "phones")]
     if inventory is None:
@@ -445,7 +541,7 @@ def check_phones(s: _Subsets, out: Path, config: Config) -> list[Problem]:
     return problems
 
 
-def check_durations(s: _Subsets, config: Config) -> list[Problem]:
+def _check_durations(s: _Subsets, config: Config) -> list[Problem]:
     lo, hi = config.audio.min_duration_s, config.audio.max_clip_s
     f = s.frame(["duration_s", "num_samples", "sample_rate"])
     d = f["duration_s"].astype(float)
@@ -461,7 +557,7 @@ def check_durations(s: _Subsets, config: Config) -> list[Problem]:
     return problems
 
 
-def check_tiers(s: _Subsets, config: Config) -> list[Problem]:
+def _check_tiers(s: _Subsets, config: Config) -> list[Problem]:
     budgets = sorted(config.split.labelled_budgets, key=parse_duration_s)
     problems: list[Problem] = []
     for name in SUBSETS:
@@ -498,7 +594,7 @@ def _check_budgets(s: _Subsets, budgets: list[str], member: dict[str, np.ndarray
     problems = []
     durations = np.asarray(s.column(LABELLED, "duration_s").fill_null(0.0), dtype=np.float64)
     if not durations.size:
-        return problems  # an empty labelled subset is one finding (check_empty_subsets), not one per tier
+        return problems  # an empty labelled subset is one finding (_check_empty_subsets), not one per tier
     # "Within one clip": a greedy fill stops when the next clip would not fit, or just past
     # the budget; either way it lands within the longest clip of the subset.
     slack = float(durations.max())
@@ -528,7 +624,7 @@ def _asks_for_heldout(spec: str) -> bool:
     return match is None or float(match.group()) > 0
 
 
-def check_empty_subsets(s: _Subsets, config: Config) -> list[Problem]:
+def _check_empty_subsets(s: _Subsets, config: Config) -> list[Problem]:
     """A subset the config asks for holds clips: labelled when a budget of
     split.labelled_budgets is above zero, held-out (with a clip to score) when split.heldout
     is. An empty one means every transcript was rejected or held back, and nothing can be
@@ -560,7 +656,7 @@ def check_empty_subsets(s: _Subsets, config: Config) -> list[Problem]:
     return problems
 
 
-def check_quality_gates(s: _Subsets, config: Config) -> list[Problem]:
+def _check_quality_gates(s: _Subsets, config: Config) -> list[Problem]:
     """No labelled clip that a gate holds back, decided as the split stage decides
     (:mod:`pipeline.stages.gates`), from the flags and from the measured values; and no clip at
     all flagged by a gate whose action rejects."""
@@ -603,7 +699,7 @@ def check_quality_gates(s: _Subsets, config: Config) -> list[Problem]:
     return problems
 
 
-def check_near_duplicates(s: _Subsets) -> list[Problem]:
+def _check_near_duplicates(s: _Subsets) -> list[Problem]:
     f = s.frame(["clip_id", "group", "near_duplicate_of"])
     pairs = f[f["near_duplicate_of"].notna()]
     target = f.drop_duplicates("clip_id").set_index("clip_id")
@@ -630,7 +726,7 @@ def check_near_duplicates(s: _Subsets) -> list[Problem]:
 # --------------------------------------------------------------------------- audio files
 
 
-def check_conservation(s: _Subsets, stages: dict[str, pa.Table], rejected: pa.Table | None) -> list[Problem]:
+def _check_conservation(s: _Subsets, stages: dict[str, pa.Table], rejected: pa.Table | None) -> list[Problem]:
     """Nothing lost between the stages: every accepted source has clips or an audio
     reject, and every clip is in exactly one subset or has a split reject.
 
@@ -706,7 +802,7 @@ def measure_file(path: str) -> tuple[str, float] | str:
         return _clip(f"cannot decode: {exc}", 120)
 
 
-def check_audio_files(s: _Subsets, out: Path, *, deep: bool) -> list[Problem]:
+def _check_audio_files(s: _Subsets, out: Path, *, deep: bool) -> list[Problem]:
     problems: list[Problem] = []
     for name in SUBSETS:
         if s.usable(name, "audio_path"):
@@ -827,20 +923,20 @@ def _row_checks(s: _Subsets, read: _Manifests, out: Path,
                 config: Config) -> list[tuple[str, Callable[[], list[Problem]]]]:
     """Every check that reads the manifests alone, named as its findings are."""
     return [
-        ("subset_column", lambda: check_subset_column(s)),
-        ("clip_id_unique", lambda: check_clip_ids(s)),
-        ("speaker_leak", lambda: check_speaker_leak(s, config)),
-        ("group_leak", lambda: check_group_leak(s)),
-        ("audio_leak", lambda: check_audio_leak(s)),
-        ("text_leak", lambda: check_text_leak(s)),
-        ("tiers", lambda: check_tiers(s, config)),
-        ("labelled_text", lambda: check_labelled_text(s)),
-        ("phone_inventory", lambda: check_phones(s, out, config)),
-        ("duration_bounds", lambda: check_durations(s, config)),
-        ("subset_empty", lambda: check_empty_subsets(s, config)),
-        ("quality_gate", lambda: check_quality_gates(s, config)),
-        ("near_duplicate_split", lambda: check_near_duplicates(s)),
-        ("conservation", lambda: check_conservation(s, read.stages, read.rejected)),
+        ("subset_column", lambda: _check_subset_column(s)),
+        ("clip_id_unique", lambda: _check_clip_ids(s)),
+        ("speaker_leak", lambda: _check_speaker_leak(s, config)),
+        ("group_leak", lambda: _check_group_leak(s)),
+        ("audio_leak", lambda: _check_audio_leak(s)),
+        ("text_leak", lambda: _check_text_leak(s)),
+        ("tiers", lambda: _check_tiers(s, config)),
+        ("labelled_text", lambda: _check_labelled_text(s)),
+        ("phone_inventory", lambda: _check_phones(s, out, config)),
+        ("duration_bounds", lambda: _check_durations(s, config)),
+        ("subset_empty", lambda: _check_empty_subsets(s, config)),
+        ("quality_gate", lambda: _check_quality_gates(s, config)),
+        ("near_duplicate_split", lambda: _check_near_duplicates(s)),
+        ("conservation", lambda: _check_conservation(s, read.stages, read.rejected)),
     ]
 
 
@@ -887,7 +983,7 @@ def validate_out(out: Path, *, deep: bool = False, audio_files: bool = True) -> 
     s = _Subsets(read.subsets)
     checks = _row_checks(s, read, out, config)
     if audio_files:
-        checks.append(("audio_header", lambda: check_audio_files(s, out, deep=deep)))
+        checks.append(("audio_header", lambda: _check_audio_files(s, out, deep=deep)))
     for check, run in checks:
         try:
             problems += run()

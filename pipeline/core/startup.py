@@ -34,12 +34,21 @@ def limit_blas_threads() -> None:
     Takes effect only in a process that has not imported numpy yet (and in the processes
     it starts), so ``loam`` calls it first thing.
 
+    Returns
+    -------
+    None
+        The variables are set in ``os.environ``.
+
     Examples
     --------
-    >>> import os
-    >>> limit_blas_threads()
-    >>> all(os.environ.get(v) for v in BLAS_THREAD_VARIABLES)
-    True
+    A user's own setting stays (``patch.dict`` restores the environment afterwards):
+
+    >>> from unittest import mock
+    >>> with mock.patch.dict(os.environ, {"OMP_NUM_THREADS": "4"}):
+    ...     _ = os.environ.pop("OPENBLAS_NUM_THREADS", None)
+    ...     limit_blas_threads()
+    ...     os.environ["OPENBLAS_NUM_THREADS"], os.environ["OMP_NUM_THREADS"]
+    ('1', '4')
     """
     for variable in BLAS_THREAD_VARIABLES:
         os.environ.setdefault(variable, "1")
@@ -69,6 +78,12 @@ def pandas_left_unloaded() -> Iterator[None]:
     against later calls that need pandas (``to_pandas``, ``Table.from_pandas``): they
     import it then, and once pandas is loaded the refusal is bypassed
     (tests/test_manifest.py checks both).
+
+    Returns
+    -------
+    contextlib.AbstractContextManager
+        A context in which this thread cannot import pandas (a no-op when pandas is
+        already loaded).
 
     Examples
     --------
@@ -105,6 +120,11 @@ def exit_without_teardown(code: int) -> NoReturn:
     ----------
     code : int
         The process's exit status.
+
+    Returns
+    -------
+    NoReturn
+        The process ends here. (No example: it would end the test run.)
     """
     logging.shutdown()
     sys.stdout.flush()
