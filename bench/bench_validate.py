@@ -28,9 +28,67 @@ from pipeline.core.names import (
     subset_manifest,
 )
 
+RATE = 16000
+PHONES = ["DH", "AH", "K", "AE", "T"]
+
+
+def _link_clips(out: Path, audio_paths: list[str]) -> None:
+    """One second of a 220 Hz tone at every path of ``audio_paths`` under ``out``: hard
+    links to one FLAC file (copies where links are refused)."""
+    (out / "audio").mkdir(parents=True, exist_ok=True)
+    template = out / "audio" / "template.flac"
+    t = np.arange(RATE) / RATE
+    sf.write(template, 0.1 * np.sin(2 * np.pi * 220 * t), RATE, subtype="PCM_16")
+    for folder in {Path(rel).parent for rel in audio_paths}:
+        (out / folder).mkdir(parents=True, exist_ok=True)
+    for rel in audio_paths:
+        target = out / rel
+        if not target.exists():
+            try:
+                os.link(template, target)
+            except OSError:
+                target.write_bytes(template.read_bytes())
+    template.unlink()
+
+
+def _subset_columns(name: str, clip_ids: list[str], speaker_ids: list[str], audio_paths: list[str],
+                    *, tier: str) -> dict[str, list[Any]]:
+    """The columns of subset ``name`` for these clips: one clean second each."""
+    n = len(clip_ids)
+    transcribed = name != UNLABELLED
+    return {
+        "clip_id": clip_ids,
+        "speaker": speaker_ids,
+        "group": speaker_ids,
+        "audio_path": audio_paths,
+        "audio_sha256": [sha256_bytes(c.encode()) for c in clip_ids],
+        "sample_rate": [RATE] * n,
+        "num_samples": [RATE] * n,
+        "duration_s": [1.0] * n,
+        "source_path": [f"{sp}/{c}.wav" for sp, c in zip(speaker_ids, clip_ids, strict=True)],
+        "source_start_s": [0.0] * n,
+        "source_end_s": [1.0] * n,
+        "loudness_lufs": [-23.0] * n,
+        "loudness_in_lufs": [-30.0] * n,
+        "transcript": [f"the cat {c}" if transcribed else None for c in clip_ids],
+        "norm_text": [f"the cat {c}" if transcribed else None for c in clip_ids],
+        "phones": [PHONES if transcribed else None for _ in clip_ids],
+        "subset": [name] * n,
+        "tiers": [[tier] if name == LABELLED else [] for _ in clip_ids],
+        "speech_ratio": [0.8] * n,
+        "snr_db": [30.0] * n,
+        "bandwidth_hz": [7500.0] * n,
+        "clipped_fraction": [0.0] * n,
+        "speaking_rate": [5.0 if transcribed else None for _ in clip_ids],
+        "rate_z": [0.0 if transcribed else None for _ in clip_ids],
+        "near_duplicate_of": [None] * n,
+        "quality_flags": [[] for _ in clip_ids],
+    }
+
 
 def synthetic_out(out: Path, *, n_rows: int, speakers: int = 200) -> Path:
-    """A clean synthetic OUT of ``n_rows`` one-second clips for timing :func:`pipeline.commands.validate.validate_out`.
+    """A clean synthetic OUT of ``n_rows`` one-second clips for timing
+    :func:`pipeline.commands.validate.validate_out`.
 
     Every clip's file is a hard link to one FLAC file (copies where links are refused), so
     building 100,000 clips takes seconds; ``audio_sha256`` values are distinct stand-ins, so
@@ -39,13 +97,7 @@ def synthetic_out(out: Path, *, n_rows: int, speakers: int = 200) -> Path:
     """
     if n_rows < 1:
         raise ParameterError(f"n_rows={n_rows} must be >= 1")
-    rate = 16000
     out = Path(out)
-    (out / "audio").mkdir(parents=True, exist_ok=True)
-    template = out / "audio" / "template.flac"
-    t = np.arange(rate) / rate
-    sf.write(template, 0.1 * np.sin(2 * np.pi * 220 * t), rate, subtype="PCM_16")
-
     ids = np.arange(n_rows)
     speaker = ids % speakers
     heldout = speaker < max(1, speakers // 10)
@@ -58,52 +110,14 @@ def synthetic_out(out: Path, *, n_rows: int, speakers: int = 200) -> Path:
     clip_ids = [f"clip{i:07d}-{i:010x}" for i in ids]
     speaker_ids = [f"spk{k:04d}" for k in speaker]
     audio_paths = [f"audio/{sp}/{c}.flac" for sp, c in zip(speaker_ids, clip_ids, strict=True)]
-    for sp in set(speaker_ids):
-        (out / "audio" / sp).mkdir(exist_ok=True)
-    for rel in audio_paths:
-        target = out / rel
-        if not target.exists():
-            try:
-                os.link(template, target)
-            except OSError:
-                target.write_bytes(template.read_bytes())
-    phones = ["DH", "AH", "K", "AE", "T"]
+    _link_clips(out, audio_paths)
     meta = {"version": __version__, "stage": "split", "config_sha256": config.sha256()}
     for name in SUBSETS:
         sel = np.flatnonzero(subset == name)
-        n = len(sel)
-        transcribed = name != UNLABELLED
-        columns = {
-            "clip_id": [clip_ids[i] for i in sel],
-            "speaker": [speaker_ids[i] for i in sel],
-            "group": [speaker_ids[i] for i in sel],
-            "audio_path": [audio_paths[i] for i in sel],
-            "audio_sha256": [sha256_bytes(clip_ids[i].encode()) for i in sel],
-            "sample_rate": [rate] * n,
-            "num_samples": [rate] * n,
-            "duration_s": [1.0] * n,
-            "source_path": [f"{speaker_ids[i]}/{clip_ids[i]}.wav" for i in sel],
-            "source_start_s": [0.0] * n,
-            "source_end_s": [1.0] * n,
-            "loudness_lufs": [-23.0] * n,
-            "loudness_in_lufs": [-30.0] * n,
-            "transcript": [f"the cat {i}" if transcribed else None for i in sel],
-            "norm_text": [f"the cat {i}" if transcribed else None for i in sel],
-            "phones": [phones if transcribed else None for _ in sel],
-            "subset": [name] * n,
-            "tiers": [[f"{budget_s}s"] if name == LABELLED else [] for _ in sel],
-            "speech_ratio": [0.8] * n,
-            "snr_db": [30.0] * n,
-            "bandwidth_hz": [7500.0] * n,
-            "clipped_fraction": [0.0] * n,
-            "speaking_rate": [5.0 if transcribed else None for _ in sel],
-            "rate_z": [0.0 if transcribed else None for _ in sel],
-            "near_duplicate_of": [None] * n,
-            "quality_flags": [[] for _ in sel],
-        }
+        columns = _subset_columns(name, [clip_ids[i] for i in sel], [speaker_ids[i] for i in sel],
+                                  [audio_paths[i] for i in sel], tier=f"{budget_s}s")
         write_manifest(out / subset_manifest(name), "subset", table_from_columns("subset", columns), metadata=meta)
     write_manifest(out / REJECTED, "rejected", empty_table("rejected"), metadata=meta)
-    template.unlink()
     return out
 
 
