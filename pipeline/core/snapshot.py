@@ -96,12 +96,17 @@ def _package_files() -> list[str]:
 
 def _distributions() -> list[str]:
     """The installed distributions and their versions, from the names of the
-    ``<name>-<version>.dist-info`` folders on sys.path: any upgrade changes it."""
-    names: list[str] = []
+    ``<name>-<version>.dist-info`` folders on sys.path: any upgrade changes it.
+
+    A set, sorted: the same folders reached twice, or in another order (a test runner
+    that puts a folder on sys.path again, ``""`` against the working folder's absolute
+    path), are the same distributions.
+    """
+    names: set[str] = set()
     for entry in sys.path:
         with contextlib.suppress(OSError):
-            names += sorted(e.name for e in os.scandir(entry or ".") if e.name.endswith((".dist-info", ".egg-info")))
-    return names
+            names.update(e.name for e in os.scandir(entry or ".") if e.name.endswith((".dist-info", ".egg-info")))
+    return sorted(names)
 
 
 def invocation_digest(*, raw: Path, out: Path, config_path: Path | None, overrides: dict[str, Any],
