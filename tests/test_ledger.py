@@ -237,3 +237,21 @@ def test_fresh_ignores_a_malformed_ledger_and_rewrites_it(tmp_path: Path) -> Non
     result = split.run(make_ctx(tmp_path, small_corpus(), {}, fresh=True))
     assert result.summary["ledger"] == {"path": "ledger.tsv", "where": "no config file", "read": False, "fresh": True}
     assert set(read_ledger(path).clips) == set(all_rows(result))
+
+
+def test_heldout_clip_that_was_gone_returns_to_heldout_under_another_grouping(tmp_path: Path) -> None:
+    # Source: docs/split.md, The ledger: "a held-out clip never moves to training"; the row
+    # of a gone held-out clip stays, as its new group (after a group_by change) has no row.
+    corpus = small_corpus(speakers=5, clips=4)
+    data = {"split": {"labelled_budgets": ["20s"], "heldout": "20%"}}
+    first = all_rows(split.run(make_ctx(tmp_path, corpus, data)))
+    held = sorted(c for c, r in first.items() if r["subset"] == "heldout")
+    assert held
+    second = split.run(make_ctx(tmp_path, corpus.subset(set(first) - set(held)), data))
+    assert second.summary["changes"]["removed"]["heldout"] == len(held)
+    ledger = read_ledger(tmp_path / "out" / "ledger.tsv")
+    assert {c: ledger.clips[c].subset for c in held} == dict.fromkeys(held, "heldout")
+    by_clip = {"split": {**data["split"], "group_by": "clip"}}
+    third = all_rows(split.run(make_ctx(tmp_path, corpus, by_clip)))
+    assert {c: third[c]["subset"] for c in held} == dict.fromkeys(held, "heldout")
+    assert set(read_ledger(tmp_path / "out" / "ledger.tsv").clips) == set(first)

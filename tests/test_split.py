@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 import pyarrow.parquet as pq
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
 from pipeline.core.config import build_config
@@ -363,8 +363,22 @@ def test_rebuilds_under_random_arrivals_keep_old_assignments(
 changed_configs = st.lists(configs, min_size=2, max_size=4)
 
 
+def _run_config(seed: int, *, group_by: str = "speaker", clipped_action: str = "flag") -> dict[str, Any]:
+    return {"seed": seed,
+            "split": {"group_by": group_by, "heldout": "20%", "labelled_budgets": ["1m"], "selection": "coverage"},
+            "quality": {**NO_RATE_GATE, "noisy_action": "demote", "narrowband_action": "flag",
+                        "clipped_action": clipped_action}}
+
+
+# A held-out clipped clip is set aside by clipped_action = "reject", then comes back
+# under group_by = "recording", where its new group had no ledger row.
+GONE_AND_BACK = [_run_config(1), _run_config(0), _run_config(0, clipped_action="reject"),
+                 _run_config(0, group_by="recording")]
+
+
 @PROPERTY_SETTINGS
 @given(shape=corpus_shapes, runs=changed_configs, arrival_seed=st.integers(0, 2**32 - 1))
+@example(shape=([5, 1], 1, 0.0), runs=GONE_AND_BACK, arrival_seed=0)
 def test_heldout_clip_never_moves_to_training_whatever_changes(
         shape: tuple[list[int], int, float], runs: list[dict[str, Any]], arrival_seed: int) -> None:
     # Source: docs/split.md, The ledger: "a held-out clip never moves to training".

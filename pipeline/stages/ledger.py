@@ -15,7 +15,9 @@ first). Rows are sorted by kind, then id. A clip row gives its subset
 (``labelled``, ``unlabelled`` or ``heldout``), its labelled tiers
 (comma-separated, ``-`` for none) and its group; a group row gives its side
 (``heldout`` or ``training``). A group row is kept after the group's clips have
-gone, so a speaker who comes back returns to the same side.
+gone, so a speaker who comes back returns to the same side; so is the row of a
+held-out clip that has gone, so the clip comes back to held-out even under another
+``group_by``.
 
 This module knows the format and where the file lives; what a rebuild does with
 it is in :mod:`pipeline.stages.split`.

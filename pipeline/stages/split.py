@@ -844,13 +844,27 @@ def run(ctx: StageContext) -> StageResult:
 
 def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[Clip],
                  *, cfg_settings: dict[str, str]) -> Ledger:
+    """The ledger to write: this run's assignment, the sides of groups whose clips are
+    all gone, and the rows of held-out clips that are gone.
+
+    A held-out clip can leave the input for a run (its file removed, the audio stage
+    rejecting it, a gate whose action is "reject" setting it aside) and come back
+    later. Its group row alone cannot bring it back to held-out: after a
+    ``split.group_by`` change its new group has no row. So its clip row stays, and
+    the returning clip keeps its subset like any clip of the ledger.
+    """
     groups = dict(assignment.sides)
+    clips = {c.clip_id: ClipRecord(assignment.subset[c.clip_id], assignment.tiers.get(c.clip_id, ()), c.group)
+             for c in kept}
     if ledger is not None:
         # Keep the side of a group whose clips are all gone, so it returns to the same side.
         current = set(groups) | {c.base_group for c in kept}
         groups.update({g: side for g, side in ledger.groups.items() if g not in current})
-    clips = {c.clip_id: ClipRecord(assignment.subset[c.clip_id], assignment.tiers.get(c.clip_id, ()), c.group)
-             for c in kept}
+        for cid, rec in ledger.clips.items():
+            if cid not in clips and rec.subset == HELDOUT:
+                clips[cid] = rec
+                # Every clip row names a group that has a row (the parser checks).
+                groups.setdefault(rec.group, ledger.groups[rec.group])
     return Ledger(cfg_settings, groups, clips)
 
 
