@@ -12,11 +12,13 @@ CONFIG ?= demo_corpus/corpus.toml
 WORKERS ?=
 BENCH_OUT ?= build/bench
 FUZZ_FILES ?= 3000
+SEARCH_SCALE ?= 50
+SEARCH_TESTS ?= tests
 
 CONFIG_FLAG  := $(if $(CONFIG),--config "$(CONFIG)",)
 WORKERS_FLAG := $(if $(WORKERS),--workers $(WORKERS),)
 
-.PHONY: all prepare test fuzz validate report bench lint clean distclean help
+.PHONY: all prepare test fuzz property-search validate report bench lint clean distclean help
 
 all: prepare report
 	@$(BIN)/loam validate "$(OUT)" > "$(OUT)/logs/validate.txt" || (cat "$(OUT)/logs/validate.txt"; exit 1)
@@ -29,6 +31,7 @@ help:
 	@echo "make validate   check the manifests in OUT before training"
 	@echo "make report     write OUT/report/index.html and summary.json"
 	@echo "make fuzz       prepare $(FUZZ_FILES) damaged audio files (make test runs 300) and print the outcomes"
+	@echo "make property-search  run the property tests with $(SEARCH_SCALE)x their examples, drawn at random"
 	@echo "make bench      throughput, memory and rebuild benchmarks"
 	@echo "make lint       ruff"
 	@echo "make clean      remove build outputs (keeps .venv)"
@@ -68,6 +71,13 @@ test: $(STAMP)
 
 fuzz: $(STAMP)
 	LOAM_FUZZ_FILES=$(FUZZ_FILES) $(BIN)/python -m pytest -q -s -p no:cacheprovider tests/test_fuzz.py
+
+# `make test` draws the same property-test examples on every run (tests/conftest.py);
+# this runs only the property tests (marked by hypothesis's pytest plugin) with new draws,
+# SEARCH_SCALE times as many (SEARCH_TESTS=tests/test_split.py to narrow).
+property-search: $(STAMP)
+	LOAM_HYPOTHESIS=search LOAM_HYPOTHESIS_SCALE=$(SEARCH_SCALE) $(BIN)/python -m pytest -q -p no:cacheprovider \
+	  -m hypothesis $(SEARCH_TESTS)
 
 bench: $(STAMP)
 	$(BIN)/python bench/run.py --out "$(BENCH_OUT)"

@@ -9,6 +9,23 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from hypothesis import settings
+
+# Property tests draw the same examples on every run, so a red run is a code change and
+# never a new random draw; `make property-search` searches more widely (DEVELOPERS.md,
+# Testing). LOAM_HYPOTHESIS picks the profile, LOAM_HYPOTHESIS_SCALE multiplies each
+# test's example count (see `examples`).
+settings.register_profile("ci", derandomize=True, database=None, print_blob=True)
+settings.register_profile("search", derandomize=False, print_blob=True)
+settings.load_profile(os.environ.get("LOAM_HYPOTHESIS", "ci"))
+
+
+def examples(count: int) -> int:
+    """A property test's ``max_examples``: ``count`` times LOAM_HYPOTHESIS_SCALE (default 1)."""
+    scale = os.environ.get("LOAM_HYPOTHESIS_SCALE", "1")
+    if not scale.isdigit() or int(scale) < 1:
+        raise pytest.UsageError(f"LOAM_HYPOTHESIS_SCALE has value {scale!r}; expected a whole number of at least 1")
+    return count * int(scale)
 
 REPO = Path(__file__).resolve().parent.parent
 DEMO = REPO / "demo_corpus"

@@ -20,7 +20,7 @@ from pipeline.commands.cli import main
 from pipeline.core.errors import ConfigError, DataError
 from pipeline.core.manifest import check_table
 from pipeline.stages.ingest import read_metadata_table
-from tests.conftest import speechlike, tree_hash
+from tests.conftest import examples, speechlike, tree_hash
 
 SR = 16000
 
@@ -162,7 +162,7 @@ def test_missing_metadata_column_is_a_clear_error(faulty_raw, tmp_path: Path, ca
 cell = st.text(alphabet=st.characters(blacklist_categories=("Cs",)), max_size=12)
 
 
-@settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(max_examples=examples(80), deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(st.lists(st.lists(cell, min_size=0, max_size=5), max_size=8), st.binary(max_size=40),
        st.sampled_from([",", "\t"]))
 def test_metadata_reader_fuzz(tmp_path: Path, rows: list[list[str]], junk: bytes, delimiter: str) -> None:
@@ -184,7 +184,7 @@ def test_metadata_reader_fuzz(tmp_path: Path, rows: list[list[str]], junk: bytes
     assert all(isinstance(p.line, int) for p in parsed)
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=examples(60), deadline=None)
 @given(st.dictionaries(st.sampled_from(["source_path", "reason", "detail", "stage", "clip_id", "other"]),
                        st.lists(st.one_of(st.none(), st.integers(), st.text(max_size=4), st.floats()), min_size=3, max_size=3),
                        max_size=6))

@@ -22,7 +22,7 @@ from pipeline.stages.ledger import (
     parse_ledger,
     read_ledger,
 )
-from tests.conftest import tree_hash
+from tests.conftest import examples, tree_hash
 from tests.test_split import SPEAKERS, Corpus, all_rows, make_ctx
 
 SETTINGS = {"group_by": "speaker", "seed": "7", "heldout": "10%", "budgets": "10m,1h", "selection": "coverage"}
@@ -47,7 +47,7 @@ def ledgers(draw: st.DrawFn) -> Ledger:
     return Ledger(settings_, groups, clips)
 
 
-@settings(max_examples=100, deadline=None)
+@settings(max_examples=examples(100), deadline=None)
 @given(ledger=ledgers())
 def test_round_trip(ledger: Ledger) -> None:
     # Source: the format in the docstring of pipeline/stages/ledger.py and docs/split.md, The ledger.

@@ -23,6 +23,7 @@ from pipeline.core.manifest import (
     write_manifest,
 )
 from pipeline.core.schemas_io import SCHEMA_DIR
+from tests.conftest import examples
 
 MANIFESTS = sorted(p.name.split(".")[0] for p in SCHEMA_DIR.glob("*.schema.json") if p.name != "config.schema.json")
 
@@ -132,7 +133,7 @@ row_strategy = st.fixed_dictionaries({
 })
 
 
-@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=examples(60), deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(st.lists(row_strategy, max_size=12))
 def test_columnar_checker_agrees_with_jsonschema(rows: list[dict]) -> None:
     table = table_from_rows("rejected", rows)
@@ -141,7 +142,7 @@ def test_columnar_checker_agrees_with_jsonschema(rows: list[dict]) -> None:
     assert fast == slow
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=examples(40), deadline=None)
 @given(st.lists(st.fixed_dictionaries({
     "clip_id": st.text(max_size=4),
     "transcript": st.text(max_size=4),

@@ -30,6 +30,7 @@ from pipeline.text.normalise import (
     split_words,
     verbalise,
 )
+from tests.conftest import examples
 
 ABBREVIATIONS = load_abbreviations()
 
@@ -246,7 +247,7 @@ OPTIONS = st.fixed_dictionaries({
     "spell_initialisms": st.booleans(),
     "abbreviations": st.sampled_from([None, ABBREVIATIONS]),
 })
-PROPERTY = settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+PROPERTY = settings(max_examples=examples(300), deadline=None, suppress_health_check=[HealthCheck.too_slow])
 
 
 def check(result: Normalised, options: dict) -> None:
@@ -266,7 +267,7 @@ def test_idempotent_on_arbitrary_unicode(text: str, options: dict) -> None:
     assert normalise(once.text, **options) == once
 
 
-@settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=examples(15), deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(st.text(ANY_CHAR, min_size=1, max_size=40), OPTIONS)
 def test_ten_thousand_characters(sample: str, options: dict) -> None:
     text = (sample * (10_000 // len(sample) + 1))[:10_000]

@@ -15,6 +15,7 @@ from hypothesis import strategies as st
 from pipeline.core.errors import ParameterError
 from pipeline.core.schemas_io import load_schema
 from pipeline.signal.segment import segment_id, split_frames
+from tests.conftest import examples
 
 FRAME_MS = 100  # 10 frames a second keeps hand-worked examples readable
 
@@ -93,7 +94,7 @@ def test_bad_bounds_are_refused():
         split_frames(np.ones(10, bool), np.zeros(9), frame_ms=30, segment_min_s=1, segment_max_s=2, pad_ms=0)
 
 
-@settings(max_examples=150, deadline=None)
+@settings(max_examples=examples(150), deadline=None)
 @given(
     runs=st.lists(st.tuples(st.booleans(), st.integers(1, 60)), min_size=1, max_size=40),
     min_frames=st.integers(5, 40),

@@ -24,6 +24,7 @@ from pipeline.stages.selection import (
     take_until,
     units,
 )
+from tests.conftest import examples
 
 
 @functools.cache
@@ -113,7 +114,7 @@ def documented_greedy(cands: list[Candidate], *, budget_s: float, chosen: list[C
     return order
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=examples(40), deadline=None)
 @given(seed=st.integers(0, 2**32 - 1), n=st.integers(1, 30), budget=st.floats(1.0, 60.0), n_chosen=st.integers(0, 3))
 # c06 and c09 tie exactly at step 5 (6716/1785 each, same speaker); float scores put
 # c09 one bit higher, so the tie went to the larger clip_id.
@@ -169,7 +170,7 @@ def test_take_until_stops_at_the_budget_within_one_clip() -> None:
     assert take_until(["a"], durations=durations, start_s=5.0, budget_s=5.0) == []
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=examples(40), deadline=None)
 @given(seed=st.integers(0, 2**32 - 1), budgets=st.lists(st.floats(1.0, 120.0), min_size=1, max_size=4),
        method=st.sampled_from(["coverage", "random"]))
 def test_fill_tiers_nests_and_meets_budgets(seed: int, budgets: list[float], method: str) -> None:

@@ -29,6 +29,7 @@ from pipeline.core.manifest import table_from_rows, validate_table
 from pipeline.core.stage import StageContext, StageResult
 from pipeline.signal.fingerprint import decode_fingerprint, encode_fingerprint
 from pipeline.stages import split
+from tests.conftest import examples
 
 REPO = Path(__file__).resolve().parent.parent
 # The 39 stressless ARPAbet phones of the CMU Pronouncing Dictionary.
@@ -250,7 +251,7 @@ configs = st.fixed_dictionaries({
 })
 corpus_shapes = st.tuples(st.lists(st.integers(1, 6), min_size=2, max_size=6), st.integers(0, 2**32 - 1),
                           st.sampled_from([0.0, 0.15]))
-PROPERTY_SETTINGS = settings(max_examples=40, deadline=None,
+PROPERTY_SETTINGS = settings(max_examples=examples(40), deadline=None,
                              suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
 
 
