@@ -70,7 +70,7 @@ def test_round_trip(ledger: Ledger) -> None:
     (HEADER + "\ngroup\talder\n", 2, "'group<TAB>id<TAB>side'"),
     (HEADER + "\ngroup\talder\tleft\n", 2, "a side: heldout or training"),
     (HEADER + "\ngroup\talder\ttraining\ngroup\talder\theldout\n", 3, "each group id once"),
-    (HEADER + "\nspeaker\talder\ttraining\n", 2, "a row starting with 'clip' or 'group'"),
+    (HEADER + "\nspeaker\talder\ttraining\n", 2, "a row starting with 'clip', 'group' or 'source'"),
     (HEADER + "\nclip\ta-1\tlabelled\t10m,1h\n", 2, "5 tab-separated fields"),
     (HEADER + "\nclip\ta-1\ttrain\t-\talder\ngroup\talder\ttraining\n", 2, "labelled, unlabelled or heldout"),
     (HEADER + "\nclip\ta-1\tlabelled\t-\talder\ngroup\talder\ttraining\n", 2, "the tiers of a labelled clip"),
@@ -255,3 +255,72 @@ def test_heldout_clip_that_was_gone_returns_to_heldout_under_another_grouping(tm
     third = all_rows(split.run(make_ctx(tmp_path, corpus, by_clip)))
     assert {c: third[c]["subset"] for c in held} == dict.fromkeys(held, "heldout")
     assert set(read_ledger(tmp_path / "out" / "ledger.tsv").clips) == set(first)
+
+
+# ---------------------------------------------------------------------------------------
+# The corpus a ledger describes
+# ---------------------------------------------------------------------------------------
+
+def test_another_corpus_against_the_ledger_stops_and_leaves_it_byte_identical(tmp_path: Path) -> None:
+    # Source: docs/split.md, "The ledger belongs to its corpus": a corpus sharing less than
+    # half of the smaller source set is refused with exit 2 (UsageError) and the ledger kept.
+    data = {"split": {"labelled_budgets": ["20s"], "heldout": "20%"}}
+    split.run(make_ctx(tmp_path, small_corpus(), data))
+    path = tmp_path / "out" / "ledger.tsv"
+    before = path.read_bytes()
+    assert read_ledger(path).sources  # the corpus identity is recorded
+    other = Corpus(counter=10_000)  # other content: no source hash in common
+    for spk in SPEAKERS[:4]:
+        for k in range(6):
+            other.add(spk, 3.0 + k)
+    with pytest.raises(UsageError, match=r"ledger.tsv: this split ledger describes corpus [0-9a-f]{12} "
+                                         r"\(24 sources\), but RAW .* is corpus [0-9a-f]{12} \(24 sources\), "
+                                         r"sharing 0") as caught:
+        split.run(make_ctx(tmp_path, other, data))
+    assert caught.value.exit_code == 2
+    assert path.read_bytes() == before
+    # The ways out: --fresh overwrites it, another ledger path leaves it alone.
+    split.run(make_ctx(tmp_path, other, {"split": {**data["split"], "ledger": str(tmp_path / "other.tsv")}},
+                       source=str(tmp_path / "conf" / "c.toml")))
+    assert path.read_bytes() == before and (tmp_path / "other.tsv").exists()
+    split.run(make_ctx(tmp_path, other, data, fresh=True))
+    assert path.read_bytes() != before
+
+
+def test_moving_or_growing_the_corpus_keeps_its_ledger(tmp_path: Path) -> None:
+    # Source: docs/split.md, "The ledger belongs to its corpus": the identity is the sources'
+    # content, so renamed files, a moved RAW and arriving audio keep the ledger.
+    corpus = small_corpus()
+    data = {"split": {"labelled_budgets": ["20s"], "heldout": "20%"}}
+    first = all_rows(split.run(make_ctx(tmp_path, corpus, data)))
+    for row in corpus.audio:
+        row["source_path"] = "moved/" + row["source_path"]
+    for spk in SPEAKERS[:6]:
+        for k in range(8):  # twice the corpus arrives
+            corpus.add(spk, 4.0 + k)
+    again = all_rows(split.run(make_ctx(tmp_path / "elsewhere", corpus, data | {"split": {
+        **data["split"], "ledger": str(tmp_path / "out" / "ledger.tsv")}}, source=str(tmp_path / "c.toml"))))
+    assert {c: again[c]["subset"] for c in first} == {c: r["subset"] for c, r in first.items()}
+
+
+def test_every_gone_source_is_kept_and_returns_to_its_subset(tmp_path: Path) -> None:
+    # Source: docs/split.md, The ledger: entries are never dropped; a source that is gone
+    # stays as gone, and when it comes back its clips return to their subset and tiers.
+    corpus = small_corpus(speakers=5, clips=6)
+    data = {"split": {"labelled_budgets": ["20s"], "heldout": "20%"}}
+    first = all_rows(split.run(make_ctx(tmp_path, corpus, data)))
+    # One clip of each subset leaves.
+    gone = {sorted(c for c, r in first.items() if r["subset"] == s)[0] for s in ("labelled", "unlabelled", "heldout")}
+    second = split.run(make_ctx(tmp_path, corpus.subset(set(first) - gone), data))
+    assert second.summary["changes"]["removed"] == {"labelled": 1, "unlabelled": 1, "heldout": 1}
+    assert second.summary["changes"]["gone_sources"] == 3
+    ledger = read_ledger(tmp_path / "out" / "ledger.tsv")
+    assert set(ledger.clips) == set(first)
+    assert sorted(k for k, v in ledger.sources.items() if v == "gone") == sorted(c.rsplit("-", 1)[1] for c in gone)
+    back = split.run(make_ctx(tmp_path, corpus, data))
+    assert back.summary["changes"]["returned_sources"] == 3
+    rows = all_rows(back)
+    assert {c: (rows[c]["subset"], rows[c]["tiers"]) for c in gone} == \
+        {c: (first[c]["subset"], first[c]["tiers"]) for c in gone}
+    assert [c for c, r in rows.items() if (r["subset"] == "heldout") != (first[c]["subset"] == "heldout")] == []
+    assert set(read_ledger(tmp_path / "out" / "ledger.tsv").sources.values()) == {"present"}

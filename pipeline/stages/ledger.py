@@ -9,6 +9,8 @@ corpus config, so its format is plain text that diffs well::
     clip<TAB>wren_02-abcdef0123<TAB>heldout<TAB>-<TAB>wren
     group<TAB>alder<TAB>training
     group<TAB>wren<TAB>heldout
+    source<TAB>0123456789<TAB>present
+    source<TAB>abcdef0123<TAB>gone
 
 The header records the settings the assignment was made with (budgets smallest
 first). Rows are sorted by kind, then id. A clip row gives its subset
@@ -16,8 +18,14 @@ first). Rows are sorted by kind, then id. A clip row gives its subset
 (comma-separated, ``-`` for none) and its group; a group row gives its side
 (``heldout`` or ``training``). A group row is kept after the group's clips have
 gone, so a speaker who comes back returns to the same side; so is the row of a
-held-out clip that has gone, so the clip comes back to held-out even under another
+clip that has gone, so the clip comes back to its subset even under another
 ``group_by``.
+
+A source row names a source file by its content (the ten hex digits of its SHA-256
+that end its ``source_id``) and says whether it was ``present`` at the last run or
+``gone`` since. The source rows are the ledger's corpus identity: a rebuild is
+accepted when the corpus shares at least half of the smaller of the two source sets
+(see :func:`check_corpus`), whatever the folder is called or where it moved.
 
 This module knows the format and where the file lives; what a rebuild does with
 it is in :mod:`pipeline.stages.split`.
@@ -25,9 +33,10 @@ it is in :mod:`pipeline.stages.split`.
 
 from __future__ import annotations
 
+import hashlib
 import os
 import re
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -40,6 +49,8 @@ from pipeline.stages.paths import is_inside
 MAGIC = "# loam split ledger v1"
 SETTING_KEYS = ("group_by", "seed", "heldout", "budgets", "selection")
 SIDES = ("heldout", "training")
+SOURCE_STATES = ("present", "gone")
+_SOURCE_KEY = re.compile(r"^[0-9a-f]{10}$")
 NO_TIERS = "-"
 _BUDGET = re.compile(r"^[0-9]+(\.[0-9]+)?(s|m|h)$")
 _HEADER_EXAMPLE = f"{MAGIC}<TAB>group_by=...<TAB>seed=...<TAB>heldout=...<TAB>budgets=...<TAB>selection=..."
@@ -54,18 +65,63 @@ class ClipRecord:
     group: str
 
 
+def source_key(source_id: str) -> str:
+    """The content part of a ``source_id``: the hex digits after its last hyphen.
+
+    Examples
+    --------
+    >>> source_key("alder_01-0123456789")
+    '0123456789'
+    """
+    return source_id.rsplit("-", 1)[-1]
+
+
+def corpus_id(keys: Iterable[str]) -> str:
+    """A short name for a set of source keys: the first 12 hex digits of the SHA-256 of
+    the sorted keys, one per line.
+
+    Examples
+    --------
+    >>> corpus_id(["b", "a"]) == corpus_id(["a", "b"])
+    True
+    """
+    return hashlib.sha256("\n".join(sorted(set(keys))).encode("utf-8")).hexdigest()[:12]
+
+
+def shares_corpus(recorded: Iterable[str], current: Iterable[str]) -> bool:
+    """Whether a ledger recording ``recorded`` sources describes a corpus of ``current`` ones.
+
+    Accepted when either set is empty (a ledger written before sources were recorded,
+    or a run with no clips) or when the shared sources are at least half of the smaller
+    set: audio arriving or going keeps a corpus, another dump shares nothing or little.
+
+    Examples
+    --------
+    >>> shares_corpus({"a", "b"}, {"a", "b", "c", "d", "e"})
+    True
+    >>> shares_corpus({"a", "b", "c"}, {"c", "d", "e"})
+    False
+    """
+    old, new = set(recorded), set(current)
+    if not old or not new:
+        return True
+    return 2 * len(old & new) >= min(len(old), len(new))
+
+
 @dataclass(frozen=True)
 class Ledger:
     """A whole ledger: the header settings, group sides and clip assignments.
 
     ``settings`` holds the header's values as text (``budgets`` comma-separated,
     smallest first, or ``-``); ``groups`` maps a group id to ``heldout`` or
-    ``training``; ``clips`` maps a clip id to its :class:`ClipRecord`.
+    ``training``; ``clips`` maps a clip id to its :class:`ClipRecord`; ``sources``
+    maps a source key (:func:`source_key`) to ``present`` or ``gone``.
     """
 
     settings: Mapping[str, str]
     groups: Mapping[str, str] = field(default_factory=dict)
     clips: Mapping[str, ClipRecord] = field(default_factory=dict)
+    sources: Mapping[str, str] = field(default_factory=dict)
 
     @property
     def budgets(self) -> tuple[str, ...]:
@@ -111,6 +167,7 @@ def format_ledger(ledger: Ledger) -> str:
     rows = [("clip", cid, f"clip\t{cid}\t{rec.subset}\t{_join_list(rec.tiers)}\t{rec.group}")
             for cid, rec in ledger.clips.items()]
     rows += [("group", gid, f"group\t{gid}\t{side}") for gid, side in ledger.groups.items()]
+    rows += [("source", key, f"source\t{key}\t{state}") for key, state in ledger.sources.items()]
     rows.sort(key=lambda r: (r[0], r[1]))
     return "\n".join([header] + [r[2] for r in rows]) + "\n"
 
@@ -157,6 +214,7 @@ class _Parser:
         groups: dict[str, str] = {}
         clips: dict[str, ClipRecord] = {}
         clip_lines: dict[str, int] = {}
+        sources: dict[str, str] = {}
         for line_no, raw_line in enumerate(lines[1:], start=2):
             line = raw_line.rstrip("\r")
             if not line.strip():
@@ -182,12 +240,18 @@ class _Parser:
                 tiers = self.tiers(line_no, tier_text, subset, budgets)
                 clips[cid] = ClipRecord(subset, tiers, group)
                 clip_lines[cid] = line_no
+            elif kind == "source":
+                if len(fields) != 3 or not _SOURCE_KEY.match(fields[1]) or fields[2] not in SOURCE_STATES:
+                    raise self.fail(line_no, line, "'source<TAB>ten hex digits<TAB>present or gone'")
+                if fields[1] in sources:
+                    raise self.fail(line_no, fields[1], "each source once")
+                sources[fields[1]] = fields[2]
             else:
-                raise self.fail(line_no, kind, "a row starting with 'clip' or 'group'")
+                raise self.fail(line_no, kind, "a row starting with 'clip', 'group' or 'source'")
         for cid, rec in clips.items():
             if rec.group not in groups:
                 raise self.fail(clip_lines[cid], rec.group, "a group that has its own 'group' row")
-        return Ledger(settings, groups, clips)
+        return Ledger(settings, groups, clips, sources)
 
     def tiers(self, line_no: int, text: str, subset: str, budgets: tuple[str, ...]) -> tuple[str, ...]:
         tiers = _split_list(text)

@@ -53,7 +53,16 @@ from pipeline.core.names import (
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.signal.fingerprint import decode_fingerprint, find_near_duplicates
 from pipeline.stages import gates
-from pipeline.stages.ledger import ClipRecord, Ledger, locate_ledger, read_ledger, write_ledger
+from pipeline.stages.ledger import (
+    ClipRecord,
+    Ledger,
+    corpus_id,
+    locate_ledger,
+    read_ledger,
+    shares_corpus,
+    source_key,
+    write_ledger,
+)
 from pipeline.stages.selection import Candidate, TierOutcome, TierPlan, fill_tiers
 
 NAME = "split"
@@ -682,9 +691,10 @@ def _log_changes(ctx: StageContext, changes: dict[str, Any], ledger_path: str, u
     def fmt(d: Mapping[str, int]) -> str:
         return ", ".join(f"{k} {v}" for k, v in d.items()) or "none"
 
-    ctx.log.info("split changes against %s: added (%s); removed (%s); moved (%s)",
+    ctx.log.info("split changes against %s: added (%s); gone, kept in the ledger (%s); moved (%s); "
+                 "sources gone %d, returned %d",
                  ledger_path if used else "no ledger", fmt(changes["added"]), fmt(changes["removed"]),
-                 fmt(changes["moved"]))
+                 fmt(changes["moved"]), changes["gone_sources"], changes["returned_sources"])
     if changes["straddling_groups"]:
         ctx.log.warning("split: %d groups have ledger clips on both sides since new near-duplicates bound them "
                         "(%s); earlier clips keep their subsets and new ones go to held-out; --fresh regroups",
@@ -748,8 +758,23 @@ class LedgerUse:
     ledger: Ledger | None
 
 
-def _open_ledger(ctx: StageContext) -> LedgerUse:
-    """Find and read the split ledger (unless --fresh), warning when its settings differ."""
+def _check_corpus(ctx: StageContext, ledger: Ledger, path: Path, sources: set[str]) -> None:
+    """UsageError (exit 2) when the ledger describes another corpus (see
+    :func:`pipeline.stages.ledger.shares_corpus`); the ledger is left as it is."""
+    if shares_corpus(ledger.sources, sources):
+        return
+    shared = len(set(ledger.sources) & sources)
+    raise UsageError(
+        f"{path}: this split ledger describes corpus {corpus_id(ledger.sources)} ({len(ledger.sources)} sources), "
+        f"but RAW {ctx.raw} is corpus {corpus_id(sources)} ({len(sources)} sources), sharing {shared}; "
+        "expected at least half of the smaller set shared. The ledger is unchanged: set split.ledger to "
+        "another path for this corpus, or run with --fresh to assign every clip anew and overwrite it"
+    )
+
+
+def _open_ledger(ctx: StageContext, sources: set[str]) -> LedgerUse:
+    """Find and read the split ledger (unless --fresh), refusing one of another corpus
+    and warning when its settings differ."""
     cfg = ctx.config
     ledger_path, where = locate_ledger(cfg, raw=ctx.raw, out=ctx.out)
     if where not in ("split.ledger", "beside the config file"):
@@ -759,6 +784,7 @@ def _open_ledger(ctx: StageContext) -> LedgerUse:
     if fresh:
         ctx.log.info("split: --fresh: ignoring the ledger %s and assigning every clip anew", ledger_path)
     if ledger is not None:
+        _check_corpus(ctx, ledger, ledger_path, sources)
         for key, now in (("group_by", cfg.split.group_by), ("seed", str(cfg.seed))):
             if ledger.settings[key] != now:
                 ctx.log.warning("split: the ledger was written with %s=%s, the config says %s; earlier "
@@ -811,7 +837,8 @@ def run(ctx: StageContext) -> StageResult:
     del joined
     rejects, kept = _gate_rejects(clips, cfg)
     eligible_s, target_s = _heldout_target(ctx, kept)
-    use = _open_ledger(ctx)
+    sources = {source_key(c.audio["source_id"]) for c in clips}
+    use = _open_ledger(ctx, sources)
     ledger = use.ledger
     assignment = assign(kept, ledger=ledger, seed=cfg.seed, target_s=target_s, budgets=budgets,
                         method=sc.selection)
@@ -823,11 +850,13 @@ def run(ctx: StageContext) -> StageResult:
     shortfalls = _log_tiers(ctx, assignment, kept)
 
     present = {c.clip_id for c in kept}
-    new_ledger = _next_ledger(ledger, assignment, kept, cfg_settings={
+    new_ledger = _next_ledger(ledger, assignment, kept, sources, cfg_settings={
         "group_by": sc.group_by, "seed": str(cfg.seed), "heldout": sc.heldout,
         "budgets": ",".join(b for b, _ in budgets) or "-", "selection": sc.selection})
     write_ledger(use.path, new_ledger)
     changes = _changes(ledger, assignment, present)
+    changes["gone_sources"] = sum(state == "gone" for state in new_ledger.sources.values())
+    changes["returned_sources"] = sum(ledger.sources.get(k) == "gone" for k in sources) if ledger else 0
     _log_changes(ctx, changes, str(use.path), ledger is not None)
 
     summary = _summary(kept, clips, assignment, pairs, by_subset, target_s=target_s, eligible_s=eligible_s,
@@ -842,30 +871,49 @@ def run(ctx: StageContext) -> StageResult:
     return StageResult(manifests=tables, rejects=rejects, summary=summary)
 
 
-def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[Clip],
+def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[Clip], sources: set[str],
                  *, cfg_settings: dict[str, str]) -> Ledger:
-    """The ledger to write: this run's assignment, the sides of groups whose clips are
-    all gone, and the rows of held-out clips that are gone.
+    """The ledger to write: this run's assignment and sources, and every row of the old
+    ledger whose clip, group or source is gone.
 
-    A held-out clip can leave the input for a run (its file removed, the audio stage
-    rejecting it, a gate whose action is "reject" setting it aside) and come back
-    later. Its group row alone cannot bring it back to held-out: after a
-    ``split.group_by`` change its new group has no row. So its clip row stays, and
-    the returning clip keeps its subset like any clip of the ledger.
+    A clip can leave the input for a run (its file removed, the audio stage rejecting
+    it, a gate whose action is "reject" setting it aside) and come back later. Its
+    group row alone cannot bring it back to its subset: after a ``split.group_by``
+    change its new group has no row. So its clip row stays, and the returning clip
+    keeps its subset like any clip of the ledger; its source stays as ``gone``.
     """
     groups = dict(assignment.sides)
     clips = {c.clip_id: ClipRecord(assignment.subset[c.clip_id], assignment.tiers.get(c.clip_id, ()), c.group)
              for c in kept}
+    known = dict.fromkeys(sorted(sources), "present")
+    budgets = _budget_names(cfg_settings["budgets"])
     if ledger is not None:
         # Keep the side of a group whose clips are all gone, so it returns to the same side.
         current = set(groups) | {c.base_group for c in kept}
         groups.update({g: side for g, side in ledger.groups.items() if g not in current})
         for cid, rec in ledger.clips.items():
-            if cid not in clips and rec.subset == HELDOUT:
-                clips[cid] = rec
+            if cid not in clips:
+                clips[cid] = _gone_record(rec, budgets, assignment.continues)
                 # Every clip row names a group that has a row (the parser checks).
                 groups.setdefault(rec.group, ledger.groups[rec.group])
-    return Ledger(cfg_settings, groups, clips)
+        known.update({k: "gone" for k in ledger.sources if k not in known})
+    return Ledger(cfg_settings, groups, clips, dict(sorted(known.items())))
+
+
+def _budget_names(text: str) -> tuple[str, ...]:
+    return () if text == "-" else tuple(text.split(","))
+
+
+def _gone_record(rec: ClipRecord, budgets: tuple[str, ...], continues: Mapping[str, str]) -> ClipRecord:
+    """A gone clip's row in this run's budget names: its tiers as the tiers that continue
+    them (nested, so from the smallest on); a labelled clip no tier continues becomes
+    unlabelled, and comes back as a candidate."""
+    if rec.subset != LABELLED:
+        return rec
+    kept = [i for i, b in enumerate(budgets) if continues.get(b) in rec.tiers]
+    if not kept:
+        return ClipRecord(UNLABELLED, (), rec.group)
+    return ClipRecord(LABELLED, budgets[kept[0]:], rec.group)
 
 
 def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment, pairs: Sequence[DuplicatePair],
