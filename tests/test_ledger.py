@@ -112,9 +112,16 @@ def test_location_rules(tmp_path: Path) -> None:
     # Source: the split.ledger description in schemas/config.schema.json and README.md (never inside RAW).
     raw, out = tmp_path / "raw", tmp_path / "out"
     raw.mkdir()
+    # Beside the config when its folder holds RAW or OUT (the corpus project) ...
+    conf = tmp_path / "field.toml"
+    cfg = build_config({}, source=str(conf), base_dir=str(conf.parent))
+    assert locate_ledger(cfg, raw=raw, out=out) == (tmp_path / "field.ledger.tsv", "beside the config file")
+    assert locate_ledger(cfg, raw=tmp_path.parent / "elsewhere", out=out)[1] == "beside the config file"
+    # ... else in OUT: a shared config must not give one corpus's ledger to another.
     conf = tmp_path / "conf" / "field.toml"
     cfg = build_config({}, source=str(conf), base_dir=str(conf.parent))
-    assert locate_ledger(cfg, raw=raw, out=out) == (conf.parent / "field.ledger.tsv", "beside the config file")
+    path, why = locate_ledger(cfg, raw=raw, out=out)
+    assert path == out / "ledger.tsv" and "holds neither RAW nor OUT" in why
     assert locate_ledger(build_config({}, source="<defaults>"), raw=raw, out=out)[0] == out / "ledger.tsv"
     assert locate_ledger(build_config({}), raw=raw, out=out)[0] == out / "ledger.tsv"
     inside = raw / "corpus.toml"

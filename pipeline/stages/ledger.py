@@ -322,11 +322,13 @@ def _has_config_file(config: Config) -> bool:
 def locate_ledger(config: Config, *, raw: Path, out: Path) -> tuple[Path, str]:
     """Where the ledger lives, and a short phrase saying why.
 
-    ``split.ledger`` when set (relative to the config file's folder); otherwise
-    ``<config stem>.ledger.tsv`` beside the config file, or ``OUT/ledger.tsv``
-    without a config file. RAW is never written to: when the default place is
-    inside RAW the ledger goes to ``OUT/ledger.tsv``, and a configured path inside
-    RAW is a ``UsageError``.
+    ``split.ledger`` when set (relative to the config file's folder). Otherwise
+    ``<config stem>.ledger.tsv`` beside the config file when the config sits with the
+    corpus project (its folder holds RAW or OUT), so the ledger is committed with the
+    config; else ``OUT/ledger.tsv``, so a config shared by several dumps never hands
+    one corpus's ledger to another. RAW is never written to: when the place beside
+    the config is inside RAW the ledger goes to ``OUT/ledger.tsv``, and a configured
+    path inside RAW is a ``UsageError``.
 
     Parameters
     ----------
@@ -354,4 +356,6 @@ def locate_ledger(config: Config, *, raw: Path, out: Path) -> tuple[Path, str]:
     beside = source.parent / f"{source.stem}.ledger.tsv"
     if is_inside(beside, folder=raw):
         return out / LEDGER_IN_OUT, "the default place beside the config file is inside RAW, which is never written to"
+    if not (is_inside(raw, folder=source.parent) or is_inside(out, folder=source.parent)):
+        return out / LEDGER_IN_OUT, "the config file's folder holds neither RAW nor OUT, so it may serve other corpora"
     return beside, "beside the config file"
