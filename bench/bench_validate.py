@@ -83,6 +83,7 @@ def _subset_columns(name: str, clip_ids: list[str], speaker_ids: list[str], audi
         "rate_z": [0.0 if transcribed else None for _ in clip_ids],
         "near_duplicate_of": [None] * n,
         "quality_flags": [[] for _ in clip_ids],
+        "scorable": [transcribed] * n,
     }
 
 

@@ -122,6 +122,8 @@ def test_clipped_action_demotes_or_rejects_and_validate_agrees(default_build: Pa
     found = errors(judged, warnings=("tier_budget", "config_hash"))
     assert {(p.check, p.file, p.column) for p in found} == {
         ("quality_gate", "manifests/labelled.parquet", "quality_flags"),
-        ("quality_gate", "manifests/labelled.parquet", "clipped_fraction")}
+        ("quality_gate", "manifests/labelled.parquet", "clipped_fraction"),
+        # and its scorable mark, which the gate no longer allows
+        ("scorable", "manifests/labelled.parquet", "scorable")}
     labelled = pq.read_table(judged / "manifests" / "labelled.parquet").column("source_path").to_pylist()
     assert {labelled[p.row] for p in found} == {CLIPPED}

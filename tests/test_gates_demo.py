@@ -109,6 +109,8 @@ def test_transcribed_narrowband_clip_stays_labelled_unless_demotion_is_on(demo_b
     errors = errors_only(tmp_path / "default", warnings=("tier_budget", "config_hash"))
     assert {(p.check, p.file, p.column) for p in errors} == {
         ("quality_gate", "manifests/labelled.parquet", "quality_flags"),
-        ("quality_gate", "manifests/labelled.parquet", "bandwidth_hz")}
+        ("quality_gate", "manifests/labelled.parquet", "bandwidth_hz"),
+        # and its scorable mark, which a demoting gate no longer allows
+        ("scorable", "manifests/labelled.parquet", "scorable")}
     labelled = pq.read_table(tmp_path / "default" / "manifests" / "labelled.parquet").column("clip_id").to_pylist()
     assert {labelled[p.row] for p in errors} == {cid}

@@ -720,3 +720,20 @@ def test_merge_groups_matches_connected_components() -> None:
         for k, label in enumerate(labels.tolist()):
             smallest.setdefault(label, ids[k])
         assert merge_groups(groups, pairs) == [smallest[int(labels[index[g]])] for g in groups]
+
+
+@pytest.mark.parametrize("keep", [False, True])
+def test_scorable_is_eligible_with_transcript_and_phones_in_the_row(tmp_path: Path, keep: bool) -> None:
+    # Source: schemas/subset.schema.json, "scorable": transcript and phones in the row, and
+    # no gate guarding scoring holds the clip back (eligible, recomputed here from the inputs).
+    corpus = Corpus()
+    for k, spk in enumerate(SPEAKERS[:5] * 4):
+        corpus.add(spk, 4.0 + k % 3, transcribed=k % 4 != 0, snr_db=2.0 if k % 5 == 0 else 25.0)
+    data = {"quality": {"rate_max_abs_z": 1000.0}, "split": {"labelled_budgets": ["10s"], "heldout": "20%",
+                                                               "keep_transcripts": keep}}
+    rows = all_rows(split.run(make_ctx(tmp_path, corpus, data)))
+    eligible = eligible_ids(corpus)
+    want = {c for c in eligible if keep or rows[c]["subset"] != "unlabelled"}
+    assert {c for c, r in rows.items() if r["scorable"]} == want
+    assert any(r["scorable"] for r in rows.values() if r["subset"] == "heldout")
+    assert any(not r["scorable"] for r in rows.values() if r["subset"] == "heldout")

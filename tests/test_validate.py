@@ -86,6 +86,7 @@ def clip_row(out: Path, *, clip_id: str, speaker: str, subset: str, freq_hz: flo
         "subset": subset, "tiers": list(tiers), "speech_ratio": 0.9, "snr_db": 35.0,
         "bandwidth_hz": 7800.0, "clipped_fraction": 0.0, "speaking_rate": None if text is None else 5.0,
         "rate_z": None if text is None else 0.1, "near_duplicate_of": None, "quality_flags": [],
+        "scorable": text is not None,
         **audio,
     }
 
@@ -352,8 +353,8 @@ def test_tier_short_of_budget_is_a_warning(out: Out) -> None:
 
 
 def test_empty_labelled_subset_is_an_error(out: Out) -> None:
-    out.rows["unlabelled"] += [dict(r, subset="unlabelled", tiers=[], transcript=None, norm_text=None, phones=None)
-                               for r in out.rows["labelled"]]
+    out.rows["unlabelled"] += [dict(r, subset="unlabelled", tiers=[], transcript=None, norm_text=None, phones=None,
+                                    scorable=False) for r in out.rows["labelled"]]
     out.rows["labelled"] = []
     out.write()
     problems = out.validate()
@@ -376,8 +377,8 @@ def test_a_tier_that_holds_nothing_is_an_error(out: Out) -> None:
 def test_empty_heldout_is_an_error_unless_the_config_asks_for_none(out: Out) -> None:
     moved = out.rows["heldout"]
     out.rows["heldout"] = []
-    out.rows["unlabelled"] += [dict(r, subset="unlabelled", transcript=None, norm_text=None, phones=None)
-                               for r in moved]
+    out.rows["unlabelled"] += [dict(r, subset="unlabelled", transcript=None, norm_text=None, phones=None,
+                                    scorable=False) for r in moved]
     out.write()
     problem = only(out.validate(), "subset_empty", HELD)
     assert "'10%'" in problem.expected  # the default split.heldout
@@ -389,8 +390,8 @@ def test_empty_heldout_is_an_error_unless_the_config_asks_for_none(out: Out) -> 
 def test_heldout_with_nothing_to_score_is_an_error(out: Out) -> None:
     held = out.rows["heldout"]
     held[0].update(transcript=None, norm_text=None, phones=None, speaking_rate=None, rate_z=None,
-                   quality_flags=["heldout_untranscribed"])
-    held[1].update(quality_flags=["rate_outlier"], rate_z=5.0)
+                   quality_flags=["heldout_untranscribed"], scorable=False)
+    held[1].update(quality_flags=["rate_outlier"], rate_z=5.0, scorable=False)
     out.write()
     only(out.validate(), "subset_empty", HELD, None, "transcript")
     out.set_config(quality={"rate_outlier_action": "flag"})  # the second clip is scored again
@@ -540,6 +541,7 @@ def test_rejected_noisy_clips_must_be_in_no_subset(out: Out) -> None:
     # Source: quality.noisy_action = "reject" sets noisy clips aside (docs/split.md, Quality gates).
     out.rows["heldout"][1]["quality_flags"] = ["noisy"]
     out.rows["heldout"][1]["snr_db"] = 1.0
+    out.rows["heldout"][1]["scorable"] = False
     out.write()
     assert out.validate() == []  # demoted: a held-out clip keeps its flag, unscored
     out.set_config(quality={"noisy_action": "reject"})
@@ -549,6 +551,7 @@ def test_rejected_noisy_clips_must_be_in_no_subset(out: Out) -> None:
 def test_heldout_keeps_flagged_clips(out: Out) -> None:
     out.rows["heldout"][0]["quality_flags"] = ["noisy"]
     out.rows["heldout"][0]["snr_db"] = 1.0
+    out.rows["heldout"][0]["scorable"] = False
     out.write()
     assert out.validate() == []
 
@@ -652,6 +655,7 @@ def test_exit_codes_and_json_through_the_cli(out: Out, tmp_path: Path, capsys: p
 
 def test_table_lists_every_problem_then_a_count(out: Out) -> None:
     out.rows["labelled"][0]["quality_flags"] = ["noisy"]
+    out.rows["labelled"][0]["scorable"] = False
     out.rows["heldout"][1]["norm_text"] = out.rows["labelled"][1]["norm_text"]
     out.write()
     text = format_table(validate_out(out.root))
@@ -740,3 +744,18 @@ def test_manifests_only_skips_the_audio_files(demo_build: Path, tmp_path: Path, 
     assert main(["validate", str(out)]) == 1
     assert "audio_missing" in capsys.readouterr().out
     assert main(["validate", str(out), "--manifests-only", "--deep"]) == 2
+
+
+def test_a_scorable_row_needs_transcript_phones_and_no_barring_flag(out: Out) -> None:
+    # Source: schemas/subset.schema.json, "scorable": transcript and phones present, no gate
+    # guarding scoring holds the row back (docs/split.md, Scorable rows).
+    held = out.rows["heldout"]
+    held[0]["quality_flags"] = ["noisy"]  # demoted by default: it guards scoring
+    held[1]["phones"] = []
+    out.write()
+    problems = out.validate()
+    assert only(problems, "scorable", HELD, 0, "scorable").found == 'true, flagged ["noisy"]'
+    assert only(problems, "scorable", HELD, 1, "scorable").found == "true, without transcript or phones"
+    held[0]["scorable"] = held[1]["scorable"] = False
+    out.write()
+    assert not found(out.validate(), "scorable", HELD)

@@ -656,6 +656,28 @@ def _check_empty_subsets(s: _Subsets, config: Config) -> list[Problem]:
     return problems
 
 
+def _check_scorable(s: _Subsets, config: Config) -> list[Problem]:
+    """A row marked scorable carries its transcript and phones and no flag that a gate
+    guarding scoring sets (the split stage's rule, :func:`pipeline.stages.split._subset_row`)."""
+    barred = [*gates.holding_gates(config.quality.gate_actions), *ALWAYS_GATED_FLAGS]
+    problems: list[Problem] = []
+    for name in SUBSETS:
+        if not all(s.usable(name, c) for c in ("scorable", "transcript", "phones", "quality_flags")):
+            continue
+        scorable = np.asarray(s.column(name, "scorable").fill_null(False), dtype=bool)
+        phones = s.column(name, "phones")
+        lengths = np.asarray(pc.fill_null(pc.list_value_length(phones), 0), dtype=np.int64)
+        missing = np.asarray(s.column(name, "transcript").is_null(), dtype=bool) | (lengths == 0)
+        hit = scorable & (missing | s.list_members(name, "quality_flags", barred))
+        flags = s.column(name, "quality_flags")
+        problems += _row_problems("error", "scorable", subset_manifest(name), np.flatnonzero(hit), "scorable",
+                                  lambda r, flags=flags, missing=missing: (
+                                      "true, without transcript or phones" if missing[r]
+                                      else f"true, flagged {_text(flags[r].as_py())}"),
+                                  f"scorable only with transcript, phones and none of {', '.join(barred)}")
+    return problems
+
+
 def _check_quality_gates(s: _Subsets, config: Config) -> list[Problem]:
     """No labelled clip that a gate holds back, decided as the split stage decides
     (:mod:`pipeline.stages.gates`), from the flags and from the measured values; and no clip at
@@ -935,6 +957,7 @@ def _row_checks(s: _Subsets, read: _Manifests, out: Path,
         ("duration_bounds", lambda: _check_durations(s, config)),
         ("subset_empty", lambda: _check_empty_subsets(s, config)),
         ("quality_gate", lambda: _check_quality_gates(s, config)),
+        ("scorable", lambda: _check_scorable(s, config)),
         ("near_duplicate_split", lambda: _check_near_duplicates(s)),
         ("conservation", lambda: _check_conservation(s, read.stages, read.rejected)),
     ]

@@ -626,6 +626,9 @@ def _subset_row(c: Clip, subset: str, tiers: tuple[str, ...], *, keep_text: bool
         "near_duplicate_of": c.near_duplicate_of,
         "clipped_fraction": float(a["clipped_fraction"]),
         "quality_flags": [f for f in FLAGS if f in flags],
+        # Eligible means transcribed and not held back by a gate; the row must also
+        # carry its transcript and phones (unlabelled rows may drop them).
+        "scorable": bool(c.eligible and text is not None and c.plain_phones),
     }
 
 
