@@ -66,14 +66,21 @@ class ClipRecord:
 
 
 def source_key(source_id: str) -> str:
-    """The content part of a ``source_id``: the hex digits after its last hyphen.
+    """The content part of a ``source_id``: the ten hex digits after its last hyphen
+    (ingest writes the start of the file's SHA-256 there). An id of another shape
+    (hand-made manifests) is keyed by the start of its own SHA-256 instead.
 
     Examples
     --------
     >>> source_key("alder_01-0123456789")
     '0123456789'
+    >>> len(source_key("no-hash-here"))
+    10
     """
-    return source_id.rsplit("-", 1)[-1]
+    tail = source_id.rsplit("-", 1)[-1]
+    if _SOURCE_KEY.match(tail):
+        return tail
+    return hashlib.sha256(source_id.encode("utf-8", "surrogateescape")).hexdigest()[:10]
 
 
 def corpus_id(keys: Iterable[str]) -> str:
