@@ -13,7 +13,7 @@ from pipeline.core.config import build_config
 from pipeline.core.errors import UsageError
 from pipeline.core.runner import Runner
 from pipeline.stages import STAGES
-from pipeline.stages.privacy import load_key, pseudonym
+from pipeline.stages.privacy import load_key, pseudonym, source_reference
 
 
 def test_hmac_primitive_matches_rfc4231_case_2() -> None:
@@ -46,8 +46,13 @@ def test_ingest_pseudonymises_and_writes_mapping_only_where_asked(small_raw: Pat
     expected = {"spk_a": pseudonym("spk_a", key=key.read_bytes().strip()), "spk_b": pseudonym("spk_b", key=key.read_bytes().strip())}
     assert {r["speaker"] for r in rows} == set(expected.values())
     assert all(r["source_id"].startswith("clip-") for r in rows)
-    assert mapping.read_text().splitlines()[1:] == [f"{s}\t{p}" for s, p in sorted(expected.items())]
-    # Nothing in OUT names the speakers except the source paths' folders.
+    lines = mapping.read_text().splitlines()
+    assert lines[0] == "kind\tname\treference"
+    assert [x for x in lines if x.startswith("speaker\t")] == [f"speaker\t{s}\t{p}" for s, p in sorted(expected.items())]
+    sources = dict(x.split("\t")[1:] for x in lines if x.startswith("source\t"))
+    assert {r["source_path"] for r in rows} <= set(sources.values())
+    assert all(sources[rel] == source_reference(rel, key=key.read_bytes().strip()) for rel in sources)
+    # Nothing in OUT names the speakers.
     for path in out.rglob("*.parquet"):
         table = pq.read_table(path)
         if "speaker" in table.column_names:

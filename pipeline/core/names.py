@@ -40,6 +40,9 @@ LAST_RUN = "logs/last-run.json"
 LEDGER_IN_OUT = "ledger.tsv"
 LOGS = "logs"
 CACHE = "cache"
+# In a pseudonymised build, the private mapping from references back to RAW's names
+# (pipeline.stages.privacy); under the cache, which is never shared.
+PRIVATE_MAPPING = "cache/privacy-mapping.tsv"
 REPORT = "report"
 # The lock one run holds on OUT (pipeline.core.lock).
 LOCK = ".loam.lock"

@@ -775,6 +775,26 @@ def _summary(table: Any, rejects: list[dict[str, Any]], *, sources: int) -> dict
     }
 
 
+def _real_paths(ctx: StageContext, out: Path) -> dict[str, str]:
+    """In a pseudonymised build, the RAW-relative path of each source reference, read
+    from the private mapping the ingest stage wrote; else an empty dict."""
+    if not ctx.config.privacy.pseudonymise:
+        return {}
+    from pipeline.stages.privacy import read_mapping
+
+    return {ref: rel for rel, ref in read_mapping(out / names.PRIVATE_MAPPING)["source"].items()}
+
+
+def _scrub_rejects(rejects: list[dict[str, Any]], real: dict[str, str], *, raw: Path) -> list[dict[str, Any]]:
+    """The rejects with every RAW name in their sentences (a decoder's message may
+    quote the file's full path) replaced by the file's reference or ``[withheld]``."""
+    from pipeline.stages.privacy import name_pattern, real_names, scrub
+
+    sources = {str(raw / rel): ref for ref, rel in real.items()} | {rel: ref for ref, rel in real.items()}
+    pattern = name_pattern(real_names((), real.values()))
+    return [{**r, "detail": scrub(r["detail"], sources=sources, pattern=pattern)} for r in rejects]
+
+
 def run(ctx: StageContext) -> StageResult:
     """Condition every ingest row (cached per file), then drop clip files no row names.
 
@@ -801,7 +821,9 @@ def run(ctx: StageContext) -> StageResult:
             rejects_at[i] = outcome.rejects
 
     todo = _reuse_cached(cache, keys, out=out, take=take)
-    jobs = [AudioJob(sources[i], str(raw / sources[i]["source_path"]), str(out), str(out / TMP_DIR), cfg)
+    real = _real_paths(ctx, out)
+    jobs = [AudioJob(sources[i], str(raw / real.get(sources[i]["source_path"], sources[i]["source_path"])),
+                     str(out), str(out / TMP_DIR), cfg)
             for i in todo]
     if jobs:
         warm_up(cfg)
@@ -821,6 +843,8 @@ def run(ctx: StageContext) -> StageResult:
 
     table = builder.table(sort_by="clip_id")
     rejects = [r for i in sorted(rejects_at) for r in rejects_at[i]]
+    if real:
+        rejects = _scrub_rejects(rejects, real, raw=raw)
     removed = _clean_up(ctx, out, table)
     summary = _summary(table, rejects, sources=len(sources))
     # These depend on what earlier runs left in the cache and under audio/: the log's.

@@ -17,6 +17,7 @@ import posixpath
 import re
 import unicodedata
 from collections import defaultdict
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -24,7 +25,7 @@ from typing import Any
 from pipeline.core import names
 from pipeline.core.cache import FileCache, cache_key
 from pipeline.core.codeversion import code_version
-from pipeline.core.fsio import sha256_file
+from pipeline.core.fsio import sha256_file, write_text_atomic
 from pipeline.core.manifest import table_from_rows
 from pipeline.core.names import stage_manifest
 from pipeline.core.parallel import map_ordered
@@ -263,20 +264,42 @@ def extra_inputs(ctx: StageContext) -> list[Path]:
     return [ctx.config.resolve_path(p) for p in (privacy.key_file, privacy.mapping_file) if p]
 
 
-def _pseudonymise(ctx: StageContext, rows: list[dict[str, Any]]) -> None:
-    """Replace speaker ids by keyed pseudonyms, and drop file stems (which often carry
-    names) from source ids."""
-    from pipeline.stages.privacy import load_key, pseudonym, write_mapping
+def _pseudonymise(ctx: StageContext, rows: list[dict[str, Any]], rejects: list[dict[str, Any]],
+                  *, paths: Sequence[str]) -> None:
+    """Replace speaker ids by keyed pseudonyms, source paths by keyed references and
+    drop file stems (which often carry names) from source ids; rewrite the rejects'
+    paths and sentences so they name no folder, file stem or speaker of RAW. The mapping
+    back goes to ``privacy.mapping_file`` and to the private file under OUT's cache."""
+    from pipeline.stages.privacy import (
+        load_key,
+        mapping_text,
+        name_pattern,
+        pseudonym,
+        real_names,
+        scrub,
+        source_reference,
+        write_mapping,
+    )
 
     privacy = ctx.config.privacy
     key = load_key(ctx.config.resolve_path(privacy.key_file), out=ctx.out)
-    mapping: dict[str, str] = {}
+    speakers: dict[str, str] = {}
+    sources = {rel: source_reference(rel, key=key) for rel in paths}
     for row in rows:
         original = row["speaker"]
-        row["speaker"] = mapping.setdefault(original, pseudonym(original, key=key))
+        row["speaker"] = speakers.setdefault(original, pseudonym(original, key=key))
         row["source_id"] = source_id("clip", row["sha256"])
+        row["source_path"] = sources[row["source_path"]]
+    for r in rejects:  # sidecars, metadata lines and files outside the extensions have no reference yet
+        if r["source_path"] not in sources and "/" in r["source_path"] and ":" not in r["source_path"]:
+            sources[r["source_path"]] = source_reference(r["source_path"], key=key)
+    pattern = name_pattern(real_names(speakers, sources))
+    for r in rejects:
+        r["source_path"] = scrub(r["source_path"], sources=sources, pattern=pattern)
+        r["detail"] = scrub(r["detail"], sources=sources, pattern=pattern)
+    write_text_atomic(ctx.out / names.PRIVATE_MAPPING, mapping_text(speakers, sources))
     if privacy.mapping_file:
-        write_mapping(ctx.config.resolve_path(privacy.mapping_file), mapping, out=ctx.out)
+        write_mapping(ctx.config.resolve_path(privacy.mapping_file), speakers, sources, out=ctx.out)
 
 
 def _metadata_by_audio(ctx: StageContext, path_set: set[str]) -> tuple[dict[str, list[MetadataRow]], int, list[dict[str, Any]]]:
@@ -410,13 +433,23 @@ def run(ctx: StageContext) -> StageResult:
         if fate.row is not None:
             accepted.append(fate.row)
 
+    summary = _summary(accepted, rejects, paths=path_set, metadata_rows=metadata_rows)
+    stop = environment_failure(rejects, paths=path_set, metadata_rows=metadata_rows, accepted=len(accepted))
     if ctx.config.privacy.pseudonymise:
-        _pseudonymise(ctx, accepted)
+        _pseudonymise(ctx, accepted, rejects, paths=paths)
+        stop = _scrubbed(ctx, stop)
     accepted.sort(key=lambda r: r["source_path"])
     return StageResult(manifests={stage_manifest(NAME): (NAME, table_from_rows(NAME, accepted))},
-                       rejects=rejects, summary=_summary(accepted, rejects, paths=path_set, metadata_rows=metadata_rows),
-                       stop=environment_failure(rejects, paths=path_set, metadata_rows=metadata_rows,
-                                                accepted=len(accepted)))
+                       rejects=rejects, summary=summary, stop=stop)
+
+
+def _scrubbed(ctx: StageContext, sentence: str) -> str:
+    """``sentence`` without RAW's names, read back from the private mapping just written."""
+    from pipeline.stages.privacy import name_pattern, read_mapping, real_names, scrub
+
+    mapping = read_mapping(ctx.out / names.PRIVATE_MAPPING)
+    pattern = name_pattern(real_names(mapping["speaker"], mapping["source"]))
+    return scrub(sentence, sources=mapping["source"], pattern=pattern)
 
 
 def environment_failure(rejects: list[dict[str, Any]], *, paths: set[str], metadata_rows: int,
