@@ -125,6 +125,14 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Summarise OUT in a self-contained HTML page and a JSON file.",
                        epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("out", type=Path, metavar="OUT", help="a folder written by loam prepare")
+
+    p = sub.add_parser("locate", help="the RAW file or speaker behind a reference of a pseudonymised build",
+                       description="Resolve a source reference (src-...) or speaker pseudonym (spk-...) through "
+                       "the private mapping in OUT's cache, or through --mapping (privacy.mapping_file).",
+                       epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("ref", metavar="REF", help="a source_path (src-...) or speaker (spk-...) of a manifest")
+    p.add_argument("out", type=Path, metavar="OUT", nargs="?", help="a folder written by loam prepare")
+    p.add_argument("--mapping", type=Path, metavar="FILE", help="the mapping file privacy.mapping_file names")
     return parser
 
 
@@ -205,7 +213,17 @@ def _cmd_validate(args: argparse.Namespace) -> int:
         print(json.dumps(result.to_json(), indent=2, ensure_ascii=False))
     else:
         print(format_table(result))
+        print(_share_note(args.out))
     return exit_code(result, strict=args.strict)
+
+
+def _share_note(out: Path) -> str:
+    """Which files under ``out`` are safe to share, from its resolved config."""
+    from pipeline.commands.shareable import share_note
+    from pipeline.commands.validate import load_resolved_config
+
+    config, problems = load_resolved_config(out)
+    return share_note(pseudonymised=not problems and config.privacy.pseudonymise)
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
@@ -213,10 +231,20 @@ def _cmd_report(args: argparse.Namespace) -> int:
 
     index = write_report(args.out)
     print(f"report: {index}")
+    print(_share_note(args.out))
     return 0
 
 
-COMMANDS = {"prepare": _cmd_prepare, "stage": _cmd_stage, "validate": _cmd_validate, "report": _cmd_report}
+def _cmd_locate(args: argparse.Namespace) -> int:
+    from pipeline.commands.shareable import locate
+
+    kind, name = locate(args.ref, out=args.out, mapping_file=args.mapping)
+    print(f"{args.ref}\t{kind}\t{name}")
+    return 0
+
+
+COMMANDS = {"prepare": _cmd_prepare, "stage": _cmd_stage, "validate": _cmd_validate, "report": _cmd_report,
+            "locate": _cmd_locate}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -1007,6 +1007,10 @@ def validate_out(out: Path, *, deep: bool = False, audio_files: bool = True) -> 
     checks = _row_checks(s, read, out, config)
     if audio_files:
         checks.append(("audio_header", lambda: _check_audio_files(s, out, deep=deep)))
+    if config.privacy.pseudonymise:
+        from pipeline.commands.shareable import check_names
+
+        checks.append(("privacy_names", lambda: check_names(out)))
     for check, run in checks:
         try:
             problems += run()
