@@ -85,16 +85,18 @@ def test_pseudonymised_demo_names_nobody_and_rebuild_keeps_references(
     private = tmp_path / "private"
     private.mkdir()
     (private / "speaker.key").write_text("5f0c1e9a" * 8 + "\n")
-    config = tmp_path / "corpus.toml"
-    config.write_text((DEMO / "corpus.toml").read_text(encoding="utf-8")
-                      + '\n[privacy]\npseudonymise = true\nkey_file = "private/speaker.key"\n'
-                      'mapping_file = "private/mapping.tsv"\n', encoding="utf-8")
+    # The config stays in the dump, as the demo's does, so the ledger goes to OUT and is scanned too.
+    config = raw / "corpus.toml"
+    config.write_text(config.read_text(encoding="utf-8")
+                      + f'\n[privacy]\npseudonymise = true\nkey_file = "{private / "speaker.key"}"\n'
+                      f'mapping_file = "{private / "mapping.tsv"}"\n', encoding="utf-8")
     out = tmp_path / "out"
     prepare = ["prepare", str(raw), str(out), "--config", str(config), "--no-progress"]
     assert main(prepare) == 0
     assert main(["report", str(out)]) == 0
     names = raw_names(raw)
     assert {"heron", "wren", "sedge_marsh_walk", "alder_tape_label"} <= names  # the scan looks for these
+    assert (out / "ledger.tsv").is_file()
     assert leaks(out, names) == []
     rejected = pq.read_table(out / "manifests" / "rejected.parquet").to_pylist()
     assert any(r["reason"] == "duplicate_content" and r["source_path"].startswith("src-") for r in rejected)
