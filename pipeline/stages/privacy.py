@@ -20,6 +20,7 @@ import posixpath
 import re
 from collections.abc import Iterable, Mapping
 from pathlib import Path
+from typing import Any
 
 from pipeline.core.errors import UsageError
 from pipeline.core.fsio import write_text_atomic
@@ -122,11 +123,29 @@ def name_pattern(names: Iterable[str]) -> re.Pattern[str] | None:
     >>> name_pattern(["ana"]).findall("ana/ana_01.wav, banana")
     ['ana', 'ana']
     """
-    ordered = sorted({n for n in names if n}, key=lambda n: (-len(n), n))
-    if not ordered:
+    trie: dict[str, Any] = {}
+    for name in {n for n in names if n}:
+        node = trie
+        for char in name:
+            node = node.setdefault(char, {})
+        node[""] = {}
+    if not trie:
         return None
-    alternatives = "|".join(re.escape(n) for n in ordered)
-    return re.compile(rf"(?<![^\W_])(?:{alternatives})(?![^\W_])")
+    return re.compile(rf"(?<![^\W_])(?:{_trie_pattern(trie)})(?![^\W_])")
+
+
+def _trie_pattern(node: dict[str, Any]) -> str:
+    """The names of a character trie as one regex that branches on each character: a
+    plain alternation of tens of thousands of names is tried name by name at every
+    position of the text (20,000 names over 2 MB of text: 21 s), this one letter by letter.
+    Longer names are tried first; the pattern backtracks to a shorter one."""
+    branches = [re.escape(char) + _trie_pattern(child) for char, child in sorted(node.items()) if char]
+    if not branches:
+        return ""
+    body = branches[0] if len(branches) == 1 else "(?:" + "|".join(branches) + ")"
+    if "" not in node:
+        return body
+    return (f"(?:{body})?" if len(branches) == 1 else body + "?")
 
 
 def scrub(text: str, *, sources: Mapping[str, str], pattern: re.Pattern[str] | None) -> str:
