@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import hmac
+import re
 from pathlib import Path
 
 import pyarrow.parquet as pq
@@ -11,9 +12,10 @@ import pytest
 
 from pipeline.core.config import build_config
 from pipeline.core.errors import UsageError
+from pipeline.core.names import PRIVATE_MAPPING
 from pipeline.core.runner import Runner
 from pipeline.stages import STAGES
-from pipeline.stages.privacy import load_key, pseudonym, source_reference
+from pipeline.stages.privacy import load_key, pseudonym, read_mapping, source_reference
 
 
 def test_hmac_primitive_matches_rfc4231_case_2() -> None:
@@ -57,3 +59,31 @@ def test_ingest_pseudonymises_and_writes_mapping_only_where_asked(small_raw: Pat
         table = pq.read_table(path)
         if "speaker" in table.column_names:
             assert not {"spk_a", "spk_b"} & set(table.column("speaker").to_pylist())
+
+
+def test_metadata_speaker_names_leave_no_trace_in_rejects(small_raw: Path, tmp_path: Path) -> None:
+    # Speakers named in the table as written (a space, an accent), one file with two of them.
+    (small_raw / "meta.csv").write_text(
+        "path,transcript,speaker\n"
+        "spk_b/b1.wav,a second line,Ana María\n"
+        "spk_b/b2.ogg,a third line,Ana María\n"
+        "spk_b/b2.ogg,a third line,Bryn Tal\n"
+        "spk_a/a1.wav,,Bryn Tal\n"
+        "spk_a/a2.flac,,Bryn Tal\n",
+        encoding="utf-8")
+    key = tmp_path / "secret.key"
+    key.write_text("0123456789abcdef0123456789abcdef\n")
+    cfg = build_config({"ingest": {"metadata": "meta.csv", "speaker_from": "metadata"},
+                        "privacy": {"pseudonymise": True, "key_file": str(key)}})
+    out = tmp_path / "out"
+    Runner(small_raw, out, cfg, stages=STAGES, workers=1).prepare(("ingest",))
+    rejects = pq.read_table(out / "stages" / "ingest.rejects.parquet").to_pylist()
+    assert any(r["reason"] == "missing_speaker" for r in rejects)
+    text = repr(rejects) + repr(pq.read_table(out / "stages" / "ingest.parquet").to_pylist())
+    for name in ("Ana", "María", "Bryn", "Tal", "spk_a", "spk_b", "b1", "b2", "a1", "a2", "broken", "copy"):
+        # As a whole token: "b1" may well occur inside a hex digest.
+        assert not re.search(rf"(?<![^\W_]){re.escape(name)}(?![^\W_])", text), name
+    # The private mapping knows them all, so loam validate can look for them.
+    private = read_mapping(out / PRIVATE_MAPPING)
+    assert {"Ana María", "Bryn Tal"} <= set(private["speaker"])
+    assert set(private["source"]) >= {"spk_a/a1.wav", "spk_b/b2.ogg", "spk_b/broken.wav", "spk_b/copy.wav"}

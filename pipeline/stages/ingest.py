@@ -265,10 +265,11 @@ def extra_inputs(ctx: StageContext) -> list[Path]:
 
 
 def _pseudonymise(ctx: StageContext, rows: list[dict[str, Any]], rejects: list[dict[str, Any]],
-                  *, paths: Sequence[str]) -> None:
+                  *, paths: Sequence[str], metadata_speakers: set[str]) -> None:
     """Replace speaker ids by keyed pseudonyms, source paths by keyed references and
     drop file stems (which often carry names) from source ids; rewrite the rejects'
-    paths and sentences so they name no folder, file stem or speaker of RAW. The mapping
+    paths and sentences so they name no folder, file stem or speaker of RAW (the
+    metadata table's speaker names as written count too, with the pseudonym of their id). The mapping
     back goes to ``privacy.mapping_file`` and to the private file under OUT's cache."""
     from pipeline.stages.privacy import (
         load_key,
@@ -290,6 +291,8 @@ def _pseudonymise(ctx: StageContext, rows: list[dict[str, Any]], rejects: list[d
         row["speaker"] = speakers.setdefault(original, pseudonym(original, key=key))
         row["source_id"] = source_id("clip", row["sha256"])
         row["source_path"] = sources[row["source_path"]]
+    for name in metadata_speakers:  # the names as written in the table, also those of files set aside
+        speakers.setdefault(name, pseudonym(speaker_id(name), key=key))
     for r in rejects:  # sidecars, metadata lines and files outside the extensions have no reference yet
         if r["source_path"] not in sources and "/" in r["source_path"] and ":" not in r["source_path"]:
             sources[r["source_path"]] = source_reference(r["source_path"], key=key)
@@ -436,7 +439,8 @@ def run(ctx: StageContext) -> StageResult:
     summary = _summary(accepted, rejects, paths=path_set, metadata_rows=metadata_rows)
     stop = environment_failure(rejects, paths=path_set, metadata_rows=metadata_rows, accepted=len(accepted))
     if ctx.config.privacy.pseudonymise:
-        _pseudonymise(ctx, accepted, rejects, paths=paths)
+        _pseudonymise(ctx, accepted, rejects, paths=paths,
+                      metadata_speakers={r.speaker for rows in by_audio.values() for r in rows if r.speaker})
         stop = _scrubbed(ctx, stop)
     accepted.sort(key=lambda r: r["source_path"])
     return StageResult(manifests={stage_manifest(NAME): (NAME, table_from_rows(NAME, accepted))},
