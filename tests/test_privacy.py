@@ -87,3 +87,14 @@ def test_metadata_speaker_names_leave_no_trace_in_rejects(small_raw: Path, tmp_p
     private = read_mapping(out / PRIVATE_MAPPING)
     assert {"Ana María", "Bryn Tal"} <= set(private["speaker"])
     assert set(private["source"]) >= {"spk_a/a1.wav", "spk_b/b2.ogg", "spk_b/broken.wav", "spk_b/copy.wav"}
+
+
+def test_audio_rejects_quote_no_raw_path(tmp_path: Path) -> None:
+    # A decoder's message may quote the file's full path (libsndfile does: "Error opening '...'").
+    from pipeline.stages.audio import _scrub_rejects
+
+    raw = tmp_path / "raw"
+    detail = f"src-1: could not be decoded: LibsndfileError: Error opening '{raw / 'Ana' / 'ana_interview.wav'}'"
+    [scrubbed] = _scrub_rejects([{"source_path": "src-1", "detail": detail}], {"src-1": "Ana/ana_interview.wav"},
+                                raw=raw)
+    assert scrubbed["detail"] == "src-1: could not be decoded: LibsndfileError: Error opening 'src-1'"
