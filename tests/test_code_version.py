@@ -133,7 +133,9 @@ EDITS = [
     ("data/abbreviations.tsv", None, {"text"}),
     ("signal/iir.py", None, {"audio"}),
     ("signal/vad.py", None, {"audio"}),
-    ("stages/privacy.py", None, {"ingest"}),
+    # The audio stage reads the private source mapping and scrubs its rejects with privacy's helpers.
+    ("stages/privacy.py", None, {"ingest", "audio"}),
+    ("stages/transcripts.py", None, {"ingest"}),
     ("stages/ledger.py", None, {"split"}),
     ("stages/selection.py", None, {"split"}),
     ("stages/gates.py", None, {"split"}),
@@ -242,7 +244,7 @@ def test_editing_a_helper_reruns_its_stage_and_only_its_stage(small_raw: Path, t
 
     # An ingest-only helper: every file is probed again. Its manifest records the new code
     # version, so the later stages run, but audio's per-file cache still holds.
-    _edit(package / "stages/privacy.py")
+    _edit(package / "stages/transcripts.py")
     log = _prepare(src, small_raw, out)
     assert re.search(r"ingest: [1-9]\d* files probed, 0 reused from cache", log)
     assert re.search(r"audio: 0 files processed, [1-9]\d* reused from cache", log)
