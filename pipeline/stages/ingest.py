@@ -293,8 +293,8 @@ def _pseudonymise(ctx: StageContext, rows: list[dict[str, Any]], rejects: list[d
         row["source_path"] = sources[row["source_path"]]
     for name in metadata_speakers:  # the names as written in the table, also those of files set aside
         speakers.setdefault(name, pseudonym(speaker_id(name), key=key))
-    for r in rejects:  # sidecars, metadata lines and files outside the extensions have no reference yet
-        if r["source_path"] not in sources and "/" in r["source_path"] and ":" not in r["source_path"]:
+    for r in rejects:  # a rejected sidecar is a file of RAW too ("meta.csv:4", a table's line, is not)
+        if r["source_path"] not in sources and (ctx.raw / r["source_path"]).is_file():
             sources[r["source_path"]] = source_reference(r["source_path"], key=key)
     pattern = name_pattern(real_names(speakers, sources))
     for r in rejects:
