@@ -89,7 +89,7 @@ class Corpus:
                 phones = list(rng.choice(ARPABET, size=max(1, round(rate * speech_s))))
             self.text.append({
                 "clip_id": cid, "transcript": f"words of {cid}", "norm_text": f"words of {cid}",
-                "words": ["words", "of", cid], "phones": phones, "word_backends": ["cmudict"] * 3, "oov_words": [],
+                "words": ["words", "of", cid], "phones": phones, "word_backends": ["cmudict"] * 3, "oov_words": [], "language": "en",
             })
         return cid
 

@@ -458,7 +458,7 @@ def test_stressed_phones_and_word_boundary_follow_the_config(out: Out) -> None:
 def test_inventory_comes_from_the_text_stage_when_present(out: Out) -> None:
     rows = [{"clip_id": r["clip_id"], "transcript": r["transcript"], "norm_text": r["norm_text"],
              "words": r["norm_text"].split(), "phones": r["phones"], "word_backends": ["cmudict"],
-             "oov_words": []} for r in out.rows["labelled"] if r["clip_id"] != "b2-0000000004"]
+             "oov_words": [], "language": "en"} for r in out.rows["labelled"] if r["clip_id"] != "b2-0000000004"]
     write_table(out.root, "stages/text.parquet", table_from_rows("text", rows), "")
     # Clip b2 ("ten fish swim") brings phones the text stage never produced, e.g. SH.
     problems = out.validate()

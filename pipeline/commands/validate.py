@@ -504,7 +504,7 @@ def phone_inventory(out: Path, config: Config) -> tuple[set[str] | None, str]:
                     "the phones of stages/text.parquet"
         except (ManifestError, KeyError):
             pass
-    if config.text.backend == "english":
+    if config.text.resolved_backend == "english":
         phones = _cmudict_inventory(keep_stress=config.text.keep_stress)
         if config.text.word_boundary:
             phones.add(config.text.word_boundary)

@@ -46,6 +46,7 @@ class IngestConfig:
     metadata_path_column: str
     metadata_transcript_column: str
     metadata_speaker_column: str
+    metadata_language_column: str
 
 
 @dataclass(frozen=True)
@@ -87,6 +88,22 @@ class TextConfig:
     alphabet: str
     verbalise_numbers: bool
     abbreviations: tuple[tuple[str, str], ...]
+    language: str
+    engines: tuple[tuple[str, str], ...]
+    keep_tone: bool
+    number_words: tuple[tuple[str, str], ...]
+
+    @property
+    def english(self) -> bool:
+        """Whether the corpus language (``text.language``) is English."""
+        return self.language.split("-")[0].lower() == "en"
+
+    @property
+    def resolved_backend(self) -> str:
+        """The backend ``auto`` stands for: english for English, rules for any other language."""
+        if self.backend != "auto":
+            return self.backend
+        return "english" if self.english else "rules"
 
 
 @dataclass(frozen=True)
@@ -210,6 +227,10 @@ SECTIONS = {
 }
 
 
+# Config tables (string to string) kept as sorted tuples of pairs in the frozen dataclasses.
+_TABLES = frozenset({"abbreviations", "engines", "number_words"})
+
+
 def canonical_json(data: Any) -> bytes:
     """JSON with sorted keys and no whitespace: the bytes every hash is taken over."""
     return json.dumps(data, sort_keys=True, separators=(",", ":"), ensure_ascii=False).encode()
@@ -219,7 +240,7 @@ def _jsonable(section: Any) -> dict[str, Any]:
     out: dict[str, Any] = {}
     for f in dataclasses.fields(section):
         value = getattr(section, f.name)
-        if f.name == "abbreviations":
+        if f.name in _TABLES:
             value = dict(value)
         elif isinstance(value, tuple):
             value = list(value)
@@ -367,7 +388,7 @@ def build_config(
     for name, cls in SECTIONS.items():
         values = dict(full[name])
         for f in dataclasses.fields(cls):
-            if f.name == "abbreviations":
+            if f.name in _TABLES:
                 values[f.name] = tuple(sorted(values[f.name].items()))
             elif isinstance(values[f.name], list):
                 values[f.name] = tuple(values[f.name])

@@ -27,7 +27,8 @@ REASONS = (
     "conflicting_transcripts", "missing_speaker", "unsupported_sample_rate", "truncated",
     "file_name_encoding", "non_finite_samples", "out_of_range_samples", "upsampled",
     "too_long_transcribed", "no_speech", "clipped", "too_short", "loudness_unmeasurable",
-    "empty_transcript", "unpronounceable", "bad_characters", "oov", "noisy", "invalid_measurement",
+    "empty_transcript", "unpronounceable", "bad_characters", "oov", "unreadable_number", "noisy",
+    "invalid_measurement",
 )
 
 # Files under OUT.

@@ -25,7 +25,7 @@ abbreviations of ``[text.abbreviations]`` apply with every backend.
 from __future__ import annotations
 
 from collections import Counter
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -35,6 +35,15 @@ from pipeline.core.fsio import sha256_file, write_text_atomic
 from pipeline.core.manifest import table_from_rows
 from pipeline.core.names import PREDICTED_LEXICON, stage_manifest
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
+from pipeline.stages.languages import (
+    Toolbox,
+    file_languages,
+    language_metadata,
+    language_summary,
+    metadata_table,
+    process_in_language,
+    warn_wrong_language,
+)
 from pipeline.text.characters import describe_characters, grapheme_units
 from pipeline.text.lexicon import read_lexicon
 from pipeline.text.neural import neural_cache_name
@@ -57,8 +66,10 @@ def _lexicon_paths(config: Config) -> dict[str, Path]:
 
 
 def extra_inputs(ctx: StageContext) -> list[Path]:
-    """Files besides the ingest manifest whose content changes this stage's output."""
-    return sorted(_lexicon_paths(ctx.config).values())
+    """Files besides the ingest manifest whose content changes this stage's output
+    (the lexicons, and the metadata table when its language column is read)."""
+    table = metadata_table(ctx.config, ctx.raw)
+    return sorted([*_lexicon_paths(ctx.config).values(), *([table] if table is not None else [])])
 
 
 def written_files(out: Path, table: object) -> list[str]:
@@ -126,6 +137,7 @@ class TranscriptOutcome:
     row: dict[str, Any] | None = None
     rejected: tuple[str, str] | None = None  # (reason, detail)
     oov: list[tuple[str, Pronunciation | None]] = field(default_factory=list)
+    language: str = ""
 
 
 def process_transcript(source: str, transcript: str, *, pronouncer: Pronouncer, options: dict[str, Any],
@@ -174,18 +186,22 @@ def process_transcript(source: str, transcript: str, *, pronouncer: Pronouncer, 
 def run(ctx: StageContext) -> StageResult:
     cfg = ctx.config.text
     cache_dir = ctx.cache_dir if ctx.use_cache else None
-    pronouncer = build_pronouncer(ctx.config, cache_dir=cache_dir)
-    options = normalise_options(cfg, pronouncer)
-    ingest = ctx.inputs["ingest"].select(["source_id", "source_path", "transcript"]).to_pylist()
+    toolbox = Toolbox(ctx.config, make_pronouncer=lambda text_cfg: build_pronouncer(
+        replace(ctx.config, text=text_cfg), cache_dir=cache_dir), make_options=normalise_options)
+    pronouncer = toolbox.get(cfg.language).pronouncer  # ParameterError: no engine for text.language
+    ingest = ctx.inputs["ingest"].select(["source_id", "source_path", "transcript", "transcript_origin",
+                                          "metadata_line"]).to_pylist()
     items = sorted((r for r in ingest if r["transcript"] is not None), key=lambda r: r["source_id"])
+    languages = file_languages(ctx, items)
 
     rows: list[dict[str, Any]] = []
     rejects: list[dict[str, Any]] = []
     oov_counts: Counter[str] = Counter()
     oov_phones: dict[str, tuple[tuple[str, ...], str]] = {}
     for item in items:
-        outcome = process_transcript(item["source_path"], item["transcript"], pronouncer=pronouncer,
-                                     options=options, cfg=cfg)
+        outcome = process_in_language(item["source_path"], item["transcript"], languages[item["source_id"]],
+                                      toolbox=toolbox, cfg=cfg)
+        pronouncer = toolbox.tools[outcome.language].pronouncer if outcome.language in toolbox.tools else pronouncer
         for word, pron in outcome.oov:
             oov_counts[word] += 1
             if word not in oov_phones:
@@ -196,18 +212,24 @@ def run(ctx: StageContext) -> StageResult:
         elif outcome.row is not None:
             rows.append({"clip_id": item["source_id"], **outcome.row})
     # Before predicted.tsv is rewritten: it may itself be the override lexicon just read.
-    metadata = _metadata(ctx.config, pronouncer)
-    pronouncer.save_cache()
+    metadata = _metadata(ctx.config, toolbox.get(cfg.language).pronouncer)
+    metadata.update(language_metadata(toolbox))
+    pronouncer = toolbox.get(cfg.language).pronouncer
+    for tools in toolbox.tools.values():
+        tools.pronouncer.save_cache()
     if pronouncer.cache_misses or pronouncer.cache_hits:
         ctx.log.info("text: %d out-of-vocabulary words predicted with g2p-en, %d taken from the cache",
                      len(pronouncer.cache_misses), len(pronouncer.cache_hits))
     _write_predicted(ctx.out / PREDICTED_LEXICON, oov_counts, oov_phones, backend=cfg.backend)
+    summary = _summary(rows, rejects, len(items), cfg)
+    summary.update(language_summary(rows, rejects, languages, toolbox))
+    warn_wrong_language(summary["languages"], ctx.log)
 
     rejects.sort(key=lambda r: (r["clip_id"], r["reason"]))
     return StageResult(
         manifests={stage_manifest(NAME): (NAME, table_from_rows(NAME, rows))},
         rejects=rejects,
-        summary=_summary(rows, rejects, len(items), cfg),
+        summary=summary,
         metadata=metadata,
         run_stats=_run_stats(pronouncer, cache_dir is not None),
     )
@@ -286,7 +308,7 @@ STAGE = Stage(
     name=NAME,
     inputs=("ingest",),
     outputs=(Output(MAIN_MANIFEST, schema=NAME),),
-    config_sections=("text",),
+    config_sections=("text", "ingest"),  # ingest: the metadata table's language column
     run=run,
     extra_inputs=extra_inputs,
     written_files=written_files,

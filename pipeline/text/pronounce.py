@@ -8,6 +8,8 @@ Backends (``TextConfig.backend``):
 ``lexicon``    a user lexicon TSV; unknown words are rejected or spelled as graphemes.
 ``graphemes``  each word's letters (a base character plus its combining marks) are
                its units.
+``rules``      IPA phones from a rule engine for the language (espeak-ng or epitran,
+               :mod:`pipeline.text.rules`), each checked against panphon's feature table.
 
 An override lexicon, in the same TSV format, is looked up first whatever the backend.
 
@@ -46,12 +48,13 @@ from pipeline.text.cmudict_index import cmudict_entries, strip_stress
 from pipeline.text.neural import NeuralModel, PredictionCache, checkpoint_sha256, g2p_en_dir
 from pipeline.text.normalise import fold
 from pipeline.text.pos import POS_TAGGER, context_tag
+from pipeline.text.rules import RulePhones
 
 __all__ = ["BACKENDS", "OOV_POLICIES", "SOURCES", "Pronouncer", "Pronunciation"]
 
-BACKENDS = ("english", "lexicon", "graphemes")
+BACKENDS = ("english", "lexicon", "graphemes", "rules")
 OOV_POLICIES = ("reject", "graphemes")
-SOURCES = ("override", "cmudict", "neural", "lexicon", "graphemes")
+SOURCES = ("override", "cmudict", "neural", "lexicon", "graphemes", "rules")
 
 
 @dataclass(frozen=True)
@@ -101,7 +104,7 @@ class Pronouncer:
 
     Parameters
     ----------
-    backend : {"english", "lexicon", "graphemes"}
+    backend : {"english", "lexicon", "graphemes", "rules"}
         See the module docstring.
     lexicon : mapping, optional
         Word to phones (``read_lexicon``); required for the lexicon backend.
@@ -116,6 +119,8 @@ class Pronouncer:
         Keep ARPAbet stress digits; by default they are removed.
     cache_path : Path, optional
         Prediction cache file for the english backend; None for no cache.
+    rules : RulePhones, optional
+        The rule engine of the rules backend (required for it).
 
     Examples
     --------
@@ -134,6 +139,7 @@ class Pronouncer:
         alphabet: str = "",
         keep_stress: bool = False,
         cache_path: Path | None = None,
+        rules: RulePhones | None = None,
     ) -> None:
         if backend not in BACKENDS:
             raise ParameterError(f"backend={backend!r} is not one of {', '.join(map(repr, BACKENDS))}")
@@ -141,6 +147,9 @@ class Pronouncer:
             raise ParameterError(f"oov={oov!r} is not one of {', '.join(map(repr, OOV_POLICIES))}")
         if backend == "lexicon" and lexicon is None:
             raise ParameterError("lexicon=None: the lexicon backend needs a lexicon")
+        if backend == "rules" and rules is None:
+            raise ParameterError("rules=None: the rules backend needs a rule engine")
+        self.rules = rules
         self.backend = backend
         self.lexicon = dict(lexicon or {})
         self.override = dict(override or {})
@@ -172,7 +181,7 @@ class Pronouncer:
         """
         if self.backend == "english":
             return english_key(word) in self._cmudict
-        return self.backend == "graphemes" or word in self.lexicon
+        return self.backend in ("graphemes", "rules") or word in self.lexicon
 
     def bad_characters(self, word: str) -> list[str]:
         """Characters of ``word`` the backend cannot take (none for override words)."""
@@ -197,7 +206,7 @@ class Pronouncer:
             previous = words[i - 1] if i > 0 else None
             following = words[i + 1] if i + 1 < len(words) else None
             found, depends_on_context = self._pronounce(word, previous, following)
-            if found is not None and not self.keep_stress:
+            if found is not None and not self.keep_stress and found.source != "rules":
                 found = Pronunciation(strip_stress(found.phones), found.source, found.oov)
             if not depends_on_context:
                 self._settled[word] = found
@@ -210,6 +219,8 @@ class Pronouncer:
             return Pronunciation(self.override[word], "override", oov=not self.in_dictionary(word)), False
         if self.backend == "graphemes":
             return Pronunciation(grapheme_units(word), "graphemes"), False
+        if self.rules is not None:
+            return Pronunciation(self.rules.phones(word), "rules"), False
         if self.backend == "lexicon":
             if word in self.lexicon:
                 return Pronunciation(self.lexicon[word], "lexicon"), False
@@ -278,6 +289,8 @@ class Pronouncer:
             })
         if self.backend == "lexicon":
             info["g2p.oov"] = self.oov
+        if self.rules is not None:
+            info.update(self.rules.provenance())
         if self.alphabet and self.backend != "english":
             info["g2p.alphabet"] = "".join(sorted(self.alphabet))
         return info

@@ -1,0 +1,247 @@
+"""The text stage's languages: each transcript's language, and the tools that follow it.
+
+A transcript's language is ``text.language``, or the cell of the metadata table's column
+``ingest.metadata_language_column`` on the row the transcript came from (an empty cell
+means ``text.language``). Every language gets its own :class:`LanguageTools`: the
+pronouncer (``text.backend``; ``auto`` is the english backend for English and the rules
+backend for any other language), the normalisation options (the built-in abbreviation
+list and spelled initialisms for English only) and, for a language other than English,
+the number reader of :mod:`pipeline.text.numbers` (never English number words).
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import re
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Any
+
+from pipeline.core.config import Config, TextConfig
+from pipeline.core.errors import ParameterError
+from pipeline.core.stage import StageContext
+from pipeline.text.numbers import NumberReader, missing_sentence
+from pipeline.text.pronounce import Pronouncer
+from pipeline.text.rules import RulePhones
+
+__all__ = ["LanguageTools", "Toolbox", "canonical_tag", "file_languages", "metadata_table"]
+
+_TAG = re.compile(r"^[A-Za-z]{2,3}(-[A-Za-z0-9]{1,8})*$")
+
+
+def canonical_tag(tag: str) -> str:
+    """BCP-47 case conventions: language lower, script title, region upper (``en-us`` -> ``en-US``).
+
+    Examples
+    --------
+    >>> canonical_tag("EN-us"), canonical_tag("sr-latn"), canonical_tag("sw")
+    ('en-US', 'sr-Latn', 'sw')
+    """
+    parts = tag.strip().split("-")
+    out = [parts[0].lower()]
+    for part in parts[1:]:
+        out.append(part.title() if len(part) == 4 else part.upper() if len(part) == 2 else part.lower())
+    return "-".join(out)
+
+
+def metadata_table(config: Config, raw: Path) -> Path | None:
+    """The metadata table whose language column sets per-file languages, if configured."""
+    ingest = config.ingest
+    if ingest.metadata and ingest.metadata_language_column:
+        return raw / ingest.metadata
+    return None
+
+
+def _language_cells(path: Path, column: str, *, encoding: str) -> dict[int, str]:
+    """Line number (as ingest's ``metadata_line``) -> the column's cell, for every row."""
+    data = path.read_bytes()
+    if data.startswith(b"\xef\xbb\xbf"):
+        data, encoding = data[3:], "utf-8"
+    text = data.decode(encoding, "surrogateescape")
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter="\t" if path.name.lower().endswith(".tsv") else ",")
+    header = [h.strip() for h in next(reader, [])]
+    if column not in header:
+        return {}
+    index = header.index(column)
+    cells: dict[int, str] = {}
+    while True:
+        line = reader.line_num + 1
+        try:
+            fields = next(reader)
+        except StopIteration:
+            break
+        except csv.Error:
+            continue  # ingest rejected that row already
+        if index < len(fields):
+            cells[line] = fields[index].strip()
+    return cells
+
+
+def file_languages(ctx: StageContext, rows: list[dict[str, Any]]) -> dict[str, str]:
+    """source_id -> the raw language cell or ``text.language`` (not yet checked)."""
+    default = ctx.config.text.language
+    table = metadata_table(ctx.config, ctx.raw)
+    cells: dict[int, str] = {}
+    if table is not None:
+        cells = _language_cells(table, ctx.config.ingest.metadata_language_column,
+                                encoding=ctx.config.ingest.transcript_encoding)
+    out = {}
+    for row in rows:
+        cell = cells.get(row["metadata_line"], "") if row.get("transcript_origin") == "metadata" else ""
+        out[row["source_id"]] = cell or default
+    return out
+
+
+@dataclass
+class LanguageTools:
+    """What one language's transcripts go through."""
+
+    language: str
+    backend: str
+    pronouncer: Pronouncer
+    options: dict[str, Any]
+    numbers: NumberReader | None
+    cfg: TextConfig
+
+    def read_numbers(self, source: str, transcript: str) -> tuple[str, tuple[str, str] | None]:
+        """The transcript with its numbers in words, or the reject when some cannot be read."""
+        if self.numbers is None or not self.cfg.verbalise_numbers:
+            return transcript, None
+        text = self.numbers.read(transcript)
+        if self.numbers.missing:
+            return transcript, ("unreadable_number", missing_sentence(source, self.numbers.missing, self.language))
+        return text, None
+
+    def invalid_phones(self, words: list[str]) -> str:
+        """Why the rule engine gave these words no phones ("" when it did not say)."""
+        rules = self.pronouncer.rules
+        if rules is None:
+            return ""
+        found = [rules.problems[w] for w in words if w in rules.problems]
+        return "; ".join(found)
+
+
+class Toolbox:
+    """LanguageTools per language tag, built on first use.
+
+    ``make_pronouncer(cfg)`` builds the english, lexicon or graphemes pronouncer for a
+    TextConfig (the text stage's ``build_pronouncer``); ``make_options(cfg, pronouncer)``
+    the normalisation options.
+    """
+
+    def __init__(self, config: Config, *, make_pronouncer: Any, make_options: Any) -> None:
+        self.config = config
+        self.make_pronouncer = make_pronouncer
+        self.make_options = make_options
+        self.tools: dict[str, LanguageTools] = {}
+        self.failures: dict[str, str] = {}
+
+    def get(self, tag: str) -> LanguageTools:
+        """The tools for ``tag``; ParameterError naming the fix when no engine covers it."""
+        if not _TAG.match(tag):
+            raise ParameterError(f"language {tag!r} is not a BCP-47 tag such as 'en', 'sw' or 'es-CO'")
+        tag = canonical_tag(tag)
+        if tag in self.failures:
+            raise ParameterError(self.failures[tag])
+        if tag not in self.tools:
+            try:
+                self.tools[tag] = self._build(tag)
+            except ParameterError as exc:
+                self.failures[tag] = str(exc)
+                raise
+        return self.tools[tag]
+
+    def _build(self, tag: str) -> LanguageTools:
+        cfg = replace(self.config.text, language=tag)
+        backend = cfg.resolved_backend
+        english = cfg.english
+        if backend == "rules":
+            engines = dict(cfg.engines)
+            engine = engines.get(tag, engines.get(tag.split("-")[0], ""))
+            rules = RulePhones(tag, engine, keep_stress=cfg.keep_stress, keep_tone=cfg.keep_tone)
+            pronouncer = Pronouncer(backend="rules", rules=rules, override=self.make_pronouncer(
+                replace(cfg, backend="graphemes")).override, alphabet=cfg.alphabet)
+        else:
+            pronouncer = self.make_pronouncer(replace(cfg, backend=backend))
+        options = self.make_options(replace(cfg, backend=backend), pronouncer)
+        if not english:
+            options.update(verbalise_numbers=False, spell_initialisms=False, is_known=None,
+                           abbreviations=dict(cfg.abbreviations))
+        numbers = None if english else NumberReader(tag, dict(cfg.number_words))
+        return LanguageTools(tag, backend, pronouncer, options, numbers, cfg)
+
+
+def process_in_language(source: str, transcript: str, language: str, *, toolbox: Toolbox,
+                        cfg: TextConfig) -> Any:
+    """``text.process_transcript`` with the tools of the transcript's language; the row
+    gains its ``language``, and the rejects of this module say what the language lacks."""
+    from pipeline.stages.text import TranscriptOutcome, process_transcript
+
+    try:
+        tools = toolbox.get(language)
+    except ParameterError as exc:
+        return TranscriptOutcome(rejected=("unpronounceable", f"{source}: {exc}"), language=language)
+    text, problem = tools.read_numbers(source, transcript)
+    if problem is not None:
+        return TranscriptOutcome(rejected=problem, language=tools.language)
+    outcome = process_transcript(source, text, pronouncer=tools.pronouncer, options=tools.options,
+                                 cfg=replace(cfg, backend=tools.backend))
+    outcome.language = tools.language
+    if outcome.row is not None:
+        outcome.row["transcript"] = transcript
+        outcome.row["language"] = tools.language
+    elif outcome.rejected and outcome.rejected[0] == "unpronounceable":
+        rules = tools.pronouncer.rules
+        why = tools.invalid_phones([w for w in rules.problems if repr(w) in outcome.rejected[1]] if rules else [])
+        if why:
+            outcome.rejected = ("unpronounceable", f"{outcome.rejected[1]}; {why}")
+    return outcome
+
+
+def language_summary(rows: list[dict[str, Any]], rejects: list[dict[str, Any]], languages: dict[str, str],
+                     toolbox: Toolbox) -> dict[str, Any]:
+    """Per language: transcripts, accepted, word tokens, OOV tokens and rate, backend, engine."""
+    from collections import Counter
+
+    from pipeline.text.guard import oov_rate
+
+    transcripts = Counter(canonical_tag(t) if _TAG.match(t) else t for t in languages.values())
+    out: dict[str, dict[str, Any]] = {}
+    for tag in sorted(transcripts):
+        tools = toolbox.tools.get(tag)
+        mine = [r for r in rows if r["language"] == tag]
+        tokens = sum(len(r["words"]) for r in mine)
+        oov = sum(sum(w in set(r["oov_words"]) for w in r["words"]) for r in mine)
+        rate = oov_rate(tokens, oov)
+        out[tag] = {
+            "transcripts": transcripts[tag], "accepted": len(mine),
+            "backend": tools.backend if tools else None,
+            "engine": tools.pronouncer.rules.engine.label if tools and tools.pronouncer.rules else None,
+            "word_tokens": tokens, "oov_word_tokens": oov,
+            "oov_rate": None if rate is None else round(rate, 4),
+        }
+    return {"languages": out}
+
+
+def warn_wrong_language(languages: dict[str, dict[str, Any]], log: Any) -> list[str]:
+    """Log a loud warning for each language whose OOV share says it is not that language."""
+    from pipeline.text.guard import wrong_language_sentence
+
+    sentences = []
+    for tag, info in languages.items():
+        if info["backend"] in ("english", "lexicon"):
+            sentence = wrong_language_sentence(tag, info["backend"], info["word_tokens"], info["oov_word_tokens"])
+            if sentence:
+                log.warning("text: WARNING: %s", sentence)
+                sentences.append(sentence)
+    return sentences
+
+
+def language_metadata(toolbox: Toolbox) -> dict[str, str]:
+    """Manifest metadata: which engine served each language (no run-dependent values)."""
+    meta = {"text.languages": ",".join(sorted(toolbox.tools))}
+    for tag, tools in sorted(toolbox.tools.items()):
+        if tools.pronouncer.rules is not None:
+            meta[f"g2p.{tag}"] = "; ".join(f"{k}={v}" for k, v in sorted(tools.pronouncer.provenance().items()))
+    return meta
