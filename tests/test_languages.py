@@ -1,0 +1,233 @@
+"""Languages other than English: the rules backend, IPA phones, numbers, scripts, the guard.
+
+Sources are named beside each check. Orthography rules are from published grammars
+and orthography guides (cited from memory where marked); number names from grammars
+and the Real Academia Española; IPA validity from panphon's feature table
+(Mortensen et al., COLING 2016).
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+import textwrap
+import unicodedata
+from pathlib import Path
+
+import pytest
+
+from pipeline.core.errors import ParameterError
+from pipeline.stages.languages import canonical_tag
+from pipeline.text.engines import Engine, espeak_voices, epitran_codes, resolve
+from pipeline.text.guard import wrong_language_sentence
+from pipeline.text.ipa import InvalidPhone, feature_table, phone_class, segment
+from pipeline.text.normalise import normalise
+from pipeline.text.numbers import NumberReader
+from pipeline.text.rules import RulePhones
+from tests.test_text_stage import REPO, clip, run_stage
+
+
+def _plain(words: str, language: str) -> list[tuple[str, ...]]:
+    rules = RulePhones(language)
+    return [rules.phones(w) for w in words.split()]
+
+
+# --- orthography against published descriptions ---------------------------------------
+
+
+def test_swahili_digraphs() -> None:
+    # Source: E. O. Ashton, "Swahili Grammar" (Longman, 1944), pronunciation chapter:
+    # ng' = velar nasal /ŋ/, ny = palatal nasal /ɲ/, ch = /tʃ/, sh = /ʃ/, dh = /ð/ (from memory).
+    ngombe, nyumba, chai, shamba, dhahabu = _plain("ng'ombe nyumba chai shamba dhahabu", "sw")
+    assert ngombe[0] == "ŋ" and nyumba[0] == "ɲ" and chai[0] == "t͡ʃ" and shamba[0] == "ʃ" and dhahabu[0] == "ð"
+
+
+def test_spanish_letters() -> None:
+    # Source: Real Academia Española, "Ortografía de la lengua española" (2010), ch. 1:
+    # ñ = /ɲ/, ch = /tʃ/, rr = the trill /r/ (from memory).
+    nino, chico, perro = _plain("niño chico perro", "es")
+    assert nino == ("n", "i", "ɲ", "o")
+    assert chico[0] == "t͡ʃ"
+    assert "r" in perro and "ɾ" not in perro
+
+
+def test_yoruba_letters_and_tone() -> None:
+    # Source: A. Bamgbọṣe, "A Grammar of Yoruba" (CUP, 1966) and the 1974 Yoruba
+    # orthography: ṣ = /ʃ/, p = /k͡p/, gb = /ɡ͡b/, ẹ = /ɛ/, ọ = /ɔ/, j = /dʒ/; the acute
+    # accent marks high tone on its vowel (from memory).
+    se, papa, gbogbo, eja = _plain("ṣé pápá gbogbo ẹja", "yo")
+    assert se == ("ʃ", "é")
+    assert papa == ("k͡p", "á", "k͡p", "á")
+    assert gbogbo[0] == "ɡ͡b" and eja == ("ɛ", "d͡ʒ", "a")
+    assert RulePhones("yo", keep_tone=False).phones("pápá") == ("k͡p", "a", "k͡p", "a")
+
+
+def test_german_sch() -> None:
+    # Source: Duden, "Das Aussprachewörterbuch" (7th ed., 2015): <sch> = /ʃ/, <ö> long = /øː/.
+    assert _plain("schön", "de")[0] == ("ʃ", "øː", "n")
+
+
+# --- IPA segmentation and the feature table -------------------------------------------
+
+
+def test_segmentation_attaches_marks() -> None:
+    # epitran hands Yoruba tone marks over as tokens of their own; they join their vowel.
+    assert segment(["ɔ", "d͡ʒ", "ɔ", "\u0301"]) == ("ɔ", "d͡ʒ", "ɔ́")
+    assert segment("kʷaːn̩") == ("kʷ", "aː", "n̩")
+    assert segment(["ˈtʃ", "a"], keep_stress=True) == ("ˈt͡ʃ", "a")  # espeak-ng's untied affricate
+    assert segment(["ˈtʃ", "a"]) == ("t͡ʃ", "a")
+    assert segment(["aɪ"]) == ("a", "ɪ")  # a diphthong the table lacks: its two vowels
+    assert all(unicodedata.is_normalized("NFC", p) for p in segment("ɛ́ɔ̀"))
+
+
+@pytest.mark.parametrize("bad", ["6", "a6", "q!", "\u0301a"])
+def test_invalid_symbols_are_never_kept(bad: str) -> None:
+    with pytest.raises(InvalidPhone):
+        segment(bad)
+
+
+def test_feature_classes() -> None:
+    # Source: panphon ipa_all.csv (syl/cons features); IPA chart: ɲ consonant, ɔ vowel.
+    assert phone_class("ɲ") == "consonant" and phone_class("ɔ́") == "vowel" and phone_class("aː") == "vowel"
+    assert len(feature_table()) > 5000
+
+
+def test_invalid_engine_output_becomes_a_reject_sentence() -> None:
+    # espeak-ng 1.52 writes Vietnamese tones as digits ("iɛ6"): not IPA segments.
+    rules = RulePhones("vi", "espeak")
+    assert rules.phones("việt") == ()
+    assert "not a segment of panphon's IPA feature table" in rules.problems["việt"]
+
+
+# --- engines ---------------------------------------------------------------------------
+
+
+def test_engines_resolve_and_list() -> None:
+    assert {"es", "sw", "de", "hi", "ar"} <= set(espeak_voices())
+    assert {"yor-Latn", "amh-Ethi", "swa-Latn", "kin-Latn", "som-Latn"} <= set(epitran_codes())
+    assert resolve("es-CO") == ("espeak", "es")
+    assert resolve("sw", "espeak") == ("espeak", "sw")
+    assert resolve("am") == ("epitran", "amh-Ethi")
+    with pytest.raises(ParameterError, match="no espeak-ng voice 'zzz'"):
+        resolve("zzz")
+    with pytest.raises(ParameterError, match="epitran has no rule set 'xxx-Latn'"):
+        resolve("yo", "epitran:xxx-Latn")
+    assert canonical_tag("es-co") == "es-CO"
+
+
+def test_engines_never_reach_the_network(tmp_path: Path) -> None:
+    script = textwrap.dedent("""
+        import json, socket, sys
+        attempts = []
+        def refuse(*args, **kwargs):
+            attempts.append(args)
+            raise OSError("networking is disabled in this test")
+        # Sockets may be made (urllib3, imported by epitran's requests, probes IPv6 by
+        # binding one to ::1); none may connect, send or resolve a name.
+        socket.socket.connect = socket.socket.connect_ex = socket.socket.sendto = refuse
+        socket.create_connection = refuse
+        socket.getaddrinfo = refuse
+        from pipeline.text.rules import RulePhones
+        from pipeline.text.numbers import NumberReader
+        out = [RulePhones(l).phones(w) for l, w in
+               [("es", "niño"), ("sw", "nyumba"), ("yo", "ọjọ́"), ("am", "ሰላም"), ("hi", "नमस्ते")]]
+        out.append(NumberReader("es", {}).read("12"))
+        print(json.dumps({"attempts": attempts, "out": out}, ensure_ascii=False))
+    """)
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, cwd=REPO, check=False)
+    assert done.returncode == 0, done.stderr
+    report = json.loads(done.stdout.strip().splitlines()[-1])
+    assert report["attempts"] == []
+    assert all(report["out"][:5]) and report["out"][5] == "doce"
+
+
+# --- numbers ---------------------------------------------------------------------------
+
+
+def test_number_names() -> None:
+    # Source: Real Academia Española, "Nueva gramática de la lengua española" (2009),
+    # §21 numerales cardinales: 1984 "mil novecientos ochenta y cuatro", 150 "ciento cincuenta".
+    spanish = NumberReader("es", {})
+    assert spanish.read("1984") == "mil novecientos ochenta y cuatro"
+    assert spanish.read("150") == "ciento cincuenta"
+    # Source: Académie française, rectifications de l'orthographe (1990): 80 "quatre-vingts".
+    assert NumberReader("fr", {}).read("80") == "quatre-vingts"
+    # Source: Duden, Grammatik (2016), Kardinalzahlen: 21 "einundzwanzig".
+    assert NumberReader("de", {}).read("21") == "einundzwanzig"
+
+
+def test_swahili_numbers_need_the_override() -> None:
+    # num2words has no Swahili: the number is not guessed, and never read in English.
+    # Source: Ashton (1944), numerals: 12 "kumi na mbili", 150 "mia moja na hamsini".
+    reader = NumberReader("sw", {"12": "kumi na mbili", "150": "mia moja na hamsini"})
+    assert reader.read("Nina ng'ombe 12 na mbuzi 150") == "Nina ng'ombe kumi na mbili na mbuzi mia moja na hamsini"
+    bare = NumberReader("sw", {})
+    assert bare.read("ng'ombe 12") == "ng'ombe 12" and bare.missing == ["12"]
+
+
+# --- scripts ---------------------------------------------------------------------------
+
+SCRIPTS = {
+    "yo": "Ọjọ́ ọ̀la dára",  # Latin with tone marks and dots below
+    "vi": "Tiếng Việt rất hay",  # Latin with stacked diacritics
+    "am": "ሰላም ነው።",  # Ethiopic, caseless; ። is the Ethiopic full stop
+    "ar": "السلام عليكم",  # Arabic, right to left, caseless
+    "hi": "नमस्ते दुनिया",  # Devanagari with virama and vowel signs
+}
+
+
+@pytest.mark.parametrize("language", sorted(SCRIPTS))
+def test_scripts_survive_normalisation(language: str) -> None:
+    text = SCRIPTS[language]
+    norm = normalise(text, verbalise_numbers=False, abbreviations={}, spell_initialisms=False)
+    assert unicodedata.is_normalized("NFC", norm.text)
+    expected = unicodedata.normalize("NFC", text.replace("።", "")).lower().split()
+    assert list(norm.words) == expected  # marks kept, caseless scripts untouched, order kept
+    engine = "epitran:vie-Latn" if language == "vi" else ""
+    rules = RulePhones(language, engine)
+    assert all(rules.phones(w) for w in norm.words), rules.problems
+
+
+# --- the text stage --------------------------------------------------------------------
+
+SWAHILI = {
+    "s1": "Nina ng'ombe 12.",
+    "s2": "Habari ya asubuhi, rafiki yangu.",
+    "s3": "Nyumba yetu ina mlango mmoja.",
+    "s4": "Nina mbuzi 7.",
+}
+
+
+def test_stage_in_swahili(tmp_path: Path) -> None:
+    result, table = run_stage(tmp_path, SWAHILI, language="sw", number_words={"12": "kumi na mbili"})
+    rows = {r["clip_id"]: r for r in table.to_pylist()}
+    s1 = rows[clip("s1")]
+    assert s1["language"] == "sw" and s1["norm_text"] == "nina ng'ombe kumi na mbili"
+    assert s1["phones"][4] == "ŋ" and set(s1["word_backends"]) == {"rules"}
+    for row in rows.values():
+        assert all(segment(p) == (p,) for p in row["phones"])  # each a valid segment, as written
+    (rejected,) = result.rejects
+    assert rejected["reason"] == "unreadable_number" and "text.number_words" in rejected["detail"]
+    assert "'7'" in rejected["detail"] and "seven" not in str(table.to_pylist())
+    assert result.summary["languages"]["sw"]["engine"] == "epitran:swa-Latn"
+    assert result.summary["languages"]["sw"]["oov_rate"] == 0.0
+
+
+def test_english_default_on_swahili_warns(tmp_path: Path, caplog: pytest.LogCaptureFixture) -> None:
+    caplog.set_level("WARNING")
+    result, _ = run_stage(tmp_path, SWAHILI, verbalise_numbers=False)
+    info = result.summary["languages"]["en"]
+    assert info["oov_rate"] > 0.3
+    assert "do not look like 'en'" in caplog.text and f"{100 * info['oov_rate']:.1f} %" in caplog.text
+
+
+def test_wrong_language_sentence_threshold() -> None:
+    # 30 % is common practice for this check, not a published value.
+    assert wrong_language_sentence("en", "english", 100, 30) is None
+    assert "31.0 %" in wrong_language_sentence("en", "english", 100, 31)
+
+
+def test_unknown_language_stops_with_a_clear_error(tmp_path: Path) -> None:
+    with pytest.raises(ParameterError, match="text.engines"):
+        run_stage(tmp_path, SWAHILI, language="zzz")
