@@ -231,3 +231,37 @@ def test_wrong_language_sentence_threshold() -> None:
 def test_unknown_language_stops_with_a_clear_error(tmp_path: Path) -> None:
     with pytest.raises(ParameterError, match="text.engines"):
         run_stage(tmp_path, SWAHILI, language="zzz")
+
+
+def test_metadata_language_column_sets_each_file_language(tmp_path: Path) -> None:
+    from pipeline.core.config import build_config
+    from pipeline.core.manifest import table_from_rows
+    from pipeline.core.stage import StageContext
+    from pipeline.stages import text
+    from tests.test_text_stage import ingest_row
+
+    raw = tmp_path / "raw"
+    raw.mkdir()
+    (raw / "meta.csv").write_text("path,transcript,lang\nspk/a.wav,The boat is late.,\n"
+                                  "spk/b.wav,Nina ng'ombe 12.,sw\nspk/c.wav,El niño tiene 3 libros.,es\n",
+                                  encoding="utf-8")
+    rows = []
+    for line, (name, transcript) in enumerate([("a", "The boat is late."), ("b", "Nina ng'ombe 12."),
+                                               ("c", "El niño tiene 3 libros.")], start=2):
+        rows.append({**ingest_row(name, transcript), "transcript_origin": "metadata", "metadata_line": line})
+    config = build_config({"ingest": {"metadata": "meta.csv", "metadata_language_column": "lang"},
+                           "text": {"number_words": {"12": "kumi na mbili"}}}, base_dir=str(tmp_path))
+    ctx = StageContext(raw=raw, out=tmp_path / "out", config=config,
+                       inputs={"ingest": table_from_rows("ingest", rows)}, workers=1)
+    assert raw / "meta.csv" in text.extra_inputs(ctx)  # a changed language cell reruns the stage
+    result = text.run(ctx)
+    table = result.manifests["stages/text.parquet"][1].to_pylist()
+    by_language = {r["language"]: r for r in table}
+    assert set(by_language) == {"en", "sw", "es"}
+    assert by_language["en"]["word_backends"][0] == "cmudict"  # English unchanged: ARPAbet from CMUdict
+    assert by_language["sw"]["norm_text"] == "nina ng'ombe kumi na mbili"
+    assert by_language["es"]["norm_text"] == "el niño tiene tres libros"  # not "three"
+    assert "ɲ" in by_language["es"]["phones"]
+    assert sorted(result.summary["languages"]) == ["en", "es", "sw"]
+    meta = result.metadata
+    assert meta["text.languages"] == "en,es,sw" and "espeak:es" in meta["g2p.es"]

@@ -70,8 +70,10 @@ def test_a_full_prepare_never_loads_pandas_or_scipy_signal(small_raw: Path, tmp_
         "import sys\n"
         "from pipeline.commands.cli import main\n"
         f"rc = main(['prepare', {str(small_raw)!r}, {str(tmp_path / 'out')!r}, '--workers', '2', '--no-progress'])\n"
-        "print(rc, sorted(m for m in ('pandas', 'scipy.signal', 'g2p_en', 'nltk') if m in sys.modules))\n"
+        "print(rc, sorted(m for m in ('pandas', 'scipy.signal', 'g2p_en', 'nltk', 'epitran', 'panphon', 'num2words')\n"
+        "                 if m in sys.modules), 'libespeak' in open('/proc/self/maps').read())\n"
     )
     done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, check=True)
-    assert done.stdout.strip().splitlines()[-1] == "0 []"
+    # An English run loads no rule engine: neither epitran (with pandas) nor libespeak-ng.
+    assert done.stdout.strip().splitlines()[-1] == "0 [] False"
     assert (tmp_path / "out" / "manifests" / "labelled.parquet").is_file()
