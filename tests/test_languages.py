@@ -19,7 +19,7 @@ import pytest
 
 from pipeline.core.errors import ParameterError
 from pipeline.stages.languages import canonical_tag
-from pipeline.text.engines import Engine, espeak_voices, epitran_codes, resolve
+from pipeline.text.engines import epitran_codes, espeak_voices, resolve
 from pipeline.text.guard import wrong_language_sentence
 from pipeline.text.ipa import InvalidPhone, feature_table, phone_class, segment
 from pipeline.text.normalise import normalise
@@ -265,3 +265,58 @@ def test_metadata_language_column_sets_each_file_language(tmp_path: Path) -> Non
     assert sorted(result.summary["languages"]) == ["en", "es", "sw"]
     meta = result.metadata
     assert meta["text.languages"] == "en,es,sw" and "espeak:es" in meta["g2p.es"]
+
+
+SWAHILI_DUMP = {
+    "s1": "Nina ng'ombe 12.", "s2": "Habari ya asubuhi, rafiki yangu.", "s3": "Nyumba yetu ina mlango mmoja.",
+    "s4": "Mvua inanyesha leo jioni.", "s5": "Chai ya moto iko mezani.", "s6": "Watoto wanacheza nje.",
+}
+
+
+def _swahili_raw(tmp_path: Path) -> Path:
+    import soundfile as sf
+
+    from tests.conftest import speechlike
+
+    raw = tmp_path / "raw"
+    for i, (name, line) in enumerate(sorted(SWAHILI_DUMP.items())):
+        folder = raw / ("spk_a" if i % 2 else "spk_b")
+        folder.mkdir(parents=True, exist_ok=True)
+        sf.write(folder / f"{name}.wav", speechlike(1.6 + 0.1 * i, 16000, seed=i + 1), 16000, subtype="PCM_16")
+        (folder / f"{name}.txt").write_text(line + "\n", encoding="utf-8")
+    return raw
+
+
+def _prepare(raw: Path, out: Path, config_text: str) -> None:
+    from pipeline.core.config import load_config
+    from pipeline.core.runner import Runner
+    from pipeline.stages import STAGES
+
+    (out.parent / "c.toml").write_text(config_text, encoding="utf-8")
+    config = load_config(out.parent / "c.toml")
+    Runner(raw, out, config, stages=STAGES, workers=1).prepare()
+
+
+def test_a_swahili_dump_end_to_end(tmp_path: Path) -> None:
+    from pipeline.commands.report import build_summary
+    from pipeline.commands.validate import validate_out
+
+    raw = _swahili_raw(tmp_path)
+    split = '[split]\nheldout = "0%"\nlabelled_budgets = ["1s"]\nledger = "ledger.tsv"\n'
+    # The English default on a Swahili dump: validate warns with the figure, the report shows it.
+    (tmp_path / "en").mkdir()
+    _prepare(raw, tmp_path / "en" / "out", split)
+    warned = [p for p in validate_out(tmp_path / "en" / "out").problems if p.check == "language_oov"]
+    assert len(warned) == 1 and "do not look like 'en'" in warned[0].found
+    assert build_summary(tmp_path / "en" / "out")["languages"]["en"]["oov_rate"] > 0.3
+    # Set to Swahili: IPA phones from the rule engine, number words from the table, no warning.
+    (tmp_path / "sw").mkdir()
+    _prepare(raw, tmp_path / "sw" / "out", split + '[text]\nlanguage = "sw"\nnumber_words = { "12" = "kumi na mbili" }\n')
+    out = tmp_path / "sw" / "out"
+    assert not [p for p in validate_out(out).problems if p.check == "language_oov"]
+    import pyarrow.parquet as pq
+
+    rows = pq.read_table(out / "stages" / "text.parquet").to_pylist()
+    assert len(rows) == 6 and {r["language"] for r in rows} == {"sw"}
+    assert all(segment(p) == (p,) for r in rows for p in r["phones"])
+    assert "ŋ" in rows[0]["phones"] and "kumi" in rows[0]["words"]

@@ -133,6 +133,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("ref", metavar="REF", help="a source_path (src-...) or speaker (spk-...) of a manifest")
     p.add_argument("out", type=Path, metavar="OUT", nargs="?", help="a folder written by loam prepare")
     p.add_argument("--mapping", type=Path, metavar="FILE", help="the mapping file privacy.mapping_file names")
+
+    sub.add_parser("languages", help="list the languages and pronunciation engines of this install",
+                   description="List the espeak-ng voices and epitran rule sets the rules backend can use.")
     return parser
 
 
@@ -243,8 +246,15 @@ def _cmd_locate(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_languages(args: argparse.Namespace) -> int:
+    from pipeline.commands.languages import languages_listing
+
+    print(languages_listing())
+    return 0
+
+
 COMMANDS = {"prepare": _cmd_prepare, "stage": _cmd_stage, "validate": _cmd_validate, "report": _cmd_report,
-            "locate": _cmd_locate}
+            "locate": _cmd_locate, "languages": _cmd_languages}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -26,6 +26,7 @@ import pandas as pd
 import pyarrow as pa
 
 from pipeline import __version__
+from pipeline.commands.languages import language_rates
 from pipeline.commands.validate import check_out_folder, load_resolved_config, phone_inventory
 from pipeline.core.config import Config, parse_duration_s
 from pipeline.core.errors import ManifestError
@@ -42,6 +43,7 @@ from pipeline.core.names import (
     STAGES,
     SUBSETS,
     UNLABELLED,
+    stage_manifest,
     stage_rejects,
     stage_summary,
     subset_manifest,
@@ -364,6 +366,7 @@ def build_summary(out: Path, *, clips: pd.DataFrame | None = None) -> dict[str, 
             "inventory": sorted(inventory),
             "labelled_counts": _phone_counts(labelled["phones"], boundary),
         },
+        "languages": language_rates(_read_optional(out / stage_manifest("text"))),
         "rejects": _rejects_section(load_rejects(out)),
         "speakers": _speakers_section(clips),
         "quality": _quality_section(clips, split_summary),
@@ -710,6 +713,11 @@ def _phones_html(s: dict[str, Any], clips: pd.DataFrame, figures: dict[str, str 
         f"<p>Inventory: {len(p['inventory'])} phones"
         f"{' from ' + esc(p['inventory_source']) if p['inventory_source'] else ''}.</p>",
         _img(figures.get("phones"), "Phone frequency in labelled"),
+        "<h2>Languages</h2>",
+        table(["language", "transcribed clips", "backend", "word tokens", "OOV rate"],
+              [[tag, x["clips"], x["backend"] or "rules or graphemes (no dictionary)", x["word_tokens"],
+                "" if x["oov_rate"] is None else f"{100 * x['oov_rate']:.1f} %"]
+               for tag, x in s.get("languages", {}).items()]),
         "<h2>Sample of labelled clips</h2>",
         table(["clip", "speaker", "duration (s)", "transcript", "phones"],
               [[r.clip_id, r.speaker, _num(r.duration_s, 2), r.transcript, " ".join(r.phones)]

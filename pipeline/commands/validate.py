@@ -28,6 +28,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from pipeline.commands.languages import check_language_oov
 from pipeline.core.config import Config, build_config, parse_duration_s
 from pipeline.core.errors import ConfigError, ManifestError, UsageError
 from pipeline.core.manifest import (
@@ -960,6 +961,7 @@ def _row_checks(s: _Subsets, read: _Manifests, out: Path,
         ("scorable", lambda: _check_scorable(s, config)),
         ("near_duplicate_split", lambda: _check_near_duplicates(s)),
         ("conservation", lambda: _check_conservation(s, read.stages, read.rejected)),
+        ("language_oov", lambda: check_language_oov(read.stages.get("text"))),
     ]
 
 
