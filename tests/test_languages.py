@@ -320,3 +320,23 @@ def test_a_swahili_dump_end_to_end(tmp_path: Path) -> None:
     assert len(rows) == 6 and {r["language"] for r in rows} == {"sw"}
     assert all(segment(p) == (p,) for r in rows for p in r["phones"])
     assert "ŋ" in rows[0]["phones"] and "kumi" in rows[0]["words"]
+
+
+def test_inventory_ids_survive_rebuilds(tmp_path: Path) -> None:
+    from pipeline.stages.inventory import ids_path, read_ids, write_inventory
+
+    ledger = tmp_path / "keep" / "ledger.tsv"
+    ledger.parent.mkdir()
+    first = write_inventory(tmp_path / "out", ledger, [(["ŋ", "o", "|", "m", "b", "e"], 1.25)], boundary="|")
+    assert [(r["symbol"], r["id"]) for r in first] == [("b", 0), ("e", 1), ("m", 2), ("o", 3), ("|", 4), ("ŋ", 5)]
+    assert {r["class"] for r in first} == {"vowel", "consonant", "boundary"}
+    # OUT is deleted; new audio brings "a" and "ɲ" and no longer uses "b": old ids hold, new ones follow.
+    (tmp_path / "out" / "lexicon" / "inventory.tsv").unlink()
+    second = write_inventory(tmp_path / "out", ledger, [(["ɲ", "a", "m", "e"], 2.0)], boundary="|")
+    ids = {r["symbol"]: r["id"] for r in second}
+    assert {s: ids[s] for s in ("b", "e", "m", "o", "|", "ŋ")} == {"b": 0, "e": 1, "m": 2, "o": 3, "|": 4, "ŋ": 5}
+    assert ids["a"] == 6 and ids["ɲ"] == 7
+    assert next(r for r in second if r["symbol"] == "b")["count"] == 0
+    assert read_ids(ids_path(ledger)) == ids
+    assert (tmp_path / "out" / "lexicon" / "inventory.tsv").read_text(encoding="utf-8") == \
+        ids_path(ledger).read_text(encoding="utf-8")

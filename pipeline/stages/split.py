@@ -53,6 +53,7 @@ from pipeline.core.names import (
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.signal.fingerprint import decode_fingerprint, find_near_duplicates
 from pipeline.stages import gates
+from pipeline.stages.inventory import ids_path, subset_phones, write_inventory
 from pipeline.stages.ledger import (
     ClipRecord,
     Ledger,
@@ -69,7 +70,8 @@ NAME = "split"
 
 
 def extra_inputs(ctx: StageContext) -> list[Path]:
-    return [locate_ledger(ctx.config, raw=ctx.raw, out=ctx.out)[0]]
+    ledger = locate_ledger(ctx.config, raw=ctx.raw, out=ctx.out)[0]
+    return [ledger, ids_path(ledger)]
 
 
 def reuse_note(summary: dict[str, Any]) -> str:
@@ -857,6 +859,7 @@ def run(ctx: StageContext) -> StageResult:
         "group_by": sc.group_by, "seed": str(cfg.seed), "heldout": sc.heldout,
         "budgets": ",".join(b for b, _ in budgets) or "-", "selection": sc.selection})
     write_ledger(use.path, new_ledger)
+    write_inventory(ctx.out, use.path, subset_phones(tables), boundary=cfg.text.word_boundary)
     changes = _changes(ledger, assignment, present)
     changes["gone_sources"] = sum(state == "gone" for state in new_ledger.sources.values())
     changes["returned_sources"] = sum(ledger.sources.get(k) == "gone" for k in sources) if ledger else 0

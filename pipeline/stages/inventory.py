@@ -1,0 +1,115 @@
+"""The phone inventory: ``OUT/lexicon/inventory.tsv``, with ids that never change.
+
+One row per symbol used in the labelled and held-out phones (and the word-boundary
+symbol when configured): ``symbol``, ``id``, ``count`` (occurrences), ``seconds`` (each
+clip's duration shared equally among its phones, summed; 0 for the boundary) and
+``class`` (``vowel`` or ``consonant`` from panphon's feature table for an IPA segment,
+``boundary`` for the word boundary, empty for other symbol sets such as ARPAbet).
+
+Models bind their output layer to the ids, so a rebuild keeps every id it has seen: the
+ids are recorded beside the split ledger (``<ledger stem>.inventory.tsv``, the same
+table), read back on the next run, and new symbols get the next free ids in code-point
+order. A symbol no clip uses any more keeps its row and id with count 0, so an id is
+never given to another symbol.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+from pathlib import Path
+from typing import Any
+
+from pipeline.core.errors import UsageError
+from pipeline.core.fsio import write_text_atomic
+from pipeline.core.names import HELDOUT, LABELLED, subset_manifest
+
+__all__ = ["INVENTORY", "build_inventory", "format_inventory", "ids_path", "read_ids", "write_inventory"]
+
+INVENTORY = "lexicon/inventory.tsv"
+COLUMNS = ("symbol", "id", "count", "seconds", "class")
+
+
+def ids_path(ledger_path: Path) -> Path:
+    """Where the ids are recorded: beside the ledger (``ledger.tsv`` -> ``ledger.inventory.tsv``)."""
+    return ledger_path.with_name(f"{ledger_path.stem}.inventory.tsv")
+
+
+def read_ids(path: Path) -> dict[str, int]:
+    """Symbol -> id from a recorded inventory; ``{}`` when there is none (UsageError if malformed)."""
+    if not path.exists():
+        return {}
+    ids: dict[str, int] = {}
+    for number, line in enumerate(path.read_text(encoding="utf-8").splitlines(), start=1):
+        if number == 1 or not line.strip():
+            continue
+        fields = line.split("\t")
+        if len(fields) != len(COLUMNS) or not fields[1].isdigit() or fields[0] in ids:
+            raise UsageError(f"{path}: line {number}: expected {len(COLUMNS)} tab-separated fields "
+                             f"({', '.join(COLUMNS)}) with a whole-number id and a symbol not listed before")
+        ids[fields[0]] = int(fields[1])
+    if len(set(ids.values())) != len(ids):
+        raise UsageError(f"{path}: two symbols share an id; expected one id per symbol")
+    return ids
+
+
+def _class(symbol: str, boundary: str) -> str:
+    if boundary and symbol == boundary:
+        return "boundary"
+    from pipeline.text.ipa import feature_table, phone_class, table_units
+
+    return phone_class(symbol) if table_units(symbol) in feature_table() else ""
+
+
+def build_inventory(clips: list[tuple[list[str], float]], *, boundary: str,
+                    known: dict[str, int]) -> list[dict[str, Any]]:
+    """Rows of the inventory for clips given as (phones, duration_s).
+
+    Examples
+    --------
+    >>> rows = build_inventory([(["a", "|", "b"], 1.0)], boundary="|", known={"b": 0})
+    >>> [(r["symbol"], r["id"], r["count"], r["seconds"], r["class"]) for r in rows]
+    [('b', 0, 1, 0.5, 'consonant'), ('a', 1, 1, 0.5, 'vowel'), ('|', 2, 1, 0.0, 'boundary')]
+    """
+    counts: Counter[str] = Counter()
+    seconds: dict[str, list[float]] = {}
+    for phones, duration_s in clips:
+        sounds = [p for p in phones if not (boundary and p == boundary)]
+        counts.update(phones)
+        for p in sounds:
+            seconds.setdefault(p, []).append(duration_s / len(sounds))
+    ids = dict(known)
+    for symbol in sorted(set(counts) - set(ids)):
+        ids[symbol] = max(ids.values(), default=-1) + 1
+    return [{"symbol": s, "id": i, "count": counts.get(s, 0), "seconds": round(math.fsum(seconds.get(s, [])), 3),
+             "class": _class(s, boundary)} for s, i in sorted(ids.items(), key=lambda kv: kv[1])]
+
+
+def format_inventory(rows: list[dict[str, Any]]) -> str:
+    lines = ["\t".join(COLUMNS)]
+    lines += ["\t".join(str(r[c]) for c in COLUMNS) for r in rows]
+    return "\n".join(lines) + "\n"
+
+
+def write_inventory(out: Path, ledger_path: Path, clips: list[tuple[list[str], float]], *,
+                    boundary: str) -> list[dict[str, Any]]:
+    """Write ``OUT/lexicon/inventory.tsv`` and its record beside the ledger; return the rows."""
+    record = ids_path(ledger_path)
+    rows = build_inventory(clips, boundary=boundary, known=read_ids(record))
+    text = format_inventory(rows)
+    write_text_atomic(out / INVENTORY, text)
+    write_text_atomic(record, text)
+    return rows
+
+
+def subset_phones(tables: dict[str, tuple[str, Any]]) -> list[tuple[list[str], float]]:
+    """(phones, duration_s) of every labelled and held-out clip that has phones, in file order."""
+    clips = []
+    for rel in (subset_manifest(LABELLED), subset_manifest(HELDOUT)):
+        if rel in tables:
+            table = tables[rel][1]
+            for phones, duration_s in zip(table.column("phones").to_pylist(), table.column("duration_s").to_pylist(),
+                                          strict=True):
+                if phones:
+                    clips.append((phones, duration_s))
+    return clips
