@@ -200,7 +200,7 @@ SWAHILI = {
 
 
 def test_stage_in_swahili(tmp_path: Path) -> None:
-    result, table = run_stage(tmp_path, SWAHILI, language="sw", number_words={"12": "kumi na mbili"})
+    result, table = run_stage(tmp_path, SWAHILI, language="sw", number_words={"sw": {"12": "kumi na mbili"}})
     rows = {r["clip_id"]: r for r in table.to_pylist()}
     s1 = rows[clip("s1")]
     assert s1["language"] == "sw" and s1["norm_text"] == "nina ng'ombe kumi na mbili"
@@ -250,7 +250,7 @@ def test_metadata_language_column_sets_each_file_language(tmp_path: Path) -> Non
                                                ("c", "El niño tiene 3 libros.")], start=2):
         rows.append({**ingest_row(name, transcript), "transcript_origin": "metadata", "metadata_line": line})
     config = build_config({"ingest": {"metadata": "meta.csv", "metadata_language_column": "lang"},
-                           "text": {"number_words": {"12": "kumi na mbili"}}}, base_dir=str(tmp_path))
+                           "text": {"number_words": {"sw": {"12": "kumi na mbili"}}}}, base_dir=str(tmp_path))
     ctx = StageContext(raw=raw, out=tmp_path / "out", config=config,
                        inputs={"ingest": table_from_rows("ingest", rows)}, workers=1)
     assert raw / "meta.csv" in text.extra_inputs(ctx)  # a changed language cell reruns the stage
@@ -311,7 +311,7 @@ def test_a_swahili_dump_end_to_end(tmp_path: Path) -> None:
     assert build_summary(tmp_path / "en" / "out")["languages"]["en"]["oov_rate"] > 0.3
     # Set to Swahili: IPA phones from the rule engine, number words from the table, no warning.
     (tmp_path / "sw").mkdir()
-    _prepare(raw, tmp_path / "sw" / "out", split + '[text]\nlanguage = "sw"\nnumber_words = { "12" = "kumi na mbili" }\n')
+    _prepare(raw, tmp_path / "sw" / "out", split + '[text]\nlanguage = "sw"\nnumber_words = { sw = { "12" = "kumi na mbili" } }\n')
     out = tmp_path / "sw" / "out"
     assert not [p for p in validate_out(out).problems if p.check == "language_oov"]
     import pyarrow.parquet as pq

@@ -91,7 +91,7 @@ class TextConfig:
     language: str
     engines: tuple[tuple[str, str], ...]
     keep_tone: bool
-    number_words: tuple[tuple[str, str], ...]
+    number_words: tuple[tuple[str, tuple[tuple[str, str], ...]], ...]
 
     @property
     def english(self) -> bool:
@@ -241,7 +241,7 @@ def _jsonable(section: Any) -> dict[str, Any]:
     for f in dataclasses.fields(section):
         value = getattr(section, f.name)
         if f.name in _TABLES:
-            value = dict(value)
+            value = {k: dict(v) if isinstance(v, tuple) else v for k, v in value}
         elif isinstance(value, tuple):
             value = list(value)
         out[f.name] = value
@@ -389,7 +389,8 @@ def build_config(
         values = dict(full[name])
         for f in dataclasses.fields(cls):
             if f.name in _TABLES:
-                values[f.name] = tuple(sorted(values[f.name].items()))
+                values[f.name] = tuple(sorted((k, tuple(sorted(v.items())) if isinstance(v, dict) else v)
+                                              for k, v in values[f.name].items()))
             elif isinstance(values[f.name], list):
                 values[f.name] = tuple(values[f.name])
         sections[name] = cls(**values)

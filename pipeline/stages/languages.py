@@ -168,7 +168,8 @@ class Toolbox:
         if not english:
             options.update(verbalise_numbers=False, spell_initialisms=False, is_known=None,
                            abbreviations=dict(cfg.abbreviations))
-        numbers = None if english else NumberReader(tag, dict(cfg.number_words))
+        tables = {k: dict(v) for k, v in cfg.number_words}
+        numbers = None if english else NumberReader(tag, tables.get(tag, tables.get(tag.split("-")[0], {})))
         return LanguageTools(tag, backend, pronouncer, options, numbers, cfg)
 
 

@@ -1,8 +1,8 @@
 """Numbers written with digits, read out in the transcript's language (not English).
 
 English keeps its own reader (:func:`pipeline.text.normalise.verbalise`: money, times,
-years, ordinals). Any other language gets its whole numbers from the user's table
-``text.number_words`` first (``"12" = "kumi na mbili"``), then from ``num2words`` when it
+years, ordinals). Any other language gets its whole numbers from the user's table for
+it in ``text.number_words`` first (``sw = { "12" = "kumi na mbili" }``), then from ``num2words`` when it
 has the language. A number neither covers, or one with a decimal or group separator
 (whose reading depends on the language's conventions), is not guessed: the caller
 rejects the transcript with :func:`missing_sentence`, which names the override. So a
@@ -103,4 +103,4 @@ def missing_sentence(source: str, numbers: list[str], language: str) -> str:
            else "decimal and grouped numbers are read out for English only")
     return (f"{source}: transcript has numbers written in digits ({shown}) that cannot be read out in "
             f"language {language!r}: {why}; expected the number in words, or its words in text.number_words "
-            f"(e.g. \"{numbers[0]}\" = \"...\")")
+            f"(e.g. {language.split('-')[0]} = {{ \"{numbers[0]}\" = \"...\" }})")
