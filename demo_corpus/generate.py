@@ -257,6 +257,19 @@ LONG_SENTENCES = [
     "Let's turn back before the tide comes over the path.",
 ]
 
+# A second language: the resident filed as "egret" grew up on the East African coast and
+# chose to speak Swahili. Transcripts are in the spreadsheet, whose "language" column
+# marks them "sw" (the other rows leave it empty: the config's text.language, English).
+# The clips have their own seed and levels, so adding them changed no other file.
+SECOND_LANGUAGE = "sw"
+SECOND_SPEAKER = "egret"
+SECOND_VOICE = Voice("sw+m3", 42, 140)
+SECOND_LINES = [
+    (Line("Nina ng'ombe 12 shambani.", W16_16, "metadata"), -11.0),
+    (Line("Nyumba yetu iko karibu na bahari.", F16_22, "metadata"), -16.0),
+    (Line("Asubuhi tunakunywa chai ya moto.", O_22, "metadata"), -8.0),
+]
+
 # Deliberate faults; the README explains what Loam should do with each.
 ZERO_BYTE = "plover/plover_09.wav"
 TEXT_AS_WAV = "alder/alder_tape_label.wav"
@@ -471,6 +484,7 @@ def planned_paths() -> list[str]:
             if line.transcript in ("sidecar", "conflict"):
                 paths.append(Path(audio).with_suffix(".txt").as_posix())
     paths.append(f"{LONG_SPEAKER}/{LONG_STEM}.{LONG_ENCODING.extension}")
+    paths += [clip_path(SECOND_SPEAKER, i, line.encoding) for i, (line, _) in enumerate(SECOND_LINES)]
     paths += [ZERO_BYTE, TEXT_AS_WAV, TRUNCATED, DUPLICATE, METADATA]
     return paths
 
@@ -519,6 +533,25 @@ def make_clips(rng_root: np.random.SeedSequence) -> list[list[str]]:
     return rows
 
 
+def make_second_language(seed: np.random.SeedSequence) -> list[list[str]]:
+    """Write the Swahili clips; return their metadata rows (with the language cell)."""
+    rows = []
+    for index, ((line, peak), clip_seed) in enumerate(zip(SECOND_LINES, seed.spawn(len(SECOND_LINES)), strict=True)):
+        rng = np.random.default_rng(clip_seed)
+        speech = synthesise(text=line.text, voice=SECOND_VOICE)
+        if not SPEECH_S[0] <= speech.size / ESPEAK_RATE <= SPEECH_S[1]:
+            raise RuntimeError(f"{SECOND_SPEAKER} line {index + 1}: {speech.size / ESPEAK_RATE:.2f} s of speech")
+        lead_s, trail_s = rng.uniform(*line.encoding.edge_silence_s(), size=2)
+        samples = place_speech(speech, sample_rate=line.encoding.sample_rate, channels=line.encoding.channels,
+                               peak_dbfs=peak, lead_s=lead_s, trail_s=trail_s,
+                               noise_dbfs=peak - rng.uniform(*NOISE_BELOW_PEAK_DB), rng=rng)
+        relative = clip_path(SECOND_SPEAKER, index, line.encoding)
+        (ROOT / relative).parent.mkdir(exist_ok=True)
+        write_audio(ROOT / relative, samples, encoding=line.encoding)
+        rows.append([relative, SECOND_SPEAKER, line.text, SECOND_LANGUAGE])
+    return rows
+
+
 def make_long_recording(rng: np.random.Generator) -> None:
     """Concatenate many sentences with natural pauses into one long recording."""
     rate = LONG_ENCODING.sample_rate
@@ -556,8 +589,8 @@ def make_faults(rows: list[list[str]]) -> None:
 def write_metadata(rows: list[list[str]]) -> None:
     with open(ROOT / METADATA, "w", encoding="utf-8", newline="") as fh:
         writer = csv.writer(fh, lineterminator="\n")
-        writer.writerow(["path", "speaker", "transcript"])
-        writer.writerows(rows)
+        writer.writerow(["path", "speaker", "transcript", "language"])
+        writer.writerows(row + [""] * (4 - len(row)) for row in rows)
 
 
 def generate() -> None:
@@ -568,6 +601,8 @@ def generate() -> None:
     rows = make_clips(clip_seed)
     make_long_recording(np.random.default_rng(long_seed))
     make_faults(rows)
+    # Appended after every other row, so the English rows keep their line numbers.
+    rows += make_second_language(np.random.SeedSequence([SEED, 2]))
     write_metadata(rows)
 
 
@@ -576,6 +611,8 @@ def transcript_sources() -> dict[str, str]:
     for speaker, lines in LINES.items():
         for index, line in enumerate(lines):
             sources[clip_path(speaker, index, line.encoding)] = line.transcript
+    for index, (line, _) in enumerate(SECOND_LINES):
+        sources[clip_path(SECOND_SPEAKER, index, line.encoding)] = f"{line.transcript} ({SECOND_LANGUAGE})"
     return sources
 
 
