@@ -11,7 +11,9 @@ OUT folder:
 ``nocache``  ``use_cache=False``: every distinct OOV word is predicted again
              (the libraries are already imported by then).
 
-and times ``normalise`` alone, with the stage's english options. Reports sentences per second and the cache hit
+and times ``normalise`` alone, with the stage's english options. Then the rules backend
+on generated Swahili (epitran) and Spanish (espeak-ng) sentences: ``rules_<lang>_cold``
+includes loading the engine, ``rules_<lang>_warm`` is a second stage run in the same process. Reports sentences per second and the cache hit
 rates: per distinct OOV word (hits / (hits + predictions)) and per OOV word
 token (1 - predictions / OOV tokens, which counts the repeats a run answers from
 memory). Prints a table, then the same figures as one JSON line.
@@ -80,6 +82,42 @@ def sentences(count: int, *, seed: int) -> tuple[list[str], dict[str, int]]:
     return out, {"vocabulary": len(vocabulary), "invented_words": len(oov)}
 
 
+# The rules backend's workload: words of a small Swahili and a small Spanish vocabulary
+# (everyday words, spelled as their orthographies write them) and invented words of the
+# same syllable shapes, Zipf-weighted as above; some Spanish sentences carry a number.
+SWAHILI = ["habari", "nyumba", "chai", "asubuhi", "rafiki", "watoto", "shamba", "maji", "mvua", "leo", "jioni", "kesho", "kubwa", "ndogo", "nzuri", "sana", "na", "ya", "wa", "kwa", "ni", "katika", "mtu", "watu", "kitabu", "vitabu", "chakula", "kula", "kunywa", "kwenda", "kuja", "soko", "mji", "barabara", "gari", "samaki", "ng'ombe", "mbuzi", "kuku", "bahari", "mlango", "dirisha", "mama", "baba", "dada", "kaka", "shule", "mwalimu", "kazi", "siku"]
+SPANISH = ["casa", "niño", "agua", "perro", "gato", "mesa", "libro", "calle", "ciudad", "mañana", "noche", "día", "año", "mujer", "hombre", "pueblo", "río", "mar", "tierra", "cielo", "comida", "pan", "leche", "vino", "fuego", "árbol", "flor", "camino", "puerta", "ventana", "escuela", "trabajo", "amigo", "familia", "hermano", "hermana", "padre", "madre", "hijo", "hija", "el", "la", "los", "las", "de", "en", "con", "por", "para", "y", "que", "muy"]
+
+
+def rules_sentences(count: int, *, seed: int, language: str) -> list[str]:
+    rng = random.Random(seed)
+    vocabulary = SWAHILI if language == "sw" else SPANISH
+    syllables = [c + v for c in ("b", "ch", "d", "k", "l", "m", "n", "ny", "s", "t", "w", "z") for v in "aeiou"]
+    invented = sorted({"".join(rng.choices(syllables, k=rng.randint(2, 4))) for _ in range(1500)} - set(vocabulary))
+    words = vocabulary + invented
+    weights = [1 / (r + 1) for r in range(len(words))]
+    out = []
+    for _ in range(count):
+        line = rng.choices(words, weights, k=rng.randint(5, 14))
+        if language == "es" and rng.random() < 0.2:
+            line.insert(rng.randrange(len(line) + 1), str(rng.randint(1, 2000)))
+        sentence = " ".join(line)
+        out.append(sentence[0].upper() + sentence[1:] + ".")
+    return out
+
+
+def timed_rules_run(out: Path, table: Any, *, language: str) -> dict[str, Any]:
+    ctx = StageContext(raw=out, out=out, config=build_config({"text": {"language": language}}),
+                       inputs={"ingest": table}, workers=1, use_cache=True)
+    start = time.perf_counter()
+    result = text.run(ctx)
+    seconds = time.perf_counter() - start
+    info = result.summary["languages"][language]
+    return {"seconds": round(seconds, 3), "sentences_per_s": round(table.num_rows / seconds, 1),
+            "accepted": result.summary["accepted"], "engine": info["engine"], "words": result.summary["words"],
+            "distinct_words": result.summary["distinct_words"]}
+
+
 def ingest_table(lines: list[str]) -> Any:
     rows = []
     for i, line in enumerate(lines):
@@ -137,6 +175,13 @@ def main() -> None:
         normalise(line, **options)
     seconds = time.perf_counter() - start
     figures["normalise_only"] = {"seconds": round(seconds, 3), "sentences_per_s": round(len(lines) / seconds, 1)}
+    # The rules backend: cold (the engine's first load in this process; epitran imports
+    # pandas) and warm (the engine loaded; a new stage run, so every word is pronounced again).
+    for language in ("sw", "es"):
+        rules_table = ingest_table(rules_sentences(args.sentences, seed=args.seed, language=language))
+        with tempfile.TemporaryDirectory(prefix="loam-bench-text-") as tmp:
+            figures[f"rules_{language}_cold"] = timed_rules_run(Path(tmp) / "a", rules_table, language=language)
+            figures[f"rules_{language}_warm"] = timed_rules_run(Path(tmp) / "b", rules_table, language=language)
 
     print(f"text stage on {len(lines)} generated sentences (seed {args.seed})")
     header = ("run", "seconds", "sent/s", "OOV words", "OOV tokens", "predicted", "hits", "hit/distinct", "hit/token")
@@ -148,6 +193,11 @@ def main() -> None:
         print("  ".join(f"{v!s:>12}" for v in row))
     n = figures["normalise_only"]
     print(f"{'normalise':>12}  {n['seconds']!s:>12}  {n['sentences_per_s']!s:>12}")
+    for language in ("sw", "es"):
+        for kind in ("cold", "warm"):
+            f = figures[f"rules_{language}_{kind}"]
+            print(f"{'rules ' + language + ' ' + kind:>12}  {f['seconds']!s:>12}  {f['sentences_per_s']!s:>12}  "
+                  f"{f['engine']}, {f['distinct_words']} distinct words, {f['accepted']} accepted")
     print(json.dumps(figures))
     if args.json:
         args.json.write_text(json.dumps(figures, indent=2) + "\n", encoding="utf-8")

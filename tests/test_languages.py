@@ -340,3 +340,16 @@ def test_inventory_ids_survive_rebuilds(tmp_path: Path) -> None:
     assert read_ids(ids_path(ledger)) == ids
     assert (tmp_path / "out" / "lexicon" / "inventory.tsv").read_text(encoding="utf-8") == \
         ids_path(ledger).read_text(encoding="utf-8")
+
+
+def test_grapheme_fallback_stays_in_the_lexicon_symbol_set(tmp_path: Path) -> None:
+    # The lexicon writes IPA ("ya" -> j a); "yangu" spelled as letters would put "y" and
+    # "g" (not lexicon symbols) beside IPA phones: the clip is rejected, saying why.
+    (tmp_path / "lex.tsv").write_text("ya\tj a\nnina\tn i n a\nmbuzi\tm b u z i\n", encoding="utf-8")
+    result, table = run_stage(tmp_path, {"a": "Nina ya yangu.", "b": "Nina nanu."}, backend="lexicon",
+                              lexicon="lex.tsv", oov="graphemes", language="sw")
+    (row,) = table.to_pylist()
+    assert row["clip_id"] == clip("b") and row["phones"][-4:] == ["n", "a", "n", "u"]
+    (rejected,) = result.rejects
+    assert rejected["reason"] == "unpronounceable" and "would mix symbol sets" in rejected["detail"]
+    assert "'y'" in rejected["detail"] and "'g'" in rejected["detail"]

@@ -114,12 +114,8 @@ class LanguageTools:
         return text, None
 
     def invalid_phones(self, words: list[str]) -> str:
-        """Why the rule engine gave these words no phones ("" when it did not say)."""
-        rules = self.pronouncer.rules
-        if rules is None:
-            return ""
-        found = [rules.problems[w] for w in words if w in rules.problems]
-        return "; ".join(found)
+        """Why these words got no phones ("" when nothing was said)."""
+        return "; ".join(self.pronouncer.problems[w] for w in words if w in self.pronouncer.problems)
 
 
 class Toolbox:
@@ -193,8 +189,7 @@ def process_in_language(source: str, transcript: str, language: str, *, toolbox:
         outcome.row["transcript"] = transcript
         outcome.row["language"] = tools.language
     elif outcome.rejected and outcome.rejected[0] == "unpronounceable":
-        rules = tools.pronouncer.rules
-        why = tools.invalid_phones([w for w in rules.problems if repr(w) in outcome.rejected[1]] if rules else [])
+        why = tools.invalid_phones([w for w in tools.pronouncer.problems if repr(w) in outcome.rejected[1]])
         if why:
             outcome.rejected = ("unpronounceable", f"{outcome.rejected[1]}; {why}")
     return outcome

@@ -150,6 +150,9 @@ class Pronouncer:
         if backend == "rules" and rules is None:
             raise ParameterError("rules=None: the rules backend needs a rule engine")
         self.rules = rules
+        # Why a word got no phones (rule engine output or a mixed fallback), for the reject.
+        self.problems: dict[str, str] = rules.problems if rules is not None else {}
+        self._symbols: frozenset[str] | None = None
         self.backend = backend
         self.lexicon = dict(lexicon or {})
         self.override = dict(override or {})
@@ -225,7 +228,7 @@ class Pronouncer:
             if word in self.lexicon:
                 return Pronunciation(self.lexicon[word], "lexicon"), False
             if self.oov == "graphemes":
-                return Pronunciation(grapheme_units(word), "graphemes", oov=True), False
+                return Pronunciation(self._fallback(word), "graphemes", oov=True), False
             return None, False
         key = english_key(word)
         choices = self._cmudict.get(key)
@@ -233,6 +236,24 @@ class Pronouncer:
             phones = self._choose(key, [tuple(c) for c in choices], previous, following)
             return Pronunciation(phones, "cmudict"), len(choices) > 1 and (key == "a" or key in _homographs())
         return Pronunciation(self.predict(key), "neural", oov=True), False
+
+    def _fallback(self, word: str) -> tuple[str, ...]:
+        """The word's letters as phones, when every letter is a symbol of the lexicon.
+
+        Otherwise the fallback would put letters beside the lexicon's phones (``j a``
+        from the lexicon, ``y a n g u`` spelled): the word gets no phones, its transcript
+        is rejected, and ``problems`` says which letters are not lexicon symbols.
+        """
+        units = grapheme_units(word)
+        if self._symbols is None:
+            self._symbols = frozenset(p for phones in self.lexicon.values() for p in phones)
+        foreign = [u for u in dict.fromkeys(units) if u not in self._symbols]
+        if foreign:
+            self.problems[word] = (f"the grapheme fallback for {word!r} would mix symbol sets: "
+                                   f"{', '.join(map(repr, foreign))} {'is' if len(foreign) == 1 else 'are'} "
+                                   "not phones of text.lexicon; add the word to text.override_lexicon")
+            return ()
+        return units
 
     def _choose(
         self, key: str, choices: list[tuple[str, ...]], previous: str | None, following: str | None
