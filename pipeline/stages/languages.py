@@ -93,6 +93,15 @@ def file_languages(ctx: StageContext, rows: list[dict[str, Any]]) -> dict[str, s
     return out
 
 
+def rule_phones(cfg: TextConfig) -> RulePhones | None:
+    """The rule engine of ``cfg.language`` when its backend is rules (``text.engines`` or the default)."""
+    if cfg.resolved_backend != "rules":
+        return None
+    engines = dict(cfg.engines)
+    engine = engines.get(cfg.language, engines.get(cfg.language.split("-")[0], ""))
+    return RulePhones(cfg.language, engine, keep_stress=cfg.keep_stress, keep_tone=cfg.keep_tone)
+
+
 @dataclass
 class LanguageTools:
     """What one language's transcripts go through."""
@@ -152,14 +161,7 @@ class Toolbox:
         cfg = replace(self.config.text, language=tag)
         backend = cfg.resolved_backend
         english = cfg.english
-        if backend == "rules":
-            engines = dict(cfg.engines)
-            engine = engines.get(tag, engines.get(tag.split("-")[0], ""))
-            rules = RulePhones(tag, engine, keep_stress=cfg.keep_stress, keep_tone=cfg.keep_tone)
-            pronouncer = Pronouncer(backend="rules", rules=rules, override=self.make_pronouncer(
-                replace(cfg, backend="graphemes")).override, alphabet=cfg.alphabet)
-        else:
-            pronouncer = self.make_pronouncer(replace(cfg, backend=backend))
+        pronouncer = self.make_pronouncer(cfg)
         options = self.make_options(replace(cfg, backend=backend), pronouncer)
         if not english:
             options.update(verbalise_numbers=False, spell_initialisms=False, is_known=None,

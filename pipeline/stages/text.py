@@ -42,6 +42,7 @@ from pipeline.stages.languages import (
     language_summary,
     metadata_table,
     process_in_language,
+    rule_phones,
     warn_wrong_language,
 )
 from pipeline.text.characters import describe_characters, grapheme_units
@@ -58,7 +59,7 @@ _SHOWN_CHARS = 60
 def _lexicon_paths(config: Config) -> dict[str, Path]:
     cfg = config.text
     paths = {}
-    if cfg.backend == "lexicon" and cfg.lexicon:
+    if cfg.resolved_backend == "lexicon" and cfg.lexicon:
         paths["lexicon"] = config.resolve_path(cfg.lexicon)
     if cfg.override_lexicon:
         paths["override_lexicon"] = config.resolve_path(cfg.override_lexicon)
@@ -82,10 +83,11 @@ def build_pronouncer(config: Config, *, cache_dir: Path | None) -> Pronouncer:
     cfg = config.text
     paths = _lexicon_paths(config)
     cache_path = None
-    if cfg.backend == "english" and cache_dir is not None:
+    if cfg.resolved_backend == "english" and cache_dir is not None:
         cache_path = cache_dir / "g2p" / neural_cache_name(code_version=code_version(NAME, cache_dir=cache_dir))
     return Pronouncer(
-        backend=cfg.backend,
+        backend=cfg.resolved_backend,
+        rules=rule_phones(cfg),
         lexicon=read_lexicon(paths["lexicon"]) if "lexicon" in paths else None,
         override=read_lexicon(paths["override_lexicon"]) if "override_lexicon" in paths else None,
         oov=cfg.oov,
@@ -97,7 +99,7 @@ def build_pronouncer(config: Config, *, cache_dir: Path | None) -> Pronouncer:
 
 def normalise_options(cfg: TextConfig, pronouncer: Pronouncer) -> dict[str, Any]:
     """Keyword arguments for ``normalise`` under this configuration."""
-    english = cfg.backend == "english"
+    english = cfg.resolved_backend == "english"
     abbreviations = load_abbreviations() if english else {}
     abbreviations.update(dict(cfg.abbreviations))
     return {
