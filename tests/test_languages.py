@@ -353,3 +353,29 @@ def test_grapheme_fallback_stays_in_the_lexicon_symbol_set(tmp_path: Path) -> No
     (rejected,) = result.rejects
     assert rejected["reason"] == "unpronounceable" and "would mix symbol sets" in rejected["detail"]
     assert "'y'" in rejected["detail"] and "'g'" in rejected["detail"]
+
+
+def test_demo_build_has_two_languages_and_a_valid_inventory(demo_build: Path) -> None:
+    import pyarrow.parquet as pq
+
+    from pipeline.text.cmudict_index import cmudict_entries, strip_stress
+
+    rows = pq.read_table(demo_build / "stages" / "text.parquet").to_pylist()
+    swahili = [r for r in rows if r["language"] == "sw"]
+    assert len(swahili) == 3 and all(set(r["word_backends"]) == {"rules"} for r in swahili)
+    assert next(r for r in swahili if "kumi" in r["words"])["norm_text"] == "nina ng'ombe kumi na mbili shambani"
+    # Every Swahili phone is a segment of panphon's feature table; every English one is
+    # an ARPAbet phone of CMUdict (stress stripped).
+    arpabet = {p for prons in cmudict_entries().values() for pron in prons for p in strip_stress(pron)}
+    ipa = {p for r in swahili for p in r["phones"]}
+    assert all(segment(p) == (p,) for p in ipa)
+    assert {p for r in rows if r["language"] == "en" for p in r["phones"]} <= arpabet
+    lines = (demo_build / "lexicon" / "inventory.tsv").read_text(encoding="utf-8").splitlines()
+    assert lines[0] == "symbol\tid\tcount\tseconds\tclass"
+    table = {f[0]: f for f in (line.split("\t") for line in lines[1:])}
+    assert sorted(int(f[1]) for f in table.values()) == list(range(len(table)))
+    for symbol, fields in table.items():
+        assert symbol in arpabet or (symbol in ipa and fields[4] in ("vowel", "consonant")), symbol
+    summary = json.loads((demo_build / "report" / "summary.json").read_text(encoding="utf-8"))
+    assert sorted(summary["languages"]) == ["en", "sw"]
+    assert summary["languages"]["en"]["oov_rate"] < 0.3 and summary["languages"]["sw"]["oov_rate"] is None

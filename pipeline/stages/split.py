@@ -53,7 +53,7 @@ from pipeline.core.names import (
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.signal.fingerprint import decode_fingerprint, find_near_duplicates
 from pipeline.stages import gates
-from pipeline.stages.inventory import ids_path, subset_phones, write_inventory
+from pipeline.stages.inventory import INVENTORY, ids_path, subset_phones, write_inventory
 from pipeline.stages.ledger import (
     ClipRecord,
     Ledger,
@@ -977,5 +977,6 @@ STAGE = Stage(
     inputs_after_run=True,
     run_when_options=("fresh",),
     extra_inputs=extra_inputs,
+    written_files=lambda out, table: [INVENTORY],
     reuse_note=reuse_note,
 )
