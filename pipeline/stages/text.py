@@ -20,6 +20,14 @@ rejects                    ``empty_transcript`` (nothing left after normalisatio
 English-only steps (the built-in abbreviation table and spelled initialisms) run
 with the english backend only. Numbers follow ``text.verbalise_numbers``, and the
 abbreviations of ``[text.abbreviations]`` apply with every backend.
+
+Each transcript has a language (``text.language``, or the metadata table's language
+column), kept in the manifest's ``language`` column; :mod:`pipeline.stages.languages`
+gives each language its pronouncer, normalisation options and number reader, and the
+summary its word tokens and OOV rate (``languages``), warning when a dictionary backend
+leaves more than 30 % of a language's tokens out of vocabulary. Two more rejects:
+``unreadable_number`` (digits no reader covers in that language) and, from the rules
+backend, ``unpronounceable`` naming a symbol the IPA feature table lacks.
 """
 
 from __future__ import annotations
