@@ -141,12 +141,16 @@ class Toolbox:
         self.make_options = make_options
         self.tools: dict[str, LanguageTools] = {}
         self.failures: dict[str, str] = {}
+        self._by_cell: dict[str, LanguageTools] = {}  # the tag as written -> its tools
 
     def get(self, tag: str) -> LanguageTools:
         """The tools for ``tag``; ParameterError naming the fix when no engine covers it."""
+        known = self._by_cell.get(tag)
+        if known is not None:
+            return known
         if not _TAG.match(tag):
             raise ParameterError(f"language {tag!r} is not a BCP-47 tag such as 'en', 'sw' or 'es-CO'")
-        tag = canonical_tag(tag)
+        cell, tag = tag, canonical_tag(tag)
         if tag in self.failures:
             raise ParameterError(self.failures[tag])
         if tag not in self.tools:
@@ -155,6 +159,7 @@ class Toolbox:
             except ParameterError as exc:
                 self.failures[tag] = str(exc)
                 raise
+        self._by_cell[cell] = self.tools[tag]
         return self.tools[tag]
 
     def _build(self, tag: str) -> LanguageTools:
@@ -168,7 +173,7 @@ class Toolbox:
                            abbreviations=dict(cfg.abbreviations))
         tables = {k: dict(v) for k, v in cfg.number_words}
         numbers = None if english else NumberReader(tag, tables.get(tag, tables.get(tag.split("-")[0], {})))
-        return LanguageTools(tag, backend, pronouncer, options, numbers, cfg)
+        return LanguageTools(tag, backend, pronouncer, options, numbers, replace(cfg, backend=backend))
 
 
 def process_in_language(source: str, transcript: str, language: str, *, toolbox: Toolbox,
@@ -184,8 +189,7 @@ def process_in_language(source: str, transcript: str, language: str, *, toolbox:
     text, problem = tools.read_numbers(source, transcript)
     if problem is not None:
         return TranscriptOutcome(rejected=problem, language=tools.language)
-    outcome = process_transcript(source, text, pronouncer=tools.pronouncer, options=tools.options,
-                                 cfg=replace(cfg, backend=tools.backend))
+    outcome = process_transcript(source, text, pronouncer=tools.pronouncer, options=tools.options, cfg=tools.cfg)
     outcome.language = tools.language
     if outcome.row is not None:
         outcome.row["transcript"] = transcript
@@ -210,7 +214,7 @@ def language_summary(rows: list[dict[str, Any]], rejects: list[dict[str, Any]], 
         tools = toolbox.tools.get(tag)
         mine = [r for r in rows if r["language"] == tag]
         tokens = sum(len(r["words"]) for r in mine)
-        oov = sum(sum(w in set(r["oov_words"]) for w in r["words"]) for r in mine)
+        oov = sum(sum(w in oov_set for w in r["words"]) for r in mine if (oov_set := set(r["oov_words"])))
         rate = oov_rate(tokens, oov)
         out[tag] = {
             "transcripts": transcripts[tag], "accepted": len(mine),
