@@ -98,6 +98,15 @@ def test_invalid_engine_output_becomes_a_reject_sentence() -> None:
     rules = RulePhones("vi", "espeak")
     assert rules.phones("việt") == ()
     assert "not a segment of panphon's IPA feature table" in rules.problems["việt"]
+    assert "text.keep_tone = false" in rules.problems["việt"]
+
+
+def test_scripts_without_spaces_are_read_by_the_engine() -> None:
+    # Thai has no spaces between words: espeak-ng segments the run itself. Its tone
+    # digits are dropped with keep_tone=False, and what remains is valid IPA.
+    phones = RulePhones("th", keep_tone=False).phones("สวัสดีครับ")
+    assert phones and all(segment(p) == (p,) for p in phones)
+    assert RulePhones("ja").phones("こんにちは")[:2] == ("k", "o̞")
 
 
 # --- engines ---------------------------------------------------------------------------

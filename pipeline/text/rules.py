@@ -13,6 +13,8 @@ from pipeline.text.ipa import InvalidPhone, segment
 
 __all__ = ["RulePhones"]
 
+_NO_DIGITS = str.maketrans("", "", "0123456789")
+
 
 class RulePhones:
     """IPA phones for the words of one language.
@@ -41,12 +43,23 @@ class RulePhones:
         self.problems: dict[str, str] = {}
 
     def phones(self, word: str) -> tuple[str, ...]:
-        """The word's phones; ``()`` when the engine gave none or an invalid symbol (see ``problems``)."""
+        """The word's phones; ``()`` when the engine gave none or an invalid symbol (see ``problems``).
+
+        espeak-ng writes the tones of tone languages (Thai, Mandarin, Cantonese,
+        Vietnamese) as digits after the vowel, which are not IPA; with ``keep_tone=False``
+        they are dropped, otherwise the word is rejected with a sentence that says so.
+        """
         units = self.engine.units(word)
+        if self.engine.name == "espeak" and not self.keep_tone:
+            units = [u.translate(_NO_DIGITS) for u in units]
         try:
             return segment(units, keep_stress=self.keep_stress, keep_tone=self.keep_tone)
         except InvalidPhone as exc:
-            self.problems[word] = f"{self.engine.label} gave {' '.join(units)!r}: {exc}"
+            hint = ""
+            if self.engine.name == "espeak" and any(ch.isdigit() for u in units for ch in u):
+                hint = ("; espeak-ng writes this language's tones as digits, which are not IPA: set "
+                        "text.keep_tone = false to drop them, or choose another engine in text.engines")
+            self.problems[word] = f"{self.engine.label} gave {' '.join(units)!r}: {exc}{hint}"
             return ()
 
     def provenance(self) -> dict[str, str]:
