@@ -385,6 +385,17 @@ def test_demo_build_has_two_languages_and_a_valid_inventory(demo_build: Path) ->
     assert sorted(int(f[1]) for f in table.values()) == list(range(len(table)))
     for symbol, fields in table.items():
         assert symbol in arpabet or (symbol in ipa and fields[4] in ("vowel", "consonant")), symbol
+    html = (demo_build / "report" / "index.html").read_text(encoding="utf-8")
+    assert "<h2>Languages</h2>" in html and "<td>sw</td>" in html
     summary = json.loads((demo_build / "report" / "summary.json").read_text(encoding="utf-8"))
     assert sorted(summary["languages"]) == ["en", "sw"]
     assert summary["languages"]["en"]["oov_rate"] < 0.3 and summary["languages"]["sw"]["oov_rate"] is None
+
+
+def test_loam_languages_lists_both_engines(capsys: pytest.CaptureFixture[str]) -> None:
+    from pipeline.commands.cli import main
+
+    assert main(["languages"]) == 0
+    listing = capsys.readouterr().out
+    assert "espeak   espeakng-loader" in listing and "epitran  epitran" in listing
+    assert " sw " in listing and "yor-Latn" in listing and "sw -> epitran:swa-Latn" in listing
