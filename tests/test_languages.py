@@ -399,3 +399,11 @@ def test_loam_languages_lists_both_engines(capsys: pytest.CaptureFixture[str]) -
     listing = capsys.readouterr().out
     assert "espeak   espeakng-loader" in listing and "epitran  epitran" in listing
     assert " sw " in listing and "yor-Latn" in listing and "sw -> epitran:swa-Latn" in listing
+
+
+def test_grapheme_letters_get_no_phone_class(tmp_path: Path) -> None:
+    from pipeline.stages.inventory import build_inventory
+
+    # "c" is an IPA symbol (a voiceless palatal stop) but, as a grapheme, not a phone.
+    rows = build_inventory([(["c", "a", "t"], 1.0)], boundary="", known={}, classify=False)
+    assert [r["class"] for r in rows] == ["", "", ""]

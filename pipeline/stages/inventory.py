@@ -4,7 +4,8 @@ One row per symbol used in the labelled and held-out phones (and the word-bounda
 symbol when configured): ``symbol``, ``id``, ``count`` (occurrences), ``seconds`` (each
 clip's duration shared equally among its phones, summed; 0 for the boundary) and
 ``class`` (``vowel`` or ``consonant`` from panphon's feature table for an IPA segment,
-``boundary`` for the word boundary, empty for other symbol sets such as ARPAbet).
+``boundary`` for the word boundary, empty for other symbol sets such as ARPAbet, and
+for the graphemes backend's letters, which are not phones).
 
 Models bind their output layer to the ids, so a rebuild keeps every id it has seen: the
 ids are recorded beside the split ledger (``<ledger stem>.inventory.tsv``, the same
@@ -53,16 +54,18 @@ def read_ids(path: Path) -> dict[str, int]:
     return ids
 
 
-def _class(symbol: str, boundary: str) -> str:
+def _class(symbol: str, boundary: str, classify: bool) -> str:
     if boundary and symbol == boundary:
         return "boundary"
+    if not classify:
+        return ""
     from pipeline.text.ipa import feature_table, phone_class, table_units
 
     return phone_class(symbol) if table_units(symbol) in feature_table() else ""
 
 
 def build_inventory(clips: list[tuple[list[str], float]], *, boundary: str,
-                    known: dict[str, int]) -> list[dict[str, Any]]:
+                    known: dict[str, int], classify: bool = True) -> list[dict[str, Any]]:
     """Rows of the inventory for clips given as (phones, duration_s).
 
     Examples
@@ -82,7 +85,7 @@ def build_inventory(clips: list[tuple[list[str], float]], *, boundary: str,
     for symbol in sorted(set(counts) - set(ids)):
         ids[symbol] = max(ids.values(), default=-1) + 1
     return [{"symbol": s, "id": i, "count": counts.get(s, 0), "seconds": round(math.fsum(seconds.get(s, [])), 3),
-             "class": _class(s, boundary)} for s, i in sorted(ids.items(), key=lambda kv: kv[1])]
+             "class": _class(s, boundary, classify)} for s, i in sorted(ids.items(), key=lambda kv: kv[1])]
 
 
 def format_inventory(rows: list[dict[str, Any]]) -> str:
@@ -92,10 +95,14 @@ def format_inventory(rows: list[dict[str, Any]]) -> str:
 
 
 def write_inventory(out: Path, ledger_path: Path, clips: list[tuple[list[str], float]], *,
-                    boundary: str) -> list[dict[str, Any]]:
-    """Write ``OUT/lexicon/inventory.tsv`` and its record beside the ledger; return the rows."""
+                    boundary: str, classify: bool = True) -> list[dict[str, Any]]:
+    """Write ``OUT/lexicon/inventory.tsv`` and its record beside the ledger; return the rows.
+
+    ``classify=False`` (the graphemes backend, whose letters are not phones) leaves
+    ``class`` empty but for the boundary.
+    """
     record = ids_path(ledger_path)
-    rows = build_inventory(clips, boundary=boundary, known=read_ids(record))
+    rows = build_inventory(clips, boundary=boundary, known=read_ids(record), classify=classify)
     text = format_inventory(rows)
     write_text_atomic(out / INVENTORY, text)
     write_text_atomic(record, text)

@@ -859,7 +859,8 @@ def run(ctx: StageContext) -> StageResult:
         "group_by": sc.group_by, "seed": str(cfg.seed), "heldout": sc.heldout,
         "budgets": ",".join(b for b, _ in budgets) or "-", "selection": sc.selection})
     write_ledger(use.path, new_ledger)
-    write_inventory(ctx.out, use.path, subset_phones(tables), boundary=cfg.text.word_boundary)
+    write_inventory(ctx.out, use.path, subset_phones(tables), boundary=cfg.text.word_boundary,
+                    classify=cfg.text.backend != "graphemes")
     changes = _changes(ledger, assignment, present)
     changes["gone_sources"] = sum(state == "gone" for state in new_ledger.sources.values())
     changes["returned_sources"] = sum(ledger.sources.get(k) == "gone" for k in sources) if ledger else 0
