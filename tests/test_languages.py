@@ -308,15 +308,18 @@ def _prepare(raw: Path, out: Path, config_text: str) -> None:
 
 def test_a_swahili_dump_end_to_end(tmp_path: Path) -> None:
     from pipeline.commands.report import build_summary
-    from pipeline.commands.validate import validate_out
+    from pipeline.commands.validate import format_table, validate_out
 
     raw = _swahili_raw(tmp_path)
     split = '[split]\nheldout = "0%"\nlabelled_budgets = ["1s"]\nledger = "ledger.tsv"\n'
     # The English default on a Swahili dump: validate warns with the figure, the report shows it.
     (tmp_path / "en").mkdir()
     _prepare(raw, tmp_path / "en" / "out", split)
-    warned = [p for p in validate_out(tmp_path / "en" / "out").problems if p.check == "language_oov"]
+    result = validate_out(tmp_path / "en" / "out")
+    warned = [p for p in result.problems if p.check == "language_oov"]
     assert len(warned) == 1 and "do not look like 'en'" in warned[0].found
+    assert result.languages["en"]["oov_rate"] > 0.3 and result.to_json()["languages"] == result.languages
+    assert "languages: en 6 clips, OOV " in format_table(result).splitlines()[-2]
     assert build_summary(tmp_path / "en" / "out")["languages"]["en"]["oov_rate"] > 0.3
     # Set to Swahili: IPA phones from the rule engine, number words from the table, no warning.
     (tmp_path / "sw").mkdir()

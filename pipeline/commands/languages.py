@@ -16,7 +16,7 @@ import pyarrow as pa
 from pipeline.core.manifest import Problem
 from pipeline.text.guard import WRONG_LANGUAGE_OOV_SHARE, oov_rate, wrong_language_sentence
 
-__all__ = ["check_language_oov", "language_rates", "languages_listing"]
+__all__ = ["check_language_oov", "language_rates", "languages_line", "languages_listing"]
 
 _DICTIONARY_SOURCES = {"cmudict": "english", "neural": "english", "lexicon": "lexicon"}
 
@@ -47,6 +47,23 @@ def language_rates(text: pa.Table | None) -> dict[str, dict[str, Any]]:
         rate = oov_rate(info["word_tokens"], info["oov_word_tokens"])
         info["oov_rate"] = None if rate is None else round(rate, 4)
     return dict(sorted(out.items()))
+
+
+def languages_line(rates: dict[str, dict[str, Any]]) -> str:
+    """One line for ``loam validate``: each language's clips and OOV rate.
+
+    Examples
+    --------
+    >>> print(languages_line({"en": {"clips": 16, "word_tokens": 155, "oov_word_tokens": 2, "oov_rate": 0.0129},
+    ...                       "sw": {"clips": 3, "word_tokens": 0, "oov_word_tokens": 0, "oov_rate": None}}))
+    languages: en 16 clips, OOV 1.3 % of 155 word tokens; sw 3 clips, no dictionary (no OOV rate)
+    """
+    parts = []
+    for tag, x in rates.items():
+        rate = ("no dictionary (no OOV rate)" if x["oov_rate"] is None
+                else f"OOV {100 * x['oov_rate']:.1f} % of {x['word_tokens']} word tokens")
+        parts.append(f"{tag} {x['clips']} clips, {rate}")
+    return "languages: " + "; ".join(parts)
 
 
 def check_language_oov(text: pa.Table | None) -> list[Problem]:

@@ -19,7 +19,7 @@ import os
 import re
 import time
 from collections.abc import Callable, Iterable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -28,7 +28,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from pipeline.commands.languages import check_language_oov
+from pipeline.commands.languages import check_language_oov, language_rates, languages_line
 from pipeline.core.config import Config, build_config, parse_duration_s
 from pipeline.core.errors import ConfigError, ManifestError, UsageError
 from pipeline.core.manifest import (
@@ -75,6 +75,8 @@ class ValidationResult:
     problems: list[Problem]
     rows_checked: int
     seconds: float
+    # Per language of stages/text.parquet: clips, word tokens, OOV tokens and rate.
+    languages: dict[str, dict[str, Any]] = field(default_factory=dict)
 
     @property
     def errors(self) -> int:
@@ -96,6 +98,7 @@ class ValidationResult:
             "problems": [p.to_json() for p in self.problems],
             "rows_checked": self.rows_checked,
             "seconds": round(self.seconds, 3),
+            "languages": self.languages,
         }
 
 
@@ -166,6 +169,8 @@ def format_table(result: ValidationResult) -> str:
         for r in [header, *rows]:
             lines.append("  ".join(r[i].ljust(widths[i]) for i in range(4)) + "  " + r[4])
         lines.insert(1, "  ".join("-" * w for w in widths) + "  " + "-" * len("expected"))
+    if result.languages:
+        lines.append(languages_line(result.languages))
     verdict = "clean" if not result.problems else ("FAILED" if result.errors else "passed with warnings")
     lines.append(
         f"{verdict}: {result.errors} error{'s' * (result.errors != 1)}, "
@@ -1021,4 +1026,5 @@ def validate_out(out: Path, *, deep: bool = False, audio_files: bool = True) -> 
                                     _clip(f"the check could not run: {type(exc).__name__}: {exc}", 200),
                                     "manifests this check can read"))
     problems.sort(key=lambda p: p.severity != "error")
-    return ValidationResult(str(out), problems, read.rows, time.perf_counter() - start)
+    return ValidationResult(str(out), problems, read.rows, time.perf_counter() - start,
+                            languages=language_rates(read.stages.get("text")))
