@@ -410,3 +410,16 @@ def test_grapheme_letters_get_no_phone_class(tmp_path: Path) -> None:
     # "c" is an IPA symbol (a voiceless palatal stop) but, as a grapheme, not a phone.
     rows = build_inventory([(["c", "a", "t"], 1.0)], boundary="", known={}, classify=False)
     assert [r["class"] for r in rows] == ["", "", ""]
+
+
+def test_abbreviations_per_language(tmp_path: Path) -> None:
+    # The built-in English list ("dr." -> "doctor") never reaches a Swahili transcript;
+    # a Swahili list does, and only there.
+    transcripts = {"a": "Bw. Juma ni dr. wa kijiji.", "b": "Dr. Okapi met Bw. Juma."}
+    result, table = run_stage(tmp_path, {"a": transcripts["a"]}, language="sw",
+                              language_abbreviations={"sw": {"bw.": "bwana"}})
+    (row,) = table.to_pylist()
+    assert row["norm_text"] == "bwana juma ni dr wa kijiji"
+    result, table = run_stage(tmp_path, {"b": transcripts["b"]}, language_abbreviations={"sw": {"bw.": "bwana"}})
+    (row,) = table.to_pylist()
+    assert row["words"][:3] == ["doctor", "okapi", "met"] and "bwana" not in row["words"]

@@ -88,6 +88,7 @@ class TextConfig:
     alphabet: str
     verbalise_numbers: bool
     abbreviations: tuple[tuple[str, str], ...]
+    language_abbreviations: tuple[tuple[str, tuple[tuple[str, str], ...]], ...]
     language: str
     engines: tuple[tuple[str, str], ...]
     keep_tone: bool
@@ -228,7 +229,7 @@ SECTIONS = {
 
 
 # Config tables (string to string) kept as sorted tuples of pairs in the frozen dataclasses.
-_TABLES = frozenset({"abbreviations", "engines", "number_words"})
+_TABLES = frozenset({"abbreviations", "engines", "number_words", "language_abbreviations"})
 
 
 def canonical_json(data: Any) -> bytes:

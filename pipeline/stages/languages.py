@@ -5,7 +5,8 @@ A transcript's language is ``text.language``, or the cell of the metadata table'
 means ``text.language``). Every language gets its own :class:`LanguageTools`: the
 pronouncer (``text.backend``; ``auto`` is the english backend for English and the rules
 backend for any other language), the normalisation options (the built-in abbreviation
-list and spelled initialisms for English only) and, for a language other than English,
+list and spelled initialisms for English only, ``text.abbreviations`` for every language,
+``text.language_abbreviations`` for its own) and, for a language other than English,
 the number reader of :mod:`pipeline.text.numbers` (never English number words).
 """
 
@@ -171,6 +172,8 @@ class Toolbox:
         if not english:
             options.update(verbalise_numbers=False, spell_initialisms=False, is_known=None,
                            abbreviations=dict(cfg.abbreviations))
+        own = {k: dict(v) for k, v in cfg.language_abbreviations}
+        options["abbreviations"] = {**options["abbreviations"], **own.get(tag, own.get(tag.split("-")[0], {}))}
         tables = {k: dict(v) for k, v in cfg.number_words}
         numbers = None if english else NumberReader(tag, tables.get(tag, tables.get(tag.split("-")[0], {})))
         return LanguageTools(tag, backend, pronouncer, options, numbers, replace(cfg, backend=backend))
