@@ -22,30 +22,37 @@ _DICTIONARY_SOURCES = {"cmudict": "english", "neural": "english", "lexicon": "le
 
 
 def language_rates(text: pa.Table | None) -> dict[str, dict[str, Any]]:
-    """Per language of ``stages/text.parquet``: clips, word tokens, OOV tokens, rate, backend.
+    """Per language of ``stages/text.parquet``: clips, word tokens, the sources of their
+    pronunciations, and the OOV rate over the tokens a dictionary backend looked up.
 
     Examples
     --------
-    >>> t = pa.table({"language": ["en"], "words": [["a", "zorb"]], "oov_words": [["zorb"]],
-    ...               "word_backends": [["cmudict", "neural"]]})
-    >>> language_rates(t)["en"]["oov_rate"]
-    0.5
+    >>> t = pa.table({"language": ["en", "sw"], "words": [["a", "zorb"], ["chai"]], "oov_words": [["zorb"], []],
+    ...               "word_backends": [["cmudict", "neural"], ["rules"]]})
+    >>> rates = language_rates(t)
+    >>> rates["en"]["oov_rate"], rates["sw"]["oov_rate"], rates["sw"]["sources"]
+    (0.5, None, ['rules'])
     """
     if text is None or "language" not in text.column_names:
         return {}
     out: dict[str, dict[str, Any]] = {}
+    sources: dict[str, set[str]] = {}
     for row in text.select(["language", "words", "oov_words", "word_backends"]).to_pylist():
-        info = out.setdefault(row["language"], {"clips": 0, "word_tokens": 0, "oov_word_tokens": 0, "backend": None})
+        info = out.setdefault(row["language"], {"clips": 0, "word_tokens": 0, "dictionary_word_tokens": 0,
+                                                "oov_word_tokens": 0, "backend": None})
         info["clips"] += 1
+        info["word_tokens"] += len(row["words"])
         oov = set(row["oov_words"])
         for word, source in zip(row["words"], row["word_backends"], strict=True):
-            if source in _DICTIONARY_SOURCES or (source == "override" and info["backend"]):
-                info["backend"] = info["backend"] or _DICTIONARY_SOURCES.get(source)
-                info["word_tokens"] += 1
+            sources.setdefault(row["language"], set()).add(source)
+            if source in _DICTIONARY_SOURCES:
+                info["backend"] = info["backend"] or _DICTIONARY_SOURCES[source]
+                info["dictionary_word_tokens"] += 1
                 info["oov_word_tokens"] += word in oov
-    for info in out.values():
-        rate = oov_rate(info["word_tokens"], info["oov_word_tokens"])
+    for tag, info in out.items():
+        rate = oov_rate(info["dictionary_word_tokens"], info["oov_word_tokens"])
         info["oov_rate"] = None if rate is None else round(rate, 4)
+        info["sources"] = sorted(sources.get(tag, ()))
     return dict(sorted(out.items()))
 
 
@@ -54,14 +61,14 @@ def languages_line(rates: dict[str, dict[str, Any]]) -> str:
 
     Examples
     --------
-    >>> print(languages_line({"en": {"clips": 16, "word_tokens": 155, "oov_word_tokens": 2, "oov_rate": 0.0129},
-    ...                       "sw": {"clips": 3, "word_tokens": 0, "oov_word_tokens": 0, "oov_rate": None}}))
+    >>> print(languages_line({"en": {"clips": 16, "dictionary_word_tokens": 155, "oov_rate": 0.0129},
+    ...                       "sw": {"clips": 3, "dictionary_word_tokens": 0, "oov_rate": None}}))
     languages: en 16 clips, OOV 1.3 % of 155 word tokens; sw 3 clips, no dictionary (no OOV rate)
     """
     parts = []
     for tag, x in rates.items():
         rate = ("no dictionary (no OOV rate)" if x["oov_rate"] is None
-                else f"OOV {100 * x['oov_rate']:.1f} % of {x['word_tokens']} word tokens")
+                else f"OOV {100 * x['oov_rate']:.1f} % of {x['dictionary_word_tokens']} word tokens")
         parts.append(f"{tag} {x['clips']} clips, {rate}")
     return "languages: " + "; ".join(parts)
 
@@ -70,7 +77,7 @@ def check_language_oov(text: pa.Table | None) -> list[Problem]:
     """A warning per language whose OOV share is above the threshold."""
     problems = []
     for tag, info in language_rates(text).items():
-        sentence = wrong_language_sentence(tag, info["backend"] or "dictionary", info["word_tokens"],
+        sentence = wrong_language_sentence(tag, info["backend"] or "dictionary", info["dictionary_word_tokens"],
                                            info["oov_word_tokens"])
         if sentence:
             problems.append(Problem("warning", "language_oov", "stages/text.parquet", None, "oov_words", sentence,

@@ -714,9 +714,9 @@ def _phones_html(s: dict[str, Any], clips: pd.DataFrame, figures: dict[str, str 
         f"{' from ' + esc(p['inventory_source']) if p['inventory_source'] else ''}.</p>",
         _img(figures.get("phones"), "Phone frequency in labelled"),
         "<h2>Languages</h2>",
-        table(["language", "transcribed clips", "backend", "word tokens", "OOV rate"],
-              [[tag, x["clips"], x["backend"] or "rules or graphemes (no dictionary)", x["word_tokens"],
-                "" if x["oov_rate"] is None else f"{100 * x['oov_rate']:.1f} %"]
+        table(["language", "transcribed clips", "word tokens", "pronounced by", "OOV rate"],
+              [[tag, x["clips"], x["word_tokens"], ", ".join(x["sources"]),
+                "no dictionary" if x["oov_rate"] is None else f"{100 * x['oov_rate']:.1f} %"]
                for tag, x in s.get("languages", {}).items()]),
         "<h2>Sample of labelled clips</h2>",
         table(["clip", "speaker", "duration (s)", "transcript", "phones"],
