@@ -43,7 +43,9 @@ def language_rates(text: pa.Table | None) -> dict[str, dict[str, Any]]:
         info["clips"] += 1
         info["word_tokens"] += len(row["words"])
         oov = set(row["oov_words"])
-        for word, source in zip(row["words"], row["word_backends"], strict=True):
+        # A row whose lists disagree in length is counted as far as they agree: this
+        # measure reports, other checks judge the rows.
+        for word, source in zip(row["words"], row["word_backends"], strict=False):
             sources.setdefault(row["language"], set()).add(source)
             if source in _DICTIONARY_SOURCES:
                 info["backend"] = info["backend"] or _DICTIONARY_SOURCES[source]
