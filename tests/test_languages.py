@@ -25,6 +25,7 @@ from pipeline.text.ipa import InvalidPhone, feature_table, phone_class, segment
 from pipeline.text.normalise import normalise
 from pipeline.text.numbers import NumberReader
 from pipeline.text.rules import RulePhones
+from tests.conftest import DEMO
 from tests.test_text_stage import REPO, clip, run_stage
 
 
@@ -423,3 +424,37 @@ def test_abbreviations_per_language(tmp_path: Path) -> None:
     result, table = run_stage(tmp_path, {"b": transcripts["b"]}, language_abbreviations={"sw": {"bw.": "bwana"}})
     (row,) = table.to_pylist()
     assert row["words"][:3] == ["doctor", "okapi", "met"] and "bwana" not in row["words"]
+
+
+def test_inventory_ids_are_kept_when_new_audio_arrives(tmp_path: Path) -> None:
+    # Invariant of issue 16's inventory: a rebuild after new audio keeps every existing id
+    # and appends new symbols after them. The demo is prepared without its Swahili
+    # speaker, then again once that speaker's recordings arrive.
+    import shutil
+
+    from pipeline.core.config import load_config
+    from pipeline.core.runner import Runner
+    from pipeline.stages import STAGES
+
+    raw = tmp_path / "raw"
+    shutil.copytree(DEMO, raw)
+    arriving = tmp_path / "egret"
+    shutil.move(raw / "egret", arriving)
+    out = tmp_path / "out"
+
+    def ids() -> dict[str, int]:
+        lines = (out / "lexicon" / "inventory.tsv").read_text(encoding="utf-8").splitlines()
+        header = lines[0].split("\t")
+        rows = [dict(zip(header, line.split("\t"), strict=True)) for line in lines[1:]]
+        return {r["symbol"]: int(r["id"]) for r in rows}
+
+    config = load_config(raw / "corpus.toml")
+    Runner(raw, out, config, stages=STAGES, workers=1).prepare()
+    before = ids()
+    shutil.move(arriving, raw / "egret")
+    Runner(raw, out, config, stages=STAGES, workers=1).prepare()
+    after = ids()
+    assert {s: after[s] for s in before} == before
+    added = sorted(after[s] for s in after if s not in before)
+    assert added, "the Swahili clips brought no new symbol; the test would prove nothing"
+    assert added == list(range(max(before.values()) + 1, max(before.values()) + 1 + len(added)))
