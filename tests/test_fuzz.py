@@ -38,6 +38,7 @@ import numpy as np
 import pyarrow.parquet as pq
 import soundfile as sf
 
+from demo_corpus.generate import set_ogg_serial
 from pipeline.core.manifest import check_table, read_metadata
 from tests.conftest import speechlike, tree_hash
 
@@ -86,33 +87,9 @@ def reproducible(data: bytes, fmt: str) -> bytes:
         at = riff_chunks(data)[b"PEAK"][0] + 4  # the chunk's data: version, then timestamp
         out[at + 4:at + 8] = bytes(4)
     if fmt == "OGG":
-        for start, end in ogg_pages(data):
-            out[start + 14:start + 18] = b"loam"  # the stream serial number
-            out[start + 22:start + 26] = bytes(4)
-            out[start + 22:start + 26] = struct.pack("<I", ogg_crc(bytes(out[start:end])))
+        # The serial reads "loam"; the generator's helper also recomputes each page's CRC.
+        out = bytearray(set_ogg_serial(bytes(out), serial=int.from_bytes(b"loam", "little")))
     return bytes(out)
-
-
-def _ogg_crc_table() -> list[int]:
-    table = []
-    for i in range(256):
-        r = i << 24
-        for _ in range(8):
-            r = ((r << 1) ^ 0x04C11DB7) if r & 0x80000000 else r << 1
-        table.append(r & 0xFFFFFFFF)
-    return table
-
-
-_OGG_CRC = _ogg_crc_table()
-
-
-def ogg_crc(page: bytes) -> int:
-    """The Ogg page checksum: CRC-32 with polynomial 0x04C11DB7, initial value 0, not
-    reflected, over the page with its checksum field zeroed (RFC 3533, section 6)."""
-    crc = 0
-    for byte in page:
-        crc = ((crc << 8) & 0xFFFFFFFF) ^ _OGG_CRC[((crc >> 24) ^ byte) & 0xFF]
-    return crc
 
 
 # --------------------------------------------------------------------------- container layouts
