@@ -71,6 +71,7 @@ def _subset_columns(name: str, clip_ids: list[str], speaker_ids: list[str], audi
         "loudness_lufs": [-23.0] * n,
         "loudness_in_lufs": [-30.0] * n,
         "transcript": [f"the cat {c}" if transcribed else None for c in clip_ids],
+        "transcript_origin": ["sidecar" if transcribed else None for _ in clip_ids],
         "norm_text": [f"the cat {c}" if transcribed else None for c in clip_ids],
         "phones": [PHONES if transcribed else None for _ in clip_ids],
         "subset": [name] * n,

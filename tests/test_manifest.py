@@ -152,6 +152,7 @@ def test_columnar_checker_agrees_with_jsonschema(rows: list[dict]) -> None:
     "word_backends": st.lists(st.sampled_from(["cmudict", "neural", "oops"]), max_size=3),
     "oov_words": st.lists(st.text(max_size=2), max_size=2),
     "language": st.sampled_from(["en", "sw", "EN", ""]),
+    "transcript_origin": st.sampled_from(["sidecar", "review", "typed"]),
 }), max_size=8))
 def test_list_columns_agree_with_jsonschema(rows: list[dict]) -> None:
     table = table_from_rows("text", rows)

@@ -20,3 +20,10 @@ def test_subset_column_enum_is_the_subsets() -> None:
     props = json.loads((SCHEMAS / "subset.schema.json").read_text())["properties"]
     assert set(props["subset"]["enum"]) == set(names.SUBSETS)
     assert set(props["quality_flags"]["items"]["enum"]) == set(names.FLAGS)
+
+
+def test_transcript_origins_are_the_text_and_subset_enums() -> None:
+    text = json.loads((SCHEMAS / "text.schema.json").read_text())["properties"]["transcript_origin"]
+    subset = json.loads((SCHEMAS / "subset.schema.json").read_text())["properties"]["transcript_origin"]
+    assert text["enum"] == list(names.TRANSCRIPT_ORIGINS)
+    assert subset["enum"] == [*names.TRANSCRIPT_ORIGINS, None]

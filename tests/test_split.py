@@ -90,6 +90,7 @@ class Corpus:
             self.text.append({
                 "clip_id": cid, "transcript": f"words of {cid}", "norm_text": f"words of {cid}",
                 "words": ["words", "of", cid], "phones": phones, "word_backends": ["cmudict"] * 3, "oov_words": [], "language": "en",
+                "transcript_origin": "sidecar",
             })
         return cid
 

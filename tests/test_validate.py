@@ -82,6 +82,7 @@ def clip_row(out: Path, *, clip_id: str, speaker: str, subset: str, freq_hz: flo
         "source_start_s": 0.0, "source_end_s": audio["duration_s"],
         "loudness_in_lufs": audio["loudness_lufs"] - 6.0,
         "transcript": None if text is None else text.capitalize() + ".",
+        "transcript_origin": None if text is None else "sidecar",
         "norm_text": text, "phones": None if text is None else cmu_phones(text),
         "subset": subset, "tiers": list(tiers), "speech_ratio": 0.9, "snr_db": 35.0,
         "bandwidth_hz": 7800.0, "clipped_fraction": 0.0, "speaking_rate": None if text is None else 5.0,
@@ -458,7 +459,7 @@ def test_stressed_phones_and_word_boundary_follow_the_config(out: Out) -> None:
 def test_inventory_comes_from_the_text_stage_when_present(out: Out) -> None:
     rows = [{"clip_id": r["clip_id"], "transcript": r["transcript"], "norm_text": r["norm_text"],
              "words": r["norm_text"].split(), "phones": r["phones"], "word_backends": ["cmudict"],
-             "oov_words": [], "language": "en"} for r in out.rows["labelled"] if r["clip_id"] != "b2-0000000004"]
+             "oov_words": [], "language": "en", "transcript_origin": "sidecar"} for r in out.rows["labelled"] if r["clip_id"] != "b2-0000000004"]
     write_table(out.root, "stages/text.parquet", table_from_rows("text", rows), "")
     # Clip b2 ("ten fish swim") brings phones the text stage never produced, e.g. SH.
     problems = out.validate()

@@ -28,8 +28,12 @@ REASONS = (
     "file_name_encoding", "non_finite_samples", "out_of_range_samples", "upsampled",
     "too_long_transcribed", "no_speech", "clipped", "too_short", "loudness_unmeasurable",
     "empty_transcript", "unpronounceable", "bad_characters", "oov", "unreadable_number", "noisy",
-    "invalid_measurement",
+    "invalid_measurement", "review_excluded", "review_transcript_wrong",
 )
+
+# Where a transcript came from (the `transcript_origin` of the text and subset manifests):
+# a sidecar file, the metadata table, or a fix recorded by `loam review`.
+TRANSCRIPT_ORIGINS = ("sidecar", "metadata", "review")
 
 # Files under OUT.
 REJECTED = "manifests/rejected.parquet"

@@ -64,6 +64,7 @@ from pipeline.stages.ledger import (
     source_key,
     write_ledger,
 )
+from pipeline.stages.review_apply import decisions_file, log_tally, split_exclusions
 from pipeline.stages.selection import Candidate, TierOutcome, TierPlan, fill_tiers
 
 NAME = "split"
@@ -71,7 +72,7 @@ NAME = "split"
 
 def extra_inputs(ctx: StageContext) -> list[Path]:
     ledger = locate_ledger(ctx.config, raw=ctx.raw, out=ctx.out)[0]
-    return [ledger, ids_path(ledger)]
+    return [ledger, ids_path(ledger), decisions_file(ctx)]
 
 
 def reuse_note(summary: dict[str, Any]) -> str:
@@ -619,6 +620,7 @@ def _subset_row(c: Clip, subset: str, tiers: tuple[str, ...], *, keep_text: bool
         "snr_db": _finite(a["snr_db"]),
         "bandwidth_hz": _finite(a["bandwidth_hz"]),
         "transcript": text["transcript"] if text else None,
+        "transcript_origin": text["transcript_origin"] if text else None,
         "norm_text": text["norm_text"] if text else None,
         "phones": list(text["phones"]) if text else None,
         "subset": subset,
@@ -840,7 +842,10 @@ def run(ctx: StageContext) -> StageResult:
     clips, pairs = build_clips(joined, cfg)
     orphans = joined.orphans
     del joined
-    rejects, kept = _gate_rejects(clips, cfg)
+    # Clips excluded at review are set aside first: the reviewer's reason is the one recorded.
+    rejects, excluded, review, review_path = split_exclusions(ctx, clips)
+    gate_rejects, kept = _gate_rejects([c for c in clips if c.clip_id not in excluded], cfg)
+    rejects += gate_rejects
     eligible_s, target_s = _heldout_target(ctx, kept)
     sources = {source_key(c.audio["source_id"]) for c in clips}
     use = _open_ledger(ctx, sources)
@@ -872,6 +877,8 @@ def run(ctx: StageContext) -> StageResult:
                                  for g in gates.GATES if "reject" in gates.ACTIONS[g]})
     summary["changes"] = changes
     summary["shortfalls"] = shortfalls
+    summary["review"] = review.summary(review_path)
+    log_tally(ctx, NAME, review)
     # Inside OUT the path is given from OUT, so the summary does not change with where OUT is.
     shown = use.path.relative_to(ctx.out) if use.path.is_relative_to(ctx.out) else use.path
     summary["ledger"] = {"path": str(shown), "where": use.where, "read": ledger is not None, "fresh": use.fresh}

@@ -53,6 +53,16 @@ from pipeline.stages.languages import (
     rule_phones,
     warn_wrong_language,
 )
+from pipeline.stages.review_apply import (
+    TextPlan,
+    count_fixes,
+    count_words,
+    decisions_file,
+    log_tally,
+    merged_override,
+    plan_text,
+    review_items,
+)
 from pipeline.text.characters import describe_characters, grapheme_units
 from pipeline.text.lexicon import read_lexicon
 from pipeline.text.neural import neural_cache_name
@@ -76,9 +86,11 @@ def _lexicon_paths(config: Config) -> dict[str, Path]:
 
 def extra_inputs(ctx: StageContext) -> list[Path]:
     """Files besides the ingest manifest whose content changes this stage's output
-    (the lexicons, and the metadata table when its language column is read)."""
+    (the lexicons, the metadata table when its language column is read, and the review
+    decisions)."""
     table = metadata_table(ctx.config, ctx.raw)
-    return sorted([*_lexicon_paths(ctx.config).values(), *([table] if table is not None else [])])
+    return sorted([*_lexicon_paths(ctx.config).values(), *([table] if table is not None else []),
+                   decisions_file(ctx)])
 
 
 def written_files(out: Path, table: object) -> list[str]:
@@ -86,10 +98,14 @@ def written_files(out: Path, table: object) -> list[str]:
     return [PREDICTED_LEXICON]
 
 
-def build_pronouncer(config: Config, *, cache_dir: Path | None) -> Pronouncer:
-    """The Pronouncer for ``config.text``; lexicon files are read (UsageError if malformed)."""
+def build_pronouncer(config: Config, *, cache_dir: Path | None, review: TextPlan | None = None) -> Pronouncer:
+    """The Pronouncer for ``config.text``; lexicon files are read (UsageError if malformed);
+    ``review`` adds the reviewed pronunciations of ``config.text.language`` to the override."""
     cfg = config.text
     paths = _lexicon_paths(config)
+    override = read_lexicon(paths["override_lexicon"]) if "override_lexicon" in paths else {}
+    if review is not None:
+        override = merged_override(review, cfg.language, override)
     cache_path = None
     if cfg.resolved_backend == "english" and cache_dir is not None:
         cache_path = cache_dir / "g2p" / neural_cache_name(code_version=code_version(NAME, cache_dir=cache_dir))
@@ -97,7 +113,7 @@ def build_pronouncer(config: Config, *, cache_dir: Path | None) -> Pronouncer:
         backend=cfg.resolved_backend,
         rules=rule_phones(cfg),
         lexicon=read_lexicon(paths["lexicon"]) if "lexicon" in paths else None,
-        override=read_lexicon(paths["override_lexicon"]) if "override_lexicon" in paths else None,
+        override=override or None,
         oov=cfg.oov,
         alphabet=cfg.alphabet,
         keep_stress=cfg.keep_stress,
@@ -196,16 +212,17 @@ def process_transcript(source: str, transcript: str, *, pronouncer: Pronouncer, 
 def run(ctx: StageContext) -> StageResult:
     cfg = ctx.config.text
     cache_dir = ctx.cache_dir if ctx.use_cache else None
-    toolbox = Toolbox(ctx.config, make_pronouncer=lambda text_cfg: build_pronouncer(
-        replace(ctx.config, text=text_cfg), cache_dir=cache_dir), make_options=normalise_options)
-    pronouncer = toolbox.get(cfg.language).pronouncer  # ParameterError: no engine for text.language
-    ingest = ctx.inputs["ingest"].select(["source_id", "source_path", "transcript", "transcript_origin",
+    ingest = ctx.inputs["ingest"].select(["source_id", "source_path", "sha256", "transcript", "transcript_origin",
                                           "metadata_line"]).to_pylist()
-    items = sorted((r for r in ingest if r["transcript"] is not None), key=lambda r: r["source_id"])
+    review = plan_text(ctx, ingest)
+    toolbox = Toolbox(ctx.config, make_pronouncer=lambda text_cfg: build_pronouncer(
+        replace(ctx.config, text=text_cfg), cache_dir=cache_dir, review=review), make_options=normalise_options)
+    pronouncer = toolbox.get(cfg.language).pronouncer  # ParameterError: no engine for text.language
+    # Fixed transcripts replace the found ones; those marked wrong become rejects.
+    items, rejects = review_items(ingest, review)
     languages = file_languages(ctx, items)
 
     rows: list[dict[str, Any]] = []
-    rejects: list[dict[str, Any]] = []
     oov_counts: Counter[str] = Counter()
     oov_phones: dict[str, tuple[tuple[str, ...], str]] = {}
     for item in items:
@@ -220,7 +237,9 @@ def run(ctx: StageContext) -> StageResult:
             reason, detail = outcome.rejected
             rejects.append(reject(NAME, item["source_path"], reason, detail, clip_id=item["source_id"]))
         elif outcome.row is not None:
-            rows.append({"clip_id": item["source_id"], **outcome.row})
+            rows.append({"clip_id": item["source_id"], **outcome.row, "transcript_origin": item["origin"]})
+    count_fixes(review, {r["clip_id"]: r["reason"] for r in rejects})
+    count_words(review, {tag: tools.pronouncer.override for tag, tools in toolbox.tools.items()})
     # Before predicted.tsv is rewritten: it may itself be the override lexicon just read.
     metadata = _metadata(ctx.config, toolbox.get(cfg.language).pronouncer)
     metadata.update(language_metadata(toolbox))
@@ -231,9 +250,11 @@ def run(ctx: StageContext) -> StageResult:
         ctx.log.info("text: %d out-of-vocabulary words predicted with g2p-en, %d taken from the cache",
                      len(pronouncer.cache_misses), len(pronouncer.cache_hits))
     _write_predicted(ctx.out / PREDICTED_LEXICON, oov_counts, oov_phones, backend=cfg.backend)
-    summary = _summary(rows, rejects, len(items), cfg)
+    summary = _summary(rows, rejects, len(items) + len(review.wrong), cfg)
     summary.update(language_summary(rows, rejects, languages, toolbox))
     warn_wrong_language(summary["languages"], ctx.log)
+    summary["review"] = review.tally.summary(review.path)
+    log_tally(ctx, NAME, review.tally)
 
     rejects.sort(key=lambda r: (r["clip_id"], r["reason"]))
     return StageResult(
