@@ -134,6 +134,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("out", type=Path, metavar="OUT", nargs="?", help="a folder written by loam prepare")
     p.add_argument("--mapping", type=Path, metavar="FILE", help="the mapping file privacy.mapping_file names")
 
+    p = sub.add_parser("review", help="serve a local page to listen to flagged clips and record decisions",
+                       description="Serve a page on 127.0.0.1 listing the clips that need a person (flags, gates, "
+                       "near-duplicates, guessed pronunciations, rewritten transcripts, a spot-check sample). "
+                       "Decisions are appended to a file beside the split ledger; the next `loam prepare` applies "
+                       "them. The first line printed is the page's URL, with its access token.",
+                       epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("out", type=Path, metavar="OUT", help="a folder written by loam prepare")
+    p.add_argument("--port", type=int, default=0, metavar="N", help="port on 127.0.0.1 (default: any free port)")
+    p.add_argument("--spot-checks", type=int, default=20, metavar="N",
+                   help="ordinary labelled clips drawn at random (seeded by the build's seed) for spot checks")
+
     sub.add_parser("languages", help="list the languages and pronunciation engines of this install",
                    description="List the espeak-ng voices and epitran rule sets the rules backend can use.")
     return parser
@@ -246,6 +257,12 @@ def _cmd_locate(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_review(args: argparse.Namespace) -> int:
+    from pipeline.commands.review import serve
+
+    return serve(args.out, port=args.port, spot_checks=args.spot_checks)
+
+
 def _cmd_languages(args: argparse.Namespace) -> int:
     from pipeline.commands.languages import languages_listing
 
@@ -254,7 +271,7 @@ def _cmd_languages(args: argparse.Namespace) -> int:
 
 
 COMMANDS = {"prepare": _cmd_prepare, "stage": _cmd_stage, "validate": _cmd_validate, "report": _cmd_report,
-            "locate": _cmd_locate, "languages": _cmd_languages}
+            "locate": _cmd_locate, "languages": _cmd_languages, "review": _cmd_review}
 
 
 def main(argv: list[str] | None = None) -> int:
