@@ -9,6 +9,7 @@ with ``flatten``), and events are kept so a test can look for them afterwards.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import select
@@ -125,10 +126,8 @@ class Browser:
         path.write_bytes(base64.b64decode(self.page("Page.captureScreenshot", format="png")["data"]))
 
     def close(self) -> None:
-        try:
+        with contextlib.suppress(DevToolsError):
             self.command("Browser.close", timeout_s=5)
-        except DevToolsError:
-            pass
         try:
             self.proc.wait(timeout=10)
         except subprocess.TimeoutExpired:

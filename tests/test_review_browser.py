@@ -22,6 +22,7 @@ import soundfile as sf
 
 from pipeline.commands.validate import load_resolved_config
 from pipeline.core.names import REJECTED, SUBSETS, stage_manifest, stage_summary, subset_manifest
+from pipeline.stages.decisions import append_decision
 from pipeline.stages.gates import robust_z_scores
 from tests.conftest import DEMO, REPO
 from tests.devtools import Browser
@@ -166,6 +167,8 @@ def test_review_in_chromium_then_prepare_applies_the_decisions(build: tuple[Path
     assert json.loads(decisions[0]) == {"loam_review_decisions": 1} and len(decisions) == 4
 
     done = prepare(raw, out)
+    # Only the stages the decisions reach run again: audio is reused.
+    assert "audio  reused" in done.stderr and "text   running" in done.stderr
     assert "text: review decisions applied: 2 (1 fix_transcript, 1 pronunciation); not applied: 0" in done.stderr
     assert "split: review decisions applied: 1 (1 exclude); not applied: 0" in done.stderr
     after = rows(out)
@@ -203,3 +206,9 @@ def test_review_in_chromium_then_prepare_applies_the_decisions(build: tuple[Path
             assert after[cid]["rate_z"] == (None if np.isnan(z) else pytest.approx(float(z), rel=1e-12)), cid
     summary = json.loads((out / stage_summary("split")).read_text())["review"]
     assert summary["applied"] == {"exclude": 1} and summary["not_applied_total"] == 0
+
+    # A keep decision concerns the split stage alone: the text stage is reused.
+    append_decision(out / "ledger.decisions.jsonl", {"decision": "keep", "clip_id": others[0]})
+    done = prepare(raw, out)
+    assert "text   reused" in done.stderr
+    assert "split: review decisions applied: 2 (1 exclude, 1 keep); not applied: 0" in done.stderr

@@ -174,7 +174,7 @@ def test_lexicon_backend_review_loop(tmp_path: Path) -> None:
     assert "sha256=" in result.metadata["g2p.override_lexicon"]
     assert text.extra_inputs(StageContext(raw=tmp_path, out=tmp_path, config=build_config(
         {"text": {"override_lexicon": "reviewed.tsv", **config}}, base_dir=str(tmp_path)), inputs={}, workers=1)) \
-        == sorted([tmp_path / "reviewed.tsv", tmp_path / "tavuni.tsv", tmp_path / "ledger.decisions.jsonl"])
+        == sorted([tmp_path / "reviewed.tsv", tmp_path / "tavuni.tsv"])
 
 
 def test_override_pointing_at_predicted_tsv_itself(tmp_path: Path) -> None:

@@ -5,7 +5,8 @@ Private (never share): ``cache/`` (the per-file caches, which key on real paths,
 the private mapping from references back to RAW's names), ``logs/`` (a run's log names
 real files) and the run lock. Everything else under OUT is shareable in a pseudonymised
 build: manifests, stage manifests, rejects, summaries, the report, the lexicon files, the
-ledger, the resolved config and the clips.
+ledger and the review decisions beside it (``.jsonl``, read as text), the review page's
+spectrogram pictures, the resolved config and the clips.
 
 The check reads RAW's real names (speaker ids, folder names, file stems) from the
 private mapping the ingest stage wrote, and looks for each as a whole token (letters and
@@ -29,7 +30,7 @@ from pipeline.core.manifest import Problem
 from pipeline.stages.privacy import name_pattern, read_mapping, real_names
 
 PRIVATE_TOP = (names.CACHE, names.LOGS, names.LOCK)
-TEXT_SUFFIXES = (".json", ".html", ".tsv", ".md", ".txt", ".csv")
+TEXT_SUFFIXES = (".json", ".jsonl", ".html", ".tsv", ".md", ".txt", ".csv")
 # Columns holding the transcripts or what is derived from them (the user's words).
 TRANSCRIPT_COLUMNS = ("transcript", "norm_text", "words", "phones")
 TRANSCRIPT_FOLDERS = ("lexicon",)

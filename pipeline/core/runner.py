@@ -75,6 +75,8 @@ def inputs_sha256(out: Path, stage: Stage, ctx: StageContext, registry: StageReg
             digest.update(hashlib.sha256(Path(path).read_bytes()).digest())
         except FileNotFoundError:
             digest.update(b"<missing>")
+    if stage.extra_digest:
+        digest.update(b"digest\0" + hashlib.sha256(stage.extra_digest(ctx)).digest())
     return digest.hexdigest()
 
 

@@ -85,6 +85,11 @@ class Stage:
     extra_inputs : callable or None
         ``extra_inputs(ctx) -> list[Path]``: files besides the input manifests whose bytes
         join the input hash (a lexicon, the ledger); the no-change snapshot watches them.
+    extra_digest : callable or None
+        ``extra_digest(ctx) -> bytes``: what the stage reads of a file it shares with
+        others, when only part of it matters (the text stage's share of the review
+        decisions); the bytes join the input hash. The file itself must be in some
+        stage's ``extra_inputs``, so the snapshot watches it.
     written_files : callable or None
         ``written_files(out, table) -> list[str]``: files besides manifests the stage
         wrote (paths relative to OUT, like its clips), given its main manifest's table.
@@ -125,6 +130,7 @@ class Stage:
     run_when_options: tuple[str, ...] = ()
     inputs_after_run: bool = False
     extra_inputs: Callable[[StageContext], list[Path]] | None = None
+    extra_digest: Callable[[StageContext], bytes] | None = None
     written_files: Callable[[Path, pa.Table], list[str]] | None = None
     reuse_note: Callable[[dict[str, Any]], str] | None = None
     prepare_driver: Callable[[Config], None] | None = None
@@ -195,7 +201,7 @@ class Stage:
     def _check_callables(self) -> None:
         if not callable(self.run):
             self._fail(f"run={self.run!r}: expected a function run(ctx) -> StageResult")
-        for hook in ("extra_inputs", "written_files", "reuse_note", "prepare_driver"):
+        for hook in ("extra_inputs", "extra_digest", "written_files", "reuse_note", "prepare_driver"):
             value = getattr(self, hook)
             if value is not None and not callable(value):
                 self._fail(f"{hook}={value!r}: expected a function or None")

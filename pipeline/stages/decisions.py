@@ -23,8 +23,10 @@ no longer has, is reported as not applied (``audio_changed`` when a clip of the 
 source path is there, ``clip_gone`` otherwise); the text stage also compares the full
 hash. The text stage applies transcript and pronunciation decisions, the split stage
 keep and exclude; each stage's summary has a ``review`` entry counting what it applied
-and what it could not apply and why, and the text stage also counts the lines it could
-not read and the superseded ones, so every line is counted once.
+and what it could not apply and why, and the split stage also counts the lines it could
+not read and the superseded ones, so every line is counted once. The text stage's input
+hash covers only its share of the file (``extra_digest``), so a keep or an exclusion
+reruns the split stage alone.
 """
 
 from __future__ import annotations

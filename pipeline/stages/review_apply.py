@@ -9,8 +9,9 @@ and counts the clips kept as they are.
 
 from __future__ import annotations
 
+import json
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -53,23 +54,30 @@ class TextPlan:
     path: str = ""
 
 
+def text_decisions(ctx: StageContext) -> tuple[list[Decision], list[Decision]]:
+    """The decisions in force that the text stage applies: clip verdicts of its kinds, and
+    the pronunciations (sorted by language and word)."""
+    verdicts, words, _ = effective(read_decisions(decisions_file(ctx))[0])
+    return ([d for _, d in sorted(verdicts.items()) if d.decision in TEXT_KINDS],
+            [d for _, d in sorted(words.items())])
+
+
+def text_digest(ctx: StageContext) -> bytes:
+    """The text stage's share of the decisions file (its ``extra_digest``): a keep or an
+    exclusion appended to the file leaves it, and the text stage, as they were."""
+    verdicts, words = text_decisions(ctx)
+    return json.dumps([asdict(d) for d in (*verdicts, *words)], sort_keys=True, ensure_ascii=False).encode()
+
+
 def plan_text(ctx: StageContext, ingest: Sequence[Mapping[str, Any]]) -> TextPlan:
-    """Match the decisions file against the ingest rows: what the text stage will apply,
-    and (counted in its tally) every line it cannot apply, cannot read, or that a later
-    line superseded."""
-    path = decisions_file(ctx)
-    found, bad = read_decisions(path)
-    plan = TextPlan(path=shown_path(ctx, path))
-    for line, why in bad:
-        plan.tally.skip(None, "unreadable", f"line {line}: not applied: {why}")
-    verdicts, words, superseded = effective(found)
-    for d in superseded:
-        plan.tally.skip(d, "superseded", f"{d.decision} for {d.clip_id or d.word} replaced by a later decision")
+    """Match the text stage's decisions against the ingest rows: what it will apply, and
+    (counted in its tally) what it cannot apply. The split stage counts the lines nobody
+    could read and those a later line superseded."""
+    verdicts, words = text_decisions(ctx)
+    plan = TextPlan(path=shown_path(ctx, decisions_file(ctx)))
     by_id = {r["source_id"]: r for r in ingest}
     by_path = {r["source_path"]: r["source_id"] for r in ingest}
-    for d in verdicts.values():
-        if d.decision not in TEXT_KINDS:
-            continue
+    for d in verdicts:
         row = by_id.get(d.clip_id)
         if row is None:
             segment = d.clip_id.rsplit("_", 1)[0]
@@ -83,8 +91,8 @@ def plan_text(ctx: StageContext, ingest: Sequence[Mapping[str, Any]]) -> TextPla
                             "SHA-256 is not the one reviewed; review it again")
         else:
             (plan.fixes if d.decision == "fix_transcript" else plan.wrong)[d.clip_id] = d
-    for (language, word), d in sorted(words.items()):
-        plan.words.setdefault(language, {})[word] = d.phones
+    for d in words:
+        plan.words.setdefault(d.language, {})[d.word] = d.phones
         plan.word_decisions.append(d)
     return plan
 
@@ -149,14 +157,19 @@ def count_words(plan: TextPlan, overrides: Mapping[str, Mapping[str, tuple[str, 
 def split_exclusions(ctx: StageContext, clips: Sequence[Any]) -> tuple[list[dict[str, Any]], set[str], Tally,
                                                                        str]:
     """The split stage's share: a ``review_excluded`` reject per excluded clip (its
-    reason and note in the sentence), the excluded ids, the tally, and the file's path.
+    reason and note in the sentence), the excluded ids, the tally (with the lines that
+    could not be read and those superseded), and the file's path.
     ``clips`` have ``clip_id`` and ``audio`` (the audio row)."""
     path = decisions_file(ctx)
-    found, _ = read_decisions(path)
-    verdicts, _, _ = effective(found)
+    found, bad = read_decisions(path)
+    verdicts, _, superseded = effective(found)
     by_id = {c.clip_id: c for c in clips}
     by_path = {c.audio["source_path"]: c.clip_id for c in clips}
     tally, rejects, excluded = Tally(), [], set()
+    for line, why in bad:
+        tally.skip(None, "unreadable", f"line {line}: not applied: {why}")
+    for d in superseded:
+        tally.skip(d, "superseded", f"{d.decision} for {d.clip_id or d.word} replaced by a later decision")
     for cid, d in sorted(verdicts.items()):
         if d.decision not in SPLIT_KINDS:
             continue

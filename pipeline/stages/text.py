@@ -57,11 +57,11 @@ from pipeline.stages.review_apply import (
     TextPlan,
     count_fixes,
     count_words,
-    decisions_file,
     log_tally,
     merged_override,
     plan_text,
     review_items,
+    text_digest,
 )
 from pipeline.text.characters import describe_characters, grapheme_units
 from pipeline.text.lexicon import read_lexicon
@@ -86,11 +86,10 @@ def _lexicon_paths(config: Config) -> dict[str, Path]:
 
 def extra_inputs(ctx: StageContext) -> list[Path]:
     """Files besides the ingest manifest whose content changes this stage's output
-    (the lexicons, the metadata table when its language column is read, and the review
-    decisions)."""
+    (the lexicons, and the metadata table when its language column is read; its share of
+    the review decisions is hashed by ``extra_digest``)."""
     table = metadata_table(ctx.config, ctx.raw)
-    return sorted([*_lexicon_paths(ctx.config).values(), *([table] if table is not None else []),
-                   decisions_file(ctx)])
+    return sorted([*_lexicon_paths(ctx.config).values(), *([table] if table is not None else [])])
 
 
 def written_files(out: Path, table: object) -> list[str]:
@@ -342,5 +341,6 @@ STAGE = Stage(
     config_sections=("text", "ingest"),  # ingest: the metadata table's language column
     run=run,
     extra_inputs=extra_inputs,
+    extra_digest=text_digest,
     written_files=written_files,
 )
