@@ -136,7 +136,9 @@ EDITS = [
     # The audio stage reads the private source mapping and scrubs its rejects with privacy's helpers.
     ("stages/privacy.py", None, {"ingest", "audio"}),
     ("stages/transcripts.py", None, {"ingest"}),
-    ("stages/ledger.py", None, {"split"}),
+    # The text stage finds the review decisions beside the ledger (stages/decisions.py).
+    ("stages/ledger.py", None, {"text", "split"}),
+    ("stages/review_apply.py", None, {"text", "split"}),
     ("stages/selection.py", None, {"split"}),
     ("stages/gates.py", None, {"split"}),
     ("core/pool.py", None, {"ingest", "audio"}),
@@ -249,10 +251,11 @@ def test_editing_a_helper_reruns_its_stage_and_only_its_stage(small_raw: Path, t
     assert re.search(r"ingest: [1-9]\d* files probed, 0 reused from cache", log)
     assert re.search(r"audio: 0 files processed, [1-9]\d* reused from cache", log)
 
-    # The split ledger's module: split runs, nothing else.
+    # The split ledger's module: split runs, and text, which finds the review decisions
+    # beside the ledger; audio is reused.
     _edit(package / "stages/ledger.py")
     log = _prepare(src, small_raw, out)
-    assert _reused(log) == {"audio", "text"}
+    assert _reused(log) == {"audio"}
     assert re.search(r"ingest: 0 files probed, [1-9]\d* reused from cache", log)
 
     # A module no stage uses: a full run (the no-change check sees every source), in

@@ -30,7 +30,7 @@ def server(demo_build: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterat
     shutil.copytree(demo_build, out)
     queue = build_queue(out, spot_checks=3, seed=7)
     decisions = tmp_path_factory.mktemp("decisions") / "ledger.decisions.jsonl"
-    state = ReviewState(queue, out=out, decisions=decisions, token=TOKEN)
+    state = ReviewState(queue, out=out, decisions=decisions, token=TOKEN, backend_of=lambda language: "english")
     httpd = make_server(state, port=0)
     thread = threading.Thread(target=httpd.serve_forever, daemon=True)
     thread.start()
@@ -119,6 +119,11 @@ def test_a_decision_takes_its_hashes_from_the_queue(server: ReviewState) -> None
     assert post(server, {"decision": "keep", "clip_id": "nobody-0000000000"})[0] == 400
     assert post(server, {"decision": "pronunciation", "clip_id": item["clip_id"], "word": "notoov",
                          "phones": ["N"]})[0] == 400
+    oov = next(it for it in server.queue.items if it["oov"])
+    word = oov["oov"][0]["word"]
+    status, data = post(server, {"decision": "pronunciation", "clip_id": oov["clip_id"], "word": word,
+                                 "phones": ["s", "l", "ɪ"]})
+    assert status == 400 and "not ARPAbet phones" in json.loads(data)["error"]
 
 
 def _append_many(path: str, worker: int) -> None:
@@ -176,3 +181,32 @@ def test_a_later_verdict_replaces_an_earlier_one_of_another_kind() -> None:
     second = check_decision({"decision": "keep", "clip_id": "a-0123456789"})
     verdicts, _, superseded = effective([first, second])
     assert verdicts["a-0123456789"].decision == "keep" and superseded == [first]
+
+
+def test_the_text_stage_applies_fixes_wrong_transcripts_and_pronunciations(tmp_path: Path) -> None:
+    from tests.test_text_stage import ENGLISH, ingest_row, run_stage
+
+    path = tmp_path / "out" / "ledger.decisions.jsonl"
+    path.parent.mkdir()
+
+    def decide(name: str, **fields: Any) -> None:
+        row = ingest_row(name, "")
+        append_decision(path, {"clip_id": row["source_id"], "source_sha256": row["sha256"], **fields})
+
+    decide("b_ferry", decision="wrong_transcript")
+    decide("f_none", decision="fix_transcript", transcript="The tide is out.")  # untranscribed until now
+    decide("e_nordic", decision="fix_transcript", transcript="Two smørbrød, thanks.")  # still bad characters
+    decide("a_zorb", decision="pronunciation", language="en", word="kravost", phones=["K", "R", "AA1", "V", "OW0", "S", "T"])
+    decide("a_zorb", decision="pronunciation", language="en", word="zorblax", phones=["z", "o"])
+    result, table = run_stage(tmp_path, ENGLISH)
+    rows = {r["clip_id"]: r for r in table.to_pylist()}
+    rejects = {r["clip_id"]: r for r in result.rejects}
+    ferry, tide, zorb = (ingest_row(n, "")["source_id"] for n in ("b_ferry", "f_none", "a_zorb"))
+    assert ferry not in rows and rejects[ferry]["reason"] == "review_transcript_wrong"
+    assert rows[tide]["transcript"] == "The tide is out." and rows[tide]["transcript_origin"] == "review"
+    assert rows[zorb]["transcript_origin"] == "sidecar"
+    words = dict(zip(rows[zorb]["words"], rows[zorb]["word_backends"], strict=True))
+    assert words["kravost"] == "override" and words["zorblax"] == "neural"
+    review = result.summary["review"]
+    assert review["applied"] == {"fix_transcript": 1, "pronunciation": 1, "wrong_transcript": 1}
+    assert review["not_applied"] == {"invalid_phones": 1, "transcript_rejected": 1}

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import sys
+from dataclasses import replace
 from pathlib import Path
 
 from pipeline.commands.review_queue import build_queue
@@ -27,7 +28,9 @@ def serve(out: Path, *, port: int, spot_checks: int) -> int:
     if queue.ledger_path is None:
         raise UsageError(f"OUT {str(out)!r}: stages/split.summary.json does not say where the split ledger is; "
                          "run `loam prepare` first")
-    state = ReviewState(queue, out=out, decisions=decisions_path(queue.ledger_path), token=new_token())
+    state = ReviewState(queue, out=out, decisions=decisions_path(queue.ledger_path), token=new_token(),
+                        backend_of=lambda language: replace(config.text, language=language).resolved_backend
+                        if language else "")
     try:
         server = make_server(state, port=port)
     except OSError as exc:

@@ -46,7 +46,8 @@ main { display: flex; gap: 1em; padding: 0 1em; align-items: flex-start; }
 .why span, .decided { display: inline-block; margin: .15em .3em .15em 0; padding: 0 .45em; border-radius: 9px;
          background: #fde7c8; color: #6b3d00; font-size: .85em; }
 .decided { background: #d7f0da; color: #1d5a26; }
-img.spec { width: 100%; height: 96px; display: block; margin: .4em 0; background: #000; }
+img.spec { width: 100%; height: 96px; display: block; margin: .4em 0 0; background: #000; }
+.caption { color: #666; font-size: .8em; margin-bottom: .3em; overflow-wrap: anywhere; }
 audio { width: 100%; }
 textarea { width: 100%; box-sizing: border-box; font: inherit; min-height: 3.2em; }
 .field { margin: .35em 0; }
@@ -70,7 +71,7 @@ const REASONS = ['not speech', 'wrong speaker', 'unusable audio', 'duplicate', '
 const S = { items: [], shown: [], at: 0, decided: {}, byId: {} };
 // The figure each flag is about, shown in bold when the clip carries the flag.
 const FIGURE_OF = { noisy: ['snr_db'], narrowband: ['bandwidth_hz'], rate_outlier: ['speaking_rate', 'rate_z'],
-  clipped: ['clipped_fraction'], peak_limited: ['loudness_in_lufs'] };
+  clipped: ['clipped_fraction'], peak_limited: ['loudness_in_lufs'], near_duplicate: ['duplicate_similarity'] };
 
 function el(tag, attrs, ...kids) {
   const e = document.createElement(tag);
@@ -144,6 +145,8 @@ function card(it, current) {
     el('div', { class: 'why' }, ...it.why.map(w => el('span', { text: w })),
       decided ? el('span', { class: 'decided', text: 'decided: ' + decided }) : null),
     el('img', { class: 'spec', alt: 'spectrogram of ' + it.clip_id, src: 'picture/' + encodeURIComponent(it.clip_id) }),
+    el('div', { class: 'caption', text: `spectrogram, 0 to ${it.sample_rate / 2000} kHz, ${fmt(it.figures.duration_s)} s` +
+      (it.near_duplicate_of ? ` · near-duplicate of ${it.near_duplicate_of}` : '') }),
     el('audio', { controls: '', preload: current ? 'auto' : 'metadata', src: 'audio/' + encodeURIComponent(it.clip_id) }),
     el('div', { class: 'field' }, el('b', { text: 'transcript' }), it.transcript_origin ?
       el('span', { class: 'meta', text: ' from ' + it.transcript_origin }) : null), ta,

@@ -100,13 +100,29 @@ def predicted_phones(out: Path) -> dict[str, tuple[str, str]]:
     return found
 
 
-def _ledger_path(out: Path) -> Path | None:
+def _split_summary(out: Path) -> dict[str, Any]:
     try:
-        summary = json.loads((out / stage_summary("split")).read_text(encoding="utf-8"))
+        found = json.loads((out / stage_summary("split")).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return {}
+    return found if isinstance(found, dict) else {}
+
+
+def _ledger_path(summary: Mapping[str, Any], out: Path) -> Path | None:
+    try:
         shown = Path(summary["ledger"]["path"])
-    except (OSError, ValueError, KeyError, TypeError):
+    except (KeyError, TypeError):
         return None
     return shown if shown.is_absolute() else out / shown
+
+
+def _similarities(summary: Mapping[str, Any]) -> dict[str, float]:
+    """clip_id -> the highest similarity of a near-duplicate pair it is in."""
+    found: dict[str, float] = {}
+    for pair in summary.get("near_duplicate_pairs") or []:
+        for cid in pair.get("clips", []):
+            found[cid] = max(found.get(cid, 0.0), float(pair.get("similarity", 0.0)))
+    return found
 
 
 def _item(row: Mapping[str, Any], audio: Mapping[str, Any], sha: Mapping[str, str], text: Mapping[str, Any] | None,
@@ -124,6 +140,7 @@ def _item(row: Mapping[str, Any], audio: Mapping[str, Any], sha: Mapping[str, st
         "whole_file": row["clip_id"] == audio["source_id"],
         "flags": list(row.get("quality_flags") or []),
         "figures": {k: row.get(k, audio.get(k)) for k in _FIGURES},
+        "sample_rate": row["sample_rate"],
         "near_duplicate_of": row.get("near_duplicate_of"),
         "oov": [{"word": w, "phones": words.get(w, ("", ""))[0], "source": words.get(w, ("", ""))[1]} for w in oov],
         "rejected": None, "why": [],
@@ -142,6 +159,8 @@ def build_queue(out: Path, *, spot_checks: int, seed: int) -> Queue:
     sha = {r["source_id"]: r["sha256"] for r in _read(out, stage_manifest("ingest"), ["source_id", "sha256"])}
     texts = {r["clip_id"]: r for r in _read(out, stage_manifest("text"))}
     words = predicted_phones(out)
+    summary = _split_summary(out)
+    similarity = _similarities(summary)
     items: dict[str, dict[str, Any]] = {}
     for subset in SUBSETS:
         for row in _read(out, subset_manifest(subset)):
@@ -152,7 +171,9 @@ def build_queue(out: Path, *, spot_checks: int, seed: int) -> Queue:
             items[cid] = _item(audio_rows[cid], audio_rows[cid], sha, texts.get(cid), words)
             items[cid]["rejected"] = rej["reason"]
             items[cid]["why"].append(f"rejected:{rej['reason']}")
-    for item in items.values():
+    for cid, item in items.items():
+        if cid in similarity:
+            item["figures"]["duplicate_similarity"] = similarity[cid]
         item["why"] += [f for f in item["flags"] if f not in _NOT_QUEUED]
         if item["oov"]:
             item["why"].append(OOV)
@@ -163,4 +184,4 @@ def build_queue(out: Path, *, spot_checks: int, seed: int) -> Queue:
         items[cid]["why"].append(SPOT_CHECK)
     queued = [it for _, it in sorted(items.items()) if it["why"]]
     audio = {cid: out / r["audio_path"] for cid, r in audio_rows.items()}
-    return Queue(queued, audio, _ledger_path(out))
+    return Queue(queued, audio, _ledger_path(summary, out))

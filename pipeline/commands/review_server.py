@@ -16,6 +16,7 @@ import hmac
 import json
 import secrets
 import threading
+from collections.abc import Callable
 from datetime import datetime, timezone
 from http import HTTPStatus
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
@@ -28,6 +29,7 @@ from pipeline.commands.review_pictures import PICTURES, picture
 from pipeline.commands.review_queue import Queue
 from pipeline.core.errors import ParameterError
 from pipeline.stages.decisions import append_decision, effective, read_decisions
+from pipeline.stages.review_apply import phones_problem
 
 _MAX_BODY = 64 * 1024
 _STATIC = {"": (HTML, "text/html; charset=utf-8"), "app.js": (JS, "text/javascript; charset=utf-8"),
@@ -48,8 +50,11 @@ _POSTED = ("decision", "clip_id", "transcript", "reason", "note", "word", "phone
 class ReviewState:
     """What the handler needs: the queue, OUT, the decisions file, the token and the port."""
 
-    def __init__(self, queue: Queue, *, out: Path, decisions: Path, token: str) -> None:
+    def __init__(self, queue: Queue, *, out: Path, decisions: Path, token: str,
+                 backend_of: Callable[[str], str] = lambda language: "") -> None:
         self.queue = queue
+        # The pronunciation backend of a language, to check reviewed phones.
+        self.backend_of = backend_of
         self.items = {it["clip_id"]: it for it in queue.items}
         self.out = out
         self.decisions = decisions
@@ -77,6 +82,11 @@ class ReviewState:
             if record.get("word") not in {o["word"] for o in item["oov"]}:
                 raise ParameterError(f"word {str(record.get('word'))[:80]!r} is not an out-of-vocabulary word of "
                                      f"clip {item['clip_id']}")
+            phones = record.get("phones")
+            if isinstance(phones, list) and all(isinstance(p, str) for p in phones):
+                problem = phones_problem(phones, backend=self.backend_of(item["language"]))
+                if problem:
+                    raise ParameterError(f"pronunciation of {record['word']!r}: {problem}")
         if record.get("decision") == "fix_transcript" and not item["whole_file"]:
             raise ParameterError(f"clip {item['clip_id']} is a segment of a long recording; transcripts belong "
                                  "to whole files")

@@ -53,7 +53,7 @@ TEXT_KINDS = ("fix_transcript", "wrong_transcript", "pronunciation")
 SPLIT_KINDS = ("keep", "exclude")
 # Why a decision was not applied (the keys of a summary's review.not_applied).
 WHY = ("unreadable", "superseded", "clip_gone", "audio_changed", "not_a_whole_file", "transcript_rejected",
-       "override_conflict")
+       "invalid_phones", "override_conflict")
 _SHA = re.compile(r"^[0-9a-f]{64}$")
 _PHONE = re.compile(r"^[^\s]+$")
 _MAX_TEXT = 2000

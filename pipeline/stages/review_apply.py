@@ -129,24 +129,48 @@ def count_fixes(plan: TextPlan, rejected: Mapping[str, str]) -> None:
             plan.tally.applied["fix_transcript"] += 1
 
 
-def merged_override(plan: TextPlan, language: str, override: Mapping[str, tuple[str, ...]]
-                    ) -> dict[str, tuple[str, ...]]:
-    """The override lexicon for ``language``: the file's entries, then the reviewed words.
-    A file entry that differs from a reviewed one wins (the file is the explicit choice)."""
+def phones_problem(phones: Sequence[str], *, backend: str) -> str:
+    """Why reviewed phones do not suit the backend ('' when they do): the english backend
+    writes ARPAbet, CMUdict's 39 phones with an optional stress digit.
+
+    Examples
+    --------
+    >>> phones_problem(["S", "L", "IH1", "P"], backend="english")
+    ''
+    >>> phones_problem(["s", "l", "ɪ"], backend="english")
+    'not ARPAbet phones: s l ɪ'
+    """
+    if backend != "english":
+        return ""
+    from pipeline.text.cmudict_index import arpabet_phones
+
+    known = set(arpabet_phones())
+    bad = [p for p in phones if p.rstrip("012") not in known]
+    return f"not ARPAbet phones: {' '.join(bad)}" if bad else ""
+
+
+def merged_override(plan: TextPlan, language: str, override: Mapping[str, tuple[str, ...]], *,
+                    backend: str) -> dict[str, tuple[str, ...]]:
+    """The override lexicon for ``language``: the file's entries, then the reviewed words
+    whose phones suit ``backend``. A file entry that differs from a reviewed one wins
+    (the file is the explicit choice)."""
     merged = dict(override)
     for word, phones in plan.words.get(language, {}).items():
-        merged.setdefault(word, phones)
+        if not phones_problem(phones, backend=backend):
+            merged.setdefault(word, phones)
     return merged
 
 
-def count_words(plan: TextPlan, overrides: Mapping[str, Mapping[str, tuple[str, ...]]]) -> None:
+def count_words(plan: TextPlan, overrides: Mapping[str, tuple[str, Mapping[str, tuple[str, ...]]]]) -> None:
     """Count the pronunciation decisions: applied when the language's override lexicon in
-    force holds the reviewed phones (``overrides``: language -> override lexicon)."""
+    force holds the reviewed phones (``overrides``: language -> (backend, override lexicon))."""
     for d in plan.word_decisions:
-        lexicon = overrides.get(d.language)
+        backend, lexicon = overrides.get(d.language, ("", None))
         if lexicon is None:
             plan.tally.skip(d, "clip_gone", f"pronunciation of {d.word!r} not applied: no transcript in "
                             f"language {d.language!r} in this build")
+        elif problem := phones_problem(d.phones, backend=backend):
+            plan.tally.skip(d, "invalid_phones", f"pronunciation of {d.word!r} not applied: {problem}")
         elif tuple(lexicon.get(d.word, ())) != d.phones:
             plan.tally.skip(d, "override_conflict", f"pronunciation of {d.word!r} not applied: "
                             f"text.override_lexicon gives {' '.join(lexicon[d.word])!r}")

@@ -104,7 +104,7 @@ def build_pronouncer(config: Config, *, cache_dir: Path | None, review: TextPlan
     paths = _lexicon_paths(config)
     override = read_lexicon(paths["override_lexicon"]) if "override_lexicon" in paths else {}
     if review is not None:
-        override = merged_override(review, cfg.language, override)
+        override = merged_override(review, cfg.language, override, backend=cfg.resolved_backend)
     cache_path = None
     if cfg.resolved_backend == "english" and cache_dir is not None:
         cache_path = cache_dir / "g2p" / neural_cache_name(code_version=code_version(NAME, cache_dir=cache_dir))
@@ -238,7 +238,8 @@ def run(ctx: StageContext) -> StageResult:
         elif outcome.row is not None:
             rows.append({"clip_id": item["source_id"], **outcome.row, "transcript_origin": item["origin"]})
     count_fixes(review, {r["clip_id"]: r["reason"] for r in rejects})
-    count_words(review, {tag: tools.pronouncer.override for tag, tools in toolbox.tools.items()})
+    count_words(review, {tag: (tools.pronouncer.backend, tools.pronouncer.override)
+                         for tag, tools in toolbox.tools.items()})
     # Before predicted.tsv is rewritten: it may itself be the override lexicon just read.
     metadata = _metadata(ctx.config, toolbox.get(cfg.language).pronouncer)
     metadata.update(language_metadata(toolbox))
