@@ -139,6 +139,7 @@ EDITS = [
     # The text stage finds the review decisions beside the ledger (stages/decisions.py).
     ("stages/ledger.py", None, {"text", "split"}),
     ("stages/review_apply.py", None, {"text", "split"}),
+    ("stages/review_text.py", None, {"text"}),
     ("stages/selection.py", None, {"split"}),
     ("stages/gates.py", None, {"split"}),
     ("core/pool.py", None, {"ingest", "audio"}),

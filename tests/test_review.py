@@ -18,7 +18,8 @@ from pipeline.commands.review_server import ReviewState, make_server
 from pipeline.core.config import build_config
 from pipeline.core.stage import StageContext
 from pipeline.stages.decisions import append_decision, effective, read_decisions
-from pipeline.stages.review_apply import plan_text, split_exclusions
+from pipeline.stages.review_apply import split_exclusions
+from pipeline.stages.review_text import plan_text
 
 TOKEN = "t0ken-for-tests"
 
@@ -155,6 +156,7 @@ def test_stale_superseded_and_unreadable_decisions_are_counted_not_applied(demo_
     row = next(r for r in ingest if r["transcript"])
     path = tmp_path / "ledger.decisions.jsonl"
     monkeypatch.setattr("pipeline.stages.review_apply.decisions_file", lambda ctx: path)
+    monkeypatch.setattr("pipeline.stages.review_text.decisions_file", lambda ctx: path)
     base = {"clip_id": row["source_id"], "source_path": row["source_path"], "source_sha256": row["sha256"]}
     append_decision(path, {**base, "decision": "fix_transcript", "transcript": "first try"})
     append_decision(path, {**base, "decision": "fix_transcript", "transcript": "second try"})

@@ -29,7 +29,7 @@ from pipeline.commands.review_pictures import PICTURES, picture
 from pipeline.commands.review_queue import Queue
 from pipeline.core.errors import ParameterError
 from pipeline.stages.decisions import append_decision, effective, read_decisions
-from pipeline.stages.review_apply import phones_problem
+from pipeline.stages.review_text import phones_problem
 
 _MAX_BODY = 64 * 1024
 _STATIC = {"": (HTML, "text/html; charset=utf-8"), "app.js": (JS, "text/javascript; charset=utf-8"),

@@ -53,11 +53,11 @@ from pipeline.stages.languages import (
     rule_phones,
     warn_wrong_language,
 )
-from pipeline.stages.review_apply import (
+from pipeline.stages.review_apply import log_tally
+from pipeline.stages.review_text import (
     TextPlan,
     count_fixes,
     count_words,
-    log_tally,
     merged_override,
     plan_text,
     review_items,
