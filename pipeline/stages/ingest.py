@@ -11,7 +11,6 @@ the audio goes on as untranscribed audio.
 
 from __future__ import annotations
 
-import hashlib
 import os
 import posixpath
 import re
@@ -31,6 +30,7 @@ from pipeline.core.names import stage_manifest
 from pipeline.core.parallel import map_ordered
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.stages.paths import check_relative_path, is_inside
+from pipeline.stages.speakers import speaker_id
 from pipeline.stages.transcripts import (
     MetadataRow,
     collapse_rows,
@@ -44,7 +44,6 @@ TRANSCRIPT_REASONS = frozenset({"transcript_encoding", "transcript_unreadable", 
                                 "conflicting_transcripts"})
 
 _SLUG_KEEP = re.compile(r"[^a-z0-9_-]+")
-_SPEAKER_KEEP = re.compile(r"[^A-Za-z0-9_.-]+")
 
 
 def slug(text: str, *, max_chars: int = 40) -> str:
@@ -57,16 +56,6 @@ def slug(text: str, *, max_chars: int = 40) -> str:
 def source_id(stem: str, sha256: str) -> str:
     """Stable source id: a readable slug plus the content hash, so renames are visible."""
     return f"{slug(stem)}-{sha256[:10]}"
-
-
-def speaker_id(name: str) -> str:
-    """A file-name-safe speaker id; a name that needs changing gets a hash suffix so two
-    different names can never map to one id."""
-    safe = _SPEAKER_KEEP.sub("_", unicodedata.normalize("NFKD", name).encode("ascii", "ignore").decode())
-    safe = safe.strip("._-") or "speaker"
-    if safe != name:
-        safe = f"{safe}-{hashlib.sha256(name.encode('utf-8', 'surrogateescape')).hexdigest()[:6]}"
-    return safe
 
 
 # Containers libsndfile may have been built without, by file extension.
