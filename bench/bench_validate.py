@@ -52,7 +52,7 @@ def _link_clips(out: Path, audio_paths: list[str]) -> None:
 
 
 def _subset_columns(name: str, clip_ids: list[str], speaker_ids: list[str], audio_paths: list[str],
-                    *, tier: str) -> dict[str, list[Any]]:
+                    *, tier: str, parts: list[str | None]) -> dict[str, list[Any]]:
     """The columns of subset ``name`` for these clips: one clean second each."""
     n = len(clip_ids)
     transcribed = name != UNLABELLED
@@ -85,6 +85,7 @@ def _subset_columns(name: str, clip_ids: list[str], speaker_ids: list[str], audi
         "near_duplicate_of": [None] * n,
         "quality_flags": [[] for _ in clip_ids],
         "scorable": [transcribed] * n,
+        "part": parts,
     }
 
 
@@ -95,7 +96,8 @@ def synthetic_out(out: Path, *, n_rows: int, speakers: int = 200) -> Path:
     Every clip's file is a hard link to one FLAC file (copies where links are refused), so
     building 100,000 clips takes seconds; ``audio_sha256`` values are distinct stand-ins, so
     only ``deep=False`` runs are meaningful on it. A tenth of the speakers are held out,
-    a fifth of the rest labelled, in one tier as long as the labelled clips.
+    a fifth of the rest labelled, in one tier as long as the labelled clips; held-out
+    speakers of even number are in part dev, the others in test.
     """
     if n_rows < 1:
         raise ParameterError(f"n_rows={n_rows} must be >= 1")
@@ -116,8 +118,9 @@ def synthetic_out(out: Path, *, n_rows: int, speakers: int = 200) -> Path:
     meta = {"version": __version__, "stage": "split", "config_sha256": config.sha256()}
     for name in SUBSETS:
         sel = np.flatnonzero(subset == name)
+        parts = [("dev" if speaker[i] % 2 == 0 else "test") if name == HELDOUT else None for i in sel]
         columns = _subset_columns(name, [clip_ids[i] for i in sel], [speaker_ids[i] for i in sel],
-                                  [audio_paths[i] for i in sel], tier=f"{budget_s}s")
+                                  [audio_paths[i] for i in sel], tier=f"{budget_s}s", parts=parts)
         write_manifest(out / subset_manifest(name), "subset", table_from_columns("subset", columns), metadata=meta)
     write_manifest(out / REJECTED, "rejected", empty_table("rejected"), metadata=meta)
     return out

@@ -134,7 +134,9 @@ EDITS = [
     ("signal/iir.py", None, {"audio"}),
     ("signal/vad.py", None, {"audio"}),
     # The audio stage reads the private source mapping and scrubs its rejects with privacy's helpers.
-    ("stages/privacy.py", None, {"ingest", "audio"}),
+    # split pseudonymises the balance table's speakers (split.balance_table) as ingest does.
+    ("stages/privacy.py", None, {"ingest", "audio", "split"}),
+    ("stages/speakers.py", None, {"ingest", "split"}),
     ("stages/transcripts.py", None, {"ingest"}),
     # The text stage finds the review decisions beside the ledger (stages/decisions.py).
     ("stages/ledger.py", None, {"text", "split"}),

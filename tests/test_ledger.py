@@ -15,6 +15,7 @@ from pipeline.core.errors import UsageError
 from pipeline.stages import split
 from pipeline.stages.ledger import (
     MAGIC,
+    MAGIC_V1,
     ClipRecord,
     Ledger,
     format_ledger,
@@ -25,8 +26,10 @@ from pipeline.stages.ledger import (
 from tests.conftest import examples, tree_hash
 from tests.test_split import SPEAKERS, Corpus, all_rows, make_ctx
 
-SETTINGS = {"group_by": "speaker", "seed": "7", "heldout": "10%", "budgets": "10m,1h", "selection": "coverage"}
+SETTINGS = {"group_by": "speaker", "seed": "7", "heldout": "10%", "budgets": "10m,1h", "selection": "coverage",
+            "parts": "dev:50%,test:50%"}
 HEADER = "\t".join([MAGIC] + [f"{k}={v}" for k, v in SETTINGS.items()])
+HEADER_V1 = "\t".join([MAGIC_V1] + [f"{k}={v}" for k, v in SETTINGS.items() if k != "parts"])
 
 ids = st.text("abcdefghijklmnopqrstuvwxyz0123456789_-", min_size=1, max_size=12)
 
@@ -35,6 +38,9 @@ ids = st.text("abcdefghijklmnopqrstuvwxyz0123456789_-", min_size=1, max_size=12)
 def ledgers(draw: st.DrawFn) -> Ledger:
     budgets = draw(st.sampled_from([(), ("10m",), ("10m", "1h"), ("30s", "5m", "2h")]))
     groups = draw(st.dictionaries(ids, st.sampled_from(["heldout", "training"]), min_size=1, max_size=6))
+    # A held-out group has a part, or none yet ("-": gone since a version 1 ledger).
+    parts = {g: draw(st.sampled_from(["dev", "test", ""])) for g, side in groups.items() if side == "heldout"}
+    parts = {g: p for g, p in parts.items() if p}
     clips = {}
     for cid in draw(st.lists(ids, unique=True, max_size=20)):
         group = draw(st.sampled_from(sorted(groups)))
@@ -42,9 +48,10 @@ def ledgers(draw: st.DrawFn) -> Ledger:
         tiers: tuple[str, ...] = ()
         if subset == "labelled":
             tiers = budgets[draw(st.integers(0, len(budgets) - 1)):]
-        clips[cid] = ClipRecord(subset, tiers, group)
+        part = draw(st.sampled_from(["dev", "test", ""])) if subset == "heldout" else ""
+        clips[cid] = ClipRecord(subset, tiers, group, part)
     settings_ = dict(SETTINGS, budgets=",".join(budgets) or "-")
-    return Ledger(settings_, groups, clips)
+    return Ledger(settings_, groups, clips, parts=parts)
 
 
 @settings(max_examples=examples(100), deadline=None)
@@ -59,27 +66,35 @@ def test_round_trip(ledger: Ledger) -> None:
     assert lines[0].startswith(MAGIC + "\t")
     keys = [(ln.split("\t")[0], ln.split("\t")[1]) for ln in lines[1:]]
     assert keys == sorted(keys)  # sorted by kind, then id
-    assert all(len(ln.split("\t")) == (5 if ln.startswith("clip\t") else 3) for ln in lines[1:])
+    assert all(len(ln.split("\t")) == (6 if ln.startswith("clip\t") else 4) for ln in lines[1:])
 
 
 @pytest.mark.parametrize(("body", "line", "expected"), [
     ("", 1, "expected the header line"),
     ("# some other file\n", 1, "expected the header line"),
     (HEADER.replace("\tseed=7", "") + "\n", 1, "seed=VALUE"),
+    (HEADER.replace("\tparts=dev:50%,test:50%", "") + "\n", 1, "parts=VALUE"),
     (HEADER.replace("budgets=10m,1h", "budgets=ten") + "\n", 1, "comma-separated durations"),
-    (HEADER + "\ngroup\talder\n", 2, "'group<TAB>id<TAB>side'"),
-    (HEADER + "\ngroup\talder\tleft\n", 2, "a side: heldout or training"),
-    (HEADER + "\ngroup\talder\ttraining\ngroup\talder\theldout\n", 3, "each group id once"),
+    (HEADER + "\ngroup\talder\ttraining\n", 2, "'group<TAB>id<TAB>side<TAB>part'"),
+    (HEADER + "\ngroup\talder\tleft\t-\n", 2, "a side: heldout or training"),
+    (HEADER + "\ngroup\talder\ttraining\t-\ngroup\talder\theldout\ttest\n", 3, "each group id once"),
+    (HEADER + "\ngroup\talder\ttraining\ttest\n", 2, "only held-out rows have parts"),
+    (HEADER + "\ngroup\talder\theldout\tTest\n", 2, "a part name"),
     (HEADER + "\nspeaker\talder\ttraining\n", 2, "a row starting with 'clip', 'group' or 'source'"),
-    (HEADER + "\nclip\ta-1\tlabelled\t10m,1h\n", 2, "5 tab-separated fields"),
-    (HEADER + "\nclip\ta-1\ttrain\t-\talder\ngroup\talder\ttraining\n", 2, "labelled, unlabelled or heldout"),
-    (HEADER + "\nclip\ta-1\tlabelled\t-\talder\ngroup\talder\ttraining\n", 2, "the tiers of a labelled clip"),
-    (HEADER + "\nclip\ta-1\tunlabelled\t1h\talder\ngroup\talder\ttraining\n", 2, "only labelled clips have tiers"),
-    (HEADER + "\nclip\ta-1\tlabelled\t10m\talder\ngroup\talder\ttraining\n", 2, "as tiers are nested"),
-    (HEADER + "\nclip\ta-1\tlabelled\t1h,10m\talder\ngroup\talder\ttraining\n", 2, "as tiers are nested"),
-    (HEADER + "\nclip\ta-1\theldout\t-\twren\ngroup\talder\ttraining\n", 2, "its own 'group' row"),
-    (HEADER + "\nclip\ta-1\theldout\t-\talder\nclip\ta-1\theldout\t-\talder\ngroup\talder\theldout\n", 3,
-     "each clip id once"),
+    (HEADER + "\nclip\ta-1\tlabelled\t10m,1h\talder\n", 2, "6 tab-separated fields"),
+    (HEADER + "\nclip\ta-1\ttrain\t-\talder\t-\ngroup\talder\ttraining\t-\n", 2, "labelled, unlabelled or heldout"),
+    (HEADER + "\nclip\ta-1\tlabelled\t-\talder\t-\ngroup\talder\ttraining\t-\n", 2, "the tiers of a labelled clip"),
+    (HEADER + "\nclip\ta-1\tunlabelled\t1h\talder\t-\ngroup\talder\ttraining\t-\n", 2,
+     "only labelled clips have tiers"),
+    (HEADER + "\nclip\ta-1\tlabelled\t10m\talder\t-\ngroup\talder\ttraining\t-\n", 2, "as tiers are nested"),
+    (HEADER + "\nclip\ta-1\tlabelled\t1h,10m\talder\t-\ngroup\talder\ttraining\t-\n", 2, "as tiers are nested"),
+    (HEADER + "\nclip\ta-1\tunlabelled\t-\talder\tdev\ngroup\talder\ttraining\t-\n", 2,
+     "only held-out rows have parts"),
+    (HEADER + "\nclip\ta-1\theldout\t-\twren\tdev\ngroup\talder\ttraining\t-\n", 2, "its own 'group' row"),
+    (HEADER + "\nclip\ta-1\theldout\t-\talder\tdev\nclip\ta-1\theldout\t-\talder\tdev\n"
+     "group\talder\theldout\tdev\n", 3, "each clip id once"),
+    # A version 1 ledger keeps its own row shapes.
+    (HEADER_V1 + "\ngroup\talder\ttraining\t-\n", 2, "'group<TAB>id<TAB>side' (3 tab-separated fields)"),
 ])
 def test_malformed_ledger_names_file_line_and_expectation(tmp_path: Path, body: str, line: int, expected: str) -> None:
     # Source: RULES.md / README.md message style: file, line, what was found and what was expected.
@@ -97,9 +112,9 @@ def test_read_ledger_missing_crlf_and_bad_bytes(tmp_path: Path) -> None:
     # Source: UTF-8 (RFC 3629): 0xE9 alone is not a valid UTF-8 sequence.
     assert read_ledger(tmp_path / "none.tsv") is None
     path = tmp_path / "l.tsv"
-    path.write_bytes((HEADER + "\r\n\r\ngroup\talder\ttraining\r\n").encode())
+    path.write_bytes((HEADER + "\r\n\r\ngroup\talder\ttraining\t-\r\n").encode())
     assert read_ledger(path).groups == {"alder": "training"}
-    path.write_bytes((HEADER + "\ngroup\tal\xe9der\ttraining\n").encode("latin-1"))
+    path.write_bytes((HEADER + "\ngroup\tal\xe9der\ttraining\t-\n").encode("latin-1"))
     with pytest.raises(UsageError, match=r"line 2: found bytes that are not UTF-8"):
         read_ledger(path)
 
@@ -177,7 +192,7 @@ def test_stage_ledger_matches_manifests_and_reruns_unchanged(tmp_path: Path) -> 
     text = path.read_text(encoding="utf-8")
     ledger = parse_ledger(text, source=str(path))
     for cid, row in all_rows(first).items():
-        assert ledger.clips[cid] == ClipRecord(row["subset"], tuple(row["tiers"]), row["group"])
+        assert ledger.clips[cid] == ClipRecord(row["subset"], tuple(row["tiers"]), row["group"], row["part"] or "")
         side = "heldout" if row["subset"] == "heldout" else "training"
         assert ledger.groups[row["group"]] == side
     again = split.run(make_ctx(tmp_path, corpus, data))

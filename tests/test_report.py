@@ -87,7 +87,14 @@ def test_summary_agrees_with_the_manifests(built: Out) -> None:
         assert s["tiers"][tier]["clips"] == row["clips"]
         assert s["tiers"][tier]["hours"] == pytest.approx(row["seconds"] / 3600, abs=1e-4)
         assert s["tiers"][tier]["speakers"] == row["speakers"]
-    assert s["totals"]["clips"] == 8 and s["totals"]["speakers"] == 4
+    assert s["totals"]["clips"] == 8 and s["totals"]["speakers"] == 5
+    # Held-out parts: one speaker each (tests/test_validate.py's OUT), sizes from the manifest.
+    heldout = pq.read_table(built.root / "manifests/heldout.parquet").to_pandas()
+    for part, frame in heldout.groupby("part"):
+        got = s["parts"][part]
+        assert got["clips"] == len(frame) and got["speakers"] == frame["speaker"].nunique() == 1
+        assert got["scorable_seconds"] == pytest.approx(frame.loc[frame["scorable"], "duration_s"].sum(), abs=1e-3)
+    assert sorted(s["parts"]) == ["dev", "test"]
 
 
 def test_phone_counts_and_coverage_match_cmudict(built: Out) -> None:
@@ -120,8 +127,8 @@ def test_rejects_quality_and_split_summary(built: Out) -> None:
 
 def test_speaker_hours(built: Out) -> None:
     s = summary(built)
-    assert list(s["speakers"]) == ["alder", "heron", "otter", "wren"]  # 4 s each, ties by name
-    assert s["speakers"]["wren"] == {"labelled": 0.0, "unlabelled": 0.0, "heldout": pytest.approx(4 / 3600, abs=1e-4)}
+    assert list(s["speakers"]) == ["alder", "heron", "otter", "sedge", "wren"]  # ties by name
+    assert s["speakers"]["wren"] == {"labelled": 0.0, "unlabelled": 0.0, "heldout": pytest.approx(2 / 3600, abs=1e-4)}
 
 
 def test_hms() -> None:
@@ -168,8 +175,10 @@ def test_missing_files_show_none(built: Out, tmp_path: Path) -> None:
         (root / rel).unlink()
     index = write_report(root)
     s = json.loads((root / "report/summary.json").read_text(encoding="utf-8"))
-    assert s["subsets"]["heldout"] == {"clips": 0, "seconds": 0.0, "hours": 0.0, "speakers": 0, "groups": 0,
-                                       "transcribed_clips": 0, "file_present": False, "scored_clips": 0,
+    assert s["subsets"]["heldout"] == {"clips": 0, "seconds": 0.0, "hours": 0.0, "scorable_clips": 0,
+                                       "scorable_seconds": 0.0, "scorable_hours": 0.0, "speakers": 0, "groups": 0,
+                                       "transcribed_clips": 0, "untranscribed_clips": 0,
+                                       "untranscribed_seconds": 0.0, "file_present": False, "scored_clips": 0,
                                        "scored_hours": 0.0}
     assert s["rejects"]["total"] == 0 and s["changes"] is None and s["config"] is None
     text = index.read_text(encoding="utf-8")

@@ -198,6 +198,8 @@ def test_worked_example_in_docs(tmp_path: Path) -> None:
     for r in all_rows(result).values():
         side_of.setdefault(r["group"], set()).add("heldout" if r["subset"] == "heldout" else "training")
     assert {g: s.pop() for g, s in side_of.items()} == {r["group"]: r["side"] for r in rows}
+    part_of = {r["group"]: r["part"] or "-" for r in all_rows(result).values()}
+    assert part_of == {r["group"]: r["part"] for r in rows}
 
 
 # ---------------------------------------------------------------------------------------
@@ -309,16 +311,26 @@ def check_invariants(corpus: Corpus, data: dict[str, Any], result: StageResult, 
     if len(eligible_s) >= 2:
         assert any(g in training for g in eligible_s)  # one group always trains
     if fresh:
+        # The default parts, dev and test, each half the target; each group in ranking order
+        # goes to the part least filled (ties to dev) until both are full, one group left to train.
         target = split.heldout_target_s(data["split"]["heldout"], transcribed_s=math.fsum(eligible_s.values()))
         ranked = sorted(eligible_s, key=lambda g: hashlib.sha256(f"{data.get('seed', 7)}\t{g}".encode()).hexdigest())
-        expected, total = [], 0.0
+        expected: dict[str, str] = {}
+        filled = {"dev": 0.0, "test": 0.0}
         for k, g in enumerate(ranked):
-            if total >= target or k == len(ranked) - 1:
+            open_parts = [p for p in filled if filled[p] < target / 2]
+            if not open_parts or k == len(ranked) - 1:
                 break
-            expected.append(g)
-            total += eligible_s[g]
+            part = min(open_parts, key=lambda p: (filled[p] / (target / 2), p))
+            expected[g] = part
+            filled[part] += eligible_s[g]
         assert {g for g in heldout_groups if g in eligible_s} == set(expected)
         assert heldout_groups <= set(expected)
+        assert all(r["part"] == expected[r["group"]] for r in rows["heldout"])
+    assert all(r["part"] is None for s in ("labelled", "unlabelled") for r in rows[s])
+    for part in ("dev", "test"):  # parts are disjoint by group
+        assert not {r["group"] for r in rows["heldout"] if r["part"] == part} & \
+            {r["group"] for r in rows["heldout"] if r["part"] != part}
 
 
 @PROPERTY_SETTINGS

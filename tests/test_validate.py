@@ -73,7 +73,7 @@ def write_clip(out: Path, rel: str, *, freq_hz: float, seconds: float = 2.0, lev
 
 
 def clip_row(out: Path, *, clip_id: str, speaker: str, subset: str, freq_hz: float,
-             text: str | None = None, tiers: tuple[str, ...] = ()) -> dict[str, Any]:
+             text: str | None = None, tiers: tuple[str, ...] = (), part: str | None = None) -> dict[str, Any]:
     rel = f"audio/{speaker}/{clip_id}.flac"
     audio = write_clip(out, rel, freq_hz=freq_hz)
     return {
@@ -87,7 +87,7 @@ def clip_row(out: Path, *, clip_id: str, speaker: str, subset: str, freq_hz: flo
         "subset": subset, "tiers": list(tiers), "speech_ratio": 0.9, "snr_db": 35.0,
         "bandwidth_hz": 7800.0, "clipped_fraction": 0.0, "speaking_rate": None if text is None else 5.0,
         "rate_z": None if text is None else 0.1, "near_duplicate_of": None, "quality_flags": [],
-        "scorable": text is not None,
+        "scorable": text is not None, "part": part,
         **audio,
     }
 
@@ -101,7 +101,8 @@ def write_table(out: Path, rel: str, table: pa.Table, config_sha256: str) -> Non
 
 
 class Out:
-    """A small clean OUT: two labelled speakers, one unlabelled, one held out."""
+    """A small clean OUT: two labelled speakers, one unlabelled, two held out (one in
+    each part of the default split.parts, dev and test)."""
 
     def __init__(self, root: Path) -> None:
         self.root = root
@@ -123,9 +124,9 @@ class Out:
             ],
             "heldout": [
                 clip_row(root, clip_id="d1-0000000007", speaker="wren", subset="heldout", freq_hz=260,
-                         text=SENTENCES[4]),
-                clip_row(root, clip_id="d2-0000000008", speaker="wren", subset="heldout", freq_hz=270,
-                         text=SENTENCES[5]),
+                         text=SENTENCES[4], part="dev"),
+                clip_row(root, clip_id="d2-0000000008", speaker="sedge", subset="heldout", freq_hz=270,
+                         text=SENTENCES[5], part="test"),
             ],
         }
         self.write()
@@ -303,13 +304,51 @@ def test_identical_audio_in_two_subsets(out: Out) -> None:
     assert f"{UNL} row 1" in problem.found
 
 
-def test_shared_sentence_between_heldout_and_labelled_is_a_warning(out: Out) -> None:
-    out.rows["heldout"][1]["norm_text"] = out.rows["labelled"][0]["norm_text"]
+def test_scorable_test_prompt_in_labelled_is_an_error_unless_allowed(out: Out) -> None:
+    # Source: docs/split.md, Text-disjoint evaluation (split.text_overlap).
+    out.rows["heldout"][1]["norm_text"] = out.rows["labelled"][0]["norm_text"].upper() + "  "  # the same prompt
     out.write()
-    problems = out.validate()
-    only(problems, "text_leak", HELD, 1, "norm_text", severity="warning")
+    problem = only(out.validate(), "text_leak", HELD, 1, "norm_text")
+    assert "part test" in problem.found and "'unscore'" in problem.expected
+    out.set_config(split={"text_overlap": "allow"})
+    only(out.validate(), "text_leak", HELD, 1, "norm_text", severity="warning")
     assert exit_code(validate_out(out.root), strict=False) == 0
     assert exit_code(validate_out(out.root), strict=True) == 1
+    # A part that is not text-disjoint: a warning too.
+    out.set_config(split={"text_overlap": "unscore", "parts": [{"name": "dev", "target": "50%"},
+                                                               {"name": "test", "target": "50%",
+                                                                "text_disjoint": False}]})
+    only(out.validate(), "text_leak", HELD, 1, "norm_text", severity="warning")
+    # Unscored, as split.text_overlap = "unscore" leaves it: nothing to report.
+    out.set_config(split={"parts": [{"name": "dev", "target": "50%"}, {"name": "test", "target": "50%"}]})
+    out.rows["heldout"][1].update(scorable=False, quality_flags=["prompt_in_labelled"])
+    out.write()
+    # Test has nothing left to score: that is an error of its own.
+    assert [(p.check, p.column) for p in out.validate()] == [("subset_empty", "part")]
+    another_heldout_clip(out, 1)
+    out.write()
+    assert out.validate() == []
+    out.rows["heldout"][1].update(scorable=True)  # scorable while flagged: an error
+    out.write()
+    only(out.validate(), "scorable", HELD, 1, "scorable")
+
+
+def test_parts_name_configured_parts_and_never_share_a_group(out: Out) -> None:
+    # Source: docs/split.md, Held-out parts: every held-out row has a part, parts are disjoint by group.
+    out.rows["heldout"][1]["part"] = None
+    out.rows["unlabelled"][0]["part"] = "dev"
+    out.write()
+    problems = out.validate()
+    only(problems, "part_column", HELD, 1, "part")
+    only(problems, "part_column", UNL, 0, "part")
+    only(problems, "subset_empty", HELD, None, "part")  # test has no clip now
+    out.rows["unlabelled"][0]["part"] = None
+    out.rows["heldout"][1].update(part="test", speaker="wren", group="wren")
+    out.rows["heldout"][0]["part"] = "dev"
+    out.write()
+    problems = out.validate()
+    assert only(problems, "part_leak", HELD, 1, "group").found == '"wren" in part test, also in part dev'
+    only(problems, "part_leak", HELD, 1, "speaker")
 
 
 # ----------------------------------------------------------------------------- tiers
@@ -379,7 +418,7 @@ def test_empty_heldout_is_an_error_unless_the_config_asks_for_none(out: Out) -> 
     moved = out.rows["heldout"]
     out.rows["heldout"] = []
     out.rows["unlabelled"] += [dict(r, subset="unlabelled", transcript=None, norm_text=None, phones=None,
-                                    scorable=False) for r in moved]
+                                    scorable=False, part=None) for r in moved]
     out.write()
     problem = only(out.validate(), "subset_empty", HELD)
     assert "'10%'" in problem.expected  # the default split.heldout
@@ -395,7 +434,12 @@ def test_heldout_with_nothing_to_score_is_an_error(out: Out) -> None:
     held[1].update(quality_flags=["rate_outlier"], rate_z=5.0, scorable=False)
     out.write()
     only(out.validate(), "subset_empty", HELD, None, "transcript")
-    out.set_config(quality={"rate_outlier_action": "flag"})  # the second clip is scored again
+    out.set_config(quality={"rate_outlier_action": "flag"})  # the second clip is scored again ...
+    # ... but the first is the only clip of part dev, which has nothing to score.
+    problem = only(out.validate(), "subset_empty", HELD, None, "part")
+    assert problem.found == "part dev: 1 clips, none scorable"
+    another_heldout_clip(out, 0)
+    out.write()
     assert out.validate() == []
 
 
@@ -538,8 +582,18 @@ def test_a_gate_set_to_flag_lets_its_clips_into_labelled(out: Out, flag: str, co
     assert out.validate() == []
 
 
+def another_heldout_clip(out: Out, k: int) -> None:
+    """One more scorable clip of held-out row ``k``'s speaker and part, so the part keeps
+    one to score while a test takes row ``k`` off scoring."""
+    row = out.rows["heldout"][k]
+    out.rows["heldout"].append(clip_row(out.root, clip_id=f"e{k}-00000000{k + 20:02d}", speaker=row["speaker"],
+                                        subset="heldout", freq_hz=400 + 10 * k, text=SENTENCES[4 + k],
+                                        part=row["part"]))
+
+
 def test_rejected_noisy_clips_must_be_in_no_subset(out: Out) -> None:
     # Source: quality.noisy_action = "reject" sets noisy clips aside (docs/split.md, Quality gates).
+    another_heldout_clip(out, 1)
     out.rows["heldout"][1]["quality_flags"] = ["noisy"]
     out.rows["heldout"][1]["snr_db"] = 1.0
     out.rows["heldout"][1]["scorable"] = False
@@ -550,6 +604,7 @@ def test_rejected_noisy_clips_must_be_in_no_subset(out: Out) -> None:
 
 
 def test_heldout_keeps_flagged_clips(out: Out) -> None:
+    another_heldout_clip(out, 0)
     out.rows["heldout"][0]["quality_flags"] = ["noisy"]
     out.rows["heldout"][0]["snr_db"] = 1.0
     out.rows["heldout"][0]["scorable"] = False
@@ -637,8 +692,8 @@ def test_exit_codes_and_json_through_the_cli(out: Out, tmp_path: Path, capsys: p
     assert main(["validate", str(tmp_path / "missing")]) == 2
     assert "does not exist" in capsys.readouterr().err
 
-    out.rows["heldout"][1]["norm_text"] = out.rows["labelled"][0]["norm_text"]  # a warning
-    out.write()
+    out.rows["heldout"][1]["norm_text"] = out.rows["labelled"][0]["norm_text"]  # a warning when allowed
+    out.set_config(split={"text_overlap": "allow"})
     assert main(["validate", str(out.root)]) == 0
     assert main(["validate", str(out.root), "--strict"]) == 1
     capsys.readouterr()
@@ -658,7 +713,7 @@ def test_table_lists_every_problem_then_a_count(out: Out) -> None:
     out.rows["labelled"][0]["quality_flags"] = ["noisy"]
     out.rows["labelled"][0]["scorable"] = False
     out.rows["heldout"][1]["norm_text"] = out.rows["labelled"][1]["norm_text"]
-    out.write()
+    out.set_config(split={"text_overlap": "allow"})
     text = format_table(validate_out(out.root))
     lines = text.splitlines()
     assert lines[0].split() == ["severity", "check", "where", "found", "expected"]
@@ -671,7 +726,7 @@ def test_many_failing_rows_are_summarised(out: Out) -> None:
     sentence = out.rows["labelled"][0]["norm_text"]
     out.rows["heldout"] += [
         clip_row(out.root, clip_id=f"d{k}-00000000{k:02d}", speaker="wren", subset="heldout",
-                 freq_hz=300 + 10 * k, text=sentence)
+                 freq_hz=300 + 10 * k, text=sentence, part="dev")
         for k in range(3, 10)
     ]
     out.write()

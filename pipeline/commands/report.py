@@ -93,7 +93,8 @@ def _read_json(path: Path) -> Any:
 
 
 _SCALARS = ("clip_id", "speaker", "group", "duration_s", "loudness_lufs", "loudness_in_lufs",
-            "speaking_rate", "rate_z", "transcript", "norm_text", "near_duplicate_of", "source_path")
+            "speaking_rate", "rate_z", "transcript", "norm_text", "near_duplicate_of", "source_path",
+            "scorable", "part")
 
 
 def load_clips(out: Path) -> pd.DataFrame:
@@ -217,14 +218,24 @@ def _stats(values: Iterable[float]) -> dict[str, float] | None:
 
 
 def _describe(part: pd.DataFrame) -> dict[str, Any]:
+    """Clips, seconds, hours, speakers, groups; the scorable ones (transcript, phones,
+    no gate or shared prompt holding them back); and the untranscribed ones."""
     seconds = float(part["duration_s"].fillna(0.0).sum())
+    scorable = part.loc[part["scorable"].map(lambda v: v is True).astype(bool)]
+    scored_s = float(scorable["duration_s"].fillna(0.0).sum())
+    untranscribed = part[part["transcript"].isna()]
     return {
         "clips": int(len(part)),
         "seconds": round(seconds, 3),
         "hours": _hours(seconds),
+        "scorable_clips": int(len(scorable)),
+        "scorable_seconds": round(scored_s, 3),
+        "scorable_hours": _hours(scored_s),
         "speakers": int(part["speaker"].dropna().nunique()),
         "groups": int(part["group"].dropna().nunique()),
         "transcribed_clips": int(part["transcript"].notna().sum()),
+        "untranscribed_clips": int(len(untranscribed)),
+        "untranscribed_seconds": round(float(untranscribed["duration_s"].fillna(0.0).sum()), 3),
     }
 
 
@@ -251,11 +262,26 @@ def _subsets_section(out: Path, clips: pd.DataFrame) -> dict[str, dict[str, Any]
     present = {name: (out / subset_manifest(name)).exists() for name in SUBSETS}
     subsets = {name: {**_describe(clips[clips["subset_file"] == name]), "file_present": present[name]}
                for name in SUBSETS}
-    heldout = clips[clips["subset_file"] == HELDOUT]
-    scored = heldout[heldout["transcript"].notna()]
-    subsets[HELDOUT]["scored_clips"] = int(len(scored))
-    subsets[HELDOUT]["scored_hours"] = _hours(float(scored["duration_s"].fillna(0.0).sum()))
+    subsets[HELDOUT]["scored_clips"] = subsets[HELDOUT]["scorable_clips"]
+    subsets[HELDOUT]["scored_hours"] = subsets[HELDOUT]["scorable_hours"]
     return subsets
+
+
+def _parts_section(clips: pd.DataFrame, config: Config, split_summary: dict[str, Any]) -> dict[str, dict[str, Any]]:
+    """Sizes of each held-out part (config order, then any other part the manifest
+    names), with its target and whether it is text-disjoint. A part's untranscribed
+    audio is audio of held-out speakers withheld from training."""
+    heldout = clips[clips["subset_file"] == HELDOUT]
+    specs = {p.name: p for p in config.split.parts}
+    names = [*specs, *sorted(set(heldout["part"].dropna()) - set(specs))]
+    recorded = split_summary.get("parts") if isinstance(split_summary.get("parts"), dict) else {}
+    out = {}
+    for name in names:
+        row = _describe(heldout[heldout["part"] == name])
+        row["target_s"] = (recorded.get(name) or {}).get("target_s")
+        row["text_disjoint"] = specs[name].text_disjoint if name in specs else None
+        out[name] = row
+    return out
 
 
 def _tiers_section(labelled: pd.DataFrame, config: Config, inventory: set[str]) -> dict[str, dict[str, Any]]:
@@ -356,6 +382,10 @@ def build_summary(out: Path, *, clips: pd.DataFrame | None = None) -> dict[str, 
         "loam_version": __version__,
         "totals": {**_describe(clips)},
         "subsets": _subsets_section(out, clips),
+        "parts": _parts_section(clips, config, split_summary),
+        "split_by": config.split.group_by,
+        "text_overlap": split_summary.get("text_overlap"),
+        "balance": split_summary.get("balance"),
         "tiers": _tiers_section(labelled, config, inventory),
         "durations": {name: _stats(clips.loc[clips["subset_file"] == name, "duration_s"]) for name in SUBSETS},
         "loudness": {"target_lufs": config.audio.target_lufs,
@@ -655,14 +685,53 @@ def _head_html(s: dict[str, Any]) -> list[str]:
 
 
 def _subsets_html(s: dict[str, Any]) -> list[str]:
-    rows = [[name, v["clips"], _num(v["hours"], 3), hms(v["seconds"]), v["speakers"], v["groups"],
-             v["transcribed_clips"], "" if v["file_present"] else "file missing"] for name, v in s["subsets"].items()]
+    rows = [[name, v["clips"], _num(v["hours"], 3), hms(v["seconds"]), _num(v["scorable_hours"], 3), v["speakers"],
+             v["groups"], v["transcribed_clips"], "" if v["file_present"] else "file missing"]
+            for name, v in s["subsets"].items()]
     h = s["subsets"][HELDOUT]
     return [
         "<h2>Subsets</h2>",
-        table(["subset", "clips", "hours", "h:mm:ss", "speakers", "groups", "transcribed", "note"], rows),
-        f"<p>Held-out clips with a transcript (scored): {h['scored_clips']}, {_num(h['scored_hours'], 3)} h.</p>",
+        table(["subset", "clips", "hours", "h:mm:ss", "scorable hours", "speakers", "groups", "transcribed", "note"],
+              rows),
+        f"<p>Held-out clips that can be scored: {h['scorable_clips']}, {_num(h['scorable_hours'], 3)} h. "
+        f"Untranscribed audio of held-out {esc(s['split_by'])}s, withheld from training: "
+        f"{h['untranscribed_clips']} clips, {hms(h['untranscribed_seconds'])}.</p>",
     ]
+
+
+def _parts_html(s: dict[str, Any]) -> list[str]:
+    """The held-out parts' sizes, what keeping their prompts apart cost, and their balance."""
+    rows = [[name, v["clips"], _num(v["hours"], 3), v["scorable_clips"], _num(v["scorable_hours"], 3),
+             v["speakers"], v["groups"], hms(v["untranscribed_seconds"]),
+             "none" if v["target_s"] is None else hms(v["target_s"]),
+             {True: "yes", False: "no", None: "not configured"}[v["text_disjoint"]]] for name, v in s["parts"].items()]
+    parts = ["<h2>Held-out parts</h2>",
+             f"<p>No {esc(s['split_by'])} is in two parts or in a part and training.</p>",
+             table(["part", "clips", "hours", "scorable clips", "scorable hours", "speakers", "groups",
+                    "untranscribed (withheld)", "target", "text-disjoint"], rows)]
+    cost = s.get("text_overlap")
+    if isinstance(cost, dict):
+        parts.append(
+            f"<p>Prompts shared with labelled (split.text_overlap = {esc(cost.get('mode'))}): "
+            f"{cost.get('unscored_clips')} held-out clips ({_num(cost.get('unscored_hours'), 4)} h) not scorable; "
+            f"{cost.get('demoted_clips')} training clips ({_num(cost.get('demoted_hours'), 4)} h) kept out of "
+            f"labelled without their transcripts ({cost.get('demoted_were_labelled')} of them were labelled).</p>")
+    balance = s.get("balance")
+    if isinstance(balance, dict) and balance.get("rows"):
+        names = list(s["parts"])
+        parts.append(f"<h3>Balance (tolerance {_num(100 * balance['tolerance'], 1)} percentage points)</h3>")
+        parts.append(table(["column", "value", "corpus", *names, "within"],
+                           [[r["column"], r["value"], _share(r["corpus"]),
+                             *[_share((r.get("parts") or {}).get(n)) for n in names],
+                             "yes" if r["within"] else "no"] for r in balance["rows"]]))
+        if not balance.get("met"):
+            parts.append("<p>The groups could not meet the tolerance everywhere (rows marked no): whole "
+                         "groups move, and too few of them have the missing values.</p>")
+    return parts
+
+
+def _share(value: Any) -> str:
+    return "none" if value is None else f"{100 * value:.1f} %"
 
 
 def _tiers_html(s: dict[str, Any]) -> list[str]:
@@ -799,6 +868,7 @@ def render_html(summary: dict[str, Any], clips: pd.DataFrame, figures: dict[str,
     parts = [
         *_head_html(summary),
         *_subsets_html(summary),
+        *_parts_html(summary),
         *_tiers_html(summary),
         *_measures_html(summary, clips, figures),
         *_phones_html(summary, clips, figures),

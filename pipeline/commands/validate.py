@@ -42,6 +42,7 @@ from pipeline.core.manifest import (
 from pipeline.core.names import (
     HELDOUT,
     LABELLED,
+    PART,
     REJECTED,
     RESOLVED_CONFIG,
     STAGES,
@@ -54,6 +55,7 @@ from pipeline.core.names import (
 from pipeline.core.schemas_io import SCHEMA_DIR
 from pipeline.signal.declared import flac_streaminfo
 from pipeline.stages import gates
+from pipeline.stages.prompts import UNSCORED, prompt_set, shares_prompt
 
 TRAINING = (LABELLED, UNLABELLED)
 # A re-measured clip may differ from its manifest by this much: the 16-bit rounding of a
@@ -438,13 +440,48 @@ def _check_audio_leak(s: _Subsets) -> list[Problem]:
                            "no audio content in two subsets")
 
 
-def _check_text_leak(s: _Subsets) -> list[Problem]:
-    f = s.frame(["norm_text"], names=(LABELLED, HELDOUT))
-    seen = set(f.loc[f["_file"] == LABELLED, "norm_text"].dropna())
-    mask = (f["_file"] == HELDOUT) & f["norm_text"].isin(seen)
-    return _frame_problems("warning", "text_leak", f, mask, "norm_text",
-                           lambda r: f"{_text(r['norm_text'])}, also transcribed in labelled",
-                           "held-out sentences unseen in labelled (a shared sentence flatters held-out scores)")
+def _check_text_leak(s: _Subsets, config: Config) -> list[Problem]:
+    """A scorable clip of a text-disjoint held-out part whose prompt labelled holds is an
+    error (a warning under split.text_overlap = "allow"); a clip of another part
+    sharing a prompt with labelled is a warning. Prompts as pipeline.stages.prompts reads them."""
+    f = s.frame(["norm_text", "scorable", PART], names=(LABELLED, HELDOUT))
+    seen = prompt_set(f.loc[f["_file"] == LABELLED, "norm_text"])
+    shared = (f["_file"] == HELDOUT) & f["norm_text"].map(lambda t: shares_prompt(t, seen)).astype(bool)
+    disjoint = {p.name for p in config.split.parts if p.text_disjoint}
+    in_disjoint = f["part"].isin(disjoint)
+    scored = f["scorable"].fillna(False).astype(bool)
+    mode = config.split.text_overlap
+    problems = _frame_problems("warning" if mode == "allow" else "error", "text_leak", f,
+                               shared & in_disjoint & scored, "norm_text",
+                               lambda r: f"{_text(r['norm_text'])}, scorable in part {r['part']}, also in labelled",
+                               f"no scorable clip of a text-disjoint part ({', '.join(sorted(disjoint))}) whose "
+                               f"prompt labelled holds, as split.text_overlap = {mode!r} keeps it")
+    problems += _frame_problems("warning", "text_leak", f, shared & ~in_disjoint & scored, "norm_text",
+                                lambda r: f"{_text(r['norm_text'])}, also transcribed in labelled",
+                                "held-out sentences unseen in labelled (a shared sentence flatters held-out scores)")
+    return problems
+
+
+def _check_parts(s: _Subsets, config: Config) -> list[Problem]:
+    """Every held-out row names a configured part and no other row names one; no group
+    (and, grouping by speaker, no speaker) is in two parts. Grouping by recording or
+    clip, one speaker may be in several parts by design (a single-speaker corpus)."""
+    configured = [p.name for p in config.split.parts]
+    f = s.frame([PART, "group", "speaker"])
+    held = f["_file"] == HELDOUT
+    bad = (held & ~f["part"].isin(configured)) | (~held & f["part"].notna())
+    problems = _frame_problems("error", "part_column", f, bad, "part", lambda r: _text(r["part"]),
+                               f"in heldout one of the parts of split.parts ({', '.join(configured)}); "
+                               "elsewhere null")
+    h = f[held & f["part"].isin(configured)]
+    for column in ("group", "speaker") if config.split.group_by == "speaker" else ("group",):
+        first = h.drop_duplicates(column).set_index(column)["part"]
+        mask = h[column].map(first) != h["part"]
+        problems += _frame_problems("error", "part_leak", h, mask, column,
+                                    lambda r, c=column, first=first: (f"{_text(r[c])} in part {r['part']}, also "
+                                                                      f"in part {first[r[c]]}"),
+                                    f"each {column} in one held-out part")
+    return problems
 
 
 def _check_labelled_text(s: _Subsets) -> list[Problem]:
@@ -659,13 +696,37 @@ def _check_empty_subsets(s: _Subsets, config: Config) -> list[Problem]:
                                     f"{heldout.num_rows} clips, none with a transcript to score",
                                     f"at least one transcribed clip that no gate holds back, for split.heldout = "
                                     f"{spec!r}; {why}"))
+        else:
+            problems += _empty_parts(s, config)
+    return problems
+
+
+def _empty_parts(s: _Subsets, config: Config) -> list[Problem]:
+    """Each part of split.parts holds a scorable clip (a part without one has too few
+    groups, or lost every prompt to labelled under split.text_overlap = "unscore")."""
+    if not all(s.usable(HELDOUT, c) for c in ("part", "transcript", "quality_flags")):
+        return []
+    # Scorable as the split stage decides it (not the column, which _check_scorable checks).
+    barred = [*gates.holding_gates(config.quality.gate_actions), *ALWAYS_GATED_FLAGS, UNSCORED]
+    scorable = (np.asarray(pc.is_valid(s.column(HELDOUT, "transcript")), dtype=bool)
+                & ~s.list_members(HELDOUT, "quality_flags", barred))
+    parts = s.column(HELDOUT, "part").to_pylist()
+    problems = []
+    for spec in config.split.parts:
+        rows = [k for k, p in enumerate(parts) if p == spec.name]
+        if not any(scorable[k] for k in rows):
+            problems.append(Problem("error", "subset_empty", subset_manifest(HELDOUT), None, "part",
+                                    f"part {spec.name}: {len(rows)} clips, none scorable",
+                                    "a scorable clip in every part of split.parts: more groups with transcribed "
+                                    "audio, a larger target, or (if its prompts are all in labelled) "
+                                    'split.text_overlap = "demote"'))
     return problems
 
 
 def _check_scorable(s: _Subsets, config: Config) -> list[Problem]:
     """A row marked scorable carries its transcript and phones and no flag that a gate
     guarding scoring sets (the split stage's rule, :func:`pipeline.stages.split._subset_row`)."""
-    barred = [*gates.holding_gates(config.quality.gate_actions), *ALWAYS_GATED_FLAGS]
+    barred = [*gates.holding_gates(config.quality.gate_actions), *ALWAYS_GATED_FLAGS, UNSCORED]
     problems: list[Problem] = []
     for name in SUBSETS:
         if not all(s.usable(name, c) for c in ("scorable", "transcript", "phones", "quality_flags")):
@@ -956,7 +1017,8 @@ def _row_checks(s: _Subsets, read: _Manifests, out: Path,
         ("speaker_leak", lambda: _check_speaker_leak(s, config)),
         ("group_leak", lambda: _check_group_leak(s)),
         ("audio_leak", lambda: _check_audio_leak(s)),
-        ("text_leak", lambda: _check_text_leak(s)),
+        ("text_leak", lambda: _check_text_leak(s, config)),
+        ("part_column", lambda: _check_parts(s, config)),
         ("tiers", lambda: _check_tiers(s, config)),
         ("labelled_text", lambda: _check_labelled_text(s)),
         ("phone_inventory", lambda: _check_phones(s, out, config)),

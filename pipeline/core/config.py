@@ -11,6 +11,7 @@ import copy
 import dataclasses
 import hashlib
 import json
+import math
 import os
 import re
 import sys
@@ -108,9 +109,25 @@ class TextConfig:
 
 
 @dataclass(frozen=True)
+class PartSpec:
+    """One held-out part of ``split.parts``: its name, its target (a share of
+    ``split.heldout`` or a duration) and whether ``split.text_overlap`` applies to it."""
+
+    name: str
+    target: str
+    text_disjoint: bool = True
+
+
+@dataclass(frozen=True)
 class SplitConfig:
     group_by: str
     heldout: str
+    parts: tuple[PartSpec, ...]
+    text_overlap: str
+    balance_table: str
+    balance_speaker_column: str
+    balance_columns: tuple[str, ...]
+    balance_tolerance: float
     labelled_budgets: tuple[str, ...]
     selection: str
     keep_transcripts: bool
@@ -244,7 +261,7 @@ def _jsonable(section: Any) -> dict[str, Any]:
         if f.name in _TABLES:
             value = {k: dict(v) if isinstance(v, tuple) else v for k, v in value}
         elif isinstance(value, tuple):
-            value = list(value)
+            value = [dataclasses.asdict(v) if dataclasses.is_dataclass(v) else v for v in value]
         out[f.name] = value
     return out
 
@@ -389,7 +406,11 @@ def build_config(
     for name, cls in SECTIONS.items():
         values = dict(full[name])
         for f in dataclasses.fields(cls):
-            if f.name in _TABLES:
+            if f.name == "parts":
+                # text_disjoint left out means true, written out so the resolved config shows it.
+                values[f.name] = tuple(PartSpec(p["name"], p["target"], p.get("text_disjoint", True))
+                                       for p in values[f.name])
+            elif f.name in _TABLES:
                 values[f.name] = tuple(sorted((k, tuple(sorted(v.items())) if isinstance(v, dict) else v)
                                               for k, v in values[f.name].items()))
             elif isinstance(values[f.name], list):
@@ -425,6 +446,7 @@ def _check_cross_field(cfg: Config) -> None:
             "lexicon TSV (required when text.backend is \"lexicon\")"
         )
     _check_ingest(cfg)
+    _check_parts(cfg)
     budgets = cfg.split.labelled_budgets
     twice = sorted({b for b in budgets if budgets.count(b) > 1})
     if twice:
@@ -432,6 +454,40 @@ def _check_cross_field(cfg: Config) -> None:
             f"{cfg.origin('split.labelled_budgets')}: key 'split.labelled_budgets' has value {list(budgets)}; "
             f"allowed: each budget once ({', '.join(twice)} appears twice)"
         )
+
+
+def _check_parts(cfg: Config) -> None:
+    """split.parts: unique names, targets all shares adding up to 100 % or all durations
+    (with split.heldout unset), each above zero; balance columns with their table."""
+    sc = cfg.split
+    shown = json.dumps([dataclasses.asdict(p) for p in sc.parts])
+    where = cfg.origin("split.parts")
+    names = [p.name for p in sc.parts]
+    twice = sorted({n for n in names if names.count(n) > 1})
+    if twice:
+        raise ConfigError(f"{where}: key 'split.parts' has value {shown}; allowed: each part name once "
+                          f"({', '.join(twice)} appears twice)")
+    shares = [p for p in sc.parts if p.target.endswith("%")]
+    if shares and len(shares) != len(sc.parts):
+        raise ConfigError(f"{where}: key 'split.parts' has value {shown}; allowed: targets that are all shares "
+                          "of split.heldout (\"50%\") or all durations (\"30m\"), not a mix")
+    zero = [p.name for p in sc.parts if float(p.target.rstrip("%smh")) <= 0]
+    if zero:
+        raise ConfigError(f"{where}: key 'split.parts' has value {shown}; allowed: every target above zero "
+                          f"({', '.join(zero)} has none)")
+    total = math.fsum(float(p.target[:-1]) for p in shares)
+    if shares and abs(total - 100.0) > 1e-6:
+        raise ConfigError(f"{where}: key 'split.parts' has value {shown}; allowed: shares of split.heldout "
+                          f"that add up to 100% (these add up to {total:g}%)")
+    if not shares and "split.heldout" in cfg.file_keys | set(cfg.overridden):
+        raise ConfigError(f"{cfg.origin('split.heldout', 'split.parts')}: key 'split.heldout' has value "
+                          f"{json.dumps(sc.heldout)} while split.parts gives every part a duration ({shown}); "
+                          "allowed: one of the two (leave split.heldout unset: the held-out target is the parts' sum)")
+    if bool(sc.balance_table) != bool(sc.balance_columns):
+        raise ConfigError(f"{cfg.origin('split.balance_table', 'split.balance_columns')}: key "
+                          f"'split.balance_columns' has value {json.dumps(list(sc.balance_columns))} and "
+                          f"'split.balance_table' {json.dumps(sc.balance_table)}; allowed: both set (columns of "
+                          "that table) or both empty")
 
 
 def _check_ingest(cfg: Config) -> None:

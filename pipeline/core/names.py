@@ -14,10 +14,12 @@ LABELLED = "labelled"
 UNLABELLED = "unlabelled"
 HELDOUT = "heldout"
 SUBSETS = (LABELLED, UNLABELLED, HELDOUT)
+# The column naming a held-out row's part (split.parts); null in labelled and unlabelled.
+PART = "part"
 
 # Quality flags a subset row may carry (`quality_flags`), in the order they are listed.
 FLAGS = ("upsampled", "peak_limited", "noisy", "narrowband", "rate_outlier", "clipped", "near_duplicate",
-         "transcript_rejected", "heldout_untranscribed")
+         "transcript_rejected", "heldout_untranscribed", "prompt_in_labelled", "prompt_demoted")
 
 # Reason codes of rejected.parquet, in the order of the schema's enum.
 REASONS = (

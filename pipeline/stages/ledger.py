@@ -4,19 +4,19 @@ The ledger is what makes a rebuild stable: the split stage reads it before
 assigning anything and writes it after. It is meant to be committed beside the
 corpus config, so its format is plain text that diffs well::
 
-    # loam split ledger v1<TAB>group_by=speaker<TAB>seed=7<TAB>heldout=10%<TAB>budgets=10m,1h<TAB>selection=coverage
-    clip<TAB>alder_01-0123456789<TAB>labelled<TAB>10m,1h<TAB>alder
-    clip<TAB>wren_02-abcdef0123<TAB>heldout<TAB>-<TAB>wren
-    group<TAB>alder<TAB>training
-    group<TAB>wren<TAB>heldout
+    # loam split ledger v2<TAB>group_by=speaker<TAB>seed=7<TAB>heldout=10%<TAB>budgets=10m,1h<TAB>selection=coverage<TAB>parts=dev:50%,test:50%
+    clip<TAB>alder_01-0123456789<TAB>labelled<TAB>10m,1h<TAB>alder<TAB>-
+    clip<TAB>wren_02-abcdef0123<TAB>heldout<TAB>-<TAB>wren<TAB>test
+    group<TAB>alder<TAB>training<TAB>-
+    group<TAB>wren<TAB>heldout<TAB>test
     source<TAB>0123456789<TAB>present
     source<TAB>abcdef0123<TAB>gone
 
 The header records the settings the assignment was made with (budgets smallest
 first). Rows are sorted by kind, then id. A clip row gives its subset
 (``labelled``, ``unlabelled`` or ``heldout``), its labelled tiers
-(comma-separated, ``-`` for none) and its group; a group row gives its side
-(``heldout`` or ``training``). A group row is kept after the group's clips have
+(comma-separated, ``-`` for none), its group and its held-out part (``-`` outside
+held-out); a group row gives its side (``heldout`` or ``training``) and its part. A group row is kept after the group's clips have
 gone, so a speaker who comes back returns to the same side; so is the row of a
 clip that has gone, so the clip comes back to its subset even under another
 ``group_by``.
@@ -26,6 +26,13 @@ that end its ``source_id``) and says whether it was ``present`` at the last run 
 ``gone`` since. The source rows are the ledger's corpus identity: a rebuild is
 accepted when the corpus shares at least half of the smaller of the two source sets
 (see :func:`check_corpus`), whatever the folder is called or where it moved.
+
+Version 1 ledgers (written before held-out parts existed: no ``parts`` setting, clip
+rows of five fields, group rows of three) are read as they are, every held-out
+group and clip without a part (``""``); the split stage then divides the held-out
+groups among the configured parts without moving anything between held-out and
+training, and writes version 2. A held-out row may say ``-`` in version 2 too: a
+group gone since version 1 whose part is decided when it returns.
 
 This module knows the format and where the file lives; what a rebuild does with
 it is in :mod:`pipeline.stages.split`.
@@ -46,23 +53,28 @@ from pipeline.core.fsio import write_text_atomic
 from pipeline.core.names import LABELLED, LEDGER_IN_OUT, SUBSETS
 from pipeline.stages.paths import is_inside
 
-MAGIC = "# loam split ledger v1"
-SETTING_KEYS = ("group_by", "seed", "heldout", "budgets", "selection")
+MAGIC = "# loam split ledger v2"
+MAGIC_V1 = "# loam split ledger v1"
+SETTING_KEYS = ("group_by", "seed", "heldout", "budgets", "selection", "parts")
+SETTING_KEYS_V1 = SETTING_KEYS[:-1]
+_PART = re.compile(r"^[a-z][a-z0-9_]{0,31}$")
 SIDES = ("heldout", "training")
 SOURCE_STATES = ("present", "gone")
 _SOURCE_KEY = re.compile(r"^[0-9a-f]{10}$")
 NO_TIERS = "-"
 _BUDGET = re.compile(r"^[0-9]+(\.[0-9]+)?(s|m|h)$")
-_HEADER_EXAMPLE = f"{MAGIC}<TAB>group_by=...<TAB>seed=...<TAB>heldout=...<TAB>budgets=...<TAB>selection=..."
+_HEADER_EXAMPLE = f"{MAGIC}<TAB>group_by=...<TAB>seed=...<TAB>heldout=...<TAB>budgets=...<TAB>selection=...<TAB>parts=..."
 
 
 @dataclass(frozen=True)
 class ClipRecord:
-    """One clip's assignment: its subset, its labelled tiers (smallest first), its group."""
+    """One clip's assignment: its subset, its labelled tiers (smallest first), its group,
+    and its held-out part ("" outside held-out, or not yet decided)."""
 
     subset: str
     tiers: tuple[str, ...]
     group: str
+    part: str = ""
 
 
 def source_key(source_id: str) -> str:
@@ -122,13 +134,15 @@ class Ledger:
     ``settings`` holds the header's values as text (``budgets`` comma-separated,
     smallest first, or ``-``); ``groups`` maps a group id to ``heldout`` or
     ``training``; ``clips`` maps a clip id to its :class:`ClipRecord`; ``sources``
-    maps a source key (:func:`source_key`) to ``present`` or ``gone``.
+    maps a source key (:func:`source_key`) to ``present`` or ``gone``; ``parts`` maps
+    a held-out group to its part (a group missing there has none decided yet).
     """
 
     settings: Mapping[str, str]
     groups: Mapping[str, str] = field(default_factory=dict)
     clips: Mapping[str, ClipRecord] = field(default_factory=dict)
     sources: Mapping[str, str] = field(default_factory=dict)
+    parts: Mapping[str, str] = field(default_factory=dict)
 
     @property
     def budgets(self) -> tuple[str, ...]:
@@ -160,20 +174,21 @@ def format_ledger(ledger: Ledger) -> str:
     Examples
     --------
     >>> led = Ledger({"group_by": "speaker", "seed": "7", "heldout": "10%", "budgets": "1m",
-    ...               "selection": "coverage"}, {"wren": "heldout"},
-    ...              {"wren_01-0123456789": ClipRecord("heldout", (), "wren")})
+    ...               "selection": "coverage", "parts": "dev:50%,test:50%"}, {"wren": "heldout"},
+    ...              {"wren_01-0123456789": ClipRecord("heldout", (), "wren", "test")}, parts={"wren": "test"})
     >>> print(format_ledger(led), end="")  # doctest: +NORMALIZE_WHITESPACE
-    # loam split ledger v1	group_by=speaker	seed=7	heldout=10%	budgets=1m	selection=coverage
-    clip	wren_01-0123456789	heldout	-	wren
-    group	wren	heldout
+    # loam split ledger v2	group_by=speaker	seed=7	heldout=10%	budgets=1m	selection=coverage	parts=dev:50%,test:50%
+    clip	wren_01-0123456789	heldout	-	wren	test
+    group	wren	heldout	test
     """
     missing = [k for k in SETTING_KEYS if k not in ledger.settings]
     if missing:
         raise ValueError(f"ledger settings lack {', '.join(missing)}")
     header = "\t".join([MAGIC] + [f"{k}={ledger.settings[k]}" for k in SETTING_KEYS])
-    rows = [("clip", cid, f"clip\t{cid}\t{rec.subset}\t{_join_list(rec.tiers)}\t{rec.group}")
+    rows = [("clip", cid, f"clip\t{cid}\t{rec.subset}\t{_join_list(rec.tiers)}\t{rec.group}\t{rec.part or NO_TIERS}")
             for cid, rec in ledger.clips.items()]
-    rows += [("group", gid, f"group\t{gid}\t{side}") for gid, side in ledger.groups.items()]
+    rows += [("group", gid, f"group\t{gid}\t{side}\t{ledger.parts.get(gid) or NO_TIERS}")
+             for gid, side in ledger.groups.items()]
     rows += [("source", key, f"source\t{key}\t{state}") for key, state in ledger.sources.items()]
     rows.sort(key=lambda r: (r[0], r[1]))
     return "\n".join([header] + [r[2] for r in rows]) + "\n"
@@ -184,6 +199,7 @@ class _Parser:
 
     def __init__(self, source: str) -> None:
         self.source = source
+        self.v1 = False
 
     def fail(self, line_no: int, found: str, expected: str) -> UsageError:
         shown = found if len(found) <= 80 else found[:77] + "..."
@@ -194,21 +210,35 @@ class _Parser:
 
     def header(self, line: str) -> dict[str, str]:
         fields = line.split("\t")
-        if fields[0] != MAGIC:
+        if fields[0] not in (MAGIC, MAGIC_V1):
             raise self.fail(1, line, f"the header line {_HEADER_EXAMPLE!r}")
+        self.v1 = fields[0] == MAGIC_V1
+        keys = SETTING_KEYS_V1 if self.v1 else SETTING_KEYS
         settings: dict[str, str] = {}
         for item in fields[1:]:
             key, sep, value = item.partition("=")
-            if not sep or key not in SETTING_KEYS or key in settings or not value:
-                raise self.fail(1, item, f"one of each setting {', '.join(k + '=VALUE' for k in SETTING_KEYS)}")
+            if not sep or key not in keys or key in settings or not value:
+                raise self.fail(1, item, f"one of each setting {', '.join(k + '=VALUE' for k in keys)}")
             settings[key] = value
-        missing = [k for k in SETTING_KEYS if k not in settings]
+        missing = [k for k in keys if k not in settings]
         if missing:
             raise self.fail(1, line, f"a header with {', '.join(k + '=VALUE' for k in missing)}")
         for budget in _split_list(settings["budgets"]):
             if not _BUDGET.match(budget):
                 raise self.fail(1, settings["budgets"], "budgets=- or comma-separated durations such as 10m,1h")
+        settings.setdefault("parts", NO_TIERS)  # version 1: written before held-out parts
         return settings
+
+    def part(self, line_no: int, text: str, side: str) -> str:
+        """A row's part field: a part name for a held-out row (or ``-``, not yet decided),
+        ``-`` for any other."""
+        if text == NO_TIERS:
+            return ""
+        if side != "heldout":
+            raise self.fail(line_no, text, f"'-' as the part of a {side} row (only held-out rows have parts)")
+        if not _PART.match(text):
+            raise self.fail(line_no, text, "a part name (lower-case letters, digits, '_') or '-'")
+        return text
 
     def parse(self, text: str) -> Ledger:
         lines = text.split("\n")
@@ -219,7 +249,9 @@ class _Parser:
         settings = self.header(lines[0].rstrip("\r"))
         budgets = _split_list(settings["budgets"])
         groups: dict[str, str] = {}
+        parts: dict[str, str] = {}
         clips: dict[str, ClipRecord] = {}
+        extra = 0 if self.v1 else 1  # version 2 adds the part to clip and group rows
         clip_lines: dict[str, int] = {}
         sources: dict[str, str] = {}
         for line_no, raw_line in enumerate(lines[1:], start=2):
@@ -229,23 +261,30 @@ class _Parser:
             fields = line.split("\t")
             kind = fields[0]
             if kind == "group":
-                if len(fields) != 3 or not fields[1]:
-                    raise self.fail(line_no, line, "'group<TAB>id<TAB>side' (3 tab-separated fields)")
+                if len(fields) != 3 + extra or not fields[1]:
+                    raise self.fail(line_no, line, "'group<TAB>id<TAB>side<TAB>part' (4 tab-separated fields)"
+                                    if extra else "'group<TAB>id<TAB>side' (3 tab-separated fields)")
                 if fields[2] not in SIDES:
                     raise self.fail(line_no, fields[2], "a side: heldout or training")
                 if fields[1] in groups:
                     raise self.fail(line_no, fields[1], "each group id once")
                 groups[fields[1]] = fields[2]
+                part = self.part(line_no, fields[3], fields[2]) if extra else ""
+                if part:
+                    parts[fields[1]] = part
             elif kind == "clip":
-                if len(fields) != 5 or not fields[1] or not fields[4]:
-                    raise self.fail(line_no, line, "'clip<TAB>clip_id<TAB>subset<TAB>tiers<TAB>group' (5 tab-separated fields)")
-                cid, subset, tier_text, group = fields[1:]
+                if len(fields) != 5 + extra or not fields[1] or not fields[4]:
+                    raise self.fail(line_no, line, "'clip<TAB>clip_id<TAB>subset<TAB>tiers<TAB>group<TAB>part' "
+                                    "(6 tab-separated fields)" if extra else
+                                    "'clip<TAB>clip_id<TAB>subset<TAB>tiers<TAB>group' (5 tab-separated fields)")
+                cid, subset, tier_text, group = fields[1:5]
                 if subset not in SUBSETS:
                     raise self.fail(line_no, subset, "a subset: labelled, unlabelled or heldout")
                 if cid in clips:
                     raise self.fail(line_no, cid, "each clip id once")
                 tiers = self.tiers(line_no, tier_text, subset, budgets)
-                clips[cid] = ClipRecord(subset, tiers, group)
+                part = self.part(line_no, fields[5], subset) if extra else ""
+                clips[cid] = ClipRecord(subset, tiers, group, part)
                 clip_lines[cid] = line_no
             elif kind == "source":
                 if len(fields) != 3 or not _SOURCE_KEY.match(fields[1]) or fields[2] not in SOURCE_STATES:
@@ -258,7 +297,7 @@ class _Parser:
         for cid, rec in clips.items():
             if rec.group not in groups:
                 raise self.fail(clip_lines[cid], rec.group, "a group that has its own 'group' row")
-        return Ledger(settings, groups, clips, sources)
+        return Ledger(settings, groups, clips, sources, parts)
 
     def tiers(self, line_no: int, text: str, subset: str, budgets: tuple[str, ...]) -> tuple[str, ...]:
         tiers = _split_list(text)
@@ -291,10 +330,11 @@ def parse_ledger(text: str, *, source: str) -> Ledger:
 
     Examples
     --------
-    >>> text = ("# loam split ledger v1\\tgroup_by=clip\\tseed=0\\theldout=1m\\tbudgets=-\\t"
-    ...         "selection=random\\ngroup\\tg\\ttraining\\n")
-    >>> parse_ledger(text, source="x.tsv").groups
-    {'g': 'training'}
+    >>> text = ("# loam split ledger v2\\tgroup_by=clip\\tseed=0\\theldout=1m\\tbudgets=-\\t"
+    ...         "selection=random\\tparts=test:1m\\ngroup\\tg\\ttraining\\t-\\ngroup\\th\\theldout\\ttest\\n")
+    >>> led = parse_ledger(text, source="x.tsv")
+    >>> led.groups, led.parts
+    ({'g': 'training', 'h': 'heldout'}, {'h': 'test'})
     """
     return _Parser(source).parse(text)
 

@@ -10,13 +10,18 @@ stage
    outlier, clipped, see :mod:`pipeline.stages.gates`): each flags its clips, and a gate whose
    action is "demote" (by default noisy and speaking-rate outlier) keeps them out of
    labelled and out of held-out scoring, one whose action is "reject" sets them aside;
-3. holds out whole groups, chosen in a seeded hash order (see
-   :func:`group_rank_key`) until the held-out target is reached;
+3. holds out whole groups into the held-out parts (``split.parts``: dev and test by
+   default), chosen in a seeded hash order (see :func:`group_rank_key`), balanced by
+   speaker attributes and keeping shared prompts few (:mod:`pipeline.stages.heldout`),
+   until each part reaches its target;
 4. fills the nested labelled tiers from the training groups
-   (:mod:`pipeline.stages.selection`) and puts every other training clip in unlabelled;
+   (:mod:`pipeline.stages.selection`) and puts every other training clip in unlabelled,
+   keeping the prompts of text-disjoint parts apart from labelled as
+   ``split.text_overlap`` says (:mod:`pipeline.stages.prompts`);
 5. reads and rewrites the split ledger (:mod:`pipeline.stages.ledger`), so a rebuild keeps
-   every earlier assignment: a held-out clip never moves into training, and a
-   labelled clip leaves a tier only when its budget shrinks.
+   every earlier assignment: a held-out clip never moves into training or to another
+   part, and a labelled clip leaves a tier only when its budget shrinks (or it
+   loses its transcript, a gate or ``"demote"`` keeps it out).
 
 Held-out ranking. Group ``g`` (its id as text, UTF-8) under ``seed`` has the key
 ``hashlib.sha256(f"{seed}\\t{g}".encode("utf-8")).hexdigest()``; groups are taken
@@ -25,12 +30,11 @@ in ascending order of that hex digest. ``docs/split.md`` works an example.
 
 from __future__ import annotations
 
-import hashlib
 import math
 import re
 from collections import Counter, defaultdict
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -45,6 +49,7 @@ from pipeline.core.names import (
     FLAGS,
     HELDOUT,
     LABELLED,
+    PART,
     SUBSETS,
     UNLABELLED,
     stage_manifest,
@@ -53,6 +58,16 @@ from pipeline.core.names import (
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.signal.fingerprint import decode_fingerprint, find_near_duplicates
 from pipeline.stages import gates
+from pipeline.stages.attributes import Attributes, read_attributes
+from pipeline.stages.heldout import (
+    TRAINING,
+    GroupFacts,
+    PartTarget,
+    balance_table,
+    choose_parts,
+    part_targets_s,
+    rank_key,
+)
 from pipeline.stages.inventory import INVENTORY, ids_path, subset_phones, write_inventory
 from pipeline.stages.ledger import (
     ClipRecord,
@@ -64,15 +79,39 @@ from pipeline.stages.ledger import (
     source_key,
     write_ledger,
 )
+from pipeline.stages.prompts import DEMOTED, UNSCORED, prompt_key, prompt_set
 from pipeline.stages.review_apply import decisions_file, log_tally, split_exclusions
 from pipeline.stages.selection import Candidate, TierOutcome, TierPlan, fill_tiers
+from pipeline.stages.speakers import speaker_id
 
 NAME = "split"
 
 
 def extra_inputs(ctx: StageContext) -> list[Path]:
     ledger = locate_ledger(ctx.config, raw=ctx.raw, out=ctx.out)[0]
-    return [ledger, ids_path(ledger), decisions_file(ctx)]
+    table = ctx.config.split.balance_table
+    return [ledger, ids_path(ledger), decisions_file(ctx), *([ctx.raw / table] if table else [])]
+
+
+def read_balance(ctx: StageContext) -> Balance:
+    """``split.balance_columns`` with the balance table's attributes by speaker id (as
+    ingest writes the speaker: its id, or its pseudonym in a pseudonymised build)."""
+    sc, cfg = ctx.config.split, ctx.config
+    if not sc.balance_columns:
+        return Balance((), sc.balance_tolerance, {})
+    key: Any = speaker_id
+    if cfg.privacy.pseudonymise:
+        from pipeline.stages.privacy import load_key, pseudonym
+
+        secret = load_key(cfg.resolve_path(cfg.privacy.key_file), out=ctx.out)
+
+        def key(name: str) -> str:
+            return pseudonym(speaker_id(name), key=secret)
+
+    attributes = read_attributes(ctx.raw, sc.balance_table, speaker_column=sc.balance_speaker_column,
+                                 columns=sc.balance_columns, encoding=cfg.ingest.transcript_encoding,
+                                 speaker_key=key)
+    return Balance(tuple(sc.balance_columns), sc.balance_tolerance, attributes)
 
 
 def reuse_note(summary: dict[str, Any]) -> str:
@@ -106,71 +145,13 @@ def heldout_target_s(spec: str, *, transcribed_s: float) -> float:
     return parse_duration_s(spec)
 
 
-def group_rank_key(group_id: str, *, seed: int) -> str:
-    """Held-out ranking key: hex SHA-256 of ``f"{seed}\\t{group_id}"`` in UTF-8.
-
-    Groups are considered for held-out in ascending order of this key. It depends
-    on nothing but the seed and the group's own id, so adding a group never
-    reorders the others.
-
-    Examples
-    --------
-    >>> group_rank_key("wren", seed=7) == hashlib.sha256(b"7\\twren").hexdigest()
-    True
-    """
-    return hashlib.sha256(f"{seed}\t{group_id}".encode()).hexdigest()
+# Held-out ranking key (see pipeline.stages.heldout.rank_key).
+group_rank_key = rank_key
 
 
 def rank_groups(group_ids: Iterable[str], *, seed: int) -> list[str]:
     """``group_ids`` in held-out ranking order (ascending :func:`group_rank_key`)."""
     return sorted(set(group_ids), key=lambda g: (group_rank_key(g, seed=seed), g))
-
-
-def choose_heldout(
-    eligible_s: Mapping[str, float],
-    *,
-    seed: int,
-    target_s: float,
-    heldout_s: float = 0.0,
-    training_groups: int = 0,
-) -> list[str]:
-    """Groups to hold out, taken in ranking order until the held-out target is reached.
-
-    Parameters
-    ----------
-    eligible_s : Mapping[str, float]
-        Undecided groups and their eligible transcribed seconds; groups with none
-        are never held out.
-    seed : int
-        The corpus seed (see :func:`group_rank_key`).
-    target_s : float
-        Held-out target in eligible transcribed seconds.
-    heldout_s : float
-        Seconds already held out (groups the ledger fixed).
-    training_groups : int
-        Groups with eligible transcribed audio already fixed in training. A group is
-        never taken when it would leave no such group for training.
-
-    Returns
-    -------
-    list of str
-        The chosen groups, in ranking order.
-
-    Examples
-    --------
-    >>> choose_heldout({"a": 10.0, "b": 10.0, "c": 10.0}, seed=0, target_s=1000.0)  # never all
-    ['c', 'a']
-    """
-    ranked = [g for g in rank_groups(eligible_s, seed=seed) if eligible_s[g] > 0]
-    chosen: list[str] = []
-    for k, g in enumerate(ranked):
-        if heldout_s >= target_s:
-            break
-        if training_groups + len(ranked) - k - 1 < 1:
-            break
-        chosen.append(g)
-        heldout_s += eligible_s[g]
-    return chosen
 
 
 def merge_groups(base_groups: Sequence[str], pairs: Iterable[tuple[int, int]]) -> list[str]:
@@ -459,7 +440,11 @@ def _too_few_groups(group_by: str, eligible_groups: list[str]) -> DataError:
 
 @dataclass
 class Assignment:
-    """The outcome of the split before it becomes tables."""
+    """The outcome of the split before it becomes tables.
+
+    ``sides`` holds each group's side (held-out or training) and ``places`` its part or
+    ``"training"``; ``parts`` each held-out clip's part; ``unscored`` and ``demoted`` the
+    clips ``split.text_overlap`` took off scoring or out of labelled."""
 
     subset: dict[str, str]
     tiers: dict[str, tuple[str, ...]]
@@ -470,6 +455,12 @@ class Assignment:
     gated_out: int
     waiting: int
     lost_transcript: int
+    places: dict[str, str] = field(default_factory=dict)
+    parts: dict[str, str] = field(default_factory=dict)
+    unscored: frozenset[str] = frozenset()
+    demoted: frozenset[str] = frozenset()
+    demoted_labelled: int = 0
+    facts: dict[str, GroupFacts] = field(default_factory=dict)
 
 
 def _known_sides(groups: Mapping[str, list[Clip]], ledger: Ledger | None) -> tuple[dict[str, set[str]], list[str]]:
@@ -495,30 +486,43 @@ def _goes_heldout(c: Clip, side: str, known: Mapping[str, ClipRecord]) -> bool:
     return rec.subset == HELDOUT if rec is not None else side == HELDOUT
 
 
-def _choose_sides(groups: Mapping[str, list[Clip]], ledger: Ledger | None, *, seed: int,
-                  target_s: float) -> tuple[dict[str, str], list[str]]:
-    """Each group's side ("heldout" or "training"): the ledger's where it fixes one, else
-    chosen in ranking order until the held-out target is met; also the straddling groups."""
+def _known_part(members: Sequence[Clip], ids: set[str], ledger: Ledger, configured: Sequence[str]) -> str:
+    """The configured part the ledger gives a held-out group: its clips' part, else the
+    group row's; the first in config order when they differ; "" when none."""
+    found = {ledger.clips[c.clip_id].part for c in members if c.clip_id in ledger.clips}
+    if not found - {""}:
+        found = {ledger.parts.get(i, "") for i in ids}
+    return next((p for p in configured if p in found), "")
+
+
+def _choose_places(groups: Mapping[str, list[Clip]], ledger: Ledger | None, facts: Mapping[str, GroupFacts], *,
+                   seed: int, targets: Sequence[PartTarget], balance: Balance) -> tuple[dict[str, str], list[str]]:
+    """Each group's part or "training": the ledger's where it fixes one, else chosen by
+    :func:`pipeline.stages.heldout.choose_parts`; also the straddling groups."""
     known = ledger.clips if ledger is not None else {}
-    fixed, straddling = _known_sides(groups, ledger)
-    heldout_s = 0.0
+    fixed_sides, straddling = _known_sides(groups, ledger)
+    configured = [t.name for t in targets]
+    fixed: dict[str, str] = {}
+    pending: list[str] = []
     training_groups = 0
-    sides: dict[str, str] = {}
-    for g, side_set in fixed.items():
+    for g, side_set in fixed_sides.items():
         # A group whose known clips sit on both sides takes its new clips to held-out:
         # a copy of a held-out clip must not be trained on.
         side = HELDOUT if HELDOUT in side_set else "training"
-        sides[g] = side
-        eligible = [c for c in groups[g] if c.eligible]
-        heldout_s += math.fsum(c.duration_s for c in eligible if _goes_heldout(c, side, known))
-        training_groups += any(not _goes_heldout(c, side, known) for c in eligible)
-    undecided = {g: math.fsum(c.duration_s for c in members if c.eligible)
-                 for g, members in groups.items() if g not in fixed}
-    chosen = set(choose_heldout(undecided, seed=seed, target_s=target_s, heldout_s=heldout_s,
-                                training_groups=training_groups))
-    for g in undecided:
-        sides[g] = HELDOUT if g in chosen else "training"
-    return sides, straddling
+        if side == HELDOUT and ledger is not None:
+            part = _known_part(groups[g], {g} | {c.base_group for c in groups[g]}, ledger, configured)
+            if part:
+                fixed[g] = part
+            else:
+                pending.append(g)
+        else:
+            fixed[g] = TRAINING
+        training_groups += any(not _goes_heldout(c, side, known) for c in groups[g] if c.eligible)
+    if not targets:  # no held-out subset wanted: every undecided group trains
+        return {g: fixed.get(g, TRAINING) for g in groups}, straddling
+    places = choose_parts(facts, parts=targets, seed=seed, fixed=fixed, pending=pending,
+                          training_groups=training_groups, tolerance=balance.tolerance, columns=balance.columns)
+    return places, straddling
 
 
 @dataclass(frozen=True)
@@ -536,6 +540,7 @@ class Sorted:
 
 
 def _sort_clips(clips: Sequence[Clip], sides: Mapping[str, str], known: Mapping[str, ClipRecord]) -> Sorted:
+    """Each clip's subset before the tiers, and the training candidates by their past."""
     subset: dict[str, str] = {}
     labelled_before: list[str] = []
     new: list[str] = []
@@ -582,14 +587,93 @@ def _tier_plans(budgets: list[tuple[str, float]], ledger: Ledger | None,
     return plans, continues
 
 
-def assign(clips: Sequence[Clip], *, ledger: Ledger | None, seed: int, target_s: float,
-           budgets: list[tuple[str, float]], method: str) -> Assignment:
-    """Sides for groups, subsets for clips, tiers for labelled clips (see the module docstring)."""
+@dataclass(frozen=True)
+class Balance:
+    """``split.balance_columns``, ``split.balance_tolerance`` and the attributes by speaker id."""
+
+    columns: tuple[str, ...] = ()
+    tolerance: float = 0.1
+    attributes: Attributes = field(default_factory=dict)
+
+
+def group_facts(groups: Mapping[str, list[Clip]], balance: Balance) -> dict[str, GroupFacts]:
+    """Per group: eligible transcribed seconds, seconds per prompt, and the balance
+    attributes of its speaker (the one with the most eligible seconds in the group)."""
+    facts = {}
+    for g, members in groups.items():
+        eligible = [c for c in members if c.eligible]
+        prompts: dict[str, float] = defaultdict(float)
+        speakers: Counter[str] = Counter()
+        for c in eligible:
+            key = prompt_key(c.text["norm_text"]) if c.text else None
+            if key is not None:
+                prompts[key] += c.duration_s
+            speakers[c.speaker] += c.duration_s
+        main = min(speakers, key=lambda spk: (-speakers[spk], spk)) if speakers else members[0].speaker
+        attrs = balance.attributes.get(main, {})
+        facts[g] = GroupFacts(math.fsum(c.duration_s for c in eligible), dict(sorted(prompts.items())),
+                              {col: attrs.get(col, "") for col in balance.columns})
+    return facts
+
+
+def _clip_parts(clips: Sequence[Clip], subset: Mapping[str, str], places: Mapping[str, str],
+                known: Mapping[str, ClipRecord], configured: Sequence[str]) -> dict[str, str]:
+    """Each held-out clip's part: the ledger's when it names a configured one, else its group's."""
+    parts = {}
+    for c in clips:
+        if subset[c.clip_id] != HELDOUT:
+            continue
+        rec = known.get(c.clip_id)
+        mine = rec.part if rec is not None and rec.part in configured else ""
+        group_place = places.get(c.group, TRAINING)
+        parts[c.clip_id] = mine or (group_place if group_place != TRAINING else configured[0])
+    return parts
+
+
+def _demote(found: Sorted, clips: Sequence[Clip], parts: Mapping[str, str],
+            disjoint: set[str]) -> tuple[Sorted, frozenset[str], int]:
+    """``split.text_overlap = "demote"``: training candidates reading a prompt that a
+    text-disjoint part scores on leave the candidates; also how many were labelled."""
+    protected = prompt_set(c.text["norm_text"] for c in clips
+                           if c.eligible and c.text and parts.get(c.clip_id) in disjoint)
+    by_id = {c.clip_id: c for c in clips}
+    demoted = frozenset(cid for cid in found.items
+                        if by_id[cid].text and prompt_key(by_id[cid].text["norm_text"]) in protected)
+    if not demoted:
+        return found, demoted, 0
+    kept = [cid for cid in found.labelled_before if cid not in demoted]
+    return (replace(found, items={k: v for k, v in found.items.items() if k not in demoted}, labelled_before=kept,
+                    new=[cid for cid in found.new if cid not in demoted],
+                    reopened=[cid for cid in found.reopened if cid not in demoted]),
+            demoted, len(found.labelled_before) - len(kept))
+
+
+def _unscore(clips: Sequence[Clip], parts: Mapping[str, str], tiers: Mapping[str, tuple[str, ...]],
+             disjoint: set[str]) -> frozenset[str]:
+    """``split.text_overlap = "unscore"``: clips of text-disjoint parts whose prompt labelled holds."""
+    labelled = prompt_set(c.text["norm_text"] for c in clips if c.clip_id in tiers and c.text)
+    return frozenset(c.clip_id for c in clips if parts.get(c.clip_id) in disjoint and c.eligible and c.text
+                     and prompt_key(c.text["norm_text"]) in labelled)
+
+
+def assign(clips: Sequence[Clip], *, ledger: Ledger | None, seed: int, targets: Sequence[PartTarget],
+           budgets: list[tuple[str, float]], method: str, text_overlap: str = "unscore",
+           balance: Balance | None = None) -> Assignment:
+    """Places for groups, subsets and parts for clips, tiers for labelled clips (see the module docstring)."""
+    balance = balance or Balance()
     groups: dict[str, list[Clip]] = defaultdict(list)
     for c in clips:
         groups[c.group].append(c)
-    sides, straddling = _choose_sides(groups, ledger, seed=seed, target_s=target_s)
-    found = _sort_clips(clips, sides, ledger.clips if ledger is not None else {})
+    facts = group_facts(groups, balance)
+    places, straddling = _choose_places(groups, ledger, facts, seed=seed, targets=targets, balance=balance)
+    sides = {g: "training" if place == TRAINING else HELDOUT for g, place in places.items()}
+    known = ledger.clips if ledger is not None else {}
+    found = _sort_clips(clips, sides, known)
+    parts = _clip_parts(clips, found.subset, places, known, [t.name for t in targets])
+    disjoint = {t.name for t in targets if t.text_disjoint}
+    demoted, demoted_labelled = frozenset(), 0
+    if text_overlap == "demote":
+        found, demoted, demoted_labelled = _demote(found, clips, parts, disjoint)
     plans, continues = _tier_plans(budgets, ledger, found.labelled_before)
     outcomes = fill_tiers(plans, items=found.items, labelled_before=found.labelled_before, new=found.new,
                           reopened=found.reopened, method=method, seed=seed)
@@ -602,16 +686,26 @@ def assign(clips: Sequence[Clip], *, ledger: Ledger | None, seed: int, target_s:
         subset[cid] = LABELLED
     short = any(o.shortfall_s > 0 for o in outcomes)
     waiting = sum(1 for cid in found.reopened if cid not in tiers) if short else 0
+    unscored = _unscore(clips, parts, tiers, disjoint) if text_overlap == "unscore" else frozenset()
     return Assignment(subset, tiers, sides, outcomes, straddling, continues, found.gated_out, waiting,
-                      found.lost_transcript)
+                      found.lost_transcript, places=places, parts=parts, unscored=unscored, demoted=demoted,
+                      demoted_labelled=demoted_labelled, facts=facts)
 
 
-def _subset_row(c: Clip, subset: str, tiers: tuple[str, ...], *, keep_text: bool) -> dict[str, Any]:
+def _subset_row(c: Clip, subset: str, tiers: tuple[str, ...], *, keep_text: bool, part: str | None = None,
+                unscored: bool = False, demoted: bool = False) -> dict[str, Any]:
+    """One manifest row. A demoted clip (``split.text_overlap = "demote"``) loses its
+    transcript whatever ``split.keep_transcripts`` says; an unscored one keeps it but
+    is not scorable."""
     a = c.audio
-    text = c.text if keep_text else None
+    text = c.text if keep_text and not demoted else None
     flags = set(c.flags)
     if subset == HELDOUT and not c.transcribed:
         flags.add("heldout_untranscribed")
+    if unscored:
+        flags.add(UNSCORED)
+    if demoted:
+        flags.add(DEMOTED)
     return {
         **{k: a[k] for k in ("clip_id", "speaker", "audio_path", "audio_sha256", "sample_rate", "num_samples",
                              "duration_s", "source_path", "source_start_s", "source_end_s", "loudness_lufs",
@@ -632,7 +726,8 @@ def _subset_row(c: Clip, subset: str, tiers: tuple[str, ...], *, keep_text: bool
         "quality_flags": [f for f in FLAGS if f in flags],
         # Eligible means transcribed and not held back by a gate; the row must also
         # carry its transcript and phones (unlabelled rows may drop them).
-        "scorable": bool(c.eligible and text is not None and c.plain_phones),
+        "scorable": bool(c.eligible and text is not None and c.plain_phones and not unscored),
+        PART: part if subset == HELDOUT else None,
     }
 
 
@@ -664,6 +759,7 @@ def _changes(ledger: Ledger | None, assignment: Assignment, present: set[str]) -
     moved: Counter[str] = Counter()
     joined: Counter[str] = Counter()
     left: Counter[str] = Counter()
+    part_moves: Counter[str] = Counter()
     for cid, subset in assignment.subset.items():
         rec = old.get(cid)
         if rec is None:
@@ -671,6 +767,10 @@ def _changes(ledger: Ledger | None, assignment: Assignment, present: set[str]) -
             continue
         if rec.subset != subset:
             moved[f"{rec.subset}->{subset}"] += 1
+        part = assignment.parts.get(cid, "")
+        if rec.subset == HELDOUT and rec.part != part:
+            # From no part: a version 1 ledger's held-out clip divided among the parts.
+            part_moves[f"{rec.part or '(none)'}->{part}"] += 1
         now = set(assignment.tiers.get(cid, ()))
         before = {renamed.get(t, t) for t in rec.tiers}
         for t in now - before:
@@ -684,6 +784,8 @@ def _changes(ledger: Ledger | None, assignment: Assignment, present: set[str]) -
         "added": {s: added[s] for s in SUBSETS},
         "removed": {s: removed[s] for s in SUBSETS},
         "moved": dict(sorted(moved.items())),
+        "parts_moved": dict(sorted(part_moves.items())),
+        "prompt_demoted": assignment.demoted_labelled,
         "tiers_joined": dict(sorted(joined.items())),
         "tiers_left": dict(sorted(left.items())),
         "renamed_tiers": {n: o for n, o in sorted(assignment.continues.items()) if n != o},
@@ -706,6 +808,9 @@ def _log_changes(ctx: StageContext, changes: dict[str, Any], ledger_path: str, u
         ctx.log.warning("split: %d groups have ledger clips on both sides since new near-duplicates bound them "
                         "(%s); earlier clips keep their subsets and new ones go to held-out; --fresh regroups",
                         len(changes["straddling_groups"]), ", ".join(changes["straddling_groups"][:5]))
+    if changes["parts_moved"]:
+        ctx.log.warning("split: held-out clips given a part (from a version 1 ledger, or a part no longer in "
+                        "split.parts): %s", fmt(changes["parts_moved"]))
     if changes["gated_out"]:
         ctx.log.warning("split: %d labelled clips of the ledger now fail a quality gate and moved to "
                         "unlabelled (see their flags)", changes["gated_out"])
@@ -741,18 +846,23 @@ def _gate_rejects(clips: Sequence[Clip], cfg: Config) -> tuple[list[dict[str, An
     return rejects, [c for c in clips if c.clip_id not in rejected]
 
 
-def _heldout_target(ctx: StageContext, kept: Sequence[Clip]) -> tuple[float, float]:
-    """The eligible transcribed seconds and the held-out target; DataError when a
-    held-out subset is wanted but fewer than two groups could share the audio."""
+def _heldout_target(ctx: StageContext, kept: Sequence[Clip]) -> tuple[float, float, list[PartTarget]]:
+    """The eligible transcribed seconds, the held-out target and each part's; DataError
+    when a held-out subset is wanted but fewer than two groups could share the audio."""
     sc = ctx.config.split
     eligible_s = math.fsum(c.duration_s for c in kept if c.eligible)
-    target_s = heldout_target_s(sc.heldout, transcribed_s=eligible_s)
+    specs = [(p.name, p.target, p.text_disjoint) for p in sc.parts]
+    if all(p.target.endswith("%") for p in sc.parts):
+        targets = part_targets_s(specs, heldout_s=heldout_target_s(sc.heldout, transcribed_s=eligible_s))
+    else:  # every part a duration (the config checks): the held-out target is their sum
+        targets = part_targets_s(specs, heldout_s=0.0)
+    target_s = math.fsum(t.target_s for t in targets)
     eligible_groups = sorted({c.group for c in kept if c.eligible})
     if target_s > 0 and len(eligible_groups) < 2:
         raise _too_few_groups(sc.group_by, eligible_groups)
     if not eligible_groups:
         ctx.log.warning("split: no clip has an eligible transcript; labelled and held-out are empty")
-    return eligible_s, target_s
+    return eligible_s, target_s, targets
 
 
 @dataclass(frozen=True)
@@ -807,7 +917,9 @@ def _subset_tables(ctx: StageContext, by_subset: Mapping[str, list[Clip]],
     tables = {}
     for s in SUBSETS:
         rows = [_subset_row(c, s, assignment.tiers.get(c.clip_id, ()),
-                            keep_text=s != UNLABELLED or ctx.config.split.keep_transcripts) for c in by_subset[s]]
+                            keep_text=s != UNLABELLED or ctx.config.split.keep_transcripts,
+                            part=assignment.parts.get(c.clip_id), unscored=c.clip_id in assignment.unscored,
+                            demoted=s == UNLABELLED and c.clip_id in assignment.demoted) for c in by_subset[s]]
         tables[subset_manifest(s)] = ("subset", table_from_rows("subset", rows))
     for rel, (schema, table) in tables.items():
         validate_table(schema, table, where=str(ctx.out / rel))
@@ -846,12 +958,13 @@ def run(ctx: StageContext) -> StageResult:
     rejects, excluded, review, review_path = split_exclusions(ctx, clips)
     gate_rejects, kept = _gate_rejects([c for c in clips if c.clip_id not in excluded], cfg)
     rejects += gate_rejects
-    eligible_s, target_s = _heldout_target(ctx, kept)
+    eligible_s, target_s, targets = _heldout_target(ctx, kept)
     sources = {source_key(c.audio["source_id"]) for c in clips}
     use = _open_ledger(ctx, sources)
     ledger = use.ledger
-    assignment = assign(kept, ledger=ledger, seed=cfg.seed, target_s=target_s, budgets=budgets,
-                        method=sc.selection)
+    balance = read_balance(ctx)
+    assignment = assign(kept, ledger=ledger, seed=cfg.seed, targets=targets, budgets=budgets,
+                        method=sc.selection, text_overlap=sc.text_overlap, balance=balance)
 
     by_subset: dict[str, list[Clip]] = {s: [] for s in SUBSETS}
     for c in kept:
@@ -862,7 +975,8 @@ def run(ctx: StageContext) -> StageResult:
     present = {c.clip_id for c in kept}
     new_ledger = _next_ledger(ledger, assignment, kept, sources, cfg_settings={
         "group_by": sc.group_by, "seed": str(cfg.seed), "heldout": sc.heldout,
-        "budgets": ",".join(b for b, _ in budgets) or "-", "selection": sc.selection})
+        "budgets": ",".join(b for b, _ in budgets) or "-", "selection": sc.selection,
+        "parts": ",".join(f"{p.name}:{p.target}" for p in sc.parts)})
     write_ledger(use.path, new_ledger)
     write_inventory(ctx.out, use.path, subset_phones(tables), boundary=cfg.text.word_boundary,
                     classify=cfg.text.backend != "graphemes")
@@ -875,6 +989,11 @@ def run(ctx: StageContext) -> StageResult:
                        group_by=sc.group_by, orphans=orphans,
                        rejected={f"rejected_{g}": sum(r["reason"] == g for r in rejects)
                                  for g in gates.GATES if "reject" in gates.ACTIONS[g]})
+    scorable = {cid for _, table in tables.values() for cid, ok in
+                zip(table.column("clip_id").to_pylist(), table.column("scorable").to_pylist(), strict=True) if ok}
+    summary.update(parts_summary(by_subset, assignment, targets, balance, text_overlap=sc.text_overlap,
+                                 scorable=scorable))
+    _log_parts(ctx, summary)
     summary["changes"] = changes
     summary["shortfalls"] = shortfalls
     summary["review"] = review.summary(review_path)
@@ -883,6 +1002,24 @@ def run(ctx: StageContext) -> StageResult:
     shown = use.path.relative_to(ctx.out) if use.path.is_relative_to(ctx.out) else use.path
     summary["ledger"] = {"path": str(shown), "where": use.where, "read": ledger is not None, "fresh": use.fresh}
     return StageResult(manifests=tables, rejects=rejects, summary=summary)
+
+
+def _log_parts(ctx: StageContext, summary: Mapping[str, Any]) -> None:
+    """Each part's size, what text-disjointness cost, and a part short of its target."""
+    for name, p in summary["parts"].items():
+        ctx.log.info("split: part %s: %d clips, %.1f s (%.1f s scorable), %d speakers; target %.1f s",
+                     name, p["clips"], p["seconds"], p["scorable_seconds"], p["speakers"], p["target_s"])
+        if p["target_s"] > 0 and not p["scorable_clips"]:
+            ctx.log.warning("split: part %s has no scorable clip (too few groups, or every prompt of it is in "
+                            "labelled: see text_overlap in the report)", name)
+    cost = summary["text_overlap"]
+    if cost["unscored_clips"] or cost["demoted_clips"]:
+        ctx.log.info("split: text_overlap = %s: %d held-out clips (%.4f h) not scorable, %d training clips "
+                     "(%.4f h) kept out of labelled", cost["mode"], cost["unscored_clips"], cost["unscored_hours"],
+                     cost["demoted_clips"], cost["demoted_hours"])
+    if not summary["balance"]["met"]:
+        ctx.log.warning("split: the held-out parts could not all be balanced within %g of the corpus shares "
+                        "(see balance in the report)", summary["balance"]["tolerance"])
 
 
 def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[Clip], sources: set[str],
@@ -897,21 +1034,25 @@ def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[C
     keeps its subset like any clip of the ledger; its source stays as ``gone``.
     """
     groups = dict(assignment.sides)
-    clips = {c.clip_id: ClipRecord(assignment.subset[c.clip_id], assignment.tiers.get(c.clip_id, ()), c.group)
-             for c in kept}
+    parts = {g: place for g, place in assignment.places.items() if place != TRAINING}
+    clips = {c.clip_id: ClipRecord(assignment.subset[c.clip_id], assignment.tiers.get(c.clip_id, ()), c.group,
+                                   assignment.parts.get(c.clip_id, "")) for c in kept}
     known = dict.fromkeys(sorted(sources), "present")
     budgets = _budget_names(cfg_settings["budgets"])
     if ledger is not None:
         # Keep the side of a group whose clips are all gone, so it returns to the same side.
         current = set(groups) | {c.base_group for c in kept}
         groups.update({g: side for g, side in ledger.groups.items() if g not in current})
+        parts.update({g: part for g, part in ledger.parts.items() if g not in current})
         for cid, rec in ledger.clips.items():
             if cid not in clips:
                 clips[cid] = _gone_record(rec, budgets, assignment.continues)
                 # Every clip row names a group that has a row (the parser checks).
                 groups.setdefault(rec.group, ledger.groups[rec.group])
+                if rec.group in ledger.parts:
+                    parts.setdefault(rec.group, ledger.parts[rec.group])
         known.update({k: "gone" for k in ledger.sources if k not in known})
-    return Ledger(cfg_settings, groups, clips, dict(sorted(known.items())))
+    return Ledger(cfg_settings, groups, clips, dict(sorted(known.items())), parts)
 
 
 def _budget_names(text: str) -> tuple[str, ...]:
@@ -935,7 +1076,7 @@ def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment
              orphans: int, rejected: dict[str, int]) -> dict[str, Any]:
     inventory = set().union(*(set(c.plain_phones) for c in kept if c.transcribed)) if kept else set()
     subsets = {s: _describe(by_subset[s], inventory) for s in SUBSETS}
-    scored = [c for c in by_subset[HELDOUT] if c.eligible]
+    scored = [c for c in by_subset[HELDOUT] if c.eligible and c.clip_id not in assignment.unscored]
     subsets[HELDOUT]["scored_clips"] = len(scored)
     subsets[HELDOUT]["scored_hours"] = _hours(math.fsum(c.duration_s for c in scored))
     by_id = {c.clip_id: c for c in kept}
@@ -969,6 +1110,53 @@ def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment
         "near_duplicate_pairs": [
             {"clips": [clips[p.first].clip_id, clips[p.second].clip_id], "similarity": round(p.similarity, 4),
              "identical": p.identical} for p in pairs],
+    }
+
+
+def sizes(clips: Sequence[Clip], scorable: set[str]) -> dict[str, Any]:
+    """Clips, hours, scorable clips and hours, speakers and groups, and the untranscribed
+    audio among them (in held-out: audio of held-out speakers withheld from training)."""
+    seconds = math.fsum(c.duration_s for c in clips)
+    scored = math.fsum(c.duration_s for c in clips if c.clip_id in scorable)
+    untranscribed = [c for c in clips if not c.transcribed]
+    return {
+        "clips": len(clips), "seconds": round(seconds, 3), "hours": _hours(seconds),
+        "scorable_clips": sum(c.clip_id in scorable for c in clips), "scorable_seconds": round(scored, 3),
+        "scorable_hours": _hours(scored), "speakers": len({c.speaker for c in clips}),
+        "groups": len({c.group for c in clips}), "untranscribed_clips": len(untranscribed),
+        "untranscribed_seconds": round(math.fsum(c.duration_s for c in untranscribed), 3),
+    }
+
+
+def parts_summary(by_subset: Mapping[str, list[Clip]], assignment: Assignment, targets: Sequence[PartTarget],
+                  balance: Balance, *, text_overlap: str, scorable: set[str]) -> dict[str, Any]:
+    """The summary's ``sizes`` (per subset), ``parts`` (per held-out part, with its target),
+    ``text_overlap`` (what keeping test prompts apart cost) and ``balance`` sections."""
+    held = by_subset[HELDOUT]
+    parts = {}
+    for t in targets:
+        members = [c for c in held if assignment.parts.get(c.clip_id) == t.name]
+        parts[t.name] = {**sizes(members, scorable), "target_s": round(t.target_s, 3),
+                         "text_disjoint": t.text_disjoint}
+    unscored = [c for c in held if c.clip_id in assignment.unscored]
+    demoted = [c for c in by_subset[UNLABELLED] if c.clip_id in assignment.demoted]
+    cost = {
+        "mode": text_overlap,
+        "parts": [t.name for t in targets if t.text_disjoint],
+        "unscored_clips": len(unscored),
+        "unscored_hours": _hours(math.fsum(c.duration_s for c in unscored)),
+        "demoted_clips": len(demoted),
+        "demoted_hours": _hours(math.fsum(c.duration_s for c in demoted)),
+        "demoted_were_labelled": assignment.demoted_labelled,
+    }
+    rows = balance_table(assignment.facts, assignment.places, parts=[t.name for t in targets],
+                         columns=balance.columns, tolerance=balance.tolerance)
+    return {
+        "sizes": {s: sizes(by_subset[s], scorable) for s in SUBSETS},
+        "parts": parts,
+        "text_overlap": cost,
+        "balance": {"columns": list(balance.columns), "tolerance": balance.tolerance, "rows": rows,
+                    "met": all(r["within"] for r in rows)},
     }
 
 
