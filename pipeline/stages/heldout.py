@@ -208,15 +208,22 @@ def choose_parts(facts: Mapping[str, GroupFacts], *, parts: Sequence[PartTarget]
         part = min(state.part_s, key=lambda p: (state.fill(p), [q.name for q in parts].index(p)))
         state.add(g, part)
         out[g] = part
-    undecided = [g for g in sorted(facts, key=lambda g: (rank_key(g, seed=seed), g))
-                 if g not in out and facts[g].seconds > 0]
+    ranked = [g for g in sorted(facts, key=lambda g: (rank_key(g, seed=seed), g))
+              if g not in out and facts[g].seconds > 0]
     order = [p.name for p in parts]
-    while undecided and training_groups + len(undecided) > 1:
+    # Without balance columns or a prompt read by two groups every candidate ties: the
+    # ranking decides alone, and no candidate needs weighing.
+    weigh = bool(columns) or any(n > 1 for n in state.all_readers.values())
+    taken: set[str] = set()
+    start, left = 0, len(ranked)
+    while left and training_groups + left > 1:
         open_parts = [p for p in order if state.fill(p) < 1.0]
         if not open_parts:
             break
         part = min(open_parts, key=lambda p: (state.fill(p), order.index(p)))
-        window = undecided[:WINDOW]
+        while ranked[start] in taken:
+            start += 1
+        window = _window(ranked, taken, start) if weigh else [ranked[start]]
 
         def score(k: int, part: str = part, window: list[str] = window) -> tuple[float, float, int]:
             g = window[k]
@@ -226,10 +233,22 @@ def choose_parts(facts: Mapping[str, GroupFacts], *, parts: Sequence[PartTarget]
         best = window[min(range(len(window)), key=score)]
         state.add(best, part)
         out[best] = part
-        undecided.remove(best)
+        taken.add(best)
+        left -= 1
     for g in facts:
         out.setdefault(g, TRAINING)
     return dict(sorted(out.items()))
+
+
+def _window(ranked: Sequence[str], taken: set[str], start: int) -> list[str]:
+    """The first :data:`WINDOW` groups of ``ranked`` from ``start`` that are not taken."""
+    window: list[str] = []
+    k = start
+    while k < len(ranked) and len(window) < WINDOW:
+        if ranked[k] not in taken:
+            window.append(ranked[k])
+        k += 1
+    return window
 
 
 def balance_table(facts: Mapping[str, GroupFacts], places: Mapping[str, str], *, parts: Sequence[str],
