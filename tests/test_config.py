@@ -202,6 +202,22 @@ def test_speakers_from_metadata_need_a_metadata_table(tmp_path: Path) -> None:
         load_config(path)
 
 
+def test_one_speaker_and_speakers_from_metadata_exclude_each_other(tmp_path: Path) -> None:
+    path = write(tmp_path, '[ingest]\nspeaker = "narrator"\nspeaker_from = "metadata"\nmetadata = "m.csv"\n')
+    with pytest.raises(ConfigError, match=rf"^{re.escape(str(path))}: key 'ingest.speaker' has value \"narrator\"; "
+                                          r"allowed: empty when ingest.speaker_from is \"metadata\""):
+        load_config(path)
+    assert load_config(write(tmp_path, '[ingest]\nspeaker = "narrator"\n')).ingest.speaker == "narrator"
+
+
+def test_one_named_speaker_is_refused_in_a_pseudonymised_build(tmp_path: Path) -> None:
+    # The resolved config is shared with a pseudonymised build: it must not name the speaker.
+    path = write(tmp_path, '[ingest]\nspeaker = "narrator"\n[privacy]\npseudonymise = true\nkey_file = "k"\n')
+    with pytest.raises(ConfigError, match=r"key 'ingest.speaker' has value \"narrator\"; allowed: empty when "
+                                          r"privacy.pseudonymise is true"):
+        load_config(path)
+
+
 def test_duplicate_budget_stops_at_load(tmp_path: Path) -> None:
     path = write(tmp_path, '[split]\nlabelled_budgets = ["1h", "10m", "1h"]\n')
     with pytest.raises(ConfigError, match=rf"^{re.escape(str(path))}: key 'split.labelled_budgets' has value "

@@ -39,6 +39,7 @@ class RunConfig:
 @dataclass(frozen=True)
 class IngestConfig:
     extensions: tuple[str, ...]
+    speaker: str
     speaker_from: str
     speaker_path_level: int
     sidecar_extension: str
@@ -497,6 +498,19 @@ def _check_ingest(cfg: Config) -> None:
             f"{cfg.origin('ingest.metadata', 'ingest.speaker_from')}: key 'ingest.metadata' is empty; allowed: "
             "the metadata table (CSV or TSV, relative to RAW) to take speakers from (required when "
             "ingest.speaker_from is \"metadata\")"
+        )
+    if i.speaker and i.speaker_from == "metadata":
+        raise ConfigError(
+            f"{cfg.origin('ingest.speaker', 'ingest.speaker_from')}: key 'ingest.speaker' has value "
+            f"{json.dumps(i.speaker)}; allowed: empty when ingest.speaker_from is \"metadata\" (one speaker "
+            "for the whole dump, or each file's speaker from the metadata table, not both)"
+        )
+    if i.speaker and cfg.privacy.pseudonymise:
+        raise ConfigError(
+            f"{cfg.origin('ingest.speaker', 'privacy.pseudonymise')}: key 'ingest.speaker' has value "
+            f"{json.dumps(i.speaker)}; allowed: empty when privacy.pseudonymise is true (config.resolved.json, "
+            "which is shared with the build, would name the speaker; a flat dump is one speaker without it, "
+            "or take the speaker from a metadata column)"
         )
     try:
         # An unknown name, or a codec that is not bytes -> text (base64, rot13), raises

@@ -30,6 +30,7 @@ from pipeline.core.names import stage_manifest
 from pipeline.core.parallel import map_ordered
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.stages.paths import check_relative_path, is_inside
+from pipeline.stages.speaker_source import SpeakerRule, path_speaker, speaker_rule
 from pipeline.stages.speakers import speaker_id
 from pipeline.stages.transcripts import (
     MetadataRow,
@@ -321,22 +322,26 @@ def _metadata_by_audio(ctx: StageContext, path_set: set[str]) -> tuple[dict[str,
     return by_audio, count, rejects
 
 
-def _speaker(ctx: StageContext, rel: str, rows: list[MetadataRow], via: str) -> str | dict[str, Any]:
-    """The speaker name of one audio file, or the reject row saying why there is none."""
+def _speaker(ctx: StageContext, rel: str, rows: list[MetadataRow], via: str,
+             rule: SpeakerRule) -> str | dict[str, Any]:
+    """The speaker name of one audio file, or the reject row saying why there is none
+    (``rule`` from :func:`pipeline.stages.speaker_source.speaker_rule`)."""
     cfg = ctx.config.ingest
-    if cfg.speaker_from == "metadata":
+    if rule.constant is not None:
+        return rule.constant
+    if rule.origin == "metadata":
         speakers = {r.speaker for r in rows if r.speaker}
         if len(speakers) != 1:
             found = "none" if not speakers else ", ".join(sorted(speakers))
             return reject(NAME, rel, "missing_speaker",
                           f"{rel}: column '{cfg.metadata_speaker_column}' gives speaker {found}; expected exactly one{via}")
         return speakers.pop()
-    parts = rel.split("/")[:-1]
-    if len(parts) <= cfg.speaker_path_level:
+    name = path_speaker(rel, level=cfg.speaker_path_level)
+    if name is None:
         return reject(NAME, rel, "missing_speaker",
                       f"{rel}: no folder at level {cfg.speaker_path_level} to name the speaker; "
-                      f"expected RAW/<speaker>/.../<file>{via}")
-    return parts[cfg.speaker_path_level]
+                      f"expected RAW/<speaker>/.../<file>, or ingest.speaker for a one-speaker dump{via}")
+    return name
 
 
 def _sidecars_by_stem(sidecars: set[str]) -> dict[str, str]:
@@ -358,7 +363,7 @@ class Fate:
 
 
 def _ingest_file(ctx: StageContext, rel: str, probe: dict[str, Any], rows: list[MetadataRow], *,
-                 kept_by_hash: dict[str, str], sidecar: str | None) -> Fate:
+                 kept_by_hash: dict[str, str], sidecar: str | None, rule: SpeakerRule) -> Fate:
     """One audio file's fate: probe error, duplicate content, no speaker, or an ingest
     row with its transcript paired. ``kept_by_hash`` maps the hashes of the files kept
     so far to their paths, and gains this one when it is kept."""
@@ -373,7 +378,7 @@ def _ingest_file(ctx: StageContext, rel: str, probe: dict[str, Any], rows: list[
                                   f"{rel}: byte-identical to {kept_by_hash[probe['sha256']]!r}, which is kept{via}"),))
     kept_by_hash[probe["sha256"]] = rel
     rows, repeats = collapse_rows(rows, rel, table_rel)
-    speaker_name = _speaker(ctx, rel, rows, via)
+    speaker_name = _speaker(ctx, rel, rows, via, rule)
     if isinstance(speaker_name, dict):
         return Fate(None, (*repeats, speaker_name))
     pairing = pair_transcript(ctx.raw, rel, rows, sidecar, table_rel=table_rel,
@@ -415,17 +420,21 @@ def run(ctx: StageContext) -> StageResult:
     by_audio, metadata_rows, meta_rejects = _metadata_by_audio(ctx, path_set)
     rejects.extend(meta_rejects)
 
+    rule = speaker_rule(paths, speaker=cfg.speaker, speaker_from=cfg.speaker_from)
+    if rule.note:
+        ctx.log.info("%s", rule.note)
     probes = _probe_all(ctx, ctx.raw, paths)
     accepted: list[dict[str, Any]] = []
     kept_by_hash: dict[str, str] = {}
     for rel, probe in zip(paths, probes, strict=True):
         fate = _ingest_file(ctx, rel, probe, by_audio.get(rel, []), kept_by_hash=kept_by_hash,
-                            sidecar=sidecar_by_stem.get(posixpath.splitext(rel)[0]))
+                            sidecar=sidecar_by_stem.get(posixpath.splitext(rel)[0]), rule=rule)
         rejects.extend(fate.rejects)
         if fate.row is not None:
             accepted.append(fate.row)
 
-    summary = _summary(accepted, rejects, paths=path_set, metadata_rows=metadata_rows)
+    summary = {**_summary(accepted, rejects, paths=path_set, metadata_rows=metadata_rows),
+               "speaker_from": rule.origin}
     stop = environment_failure(rejects, paths=path_set, metadata_rows=metadata_rows, accepted=len(accepted))
     if ctx.config.privacy.pseudonymise:
         _pseudonymise(ctx, accepted, rejects, paths=paths,
