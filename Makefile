@@ -22,7 +22,7 @@ WORKERS_FLAG := $(if $(WORKERS),--workers $(WORKERS),)
 
 all: prepare report
 	@$(BIN)/loam validate "$(OUT)" > "$(OUT)/logs/validate.txt" || (cat "$(OUT)/logs/validate.txt"; exit 1)
-	@tail -n 3 "$(OUT)/logs/validate.txt"
+	@tail -n 4 "$(OUT)/logs/validate.txt"
 	@echo "manifests: $(OUT)/manifests/  report: $(OUT)/report/index.html"
 
 help:

@@ -27,7 +27,13 @@ import pyarrow as pa
 
 from pipeline import __version__
 from pipeline.commands.languages import language_rates
-from pipeline.commands.validate import check_out_folder, load_resolved_config, phone_inventory
+from pipeline.commands.validate import (
+    check_out_folder,
+    heldout_sentence,
+    heldout_sharing,
+    load_resolved_config,
+    phone_inventory,
+)
 from pipeline.core.config import Config, parse_duration_s
 from pipeline.core.errors import ManifestError
 from pipeline.core.fsio import write_text_atomic
@@ -399,6 +405,8 @@ def build_summary(out: Path, *, clips: pd.DataFrame | None = None) -> dict[str, 
         "languages": language_rates(_read_optional(out / stage_manifest("text"))),
         "rejects": _rejects_section(load_rejects(out)),
         "speakers": _speakers_section(clips),
+        "heldout": heldout_sharing(lambda column: clips[[column, "subset_file"]].rename(columns={"subset_file": "_file"}),
+                                   group_by=config.split.group_by),
         "quality": _quality_section(clips, split_summary),
         "shortfalls": split_summary.get("shortfalls"),
         "changes": split_summary.get("changes"),
@@ -696,7 +704,12 @@ def _subsets_html(s: dict[str, Any]) -> list[str]:
         f"<p>Held-out clips that can be scored: {h['scorable_clips']}, {_num(h['scorable_hours'], 3)} h. "
         f"Untranscribed audio of held-out {esc(s['split_by'])}s, withheld from training: "
         f"{h['untranscribed_clips']} clips, {hms(h['untranscribed_seconds'])}.</p>",
+        f"<p>{esc(_sentence_case(heldout_sentence(s['heldout'])))}.</p>",
     ]
+
+
+def _sentence_case(text: str) -> str:
+    return text[:1].upper() + text[1:]
 
 
 def _parts_html(s: dict[str, Any]) -> list[str]:

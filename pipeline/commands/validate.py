@@ -79,6 +79,8 @@ class ValidationResult:
     seconds: float
     # Per language of stages/text.parquet: clips, word tokens, OOV tokens and rate.
     languages: dict[str, dict[str, Any]] = field(default_factory=dict)
+    # What held-out is disjoint from training by, and what it shares (heldout_sharing).
+    heldout: dict[str, Any] = field(default_factory=dict)
 
     @property
     def errors(self) -> int:
@@ -101,6 +103,7 @@ class ValidationResult:
             "rows_checked": self.rows_checked,
             "seconds": round(self.seconds, 3),
             "languages": self.languages,
+            "heldout": self.heldout,
         }
 
 
@@ -173,6 +176,8 @@ def format_table(result: ValidationResult) -> str:
         lines.insert(1, "  ".join("-" * w for w in widths) + "  " + "-" * len("expected"))
     if result.languages:
         lines.append(languages_line(result.languages))
+    if result.heldout:
+        lines.append(heldout_sentence(result.heldout))
     verdict = "clean" if not result.problems else ("FAILED" if result.errors else "passed with warnings")
     lines.append(
         f"{verdict}: {result.errors} error{'s' * (result.errors != 1)}, "
@@ -411,11 +416,75 @@ def _heldout_leak(s: _Subsets, column: str, check: str, severity: str, what: str
                            f"no {what} of heldout in labelled or unlabelled")
 
 
-def _check_speaker_leak(s: _Subsets, config: Config) -> list[Problem]:
-    # Splitting by recording or clip puts held-out voices in training by design; that
-    # stays visible, as a warning.
-    severity = "error" if config.split.group_by == "speaker" else "warning"
-    return _heldout_leak(s, "speaker", "speaker_leak", severity, "speaker")
+# The unit split.group_by keeps whole on one side, and the subset column naming it.
+UNIT_COLUMNS = {"speaker": "speaker", "recording": "source_path", "clip": "clip_id"}
+
+
+def _check_unit_leak(s: _Subsets, config: Config) -> list[Problem]:
+    """No unit of split.group_by on both sides. A speaker on both sides is an error only
+    when the config groups by speaker: grouping by recording or clip (a single-speaker
+    corpus) puts held-out voices in training by design, which the ``held-out`` line of
+    :func:`format_table` states instead. A clip on both sides is ``clip_id_unique``'s."""
+    unit = config.split.group_by
+    if unit == "clip":
+        return []
+    return _heldout_leak(s, UNIT_COLUMNS[unit], f"{unit}_leak", "error", unit)
+
+
+def heldout_sharing(frame_of: Callable[[str], pd.DataFrame], *, group_by: str) -> dict[str, Any]:
+    """What the held-out subset is disjoint from training by: the configured unit
+    (``disjoint_by``) and, per unit, how many are on both sides.
+
+    ``frame_of(column)`` gives that column of every clip with its subset in ``_file``.
+    A build made as configured has 0 for its own unit and for the finer ones (grouping
+    by recording keeps clips apart too, not speakers).
+    """
+    shared: dict[str, Any] = {"disjoint_by": group_by}
+    for unit, column in UNIT_COLUMNS.items():
+        f = frame_of(column)
+        held = set(f.loc[f["_file"] == HELDOUT, column].dropna())
+        train = set(f.loc[f["_file"].isin(TRAINING), column].dropna())
+        shared[f"{unit}s_on_both_sides"] = len(held & train)
+    return shared
+
+
+def heldout_sentence(sharing: dict[str, Any]) -> str:
+    """What held-out is disjoint from training by, and what it shares with training by
+    design (a line of ``loam validate``'s output, a sentence of the report's Subsets section).
+
+    Parameters
+    ----------
+    sharing : dict
+        From :func:`heldout_sharing`.
+
+    Returns
+    -------
+    str
+
+    Examples
+    --------
+    >>> heldout_sentence({"disjoint_by": "recording", "speakers_on_both_sides": 1,
+    ...                   "recordings_on_both_sides": 0, "clips_on_both_sides": 0})
+    'held-out is disjoint from training by recording (split.group_by); 1 speaker also in training, as grouping by recording allows'
+    >>> heldout_sentence({"disjoint_by": "speaker", "speakers_on_both_sides": 2,
+    ...                   "recordings_on_both_sides": 0, "clips_on_both_sides": 0})
+    'held-out is meant to be disjoint from training by speaker (split.group_by), but 2 speakers are on both sides'
+    """
+    def count(unit: str) -> str:
+        n = sharing[f"{unit}s_on_both_sides"]
+        return f"{n} {unit}{'s' * (n != 1)}"
+
+    unit = sharing["disjoint_by"]
+    if sharing[f"{unit}s_on_both_sides"]:
+        verb = "is" if sharing[f"{unit}s_on_both_sides"] == 1 else "are"
+        return (f"held-out is meant to be disjoint from training by {unit} (split.group_by), but {count(unit)} "
+                f"{verb} on both sides")
+    line = f"held-out is disjoint from training by {unit} (split.group_by)"
+    order = list(UNIT_COLUMNS)
+    coarser = [count(u) for u in order[:order.index(unit)] if sharing[f"{u}s_on_both_sides"]]
+    if coarser:
+        line += f"; {' and '.join(coarser)} also in training, as grouping by {unit} allows"
+    return line
 
 
 def _check_group_leak(s: _Subsets) -> list[Problem]:
@@ -1014,7 +1083,7 @@ def _row_checks(s: _Subsets, read: _Manifests, out: Path,
     return [
         ("subset_column", lambda: _check_subset_column(s)),
         ("clip_id_unique", lambda: _check_clip_ids(s)),
-        ("speaker_leak", lambda: _check_speaker_leak(s, config)),
+        ("unit_leak", lambda: _check_unit_leak(s, config)),
         ("group_leak", lambda: _check_group_leak(s)),
         ("audio_leak", lambda: _check_audio_leak(s)),
         ("text_leak", lambda: _check_text_leak(s, config)),
@@ -1088,5 +1157,9 @@ def validate_out(out: Path, *, deep: bool = False, audio_files: bool = True) -> 
                                     _clip(f"the check could not run: {type(exc).__name__}: {exc}", 200),
                                     "manifests this check can read"))
     problems.sort(key=lambda p: p.severity != "error")
+    try:
+        sharing = heldout_sharing(lambda column: s.frame([column]), group_by=config.split.group_by)
+    except Exception:  # manifests no check could read: the problems above say why
+        sharing = {}
     return ValidationResult(str(out), problems, read.rows, time.perf_counter() - start,
-                            languages=language_rates(read.stages.get("text")))
+                            languages=language_rates(read.stages.get("text")), heldout=sharing)

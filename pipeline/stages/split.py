@@ -426,8 +426,9 @@ def _too_few_groups(group_by: str, eligible_groups: list[str]) -> DataError:
     found = (f"only {len(eligible_groups)} group ({eligible_groups[0]})" if eligible_groups
              else "no group")
     advice = {
-        "speaker": 'For a corpus with one speaker, set split.group_by = "recording" (each source file '
-                   'stays whole on one side) or "clip".',
+        "speaker": 'For a corpus with one speaker, set split.group_by = "recording" (--set '
+                   'split.group_by=recording: each source file stays whole on one side, and held-out is '
+                   'disjoint from training by recording) or "clip" (--set split.group_by=clip).',
         "recording": 'Set split.group_by = "clip" to split the recordings\' clips apart.',
         "clip": "Add transcribed audio, or set split.heldout = \"0%\" for no held-out subset.",
     }[group_by]
