@@ -174,10 +174,10 @@ def format_table(result: ValidationResult) -> str:
         for r in [header, *rows]:
             lines.append("  ".join(r[i].ljust(widths[i]) for i in range(4)) + "  " + r[4])
         lines.insert(1, "  ".join("-" * w for w in widths) + "  " + "-" * len("expected"))
-    if result.languages:
-        lines.append(languages_line(result.languages))
     if result.heldout:
         lines.append(heldout_sentence(result.heldout))
+    if result.languages:
+        lines.append(languages_line(result.languages))
     verdict = "clean" if not result.problems else ("FAILED" if result.errors else "passed with warnings")
     lines.append(
         f"{verdict}: {result.errors} error{'s' * (result.errors != 1)}, "
@@ -442,6 +442,7 @@ def heldout_sharing(frame_of: Callable[[str], pd.DataFrame], *, group_by: str) -
     shared: dict[str, Any] = {"disjoint_by": group_by}
     for unit, column in UNIT_COLUMNS.items():
         f = frame_of(column)
+        shared.setdefault("heldout_clips", int((f["_file"] == HELDOUT).sum()))
         held = set(f.loc[f["_file"] == HELDOUT, column].dropna())
         train = set(f.loc[f["_file"].isin(TRAINING), column].dropna())
         shared[f"{unit}s_on_both_sides"] = len(held & train)
@@ -463,6 +464,9 @@ def heldout_sentence(sharing: dict[str, Any]) -> str:
 
     Examples
     --------
+    >>> heldout_sentence({"disjoint_by": "speaker", "heldout_clips": 0, "speakers_on_both_sides": 0,
+    ...                   "recordings_on_both_sides": 0, "clips_on_both_sides": 0})
+    'held-out is empty: no speaker is held out (split.heldout)'
     >>> heldout_sentence({"disjoint_by": "recording", "speakers_on_both_sides": 1,
     ...                   "recordings_on_both_sides": 0, "clips_on_both_sides": 0})
     'held-out is disjoint from training by recording (split.group_by); 1 speaker also in training, as grouping by recording allows'
@@ -475,6 +479,8 @@ def heldout_sentence(sharing: dict[str, Any]) -> str:
         return f"{n} {unit}{'s' * (n != 1)}"
 
     unit = sharing["disjoint_by"]
+    if not sharing.get("heldout_clips", 1):
+        return f"held-out is empty: no {unit} is held out (split.heldout)"
     if sharing[f"{unit}s_on_both_sides"]:
         verb = "is" if sharing[f"{unit}s_on_both_sides"] == 1 else "are"
         return (f"held-out is meant to be disjoint from training by {unit} (split.group_by), but {count(unit)} "
