@@ -120,10 +120,10 @@ def test_the_suggested_single_speaker_split_passes_validate_strict(
         assert main(["validate", str(out), "--strict", "--json"]) == 0, capsys.readouterr().out
         verdict = json.loads(capsys.readouterr().out)
         assert verdict["problems"] == []
-        assert verdict["heldout"] == {"disjoint_by": unit, "heldout_clips": verdict["heldout"]["heldout_clips"],
+        assert verdict["disjointness"] == {"disjoint_by": unit, "heldout_clips": verdict["disjointness"]["heldout_clips"],
                                       "speakers_on_both_sides": 1, "recordings_on_both_sides": 0,
                                       "clips_on_both_sides": 0}
-        assert verdict["heldout"]["heldout_clips"] > 0
+        assert verdict["disjointness"]["heldout_clips"] > 0
         tables = {name: pq.read_table(out / "manifests" / f"{name}.parquet").to_pylist()
                   for name in ("labelled", "unlabelled", "heldout")}
         held = {r["source_path"] for r in tables["heldout"]}
@@ -131,6 +131,6 @@ def test_the_suggested_single_speaker_split_passes_validate_strict(
         assert held and tables["labelled"] and not held & training
         assert main(["report", str(out)]) == 0
         summary = json.loads((out / "report" / "summary.json").read_text(encoding="utf-8"))
-        assert summary["heldout"]["disjoint_by"] == unit
+        assert summary["disjointness"]["disjoint_by"] == unit
         page = (out / "report" / "index.html").read_text(encoding="utf-8")
         assert f"Held-out is disjoint from training by {unit} (split.group_by)" in page

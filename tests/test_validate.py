@@ -293,7 +293,7 @@ def test_speaker_overlap_is_by_design_when_split_by_recording_or_clip(out: Out) 
     out.set_config(split={"group_by": "recording"})
     result = validate_out(out.root)
     assert result.problems == []
-    assert result.heldout == {"disjoint_by": "recording", "heldout_clips": 2, "speakers_on_both_sides": 1,
+    assert result.disjointness == {"disjoint_by": "recording", "heldout_clips": 2, "speakers_on_both_sides": 1,
                               "recordings_on_both_sides": 0, "clips_on_both_sides": 0}
     assert ("held-out is disjoint from training by recording (split.group_by); 1 speaker also in training, "
             "as grouping by recording allows") in format_table(result).splitlines()
@@ -304,7 +304,7 @@ def test_heldout_recording_in_training_is_an_error_when_split_by_recording(out: 
     out.set_config(split={"group_by": "recording"})
     result = validate_out(out.root)
     only(result.problems, "recording_leak", UNL, 1, "source_path")
-    assert result.heldout["recordings_on_both_sides"] == 1
+    assert result.disjointness["recordings_on_both_sides"] == 1
     assert "but 1 recording is on both sides" in format_table(result)
 
 
@@ -323,13 +323,13 @@ def test_no_heldout_is_stated_as_empty(out: Out) -> None:
     out.rows["heldout"] = []
     out.set_config(split={"heldout": "0%"})
     result = validate_out(out.root)
-    assert result.problems == [] and result.heldout["heldout_clips"] == 0
+    assert result.problems == [] and result.disjointness["heldout_clips"] == 0
     assert "held-out is empty: no speaker is held out (split.heldout)" in format_table(result).splitlines()
 
 
 def test_clean_build_states_its_speaker_disjointness(out: Out) -> None:
     result = validate_out(out.root)
-    assert result.heldout == {"disjoint_by": "speaker", "heldout_clips": 2, "speakers_on_both_sides": 0,
+    assert result.disjointness == {"disjoint_by": "speaker", "heldout_clips": 2, "speakers_on_both_sides": 0,
                               "recordings_on_both_sides": 0, "clips_on_both_sides": 0}
     assert "held-out is disjoint from training by speaker (split.group_by)" in format_table(result).splitlines()
 

@@ -405,7 +405,7 @@ def build_summary(out: Path, *, clips: pd.DataFrame | None = None) -> dict[str, 
         "languages": language_rates(_read_optional(out / stage_manifest("text"))),
         "rejects": _rejects_section(load_rejects(out)),
         "speakers": _speakers_section(clips),
-        "heldout": heldout_sharing(lambda column: clips[[column, "subset_file"]].rename(columns={"subset_file": "_file"}),
+        "disjointness": heldout_sharing(lambda column: clips[[column, "subset_file"]].rename(columns={"subset_file": "_file"}),
                                    group_by=config.split.group_by),
         "quality": _quality_section(clips, split_summary),
         "shortfalls": split_summary.get("shortfalls"),
@@ -704,7 +704,7 @@ def _subsets_html(s: dict[str, Any]) -> list[str]:
         f"<p>Held-out clips that can be scored: {h['scorable_clips']}, {_num(h['scorable_hours'], 3)} h. "
         f"Untranscribed audio of held-out {esc(s['split_by'])}s, withheld from training: "
         f"{h['untranscribed_clips']} clips, {hms(h['untranscribed_seconds'])}.</p>",
-        f"<p>{esc(_sentence_case(heldout_sentence(s['heldout'])))}.</p>",
+        f"<p>{esc(_sentence_case(heldout_sentence(s['disjointness'])))}.</p>",
     ]
 
 

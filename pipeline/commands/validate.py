@@ -80,7 +80,7 @@ class ValidationResult:
     # Per language of stages/text.parquet: clips, word tokens, OOV tokens and rate.
     languages: dict[str, dict[str, Any]] = field(default_factory=dict)
     # What held-out is disjoint from training by, and what it shares (heldout_sharing).
-    heldout: dict[str, Any] = field(default_factory=dict)
+    disjointness: dict[str, Any] = field(default_factory=dict)
 
     @property
     def errors(self) -> int:
@@ -103,7 +103,7 @@ class ValidationResult:
             "rows_checked": self.rows_checked,
             "seconds": round(self.seconds, 3),
             "languages": self.languages,
-            "heldout": self.heldout,
+            "disjointness": self.disjointness,
         }
 
 
@@ -174,8 +174,8 @@ def format_table(result: ValidationResult) -> str:
         for r in [header, *rows]:
             lines.append("  ".join(r[i].ljust(widths[i]) for i in range(4)) + "  " + r[4])
         lines.insert(1, "  ".join("-" * w for w in widths) + "  " + "-" * len("expected"))
-    if result.heldout:
-        lines.append(heldout_sentence(result.heldout))
+    if result.disjointness:
+        lines.append(heldout_sentence(result.disjointness))
     if result.languages:
         lines.append(languages_line(result.languages))
     verdict = "clean" if not result.problems else ("FAILED" if result.errors else "passed with warnings")
@@ -1168,4 +1168,4 @@ def validate_out(out: Path, *, deep: bool = False, audio_files: bool = True) -> 
     except Exception:  # manifests no check could read: the problems above say why
         sharing = {}
     return ValidationResult(str(out), problems, read.rows, time.perf_counter() - start,
-                            languages=language_rates(read.stages.get("text")), heldout=sharing)
+                            languages=language_rates(read.stages.get("text")), disjointness=sharing)
