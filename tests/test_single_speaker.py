@@ -32,10 +32,12 @@ SMALL = ["--set", 'split.labelled_budgets=["8s", "16s"]', "--set", 'split.heldou
          "--set", "ingest.metadata=metadata.csv"]
 
 
-def one_voice_raw(raw: Path, *, folder: str = "wavs", speaker_column: str = "") -> dict[str, str]:
+def one_voice_raw(raw: Path, *, folder: str = "wavs", speaker_column: str = "",
+                  read_twice: bool = False) -> dict[str, str]:
     """Nine transcribed recordings in ``raw/folder`` and ``raw/metadata.csv`` (path,
     transcript and, when ``speaker_column`` is given, that column saying "narrator");
-    returns the transcript of each path."""
+    returns the transcript of each path. With ``read_twice`` every prompt has a second,
+    slower reading (``<stem>_again.flac``), as in a prompted synthesis corpus."""
     sources = {DEMO / rel: text for rel, text in DEMO_CLEAN.items()}
     sources.update({FIXTURES / "speech" / f"{stem}.flac": text for stem, text in FIXTURE_SPEECH.items()})
     (raw / folder).mkdir(parents=True, exist_ok=True)
@@ -44,12 +46,26 @@ def one_voice_raw(raw: Path, *, folder: str = "wavs", speaker_column: str = "") 
         rel = f"{folder}/{source.name}" if folder else source.name
         shutil.copyfile(source, raw / rel)
         texts[rel] = text
+        if read_twice:
+            again = f"{folder}/{source.stem}_again.flac" if folder else f"{source.stem}_again.flac"
+            texts[again] = text
+            slower_reading(source, raw / again)
     with open(raw / "metadata.csv", "w", newline="", encoding="utf-8") as f:
         writer = csv.writer(f)
         writer.writerow(["path", "transcript", *([speaker_column] if speaker_column else [])])
         for rel, text in sorted(texts.items()):
             writer.writerow([rel, text, *(["narrator"] if speaker_column else [])])
     return texts
+
+
+def slower_reading(source: Path, path: Path) -> None:
+    """The same samples declared at 0.9 times their rate: the prompt read 10 % slower and
+    lower, different enough that the fingerprints do not bind the two readings
+    (pipeline.signal.fingerprint), whose speaking rates stay within the rate gate."""
+    import soundfile as sf
+
+    samples, rate = sf.read(source, dtype="int16")
+    sf.write(path, samples, int(rate * 0.9), format="FLAC", subtype="PCM_16")
 
 
 def ingest_rows(raw: Path, out: Path, ingest: dict[str, object]) -> tuple[list[dict], dict]:
@@ -134,3 +150,25 @@ def test_the_suggested_single_speaker_split_passes_validate_strict(
         assert summary["disjointness"]["disjoint_by"] == unit
         page = (out / "report" / "index.html").read_text(encoding="utf-8")
         assert f"Held-out is disjoint from training by {unit} (split.group_by)" in page
+
+
+def test_a_single_speaker_test_part_holds_no_prompt_of_labelled_training(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # Every prompt is read twice, in two recordings: grouping by recording, a test clip's
+    # other reading could land in labelled. With the default split.text_overlap
+    # ("unscore") no scorable test clip's prompt is in labelled training (issue 17, checks).
+    raw, out = tmp_path / "raw", tmp_path / "out"
+    texts = one_voice_raw(raw, read_twice=True)
+    assert len(texts) == 2 * len(set(texts.values()))
+    assert main(["prepare", str(raw), str(out), "--workers", "1", "--no-progress", *SMALL,
+                 "--set", "split.group_by=recording"]) == 0
+    capsys.readouterr()
+    assert main(["validate", str(out), "--strict"]) == 0, capsys.readouterr().out
+    tables = {name: pq.read_table(out / "manifests" / f"{name}.parquet").to_pylist()
+              for name in ("labelled", "unlabelled", "heldout")}
+    assert not [r for name in ("labelled", "unlabelled", "heldout") for r in tables[name]
+                if "near_duplicate" in r["quality_flags"]], "the two readings must stay separate groups"
+    labelled_prompts = {r["norm_text"] for r in tables["labelled"]}
+    test = [r for r in tables["heldout"] if r["part"] == "test"]
+    assert [r for r in test if r["scorable"]], "the test part has clips to score"
+    assert not [r["clip_id"] for r in test if r["scorable"] and r["norm_text"] in labelled_prompts]
