@@ -111,6 +111,8 @@ def test_pseudonymised_demo_names_nobody_and_rebuild_keeps_references(
     found = json.loads(capsys.readouterr().out)["problems"]
     assert [(p["check"], p["file"], "'wren'" in p["found"]) for p in found if p["check"] == "privacy_names"] == [
         ("privacy_names", "report/notes.md", True)]
+    assert main(["validate", str(out)]) == 1  # the table's verdict and the share line agree
+    assert "not safe to share" in capsys.readouterr().out
     (out / "report" / "notes.md").unlink()
 
     # A reference leads back to its file, through OUT's private mapping or the mapping file.

@@ -106,12 +106,20 @@ def check_names(out: Path) -> list[Problem]:
     return problems
 
 
-def share_note(*, pseudonymised: bool) -> str:
+def share_note(*, pseudonymised: bool, names_found: int = 0) -> str:
     """A sentence saying which files under OUT are safe to share and which are not.
+
+    ``names_found`` counts the ``privacy_names`` errors of a validation: a pseudonymised
+    build in which real names were still found is not safe to share either.
 
     >>> share_note(pseudonymised=False).startswith("not safe to share")
     True
+    >>> share_note(pseudonymised=True, names_found=2).startswith("not safe to share")
+    True
     """
+    if pseudonymised and names_found:
+        return (f"not safe to share: this build is pseudonymised, but {names_found} real name(s) from RAW "
+                "were found in shareable files (the privacy_names errors above); remove them and validate again")
     if not pseudonymised:
         return ("not safe to share: this build is not pseudonymised, so manifests, rejects and the report "
                 "name RAW's speakers, folders and files; set privacy.pseudonymise = true before sharing OUT")
