@@ -204,7 +204,7 @@ def test_written_files_match_their_rows(first_run, raw: Path):
         assert (info.format, info.subtype, info.samplerate, info.channels) == ("FLAC", "PCM_16", 16000, 1)
         assert info.frames == r["num_samples"]
         samples, _ = sf.read(path, dtype="float64")
-        # Fingerprint of the clip as written (Haitsma-Kalker, pipeline.signal.fingerprint).
+        # Fingerprint of the clip as written (after Haitsma-Kalker, pipeline.signal.fingerprint).
         assert encode_fingerprint(fingerprint(samples, sample_rate=16000)) == r["fingerprint"]
 
 

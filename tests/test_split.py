@@ -459,7 +459,7 @@ def test_single_speaker_by_recording_or_clip(tmp_path: Path, group_by: str) -> N
 
 
 def test_near_duplicates_bind_groups(tmp_path: Path) -> None:
-    # Source: docs/split.md, Groups; similarity by pipeline.signal.fingerprint.fingerprint_similarity (Haitsma-Kalker bit agreement).
+    # Source: docs/split.md, Groups; similarity by pipeline.signal.fingerprint.fingerprint_similarity (bit agreement).
     corpus = Corpus()
     for spk in SPEAKERS[:4]:
         for k in range(4):
