@@ -143,11 +143,29 @@ def test_read_blocks_covers_the_file(tmp_path):
 
 def test_spool_reads_back_any_span(tmp_path):
     x = np.arange(1000, dtype=np.float32)
-    with Spool(folder=tmp_path, label="t") as spool:
+    # 2000 bytes in memory: the file starts with the fourth block, which passes them.
+    with Spool(folder=tmp_path, label="t", memory_bytes=2000) as spool:
         for i in range(0, 1000, 300):
             spool.append(x[i:i + 300])
+            assert (spool.path is None) == (i + 300 <= 500)
         assert spool.path.name.startswith(".loam-") and spool.path.name.endswith(".tmp")
         np.testing.assert_array_equal(spool.read(start=250, stop=710), x[250:710])
         np.testing.assert_array_equal(spool.read(start=990, stop=2000), x[990:])
         path = spool.path
     assert not path.exists()
+
+
+def test_spool_in_memory_reads_the_same_and_leaves_no_file(tmp_path):
+    x = np.random.default_rng(3).standard_normal(1000).astype(np.float32)
+    with Spool(folder=tmp_path / "spool", label="t") as spool:
+        for i in range(0, 1000, 300):
+            block = x[i:i + 300].copy()
+            spool.append(block)
+            block[:] = 0  # the caller reusing its buffer changes nothing held
+        assert spool.path is None and spool.length == 1000
+        np.testing.assert_array_equal(spool.read(start=250, stop=710), x[250:710])
+        np.testing.assert_array_equal(spool.read(start=990, stop=2000), x[990:])
+        assert spool.read(start=5, stop=5).size == 0
+    assert not (tmp_path / "spool").exists()
+    with pytest.raises(ParameterError, match="memory_bytes"):
+        Spool(folder=tmp_path, memory_bytes=-1)

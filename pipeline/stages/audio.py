@@ -5,8 +5,8 @@ Each accepted ingest row goes through ``condition_file`` (one process per file):
 
 1. one streaming pass over the source (``pipeline.signal.decode``): soundfile blocks are
    checked for NaN/inf, counted for clipping and DC, fed to a long-term PSD for the
-   bandwidth, downmixed and resampled to the output rate into a spool file on disk,
-   and resampled to 16 kHz for webrtcvad (``pipeline.signal.vad``);
+   bandwidth, downmixed and resampled to the output rate into a spool (in memory,
+   on disk past 32 MiB), and resampled to 16 kHz for webrtcvad (``pipeline.signal.vad``);
 2. the frame decisions are smoothed and trimmed; a trimmed span longer than
    ``audio.max_clip_s`` is cut at pauses (``pipeline.signal.segment``) or, when the file has
    a transcript, rejected;
@@ -14,8 +14,8 @@ Each accepted ingest row goes through ``condition_file`` (one process per file):
    SNR), gained to the target under the peak ceiling, rounded to 16 bits, measured
    again and written atomically.
 
-Memory therefore depends on the longest clip, not on the length of the recording.
-Raw files are only ever opened for reading.
+Memory therefore depends on the longest clip (and the spool's 32 MiB), not on the
+length of the recording. Raw files are only ever opened for reading.
 """
 
 from __future__ import annotations
