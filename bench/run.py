@@ -78,7 +78,7 @@ def stage_seconds(out: Path) -> dict[str, float]:
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--out", type=Path, default=REPO / "build" / "bench")
-    parser.add_argument("--minutes", type=float, default=30.0, help="audio in the workload")
+    parser.add_argument("--minutes", type=float, default=60.0, help="audio in the workload")
     parser.add_argument("--workers", type=int, default=2)
     parser.add_argument("--skip-long", action="store_true", help="skip the 60-minute single-file memory case")
     parser.add_argument("--repeat", type=int, default=5,
@@ -97,6 +97,7 @@ def main() -> int:
     nogates_out = work / "out_nogates"
     one_out = work / "out_1worker"
     floor_cmd = [sys.executable, str(REPO / "bench" / "floor.py"), str(raw), str(args.workers)]
+    handwritten_cmd = [sys.executable, str(REPO / "bench" / "handwritten.py"), str(raw), str(args.workers)]
     # 5 % new audio: the old files are hard links (same inode and mtime), the new ones copies.
     grown = work / "raw_grown"
     shutil.rmtree(grown, ignore_errors=True)
@@ -110,7 +111,8 @@ def main() -> int:
     # The runs are interleaved, round after round; the fastest of each kind is kept:
     # on a shared virtual machine speed drifts over minutes, and a slow spell should
     # hit every kind of run alike rather than all the runs of one kind.
-    timings: dict[str, list[float]] = {"cold": [], "floor": [], "rerun": [], "rebuild": [], "nogates": [], "one": []}
+    timings: dict[str, list[float]] = {"cold": [], "floor": [], "rerun": [], "rebuild": [], "nogates": [], "one": [],
+                                       "handwritten": []}
     peak_rss: list[float] = []
     cold_stages: list[dict[str, float]] = []
     rebuild_stages: list[dict[str, float]] = []
@@ -124,6 +126,8 @@ def main() -> int:
         timings["rebuild"].append(prepare(grown, cold_out, args.workers)[0])
         rebuild_stages.append(stage_seconds(cold_out))
         timings["floor"].append(measured(floor_cmd, label="floor")[0])
+        # What a user would write by hand (bench/handwritten.py), same files and workers.
+        timings["handwritten"].append(measured(handwritten_cmd, label="handwritten")[0])
         # The quality gates' share: the same cold run with the per-clip measures off.
         timings["nogates"].append(fresh_prepare(raw, nogates_out, args.workers, "--set",
                                                 "audio.quality_measures=false", label="nogates")[0])
@@ -147,6 +151,11 @@ def main() -> int:
     results.update(cold_wall_s=cold, x_real_time=audio_s / cold, peak_rss_mb=max(peak_rss),
                    stage_seconds=cold_stages[timings["cold"].index(cold)])
     results.update(floor_wall_s=best["floor"], pipeline_over_floor=paired(timings["cold"], timings["floor"]))
+    results.update(handwritten_wall_s=best["handwritten"],
+                   handwritten_over_cold=paired(timings["handwritten"], timings["cold"]),
+                   handwritten_over_floor=paired(timings["handwritten"], timings["floor"]),
+                   handwritten_over_cold_cpu=paired(CPU_SECONDS["handwritten"], CPU_SECONDS["cold"]),
+                   handwritten_over_floor_cpu=paired(CPU_SECONDS["handwritten"], CPU_SECONDS["floor"]))
     results.update(rerun_wall_s=best["rerun"], rerun_over_cold=paired(timings["rerun"], timings["cold"]))
     results.update(rebuild_5pct_wall_s=best["rebuild"], rebuild_over_cold=paired(timings["rebuild"], timings["cold"]),
                    rebuild_stage_seconds=rebuild_stages[timings["rebuild"].index(best["rebuild"])])
@@ -163,6 +172,7 @@ def main() -> int:
         results["validate"] = bench_validate(100_000, Path(scratch))
 
     results["text"] = last_json_line([str(REPO / "bench" / "bench_text.py")])
+    results["fingerprint"] = last_json_line([str(REPO / "bench" / "bench_fingerprint.py")])
     if not args.skip_long:
         results["long_file"] = last_json_line([str(REPO / "bench" / "bench_long_file.py")])
 
@@ -175,6 +185,7 @@ def main() -> int:
 def print_table(r: dict) -> None:
     targets = {
         "pipeline_over_floor": ("<= 1.3", lambda v: v <= 1.3),
+        "handwritten_over_cold": (">= 3", lambda v: v >= 3),
         "speedup_1_to_2": (">= 1.7", lambda v: v >= 1.7),
         "rerun_over_cold": ("<= 0.05", lambda v: v <= 0.05),
         "rebuild_over_cold": ("<= 0.12", lambda v: v <= 0.12),
@@ -186,11 +197,17 @@ def print_table(r: dict) -> None:
         ("peak RSS (MB)", f"{r['peak_rss_mb']:.0f}", ""),
         ("floor wall (s)", f"{r['floor_wall_s']:.1f}", ""),
     ]
-    for key, label in [("pipeline_over_floor", "pipeline / floor"), ("speedup_1_to_2", "1 -> 2 worker speedup"),
+    for key, label in [("pipeline_over_floor", "pipeline / floor"),
+                       ("handwritten_over_cold", "hand-written script / pipeline"),
+                       ("speedup_1_to_2", "1 -> 2 worker speedup"),
                        ("rerun_over_cold", "no-change rerun / cold"), ("rebuild_over_cold", "rebuild +5 % / cold")]:
         target, ok = targets[key]
         rows.append((label, f"{r[key]:.3f}", f"target {target}: {'met' if ok(r[key]) else 'MISSED'}"))
     rows.append(("pipeline / floor, CPU seconds", f"{r['pipeline_over_floor_cpu']:.3f}", ""))
+    rows.append(("hand-written script wall (s)", f"{r['handwritten_wall_s']:.1f}", "bench/handwritten.py"))
+    rows.append(("hand-written / floor", f"{r['handwritten_over_floor']:.3f}", ""))
+    rows.append(("hand-written / pipeline, CPU seconds", f"{r['handwritten_over_cold_cpu']:.3f}", ""))
+    rows.append(("hand-written / floor, CPU seconds", f"{r['handwritten_over_floor_cpu']:.3f}", ""))
     rows.append(("no-change rerun (s)", f"{r['rerun_wall_s']:.2f}", ""))
     for name, sec in r["stage_seconds"].items():
         rows.append((f"  stage {name} (s)", f"{sec:.2f}", ""))
@@ -213,6 +230,16 @@ def print_table(r: dict) -> None:
         if run in t:
             rows.append((f"text sentences/s ({run}, 10,000)", f"{t[run]['sentences_per_s']:.0f}",
                          f"word cache hits {t[run]['hit_rate_distinct']:.2f} per distinct OOV word"))
+    fp = r.get("fingerprint", {})
+    for column in ("before", "after"):
+        if column in fp:
+            f = fp[column]
+            copies = {k: v for k, v in f.items() if isinstance(v, dict)}
+            worst = min(copies, key=lambda k: (copies[k]["recall"], copies[k]["lowest_similarity"]))
+            rows.append((f"fingerprint {column}: lowest recall of copies", f"{copies[worst]['recall']:.3f}",
+                         f"{worst}; target: after >= before (bench/bench_fingerprint.py prints the table)"))
+            rows.append((f"fingerprint {column}: same-speaker false matches", f"{f['false_matches']}",
+                         f"of {f['same_speaker_pairs']} pairs; highest score {f['highest_unrelated_similarity']:.3f}"))
     lf = r.get("long_file", {})
     for key in ("x_real_time", "peak_rss_mb"):
         if key in lf:

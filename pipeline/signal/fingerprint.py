@@ -252,9 +252,12 @@ def fingerprint_similarity(
     sub-fingerprints are 0 (silence in both, see :func:`fingerprint`) are left out:
     shared silence is no evidence of shared content. Haitsma and Kalker (ISMIR 2002)
     declare a match at a bit error rate below 0.35 over 256 sub-fingerprints (quoted
-    from memory). Measured here: copies after resampling, Vorbis or MP3 coding score
-    above 0.9; unrelated synthetic utterances 0.5 to 0.65; utterances that share their
-    last words, spoken by the same synthetic voice at the same time offset, up to 0.77.
+    from memory). Measured here (bench/bench_fingerprint.py, tests/test_fingerprint.py):
+    copies after resampling, Vorbis or MP3 coding, or trimmed 300 ms later and MP3
+    coded, score above 0.9; unrelated synthetic utterances 0.5 to 0.66, different clips
+    of one synthetic voice at most 0.62. (With the paper's frames, utterances that
+    share their last words, spoken by the same voice at the same time offset, scored up
+    to 0.77; not measured again.)
 
     Short overlaps: an offset counts only if it leaves at least
     ``min(min_overlap_frames, len(a), len(b))`` comparable positions, so fingerprints
