@@ -34,7 +34,7 @@ def test_unknown_top_level_key_message(tmp_path: Path) -> None:
     path = write(tmp_path, "sead = 3\n")
     with pytest.raises(ConfigError) as err:
         load_config(path)
-    assert str(err.value).startswith(f"{path}: unknown key 'sead'; allowed keys: audio, ingest,")
+    assert str(err.value).startswith(f"{path}: unknown key 'sead'; allowed keys: audio, datasheet, ingest,")
 
 
 def test_wrong_type_message(tmp_path: Path) -> None:

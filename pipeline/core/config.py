@@ -163,6 +163,40 @@ class PrivacyConfig:
 
 
 @dataclass(frozen=True)
+class DatasheetConfig:
+    """Answers for the datasheet that only a person can give (``[datasheet]``); an
+    empty string leaves the question marked as to be answered."""
+
+    name: str
+    purpose: str
+    creators: str
+    funding: str
+    sampling: str
+    subpopulations: str
+    sensitive_content: str
+    collection: str
+    timeframe: str
+    consent: str
+    consent_withdrawal: str
+    ethical_review: str
+    compensation: str
+    transcription: str
+    raw_data: str
+    uses_so_far: str
+    intended_uses: str
+    out_of_scope_uses: str
+    known_limitations: str
+    distribution: str
+    licence: str
+    third_party_restrictions: str
+    maintainer: str
+    contact: str
+    updates: str
+    retention: str
+    contributions: str
+
+
+@dataclass(frozen=True)
 class Config:
     seed: int
     run: RunConfig
@@ -172,6 +206,7 @@ class Config:
     split: SplitConfig
     quality: QualityConfig
     privacy: PrivacyConfig
+    datasheet: DatasheetConfig
     # Folder that relative paths in the file (lexicons, ledger, key) resolve against.
     base_dir: str = field(default=".", compare=False)
     source: str = field(default="", compare=False)
@@ -192,9 +227,10 @@ class Config:
         return out
 
     def sha256(self) -> str:
-        """Hash of every setting that can change an output byte, i.e. all but ``run``
-        (workers, scheduler, progress), so the worker count never changes a manifest."""
-        settings = {k: v for k, v in self.to_json().items() if k != "run"}
+        """Hash of every setting that can change a manifest or a clip, i.e. all but the
+        :data:`UNHASHED_SECTIONS`: the worker count never changes a manifest, and editing
+        a datasheet answer rewrites no manifest's metadata."""
+        settings = {k: v for k, v in self.to_json().items() if k not in UNHASHED_SECTIONS}
         return hashlib.sha256(canonical_json(settings)).hexdigest()
 
     def origin(self, *keys: str) -> str:
@@ -243,7 +279,12 @@ SECTIONS = {
     "split": SplitConfig,
     "quality": QualityConfig,
     "privacy": PrivacyConfig,
+    "datasheet": DatasheetConfig,
 }
+
+# Sections that change no manifest or clip, left out of the config hash: how a run is
+# carried out, and the datasheet's answers (only ``report/datasheet.md`` shows them).
+UNHASHED_SECTIONS = ("run", "datasheet")
 
 
 # Config tables (string to string) kept as sorted tuples of pairs in the frozen dataclasses.

@@ -32,13 +32,14 @@ from typing import Any
 import pyarrow as pa
 
 from pipeline.core import names
-from pipeline.core.config import SECTIONS, Config
+from pipeline.core.config import SECTIONS, UNHASHED_SECTIONS, Config
 from pipeline.core.errors import ParameterError, UsageError
 from pipeline.core.manifest import table_from_rows
 from pipeline.core.schemas_io import SCHEMA_DIR
 
-# Sections whose settings can change an output (``run`` holds workers, scheduler, progress).
-OUTPUT_SECTIONS = tuple(name for name in SECTIONS if name != "run")
+# Sections whose settings can change an output (``run`` holds workers, scheduler, progress;
+# ``datasheet`` only answers for the report's datasheet).
+OUTPUT_SECTIONS = tuple(name for name in SECTIONS if name not in UNHASHED_SECTIONS)
 
 
 @dataclass(frozen=True)
