@@ -75,7 +75,7 @@ CAUTION = (
     "use and the recordings' licence allows it, and follow the data-protection law that applies to you "
     "and to the speakers (in the EU the GDPR treats voice as personal data, and as biometric data when "
     "it is used to identify someone). Transcripts, file names and speaker ids can carry names: keep "
-    "this report as protected as the recordings themselves."
+    "the corpus and its report as protected as the recordings themselves."
 )
 
 
@@ -895,7 +895,7 @@ def render_html(summary: dict[str, Any], clips: pd.DataFrame, figures: dict[str,
 
 
 def write_report(out: Path) -> Path:
-    """Write ``OUT/report/index.html`` and ``OUT/report/summary.json``; returns the page's path.
+    """Write ``OUT/report/index.html``, ``summary.json`` and ``datasheet.md``; returns the page's path.
 
     Parameters
     ----------
@@ -932,4 +932,7 @@ def write_report(out: Path) -> Path:
     write_text_atomic(out / REPORT_SUMMARY,
                       json.dumps(summary, indent=2, ensure_ascii=False, allow_nan=False) + "\n")
     write_text_atomic(out / REPORT_PAGE, page)
+    from pipeline.commands.datasheet import write_datasheet  # it imports this module
+
+    write_datasheet(out, summary)
     return out / REPORT_PAGE
