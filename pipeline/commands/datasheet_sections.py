@@ -59,6 +59,7 @@ def composition(sheet: Sheet, b: Build) -> None:
     sheet.ask(question="What is the label of an instance?", built=[_labels(b)])
     sheet.ask(question="Is any information missing from instances?", built=[_missing(b)])
     sheet.ask(question="Are instances related to each other?", built=[_relations(b)])
+    sheet.ask(question="Are there recommended splits?", built=_splits(b))
     sheet.ask(question="Are there errors, noise or redundancies?", built=[
         "Clips carrying each quality flag, by subset (the flags are the `quality_flags` column; section 4 "
         "gives the thresholds and what each flag does):",
@@ -131,6 +132,23 @@ def _relations(b: Build) -> str:
             "clips, which share `source_path`. "
             f"{plural(len(pairs), 'near-duplicate pair was', 'near-duplicate pairs were')} found "
             "(`near_duplicate_of`); a pair is kept in one split group.")
+
+
+def _splits(b: Build) -> list[str]:
+    s, sp = b.summary, b.config.split
+    held = s["subsets"][HELDOUT]
+    rows = [[Md(md_code(tier)), Md(clock(v["budget_s"])), v["clips"], Md(clock(v["seconds"])), v["speakers"],
+             Md("none" if v["phone_coverage"] is None else f"{100 * v['phone_coverage']:.1f} %")]
+            for tier, v in s["tiers"].items()]
+    return [
+        f"Yes, the subsets: split by {md_code(sp.group_by, in_table=False)}, so no {md_text(sp.group_by)} is on "
+        f"both sides; the held-out subset takes whole groups towards {md_code(sp.heldout, in_table=False)} of the "
+        f"transcribed duration, ranked with seed {b.config.seed}; {held.get('scored_clips', 0)} of its clips have a "
+        "transcript, and those with `scorable` true are the evaluation set. The labelled tiers are nested (each "
+        f"holds every clip of the smaller ones), chosen by {md_code(sp.selection, in_table=False)} selection; the "
+        "`tiers` column names the tiers a clip is in:",
+        md_table(["tier", "budget", "clips", "selected", "speakers", "phone coverage"], rows, empty="no tier"),
+    ]
 
 
 def _identification(b: Build) -> str:
