@@ -23,13 +23,13 @@ WORKERS_FLAG := $(if $(WORKERS),--workers $(WORKERS),)
 all: prepare report
 	@$(BIN)/loam validate "$(OUT)" > "$(OUT)/logs/validate.txt" || (cat "$(OUT)/logs/validate.txt"; exit 1)
 	@tail -n 4 "$(OUT)/logs/validate.txt"
-	@echo "manifests: $(OUT)/manifests/  report: $(OUT)/report/index.html"
+	@echo "manifests: $(OUT)/manifests/  report: $(OUT)/report/index.html  datasheet: $(OUT)/report/datasheet.md"
 
 help:
 	@echo "make            create .venv, install, prepare $(RAW) into $(OUT), write its report, validate it"
 	@echo "make test       run the test suite"
 	@echo "make validate   check the manifests in OUT before training"
-	@echo "make report     write OUT/report/index.html and summary.json"
+	@echo "make report     write OUT/report/index.html, summary.json and datasheet.md"
 	@echo "make fuzz       prepare $(FUZZ_FILES) damaged audio files (make test runs 300) and print the outcomes"
 	@echo "make property-search  run the property tests with $(SEARCH_SCALE)x their examples, drawn at random"
 	@echo "make bench      throughput, memory and rebuild benchmarks"
