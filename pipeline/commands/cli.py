@@ -121,8 +121,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--deep", action="store_true", help="also decode every clip, re-hash it and re-measure its loudness")
     p.add_argument("--strict", action="store_true", help="warnings count as errors for the exit code")
 
-    p = sub.add_parser("report", help="write OUT/report/index.html and summary.json",
-                       description="Summarise OUT in a self-contained HTML page and a JSON file.",
+    p = sub.add_parser("report", help="write OUT/report/index.html, summary.json and datasheet.md",
+                       description="Summarise OUT in a self-contained HTML page and a JSON file, and write "
+                                   "its datasheet (answers from the config's [datasheet] section).",
                        epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("out", type=Path, metavar="OUT", help="a folder written by loam prepare")
 
