@@ -151,6 +151,18 @@ def test_hostile_names_and_answers_stay_text(small_raw: Path, tmp_path: Path) ->
     assert f"{EVIL_SPEAKER}/{EVIL_FILE}: the file is empty" in text
 
 
+def test_heldout_parts_are_listed_with_their_sizes() -> None:
+    from pipeline.commands.datasheet_sections import _parts
+
+    assert _parts(None) == ["The held-out subset is not divided into parts (the report's summary records none)."]
+    table = _parts({"dev": {"clips": 4, "seconds": 61.2, "speakers": 1, "scorable_clips": 3, "target_s": 60.0,
+                            "text_disjoint": True},
+                    "test": {"clips": 5, "seconds": 3725.0, "speakers": 2, "scorable_clips": 5, "target_s": None,
+                             "text_disjoint": None}})[1]
+    assert table.splitlines()[2:] == ["| `dev` | 4 | 0:01:01 | 1 | 3 | 0:01:00 | yes |",
+                                      "| `test` | 5 | 1:02:05 | 2 | 5 | none | not configured |"]
+
+
 def test_review_decisions_are_counted_from_the_stage_summaries(demo_build: Path) -> None:
     import dataclasses
 

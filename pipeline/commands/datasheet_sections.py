@@ -148,7 +148,22 @@ def _splits(b: Build) -> list[str]:
         f"holds every clip of the smaller ones), chosen by {md_code(sp.selection, in_table=False)} selection; the "
         "`tiers` column names the tiers a clip is in:",
         md_table(["tier", "budget", "clips", "selected", "speakers", "phone coverage"], rows, empty="no tier"),
+        *_parts(s.get("parts")),
     ]
+
+
+def _parts(parts: Any) -> list[str]:
+    """The held-out parts and their sizes, as the report's summary records them."""
+    if not isinstance(parts, dict) or not parts:
+        return ["The held-out subset is not divided into parts (the report's summary records none)."]
+    disjoint = {True: "yes", False: "no"}
+    rows = [[Md(md_code(name)), v.get("clips", 0), Md(clock(v.get("seconds"))), v.get("speakers", 0),
+             v.get("scorable_clips", "not recorded"),
+             Md(clock(v["target_s"])) if isinstance(v.get("target_s"), (int, float)) else "none",
+             disjoint.get(v.get("text_disjoint"), "not configured")]
+            for name, v in parts.items() if isinstance(v, dict)]
+    return ["The held-out subset is divided into parts (the `part` column), no group in two of them:",
+            md_table(["part", "clips", "h:mm:ss", "speakers", "scorable clips", "target", "text-disjoint"], rows)]
 
 
 def _identification(b: Build) -> str:
