@@ -79,7 +79,10 @@ def test_seven_sections_in_order_each_filled_from_the_build(sheet: str, demo_bui
         assert f"| `{reason}` | {MEANINGS[reason]} | `ingest` | {n} |" in prep
     assert "no review decisions file exists for this build" in prep
     assert "No: `privacy.pseudonymise` is false" in prep
-    assert "(5 scored clips from 2 speakers" in found["5. Uses"]
+    assert "(5 scored clips from 2 speakers no training subset holds) for evaluation, in parts `dev`, `test`." \
+        in found["5. Uses"]
+    for part, v in summary["parts"].items():
+        assert f"| `{part}` | {v['clips']} |" in found["2. Composition"]
     for title in SECTIONS:
         assert built_paragraphs(found[title], answers), title
     assert "In fact it is Loam's demonstration dump" in found["1. Motivation"]

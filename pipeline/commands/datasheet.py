@@ -109,7 +109,9 @@ def _uses(sheet: Sheet, b: Build) -> None:
         f"As prepared: the nested labelled tiers ({tiers or 'none'}) for supervised training at growing amounts "
         "of labelled speech, the unlabelled subset for self-supervised or semi-supervised training, and the "
         f"held-out subset ({plural(heldout.get('scored_clips', 0), 'scored clip')} from "
-        f"{plural(heldout['speakers'], 'speaker')} no training subset holds) for evaluation."])
+        f"{plural(heldout['speakers'], 'speaker')} no training subset holds) for evaluation"
+        + (f", in parts {', '.join(md_code(p, in_table=False) for p in s['parts'])}."
+           if isinstance(s.get("parts"), dict) and s["parts"] else ".")])
     sheet.ask("out_of_scope_uses", built=[
         "Whatever the answer, the caution on personal data applies: identifying or verifying speakers by their "
         "voice uses biometric data and needs their consent for that purpose."])
