@@ -461,3 +461,51 @@ def test_inventory_ids_are_kept_when_new_audio_arrives(tmp_path: Path) -> None:
     added = sorted(after[s] for s in after if s not in before)
     assert added, "the Swahili clips brought no new symbol; the test would prove nothing"
     assert added == list(range(max(before.values()) + 1, max(before.values()) + 1 + len(added)))
+
+
+# --- the languages measure, columnar against a loop over the rows ---------------------
+
+
+def _rates_by_rows(rows: list[dict]) -> dict[str, dict]:
+    """The per-row definition of pipeline.commands.languages.language_rates."""
+    dictionary = {"cmudict": "english", "neural": "english", "lexicon": "lexicon"}
+    out: dict[str, dict] = {}
+    sources: dict[str, set] = {}
+    for row in rows:
+        info = out.setdefault(row["language"], {"clips": 0, "word_tokens": 0, "dictionary_word_tokens": 0,
+                                                "oov_word_tokens": 0, "backend": None})
+        info["clips"] += 1
+        info["word_tokens"] += len(row["words"])
+        for word, source in zip(row["words"], row["word_backends"], strict=False):
+            sources.setdefault(row["language"], set()).add(source)
+            if source in dictionary:
+                info["backend"] = info["backend"] or dictionary[source]
+                info["dictionary_word_tokens"] += 1
+                info["oov_word_tokens"] += word in set(row["oov_words"])
+    for tag, info in out.items():
+        d, o = info["dictionary_word_tokens"], info["oov_word_tokens"]
+        info["oov_rate"] = round(o / d, 4) if d else None
+        info["sources"] = sorted(sources.get(tag, ()))
+    return dict(sorted(out.items()))
+
+
+@pytest.mark.parametrize("offset", [0, 2])
+def test_language_rates_agree_with_the_row_by_row_definition(offset: int) -> None:
+    """Repeated words, an OOV word of another row, lists that disagree in length, a
+    language with no dictionary backend, an empty table, and a sliced one."""
+    import pyarrow as pa
+
+    from pipeline.commands.languages import language_rates
+
+    rows = [
+        {"language": "en", "words": ["zorb", "a", "zorb"], "oov_words": ["zorb"],
+         "word_backends": ["neural", "cmudict", "neural"]},
+        {"language": "sw", "words": ["chai", "zorb"], "oov_words": [], "word_backends": ["rules", "rules"]},
+        {"language": "en", "words": ["a", "zorb"], "oov_words": [], "word_backends": ["lexicon", "cmudict"]},
+        {"language": "en", "words": ["b", "c", "zorb"], "oov_words": ["zorb", "c"], "word_backends": ["cmudict"]},
+        {"language": "yo", "words": ["o"], "oov_words": ["o"], "word_backends": ["graphemes", "rules"]},
+        {"language": "en", "words": ["x"], "oov_words": ["x"], "word_backends": ["lexicon"]},
+    ]
+    table = pa.Table.from_pylist(rows[:offset] + rows).slice(offset)
+    assert language_rates(table) == _rates_by_rows(rows)
+    assert language_rates(table.slice(0, 0)) == {}

@@ -191,3 +191,60 @@ def test_builder_with_no_rows_gives_an_empty_valid_table() -> None:
     assert table.num_rows == 0 and table.schema.equals(arrow_schema("audio"))
     with pytest.raises(ValueError, match="batch_rows=0"):
         ManifestBuilder("audio", batch_rows=0)
+
+
+def _audio_rows(n: int) -> list[dict]:
+    return [{"clip_id": f"spk-{i:010x}", "source_id": f"spk-{i:010x}", "source_path": f"spk/{i}.wav",
+             "speaker": "spk", "audio_path": f"audio/spk/spk-{i:010x}.flac", "audio_sha256": "a" * 64,
+             "sample_rate": 16000, "num_samples": 16000, "duration_s": 1.0, "source_start_s": 0.0,
+             "source_end_s": 1.0, "source_sample_rate": 16000, "upsampled_from": None, "segment_index": 0,
+             "speech_s": 0.8, "speech_ratio": 0.8, "loudness_in_lufs": -30.0, "loudness_lufs": -23.0,
+             "gain_db": 7.0, "peak_limited_db": 0.0, "peak_dbfs": -3.0, "clipped_fraction": 0.0,
+             "dc_offset": 0.0, "snr_db": None, "bandwidth_hz": 7000.0, "fingerprint": "AQAAAA==",
+             "transcribed": True} for i in range(n)]
+
+
+def test_read_checked_settles_type_only_columns_from_the_file_statistics(tmp_path: Path) -> None:
+    """Columns with no rule beyond their type are not read when the Parquet statistics
+    (null counts) settle them; the findings are check_table's, whichever way."""
+    from pipeline.core.manifest import read_checked
+
+    table = table_from_rows("audio", _audio_rows(3))
+    path = tmp_path / "audio.parquet"
+    write_manifest(path, "audio", table, metadata={})
+    read, problems = read_checked(path, "audio", where="a")
+    assert problems == []
+    assert {"fingerprint", "gain_db", "dc_offset", "snr_db"}.isdisjoint(read.column_names)
+    assert "clip_id" in read.column_names and read.num_rows == 3
+    kept, _ = read_checked(path, "audio", where="a", keep=["fingerprint"])
+    assert kept.column("fingerprint").to_pylist() == ["AQAAAA=="] * 3
+
+
+@pytest.mark.parametrize("statistics", [True, False])
+def test_read_checked_finds_a_null_in_a_type_only_column(tmp_path: Path, statistics: bool) -> None:
+    """A null where the schema allows none is found from the statistics, or by reading the
+    column when the file records none (a hand-written file)."""
+    from pipeline.core.manifest import read_checked
+
+    table = table_from_rows("audio", _audio_rows(3))
+    nulled = table.set_column(table.schema.get_field_index("fingerprint"), "fingerprint",
+                              pa.array(["AQAAAA==", None, "AQAAAA=="], pa.string()))
+    path = tmp_path / "audio.parquet"
+    pq.write_table(nulled, path, write_statistics=statistics)
+    read, problems = read_checked(path, "audio", where="a")
+    assert [(p.row, p.column) for p in problems] == [(1, "fingerprint")]
+    assert [(p.row, p.column) for p in check_table("audio", pq.read_table(path), where="a")] == [(1, "fingerprint")]
+
+
+def test_read_checked_reports_the_structure_like_check_table(tmp_path: Path) -> None:
+    from pipeline.core.manifest import read_checked
+
+    table = table_from_rows("audio", _audio_rows(2)).drop_columns(["fingerprint"])
+    path = tmp_path / "audio.parquet"
+    pq.write_table(table, path)
+    _, problems = read_checked(path, "audio", where="a")
+    assert problems == check_table("audio", table, where="a")
+    assert [(p.check, p.column) for p in problems] == [("schema", "fingerprint")]
+    (tmp_path / "junk.parquet").write_bytes(b"not parquet")
+    with pytest.raises(ManifestError, match="not a readable Parquet file"):
+        read_checked(tmp_path / "junk.parquet", "audio", where="j")
