@@ -24,6 +24,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.parquet as pq
 
 from pipeline import __version__
 from pipeline.commands.languages import language_rates
@@ -82,12 +83,17 @@ CAUTION = (
 # --------------------------------------------------------------------------- reading
 
 
-def _read_optional(path: Path) -> pa.Table | None:
+def _read_optional(path: Path, columns: Sequence[str] | None = None) -> pa.Table | None:
+    """The manifest at ``path`` (only those of ``columns`` it has, when given), or None
+    when it is missing or unreadable."""
     if not path.exists():
         return None
     try:
-        return read_manifest(path)
-    except ManifestError:
+        if columns is None:
+            return read_manifest(path)
+        present = pq.read_schema(path).names
+        return pq.read_table(path, columns=[c for c in columns if c in present])
+    except (ManifestError, OSError, pa.ArrowException):
         return None
 
 
@@ -128,14 +134,17 @@ def load_clips(out: Path) -> pd.DataFrame:
     (0, True)
     """
     parts = []
+    lists = ("phones", "tiers", "quality_flags")
     for name in SUBSETS:
-        table = _read_optional(out / subset_manifest(name))
+        table = _read_optional(out / subset_manifest(name), columns=[*_SCALARS, *lists])
         if table is None:
             continue
         columns: dict[str, Any] = {}
         for col in _SCALARS:
-            columns[col] = table.column(col).to_pylist() if col in table.column_names else [None] * table.num_rows
-        for col in ("phones", "tiers", "quality_flags"):
+            # Arrow to pandas directly (nulls as None or NaN), not through Python lists.
+            columns[col] = (table.column(col).to_pandas().astype(object) if col in table.column_names
+                            else [None] * table.num_rows)
+        for col in lists:
             values = table.column(col).to_pylist() if col in table.column_names else [None] * table.num_rows
             columns[col] = [v if isinstance(v, list) else [] for v in values]
         part = pd.DataFrame(columns)
@@ -402,7 +411,8 @@ def build_summary(out: Path, *, clips: pd.DataFrame | None = None) -> dict[str, 
             "inventory": sorted(inventory),
             "labelled_counts": _phone_counts(labelled["phones"], boundary),
         },
-        "languages": language_rates(_read_optional(out / stage_manifest("text"))),
+        "languages": language_rates(_read_optional(out / stage_manifest("text"),
+                                                   columns=["language", "words", "oov_words", "word_backends"])),
         "rejects": _rejects_section(load_rejects(out)),
         "speakers": _speakers_section(clips),
         "disjointness": heldout_sharing(lambda column: clips[[column, "subset_file"]].rename(columns={"subset_file": "_file"}),
