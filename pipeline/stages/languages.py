@@ -19,6 +19,10 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+import pyarrow as pa
+
+from pipeline.core.columns import counted_items, list_lengths, row_members
 from pipeline.core.config import Config, TextConfig
 from pipeline.core.errors import ParameterError
 from pipeline.core.stage import StageContext
@@ -26,9 +30,11 @@ from pipeline.text.numbers import NumberReader, missing_sentence
 from pipeline.text.pronounce import Pronouncer
 from pipeline.text.rules import RulePhones
 
-__all__ = ["LanguageTools", "Toolbox", "canonical_tag", "file_languages", "metadata_table"]
+__all__ = ["LANGUAGE_TAG", "LanguageTools", "Toolbox", "canonical_tag", "file_languages", "metadata_table"]
 
 _TAG = re.compile(r"^[A-Za-z]{2,3}(-[A-Za-z0-9]{1,8})*$")
+# A language cell that is a BCP-47 tag in form (any case).
+LANGUAGE_TAG = _TAG
 
 
 def canonical_tag(tag: str) -> str:
@@ -204,26 +210,30 @@ def process_in_language(source: str, transcript: str, language: str, *, toolbox:
     return outcome
 
 
-def language_summary(rows: list[dict[str, Any]], rejects: list[dict[str, Any]], languages: dict[str, str],
-                     toolbox: Toolbox) -> dict[str, Any]:
-    """Per language: transcripts, accepted, word tokens, OOV tokens and rate, backend, engine."""
+def language_summary(table: pa.Table, languages: dict[str, str], toolbox: Toolbox) -> dict[str, Any]:
+    """Per language: transcripts, accepted, word tokens, OOV tokens and rate, backend, engine
+    (``table``: the accepted rows; ``languages``: each transcript's language cell)."""
     from collections import Counter
 
     from pipeline.text.guard import oov_rate
 
     transcripts = Counter(canonical_tag(t) if _TAG.match(t) else t for t in languages.values())
+    words = table.column("words").combine_chunks()
+    rows, flat = counted_items(words)
+    oov = row_members(rows, flat, table.column("oov_words").combine_chunks())
+    row_language = np.asarray(table.column("language").to_numpy(zero_copy_only=False), dtype=object)
+    tokens = list_lengths(words)
     out: dict[str, dict[str, Any]] = {}
     for tag in sorted(transcripts):
         tools = toolbox.tools.get(tag)
-        mine = [r for r in rows if r["language"] == tag]
-        tokens = sum(len(r["words"]) for r in mine)
-        oov = sum(sum(w in oov_set for w in r["words"]) for r in mine if (oov_set := set(r["oov_words"])))
-        rate = oov_rate(tokens, oov)
+        mine = row_language == tag
+        n_tokens, n_oov = int(tokens[mine].sum()), int(oov[mine[rows]].sum()) if len(rows) else 0
+        rate = oov_rate(n_tokens, n_oov)
         out[tag] = {
-            "transcripts": transcripts[tag], "accepted": len(mine),
+            "transcripts": transcripts[tag], "accepted": int(mine.sum()),
             "backend": tools.backend if tools else None,
             "engine": tools.pronouncer.rules.engine.label if tools and tools.pronouncer.rules else None,
-            "word_tokens": tokens, "oov_word_tokens": oov,
+            "word_tokens": n_tokens, "oov_word_tokens": n_oov,
             "oov_rate": None if rate is None else round(rate, 4),
         }
     return {"languages": out}

@@ -32,19 +32,35 @@ backend, ``unpronounceable`` naming a symbol the IPA feature table lacks.
 
 from __future__ import annotations
 
+import contextlib
+import hashlib
+import json
 from collections import Counter
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
 from pipeline.core.codeversion import code_version
-from pipeline.core.config import Config, TextConfig
+from pipeline.core.columns import counted_items, row_members
+from pipeline.core.config import Config, TextConfig, canonical_json
+from pipeline.core.errors import ManifestError, ParameterError
 from pipeline.core.fsio import sha256_file, write_text_atomic
-from pipeline.core.manifest import table_from_rows
-from pipeline.core.names import PREDICTED_LEXICON, stage_manifest
+from pipeline.core.manifest import (
+    arrow_schema,
+    read_manifest,
+    read_metadata,
+    table_from_rows,
+)
+from pipeline.core.names import PREDICTED_LEXICON, stage_manifest, stage_outputs_record
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.stages.languages import (
+    LANGUAGE_TAG,
     Toolbox,
+    canonical_tag,
     file_languages,
     language_metadata,
     language_summary,
@@ -220,18 +236,28 @@ def run(ctx: StageContext) -> StageResult:
     # Fixed transcripts replace the found ones; those marked wrong become rejects.
     items, rejects = review_items(ingest, review)
     languages = file_languages(ctx, items)
+    cells = [languages[item["source_id"]] for item in items]
+    for cell in sorted(set(cells)):
+        # Every language gets its tools, as if each transcript were processed; one with
+        # none has its transcripts rejected below, naming the reason.
+        with contextlib.suppress(ParameterError):
+            toolbox.get(cell)
+    key = rows_key(ctx, cache_dir=cache_dir)
+    reused, previous = reusable_rows(ctx.out, items, cells, key=key) if cache_dir else (None, None)
 
     rows: list[dict[str, Any]] = []
     oov_counts: Counter[str] = Counter()
-    oov_phones: dict[str, tuple[tuple[str, ...], str]] = {}
-    for item in items:
+    oov_phones: dict[str, tuple[str, tuple[tuple[str, ...], str]]] = {}  # word -> (first clip, listing)
+    todo = range(len(items)) if reused is None else np.flatnonzero(~reused).tolist()
+    picked = [items[k] for k in todo]
+    for item in picked:
         outcome = process_in_language(item["source_path"], item["transcript"], languages[item["source_id"]],
                                       toolbox=toolbox, cfg=cfg)
         pronouncer = toolbox.tools[outcome.language].pronouncer if outcome.language in toolbox.tools else pronouncer
         for word, pron in outcome.oov:
             oov_counts[word] += 1
             if word not in oov_phones:
-                oov_phones[word] = _listed(word, pron, pronouncer)
+                oov_phones[word] = (item["source_id"], _listed(word, pron, pronouncer))
         if outcome.rejected:
             reason, detail = outcome.rejected
             rejects.append(reject(NAME, item["source_path"], reason, detail, clip_id=item["source_id"]))
@@ -240,30 +266,124 @@ def run(ctx: StageContext) -> StageResult:
     count_fixes(review, {r["clip_id"]: r["reason"] for r in rejects})
     count_words(review, {tag: (tools.pronouncer.backend, tools.pronouncer.override)
                          for tag, tools in toolbox.tools.items()})
+    table = table_from_rows(NAME, rows)
+    if previous is not None and len(previous):
+        _reused_oov(previous, oov_counts, oov_phones, toolbox)
+        table = pa.concat_tables([table, previous]).sort_by("clip_id").combine_chunks()
     # Before predicted.tsv is rewritten: it may itself be the override lexicon just read.
     metadata = _metadata(ctx.config, toolbox.get(cfg.language).pronouncer)
     metadata.update(language_metadata(toolbox))
+    metadata["text.rows_key"] = key
     pronouncer = toolbox.get(cfg.language).pronouncer
     for tools in toolbox.tools.values():
         tools.pronouncer.save_cache()
     if pronouncer.cache_misses or pronouncer.cache_hits:
         ctx.log.info("text: %d out-of-vocabulary words predicted with g2p-en, %d taken from the cache",
                      len(pronouncer.cache_misses), len(pronouncer.cache_hits))
-    _write_predicted(ctx.out / PREDICTED_LEXICON, oov_counts, oov_phones, backend=cfg.backend)
-    summary = _summary(rows, rejects, len(items) + len(review.wrong), cfg)
-    summary.update(language_summary(rows, rejects, languages, toolbox))
+    _write_predicted(ctx.out / PREDICTED_LEXICON, oov_counts, {w: v[1] for w, v in oov_phones.items()},
+                     backend=cfg.backend)
+    summary = _summary(table, rejects, len(items) + len(review.wrong), cfg)
+    summary.update(language_summary(table, languages, toolbox))
     warn_wrong_language(summary["languages"], ctx.log)
     summary["review"] = review.tally.summary(review.path)
     log_tally(ctx, NAME, review.tally)
 
     rejects.sort(key=lambda r: (r["clip_id"], r["reason"]))
+    stats = _run_stats(pronouncer, cache_dir is not None)
+    stats["transcripts_reused"] = int(reused.sum()) if reused is not None else 0
+    stats["transcripts_processed"] = len(picked)
     return StageResult(
-        manifests={stage_manifest(NAME): (NAME, table_from_rows(NAME, rows))},
+        manifests={stage_manifest(NAME): (NAME, table)},
         rejects=rejects,
         summary=summary,
         metadata=metadata,
-        run_stats=_run_stats(pronouncer, cache_dir is not None),
+        run_stats=stats,
     )
+
+
+def rows_key(ctx: StageContext, *, cache_dir: Path | None) -> str:
+    """What a text row depends on besides its own transcript, origin and language: the
+    stage's code version, the text and ingest sections, the lexicon files' bytes and the
+    review decisions the stage applies (a reviewed pronunciation changes every transcript
+    holding the word). Recorded in the manifest's metadata; a rebuild with the same key
+    reuses the rows of transcripts it has seen (:func:`reusable_rows`)."""
+    config = ctx.config
+    parts = {"code_version": code_version(NAME, cache_dir=cache_dir), "text": config.section("text"),
+             "ingest": config.section("ingest"),
+             "lexicons": {k: sha256_file(p) if p.exists() else None for k, p in _lexicon_paths(config).items()},
+             "review": hashlib.sha256(text_digest(ctx)).hexdigest()}
+    return hashlib.sha256(canonical_json(parts)).hexdigest()
+
+
+def _as_written(out: Path, rel: str) -> bool:
+    """Whether ``rel`` still has the size, mtime and inode the runner recorded when this
+    stage wrote it (a file edited since is not trusted)."""
+    try:
+        record = json.loads((out / stage_outputs_record(NAME)).read_text(encoding="utf-8"))["files"]
+        recorded = next(entry for entry in record if entry[0] == rel)
+        st = (out / rel).stat()
+    except (OSError, ValueError, KeyError, TypeError, StopIteration):
+        return False
+    return recorded == [rel, st.st_size, st.st_mtime_ns, st.st_ino]
+
+
+def reusable_rows(out: Path, items: list[dict[str, Any]], cells: list[str], *,
+                  key: str) -> tuple[np.ndarray | None, pa.Table | None]:
+    """Which ``items`` (source_id, transcript, origin) the previous run's manifest in
+    ``out`` already holds, and those rows.
+
+    A row is reused when the manifest is as this stage last wrote it (its stat as the
+    runner recorded it), under the same :func:`rows_key`, and has the item's clip with
+    the same transcript, origin and language (its cell as a tag). The runner checks the whole
+    table against the schema before writing it, reused rows included.
+    Transcripts the previous run rejected are processed again, like new ones: their
+    rejects are not kept. Returns (None, None) when nothing can be reused.
+    """
+    try:
+        if not (_as_written(out, MAIN_MANIFEST) and read_metadata(out / MAIN_MANIFEST).get("text.rows_key") == key):
+            return None, None
+        previous = read_manifest(out / MAIN_MANIFEST).select([f.name for f in arrow_schema(NAME)])
+        previous = previous.cast(arrow_schema(NAME))  # Parquet names list items "element"
+    except (ManifestError, KeyError, ValueError, pa.ArrowException):
+        return None, None
+    if not items or not previous.num_rows:
+        return None, None
+    at = pc.index_in(pa.array([i["source_id"] for i in items], pa.string()),
+                     value_set=previous.column("clip_id").combine_chunks())
+    found = np.asarray(pc.is_valid(at), dtype=bool)
+    index = np.asarray(at.fill_null(0), dtype=np.int64)
+
+    def same(column: str, wanted: list[Any]) -> np.ndarray:
+        equal = pc.equal(pa.array(wanted, pa.string()), previous.column(column).take(index))
+        return np.asarray(pc.fill_null(equal, False), dtype=bool)
+
+    tags = {c: canonical_tag(c) if LANGUAGE_TAG.match(c) else None for c in set(cells)}
+    reused = (found & same("transcript", [i["transcript"] for i in items])
+              & same("transcript_origin", [i["origin"] for i in items]) & same("language", [tags[c] for c in cells]))
+    return reused, previous.take(pa.array(index[reused]))
+
+
+def _reused_oov(previous: pa.Table, counts: Counter[str], listed: dict[str, tuple[str, Any]],
+                toolbox: Toolbox) -> None:
+    """Add the OOV word tokens of reused rows to ``counts``, and the listing of each word
+    whose first occurrence (in clip order) is a reused row, from its language's
+    pronouncer (an OOV word's pronunciation does not depend on its neighbours)."""
+    rows, words = counted_items(previous.column("words").combine_chunks())
+    member = row_members(rows, words, previous.column("oov_words").combine_chunks())
+    oov, oov_rows = words.filter(pa.array(member)), rows[member]
+    if not len(oov):
+        return
+    codes = oov.dictionary_encode()
+    vocabulary = codes.dictionary.to_pylist()
+    distinct, first, tokens = np.unique(np.asarray(codes.indices), return_index=True, return_counts=True)
+    clips = previous.column("clip_id").take(pa.array(oov_rows[first])).to_pylist()
+    tags = previous.column("language").take(pa.array(oov_rows[first])).to_pylist()
+    for code, clip, tag, n in zip(distinct.tolist(), clips, tags, tokens.tolist(), strict=True):
+        word = vocabulary[code]
+        counts[word] += n
+        if word not in listed or clip < listed[word][0]:
+            pronouncer = toolbox.get(tag).pronouncer
+            listed[word] = (clip, _listed(word, pronouncer.pronounce([word])[0], pronouncer))
 
 
 def _listed(word: str, pron: Pronunciation | None, pronouncer: Pronouncer) -> tuple[tuple[str, ...], str]:
@@ -292,32 +412,36 @@ def _write_predicted(path: Path, counts: Counter[str], phones: dict[str, tuple[t
     write_text_atomic(path, "".join(lines))
 
 
-def _summary(rows: list[dict[str, Any]], rejects: list[dict[str, Any]], transcripts: int,
+def _summary(table: pa.Table, rejects: list[dict[str, Any]], transcripts: int,
              cfg: TextConfig) -> dict[str, Any]:
-    inventory: Counter[str] = Counter()
-    sources: Counter[str] = Counter()
-    words: Counter[str] = Counter()
-    oov: Counter[str] = Counter()
-    for row in rows:
-        inventory.update(p for p in row["phones"] if not (cfg.word_boundary and p == cfg.word_boundary))
-        sources.update(row["word_backends"])
-        words.update(row["words"])
-        oov_set = set(row["oov_words"])
-        oov.update(w for w in row["words"] if w in oov_set)
+    """Counts over the accepted rows, columnar (a rebuild of 33,415 rows costs
+    milliseconds, not the 0.5 s of a loop over them)."""
+    _, phones = counted_items(table.column("phones").combine_chunks())
+    if cfg.word_boundary:
+        phones = phones.filter(pc.not_equal(phones, cfg.word_boundary))
+    rows, words = counted_items(table.column("words").combine_chunks())
+    oov = words.filter(pa.array(row_members(rows, words, table.column("oov_words").combine_chunks())))
+    inventory = _counts(phones)
     return {
         "backend": cfg.backend,
         "transcripts": transcripts,
-        "accepted": len(rows),
+        "accepted": table.num_rows,
         "rejected": dict(sorted(Counter(r["reason"] for r in rejects).items())),
-        "words": sum(words.values()),
-        "distinct_words": len(words),
-        "oov_words": len(oov),
-        "oov_word_tokens": sum(oov.values()),
+        "words": len(words),
+        "distinct_words": len(_counts(words)),
+        "oov_words": len(_counts(oov)),
+        "oov_word_tokens": len(oov),
         "phones": sum(inventory.values()),
-        "phone_inventory": dict(sorted(inventory.items())),
-        "word_backends": dict(sorted(sources.items())),
+        "phone_inventory": inventory,
+        "word_backends": _counts(counted_items(table.column("word_backends").combine_chunks())[1]),
         "predicted_lexicon": PREDICTED_LEXICON,
     }
+
+
+def _counts(values: pa.Array) -> dict[str, int]:
+    """Occurrences of each value, sorted by value."""
+    counted = pc.value_counts(values)
+    return dict(sorted(zip(counted.field("values").to_pylist(), counted.field("counts").to_pylist(), strict=True)))
 
 
 def _run_stats(pronouncer: Pronouncer, cached: bool) -> dict[str, Any]:
