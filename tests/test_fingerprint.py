@@ -262,3 +262,64 @@ def test_near_duplicate_pairs_sorted_and_key_cap() -> None:
     assert fingerprint.find_near_duplicates([np.zeros(0, np.uint32)] * 3, min_similarity=0.9) == []
     with pytest.raises(ParameterError, match="min_similarity"):
         fingerprint.find_near_duplicates(corpus, min_similarity=0.0)
+
+
+def _candidate_pairs_per_clip(fps: list[np.ndarray], *, max_clips_per_key: int, min_shared_keys: int) -> set:
+    """The candidate search as first written, one ``np.unique`` per clip: the reference
+    for the sharded search over all clips at once."""
+    keys_per_clip = [np.unique(fp[fp != 0]) for fp in fps]
+    sizes = np.array([k.size for k in keys_per_clip], dtype=np.int64)
+    if sizes.sum() == 0:
+        return set()
+    keys = np.concatenate(keys_per_clip).astype(np.int64)
+    clips = np.repeat(np.arange(len(fps), dtype=np.int64), sizes)
+    order = np.lexsort((clips, keys))
+    keys, clips = keys[order], clips[order]
+    shared: dict = {}
+    for key in np.unique(keys):
+        members = clips[keys == key]
+        if 2 <= members.size <= max_clips_per_key:
+            for a in range(members.size):
+                for b in range(a + 1, members.size):
+                    pair = (int(members[a]), int(members[b]))
+                    shared[pair] = shared.get(pair, 0) + 1
+    return {pair for pair, n in shared.items() if n >= min_shared_keys}
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_sharded_candidate_search_agrees_with_one_sort_per_clip(seed: int) -> None:
+    """Clips drawn from a small key alphabet (so keys are shared, some by more clips than
+    the cap), with repeated keys inside a clip, zeros (never keys), empty clips, and
+    keys in every top-bit shard."""
+    rng = np.random.default_rng(seed)
+    alphabet = np.concatenate([[0], rng.integers(1, 2**32, size=60, dtype=np.uint32),
+                               (np.arange(16, dtype=np.uint32) << np.uint32(28)) | np.uint32(5)])
+    fps = [alphabet[rng.integers(0, alphabet.size, size=int(rng.integers(0, 12)))] for _ in range(40)]
+    offsets = np.r_[0, np.cumsum([fp.size for fp in fps])]
+    for cap, shared in ((4, 1), (6, 2), (64, 2)):
+        codes = fingerprint._candidate_pairs(np.concatenate(fps), offsets, max_clips_per_key=cap,
+                                             min_shared_keys=shared)
+        found = {divmod(int(c), len(fps)) for c in codes}
+        assert found == _candidate_pairs_per_clip(fps, max_clips_per_key=cap, min_shared_keys=shared)
+        assert codes.tolist() == sorted(codes.tolist())
+
+
+@pytest.mark.parametrize("block_chars", [1, 24, 1 << 24])
+def test_decoding_many_fingerprints_at_once_equals_decoding_each(block_chars: int, monkeypatch) -> None:
+    """Whatever the block of texts decoded at a time (one text, a few, all)."""
+    monkeypatch.setattr(fingerprint, "_DECODE_BLOCK_CHARS", block_chars)
+    rng = np.random.default_rng(3)
+    fps = [rng.integers(0, 2**32, size=n, dtype=np.uint32) for n in (0, 1, 2, 3, 5, 0, 64, 7)]
+    texts = [fingerprint.encode_fingerprint(fp) for fp in fps]
+    chars = np.frombuffer("".join(texts).encode("ascii"), np.uint8)
+    offsets = np.r_[0, np.cumsum([len(t) for t in texts])]
+    values, out = fingerprint.decode_fingerprints(chars, offsets)
+    assert [values[out[k]:out[k + 1]].tolist() for k in range(len(fps))] == [fp.tolist() for fp in fps]
+    # A slice of a larger buffer, as an Arrow column's offsets may start past 0.
+    values, out = fingerprint.decode_fingerprints(np.r_[np.uint8(65), chars], offsets + 1)
+    assert values.tolist() == np.concatenate(fps).tolist()
+    for bad in ("AQAAAP==x", "AQ!AAA==", "YWJj"):  # stray character, not base64, 3 bytes
+        broken = [*texts[:2], bad]
+        with pytest.raises(ParameterError):
+            fingerprint.decode_fingerprints(np.frombuffer("".join(broken).encode(), np.uint8),
+                                            np.r_[0, np.cumsum([len(t) for t in broken])])
