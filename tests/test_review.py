@@ -11,11 +11,13 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+import pyarrow.parquet as pq
 import pytest
 
 from pipeline.commands.review_queue import build_queue
 from pipeline.commands.review_server import ReviewState, make_server
 from pipeline.core.config import build_config
+from pipeline.core.names import HELDOUT, subset_manifest
 from pipeline.core.stage import StageContext
 from pipeline.stages.decisions import append_decision, effective, read_decisions
 from pipeline.stages.review_apply import split_exclusions
@@ -212,3 +214,12 @@ def test_the_text_stage_applies_fixes_wrong_transcripts_and_pronunciations(tmp_p
     review = result.summary["review"]
     assert review["applied"] == {"fix_transcript": 1, "pronunciation": 1, "wrong_transcript": 1}
     assert review["not_applied"] == {"invalid_phones": 1, "transcript_rejected": 1}
+
+
+def test_queue_items_carry_the_part_of_their_held_out_row(server: ReviewState) -> None:
+    # Issue 20 asks for each clip's subset, part and tiers; the part is the held-out row's own.
+    rows = {r["clip_id"]: r for r in pq.read_table(server.out / subset_manifest(HELDOUT)).to_pylist()}
+    held = [it for it in server.queue.items if it["subset"] == HELDOUT]
+    assert held, "the demo queues held-out clips"
+    assert all(it["part"] == rows[it["clip_id"]]["part"] and it["part"] for it in held)
+    assert all(it["part"] is None for it in server.queue.items if it["subset"] != HELDOUT)

@@ -141,6 +141,7 @@ function card(it, current) {
   const c = el('section', { class: 'card' + (current ? ' current' : ''), 'data-clip': it.clip_id },
     el('h2', { text: it.clip_id }),
     el('div', { class: 'meta', text: `speaker ${it.speaker} · ${it.subset || 'rejected: ' + it.rejected}` +
+      (it.part ? ` · part ${it.part}` : '') +
       (it.tiers.length ? ` · tiers ${it.tiers.join(', ')}` : '') + ` · ${it.source_path}` }),
     el('div', { class: 'why' }, ...it.why.map(w => el('span', { text: w })),
       decided ? el('span', { class: 'decided', text: 'decided: ' + decided }) : null),

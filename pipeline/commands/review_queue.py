@@ -130,7 +130,7 @@ def _item(row: Mapping[str, Any], audio: Mapping[str, Any], sha: Mapping[str, st
     oov = list(text["oov_words"]) if text else []
     return {
         "clip_id": row["clip_id"], "speaker": row["speaker"], "subset": row.get("subset"),
-        "tiers": list(row.get("tiers") or []), "source_path": row["source_path"],
+        "part": row.get("part"), "tiers": list(row.get("tiers") or []), "source_path": row["source_path"],
         "audio_sha256": row["audio_sha256"], "source_sha256": sha.get(audio["source_id"], ""),
         "transcript": text["transcript"] if text else row.get("transcript"),
         "transcript_origin": text.get("transcript_origin") if text else None,
