@@ -76,6 +76,9 @@ class AudioConfig:
     true_peak: bool
     format: str
     quality_measures: bool
+    align: str
+    align_min_confidence: float
+    align_snap_ms: int
 
 
 @dataclass(frozen=True)

@@ -28,7 +28,8 @@ REASONS = (
     "metadata_missing_audio", "metadata_duplicate_row", "path_outside_root",
     "conflicting_transcripts", "missing_speaker", "unsupported_sample_rate", "truncated",
     "file_name_encoding", "non_finite_samples", "out_of_range_samples", "upsampled",
-    "too_long_transcribed", "no_speech", "clipped", "too_short", "loudness_unmeasurable",
+    "too_long_transcribed", "transcript_mismatch", "sentences_unaligned", "no_speech", "clipped", "too_short",
+    "loudness_unmeasurable",
     "empty_transcript", "unpronounceable", "bad_characters", "oov", "unreadable_number", "noisy",
     "invalid_measurement", "review_excluded", "review_transcript_wrong",
 )

@@ -77,6 +77,10 @@ class AudioJob:
     out: str  # absolute OUT folder; clips go to OUT/audio/<speaker>/
     tmp: str  # folder for the spool file
     config: AudioConfig
+    # For a transcribed source: the espeak-ng voice that aligns a long transcript
+    # (pipeline.stages.alignment), or None and why not.
+    voice: str | None = None
+    no_voice: str = ""
 
 
 @dataclass
@@ -371,10 +375,10 @@ def _cut_and_write(job: AudioJob, scan: SourceScan, spool: Spool, *, declared_fr
     rejected = _source_reject(job, scan, declared_frames=declared_frames)
     if rejected is not None:
         return FileOutcome(rejects=[rejected])
-    speech = _find_speech(job, scan)
+    speech = _find_speech(job, scan, spool)
     if isinstance(speech, dict):
         return FileOutcome(rejects=[speech])
-    outcome = FileOutcome()
+    outcome = FileOutcome(rejects=list(speech.notes))
     shared = _shared_fields(job, scan)
     for index, (span, clip_id) in enumerate(speech.plan):
         samples = speech.samples(span)
@@ -439,6 +443,10 @@ class SpeechPlan:
     frame_ms: int
     sample_rate: int
     out_samples: int
+    # A long transcribed source cut by aligning its transcript: each transcribed clip's
+    # text and confidence, and the reject rows about the transcript.
+    texts: dict[str, tuple[str, float]] | None = None
+    notes: tuple[dict[str, Any], ...] = ()
 
     def samples(self, span: tuple[int, int]) -> tuple[int, int]:
         """A frame span as output-rate samples; the last frame runs to the end of the stream."""
@@ -449,7 +457,7 @@ class SpeechPlan:
         return start, stop
 
 
-def _find_speech(job: AudioJob, scan: SourceScan) -> SpeechPlan | dict[str, Any]:
+def _find_speech(job: AudioJob, scan: SourceScan, spool: Spool) -> SpeechPlan | dict[str, Any]:
     """Smooth and trim the VAD frames and plan the clips: one, or pieces cut at pauses
     of an untranscribed span longer than ``audio.max_clip_s``; else a reject row."""
     cfg, row = job.config, job.row
@@ -470,11 +478,17 @@ def _find_speech(job: AudioJob, scan: SourceScan) -> SpeechPlan | dict[str, Any]
     span_s = (r1 - r0) / cfg.sample_rate
     if span_s <= cfg.max_clip_s:
         return found
-    if row["transcript"] is not None:
+    if row["transcript"] is not None and job.voice is None:
         return reject(NAME, rel, "too_long_transcribed",
                       f"{rel}: speech spans {span_s:.1f} s, longer than "
                       f"audio.max_clip_s ({cfg.max_clip_s} s); a transcribed file is "
-                      "not cut, as its transcript cannot be split with it")
+                      f"cut only by aligning its transcript, and {job.no_voice}")
+    if row["transcript"] is not None:
+        from pipeline.stages.alignment import align_long_transcribed
+
+        aligned = align_long_transcribed(job, scan, spool, speech, region)
+        return SpeechPlan(speech, ratio, aligned.plan, frame_ms, cfg.sample_rate, scan.out_samples,
+                          texts=aligned.texts, notes=tuple(aligned.notes))
     spans = split_frames(speech, scan.energy_db, frame_ms=frame_ms, segment_min_s=cfg.segment_min_s,
                          segment_max_s=cfg.segment_max_s, pad_ms=cfg.pad_ms, start=region[0], stop=region[1])
     plan = [(span, segment_id(source_id, start_ms=span[0] * frame_ms)) for span in spans]
@@ -495,6 +509,8 @@ def _shared_fields(job: AudioJob, scan: SourceScan) -> dict[str, Any]:
         "dc_offset": scan.dc_sum / scan.frames if scan.frames else 0.0,
         "bandwidth_hz": scan.bandwidth_hz,
         "transcribed": row["transcript"] is not None,
+        "aligned_transcript": None,
+        "align_confidence": None,
     }
 
 
@@ -505,8 +521,14 @@ def _placed(speech: SpeechPlan, shared: dict[str, Any], *, index: int, span: tup
     start, stop = samples
     ratio = (speech.ratio if len(speech.plan) == 1 else
              float(np.count_nonzero(speech.speech[span[0]:span[1]])) / (span[1] - span[0]))
+    aligned = {} if speech.texts is None else {
+        "transcribed": clip_id in speech.texts,
+        "aligned_transcript": speech.texts[clip_id][0] if clip_id in speech.texts else None,
+        "align_confidence": speech.texts[clip_id][1] if clip_id in speech.texts else None,
+    }
     return {
         **shared,
+        **aligned,
         "clip_id": clip_id,
         "segment_index": index,
         "source_start_s": start / rate,
@@ -720,11 +742,12 @@ def prepare_driver(config: Any) -> None:
     warm_up(config.audio)
 
 
-def _cache_key(row: dict[str, Any], section: dict[str, Any], code: str) -> str:
+def _cache_key(row: dict[str, Any], section: dict[str, Any], code: str, voice: str | None) -> str:
     # source_id and source_path are in the key because they are copied into the rows.
     # ``code`` is the stage's code version: any edit within its reach misses every entry.
+    # A transcript and its voice can decide how a long source is cut.
     return cache_key("audio", row["sha256"], section, code, row["source_id"], row["source_path"],
-                     row["speaker"], row["transcript"] is not None)
+                     row["speaker"], row["transcript"] if voice else row["transcript"] is not None, voice)
 
 
 def _reuse_cached(cache: FileCache, keys: list[str], *, out: Path,
@@ -809,7 +832,10 @@ def run(ctx: StageContext) -> StageResult:
     section = ctx.config.section(NAME)
 
     code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
-    keys = [_cache_key(row, section, code) for row in sources]
+    from pipeline.stages.alignment import alignment_voices
+
+    voices = alignment_voices(ctx, sources)
+    keys = [_cache_key(row, section, code, voices.get(row["source_id"], (None, ""))[0]) for row in sources]
     # Rows go straight into Arrow batches as each outcome arrives (cached or fresh);
     # no list of every outcome is kept. Rejects are few, and kept in source order.
     builder = ManifestBuilder(NAME)
@@ -823,7 +849,7 @@ def run(ctx: StageContext) -> StageResult:
     todo = _reuse_cached(cache, keys, out=out, take=take)
     real = _real_paths(ctx, out)
     jobs = [AudioJob(sources[i], str(raw / real.get(sources[i]["source_path"], sources[i]["source_path"])),
-                     str(out), str(out / TMP_DIR), cfg)
+                     str(out), str(out / TMP_DIR), cfg, *voices.get(sources[i]["source_id"], (None, "")))
             for i in todo]
     if jobs:
         warm_up(cfg)
@@ -858,7 +884,7 @@ STAGE = Stage(
     name=NAME,
     inputs=("ingest",),
     outputs=(Output(names.stage_manifest(NAME), schema=NAME),),
-    config_sections=("audio",),
+    config_sections=("audio", "text", "ingest"),  # text, ingest: each transcript's language, for its voice
     run=run,
     written_files=written_files,
     prepare_driver=prepare_driver,

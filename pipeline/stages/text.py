@@ -1,7 +1,8 @@
 """Text stage: normalise each transcript, pronounce its words, set aside what cannot be used.
 
 Reads the ingest rows that have a transcript; a transcribed source is one clip,
-so ``clip_id`` is the ingest ``source_id``. Writes:
+so ``clip_id`` is the ingest ``source_id``, except a long source the audio stage cut by
+aligning its transcript, whose transcribed clips each get their sentences. Writes:
 
 ``stages/text.parquet``    one row per accepted transcript (``schemas/text.schema.json``),
                            sorted by clip_id;
@@ -236,6 +237,7 @@ def run(ctx: StageContext) -> StageResult:
     # Fixed transcripts replace the found ones; those marked wrong become rejects.
     items, rejects = review_items(ingest, review)
     languages = file_languages(ctx, items)
+    items = _per_clip(items, ctx.inputs["audio"])
     cells = [languages[item["source_id"]] for item in items]
     for cell in sorted(set(cells)):
         # Every language gets its tools, as if each transcript were processed; one with
@@ -257,12 +259,12 @@ def run(ctx: StageContext) -> StageResult:
         for word, pron in outcome.oov:
             oov_counts[word] += 1
             if word not in oov_phones:
-                oov_phones[word] = (item["source_id"], _listed(word, pron, pronouncer))
+                oov_phones[word] = (item["clip_id"], _listed(word, pron, pronouncer))
         if outcome.rejected:
             reason, detail = outcome.rejected
-            rejects.append(reject(NAME, item["source_path"], reason, detail, clip_id=item["source_id"]))
+            rejects.append(reject(NAME, item["source_path"], reason, detail, clip_id=item["clip_id"]))
         elif outcome.row is not None:
-            rows.append({"clip_id": item["source_id"], **outcome.row, "transcript_origin": item["origin"]})
+            rows.append({"clip_id": item["clip_id"], **outcome.row, "transcript_origin": item["origin"]})
     count_fixes(review, {r["clip_id"]: r["reason"] for r in rejects})
     count_words(review, {tag: (tools.pronouncer.backend, tools.pronouncer.override)
                          for tag, tools in toolbox.tools.items()})
@@ -329,7 +331,7 @@ def _as_written(out: Path, rel: str) -> bool:
 
 def reusable_rows(out: Path, items: list[dict[str, Any]], cells: list[str], *,
                   key: str) -> tuple[np.ndarray | None, pa.Table | None]:
-    """Which ``items`` (source_id, transcript, origin) the previous run's manifest in
+    """Which ``items`` (clip_id, transcript, origin) the previous run's manifest in
     ``out`` already holds, and those rows.
 
     A row is reused when the manifest is as this stage last wrote it (its stat as the
@@ -348,7 +350,7 @@ def reusable_rows(out: Path, items: list[dict[str, Any]], cells: list[str], *,
         return None, None
     if not items or not previous.num_rows:
         return None, None
-    at = pc.index_in(pa.array([i["source_id"] for i in items], pa.string()),
+    at = pc.index_in(pa.array([i["clip_id"] for i in items], pa.string()),
                      value_set=previous.column("clip_id").combine_chunks())
     found = np.asarray(pc.is_valid(at), dtype=bool)
     index = np.asarray(at.fill_null(0), dtype=np.int64)
@@ -384,6 +386,29 @@ def _reused_oov(previous: pa.Table, counts: Counter[str], listed: dict[str, tupl
         if word not in listed or clip < listed[word][0]:
             pronouncer = toolbox.get(tag).pronouncer
             listed[word] = (clip, _listed(word, pronouncer.pronounce([word])[0], pronouncer))
+
+
+def _per_clip(items: list[dict[str, Any]], audio: pa.Table) -> list[dict[str, Any]]:
+    """The transcripts to pronounce, one per clip: a source's own (its clip has the source's
+    id) or, for a long source cut by aligning its transcript, each transcribed clip's
+    sentences (pipeline.stages.alignment); a long source whose transcript placed no clip
+    has none. Columnar until the few cut sources: a rebuild's cost per existing clip stays
+    in Arrow."""
+    table = audio.select(["clip_id", "source_id", "aligned_transcript"])
+    sources = table.column("source_id")
+    whole = pc.equal(table.column("clip_id"), sources)
+    cut = set(pc.unique(sources).to_pylist()) - set(pc.unique(pc.filter(sources, whole)).to_pylist())
+    aligned: dict[str, list[tuple[str, str]]] = {}
+    if cut:
+        for r in table.filter(pc.is_valid(table.column("aligned_transcript"))).to_pylist():
+            aligned.setdefault(r["source_id"], []).append((r["clip_id"], r["aligned_transcript"]))
+    out = []
+    for item in items:
+        if item["source_id"] not in cut:
+            out.append({**item, "clip_id": item["source_id"]})
+        else:
+            out.extend({**item, "clip_id": c, "transcript": t} for c, t in sorted(aligned.get(item["source_id"], [])))
+    return out
 
 
 def _listed(word: str, pron: Pronunciation | None, pronouncer: Pronouncer) -> tuple[tuple[str, ...], str]:
@@ -461,7 +486,9 @@ def _metadata(config: Config, pronouncer: Pronouncer) -> dict[str, str]:
 
 STAGE = Stage(
     name=NAME,
-    inputs=("ingest",),
+    # audio: a long transcribed source is cut by aligning its transcript, and each of its
+    # clips has the sentences placed in it as transcript.
+    inputs=("ingest", "audio"),
     outputs=(Output(MAIN_MANIFEST, schema=NAME),),
     config_sections=("text", "ingest"),  # ingest: the metadata table's language column
     run=run,

@@ -123,16 +123,22 @@ class _Espeak:
         lib.espeak_SetVoiceByName.argtypes = [ctypes.c_char_p]
         lib.espeak_TextToPhonemes.restype = ctypes.c_char_p
         lib.espeak_TextToPhonemes.argtypes = [ctypes.POINTER(ctypes.c_char_p), ctypes.c_int, ctypes.c_int]
-        if lib.espeak_Initialize(self._SYNCHRONOUS, 0, str(root / "espeak-ng-data").encode(), 0) <= 0:
+        # espeak_Initialize returns the sample rate of the speech it synthesises.
+        self.sample_rate = lib.espeak_Initialize(self._SYNCHRONOUS, 0, str(root / "espeak-ng-data").encode(), 0)
+        if self.sample_rate <= 0:
             raise ParameterError(f"espeak-ng failed to start from {root}")
         self.lib = lib
         self.voice = ""
 
-    def units(self, word: str, voice: str) -> list[str]:
+    def select(self, voice: str) -> None:
+        """Make ``voice`` the library's current voice."""
         if voice != self.voice:
             if self.lib.espeak_SetVoiceByName(voice.encode()) != 0:
                 raise ParameterError(f"espeak-ng has no voice {voice!r}")
             self.voice = voice
+
+    def units(self, word: str, voice: str) -> list[str]:
+        self.select(voice)
         buffer = ctypes.c_char_p(word.encode("utf-8"))
         pointer = ctypes.pointer(buffer)
         out: list[str] = []

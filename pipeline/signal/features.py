@@ -1,0 +1,142 @@
+"""Frame features for aligning two recordings of the same words: MFCCs, normalised.
+
+Mel-frequency cepstral coefficients (Davis and Mermelstein, 1980) with the mel filter
+bank of ``librosa.filters.mel`` (Slaney's mel scale, area-normalised triangles), the
+power spectrum from ``scipy.fft`` and the type-II orthonormal DCT, computed frame by
+frame without centring, so a long recording can be done in blocks whose features join
+exactly. No number goes through a BLAS product (the filter bank is applied filter by
+filter with ``np.einsum(optimize=False)``), so the features do not depend on the BLAS
+library's threads or kernel. Mean and variance normalisation per coefficient (over the
+whole recording) removes the level, channel and voice differences that would otherwise
+dominate a distance between a synthetic and a real recording.
+"""
+
+from __future__ import annotations
+
+import functools
+
+import numpy as np
+
+from pipeline.core.errors import ParameterError
+from pipeline.signal.arrays import check_sample_rate, mono_float, periodic_hann
+
+__all__ = ["FeatureFrames", "mfcc", "normalise"]
+
+N_MELS = 40
+N_MFCC = 13
+WINDOW_MS = 25
+# Filters stop below 7.6 kHz (or 200 Hz under Nyquist at low rates), so a 16 kHz and a
+# 22.05 kHz recording of the same speech get the same bands.
+TOP_HZ = 7600.0
+# Power floor before the logarithm (-100 dB re full scale): digital silence then has a
+# finite, fixed level.
+POWER_FLOOR = 1e-10
+
+
+class FeatureFrames:
+    """The framing of :func:`mfcc` at one rate: hop and window in samples, FFT size.
+
+    Examples
+    --------
+    >>> f = FeatureFrames(sample_rate=16000, hop_ms=20)
+    >>> f.hop, f.window, f.n_fft, f.count(16000)
+    (320, 400, 512, 49)
+    """
+
+    def __init__(self, *, sample_rate: int, hop_ms: int) -> None:
+        check_sample_rate(sample_rate)
+        if hop_ms < 1:
+            raise ParameterError(f"hop_ms={hop_ms} must be at least 1")
+        self.sample_rate = sample_rate
+        self.hop = sample_rate * hop_ms // 1000
+        self.window = sample_rate * WINDOW_MS // 1000
+        self.n_fft = 1 << (self.window - 1).bit_length()
+        if self.hop < 1:
+            raise ParameterError(f"hop_ms={hop_ms} is shorter than one sample at {sample_rate} Hz")
+
+    def count(self, samples: int) -> int:
+        """Frames that fit in ``samples`` samples (a frame needs its whole window)."""
+        return 0 if samples < self.window else 1 + (samples - self.window) // self.hop
+
+
+@functools.cache
+def _filters(sample_rate: int, n_fft: int) -> tuple[tuple[int, int, np.ndarray], ...]:
+    """Each mel filter's first bin, stop bin and weights there (the bank is sparse)."""
+    import librosa
+
+    top = min(TOP_HZ, sample_rate / 2 - 200.0)
+    bank = librosa.filters.mel(sr=sample_rate, n_fft=n_fft, n_mels=N_MELS, fmin=0.0, fmax=top)
+    out = []
+    for row in bank:
+        nz = np.flatnonzero(row)
+        lo, hi = (int(nz[0]), int(nz[-1]) + 1) if nz.size else (0, 1)
+        out.append((lo, hi, np.ascontiguousarray(row[lo:hi], dtype=np.float64)))
+    return tuple(out)
+
+
+def mfcc(samples: np.ndarray, *, sample_rate: int, hop_ms: int = 20) -> np.ndarray:
+    """MFCCs of every whole frame of ``samples`` (frame t starts at sample t * hop).
+
+    Parameters
+    ----------
+    samples : np.ndarray
+        Mono waveform.
+    sample_rate : int
+        Its rate in Hz.
+    hop_ms : int
+        Frame step in ms; windows are 25 ms.
+
+    Returns
+    -------
+    np.ndarray
+        float32 array of shape (frames, 13): c0 (log energy) to c12.
+
+    Examples
+    --------
+    >>> tone = np.sin(2 * np.pi * 440 * np.arange(16000) / 16000)
+    >>> mfcc(tone, sample_rate=16000).shape
+    (49, 13)
+    """
+    import scipy.fft
+
+    x = mono_float(samples)
+    frames = FeatureFrames(sample_rate=sample_rate, hop_ms=hop_ms)
+    count = frames.count(len(x))
+    if count == 0:
+        return np.zeros((0, N_MFCC), dtype=np.float32)
+    view = np.lib.stride_tricks.sliding_window_view(x, frames.window)[::frames.hop][:count]
+    spectrum = scipy.fft.rfft(view * periodic_hann(frames.window), n=frames.n_fft, axis=1)
+    power = spectrum.real.astype(np.float64) ** 2 + spectrum.imag.astype(np.float64) ** 2
+    mel = np.empty((count, N_MELS), dtype=np.float64)
+    for m, (lo, hi, weights) in enumerate(_filters(sample_rate, frames.n_fft)):
+        mel[:, m] = np.einsum("fb,b->f", power[:, lo:hi], weights, optimize=False)
+    log_mel = np.log(np.maximum(mel, POWER_FLOOR))
+    return scipy.fft.dct(log_mel, type=2, norm="ortho", axis=1)[:, :N_MFCC].astype(np.float32)
+
+
+def normalise(features: np.ndarray) -> np.ndarray:
+    """Each column shifted to mean 0 and scaled to variance 1 (a constant column to 0).
+
+    Parameters
+    ----------
+    features : np.ndarray
+        2-D array, one frame per row.
+
+    Returns
+    -------
+    np.ndarray
+        float32 array of the same shape.
+
+    Examples
+    --------
+    >>> normalise(np.array([[1.0, 5.0], [3.0, 5.0]])).tolist()
+    [[-1.0, 0.0], [1.0, 0.0]]
+    """
+    f = np.asarray(features, dtype=np.float64)
+    if f.ndim != 2:
+        raise ParameterError(f"features must be 2-D (frames, coefficients), got shape {f.shape}")
+    if len(f) == 0:
+        return f.astype(np.float32)
+    mean = f.mean(axis=0)
+    std = f.std(axis=0)
+    return ((f - mean) / np.where(std > 0, std, 1.0)).astype(np.float32)
