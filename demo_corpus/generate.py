@@ -39,7 +39,7 @@ import soxr
 
 SEED = 7
 ROOT = Path(__file__).resolve().parent
-SIZE_LIMIT_BYTES = 6_000_000
+SIZE_LIMIT_BYTES = 6_500_000
 ESPEAK_RATE = 22050  # espeak-ng always writes 22.05 kHz 16-bit mono
 
 PEAK_RANGE_DBFS = (-30.0, -3.0)
@@ -484,6 +484,7 @@ def planned_paths() -> list[str]:
             if line.transcript in ("sidecar", "conflict"):
                 paths.append(Path(audio).with_suffix(".txt").as_posix())
     paths.append(f"{LONG_SPEAKER}/{LONG_STEM}.{LONG_ENCODING.extension}")
+    paths += [f"{READ_SPEAKER}/{READ_STEM}.{READ_ENCODING.extension}", f"{READ_SPEAKER}/{READ_STEM}.txt"]
     paths += [clip_path(SECOND_SPEAKER, i, line.encoding) for i, (line, _) in enumerate(SECOND_LINES)]
     paths += [ZERO_BYTE, TEXT_AS_WAV, TRUNCATED, DUPLICATE, METADATA]
     return paths
@@ -576,6 +577,52 @@ def make_long_recording(rng: np.random.Generator) -> None:
     )
 
 
+# A read passage with its whole text in a sidecar: the ferry house log, read aloud by
+# heron. Longer than audio.max_clip_s, so `make` aligns the text to it and cuts
+# it into transcribed clips (README, Long transcribed recordings).
+READ_SPEAKER = "heron"
+READ_STEM = "heron_storm_log"
+READ_ENCODING = O_16
+READ_PEAK_DBFS = -6.0
+READ_PAUSE_S = (0.3, 1.2)
+READ_DURATION_S = (55.0, 90.0)
+READ_TEXT = """The ferry house log for the winter of the great storm.
+On the first night the wind came round to the north east. We lit the lamp an hour early.
+By midnight the spray was reaching the gallery windows. The glass held, but the door
+to the oil store blew open twice.
+In the morning the causeway was under water. Nobody could reach us from the village.
+We had bread for four days and coal for a week. My brother counted the tins twice.
+On the third day a fishing boat came close under the rocks. We waved the red flag
+and they waved back.
+The storm eased on the fifth morning. The harbour master rowed out with letters and eggs.
+He said the ferry had broken loose and drifted as far as the salt flats.
+Half the nets in the lofts were ruined, and the chapel roof had lost its slates.
+We cleaned the lamp and wound the clock, and wrote down every ship we had seen.
+There were only two, both far out, and neither of them stopped.
+"""
+
+
+def make_read_passage(rng: np.random.Generator) -> None:
+    """Speak READ_TEXT sentence by sentence with pauses; write it and its whole-text sidecar."""
+    rate = READ_ENCODING.sample_rate
+    voice = VOICES[READ_SPEAKER]
+    sentences = [s.strip() + "." for s in " ".join(READ_TEXT.split()).split(".") if s.strip()]
+    parts = [np.zeros(round(rng.uniform(*EDGE_SILENCE_S) * rate))]
+    for number, sentence in enumerate(sentences):
+        if number:
+            parts.append(np.zeros(round(rng.uniform(*READ_PAUSE_S) * rate)))
+        speech = soxr.resample(synthesise(text=sentence, voice=voice), ESPEAK_RATE, rate, quality="VHQ")
+        parts.append(speech / np.max(np.abs(speech)))
+    parts.append(np.zeros(round(rng.uniform(*EDGE_SILENCE_S) * rate)))
+    mono = np.concatenate(parts) * db_to_amplitude(READ_PEAK_DBFS)
+    mono += rng.normal(0.0, db_to_amplitude(READ_PEAK_DBFS - 50.0), size=mono.size)
+    if not READ_DURATION_S[0] <= mono.size / rate <= READ_DURATION_S[1]:
+        raise RuntimeError(f"read passage is {mono.size / rate:.1f} s")
+    audio = ROOT / f"{READ_SPEAKER}/{READ_STEM}.{READ_ENCODING.extension}"
+    write_audio(audio, mono, encoding=READ_ENCODING)
+    audio.with_suffix(".txt").write_text(READ_TEXT, encoding="utf-8")
+
+
 def make_faults(rows: list[list[str]]) -> None:
     """Write the broken files and the faulty metadata rows."""
     (ROOT / ZERO_BYTE).write_bytes(b"")
@@ -600,6 +647,7 @@ def generate() -> None:
     clip_seed, long_seed = seeds.spawn(2)
     rows = make_clips(clip_seed)
     make_long_recording(np.random.default_rng(long_seed))
+    make_read_passage(np.random.default_rng(np.random.SeedSequence([SEED, 3])))
     make_faults(rows)
     # Appended after every other row, so the English rows keep their line numbers.
     rows += make_second_language(np.random.SeedSequence([SEED, 2]))
