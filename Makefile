@@ -81,6 +81,7 @@ property-search: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python bench/run.py --out "$(BENCH_OUT)"
+	$(BIN)/python bench/bench_align.py
 
 lint: $(STAMP)
 	$(BIN)/ruff check pipeline tests bench demo_corpus

@@ -86,7 +86,9 @@ def _band_dtw(x: np.ndarray, y: np.ndarray, lo: np.ndarray, hi: np.ndarray, gaps
     """The best path's column per row, searching only columns ``lo[i] <= j < hi[i]``."""
     n = len(x)
     ways: list[np.ndarray] = []
-    jumps: dict[tuple[int, int], int] = {}
+    # Per row, the columns reached by a jump and where each jump came from (int32 arrays:
+    # a dict entry per jump cost ten times the memory at the coarsest level).
+    jumps: list[tuple[np.ndarray, np.ndarray] | None] = [None]
     prev = np.full(0, _INF)
     plo = 0
     for i in range(n):
@@ -106,25 +108,28 @@ def _band_dtw(x: np.ndarray, y: np.ndarray, lo: np.ndarray, hi: np.ndarray, gaps
         options = np.stack([padded[2:], padded[1:-1], padded[:-2]])
         way = np.argmin(options, axis=0).astype(np.int8)
         best = options[way, np.arange(b - a)]
-        _jump(prev, plo, a, b, gaps, best, way, jumps, i, skip_cost)
+        jumps.append(_jump(prev, plo, a, b, gaps, best, way, skip_cost))
         prev, plo = best + cost, a
         ways.append(way)
     return _trace(ways, jumps, lo, n)
 
 
 def _jump(prev: np.ndarray, plo: int, a: int, b: int, gaps: _Gaps, best: np.ndarray, way: np.ndarray,
-          jumps: dict[tuple[int, int], int], row: int, skip_cost: float) -> None:
-    """Let each gap's first column in [a, b) be reached from an earlier gap's last column."""
+          skip_cost: float) -> tuple[np.ndarray, np.ndarray] | None:
+    """Let each gap's first column in [a, b) be reached from an earlier gap's last column;
+    the columns so reached and their origins."""
     starts = gaps.first[(gaps.first >= a) & (gaps.first < b)]
     if starts.size == 0:
-        return
+        return None
     ends = gaps.last[(gaps.last >= plo) & (gaps.last < plo + len(prev))]
     if ends.size == 0:
-        return
+        return None
     values = prev[ends - plo]
     running = np.minimum.accumulate(values)
     where = np.concatenate([[0], np.flatnonzero(values[1:] < running[:-1]) + 1])
     origin = ends[where[np.searchsorted(where, np.arange(len(ends)), side="right") - 1]]
+    reached: list[int] = []
+    sources: list[int] = []
     for s in starts:
         k = int(np.searchsorted(ends, s, side="left")) - 1  # the ends before this gap
         if k < 0:
@@ -133,10 +138,13 @@ def _jump(prev: np.ndarray, plo: int, a: int, b: int, gaps: _Gaps, best: np.ndar
         if candidate < best[s - a]:
             best[s - a] = candidate
             way[s - a] = _SKIP
-            jumps[(row, int(s))] = int(origin[k])
+            reached.append(int(s))
+            sources.append(int(origin[k]))
+    return (np.array(reached, dtype=np.int32), np.array(sources, dtype=np.int32)) if reached else None
 
 
-def _trace(ways: list[np.ndarray], jumps: dict[tuple[int, int], int], lo: np.ndarray, n: int) -> np.ndarray:
+def _trace(ways: list[np.ndarray], jumps: list[tuple[np.ndarray, np.ndarray] | None], lo: np.ndarray,
+           n: int) -> np.ndarray:
     """Follow the way back from the last column of the last row."""
     columns = np.empty(n, dtype=np.int64)
     j = int(lo[n - 1]) + len(ways[n - 1]) - 1
@@ -145,7 +153,11 @@ def _trace(ways: list[np.ndarray], jumps: dict[tuple[int, int], int], lo: np.nda
         if i == 0:
             break
         w = int(ways[i][j - int(lo[i])])
-        j = jumps[(i, j)] if w == _SKIP else j - w
+        if w == _SKIP:
+            reached, sources = jumps[i]  # type: ignore[misc]
+            j = int(sources[np.searchsorted(reached, j)])
+        else:
+            j -= w
     return columns
 
 

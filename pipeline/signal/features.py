@@ -1,7 +1,9 @@
 """Frame features for aligning two recordings of the same words: MFCCs, normalised.
 
 Mel-frequency cepstral coefficients (Davis and Mermelstein, 1980) with the mel filter
-bank of ``librosa.filters.mel`` (Slaney's mel scale, area-normalised triangles), the
+bank ``librosa.filters.mel`` builds by default (Slaney's mel scale, area-normalised
+triangles; rebuilt here in numpy, since importing librosa costs about 90 MB in every
+worker, and checked against librosa by tests/test_alignment.py), the
 power spectrum from ``scipy.fft`` and the type-II orthonormal DCT, computed frame by
 frame without centring, so a long recording can be done in blocks whose features join
 exactly. No number goes through a BLAS product (the filter bank is applied filter by
@@ -59,13 +61,41 @@ class FeatureFrames:
         return 0 if samples < self.window else 1 + (samples - self.window) // self.hop
 
 
+def _hz_to_mel(hz: np.ndarray) -> np.ndarray:
+    """Slaney's mel scale (Auditory Toolbox, 1998): linear to 1 kHz, logarithmic above."""
+    hz = np.asarray(hz, dtype=np.float64)
+    linear = hz / (200.0 / 3)
+    return np.where(hz >= 1000.0, 15.0 + np.log(np.maximum(hz, 1e-10) / 1000.0) / (np.log(6.4) / 27.0), linear)
+
+
+def _mel_to_hz(mel: np.ndarray) -> np.ndarray:
+    mel = np.asarray(mel, dtype=np.float64)
+    return np.where(mel >= 15.0, 1000.0 * np.exp((np.log(6.4) / 27.0) * (mel - 15.0)), mel * (200.0 / 3))
+
+
+def mel_bank(*, sample_rate: int, n_fft: int, n_mels: int, top_hz: float) -> np.ndarray:
+    """Area-normalised triangular mel filters, shape (n_mels, n_fft // 2 + 1), from 0 Hz to ``top_hz``.
+
+    Examples
+    --------
+    >>> mel_bank(sample_rate=16000, n_fft=512, n_mels=40, top_hz=7600.0).shape
+    (40, 257)
+    """
+    freqs = np.arange(n_fft // 2 + 1) * (sample_rate / n_fft)
+    edges = _mel_to_hz(np.linspace(_hz_to_mel(0.0), _hz_to_mel(top_hz), n_mels + 2))
+    widths = np.diff(edges)
+    ramps = edges[:, None] - freqs[None, :]
+    lower = -ramps[:n_mels] / widths[:n_mels, None]
+    upper = ramps[2:] / widths[1:, None]
+    bank = np.maximum(0.0, np.minimum(lower, upper))
+    return bank * (2.0 / (edges[2:] - edges[:n_mels]))[:, None]
+
+
 @functools.cache
 def _filters(sample_rate: int, n_fft: int) -> tuple[tuple[int, int, np.ndarray], ...]:
     """Each mel filter's first bin, stop bin and weights there (the bank is sparse)."""
-    import librosa
-
     top = min(TOP_HZ, sample_rate / 2 - 200.0)
-    bank = librosa.filters.mel(sr=sample_rate, n_fft=n_fft, n_mels=N_MELS, fmin=0.0, fmax=top)
+    bank = mel_bank(sample_rate=sample_rate, n_fft=n_fft, n_mels=N_MELS, top_hz=top)
     out = []
     for row in bank:
         nz = np.flatnonzero(row)

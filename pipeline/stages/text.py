@@ -237,7 +237,10 @@ def run(ctx: StageContext) -> StageResult:
     # Fixed transcripts replace the found ones; those marked wrong become rejects.
     items, rejects = review_items(ingest, review)
     languages = file_languages(ctx, items)
-    items = _per_clip(items, ctx.inputs["audio"])
+    if "audio" in ctx.inputs:  # the runner always gives it; a caller of run() alone may not
+        items = _per_clip(items, ctx.inputs["audio"])
+    else:
+        items = [{**item, "clip_id": item["source_id"]} for item in items]
     cells = [languages[item["source_id"]] for item in items]
     for cell in sorted(set(cells)):
         # Every language gets its tools, as if each transcript were processed; one with
