@@ -317,7 +317,7 @@ def align_long_transcribed(job: Any, scan: Any, spool: Spool, speech: np.ndarray
 def alignment_voices(ctx: Any, rows: list[dict[str, Any]]) -> dict[str, tuple[str | None, str]]:
     """For each transcribed source: the espeak-ng voice that would align its transcript, or
     None and a sentence saying why (``audio.align = "off"``, or no voice for its language)."""
-    from pipeline.stages.languages import canonical_tag, file_languages
+    from pipeline.stages.tags import canonical_tag, file_languages
     from pipeline.text.speech import speech_voice
 
     transcribed = [r for r in rows if r["transcript"] is not None]

@@ -12,11 +12,7 @@ the number reader of :mod:`pipeline.text.numbers` (never English number words).
 
 from __future__ import annotations
 
-import csv
-import io
-import re
 from dataclasses import dataclass, replace
-from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -25,79 +21,12 @@ import pyarrow as pa
 from pipeline.core.columns import counted_items, list_lengths, row_members
 from pipeline.core.config import Config, TextConfig
 from pipeline.core.errors import ParameterError
-from pipeline.core.stage import StageContext
+from pipeline.stages.tags import LANGUAGE_TAG, canonical_tag, file_languages, metadata_table
 from pipeline.text.numbers import NumberReader, missing_sentence
 from pipeline.text.pronounce import Pronouncer
 from pipeline.text.rules import RulePhones
 
 __all__ = ["LANGUAGE_TAG", "LanguageTools", "Toolbox", "canonical_tag", "file_languages", "metadata_table"]
-
-_TAG = re.compile(r"^[A-Za-z]{2,3}(-[A-Za-z0-9]{1,8})*$")
-# A language cell that is a BCP-47 tag in form (any case).
-LANGUAGE_TAG = _TAG
-
-
-def canonical_tag(tag: str) -> str:
-    """BCP-47 case conventions: language lower, script title, region upper (``en-us`` -> ``en-US``).
-
-    Examples
-    --------
-    >>> canonical_tag("EN-us"), canonical_tag("sr-latn"), canonical_tag("sw")
-    ('en-US', 'sr-Latn', 'sw')
-    """
-    parts = tag.strip().split("-")
-    out = [parts[0].lower()]
-    for part in parts[1:]:
-        out.append(part.title() if len(part) == 4 else part.upper() if len(part) == 2 else part.lower())
-    return "-".join(out)
-
-
-def metadata_table(config: Config, raw: Path) -> Path | None:
-    """The metadata table whose language column sets per-file languages, if configured."""
-    ingest = config.ingest
-    if ingest.metadata and ingest.metadata_language_column:
-        return raw / ingest.metadata
-    return None
-
-
-def _language_cells(path: Path, column: str, *, encoding: str) -> dict[int, str]:
-    """Line number (as ingest's ``metadata_line``) -> the column's cell, for every row."""
-    data = path.read_bytes()
-    if data.startswith(b"\xef\xbb\xbf"):
-        data, encoding = data[3:], "utf-8"
-    text = data.decode(encoding, "surrogateescape")
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter="\t" if path.name.lower().endswith(".tsv") else ",")
-    header = [h.strip() for h in next(reader, [])]
-    if column not in header:
-        return {}
-    index = header.index(column)
-    cells: dict[int, str] = {}
-    while True:
-        line = reader.line_num + 1
-        try:
-            fields = next(reader)
-        except StopIteration:
-            break
-        except csv.Error:
-            continue  # ingest rejected that row already
-        if index < len(fields):
-            cells[line] = fields[index].strip()
-    return cells
-
-
-def file_languages(ctx: StageContext, rows: list[dict[str, Any]]) -> dict[str, str]:
-    """source_id -> the raw language cell or ``text.language`` (not yet checked)."""
-    default = ctx.config.text.language
-    table = metadata_table(ctx.config, ctx.raw)
-    cells: dict[int, str] = {}
-    if table is not None:
-        cells = _language_cells(table, ctx.config.ingest.metadata_language_column,
-                                encoding=ctx.config.ingest.transcript_encoding)
-    out = {}
-    for row in rows:
-        cell = cells.get(row["metadata_line"], "") if row.get("transcript_origin") == "metadata" else ""
-        out[row["source_id"]] = cell or default
-    return out
 
 
 def rule_phones(cfg: TextConfig) -> RulePhones | None:
@@ -155,7 +84,7 @@ class Toolbox:
         known = self._by_cell.get(tag)
         if known is not None:
             return known
-        if not _TAG.match(tag):
+        if not LANGUAGE_TAG.match(tag):
             raise ParameterError(f"language {tag!r} is not a BCP-47 tag such as 'en', 'sw' or 'es-CO'")
         cell, tag = tag, canonical_tag(tag)
         if tag in self.failures:
@@ -217,7 +146,7 @@ def language_summary(table: pa.Table, languages: dict[str, str], toolbox: Toolbo
 
     from pipeline.text.guard import oov_rate
 
-    transcripts = Counter(canonical_tag(t) if _TAG.match(t) else t for t in languages.values())
+    transcripts = Counter(canonical_tag(t) if LANGUAGE_TAG.match(t) else t for t in languages.values())
     words = table.column("words").combine_chunks()
     rows, flat = counted_items(words)
     oov = row_members(rows, flat, table.column("oov_words").combine_chunks())
