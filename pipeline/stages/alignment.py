@@ -329,3 +329,39 @@ def alignment_voices(ctx: Any, rows: list[dict[str, Any]]) -> dict[str, tuple[st
         out[source_id] = (voice, "" if voice else f"espeak-ng, the speech engine the alignment uses, has no "
                                                   f"voice for its language {tag!r}")
     return out
+
+
+def alignment_summary(rows: list[dict[str, Any]], sources: list[dict[str, Any]]) -> dict[str, dict[str, Any]]:
+    """Per long transcribed source cut by alignment (source path -> figures): its clips, its
+    transcribed clips, the share of its duration in transcribed clips and the share of its
+    transcript's characters (sentences joined by one space) placed in them.
+
+    Examples
+    --------
+    >>> rows = [{"source_id": "a", "clip_id": "a_00000000", "duration_s": 6.0, "aligned_transcript": "One."},
+    ...         {"source_id": "a", "clip_id": "a_00006000", "duration_s": 4.0, "aligned_transcript": None}]
+    >>> alignment_summary(rows, [{"source_id": "a", "source_path": "s/a.wav", "transcript": "One. Two.",
+    ...                           "duration_s": 12.0}])
+    {'s/a.wav': {'clips': 2, 'transcribed_clips': 1, 'audio_share_transcribed': 0.5, 'transcript_share_placed': 0.4444}}
+    """
+    from pipeline.text.sentences import split_sentences
+
+    by_source: dict[str, list[dict[str, Any]]] = {}
+    for r in rows:
+        if r["clip_id"] != r["source_id"]:
+            by_source.setdefault(r["source_id"], []).append(r)
+    out: dict[str, dict[str, Any]] = {}
+    for source in sources:
+        clips = by_source.get(source["source_id"])
+        if source["transcript"] is None or not clips:
+            continue
+        placed = [c for c in clips if c["aligned_transcript"] is not None]
+        whole = " ".join(split_sentences(source["transcript"]))
+        seconds = sum(c["duration_s"] for c in placed)
+        out[source["source_path"]] = {
+            "clips": len(clips), "transcribed_clips": len(placed),
+            "audio_share_transcribed": round(seconds / source["duration_s"], 4) if source["duration_s"] else 0.0,
+            "transcript_share_placed": round(len(" ".join(c["aligned_transcript"] for c in placed)) / len(whole), 4)
+            if whole else 0.0,
+        }
+    return dict(sorted(out.items()))

@@ -832,7 +832,7 @@ def run(ctx: StageContext) -> StageResult:
     section = ctx.config.section(NAME)
 
     code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
-    from pipeline.stages.alignment import alignment_voices
+    from pipeline.stages.alignment import alignment_summary, alignment_voices
 
     voices = alignment_voices(ctx, sources)
     keys = [_cache_key(row, section, code, voices.get(row["source_id"], (None, ""))[0]) for row in sources]
@@ -873,6 +873,12 @@ def run(ctx: StageContext) -> StageResult:
         rejects = _scrub_rejects(rejects, real, raw=raw)
     removed = _clean_up(ctx, out, table)
     summary = _summary(table, rejects, sources=len(sources))
+    summary["aligned_sources"] = alignment_summary(
+        table.select(["source_id", "clip_id", "duration_s", "aligned_transcript"]).to_pylist(), sources)
+    for path, figures in summary["aligned_sources"].items():
+        ctx.log.info("audio: %s aligned to its transcript: %.0f%% of its audio in %d transcribed clips, "
+                     "%.0f%% of its transcript placed", path, 100 * figures["audio_share_transcribed"],
+                     figures["transcribed_clips"], 100 * figures["transcript_share_placed"])
     # These depend on what earlier runs left in the cache and under audio/: the log's.
     run_stats = {"sources_processed": len(todo), "sources_reused": len(sources) - len(todo),
                  "orphans_removed": removed}
