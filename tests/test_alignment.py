@@ -143,3 +143,26 @@ def test_mel_bank_matches_librosa(rate: int, n_fft: int) -> None:
     ours = mel_bank(sample_rate=rate, n_fft=n_fft, n_mels=40, top_hz=min(7600.0, rate / 2 - 200))
     theirs = librosa.filters.mel(sr=rate, n_fft=n_fft, n_mels=40, fmin=0.0, fmax=min(7600.0, rate / 2 - 200))
     np.testing.assert_allclose(ours, theirs, rtol=1e-5, atol=1e-7)
+
+
+def test_damaged_region_goes_to_untranscribed_clips(readings, tmp_path) -> None:
+    texts, reading = readings[0]
+    transcript = texts[:10] + texts[11:18] + [EXTRA] + texts[18:]
+    sf.write(tmp_path / "read.flac", reading.samples, reading.sample_rate)
+    row = {"source_path": "ana/read.flac", "source_id": "read-0a1b2c3d4e", "speaker": "ana",
+           "transcript": " ".join(transcript)}
+    outcome = condition_file(AudioJob(row, str(tmp_path / "read.flac"), str(tmp_path), str(tmp_path),
+                                      load_config(None).audio, "en", ""))
+    assert [r["reason"] for r in outcome.rejects] == ["sentences_unaligned"]
+    assert "sentence 18 " in outcome.rejects[0]["detail"]  # EXTRA, numbered from 1
+    placed = [s for r in outcome.rows if r["aligned_transcript"] for s in split_sentences(r["aligned_transcript"])]
+    assert EXTRA not in placed and texts[10] not in placed
+    # Everything but the damage and its neighbours is placed, in order.
+    assert set(transcript) - {EXTRA, texts[9], texts[11], texts[17], texts[18]} <= set(placed)
+    assert placed == [t for t in transcript if t in placed]
+    # The unread sentence's speech lies in an untranscribed clip, in no transcribed one.
+    lo, hi = reading.speech[10]
+    assert any(not r["transcribed"] and r["source_start_s"] <= lo + 0.2 and r["source_end_s"] >= hi - 0.2
+               for r in outcome.rows)
+    assert not any(r["transcribed"] and r["source_end_s"] > lo + 0.1 and r["source_start_s"] < hi - 0.1
+                   for r in outcome.rows)
