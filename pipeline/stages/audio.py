@@ -745,9 +745,12 @@ def prepare_driver(config: Any) -> None:
 def _cache_key(row: dict[str, Any], section: dict[str, Any], code: str, voice: str | None) -> str:
     # source_id and source_path are in the key because they are copied into the rows.
     # ``code`` is the stage's code version: any edit within its reach misses every entry.
-    # A transcript and its voice can decide how a long source is cut.
+    # A long source's transcript and voice decide how it is cut (pipeline.stages.alignment);
+    # a short source's transcript text does not reach its clip.
+    aligned = voice is not None and row["duration_s"] > section["max_clip_s"]
     return cache_key("audio", row["sha256"], section, code, row["source_id"], row["source_path"],
-                     row["speaker"], row["transcript"] if voice else row["transcript"] is not None, voice)
+                     row["speaker"], row["transcript"] if aligned else row["transcript"] is not None,
+                     voice if aligned else None)
 
 
 def _reuse_cached(cache: FileCache, keys: list[str], *, out: Path,
