@@ -284,7 +284,9 @@ def _ingest_and_text(raw: Path, out: Path) -> dict[str, Any]:
     from pipeline.core.runner import Runner
     from pipeline.stages import STAGES
 
-    records = Runner(raw, out, load_config(raw / "corpus.toml"), stages=STAGES, workers=1).prepare(("ingest", "text"))
+    # The text stage reads the audio manifest (a long transcribed source's clips get their sentences).
+    records = Runner(raw, out, load_config(raw / "corpus.toml"), stages=STAGES,
+                     workers=2).prepare(("ingest", "audio", "text"))
     return next(r for r in records if r.name == "text").run_stats
 
 
