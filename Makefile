@@ -14,11 +14,13 @@ BENCH_OUT ?= build/bench
 FUZZ_FILES ?= 3000
 SEARCH_SCALE ?= 50
 SEARCH_TESTS ?= tests
+SCALE_SOURCES ?= 100000
+SCALE_FLAGS ?= --cluster
 
 CONFIG_FLAG  := $(if $(CONFIG),--config "$(CONFIG)",)
 WORKERS_FLAG := $(if $(WORKERS),--workers $(WORKERS),)
 
-.PHONY: all prepare test fuzz property-search validate report bench lint clean distclean help
+.PHONY: all prepare test fuzz property-search validate report bench bench-scale lint clean distclean help
 
 all: prepare report
 	@$(BIN)/loam validate "$(OUT)" > "$(OUT)/logs/validate.txt" || (cat "$(OUT)/logs/validate.txt"; exit 1)
@@ -33,6 +35,7 @@ help:
 	@echo "make fuzz       prepare $(FUZZ_FILES) damaged audio files (make test runs 300) and print the outcomes"
 	@echo "make property-search  run the property tests with $(SEARCH_SCALE)x their examples, drawn at random"
 	@echo "make bench      throughput, memory and rebuild benchmarks"
+	@echo "make bench-scale  rerun, rebuild and memory at $(SCALE_SOURCES) generated sources (long: a cold run of them first)"
 	@echo "make lint       ruff"
 	@echo "make clean      remove build outputs (keeps .venv)"
 	@echo "variables: RAW=$(RAW) OUT=$(OUT) CONFIG=$(CONFIG) WORKERS=$(WORKERS)"
@@ -82,6 +85,11 @@ property-search: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python bench/run.py --out "$(BENCH_OUT)"
 	$(BIN)/python bench/bench_align.py
+
+# Opt-in: generates SCALE_SOURCES short sources (about 4 GB at 100,000) and prepares them
+# cold, locally and (SCALE_FLAGS=--cluster) on a two-worker dask LocalCluster.
+bench-scale: $(STAMP)
+	$(BIN)/python bench/bench_scale.py --out "$(BENCH_OUT)-scale" --sources $(SCALE_SOURCES) $(SCALE_FLAGS)
 
 lint: $(STAMP)
 	$(BIN)/ruff check pipeline tests bench demo_corpus

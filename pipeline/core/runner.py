@@ -7,6 +7,7 @@ import hashlib
 import json
 import logging
 import os
+import sys
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -381,6 +382,7 @@ class Runner:
                             **({"during": r.during} if r.during else {}),
                             **({"run_stats": r.run_stats} if r.run_stats else {})} for r in self.records],
                 "workers": self.workers, "scheduler": self.scheduler,
+                "driver_peak_rss_mb": _peak_rss_mb(),
             }, indent=2) + "\n")
             if self.stop_reason:
                 # No snapshot: the next run must look at RAW again.
@@ -402,6 +404,18 @@ def _check_declared(stage: Stage, result: StageResult) -> None:
     if returned != declared:
         raise RuntimeError(f"stage {stage.name} returned manifests {sorted(returned.items())}; "
                            f"its Stage declares outputs {sorted(declared.items())}")
+
+
+def _peak_rss_mb() -> float | None:
+    """This process's peak resident memory so far (MB), for the run log; None where
+    the resource module is missing (Windows)."""
+    try:
+        import resource
+    except ImportError:  # pragma: no cover - not POSIX
+        return None
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    # Linux reports kilobytes, macOS bytes.
+    return round(peak / (1024 * 1024 if sys.platform == "darwin" else 1024), 1)
 
 
 def _first_file(raw: Path) -> str | None:

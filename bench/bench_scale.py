@@ -1,0 +1,160 @@
+"""``make bench-scale``: ``loam prepare`` on 100,000 short sources (bench/scale_workload.py).
+
+Measures, on one generated dump:
+
+- the cold run (wall seconds, the driver's peak memory from ``logs/last-run.json``);
+- the no-change rerun;
+- the rebuild after 1 % new files added in place (hard links keep the old files' inodes
+  and mtimes, the new ones are copies), and what it costs beyond the new files' own
+  processing, per existing source: ``(rebuild - cold * new / all) / existing``, the cold
+  run's cost per source standing for a new file's own processing;
+- the no-change rerun of the grown dump;
+- with ``--cluster``: a cold run on a dask LocalCluster of two single-threaded worker
+  processes (``--scheduler``), with the driver's peak memory and the manifests' bytes
+  compared with the local run's.
+
+Prints a table and the figures as JSON on its last line (also ``<out>/scale-results.json``).
+Every figure is measured in this run on this machine; nothing is a timed test.
+"""
+
+from __future__ import annotations
+
+import argparse
+import hashlib
+import json
+import os
+import shutil
+import sys
+from pathlib import Path
+
+REPO = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(REPO))
+
+from bench.run import measured  # noqa: E402
+from bench.scale_workload import Spec, make_scale_workload  # noqa: E402
+
+LOAM = [sys.executable, "-m", "pipeline"]
+CONFIG = REPO / "bench" / "bench.toml"
+
+
+def prepare(raw: Path, out: Path, workers: int, *extra: str) -> dict[str, float]:
+    """One ``loam prepare``: wall seconds, the largest process's peak RSS (MB), and the
+    driver's own peak RSS and stage seconds from its run log."""
+    cmd = [*LOAM, "prepare", str(raw), str(out), "--config", str(CONFIG), "--workers", str(workers),
+           "--no-progress", "--set", f'split.ledger="{out / "ledger.tsv"}"', *extra]
+    wall, rss = measured(cmd)
+    figures: dict[str, float] = {"wall_s": wall, "peak_rss_mb": rss}
+    log = json.loads((out / "logs" / "last-run.json").read_text())
+    if "driver_peak_rss_mb" in log:
+        figures["driver_peak_rss_mb"] = log["driver_peak_rss_mb"]
+    figures["stages"] = {s["name"]: s["seconds"] for s in log["stages"]}  # type: ignore[assignment]
+    return figures
+
+
+def grow(raw: Path, extra: Path, grown: Path) -> None:
+    """``grown``: RAW's files as hard links (same inodes, same mtimes) plus copies of extra/."""
+    shutil.rmtree(grown, ignore_errors=True)
+    shutil.copytree(raw, grown, copy_function=os.link)
+    for src in sorted(extra.rglob("*")):
+        if src.is_file():
+            dst = grown / src.relative_to(extra)
+            dst.parent.mkdir(parents=True, exist_ok=True)
+            shutil.copy2(src, dst)
+
+
+def manifests_digest(out: Path) -> str:
+    digest = hashlib.sha256()
+    for path in sorted((out / "manifests").glob("*.parquet")):
+        digest.update(path.name.encode() + b"\0" + path.read_bytes())
+    return digest.hexdigest()
+
+
+def cluster_cold(raw: Path, out: Path, workers: int) -> dict[str, float]:
+    """A cold run against a LocalCluster of ``workers`` single-threaded processes."""
+    from distributed import LocalCluster
+
+    shutil.rmtree(out, ignore_errors=True)
+    with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
+        return prepare(raw, out, workers, "--scheduler", cluster.scheduler_address)
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--out", type=Path, default=REPO / "build" / "bench-scale")
+    parser.add_argument("--sources", type=int, default=100_000)
+    parser.add_argument("--speakers", type=int, default=500)
+    parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--cluster", action="store_true", help="also a cold run on a 2-worker dask LocalCluster")
+    args = parser.parse_args()
+    work = args.out.resolve()
+    work.mkdir(parents=True, exist_ok=True)
+    os.chdir(REPO)
+
+    spec = Spec(sources=args.sources, speakers=args.speakers)
+    facts = make_scale_workload(work / f"workload-{args.sources}", spec)
+    raw = work / f"workload-{args.sources}" / "raw"
+    out = work / f"out-{args.sources}"
+    grown = work / f"raw-grown-{args.sources}"
+    results: dict[str, object] = {"sources": facts["sources"], "new_sources": facts["extra_sources"],
+                                  "audio_hours": facts["seconds"] / 3600, "workers": args.workers}
+
+    shutil.rmtree(out, ignore_errors=True)
+    cold = prepare(raw, out, args.workers)
+    rerun = prepare(raw, out, args.workers)
+    grow(raw, raw.parent / "extra", grown)
+    rebuild = prepare(grown, out, args.workers)
+    rerun_grown = prepare(grown, out, args.workers)
+    shutil.rmtree(grown, ignore_errors=True)
+    total, new = int(facts["sources"]) + int(facts["extra_sources"]), int(facts["extra_sources"])
+    beyond = rebuild["wall_s"] - cold["wall_s"] * new / total
+    results.update(cold=cold, rerun=rerun, rebuild_1pct=rebuild, rerun_after_rebuild=rerun_grown,
+                   rebuild_beyond_new_files_s=beyond,
+                   rebuild_us_per_existing_source=beyond / int(facts["sources"]) * 1e6,
+                   manifests_bytes=sum(p.stat().st_size for p in (out / "manifests").glob("*.parquet")))
+    if args.cluster:
+        cluster_out = work / f"out-cluster-{args.sources}"
+        results["cluster_cold"] = cluster_cold(raw, cluster_out, args.workers)
+        # ``out`` now describes the grown dump: the cluster's manifests are compared with
+        # a local cold run of the same RAW.
+        local = work / f"out-local-{args.sources}"
+        shutil.rmtree(local, ignore_errors=True)
+        prepare(raw, local, args.workers)
+        results["cluster_manifests_identical"] = manifests_digest(cluster_out) == manifests_digest(local)
+        shutil.rmtree(local, ignore_errors=True)
+        shutil.rmtree(cluster_out, ignore_errors=True)
+
+    (work / "scale-results.json").write_text(json.dumps(results, indent=2) + "\n")
+    print_table(results)
+    print(json.dumps(results))
+    return 0
+
+
+def print_table(r: dict) -> None:
+    rows = [("sources", f"{r['sources']}", f"+{r['new_sources']} new for the rebuild"),
+            ("audio hours", f"{r['audio_hours']:.1f}", "")]
+    for key, label in (("cold", "cold run"), ("rerun", "no-change rerun"), ("rebuild_1pct", "rebuild +1 % files"),
+                       ("rerun_after_rebuild", "no-change rerun, grown dump"), ("cluster_cold", "cold run, LocalCluster")):
+        if key not in r:
+            continue
+        fig = r[key]
+        note = "target < 2 s: " + ("met" if fig["wall_s"] < 2 else "MISSED") if "rerun" in key else ""
+        rows.append((f"{label} (s)", f"{fig['wall_s']:.2f}", note))
+        if "driver_peak_rss_mb" in fig:
+            ok = fig["driver_peak_rss_mb"] < 2048
+            rows.append(("  driver peak RSS (MB)", f"{fig['driver_peak_rss_mb']:.0f}",
+                         f"target < 2048: {'met' if ok else 'MISSED'}"))
+        for name, sec in fig.get("stages", {}).items():
+            rows.append((f"  stage {name} (s)", f"{sec:.2f}", ""))
+    per = r["rebuild_us_per_existing_source"]
+    rows.append(("rebuild beyond the new files (us/existing source)", f"{per:.1f}",
+                 f"target <= 20: {'met' if per <= 20 else 'MISSED'}"))
+    rows.append(("manifests (MB)", f"{r['manifests_bytes'] / 1e6:.1f}", ""))
+    if "cluster_manifests_identical" in r:
+        rows.append(("cluster manifests = local manifests", str(r["cluster_manifests_identical"]), ""))
+    width = max(len(a) for a, _, _ in rows)
+    for a, b, c in rows:
+        print(f"{a:<{width}}  {b:>10}  {c}")
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
