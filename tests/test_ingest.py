@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import hashlib
+import logging
 import os
+import re
 import wave
 from pathlib import Path
 from unittest import mock
@@ -454,3 +456,33 @@ def test_environment_failure_only_when_nothing_got_through_for_a_machine_reason(
                                                                          accepted=0)
     assert environment_failure(missing[:1], paths=set(), metadata_rows=2, accepted=0) == ""
     assert environment_failure([], paths=set(), metadata_rows=0, accepted=0) == ""
+
+
+def test_probe_cache_follows_the_files(small_raw: Path, tmp_path: Path, caplog: pytest.LogCaptureFixture) -> None:
+    out = tmp_path / "out"
+    with caplog.at_level(logging.INFO, logger="loam"):
+        rows, _ = run_ingest(small_raw, out)
+    found = int(re.search(r"ingest: (\d+) files probed, 0 reused", caplog.text).group(1))
+    caplog.clear()
+    cache = out / "cache" / "ingest" / "probes.parquet"
+    cached = set(pq.read_table(cache).column("path").to_pylist())
+    assert {r["source_path"] for r in rows} <= cached
+    # A file rewritten with other bytes of the same size is probed again (its mtime
+    # moved); a file removed leaves the cache; the rest is reused.
+    changed = next(r for r in rows if r["source_path"].endswith(".wav"))
+    path = small_raw / changed["source_path"]
+    data = bytearray(path.read_bytes())
+    data[-2:] = bytes([data[-2] ^ 0x55, data[-1] ^ 0x55])
+    path.write_bytes(bytes(data))
+    gone = next(r for r in rows if r["source_path"] != changed["source_path"])
+    (small_raw / gone["source_path"]).unlink()
+    with caplog.at_level(logging.INFO, logger="loam"):
+        rows2, _ = run_ingest(small_raw, out)
+    assert f"ingest: 1 files probed, {found - 2} reused from cache" in caplog.text
+    again = {r["source_path"]: r for r in rows2}
+    assert again[changed["source_path"]]["sha256"] == hashlib.sha256(bytes(data)).hexdigest()  # hashlib reference
+    assert gone["source_path"] not in set(pq.read_table(cache).column("path").to_pylist())
+    # A damaged cache is only a miss: everything is probed again, to the same rows.
+    cache.write_bytes(b"not parquet")
+    rows3, _ = run_ingest(small_raw, out)
+    assert rows3 == rows2

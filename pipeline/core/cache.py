@@ -1,8 +1,14 @@
-"""A content-addressed cache of per-file results under ``OUT/cache/<namespace>/``.
+"""Caches of per-file results under ``OUT/cache/<namespace>/``.
 
 Keys are SHA-256 digests of everything a result depends on (source content hash,
 stage parameters, stage code version), so a hit can be reused without asking
 whether anything changed, and a changed input simply misses.
+
+- :class:`FileCache`: one small JSON file per key, for results looked up one by one;
+- :class:`TableCache`: one Parquet table per namespace holding every result of the
+  last run, valid for one ``scope`` (the stage's code version and parameters). A
+  stage reads it once and looks results up in memory: at 100,000 sources, one file per
+  source cost tens of microseconds each to open and parse, the table a few.
 """
 
 from __future__ import annotations
@@ -14,7 +20,7 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.core.config import canonical_json
-from pipeline.core.fsio import write_bytes_atomic
+from pipeline.core.fsio import atomic_output, write_bytes_atomic
 
 
 def cache_key(*parts: Any) -> str:
@@ -49,3 +55,100 @@ class FileCache:
             # No fsync: an entry a power cut leaves empty or torn does not parse, and
             # get() takes that as a miss; a thousand fsyncs would cost more than that.
             write_bytes_atomic(self._path(key), canonical_json(value), durable=False)
+
+
+class TableCache:
+    """Per-file results as one Parquet table, ``OUT/cache/<namespace>/<name>.parquet``.
+
+    The table records the ``scope`` it was written under (a digest of the code
+    version and parameters its rows depend on) in its metadata; :meth:`load` leaves
+    out a file of another scope, a damaged one, and everything when the cache is
+    disabled, and the stage computes those results again. The stage decides which
+    rows it keeps: it saves the results of the run (reused and fresh), so the table
+    holds the last run's sources and never grows with history.
+
+    While a run goes on, :meth:`append` writes its fresh results as parts beside the
+    table (``<name>.part-*.parquet``) every so many results, so an interrupted run
+    loses at most the results since the last part; :meth:`load` reads the table and
+    its parts, in the order written, and :meth:`save` replaces all of them by one table.
+
+    Examples
+    --------
+    >>> import tempfile, pyarrow as pa
+    >>> folder = tempfile.mkdtemp()
+    >>> cache = TableCache(Path(folder), "ingest", "probes", scope="v1")
+    >>> cache.save(pa.table({"path": ["a.wav"], "frames": [16000]}))
+    >>> cache.load().to_pylist()
+    [{'path': 'a.wav', 'frames': 16000}]
+    >>> cache.append(pa.table({"path": ["b.wav"], "frames": [8000]}))
+    >>> cache.load().column("path").to_pylist()
+    ['a.wav', 'b.wav']
+    >>> TableCache(Path(folder), "ingest", "probes", scope="v2").load() is None
+    True
+    >>> import shutil; shutil.rmtree(folder)
+    """
+
+    def __init__(self, root: Path, namespace: str, name: str, *, scope: str, enabled: bool = True) -> None:
+        self.path = Path(root) / namespace / f"{name}.parquet"
+        self.scope = scope
+        self.enabled = enabled
+        # Whether the last load found parts, which a save would fold into the table.
+        self.has_parts = False
+
+    def _files(self) -> list[Path]:
+        """The table, then its parts in the order they were written."""
+        parts = sorted(self.path.parent.glob(f"{self.path.stem}.part-*.parquet"))
+        return [self.path, *parts]
+
+    def load(self) -> Any | None:
+        """The rows saved under this scope (table and parts, without metadata), or None."""
+        if not self.enabled:
+            return None
+        import pyarrow as pa
+
+        files = self._files()
+        self.has_parts = len(files) > 1
+        tables = [t for t in (self._read(path) for path in files) if t is not None]
+        if not tables:
+            return None
+        try:
+            return pa.concat_tables(tables)
+        except pa.ArrowInvalid:  # a part of another layout (an older loam): use the table alone
+            return tables[0]
+
+    def _read(self, path: Path) -> Any | None:
+        import pyarrow.parquet as pq
+
+        try:
+            table = pq.read_table(path)
+        except (OSError, ValueError, TypeError):
+            # Missing, or damaged (pyarrow's errors derive from these): only a miss.
+            return None
+        meta = table.schema.metadata or {}
+        if meta.get(b"loam_cache_scope") != self.scope.encode():
+            return None
+        return table.replace_schema_metadata(None)
+
+    def _write(self, path: Path, table: Any) -> None:
+        import pyarrow.parquet as pq
+
+        table = table.replace_schema_metadata({"loam_cache_scope": self.scope})
+        with atomic_output(path, durable=False) as tmp:
+            pq.write_table(table, tmp, compression="zstd")
+
+    def append(self, table: Any) -> None:
+        """Write ``table`` as one more part (a run's fresh results so far)."""
+        if self.enabled and table.num_rows:
+            parts = len(self._files()) - 1
+            self._write(self.path.with_name(f"{self.path.stem}.part-{parts:06d}.parquet"), table)
+
+    def save(self, table: Any) -> None:
+        """Replace the stored table and its parts by ``table`` (atomically; no fsync,
+        as for :class:`FileCache`: a damaged file is only a miss)."""
+        if not self.enabled:
+            return
+        parts = self._files()[1:]
+        self._write(self.path, table)
+        for part in parts:
+            with contextlib.suppress(OSError):
+                part.unlink()

@@ -22,7 +22,7 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.core import names
-from pipeline.core.cache import FileCache, cache_key
+from pipeline.core.cache import TableCache, cache_key
 from pipeline.core.codeversion import code_version
 from pipeline.core.fsio import sha256_file, write_text_atomic
 from pipeline.core.manifest import table_from_rows
@@ -202,35 +202,96 @@ def scan(raw: Path, extensions: tuple[str, ...], sidecar_extension: str) -> tupl
     return kept, sidecars, rejects
 
 
+# The probe cache's columns (pipeline.core.cache.TableCache): the file's path and stat,
+# then what probe_file returned, an error as its reason and sentence.
+_PROBE_FIELDS = (("format", "string"), ("subtype", "string"), ("channels", "int64"), ("sample_rate", "int64"),
+                 ("num_frames", "int64"), ("duration_s", "float64"), ("size_bytes", "int64"), ("sha256", "string"))
+_STAT_FIELDS = (("path", "string"), ("st_size", "int64"), ("st_mtime_ns", "int64"), ("st_ino", "uint64"))
+_ERROR_FIELDS = (("error_reason", "string"), ("error_detail", "string"))
+# Fresh probes are written to the cache in parts of this many, so an interrupted run
+# keeps most of what it probed.
+_PROBE_PART_ROWS = 4096
+
+
+def _probe_table(entries: list[tuple[str, tuple[int, int, int], dict[str, Any]]]) -> Any:
+    """The probe cache's table of ``(path, (size, mtime_ns, inode), probe result)``."""
+    import pyarrow as pa
+
+    fields = (*_STAT_FIELDS, *_PROBE_FIELDS, *_ERROR_FIELDS)
+    columns: dict[str, list[Any]] = {name: [] for name, _ in fields}
+    for rel, st, res in entries:
+        for name, value in zip(("path", "st_size", "st_mtime_ns", "st_ino"), (rel, *st), strict=True):
+            columns[name].append(value)
+        for name, _ in _PROBE_FIELDS:
+            columns[name].append(res.get(name))
+        error = res.get("error") or (None, None)
+        columns["error_reason"].append(error[0])
+        columns["error_detail"].append(error[1])
+    schema = pa.schema([(name, getattr(pa, kind)()) for name, kind in fields])
+    return pa.table([pa.array(columns[f.name], f.type) for f in schema], schema=schema)
+
+
+def _cached_probes(table: Any) -> dict[str, tuple[tuple[int, int, int], dict[str, Any]]]:
+    """Path -> (stat, probe result) from the probe cache's table (later rows win)."""
+    if table is None:
+        return {}
+    cols = {name: table.column(name).to_pylist() for name in table.column_names}
+    found: dict[str, tuple[tuple[int, int, int], dict[str, Any]]] = {}
+    for j, rel in enumerate(cols["path"]):
+        st = (cols["st_size"][j], cols["st_mtime_ns"][j], cols["st_ino"][j])
+        reason = cols["error_reason"][j]
+        res = ({"error": (reason, cols["error_detail"][j])} if reason is not None
+               else {name: cols[name][j] for name, _ in _PROBE_FIELDS})
+        found[rel] = (st, res)
+    return found
+
+
+def _cacheable(res: dict[str, Any]) -> bool:
+    # Failures are cached too: they depend only on the bytes, like successes. Not a
+    # crash, which may be the library's fault (fixed by an upgrade), nor an unreadable
+    # file, which says something about this run's machine (a permission, a worker
+    # that does not see RAW): the next run must look again.
+    return res.get("error", ("",))[0] not in ("decoder_crashed", "unreadable")
+
+
 def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str, Any]]:
     """Probe results for ``paths``, reusing earlier results for files whose size,
-    modification time and inode are unchanged (hashing is most of ingest's cost)."""
-    cache = FileCache(ctx.cache_dir, "ingest", enabled=ctx.use_cache)
-    results: list[dict[str, Any] | None] = []
-    keys: list[str | None] = []
-    todo: list[int] = []
+    modification time and inode are unchanged (hashing is most of ingest's cost).
+
+    The results live in one table (``OUT/cache/ingest/probes.parquet``), read once:
+    a file reused costs a ``stat`` and a dictionary lookup.
+    """
     # The stage's code version: any edit within its reach probes every file again.
     code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
+    cache = TableCache(ctx.cache_dir, NAME, "probes", scope=cache_key("probe", code), enabled=ctx.use_cache)
+    previous = _cached_probes(cache.load())
+    results: list[dict[str, Any] | None] = []
+    stats: list[tuple[int, int, int] | None] = []
+    todo: list[int] = []
+    root = os.fspath(raw)
     for i, rel in enumerate(paths):
         try:
-            st = os.stat(raw / rel)
-            key = cache_key("probe", code, rel, st.st_size, st.st_mtime_ns, st.st_ino)
+            st = os.stat(os.path.join(root, rel))
+            key: tuple[int, int, int] | None = (st.st_size, st.st_mtime_ns, st.st_ino)
         except OSError:
             key = None
-        hit = cache.get(key) if key else None
-        keys.append(key)
-        results.append(hit)
-        if hit is None:
+        stats.append(key)
+        hit = previous.get(rel)
+        if key is not None and hit is not None and hit[0] == key:
+            results.append(hit[1])
+        else:
+            results.append(None)
             todo.append(i)
+    pending: list[tuple[str, tuple[int, int, int], dict[str, Any]]] = []
 
     def remember(j: int, res: dict[str, Any]) -> None:
-        key = keys[todo[j]]
-        # Failures are cached too: they depend only on the bytes, like successes. Not a
-        # crash, which may be the library's fault (fixed by an upgrade), nor an unreadable
-        # file, which says something about this run's machine (a permission, a worker
-        # that does not see RAW): the next run must look again.
-        if key and res.get("error", ("",))[0] not in ("decoder_crashed", "unreadable"):
-            cache.put(key, res)
+        i = todo[j]
+        st = stats[i]
+        if st is not None and _cacheable(res):
+            pending.append((paths[i], st, res))
+        if len(pending) >= _PROBE_PART_ROWS:
+            cache.append(_probe_table(pending))
+            pending.clear()
 
     def crashed(j: int, how: str) -> dict[str, Any]:
         rel = paths[todo[j]]
@@ -242,6 +303,10 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str,
                         meanwhile=ctx.meanwhile, on_result=remember, on_crash=crashed)
     for i, res in zip(todo, fresh, strict=True):
         results[i] = res
+    if todo or len(previous) != len(paths) or cache.has_parts:
+        # The table holds this run's files only: what left RAW leaves the cache.
+        cache.save(_probe_table([(rel, st, res) for rel, st, res in zip(paths, stats, results, strict=True)
+                                 if st is not None and res is not None and _cacheable(res)]))
     ctx.log.info("ingest: %d files probed, %d reused from cache", len(todo), len(paths) - len(todo))
     return [r for r in results if r is not None]
 
