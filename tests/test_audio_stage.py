@@ -344,3 +344,59 @@ def test_pcm16_peak_equals_the_float_sample_peak():
     for pcm in (rng.integers(-32768, 32768, 999).astype(np.int16), np.array([-32768, 5], dtype=np.int16),
                 np.array([3, -7, 0], dtype=np.int16), np.zeros(4, dtype=np.int16)):
         assert audio._pcm16_peak_dbfs(pcm) == sample_peak_dbfs(pcm.astype(np.float32) / np.float32(32768))
+
+
+def test_a_touched_clip_file_reconditions_its_source_only(first_run, raw: Path, tmp_path: Path):
+    _, result = first_run
+    copy = tmp_path / "out"
+    run_stage(raw, copy)
+    row = rows_of(result)[0]
+    clip = copy / row["audio_path"]
+    data = clip.read_bytes()
+    clip.unlink()
+    clip.write_bytes(data)  # the same bytes in a new file: not the file the cache recorded
+    again = run_stage(raw, copy)
+    assert again.run_stats["sources_processed"] == 1
+    assert rows_of(again) == rows_of(result)
+    assert again.rejects == result.rejects
+
+
+def test_an_interrupted_run_keeps_the_outcomes_written_in_parts(raw: Path, tmp_path: Path, monkeypatch):
+    from pipeline.stages import audio_cache
+
+    out = tmp_path / "out"
+    monkeypatch.setattr(audio_cache, "PART_ROWS", 1)
+    # As if the run were killed after its last outcome: parts written, the table never saved.
+    monkeypatch.setattr(audio_cache.OutcomeCache, "save", lambda self: self._flush())
+    first = run_stage(raw, out)
+    assert not (out / "cache" / "audio" / "outcomes.parquet").exists()
+    assert list((out / "cache" / "audio").glob("outcomes.part-*.parquet"))
+    monkeypatch.undo()
+
+    def no_decoding(job):
+        raise AssertionError(f"decoded {job.row['source_path']} despite its outcome in a part")
+
+    monkeypatch.setattr(audio, "condition_file", no_decoding)
+    again = run_stage(raw, out)
+    assert rows_of(again) == rows_of(first)
+    assert again.rejects == first.rejects
+    # The parts became one table.
+    assert [p.name for p in (out / "cache" / "audio").iterdir()] == ["outcomes.parquet"]
+
+
+def test_a_damaged_cache_is_only_a_miss(first_run, raw: Path, tmp_path: Path):
+    out, result = first_run
+    copy = tmp_path / "out"
+    shutil.copytree(out, copy)
+    (copy / "cache" / "audio" / "outcomes.parquet").write_bytes(b"PAR1 not a table")
+    again = run_stage(raw, copy)
+    assert again.run_stats["sources_processed"] == 8
+    assert rows_of(again) == rows_of(result)
+    assert again.rejects == result.rejects
+
+
+def test_later_outcomes_of_a_source_replace_earlier_ones():
+    from pipeline.stages.audio_cache import _rows_by_key
+
+    # a's outcome (two rows), b's, then a newer outcome of a (a part written later).
+    assert _rows_by_key(["a", "a", "b", "a"]) == {"a": [3], "b": [2]}

@@ -168,6 +168,14 @@ class ManifestBuilder:
         for row in rows:
             self.append(row)
 
+    def extend_table(self, table: pa.Table) -> None:
+        """Add the rows of an Arrow table holding (at least) this manifest's columns,
+        such as rows reused from a columnar cache: no Python value per cell."""
+        self._flush()
+        columns = [table.column(f.name).cast(f.type) for f in self.schema]
+        for batch in pa.Table.from_arrays(columns, schema=self.schema).to_batches():
+            self._batches.append(batch)
+
     def _flush(self) -> None:
         if not self._count:
             return

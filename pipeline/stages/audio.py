@@ -25,7 +25,6 @@ import io
 import math
 import os
 from collections import Counter
-from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -33,7 +32,6 @@ from typing import Any
 import numpy as np
 
 from pipeline.core import names
-from pipeline.core.cache import FileCache, cache_key
 from pipeline.core.codeversion import code_version
 from pipeline.core.config import AudioConfig
 from pipeline.core.errors import ParameterError
@@ -60,6 +58,7 @@ from pipeline.signal.vad import (
     speech_seconds,
     trim_frames,
 )
+from pipeline.stages.audio_cache import OutcomeCache, source_keys
 
 NAME = "audio"
 
@@ -94,15 +93,6 @@ class FileOutcome:
     rows: list[dict[str, Any]] = field(default_factory=list)
     rejects: list[dict[str, Any]] = field(default_factory=list)
     written: dict[str, list[int]] = field(default_factory=dict)
-
-    def to_json(self) -> dict[str, Any]:
-        # The lists themselves, not dataclasses.asdict's deep copy: the result is only
-        # serialised, and the copy cost as much as the cache write.
-        return {"rows": self.rows, "rejects": self.rejects, "written": self.written}
-
-    @classmethod
-    def from_json(cls, data: dict[str, Any]) -> FileOutcome:
-        return cls(rows=list(data["rows"]), rejects=list(data["rejects"]), written=dict(data["written"]))
 
 
 class LongTermPsd:
@@ -663,18 +653,6 @@ def written_files(out: Path, table: Any) -> list[str]:
     return [str(p) for p in table.column("audio_path").to_pylist()]
 
 
-def _outputs_intact(out: Path, outcome: dict[str, Any]) -> bool:
-    """Whether every file a cached result wrote is still there, untouched since."""
-    try:
-        for rel, (size, mtime_ns, inode) in outcome["written"].items():
-            st = os.stat(out / rel)
-            if (st.st_size, st.st_mtime_ns, st.st_ino) != (size, mtime_ns, inode):
-                return False
-    except (OSError, KeyError, TypeError, ValueError):
-        return False
-    return True
-
-
 def remove_orphans(folder: Path, keep: set[str], *, base: Path) -> int:
     """Delete files under ``folder`` whose path relative to ``base`` is not in ``keep``.
 
@@ -742,31 +720,6 @@ def prepare_driver(config: Any) -> None:
     warm_up(config.audio)
 
 
-def _cache_key(row: dict[str, Any], section: dict[str, Any], code: str, voice: str | None) -> str:
-    # source_id and source_path are in the key because they are copied into the rows.
-    # ``code`` is the stage's code version: any edit within its reach misses every entry.
-    # A long source's transcript and voice decide how it is cut (pipeline.stages.alignment);
-    # a short source's transcript text does not reach its clip.
-    aligned = voice is not None and row["duration_s"] > section["max_clip_s"]
-    return cache_key("audio", row["sha256"], section, code, row["source_id"], row["source_path"],
-                     row["speaker"], row["transcript"] if aligned else row["transcript"] is not None,
-                     voice if aligned else None)
-
-
-def _reuse_cached(cache: FileCache, keys: list[str], *, out: Path,
-                  take: Callable[[int, FileOutcome], None]) -> list[int]:
-    """Hand every cached outcome whose files are intact to ``take(i, outcome)``; the
-    indices of the sources left to condition."""
-    todo: list[int] = []
-    for i, key in enumerate(keys):
-        hit = cache.get(key)
-        if hit is not None and _outputs_intact(out, hit):
-            take(i, FileOutcome.from_json(hit))
-        else:
-            todo.append(i)
-    return todo
-
-
 def _clean_up(ctx: StageContext, out: Path, table: Any) -> int:
     """Remove clip files no row names and spool debris; how many clip files went."""
     removed = remove_orphans(out / AUDIO_DIR, set(table.column("audio_path").to_pylist()), base=out)
@@ -821,6 +774,20 @@ def _scrub_rejects(rejects: list[dict[str, Any]], real: dict[str, str], *, raw: 
     return [{**r, "detail": scrub(r["detail"], sources=sources, pattern=pattern)} for r in rejects]
 
 
+def _long_sources(transcribed: Any, voices: dict[str, tuple[str | None, str]],
+                  max_clip_s: float) -> dict[str, tuple[str, str]]:
+    """source_id -> (transcript, voice) of the transcribed sources an alignment may cut:
+    longer than ``max_clip_s`` with a voice. Their transcript and voice decide how they are
+    cut (pipeline.stages.alignment), so both are in their cache key; a short source's
+    transcript text does not reach its clips."""
+    import pyarrow.compute as pc  # here: the workers never need it
+
+    long = transcribed.filter(pc.fill_null(pc.greater(transcribed.column("duration_s"), max_clip_s), False))
+    return {sid: (text, voices[sid][0]) for sid, text in zip(long.column("source_id").to_pylist(),
+                                                             long.column("transcript").to_pylist(), strict=True)
+            if voices.get(sid, (None, ""))[0] is not None}
+
+
 def run(ctx: StageContext) -> StageResult:
     """Condition every ingest row (cached per file), then drop clip files no row names.
 
@@ -830,30 +797,26 @@ def run(ctx: StageContext) -> StageResult:
     cfg = ctx.config.audio
     out = Path(os.path.abspath(ctx.out))
     raw = Path(os.path.abspath(ctx.raw))
-    sources = ctx.inputs["ingest"].to_pylist()
-    cache = FileCache(ctx.cache_dir, NAME, enabled=ctx.use_cache)
-    section = ctx.config.section(NAME)
-
+    ingest = ctx.inputs["ingest"]
     code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
+    import pyarrow.compute as pc  # here: the workers never need it
+
     from pipeline.stages.alignment import alignment_summary, alignment_voices
 
-    voices = alignment_voices(ctx, sources)
-    keys = [_cache_key(row, section, code, voices.get(row["source_id"], (None, ""))[0]) for row in sources]
-    # Rows go straight into Arrow batches as each outcome arrives (cached or fresh);
-    # no list of every outcome is kept. Rejects are few, and kept in source order.
+    section = ctx.config.section(NAME)
+    transcribed = ingest.filter(pc.is_valid(ingest.column("transcript")))
+    voices = alignment_voices(ctx, transcribed.select(["source_id", "source_path", "transcript", "transcript_origin",
+                                                       "metadata_line"]).to_pylist())
+    keys = source_keys(ingest, section=section, code=code, long=_long_sources(transcribed, voices, cfg.max_clip_s))
+    cache = OutcomeCache(ctx.cache_dir, section=section, code=code, enabled=ctx.use_cache)
+    # Rows go straight into Arrow batches as each outcome arrives (reused ones as
+    # columns); no list of every outcome is kept. Rejects are few, kept in source order.
     builder = ManifestBuilder(NAME)
-    rejects_at: dict[int, list[dict[str, Any]]] = {}
-
-    def take(i: int, outcome: FileOutcome) -> None:
-        builder.extend(outcome.rows)
-        if outcome.rejects:
-            rejects_at[i] = outcome.rejects
-
-    todo = _reuse_cached(cache, keys, out=out, take=take)
+    todo, rejects_at = cache.reuse(keys, out=out, builder=builder)
+    sources = ingest.take(todo).to_pylist() if todo else []
     real = _real_paths(ctx, out)
-    jobs = [AudioJob(sources[i], str(raw / real.get(sources[i]["source_path"], sources[i]["source_path"])),
-                     str(out), str(out / TMP_DIR), cfg, *voices.get(sources[i]["source_id"], (None, "")))
-            for i in todo]
+    jobs = [AudioJob(row, str(raw / real.get(row["source_path"], row["source_path"])), str(out), str(out / TMP_DIR),
+                     cfg, *voices.get(row["source_id"], (None, ""))) for row in sources]
     if jobs:
         warm_up(cfg)
 
@@ -861,29 +824,33 @@ def run(ctx: StageContext) -> StageResult:
         # A decoder error may be passing (a file still being copied), and a crash may be
         # the library's fault (fixed by an upgrade): neither is remembered.
         if not any(r["reason"] in ("undecodable", "decoder_crashed") for r in outcome.rejects):
-            cache.put(keys[todo[j]], outcome.to_json())
-        take(todo[j], outcome)
+            cache.add(keys[todo[j]], outcome.rows, outcome.rejects, outcome.written)
+        builder.extend(outcome.rows)
+        if outcome.rejects:
+            rejects_at[todo[j]] = outcome.rejects
 
     each_result(condition_file, jobs, arrived, workers=ctx.workers, scheduler=ctx.scheduler,
                 desc="audio", progress=ctx.progress,
-                costs=[sources[i]["num_frames"] * sources[i]["channels"] for i in todo],
+                costs=[row["num_frames"] * row["channels"] for row in sources],
                 meanwhile=ctx.meanwhile, on_crash=lambda j, how: crashed_outcome(jobs[j], how))
-    ctx.log.info("audio: %d files processed, %d reused from cache", len(todo), len(sources) - len(todo))
+    cache.save()
+    ctx.log.info("audio: %d files processed, %d reused from cache", len(todo), len(keys) - len(todo))
 
     table = builder.table(sort_by="clip_id")
     rejects = [r for i in sorted(rejects_at) for r in rejects_at[i]]
     if real:
         rejects = _scrub_rejects(rejects, real, raw=raw)
     removed = _clean_up(ctx, out, table)
-    summary = _summary(table, rejects, sources=len(sources))
+    summary = _summary(table, rejects, sources=len(keys))
     summary["aligned_sources"] = alignment_summary(
-        table.select(["source_id", "clip_id", "duration_s", "aligned_transcript"]).to_pylist(), sources)
+        table.select(["source_id", "clip_id", "duration_s", "aligned_transcript"]).to_pylist(),
+        transcribed.select(["source_id", "source_path", "transcript", "duration_s"]).to_pylist())
     for path, figures in summary["aligned_sources"].items():
         ctx.log.info("audio: %s aligned to its transcript: %.0f%% of its audio in %d transcribed clips, "
                      "%.0f%% of its transcript placed", path, 100 * figures["audio_share_transcribed"],
                      figures["transcribed_clips"], 100 * figures["transcript_share_placed"])
     # These depend on what earlier runs left in the cache and under audio/: the log's.
-    run_stats = {"sources_processed": len(todo), "sources_reused": len(sources) - len(todo),
+    run_stats = {"sources_processed": len(todo), "sources_reused": len(keys) - len(todo),
                  "orphans_removed": removed}
     return StageResult(manifests={stage_manifest(NAME): (NAME, table)}, rejects=rejects, summary=summary,
                        run_stats=run_stats)
