@@ -120,7 +120,7 @@ class TableCache:
         import pyarrow.parquet as pq
 
         try:
-            table = pq.read_table(path)
+            table = pq.ParquetFile(path).read()  # not read_table: see manifest.read_manifest
         except (OSError, ValueError, TypeError):
             # Missing, or damaged (pyarrow's errors derive from these): only a miss.
             return None

@@ -409,9 +409,14 @@ def write_manifest(path: str | Path, name: str, table: pa.Table, *, metadata: di
 
 
 def read_manifest(path: str | Path) -> pa.Table:
-    """Read a manifest written by ``write_manifest`` (or by hand)."""
+    """Read a manifest written by ``write_manifest`` (or by hand).
+
+    ``ParquetFile.read`` rather than ``pq.read_table``: the latter goes through
+    pyarrow.dataset, whose import brings pandas (0.73 s against 0.005 s for the first
+    read of a small manifest in a fresh process, on a loaded two-core machine).
+    """
     try:
-        return pq.read_table(path)
+        return pq.ParquetFile(path).read()
     except (OSError, pa.ArrowException) as exc:
         raise ManifestError(f"{path}: not a readable Parquet file: {exc}") from exc
 

@@ -90,7 +90,8 @@ class OutcomeCache:
             found = [intact.reject(j) for j in rows if reasons[j] is not None]
             if found:
                 rejects_at[i] = found
-        self._kept = table.take(pa.array(kept, pa.int64()))
+        with pandas_left_unloaded():
+            self._kept = table.take(pa.array(kept, pa.int64()))
         self._changed = self._kept.num_rows != table.num_rows or self.table.has_parts
         clips = self._kept.filter(self._kept.column("reject_reason").is_null())
         builder.extend_table(clips)

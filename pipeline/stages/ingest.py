@@ -29,6 +29,7 @@ from pipeline.core.manifest import table_from_rows
 from pipeline.core.names import stage_manifest
 from pipeline.core.parallel import map_ordered
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
+from pipeline.core.startup import pandas_left_unloaded
 from pipeline.stages.paths import check_relative_path, is_inside
 from pipeline.stages.speaker_source import SpeakerRule, path_speaker, speaker_rule
 from pipeline.stages.speakers import speaker_id
@@ -228,7 +229,8 @@ def _probe_table(entries: list[tuple[str, tuple[int, int, int], dict[str, Any]]]
         columns["error_reason"].append(error[0])
         columns["error_detail"].append(error[1])
     schema = pa.schema([(name, getattr(pa, kind)()) for name, kind in fields])
-    return pa.table([pa.array(columns[f.name], f.type) for f in schema], schema=schema)
+    with pandas_left_unloaded():
+        return pa.table([pa.array(columns[f.name], f.type) for f in schema], schema=schema)
 
 
 def _cached_probes(table: Any) -> dict[str, tuple[tuple[int, int, int], dict[str, Any]]]:
