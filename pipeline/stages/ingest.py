@@ -193,9 +193,9 @@ def scan(raw: Path, extensions: tuple[str, ...], sidecar_extension: str) -> tupl
                 sidecars.add(rel)
     audio.sort()
     kept = []
+    base = os.fspath(raw)
     for rel in audio:
-        full = raw / rel
-        if full.is_symlink() and not is_inside(full, folder=root):
+        if os.path.islink(os.path.join(base, rel)) and not is_inside(raw / rel, folder=root):
             rejects.append(reject(NAME, rel, "path_outside_root",
                                   f"{rel}: a symbolic link to a file outside the raw folder; not opened"))
         else:

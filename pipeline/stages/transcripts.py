@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import csv
 import io
+import os
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -209,9 +210,14 @@ def _row(fields: list[str], line: int, header: list[str], index: dict[str, int],
 
 
 def read_sidecar(raw: Path, rel: str, *, encoding: str) -> tuple[str | None, tuple[str, str, str] | None]:
-    """The stripped text of the sidecar ``RAW/rel``, or (None, (reason, problem sentence, fix))."""
+    """The stripped text of the sidecar ``RAW/rel``, or (None, (reason, problem sentence, fix)).
+
+    ``rel`` is a path ``ingest.scan`` found: its folders are real folders of RAW (the
+    walk follows no link), so only the file itself can be a link leading out, and only
+    then is the path resolved (two resolves per sidecar cost more than reading it).
+    """
     path = raw / rel
-    if not is_inside(path, folder=raw):
+    if os.path.islink(path) and not is_inside(path, folder=raw):
         return None, ("path_outside_root", f"{rel}: a symbolic link to a file outside the raw folder; not opened",
                       "put the transcript itself in the raw folder")
     try:
