@@ -82,15 +82,33 @@ def test_header_facts_match_stdlib_wave(small_raw: Path, tmp_path: Path) -> None
 
 def test_walk_order_does_not_matter(small_raw: Path, tmp_path: Path) -> None:
     first = run_ingest(small_raw, tmp_path / "a")
-    real_walk = os.walk
+    real_scandir = os.scandir
+    listed = []
 
-    def reversed_walk(*args, **kwargs):  # type: ignore[no-untyped-def]
-        for folder, dirs, files in real_walk(*args, **kwargs):
-            dirs.reverse()
-            yield folder, dirs, list(reversed(files))
+    class Reversed:  # os.scandir, the entries in the opposite of the order the file system gives
+        def __init__(self, path="."):  # type: ignore[no-untyped-def]
+            with real_scandir(path) as it:
+                self.entries = iter(list(it)[::-1])
+            listed.append(path)
 
-    with mock.patch("pipeline.stages.ingest.os.walk", reversed_walk):
+        def __iter__(self):  # type: ignore[no-untyped-def]
+            return self
+
+        def __next__(self):  # type: ignore[no-untyped-def]
+            return next(self.entries)
+
+        def close(self) -> None:
+            pass
+
+        def __enter__(self):  # type: ignore[no-untyped-def]
+            return self
+
+        def __exit__(self, *exc):  # type: ignore[no-untyped-def]
+            return False
+
+    with mock.patch("pipeline.stages.ingest.os.scandir", Reversed):
         second = run_ingest(small_raw, tmp_path / "b")
+    assert str(small_raw) in map(str, listed)  # the scan did list through the patched call
     assert first == second
     assert (tmp_path / "a/stages/ingest.parquet").read_bytes() == (tmp_path / "b/stages/ingest.parquet").read_bytes()
 

@@ -162,45 +162,76 @@ def _shown_path(text: str) -> str:
     return os.fsencode(text).decode("utf-8", "backslashreplace")
 
 
-def scan(raw: Path, extensions: tuple[str, ...], sidecar_extension: str) -> tuple[list[str], set[str], list[dict[str, Any]]]:
-    """Sorted relative paths of audio files, the set of sidecar paths, and rejects for
-    links that leave RAW. Sorting makes every later choice independent of walk order."""
+@dataclass
+class Scan:
+    """What :func:`scan` found under RAW."""
+
+    audio: list[str]  # relative paths of audio files, sorted
+    sidecars: set[str]  # relative paths of sidecar transcripts
+    links: set[str]  # the relative paths among those that are symbolic links
+    rejects: list[dict[str, Any]]  # links that leave RAW, names that are not UTF-8
+
+
+def _walk(raw: Path) -> Any:
+    """``(relative folder prefix, entries)`` for every folder under RAW, parents first,
+    each folder's entries and subfolders in name order (never the file system's order).
+    Links to folders are listed, not followed."""
+    stack = [(os.fspath(raw), "")]
+    while stack:
+        folder, prefix = stack.pop()
+        with os.scandir(folder) as it:
+            entries = sorted(it, key=lambda e: e.name)
+        yield prefix, entries
+        stack.extend(reversed([(e.path, f"{prefix}{e.name}/") for e in entries
+                               if e.is_dir(follow_symlinks=False)]))
+
+
+def scan(raw: Path, extensions: tuple[str, ...], sidecar_extension: str) -> Scan:
+    """Audio files, sidecars and the links among them, and rejects for links that
+    leave RAW. Sorting makes every later choice independent of walk order.
+
+    One ``os.scandir`` per folder: whether an entry is a folder or a link comes with
+    the listing, so a file costs no ``stat`` here (a link to a folder costs one).
+    """
     wanted = {"." + e.lower() for e in extensions}
     side = "." + sidecar_extension.lower()
-    audio: list[str] = []
-    sidecars: set[str] = set()
-    rejects: list[dict[str, Any]] = []
+    found = Scan([], set(), set(), [])
+    outside: list[str] = []  # links to audio files outside RAW
     root = raw.resolve()
-    for folder, dirs, files in os.walk(raw, followlinks=False):
-        rel_folder = os.path.relpath(folder, raw)
-        for d in dirs:
-            full = Path(folder) / d
-            if full.is_symlink() and not is_inside(full, folder=root):
-                rel = _shown_path(posixpath.normpath(posixpath.join(rel_folder.replace(os.sep, "/"), d)))
-                rejects.append(reject(NAME, rel, "path_outside_root",
-                                      f"{rel}: a symbolic link to a folder outside the raw folder; not followed"))
-        for name in files:
-            rel = posixpath.normpath(posixpath.join(rel_folder.replace(os.sep, "/"), name))
-            ext = os.path.splitext(name)[1].lower()
+    for prefix, entries in _walk(raw):
+        for entry in entries:
+            rel = prefix + entry.name
+            link = entry.is_symlink()
+            if link and entry.is_dir():
+                if not is_inside(Path(entry.path), folder=root):
+                    shown = _shown_path(rel)
+                    found.rejects.append(reject(NAME, shown, "path_outside_root",
+                                                f"{shown}: a symbolic link to a folder outside the raw folder; not followed"))
+                continue
+            if entry.is_dir(follow_symlinks=False):
+                continue
+            ext = os.path.splitext(entry.name)[1].lower()
             if ext in wanted and not _storable(rel):
                 shown = _shown_path(rel)
-                rejects.append(reject(NAME, shown, "file_name_encoding",
-                                      f"{shown}: the path is not valid UTF-8 (its undecodable bytes shown as \\x "
-                                      "escapes); expected UTF-8 names: rename the file or folder"))
+                found.rejects.append(reject(NAME, shown, "file_name_encoding",
+                                            f"{shown}: the path is not valid UTF-8 (its undecodable bytes shown as \\x "
+                                            "escapes); expected UTF-8 names: rename the file or folder"))
             elif ext in wanted:
-                audio.append(rel)
+                if link and not is_inside(Path(entry.path), folder=root):
+                    outside.append(rel)
+                    continue
+                found.audio.append(rel)
             elif ext == side:
-                sidecars.add(rel)
-    audio.sort()
-    kept = []
-    base = os.fspath(raw)
-    for rel in audio:
-        if os.path.islink(os.path.join(base, rel)) and not is_inside(raw / rel, folder=root):
-            rejects.append(reject(NAME, rel, "path_outside_root",
-                                  f"{rel}: a symbolic link to a file outside the raw folder; not opened"))
-        else:
-            kept.append(rel)
-    return kept, sidecars, rejects
+                found.sidecars.add(rel)
+            else:
+                continue
+            if link:
+                found.links.add(rel)
+    found.audio.sort()
+    found.rejects.extend(reject(NAME, rel, "path_outside_root",
+                                f"{rel}: a symbolic link to a file outside the raw folder; not opened")
+                         for rel in sorted(outside))
+    return found
 
 
 # The probe cache's columns (pipeline.core.cache.TableCache): the file's path and stat,
@@ -430,7 +461,7 @@ class Fate:
 
 
 def _ingest_file(ctx: StageContext, rel: str, probe: dict[str, Any], rows: list[MetadataRow], *,
-                 kept_by_hash: dict[str, str], sidecar: str | None, rule: SpeakerRule) -> Fate:
+                 kept_by_hash: dict[str, str], sidecar: str | None, rule: SpeakerRule, links: set[str]) -> Fate:
     """One audio file's fate: probe error, duplicate content, no speaker, or an ingest
     row with its transcript paired. ``kept_by_hash`` maps the hashes of the files kept
     so far to their paths, and gains this one when it is kept."""
@@ -450,7 +481,8 @@ def _ingest_file(ctx: StageContext, rel: str, probe: dict[str, Any], rows: list[
         return Fate(None, (*repeats, speaker_name))
     pairing = pair_transcript(ctx.raw, rel, rows, sidecar, table_rel=table_rel,
                               transcript_column=cfg.metadata_transcript_column, encoding=cfg.transcript_encoding,
-                              speaker_from_metadata=cfg.speaker_from == "metadata")
+                              speaker_from_metadata=cfg.speaker_from == "metadata",
+                              sidecar_link=sidecar in links)
     return Fate({
         "source_id": source_id(posixpath.basename(posixpath.splitext(rel)[0]), probe["sha256"]),
         "source_path": rel,
@@ -481,7 +513,8 @@ def run(ctx: StageContext) -> StageResult:
     """Scan RAW, read the metadata table, probe every audio file and follow each to an
     ingest row or a reject (see the module docstring)."""
     cfg = ctx.config.ingest
-    paths, sidecars, rejects = scan(ctx.raw, cfg.extensions, cfg.sidecar_extension)
+    found = scan(ctx.raw, cfg.extensions, cfg.sidecar_extension)
+    paths, sidecars, rejects = found.audio, found.sidecars, found.rejects
     path_set = set(paths)
     sidecar_by_stem = _sidecars_by_stem(sidecars)
     by_audio, metadata_rows, meta_rejects = _metadata_by_audio(ctx, path_set)
@@ -495,7 +528,7 @@ def run(ctx: StageContext) -> StageResult:
     kept_by_hash: dict[str, str] = {}
     for rel, probe in zip(paths, probes, strict=True):
         fate = _ingest_file(ctx, rel, probe, by_audio.get(rel, []), kept_by_hash=kept_by_hash,
-                            sidecar=sidecar_by_stem.get(posixpath.splitext(rel)[0]), rule=rule)
+                            sidecar=sidecar_by_stem.get(posixpath.splitext(rel)[0]), rule=rule, links=found.links)
         rejects.extend(fate.rejects)
         if fate.row is not None:
             accepted.append(fate.row)

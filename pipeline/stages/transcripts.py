@@ -209,15 +209,17 @@ def _row(fields: list[str], line: int, header: list[str], index: dict[str, int],
                        transcript_problem=problem), None
 
 
-def read_sidecar(raw: Path, rel: str, *, encoding: str) -> tuple[str | None, tuple[str, str, str] | None]:
+def read_sidecar(raw: Path, rel: str, *, encoding: str,
+                 link: bool | None = None) -> tuple[str | None, tuple[str, str, str] | None]:
     """The stripped text of the sidecar ``RAW/rel``, or (None, (reason, problem sentence, fix)).
 
     ``rel`` is a path ``ingest.scan`` found: its folders are real folders of RAW (the
     walk follows no link), so only the file itself can be a link leading out, and only
     then is the path resolved (two resolves per sidecar cost more than reading it).
+    ``link`` says whether it is a link, as the scan saw it; None looks.
     """
     path = raw / rel
-    if os.path.islink(path) and not is_inside(path, folder=raw):
+    if (os.path.islink(path) if link is None else link) and not is_inside(path, folder=raw):
         return None, ("path_outside_root", f"{rel}: a symbolic link to a file outside the raw folder; not opened",
                       "put the transcript itself in the raw folder")
     try:
@@ -273,10 +275,12 @@ class Pairing:
 
 
 def pair_transcript(raw: Path, rel: str, rows: Sequence[MetadataRow], sidecar_rel: str | None, *,
-                    table_rel: str, transcript_column: str, encoding: str, speaker_from_metadata: bool) -> Pairing:
+                    table_rel: str, transcript_column: str, encoding: str, speaker_from_metadata: bool,
+                    sidecar_link: bool | None = None) -> Pairing:
     """One transcript for the audio file ``rel`` from its (collapsed) metadata rows and
     its sidecar. An empty metadata field means no transcript; sources that disagree are
-    all set aside. The audio is kept whatever happens to its transcripts."""
+    all set aside. The audio is kept whatever happens to its transcripts.
+    ``sidecar_link``: whether the sidecar is a symbolic link (see :func:`read_sidecar`)."""
     found: list[_Found] = []
     problems: list[tuple[str, str, str, str]] = []  # (source, reason, sentence, fix)
     set_aside: set[int] = set()  # metadata lines whose transcript is set aside
@@ -291,7 +295,7 @@ def pair_transcript(raw: Path, rel: str, rows: Sequence[MetadataRow], sidecar_re
             found.append(_Found(row.transcript.strip(), f"line {row.line} of {table_rel}", f"{table_rel}:{row.line}",
                                 where, row.line))
     if sidecar_rel is not None:
-        text, problem = read_sidecar(raw, sidecar_rel, encoding=encoding)
+        text, problem = read_sidecar(raw, sidecar_rel, encoding=encoding, link=sidecar_link)
         if problem is not None:
             problems.append((sidecar_rel, *problem))
         elif text is not None:
