@@ -504,3 +504,20 @@ def test_probe_cache_follows_the_files(small_raw: Path, tmp_path: Path, caplog: 
     cache.write_bytes(b"not parquet")
     rows3, _ = run_ingest(small_raw, out)
     assert rows3 == rows2
+
+
+def test_sidecar_readings_are_reused_until_the_sidecar_changes(small_raw: Path, tmp_path: Path) -> None:
+    out = tmp_path / "out"
+    rows, _ = run_ingest(small_raw, out)
+    row = next(r for r in rows if r["transcript_origin"] == "sidecar")
+    sidecar = small_raw / (row["source_path"].rsplit(".", 1)[0] + ".txt")
+    cached = pq.read_table(out / "cache" / "ingest" / "sidecars.parquet").to_pylist()
+    assert {"path": sidecar.relative_to(small_raw).as_posix(), "text": row["transcript"]}.items() <= next(
+        c for c in cached if c["path"] == sidecar.relative_to(small_raw).as_posix()).items()
+    # Same length, other words: the stat changes, so the sidecar is read again.
+    new_text = "".join(chr(ord(c) ^ 1) if c.isalpha() else c for c in row["transcript"])
+    sidecar.write_text(new_text + "\n", encoding="utf-8")
+    again = {r["source_path"]: r for r in run_ingest(small_raw, out)[0]}
+    assert again[row["source_path"]]["transcript"] == new_text
+    assert {r["source_path"]: r["transcript"] for r in rows if r is not row} == {
+        p: r["transcript"] for p, r in again.items() if p != row["source_path"]}

@@ -11,6 +11,7 @@ the audio goes on as untranscribed audio.
 
 from __future__ import annotations
 
+import contextlib
 import os
 import posixpath
 import re
@@ -38,6 +39,7 @@ from pipeline.stages.transcripts import (
     collapse_rows,
     pair_transcript,
     read_metadata_table,
+    read_sidecar,
 )
 
 NAME = "ingest"
@@ -344,6 +346,56 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str,
     return [r for r in results if r is not None]
 
 
+_SIDECAR_FIELDS = (*_STAT_FIELDS, ("text", "string"), ("reason", "string"), ("sentence", "string"),
+                   ("fix", "string"))
+SidecarRead = tuple[str | None, tuple[str, str, str] | None]
+
+
+def _read_sidecars(ctx: StageContext, needed: list[str], links: set[str]) -> dict[str, SidecarRead]:
+    """What ``read_sidecar`` gives for each sidecar in ``needed``, reusing the last run's
+    reading of a sidecar whose size, mtime and inode are unchanged (a ``stat`` instead
+    of an open and a read: reading sidecars took a third of a 20,000-file rebuild's
+    ingest). Links are always read (where they lead is checked each time), and so is
+    a sidecar that could not be read (a permission says something about this machine)."""
+    import pyarrow as pa
+
+    cfg = ctx.config.ingest
+    code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
+    cache = TableCache(ctx.cache_dir, NAME, "sidecars", scope=cache_key("sidecar", code, cfg.transcript_encoding),
+                       enabled=ctx.use_cache)
+    table = cache.load()
+    previous: dict[str, tuple[tuple[int, int, int], SidecarRead]] = {}
+    if table is not None:
+        cols = [table.column(name).to_pylist() for name, _ in _SIDECAR_FIELDS]
+        for rel, size, mtime, ino, text, reason, sentence, fix in zip(*cols, strict=True):
+            previous[rel] = ((size, mtime, ino), (text, None if reason is None else (reason, sentence, fix)))
+    root = os.fspath(ctx.raw)
+    found: dict[str, SidecarRead] = {}
+    keep: list[tuple[Any, ...]] = []
+    reused = 0
+    for rel in needed:
+        st = None
+        if rel not in links:
+            with contextlib.suppress(OSError):
+                s = os.stat(os.path.join(root, rel))
+                st = (s.st_size, s.st_mtime_ns, s.st_ino)
+        hit = previous.get(rel)
+        if st is not None and hit is not None and hit[0] == st:
+            found[rel] = hit[1]
+            reused += 1
+        else:
+            found[rel] = read_sidecar(ctx.raw, rel, encoding=cfg.transcript_encoding, link=rel in links)
+        text, problem = found[rel]
+        if st is not None and (problem is None or problem[0] != "transcript_unreadable"):
+            keep.append((rel, *st, text, *(problem or (None, None, None))))
+    if reused != len(keep) or len(keep) != len(previous) or cache.has_parts:
+        schema = pa.schema([(name, getattr(pa, kind)()) for name, kind in _SIDECAR_FIELDS])
+        with pandas_left_unloaded():
+            cache.save(pa.table([pa.array([k[i] for k in keep], f.type) for i, f in enumerate(schema)],
+                                schema=schema))
+    return found
+
+
 def extra_inputs(ctx: StageContext) -> list[Path]:
     """Files outside RAW this stage reads or writes: the pseudonym key and mapping."""
     privacy = ctx.config.privacy
@@ -461,7 +513,8 @@ class Fate:
 
 
 def _ingest_file(ctx: StageContext, rel: str, probe: dict[str, Any], rows: list[MetadataRow], *,
-                 kept_by_hash: dict[str, str], sidecar: str | None, rule: SpeakerRule, links: set[str]) -> Fate:
+                 kept_by_hash: dict[str, str], sidecar: str | None, rule: SpeakerRule, links: set[str],
+                 readings: dict[str, SidecarRead]) -> Fate:
     """One audio file's fate: probe error, duplicate content, no speaker, or an ingest
     row with its transcript paired. ``kept_by_hash`` maps the hashes of the files kept
     so far to their paths, and gains this one when it is kept."""
@@ -482,7 +535,7 @@ def _ingest_file(ctx: StageContext, rel: str, probe: dict[str, Any], rows: list[
     pairing = pair_transcript(ctx.raw, rel, rows, sidecar, table_rel=table_rel,
                               transcript_column=cfg.metadata_transcript_column, encoding=cfg.transcript_encoding,
                               speaker_from_metadata=cfg.speaker_from == "metadata",
-                              sidecar_link=sidecar in links)
+                              sidecar_link=sidecar in links, sidecar_read=readings.get(sidecar or ""))
     return Fate({
         "source_id": source_id(posixpath.basename(posixpath.splitext(rel)[0]), probe["sha256"]),
         "source_path": rel,
@@ -524,11 +577,13 @@ def run(ctx: StageContext) -> StageResult:
     if rule.note:
         ctx.log.info("%s", rule.note)
     probes = _probe_all(ctx, ctx.raw, paths)
+    paired = [sidecar_by_stem.get(posixpath.splitext(rel)[0]) for rel in paths]
+    readings = _read_sidecars(ctx, sorted({s for s in paired if s is not None}), found.links)
     accepted: list[dict[str, Any]] = []
     kept_by_hash: dict[str, str] = {}
-    for rel, probe in zip(paths, probes, strict=True):
+    for rel, probe, sidecar in zip(paths, probes, paired, strict=True):
         fate = _ingest_file(ctx, rel, probe, by_audio.get(rel, []), kept_by_hash=kept_by_hash,
-                            sidecar=sidecar_by_stem.get(posixpath.splitext(rel)[0]), rule=rule, links=found.links)
+                            sidecar=sidecar, rule=rule, links=found.links, readings=readings)
         rejects.extend(fate.rejects)
         if fate.row is not None:
             accepted.append(fate.row)

@@ -276,11 +276,13 @@ class Pairing:
 
 def pair_transcript(raw: Path, rel: str, rows: Sequence[MetadataRow], sidecar_rel: str | None, *,
                     table_rel: str, transcript_column: str, encoding: str, speaker_from_metadata: bool,
-                    sidecar_link: bool | None = None) -> Pairing:
+                    sidecar_link: bool | None = None,
+                    sidecar_read: tuple[str | None, tuple[str, str, str] | None] | None = None) -> Pairing:
     """One transcript for the audio file ``rel`` from its (collapsed) metadata rows and
     its sidecar. An empty metadata field means no transcript; sources that disagree are
     all set aside. The audio is kept whatever happens to its transcripts.
-    ``sidecar_link``: whether the sidecar is a symbolic link (see :func:`read_sidecar`)."""
+    ``sidecar_link``: whether the sidecar is a symbolic link (see :func:`read_sidecar`);
+    ``sidecar_read``: what :func:`read_sidecar` gave for it, when the caller has it."""
     found: list[_Found] = []
     problems: list[tuple[str, str, str, str]] = []  # (source, reason, sentence, fix)
     set_aside: set[int] = set()  # metadata lines whose transcript is set aside
@@ -295,7 +297,8 @@ def pair_transcript(raw: Path, rel: str, rows: Sequence[MetadataRow], sidecar_re
             found.append(_Found(row.transcript.strip(), f"line {row.line} of {table_rel}", f"{table_rel}:{row.line}",
                                 where, row.line))
     if sidecar_rel is not None:
-        text, problem = read_sidecar(raw, sidecar_rel, encoding=encoding, link=sidecar_link)
+        text, problem = (sidecar_read if sidecar_read is not None
+                         else read_sidecar(raw, sidecar_rel, encoding=encoding, link=sidecar_link))
         if problem is not None:
             problems.append((sidecar_rel, *problem))
         elif text is not None:
