@@ -86,8 +86,8 @@ bench: $(STAMP)
 	$(BIN)/python bench/run.py --out "$(BENCH_OUT)"
 	$(BIN)/python bench/bench_align.py
 
-# Opt-in: generates SCALE_SOURCES short sources (about 4 GB at 100,000) and prepares them
-# cold, locally and (SCALE_FLAGS=--cluster) on a two-worker dask LocalCluster.
+# Opt-in: generates SCALE_SOURCES short sources (6.1 GB at 100,000) and prepares them
+# cold once (on a two-worker dask LocalCluster with SCALE_FLAGS=--cluster, locally with SCALE_FLAGS=).
 bench-scale: $(STAMP)
 	$(BIN)/python bench/bench_scale.py --out "$(BENCH_OUT)-scale" --sources $(SCALE_SOURCES) $(SCALE_FLAGS)
 
