@@ -4,57 +4,26 @@ Keys are SHA-256 digests of everything a result depends on (source content hash,
 stage parameters, stage code version), so a hit can be reused without asking
 whether anything changed, and a changed input simply misses.
 
-- :class:`FileCache`: one small JSON file per key, for results looked up one by one;
+- :func:`cache_key`: a SHA-256 key of any JSON-able parts;
 - :class:`TableCache`: one Parquet table per namespace holding every result of the
   last run, valid for one ``scope`` (the stage's code version and parameters). A
-  stage reads it once and looks results up in memory: at 100,000 sources, one file per
-  source cost tens of microseconds each to open and parse, the table a few.
+  stage reads it once and looks results up in memory, where one small JSON file per
+  source (the earlier layout) cost an open and a parse per source.
 """
 
 from __future__ import annotations
 
 import contextlib
 import hashlib
-import json
 from pathlib import Path
 from typing import Any
 
 from pipeline.core.config import canonical_json
-from pipeline.core.fsio import atomic_output, write_bytes_atomic
+from pipeline.core.fsio import atomic_output
 
 
 def cache_key(*parts: Any) -> str:
     return hashlib.sha256(canonical_json(list(parts))).hexdigest()
-
-
-class FileCache:
-    """JSON values stored one file per key, written atomically."""
-
-    def __init__(self, root: Path, namespace: str, *, enabled: bool = True) -> None:
-        self.folder = Path(root) / namespace
-        self.enabled = enabled
-
-    def _path(self, key: str) -> Path:
-        return self.folder / key[:2] / f"{key}.json"
-
-    def get(self, key: str) -> Any | None:
-        if not self.enabled:
-            return None
-        try:
-            return json.loads(self._path(key).read_bytes())
-        except FileNotFoundError:
-            return None
-        except (OSError, ValueError):
-            # A damaged entry is only a miss: the result is recomputed and rewritten.
-            with contextlib.suppress(OSError):
-                self._path(key).unlink()
-            return None
-
-    def put(self, key: str, value: Any) -> None:
-        if self.enabled:
-            # No fsync: an entry a power cut leaves empty or torn does not parse, and
-            # get() takes that as a miss; a thousand fsyncs would cost more than that.
-            write_bytes_atomic(self._path(key), canonical_json(value), durable=False)
 
 
 class TableCache:
@@ -143,8 +112,8 @@ class TableCache:
             self._write(self.path.with_name(f"{self.path.stem}.part-{parts:06d}.parquet"), table)
 
     def save(self, table: Any) -> None:
-        """Replace the stored table and its parts by ``table`` (atomically; no fsync,
-        as for :class:`FileCache`: a damaged file is only a miss)."""
+        """Replace the stored table and its parts by ``table`` (atomically; no fsync:
+        a damaged or torn file is only a miss)."""
         if not self.enabled:
             return
         parts = self._files()[1:]
