@@ -13,9 +13,11 @@ import importlib.metadata
 import json
 import re
 import shutil
+from collections import Counter
 from pathlib import Path
 
 import cmarkgfm
+import pyarrow.parquet as pq
 import pytest
 from cmarkgfm.cmark import Options
 
@@ -26,7 +28,7 @@ from pipeline.commands.reasons import MEANINGS
 from pipeline.commands.report import write_report
 from pipeline.core.config import build_config, load_config
 from pipeline.core.errors import ConfigError
-from pipeline.core.names import REASONS, REPORT_DATASHEET
+from pipeline.core.names import REASONS, REPORT_DATASHEET, stage_manifest
 from pipeline.core.schemas_io import load_schema
 from tests.conftest import DEMO
 
@@ -64,7 +66,11 @@ def test_seven_sections_in_order_each_filled_from_the_build(sheet: str, demo_bui
     assert f"{summary['totals']['clips']} clips" in found["2. Composition"]
     for speaker in ("heron", "otter", "sedge", "alder", "plover", "wren", "egret"):
         assert f"| `{speaker}` |" in found["2. Composition"]
-    assert "| `en` | 16 |" in found["2. Composition"] and "| `sw` | 3 |" in found["2. Composition"]
+    # Transcribed clips per language, counted in the text manifest the build wrote.
+    languages = Counter(pq.read_table(demo_build / stage_manifest("text")).column("language").to_pylist())
+    assert set(languages) == {"en", "sw"}  # the demo's English speakers and its Swahili one
+    for tag, clips in languages.items():
+        assert f"| `{tag}` | {clips} |" in found["2. Composition"]
     # The demo's rates and containers (demo_corpus/README.md: 8 kHz telephone WAV, 44.1 kHz stereo, Vorbis).
     assert "| `WAV` | `PCM_16` | 1 | 8000 |" in found["3. Collection process"]
     assert "| `OGG` | `VORBIS` | 2 | 44100 |" in found["3. Collection process"]
@@ -79,8 +85,9 @@ def test_seven_sections_in_order_each_filled_from_the_build(sheet: str, demo_bui
         assert f"| `{reason}` | {MEANINGS[reason]} | `ingest` | {n} |" in prep
     assert "no review decisions file exists for this build" in prep
     assert "No: `privacy.pseudonymise` is false" in prep
-    assert "(5 scored clips from 2 speakers no training subset holds) for evaluation, in parts `dev`, `test`." \
-        in found["5. Uses"]
+    held = summary["subsets"]["heldout"]
+    assert (f"({held['scored_clips']} scored clips from {held['speakers']} speakers no training subset holds) "
+            "for evaluation, in parts `dev`, `test`.") in found["5. Uses"]
     for part, v in summary["parts"].items():
         assert f"| `{part}` | {v['clips']} |" in found["2. Composition"]
     for title in SECTIONS:

@@ -29,6 +29,8 @@ MEANINGS = {
     "out_of_range_samples": "The decoded audio holds samples beyond full scale.",
     "upsampled": "The file's rate is below the output rate and the config rejects such files.",
     "too_long_transcribed": "A transcribed recording is longer than the longest clip allowed, so its transcript cannot be cut with it.",
+    "transcript_mismatch": "A long recording's transcript could not be aligned to it (too few sentences found in the audio); the audio is kept as untranscribed clips.",
+    "sentences_unaligned": "Some sentences of a long recording's transcript were not placed with confidence; their audio is kept as untranscribed clips, the sentence names them.",
     "no_speech": "Voice activity detection found too little speech.",
     "clipped": "Too many samples sit at full scale for the audio to be usable.",
     "too_short": "The clip is shorter than the shortest allowed after trimming.",
