@@ -75,6 +75,10 @@ def test_seven_sections_in_order_each_filled_from_the_build(sheet: str, demo_bui
     assert "| `WAV` | `PCM_16` | 1 | 8000 |" in found["3. Collection process"]
     assert "| `OGG` | `VORBIS` | 2 | 44100 |" in found["3. Collection process"]
     prep = found["4. Preprocessing, cleaning and labelling"]
+    # The demo's one long reading (heron_storm_log), aligned as the audio stage's summary records.
+    aligned = json.loads((demo_build / "stages/audio.summary.json").read_text(encoding="utf-8"))["aligned_sources"]
+    assert list(aligned) == ["heron/heron_storm_log.ogg"]
+    assert "Here: 1 recording aligned." in prep
     for key, value in config.section("audio").items():
         assert f"| `audio.{key}` | `{json.dumps(value)}` |" in prep
     assert f"seed of every ranked or random choice is {config.seed}" in prep

@@ -91,7 +91,22 @@ def _audio(b: Build) -> str:
             f"normalised loudness to {a.target_lufs:g} LUFS (ITU-R BS.1770-4) under a {a.peak_ceiling_dbfs:g} dBFS "
             f"{peak} ceiling, and wrote 16-bit {a.format.upper()}. Here: {plural(c('audio', 'sources'), 'source')} "
             f"gave {plural(c('audio', 'clips'), 'clip')}; {c('audio', 'sources_segmented')} cut into segments, "
-            f"{c('audio', 'upsampled_sources')} below the output rate, {c('audio', 'peak_limited_clips')} peak-limited.")
+            f"{c('audio', 'upsampled_sources')} below the output rate, {c('audio', 'peak_limited_clips')} peak-limited."
+            + _aligned(b))
+
+
+def _aligned(b: Build) -> str:
+    """The alignment of long transcribed recordings (pipeline.stages.alignment), when on."""
+    a = b.config.audio
+    if a.align == "off":
+        return (f" Transcribed recordings longer than {a.max_clip_s:g} s were not aligned to their transcripts "
+                "(`audio.align` is off): they were set aside.")
+    aligned = b.stages.get("audio", {}).get("aligned_sources", {})
+    return (f" Transcribed recordings longer than {a.max_clip_s:g} s were aligned to their transcripts sentence by "
+            "sentence (a synthetic reading by espeak-ng, MFCCs, dynamic time warping, cuts snapped to pauses within "
+            f"{a.align_snap_ms} ms); sentences placed with confidence at least {a.align_min_confidence:g} became "
+            f"transcribed clips, the rest of their audio untranscribed clips. Here: "
+            f"{plural(len(aligned), 'recording')} aligned.")
 
 
 def _text(b: Build) -> str:
