@@ -253,3 +253,31 @@ def test_cli_bad_config_file_exits_2(tmp_path: Path, capsys: pytest.CaptureFixtu
     assert f"{path}: key 'audio.sample_rate' has value 7" in capsys.readouterr().err
     assert main(["prepare", str(tmp_path / "raw"), str(tmp_path / "out"), "--config", str(tmp_path / "none.toml")]) == 2
     assert "none.toml: cannot read config file" in capsys.readouterr().err
+
+
+def test_a_config_that_passed_is_not_checked_again_and_a_new_one_is(tmp_path: Path) -> None:
+    import subprocess
+    import sys
+
+    checked = tmp_path / "out" / "cache" / "config-checked.txt"
+    config = tmp_path / "corpus.toml"
+    config.write_text("[audio]\nsample_rate = 22050\n", encoding="utf-8")
+    first = load_config(config, checked=checked)
+    assert len(checked.read_text(encoding="utf-8").split()) == 1
+    # The same file in a fresh process: the same Config, without importing jsonschema.
+    script = ("import sys; from pathlib import Path; from pipeline.core.config import load_config; "
+              f"c = load_config(Path({str(config)!r}), checked=Path({str(checked)!r})); "
+              "print(c.sha256(), 'jsonschema' in sys.modules)")
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, check=True)
+    assert done.stdout.split() == [first.sha256(), "False"]
+    # Another value is checked (and refused) although a config passed before.
+    with pytest.raises(ConfigError, match="audio.sample_rate"):
+        load_config(config, overrides={"audio.sample_rate": 10}, checked=checked)
+    assert len(checked.read_text(encoding="utf-8").split()) == 1
+    for rate in range(16000, 16010):
+        load_config(config, overrides={"audio.sample_rate": rate}, checked=checked)
+    assert len(checked.read_text(encoding="utf-8").split()) == 8  # the last ones only
+    # An unreadable record is no record: the check runs and the record is written anew.
+    checked.write_bytes(b"\xff\xfe")
+    assert load_config(config, checked=checked) == first
+    assert len(checked.read_text(encoding="utf-8").split()) == 1

@@ -191,12 +191,14 @@ def _cmd_prepare(args: argparse.Namespace, stages: tuple[str, ...] | None = None
         if _nothing_changed(args, invocation):
             return 0
 
+    from pipeline.core import names
     from pipeline.core.config import load_config
     from pipeline.core.runlog import setup_logging
     from pipeline.core.runner import Runner
     from pipeline.stages import STAGES
 
-    config = load_config(args.config, overrides=overrides, override_flags=override_flags)
+    config = load_config(args.config, overrides=overrides, override_flags=override_flags,
+                         checked=None if args.no_cache else args.out / names.CONFIG_CHECKS)
     try:
         args.out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:

@@ -7,6 +7,7 @@ a test keeps the two in step.
 
 from __future__ import annotations
 
+import contextlib
 import copy
 import dataclasses
 import hashlib
@@ -392,23 +393,63 @@ def _format_error(origin: Callable[[str], str], error: Any, schema: dict[str, An
 
 
 def validate_config_data(data: dict[str, Any], *, source: str = "<config>",
-                         overridden: Mapping[str, str] | None = None) -> dict[str, Any]:
+                         overridden: Mapping[str, str] | None = None, checked: Path | None = None) -> dict[str, Any]:
     """Check raw config data against the schema and return it with defaults filled.
 
     A failing key that ``overridden`` (dotted key -> option as typed) names is reported
-    as coming from the command line, any other from ``source``.
+    as coming from the command line, any other from ``source``. ``checked`` is a file
+    remembering the configs that passed (see :func:`_check_key`); None checks every time.
     """
-    from jsonschema import Draft202012Validator
-
     def origin(key: str) -> str:
         flag = _override_for(overridden or {}, key)
         return source if flag is None else f"the command line ({flag})"
 
     schema = load_schema("config")
-    errors = sorted(Draft202012Validator(schema).iter_errors(data), key=lambda e: list(e.absolute_path))
-    if errors:
-        raise ConfigError(_format_error(origin, errors[0], schema))
+    key = _check_key(data, schema) if checked is not None else None
+    if key is None or key not in _passed(checked):
+        from jsonschema import Draft202012Validator
+
+        errors = sorted(Draft202012Validator(schema).iter_errors(data), key=lambda e: list(e.absolute_path))
+        if errors:
+            raise ConfigError(_format_error(origin, errors[0], schema))
+        if key is not None and checked is not None:
+            _remember_passed(checked, key)
     return _fill_defaults(schema, data)
+
+
+# How many passed configs ``checked`` remembers (a few commands with different --set).
+_CHECKS_KEPT = 8
+
+
+def _check_key(data: dict[str, Any], schema: dict[str, Any]) -> str | None:
+    """The hash of what the schema check's verdict depends on: the data as given, the
+    schema and the jsonschema library's version. Importing jsonschema cost 0.10 CPU
+    seconds of every ``loam prepare``; with the same three, the check passes again.
+    None for data JSON cannot hold (TOML dates), which is always checked."""
+    from pipeline.core.codeversion import library_version
+
+    try:
+        return hashlib.sha256(canonical_json({"data": data, "schema": schema,
+                                              "jsonschema": library_version("jsonschema")})).hexdigest()
+    except (TypeError, ValueError):
+        return None
+
+
+def _passed(checked: Path | None) -> list[str]:
+    try:
+        return Path(checked).read_text(encoding="utf-8").split() if checked is not None else []
+    except (OSError, UnicodeError):
+        return []
+
+
+def _remember_passed(checked: Path, key: str) -> None:
+    from pipeline.core.fsio import write_text_atomic
+
+    keys = [k for k in _passed(checked) if k != key][-(_CHECKS_KEPT - 1):] + [key]
+    # A cache: OUT is created right after the config is read, and a folder that cannot
+    # be created is reported there, by the command.
+    with contextlib.suppress(OSError):
+        write_text_atomic(checked, "\n".join(keys) + "\n")
 
 
 def _set_override(data: dict[str, Any], dotted: str, value: Any, *, flag: str) -> None:
@@ -435,18 +476,20 @@ def build_config(
     base_dir: str = ".",
     overrides: dict[str, Any] | None = None,
     override_flags: Mapping[str, str] | None = None,
+    checked: Path | None = None,
 ) -> Config:
     """Validate raw data (plus dotted-key overrides from the command line) into a Config.
 
     ``override_flags`` maps an override's dotted key to the option as the user typed it
     (``--workers -1``), so a message about it names the command line, not the file.
+    ``checked``: the file of configs that passed the schema check (``validate_config_data``).
     """
     file_keys = _dotted_keys(data)
     data = copy.deepcopy(data)
     overridden = {k: (override_flags or {}).get(k) or override_flag(k, v) for k, v in (overrides or {}).items()}
     for dotted, value in (overrides or {}).items():
         _set_override(data, dotted, value, flag=overridden[dotted])
-    full = validate_config_data(data, source=source, overridden=overridden)
+    full = validate_config_data(data, source=source, overridden=overridden, checked=checked)
     sections = {}
     for name, cls in SECTIONS.items():
         values = dict(full[name])
@@ -573,10 +616,11 @@ def _check_ingest(cfg: Config) -> None:
 
 
 def load_config(path: str | Path | None, *, overrides: dict[str, Any] | None = None,
-                override_flags: Mapping[str, str] | None = None) -> Config:
+                override_flags: Mapping[str, str] | None = None, checked: Path | None = None) -> Config:
     """Read, validate and resolve a TOML config file (None: all defaults); see ``build_config``."""
     if path is None:
-        return build_config({}, source="<defaults>", overrides=overrides, override_flags=override_flags)
+        return build_config({}, source="<defaults>", overrides=overrides, override_flags=override_flags,
+                            checked=checked)
     path = Path(path)
     try:
         raw = path.read_bytes()
@@ -589,4 +633,4 @@ def load_config(path: str | Path | None, *, overrides: dict[str, Any] | None = N
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{path}: not valid TOML: {exc}") from exc
     return build_config(data, source=str(path), base_dir=str(path.parent), overrides=overrides,
-                        override_flags=override_flags)
+                        override_flags=override_flags, checked=checked)

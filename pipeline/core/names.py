@@ -57,6 +57,8 @@ REPORT = "report"
 LOCK = ".loam.lock"
 # The no-change snapshot of the last finished run (pipeline.core.snapshot).
 SNAPSHOT_STATE = "cache/state.json"
+# The configs that passed the schema check (pipeline.core.config.validate_config_data).
+CONFIG_CHECKS = "cache/config-checked.txt"
 
 
 def subset_manifest(subset: str) -> str:
