@@ -35,6 +35,19 @@ def test_results_in_input_order_and_each_reported_once(workers: int) -> None:
         assert os.getpid() not in pids and calls == ["meanwhile"]
 
 
+def test_small_items_start_fewer_workers_than_asked() -> None:
+    items = list(range(8))
+    costs = [1.0] * len(items)
+    # Costing 8 units at 100 a worker: one worker, in this process when no crash is guarded against,
+    out = map_ordered(slow_square, items, workers=2, costs=costs, cost_per_worker=100.0)
+    assert {r[1] for r in out} == {os.getpid()}
+    # in one worker process when it is.
+    out = map_ordered(slow_square, items, workers=2, costs=costs, cost_per_worker=100.0,
+                      on_crash=lambda i, how: (-1, -1))
+    assert len({r[1] for r in out}) == 1 and os.getpid() not in {r[1] for r in out}
+    assert [r[0] for r in out] == [x * x for x in items]
+
+
 def test_no_items_no_calls() -> None:
     calls: list[object] = []
     assert map_ordered(slow_square, [], workers=2, meanwhile=lambda: calls.append(1),

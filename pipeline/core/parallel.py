@@ -6,6 +6,7 @@ what keeps manifests byte-identical across worker counts and schedulers.
 
 from __future__ import annotations
 
+import math
 import os
 import sys
 from collections.abc import Callable, Sequence
@@ -56,6 +57,25 @@ def _progress(total: int, desc: str, enabled: bool) -> Any:
     return tqdm(total=total, desc=desc, unit="file", leave=False, dynamic_ncols=True)
 
 
+def planned_workers(workers: int, items: int, *, costs: Sequence[float] | None = None,
+                    cost_per_worker: float | None = None) -> int:
+    """How many local workers :func:`each_result` starts for ``items`` items.
+
+    Examples
+    --------
+    >>> planned_workers(2, 33), planned_workers(4, 3)
+    (2, 3)
+    >>> planned_workers(2, 33, costs=[0.3e6] * 33, cost_per_worker=64e6)
+    1
+    >>> planned_workers(2, 538, costs=[0.4e6] * 538, cost_per_worker=64e6)
+    2
+    """
+    n = min(resolve_workers(workers), items)
+    if costs is not None and cost_per_worker:
+        n = min(n, max(1, math.ceil(sum(costs) / cost_per_worker)))
+    return n
+
+
 def each_result(
     func: Callable[[T], R],
     items: Sequence[T],
@@ -66,6 +86,7 @@ def each_result(
     desc: str = "",
     progress: bool = False,
     costs: Sequence[float] | None = None,
+    cost_per_worker: float | None = None,
     meanwhile: Callable[[], None] | None = None,
     on_crash: Callable[[int, str], R] | None = None,
 ) -> None:
@@ -81,8 +102,11 @@ def each_result(
     free of pool start-up cost. ``scheduler`` is a dask.distributed address; workers
     there must see the same file paths. ``costs`` (e.g. durations) makes the pool start
     the largest items first, so one long recording does not leave a worker finishing
-    alone at the end (longest-processing-time-first scheduling). On a cluster, items
-    travel in batches (:func:`batches`): one task and one message per batch.
+    alone at the end (longest-processing-time-first scheduling). With ``costs`` and
+    ``cost_per_worker``, no more local workers start than the items' summed cost over
+    ``cost_per_worker`` (at least one): a worker's start-up (a fork, the first imports,
+    the pool's messages) is not repaid by a share of a few small items. On a cluster,
+    items travel in batches (:func:`batches`): one task and one message per batch.
 
     ``meanwhile`` is other work for this process (the runner's next stages that do not
     need these results). When there is a pool or a cluster to wait for, it is called
@@ -104,7 +128,7 @@ def each_result(
         _each_dask(func, items, on_result, scheduler=scheduler, desc=desc, progress=progress, meanwhile=meanwhile,
                    costs=costs)
         return
-    n = min(resolve_workers(workers), len(items))
+    n = planned_workers(workers, len(items), costs=costs, cost_per_worker=cost_per_worker)
     bar = _progress(len(items), desc, progress)
 
     def handed(i: int, result: R) -> None:
