@@ -36,6 +36,7 @@ help:
 	@echo "make property-search  run the property tests with $(SEARCH_SCALE)x their examples, drawn at random"
 	@echo "make bench      throughput, memory and rebuild benchmarks"
 	@echo "make bench-scale  rerun, rebuild and memory at $(SCALE_SOURCES) generated sources (long: a cold run of them first)"
+	@echo "make bytecode   byte-compile the package (make does it at install; loam then starts without compiling)"
 	@echo "make lint       ruff"
 	@echo "make clean      remove build outputs (keeps .venv)"
 	@echo "variables: RAW=$(RAW) OUT=$(OUT) CONFIG=$(CONFIG) WORKERS=$(WORKERS)"
