@@ -38,12 +38,12 @@ def split_exclusions(ctx: StageContext, clips: Sequence[Any]) -> tuple[list[dict
     """The split stage's share: a ``review_excluded`` reject per excluded clip (its
     reason and note in the sentence), the excluded ids, the tally (with the lines that
     could not be read and those superseded), and the file's path.
-    ``clips`` have ``clip_id`` and ``audio`` (the audio row)."""
+    ``clips`` have ``clip_id`` and ``source_path``."""
     path = decisions_file(ctx)
     found, bad = read_decisions(path)
     verdicts, _, superseded = effective(found)
     by_id = {c.clip_id: c for c in clips}
-    by_path = {c.audio["source_path"]: c.clip_id for c in clips}
+    by_path = {c.source_path: c.clip_id for c in clips}
     tally, rejects, excluded = Tally(), [], set()
     for line, why in bad:
         tally.skip(None, "unreadable", f"line {line}: not applied: {why}")
@@ -58,7 +58,7 @@ def split_exclusions(ctx: StageContext, clips: Sequence[Any]) -> tuple[list[dict
             continue
         tally.applied[d.decision] += 1
         if d.decision == "exclude":
-            src = c.audio["source_path"]
+            src = c.source_path
             why = d.reason or "no reason given"
             note = f"; note: {d.note}" if d.note else ""
             rejects.append(reject("split", src, EXCLUDED, f"{src}: clip {cid} excluded at review ({why}{note}; "

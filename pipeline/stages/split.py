@@ -40,11 +40,12 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from pipeline.core import names
 from pipeline.core.config import Config, parse_duration_s
 from pipeline.core.errors import DataError, UsageError
-from pipeline.core.manifest import table_from_rows, validate_table
+from pipeline.core.manifest import arrow_schema, validate_table
 from pipeline.core.names import (
     FLAGS,
     HELDOUT,
@@ -217,14 +218,20 @@ def match_tiers(old: Sequence[str], new: Sequence[str], *, seconds: Mapping[str,
 # Clips
 # ---------------------------------------------------------------------------------------
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, slots=True)
 class Clip:
     """One audio row joined with its transcript, and what the stage found out about it.
 
-    Built once, by :func:`build_clips`, when every measure is known.
+    Built once, by :func:`build_clips`, when every measure is known. The audio row
+    itself stays in the stage's Arrow table (row ``row`` of :attr:`Joined.audio`); a
+    clip carries the few values the assignment reads.
     """
 
-    audio: dict[str, Any]
+    row: int
+    clip_id: str
+    speaker: str
+    duration_s: float
+    source_path: str
     text: dict[str, Any] | None
     base_group: str
     group: str
@@ -234,18 +241,6 @@ class Clip:
     rate_z: float | None
     near_duplicate_of: str | None
     eligible: bool
-
-    @property
-    def clip_id(self) -> str:
-        return self.audio["clip_id"]
-
-    @property
-    def speaker(self) -> str:
-        return self.audio["speaker"]
-
-    @property
-    def duration_s(self) -> float:
-        return float(self.audio["duration_s"])
 
     @property
     def transcribed(self) -> bool:
@@ -258,15 +253,23 @@ def _finite(value: Any) -> float | None:
 
 @dataclass(frozen=True)
 class Joined:
-    """Audio rows sorted by clip_id, each with its transcript row (or None); their decoded
-    fingerprints one after the other (clip ``k``'s are ``fingerprints[0][o[k]:o[k + 1]]``
-    with ``o = fingerprints[1]``); ``orphans`` counts the text rows whose clip has no
-    audio row (their audio was rejected upstream)."""
+    """The audio stage's table sorted by clip_id without its fingerprints, and for each
+    of its rows the transcript row (``texts``, None without one) and the transcript's
+    row in the text table (``text_rows``, -1 without); their decoded fingerprints one
+    after the other (clip ``k``'s are ``fingerprints[0][o[k]:o[k + 1]]`` with
+    ``o = fingerprints[1]``); ``orphans`` counts the text rows whose clip has no audio
+    row (their audio was rejected upstream)."""
 
-    audio: list[dict[str, Any]]
-    text: list[dict[str, Any] | None]
+    audio: pa.Table
+    text: pa.Table
+    texts: list[dict[str, Any] | None]
+    text_rows: np.ndarray
     fingerprints: tuple[np.ndarray, np.ndarray]
     orphans: int
+
+    def numbers(self, column: str) -> np.ndarray:
+        """A numeric audio column as float64, NaN where null."""
+        return self.audio.column(column).to_numpy().astype(np.float64, copy=False)
 
 
 def _decoded_fingerprints(column: pa.ChunkedArray) -> tuple[np.ndarray, np.ndarray]:
@@ -282,21 +285,38 @@ def _decoded_fingerprints(column: pa.ChunkedArray) -> tuple[np.ndarray, np.ndarr
     return decode_fingerprints(chars, bounds)
 
 
+def _first_repeat(ids: pa.ChunkedArray) -> str | None:
+    """The first id equal to the one before it in ``ids`` (sorted), or None."""
+    if len(ids) < 2:
+        return None
+    same = pc.equal(ids.slice(1), ids.slice(0, len(ids) - 1)).to_numpy(zero_copy_only=False)
+    hits = np.flatnonzero(same)
+    return ids[int(hits[0]) + 1].as_py() if hits.size else None
+
+
 def join_rows(audio: pa.Table, text: pa.Table) -> Joined:
-    """Join the audio and text stages' rows by clip_id; DataError for a clip listed twice."""
+    """Join the audio and text stages' rows by clip_id; DataError for a clip listed twice.
+
+    Columnar: the audio rows stay an Arrow table; only the transcripts (a fraction of
+    the clips) become Python rows."""
     audio = audio.sort_by("clip_id")
     fingerprints = _decoded_fingerprints(audio.column("fingerprint"))
-    rows = audio.drop_columns(["fingerprint"]).to_pylist()
-    texts: dict[str, dict[str, Any]] = {}
-    for t in text.to_pylist():
-        if t["clip_id"] in texts:
-            raise DataError(f"{stage_manifest('text')}: clip {t['clip_id']} has two transcript rows; expected one")
-        texts[t["clip_id"]] = t
-    for prev, row in zip([None, *rows], rows, strict=False):
-        if prev is not None and prev["clip_id"] == row["clip_id"]:
-            raise DataError(f"{stage_manifest('audio')}: clip {row['clip_id']} has two rows; expected one")
-    orphans = len(set(texts) - {row["clip_id"] for row in rows})
-    return Joined(rows, [texts.get(row["clip_id"]) for row in rows], fingerprints, orphans)
+    audio = audio.drop_columns(["fingerprint"])
+    twice = _first_repeat(text.column("clip_id").sort())
+    if twice is not None:
+        raise DataError(f"{stage_manifest('text')}: clip {twice} has two transcript rows; expected one")
+    ids = audio.column("clip_id")
+    twice = _first_repeat(ids)
+    if twice is not None:
+        raise DataError(f"{stage_manifest('audio')}: clip {twice} has two rows; expected one")
+    rows = pc.index_in(ids, value_set=text.column("clip_id").combine_chunks())
+    text_rows = rows.to_numpy(zero_copy_only=False)
+    text_rows = np.where(np.isnan(text_rows), -1, text_rows).astype(np.int64) if rows.null_count else \
+        text_rows.astype(np.int64)
+    by_row = text.to_pylist()
+    texts = [by_row[r] if r >= 0 else None for r in text_rows.tolist()]
+    orphans = len(by_row) - int(np.count_nonzero(text_rows >= 0))
+    return Joined(audio, text, texts, text_rows, fingerprints, orphans)
 
 
 def plain_phones(text: dict[str, Any] | None, *, word_boundary: str) -> tuple[str, ...]:
@@ -306,16 +326,16 @@ def plain_phones(text: dict[str, Any] | None, *, word_boundary: str) -> tuple[st
     return tuple(p for p in text["phones"] if p != word_boundary or not word_boundary)
 
 
-def row_flags(audio: dict[str, Any], text: dict[str, Any] | None) -> set[str]:
-    """The flags a clip's own rows decide: upsampled, peak limited, transcript rejected."""
-    flags = set()
-    if text is None and audio["transcribed"]:
-        flags.add("transcript_rejected")
-    if audio["upsampled_from"] is not None:
-        flags.add("upsampled")
-    if audio["peak_limited_db"] > PEAK_LIMITED_MIN_DB:
-        flags.add("peak_limited")
-    return flags
+def row_flags(joined: Joined) -> dict[str, np.ndarray]:
+    """The flags a clip's own rows decide, as a mask per flag: upsampled, peak limited,
+    transcript rejected."""
+    audio = joined.audio
+    transcribed = audio.column("transcribed").to_numpy(zero_copy_only=False).astype(bool)
+    return {
+        "transcript_rejected": transcribed & (joined.text_rows < 0),
+        "upsampled": audio.column("upsampled_from").is_valid().to_numpy(zero_copy_only=False).astype(bool),
+        "peak_limited": joined.numbers("peak_limited_db") > PEAK_LIMITED_MIN_DB,
+    }
 
 
 @dataclass(frozen=True)
@@ -326,7 +346,8 @@ class DuplicatePair:
     identical: bool
 
 
-def find_duplicates(rows: Sequence[Mapping[str, Any]], fingerprints: tuple[np.ndarray, np.ndarray], *,
+def find_duplicates(clip_ids: Sequence[str], audio_sha256: Sequence[str],
+                    fingerprints: tuple[np.ndarray, np.ndarray], *,
                     min_similarity: float) -> tuple[list[DuplicatePair], dict[int, str]]:
     """Near-duplicate pairs by fingerprint (``fingerprints``: values and offsets, as
     :class:`Joined` holds them) plus byte-identical pairs by audio_sha256.
@@ -340,8 +361,8 @@ def find_duplicates(rows: Sequence[Mapping[str, Any]], fingerprints: tuple[np.nd
     for i, j, sim in find_near_duplicates_flat(*fingerprints, min_similarity=min_similarity):
         best[(i, j)] = DuplicatePair(i, j, float(sim), False)
     by_hash: dict[str, list[int]] = defaultdict(list)
-    for k, row in enumerate(rows):
-        by_hash[row["audio_sha256"]].append(k)
+    for k, sha in enumerate(audio_sha256):
+        by_hash[sha].append(k)
     for members in by_hash.values():
         for j in members[1:]:
             best[(members[0], j)] = DuplicatePair(members[0], j, 1.0, True)
@@ -349,7 +370,7 @@ def find_duplicates(rows: Sequence[Mapping[str, Any]], fingerprints: tuple[np.nd
     partner: dict[int, tuple[float, str]] = {}
     for p in pairs:
         for me, other in ((p.first, p.second), (p.second, p.first)):
-            mine = (-p.similarity, rows[other]["clip_id"])
+            mine = (-p.similarity, clip_ids[other])
             if me not in partner or mine < partner[me]:
                 partner[me] = mine
     return pairs, {k: other_id for k, (_neg, other_id) in partner.items()}
@@ -357,19 +378,19 @@ def find_duplicates(rows: Sequence[Mapping[str, Any]], fingerprints: tuple[np.nd
 
 @dataclass(frozen=True)
 class GateMeasures:
-    """Per clip: speaking rate, its robust z-score, the gates that flagged it, and
-    whether it is eligible for labelled and held-out scoring."""
+    """Per clip: speaking rate, its robust z-score, the gates that flagged it (a mask
+    per gate), and whether it is eligible for labelled and held-out scoring."""
 
     speaking_rate: list[float | None]
     rate_z: list[float | None]
-    flags: list[set[str]]
-    eligible: list[bool]
+    flags: dict[str, np.ndarray]
+    eligible: np.ndarray
 
 
-def measure_gates(rows: Sequence[Mapping[str, Any]], phones: Sequence[tuple[str, ...]],
-                  transcribed: Sequence[bool], *, min_snr_db: float, min_bandwidth_hz: float,
-                  rate_max_abs_z: float, rate_min_clips: int, actions: Mapping[str, str],
-                  rate_min_spread: float = 0.0, max_clipped_fraction: float = 1.0) -> GateMeasures:
+def measure_gates(joined: Joined, phones: Sequence[tuple[str, ...]], *, min_snr_db: float,
+                  min_bandwidth_hz: float, rate_max_abs_z: float, rate_min_clips: int,
+                  actions: Mapping[str, str], rate_min_spread: float = 0.0,
+                  max_clipped_fraction: float = 1.0) -> GateMeasures:
     """Speaking rate and its robust z-score per speaker, the gate flags, and eligibility.
 
     ``speaking_rate`` is phones (word boundaries left out) per second of speech;
@@ -380,23 +401,35 @@ def measure_gates(rows: Sequence[Mapping[str, Any]], phones: Sequence[tuple[str,
     for labelled and held-out scoring when it has a transcript and no gate whose
     action (``actions``, gate to "flag", "demote" or "reject") holds it back flagged it.
     """
-    speaking = [len(p) / float(r["speech_s"]) if t and float(r["speech_s"]) > 0 else None
-                for r, p, t in zip(rows, phones, transcribed, strict=True)]
-    rates = np.array([np.nan if s is None else s for s in speaking], dtype=np.float64)
-    speakers = np.array([r["speaker"] for r in rows], dtype=object)
+    transcribed = joined.text_rows >= 0
+    speech_s = joined.numbers("speech_s")
+    n_phones = np.array([len(p) for p in phones], dtype=np.float64)
+    rated = transcribed & (speech_s > 0)
+    rates = np.full(len(phones), np.nan)
+    rates[rated] = n_phones[rated] / speech_s[rated]
+    speakers = np.array(joined.audio.column("speaker").to_pylist(), dtype=object)
     z = (gates.robust_z_scores(rates, speakers, min_group_size=rate_min_clips, min_mad_fraction=rate_min_spread)
-         if rows else np.zeros(0))
+         if len(phones) else np.zeros(0))
     flags = gates.gate_flags(
-        snr_db=[np.nan if r["snr_db"] is None else r["snr_db"] for r in rows],
-        bandwidth_hz=[np.nan if r["bandwidth_hz"] is None else r["bandwidth_hz"] for r in rows],
-        rate_z=z, clipped_fraction=[r["clipped_fraction"] for r in rows], min_snr_db=min_snr_db,
+        snr_db=joined.numbers("snr_db"), bandwidth_hz=joined.numbers("bandwidth_hz"), rate_z=z,
+        clipped_fraction=joined.numbers("clipped_fraction"), min_snr_db=min_snr_db,
         min_bandwidth_hz=min_bandwidth_hz, rate_max_abs_z=rate_max_abs_z, max_clipped_fraction=max_clipped_fraction)
-    held = gates.held_back(flags, actions=actions)
+    held = np.asarray(gates.held_back(flags, actions=actions), dtype=bool)
     return GateMeasures(
-        speaking_rate=speaking,
-        rate_z=[_finite(z[k]) for k in range(len(rows))],
-        flags=[{g for g in gates.GATES if flags[g][k]} for k in range(len(rows))],
-        eligible=[bool(t and not held[k]) for k, t in enumerate(transcribed)])
+        speaking_rate=[float(r) if ok else None for r, ok in zip(rates.tolist(), rated.tolist(), strict=True)],
+        rate_z=[_finite(v) for v in z.tolist()],
+        flags={g: np.asarray(flags[g], dtype=bool) for g in gates.GATES},
+        eligible=transcribed & ~held)
+
+
+def _flag_sets(masks: Mapping[str, np.ndarray], count: int) -> list[frozenset[str]]:
+    """Each clip's flags as a frozenset, one shared object per distinct combination."""
+    names = sorted(masks)
+    code = np.zeros(count, dtype=np.int64)
+    for bit, name in enumerate(names):
+        code |= masks[name].astype(np.int64) << bit
+    distinct = {int(c): frozenset(n for b, n in enumerate(names) if int(c) >> b & 1) for c in np.unique(code)}
+    return [distinct[c] for c in code.tolist()]
 
 
 def build_clips(joined: Joined, cfg: Config) -> tuple[list[Clip], list[DuplicatePair]]:
@@ -405,22 +438,28 @@ def build_clips(joined: Joined, cfg: Config) -> tuple[list[Clip], list[Duplicate
     Returns the clips in clip_id order and the duplicate pairs (indices into them).
     """
     qc, group_by = cfg.quality, cfg.split.group_by
-    rows, texts = joined.audio, joined.text
+    audio, texts = joined.audio, joined.texts
+    clip_ids = audio.column("clip_id").to_pylist()
+    speakers = audio.column("speaker").to_pylist()
     phones = [plain_phones(t, word_boundary=cfg.text.word_boundary) for t in texts]
-    pairs, partners = find_duplicates(rows, joined.fingerprints, min_similarity=qc.near_duplicate_min_similarity)
-    base = [{"speaker": r["speaker"], "recording": r["source_id"], "clip": r["clip_id"]}[group_by] for r in rows]
+    pairs, partners = find_duplicates(clip_ids, audio.column("audio_sha256").to_pylist(), joined.fingerprints,
+                                      min_similarity=qc.near_duplicate_min_similarity)
+    base = {"speaker": speakers, "recording": audio.column("source_id").to_pylist(), "clip": clip_ids}[group_by]
     merged = merge_groups(base, [(p.first, p.second) for p in pairs])
-    measured = measure_gates(rows, phones, [t is not None for t in texts], min_snr_db=qc.min_snr_db,
+    measured = measure_gates(joined, phones, min_snr_db=qc.min_snr_db,
                              min_bandwidth_hz=qc.min_bandwidth_hz, rate_max_abs_z=qc.rate_max_abs_z,
                              rate_min_clips=qc.rate_min_clips, rate_min_spread=qc.rate_min_spread,
                              actions=qc.gate_actions, max_clipped_fraction=cfg.audio.max_clipped_fraction)
-    clips = []
-    for k, (row, text) in enumerate(zip(rows, texts, strict=True)):
-        flags = row_flags(row, text) | measured.flags[k] | ({"near_duplicate"} if k in partners else set())
-        clips.append(Clip(audio=row, text=text, base_group=base[k], group=merged[k], flags=frozenset(flags),
-                          plain_phones=phones[k], speaking_rate=measured.speaking_rate[k],
-                          rate_z=measured.rate_z[k], near_duplicate_of=partners.get(k),
-                          eligible=measured.eligible[k]))
+    near = np.zeros(len(clip_ids), dtype=bool)
+    near[list(partners)] = True
+    flags = _flag_sets({**row_flags(joined), **measured.flags, "near_duplicate": near}, len(clip_ids))
+    columns = zip(clip_ids, speakers, audio.column("duration_s").to_pylist(),
+                  audio.column("source_path").to_pylist(), measured.eligible.tolist(), strict=True)
+    clips = [Clip(row=k, clip_id=cid, speaker=spk, duration_s=float(dur), source_path=path, text=texts[k],
+                  base_group=base[k], group=merged[k], flags=flags[k], plain_phones=phones[k],
+                  speaking_rate=measured.speaking_rate[k], rate_z=measured.rate_z[k],
+                  near_duplicate_of=partners.get(k), eligible=ok)
+             for k, (cid, spk, dur, path, ok) in enumerate(columns)]
     return clips, pairs
 
 
@@ -708,43 +747,62 @@ def assign(clips: Sequence[Clip], *, ledger: Ledger | None, seed: int, targets: 
                       demoted_labelled=demoted_labelled, facts=facts)
 
 
-def _subset_row(c: Clip, subset: str, tiers: tuple[str, ...], *, keep_text: bool, part: str | None = None,
-                unscored: bool = False, demoted: bool = False) -> dict[str, Any]:
-    """One manifest row. A demoted clip (``split.text_overlap = "demote"``) loses its
-    transcript whatever ``split.keep_transcripts`` says; an unscored one keeps it but
-    is not scorable."""
-    a = c.audio
-    text = c.text if keep_text and not demoted else None
-    flags = set(c.flags)
-    if subset == HELDOUT and not c.transcribed:
-        flags.add("heldout_untranscribed")
-    if unscored:
-        flags.add(UNSCORED)
-    if demoted:
-        flags.add(DEMOTED)
-    return {
-        **{k: a[k] for k in ("clip_id", "speaker", "audio_path", "audio_sha256", "sample_rate", "num_samples",
-                             "duration_s", "source_path", "source_start_s", "source_end_s", "loudness_lufs",
-                             "loudness_in_lufs", "speech_ratio")},
-        "group": c.group,
-        "snr_db": _finite(a["snr_db"]),
-        "bandwidth_hz": _finite(a["bandwidth_hz"]),
-        "transcript": text["transcript"] if text else None,
-        "transcript_origin": text["transcript_origin"] if text else None,
-        "norm_text": text["norm_text"] if text else None,
-        "phones": list(text["phones"]) if text else None,
-        "subset": subset,
-        "tiers": list(tiers),
-        "speaking_rate": c.speaking_rate,
-        "rate_z": c.rate_z,
-        "near_duplicate_of": c.near_duplicate_of,
-        "clipped_fraction": float(a["clipped_fraction"]),
-        "quality_flags": [f for f in FLAGS if f in flags],
+# The subset columns copied from the audio row as they are.
+_AUDIO_COLUMNS = ("clip_id", "speaker", "audio_path", "audio_sha256", "sample_rate", "num_samples", "duration_s",
+                  "source_path", "source_start_s", "source_end_s", "loudness_lufs", "loudness_in_lufs",
+                  "speech_ratio", "clipped_fraction")
+# The subset columns copied from the transcript row, when the row keeps its transcript.
+_TEXT_COLUMNS = ("transcript", "transcript_origin", "norm_text", "phones")
+
+
+def _finite_column(column: pa.ChunkedArray) -> pa.ChunkedArray:
+    """The column with NaN and infinities as nulls (a measure that could not be taken)."""
+    return pc.if_else(pc.is_finite(column), column, pa.scalar(None, column.type))
+
+
+def _subset_table(joined: Joined, clips: Sequence[Clip], subset: str, assignment: Assignment, *,
+                  keep_text: bool) -> pa.Table:
+    """One subset's manifest: the audio and transcript columns taken from the stage's
+    Arrow tables by row, the stage's own columns from the clips. A demoted clip
+    (``split.text_overlap = "demote"``) loses its transcript whatever
+    ``split.keep_transcripts`` says; an unscored one keeps it but is not scorable."""
+    schema = arrow_schema("subset")
+    rows = pa.array([c.row for c in clips], pa.int64())
+    demoted = assignment.demoted if subset == UNLABELLED else frozenset()
+    carried = [c.text is not None and keep_text and c.clip_id not in demoted for c in clips]
+    text_rows = pa.array([int(joined.text_rows[c.row]) if keep else None for c, keep in zip(clips, carried, strict=True)],
+                         pa.int64())
+    audio = joined.audio.select(list(_AUDIO_COLUMNS)).take(rows)
+    text = joined.text.select(list(_TEXT_COLUMNS)).take(text_rows)
+    columns: dict[str, Any] = {name: audio.column(name) for name in _AUDIO_COLUMNS}
+    columns.update({name: text.column(name) for name in _TEXT_COLUMNS})
+    picked = joined.audio.select(["snr_db", "bandwidth_hz"]).take(rows)
+    columns.update({name: _finite_column(picked.column(name)) for name in ("snr_db", "bandwidth_hz")})
+    extra = {UNSCORED: assignment.unscored, DEMOTED: demoted}
+    flags = []
+    for c in clips:
+        mine = set(c.flags)
+        if subset == HELDOUT and not c.transcribed:
+            mine.add("heldout_untranscribed")
+        mine.update(f for f, ids in extra.items() if c.clip_id in ids)
+        flags.append([f for f in FLAGS if f in mine])
+    columns.update({
+        "group": [c.group for c in clips],
+        "subset": [subset] * len(clips),
+        "tiers": [list(assignment.tiers.get(c.clip_id, ())) for c in clips],
+        "speaking_rate": [c.speaking_rate for c in clips],
+        "rate_z": [c.rate_z for c in clips],
+        "near_duplicate_of": [c.near_duplicate_of for c in clips],
+        "quality_flags": flags,
         # Eligible means transcribed and not held back by a gate; the row must also
         # carry its transcript and phones (unlabelled rows may drop them).
-        "scorable": bool(c.eligible and text is not None and c.plain_phones and not unscored),
-        PART: part if subset == HELDOUT else None,
-    }
+        "scorable": [bool(c.eligible and keep and c.plain_phones and c.clip_id not in assignment.unscored)
+                     for c, keep in zip(clips, carried, strict=True)],
+        PART: [assignment.parts.get(c.clip_id) if subset == HELDOUT else None for c in clips],
+    })
+    arrays = {f.name: pa.array(columns[f.name], f.type) if isinstance(columns[f.name], list)
+              else columns[f.name].cast(f.type) for f in schema}
+    return pa.table(arrays, schema=schema).combine_chunks()
 
 
 def _hours(seconds: float) -> float:
@@ -839,14 +897,15 @@ def _log_changes(ctx: StageContext, changes: dict[str, Any], ledger_path: str, u
                         "moved to unlabelled", changes["lost_transcript"])
 
 
-def _gate_rejects(clips: Sequence[Clip], cfg: Config) -> tuple[list[dict[str, Any]], list[Clip]]:
+def _gate_rejects(clips: Sequence[Clip], cfg: Config, joined: Joined) -> tuple[list[dict[str, Any]], list[Clip]]:
     """Set aside the clips that a gate whose action is "reject" flagged (the first such
     gate names the reason); their reject rows, and the clips kept."""
     qc = cfg.quality
+    snr_db, clipped = joined.numbers("snr_db"), joined.numbers("clipped_fraction")
     why = {
-        "noisy": lambda c: (f"has an estimated SNR (WADA-SNR) of {c.audio['snr_db']:.1f} dB, below "
+        "noisy": lambda c: (f"has an estimated SNR (WADA-SNR) of {float(snr_db[c.row]):.1f} dB, below "
                             f"quality.min_snr_db = {qc.min_snr_db:g}"),
-        "clipped": lambda c: (f"comes from a source with {100 * c.audio['clipped_fraction']:.3f}% of its samples at "
+        "clipped": lambda c: (f"comes from a source with {100 * float(clipped[c.row]):.3f}% of its samples at "
                               f"audio.clip_level, above audio.max_clipped_fraction = "
                               f"{100 * cfg.audio.max_clipped_fraction:g}%"),
     }
@@ -856,7 +915,7 @@ def _gate_rejects(clips: Sequence[Clip], cfg: Config) -> tuple[list[dict[str, An
         for c in clips:
             if gate in c.flags and c.clip_id not in rejected:
                 rejected.add(c.clip_id)
-                path = c.audio["source_path"]
+                path = c.source_path
                 rejects.append(reject(NAME, path, gate, f"{path}: clip {c.clip_id} {why[gate](c)}; with "
                                       f'quality.{gate}_action = "reject" {gate} clips are set aside', c.clip_id))
     return rejects, [c for c in clips if c.clip_id not in rejected]
@@ -926,17 +985,14 @@ def _open_ledger(ctx: StageContext, sources: set[str]) -> LedgerUse:
     return LedgerUse(ledger_path, where, fresh, ledger)
 
 
-def _subset_tables(ctx: StageContext, by_subset: Mapping[str, list[Clip]],
-                   assignment: Assignment) -> dict[str, tuple[str, pa.Table]]:
+def _subset_tables(ctx: StageContext, by_subset: Mapping[str, list[Clip]], assignment: Assignment,
+                   joined: Joined) -> dict[str, tuple[str, pa.Table]]:
     """The subset manifests, checked against their schema before the ledger records them
     (the runner writes them later)."""
     tables = {}
     for s in SUBSETS:
-        rows = [_subset_row(c, s, assignment.tiers.get(c.clip_id, ()),
-                            keep_text=s != UNLABELLED or ctx.config.split.keep_transcripts,
-                            part=assignment.parts.get(c.clip_id), unscored=c.clip_id in assignment.unscored,
-                            demoted=s == UNLABELLED and c.clip_id in assignment.demoted) for c in by_subset[s]]
-        tables[subset_manifest(s)] = ("subset", table_from_rows("subset", rows))
+        keep = s != UNLABELLED or ctx.config.split.keep_transcripts
+        tables[subset_manifest(s)] = ("subset", _subset_table(joined, by_subset[s], s, assignment, keep_text=keep))
     for rel, (schema, table) in tables.items():
         validate_table(schema, table, where=str(ctx.out / rel))
     return tables
@@ -969,13 +1025,12 @@ def run(ctx: StageContext) -> StageResult:
     joined = join_rows(ctx.inputs["audio"], ctx.inputs["text"])
     clips, pairs = build_clips(joined, cfg)
     orphans = joined.orphans
-    del joined
     # Clips excluded at review are set aside first: the reviewer's reason is the one recorded.
     rejects, excluded, review, review_path = split_exclusions(ctx, clips)
-    gate_rejects, kept = _gate_rejects([c for c in clips if c.clip_id not in excluded], cfg)
+    gate_rejects, kept = _gate_rejects([c for c in clips if c.clip_id not in excluded], cfg, joined)
     rejects += gate_rejects
     eligible_s, target_s, targets = _heldout_target(ctx, kept)
-    sources = {source_key(c.audio["source_id"]) for c in clips}
+    sources = {source_key(s) for s in pc.unique(joined.audio.column("source_id")).to_pylist()}
     use = _open_ledger(ctx, sources)
     ledger = use.ledger
     balance = read_balance(ctx)
@@ -985,7 +1040,7 @@ def run(ctx: StageContext) -> StageResult:
     by_subset: dict[str, list[Clip]] = {s: [] for s in SUBSETS}
     for c in kept:
         by_subset[assignment.subset[c.clip_id]].append(c)
-    tables = _subset_tables(ctx, by_subset, assignment)
+    tables = _subset_tables(ctx, by_subset, assignment, joined)
     shortfalls = _log_tiers(ctx, assignment, kept)
 
     present = {c.clip_id for c in kept}
