@@ -60,6 +60,7 @@ from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.signal.fingerprint import decode_fingerprints, find_near_duplicates_flat
 from pipeline.stages import gates
 from pipeline.stages.attributes import Attributes, read_attributes
+from pipeline.stages.duplicate_cache import near_duplicates, text_digests
 from pipeline.stages.heldout import (
     TRAINING,
     GroupFacts,
@@ -266,15 +267,18 @@ class Joined:
     text_rows: np.ndarray
     fingerprints: tuple[np.ndarray, np.ndarray]
     orphans: int
+    digests: list[bytes] | None = None
 
     def numbers(self, column: str) -> np.ndarray:
         """A numeric audio column as float64, NaN where null."""
         return self.audio.column(column).to_numpy().astype(np.float64, copy=False)
 
 
-def _decoded_fingerprints(column: pa.ChunkedArray) -> tuple[np.ndarray, np.ndarray]:
+def _decoded_fingerprints(column: pa.ChunkedArray, *, digests: bool = False
+                          ) -> tuple[tuple[np.ndarray, np.ndarray], list[bytes] | None]:
     """The fingerprint column decoded at once from its Arrow buffers (values, offsets):
-    no Python string or array per clip (245,725 clips: 16 s and two objects each before)."""
+    no Python string or array per clip (245,725 clips: 16 s and two objects each before);
+    with ``digests``, each text's digest too (:func:`duplicate_cache.text_digests`)."""
     texts = column.combine_chunks()
     if texts.null_count:
         raise DataError(f"{stage_manifest('audio')}: a clip has no fingerprint; expected one per clip")
@@ -282,7 +286,7 @@ def _decoded_fingerprints(column: pa.ChunkedArray) -> tuple[np.ndarray, np.ndarr
     width = np.int64 if pa.types.is_large_string(texts.type) else np.int32
     bounds = np.frombuffer(offsets, width)[texts.offset: texts.offset + len(texts) + 1].astype(np.int64)
     chars = np.frombuffer(data, np.uint8) if data is not None else np.zeros(0, np.uint8)
-    return decode_fingerprints(chars, bounds)
+    return decode_fingerprints(chars, bounds), (text_digests(memoryview(chars), bounds.tolist()) if digests else None)
 
 
 def _first_repeat(ids: pa.ChunkedArray) -> str | None:
@@ -294,13 +298,14 @@ def _first_repeat(ids: pa.ChunkedArray) -> str | None:
     return ids[int(hits[0]) + 1].as_py() if hits.size else None
 
 
-def join_rows(audio: pa.Table, text: pa.Table) -> Joined:
+def join_rows(audio: pa.Table, text: pa.Table, *, digests: bool = False) -> Joined:
     """Join the audio and text stages' rows by clip_id; DataError for a clip listed twice.
 
     Columnar: the audio rows stay an Arrow table; only the transcripts (a fraction of
-    the clips) become Python rows."""
+    the clips) become Python rows. With ``digests``, :attr:`Joined.digests` holds each
+    clip's fingerprint digest, for the near-duplicate cache."""
     audio = audio.sort_by("clip_id")
-    fingerprints = _decoded_fingerprints(audio.column("fingerprint"))
+    fingerprints, fingerprint_digests = _decoded_fingerprints(audio.column("fingerprint"), digests=digests)
     audio = audio.drop_columns(["fingerprint"])
     twice = _first_repeat(text.column("clip_id").sort())
     if twice is not None:
@@ -316,7 +321,7 @@ def join_rows(audio: pa.Table, text: pa.Table) -> Joined:
     by_row = text.to_pylist()
     texts = [by_row[r] if r >= 0 else None for r in text_rows.tolist()]
     orphans = len(by_row) - int(np.count_nonzero(text_rows >= 0))
-    return Joined(audio, text, texts, text_rows, fingerprints, orphans)
+    return Joined(audio, text, texts, text_rows, fingerprints, orphans, fingerprint_digests)
 
 
 def plain_phones(text: dict[str, Any] | None, *, word_boundary: str) -> tuple[str, ...]:
@@ -347,10 +352,10 @@ class DuplicatePair:
 
 
 def find_duplicates(clip_ids: Sequence[str], audio_sha256: Sequence[str],
-                    fingerprints: tuple[np.ndarray, np.ndarray], *,
-                    min_similarity: float) -> tuple[list[DuplicatePair], dict[int, str]]:
-    """Near-duplicate pairs by fingerprint (``fingerprints``: values and offsets, as
-    :class:`Joined` holds them) plus byte-identical pairs by audio_sha256.
+                    near: Iterable[tuple[int, int, float]]) -> tuple[list[DuplicatePair], dict[int, str]]:
+    """Near-duplicate pairs by fingerprint (``near``, as
+    :func:`pipeline.signal.fingerprint.find_near_duplicates_flat` gives them) plus
+    byte-identical pairs by audio_sha256.
 
     Identical clips are paired with the first (smallest id) of their kind, which is
     enough to bind them and to name the best match of each. Also returns, for every
@@ -358,7 +363,7 @@ def find_duplicates(clip_ids: Sequence[str], audio_sha256: Sequence[str],
     clip id): the clips to flag ``near_duplicate``.
     """
     best: dict[tuple[int, int], DuplicatePair] = {}
-    for i, j, sim in find_near_duplicates_flat(*fingerprints, min_similarity=min_similarity):
+    for i, j, sim in near:
         best[(i, j)] = DuplicatePair(i, j, float(sim), False)
     by_hash: dict[str, list[int]] = defaultdict(list)
     for k, sha in enumerate(audio_sha256):
@@ -432,18 +437,22 @@ def _flag_sets(masks: Mapping[str, np.ndarray], count: int) -> list[frozenset[st
     return [distinct[c] for c in code.tolist()]
 
 
-def build_clips(joined: Joined, cfg: Config) -> tuple[list[Clip], list[DuplicatePair]]:
+def build_clips(joined: Joined, cfg: Config, *, near: Iterable[tuple[int, int, float]] | None = None
+                ) -> tuple[list[Clip], list[DuplicatePair]]:
     """Every joined row as a Clip: groups bound by duplicates, gate measures and flags.
 
-    Returns the clips in clip_id order and the duplicate pairs (indices into them).
+    ``near`` holds the near-duplicate pairs when the caller searched already (through
+    the cache of :mod:`pipeline.stages.duplicate_cache`). Returns the clips in clip_id
+    order and the duplicate pairs (indices into them).
     """
     qc, group_by = cfg.quality, cfg.split.group_by
     audio, texts = joined.audio, joined.texts
     clip_ids = audio.column("clip_id").to_pylist()
     speakers = audio.column("speaker").to_pylist()
     phones = [plain_phones(t, word_boundary=cfg.text.word_boundary) for t in texts]
-    pairs, partners = find_duplicates(clip_ids, audio.column("audio_sha256").to_pylist(), joined.fingerprints,
-                                      min_similarity=qc.near_duplicate_min_similarity)
+    if near is None:
+        near = find_near_duplicates_flat(*joined.fingerprints, min_similarity=qc.near_duplicate_min_similarity)
+    pairs, partners = find_duplicates(clip_ids, audio.column("audio_sha256").to_pylist(), near)
     base = {"speaker": speakers, "recording": audio.column("source_id").to_pylist(), "clip": clip_ids}[group_by]
     merged = merge_groups(base, [(p.first, p.second) for p in pairs])
     measured = measure_gates(joined, phones, min_snr_db=qc.min_snr_db,
@@ -1022,8 +1031,10 @@ def run(ctx: StageContext) -> StageResult:
     cfg = ctx.config
     sc = cfg.split
     budgets = _budgets(sc.labelled_budgets)
-    joined = join_rows(ctx.inputs["audio"], ctx.inputs["text"])
-    clips, pairs = build_clips(joined, cfg)
+    joined = join_rows(ctx.inputs["audio"], ctx.inputs["text"], digests=ctx.use_cache)
+    near = near_duplicates(ctx, joined.audio.column("clip_id"), joined.digests, joined.fingerprints,
+                           min_similarity=cfg.quality.near_duplicate_min_similarity, log=ctx.log)
+    clips, pairs = build_clips(joined, cfg, near=near)
     orphans = joined.orphans
     # Clips excluded at review are set aside first: the reviewer's reason is the one recorded.
     rejects, excluded, review, review_path = split_exclusions(ctx, clips)

@@ -1,0 +1,206 @@
+"""Near-duplicate search after clips were added to a corpus already searched.
+
+:func:`search_pairs` is :func:`pipeline.signal.fingerprint.find_near_duplicates_flat`
+that also returns, for each pair found, how many candidate keys its two clips share.
+:func:`search_added` gives the same pairs as a search of the whole corpus when clips
+were only added since an earlier search whose pairs (and their shared keys) are kept,
+touching only the sub-fingerprints equal to a key of a new clip.
+
+Why the earlier pairs need only a count. Candidates share at least ``min_shared_keys``
+keys, each held by 2 to ``max_clips_per_key`` clips (see
+:func:`~pipeline.signal.fingerprint.find_near_duplicates`). Adding clips only raises
+the number of clips holding a key, and only for keys a new clip holds. So a pair of two
+earlier clips can never become a candidate (a key that reached two holders through a
+new clip has one earlier holder), and it stops being one only when keys it shares go
+over the cap; its similarity does not change. Every pair with a new clip shares only
+keys of that new clip. Both follow from the keys of the new clips alone.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from pipeline.signal.fingerprint import (
+    DEFAULT_MAX_CLIPS_PER_KEY,
+    DEFAULT_MAX_OFFSET_FRAMES,
+    DEFAULT_MIN_OVERLAP_FRAMES,
+    _candidate_pairs,
+    _sorted_distinct,
+    check_search_parameters,
+    fingerprint_similarity,
+)
+
+__all__ = ["Pairs", "search_added", "search_pairs"]
+
+
+@dataclass(frozen=True)
+class Pairs:
+    """Pairs found: clip indices ``first < second``, similarity, and the distinct keys
+    (held by 2 to ``max_clips_per_key`` clips) the two clips share; sorted by
+    ``(first, second)``."""
+
+    first: np.ndarray
+    second: np.ndarray
+    similarity: np.ndarray
+    shared: np.ndarray
+
+    def as_list(self) -> list[tuple[int, int, float]]:
+        return list(zip(self.first.tolist(), self.second.tolist(), self.similarity.tolist(), strict=True))
+
+
+def _verified(values: np.ndarray, offsets: np.ndarray, codes: np.ndarray, shared: np.ndarray, *,
+              min_similarity: float, max_offset_frames: int, min_overlap_frames: int) -> Pairs:
+    """The candidate pairs (codes ``i * n + j``) whose similarity reaches ``min_similarity``."""
+    n = max(len(offsets) - 1, 1)
+    first, second = np.divmod(codes, n)
+    sims = np.array([fingerprint_similarity(values[offsets[i]:offsets[i + 1]], values[offsets[j]:offsets[j + 1]],
+                                            max_offset_frames=max_offset_frames,
+                                            min_overlap_frames=min_overlap_frames)
+                     for i, j in zip(first.tolist(), second.tolist(), strict=True)], dtype=np.float64)
+    keep = sims >= min_similarity if sims.size else np.zeros(0, bool)
+    return Pairs(first[keep].astype(np.int64), second[keep].astype(np.int64), sims[keep],
+                 shared[keep].astype(np.int64))
+
+
+def search_pairs(values: np.ndarray, offsets: np.ndarray, *, min_similarity: float,
+                 max_offset_frames: int = DEFAULT_MAX_OFFSET_FRAMES,
+                 min_overlap_frames: int = DEFAULT_MIN_OVERLAP_FRAMES,
+                 max_clips_per_key: int = DEFAULT_MAX_CLIPS_PER_KEY, min_shared_keys: int = 2) -> Pairs:
+    """:func:`~pipeline.signal.fingerprint.find_near_duplicates_flat` with each pair's shared keys.
+
+    Examples
+    --------
+    >>> fp = np.random.default_rng(0).integers(1, 2**32, size=200, dtype=np.uint32)
+    >>> other = np.random.default_rng(1).integers(1, 2**32, size=200, dtype=np.uint32)
+    >>> found = search_pairs(np.concatenate([fp, other, fp]), np.array([0, 200, 400, 600]), min_similarity=0.85)
+    >>> found.as_list(), found.shared.tolist()
+    ([(0, 2, 1.0)], [200])
+    """
+    check_search_parameters(min_similarity=min_similarity, max_clips_per_key=max_clips_per_key,
+                            min_shared_keys=min_shared_keys)
+    values = np.asarray(values, dtype=np.uint32)
+    offsets = np.asarray(offsets, dtype=np.int64)
+    codes, shared = _candidate_pairs(values, offsets, max_clips_per_key=max_clips_per_key,
+                                     min_shared_keys=min_shared_keys, with_shared=True)
+    return _verified(values, offsets, codes, shared, min_similarity=min_similarity,
+                     max_offset_frames=max_offset_frames, min_overlap_frames=min_overlap_frames)
+
+
+# Slots of the filter that finds the sub-fingerprints equal to a new clip's key (16 MB):
+# a few million keys fill a small share, so few values reach the exact lookup.
+_FILTER_BITS = 24
+_BLOCK_VALUES = 1 << 22
+
+
+def _positions_of(values: np.ndarray, keys: np.ndarray) -> np.ndarray:
+    """Positions in ``values`` of the values in ``keys`` (sorted, distinct), ascending.
+
+    A Fibonacci-hashing filter over all values, a block at a time, then an exact
+    binary search for the values that pass it."""
+    def slot(v: np.ndarray) -> np.ndarray:
+        return (v * np.uint32(2654435769)) >> np.uint32(32 - _FILTER_BITS)
+
+    table = np.zeros(1 << _FILTER_BITS, dtype=bool)
+    table[slot(keys)] = True
+    found = []
+    for start in range(0, values.size, _BLOCK_VALUES):
+        block = values[start:start + _BLOCK_VALUES]
+        maybe = np.flatnonzero(table[slot(block)])
+        seen = block[maybe]
+        at = np.minimum(np.searchsorted(keys, seen), keys.size - 1)
+        found.append(maybe[keys[at] == seen] + start)
+    return np.concatenate(found) if found else np.zeros(0, np.int64)
+
+
+def search_added(values: np.ndarray, offsets: np.ndarray, added: np.ndarray, earlier: Pairs, *,
+                 min_similarity: float, max_offset_frames: int = DEFAULT_MAX_OFFSET_FRAMES,
+                 min_overlap_frames: int = DEFAULT_MIN_OVERLAP_FRAMES,
+                 max_clips_per_key: int = DEFAULT_MAX_CLIPS_PER_KEY, min_shared_keys: int = 2) -> Pairs:
+    """:func:`search_pairs` of a corpus whose clips ``~added`` were searched before.
+
+    Parameters
+    ----------
+    values, offsets : np.ndarray
+        Every clip's sub-fingerprints one after the other (clip ``k`` is
+        ``values[offsets[k]:offsets[k + 1]]``), the earlier clips unchanged.
+    added : np.ndarray
+        ``bool`` per clip: added since the earlier search.
+    earlier : Pairs
+        What :func:`search_pairs` found among the earlier clips, with the same
+        parameters, as indices into this corpus.
+    min_similarity, max_offset_frames, min_overlap_frames, max_clips_per_key, min_shared_keys
+        As for :func:`search_pairs`.
+
+    Returns
+    -------
+    Pairs
+        Equal to ``search_pairs(values, offsets, ...)`` (see the module docstring).
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> fps = [rng.integers(1, 2**32, size=200, dtype=np.uint32) for _ in range(3)]
+    >>> fps.append(fps[0].copy())
+    >>> values, offsets = np.concatenate(fps), np.arange(0, 801, 200)
+    >>> before = search_pairs(values[:600], offsets[:4], min_similarity=0.85)
+    >>> search_added(values, offsets, np.array([False, False, False, True]), before,
+    ...              min_similarity=0.85).as_list()
+    [(0, 3, 1.0)]
+    """
+    check_search_parameters(min_similarity=min_similarity, max_clips_per_key=max_clips_per_key,
+                            min_shared_keys=min_shared_keys)
+    values = np.asarray(values, dtype=np.uint32)
+    offsets = np.asarray(offsets, dtype=np.int64)
+    added = np.asarray(added, dtype=bool)
+    fresh = values[np.repeat(added, np.diff(offsets))]
+    keys = _sorted_distinct(fresh[fresh != 0])
+    hits = _positions_of(values, keys) if keys.size else np.zeros(0, np.int64)
+    clips = np.searchsorted(offsets, hits, side="right") - 1
+    codes = _sorted_distinct((values[hits].astype(np.uint64) << np.uint64(32)) | clips.astype(np.uint64))
+    key_of, clip_of = codes >> np.uint64(32), (codes & np.uint64(0xFFFFFFFF)).astype(np.int64)
+    starts = np.flatnonzero(np.r_[True, key_of[1:] != key_of[:-1]]) if codes.size else np.zeros(0, np.int64)
+    holders = np.diff(np.r_[starts, codes.size])
+    new_holders = np.add.reduceat(added[clip_of].astype(np.int64), starts) if codes.size else np.zeros(0, np.int64)
+    # Pairs with a new clip: from the keys still under the cap.
+    n = np.int64(len(offsets) - 1)
+    pair_codes = []
+    for size in np.unique(holders[(holders >= 2) & (holders <= max_clips_per_key)]):
+        members = clip_of[starts[holders == size][:, None] + np.arange(size)]
+        left, right = np.triu_indices(int(size), k=1)
+        a, b = members[:, left].ravel(), members[:, right].ravel()
+        touch = added[a] | added[b]
+        pair_codes.append(a[touch] * n + b[touch])
+    fresh_codes = np.concatenate(pair_codes) if pair_codes else np.zeros(0, np.int64)
+    fresh_codes.sort()
+    first = np.flatnonzero(np.r_[True, fresh_codes[1:] != fresh_codes[:-1]]) if fresh_codes.size else fresh_codes
+    shared = np.diff(np.r_[first, fresh_codes.size])
+    wanted = shared >= min_shared_keys
+    found = _verified(values, offsets, fresh_codes[first[wanted]], shared[wanted], min_similarity=min_similarity,
+                      max_offset_frames=max_offset_frames, min_overlap_frames=min_overlap_frames)
+    kept = _still_candidates(earlier, key_of, clip_of, starts, holders, holders - new_holders,
+                             max_clips_per_key=max_clips_per_key, min_shared_keys=min_shared_keys)
+    order = np.lexsort((np.r_[kept.second, found.second], np.r_[kept.first, found.first]))
+    return Pairs(*(np.r_[getattr(kept, f), getattr(found, f)][order] for f in ("first", "second", "similarity",
+                                                                                "shared")))
+
+
+def _still_candidates(earlier: Pairs, key_of: np.ndarray, clip_of: np.ndarray, starts: np.ndarray,
+                      holders: np.ndarray, old_holders: np.ndarray, *, max_clips_per_key: int,
+                      min_shared_keys: int) -> Pairs:
+    """The earlier pairs that stay candidates: their shared keys less those the new
+    clips took over the cap."""
+    crossed = (old_holders >= 2) & (old_holders <= max_clips_per_key) & (holders > max_clips_per_key)
+    lost: dict[int, set[int]] = {}
+    involved = set(earlier.first.tolist()) | set(earlier.second.tolist())
+    for k in np.flatnonzero(crossed).tolist():
+        for clip in clip_of[starts[k]:starts[k] + holders[k]].tolist():
+            if clip in involved:
+                lost.setdefault(clip, set()).add(k)
+    shared = earlier.shared.copy()
+    for p, (i, j) in enumerate(zip(earlier.first.tolist(), earlier.second.tolist(), strict=True)):
+        if i in lost and j in lost:
+            shared[p] -= len(lost[i] & lost[j])
+    keep = shared >= min_shared_keys
+    return Pairs(earlier.first[keep], earlier.second[keep], earlier.similarity[keep], shared[keep])

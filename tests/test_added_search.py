@@ -1,0 +1,68 @@
+"""The search after clips were added equals a search of the whole corpus.
+
+The reference is :func:`pipeline.signal.fingerprint.find_near_duplicates_flat` (itself
+tested against a per-clip search in tests/test_fingerprint.py). Small alphabets make
+keys shared by many clips, so adding clips takes keys over the cap and unmakes
+earlier candidates, the case the shared-key counts are kept for.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from pipeline.signal.added_search import Pairs, search_added, search_pairs
+from pipeline.signal.fingerprint import find_near_duplicates_flat
+
+
+def _corpus(rng: np.random.Generator, clips: int, alphabet: int) -> list[np.ndarray]:
+    symbols = np.concatenate([[0], rng.integers(1, 2**32, size=alphabet, dtype=np.uint32)])
+    fps = [symbols[rng.integers(0, symbols.size, size=int(rng.integers(0, 40)))] for _ in range(clips)]
+    for k in rng.choice(clips, size=clips // 4, replace=False):  # copies with a few bits flipped
+        copy = fps[int(rng.integers(0, clips))].copy()
+        flip = rng.random(copy.size) < 0.3
+        copy[flip] ^= np.uint32(1) << rng.integers(0, 32, size=int(flip.sum())).astype(np.uint32)
+        fps[k] = copy
+    return fps
+
+
+def _flat(fps: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    offsets = np.r_[0, np.cumsum([fp.size for fp in fps])].astype(np.int64)
+    return (np.concatenate(fps) if fps else np.zeros(0, np.uint32)).astype(np.uint32), offsets
+
+
+def _in(earlier: Pairs, index: np.ndarray) -> Pairs:
+    """Earlier pairs renumbered into the grown corpus."""
+    return Pairs(index[earlier.first], index[earlier.second], earlier.similarity, earlier.shared)
+
+
+@pytest.mark.parametrize("seed", range(12))
+def test_search_after_adding_equals_searching_everything(seed: int) -> None:
+    rng = np.random.default_rng(seed)
+    alphabet = int(rng.choice([6, 20, 200]))
+    cap = int(rng.choice([2, 3, 5, 64]))
+    shared = int(rng.choice([1, 2, 3]))
+    similarity = float(rng.choice([0.55, 0.7, 0.9]))
+    fps = _corpus(rng, int(rng.integers(2, 60)), alphabet)
+    added = rng.random(len(fps)) < rng.choice([0.05, 0.3, 0.9])
+    params = {"min_similarity": similarity, "max_clips_per_key": cap, "min_shared_keys": shared}
+    old_values, old_offsets = _flat([fp for fp, new in zip(fps, added, strict=True) if not new])
+    earlier = search_pairs(old_values, old_offsets, **params)
+    values, offsets = _flat(fps)
+    got = search_added(values, offsets, added, _in(earlier, np.flatnonzero(~added)), **params)
+    full = search_pairs(values, offsets, **params)
+    assert got.as_list() == full.as_list() == find_near_duplicates_flat(values, offsets, **params)
+    assert got.shared.tolist() == full.shared.tolist()
+
+
+def test_keys_taken_over_the_cap_unmake_earlier_pairs() -> None:
+    """Two clips share exactly two keys; a new clip holding one of them takes it over a
+    cap of 2, so the pair has one key left and is no candidate any more."""
+    a, b, c = np.uint32(0x12345678), np.uint32(0x9ABCDEF0), np.uint32(0x0F0F0F0F)
+    old = [np.array([a, b, c], np.uint32), np.array([a, b, c], np.uint32)]
+    params = {"min_similarity": 0.5, "max_clips_per_key": 2, "min_shared_keys": 2}
+    earlier = search_pairs(*_flat(old), **params)
+    assert earlier.as_list() == [(0, 1, 1.0)] and earlier.shared.tolist() == [3]
+    grown = [*old, np.array([a, b, np.uint32(7)], np.uint32)]
+    got = search_added(*_flat(grown), np.array([False, False, True]), earlier, **params)
+    assert got.as_list() == search_pairs(*_flat(grown), **params).as_list() == []
