@@ -9,6 +9,8 @@ Measures, on one generated dump:
   processing, per existing source: ``(rebuild - cold * new / all) / existing``, the cold
   run's cost per source standing for a new file's own processing;
 - the no-change rerun of the grown dump;
+- the split stage alone on generated stage manifests (``bench/bench_split.py``): cold
+  CPU seconds and peak memory, and a rebuild's CPU per existing source;
 - with ``--cluster`` the cold run is on a dask LocalCluster of two single-threaded
   worker processes (``--scheduler``), with the driver's peak memory; the runs after it
   are local and reuse its caches (the first is a full run that reuses every stage).
@@ -30,6 +32,7 @@ REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
 from bench.bench_outputs import output_figures  # noqa: E402
+from bench.bench_split import split_figures  # noqa: E402
 from bench.run import measured  # noqa: E402
 from bench.scale_workload import Spec, make_scale_workload  # noqa: E402
 
@@ -108,6 +111,8 @@ def main() -> int:
     rerun_grown = prepare(grown, out, args.workers)
     shutil.rmtree(grown, ignore_errors=True)
     results["outputs"] = output_figures(out)  # validate --manifests-only and report on the grown build
+    # The split stage alone on stage manifests generated directly (its CPU and peak memory).
+    results["split_alone"] = split_figures(work / f"split-manifests-{args.sources}", sources=args.sources)
     total, new = int(facts["sources"]) + int(facts["extra_sources"]), int(facts["extra_sources"])
     beyond = rebuild["wall_s"] - cold["wall_s"] * new / total
     results.update(cold=cold, rerun=rerun, rebuild_1pct=rebuild, rerun_after_rebuild=rerun_grown,
@@ -146,6 +151,13 @@ def print_table(r: dict) -> None:
                      + ("met" if o["validate_rows_per_s_subsets"] >= 100_000 else "MISSED")))
         rows.append(("loam report (s)", f"{o['report_s']:.2f}",
                      "target < 30 s: " + ("met" if o["report_s"] < 30 else "MISSED")))
+    if "split_alone" in r:
+        s = r["split_alone"]
+        for key, label in (("cold", "split alone, cold"), ("rebuild", "split alone, rebuild +1 %")):
+            ok = s[key]["peak_rss_mb"] < 2048
+            rows.append((f"{label} (CPU s)", f"{s[key]['cpu_s']:.2f}", f"{s[key]['clips']} clips, peak RSS "
+                         f"{s[key]['peak_rss_mb']:.0f} MB, target < 2048: {'met' if ok else 'MISSED'}"))
+        rows.append(("split alone, rebuild (us/existing source)", f"{s['rebuild_us_per_existing_source']:.1f}", ""))
     per = r["rebuild_us_per_existing_source"]
     rows.append(("rebuild beyond the new files (us/existing source)", f"{per:.1f}",
                  f"target <= 20: {'met' if per <= 20 else 'MISSED'}"))

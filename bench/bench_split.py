@@ -12,7 +12,8 @@ clip's fingerprint a few frames later with 3 % of its bits flipped (a re-encoded
 and 0.3 % are byte-identical copies. Transcripts read two or three words of a
 128-word vocabulary, so prompts repeat as in a read-speech corpus.
 
-Each measurement runs ``pipeline.stages.split.run`` in a fresh process and reads its
+Each measurement reads the manifests as the runner does (``read_manifest``), runs
+``pipeline.stages.split.run`` in a fresh process and reads its
 ``ru_maxrss`` and CPU seconds (user + system; on a shared machine they move far less
 than wall time). The rebuild adds ``--extra-share`` new sources to the same manifests
 and runs again with the ledger the cold run wrote; its cost per existing source is its
@@ -158,11 +159,12 @@ def prepare(folder: Path, *, sources: int, extra_share: float) -> dict[str, int]
 def run_once(folder: Path, *, grown: bool, fresh: bool, keep: str = "") -> dict[str, float]:
     """Run the split stage in this process on the folder's manifests; CPU seconds and peak RSS."""
     from pipeline.core.config import build_config
+    from pipeline.core.manifest import read_manifest
     from pipeline.core.stage import StageContext
     from pipeline.stages import split
 
     suffix = "_grown" if grown else ""
-    inputs = {name: pq.read_table(folder / f"{name}{suffix}.parquet") for name in ("audio", "text")}
+    inputs = {name: read_manifest(folder / f"{name}{suffix}.parquet") for name in ("audio", "text")}
     cfg = build_config({"split": {"ledger": str(folder / "out" / "ledger.tsv")}})
     (folder / "out").mkdir(exist_ok=True)
     log = logging.getLogger("bench-split")

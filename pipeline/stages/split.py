@@ -351,7 +351,7 @@ class DuplicatePair:
     identical: bool
 
 
-def find_duplicates(clip_ids: Sequence[str], audio_sha256: Sequence[str],
+def find_duplicates(clip_ids: Sequence[str], audio_sha256: pa.ChunkedArray | pa.Array,
                     near: Iterable[tuple[int, int, float]]) -> tuple[list[DuplicatePair], dict[int, str]]:
     """Near-duplicate pairs by fingerprint (``near``, as
     :func:`pipeline.signal.fingerprint.find_near_duplicates_flat` gives them) plus
@@ -365,12 +365,12 @@ def find_duplicates(clip_ids: Sequence[str], audio_sha256: Sequence[str],
     best: dict[tuple[int, int], DuplicatePair] = {}
     for i, j, sim in near:
         best[(i, j)] = DuplicatePair(i, j, float(sim), False)
-    by_hash: dict[str, list[int]] = defaultdict(list)
-    for k, sha in enumerate(audio_sha256):
-        by_hash[sha].append(k)
-    for members in by_hash.values():
-        for j in members[1:]:
-            best[(members[0], j)] = DuplicatePair(members[0], j, 1.0, True)
+    # Each clip whose audio_sha256 an earlier clip has pairs with the first of them.
+    kinds = pc.index_in(audio_sha256, value_set=pc.unique(audio_sha256)).to_numpy(zero_copy_only=False)
+    _, first_of_kind = np.unique(kinds, return_index=True)
+    firsts = first_of_kind[kinds]
+    for j in np.flatnonzero(firsts != np.arange(len(kinds))).tolist():
+        best[(int(firsts[j]), j)] = DuplicatePair(int(firsts[j]), j, 1.0, True)
     pairs = [best[k] for k in sorted(best)]
     partner: dict[int, tuple[float, str]] = {}
     for p in pairs:
@@ -452,7 +452,7 @@ def build_clips(joined: Joined, cfg: Config, *, near: Iterable[tuple[int, int, f
     phones = [plain_phones(t, word_boundary=cfg.text.word_boundary) for t in texts]
     if near is None:
         near = find_near_duplicates_flat(*joined.fingerprints, min_similarity=qc.near_duplicate_min_similarity)
-    pairs, partners = find_duplicates(clip_ids, audio.column("audio_sha256").to_pylist(), near)
+    pairs, partners = find_duplicates(clip_ids, audio.column("audio_sha256"), near)
     base = {"speaker": speakers, "recording": audio.column("source_id").to_pylist(), "clip": clip_ids}[group_by]
     merged = merge_groups(base, [(p.first, p.second) for p in pairs])
     measured = measure_gates(joined, phones, min_snr_db=qc.min_snr_db,
@@ -819,7 +819,7 @@ def _hours(seconds: float) -> float:
 
 
 def _describe(clips: Sequence[Clip], inventory: set[str]) -> dict[str, Any]:
-    phones = set().union(*(set(c.plain_phones) for c in clips)) if clips else set()
+    phones = set().union(*(c.plain_phones for c in clips if c.plain_phones))
     seconds = math.fsum(c.duration_s for c in clips)
     return {
         "clips": len(clips),
@@ -1156,7 +1156,7 @@ def _gone_record(rec: ClipRecord, budgets: tuple[str, ...], continues: Mapping[s
 def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment, pairs: Sequence[DuplicatePair],
              by_subset: Mapping[str, list[Clip]], *, target_s: float, eligible_s: float, group_by: str,
              orphans: int, rejected: dict[str, int]) -> dict[str, Any]:
-    inventory = set().union(*(set(c.plain_phones) for c in kept if c.transcribed)) if kept else set()
+    inventory = set().union(*(c.plain_phones for c in kept if c.plain_phones))
     subsets = {s: _describe(by_subset[s], inventory) for s in SUBSETS}
     scored = [c for c in by_subset[HELDOUT] if c.eligible and c.clip_id not in assignment.unscored]
     subsets[HELDOUT]["scored_clips"] = len(scored)
