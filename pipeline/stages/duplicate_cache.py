@@ -30,15 +30,15 @@ _PAIRS = pa.schema([("first", pa.int64()), ("second", pa.int64()), ("similarity"
                     ("shared", pa.int64())])
 
 
-def text_digests(chars: memoryview, bounds: Sequence[int]) -> list[bytes]:
-    """SHA-256 (first 16 bytes) of each text ``chars[bounds[k]:bounds[k + 1]]``.
+def text_digests(chars: memoryview, starts: Sequence[int], ends: Sequence[int]) -> list[bytes]:
+    """SHA-256 (first 16 bytes) of each text ``chars[starts[k]:ends[k]]``.
 
     Examples
     --------
-    >>> [d.hex() for d in text_digests(memoryview(b"abc"), [0, 3])]
+    >>> [d.hex() for d in text_digests(memoryview(b"abc"), [0], [3])]
     ['ba7816bf8f01cfea414140de5dae2223']
     """
-    return [hashlib.sha256(chars[a:b]).digest()[:16] for a, b in zip(bounds[:-1], bounds[1:], strict=True)]
+    return [hashlib.sha256(chars[a:b]).digest()[:16] for a, b in zip(starts, ends, strict=True)]
 
 
 def _clips_digest(ids: Sequence[str], digests: Sequence[bytes]) -> str:

@@ -274,11 +274,12 @@ class Joined:
         return self.audio.column(column).to_numpy().astype(np.float64, copy=False)
 
 
-def _decoded_fingerprints(column: pa.ChunkedArray, *, digests: bool = False
+def _decoded_fingerprints(column: pa.ChunkedArray, order: np.ndarray, *, digests: bool = False
                           ) -> tuple[tuple[np.ndarray, np.ndarray], list[bytes] | None]:
-    """The fingerprint column decoded at once from its Arrow buffers (values, offsets):
-    no Python string or array per clip (245,725 clips: 16 s and two objects each before);
-    with ``digests``, each text's digest too (:func:`duplicate_cache.text_digests`)."""
+    """The fingerprint column decoded at once from its Arrow buffers (values, offsets) in
+    the row order ``order``: no Python string or array per clip (245,725 clips: 16 s and
+    two objects each before), no sorted copy of the texts; with ``digests``, each text's
+    digest too (:func:`duplicate_cache.text_digests`), in the same order."""
     texts = column.combine_chunks()
     if texts.null_count:
         raise DataError(f"{stage_manifest('audio')}: a clip has no fingerprint; expected one per clip")
@@ -286,7 +287,8 @@ def _decoded_fingerprints(column: pa.ChunkedArray, *, digests: bool = False
     width = np.int64 if pa.types.is_large_string(texts.type) else np.int32
     bounds = np.frombuffer(offsets, width)[texts.offset: texts.offset + len(texts) + 1].astype(np.int64)
     chars = np.frombuffer(data, np.uint8) if data is not None else np.zeros(0, np.uint8)
-    return decode_fingerprints(chars, bounds), (text_digests(memoryview(chars), bounds.tolist()) if digests else None)
+    found = text_digests(memoryview(chars), bounds[:-1][order].tolist(), bounds[1:][order].tolist()) if digests else None
+    return decode_fingerprints(chars, bounds, order=order), found
 
 
 def _first_repeat(ids: pa.ChunkedArray) -> str | None:
@@ -304,9 +306,12 @@ def join_rows(audio: pa.Table, text: pa.Table, *, digests: bool = False) -> Join
     Columnar: the audio rows stay an Arrow table; only the transcripts (a fraction of
     the clips) become Python rows. With ``digests``, :attr:`Joined.digests` holds each
     clip's fingerprint digest, for the near-duplicate cache."""
-    audio = audio.sort_by("clip_id")
-    fingerprints, fingerprint_digests = _decoded_fingerprints(audio.column("fingerprint"), digests=digests)
-    audio = audio.drop_columns(["fingerprint"])
+    # Sorted without the fingerprints, which are decoded in sorted order from the
+    # input's own buffers (a sorted copy of them peaked 0.5 GB higher at 233,161 clips).
+    order = pc.sort_indices(audio, sort_keys=[("clip_id", "ascending")])
+    fingerprints, fingerprint_digests = _decoded_fingerprints(audio.column("fingerprint"), order.to_numpy(),
+                                                              digests=digests)
+    audio = audio.drop_columns(["fingerprint"]).take(order)
     twice = _first_repeat(text.column("clip_id").sort())
     if twice is not None:
         raise DataError(f"{stage_manifest('text')}: clip {twice} has two transcript rows; expected one")
