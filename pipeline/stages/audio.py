@@ -35,7 +35,12 @@ from pipeline.core import names
 from pipeline.core.codeversion import code_version
 from pipeline.core.config import AudioConfig
 from pipeline.core.errors import ParameterError
-from pipeline.core.fsio import remove_stale_temporaries, sha256_bytes, write_bytes_atomic
+from pipeline.core.fsio import (
+    remove_stale_temporaries,
+    sha256_bytes,
+    sync_file_system,
+    write_bytes_atomic,
+)
 from pipeline.core.manifest import ManifestBuilder
 from pipeline.core.names import stage_manifest
 from pipeline.core.parallel import each_result
@@ -80,6 +85,11 @@ class AudioJob:
     # (pipeline.stages.alignment), or None and why not.
     voice: str | None = None
     no_voice: str = ""
+    # Whether each clip is flushed to disk before its rename. A local run writes them
+    # without and flushes OUT's file system once before the manifest names them
+    # (``fsio.sync_file_system`` in ``run``); a cluster's workers may write through
+    # another host's cache, which the driver cannot flush, so they flush each clip.
+    durable: bool = True
 
 
 @dataclass
@@ -643,8 +653,7 @@ def _encode_and_write(job: AudioJob, pcm: np.ndarray, placed: dict[str, Any]) ->
     encoded = io.BytesIO()
     sf.write(encoded, pcm, cfg.sample_rate, format=OUTPUT_FORMATS[cfg.format], subtype="PCM_16")
     data = encoded.getvalue()
-    write_bytes_atomic(target, data)
-    st = os.stat(target)
+    st = write_bytes_atomic(target, data, durable=job.durable)
     return audio_path, data, [st.st_size, st.st_mtime_ns, st.st_ino]
 
 
@@ -821,8 +830,9 @@ def run(ctx: StageContext) -> StageResult:
     todo, rejects_at = cache.reuse(keys, out=out, builder=builder)
     sources = ingest.take(todo).to_pylist() if todo else []
     real = _real_paths(ctx, out)
+    local = not ctx.scheduler
     jobs = [AudioJob(row, str(raw / real.get(row["source_path"], row["source_path"])), str(out), str(out / TMP_DIR),
-                     cfg, *voices.get(row["source_id"], (None, ""))) for row in sources]
+                     cfg, *voices.get(row["source_id"], (None, "")), durable=not local) for row in sources]
     if jobs:
         warm_up(cfg)
 
@@ -839,6 +849,11 @@ def run(ctx: StageContext) -> StageResult:
                 desc="audio", progress=ctx.progress,
                 costs=[row["num_frames"] * row["channels"] for row in sources],
                 meanwhile=ctx.meanwhile, on_crash=lambda j, how: crashed_outcome(jobs[j], how))
+    if local:
+        # The clips were written without an fsync each: one flush makes them durable
+        # before the manifest that names them is written (reused ones too, which a run
+        # stopped before its flush may have left in the cache).
+        sync_file_system(out)
     cache.save()
     ctx.log.info("audio: %d files processed, %d reused from cache", len(todo), len(keys) - len(todo))
 
