@@ -14,11 +14,14 @@ import os
 import tempfile
 from collections.abc import Iterator
 from pathlib import Path
-from typing import BinaryIO
+from typing import TYPE_CHECKING, BinaryIO
 
 import numpy as np
 
 from pipeline.core.errors import ParameterError
+
+if TYPE_CHECKING:
+    import soundfile
 
 BLOCK_FRAMES = 1 << 16
 # Samples per decoded block, all channels together: a header claiming 1,024 channels
@@ -29,7 +32,8 @@ RESAMPLE_QUALITIES = ("QQ", "LQ", "MQ", "HQ", "VHQ")
 PCM16_SCALE = 32768.0
 
 
-def read_blocks(path: str | os.PathLike[str] | BinaryIO, *, block_frames: int = BLOCK_FRAMES) -> Iterator[np.ndarray]:
+def read_blocks(path: str | os.PathLike[str] | BinaryIO | soundfile.SoundFile, *,
+                block_frames: int = BLOCK_FRAMES) -> Iterator[np.ndarray]:
     """Decode a sound file as float32 blocks of shape (frames, channels).
 
     Reading stops at the first short block: the end of what the decoder can give,
@@ -40,7 +44,8 @@ def read_blocks(path: str | os.PathLike[str] | BinaryIO, *, block_frames: int = 
 
     Parameters
     ----------
-    path : the file to read (never written).
+    path : the file to read (never written), or a ``soundfile.SoundFile`` open for
+        reading, read from its current position and left open.
     block_frames : at most this many frames per block; the last block may be shorter.
 
     Returns
@@ -60,18 +65,26 @@ def read_blocks(path: str | os.PathLike[str] | BinaryIO, *, block_frames: int = 
 
     if block_frames < 1:
         raise ParameterError(f"block_frames={block_frames} must be at least 1")
+    if isinstance(path, sf.SoundFile):
+        # Already open (the caller read its header): read on from where it stands.
+        yield from _blocks(path, block_frames)
+        return
     source = path if hasattr(path, "read") else os.fspath(path)
     with sf.SoundFile(source) as fh:
-        frames = max(1, min(block_frames, BLOCK_SAMPLES // max(1, fh.channels)))
-        # Not SoundFile.blocks: it counts down the header's frame count and, when the
-        # decoder ends early, goes on yielding its previous buffer until that count is
-        # reached (2**35 frames for a damaged FLAC header).
-        while True:
-            block = fh.read(frames, dtype="float32", always_2d=True)
-            if len(block):
-                yield block
-            if len(block) < frames:
-                return
+        yield from _blocks(fh, block_frames)
+
+
+def _blocks(fh: soundfile.SoundFile, block_frames: int) -> Iterator[np.ndarray]:
+    frames = max(1, min(block_frames, BLOCK_SAMPLES // max(1, fh.channels)))
+    # Not SoundFile.blocks: it counts down the header's frame count and, when the
+    # decoder ends early, goes on yielding its previous buffer until that count is
+    # reached (2**35 frames for a damaged FLAC header).
+    while True:
+        block = fh.read(frames, dtype="float32", always_2d=True)
+        if len(block):
+            yield block
+        if len(block) < frames:
+            return
 
 
 def check_channel(*, channel: str | int, channels: int) -> None:

@@ -183,12 +183,13 @@ class SourceScan:
         return self.clipped / self.counted if self.counted else 0.0
 
 
-def scan_source(path: str, *, cfg: AudioConfig, spool: Spool, sample_rate: int) -> SourceScan:
+def scan_source(path: str | Any, *, cfg: AudioConfig, spool: Spool, sample_rate: int) -> SourceScan:
     """Decode ``path`` once, block by block, filling ``spool`` with the output-rate mono.
 
     Parameters
     ----------
-    path : the source file (opened for reading only).
+    path : the source file (opened for reading only), or a ``soundfile.SoundFile`` of it
+        open at its start (read to its end, left open).
     cfg : the audio section (channel, rates, VAD settings, clip level).
     spool : receives the downmixed stream resampled to ``cfg.sample_rate``.
     sample_rate : the source's rate in Hz.
@@ -249,16 +250,20 @@ def scan_source(path: str, *, cfg: AudioConfig, spool: Spool, sample_rate: int) 
 def _count_block(scan: SourceScan, block: np.ndarray, *, cfg: AudioConfig) -> np.ndarray | None:
     """Count one decoded block into ``scan`` (clipping, DC, frames); its downmix, or
     None when it holds a NaN, infinite or out-of-range sample (then recorded in ``scan``)."""
-    magnitude = np.abs(block)
-    # False for NaN as well as for values out of range: one test for both.
-    within = magnitude <= MAX_SAMPLE_MAGNITUDE
-    if not within.all():
+    # The block's extremes first: NaN makes them NaN and fails both tests, so one pass
+    # each decides, for nearly every block, that all is in range and nothing clips.
+    top, bottom = float(block.max(initial=-np.inf)), float(block.min(initial=np.inf))
+    if not (top <= MAX_SAMPLE_MAGNITUDE and bottom >= -MAX_SAMPLE_MAGNITUDE):
+        magnitude = np.abs(block)
+        # False for NaN as well as for values out of range: one test for both.
+        within = magnitude <= MAX_SAMPLE_MAGNITUDE
         frame = int(np.flatnonzero(~within.all(axis=1))[0])
         scan.bad_sample_at = scan.frames + frame
         scan.bad_sample = float(block[frame][~within[frame]][0])
         return None
-    used = magnitude if cfg.channel == "average" else magnitude[:, int(cfg.channel)]
-    scan.clipped += int(np.count_nonzero(used >= cfg.clip_level))
+    used = block if cfg.channel == "average" else block[:, int(cfg.channel)]
+    if max(top, -bottom) >= cfg.clip_level:
+        scan.clipped += int(np.count_nonzero(np.abs(used) >= cfg.clip_level))
     scan.counted += used.size
     mono = downmix(block, channel=cfg.channel)
     scan.dc_sum += float(mono.sum(dtype=np.float64))
@@ -329,23 +334,25 @@ def _condition(job: AudioJob) -> FileOutcome:
 
     cfg, row = job.config, job.row
     rel, source_id = row["source_path"], row["source_id"]
-    info = sf.info(job.source)
-    rate, channels = int(info.samplerate), int(info.channels)
-    try:
-        check_channel(channel=cfg.channel, channels=channels)
-    except ParameterError:
-        return FileOutcome(rejects=[reject(NAME, rel, "undecodable",
-                                           f"{rel}: audio.channel is {cfg.channel} but the file has "
-                                           f"{_plural(channels, 'channel')}; expected \"average\" or an "
-                                           f"index below {channels}")])
-    if rate < cfg.sample_rate and cfg.upsampled == "reject":
-        return FileOutcome(rejects=[reject(NAME, rel, "upsampled",
-                                           f"{rel}: sample rate {rate} Hz is below audio.sample_rate "
-                                           f"({cfg.sample_rate} Hz) and audio.upsampled is \"reject\"")])
-    with Spool(folder=job.tmp, label=source_id) as spool:
-        scan = scan_source(job.source, cfg=cfg, spool=spool, sample_rate=rate)
-        declared = int(info.frames) if _length_is_exact(job.source, info.format) else None
-        return _cut_and_write(job, scan, spool, declared_frames=declared)
+    # One open for the header and the samples (sf.info would open the file a second time).
+    with sf.SoundFile(job.source) as fh:
+        rate, channels, frames, container = int(fh.samplerate), int(fh.channels), int(fh.frames), fh.format
+        try:
+            check_channel(channel=cfg.channel, channels=channels)
+        except ParameterError:
+            return FileOutcome(rejects=[reject(NAME, rel, "undecodable",
+                                               f"{rel}: audio.channel is {cfg.channel} but the file has "
+                                               f"{_plural(channels, 'channel')}; expected \"average\" or an "
+                                               f"index below {channels}")])
+        if rate < cfg.sample_rate and cfg.upsampled == "reject":
+            return FileOutcome(rejects=[reject(NAME, rel, "upsampled",
+                                               f"{rel}: sample rate {rate} Hz is below audio.sample_rate "
+                                               f"({cfg.sample_rate} Hz) and audio.upsampled is \"reject\"")])
+        with Spool(folder=job.tmp, label=source_id) as spool:
+            scan = scan_source(fh, cfg=cfg, spool=spool, sample_rate=rate)
+            fh.close()
+            declared = frames if _length_is_exact(job.source, container) else None
+            return _cut_and_write(job, scan, spool, declared_frames=declared)
 
 
 def crashed_outcome(job: AudioJob, how: str) -> FileOutcome:
