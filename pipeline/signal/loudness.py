@@ -273,7 +273,8 @@ def sample_peak_dbfs(samples: np.ndarray) -> float:
     >>> sample_peak_dbfs(np.array([0.25, -0.5, 0.1]))
     -6.020599913279624
     """
-    frames = _as_frames(samples)
+    # In the samples' own floating type: the largest magnitude is exact in any of them.
+    frames = _as_frames(samples, as_float64=False)
     if frames.size == 0:
         return -math.inf
     return _peak_to_dbfs(float(np.abs(frames).max()))

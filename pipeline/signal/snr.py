@@ -21,6 +21,8 @@ WADA_MAX_SNR_DB = 100.0
 _WADA_STEP_DB = 0.1
 # Shape of the Gamma distribution of clean speech amplitudes (Kim and Stern 2008).
 _WADA_GAMMA_SHAPE = 0.4
+# SNRs of the table computed together (see _wada_table).
+_WADA_ROWS = 64
 
 
 def digamma_half_integers(count: int) -> np.ndarray:
@@ -75,7 +77,7 @@ def _wada_table() -> tuple[np.ndarray, np.ndarray]:
     a = 1e-6 loses nothing, while the Gamma mass below the cut (up to 1 % at -20 dB)
     is carried exactly by h(0). Doubling the grid changes G by < 1e-10, and a
     4-million-sample Monte Carlo simulation of the same model agrees to its own
-    sampling error (about 1e-3). Computing takes about 0.1 s, once per process.
+    sampling error (about 1e-3). Computing takes about 0.02 s, once per process.
 
     Returns (snr_db, g), both increasing.
     """
@@ -92,16 +94,22 @@ def _wada_table() -> tuple[np.ndarray, np.ndarray]:
     mean_abs_0 = np.sqrt(2.0 / np.pi)
     mean_log_0 = -0.5 * (np.euler_gamma + np.log(2.0))
 
-    # Gamma density of a, times da = a d(log a).
-    log_weight = (
-        k * (log_a[None, :] - np.log(theta[:, None]))
-        - a[None, :] / theta[:, None]
-        - math.lgamma(k)
-    )
-    weight = np.exp(log_weight) * step
-    weight[:, [0, -1]] *= 0.5
-    expected_abs = mean_abs_0 + np.einsum("sa,a->s", weight, mean_abs - mean_abs_0, optimize=False)
-    expected_log = mean_log_0 + np.einsum("sa,a->s", weight, mean_log - mean_log_0, optimize=False)
+    # Gamma density of a, times da = a d(log a), for a few SNRs at a time: the whole
+    # (SNR x a) matrix is 19 MB, and a new process spends most of the table's time
+    # faulting in its pages (0.13 s in one piece, 0.03 s in pieces of 64 rows).
+    abs_change, log_change = mean_abs - mean_abs_0, mean_log - mean_log_0
+    expected_abs, expected_log = np.empty(snr_db.size), np.empty(snr_db.size)
+    for lo in range(0, snr_db.size, _WADA_ROWS):
+        rows = slice(lo, lo + _WADA_ROWS)
+        log_weight = (
+            k * (log_a[None, :] - np.log(theta[rows, None]))
+            - a[None, :] / theta[rows, None]
+            - math.lgamma(k)
+        )
+        weight = np.exp(log_weight) * step
+        weight[:, [0, -1]] *= 0.5
+        expected_abs[rows] = mean_abs_0 + np.einsum("sa,a->s", weight, abs_change, optimize=False)
+        expected_log[rows] = mean_log_0 + np.einsum("sa,a->s", weight, log_change, optimize=False)
     g = np.log(expected_abs) - expected_log
     return snr_db, g
 
