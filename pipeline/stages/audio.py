@@ -27,7 +27,7 @@ import os
 from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -64,6 +64,9 @@ from pipeline.signal.vad import (
     trim_frames,
 )
 from pipeline.stages.audio_cache import OutcomeCache, source_keys
+
+if TYPE_CHECKING:
+    import soundfile
 
 NAME = "audio"
 
@@ -183,7 +186,7 @@ class SourceScan:
         return self.clipped / self.counted if self.counted else 0.0
 
 
-def scan_source(path: str | Any, *, cfg: AudioConfig, spool: Spool, sample_rate: int) -> SourceScan:
+def scan_source(path: str | soundfile.SoundFile, *, cfg: AudioConfig, spool: Spool, sample_rate: int) -> SourceScan:
     """Decode ``path`` once, block by block, filling ``spool`` with the output-rate mono.
 
     Parameters
