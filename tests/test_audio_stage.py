@@ -268,6 +268,25 @@ def test_fresh_run_with_two_workers_gives_identical_bytes(first_run, raw: Path, 
         assert (tmp_path / "out2" / r["audio_path"]).read_bytes() == (out / r["audio_path"]).read_bytes()
 
 
+def test_local_run_flushes_its_clips_once_before_returning(raw: Path, tmp_path: Path, monkeypatch):
+    # The clips skip their own fsync and the file system is flushed once, after the
+    # last clip is written and before the runner can write the manifest naming them.
+    flushes: list[tuple[str, list[str]]] = []
+    jobs: list[audio.AudioJob] = []
+    each_result = audio.each_result
+
+    def recording_each_result(func, items, *args, **kwargs):
+        jobs.extend(items)
+        return each_result(func, items, *args, **kwargs)
+
+    monkeypatch.setattr(audio, "each_result", recording_each_result)
+    monkeypatch.setattr(audio, "sync_file_system", lambda path: flushes.append(
+        (str(path), sorted(p.relative_to(path).as_posix() for p in Path(path, "audio").rglob("*.flac")))))
+    result = run_stage(raw, tmp_path / "out")
+    assert jobs and not any(job.durable for job in jobs)
+    assert flushes == [(str(tmp_path / "out"), sorted(r["audio_path"] for r in rows_of(result)))]
+
+
 def job_for(raw: Path, out: Path, rel: str, **overrides: Any) -> audio.AudioJob:
     table = ingest_table(raw)
     row = next(r for r in table.to_pylist() if r["source_path"] == rel)

@@ -117,6 +117,9 @@ def write_bytes_atomic(path: str | os.PathLike[str], data: bytes, *, durable: bo
     >>> again = write_bytes_atomic(f"{folder}/a/clip.bin", b"abc")
     >>> first.st_size, again.st_mtime_ns == first.st_mtime_ns, os.listdir(f"{folder}/a")
     (3, True, ['clip.bin'])
+    >>> changed = write_bytes_atomic(f"{folder}/a/clip.bin", b"abd")
+    >>> open(f"{folder}/a/clip.bin", "rb").read(), changed.st_ino == os.stat(f"{folder}/a/clip.bin").st_ino
+    (b'abd', True)
     >>> import shutil; shutil.rmtree(folder)
     """
     target = os.fspath(path)
