@@ -270,7 +270,8 @@ def test_fresh_run_with_two_workers_gives_identical_bytes(first_run, raw: Path, 
 
 def test_local_run_flushes_its_clips_once_before_returning(raw: Path, tmp_path: Path, monkeypatch):
     # The clips skip their own fsync and the file system is flushed once, after the
-    # last clip is written and before the runner can write the manifest naming them.
+    # last clip is written and before the runner can write the manifest naming them
+    # (on a cluster each worker also flushes after every batch: tests/test_parallel.py).
     flushes: list[tuple[str, list[str]]] = []
     jobs: list[audio.AudioJob] = []
     each_result = audio.each_result

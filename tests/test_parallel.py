@@ -2,11 +2,15 @@
 
 from __future__ import annotations
 
+import functools
 import os
 import time
+from pathlib import Path
 
+import distributed
 import pytest
 
+from pipeline.core import parallel
 from pipeline.core.parallel import map_ordered
 
 
@@ -107,3 +111,40 @@ def test_an_ordinary_exception_still_reaches_the_caller(workers: int) -> None:
     # Only a dead process is a crash; an exception is the function's own business.
     with pytest.raises(ValueError, match="three"):
         map_ordered(fail_on_three, list(range(6)), workers=workers, on_crash=lambda i, how: -1)
+
+
+def _mark_after_batch(folder: str) -> None:
+    """Runs on the worker after each batch: one file per call, named by the files the
+    batch's items wrote so far (so the test sees that it ran after them)."""
+    done = sorted(p.name for p in Path(folder).glob("item-*"))
+    (Path(folder) / f"after-{len(list(Path(folder).glob('after-*')))}-{len(done)}").touch()
+
+
+def _write_item(job: tuple[str, int]) -> int:
+    folder, n = job
+    (Path(folder) / f"item-{n:03d}").touch()
+    return n
+
+
+def test_after_batch_runs_on_the_cluster_worker_after_each_batch(tmp_path: Path) -> None:
+    # The audio stage flushes a worker's clips this way before their rows travel
+    # (pipeline.stages.audio.run); an in-process cluster with one thread runs the
+    # batches one after another, so each call sees every item of the batches before it.
+    items = [(str(tmp_path), n) for n in range(20)]
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=False,
+                                  dashboard_address=None) as cluster:
+        seen: list[int] = []
+        parallel.each_result(_write_item, items, lambda i, r: seen.append(r), workers=1,
+                             scheduler=cluster.scheduler_address,
+                             after_batch=functools.partial(_mark_after_batch, str(tmp_path)))
+    assert sorted(seen) == list(range(20))
+    groups = parallel.batches(range(20), threads=1)
+    marks = sorted((int(a), int(b)) for _, a, b in (p.name.split("-") for p in tmp_path.glob("after-*")))
+    assert [done for _, done in marks] == [len(g) * (k + 1) for k, g in enumerate(groups)]
+
+
+def test_after_batch_is_not_called_on_local_work(tmp_path: Path) -> None:
+    calls: list[int] = []
+    parallel.each_result(_write_item, [(str(tmp_path), n) for n in range(6)], lambda i, r: None, workers=2,
+                         after_batch=lambda: calls.append(1))
+    assert calls == []

@@ -89,6 +89,7 @@ def each_result(
     cost_per_worker: float | None = None,
     meanwhile: Callable[[], None] | None = None,
     on_crash: Callable[[int, str], R] | None = None,
+    after_batch: Callable[[], None] | None = None,
 ) -> None:
     """Apply ``func`` to every item and hand each result to ``on_result(index, result)``.
 
@@ -121,12 +122,16 @@ def each_result(
     always runs in worker processes, even with one worker, so that such a crash never
     takes this process down and results do not depend on the worker count. Without it a
     worker's death raises ``BrokenProcessPool``.
+
+    ``after_batch`` (module-level, pickled) runs on a cluster worker after each batch,
+    before its results are sent: the audio stage flushes the clips that worker wrote
+    there, which this process's kernel cannot flush. Local work does not call it.
     """
     if not items:
         return
     if scheduler:
         _each_dask(func, items, on_result, scheduler=scheduler, desc=desc, progress=progress, meanwhile=meanwhile,
-                   costs=costs)
+                   costs=costs, after_batch=after_batch)
         return
     n = planned_workers(workers, len(items), costs=costs, cost_per_worker=cost_per_worker)
     bar = _progress(len(items), desc, progress)
@@ -194,14 +199,17 @@ def batches(order: Sequence[int], *, threads: int) -> list[list[int]]:
     return [list(order[i : i + size]) for i in range(0, n, size)]
 
 
-def _run_batch(func: Callable[[T], R], items: list[T]) -> list[R]:
-    """Run on a dask worker: ``func`` over one batch of items, in order."""
-    return [func(item) for item in items]
+def _run_batch(func: Callable[[T], R], items: list[T], after: Callable[[], None] | None = None) -> list[R]:
+    """Run on a dask worker: ``func`` over one batch of items, in order, then ``after``."""
+    results = [func(item) for item in items]
+    if after is not None:
+        after()
+    return results
 
 
 def _each_dask(func: Callable[[T], R], items: Sequence[T], on_result: Callable[[int, R], None], *,
                scheduler: str, desc: str, progress: bool, meanwhile: Callable[[], None] | None = None,
-               costs: Sequence[float] | None = None) -> None:
+               costs: Sequence[float] | None = None, after_batch: Callable[[], None] | None = None) -> None:
     try:
         from distributed import Client
     except ImportError as exc:
@@ -215,7 +223,8 @@ def _each_dask(func: Callable[[T], R], items: Sequence[T], on_result: Callable[[
     with Client(scheduler, set_as_default=False) as client:
         order = range(len(items)) if costs is None else sorted(range(len(items)), key=lambda i: -costs[i])
         groups = batches(order, threads=max(1, sum(client.nthreads().values())))
-        futures = client.map(_run_batch, [func] * len(groups), [[items[i] for i in g] for g in groups], pure=False)
+        futures = client.map(_run_batch, [func] * len(groups), [[items[i] for i in g] for g in groups],
+                             [after_batch] * len(groups), pure=False)
         if meanwhile is not None:
             meanwhile()
         index = {f.key: g for f, g in zip(futures, groups, strict=True)}

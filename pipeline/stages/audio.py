@@ -21,6 +21,7 @@ length of the recording. Raw files are only ever opened for reading.
 from __future__ import annotations
 
 import contextlib
+import functools
 import io
 import math
 import os
@@ -88,10 +89,11 @@ class AudioJob:
     # (pipeline.stages.alignment), or None and why not.
     voice: str | None = None
     no_voice: str = ""
-    # Whether each clip is flushed to disk before its rename. A local run writes them
-    # without and flushes OUT's file system once before the manifest names them
-    # (``fsio.sync_file_system`` in ``run``); a cluster's workers may write through
-    # another host's cache, which the driver cannot flush, so they flush each clip.
+    # Whether each clip is flushed to disk before its rename. ``run`` writes them without
+    # and flushes OUT's file system instead: once before the manifest names them on a
+    # local run, and on a cluster once per batch on each worker, after the batch's clips
+    # and before its results travel (a worker may write through another host's cache,
+    # which the driver cannot flush).
     durable: bool = True
 
 
@@ -840,9 +842,8 @@ def run(ctx: StageContext) -> StageResult:
     todo, rejects_at = cache.reuse(keys, out=out, builder=builder)
     sources = ingest.take(todo).to_pylist() if todo else []
     real = _real_paths(ctx, out)
-    local = not ctx.scheduler
     jobs = [AudioJob(row, str(raw / real.get(row["source_path"], row["source_path"])), str(out), str(out / TMP_DIR),
-                     cfg, *voices.get(row["source_id"], (None, "")), durable=not local) for row in sources]
+                     cfg, *voices.get(row["source_id"], (None, "")), durable=False) for row in sources]
     if jobs:
         warm_up(cfg)
 
@@ -858,12 +859,13 @@ def run(ctx: StageContext) -> StageResult:
     each_result(condition_file, jobs, arrived, workers=ctx.workers, scheduler=ctx.scheduler,
                 desc="audio", progress=ctx.progress,
                 costs=[row["num_frames"] * row["channels"] for row in sources],
-                meanwhile=ctx.meanwhile, on_crash=lambda j, how: crashed_outcome(jobs[j], how))
-    if local:
-        # The clips were written without an fsync each: one flush makes them durable
-        # before the manifest that names them is written (reused ones too, which a run
-        # stopped before its flush may have left in the cache).
-        sync_file_system(out)
+                meanwhile=ctx.meanwhile, on_crash=lambda j, how: crashed_outcome(jobs[j], how),
+                after_batch=functools.partial(sync_file_system, str(out)))
+    # The clips were written without an fsync each: one flush makes them durable before
+    # the manifest that names them is written (reused ones too, which a run stopped
+    # before its flush may have left in the cache). On a cluster each worker has also
+    # flushed its own after every batch.
+    sync_file_system(out)
     cache.save()
     ctx.log.info("audio: %d files processed, %d reused from cache", len(todo), len(keys) - len(todo))
 
