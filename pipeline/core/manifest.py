@@ -416,9 +416,13 @@ def read_manifest(path: str | Path) -> pa.Table:
     read of a small manifest in a fresh process, on a loaded two-core machine).
     """
     try:
-        return pq.ParquetFile(path).read()
+        table = pq.ParquetFile(path).read()
     except (OSError, pa.ArrowException) as exc:
         raise ManifestError(f"{path}: not a readable Parquet file: {exc}") from exc
+    # The read's working buffers (the pages, 0.8 GB beside a 0.4 GB table for the audio
+    # stage's 233,161 clips) stay with Arrow's allocator once freed: hand them back.
+    pa.default_memory_pool().release_unused()
+    return table
 
 
 def read_metadata(path: str | Path) -> dict[str, str]:
