@@ -793,14 +793,19 @@ def _subset_table(joined: Joined, clips: Sequence[Clip], subset: str, assignment
     columns.update({name: text.column(name) for name in _TEXT_COLUMNS})
     picked = joined.audio.select(["snr_db", "bandwidth_hz"]).take(rows)
     columns.update({name: _finite_column(picked.column(name)) for name in ("snr_db", "bandwidth_hz")})
-    extra = {UNSCORED: assignment.unscored, DEMOTED: demoted}
+    # A few combinations of flags recur (a clip's own flags are one shared frozenset per
+    # combination): each is listed in FLAGS order once, and its rows share the list.
+    listed: dict[tuple[frozenset[str], bool, bool, bool], list[str]] = {}
     flags = []
     for c in clips:
-        mine = set(c.flags)
-        if subset == HELDOUT and not c.transcribed:
-            mine.add("heldout_untranscribed")
-        mine.update(f for f, ids in extra.items() if c.clip_id in ids)
-        flags.append([f for f in FLAGS if f in mine])
+        key = (c.flags, subset == HELDOUT and not c.transcribed, c.clip_id in assignment.unscored,
+               c.clip_id in demoted)
+        found = listed.get(key)
+        if found is None:
+            mine = set(c.flags) | {f for f, on in zip(("heldout_untranscribed", UNSCORED, DEMOTED), key[1:],
+                                                      strict=True) if on}
+            found = listed[key] = [f for f in FLAGS if f in mine]
+        flags.append(found)
     columns.update({
         "group": [c.group for c in clips],
         "subset": [subset] * len(clips),
