@@ -236,18 +236,21 @@ def _cmd_validate(args: argparse.Namespace) -> int:
     else:
         print(format_table(result))
         found = sum(p.check == "privacy_names" and p.severity == "error" for p in result.problems)
-        print(_share_note(args.out, names_found=found))
+        print(_share_note(args.out, names_found=found, pseudonymised=result.pseudonymised))
     return exit_code(result, strict=args.strict)
 
 
-def _share_note(out: Path, *, names_found: int = 0) -> str:
-    """Which files under ``out`` are safe to share, from its resolved config and the
-    ``privacy_names`` errors a validation found."""
+def _share_note(out: Path, *, names_found: int = 0, pseudonymised: bool | None = None) -> str:
+    """Which files under ``out`` are safe to share, from its resolved config (or
+    ``pseudonymised``, when the caller has read it) and the ``privacy_names`` errors a
+    validation found."""
     from pipeline.commands.shareable import share_note
     from pipeline.commands.validate import load_resolved_config
 
-    config, problems = load_resolved_config(out)
-    return share_note(pseudonymised=not problems and config.privacy.pseudonymise, names_found=names_found)
+    if pseudonymised is None:
+        config, problems = load_resolved_config(out)
+        pseudonymised = not problems and config.privacy.pseudonymise
+    return share_note(pseudonymised=pseudonymised, names_found=names_found)
 
 
 def _cmd_report(args: argparse.Namespace) -> int:

@@ -22,10 +22,9 @@ import time
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
@@ -57,7 +56,10 @@ from pipeline.core.names import (
 from pipeline.core.schemas_io import SCHEMA_DIR
 from pipeline.signal.declared import flac_streaminfo
 from pipeline.stages import gates
-from pipeline.stages.prompts import UNSCORED, prompt_set, shares_prompt
+from pipeline.stages.prompts import UNSCORED, prompt_key, prompt_set, shares_prompt
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 TRAINING = (LABELLED, UNLABELLED)
 # A re-measured clip may differ from its manifest by this much: the 16-bit rounding of a
@@ -83,6 +85,8 @@ class ValidationResult:
     languages: dict[str, dict[str, Any]] = field(default_factory=dict)
     # What held-out is disjoint from training by, and what it shares (heldout_sharing).
     disjointness: dict[str, Any] = field(default_factory=dict)
+    # Whether the folder's resolved config (read without problem) pseudonymises.
+    pseudonymised: bool = False
 
     @property
     def errors(self) -> int:
@@ -338,7 +342,12 @@ class _Subsets:
     def frame(self, columns: Sequence[str], names: Sequence[str] = SUBSETS,
               rows: Callable[[pa.Table], pa.Array] | None = None) -> pd.DataFrame:
         """Scalar ``columns`` of every subset that has them all, with ``_file`` and ``_row``;
-        with ``rows`` (a table's boolean mask), only the rows it selects."""
+        with ``rows`` (a table's boolean mask), only the rows it selects.
+
+        pandas is imported here, on the first check that finds something to word: the
+        clean case is settled in Arrow, and a clean build's validation never imports it."""
+        import pandas as pd
+
         parts = []
         for name in self.having(columns, names):
             table = self.tables[name].select(list(columns))
@@ -417,6 +426,9 @@ def _check_config_hash(out: Path, rel: str, config: Config) -> list[Problem]:
 
 
 def _check_subset_column(s: _Subsets) -> list[Problem]:
+    if all(pc.all(pc.fill_null(pc.equal(s.tables[n].column("subset"), n), False)).as_py()
+           for n in s.having(["subset"])):
+        return []
     f = s.frame(["subset"])
     mask = f["subset"].astype(object) != f["_file"].astype(object)
     return _frame_problems("error", "subset_column", f, mask, "subset",
@@ -487,6 +499,19 @@ def heldout_sharing(frame_of: Callable[[str], pd.DataFrame], *, group_by: str) -
         held = set(f.loc[f["_file"] == HELDOUT, column].dropna())
         train = set(f.loc[f["_file"].isin(TRAINING), column].dropna())
         shared[f"{unit}s_on_both_sides"] = len(held & train)
+    return shared
+
+
+def heldout_sharing_of(s: _Subsets, *, group_by: str) -> dict[str, Any]:
+    """:func:`heldout_sharing` of the subsets, counted in Arrow (no pandas frame)."""
+    shared: dict[str, Any] = {"disjoint_by": group_by}
+    for unit, column in UNIT_COLUMNS.items():
+        held = s.joined(column, (HELDOUT,)).combine_chunks()
+        shared.setdefault("heldout_clips", len(held))
+        held = pc.unique(held).drop_null()
+        train = s.joined(column, TRAINING).combine_chunks()
+        both = pc.sum(pc.is_in(held, value_set=train)).as_py() if len(held) and len(train) else 0
+        shared[f"{unit}s_on_both_sides"] = int(both or 0)
     return shared
 
 
@@ -562,6 +587,13 @@ def _check_text_leak(s: _Subsets, config: Config) -> list[Problem]:
     """A scorable clip of a text-disjoint held-out part whose prompt labelled holds is an
     error (a warning under split.text_overlap = "allow"); a clip of another part
     sharing a prompt with labelled is a warning. Prompts as pipeline.stages.prompts reads them."""
+    names = s.having(["norm_text", "scorable", PART], (LABELLED, HELDOUT))
+    if HELDOUT not in names or LABELLED not in names:
+        return []
+    seen = prompt_set(s.column(LABELLED, "norm_text").to_pylist())
+    scored = pc.fill_null(s.column(HELDOUT, "scorable"), False)
+    if not any(prompt_key(text) in seen for text in pc.filter(s.column(HELDOUT, "norm_text"), scored).to_pylist()):
+        return []  # the clean case, without a pandas frame
     f = s.frame(["norm_text", "scorable", PART], names=(LABELLED, HELDOUT))
     seen = prompt_set(f.loc[f["_file"] == LABELLED, "norm_text"])
     shared = (f["_file"] == HELDOUT) & f["norm_text"].map(lambda t: shares_prompt(t, seen)).astype(bool)
@@ -585,6 +617,8 @@ def _check_parts(s: _Subsets, config: Config) -> list[Problem]:
     (and, grouping by speaker, no speaker) is in two parts. Grouping by recording or
     clip, one speaker may be in several parts by design (a single-speaker corpus)."""
     configured = [p.name for p in config.split.parts]
+    if _parts_clean(s, configured, by_speaker=config.split.group_by == "speaker"):
+        return []
     f = s.frame([PART, "group", "speaker"])
     held = f["_file"] == HELDOUT
     bad = (held & ~f["part"].isin(configured)) | (~held & f["part"].notna())
@@ -602,10 +636,37 @@ def _check_parts(s: _Subsets, config: Config) -> list[Problem]:
     return problems
 
 
+def _parts_clean(s: _Subsets, configured: list[str], *, by_speaker: bool) -> bool:
+    """Whether :func:`_check_parts` finds nothing, settled in Arrow; False when a
+    value is off or a group (speaker) column has nulls, which the frame words."""
+    columns = [PART, "group", "speaker"]
+    allowed = pa.array(configured, pa.string())
+    for name in s.having(columns):
+        part = s.column(name, PART)
+        if name != HELDOUT and part.null_count != len(part):
+            return False
+        if name == HELDOUT and not pc.all(pc.fill_null(pc.is_in(part, value_set=allowed), False)).as_py():
+            return False
+    if HELDOUT not in s.having(columns):
+        return True
+    held = s.tables[HELDOUT]
+    for column in ("group", "speaker") if by_speaker else ("group",):
+        keys = held.column(column)
+        if keys.null_count:
+            return False
+        pairs = pa.table({"key": keys, "part": held.column(PART)}).group_by(["key", "part"]).aggregate([])
+        if pairs.num_rows != pc.count_distinct(keys).as_py():
+            return False
+    return True
+
+
 def _check_labelled_text(s: _Subsets) -> list[Problem]:
     problems: list[Problem] = []
-    f = s.frame(["transcript", "norm_text"], names=(LABELLED,))
-    for column in ("transcript", "norm_text"):
+    blank = {c: [v is None or not v.strip() for v in s.column(LABELLED, c).to_pylist()]
+             for c in ("transcript", "norm_text") if s.usable(LABELLED, c)}
+    clean = len(blank) < 2 or not any(any(flags) for flags in blank.values())
+    f = None if clean else s.frame(["transcript", "norm_text"], names=(LABELLED,))
+    for column in ("transcript", "norm_text") if f is not None else ():
         empty = f[column].isna() | (f[column].fillna("").str.strip() == "")
         problems += _frame_problems("error", "labelled_text", f, empty, column,
                                     lambda r, c=column: _text(r[c]), f"a {column} on every labelled clip")
@@ -693,6 +754,8 @@ def _check_phones(s: _Subsets, out: Path, config: Config, text: pa.Table | None)
             continue
         symbols = pc.filter(flat, unknown)
         parents = np.asarray(pc.filter(pc.list_parent_indices(arr), unknown))
+        import pandas as pd  # only when a phone is off the inventory
+
         seen = pd.DataFrame({"phone": symbols.to_pylist(), "row": parents})
         per_phone = seen.groupby("phone", sort=True)["row"].agg(["min", "nunique"])
         rows = per_phone["min"].to_numpy()
@@ -903,6 +966,8 @@ def _check_quality_gates(s: _Subsets, config: Config) -> list[Problem]:
     }
     for gate in holding:
         column, expected, fmt = measured[gate]
+        if not s.usable(LABELLED, column) or not _gate_hits(s, gate, column, config).any():
+            continue  # the clean case, without a pandas frame
         f = s.frame([column], names=(LABELLED,))
         values = {c: np.full(len(f), np.nan) for c, _, _ in measured.values()}
         values[column] = f[column].astype(float).to_numpy(dtype=np.float64, na_value=np.nan)
@@ -920,6 +985,16 @@ def _check_quality_gates(s: _Subsets, config: Config) -> list[Problem]:
                                           lambda r, flags=flags: _text(flags[r].as_py()),
                                           f'no clip flagged {gate}: quality.{gate}_action = "reject" sets them aside')
     return problems
+
+
+def _gate_hits(s: _Subsets, gate: str, column: str, config: Config) -> np.ndarray:
+    """The labelled rows ``gate`` holds back by their measured ``column``."""
+    q = config.quality
+    values = {c: np.full(s.tables[LABELLED].num_rows, np.nan)
+              for c in ("snr_db", "bandwidth_hz", "rate_z", "clipped_fraction")}
+    values[column] = np.asarray(pc.fill_null(s.column(LABELLED, column).cast(pa.float64()), np.nan), dtype=np.float64)
+    return gates.gate_flags(**values, min_snr_db=q.min_snr_db, min_bandwidth_hz=q.min_bandwidth_hz,
+                            rate_max_abs_z=q.rate_max_abs_z, max_clipped_fraction=config.audio.max_clipped_fraction)[gate]
 
 
 def _check_near_duplicates(s: _Subsets) -> list[Problem]:
@@ -1231,7 +1306,8 @@ def validate_out(out: Path, *, deep: bool = False, audio_files: bool = True) -> 
     """
     start = time.perf_counter()
     out = check_out_folder(out)
-    config, problems = load_resolved_config(out)
+    config, config_problems = load_resolved_config(out)
+    problems = list(config_problems)
     read = _read_manifests(out, config, problems)
     try:
         read.languages = language_rates(read.stages.get("text"))
@@ -1256,8 +1332,9 @@ def validate_out(out: Path, *, deep: bool = False, audio_files: bool = True) -> 
                                     "manifests this check can read"))
     problems.sort(key=lambda p: p.severity != "error")
     try:
-        sharing = heldout_sharing(lambda column: s.frame([column]), group_by=config.split.group_by)
+        sharing = heldout_sharing_of(s, group_by=config.split.group_by)
     except Exception:  # manifests no check could read: the problems above say why
         sharing = {}
     return ValidationResult(str(out), problems, read.rows, time.perf_counter() - start,
-                            languages=read.languages, disjointness=sharing)
+                            languages=read.languages, disjointness=sharing,
+                            pseudonymised=not config_problems and config.privacy.pseudonymise)
