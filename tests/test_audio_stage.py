@@ -416,7 +416,12 @@ def test_a_damaged_cache_is_only_a_miss(first_run, raw: Path, tmp_path: Path):
 
 
 def test_later_outcomes_of_a_source_replace_earlier_ones():
-    from pipeline.stages.audio_cache import _rows_by_key
+    import pyarrow as pa
+
+    from pipeline.stages.audio_cache import _outcome_runs
 
     # a's outcome (two rows), b's, then a newer outcome of a (a part written later).
-    assert _rows_by_key(["a", "a", "b", "a"]) == {"a": [3], "b": [2]}
+    distinct, last_run, first, lengths = _outcome_runs(pa.chunked_array([["a", "a", "b", "a"]]))
+    rows = {key: list(range(first[run], first[run] + lengths[run]))
+            for key, run in zip(distinct.to_pylist(), last_run, strict=True)}
+    assert rows == {"a": [3], "b": [2]}

@@ -34,11 +34,19 @@ from pipeline.core.manifest import (
 from pipeline.core.stage import Stage, StageContext, StageRegistry, StageResult, reject
 
 
-def _stat_of(out: Path, rels: list[str]) -> list[list[Any]]:
+def _stat_of(out: Path, rels: list[str], known: dict[str, list[int]] | None = None) -> list[list[Any]]:
+    """``[rel, size, mtime_ns, inode]`` of each file (``[rel, None]`` when missing),
+    sorted; a file in ``known`` is taken as given there instead of stat'ed."""
     state: list[list[Any]] = []
+    known = known or {}
+    root = os.fspath(out)
     for rel in sorted(set(rels)):
+        given = known.get(rel)
+        if given is not None:
+            state.append([rel, *given])
+            continue
         try:
-            st = os.stat(out / rel)
+            st = os.stat(os.path.join(root, rel))
             state.append([rel, st.st_size, st.st_mtime_ns, st.st_ino])
         except OSError:
             state.append([rel, None])
@@ -204,15 +212,17 @@ class Runner:
             return False
         return _stat_of(self.out, [entry[0] for entry in recorded]) == recorded
 
-    def _record_outputs(self, stage: Stage, manifests: list[str], main: pa.Table | None = None) -> None:
+    def _record_outputs(self, stage: Stage, manifests: list[str], main: pa.Table | None = None,
+                        known: dict[str, list[int]] | None = None) -> None:
         """Record the stat of every file the stage wrote (``main``: its main manifest's
-        table when the caller holds it, else it is read back)."""
+        table when the caller holds it, else it is read back; ``known``: stats the stage
+        already holds, StageResult.file_stats)."""
         rels = [*manifests, names.stage_rejects(stage.name), names.stage_summary(stage.name)]
         if stage.written_files is not None:
             table = main if main is not None else read_manifest(self.out / stage.main_manifest)
             rels += stage.written_files(self.out, table)
         write_text_atomic(self.out / names.stage_outputs_record(stage.name),
-                          json.dumps({"files": _stat_of(self.out, rels)}) + "\n")
+                          json.dumps({"files": _stat_of(self.out, rels, known)}) + "\n")
 
     def _metadata(self, stage: Stage, params: str, inputs: str, extra: dict[str, str]) -> dict[str, str]:
         meta = {
@@ -279,7 +289,8 @@ class Runner:
         # The main manifest goes last: its metadata is what marks the stage up to date.
         for rel, (schema, table) in sorted(result.manifests.items(), key=lambda kv: kv[0] == stage.main_manifest):
             write_manifest(self.out / rel, schema, table, metadata=meta)
-        self._record_outputs(stage, list(result.manifests), result.manifests[stage.main_manifest][1])
+        self._record_outputs(stage, list(result.manifests), result.manifests[stage.main_manifest][1],
+                             result.file_stats)
 
     def _set_aside_invalid_rows(self, stage: Stage, result: StageResult) -> None:
         """Move rows whose values break their schema from the manifests to the rejects.

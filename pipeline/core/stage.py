@@ -299,6 +299,10 @@ class StageResult:
     # Non-empty: a sentence saying why the run must stop (exit 1) once this stage's
     # outputs and the rejects are written, e.g. every input unreadable.
     stop: str = ""
+    # ``[size, mtime_ns, inode]`` by path (relative to OUT) of files the stage wrote or
+    # confirmed unchanged, which the runner records as they are instead of a ``stat``
+    # each (the audio stage's clips); any other file it records is stat'ed.
+    file_stats: dict[str, list[int]] = field(default_factory=dict)
 
     def rejects_table(self) -> pa.Table:
         return table_from_rows("rejected", self.rejects)

@@ -323,12 +323,15 @@ def alignment_voices(ctx: Any, rows: list[dict[str, Any]]) -> dict[str, tuple[st
     transcribed = [r for r in rows if r["transcript"] is not None]
     if ctx.config.audio.align == "off":
         return {r["source_id"]: (None, 'audio.align is "off"') for r in transcribed}
-    out: dict[str, tuple[str | None, str]] = {}
-    for source_id, tag in file_languages(ctx, transcribed).items():
+    # One answer per language tag, not per source: a corpus has a few tags and
+    # 100,000 sources.
+    tags = file_languages(ctx, transcribed)
+    by_tag: dict[str, tuple[str | None, str]] = {}
+    for tag in set(tags.values()):
         voice = speech_voice(canonical_tag(tag))
-        out[source_id] = (voice, "" if voice else f"espeak-ng, the speech engine the alignment uses, has no "
-                                                  f"voice for its language {tag!r}")
-    return out
+        by_tag[tag] = (voice, "" if voice else f"espeak-ng, the speech engine the alignment uses, has no "
+                                               f"voice for its language {tag!r}")
+    return {source_id: by_tag[tag] for source_id, tag in tags.items()}
 
 
 def alignment_summary(rows: list[dict[str, Any]], sources: list[dict[str, Any]]) -> dict[str, dict[str, Any]]:

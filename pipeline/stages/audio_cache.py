@@ -6,8 +6,9 @@ source's content hash, the audio section of the config, the stage's code version
 the ingest fields copied into the rows. The outcomes of the last run are one Parquet
 table (``OUT/cache/audio/outcomes.parquet``, see ``pipeline.core.cache.TableCache``):
 one row per clip or reject, so reusing 100,000 sources reads one file and hands the
-reused clip rows to the manifest as Arrow columns, with one ``stat`` per clip to make
-sure the file is still the one written.
+reused clip rows to the manifest as Arrow columns. Whether each clip file is still the
+one written is settled by one listing of ``OUT/audio`` (:func:`file_listing`, one
+``lstat`` per file) joined to the table in Arrow: no Python work per reused source.
 """
 
 from __future__ import annotations
@@ -18,7 +19,9 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from pipeline.core.cache import TableCache, cache_key
 from pipeline.core.manifest import ManifestBuilder, arrow_schema
@@ -55,6 +58,87 @@ def source_keys(ingest: pa.Table, *, section: dict[str, Any], code: str,
             for *fields, t in zip(*columns, transcribed, strict=True)]
 
 
+def file_listing(folder: Path, *, base: Path) -> pa.Table:
+    """Every file under ``folder``: its '/'-separated path relative to ``base`` and its
+    ``lstat`` (``st_size``, ``st_mtime_ns``, ``st_ino``); empty when there is no folder.
+
+    One ``os.scandir`` per folder and one ``lstat`` per file, nothing else per file:
+    the reuse check of 100,000 sources joins this table to the cache's in Arrow.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> out = Path(tempfile.mkdtemp())
+    >>> (out / "audio" / "ana").mkdir(parents=True)
+    >>> _ = (out / "audio" / "ana" / "take.flac").write_bytes(b"abc")
+    >>> listing = file_listing(out / "audio", base=out)
+    >>> listing.column("path").to_pylist(), listing.column("st_size").to_pylist()
+    (['audio/ana/take.flac'], [3])
+    >>> file_listing(out / "none", base=out).num_rows
+    0
+    >>> import shutil; shutil.rmtree(out)
+    """
+    columns: tuple[list[Any], ...] = ([], [], [], [])
+    paths, sizes, mtimes, inodes = columns
+    root = os.fspath(base)
+    stack = [os.fspath(folder)]
+    while stack:
+        where = stack.pop()
+        prefix = os.path.relpath(where, root).replace(os.sep, "/") + "/"
+        try:
+            entries = os.scandir(where)
+        except OSError:  # gone, or no folder at all: nothing in it is intact
+            continue
+        with entries:
+            for entry in entries:
+                if entry.is_dir(follow_symlinks=False):
+                    stack.append(entry.path)
+                    continue
+                try:
+                    st = entry.stat(follow_symlinks=False)
+                except OSError:
+                    continue
+                paths.append(prefix + entry.name)
+                sizes.append(st.st_size)
+                mtimes.append(st.st_mtime_ns)
+                inodes.append(st.st_ino)
+    with pandas_left_unloaded():
+        return pa.table([pa.array(paths, pa.string()), pa.array(sizes, pa.int64()), pa.array(mtimes, pa.int64()),
+                         pa.array(inodes, pa.uint64())], names=["path", "st_size", "st_mtime_ns", "st_ino"])
+
+
+def _intact(table: pa.Table, listing: pa.Table) -> np.ndarray:
+    """Per cached row: a reject row, or a clip row whose file ``listing`` holds with the
+    size, mtime and inode the table recorded."""
+    where = pc.index_in(table.column("audio_path"), value_set=listing.column("path"))
+    index = np.asarray(where.fill_null(-1), dtype=np.int64)
+    found = index >= 0
+    index = np.where(found, index, 0)
+    intact = found.copy()
+    for column in ("st_size", "st_mtime_ns", "st_ino"):
+        listed = listing.column(column).to_numpy()
+        if not len(listed):
+            return np.asarray(table.column("reject_reason").is_valid(), dtype=bool)
+        recorded = table.column(column).fill_null(0).to_numpy()
+        intact &= listed[index] == recorded
+    return intact | np.asarray(table.column("reject_reason").is_valid(), dtype=bool)
+
+
+def _outcome_runs(keys: pa.ChunkedArray) -> tuple[pa.Array, np.ndarray, np.ndarray, np.ndarray]:
+    """The table's outcomes: rows of one outcome are written together (a run of one
+    key); a key met again after other keys is a newer outcome of the same source (a
+    part written after an interrupted run's), which replaces the older. Returns the
+    distinct keys, each key's last run (by key index), and each run's first row and
+    length."""
+    encoded = pc.dictionary_encode(keys.combine_chunks().fill_null(""))
+    codes = np.asarray(encoded.indices, dtype=np.int64)
+    first = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]]) if len(codes) else np.zeros(0, np.int64)
+    lengths = np.diff(np.r_[first, len(codes)])
+    last_run = np.full(len(encoded.dictionary), -1, dtype=np.int64)
+    np.maximum.at(last_run, codes[first], np.arange(len(first)))
+    return encoded.dictionary, last_run, first, lengths
+
+
 class OutcomeCache:
     """Reuse and record the audio stage's outcomes (see the module docstring)."""
 
@@ -67,35 +151,49 @@ class OutcomeCache:
         self._pending: list[dict[str, Any]] = []
         self._changed = False
 
-    def reuse(self, keys: list[str], *, out: Path, builder: ManifestBuilder) -> tuple[list[int], dict[int, list[dict[str, Any]]]]:
+    def reuse(self, keys: list[str], *, listing: pa.Table,
+              builder: ManifestBuilder) -> tuple[list[int], dict[int, list[dict[str, Any]]]]:
         """Put the clip rows of every source whose outcome is cached, with its clip files
-        intact, into ``builder``; return the indices of the other sources and the
-        cached rejects by source index."""
+        intact (as ``listing``, :func:`file_listing` of OUT/audio, finds them), into
+        ``builder``; return the indices of the other sources and the cached rejects by
+        source index. Columnar: Python touches only the rejects."""
         table = self.table.load()
-        if table is None:
+        if table is None or not len(keys):
             self._changed = True
             return list(range(len(keys))), {}
-        rows_of = _rows_by_key(table.column("cache_key").to_pylist())
-        reasons = table.column("reject_reason").to_pylist()
-        intact = _ClipCheck(table, out)
-        todo: list[int] = []
-        rejects_at: dict[int, list[dict[str, Any]]] = {}
-        kept: list[int] = []
-        for i, key in enumerate(keys):
-            rows = rows_of.get(key)
-            if rows is None or not all(reasons[j] is not None or intact(j) for j in rows):
-                todo.append(i)
-                continue
-            kept.extend(rows)
-            found = [intact.reject(j) for j in rows if reasons[j] is not None]
-            if found:
-                rejects_at[i] = found
+        distinct, last_run, first, lengths = _outcome_runs(table.column("cache_key"))
+        intact = _intact(table, listing)
+        run_intact = np.logical_and.reduceat(intact, first) if len(first) else np.zeros(0, dtype=bool)
         with pandas_left_unloaded():
-            self._kept = table.take(pa.array(kept, pa.int64()))
+            code = np.asarray(pc.index_in(pa.array(keys, pa.string()), value_set=distinct).fill_null(-1),
+                              dtype=np.int64)
+        run = np.where(code >= 0, last_run[np.maximum(code, 0)], -1)
+        reused = np.flatnonzero((run >= 0) & run_intact[np.maximum(run, 0)])
+        runs = run[reused]
+        ends = np.cumsum(lengths[runs])
+        kept = np.repeat(first[runs] - ends + lengths[runs], lengths[runs]) + np.arange(ends[-1] if len(ends) else 0)
+        self._kept = table.take(pa.array(kept, pa.int64()))
         self._changed = self._kept.num_rows != table.num_rows or self.table.has_parts
-        clips = self._kept.filter(self._kept.column("reject_reason").is_null())
-        builder.extend_table(clips)
-        return todo, rejects_at
+        rejected = self._kept.column("reject_reason").is_valid()
+        rejects_at: dict[int, list[dict[str, Any]]] = {}
+        source_of = np.repeat(reused, lengths[runs])
+        for position in np.flatnonzero(np.asarray(rejected, dtype=bool)).tolist():
+            rejects_at.setdefault(int(source_of[position]), []).append(_reject_row(self._kept, position))
+        builder.extend_table(self._kept.filter(pc.invert(rejected)))
+        todo = np.ones(len(keys), dtype=bool)
+        todo[reused] = False
+        return np.flatnonzero(todo).tolist(), rejects_at
+
+    def file_stats(self) -> dict[str, list[int]]:
+        """``[size, mtime_ns, inode]`` by clip path of this run's clips: the reused ones as
+        the listing confirmed them, the fresh ones as written (for the stage's record of
+        what it wrote, without a second ``stat`` per clip)."""
+        stats: dict[str, list[int]] = {}
+        for part in ([self._kept] if self._kept is not None else []) + self._fresh:
+            clips = part.filter(part.column("reject_reason").is_null())
+            columns = [clips.column(c).to_pylist() for c in ("audio_path", "st_size", "st_mtime_ns", "st_ino")]
+            stats.update((path, [size, mtime, inode]) for path, size, mtime, inode in zip(*columns, strict=True))
+        return stats
 
     def add(self, key: str, rows: list[dict[str, Any]], rejects: list[dict[str, Any]],
             written: dict[str, list[int]]) -> None:
@@ -129,41 +227,8 @@ class OutcomeCache:
         self.table.save(pa.concat_tables(tables) if tables else self.schema.empty_table())
 
 
-def _rows_by_key(keys: list[str]) -> dict[str, list[int]]:
-    """Row indices by key. One outcome's rows are written together; a key met again
-    after other keys is a newer outcome of the same source (a part written after an
-    interrupted run's), which replaces the older."""
-    rows_of: dict[str, list[int]] = {}
-    previous = None
-    for j, key in enumerate(keys):
-        if key == previous:
-            rows_of[key].append(j)
-        else:
-            rows_of[key] = [j]
-        previous = key
-    return rows_of
-
-
-class _ClipCheck:
-    """Whether a cached clip row's file is still the one written (size, mtime, inode);
-    and a cached reject row as a reject."""
-
-    def __init__(self, table: pa.Table, out: Path) -> None:
-        self.root = os.fspath(out)
-        self.table = table
-        self.paths = table.column("audio_path").to_pylist()
-        self.stats = list(zip(*(table.column(c).to_pylist() for c in ("st_size", "st_mtime_ns", "st_ino")),
-                              strict=True))
-
-    def __call__(self, j: int) -> bool:
-        try:
-            st = os.stat(os.path.join(self.root, self.paths[j]))
-        except (OSError, TypeError):
-            return False
-        return (st.st_size, st.st_mtime_ns, st.st_ino) == self.stats[j]
-
-    def reject(self, j: int) -> dict[str, Any]:
-        row = {c: self.table.column(c)[j].as_py()
-               for c in ("source_path", "clip_id", "reject_reason", "reject_detail", "reject_stage")}
-        return reject(row["reject_stage"], row["source_path"], row["reject_reason"], row["reject_detail"],
-                      row["clip_id"])
+def _reject_row(table: pa.Table, j: int) -> dict[str, Any]:
+    """Cached row ``j`` of ``table``, a reject, as a reject row."""
+    row = {c: table.column(c)[j].as_py()
+           for c in ("source_path", "clip_id", "reject_reason", "reject_detail", "reject_stage")}
+    return reject(row["reject_stage"], row["source_path"], row["reject_reason"], row["reject_detail"], row["clip_id"])
