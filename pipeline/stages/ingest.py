@@ -22,11 +22,13 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from pipeline.core import names
 from pipeline.core.cache import TableCache, cache_key
 from pipeline.core.codeversion import code_version
 from pipeline.core.fsio import sha256_file, write_text_atomic
-from pipeline.core.manifest import table_from_rows
+from pipeline.core.manifest import arrow_schema, table_from_columns
 from pipeline.core.names import stage_manifest
 from pipeline.core.parallel import map_ordered
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
@@ -252,12 +254,19 @@ _PROBE_PART_ROWS = 4096
 _PROBE_BYTES_PER_WORKER = 64 * 2**20
 
 
-def _probe_table(entries: list[tuple[str, tuple[int, int, int], dict[str, Any]]]) -> Any:
-    """The probe cache's table of ``(path, (size, mtime_ns, inode), probe result)``."""
+def _probe_schema() -> Any:
     import pyarrow as pa
 
-    fields = (*_STAT_FIELDS, *_PROBE_FIELDS, *_ERROR_FIELDS)
-    columns: dict[str, list[Any]] = {name: [] for name, _ in fields}
+    return pa.schema([(name, getattr(pa, kind)()) for name, kind in (*_STAT_FIELDS, *_PROBE_FIELDS, *_ERROR_FIELDS)])
+
+
+def _probe_table(entries: list[tuple[str, tuple[Any, Any, Any], dict[str, Any]]]) -> Any:
+    """The probe cache's table of ``(path, (size, mtime_ns, inode), probe result)``
+    (a stat of Nones for a file that could not be stat'ed)."""
+    import pyarrow as pa
+
+    schema = _probe_schema()
+    columns: dict[str, list[Any]] = {f.name: [] for f in schema}
     for rel, st, res in entries:
         for name, value in zip(("path", "st_size", "st_mtime_ns", "st_ino"), (rel, *st), strict=True):
             columns[name].append(value)
@@ -266,69 +275,91 @@ def _probe_table(entries: list[tuple[str, tuple[int, int, int], dict[str, Any]]]
         error = res.get("error") or (None, None)
         columns["error_reason"].append(error[0])
         columns["error_detail"].append(error[1])
-    schema = pa.schema([(name, getattr(pa, kind)()) for name, kind in fields])
     with pandas_left_unloaded():
         return pa.table([pa.array(columns[f.name], f.type) for f in schema], schema=schema)
 
 
-def _cached_probes(table: Any) -> dict[str, tuple[tuple[int, int, int], dict[str, Any]]]:
-    """Path -> (stat, probe result) from the probe cache's table (later rows win)."""
-    if table is None:
-        return {}
-    cols = {name: table.column(name).to_pylist() for name in table.column_names}
-    found: dict[str, tuple[tuple[int, int, int], dict[str, Any]]] = {}
-    for j, rel in enumerate(cols["path"]):
-        st = (cols["st_size"][j], cols["st_mtime_ns"][j], cols["st_ino"][j])
-        reason = cols["error_reason"][j]
-        res = ({"error": (reason, cols["error_detail"][j])} if reason is not None
-               else {name: cols[name][j] for name, _ in _PROBE_FIELDS})
-        found[rel] = (st, res)
-    return found
+# Failures are cached too: they depend only on the bytes, like successes. Not a crash,
+# which may be the library's fault (fixed by an upgrade), nor an unreadable file, which
+# says something about this run's machine (a permission, a worker that does not see
+# RAW): the next run must look again.
+_UNCACHED = ("decoder_crashed", "unreadable")
 
 
 def _cacheable(res: dict[str, Any]) -> bool:
-    # Failures are cached too: they depend only on the bytes, like successes. Not a
-    # crash, which may be the library's fault (fixed by an upgrade), nor an unreadable
-    # file, which says something about this run's machine (a permission, a worker
-    # that does not see RAW): the next run must look again.
-    return res.get("error", ("",))[0] not in ("decoder_crashed", "unreadable")
+    return res.get("error", ("",))[0] not in _UNCACHED
 
 
-def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str, Any]]:
-    """Probe results for ``paths``, reusing earlier results for files whose size,
-    modification time and inode are unchanged (hashing is most of ingest's cost).
+def _stats(root: str, paths: list[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Size, mtime_ns and inode of each file (``os.stat``), and whether it could be stat'ed."""
+    sizes, mtimes, inodes = [], [], []
+    for rel in paths:
+        try:
+            st = os.stat(os.path.join(root, rel))
+        except OSError:
+            sizes.append(-1)
+            mtimes.append(-1)
+            inodes.append(0)
+            continue
+        sizes.append(st.st_size)
+        mtimes.append(st.st_mtime_ns)
+        inodes.append(st.st_ino)
+    size = np.array(sizes, dtype=np.int64)
+    return size, np.array(mtimes, dtype=np.int64), np.array(inodes, dtype=np.uint64), size >= 0
 
-    The results live in one table (``OUT/cache/ingest/probes.parquet``), read once:
-    a file reused costs a ``stat`` and a dictionary lookup.
+
+def _reusable(previous: Any, paths: list[str], stat: tuple[np.ndarray, ...]) -> tuple[np.ndarray, np.ndarray]:
+    """Per path: the row of ``previous`` (the probe cache; a later row wins) holding its
+    result, and whether that row's stat is the file's now. Columnar: no Python per file."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    size, mtime, inode, statted = stat
+    if previous is None or not previous.num_rows or not paths:
+        return np.zeros(len(paths), dtype=np.int64), np.zeros(len(paths), dtype=bool)
+    # index_in finds a value's first row: look the paths up in the table reversed, so the
+    # last row written for a path (a part after the table) is the one found.
+    last = previous.num_rows - 1
+    with pandas_left_unloaded():
+        reversed_paths = previous.column("path").take(pa.array(np.arange(last, -1, -1)))
+        found = pc.index_in(pa.array(paths, pa.string()), value_set=reversed_paths)
+    row = last - np.asarray(found.fill_null(last + 1), dtype=np.int64)
+    hit = row >= 0
+    row = np.where(hit, row, 0)
+    for column, now in (("st_size", size), ("st_mtime_ns", mtime), ("st_ino", inode)):
+        hit &= previous.column(column).fill_null(0).to_numpy()[row] == now
+    return row, hit & statted
+
+
+def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> Any:
+    """Probe results for ``paths`` as a table in their order (the probe cache's columns),
+    reusing earlier results for files whose size, modification time and inode are
+    unchanged (hashing is most of ingest's cost).
+
+    The results live in one table (``OUT/cache/ingest/probes.parquet``), read once and
+    joined to this run's listing in Arrow: a file reused costs a ``stat`` and no other
+    Python work; only the new and changed files are probed, in workers.
     """
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
     # The stage's code version: any edit within its reach probes every file again.
     code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
     cache = TableCache(ctx.cache_dir, NAME, "probes", scope=cache_key("probe", code), enabled=ctx.use_cache)
-    previous = _cached_probes(cache.load())
-    results: list[dict[str, Any] | None] = []
-    stats: list[tuple[int, int, int] | None] = []
-    todo: list[int] = []
-    root = os.fspath(raw)
-    for i, rel in enumerate(paths):
-        try:
-            st = os.stat(os.path.join(root, rel))
-            key: tuple[int, int, int] | None = (st.st_size, st.st_mtime_ns, st.st_ino)
-        except OSError:
-            key = None
-        stats.append(key)
-        hit = previous.get(rel)
-        if key is not None and hit is not None and hit[0] == key:
-            results.append(hit[1])
-        else:
-            results.append(None)
-            todo.append(i)
-    pending: list[tuple[str, tuple[int, int, int], dict[str, Any]]] = []
+    previous = cache.load()
+    size, mtime, inode, statted = stat = _stats(os.fspath(raw), paths)
+    row, hit = _reusable(previous, paths, stat)
+    todo = np.flatnonzero(~hit).tolist()
+
+    def stat_of(i: int) -> tuple[Any, Any, Any]:
+        return (int(size[i]), int(mtime[i]), int(inode[i])) if statted[i] else (None, None, None)
+
+    pending: list[tuple[str, tuple[Any, Any, Any], dict[str, Any]]] = []
 
     def remember(j: int, res: dict[str, Any]) -> None:
         i = todo[j]
-        st = stats[i]
-        if st is not None and _cacheable(res):
-            pending.append((paths[i], st, res))
+        if statted[i] and _cacheable(res):
+            pending.append((paths[i], stat_of(i), res))
         if len(pending) >= _PROBE_PART_ROWS:
             cache.append(_probe_table(pending))
             pending.clear()
@@ -340,16 +371,24 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> list[dict[str,
 
     fresh = map_ordered(probe_file, [ProbeJob(str(raw / paths[i]), paths[i]) for i in todo],
                         workers=ctx.workers, scheduler=ctx.scheduler, desc="probe", progress=ctx.progress,
-                        costs=[(stats[i] or (0,))[0] for i in todo], cost_per_worker=_PROBE_BYTES_PER_WORKER,
+                        costs=[int(size[i]) if statted[i] else 0 for i in todo],
+                        cost_per_worker=_PROBE_BYTES_PER_WORKER,
                         meanwhile=ctx.meanwhile, on_result=remember, on_crash=crashed)
-    for i, res in zip(todo, fresh, strict=True):
-        results[i] = res
-    if todo or len(previous) != len(paths) or cache.has_parts:
+    reused = np.flatnonzero(hit)
+    parts = [_probe_table([(paths[i], stat_of(i), res) for i, res in zip(todo, fresh, strict=True)])]
+    if previous is not None and len(reused):
+        parts.insert(0, previous.take(pa.array(row[reused])).cast(_probe_schema()))
+    with pandas_left_unloaded():
+        # Back in path order: the reused rows, then the fresh ones, each taken to its path.
+        order = np.argsort(np.concatenate([reused, np.array(todo, dtype=np.int64)]), kind="stable")
+        table = pa.concat_tables(parts).take(pa.array(order))
+    if todo or previous is None or previous.num_rows != len(paths) or cache.has_parts:
         # The table holds this run's files only: what left RAW leaves the cache.
-        cache.save(_probe_table([(rel, st, res) for rel, st, res in zip(paths, stats, results, strict=True)
-                                 if st is not None and res is not None and _cacheable(res)]))
+        with pandas_left_unloaded():
+            uncached = pc.fill_null(pc.is_in(table.column("error_reason"), value_set=pa.array(_UNCACHED)), False)
+        cache.save(table.filter(pc.and_(pc.is_valid(table.column("st_size")), pc.invert(uncached))))
     ctx.log.info("ingest: %d files probed, %d reused from cache", len(todo), len(paths) - len(todo))
-    return [r for r in results if r is not None]
+    return table
 
 
 _SIDECAR_FIELDS = (*_STAT_FIELDS, ("text", "string"), ("reason", "string"), ("sentence", "string"),
@@ -518,22 +557,25 @@ class Fate:
     rejects: tuple[dict[str, Any], ...] = ()
 
 
-def _ingest_file(ctx: StageContext, rel: str, probe: dict[str, Any], rows: list[MetadataRow], *,
-                 kept_by_hash: dict[str, str], sidecar: str | None, rule: SpeakerRule, links: set[str],
-                 readings: dict[str, SidecarRead]) -> Fate:
+def _ingest_file(ctx: StageContext, rel: str, probe: tuple[str | None, str | None, str | None],
+                 rows: list[MetadataRow], *, kept_by_hash: dict[str, str], sidecar: str | None, rule: SpeakerRule,
+                 links: set[str], readings: dict[str, SidecarRead]) -> Fate:
     """One audio file's fate: probe error, duplicate content, no speaker, or an ingest
-    row with its transcript paired. ``kept_by_hash`` maps the hashes of the files kept
-    so far to their paths, and gains this one when it is kept."""
+    row with its transcript paired. ``probe`` is the file's content hash, or its probe
+    error's reason and sentence; the row holds the fields ingest adds to the probe's
+    (the stage takes the probe's columns from its table). ``kept_by_hash`` maps the
+    hashes of the files kept so far to their paths, and gains this one when it is kept."""
     cfg, table_rel = ctx.config.ingest, ctx.config.ingest.metadata
     lines = ", ".join(str(r.line) for r in rows)
     via = f" (named on line {lines} of {table_rel})" if rows else ""
-    if "error" in probe:
-        reason, sentence = probe["error"]
-        return Fate(None, (reject(NAME, rel, reason, sentence + via),))
-    if probe["sha256"] in kept_by_hash:
+    sha256, reason, sentence = probe
+    if reason is not None:
+        return Fate(None, (reject(NAME, rel, reason, f"{sentence}{via}"),))
+    assert sha256 is not None  # a probe without error has a hash
+    if sha256 in kept_by_hash:
         return Fate(None, (reject(NAME, rel, "duplicate_content",
-                                  f"{rel}: byte-identical to {kept_by_hash[probe['sha256']]!r}, which is kept{via}"),))
-    kept_by_hash[probe["sha256"]] = rel
+                                  f"{rel}: byte-identical to {kept_by_hash[sha256]!r}, which is kept{via}"),))
+    kept_by_hash[sha256] = rel
     rows, repeats = collapse_rows(rows, rel, table_rel)
     speaker_name = _speaker(ctx, rel, rows, via, rule)
     if isinstance(speaker_name, dict):
@@ -543,10 +585,10 @@ def _ingest_file(ctx: StageContext, rel: str, probe: dict[str, Any], rows: list[
                               speaker_from_metadata=cfg.speaker_from == "metadata",
                               sidecar_link=sidecar in links, sidecar_read=readings.get(sidecar or ""))
     return Fate({
-        "source_id": source_id(posixpath.basename(posixpath.splitext(rel)[0]), probe["sha256"]),
+        "source_id": source_id(posixpath.basename(posixpath.splitext(rel)[0]), sha256),
         "source_path": rel,
         "speaker": speaker_id(speaker_name),
-        **probe,
+        "sha256": sha256,
         "transcript": pairing.transcript,
         "transcript_origin": pairing.origin,
         "metadata_line": pairing.metadata_line,
@@ -554,8 +596,9 @@ def _ingest_file(ctx: StageContext, rel: str, probe: dict[str, Any], rows: list[
 
 
 def _summary(accepted: list[dict[str, Any]], rejects: list[dict[str, Any]], *, paths: set[str],
-             metadata_rows: int) -> dict[str, Any]:
-    """Counts of files, rows, transcripts and hours for the report."""
+             metadata_rows: int, durations: list[float]) -> dict[str, Any]:
+    """Counts of files, rows, transcripts and hours for the report (``durations``: the
+    accepted files' seconds, in their order)."""
     return {
         "audio_files_found": len(paths),
         "audio_files_accepted": len(accepted),
@@ -563,7 +606,7 @@ def _summary(accepted: list[dict[str, Any]], rejects: list[dict[str, Any]], *, p
         "metadata_rows": metadata_rows,
         "transcribed": sum(1 for r in accepted if r["transcript"] is not None),
         "transcripts_set_aside": sum(1 for r in rejects if r["reason"] in TRANSCRIPT_REASONS),
-        "hours": sum(r["duration_s"] for r in accepted) / 3600,
+        "hours": sum(durations) / 3600,
         "speakers": len({r["speaker"] for r in accepted}),
     }
 
@@ -586,24 +629,43 @@ def run(ctx: StageContext) -> StageResult:
     paired = [sidecar_by_stem.get(posixpath.splitext(rel)[0]) for rel in paths]
     readings = _read_sidecars(ctx, sorted({s for s in paired if s is not None}), found.links)
     accepted: list[dict[str, Any]] = []
+    kept: list[int] = []  # each accepted row's file, by its index in paths
     kept_by_hash: dict[str, str] = {}
-    for rel, probe, sidecar in zip(paths, probes, paired, strict=True):
+    facts = zip(*(probes.column(c).to_pylist() for c in ("sha256", "error_reason", "error_detail")), strict=True)
+    for i, (rel, probe, sidecar) in enumerate(zip(paths, facts, paired, strict=True)):
         fate = _ingest_file(ctx, rel, probe, by_audio.get(rel, []), kept_by_hash=kept_by_hash,
                             sidecar=sidecar, rule=rule, links=found.links, readings=readings)
         rejects.extend(fate.rejects)
         if fate.row is not None:
             accepted.append(fate.row)
+            kept.append(i)
+    probed = probes.take(np.array(kept, dtype=np.int64))
 
-    summary = {**_summary(accepted, rejects, paths=path_set, metadata_rows=metadata_rows),
+    summary = {**_summary(accepted, rejects, paths=path_set, metadata_rows=metadata_rows,
+                          durations=probed.column("duration_s").to_pylist()),
                "speaker_from": rule.origin}
     stop = environment_failure(rejects, paths=path_set, metadata_rows=metadata_rows, accepted=len(accepted))
     if ctx.config.privacy.pseudonymise:
         _pseudonymise(ctx, accepted, rejects, paths=paths,
                       metadata_speakers={r.speaker for rows in by_audio.values() for r in rows if r.speaker})
         stop = _scrubbed(ctx, stop)
-    accepted.sort(key=lambda r: r["source_path"])
-    return StageResult(manifests={stage_manifest(NAME): (NAME, table_from_rows(NAME, accepted))},
+    return StageResult(manifests={stage_manifest(NAME): (NAME, _ingest_table(accepted, probed))},
                        rejects=rejects, summary=summary, stop=stop)
+
+
+def _ingest_table(accepted: list[dict[str, Any]], probed: Any) -> Any:
+    """The ingest manifest: the rows' own fields, the probe's columns from ``probed``
+    (row for row), sorted by source_path."""
+    import pyarrow as pa
+
+    schema = arrow_schema(NAME)
+    own = {f.name for f in schema} - {name for name, _ in _PROBE_FIELDS}
+    columns: dict[str, Any] = {name: [row[name] for row in accepted] for name in own}
+    columns.update({name: probed.column(name).cast(schema.field(name).type) for name, _ in _PROBE_FIELDS})
+    table = table_from_columns(NAME, columns)
+    with pandas_left_unloaded():
+        # In path order already, unless pseudonyms replaced the paths.
+        return table.take(pa.array(np.argsort(np.array(columns["source_path"], dtype=object), kind="stable")))
 
 
 def _scrubbed(ctx: StageContext, sentence: str) -> str:
