@@ -99,6 +99,9 @@ class StageRecord:
     run_stats: dict[str, Any] = field(default_factory=dict)
     # The stage whose workers were busy while this one ran in the driver, if any.
     during: str | None = None
+    # The driver's CPU seconds (time.process_time) from the stage's start to its end,
+    # what it did meanwhile for other stages included; its workers' are not.
+    cpu_seconds: float = 0.0
 
 
 class Runner:
@@ -245,7 +248,7 @@ class Runner:
 
     def _run_stage(self, name: str, meanwhile: Callable[[], None] | None) -> StageRecord:
         stage = self.stages[name]
-        start = time.perf_counter()
+        start, cpu_start = time.perf_counter(), time.process_time()
         inputs = {n: self._load_input(n) for n in stage.inputs}
         ctx = self._context(inputs, meanwhile)
         params = params_sha256(stage, self.config, cache_dir=ctx.cache_dir if ctx.use_cache else None)
@@ -271,6 +274,7 @@ class Runner:
             self.log.info("%-6s done in %.1f s: %s", name, record.seconds, _short(result.summary))
             if result.run_stats:
                 self.log.info("%-6s this run: %s", name, _short(result.run_stats))
+        record.cpu_seconds = time.process_time() - cpu_start
         self.records.append(record)
         self.done.add(name)
         return record
@@ -390,6 +394,7 @@ class Runner:
             # Timings live under logs/, never in a manifest, so manifests stay byte-identical.
             write_text_atomic(self.out / names.LAST_RUN, json.dumps({
                 "stages": [{"name": r.name, "ran": r.ran, "seconds": round(r.seconds, 4),
+                            "cpu_seconds": round(r.cpu_seconds, 4),
                             **({"during": r.during} if r.during else {}),
                             **({"run_stats": r.run_stats} if r.run_stats else {})} for r in self.records],
                 "workers": self.workers, "scheduler": self.scheduler,
