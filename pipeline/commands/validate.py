@@ -997,11 +997,32 @@ def _gate_hits(s: _Subsets, gate: str, column: str, config: Config) -> np.ndarra
                             rate_max_abs_z=q.rate_max_abs_z, max_clipped_fraction=config.audio.max_clipped_fraction)[gate]
 
 
+def _near_duplicates_clean(s: _Subsets, columns: list[str]) -> bool:
+    """Whether :func:`_check_near_duplicates` finds nothing, settled in Arrow: every
+    pair whose named clip exists is on one side of the held-out split and in one group.
+    False (the frame then words what it finds) also when clip ids repeat or are null."""
+    names = s.having(columns)
+    table = pa.concat_tables([s.tables[n].select(columns).append_column(
+        "held", pa.array(np.full(s.tables[n].num_rows, n == HELDOUT))) for n in names])
+    ids = table.column("clip_id").combine_chunks()
+    if ids.null_count or not _all_distinct(table.column("clip_id")):
+        return False
+    pairs = table.filter(pc.is_valid(table.column("near_duplicate_of")))
+    where = pc.index_in(pairs.column("near_duplicate_of"), value_set=ids)
+    pairs, where = pairs.filter(where.is_valid()), where.drop_null()
+    if pc.any(pc.not_equal(pairs.column("held"), table.column("held").take(where))).as_py():
+        return False
+    regrouped = pc.fill_null(pc.not_equal(pairs.column("group"), table.column("group").take(where)), True)
+    return not pc.any(regrouped).as_py()
+
+
 def _check_near_duplicates(s: _Subsets) -> list[Problem]:
     columns = ["clip_id", "group", "near_duplicate_of"]
     named = pa.chunked_array([c for n in s.having(columns) for c in s.tables[n].column("near_duplicate_of").chunks],
                              pa.string()).drop_null()
     if not len(named):
+        return []
+    if _near_duplicates_clean(s, columns):
         return []
     # Only the rows of a pair: those naming a near-duplicate, and those named.
     named = named.combine_chunks()
