@@ -140,6 +140,8 @@ class Runner:
         self.invocation = invocation
         # Files outside RAW a stage read or wrote: the snapshot watches them too.
         self.watched: set[str] = set()
+        # RAW's files as the snapshot listed them when the run began (StageContext.raw_stats).
+        self.raw_stats: dict[str, tuple[int, int, int]] | None = None
         # Stages finished (run or reused) in this invocation, and those under way.
         self.done: set[str] = set()
         self.running: list[str] = []
@@ -162,7 +164,7 @@ class Runner:
         return StageContext(
             raw=self.raw, out=self.out, config=self.config, inputs=inputs, workers=self.workers,
             scheduler=self.scheduler, progress=self.config.run.progress, log=self.log,
-            use_cache=self.use_cache, options=self.options, meanwhile=meanwhile,
+            use_cache=self.use_cache, options=self.options, meanwhile=meanwhile, raw_stats=self.raw_stats,
         )
 
     def _ready_stages(self, pending: list[str]) -> Callable[[], None]:
@@ -375,7 +377,9 @@ class Runner:
             # RAW is listed before any work, so a file that arrives during the run
             # makes the next run a full one.
             record_snapshot = self.invocation is not None and tuple(stages) == order
-            raw_listing = snapshot.raw_digest(self.raw) if record_snapshot else ""
+            if record_snapshot:
+                self.raw_stats = {}
+            raw_listing = snapshot.raw_digest(self.raw, stats=self.raw_stats) if record_snapshot else ""
             snapshot.forget(self.out)
             removed = remove_stale_temporaries(self.out)
             if removed:

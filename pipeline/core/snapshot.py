@@ -38,7 +38,8 @@ def _stat_entry(st: os.stat_result) -> list[int]:
     return [st.st_mode, st.st_size, st.st_mtime_ns, st.st_ino]
 
 
-def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset()) -> str:
+def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset(),
+                stats: dict[str, tuple[int, int, int]] | None = None) -> str:
     """A hash of every entry under ``root``: relative path, mode, size, mtime_ns and
     inode (symlinks not followed, but their targets stat'ed too; a folder counts by
     its name and mode, its entries being hashed anyway). Top-level names in
@@ -49,6 +50,10 @@ def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset()) -> str:
     One ``lstat`` per entry (``os.scandir`` already knows which entries are folders)
     and one hash update per folder: 100,000 files cost a fraction of a second, where
     a list of every entry serialised as JSON cost several times that.
+
+    ``stats``, when given, receives ``(size, mtime_ns, inode)`` by '/'-separated relative
+    path of every regular file (not of links), so a stage can reuse the listing instead
+    of a ``stat`` per file of its own.
     """
     digest = hashlib.sha256()
     stack = [(os.fspath(root), "")]
@@ -76,6 +81,8 @@ def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset()) -> str:
                 lines.append(f"{rel}\0gone")
                 continue
             line = f"{rel}\0{st.st_mode}\0{st.st_size}\0{st.st_mtime_ns}\0{st.st_ino}"
+            if stats is not None and stat.S_ISREG(st.st_mode):
+                stats[rel] = (st.st_size, st.st_mtime_ns, st.st_ino)
             if stat.S_ISLNK(st.st_mode):
                 try:
                     target = os.stat(entry.path)
@@ -160,8 +167,8 @@ def _files_state(paths: list[str]) -> list[list[Any]]:
     return state
 
 
-def raw_digest(raw: Path) -> str:
-    return tree_digest(raw)
+def raw_digest(raw: Path, *, stats: dict[str, tuple[int, int, int]] | None = None) -> str:
+    return tree_digest(raw, stats=stats)
 
 
 def capture(*, invocation: str, raw_digest: str, out: Path, watched: list[str], notes: list[str]) -> dict[str, Any]:

@@ -24,7 +24,7 @@ from __future__ import annotations
 import importlib
 import logging
 import posixpath
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -270,6 +270,10 @@ class StageContext:
     # Later stages the runner can run in this process while this one waits for its
     # workers; a stage with a pool hands it to map_ordered(meanwhile=...).
     meanwhile: Callable[[], None] | None = None
+    # ``(size, mtime_ns, inode)`` of RAW's regular files by relative path, as the runner
+    # listed them when the run began (pipeline.core.snapshot.tree_digest), or None: a
+    # stage may use it instead of a ``stat`` per file.
+    raw_stats: Mapping[str, tuple[int, int, int]] | None = None
 
     @property
     def cache_dir(self) -> Path:

@@ -17,7 +17,7 @@ import posixpath
 import re
 import unicodedata
 from collections import defaultdict
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -290,10 +290,19 @@ def _cacheable(res: dict[str, Any]) -> bool:
     return res.get("error", ("",))[0] not in _UNCACHED
 
 
-def _stats(root: str, paths: list[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Size, mtime_ns and inode of each file (``os.stat``), and whether it could be stat'ed."""
+def _stats(root: str, paths: list[str], known: Mapping[str, tuple[int, int, int]] | None = None,
+           ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Size, mtime_ns and inode of each file, and whether it could be stat'ed: from
+    ``known`` (StageContext.raw_stats, the run's listing of RAW) or ``os.stat``."""
     sizes, mtimes, inodes = [], [], []
+    known = known or {}
     for rel in paths:
+        given = known.get(rel)
+        if given is not None:
+            sizes.append(given[0])
+            mtimes.append(given[1])
+            inodes.append(given[2])
+            continue
         try:
             st = os.stat(os.path.join(root, rel))
         except OSError:
@@ -347,7 +356,7 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> Any:
     code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
     cache = TableCache(ctx.cache_dir, NAME, "probes", scope=cache_key("probe", code), enabled=ctx.use_cache)
     previous = cache.load()
-    size, mtime, inode, statted = stat = _stats(os.fspath(raw), paths)
+    size, mtime, inode, statted = stat = _stats(os.fspath(raw), paths, ctx.raw_stats)
     row, hit = _reusable(previous, paths, stat)
     todo = np.flatnonzero(~hit).tolist()
 
@@ -418,9 +427,12 @@ def _read_sidecars(ctx: StageContext, needed: list[str], links: set[str]) -> dic
     found: dict[str, SidecarRead] = {}
     keep: list[tuple[Any, ...]] = []
     reused = 0
+    listed = ctx.raw_stats or {}
     for rel in needed:
         st = None
         if rel not in links:
+            st = listed.get(rel)
+        if st is None and rel not in links:
             with contextlib.suppress(OSError):
                 s = os.stat(os.path.join(root, rel))
                 st = (s.st_size, s.st_mtime_ns, s.st_ino)
