@@ -146,7 +146,10 @@ def language_summary(table: pa.Table, languages: dict[str, str], toolbox: Toolbo
 
     from pipeline.text.guard import oov_rate
 
-    transcripts = Counter(canonical_tag(t) if LANGUAGE_TAG.match(t) else t for t in languages.values())
+    # Each distinct cell canonicalised once, not once per transcript.
+    transcripts: Counter[str] = Counter()
+    for cell, count in Counter(languages.values()).items():
+        transcripts[canonical_tag(cell) if LANGUAGE_TAG.match(cell) else cell] += count
     words = table.column("words").combine_chunks()
     rows, flat = counted_items(words)
     oov = row_members(rows, flat, table.column("oov_words").combine_chunks())
