@@ -305,7 +305,7 @@ def pair_transcript(raw: Path, rel: str, rows: Sequence[MetadataRow], sidecar_re
             found.append(_Found(text, sidecar_rel, sidecar_rel, sidecar_rel, None))
     pairing = Pairing()
     untranscribed = f"{rel!r} is kept as untranscribed audio"
-    if len({f.text for f in found}) > 1:
+    if len(found) > 1 and len({f.text for f in found}) > 1:
         for f in found:
             others = "; ".join(f"{o.label}: {_shown(o.text)}" for o in found if o is not f)
             pairing.rejects.append(reject(REJECTING_STAGE, f.source, "conflicting_transcripts",
@@ -317,7 +317,8 @@ def pair_transcript(raw: Path, rel: str, rows: Sequence[MetadataRow], sidecar_re
     elif found:
         pairing.transcript = found[0].text
         pairing.origin = "sidecar" if found[0].line is None else "metadata"
-    fate = (f"{rel!r} keeps the transcript from {found[0].label}" if found else untranscribed)
+    # Worded only for a problem (most files have none).
+    fate = "" if not problems else (f"{rel!r} keeps the transcript from {found[0].label}" if found else untranscribed)
     for source, reason, sentence, fix in problems:
         pairing.rejects.append(reject(REJECTING_STAGE, source, reason, f"{sentence}; the transcript is set aside and {fate}; {fix}"))
     # A row is used when it gave the transcript (or said there is none) or the speaker.
