@@ -27,7 +27,7 @@ from pipeline.stages import split
 from pipeline.stages.heldout import GroupFacts, PartTarget, choose_parts
 from pipeline.stages.ledger import MAGIC, MAGIC_V1, read_ledger
 from pipeline.stages.prompts import prompt_key
-from tests.test_split import Corpus, all_rows, make_ctx, rows_by_subset
+from tests.test_split import Corpus, all_rows, make_ctx, random_fingerprint, rows_by_subset
 
 # Invented speaker names.
 SPEAKERS = ("avocet", "bittern", "curlew", "dunlin", "eider", "fulmar", "gannet", "hobby", "ibis", "jacana",
@@ -315,6 +315,30 @@ def test_three_batches_of_arriving_audio_move_no_clip_between_subsets_or_parts(t
         seen.update(now)
         check_parts_and_prompts(result)
     assert {"dev", "test"} <= set(seen.values())
+
+
+def test_a_new_near_duplicate_binding_dev_and_test_moves_nothing_and_is_reported(tmp_path: Path) -> None:
+    # A clip arrives from a test speaker that is a copy of a dev speaker's clip: the
+    # near-duplicate binds the two groups, which the ledger holds in different parts.
+    # Nothing moves (docs/split.md, The ledger), the new clip stays with its own
+    # speaker's part, the split reports the bound group, and validate still says that
+    # dev and test now share a near-duplicate.
+    corpus = prompted_corpus()
+    data = {"split": {"heldout": "34%", "labelled_budgets": ["1m"]}}
+    before = places(split.run(make_ctx(tmp_path, corpus, data)))
+    speakers = {p: sorted({r["speaker"] for r in corpus.audio if before[r["clip_id"]] == p}) for p in ("dev", "test")}
+    copied = next(r for r in corpus.audio if r["speaker"] == speakers["dev"][0])
+    new = corpus.add(speakers["test"][0], copied["duration_s"], transcribed=False,
+                     fingerprint=random_fingerprint(copied["clip_id"], copied["duration_s"]))
+    result = split.run(make_ctx(tmp_path, corpus, data))
+    after = places(result)
+    assert {c: (before[c], after[c]) for c in before if before[c] != after[c]
+            and not {before[c], after[c]} <= {"labelled", "unlabelled"}} == {}
+    assert after[new] == "test"
+    bound = all_rows(result)[new]["group"]
+    assert result.summary["changes"]["straddling_parts_groups"] == [bound]
+    problems = validate_out(write_out(tmp_path, result, data), audio_files=False).problems
+    assert {(p.check, p.column) for p in problems} == {("part_leak", "group")}
 
 
 def test_version_1_ledger_gets_parts_without_moving_anything(tmp_path: Path) -> None:

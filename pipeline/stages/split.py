@@ -531,6 +531,7 @@ class Assignment:
     demoted: frozenset[str] = frozenset()
     demoted_labelled: int = 0
     facts: dict[str, GroupFacts] = field(default_factory=dict)
+    straddling_parts: list[str] = field(default_factory=list)
 
 
 def _known_sides(groups: Mapping[str, list[Clip]], ledger: Ledger | None) -> tuple[dict[str, set[str]], list[str]]:
@@ -688,16 +689,36 @@ def group_facts(groups: Mapping[str, list[Clip]], balance: Balance) -> dict[str,
 
 def _clip_parts(clips: Sequence[Clip], subset: Mapping[str, str], places: Mapping[str, str],
                 known: Mapping[str, ClipRecord], configured: Sequence[str]) -> dict[str, str]:
-    """Each held-out clip's part: the ledger's when it names a configured one, else its group's."""
+    """Each held-out clip's part: the ledger's when it names a configured one, else the
+    part the ledger gives the clip's own base group (its speaker, say), else its group's.
+
+    A new near-duplicate can bind groups the ledger holds in two parts; their earlier
+    clips keep their parts, and a new clip follows its own base group, so a speaker
+    never gains a second part (the bound group is reported as straddling parts)."""
+    base_parts: dict[str, set[str]] = defaultdict(set)
+    for c in clips:
+        rec = known.get(c.clip_id)
+        if rec is not None and rec.part in configured:
+            base_parts[c.base_group].add(rec.part)
     parts = {}
     for c in clips:
         if subset[c.clip_id] != HELDOUT:
             continue
         rec = known.get(c.clip_id)
         mine = rec.part if rec is not None and rec.part in configured else ""
+        base = next((p for p in configured if p in base_parts.get(c.base_group, ())), "")
         group_place = places.get(c.group, TRAINING)
-        parts[c.clip_id] = mine or (group_place if group_place != TRAINING else configured[0])
+        parts[c.clip_id] = mine or base or (group_place if group_place != TRAINING else configured[0])
     return parts
+
+
+def _straddling_parts(clips: Sequence[Clip], parts: Mapping[str, str]) -> list[str]:
+    """Groups whose held-out clips sit in more than one part (see :func:`_clip_parts`)."""
+    spans: dict[str, set[str]] = defaultdict(set)
+    for c in clips:
+        if c.clip_id in parts:
+            spans[c.group].add(parts[c.clip_id])
+    return sorted(g for g, found in spans.items() if len(found) > 1)
 
 
 def _demote(found: Sorted, clips: Sequence[Clip], parts: Mapping[str, str],
@@ -759,7 +780,8 @@ def assign(clips: Sequence[Clip], *, ledger: Ledger | None, seed: int, targets: 
     unscored = _unscore(clips, parts, tiers, disjoint) if text_overlap == "unscore" else frozenset()
     return Assignment(subset, tiers, sides, outcomes, straddling, continues, found.gated_out, waiting,
                       found.lost_transcript, places=places, parts=parts, unscored=unscored, demoted=demoted,
-                      demoted_labelled=demoted_labelled, facts=facts)
+                      demoted_labelled=demoted_labelled, facts=facts,
+                      straddling_parts=_straddling_parts(clips, parts))
 
 
 # The subset columns copied from the audio row as they are.
@@ -884,6 +906,7 @@ def _changes(ledger: Ledger | None, assignment: Assignment, present: set[str]) -
         "tiers_left": dict(sorted(left.items())),
         "renamed_tiers": {n: o for n, o in sorted(assignment.continues.items()) if n != o},
         "straddling_groups": assignment.straddling,
+        "straddling_parts_groups": assignment.straddling_parts,
         "gated_out": assignment.gated_out,
         "waiting_unlabelled": assignment.waiting,
         "lost_transcript": assignment.lost_transcript,
@@ -902,6 +925,11 @@ def _log_changes(ctx: StageContext, changes: dict[str, Any], ledger_path: str, u
         ctx.log.warning("split: %d groups have ledger clips on both sides since new near-duplicates bound them "
                         "(%s); earlier clips keep their subsets and new ones go to held-out; --fresh regroups",
                         len(changes["straddling_groups"]), ", ".join(changes["straddling_groups"][:5]))
+    if changes["straddling_parts_groups"]:
+        ctx.log.warning("split: %d held-out groups have clips in two parts since new near-duplicates bound them "
+                        "(%s); earlier clips keep their parts and new ones follow their own %s; --fresh regroups",
+                        len(changes["straddling_parts_groups"]), ", ".join(changes["straddling_parts_groups"][:5]),
+                        ctx.config.split.group_by)
     if changes["parts_moved"]:
         ctx.log.warning("split: held-out clips given a part (from a version 1 ledger, or a part no longer in "
                         "split.parts): %s", fmt(changes["parts_moved"]))
