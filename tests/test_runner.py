@@ -76,3 +76,24 @@ def test_a_full_prepare_never_loads_pandas_or_scipy_signal(small_raw: Path, tmp_
     # An English run loads no rule engine: neither epitran (with pandas) nor libespeak-ng.
     assert done.stdout.strip().splitlines()[-1] == "0 [] False"
     assert (tmp_path / "out" / "manifests" / "labelled.parquet").is_file()
+
+
+def test_ingest_reusing_its_probe_cache_leaves_pandas_unloaded(small_raw: Path, tmp_path: Path) -> None:
+    # A rebuild's ingest joins the probe cache to RAW's listing in Arrow; turning the
+    # join's result into numpy imports pandas unless refused (0.17 s of a 20,000-file
+    # rebuild's ingest). A fresh interpreter, since this test process may hold pandas.
+    import subprocess
+    import sys
+
+    out = tmp_path / "out"
+    assert main(["prepare", str(small_raw), str(out), "--workers", "1", "--no-progress"]) == 0
+    script = (
+        "import sys\n"
+        "from pipeline.commands.cli import main\n"
+        f"rc = main(['stage', 'ingest', {str(small_raw)!r}, {str(out)!r}, '--workers', '1', '--no-progress'])\n"
+        "print(rc, 'pandas' in sys.modules)\n"
+    )
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, check=True)
+    assert done.stdout.strip().splitlines()[-1] == "0 False"
+    (log,) = (out / "logs").glob("stage-*.log")
+    assert "ingest: 0 files probed" in log.read_text(encoding="utf-8")  # the cache's path was taken

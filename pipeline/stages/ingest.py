@@ -337,11 +337,12 @@ def _reusable(previous: Any, paths: list[str], stat: tuple[np.ndarray, ...]) -> 
     with pandas_left_unloaded():
         reversed_paths = previous.column("path").take(pa.array(np.arange(last, -1, -1)))
         found = pc.index_in(pa.array(paths, pa.string()), value_set=reversed_paths)
-    row = last - np.asarray(found.fill_null(last + 1), dtype=np.int64)
-    hit = row >= 0
-    row = np.where(hit, row, 0)
-    for column, now in (("st_size", size), ("st_mtime_ns", mtime), ("st_ino", inode)):
-        hit &= previous.column(column).fill_null(0).to_numpy()[row] == now
+        # Arrow to numpy imports pandas too (0.17 s, a third of a 20,000-file rerun's ingest).
+        row = last - np.asarray(found.fill_null(last + 1), dtype=np.int64)
+        hit = row >= 0
+        row = np.where(hit, row, 0)
+        for column, now in (("st_size", size), ("st_mtime_ns", mtime), ("st_ino", inode)):
+            hit &= previous.column(column).fill_null(0).to_numpy()[row] == now
     return row, hit & statted
 
 
