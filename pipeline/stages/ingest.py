@@ -54,7 +54,8 @@ _SLUG_KEEP = re.compile(r"[^a-z0-9_-]+")
 
 def slug(text: str, *, max_chars: int = 40) -> str:
     """Lower-case ASCII id fragment of ``text`` (accents folded, other runs -> '-')."""
-    ascii_text = unicodedata.normalize("NFKD", text).encode("ascii", "ignore").decode()
+    # NFKD leaves ASCII as it is: most names skip the fold.
+    ascii_text = text if text.isascii() else unicodedata.normalize("NFKD", text).encode("ascii", "ignore").decode()
     cleaned = _SLUG_KEEP.sub("-", ascii_text.lower()).strip("-_")[:max_chars].strip("-_")
     return cleaned or "clip"
 
@@ -584,8 +585,7 @@ def _ingest_file(ctx: StageContext, rel: str, probe: tuple[str | None, str | Non
     (the stage takes the probe's columns from its table). ``kept_by_hash`` maps the
     hashes of the files kept so far to their paths, and gains this one when it is kept."""
     cfg, table_rel = ctx.config.ingest, ctx.config.ingest.metadata
-    lines = ", ".join(str(r.line) for r in rows)
-    via = f" (named on line {lines} of {table_rel})" if rows else ""
+    via = f" (named on line {', '.join(str(r.line) for r in rows)} of {table_rel})" if rows else ""
     sha256, reason, sentence = probe
     if reason is not None:
         return Fate(None, (reject(NAME, rel, reason, f"{sentence}{via}"),))
@@ -594,7 +594,7 @@ def _ingest_file(ctx: StageContext, rel: str, probe: tuple[str | None, str | Non
         return Fate(None, (reject(NAME, rel, "duplicate_content",
                                   f"{rel}: byte-identical to {kept_by_hash[sha256]!r}, which is kept{via}"),))
     kept_by_hash[sha256] = rel
-    rows, repeats = collapse_rows(rows, rel, table_rel)
+    rows, repeats = collapse_rows(rows, rel, table_rel) if rows else (rows, [])
     speaker_name = _speaker(ctx, rel, rows, via, rule)
     if isinstance(speaker_name, dict):
         return Fate(None, (*repeats, speaker_name))

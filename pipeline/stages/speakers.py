@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import re
 import unicodedata
@@ -9,6 +10,8 @@ import unicodedata
 _SPEAKER_KEEP = re.compile(r"[^A-Za-z0-9_.-]+")
 
 
+# Memoised: a rebuild asks once per file, and a corpus has few speakers.
+@functools.lru_cache(maxsize=4096)
 def speaker_id(name: str) -> str:
     """A file-name-safe speaker id; a name that needs changing gets a hash suffix so two
     different names can never map to one id.

@@ -283,6 +283,10 @@ def pair_transcript(raw: Path, rel: str, rows: Sequence[MetadataRow], sidecar_re
     all set aside. The audio is kept whatever happens to its transcripts.
     ``sidecar_link``: whether the sidecar is a symbolic link (see :func:`read_sidecar`);
     ``sidecar_read``: what :func:`read_sidecar` gave for it, when the caller has it."""
+    if not rows and sidecar_rel is None:
+        return Pairing()  # what the general case below gives, without its work per file
+    if not rows and sidecar_read is not None and sidecar_read[1] is None and sidecar_read[0] is not None:
+        return Pairing(sidecar_read[0], "sidecar")
     found: list[_Found] = []
     problems: list[tuple[str, str, str, str]] = []  # (source, reason, sentence, fix)
     set_aside: set[int] = set()  # metadata lines whose transcript is set aside
