@@ -254,6 +254,9 @@ class _Parser:
         extra = 0 if self.v1 else 1  # version 2 adds the part to clip and group rows
         clip_lines: dict[str, int] = {}
         sources: dict[str, str] = {}
+        # One record per distinct (subset, tiers, group, part) text, checked once and
+        # shared: a corpus has few groups and tiers, and a record is immutable.
+        records: dict[tuple[str, ...], ClipRecord] = {}
         for line_no, raw_line in enumerate(lines[1:], start=2):
             line = raw_line.rstrip("\r")
             if not line.strip():
@@ -282,9 +285,13 @@ class _Parser:
                     raise self.fail(line_no, subset, "a subset: labelled, unlabelled or heldout")
                 if cid in clips:
                     raise self.fail(line_no, cid, "each clip id once")
-                tiers = self.tiers(line_no, tier_text, subset, budgets)
-                part = self.part(line_no, fields[5], subset) if extra else ""
-                clips[cid] = ClipRecord(subset, tiers, group, part)
+                key = tuple(fields[2:])
+                rec = records.get(key)
+                if rec is None:
+                    tiers = self.tiers(line_no, tier_text, subset, budgets)
+                    part = self.part(line_no, fields[5], subset) if extra else ""
+                    rec = records[key] = ClipRecord(subset, tiers, group, part)
+                clips[cid] = rec
                 clip_lines[cid] = line_no
             elif kind == "source":
                 if len(fields) != 3 or not _SOURCE_KEY.match(fields[1]) or fields[2] not in SOURCE_STATES:

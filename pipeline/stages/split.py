@@ -1177,8 +1177,14 @@ def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[C
     """
     groups = dict(assignment.sides)
     parts = {g: place for g, place in assignment.places.items() if place != TRAINING}
-    clips = {c.clip_id: ClipRecord(assignment.subset[c.clip_id], assignment.tiers.get(c.clip_id, ()), c.group,
-                                   assignment.parts.get(c.clip_id, "")) for c in kept}
+    # Records are immutable: one per distinct (subset, tiers, group, part), shared.
+    records: dict[tuple[str, tuple[str, ...], str, str], ClipRecord] = {}
+    clips: dict[str, ClipRecord] = {}
+    for c in kept:
+        key = (assignment.subset[c.clip_id], assignment.tiers.get(c.clip_id, ()), c.group,
+               assignment.parts.get(c.clip_id, ""))
+        rec = records.get(key)
+        clips[c.clip_id] = rec if rec is not None else records.setdefault(key, ClipRecord(*key))
     known = dict.fromkeys(sorted(sources), "present")
     budgets = _budget_names(cfg_settings["budgets"])
     if ledger is not None:
