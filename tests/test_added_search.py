@@ -66,3 +66,36 @@ def test_keys_taken_over_the_cap_unmake_earlier_pairs() -> None:
     grown = [*old, np.array([a, b, np.uint32(7)], np.uint32)]
     got = search_added(*_flat(grown), np.array([False, False, True]), earlier, **params)
     assert got.as_list() == search_pairs(*_flat(grown), **params).as_list() == []
+
+
+def test_cache_serves_an_added_clip_and_misses_a_changed_one(tmp_path, caplog) -> None:
+    """The split stage's cache (pipeline.stages.duplicate_cache): keyed by clip id, audio
+    SHA-256 and fingerprint length, it searches only added clips while those keys hold,
+    and searches everything when a clip's audio or fingerprint length changed."""
+    import logging
+    from types import SimpleNamespace
+
+    import pyarrow as pa
+
+    from pipeline.stages.duplicate_cache import cache_keys, near_duplicates
+
+    fps = _corpus(np.random.default_rng(5), 30, 12)
+    ctx = SimpleNamespace(cache_dir=tmp_path, use_cache=True)
+    log = logging.getLogger("test-duplicate-cache")
+
+    def run(count: int, sha: list[str], chars: list[int]) -> str:
+        caplog.clear()
+        keys = cache_keys(pa.chunked_array([[f"c{k:02d}" for k in range(count)]]), pa.chunked_array([sha[:count]]),
+                          np.array(chars[:count]))
+        with caplog.at_level(logging.INFO, logger=log.name):
+            found = near_duplicates(ctx, keys, _flat(fps[:count]), min_similarity=0.6, log=log)
+        assert found == search_pairs(*_flat(fps[:count]), min_similarity=0.6).as_list()
+        return "added since" if "added since" in caplog.text else "all"
+
+    sha = [f"{k:064x}" for k in range(30)]
+    chars = [fp.size for fp in fps]
+    assert run(25, sha, chars) == "all"
+    assert run(30, sha, chars) == "added since"
+    assert run(30, sha[:3] + ["f" * 64] + sha[4:], chars) == "all"  # audio changed
+    assert run(30, sha[:3] + ["f" * 64] + sha[4:], chars) == "added since"  # nothing added
+    assert run(30, sha[:3] + ["f" * 64] + sha[4:], [0] + chars[1:]) == "all"  # fingerprint now empty

@@ -61,7 +61,7 @@ from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.signal.fingerprint import decode_fingerprints, find_near_duplicates_flat
 from pipeline.stages import gates
 from pipeline.stages.attributes import Attributes, read_attributes
-from pipeline.stages.duplicate_cache import near_duplicates, text_digests
+from pipeline.stages.duplicate_cache import cache_keys, near_duplicates
 from pipeline.stages.heldout import (
     TRAINING,
     GroupFacts,
@@ -268,19 +268,19 @@ class Joined:
     text_rows: np.ndarray
     fingerprints: tuple[np.ndarray, np.ndarray]
     orphans: int
-    digests: list[bytes] | None = None
+    cache_keys: pa.Table | None = None
 
     def numbers(self, column: str) -> np.ndarray:
         """A numeric audio column as float64, NaN where null."""
         return self.audio.column(column).to_numpy().astype(np.float64, copy=False)
 
 
-def _decoded_fingerprints(column: pa.ChunkedArray, order: np.ndarray, *, digests: bool = False
-                          ) -> tuple[tuple[np.ndarray, np.ndarray], list[bytes] | None]:
+def _decoded_fingerprints(column: pa.ChunkedArray, order: np.ndarray
+                          ) -> tuple[tuple[np.ndarray, np.ndarray], np.ndarray]:
     """The fingerprint column decoded at once from its Arrow buffers (values, offsets) in
     the row order ``order``: no Python string or array per clip (245,725 clips: 16 s and
-    two objects each before), no sorted copy of the texts; with ``digests``, each text's
-    digest too (:func:`duplicate_cache.text_digests`), in the same order."""
+    two objects each before), no sorted copy of the texts; and each text's length in
+    characters, in the same order."""
     # One chunk (a manifest of one row group) is used as it is: combining copies it.
     texts = column.chunk(0) if column.num_chunks == 1 else column.combine_chunks()
     if texts.null_count:
@@ -289,8 +289,7 @@ def _decoded_fingerprints(column: pa.ChunkedArray, order: np.ndarray, *, digests
     width = np.int64 if pa.types.is_large_string(texts.type) else np.int32
     bounds = np.frombuffer(offsets, width)[texts.offset: texts.offset + len(texts) + 1].astype(np.int64)
     chars = np.frombuffer(data, np.uint8) if data is not None else np.zeros(0, np.uint8)
-    found = text_digests(memoryview(chars), bounds[:-1][order].tolist(), bounds[1:][order].tolist()) if digests else None
-    return decode_fingerprints(chars, bounds, order=order), found
+    return decode_fingerprints(chars, bounds, order=order), np.diff(bounds)[order]
 
 
 def _first_repeat(ids: pa.ChunkedArray) -> str | None:
@@ -302,17 +301,16 @@ def _first_repeat(ids: pa.ChunkedArray) -> str | None:
     return ids[int(hits[0]) + 1].as_py() if hits.size else None
 
 
-def join_rows(audio: pa.Table, text: pa.Table, *, digests: bool = False) -> Joined:
+def join_rows(audio: pa.Table, text: pa.Table, *, keys: bool = False) -> Joined:
     """Join the audio and text stages' rows by clip_id; DataError for a clip listed twice.
 
     Columnar: the audio rows stay an Arrow table; only the transcripts (a fraction of
-    the clips) become Python rows. With ``digests``, :attr:`Joined.digests` holds each
-    clip's fingerprint digest, for the near-duplicate cache."""
+    the clips) become Python rows. With ``keys``, :attr:`Joined.cache_keys` holds each
+    clip's key in the near-duplicate cache (:func:`duplicate_cache.cache_keys`)."""
     # Sorted without the fingerprints, which are decoded in sorted order from the
     # input's own buffers (a sorted copy of them peaked 0.5 GB higher at 233,161 clips).
     order = pc.sort_indices(audio, sort_keys=[("clip_id", "ascending")])
-    fingerprints, fingerprint_digests = _decoded_fingerprints(audio.column("fingerprint"), order.to_numpy(),
-                                                              digests=digests)
+    fingerprints, fingerprint_chars = _decoded_fingerprints(audio.column("fingerprint"), order.to_numpy())
     audio = audio.drop_columns(["fingerprint"]).take(order)
     twice = _first_repeat(text.column("clip_id").sort())
     if twice is not None:
@@ -328,7 +326,8 @@ def join_rows(audio: pa.Table, text: pa.Table, *, digests: bool = False) -> Join
     by_row = text.to_pylist()
     texts = [by_row[r] if r >= 0 else None for r in text_rows.tolist()]
     orphans = len(by_row) - int(np.count_nonzero(text_rows >= 0))
-    return Joined(audio, text, texts, text_rows, fingerprints, orphans, fingerprint_digests)
+    found = cache_keys(ids, audio.column("audio_sha256"), fingerprint_chars) if keys else None
+    return Joined(audio, text, texts, text_rows, fingerprints, orphans, found)
 
 
 def plain_phones(text: dict[str, Any] | None, *, word_boundary: str) -> tuple[str, ...]:
@@ -1085,14 +1084,14 @@ def _run(ctx: StageContext) -> StageResult:
     cfg = ctx.config
     sc = cfg.split
     budgets = _budgets(sc.labelled_budgets)
-    joined = join_rows(ctx.inputs["audio"], ctx.inputs["text"], digests=ctx.use_cache)
+    joined = join_rows(ctx.inputs["audio"], ctx.inputs["text"], keys=ctx.use_cache)
     # The fingerprint texts are decoded: the input table keeps the other columns only, so
     # their buffers (342 MB at 233,161 clips) are freed before the search.
     ctx.inputs["audio"] = ctx.inputs["audio"].drop_columns(["fingerprint"])
     # Arrow's allocator keeps freed pages (the Parquet read's working buffers among them,
     # 0.8 GB at 233,161 clips); the search allocates through numpy, so hand them back.
     pa.default_memory_pool().release_unused()
-    near = near_duplicates(ctx, joined.audio.column("clip_id"), joined.digests, joined.fingerprints,
+    near = near_duplicates(ctx, joined.cache_keys, joined.fingerprints,
                            min_similarity=cfg.quality.near_duplicate_min_similarity, log=ctx.log)
     clips, pairs = build_clips(joined, cfg, near=near)
     orphans = joined.orphans
