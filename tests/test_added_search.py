@@ -1,7 +1,9 @@
 """The search after clips were added equals a search of the whole corpus.
 
-The reference is :func:`pipeline.signal.fingerprint.find_near_duplicates_flat` (itself
-tested against a per-clip search in tests/test_fingerprint.py). Small alphabets make
+The reference is a search of the whole corpus, :func:`search_pairs` (which
+:func:`pipeline.signal.fingerprint.find_near_duplicates_flat` returns as a list; its
+candidate search is checked against a per-clip search, its results against analytic
+cases and brute force, in tests/test_fingerprint.py). Small alphabets make
 keys shared by many clips, so adding clips takes keys over the cap and unmakes
 earlier candidates, the case the shared-key counts are kept for.
 """

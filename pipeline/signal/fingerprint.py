@@ -547,21 +547,13 @@ def find_near_duplicates_flat(
     >>> find_near_duplicates_flat(np.concatenate([fp, other, fp]), np.array([0, 200, 400, 600]), min_similarity=0.85)
     [(0, 2, 1.0)]
     """
-    check_search_parameters(min_similarity=min_similarity, max_clips_per_key=max_clips_per_key,
-                            min_shared_keys=min_shared_keys)
-    values = np.asarray(values, dtype=np.uint32)
-    offsets = np.asarray(offsets, dtype=np.int64)
-    candidates = _candidate_pairs(values, offsets, max_clips_per_key=max_clips_per_key,
-                                  min_shared_keys=min_shared_keys)
-    n_clips = len(offsets) - 1
-    found = []
-    for code in candidates.tolist():
-        i, j = divmod(code, n_clips)
-        sim = fingerprint_similarity(values[offsets[i]:offsets[i + 1]], values[offsets[j]:offsets[j + 1]],
-                                     max_offset_frames=max_offset_frames, min_overlap_frames=min_overlap_frames)
-        if sim >= min_similarity:
-            found.append((i, j, sim))
-    return found
+    # One search for both: pipeline.signal.added_search keeps each pair's shared keys
+    # for a rebuild's search of added clips (imported here, as it imports this module).
+    from pipeline.signal.added_search import search_pairs
+
+    return search_pairs(values, offsets, min_similarity=min_similarity, max_offset_frames=max_offset_frames,
+                        min_overlap_frames=min_overlap_frames, max_clips_per_key=max_clips_per_key,
+                        min_shared_keys=min_shared_keys).as_list()
 
 
 def check_search_parameters(*, min_similarity: float, max_clips_per_key: int, min_shared_keys: int) -> None:
