@@ -112,43 +112,25 @@ class FileOutcome:
 
 
 class LongTermPsd:
-    """Welch PSD of a stream, block by block, equal to ``bandwidth.long_term_psd`` of
-    the whole signal.
-
-    Each block is joined to the unused tail of the previous one and only whole Welch
-    segments (side by side, as ``long_term_psd`` takes them) are used, so every segment of
-    the full signal is counted exactly once; the per-block PSDs are averaged weighted
-    by their segment counts.
-    """
+    """Welch PSD of a stream, block by block (``bandwidth.WelchStream``, equal bit for
+    bit to ``bandwidth.long_term_psd`` of the whole signal), and the bandwidth it shows."""
 
     def __init__(self, *, sample_rate: int) -> None:
+        from pipeline.signal.bandwidth import WelchStream
+
         self.sample_rate = sample_rate
-        self._carry = np.zeros(0, dtype=np.float32)
-        self._sum: np.ndarray | None = None
-        self._freqs: np.ndarray | None = None
-        self._segments = 0
+        self._stream = WelchStream(sample_rate=sample_rate)
 
     def push(self, samples: np.ndarray) -> None:
-        from pipeline.signal.bandwidth import long_term_psd
-
-        data = np.concatenate([self._carry, np.asarray(samples, dtype=np.float32)])
-        freqs, psd = long_term_psd(data, sample_rate=self.sample_rate)
-        if freqs.size == 0:
-            self._carry = data
-            return
-        hop = 2 * (freqs.size - 1)  # the segment length
-        count = len(data) // hop
-        self._sum = psd * count if self._sum is None else self._sum + psd * count
-        self._freqs = freqs
-        self._segments += count
-        self._carry = data[count * hop:].copy()
+        self._stream.push(samples)
 
     def bandwidth_hz(self) -> float | None:
         from pipeline.signal.bandwidth import bandwidth_from_psd
 
-        if self._sum is None or self._freqs is None:
+        freqs, psd = self._stream.result()
+        if freqs.size == 0:
             return None
-        value = bandwidth_from_psd(self._freqs, self._sum / self._segments)
+        value = bandwidth_from_psd(freqs, psd)
         return value if math.isfinite(value) else None
 
 
