@@ -93,17 +93,24 @@ class WelchStream:
         self.segment = 1 << max(4, round(np.log2(_WELCH_SEGMENT_S * sample_rate)))
         self._power = np.zeros(self.segment // 2 + 1)
         self._count = 0
-        self._carry = np.zeros(0, dtype=np.float32)
+        # Blocks not yet summed, fewer samples than a group until the last one came:
+        # joined once a group is complete, so each sample is copied once or twice.
+        self._pending: list[np.ndarray] = []
+        self._held = 0
 
     def push(self, samples: np.ndarray) -> None:
         """Add the next block of the stream (mono; float32 is used as it is)."""
-        x = mono_float(samples).astype(np.float32, copy=False)
-        data = np.concatenate([self._carry, x]) if self._carry.size else x
+        # A copy: the caller may reuse its buffer.
+        self._pending.append(np.array(mono_float(samples), dtype=np.float32))
+        self._held += self._pending[-1].size
         group = _WELCH_BLOCK_SEGMENTS * self.segment
+        if self._held < group:
+            return
+        data = np.concatenate(self._pending) if len(self._pending) > 1 else self._pending[0]
         whole = data.size // group * group
-        if whole:
-            self._add(data[:whole])
-        self._carry = data[whole:].copy()
+        self._add(data[:whole])
+        self._pending = [data[whole:]] if whole < data.size else []
+        self._held = data.size - whole
 
     def _add(self, data: np.ndarray) -> None:
         """Sum the power spectra of the whole segments of ``data``, a group at a time."""
@@ -126,9 +133,9 @@ class WelchStream:
         them; both empty when the stream is shorter than one segment. Ends the stream."""
         import scipy.fft
 
-        if self._carry.size >= self.segment:
-            self._add(self._carry)
-        self._carry = np.zeros(0, dtype=np.float32)
+        if self._held >= self.segment:
+            self._add(np.concatenate(self._pending))
+        self._pending, self._held = [], 0
         if self._count == 0:
             return np.zeros(0), np.zeros(0)
         window = periodic_hann(self.segment)
