@@ -196,16 +196,18 @@ class StreamResampler:
         return np.asarray(self._stream.resample_chunk(block, last=last), dtype=np.float32)
 
 
-def float_to_pcm16(samples: np.ndarray, *, peak_limit: float = 1.0) -> np.ndarray:
-    """Round float samples to int16, never beyond ``peak_limit`` of full scale.
+def float_to_pcm16(samples: np.ndarray, *, peak_limit: float = 1.0, gain_db: float = 0.0) -> np.ndarray:
+    """Round float samples, gained by ``gain_db``, to int16, never beyond ``peak_limit`` of full scale.
 
     Rounding can lift a sample that sits at a peak ceiling by half a step; limiting
     the integers to ``floor(peak_limit * 32768)`` keeps a sample-peak ceiling exact.
 
     Parameters
     ----------
-    samples : float array in [-1, 1).
+    samples : float array in [-1, 1) once gained.
     peak_limit : largest magnitude allowed, as a fraction of full scale (0, 1].
+    gain_db : gain applied first, in float64 whatever the samples' type (a gain of
+        0 dB leaves float32 samples in float32, where scaling to 16 bits is exact).
 
     Returns
     -------
@@ -215,6 +217,8 @@ def float_to_pcm16(samples: np.ndarray, *, peak_limit: float = 1.0) -> np.ndarra
     -------
     >>> float_to_pcm16(np.array([0.5, -1.0, 2.0])).tolist()
     [16384, -32768, 32767]
+    >>> float_to_pcm16(np.array([0.25, -0.25], np.float32), gain_db=20 * np.log10(2)).tolist()
+    [16384, -16384]
     """
     if not 0 < peak_limit <= 1:
         raise ParameterError(f"peak_limit={peak_limit} must be in (0, 1]")
@@ -222,8 +226,12 @@ def float_to_pcm16(samples: np.ndarray, *, peak_limit: float = 1.0) -> np.ndarra
     bottom = -32768.0 if peak_limit >= 1 else -top
     x = np.asarray(samples)
     # float32 input stays float32: scaling by 2**15 is exact in it, and every integer up
-    # to 2**24 is representable, so the result equals the float64 computation.
-    scaled = x.astype(np.float32 if x.dtype == np.float32 else np.float64)  # a copy, worked in place
+    # to 2**24 is representable, so the result equals the float64 computation. A gain
+    # is applied in float64, in the one copy that is then worked in place.
+    gained = gain_db != 0.0
+    scaled = x.astype(np.float32 if x.dtype == np.float32 and not gained else np.float64)
+    if gained:
+        scaled *= 10 ** (gain_db / 20)
     scaled *= PCM16_SCALE
     np.rint(scaled, out=scaled)
     np.clip(scaled, bottom, top, out=scaled)

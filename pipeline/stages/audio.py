@@ -570,8 +570,11 @@ def _write_clip(job: AudioJob, clip: np.ndarray, placed: dict[str, Any]) -> Clip
     # A sample-peak ceiling is also enforced on the integers, which rounding could
     # otherwise lift by half a step; a true-peak ceiling only needs full scale kept.
     limit = 1.0 if cfg.true_peak else min(1.0, 10 ** (cfg.peak_ceiling_dbfs / 20))
-    pcm = float_to_pcm16(clip.astype(np.float64) * 10 ** (gain_db / 20), peak_limit=limit)
-    written = pcm.astype(np.float32) / np.float32(PCM16_SCALE)
+    # The gain in float64, in place in float_to_pcm16's one working copy.
+    pcm = float_to_pcm16(clip, peak_limit=limit, gain_db=gain_db)
+    # Times 2**-15, exactly the division by 32768, in place.
+    written = pcm.astype(np.float32)
+    written *= np.float32(1.0 / PCM16_SCALE)
     # BS.1770 loudness is homogeneous: a gain g moves every block, and so the relative
     # gate, by 20 log10 g. Only the fixed -70 LUFS absolute gate could react, and it
     # cannot once the clip is louder than before, so the written clip's loudness is the
