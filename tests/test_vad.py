@@ -166,6 +166,33 @@ def test_streaming_decisions_equal_one_shot():
     np.testing.assert_allclose(pieces.energy_db, whole.energy_db)
 
 
+def test_a_stream_longer_than_a_batch_gives_webrtcvads_own_decisions():
+    # Reference: webrtcvad's public Vad.is_speech on each frame's bytes, one instance
+    # primed with the mirrored lead-in (as VoiceActivityStream documents), on a stream
+    # longer than one batch of analysis and pushed in pieces that cut frames and batches
+    # anywhere. The noise veto is off (max_flatness=1): this checks the framing.
+    voice, rate = demo_speech("wren/wren_08.wav")
+    voice = soxr.resample(voice, rate, RATE)
+    rng = np.random.default_rng(8)
+    signal = np.concatenate([voice, np.zeros(RATE // 3), voice] * 7).astype(np.float32)
+    signal += (rng.standard_normal(signal.size) * 10 ** (-60 / 20)).astype(np.float32)
+    assert signal.size > 1 << 19  # more than one batch
+    stream = VoiceActivityStream(sample_rate=RATE, frame_ms=30, aggressiveness=2, max_flatness=1.0)
+    for piece in np.split(signal, np.sort(rng.integers(0, signal.size, size=25))):
+        stream.push(piece)
+    got = stream.result()
+    n = 480
+    pcm = np.clip(np.rint(signal * 32768.0), -32768, 32767).astype("<i2")
+    reference = webrtcvad.Vad(2)
+    lead = pcm[: LEAD_IN_MS * RATE // 1000][::-1]
+    for i in range(0, lead.size - n + 1, n):
+        reference.is_speech(lead[i:i + n].tobytes(), RATE)
+    expected = [reference.is_speech(pcm[i:i + n].tobytes(), RATE) for i in range(0, pcm.size - n + 1, n)]
+    assert got.decisions.tolist() == expected
+    assert got.energy_db.tobytes() == frame_decisions(signal, sample_rate=RATE, frame_ms=30, aggressiveness=2,
+                                                      max_flatness=1.0).energy_db.tobytes()
+
+
 def _pattern() -> np.ndarray:
     # Runs of 12 speech, 8 pause, 20 speech, 3 pause, 6 speech, 15 pause, 10 speech.
     parts = [(1, 12), (0, 8), (1, 20), (0, 3), (1, 6), (0, 15), (1, 10), (0, 6)]
