@@ -97,3 +97,54 @@ def test_ingest_reusing_its_probe_cache_leaves_pandas_unloaded(small_raw: Path, 
     assert done.stdout.strip().splitlines()[-1] == "0 False"
     (log,) = (out / "logs").glob("stage-*.log")
     assert "ingest: 0 files probed" in log.read_text(encoding="utf-8")  # the cache's path was taken
+
+
+def test_recorded_manifest_hashes_are_the_files_and_a_replaced_file_is_checked_again(
+        small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # The runner records each manifest's content hash as it writes it, so a later stage
+    # and the next run reuse the hash instead of reading the file again; the record holds
+    # only while the file keeps its size, mtime and inode. Reference: hashlib over the
+    # file's bytes.
+    import hashlib
+
+    import pyarrow.parquet as pq
+
+    from pipeline.core.names import stage_manifest, stage_manifest_facts
+
+    out = tmp_path / "out"
+    assert main(["prepare", str(small_raw), str(out), "--workers", "1", "--no-progress"]) == 0
+    for stage in ("ingest", "audio", "text", "split"):
+        facts = json.loads((out / stage_manifest_facts(stage)).read_text(encoding="utf-8"))
+        assert facts, stage
+        for rel, (_size, _mtime, _inode, digest, _schema, _schema_digest) in facts.items():
+            assert digest == hashlib.sha256((out / rel).read_bytes()).hexdigest(), rel
+    # A stale record: the audio manifest replaced by one that breaks its schema (a column
+    # gone), with the same metadata. Running the text stage alone reads it as its input:
+    # it must be checked, not taken as the file the record describes.
+    path = out / stage_manifest("audio")
+    table = pq.ParquetFile(path).read()
+    pq.write_table(table.drop_columns(["duration_s"]), path)
+    capsys.readouterr()
+    assert main(["stage", "text", str(small_raw), str(out), "--workers", "1", "--no-progress"]) != 0
+    assert "stages/audio.parquet breaks schemas/audio.schema.json" in capsys.readouterr().err
+
+
+def test_a_replaced_manifest_with_a_stale_record_changes_the_input_hash(
+        small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # The same rows written again (a new file, another inode): the recorded hash is not
+    # used for it, so the text stage's input hash is the new file's.
+    import pyarrow.parquet as pq
+
+    from pipeline.core.manifest import read_metadata
+    from pipeline.core.names import stage_manifest
+
+    out = tmp_path / "out"
+    assert main(["prepare", str(small_raw), str(out), "--workers", "1", "--no-progress"]) == 0
+    before = read_metadata(out / stage_manifest("text"))["inputs_sha256"]
+    path = out / stage_manifest("audio")
+    table = pq.ParquetFile(path).read()
+    pq.write_table(table, path, compression="none")  # same rows, other bytes
+    capsys.readouterr()
+    assert main(["stage", "text", str(small_raw), str(out), "--workers", "1", "--no-progress"]) == 0
+    assert "text   running" in capsys.readouterr().err
+    assert read_metadata(out / stage_manifest("text"))["inputs_sha256"] != before

@@ -398,9 +398,16 @@ def validate_table(name: str, table: pa.Table, *, where: str) -> None:
         raise ManifestError(f"manifest {where} breaks schemas/{name}.schema.json:\n  {lines}")
 
 
-def write_manifest(path: str | Path, name: str, table: pa.Table, *, metadata: dict[str, str]) -> None:
-    """Validate, then write ``table`` atomically with key-value metadata."""
-    validate_table(name, table, where=str(path))
+def write_manifest(path: str | Path, name: str, table: pa.Table, *, metadata: dict[str, str],
+                   checked: bool = False) -> None:
+    """Validate, then write ``table`` atomically with key-value metadata.
+
+    ``checked``: the caller has just checked this very table against schema ``name``
+    (:func:`partition_rows` found no failing row), so the check is not repeated (it
+    cost 0.05 CPU seconds per 100,000 clips of the audio manifest).
+    """
+    if not checked:
+        validate_table(name, table, where=str(path))
     meta = {b"loam.schema": name.encode()}
     meta.update({f"loam.{k}".encode(): str(v).encode() for k, v in sorted(metadata.items())})
     table = table.replace_schema_metadata(meta)

@@ -88,3 +88,9 @@ def stage_summary(stage: str) -> str:
 def stage_outputs_record(stage: str) -> str:
     """``cache/stages/<stage>.json``: the stat of every file the stage wrote last time."""
     return f"cache/stages/{stage}.json"
+
+
+def stage_manifest_facts(stage: str) -> str:
+    """``cache/stages/<stage>.manifests.json``: the content hash of each manifest the
+    stage wrote last time and the schema it was checked against (pipeline.core.runner)."""
+    return f"cache/stages/{stage}.manifests.json"

@@ -3,6 +3,7 @@ whose inputs, parameters and code are unchanged since its manifest was written."
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import json
 import logging
@@ -21,7 +22,7 @@ from pipeline.core import names, snapshot
 from pipeline.core.codeversion import code_version
 from pipeline.core.config import Config, canonical_json
 from pipeline.core.errors import DataError
-from pipeline.core.fsio import remove_stale_temporaries, write_text_atomic
+from pipeline.core.fsio import remove_stale_temporaries, sha256_file, write_text_atomic
 from pipeline.core.lock import output_lock
 from pipeline.core.manifest import (
     partition_rows,
@@ -31,6 +32,7 @@ from pipeline.core.manifest import (
     validate_table,
     write_manifest,
 )
+from pipeline.core.schemas_io import SCHEMA_DIR
 from pipeline.core.stage import Stage, StageContext, StageRegistry, StageResult, reject
 
 
@@ -67,26 +69,48 @@ def params_sha256(stage: Stage, config: Config, *, cache_dir: Path | None = None
 
 
 def inputs_sha256(out: Path, stage: Stage, ctx: StageContext, registry: StageRegistry,
-                  watched: set[str] | None = None) -> str:
+                  watched: set[str] | None = None, *,
+                  manifest_digest: Callable[[str], str] | None = None) -> str:
     """Hash of the upstream manifests' bytes (found through ``registry``) plus any extra
-    files the stage reads (their absolute paths are added to ``watched``)."""
+    files the stage reads (their absolute paths are added to ``watched``).
+
+    ``manifest_digest(rel)`` gives the hex SHA-256 of the manifest at ``rel`` under
+    ``out`` (the runner's answers from what it recorded, see ``Runner.manifest_digest``);
+    by default each file is hashed. Files are read in blocks, never whole: the audio
+    manifest of 233,161 clips is 370 MB."""
     watched = set() if watched is None else watched
+    digest_of = manifest_digest or (lambda rel: sha256_file(out / rel))
     digest = hashlib.sha256()
     for name in stage.inputs:
         digest.update(name.encode() + b"\0")
-        digest.update(hashlib.sha256((out / registry[name].main_manifest).read_bytes()).digest())
+        digest.update(bytes.fromhex(digest_of(registry[name].main_manifest)))
     # Content only, not the paths: the same inputs under another OUT or checkout must
     # give byte-identical manifests, metadata included.
     for path in stage.extra_inputs(ctx) if stage.extra_inputs else []:
         watched.add(os.path.abspath(path))
         digest.update(b"extra\0")
         try:
-            digest.update(hashlib.sha256(Path(path).read_bytes()).digest())
+            digest.update(bytes.fromhex(sha256_file(path)))
         except FileNotFoundError:
             digest.update(b"<missing>")
     if stage.extra_digest:
         digest.update(b"digest\0" + hashlib.sha256(stage.extra_digest(ctx)).digest())
     return digest.hexdigest()
+
+
+@functools.cache
+def schema_sha256(name: str) -> str:
+    """SHA-256 of ``schemas/<name>.schema.json``, the rules a manifest was checked against."""
+    return sha256_file(SCHEMA_DIR / f"{name}.schema.json")
+
+
+def _file_stat(path: Path) -> list[int] | None:
+    """``[size, mtime_ns, inode]`` of ``path``, None when it cannot be stat'ed."""
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    return [st.st_size, st.st_mtime_ns, st.st_ino]
 
 
 @dataclass
@@ -147,6 +171,9 @@ class Runner:
         self.running: list[str] = []
         # Set by a stage whose result says the run cannot usefully go on (StageResult.stop).
         self.stop_reason = ""
+        # What the runner recorded of each manifest it wrote, by path relative to OUT:
+        # [size, mtime_ns, inode, sha256, schema, schema sha256] (see _manifest_fact).
+        self._facts: dict[str, list[Any]] | None = None
 
     def _check_cluster(self) -> None:
         """Before any per-file work on a cluster: every worker must see RAW and OUT
@@ -185,12 +212,61 @@ class Runner:
         return run_ready
 
     def _load_input(self, name: str) -> pa.Table:
-        path = self.out / self.stages[name].main_manifest
+        """An upstream stage's main manifest, checked against its schema unless it is the
+        very file this runner checked and wrote (``_manifest_fact``)."""
+        rel = self.stages[name].main_manifest
+        path = self.out / rel
         if not path.exists():
             raise DataError(f"{path}: missing; run the '{name}' stage first (loam prepare runs all stages)")
         table = read_manifest(path)
-        validate_table(name, table, where=str(path))
+        fact = self._manifest_fact(rel)
+        if fact is None or fact[4:] != [name, schema_sha256(name)]:
+            validate_table(name, table, where=str(path))
         return table
+
+    def _manifest_fact(self, rel: str) -> list[Any] | None:
+        """What was recorded when the runner wrote manifest ``rel`` (its stat, content
+        hash and the schema it met), while the file still has that size, mtime and inode;
+        else None. Files are replaced by renames, so a rewritten manifest has another
+        inode: a record of an earlier file never passes for the current one."""
+        fact = self._loaded_facts().get(rel)
+        return fact if fact is not None and fact[:3] == _file_stat(self.out / rel) else None
+
+    def _loaded_facts(self) -> dict[str, list[Any]]:
+        """Every stage's ``names.stage_manifest_facts``, read once (an unreadable one is
+        only a miss: its manifests are hashed and checked again)."""
+        if self._facts is None:
+            self._facts = {}
+            for stage in self.stages.order:
+                try:
+                    facts = json.loads((self.out / names.stage_manifest_facts(stage)).read_text(encoding="utf-8"))
+                except (OSError, ValueError):
+                    continue
+                if isinstance(facts, dict):
+                    self._facts.update((k, v) for k, v in facts.items() if isinstance(v, list) and len(v) == 6)
+        return self._facts
+
+    def manifest_digest(self, rel: str) -> str:
+        """Hex SHA-256 of manifest ``rel``'s bytes: the one recorded when the runner wrote
+        it, while the file is that one (``_manifest_fact``), else hashed now. A rebuild
+        hashed each upstream manifest once per stage reading it (ingest's three times);
+        now each is hashed once, as it is written."""
+        fact = self._manifest_fact(rel)
+        return fact[3] if fact is not None else sha256_file(self.out / rel)
+
+    def _record_manifests(self, stage: Stage, manifests: dict[str, str]) -> None:
+        """Record the stat, content hash and schema of the manifests (rel -> schema) the
+        stage just wrote, checked against that schema, in ``names.stage_manifest_facts``.
+        A file whose stat moved while it was hashed is left out."""
+        facts: dict[str, list[Any]] = {}
+        for rel, schema in sorted(manifests.items()):
+            path = self.out / rel
+            before = _file_stat(path)
+            digest = sha256_file(path)
+            if before is not None and before == _file_stat(path):
+                facts[rel] = [*before, digest, schema, schema_sha256(schema)]
+        self._loaded_facts().update(facts)
+        write_text_atomic(self.out / names.stage_manifest_facts(stage.name), json.dumps(facts) + "\n")
 
     def _up_to_date(self, stage: Stage, params: str, inputs: str) -> bool:
         if stage.always_run:
@@ -254,7 +330,8 @@ class Runner:
         inputs = {n: self._load_input(n) for n in stage.inputs}
         ctx = self._context(inputs, meanwhile)
         params = params_sha256(stage, self.config, cache_dir=ctx.cache_dir if ctx.use_cache else None)
-        in_hash = inputs_sha256(self.out, stage, ctx, self.stages, self.watched)
+        in_hash = inputs_sha256(self.out, stage, ctx, self.stages, self.watched,
+                                manifest_digest=self.manifest_digest)
         if self._up_to_date(stage, params, in_hash):
             self._refresh_config_hash(stage)
             summary = json.loads((self.out / names.stage_summary(name)).read_text(encoding="utf-8"))
@@ -268,7 +345,8 @@ class Runner:
             if stage.inputs_after_run:
                 # The stage rewrote one of its own inputs (the split ledger): record the
                 # state it left, which a rerun would reproduce.
-                in_hash = inputs_sha256(self.out, stage, ctx, self.stages, self.watched)
+                in_hash = inputs_sha256(self.out, stage, ctx, self.stages, self.watched,
+                                        manifest_digest=self.manifest_digest)
             self._write_result(stage, result, params, in_hash)
             if result.stop:
                 self.stop_reason = f"{name}: {result.stop}"
@@ -289,14 +367,17 @@ class Runner:
         rejects = result.rejects_table()
         rejects_rel = names.stage_rejects(stage.name)
         validate_table("rejected", rejects, where=str(self.out / rejects_rel))
-        write_manifest(self.out / rejects_rel, "rejected", rejects, metadata=meta)
+        write_manifest(self.out / rejects_rel, "rejected", rejects, metadata=meta, checked=True)
         write_text_atomic(self.out / names.stage_summary(stage.name),
                           json.dumps(result.summary, indent=2, sort_keys=True, ensure_ascii=False) + "\n")
         # The main manifest goes last: its metadata is what marks the stage up to date.
+        # Each table was checked by _set_aside_invalid_rows, which kept only valid rows.
         for rel, (schema, table) in sorted(result.manifests.items(), key=lambda kv: kv[0] == stage.main_manifest):
-            write_manifest(self.out / rel, schema, table, metadata=meta)
+            write_manifest(self.out / rel, schema, table, metadata=meta, checked=True)
         self._record_outputs(stage, list(result.manifests), result.manifests[stage.main_manifest][1],
                              result.file_stats)
+        self._record_manifests(stage, {rejects_rel: "rejected",
+                                       **{rel: schema for rel, (schema, _) in result.manifests.items()}})
 
     def _set_aside_invalid_rows(self, stage: Stage, result: StageResult) -> None:
         """Move rows whose values break their schema from the manifests to the rejects.
@@ -356,6 +437,7 @@ class Runner:
                                metadata={k: v for k, v in meta.items() if k != "schema"})
         if rewritten:
             self._record_outputs(stage, [o.path for o in stage.outputs])
+            self._record_manifests(stage, dict(manifests))
 
     def write_rejected(self) -> int:
         """Gather every stage's rejects into ``manifests/rejected.parquet``."""
