@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import logging
+import os
 import shutil
 from pathlib import Path
 from typing import Any
@@ -402,6 +403,34 @@ def test_an_interrupted_run_keeps_the_outcomes_written_in_parts(raw: Path, tmp_p
     assert again.rejects == first.rejects
     # The parts became one table.
     assert [p.name for p in (out / "cache" / "audio").iterdir()] == ["outcomes.parquet"]
+
+
+def test_a_rebuild_that_reused_everything_adds_its_outcomes_as_a_part(first_run, raw: Path, tmp_path: Path):
+    # A rebuild with one new source leaves the stored table alone (no rewrite of every
+    # outcome) and keeps the new outcome in a part; the next run reuses it from there, and
+    # a part's outcome whose clip is gone since is a miss like any other.
+    out, result = first_run
+    some = tmp_path / "some"
+    shutil.copytree(raw, some, copy_function=os.link)
+    (some / "ana" / "stereo44.wav").unlink()  # the new source of the rebuild below
+    copy = tmp_path / "out"
+    run_stage(some, copy)
+    table = copy / "cache" / "audio" / "outcomes.parquet"
+    stored = table.stat().st_ino
+    os.link(raw / "ana" / "stereo44.wav", some / "ana" / "stereo44.wav")
+    grown = run_stage(some, copy)
+    assert grown.run_stats["sources_processed"] == 1
+    assert table.stat().st_ino == stored
+    assert len(list(table.parent.glob("outcomes.part-*.parquet"))) == 1
+    assert rows_of(grown) == rows_of(run_stage(raw, tmp_path / "fresh"))
+    again = run_stage(some, copy)
+    assert again.run_stats["sources_processed"] == 0
+    assert rows_of(again) == rows_of(grown)
+    (clip,) = [r["audio_path"] for r in rows_of(grown) if r["source_path"] == "ana/stereo44.wav"]
+    (copy / clip).unlink()
+    stale = run_stage(some, copy)
+    assert stale.run_stats["sources_processed"] == 1
+    assert rows_of(stale) == rows_of(grown)
 
 
 def test_a_damaged_cache_is_only_a_miss(first_run, raw: Path, tmp_path: Path):

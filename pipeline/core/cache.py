@@ -61,8 +61,10 @@ class TableCache:
         self.path = Path(root) / namespace / f"{name}.parquet"
         self.scope = scope
         self.enabled = enabled
-        # Whether the last load found parts, which a save would fold into the table.
+        # Whether the last load found parts, which a save would fold into the table, and
+        # how many rows the parts hold (those of this run's appends included).
         self.has_parts = False
+        self.part_rows = 0
 
     def _files(self) -> list[Path]:
         """The table, then its parts in the order they were written."""
@@ -77,7 +79,9 @@ class TableCache:
 
         files = self._files()
         self.has_parts = len(files) > 1
-        tables = [t for t in (self._read(path) for path in files) if t is not None]
+        read = [(path, self._read(path)) for path in files]
+        tables = [t for _, t in read if t is not None]
+        self.part_rows = sum(t.num_rows for path, t in read if t is not None and path != self.path)
         if not tables:
             return None
         try:
@@ -110,6 +114,7 @@ class TableCache:
         if self.enabled and table.num_rows:
             parts = len(self._files()) - 1
             self._write(self.path.with_name(f"{self.path.stem}.part-{parts:06d}.parquet"), table)
+            self.part_rows += table.num_rows
 
     def save(self, table: Any) -> None:
         """Replace the stored table and its parts by ``table`` (atomically; no fsync:
