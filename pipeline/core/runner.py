@@ -254,17 +254,18 @@ class Runner:
         fact = self._manifest_fact(rel)
         return fact[3] if fact is not None else sha256_file(self.out / rel)
 
-    def _record_manifests(self, stage: Stage, manifests: dict[str, str]) -> None:
-        """Record the stat, content hash and schema of the manifests (rel -> schema) the
-        stage just wrote, checked against that schema, in ``names.stage_manifest_facts``.
-        A file whose stat moved while it was hashed is left out."""
-        facts: dict[str, list[Any]] = {}
-        for rel, schema in sorted(manifests.items()):
-            path = self.out / rel
-            before = _file_stat(path)
-            digest = sha256_file(path)
-            if before is not None and before == _file_stat(path):
-                facts[rel] = [*before, digest, schema, schema_sha256(schema)]
+    def _record_main_manifest(self, stage: Stage) -> None:
+        """Record the stat, content hash and schema of the stage's main manifest, just
+        written and checked against that schema, in ``names.stage_manifest_facts`` (only
+        main manifests are ever a stage's input). Nothing is recorded for a file whose stat
+        moved while it was hashed."""
+        rel, schema = stage.main_manifest, stage.outputs[0].schema
+        path = self.out / rel
+        before = _file_stat(path)
+        digest = sha256_file(path)
+        facts = ({rel: [*before, digest, schema, schema_sha256(schema)]}
+                 if before is not None and before == _file_stat(path) else {})
+        self._loaded_facts().pop(rel, None)
         self._loaded_facts().update(facts)
         write_text_atomic(self.out / names.stage_manifest_facts(stage.name), json.dumps(facts) + "\n")
 
@@ -376,8 +377,7 @@ class Runner:
             write_manifest(self.out / rel, schema, table, metadata=meta, checked=True)
         self._record_outputs(stage, list(result.manifests), result.manifests[stage.main_manifest][1],
                              result.file_stats)
-        self._record_manifests(stage, {rejects_rel: "rejected",
-                                       **{rel: schema for rel, (schema, _) in result.manifests.items()}})
+        self._record_main_manifest(stage)
 
     def _set_aside_invalid_rows(self, stage: Stage, result: StageResult) -> None:
         """Move rows whose values break their schema from the manifests to the rejects.
@@ -437,7 +437,7 @@ class Runner:
                                metadata={k: v for k, v in meta.items() if k != "schema"})
         if rewritten:
             self._record_outputs(stage, [o.path for o in stage.outputs])
-            self._record_manifests(stage, dict(manifests))
+            self._record_main_manifest(stage)
 
     def write_rejected(self) -> int:
         """Gather every stage's rejects into ``manifests/rejected.parquet``."""
