@@ -91,7 +91,9 @@ def search_pairs(values: np.ndarray, offsets: np.ndarray, *, min_similarity: flo
 # Slots of the filter that finds the sub-fingerprints equal to a new clip's key (16 MB):
 # a few million keys fill a small share, so few values reach the exact lookup.
 _FILTER_BITS = 24
-_BLOCK_VALUES = 1 << 22
+# Values hashed at a time, into working arrays allocated once (4 MB each): 68 million
+# values took 1.08 CPU s where blocks of 4 million in fresh arrays took 1.36 s.
+_BLOCK_VALUES = 1 << 20
 
 
 def _positions_of(values: np.ndarray, keys: np.ndarray) -> np.ndarray:
@@ -99,15 +101,19 @@ def _positions_of(values: np.ndarray, keys: np.ndarray) -> np.ndarray:
 
     A Fibonacci-hashing filter over all values, a block at a time, then an exact
     binary search for the values that pass it."""
-    def slot(v: np.ndarray) -> np.ndarray:
-        return (v * np.uint32(2654435769)) >> np.uint32(32 - _FILTER_BITS)
-
+    shift, factor = np.uint32(32 - _FILTER_BITS), np.uint32(2654435769)
     table = np.zeros(1 << _FILTER_BITS, dtype=bool)
-    table[slot(keys)] = True
+    table[(keys * factor) >> shift] = True
+    slots = np.empty(min(values.size, _BLOCK_VALUES), dtype=np.uint32)
+    hit = np.empty(slots.size, dtype=bool)
     found = []
     for start in range(0, values.size, _BLOCK_VALUES):
         block = values[start:start + _BLOCK_VALUES]
-        maybe = np.flatnonzero(table[slot(block)])
+        mine, passed = slots[:block.size], hit[:block.size]
+        np.multiply(block, factor, out=mine)
+        np.right_shift(mine, shift, out=mine)
+        np.take(table, mine, out=passed)
+        maybe = np.flatnonzero(passed)
         seen = block[maybe]
         at = np.minimum(np.searchsorted(keys, seen), keys.size - 1)
         found.append(maybe[keys[at] == seen] + start)

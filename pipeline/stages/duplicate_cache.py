@@ -47,9 +47,18 @@ def cache_keys(clip_ids: pa.ChunkedArray, audio_sha256: pa.ChunkedArray, fingerp
 
 
 def _clips_digest(keys: pa.Table) -> str:
+    """A SHA-256 of the clips table's values, taken from its Arrow buffers (each string
+    column as its UTF-8 bytes and its lengths): no Python string per clip, and the same
+    digest however the table is chunked or was read."""
     h = hashlib.sha256()
     for name in ("clip_id", "audio_sha256"):
-        h.update("\n".join(keys.column(name).to_pylist()).encode("utf-8"))
+        texts = keys.column(name).combine_chunks().cast(pa.large_string())
+        _, offsets, data = texts.buffers()
+        bounds = np.frombuffer(offsets, np.int64)[texts.offset: texts.offset + len(texts) + 1] if offsets else \
+            np.zeros(1, np.int64)
+        chars = memoryview(data)[int(bounds[0]):int(bounds[-1])] if data is not None else b""
+        h.update(np.diff(bounds).astype("<i8").tobytes())
+        h.update(chars)
         h.update(b"\0")
     h.update(keys.column("fingerprint_chars").to_numpy().astype("<i8").tobytes())
     return h.hexdigest()

@@ -248,6 +248,9 @@ class _Parser:
             raise self.fail(1, "", f"the header line {_HEADER_EXAMPLE!r}")
         settings = self.header(lines[0].rstrip("\r"))
         budgets = _split_list(settings["budgets"])
+        fast = self.parse_plain(lines, settings) if "\r" not in text else None
+        if fast is not None:
+            return fast
         groups: dict[str, str] = {}
         parts: dict[str, str] = {}
         clips: dict[str, ClipRecord] = {}
@@ -305,6 +308,62 @@ class _Parser:
             if rec.group not in groups:
                 raise self.fail(clip_lines[cid], rec.group, "a group that has its own 'group' row")
         return Ledger(settings, groups, clips, sources, parts)
+
+    def parse_plain(self, lines: list[str], settings: dict[str, str]) -> Ledger | None:
+        """The body of a well-formed ledger read a kind of row at a time (a third of the
+        cost of :meth:`parse`'s loop on 337,000 rows), or None at anything unusual (a
+        blank line, a CR, a row that fails a check), which :meth:`parse` then reads line
+        by line to name the first problem.
+
+        Each check of :meth:`parse` holds here too: the fields of a clip row after its
+        id are checked once per distinct text (a corpus has few groups and tiers)."""
+        body = lines[1:]
+        clip_rows = [line[5:] for line in body if line[:5] == "clip\t"]
+        group_rows = [line[6:].split("\t") for line in body if line[:6] == "group\t"]
+        source_rows = [line[7:] for line in body if line[:7] == "source\t"]
+        if len(clip_rows) + len(group_rows) + len(source_rows) != len(body):
+            return None
+        extra = 0 if self.v1 else 1
+        groups: dict[str, str] = {}
+        parts: dict[str, str] = {}
+        for fields in group_rows:
+            if len(fields) != 2 + extra or not fields[0] or fields[1] not in SIDES:
+                return None
+            part = fields[2] if extra else NO_TIERS
+            if part != NO_TIERS and (fields[1] != "heldout" or not _PART.match(part)):
+                return None
+            groups[fields[0]] = fields[1]
+            if part != NO_TIERS:
+                parts[fields[0]] = part
+        split_rows = [row.split("\t", 1) for row in clip_rows]
+        if any(len(pair) != 2 or not pair[0] for pair in split_rows):
+            return None
+        records: dict[str, ClipRecord] = {}
+        budgets = _split_list(settings["budgets"])
+        for tail in {pair[1] for pair in split_rows}:
+            rec = self.plain_record(tail, extra, budgets)
+            if rec is None or rec.group not in groups:
+                return None
+            records[tail] = rec
+        clips = {cid: records[tail] for cid, tail in split_rows}
+        sources = dict(row.split("\t", 1) for row in source_rows if row.count("\t") == 1)
+        if (len(groups) != len(group_rows) or len(clips) != len(clip_rows) or len(sources) != len(source_rows)
+                or not all(map(_SOURCE_KEY.match, sources)) or not set(sources.values()) <= set(SOURCE_STATES)):
+            return None
+        return Ledger(settings, groups, clips, sources, parts)
+
+    def plain_record(self, tail: str, extra: int, budgets: tuple[str, ...]) -> ClipRecord | None:
+        """The record of a clip row's fields after its id, or None when they fail a check."""
+        fields = tail.split("\t")  # subset, tiers, group and (version 2) part
+        if len(fields) != 3 + extra or not fields[2] or fields[0] not in SUBSETS:
+            return None
+        subset, tier_text, group = fields[:3]
+        try:
+            tiers = self.tiers(0, tier_text, subset, budgets)
+            part = self.part(0, fields[3], subset) if extra else ""
+        except UsageError:
+            return None
+        return ClipRecord(subset, tiers, group, part)
 
     def tiers(self, line_no: int, text: str, subset: str, budgets: tuple[str, ...]) -> tuple[str, ...]:
         tiers = _split_list(text)

@@ -58,6 +58,7 @@ from pipeline.core.names import (
     subset_manifest,
 )
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
+from pipeline.core.startup import pandas_left_unloaded
 from pipeline.signal.fingerprint import decode_fingerprints, find_near_duplicates_flat
 from pipeline.stages import gates
 from pipeline.stages.attributes import Attributes, read_attributes
@@ -220,11 +221,13 @@ def match_tiers(old: Sequence[str], new: Sequence[str], *, seconds: Mapping[str,
 # Clips
 # ---------------------------------------------------------------------------------------
 
-@dataclass(frozen=True, slots=True)
+@dataclass(slots=True, eq=False)
 class Clip:
     """One audio row joined with its transcript, and what the stage found out about it.
 
-    Built once, by :func:`build_clips`, when every measure is known. The audio row
+    Built once, by :func:`build_clips`, when every measure is known, and never changed
+    after (not frozen only because a frozen dataclass sets each field through
+    ``object.__setattr__``: 0.60 against 0.26 CPU s for 235,000 clips). The audio row
     itself stays in the stage's Arrow table (row ``row`` of :attr:`Joined.audio`); a
     clip carries the few values the assignment reads.
     """
@@ -1074,7 +1077,10 @@ def run(ctx: StageContext) -> StageResult:
     collecting = gc.isenabled()
     gc.disable()
     try:
-        return _run(ctx)
+        # The stage's first conversion of Python values to Arrow would import pandas
+        # (0.25 CPU s of a rebuild at 233,161 clips) only to ask whether they are pandas ones.
+        with pandas_left_unloaded():
+            return _run(ctx)
     finally:
         if collecting:
             gc.enable()
