@@ -473,10 +473,10 @@ def build_clips(joined: Joined, cfg: Config, *, near: Iterable[tuple[int, int, f
     flags = _flag_sets({**row_flags(joined), **measured.flags, "near_duplicate": near}, len(clip_ids))
     columns = zip(clip_ids, speakers, audio.column("duration_s").to_pylist(),
                   audio.column("source_path").to_pylist(), measured.eligible.tolist(), strict=True)
-    clips = [Clip(row=k, clip_id=cid, speaker=spk, duration_s=float(dur), source_path=path, text=texts[k],
-                  base_group=base[k], group=merged[k], flags=flags[k], plain_phones=phones[k],
-                  speaking_rate=measured.speaking_rate[k], rate_z=measured.rate_z[k],
-                  near_duplicate_of=partners.get(k), eligible=ok)
+    # Positional, in the order of Clip's fields: keywords took 0.14 against 0.05 s per 235,000.
+    rates, rate_z = measured.speaking_rate, measured.rate_z
+    clips = [Clip(k, cid, spk, float(dur), path, texts[k], base[k], merged[k], flags[k], phones[k], rates[k],
+                  rate_z[k], partners.get(k), ok)
              for k, (cid, spk, dur, path, ok) in enumerate(columns)]
     return clips, pairs
 
@@ -542,9 +542,10 @@ def _known_sides(groups: Mapping[str, list[Clip]], ledger: Ledger | None) -> tup
     if ledger is None:
         return {}, []
     fixed: dict[str, set[str]] = {}
+    known = ledger.clips
     for g, members in groups.items():
-        sides = {"heldout" if ledger.clips[c.clip_id].subset == HELDOUT else "training"
-                 for c in members if c.clip_id in ledger.clips}
+        sides = {"heldout" if rec.subset == HELDOUT else "training"
+                 for rec in map(known.get, [c.clip_id for c in members]) if rec is not None}
         if not sides:
             ids = {g} | {c.base_group for c in members}
             sides = {ledger.groups[i] for i in ids if i in ledger.groups}
@@ -552,12 +553,6 @@ def _known_sides(groups: Mapping[str, list[Clip]], ledger: Ledger | None) -> tup
             fixed[g] = sides
     straddling = sorted(g for g, s in fixed.items() if len(s) > 1)
     return fixed, straddling
-
-
-def _goes_heldout(c: Clip, side: str, known: Mapping[str, ClipRecord]) -> bool:
-    """Whether a clip is held out: as the ledger recorded it, else as its group's side."""
-    rec = known.get(c.clip_id)
-    return rec.subset == HELDOUT if rec is not None else side == HELDOUT
 
 
 def _known_part(members: Sequence[Clip], ids: set[str], ledger: Ledger, configured: Sequence[str]) -> str:
@@ -591,7 +586,10 @@ def _choose_places(groups: Mapping[str, list[Clip]], ledger: Ledger | None, fact
                 pending.append(g)
         else:
             fixed[g] = TRAINING
-        training_groups += any(not _goes_heldout(c, side, known) for c in groups[g] if c.eligible)
+        # Whether an eligible clip trains: a clip is held out as the ledger recorded it,
+        # else as its group's side.
+        training_groups += any((rec.subset if rec is not None else side) != HELDOUT
+                               for c in groups[g] if c.eligible for rec in (known.get(c.clip_id),))
     if not targets:  # no held-out subset wanted: every undecided group trains
         return {g: fixed.get(g, TRAINING) for g in groups}, straddling
     places = choose_parts(facts, parts=targets, seed=seed, fixed=fixed, pending=pending,
@@ -622,24 +620,27 @@ def _sort_clips(clips: Sequence[Clip], sides: Mapping[str, str], known: Mapping[
     items: dict[str, Candidate] = {}
     lost_transcript = gated_out = 0
     for c in clips:
-        rec = known.get(c.clip_id)
-        if _goes_heldout(c, sides[c.group], known):
-            subset[c.clip_id] = HELDOUT
+        cid = c.clip_id
+        rec = known.get(cid)
+        # Held out as the ledger recorded the clip, else as its group's side.
+        if (rec.subset if rec is not None else sides[c.group]) == HELDOUT:
+            subset[cid] = HELDOUT
             continue
-        subset[c.clip_id] = UNLABELLED
-        if c.transcribed:
-            items[c.clip_id] = Candidate(c.clip_id, c.speaker, c.duration_s, c.plain_phones)
+        subset[cid] = UNLABELLED
+        transcribed = c.text is not None
+        if transcribed:
+            items[cid] = Candidate(cid, c.speaker, c.duration_s, c.plain_phones)
         if rec is not None and rec.subset == LABELLED:
             # A labelled clip needs a transcript and must pass the gates (loam validate
             # checks both), so one that lost either moves to unlabelled.
-            if not c.transcribed:
+            if not transcribed:
                 lost_transcript += 1
             elif not c.eligible:
                 gated_out += 1
             else:
-                labelled_before.append(c.clip_id)
+                labelled_before.append(cid)
         elif c.eligible:
-            (reopened if rec is not None else new).append(c.clip_id)
+            (reopened if rec is not None else new).append(cid)
     return Sorted(subset, items, labelled_before, new, reopened, gated_out, lost_transcript)
 
 
@@ -879,6 +880,10 @@ def _changes(ledger: Ledger | None, assignment: Assignment, present: set[str]) -
     joined: Counter[str] = Counter()
     left: Counter[str] = Counter()
     part_moves: Counter[str] = Counter()
+    tiers, parts = assignment.tiers, assignment.parts
+    # Ledger records are shared (one per distinct row text): each one's tiers in this
+    # run's names are worked out once.
+    renamed_tiers: dict[int, set[str]] = {}
     for cid, subset in assignment.subset.items():
         rec = old.get(cid)
         if rec is None:
@@ -886,19 +891,24 @@ def _changes(ledger: Ledger | None, assignment: Assignment, present: set[str]) -
             continue
         if rec.subset != subset:
             moved[f"{rec.subset}->{subset}"] += 1
-        part = assignment.parts.get(cid, "")
-        if rec.subset == HELDOUT and rec.part != part:
-            # From no part: a version 1 ledger's held-out clip divided among the parts.
-            part_moves[f"{rec.part or '(none)'}->{part}"] += 1
-        now = set(assignment.tiers.get(cid, ()))
-        before = {renamed.get(t, t) for t in rec.tiers}
+        if rec.subset == HELDOUT:
+            part = parts.get(cid, "")
+            if rec.part != part:
+                # From no part: a version 1 ledger's held-out clip divided among the parts.
+                part_moves[f"{rec.part or '(none)'}->{part}"] += 1
+        mine = tiers.get(cid, ())
+        if not mine and not rec.tiers:  # most clips: in no tier, before or now
+            continue
+        now = set(mine)
+        before = renamed_tiers.get(id(rec))
+        if before is None:
+            before = renamed_tiers[id(rec)] = {renamed.get(t, t) for t in rec.tiers}
         for t in now - before:
             joined[t] += 1
         for t in before - now:
             left[t] += 1
-    for cid, rec in old.items():
-        if cid not in present:
-            removed[rec.subset] += 1
+    for cid in old.keys() - present:
+        removed[old[cid].subset] += 1
     return {
         "added": {s: added[s] for s in SUBSETS},
         "removed": {s: removed[s] for s in SUBSETS},
@@ -1185,11 +1195,12 @@ def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[C
     # Records are immutable: one per distinct (subset, tiers, group, part), shared.
     records: dict[tuple[str, tuple[str, ...], str, str], ClipRecord] = {}
     clips: dict[str, ClipRecord] = {}
+    subset, tiers, clip_parts = assignment.subset, assignment.tiers, assignment.parts
     for c in kept:
-        key = (assignment.subset[c.clip_id], assignment.tiers.get(c.clip_id, ()), c.group,
-               assignment.parts.get(c.clip_id, ""))
+        cid = c.clip_id
+        key = (subset[cid], tiers.get(cid, ()), c.group, clip_parts.get(cid, ""))
         rec = records.get(key)
-        clips[c.clip_id] = rec if rec is not None else records.setdefault(key, ClipRecord(*key))
+        clips[cid] = rec if rec is not None else records.setdefault(key, ClipRecord(*key))
     known = dict.fromkeys(sorted(sources), "present")
     budgets = _budget_names(cfg_settings["budgets"])
     if ledger is not None:
@@ -1197,13 +1208,13 @@ def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[C
         current = set(groups) | {c.base_group for c in kept}
         groups.update({g: side for g, side in ledger.groups.items() if g not in current})
         parts.update({g: part for g, part in ledger.parts.items() if g not in current})
-        for cid, rec in ledger.clips.items():
-            if cid not in clips:
-                clips[cid] = _gone_record(rec, budgets, assignment.continues)
-                # Every clip row names a group that has a row (the parser checks).
-                groups.setdefault(rec.group, ledger.groups[rec.group])
-                if rec.group in ledger.parts:
-                    parts.setdefault(rec.group, ledger.parts[rec.group])
+        for cid in sorted(ledger.clips.keys() - clips.keys()):  # the gone clips, a set difference in C
+            rec = ledger.clips[cid]
+            clips[cid] = _gone_record(rec, budgets, assignment.continues)
+            # Every clip row names a group that has a row (the parser checks).
+            groups.setdefault(rec.group, ledger.groups[rec.group])
+            if rec.group in ledger.parts:
+                parts.setdefault(rec.group, ledger.parts[rec.group])
         known.update({k: "gone" for k in ledger.sources if k not in known})
     return Ledger(cfg_settings, groups, clips, dict(sorted(known.items())), parts)
 
@@ -1239,9 +1250,13 @@ def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment
         row.update({"budget_s": round(outcome.budget_s, 3), "selected_s": round(outcome.total_s, 3),
                     "shortfall_s": round(outcome.shortfall_s, 3)})
         tiers[outcome.name] = row
-    gate_counts = {g: sum(g in c.flags for c in clips) for g in GATES}
+    # Clips share one flag set per combination: count the combinations, then the flags.
+    combinations = Counter(c.flags for c in clips)
+    gate_counts = {g: sum(n for flags, n in combinations.items() if g in flags) for g in GATES}
     gate_counts.update(rejected)
-    notes = {f: sum(f in c.flags for c in kept) for f in ("upsampled", "peak_limited", "transcript_rejected")}
+    combinations = Counter(c.flags for c in kept)
+    notes = {f: sum(n for flags, n in combinations.items() if f in flags)
+             for f in ("upsampled", "peak_limited", "transcript_rejected")}
     notes["heldout_untranscribed"] = sum(not c.transcribed for c in by_subset[HELDOUT])
     notes["orphan_transcripts"] = orphans
     sides = Counter(assignment.sides[g] for g in {c.group for c in kept})
