@@ -101,3 +101,17 @@ def test_cache_serves_an_added_clip_and_misses_a_changed_one(tmp_path, caplog) -
     assert run(30, sha[:3] + ["f" * 64] + sha[4:], chars) == "all"  # audio changed
     assert run(30, sha[:3] + ["f" * 64] + sha[4:], chars) == "added since"  # nothing added
     assert run(30, sha[:3] + ["f" * 64] + sha[4:], [0] + chars[1:]) == "all"  # fingerprint now empty
+
+
+def test_positions_of_equals_isin_when_keys_share_filter_slots() -> None:
+    """The filter's slots and tags only narrow the exact lookup: with 3 million keys in
+    its 16 million slots many slots hold two keys of different tags (and some of the
+    same tag), and the positions found are still exactly numpy's ``isin``."""
+    from pipeline.signal.added_search import _positions_of
+
+    rng = np.random.default_rng(7)
+    keys = np.unique(rng.integers(0, 2**32, size=3_000_000, dtype=np.uint32))
+    values = rng.integers(0, 2**32, size=2_500_000, dtype=np.uint32)
+    values[rng.integers(0, values.size, size=50_000)] = keys[rng.integers(0, keys.size, size=50_000)]
+    np.testing.assert_array_equal(_positions_of(values, keys), np.flatnonzero(np.isin(values, keys)))
+    np.testing.assert_array_equal(_positions_of(values[:0], keys), np.zeros(0, np.int64))
