@@ -259,7 +259,7 @@ def _finite(value: Any) -> float | None:
 @dataclass(frozen=True)
 class Joined:
     """The audio stage's table sorted by clip_id without its fingerprints, and for each
-    of its rows the transcript row (``texts``, None without one) and the transcript's
+    of its rows the transcript's norm_text and phones (``texts``, None without one) and its
     row in the text table (``text_rows``, -1 without); their decoded fingerprints one
     after the other (clip ``k``'s are ``fingerprints[0][o[k]:o[k + 1]]`` with
     ``o = fingerprints[1]``); ``orphans`` counts the text rows whose clip has no audio
@@ -304,6 +304,10 @@ def _first_repeat(ids: pa.ChunkedArray) -> str | None:
     return ids[int(hits[0]) + 1].as_py() if hits.size else None
 
 
+# The transcript values the stage reads per clip (Clip.text).
+_TEXT_READ = ("norm_text", "phones")
+
+
 def join_rows(audio: pa.Table, text: pa.Table, *, keys: bool = False) -> Joined:
     """Join the audio and text stages' rows by clip_id; DataError for a clip listed twice.
 
@@ -326,7 +330,9 @@ def join_rows(audio: pa.Table, text: pa.Table, *, keys: bool = False) -> Joined:
     text_rows = rows.to_numpy(zero_copy_only=False)
     text_rows = np.where(np.isnan(text_rows), -1, text_rows).astype(np.int64) if rows.null_count else \
         text_rows.astype(np.int64)
-    by_row = text.to_pylist()
+    # The stage reads these two of a transcript's values (the subset manifests take the
+    # others from the Arrow table by row): all nine took 0.062 against 0.021 s for 33,667 rows.
+    by_row = text.select(list(_TEXT_READ)).to_pylist()
     texts = [by_row[r] if r >= 0 else None for r in text_rows.tolist()]
     orphans = len(by_row) - int(np.count_nonzero(text_rows >= 0))
     found = cache_keys(ids, audio.column("audio_sha256"), fingerprint_chars) if keys else None
