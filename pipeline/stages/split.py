@@ -1202,9 +1202,18 @@ def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[C
     records: dict[tuple[str, tuple[str, ...], str, str], ClipRecord] = {}
     clips: dict[str, ClipRecord] = {}
     subset, tiers, clip_parts = assignment.subset, assignment.tiers, assignment.parts
+    # An unlabelled clip has no tiers and no part: its record depends on its group alone.
+    unlabelled: dict[str, ClipRecord] = {}
     for c in kept:
         cid = c.clip_id
-        key = (subset[cid], tiers.get(cid, ()), c.group, clip_parts.get(cid, ""))
+        mine = subset[cid]
+        if mine == UNLABELLED:
+            rec = unlabelled.get(c.group)
+            if rec is None:
+                rec = unlabelled[c.group] = ClipRecord(UNLABELLED, (), c.group, "")
+            clips[cid] = rec
+            continue
+        key = (mine, tiers.get(cid, ()), c.group, clip_parts.get(cid, ""))
         rec = records.get(key)
         clips[cid] = rec if rec is not None else records.setdefault(key, ClipRecord(*key))
     known = dict.fromkeys(sorted(sources), "present")
