@@ -21,6 +21,9 @@ from typing import Any
 from pipeline.core.config import canonical_json
 from pipeline.core.fsio import atomic_output
 
+# Parts a table may gather before a run folds them into it (TableCache.compaction_due).
+MAX_PARTS = 16
+
 
 def cache_key(*parts: Any) -> str:
     return hashlib.sha256(canonical_json(list(parts))).hexdigest()
@@ -61,9 +64,10 @@ class TableCache:
         self.path = Path(root) / namespace / f"{name}.parquet"
         self.scope = scope
         self.enabled = enabled
-        # Whether the last load found parts, which a save would fold into the table, and
-        # how many rows the parts hold (those of this run's appends included).
+        # Whether the last load found parts, which a save would fold into the table, how
+        # many, and how many rows the parts hold (those of this run's appends included).
         self.has_parts = False
+        self.parts = 0
         self.part_rows = 0
 
     def _files(self) -> list[Path]:
@@ -79,6 +83,7 @@ class TableCache:
 
         files = self._files()
         self.has_parts = len(files) > 1
+        self.parts = len(files) - 1
         read = [(path, self._read(path)) for path in files]
         tables = [t for _, t in read if t is not None]
         self.part_rows = sum(t.num_rows for path, t in read if t is not None and path != self.path)
@@ -115,6 +120,23 @@ class TableCache:
             parts = len(self._files()) - 1
             self._write(self.path.with_name(f"{self.path.stem}.part-{parts:06d}.parquet"), table)
             self.part_rows += table.num_rows
+
+    def compaction_due(self, *, stored: int, used: int) -> bool:
+        """Whether a run that used ``used`` of the ``stored`` rows it loaded should
+        rewrite the table (:meth:`save`) rather than add its fresh rows as a part: when
+        nothing was stored, when parts have piled up, or when more than an eighth of
+        the stored rows are no longer used (files gone or changed). Between two
+        rewrites a run writes only what it computed, so a rebuild's cost does not grow
+        with what it reused; the rows it no longer uses stay until the next rewrite,
+        and a later part's row for a key wins over an earlier one.
+
+        Examples
+        --------
+        >>> cache = TableCache(Path("/nonexistent"), "ingest", "probes", scope="v1")
+        >>> cache.compaction_due(stored=1000, used=990), cache.compaction_due(stored=1000, used=800)
+        (False, True)
+        """
+        return stored == 0 or self.parts >= MAX_PARTS or (stored - used) * 8 > stored
 
     def save(self, table: Any) -> None:
         """Replace the stored table and its parts by ``table`` (atomically; no fsync:

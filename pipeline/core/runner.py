@@ -460,7 +460,7 @@ class Runner:
             # makes the next run a full one.
             record_snapshot = self.invocation is not None and tuple(stages) == order
             if record_snapshot:
-                self.raw_stats = {}
+                self.raw_stats = snapshot.Listing()
             raw_listing = snapshot.raw_digest(self.raw, stats=self.raw_stats) if record_snapshot else ""
             snapshot.forget(self.out)
             removed = remove_stale_temporaries(self.out)

@@ -38,6 +38,15 @@ def _stat_entry(st: os.stat_result) -> list[int]:
     return [st.st_mode, st.st_size, st.st_mtime_ns, st.st_ino]
 
 
+class Listing(dict):  # type: ignore[type-arg]
+    """RAW's regular files by '/'-separated relative path, with their ``(size, mtime_ns,
+    inode)``, as :func:`tree_digest` found them; ``complete`` says whether that is all
+    there was: no link, no other kind of file, no folder it could not list and no entry
+    gone while it looked (a stage may then take its listing of RAW from here)."""
+
+    complete = False
+
+
 def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset(),
                 stats: dict[str, tuple[int, int, int]] | None = None) -> str:
     """A hash of every entry under ``root``: relative path, mode, size, mtime_ns and
@@ -53,9 +62,11 @@ def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset(),
 
     ``stats``, when given, receives ``(size, mtime_ns, inode)`` by '/'-separated relative
     path of every regular file (not of links), so a stage can reuse the listing instead
-    of a ``stat`` per file of its own.
+    of a ``stat`` per file of its own; a :class:`Listing` also learns whether it holds
+    every entry but the folders.
     """
     digest = hashlib.sha256()
+    simple = True  # only folders and regular files so far
     stack = [(os.fspath(root), "")]
     while stack:
         folder, rel_folder = stack.pop()
@@ -64,6 +75,7 @@ def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset(),
                 entries = sorted(it, key=lambda e: e.name)
         except OSError:
             digest.update(f"{rel_folder}\0unlistable\n".encode("utf-8", "surrogateescape"))
+            simple = False
             continue
         lines = []
         subfolders = []
@@ -79,9 +91,12 @@ def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset(),
                 st = entry.stat(follow_symlinks=False)
             except OSError:
                 lines.append(f"{rel}\0gone")
+                simple = False
                 continue
             line = f"{rel}\0{st.st_mode}\0{st.st_size}\0{st.st_mtime_ns}\0{st.st_ino}"
-            if stats is not None and stat.S_ISREG(st.st_mode):
+            if not stat.S_ISREG(st.st_mode):
+                simple = False
+            elif stats is not None:
                 stats[rel] = (st.st_size, st.st_mtime_ns, st.st_ino)
             if stat.S_ISLNK(st.st_mode):
                 try:
@@ -93,6 +108,8 @@ def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset(),
         digest.update(("\n".join(lines) + "\n\n").encode("utf-8", "surrogateescape"))
         # Reversed onto the stack, so the subfolders are visited in sorted order.
         stack.extend(reversed(subfolders))
+    if isinstance(stats, Listing):
+        stats.complete = simple
     return digest.hexdigest()
 
 

@@ -33,6 +33,7 @@ from pipeline.core.names import stage_manifest
 from pipeline.core.parallel import map_ordered
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.core.startup import pandas_left_unloaded
+from pipeline.stages import ingest_rows
 from pipeline.stages.paths import check_relative_path, is_inside
 from pipeline.stages.speaker_source import SpeakerRule, path_speaker, speaker_rule
 from pipeline.stages.speakers import speaker_id
@@ -239,6 +240,51 @@ def scan(raw: Path, extensions: tuple[str, ...], sidecar_extension: str) -> Scan
     return found
 
 
+# A file name's extension as os.path.splitext gives it: from the last dot of the name,
+# when a character other than a dot comes before that dot.
+_EXTENSION_PATTERN = r"(?:^|/)\.*[^/.][^/]*(?P<ext>\.[^/.]*)$"
+
+
+def scan_listing(listing: Any, extensions: tuple[str, ...], sidecar_extension: str,
+                 ) -> tuple[Scan, tuple[np.ndarray, ...]] | None:
+    """What :func:`scan` finds, taken from the run's listing of RAW (``StageContext.raw_stats``,
+    a :class:`pipeline.core.snapshot.Listing`) instead of a second walk, with the audio
+    files' stats as :func:`_stats` gives them; None when the listing cannot stand for the
+    walk (not complete: a link, a special file, an unlistable folder; a name that is not
+    UTF-8; a value out of range). Columnar: a file costs no Python of its own here, but
+    for names outside ASCII, whose extension is lower-cased as :func:`scan` does it."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    if not getattr(listing, "complete", False):
+        return None
+    names = list(listing)
+    try:
+        with pandas_left_unloaded():
+            values = np.array(list(listing.values()), dtype=np.int64).reshape(-1, 3)
+            arr = pa.array(names, pa.string())
+    except (UnicodeEncodeError, OverflowError, ValueError):
+        return None
+    if (values < 0).any():
+        return None
+    wanted = {"." + e.lower() for e in extensions}
+    side = "." + sidecar_extension.lower()
+    with pandas_left_unloaded():
+        ext = pc.ascii_lower(pc.struct_field(pc.extract_regex(arr, _EXTENSION_PATTERN), [0]))
+        audio = np.asarray(pc.fill_null(pc.is_in(ext, value_set=pa.array(sorted(wanted))), False), dtype=bool)
+        sidecar = np.asarray(pc.fill_null(pc.equal(ext, side), False), dtype=bool)
+        for i in np.flatnonzero(~np.asarray(pc.string_is_ascii(arr), dtype=bool)).tolist():
+            name_ext = os.path.splitext(posixpath.basename(names[i]))[1].lower()
+            audio[i], sidecar[i] = name_ext in wanted, name_ext == side
+        at = np.flatnonzero(audio)
+        at = at[np.asarray(pc.sort_indices(arr.take(pa.array(at))), dtype=np.int64)]
+        paths = arr.take(pa.array(at)).to_pylist()
+        sidecars = set(arr.filter(pa.array(sidecar)).to_pylist())
+    stat = values[at]
+    found = Scan(paths, sidecars, set(), [])
+    return found, (stat[:, 0].copy(), stat[:, 1].copy(), stat[:, 2].astype(np.uint64), np.ones(len(at), dtype=bool))
+
+
 # The probe cache's columns (pipeline.core.cache.TableCache): the file's path and stat,
 # then what probe_file returned, an error as its reason and sentence.
 _PROBE_FIELDS = (("format", "string"), ("subtype", "string"), ("channels", "int64"), ("sample_rate", "int64"),
@@ -347,7 +393,7 @@ def _reusable(previous: Any, paths: list[str], stat: tuple[np.ndarray, ...]) -> 
     return row, hit & statted
 
 
-def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> Any:
+def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.ndarray, ...] | None = None) -> Any:
     """Probe results for ``paths`` as a table in their order (the probe cache's columns),
     reusing earlier results for files whose size, modification time and inode are
     unchanged (hashing is most of ingest's cost).
@@ -363,7 +409,7 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> Any:
     code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
     cache = TableCache(ctx.cache_dir, NAME, "probes", scope=cache_key("probe", code), enabled=ctx.use_cache)
     previous = cache.load()
-    size, mtime, inode, statted = stat = _stats(os.fspath(raw), paths, ctx.raw_stats)
+    size, mtime, inode, statted = stat = stat if stat is not None else _stats(os.fspath(raw), paths, ctx.raw_stats)
     row, hit = _reusable(previous, paths, stat)
     todo = np.flatnonzero(~hit).tolist()
 
@@ -398,11 +444,13 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str]) -> Any:
         # Back in path order: the reused rows, then the fresh ones, each taken to its path.
         order = np.argsort(np.concatenate([reused, np.array(todo, dtype=np.int64)]), kind="stable")
         table = pa.concat_tables(parts).take(pa.array(order))
-    if todo or previous is None or previous.num_rows != len(paths) or cache.has_parts:
-        # The table holds this run's files only: what left RAW leaves the cache.
+    if cache.compaction_due(stored=0 if previous is None else previous.num_rows, used=len(reused)):
+        # The rewritten table holds this run's files only: what left RAW leaves the cache.
         with pandas_left_unloaded():
             uncached = pc.fill_null(pc.is_in(table.column("error_reason"), value_set=pa.array(_UNCACHED)), False)
         cache.save(table.filter(pc.and_(pc.is_valid(table.column("st_size")), pc.invert(uncached))))
+    elif pending:
+        cache.append(_probe_table(pending))
     ctx.log.info("ingest: %d files probed, %d reused from cache", len(todo), len(paths) - len(todo))
     return table
 
@@ -412,8 +460,10 @@ _SIDECAR_FIELDS = (*_STAT_FIELDS, ("text", "string"), ("reason", "string"), ("se
 SidecarRead = tuple[str | None, tuple[str, str, str] | None]
 
 
-def _read_sidecars(ctx: StageContext, needed: list[str], links: set[str]) -> dict[str, SidecarRead]:
-    """What ``read_sidecar`` gives for each sidecar in ``needed``, reusing the last run's
+def _read_sidecars(ctx: StageContext, needed: list[str], links: set[str],
+                   ) -> tuple[dict[str, SidecarRead], dict[str, tuple[int, int, int] | None]]:
+    """What ``read_sidecar`` gives for each sidecar in ``needed`` and its size, mtime and
+    inode (None for a link or a sidecar that could not be stat'ed), reusing the last run's
     reading of a sidecar whose size, mtime and inode are unchanged (a ``stat`` instead
     of an open and a read: reading sidecars took a third of a 20,000-file rebuild's
     ingest). Links are always read (where they lead is checked each time), and so is
@@ -432,8 +482,9 @@ def _read_sidecars(ctx: StageContext, needed: list[str], links: set[str]) -> dic
             previous[rel] = ((size, mtime, ino), (text, None if reason is None else (reason, sentence, fix)))
     root = os.fspath(ctx.raw)
     found: dict[str, SidecarRead] = {}
-    keep: list[tuple[Any, ...]] = []
-    reused = 0
+    stats: dict[str, tuple[int, int, int] | None] = {}
+    kept: list[str] = []  # the sidecars whose reading was reused, then those read now
+    fresh: list[str] = []
     listed = ctx.raw_stats or {}
     for rel in needed:
         st = None
@@ -443,21 +494,25 @@ def _read_sidecars(ctx: StageContext, needed: list[str], links: set[str]) -> dic
             with contextlib.suppress(OSError):
                 s = os.stat(os.path.join(root, rel))
                 st = (s.st_size, s.st_mtime_ns, s.st_ino)
+        stats[rel] = st
         hit = previous.get(rel)
         if st is not None and hit is not None and hit[0] == st:
             found[rel] = hit[1]
-            reused += 1
-        else:
-            found[rel] = read_sidecar(ctx.raw, rel, encoding=cfg.transcript_encoding, link=rel in links)
-        text, problem = found[rel]
+            kept.append(rel)
+            continue
+        found[rel] = text, problem = read_sidecar(ctx.raw, rel, encoding=cfg.transcript_encoding, link=rel in links)
         if st is not None and (problem is None or problem[0] != "transcript_unreadable"):
-            keep.append((rel, *st, text, *(problem or (None, None, None))))
-    if reused != len(keep) or len(keep) != len(previous) or cache.has_parts:
+            fresh.append(rel)
+    # Rewritten only now and then (TableCache.compaction_due); else the fresh readings go in a part.
+    compact = cache.compaction_due(stored=0 if table is None else table.num_rows, used=len(kept))
+    keep = sorted(kept + fresh) if compact else fresh
+    if keep and (compact or fresh):
+        rows = [(rel, *stats[rel], found[rel][0], *(found[rel][1] or (None, None, None))) for rel in keep]
         schema = pa.schema([(name, getattr(pa, kind)()) for name, kind in _SIDECAR_FIELDS])
         with pandas_left_unloaded():
-            cache.save(pa.table([pa.array([k[i] for k in keep], f.type) for i, f in enumerate(schema)],
-                                schema=schema))
-    return found
+            part = pa.table([pa.array([k[i] for k in rows], f.type) for i, f in enumerate(schema)], schema=schema)
+        cache.save(part) if compact else cache.append(part)
+    return found, stats
 
 
 def extra_inputs(ctx: StageContext) -> list[Path]:
@@ -613,19 +668,21 @@ def _ingest_file(ctx: StageContext, rel: str, probe: tuple[str | None, str | Non
     }, (*repeats, *pairing.rejects))
 
 
-def _summary(accepted: list[dict[str, Any]], rejects: list[dict[str, Any]], *, paths: set[str],
-             metadata_rows: int, durations: list[float]) -> dict[str, Any]:
-    """Counts of files, rows, transcripts and hours for the report (``durations``: the
-    accepted files' seconds, in their order)."""
+def _summary(own: Any, rejects: list[dict[str, Any]], *, paths: set[str], metadata_rows: int,
+             durations: list[float]) -> dict[str, Any]:
+    """Counts of files, rows, transcripts and hours for the report (``own``: the accepted
+    rows' own fields; ``durations``: the accepted files' seconds, in their order)."""
+    import pyarrow.compute as pc
+
     return {
         "audio_files_found": len(paths),
-        "audio_files_accepted": len(accepted),
+        "audio_files_accepted": own.num_rows,
         "audio_files_rejected": sum(1 for r in rejects if r["source_path"] in paths),
         "metadata_rows": metadata_rows,
-        "transcribed": sum(1 for r in accepted if r["transcript"] is not None),
+        "transcribed": own.num_rows - own.column("transcript").null_count,
         "transcripts_set_aside": sum(1 for r in rejects if r["reason"] in TRANSCRIPT_REASONS),
         "hours": sum(durations) / 3600,
-        "speakers": len({r["speaker"] for r in accepted}),
+        "speakers": pc.count_distinct(own.column("speaker")).as_py() if own.num_rows else 0,
     }
 
 
@@ -633,7 +690,8 @@ def run(ctx: StageContext) -> StageResult:
     """Scan RAW, read the metadata table, probe every audio file and follow each to an
     ingest row or a reject (see the module docstring)."""
     cfg = ctx.config.ingest
-    found = scan(ctx.raw, cfg.extensions, cfg.sidecar_extension)
+    listed = scan_listing(ctx.raw_stats, cfg.extensions, cfg.sidecar_extension)
+    found, stat = listed or (scan(ctx.raw, cfg.extensions, cfg.sidecar_extension), None)
     paths, sidecars, rejects = found.audio, found.sidecars, found.rejects
     path_set = set(paths)
     sidecar_by_stem = _sidecars_by_stem(sidecars)
@@ -643,47 +701,117 @@ def run(ctx: StageContext) -> StageResult:
     rule = speaker_rule(paths, speaker=cfg.speaker, speaker_from=cfg.speaker_from)
     if rule.note:
         ctx.log.info("%s", rule.note)
-    probes = _probe_all(ctx, ctx.raw, paths)
-    paired = [sidecar_by_stem.get(posixpath.splitext(rel)[0]) for rel in paths]
-    readings = _read_sidecars(ctx, sorted({s for s in paired if s is not None}), found.links)
-    accepted: list[dict[str, Any]] = []
-    kept: list[int] = []  # each accepted row's file, by its index in paths
-    kept_by_hash: dict[str, str] = {}
-    facts = zip(*(probes.column(c).to_pylist() for c in ("sha256", "error_reason", "error_detail")), strict=True)
-    for i, (rel, probe, sidecar) in enumerate(zip(paths, facts, paired, strict=True)):
-        fate = _ingest_file(ctx, rel, probe, by_audio.get(rel, []), kept_by_hash=kept_by_hash,
-                            sidecar=sidecar, rule=rule, links=found.links, readings=readings)
-        rejects.extend(fate.rejects)
-        if fate.row is not None:
-            accepted.append(fate.row)
-            kept.append(i)
-    probed = probes.take(np.array(kept, dtype=np.int64))
+    probes = _probe_all(ctx, ctx.raw, paths, stat)
+    # An audio path has an extension: its stem ends at its last dot.
+    paired = [sidecar_by_stem.get(rel[:rel.rfind(".")]) for rel in paths] if sidecar_by_stem else [None] * len(paths)
+    readings, sidecar_stats = _read_sidecars(ctx, sorted({s for s in paired if s is not None}), found.links)
+    keys = ingest_rows.key_columns(paths, probes.column("sha256"),
+                                   [repr(by_audio[rel]) if rel in by_audio else None for rel in paths],
+                                   paired, [None if s is None else sidecar_stats.get(s) for s in paired])
+    inputs = _Inputs(paths, by_audio, paired, readings, found.links, rule)
+    own, kept, fate_rejects = _fates(ctx, inputs, probes, keys)
+    rejects.extend(fate_rejects)
+    probed = probes.take(kept)
 
-    summary = {**_summary(accepted, rejects, paths=path_set, metadata_rows=metadata_rows,
+    summary = {**_summary(own, rejects, paths=path_set, metadata_rows=metadata_rows,
                           durations=probed.column("duration_s").to_pylist()),
                "speaker_from": rule.origin}
-    stop = environment_failure(rejects, paths=path_set, metadata_rows=metadata_rows, accepted=len(accepted))
+    stop = environment_failure(rejects, paths=path_set, metadata_rows=metadata_rows, accepted=own.num_rows)
+    columns = {**{name: own.column(name) for name, _ in ingest_rows.ROW_FIELDS},
+               "source_path": keys["path"].take(kept)}
     if ctx.config.privacy.pseudonymise:
+        accepted = [{**r, "sha256": h} for r, h in zip(pa_rows(columns), probed.column("sha256").to_pylist(),
+                                                        strict=True)]
         _pseudonymise(ctx, accepted, rejects, paths=paths,
                       metadata_speakers={r.speaker for rows in by_audio.values() for r in rows if r.speaker})
+        columns = {name: [row[name] for row in accepted] for name in columns}
         stop = _scrubbed(ctx, stop)
-    return StageResult(manifests={stage_manifest(NAME): (NAME, _ingest_table(accepted, probed))},
+    return StageResult(manifests={stage_manifest(NAME): (NAME, _ingest_table(columns, probed))},
                        rejects=rejects, summary=summary, stop=stop)
 
 
-def _ingest_table(accepted: list[dict[str, Any]], probed: Any) -> Any:
-    """The ingest manifest: the rows' own fields, the probe's columns from ``probed``
-    (row for row), sorted by source_path."""
+def pa_rows(columns: dict[str, Any]) -> list[dict[str, Any]]:
+    """Rows as dicts from Arrow columns of equal length."""
+    names_ = list(columns)
+    return [dict(zip(names_, values, strict=True))
+            for values in zip(*(columns[n].to_pylist() for n in names_), strict=True)]
+
+
+@dataclass(frozen=True)
+class _Inputs:
+    """What every file's fate is decided from, besides its probe (lists row for row with paths)."""
+
+    paths: list[str]
+    by_audio: dict[str, list[MetadataRow]]
+    paired: list[str | None]
+    readings: dict[str, SidecarRead]
+    links: set[str]
+    rule: SpeakerRule
+
+
+def _fates(ctx: StageContext, inputs: _Inputs, probes: Any, keys: dict[str, Any]) -> tuple[Any, np.ndarray, list[dict[str, Any]]]:
+    """Every file's fate: the accepted rows' own fields (in path order), their files'
+    indices in ``inputs.paths`` and the rejects. Files whose inputs are those of a row
+    in the rows cache (:mod:`pipeline.stages.ingest_rows`) take that row, in Arrow;
+    the others go through :func:`_ingest_file` one by one, in path order."""
+    import pyarrow as pa
+
+    paths = inputs.paths
+    cache = ingest_rows.rows_cache(ctx, rule=(inputs.rule.constant, inputs.rule.origin))
+    previous = cache.load()
+    first = ingest_rows.first_of_content(probes.column("sha256"))
+    row, hit = ingest_rows.reusable(previous, keys)
+    hit &= first == np.arange(len(paths))
+    todo = np.flatnonzero(~hit)
+    facts = list(zip(*(probes.column(c).take(pa.array(todo)).to_pylist()
+                       for c in ("sha256", "error_reason", "error_detail")), strict=True))
+    # A reused file is the first of its content: a later file to do with the same bytes is its duplicate.
+    kept_by_hash = {probe[0]: paths[first[i]] for i, probe in zip(todo.tolist(), facts, strict=True)
+                    if first[i] >= 0 and hit[first[i]]}
+    accepted: list[dict[str, Any]] = []
+    fresh: list[int] = []
+    rejects: list[dict[str, Any]] = []
+    clean = hit.copy()
+    for i, probe in zip(todo.tolist(), facts, strict=True):
+        rel, sidecar = paths[i], inputs.paired[i]
+        fate = _ingest_file(ctx, rel, probe, inputs.by_audio.get(rel, []), kept_by_hash=kept_by_hash,
+                            sidecar=sidecar, rule=inputs.rule, links=inputs.links, readings=inputs.readings)
+        rejects.extend(fate.rejects)
+        if fate.row is not None:
+            accepted.append(fate.row)
+            fresh.append(i)
+            clean[i] = not fate.rejects
+    reused = np.flatnonzero(hit)
+    parts = [ingest_rows.fresh_table(accepted)]
+    if len(reused):
+        schema = pa.schema([(n, getattr(pa, k)()) for n, k in ingest_rows.ROW_FIELDS])
+        parts.insert(0, previous.select(schema.names).take(pa.array(row[reused])).cast(schema))
+    kept = np.concatenate([reused, np.array(fresh, dtype=np.int64)])
+    order = np.argsort(kept, kind="stable")
+    own = pa.concat_tables(parts).take(pa.array(order)).combine_chunks()
+    kept = kept[order]
+    if cache.compaction_due(stored=0 if previous is None else previous.num_rows, used=len(reused)):
+        ingest_rows.save(cache, keys, own, kept, clean)
+    elif len(todo):
+        ingest_rows.save(cache, keys, own, kept, clean & ~hit, append=True)
+    ctx.log.info("ingest: %d rows reused, %d files followed one by one", len(reused), len(todo))
+    return own, kept, rejects
+
+
+def _ingest_table(columns: dict[str, Any], probed: Any) -> Any:
+    """The ingest manifest: the rows' own fields (``columns``), the probe's columns from
+    ``probed`` (row for row), sorted by source_path."""
     import pyarrow as pa
 
     schema = arrow_schema(NAME)
-    own = {f.name for f in schema} - {name for name, _ in _PROBE_FIELDS}
-    columns: dict[str, Any] = {name: [row[name] for row in accepted] for name in own}
+    columns = dict(columns)
     columns.update({name: probed.column(name).cast(schema.field(name).type) for name, _ in _PROBE_FIELDS})
     table = table_from_columns(NAME, columns)
+    paths = columns["source_path"]
+    paths = paths if isinstance(paths, list) else paths.to_pylist()
     with pandas_left_unloaded():
         # In path order already, unless pseudonyms replaced the paths.
-        return table.take(pa.array(np.argsort(np.array(columns["source_path"], dtype=object), kind="stable")))
+        return table.take(pa.array(np.argsort(np.array(paths, dtype=object), kind="stable")))
 
 
 def _scrubbed(ctx: StageContext, sentence: str) -> str:

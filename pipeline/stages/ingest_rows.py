@@ -1,0 +1,142 @@
+"""The ingest rows cache: each audio file's row from the last run, reused when nothing it
+depends on has changed (``OUT/cache/ingest/rows.parquet``).
+
+A file's ingest row is a function of its path, its content hash, its metadata table rows,
+the sidecar paired with it and what that sidecar holds, the speaker rule and the ingest
+settings, and of whether an earlier file holds the same bytes. The table keeps, for every
+file whose last fate was a row and no reject, that row with those inputs: the hash, the
+rows (as written by ``repr``), the sidecar's path and its size, modification time and
+inode (the test the sidecar cache already trusts). Its scope holds the stage's code
+version, the ingest section and the speaker rule. A file is reused when every input is
+the one recorded and it is the first file of its content; the test is made in Arrow, so
+an unchanged file costs no Python of its own. Anything else (a new or changed file, a
+duplicate, a file with rejects) follows the full path, whose result is the same as the
+cache's: the cache changes how fast a row is found, never which row.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from pipeline.core.cache import TableCache, cache_key
+from pipeline.core.codeversion import code_version
+from pipeline.core.stage import StageContext
+from pipeline.core.startup import pandas_left_unloaded
+
+NAME = "ingest"
+# The row's own fields (the probe's columns come from the probe cache), then its inputs.
+ROW_FIELDS = (("source_id", "string"), ("speaker", "string"), ("transcript", "string"),
+              ("transcript_origin", "string"), ("metadata_line", "int64"))
+KEY_FIELDS = (("path", "string"), ("sha256", "string"), ("metadata", "string"), ("sidecar", "string"),
+              ("sidecar_size", "int64"), ("sidecar_mtime_ns", "int64"), ("sidecar_ino", "uint64"))
+
+
+def schema() -> pa.Schema:
+    return pa.schema([(name, getattr(pa, kind)()) for name, kind in (*KEY_FIELDS, *ROW_FIELDS)])
+
+
+def rows_cache(ctx: StageContext, *, rule: tuple[str | None, str]) -> TableCache:
+    """The cache for this run's code, ingest settings and speaker rule ``(constant, origin)``;
+    disabled with pseudonyms (the rows are rewritten after the fact)."""
+    code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
+    scope = cache_key("rows", code, ctx.config.section("ingest"), *rule)
+    return TableCache(ctx.cache_dir, NAME, "rows", scope=scope,
+                      enabled=ctx.use_cache and not ctx.config.privacy.pseudonymise)
+
+
+def key_columns(paths: Sequence[str], sha256: pa.ChunkedArray, metadata: Sequence[str | None],
+                sidecars: Sequence[str | None], sidecar_stats: Sequence[tuple[int, int, int] | None]) -> dict[str, Any]:
+    """Each file's inputs as Arrow arrays (a sidecar without a stat, a link, has none)."""
+    stats = [s if s is not None else (None, None, None) for s in sidecar_stats]
+    size, mtime, ino = zip(*stats, strict=True) if stats else ((), (), ())
+    with pandas_left_unloaded():
+        return {"path": pa.array(paths, pa.string()), "sha256": sha256.cast(pa.string()).combine_chunks(),
+                "metadata": pa.array(metadata, pa.string()), "sidecar": pa.array(sidecars, pa.string()),
+                "sidecar_size": pa.array(size, pa.int64()), "sidecar_mtime_ns": pa.array(mtime, pa.int64()),
+                "sidecar_ino": pa.array(ino, pa.uint64())}
+
+
+def first_of_content(sha256: pa.ChunkedArray) -> np.ndarray:
+    """Per file, the index of the first file (in order) with the same hash; -1 for a file
+    without one (its probe failed). A file with ``first[i] == i`` is no duplicate.
+
+    Examples
+    --------
+    >>> first_of_content(pa.chunked_array([["a", None, "b", "a"]])).tolist()
+    [0, -1, 2, 0]
+    """
+    with pandas_left_unloaded():
+        codes = pc.dictionary_encode(sha256.combine_chunks()).indices
+        valid = np.asarray(pc.is_valid(codes), dtype=bool)
+        index = np.asarray(codes.fill_null(0), dtype=np.int64)
+    first = np.full(len(index), -1, dtype=np.int64)
+    if not len(index):
+        return first
+    at = np.flatnonzero(valid)
+    distinct, where = np.unique(index[at], return_index=True)
+    first_by_code = np.zeros(int(distinct.max()) + 1 if len(distinct) else 0, dtype=np.int64)
+    first_by_code[distinct] = at[where]
+    first[at] = first_by_code[index[at]]
+    return first
+
+
+def _same(now: pa.Array, then: pa.Array) -> np.ndarray:
+    """Element-wise equality where two nulls are equal."""
+    equal = pc.fill_null(pc.equal(now, then), False)
+    both_null = pc.and_(pc.is_null(now), pc.is_null(then))
+    return np.asarray(pc.or_(equal, both_null), dtype=bool)
+
+
+def _statless_sidecar(keys: dict[str, Any]) -> np.ndarray:
+    """Files whose sidecar has no stat (a link, read again every run): never reused."""
+    return np.asarray(pc.and_(pc.is_valid(keys["sidecar"]), pc.is_null(keys["sidecar_size"])), dtype=bool)
+
+
+def reusable(previous: pa.Table | None, keys: dict[str, Any]) -> tuple[np.ndarray, np.ndarray]:
+    """Per file: the row of ``previous`` recorded last for its path (a part written later
+    wins over the table), and whether every input recorded there is the file's now (a
+    hash is never null when it matches)."""
+    n = len(keys["path"])
+    if previous is None or not previous.num_rows or not n:
+        return np.zeros(n, dtype=np.int64), np.zeros(n, dtype=bool)
+    last = previous.num_rows - 1
+    with pandas_left_unloaded():
+        # index_in finds a value's first row: look the paths up in the table reversed.
+        reversed_paths = previous.column("path").take(pa.array(np.arange(last, -1, -1))).combine_chunks()
+        found = pc.index_in(keys["path"], value_set=reversed_paths)
+        hit = np.asarray(pc.is_valid(found), dtype=bool)
+        row = last - np.asarray(found.fill_null(last), dtype=np.int64)
+        then = previous.take(pa.array(row))
+        hit &= np.asarray(pc.fill_null(pc.equal(keys["sha256"], then.column("sha256").combine_chunks()), False),
+                          dtype=bool)
+        for name, _ in KEY_FIELDS[2:]:
+            hit &= _same(keys[name], then.column(name).combine_chunks())
+    return row, hit & ~_statless_sidecar(keys)
+
+
+def fresh_table(rows: list[dict[str, Any]]) -> pa.Table:
+    """The own fields of ``rows`` (ingest rows as dicts) as a table."""
+    with pandas_left_unloaded():
+        return pa.table({name: pa.array([r[name] for r in rows], getattr(pa, kind)()) for name, kind in ROW_FIELDS})
+
+
+def save(cache: TableCache, keys: dict[str, Any], own: pa.Table, kept: np.ndarray, clean: np.ndarray, *,
+         append: bool = False) -> None:
+    """Record the rows of the files ``clean`` marks (a fate that was a row and no reject):
+    ``own`` holds the kept files' own fields (row for row with ``kept``, their indices
+    among the files). ``append`` adds them as a part instead of rewriting the table."""
+    take = np.flatnonzero((clean & ~_statless_sidecar(keys))[kept])
+    with pandas_left_unloaded():
+        at = pa.array(kept[take])
+        columns = {name: keys[name].take(at) for name, _ in KEY_FIELDS}
+        columns.update({name: own.column(name).take(pa.array(take)) for name, _ in ROW_FIELDS})
+        table = pa.table(columns, schema=schema())
+    if append:
+        cache.append(table)
+    else:
+        cache.save(table)
