@@ -1,0 +1,218 @@
+"""Ingest's rows cache and its listing of RAW from the run's snapshot walk: a rebuild gives
+the rows and rejects a run without any cache gives, whatever the cache holds."""
+
+from __future__ import annotations
+
+import logging
+import os
+import re
+import wave
+from pathlib import Path
+from unittest import mock
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from pipeline.core import snapshot
+from pipeline.core.config import build_config
+from pipeline.core.runner import Runner
+from pipeline.stages import STAGES, ingest, ingest_rows
+
+ROWS = Path("cache") / "ingest" / "rows.parquet"
+
+
+def write_wav(path: Path, *, seed: int, frames: int = 800) -> None:
+    """A short 16-bit mono WAV of seeded noise (each seed other bytes), by the standard library."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    samples = np.random.default_rng(seed).integers(-3000, 3000, frames, dtype=np.int16)
+    with wave.open(str(path), "wb") as fh:
+        fh.setnchannels(1)
+        fh.setsampwidth(2)
+        fh.setframerate(16000)
+        fh.writeframes(samples.astype("<i2").tobytes())
+
+
+@pytest.fixture
+def raw(tmp_path: Path) -> Path:
+    """Twelve files of two speakers, every third with a sidecar transcript."""
+    root = tmp_path / "raw"
+    for i in range(12):
+        rel = f"{'ana' if i % 2 else 'ben'}/take{i:02d}.wav"
+        write_wav(root / rel, seed=i)
+        if i % 3 == 0:
+            (root / rel).with_suffix(".txt").write_text(f"words of take {i}\n", encoding="utf-8")
+    return root
+
+
+def run(raw: Path, out: Path, data: dict | None = None, *, use_cache: bool = True,
+        listing: bool = True) -> tuple[list[dict], list[dict]]:
+    """The ingest stage as a full prepare runs it (with the snapshot's listing of RAW)."""
+    runner = Runner(raw, out, build_config(data or {}), stages=STAGES, workers=1, use_cache=use_cache)
+    if listing:
+        runner.raw_stats = snapshot.Listing()
+        snapshot.raw_digest(runner.raw, stats=runner.raw_stats)
+    runner.run_stage("ingest")
+    rows = pq.read_table(out / "stages" / "ingest.parquet").to_pylist()
+    rejects = pq.read_table(out / "stages" / "ingest.rejects.parquet").to_pylist()
+    return rows, rejects
+
+
+def uncached(raw: Path, tmp_path: Path, data: dict | None = None) -> tuple[list[dict], list[dict]]:
+    return run(raw, tmp_path / "uncached", data, use_cache=False, listing=False)
+
+
+def reused(caplog: pytest.LogCaptureFixture) -> int:
+    return int(re.findall(r"ingest: (\d+) rows reused", caplog.text)[-1])
+
+
+def test_unchanged_files_take_their_rows_from_the_cache(raw: Path, tmp_path: Path,
+                                                        caplog: pytest.LogCaptureFixture) -> None:
+    out = tmp_path / "out"
+    with caplog.at_level(logging.INFO, logger="loam"):
+        first = run(raw, out)
+        assert reused(caplog) == 0
+        again = run(raw, out)
+        assert reused(caplog) == 12
+    assert first == again == uncached(raw, tmp_path)
+
+
+def test_changed_inputs_miss_and_give_the_uncached_rows(raw: Path, tmp_path: Path,
+                                                        caplog: pytest.LogCaptureFixture) -> None:
+    out = tmp_path / "out"
+    run(raw, out)
+    write_wav(raw / "ana" / "take01.wav", seed=100)  # new bytes: a new hash
+    (raw / "ben" / "take06.txt").write_text("other words, another length\n", encoding="utf-8")
+    (raw / "ana" / "take05.txt").write_text("a sidecar that was not there\n", encoding="utf-8")
+    (raw / "ben" / "take00.txt").unlink()
+    # Earlier in path order than ana/take03.wav and holding its bytes: the cached file
+    # becomes the duplicate, though its own inputs did not change.
+    (raw / "ana" / "take02.wav").write_bytes((raw / "ana" / "take03.wav").read_bytes())
+    with caplog.at_level(logging.INFO, logger="loam"):
+        rows, rejects = run(raw, out)
+    assert (rows, rejects) == uncached(raw, tmp_path)
+    assert reused(caplog) == 12 - 5
+    by_path = {r["source_path"]: r for r in rows}
+    assert by_path["ben/take06.wav"]["transcript"] == "other words, another length"
+    assert by_path["ben/take00.wav"]["transcript"] is None
+    assert [(r["source_path"], r["reason"]) for r in rejects] == [("ana/take03.wav", "duplicate_content")]
+
+
+def test_same_size_and_mtime_is_trusted_as_the_probe_cache_trusts_it(raw: Path, tmp_path: Path) -> None:
+    """Bytes changed in place with size and mtime put back: the probe and sidecar caches
+    keep their readings (the stat test they rely on), and the rows cache gives the row
+    those readings give without it."""
+    out = tmp_path / "out"
+    run(raw, out)
+    sidecar = raw / "ben" / "take06.txt"
+    st = sidecar.stat()
+    sidecar.write_text("WORDS OF TAKE 6\n", encoding="utf-8")  # same length
+    os.utime(sidecar, ns=(st.st_atime_ns, st.st_mtime_ns))
+    with_rows = run(raw, out)
+    (out / ROWS).unlink()
+    without_rows = run(raw, out)
+    assert with_rows == without_rows
+    assert {r["source_path"]: r["transcript"] for r in with_rows[0]}["ben/take06.wav"] == "words of take 6"
+
+
+def test_a_row_recorded_for_other_inputs_is_not_used(raw: Path, tmp_path: Path,
+                                                     caplog: pytest.LogCaptureFixture) -> None:
+    """A cache row whose recorded hash or sidecar stat is not the file's now is ignored,
+    whatever it says."""
+    out = tmp_path / "out"
+    expected = run(raw, out)
+    table = pq.read_table(out / ROWS)
+    meta = table.schema.metadata
+    table = table.set_column(table.schema.get_field_index("speaker"), "speaker",
+                             pa.array(["someone-else"] * table.num_rows))
+    sha = table.column("sha256").to_pylist()
+    sha[0] = "0" * 64
+    size = table.column("sidecar_size").to_pylist()
+    with_sidecar = next(i for i, s in enumerate(size) if s is not None and i != 0)
+    size[with_sidecar] += 1
+    table = table.set_column(table.schema.get_field_index("sha256"), "sha256", pa.array(sha))
+    table = table.set_column(table.schema.get_field_index("sidecar_size"), "sidecar_size", pa.array(size, pa.int64()))
+    pq.write_table(table.replace_schema_metadata(meta), out / ROWS)
+    with caplog.at_level(logging.INFO, logger="loam"):
+        rows, _ = run(raw, out)
+    assert reused(caplog) == 10
+    speakers = {r["source_path"]: r["speaker"] for r in rows}
+    paths = table.column("path").to_pylist()
+    assert speakers[paths[0]] == speakers[paths[with_sidecar]] == {r["source_path"]: r["speaker"]
+                                                                   for r in expected[0]}[paths[0]]
+
+
+def test_other_settings_or_code_miss_the_whole_cache(raw: Path, tmp_path: Path,
+                                                     caplog: pytest.LogCaptureFixture) -> None:
+    out = tmp_path / "out"
+    run(raw, out)
+    solo = {"ingest": {"speaker": "narrator"}}
+    with caplog.at_level(logging.INFO, logger="loam"):
+        rows = run(raw, out, solo)
+        assert reused(caplog) == 0
+    assert rows == uncached(raw, tmp_path, solo)
+    assert {r["speaker"] for r in rows[0]} == {"narrator"}
+    run(raw, out)
+    with mock.patch.object(ingest_rows, "code_version", return_value="another-version"), \
+            caplog.at_level(logging.INFO, logger="loam"):
+        assert run(raw, out) == uncached(raw, tmp_path)
+        assert reused(caplog) == 0
+
+
+def test_fresh_rows_go_in_a_part_and_the_latest_wins(raw: Path, tmp_path: Path) -> None:
+    for i in range(12, 40):  # enough files that one change leaves the table mostly in use
+        write_wav(raw / "cyd" / f"take{i:02d}.wav", seed=i)
+    out = tmp_path / "out"
+    run(raw, out)
+    sidecar = raw / "cyd" / "take20.txt"
+    for words in ("first words", "second words"):
+        sidecar.write_text(words + "\n", encoding="utf-8")
+        rows, rejects = run(raw, out)
+        assert {r["source_path"]: r["transcript"] for r in rows}["cyd/take20.wav"] == words
+    assert sorted(p.name for p in (out / ROWS).parent.glob("rows*.parquet")) == [
+        "rows.parquet", "rows.part-000000.parquet", "rows.part-000001.parquet"]
+    assert (rows, rejects) == uncached(raw, tmp_path)
+
+
+def test_listing_stands_for_the_walk(tmp_path: Path) -> None:
+    """The files the snapshot's listing gives ingest are those its own walk finds,
+    extensions matched as os.path.splitext and str.lower have them (the Kelvin sign
+    lower-cases to k); a link makes the listing incomplete, so the walk is used."""
+    root = tmp_path / "raw"
+    names = [".wav", "..wav", "a.WAV", "b.tar.wav", "c.wav.txt", "c.txt", "c.TXT", "dir.wav/x.txt", "dir.wav/x.wav",
+             "é.WAV", "\u212a.wav", "k.\u212aav", "noext", "a.", "line\nbreak.wav", "s/.hidden.wav", "s/..x.flac",
+             "z/y/...wav", "z/y/a..wav", "Ü/ß.MP3", "a.wav.", "İ.wav", "x.wİv"]
+    for name in names:
+        (root / name).parent.mkdir(parents=True, exist_ok=True)
+        (root / name).write_bytes(b"x")
+    listing = snapshot.Listing()
+    snapshot.raw_digest(root, stats=listing)
+    assert listing.complete
+    for extensions in (("wav", "flac", "ogg", "mp3"), ("WAV", "kav", "wiv")):
+        walked = ingest.scan(root, extensions, "txt")
+        listed, stat = ingest.scan_listing(listing, extensions, "txt")
+        assert (listed.audio, listed.sidecars) == (walked.audio, walked.sidecars)
+        assert [tuple(int(c[i]) for c in stat[:3]) for i in range(len(listed.audio))] == [
+            (st.st_size, st.st_mtime_ns, st.st_ino) for st in (os.stat(root / rel) for rel in listed.audio)]
+    assert "k.\u212aav" in listed.audio
+    os.symlink(root / "a.WAV", root / "link.wav")
+    listing = snapshot.Listing()
+    snapshot.raw_digest(root, stats=listing)
+    assert not listing.complete and ingest.scan_listing(listing, ("wav",), "txt") is None
+
+
+def test_a_changed_metadata_row_misses(raw: Path, tmp_path: Path, caplog: pytest.LogCaptureFixture) -> None:
+    table = raw / "meta.csv"
+    data = {"ingest": {"metadata": "meta.csv"}}
+    table.write_text("path,transcript,speaker\nana/take01.wav,from the table,ana\nben/take02.wav,kept,ben\n",
+                     encoding="utf-8")
+    out = tmp_path / "out"
+    run(raw, out, data)
+    table.write_text("path,transcript,speaker\nana/take01.wav,changed in the table,ana\nben/take02.wav,kept,ben\n",
+                     encoding="utf-8")
+    with caplog.at_level(logging.INFO, logger="loam"):
+        rows, rejects = run(raw, out, data)
+    assert reused(caplog) == 11
+    assert {r["source_path"]: r["transcript"] for r in rows}["ana/take01.wav"] == "changed in the table"
+    assert (rows, rejects) == uncached(raw, tmp_path, data)
