@@ -34,6 +34,13 @@ def write_wav(path: Path, *, seed: int, frames: int = 800) -> None:
         fh.writeframes(samples.astype("<i2").tobytes())
 
 
+@pytest.fixture(autouse=True)
+def logs_reach_caplog(monkeypatch: pytest.MonkeyPatch) -> None:
+    """A command run earlier in the session (``cli.main``) may have stopped the loam logger
+    propagating to the root logger, where caplog listens."""
+    monkeypatch.setattr(logging.getLogger("loam"), "propagate", True)
+
+
 @pytest.fixture
 def raw(tmp_path: Path) -> Path:
     """Twelve files of two speakers, every third with a sidecar transcript."""
@@ -91,8 +98,8 @@ def test_changed_inputs_miss_and_give_the_uncached_rows(raw: Path, tmp_path: Pat
     (raw / "ana" / "take02.wav").write_bytes((raw / "ana" / "take03.wav").read_bytes())
     with caplog.at_level(logging.INFO, logger="loam"):
         rows, rejects = run(raw, out)
-    assert (rows, rejects) == uncached(raw, tmp_path)
     assert reused(caplog) == 12 - 5
+    assert (rows, rejects) == uncached(raw, tmp_path)
     by_path = {r["source_path"]: r for r in rows}
     assert by_path["ben/take06.wav"]["transcript"] == "other words, another length"
     assert by_path["ben/take00.wav"]["transcript"] is None

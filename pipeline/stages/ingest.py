@@ -11,7 +11,6 @@ the audio goes on as untranscribed audio.
 
 from __future__ import annotations
 
-import contextlib
 import os
 import posixpath
 import re
@@ -19,6 +18,7 @@ import unicodedata
 from collections import defaultdict
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from itertools import chain
 from pathlib import Path
 from typing import Any
 
@@ -261,7 +261,8 @@ def scan_listing(listing: Any, extensions: tuple[str, ...], sidecar_extension: s
     names = list(listing)
     try:
         with pandas_left_unloaded():
-            values = np.array(list(listing.values()), dtype=np.int64).reshape(-1, 3)
+            values = np.fromiter(chain.from_iterable(listing.values()), dtype=np.int64,
+                                 count=3 * len(names)).reshape(-1, 3)
             arr = pa.array(names, pa.string())
     except (UnicodeEncodeError, OverflowError, ValueError):
         return None
@@ -460,59 +461,86 @@ _SIDECAR_FIELDS = (*_STAT_FIELDS, ("text", "string"), ("reason", "string"), ("se
 SidecarRead = tuple[str | None, tuple[str, str, str] | None]
 
 
-def _read_sidecars(ctx: StageContext, needed: list[str], links: set[str],
-                   ) -> tuple[dict[str, SidecarRead], dict[str, tuple[int, int, int] | None]]:
-    """What ``read_sidecar`` gives for each sidecar in ``needed`` and its size, mtime and
-    inode (None for a link or a sidecar that could not be stat'ed), reusing the last run's
+@dataclass
+class Sidecars:
+    """The sidecars a run pairs (``needed``, sorted), their stats as arrays (``statted``
+    False for a link or a sidecar that could not be stat'ed) and what ``read_sidecar``
+    gives for each: read this run (``fresh``) or taken on demand from the cache table's
+    row ``row[i]`` where ``hit[i]``."""
+
+    needed: list[str]
+    stat: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]
+    hit: np.ndarray
+    row: np.ndarray
+    table: Any
+    fresh: dict[str, SidecarRead]
+    index: dict[str, int]
+
+    def get(self, rel: str, default: SidecarRead | None = None) -> SidecarRead | None:
+        """The reading of sidecar ``rel`` (``default`` for one not needed)."""
+        if rel in self.fresh:
+            return self.fresh[rel]
+        i = self.index.get(rel)
+        if i is None or not self.hit[i]:
+            return default
+        text, reason, sentence, fix = (self.table.column(name)[int(self.row[i])].as_py()
+                                       for name in ("text", "reason", "sentence", "fix"))
+        return text, None if reason is None else (reason, sentence, fix)
+
+
+def _read_sidecars(ctx: StageContext, needed: list[str], links: set[str]) -> Sidecars:
+    """What ``read_sidecar`` gives for each sidecar in ``needed``, reusing the last run's
     reading of a sidecar whose size, mtime and inode are unchanged (a ``stat`` instead
     of an open and a read: reading sidecars took a third of a 20,000-file rebuild's
-    ingest). Links are always read (where they lead is checked each time), and so is
-    a sidecar that could not be read (a permission says something about this machine)."""
-    import pyarrow as pa
+    ingest), matched in Arrow like the probes. Links are always read (where they lead is
+    checked each time), and so is a sidecar that could not be read (a permission says
+    something about this machine)."""
 
     cfg = ctx.config.ingest
     code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
     cache = TableCache(ctx.cache_dir, NAME, "sidecars", scope=cache_key("sidecar", code, cfg.transcript_encoding),
                        enabled=ctx.use_cache)
     table = cache.load()
-    previous: dict[str, tuple[tuple[int, int, int], SidecarRead]] = {}
-    if table is not None:
-        cols = [table.column(name).to_pylist() for name, _ in _SIDECAR_FIELDS]
-        for rel, size, mtime, ino, text, reason, sentence, fix in zip(*cols, strict=True):
-            previous[rel] = ((size, mtime, ino), (text, None if reason is None else (reason, sentence, fix)))
-    root = os.fspath(ctx.raw)
-    found: dict[str, SidecarRead] = {}
-    stats: dict[str, tuple[int, int, int] | None] = {}
-    kept: list[str] = []  # the sidecars whose reading was reused, then those read now
-    fresh: list[str] = []
-    listed = ctx.raw_stats or {}
-    for rel in needed:
-        st = None
-        if rel not in links:
-            st = listed.get(rel)
-        if st is None and rel not in links:
-            with contextlib.suppress(OSError):
-                s = os.stat(os.path.join(root, rel))
-                st = (s.st_size, s.st_mtime_ns, s.st_ino)
-        stats[rel] = st
-        hit = previous.get(rel)
-        if st is not None and hit is not None and hit[0] == st:
-            found[rel] = hit[1]
-            kept.append(rel)
-            continue
-        found[rel] = text, problem = read_sidecar(ctx.raw, rel, encoding=cfg.transcript_encoding, link=rel in links)
-        if st is not None and (problem is None or problem[0] != "transcript_unreadable"):
-            fresh.append(rel)
-    # Rewritten only now and then (TableCache.compaction_due); else the fresh readings go in a part.
-    compact = cache.compaction_due(stored=0 if table is None else table.num_rows, used=len(kept))
-    keep = sorted(kept + fresh) if compact else fresh
-    if keep and (compact or fresh):
-        rows = [(rel, *stats[rel], found[rel][0], *(found[rel][1] or (None, None, None))) for rel in keep]
-        schema = pa.schema([(name, getattr(pa, kind)()) for name, kind in _SIDECAR_FIELDS])
-        with pandas_left_unloaded():
-            part = pa.table([pa.array([k[i] for k in rows], f.type) for i, f in enumerate(schema)], schema=schema)
-        cache.save(part) if compact else cache.append(part)
-    return found, stats
+    unlinked = [rel for rel in needed if rel not in links] if links else needed
+    stat = _stats(os.fspath(ctx.raw), unlinked, ctx.raw_stats)
+    if len(unlinked) != len(needed):  # links: no stat, read again every run
+        at = np.array([i for i, rel in enumerate(needed) if rel not in links], dtype=np.int64)
+        full = tuple(np.zeros(len(needed), dtype=a.dtype) for a in stat)
+        for column, values in zip(full, stat, strict=True):
+            column[at] = values
+        stat = full  # type: ignore[assignment]
+    row, hit = _reusable(table, needed, stat)
+    fresh: dict[str, SidecarRead] = {}
+    for i in np.flatnonzero(~hit).tolist():
+        rel = needed[i]
+        fresh[rel] = read_sidecar(ctx.raw, rel, encoding=cfg.transcript_encoding, link=rel in links)
+    found = Sidecars(needed, stat, hit, row, table, fresh, {rel: i for i, rel in enumerate(needed)})
+    _save_sidecars(cache, found)
+    return found
+
+
+def _save_sidecars(cache: TableCache, found: Sidecars) -> None:
+    """The fresh readings worth keeping as a part, or the whole table rewritten when
+    due (TableCache.compaction_due): the reused rows and the fresh ones."""
+    import pyarrow as pa
+
+    size, mtime, inode, statted = found.stat
+    keep = [rel for rel, (_, problem) in found.fresh.items()
+            if statted[found.index[rel]] and (problem is None or problem[0] != "transcript_unreadable")]
+    compact = cache.compaction_due(stored=0 if found.table is None else found.table.num_rows,
+                                   used=int(found.hit.sum()))
+    if not keep and not compact:
+        return
+    rows = []
+    for rel in keep:
+        i, (text, problem) = found.index[rel], found.fresh[rel]
+        rows.append((rel, int(size[i]), int(mtime[i]), int(inode[i]), text, *(problem or (None, None, None))))
+    schema = pa.schema([(name, getattr(pa, kind)()) for name, kind in _SIDECAR_FIELDS])
+    with pandas_left_unloaded():
+        part = pa.table([pa.array([r[i] for r in rows], f.type) for i, f in enumerate(schema)], schema=schema)
+        if compact and found.table is not None and found.hit.any():
+            part = pa.concat_tables([found.table.take(pa.array(found.row[found.hit])).cast(schema), part])
+    cache.save(part) if compact else cache.append(part)
 
 
 def extra_inputs(ctx: StageContext) -> list[Path]:
@@ -633,7 +661,7 @@ class Fate:
 
 def _ingest_file(ctx: StageContext, rel: str, probe: tuple[str | None, str | None, str | None],
                  rows: list[MetadataRow], *, kept_by_hash: dict[str, str], sidecar: str | None, rule: SpeakerRule,
-                 links: set[str], readings: dict[str, SidecarRead]) -> Fate:
+                 links: set[str], readings: Sidecars) -> Fate:
     """One audio file's fate: probe error, duplicate content, no speaker, or an ingest
     row with its transcript paired. ``probe`` is the file's content hash, or its probe
     error's reason and sentence; the row holds the fields ingest adds to the probe's
@@ -704,10 +732,12 @@ def run(ctx: StageContext) -> StageResult:
     probes = _probe_all(ctx, ctx.raw, paths, stat)
     # An audio path has an extension: its stem ends at its last dot.
     paired = [sidecar_by_stem.get(rel[:rel.rfind(".")]) for rel in paths] if sidecar_by_stem else [None] * len(paths)
-    readings, sidecar_stats = _read_sidecars(ctx, sorted({s for s in paired if s is not None}), found.links)
+    readings = _read_sidecars(ctx, sorted({s for s in paired if s is not None}), found.links)
     keys = ingest_rows.key_columns(paths, probes.column("sha256"),
-                                   [repr(by_audio[rel]) if rel in by_audio else None for rel in paths],
-                                   paired, [None if s is None else sidecar_stats.get(s) for s in paired])
+                                   [repr(by_audio[rel]) if rel in by_audio else None for rel in paths] if by_audio
+                                   else None, paired, np.fromiter((readings.index.get(s, -1) for s in paired),
+                                                                  dtype=np.int64, count=len(paired)),
+                                   readings.stat)
     inputs = _Inputs(paths, by_audio, paired, readings, found.links, rule)
     own, kept, fate_rejects = _fates(ctx, inputs, probes, keys)
     rejects.extend(fate_rejects)
@@ -744,7 +774,7 @@ class _Inputs:
     paths: list[str]
     by_audio: dict[str, list[MetadataRow]]
     paired: list[str | None]
-    readings: dict[str, SidecarRead]
+    readings: Sidecars
     links: set[str]
     rule: SpeakerRule
 

@@ -49,16 +49,25 @@ def rows_cache(ctx: StageContext, *, rule: tuple[str | None, str]) -> TableCache
                       enabled=ctx.use_cache and not ctx.config.privacy.pseudonymise)
 
 
-def key_columns(paths: Sequence[str], sha256: pa.ChunkedArray, metadata: Sequence[str | None],
-                sidecars: Sequence[str | None], sidecar_stats: Sequence[tuple[int, int, int] | None]) -> dict[str, Any]:
-    """Each file's inputs as Arrow arrays (a sidecar without a stat, a link, has none)."""
-    stats = [s if s is not None else (None, None, None) for s in sidecar_stats]
-    size, mtime, ino = zip(*stats, strict=True) if stats else ((), (), ())
+def key_columns(paths: Sequence[str], sha256: pa.ChunkedArray, metadata: Sequence[str | None] | None,
+                sidecars: Sequence[str | None], sidecar_at: np.ndarray,
+                sidecar_stat: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]) -> dict[str, Any]:
+    """Each file's inputs as Arrow arrays: ``metadata`` (None: no file has rows), its
+    sidecar, and that sidecar's stat, ``sidecar_stat[k][sidecar_at[i]]`` (-1: no sidecar;
+    a sidecar not stat'ed, a link, has none)."""
+    size, mtime, inode, statted = sidecar_stat
+    at = np.maximum(sidecar_at, 0)
+    missing = (sidecar_at < 0) | ~(statted[at] if len(statted) else np.zeros(len(at), dtype=bool))
+    n = len(paths)
     with pandas_left_unloaded():
+        def stat_column(values: np.ndarray, kind: pa.DataType) -> pa.Array:
+            taken = values[at] if len(values) else np.zeros(n, dtype=values.dtype)
+            return pa.array(taken, kind, mask=missing)
+
         return {"path": pa.array(paths, pa.string()), "sha256": sha256.cast(pa.string()).combine_chunks(),
-                "metadata": pa.array(metadata, pa.string()), "sidecar": pa.array(sidecars, pa.string()),
-                "sidecar_size": pa.array(size, pa.int64()), "sidecar_mtime_ns": pa.array(mtime, pa.int64()),
-                "sidecar_ino": pa.array(ino, pa.uint64())}
+                "metadata": pa.nulls(n, pa.string()) if metadata is None else pa.array(metadata, pa.string()),
+                "sidecar": pa.array(sidecars, pa.string()), "sidecar_size": stat_column(size, pa.int64()),
+                "sidecar_mtime_ns": stat_column(mtime, pa.int64()), "sidecar_ino": stat_column(inode, pa.uint64())}
 
 
 def first_of_content(sha256: pa.ChunkedArray) -> np.ndarray:

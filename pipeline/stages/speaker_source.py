@@ -20,7 +20,6 @@ that was flat) takes its folder's name from then on; the log says which rule was
 
 from __future__ import annotations
 
-import posixpath
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -37,7 +36,8 @@ def flat_folder(paths: Sequence[str]) -> str | None:
     Parameters
     ----------
     paths : sequence of str
-        Audio paths relative to RAW, '/'-separated.
+        Audio paths relative to RAW, '/'-separated (single slashes, as the ingest scan
+        gives them).
 
     Returns
     -------
@@ -53,7 +53,9 @@ def flat_folder(paths: Sequence[str]) -> str | None:
     >>> flat_folder(["ana/a.wav", "ben/b.wav"]) is None
     True
     """
-    folders = {posixpath.dirname(p) for p in paths}
+    # rpartition is posixpath.dirname for such paths (relative, single slashes), at a
+    # fifth of its cost: at 100,000 files this set was a sizeable part of a rebuild's ingest.
+    folders = {p.rpartition("/")[0] for p in paths}
     return folders.pop() if len(folders) == 1 else None
 
 
