@@ -223,3 +223,12 @@ def test_a_changed_metadata_row_misses(raw: Path, tmp_path: Path, caplog: pytest
     assert reused(caplog) == 11
     assert {r["source_path"]: r["transcript"] for r in rows}["ana/take01.wav"] == "changed in the table"
     assert (rows, rejects) == uncached(raw, tmp_path, data)
+
+
+def test_sidecars_paired_in_arrow_as_one_by_one() -> None:
+    paths = ["a/x.wav", "a/x.y.flac", "a/y.wav", "b.c/z.ogg", "é/ü.mp3", "top.wav", "a/.h.wav"]
+    sidecars = {"a/x.txt", "a/x.TXT", "a/x.y.txt", "b.c/z.txt", "b.txt", "é/ü.Txt", "top.txt", "a/.h.txt", "a/y/x.txt"}
+    arrow = ingest.pair_sidecars(paths, sidecars, columnar=True)
+    python = ingest.pair_sidecars(paths, sidecars, columnar=False)
+    assert arrow[:2] == python[:2] and arrow[2].tolist() == python[2].tolist()
+    assert arrow[0] == ["a/x.TXT", "a/x.y.txt", None, "b.c/z.txt", "é/ü.Txt", "top.txt", "a/.h.txt"]

@@ -650,6 +650,46 @@ def _sidecars_by_stem(sidecars: set[str]) -> dict[str, str]:
     return by_stem
 
 
+# What a path with an extension keeps of itself without it: up to its last dot.
+_WITHOUT_EXTENSION = (r"\.[^./]*$", "")
+
+
+def pair_sidecars(paths: list[str], sidecars: set[str], *, columnar: bool) -> tuple[list[str | None], list[str], np.ndarray]:
+    """Each audio file's sidecar (see :func:`_sidecars_by_stem`), the sidecars paired
+    (sorted) and each file's sidecar as an index into them (-1: none). ``columnar`` (every
+    name is UTF-8, as from :func:`scan_listing`) matches stems in Arrow.
+
+    Examples
+    --------
+    >>> pair_sidecars(["a/x.wav", "a/y.flac"], {"a/x.txt", "a/x.TXT", "b.txt"}, columnar=True)
+    (['a/x.TXT', None], ['a/x.TXT'], array([ 0, -1]))
+    """
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    if not sidecars or not paths:
+        return [None] * len(paths), [], np.full(len(paths), -1, dtype=np.int64)
+    if not columnar:
+        by_stem = _sidecars_by_stem(sidecars)
+        # An audio path has an extension: its stem ends at its last dot.
+        paired = [by_stem.get(rel[:rel.rfind(".")]) for rel in paths]
+        needed = sorted({s for s in paired if s is not None})
+        index = {rel: i for i, rel in enumerate(needed)}
+        return paired, needed, np.fromiter((index.get(s, -1) for s in paired), dtype=np.int64, count=len(paths))
+    names = sorted(sidecars)
+    with pandas_left_unloaded():
+        side = pa.array(names, pa.string())
+        stems = pc.replace_substring_regex(pa.array(paths, pa.string()), *_WITHOUT_EXTENSION)
+        # index_in finds a stem's first sidecar in sorted order, as _sidecars_by_stem keeps.
+        found = pc.index_in(stems, value_set=pc.replace_substring_regex(side, *_WITHOUT_EXTENSION))
+        valid = np.asarray(pc.is_valid(found), dtype=bool)
+        at = np.asarray(found.fill_null(0), dtype=np.int64)
+        paired = side.take(found).to_pylist()
+    used = np.unique(at[valid])
+    needed = [names[i] for i in used.tolist()]
+    return paired, needed, np.where(valid, np.searchsorted(used, at), -1)
+
+
 @dataclass(frozen=True)
 class Fate:
     """What one audio file became: its ingest row (None when set aside) and the rejects
@@ -722,7 +762,6 @@ def run(ctx: StageContext) -> StageResult:
     found, stat = listed or (scan(ctx.raw, cfg.extensions, cfg.sidecar_extension), None)
     paths, sidecars, rejects = found.audio, found.sidecars, found.rejects
     path_set = set(paths)
-    sidecar_by_stem = _sidecars_by_stem(sidecars)
     by_audio, metadata_rows, meta_rejects = _metadata_by_audio(ctx, path_set)
     rejects.extend(meta_rejects)
 
@@ -730,14 +769,11 @@ def run(ctx: StageContext) -> StageResult:
     if rule.note:
         ctx.log.info("%s", rule.note)
     probes = _probe_all(ctx, ctx.raw, paths, stat)
-    # An audio path has an extension: its stem ends at its last dot.
-    paired = [sidecar_by_stem.get(rel[:rel.rfind(".")]) for rel in paths] if sidecar_by_stem else [None] * len(paths)
-    readings = _read_sidecars(ctx, sorted({s for s in paired if s is not None}), found.links)
+    paired, needed, sidecar_at = pair_sidecars(paths, sidecars, columnar=listed is not None)
+    readings = _read_sidecars(ctx, needed, found.links)
     keys = ingest_rows.key_columns(paths, probes.column("sha256"),
                                    [repr(by_audio[rel]) if rel in by_audio else None for rel in paths] if by_audio
-                                   else None, paired, np.fromiter((readings.index.get(s, -1) for s in paired),
-                                                                  dtype=np.int64, count=len(paired)),
-                                   readings.stat)
+                                   else None, paired, sidecar_at, readings.stat)
     inputs = _Inputs(paths, by_audio, paired, readings, found.links, rule)
     own, kept, fate_rejects = _fates(ctx, inputs, probes, keys)
     rejects.extend(fate_rejects)
@@ -756,7 +792,8 @@ def run(ctx: StageContext) -> StageResult:
                       metadata_speakers={r.speaker for rows in by_audio.values() for r in rows if r.speaker})
         columns = {name: [row[name] for row in accepted] for name in columns}
         stop = _scrubbed(ctx, stop)
-    return StageResult(manifests={stage_manifest(NAME): (NAME, _ingest_table(columns, probed))},
+    return StageResult(manifests={stage_manifest(NAME): (NAME, _ingest_table(columns, probed,
+                                                                             reorder=ctx.config.privacy.pseudonymise))},
                        rejects=rejects, summary=summary, stop=stop)
 
 
@@ -828,20 +865,20 @@ def _fates(ctx: StageContext, inputs: _Inputs, probes: Any, keys: dict[str, Any]
     return own, kept, rejects
 
 
-def _ingest_table(columns: dict[str, Any], probed: Any) -> Any:
+def _ingest_table(columns: dict[str, Any], probed: Any, *, reorder: bool) -> Any:
     """The ingest manifest: the rows' own fields (``columns``), the probe's columns from
-    ``probed`` (row for row), sorted by source_path."""
+    ``probed`` (row for row), sorted by source_path: in path order already, unless
+    pseudonyms replaced the paths (``reorder``)."""
     import pyarrow as pa
 
     schema = arrow_schema(NAME)
     columns = dict(columns)
     columns.update({name: probed.column(name).cast(schema.field(name).type) for name, _ in _PROBE_FIELDS})
     table = table_from_columns(NAME, columns)
-    paths = columns["source_path"]
-    paths = paths if isinstance(paths, list) else paths.to_pylist()
+    if not reorder:
+        return table
     with pandas_left_unloaded():
-        # In path order already, unless pseudonyms replaced the paths.
-        return table.take(pa.array(np.argsort(np.array(paths, dtype=object), kind="stable")))
+        return table.take(pa.array(np.argsort(np.array(columns["source_path"], dtype=object), kind="stable")))
 
 
 def _scrubbed(ctx: StageContext, sentence: str) -> str:

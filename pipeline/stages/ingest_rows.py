@@ -80,18 +80,14 @@ def first_of_content(sha256: pa.ChunkedArray) -> np.ndarray:
     [0, -1, 2, 0]
     """
     with pandas_left_unloaded():
-        codes = pc.dictionary_encode(sha256.combine_chunks()).indices
-        valid = np.asarray(pc.is_valid(codes), dtype=bool)
-        index = np.asarray(codes.fill_null(0), dtype=np.int64)
-    first = np.full(len(index), -1, dtype=np.int64)
-    if not len(index):
-        return first
-    at = np.flatnonzero(valid)
-    distinct, where = np.unique(index[at], return_index=True)
-    first_by_code = np.zeros(int(distinct.max()) + 1 if len(distinct) else 0, dtype=np.int64)
-    first_by_code[distinct] = at[where]
-    first[at] = first_by_code[index[at]]
-    return first
+        # Arrow numbers the distinct values in the order they first appear, so the files
+        # where a code first appears are where it exceeds every earlier code (no sort).
+        codes = np.asarray(pc.dictionary_encode(sha256.combine_chunks()).indices.fill_null(-1), dtype=np.int64)
+    if not len(codes):
+        return np.full(0, -1, dtype=np.int64)
+    before = np.maximum.accumulate(np.concatenate([[-1], codes[:-1]]))
+    first_by_code = np.flatnonzero(codes > before)
+    return np.where(codes >= 0, first_by_code[np.maximum(codes, 0)] if len(first_by_code) else -1, -1)
 
 
 def _same(now: pa.Array, then: pa.Array) -> np.ndarray:
