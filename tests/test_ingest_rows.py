@@ -3,6 +3,7 @@ the rows and rejects a run without any cache gives, whatever the cache holds."""
 
 from __future__ import annotations
 
+import hashlib
 import logging
 import os
 import re
@@ -167,18 +168,27 @@ def test_other_settings_or_code_miss_the_whole_cache(raw: Path, tmp_path: Path,
         assert reused(caplog) == 0
 
 
-def test_fresh_rows_go_in_a_part_and_the_latest_wins(raw: Path, tmp_path: Path) -> None:
+def test_fresh_rows_go_in_a_part_and_the_latest_wins(raw: Path, tmp_path: Path,
+                                                     caplog: pytest.LogCaptureFixture) -> None:
     for i in range(12, 40):  # enough files that one change leaves the table mostly in use
         write_wav(raw / "cyd" / f"take{i:02d}.wav", seed=i)
     out = tmp_path / "out"
     run(raw, out)
-    sidecar = raw / "cyd" / "take20.txt"
-    for words in ("first words", "second words"):
+    sidecar, audio = raw / "cyd" / "take20.txt", raw / "cyd" / "take21.wav"
+    for seed, words in ((100, "first words"), (101, "second words")):
         sidecar.write_text(words + "\n", encoding="utf-8")
+        write_wav(audio, seed=seed, frames=800 + seed)  # another size: the stat test misses
         rows, rejects = run(raw, out)
-        assert {r["source_path"]: r["transcript"] for r in rows}["cyd/take20.wav"] == words
-    assert sorted(p.name for p in (out / ROWS).parent.glob("rows*.parquet")) == [
-        "rows.parquet", "rows.part-000000.parquet", "rows.part-000001.parquet"]
+        by_path = {r["source_path"]: r for r in rows}
+        assert by_path["cyd/take20.wav"]["transcript"] == words
+        assert by_path["cyd/take21.wav"]["sha256"] == hashlib.sha256(audio.read_bytes()).hexdigest()  # hashlib reference
+    for name in ("rows", "probes"):
+        assert sorted(p.name for p in (out / ROWS).parent.glob(f"{name}*.parquet")) == [
+            f"{name}.parquet", f"{name}.part-000000.parquet", f"{name}.part-000001.parquet"]
+    with caplog.at_level(logging.INFO, logger="loam"):
+        assert run(raw, out) == (rows, rejects)  # the parts' rows serve: nothing probed or followed again
+        assert "ingest: 0 files probed, 40 reused from cache" in caplog.text
+        assert reused(caplog) == 40
     assert (rows, rejects) == uncached(raw, tmp_path)
 
 
