@@ -438,13 +438,14 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.nd
                         cost_per_worker=_PROBE_BYTES_PER_WORKER,
                         meanwhile=ctx.meanwhile, on_result=remember, on_crash=crashed)
     reused = np.flatnonzero(hit)
-    parts = [_probe_table([(paths[i], stat_of(i), res) for i, res in zip(todo, fresh, strict=True)])]
+    table = _probe_table([(paths[i], stat_of(i), res) for i, res in zip(todo, fresh, strict=True)])
     if previous is not None and len(reused):
-        parts.insert(0, previous.take(pa.array(row[reused])).cast(_probe_schema()))
-    with pandas_left_unloaded():
-        # Back in path order: the reused rows, then the fresh ones, each taken to its path.
-        order = np.argsort(np.concatenate([reused, np.array(todo, dtype=np.int64)]), kind="stable")
-        table = pa.concat_tables(parts).take(pa.array(order))
+        # One take in path order from the cached rows followed by the fresh ones.
+        at = np.empty(len(paths), dtype=np.int64)
+        at[reused] = row[reused]
+        at[todo] = previous.num_rows + np.arange(len(todo))
+        with pandas_left_unloaded():
+            table = pa.concat_tables([previous.cast(_probe_schema()), table]).take(pa.array(at))
     if cache.compaction_due(stored=0 if previous is None else previous.num_rows, used=len(reused)):
         # The rewritten table holds this run's files only: what left RAW leaves the cache.
         with pandas_left_unloaded():
@@ -849,13 +850,14 @@ def _fates(ctx: StageContext, inputs: _Inputs, probes: Any, keys: dict[str, Any]
             fresh.append(i)
             clean[i] = not fate.rejects
     reused = np.flatnonzero(hit)
-    parts = [ingest_rows.fresh_table(accepted)]
-    if len(reused):
-        schema = pa.schema([(n, getattr(pa, k)()) for n, k in ingest_rows.ROW_FIELDS])
-        parts.insert(0, previous.select(schema.names).take(pa.array(row[reused])).cast(schema))
+    own = ingest_rows.fresh_table(accepted)
     kept = np.concatenate([reused, np.array(fresh, dtype=np.int64)])
     order = np.argsort(kept, kind="stable")
-    own = pa.concat_tables(parts).take(pa.array(order)).combine_chunks()
+    if len(reused):
+        # One take in path order from the cached rows followed by the fresh ones.
+        at = np.concatenate([row[reused], previous.num_rows + np.arange(len(fresh))])[order]
+        own = pa.concat_tables([previous.select(own.schema.names).cast(own.schema), own]).take(pa.array(at))
+    own = own.combine_chunks()
     kept = kept[order]
     if cache.compaction_due(stored=0 if previous is None else previous.num_rows, used=len(reused)):
         ingest_rows.save(cache, keys, own, kept, clean)
