@@ -240,11 +240,6 @@ def scan(raw: Path, extensions: tuple[str, ...], sidecar_extension: str) -> Scan
     return found
 
 
-# A file name's extension as os.path.splitext gives it: from the last dot of the name,
-# when a character other than a dot comes before that dot.
-_EXTENSION_PATTERN = r"(?:^|/)\.*[^/.][^/]*(?P<ext>\.[^/.]*)$"
-
-
 def scan_listing(listing: Any, extensions: tuple[str, ...], sidecar_extension: str,
                  ) -> tuple[Scan, tuple[np.ndarray, ...]] | None:
     """What :func:`scan` finds, taken from the run's listing of RAW (``StageContext.raw_stats``,
@@ -271,12 +266,17 @@ def scan_listing(listing: Any, extensions: tuple[str, ...], sidecar_extension: s
     wanted = {"." + e.lower() for e in extensions}
     side = "." + sidecar_extension.lower()
     with pandas_left_unloaded():
-        ext = pc.ascii_lower(pc.struct_field(pc.extract_regex(arr, _EXTENSION_PATTERN), [0]))
-        audio = np.asarray(pc.fill_null(pc.is_in(ext, value_set=pa.array(sorted(wanted))), False), dtype=bool)
-        sidecar = np.asarray(pc.fill_null(pc.equal(ext, side), False), dtype=bool)
-        for i in np.flatnonzero(~np.asarray(pc.string_is_ascii(arr), dtype=bool)).tolist():
+        # An ASCII name whose file name does not start with a dot has the extension it
+        # ends with (an extension holds no dot); the others are judged one by one.
+        lowered = pc.ascii_lower(arr)
+        audio = np.zeros(len(names), dtype=bool)
+        for suffix in sorted(wanted):
+            audio |= np.asarray(pc.ends_with(lowered, suffix), dtype=bool)
+        sidecar = np.asarray(pc.ends_with(lowered, side), dtype=bool) & ~audio
+        odd = pc.or_(pc.invert(pc.string_is_ascii(arr)), pc.or_(pc.starts_with(arr, "."), pc.match_substring(arr, "/.")))
+        for i in np.flatnonzero(np.asarray(odd, dtype=bool)).tolist():
             name_ext = os.path.splitext(posixpath.basename(names[i]))[1].lower()
-            audio[i], sidecar[i] = name_ext in wanted, name_ext == side
+            audio[i], sidecar[i] = name_ext in wanted, name_ext == side and name_ext not in wanted
         at = np.flatnonzero(audio)
         at = at[np.asarray(pc.sort_indices(arr.take(pa.array(at))), dtype=np.int64)]
         paths = arr.take(pa.array(at)).to_pylist()
