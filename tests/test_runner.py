@@ -148,3 +148,45 @@ def test_a_replaced_manifest_with_a_stale_record_changes_the_input_hash(
     assert main(["stage", "text", str(small_raw), str(out), "--workers", "1", "--no-progress"]) == 0
     assert "text   running" in capsys.readouterr().err
     assert read_metadata(out / stage_manifest("text"))["inputs_sha256"] != before
+
+
+def test_the_record_of_written_files_is_columnar_and_an_older_json_record_is_a_miss(
+        small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # The runner's record of what a stage wrote (pipeline.core.outputs_record) holds each
+    # file's os.stat as it was written (reference: os.stat now, nothing having changed);
+    # a stage is reused only while every recorded file still has it.
+    import os
+
+    import pyarrow.feather as feather
+
+    from pipeline.core.names import stage_outputs_record
+
+    out = tmp_path / "out"
+    stage_audio = ["stage", "audio", str(small_raw), str(out), "--workers", "1", "--no-progress"]
+    assert main(["prepare", str(small_raw), str(out), "--workers", "1", "--no-progress"]) == 0
+    record = feather.read_table(out / stage_outputs_record("audio")).to_pylist()
+    clips = [row for row in record if row["path"].startswith("audio/")]
+    assert clips and len(record) == len(clips) + 3  # the manifest, its rejects, its summary
+    for row in record:
+        st = os.stat(out / row["path"])
+        assert [row["st_size"], row["st_mtime_ns"], row["st_ino"]] == [st.st_size, st.st_mtime_ns, st.st_ino]
+    capsys.readouterr()
+    assert main(stage_audio) == 0
+    assert "audio  reused" in capsys.readouterr().err
+    # A clip touched: its stat no longer the recorded one, so the stage runs again.
+    clip = out / clips[-1]["path"]
+    st = os.stat(clip)
+    os.utime(clip, ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000))
+    assert main(stage_audio) == 0
+    assert "audio  running" in capsys.readouterr().err
+    # The JSON record an older version wrote, in place of the columnar one: a miss, then
+    # replaced (and removed).
+    old = out / "cache" / "stages" / "audio.json"
+    (out / stage_outputs_record("audio")).unlink()
+    old.write_text(json.dumps({"files": [[row["path"], row["st_size"], row["st_mtime_ns"], row["st_ino"]]
+                                         for row in record]}) + "\n", encoding="utf-8")
+    assert main(stage_audio) == 0
+    assert "audio  running" in capsys.readouterr().err
+    assert not old.exists() and (out / stage_outputs_record("audio")).is_file()
+    assert main(stage_audio) == 0
+    assert "audio  reused" in capsys.readouterr().err

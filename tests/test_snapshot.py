@@ -147,3 +147,48 @@ def test_listing_sees_symlink_targets(tmp_path: Path) -> None:
     before = snapshot.tree_digest(root)
     (tmp_path / "target.wav").write_bytes(b"22")
     assert snapshot.tree_digest(root) != before
+
+
+@pytest.mark.parametrize("change", ["touch_clip", "chmod_clip", "add_file", "add_folder", "remove_clip"])
+def test_the_snapshot_of_audio_taken_from_the_stage_sees_any_change(
+        change: str, small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str],
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    """The snapshot's digest of OUT/audio comes from the audio stage's listing and the
+    clips it wrote (pipeline.core.tree_listing), not from a second walk: it must be the
+    digest a walk gives, so that a rerun walking OUT still sees any change under audio/."""
+    from pipeline.core import runner, tree_listing
+
+    made: list[bytes | None] = []
+
+    def spy(folder: str, files: object) -> bytes | None:
+        made.append(tree_listing.folder_bytes(folder, files))  # type: ignore[arg-type]
+        return made[-1]
+
+    import soundfile as sf
+
+    from tests.conftest import speechlike
+
+    monkeypatch.setattr(runner, "folder_bytes", spy)
+    out = tmp_path / "out"
+    _run(small_raw, out, capsys)
+    # A rebuild: the audio stage reuses the clips it listed and writes the new file's.
+    sf.write(small_raw / "spk_a" / "a3.wav", speechlike(1.5, 16000, seed=9), 16000)
+    assert "reused from cache" in _run(small_raw, out, capsys)
+    assert len(made) == 2 and all(given is not None for given in made)
+    state = snapshot.load(out)
+    assert state is not None and state["out"] == snapshot.tree_digest(out, ignored=snapshot.OUT_IGNORED)
+    assert NOTHING in _run(small_raw, out, capsys)
+    clip = sorted((out / "audio").rglob("*.flac"))[0]
+    if change == "touch_clip":
+        st = os.stat(clip)
+        os.utime(clip, ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000))
+    elif change == "chmod_clip":
+        clip.chmod(0o600)
+    elif change == "add_file":
+        (clip.parent / "stray.flac").write_bytes(b"")
+    elif change == "add_folder":
+        (out / "audio" / "empty").mkdir()
+    elif change == "remove_clip":
+        clip.unlink()
+    log = _run(small_raw, out, capsys)
+    assert NOTHING not in log and "ingest running" in log

@@ -86,8 +86,9 @@ def stage_summary(stage: str) -> str:
 
 
 def stage_outputs_record(stage: str) -> str:
-    """``cache/stages/<stage>.json``: the stat of every file the stage wrote last time."""
-    return f"cache/stages/{stage}.json"
+    """``cache/stages/<stage>.arrow``: the stat of every file the stage wrote last time
+    (pipeline.core.outputs_record)."""
+    return f"cache/stages/{stage}.arrow"
 
 
 def stage_manifest_facts(stage: str) -> str:

@@ -16,9 +16,10 @@ from pathlib import Path
 from typing import Any
 
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from pipeline import __version__
-from pipeline.core import names, snapshot
+from pipeline.core import names, outputs_record, snapshot
 from pipeline.core.codeversion import code_version
 from pipeline.core.config import Config, canonical_json
 from pipeline.core.errors import DataError
@@ -34,25 +35,7 @@ from pipeline.core.manifest import (
 )
 from pipeline.core.schemas_io import SCHEMA_DIR
 from pipeline.core.stage import Stage, StageContext, StageRegistry, StageResult, reject
-
-
-def _stat_of(out: Path, rels: list[str], known: dict[str, list[int]] | None = None) -> list[list[Any]]:
-    """``[rel, size, mtime_ns, inode]`` of each file (``[rel, None]`` when missing),
-    sorted; a file in ``known`` is taken as given there instead of stat'ed."""
-    state: list[list[Any]] = []
-    known = known or {}
-    root = os.fspath(out)
-    for rel in sorted(set(rels)):
-        given = known.get(rel)
-        if given is not None:
-            state.append([rel, *given])
-            continue
-        try:
-            st = os.stat(os.path.join(root, rel))
-            state.append([rel, st.st_size, st.st_mtime_ns, st.st_ino])
-        except OSError:
-            state.append([rel, None])
-    return state
+from pipeline.core.tree_listing import folder_bytes
 
 
 def params_sha256(stage: Stage, config: Config, *, cache_dir: Path | None = None) -> str:
@@ -174,6 +157,10 @@ class Runner:
         # What the runner recorded of each manifest it wrote, by path relative to OUT:
         # [size, mtime_ns, inode, sha256, schema, schema sha256] (see _manifest_fact).
         self._facts: dict[str, list[Any]] | None = None
+        # Folders of OUT a stage of this run listed and handed back whole
+        # (StageResult.listed_folder): the bytes the snapshot hashes for each, by
+        # relative path with its trailing '/'.
+        self._listed: dict[str, bytes] = {}
 
     def _check_cluster(self) -> None:
         """Before any per-file work on a cluster: every worker must see RAW and OUT
@@ -288,23 +275,22 @@ class Runner:
 
     def _outputs_unchanged(self, name: str) -> bool:
         """Whether every file the stage wrote last time is still as it left it."""
-        try:
-            recorded = json.loads((self.out / names.stage_outputs_record(name)).read_text(encoding="utf-8"))["files"]
-        except (OSError, ValueError, KeyError, TypeError):
-            return False
-        return _stat_of(self.out, [entry[0] for entry in recorded]) == recorded
+        recorded = outputs_record.read(self.out / names.stage_outputs_record(name))
+        return recorded is not None and outputs_record.unchanged(self.out, recorded)
 
     def _record_outputs(self, stage: Stage, manifests: list[str], main: pa.Table | None = None,
-                        known: dict[str, list[int]] | None = None) -> None:
+                        known: pa.Table | None = None) -> pa.Array:
         """Record the stat of every file the stage wrote (``main``: its main manifest's
         table when the caller holds it, else it is read back; ``known``: stats the stage
-        already holds, StageResult.file_stats)."""
-        rels = [*manifests, names.stage_rejects(stage.name), names.stage_summary(stage.name)]
+        already holds, StageResult.file_stats); returns the stage's ``written_files``."""
+        written = pa.array([], pa.string())
         if stage.written_files is not None:
             table = main if main is not None else read_manifest(self.out / stage.main_manifest)
-            rels += stage.written_files(self.out, table)
-        write_text_atomic(self.out / names.stage_outputs_record(stage.name),
-                          json.dumps({"files": _stat_of(self.out, rels, known)}) + "\n")
+            written = pa.array(stage.written_files(self.out, table), pa.string())
+        rels = pa.array([*manifests, names.stage_rejects(stage.name), names.stage_summary(stage.name)], pa.string())
+        outputs_record.write(self.out / names.stage_outputs_record(stage.name),
+                             outputs_record.stat_table(self.out, pa.concat_arrays([rels, written]), known))
+        return written
 
     def _metadata(self, stage: Stage, params: str, inputs: str, extra: dict[str, str]) -> dict[str, str]:
         meta = {
@@ -375,9 +361,23 @@ class Runner:
         # Each table was checked by _set_aside_invalid_rows, which kept only valid rows.
         for rel, (schema, table) in sorted(result.manifests.items(), key=lambda kv: kv[0] == stage.main_manifest):
             write_manifest(self.out / rel, schema, table, metadata=meta, checked=True)
-        self._record_outputs(stage, list(result.manifests), result.manifests[stage.main_manifest][1],
-                             result.file_stats)
+        written = self._record_outputs(stage, list(result.manifests), result.manifests[stage.main_manifest][1],
+                                       result.file_stats)
         self._record_main_manifest(stage)
+        self._keep_listing(result, written)
+
+    def _keep_listing(self, result: StageResult, written: pa.Array) -> None:
+        """Keep the snapshot's bytes for the folder the stage handed back whole
+        (StageResult.listed_folder): its files are those of its written_files (rows set
+        aside gone), each with its stat in file_stats; otherwise the snapshot walks it."""
+        folder, stats = result.listed_folder, result.file_stats
+        if not folder or stats is None or "st_mode" not in stats.column_names:
+            return
+        written = pc.unique(written)
+        files = stats.filter(pc.is_in(stats.column("path"), value_set=written))
+        given = folder_bytes(folder, files) if files.num_rows == len(written) else None
+        if given is not None:
+            self._listed[folder + "/"] = given
 
     def _set_aside_invalid_rows(self, stage: Stage, result: StageResult) -> None:
         """Move rows whose values break their schema from the manifests to the rejects.
@@ -494,7 +494,8 @@ class Runner:
                          if (note := self.stages[r.name].reuse_note) is not None]
                 notes.append(f"rejected: {n} rows in {self.out / names.REJECTED}")
                 snapshot.save(self.out, snapshot.capture(invocation=self.invocation, raw_digest=raw_listing,
-                                                         out=self.out, watched=sorted(self.watched), notes=notes))
+                                                         out=self.out, watched=sorted(self.watched), notes=notes,
+                                                         given=self._listed))
         return self.records
 
 

@@ -48,7 +48,8 @@ class Listing(dict):  # type: ignore[type-arg]
 
 
 def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset(),
-                stats: dict[str, tuple[int, int, int]] | None = None) -> str:
+                stats: dict[str, tuple[int, int, int]] | None = None,
+                given: dict[str, bytes] | None = None) -> str:
     """A hash of every entry under ``root``: relative path, mode, size, mtime_ns and
     inode (symlinks not followed, but their targets stat'ed too; a folder counts by
     its name and mode, its entries being hashed anyway). Top-level names in
@@ -64,12 +65,20 @@ def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset(),
     path of every regular file (not of links), so a stage can reuse the listing instead
     of a ``stat`` per file of its own; a :class:`Listing` also learns whether it holds
     every entry but the folders.
+
+    ``given`` maps a folder's relative path (with its trailing '/') to the bytes this
+    walk would hash for it and all under it (``pipeline.core.tree_listing.folder_bytes``,
+    from what a stage listed and wrote): they are hashed instead of listing it again
+    (the snapshot of OUT; its files are then not in ``stats``).
     """
     digest = hashlib.sha256()
     simple = True  # only folders and regular files so far
     stack = [(os.fspath(root), "")]
     while stack:
         folder, rel_folder = stack.pop()
+        if given and rel_folder in given:
+            digest.update(given[rel_folder])
+            continue
         try:
             with os.scandir(folder) as it:
                 entries = sorted(it, key=lambda e: e.name)
@@ -188,13 +197,15 @@ def raw_digest(raw: Path, *, stats: dict[str, tuple[int, int, int]] | None = Non
     return tree_digest(raw, stats=stats)
 
 
-def capture(*, invocation: str, raw_digest: str, out: Path, watched: list[str], notes: list[str]) -> dict[str, Any]:
-    """The snapshot of a run that has just finished; ``raw_digest`` was taken as it began."""
+def capture(*, invocation: str, raw_digest: str, out: Path, watched: list[str], notes: list[str],
+            given: dict[str, bytes] | None = None) -> dict[str, Any]:
+    """The snapshot of a run that has just finished; ``raw_digest`` was taken as it began,
+    ``given`` holds what a stage knows of a folder of OUT (see :func:`tree_digest`)."""
     return {
         "format": FORMAT,
         "invocation": invocation,
         "raw": raw_digest,
-        "out": tree_digest(out, ignored=OUT_IGNORED),
+        "out": tree_digest(out, ignored=OUT_IGNORED, given=given),
         "watched": _files_state(watched),
         "notes": notes,
     }

@@ -303,10 +303,17 @@ class StageResult:
     # Non-empty: a sentence saying why the run must stop (exit 1) once this stage's
     # outputs and the rejects are written, e.g. every input unreadable.
     stop: str = ""
-    # ``[size, mtime_ns, inode]`` by path (relative to OUT) of files the stage wrote or
-    # confirmed unchanged, which the runner records as they are instead of a ``stat``
-    # each (the audio stage's clips); any other file it records is stat'ed.
-    file_stats: dict[str, list[int]] = field(default_factory=dict)
+    # The stat of files the stage wrote or confirmed unchanged, one row per path
+    # (relative to OUT; the columns of pipeline.core.outputs_record.SCHEMA), which the
+    # runner records as they are instead of a ``stat`` each (the audio stage's clips);
+    # any other file it records is stat'ed.
+    file_stats: pa.Table | None = None
+    # A folder of OUT (relative path) that, once the stage is done, holds exactly the
+    # files of ``file_stats`` its written_files name, each at ``<folder>/<sub>/<name>``,
+    # with their ``st_mode`` in file_stats too (the audio stage's clips under audio/):
+    # the run's snapshot takes its digest of the folder from them instead of listing it
+    # again (pipeline.core.tree_listing).
+    listed_folder: str = ""
 
     def rejects_table(self) -> pa.Table:
         return table_from_rows("rejected", self.rejects)

@@ -102,8 +102,9 @@ class AudioJob:
 class FileOutcome:
     """What one source turned into: manifest rows, reject rows, and the files written.
 
-    ``written`` maps each row's ``audio_path`` to ``[size, mtime_ns, inode]`` of the
-    file, so a cache hit can confirm the file is still the one this result wrote.
+    ``written`` maps each row's ``audio_path`` to ``[size, mtime_ns, inode, mode]`` of
+    the file, so a cache hit can confirm the file is still the one this result wrote
+    (and the snapshot knows the file without a ``stat``).
     """
 
     rows: list[dict[str, Any]] = field(default_factory=list)
@@ -536,7 +537,7 @@ def _placed(speech: SpeechPlan, shared: dict[str, Any], *, index: int, span: tup
 
 @dataclass(frozen=True)
 class ClipWritten:
-    """A clip written to OUT: its manifest row and ``[size, mtime_ns, inode]`` of the file."""
+    """A clip written to OUT: its manifest row and ``[size, mtime_ns, inode, mode]`` of the file."""
 
     row: dict[str, Any]
     stat: list[int]
@@ -641,7 +642,7 @@ def _quality_measures(cfg: AudioConfig, clip: np.ndarray, written: np.ndarray) -
 
 def _encode_and_write(job: AudioJob, pcm: np.ndarray, placed: dict[str, Any]) -> tuple[str, bytes, list[int]]:
     """Encode 16-bit samples and write them atomically under OUT/audio/<speaker>/;
-    the path from OUT, the bytes and ``[size, mtime_ns, inode]`` of the file."""
+    the path from OUT, the bytes and ``[size, mtime_ns, inode, mode]`` of the file."""
     import soundfile as sf
 
     cfg = job.config
@@ -652,7 +653,7 @@ def _encode_and_write(job: AudioJob, pcm: np.ndarray, placed: dict[str, Any]) ->
     sf.write(encoded, pcm, cfg.sample_rate, format=OUTPUT_FORMATS[cfg.format], subtype="PCM_16")
     data = encoded.getvalue()
     st = write_bytes_atomic(target, data, durable=job.durable)
-    return audio_path, data, [st.st_size, st.st_mtime_ns, st.st_ino]
+    return audio_path, data, [st.st_size, st.st_mtime_ns, st.st_ino, st.st_mode]
 
 
 def written_files(out: Path, table: Any) -> list[str]:
@@ -885,7 +886,7 @@ def run(ctx: StageContext) -> StageResult:
     run_stats = {"sources_processed": len(todo), "sources_reused": len(keys) - len(todo),
                  "orphans_removed": removed}
     return StageResult(manifests={stage_manifest(NAME): (NAME, table)}, rejects=rejects, summary=summary,
-                       run_stats=run_stats, file_stats=cache.file_stats())
+                       run_stats=run_stats, file_stats=cache.file_stats(), listed_folder=AUDIO_DIR)
 
 
 STAGE = Stage(

@@ -64,7 +64,8 @@ def source_keys(ingest: pa.Table, *, section: dict[str, Any], code: str,
 
 def file_listing(folder: Path, *, base: Path) -> pa.Table:
     """Every file under ``folder``: its '/'-separated path relative to ``base`` and its
-    ``lstat`` (``st_size``, ``st_mtime_ns``, ``st_ino``); empty when there is no folder.
+    ``lstat`` (``st_size``, ``st_mtime_ns``, ``st_ino``, ``st_mode``); empty when there
+    is no folder.
 
     One ``os.scandir`` per folder and one ``lstat`` per file, nothing else per file:
     the reuse check of 100,000 sources joins this table to the cache's in Arrow.
@@ -82,8 +83,8 @@ def file_listing(folder: Path, *, base: Path) -> pa.Table:
     0
     >>> import shutil; shutil.rmtree(out)
     """
-    columns: tuple[list[Any], ...] = ([], [], [], [])
-    paths, sizes, mtimes, inodes = columns
+    columns: tuple[list[Any], ...] = ([], [], [], [], [])
+    paths, sizes, mtimes, inodes, modes = columns
     root = os.fspath(base)
     stack = [os.fspath(folder)]
     while stack:
@@ -106,9 +107,11 @@ def file_listing(folder: Path, *, base: Path) -> pa.Table:
                 sizes.append(st.st_size)
                 mtimes.append(st.st_mtime_ns)
                 inodes.append(st.st_ino)
+                modes.append(st.st_mode)
     with pandas_left_unloaded():
         return pa.table([pa.array(paths, pa.string()), pa.array(sizes, pa.int64()), pa.array(mtimes, pa.int64()),
-                         pa.array(inodes, pa.uint64())], names=["path", "st_size", "st_mtime_ns", "st_ino"])
+                         pa.array(inodes, pa.uint64()), pa.array(modes, pa.int64())],
+                        names=["path", "st_size", "st_mtime_ns", "st_ino", "st_mode"])
 
 
 def _intact(table: pa.Table, listing: pa.Table) -> np.ndarray:
@@ -155,6 +158,10 @@ class OutcomeCache:
         self._fresh: list[pa.Table] = []
         self._pending: list[dict[str, Any]] = []
         self._changed = False
+        # The listing of OUT/audio reuse was given, and the mode of each fresh clip: the
+        # snapshot's digest of OUT/audio is taken from them (file_stats).
+        self._listing: pa.Table | None = None
+        self._fresh_modes: dict[str, int] = {}
 
     def reuse(self, keys: list[str], *, listing: pa.Table,
               builder: ManifestBuilder) -> tuple[list[int], dict[int, list[dict[str, Any]]]]:
@@ -162,6 +169,7 @@ class OutcomeCache:
         intact (as ``listing``, :func:`file_listing` of OUT/audio, finds them), into
         ``builder``; return the indices of the other sources and the cached rejects by
         source index. Columnar: Python touches only the rejects."""
+        self._listing = listing
         table = self.table.load()
         if table is None or not len(keys):
             self._changed = True
@@ -193,22 +201,35 @@ class OutcomeCache:
     def _fresh_rows(self) -> int:
         return sum(part.num_rows for part in self._fresh)
 
-    def file_stats(self) -> dict[str, list[int]]:
-        """``[size, mtime_ns, inode]`` by clip path of this run's clips: the reused ones as
-        the listing confirmed them, the fresh ones as written (for the stage's record of
-        what it wrote, without a second ``stat`` per clip)."""
-        stats: dict[str, list[int]] = {}
-        for part in ([self._kept] if self._kept is not None else []) + self._fresh:
-            clips = part.filter(part.column("reject_reason").is_null())
-            columns = [clips.column(c).to_pylist() for c in ("audio_path", "st_size", "st_mtime_ns", "st_ino")]
-            stats.update((path, [size, mtime, inode]) for path, size, mtime, inode in zip(*columns, strict=True))
-        return stats
+    def file_stats(self) -> pa.Table:
+        """The stat of this run's clips, one row per clip path (the columns of
+        ``pipeline.core.outputs_record.SCHEMA``, and ``st_mode``): the reused ones as the
+        listing confirmed them, the fresh ones as written (for the stage's record of what
+        it wrote and the snapshot's digest of OUT/audio, without a second ``stat`` per
+        clip). In Arrow: no Python work per reused clip."""
+        self._flush()
+        kept = self._kept if self._kept is not None else self.schema.empty_table()
+        kept = kept.filter(kept.column("reject_reason").is_null())
+        listing = self._listing if self._listing is not None else file_listing(Path("/nonexistent"), base=Path("/"))
+        at = pc.index_in(kept.column("audio_path"), value_set=listing.column("path"))
+        fresh = pa.concat_tables(self._fresh) if self._fresh else self.schema.empty_table()
+        fresh = fresh.filter(fresh.column("reject_reason").is_null())
+        modes = [self._fresh_modes.get(path) for path in fresh.column("audio_path").to_pylist()]
+        return pa.table({
+            "path": pa.chunked_array([kept.column("audio_path").combine_chunks(),
+                                      fresh.column("audio_path").combine_chunks()]),
+            **{c: pa.chunked_array([kept.column(c).combine_chunks(), fresh.column(c).combine_chunks()])
+               for c in ("st_size", "st_mtime_ns", "st_ino")},
+            "st_mode": pa.chunked_array([listing.column("st_mode").take(at).combine_chunks(),
+                                         pa.array(modes, pa.int64())], pa.int64()),
+        })
 
     def add(self, key: str, rows: list[dict[str, Any]], rejects: list[dict[str, Any]],
             written: dict[str, list[int]]) -> None:
         """Record one fresh outcome (a part is written every ``PART_ROWS`` rows)."""
         for row in rows:
-            size, mtime_ns, inode = written[row["audio_path"]]
+            size, mtime_ns, inode, mode = written[row["audio_path"]]
+            self._fresh_modes[row["audio_path"]] = mode
             self._pending.append({**row, "cache_key": key, "st_size": size, "st_mtime_ns": mtime_ns, "st_ino": inode})
         for r in rejects:
             self._pending.append({"source_path": r["source_path"], "clip_id": r["clip_id"], "cache_key": key,

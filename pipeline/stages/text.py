@@ -35,7 +35,6 @@ from __future__ import annotations
 
 import contextlib
 import hashlib
-import json
 from collections import Counter
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -45,6 +44,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from pipeline.core import outputs_record
 from pipeline.core.codeversion import code_version
 from pipeline.core.columns import counted_items, row_members
 from pipeline.core.config import Config, TextConfig, canonical_json
@@ -335,13 +335,15 @@ def rows_key(ctx: StageContext, *, cache_dir: Path | None) -> str:
 def _as_written(out: Path, rel: str) -> bool:
     """Whether ``rel`` still has the size, mtime and inode the runner recorded when this
     stage wrote it (a file edited since is not trusted)."""
-    try:
-        record = json.loads((out / stage_outputs_record(NAME)).read_text(encoding="utf-8"))["files"]
-        recorded = next(entry for entry in record if entry[0] == rel)
-        st = (out / rel).stat()
-    except (OSError, ValueError, KeyError, TypeError, StopIteration):
+    record = outputs_record.read(out / stage_outputs_record(NAME))
+    if record is None:
         return False
-    return recorded == [rel, st.st_size, st.st_mtime_ns, st.st_ino]
+    recorded = record.filter(pc.equal(record.column("path"), rel)).to_pylist()
+    try:
+        st = (out / rel).stat()
+    except OSError:
+        return False
+    return recorded == [{"path": rel, "st_size": st.st_size, "st_mtime_ns": st.st_mtime_ns, "st_ino": st.st_ino}]
 
 
 def reusable_rows(out: Path, items: list[dict[str, Any]], cells: list[str], *,
