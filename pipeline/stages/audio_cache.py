@@ -210,8 +210,10 @@ class OutcomeCache:
         self._flush()
         kept = self._kept if self._kept is not None else self.schema.empty_table()
         kept = kept.filter(kept.column("reject_reason").is_null())
-        listing = self._listing if self._listing is not None else file_listing(Path("/nonexistent"), base=Path("/"))
-        at = pc.index_in(kept.column("audio_path"), value_set=listing.column("path"))
+        # Kept clips exist only after reuse, which was given the listing.
+        kept_modes = (self._listing.column("st_mode").take(pc.index_in(kept.column("audio_path"),
+                                                                       value_set=self._listing.column("path")))
+                      if self._listing is not None else pa.nulls(kept.num_rows, pa.int64()))
         fresh = pa.concat_tables(self._fresh) if self._fresh else self.schema.empty_table()
         fresh = fresh.filter(fresh.column("reject_reason").is_null())
         modes = [self._fresh_modes.get(path) for path in fresh.column("audio_path").to_pylist()]
@@ -220,8 +222,7 @@ class OutcomeCache:
                                       fresh.column("audio_path").combine_chunks()]),
             **{c: pa.chunked_array([kept.column(c).combine_chunks(), fresh.column(c).combine_chunks()])
                for c in ("st_size", "st_mtime_ns", "st_ino")},
-            "st_mode": pa.chunked_array([listing.column("st_mode").take(at).combine_chunks(),
-                                         pa.array(modes, pa.int64())], pa.int64()),
+            "st_mode": pa.chunked_array([kept_modes.combine_chunks(), pa.array(modes, pa.int64())], pa.int64()),
         })
 
     def add(self, key: str, rows: list[dict[str, Any]], rejects: list[dict[str, Any]],
