@@ -90,6 +90,7 @@ def coverage_order(
     budget_s: float,
     chosen: Sequence[Candidate] = (),
     stop_s: float | None = None,
+    index: UnitIndex | None = None,
 ) -> list[str]:
     """Greedy phone- and diphone-coverage order of ``candidates``, after ``chosen``.
 
@@ -127,6 +128,9 @@ def coverage_order(
     stop_s : float or None
         Stop once chosen plus selected durations reach this total; None means
         ``budget_s``, ``math.inf`` orders every candidate.
+    index : UnitIndex or None
+        The units of every candidate and chosen clip, when the caller orders the same
+        clips more than once; None builds it.
 
     Returns
     -------
@@ -148,7 +152,7 @@ def coverage_order(
     total = _exact_total(c.duration_s for c in chosen)
     if not items or (stop is not None and total >= stop):
         return []
-    scorer = _Scorer(items, chosen=chosen, budget_s=budget_s)
+    scorer = _Scorer(items, chosen=chosen, budget_s=budget_s, index=index)
     step = 0
     heap = [(-scorer.rough(i), items[i].clip_id, i, step) for i in range(len(items))]
     heapq.heapify(heap)
@@ -189,6 +193,48 @@ def _pop_best(heap: list[tuple[float, str, int, int]], scorer: _Scorer, *, step:
     return near[0][2]
 
 
+class UnitIndex:
+    """Candidates' distinct units (phones and diphones) as integer ids, and each unit's
+    weight (:data:`PHONE_WEIGHT` for a phone, 1 for a diphone).
+
+    Units get ids in sorted order as candidates are added, so nothing depends on the
+    input order; a score sums over a clip's units (exactly rounded, or exactly) and so
+    depends on no id. :func:`fill_tiers` keeps one index for every tier's orders, so
+    each clip's units are worked out once however many tiers order it.
+
+    Examples
+    --------
+    >>> index = UnitIndex([Candidate("a", "s", 1.0, ("AA", "B", "AA"))])
+    >>> index.ids["a"].tolist(), index.weights.tolist()
+    ([0, 1, 2, 3], [1.0, 1.0, 10.0, 10.0])
+    """
+
+    def __init__(self, candidates: Iterable[Candidate] = ()) -> None:
+        self.vocabulary: dict[tuple[str, ...], int] = {}
+        self.is_phone = np.zeros(0, dtype=bool)
+        self.ids: dict[str, np.ndarray] = {}
+        self.phone_ids: dict[str, np.ndarray] = {}
+        self.diphone_ids: dict[str, np.ndarray] = {}
+        self.add(candidates)
+
+    def add(self, candidates: Iterable[Candidate]) -> None:
+        """Index the candidates not indexed yet (by clip_id)."""
+        fresh = {c.clip_id: c for c in candidates if c.clip_id not in self.ids}
+        unit_lists = {cid: _unit_keys(c) for cid, c in fresh.items()}
+        vocabulary = self.vocabulary
+        unseen = sorted(set().union(*unit_lists.values()) - vocabulary.keys())
+        vocabulary.update(zip(unseen, range(len(vocabulary), len(vocabulary) + len(unseen)), strict=True))
+        self.is_phone = np.concatenate([self.is_phone, np.array([u[0] == "p" for u in unseen], dtype=bool)])
+        for cid, keys in unit_lists.items():
+            ids = self.ids[cid] = np.array(sorted(vocabulary[u] for u in keys), dtype=np.int64)
+            self.phone_ids[cid] = ids[self.is_phone[ids]]
+            self.diphone_ids[cid] = ids[~self.is_phone[ids]]
+
+    @property
+    def weights(self) -> np.ndarray:
+        return np.where(self.is_phone, PHONE_WEIGHT, 1.0)
+
+
 class _Scorer:
     """The score of :func:`coverage_order` for each candidate, as the selection grows.
 
@@ -196,18 +242,18 @@ class _Scorer:
     one), ``exact`` the same formula in exact rationals of the float inputs.
     """
 
-    def __init__(self, items: Sequence[Candidate], *, chosen: Sequence[Candidate], budget_s: float) -> None:
-        # Units get integer ids in sorted order, so nothing depends on the input order;
-        # each clip holds the ids of its distinct units.
-        unit_lists = [_unit_keys(c) for c in items] + [_unit_keys(c) for c in chosen]
-        vocabulary = {u: k for k, u in enumerate(sorted(set().union(*unit_lists)))}
-        is_phone = np.array([u[0] == "p" for u in sorted(vocabulary)], dtype=bool)
+    def __init__(self, items: Sequence[Candidate], *, chosen: Sequence[Candidate], budget_s: float,
+                 index: UnitIndex | None = None) -> None:
+        every = [*items, *chosen]
+        if index is None:
+            index = UnitIndex(every)
+        else:
+            index.add(every)
         self.items = items
-        self.ids = [np.array(sorted(vocabulary[u] for u in keys), dtype=np.int64) for keys in unit_lists]
-        self.phone_ids = [u[is_phone[u]] for u in self.ids]
-        self.diphone_ids = [u[~is_phone[u]] for u in self.ids]
-        self.weights = np.where(is_phone, PHONE_WEIGHT, 1.0)
-        self.counts = np.zeros(len(vocabulary), dtype=np.int64)
+        self.ids, self.phone_ids, self.diphone_ids = ([found[c.clip_id] for c in every] for found in
+                                                      (index.ids, index.phone_ids, index.diphone_ids))
+        self.weights = index.weights
+        self.counts = np.zeros(len(index.weights), dtype=np.int64)
         self.speaker_s: dict[str, Fraction] = {}
         self.speaker_rough: dict[str, float] = {}
         speakers = {c.speaker for c in items} | {c.speaker for c in chosen}
@@ -300,10 +346,11 @@ def selection_order(
     chosen: Sequence[Candidate] = (),
     seed: int = 0,
     stop_s: float | None = None,
+    index: UnitIndex | None = None,
 ) -> list[str]:
     """The order of ``method`` ("coverage" or "random"); see :func:`coverage_order`."""
     if method == "coverage":
-        return coverage_order(candidates, budget_s=budget_s, chosen=chosen, stop_s=stop_s)
+        return coverage_order(candidates, budget_s=budget_s, chosen=chosen, stop_s=stop_s, index=index)
     if method == "random":
         return random_order(candidates, seed=seed)
     raise ParameterError(f"method={method!r} is not one of {', '.join(METHODS)}")
@@ -411,7 +458,10 @@ def fill_tiers(
         if b.budget_s < a.budget_s:
             raise ParameterError(f"plans must ascend by budget_s; {b.name} ({b.budget_s}) follows {a.name} ({a.budget_s})")
     durations = {cid: c.duration_s for cid, c in items.items()}
-    pools = _Pools(labelled_before=sorted(set(labelled_before)), new=set(new), reopened=set(reopened))
+    # One index of units for every tier's orders (see UnitIndex).
+    index = UnitIndex() if method == "coverage" else None
+    pools = _Pools(labelled_before=sorted(set(labelled_before)), new=set(new), reopened=set(reopened),
+                   index=index)
     members: tuple[str, ...] = ()
     outcomes: list[TierOutcome] = []
     for plan in plans:
@@ -428,6 +478,7 @@ class _Pools:
     labelled_before: list[str]
     new: set[str]
     reopened: set[str]
+    index: UnitIndex | None = None
 
 
 def _fill_tier(plan: TierPlan, smaller: Sequence[str], *, items: Mapping[str, Candidate],
@@ -439,7 +490,8 @@ def _fill_tier(plan: TierPlan, smaller: Sequence[str], *, items: Mapping[str, Ca
     kept = [items[c] for c in sorted(plan.kept) if c not in inside]
     if plan.may_drop:  # only a drop needs to know which kept clips came last
         kept_ids = selection_order(kept, method=method, budget_s=plan.budget_s,
-                                   chosen=[items[c] for c in prev], seed=seed, stop_s=math.inf)
+                                   chosen=[items[c] for c in prev], seed=seed, stop_s=math.inf,
+                                   index=pools.index)
     else:
         kept_ids = [c.clip_id for c in kept]
     base = prev + kept_ids
@@ -456,7 +508,7 @@ def _fill_tier(plan: TierPlan, smaller: Sequence[str], *, items: Mapping[str, Ca
         if total >= budget or not pool:
             continue
         order = selection_order([items[c] for c in pool], method=method, budget_s=plan.budget_s,
-                                chosen=[items[c] for c in base], seed=seed)
+                                chosen=[items[c] for c in base], seed=seed, index=pools.index)
         taken = take_until(order, durations=durations, start_s=total, budget_s=plan.budget_s)
         base += taken
         inside.update(taken)
