@@ -113,6 +113,41 @@ def test_an_ordinary_exception_still_reaches_the_caller(workers: int) -> None:
         map_ordered(fail_on_three, list(range(6)), workers=workers, on_crash=lambda i, how: -1)
 
 
+def _write_slowly_or_crash(job: tuple[str, int]) -> int:
+    """Item 0 dies once item 1 is halfway through an atomic write (its temporary made,
+    not yet renamed); item 1 finishes its write after half a second."""
+    folder, x = job
+    partial = Path(folder) / f".loam-item{x}.{os.getpid()}.tmp"
+    if x == 0:
+        first = not (Path(folder) / "crashed-before").exists()
+        (Path(folder) / "crashed-before").touch()
+        deadline = time.monotonic() + 30
+        while first and not any(Path(folder).glob(".loam-item1.*.tmp")) and time.monotonic() < deadline:
+            time.sleep(0.01)
+        crash_on_three(CRASH_ON)
+    partial.write_bytes(b"")
+    time.sleep(0.5)
+    partial.rename(Path(folder) / f"item{x}")
+    return x
+
+
+def test_on_break_clears_what_a_stopped_neighbour_left(tmp_path: Path) -> None:
+    # When one worker dies the pool stops the others mid-item; their items run again,
+    # so a temporary they left is debris that on_break removes before the work goes on.
+    from pipeline.core.fsio import remove_stale_temporaries
+
+    breaks: list[int] = []
+
+    def on_break() -> None:
+        breaks.append(remove_stale_temporaries(tmp_path))
+
+    out = map_ordered(_write_slowly_or_crash, [(str(tmp_path), 0), (str(tmp_path), 1)], workers=2,
+                      on_crash=lambda i, how: -1, on_break=on_break)
+    assert out == [-1, 1]
+    assert breaks[0] == 1  # item 1's temporary, left when its worker was stopped
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["crashed-before", "item1"]
+
+
 def _mark_after_batch(folder: str) -> None:
     """Runs on the worker after each batch: one file per call, named by the files the
     batch's items wrote so far (so the test sees that it ran after them)."""

@@ -90,6 +90,7 @@ def each_result(
     meanwhile: Callable[[], None] | None = None,
     on_crash: Callable[[int, str], R] | None = None,
     after_batch: Callable[[], None] | None = None,
+    on_break: Callable[[], object] | None = None,
 ) -> None:
     """Apply ``func`` to every item and hand each result to ``on_result(index, result)``.
 
@@ -121,7 +122,8 @@ def each_result(
     items are not affected, whichever shared the pool with it. With ``on_crash`` the work
     always runs in worker processes, even with one worker, so that such a crash never
     takes this process down and results do not depend on the worker count. Without it a
-    worker's death raises ``BrokenProcessPool``.
+    worker's death raises ``BrokenProcessPool``. ``on_break`` is called in this process
+    after a local pool broke, before the work goes on (:func:`pipeline.core.pool.run_pool`).
 
     ``after_batch`` (module-level, pickled) runs on a cluster worker after each batch,
     before its results are sent: the audio stage flushes the clips that worker wrote
@@ -146,7 +148,8 @@ def each_result(
                 handed(i, func(item))
             return
         order = range(len(items)) if costs is None else sorted(range(len(items)), key=lambda i: -costs[i])
-        run_pool(func, items, handed, workers=n, order=order, meanwhile=meanwhile, on_crash=on_crash)
+        run_pool(func, items, handed, workers=n, order=order, meanwhile=meanwhile, on_crash=on_crash,
+                 on_break=on_break)
     finally:
         bar.close()
 

@@ -227,6 +227,7 @@ def run_pool(
     order: Sequence[int],
     meanwhile: Callable[[], None] | None = None,
     on_crash: Callable[[int, str], Any] | None = None,
+    on_break: Callable[[], object] | None = None,
 ) -> None:
     """``on_result(i, func(items[i]))`` for each ``i`` in ``order``, on ``workers`` processes.
 
@@ -235,7 +236,9 @@ def run_pool(
     the pool: the items it and its neighbours were running run again, each alone; one
     that kills its process again gets ``on_result(i, on_crash(i, how))``, ``how`` saying
     how the process ended (:func:`describe_exit`). The items that had not started go on
-    in a fresh pool. Without ``on_crash`` a worker's death raises
+    in a fresh pool. ``on_break`` is called after a pool broke, once its processes are
+    gone and before anything runs again: a neighbour stopped mid-item may have left
+    partial work (a temporary file) for the caller to clear. Without ``on_crash`` a worker's death raises
     :class:`~concurrent.futures.process.BrokenProcessPool`, as it does as well when a
     worker died while running nothing (killed from outside).
 
@@ -248,6 +251,7 @@ def run_pool(
     order : the indices of ``items`` to run, first submitted first.
     meanwhile : other work for this process while the workers run.
     on_crash : the result for an item whose process died twice, the second time alone.
+    on_break : called in this process after each broken pool.
 
     Examples
     --------
@@ -265,6 +269,8 @@ def run_pool(
             raise BrokenProcessPool("a worker process died while running no item (was it killed from outside?)")
         if suspects and on_crash is None:
             raise BrokenProcessPool(f"a worker process died while running item(s) {sorted(suspects)}")
+        if on_break is not None:
+            on_break()
         for i in sorted(suspects):
             ok, value = run_alone(func, items[i])
             on_result(i, value if ok else on_crash(i, value))  # type: ignore[misc]

@@ -747,7 +747,8 @@ def _clean_up(ctx: StageContext, out: Path, table: Any, listing: Any) -> int:
     """Remove the clip files (of ``listing``, OUT/audio as the stage began) no row names,
     and spool debris; how many clip files went. A file written since is a row's clip:
     this run's workers write nothing else there but temporaries of an atomic write cut
-    short, which the next run removes first (pipeline.core.fsio.remove_stale_temporaries)."""
+    short: a worker stopped when its pool broke leaves one, removed before the work goes
+    on (each_result's on_break); a killed run's are removed by the next run first."""
     removed = remove_orphans(listing.column("path"), table.column("audio_path"), base=out)
     if removed:
         ctx.log.info("audio: removed %s no current row refers to", _plural(removed, "clip file"))
@@ -860,7 +861,10 @@ def run(ctx: StageContext) -> StageResult:
                 desc="audio", progress=ctx.progress,
                 costs=[row["num_frames"] * row["channels"] for row in sources],
                 meanwhile=ctx.meanwhile, on_crash=lambda j, how: crashed_outcome(jobs[j], how),
-                after_batch=functools.partial(sync_file_system, str(out)))
+                after_batch=functools.partial(sync_file_system, str(out)),
+                # The pool's other workers, stopped mid-file when one died, may have left an
+                # atomic write's temporary beside a clip; their files run again, so it is debris.
+                on_break=functools.partial(remove_stale_temporaries, out / AUDIO_DIR))
     # The clips were written without an fsync each: one flush makes them durable before
     # the manifest that names them is written (reused ones too, which a run stopped
     # before its flush may have left in the cache). On a cluster each worker has also
