@@ -29,8 +29,8 @@ from pipeline.signal.fingerprint import (
     _candidate_pairs,
     _sorted_distinct,
     check_search_parameters,
-    fingerprint_similarity,
 )
+from pipeline.signal.pair_similarity import pair_similarities
 
 __all__ = ["Pairs", "search_added", "search_pairs"]
 
@@ -55,10 +55,10 @@ def _verified(values: np.ndarray, offsets: np.ndarray, codes: np.ndarray, shared
     """The candidate pairs (codes ``i * n + j``) whose similarity reaches ``min_similarity``."""
     n = max(len(offsets) - 1, 1)
     first, second = np.divmod(codes, n)
-    sims = np.array([fingerprint_similarity(values[offsets[i]:offsets[i + 1]], values[offsets[j]:offsets[j + 1]],
-                                            max_offset_frames=max_offset_frames,
-                                            min_overlap_frames=min_overlap_frames)
-                     for i, j in zip(first.tolist(), second.tolist(), strict=True)], dtype=np.float64)
+    # All candidates at once (fingerprint_similarity's result per pair): one call per
+    # pair cost 1.42 against 0.17-0.20 CPU s for 50,766 candidates of 50 sub-fingerprints.
+    sims = pair_similarities(values, offsets, first, second, max_offset_frames=max_offset_frames,
+                             min_overlap_frames=min_overlap_frames)
     keep = sims >= min_similarity if sims.size else np.zeros(0, bool)
     return Pairs(first[keep].astype(np.int64), second[keep].astype(np.int64), sims[keep],
                  shared[keep].astype(np.int64))
