@@ -91,7 +91,7 @@ def test_cache_serves_an_added_clip_and_misses_a_changed_one(tmp_path, caplog) -
                           np.array(chars[:count]))
         with caplog.at_level(logging.INFO, logger=log.name):
             found = near_duplicates(ctx, keys, _flat(fps[:count]), min_similarity=0.6, log=log)
-        assert found == search_pairs(*_flat(fps[:count]), min_similarity=0.6).as_list()
+        assert found.as_list() == search_pairs(*_flat(fps[:count]), min_similarity=0.6).as_list()
         return "added since" if "added since" in caplog.text else "all"
 
     sha = [f"{k:064x}" for k in range(30)]

@@ -84,13 +84,13 @@ def _earlier(clips: pa.Table | None, pairs: pa.Table | None, keys: pa.Table) -> 
 
 
 def near_duplicates(ctx: StageContext, keys: pa.Table | None, fingerprints: tuple[np.ndarray, np.ndarray], *,
-                    min_similarity: float, log: logging.Logger) -> list[tuple[int, int, float]]:
-    """The near-duplicate pairs ``(i, j, similarity)`` of the clips (in clip_id order),
+                    min_similarity: float, log: logging.Logger) -> Pairs:
+    """The near-duplicate pairs of the clips (indices in clip_id order),
     searching only the added clips when the cache allows; the cache is then rewritten.
 
     ``keys`` (:func:`cache_keys`) is None when the cache is disabled."""
     if keys is None:
-        return search_pairs(*fingerprints, min_similarity=min_similarity).as_list()
+        return search_pairs(*fingerprints, min_similarity=min_similarity)
     # The audio stage's code version stands for the fingerprint method: a new method
     # keeps each clip's audio bytes but changes its fingerprint.
     scope = cache_key("near-duplicates", "audio_sha256,fingerprint_chars", code_version("split", cache_dir=ctx.cache_dir),
@@ -115,4 +115,4 @@ def near_duplicates(ctx: StageContext, keys: pa.Table | None, fingerprints: tupl
     pairs_scope = cache_key(scope, _clips_digest(keys))
     TableCache(ctx.cache_dir, NAMESPACE, "near-duplicates", scope=pairs_scope, enabled=ctx.use_cache).save(
         pa.table([pa.array(getattr(found, f.name), f.type) for f in _PAIRS], schema=_PAIRS))
-    return found.as_list()
+    return found
