@@ -346,3 +346,17 @@ def test_every_gone_source_is_kept_and_returns_to_its_subset(tmp_path: Path) -> 
         {c: (first[c]["subset"], first[c]["tiers"]) for c in gone}
     assert [c for c, r in rows.items() if (r["subset"] == "heldout") != (first[c]["subset"] == "heldout")] == []
     assert set(read_ledger(tmp_path / "out" / "ledger.tsv").sources.values()) == {"present"}
+
+
+def test_source_keys_equal_source_key_of_each_id() -> None:
+    # The Arrow path takes ingest's ids (ten hex digits after the last hyphen); ids of
+    # other shapes, a final newline among them (Python's "$" matches before it, RE2's
+    # does not), take source_key itself.
+    import pyarrow as pa
+
+    from pipeline.stages.ledger import source_key, source_keys
+
+    ids = ["alder_01-0123456789", "0123456789", "abcdef0123\n", "x-abcdef0123\n", "x-ABCDEF0123", "ü-9876543210",
+           "a-b-c-fedcba9876", "-0011223344", "00112233445", "x-0011223344-", "no-hash-here", "alder_01-0123456789"]
+    assert source_keys(pa.chunked_array([ids[:5], ids[5:]])) == {source_key(i) for i in ids}
+    assert source_keys(pa.array([], pa.string())) == set()

@@ -47,6 +47,9 @@ from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import pyarrow as pa
+import pyarrow.compute as pc
+
 from pipeline.core.config import Config
 from pipeline.core.errors import UsageError
 from pipeline.core.fsio import write_text_atomic
@@ -93,6 +96,24 @@ def source_key(source_id: str) -> str:
     if _SOURCE_KEY.match(tail):
         return tail
     return hashlib.sha256(source_id.encode("utf-8", "surrogateescape")).hexdigest()[:10]
+
+
+def source_keys(source_ids: pa.Array | pa.ChunkedArray) -> set[str]:
+    """:func:`source_key` of each id, as a set, computed in Arrow for the ids ingest
+    writes (101,000 ids: 0.06 CPU s one :func:`source_key` call each); any other id
+    goes through :func:`source_key` itself.
+
+    Examples
+    --------
+    >>> sorted(source_keys(pa.array(["alder_01-0123456789", "abcdef0123", "alder_01-0123456789"])))
+    ['0123456789', 'abcdef0123']
+    """
+    ids = pc.unique(source_ids)
+    # RE2's "$" ends the text (Python's also matches before a final newline: such ids
+    # take the per-id path).
+    usual = pc.match_substring_regex(ids, r"(?:^|-)[0-9a-f]{10}$").fill_null(False)
+    keys = set(pc.utf8_slice_codeunits(ids.filter(usual), -10).to_pylist())
+    return keys | {source_key(s) for s in ids.filter(pc.invert(usual)).to_pylist()}
 
 
 def corpus_id(keys: Iterable[str]) -> str:

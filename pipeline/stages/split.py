@@ -81,7 +81,7 @@ from pipeline.stages.ledger import (
     locate_ledger,
     read_ledger,
     shares_corpus,
-    source_key,
+    source_keys,
     write_ledger,
 )
 from pipeline.stages.prompts import DEMOTED, UNSCORED, prompt_key, prompt_set
@@ -481,7 +481,8 @@ def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None
     audio, texts = joined.audio, joined.texts
     clip_ids = audio.column("clip_id").to_pylist()
     speakers = audio.column("speaker").to_pylist()
-    phones = [plain_phones(t, word_boundary=cfg.text.word_boundary) for t in texts]
+    boundary = cfg.text.word_boundary
+    phones = [() if t is None else plain_phones(t, word_boundary=boundary) for t in texts]
     if near is None:
         near = search_pairs(*joined.fingerprints, min_similarity=qc.near_duplicate_min_similarity)
     pairs, partners = find_duplicates(clip_ids, audio.column("audio_sha256"), near)
@@ -1141,7 +1142,7 @@ def _run(ctx: StageContext) -> StageResult:
     gate_rejects, kept = _gate_rejects([c for c in clips if c.clip_id not in excluded], cfg, joined)
     rejects += gate_rejects
     eligible_s, target_s, targets = _heldout_target(ctx, kept)
-    sources = {source_key(s) for s in pc.unique(joined.audio.column("source_id")).to_pylist()}
+    sources = source_keys(joined.audio.column("source_id"))
     use = _open_ledger(ctx, sources)
     ledger = use.ledger
     balance = read_balance(ctx)
