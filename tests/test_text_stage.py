@@ -313,9 +313,28 @@ def test_a_rebuild_reuses_the_rows_of_unchanged_transcripts_and_writes_the_same_
     rows = pa.parquet.read_table(tmp_path / "out" / "stages" / "text.parquet").to_pylist()
     assert "The heron came back at dawn, twice." in [r["transcript"] for r in rows]
 
-    # The manifest edited by hand since the stage wrote it: every transcript is processed.
-    manifest = tmp_path / "out" / "stages" / "text.parquet"
-    manifest.write_bytes(manifest.read_bytes())
+    # OUT copied elsewhere (every file a new inode, the manifest's mtime too): the rows
+    # are checked by content, so the copy's rebuild reuses them all.
+    shutil.copytree(tmp_path / "out", tmp_path / "copy")
+    (tmp_path / "copy" / "stages" / "text.parquet").touch()
     sidecar.write_text("The heron came back at dusk.\n", encoding="utf-8")
+    copied = _ingest_and_text(raw, tmp_path / "copy")
+    assert copied["transcripts_reused"] > 0 and copied["transcripts_processed"] > 0
+    shutil.rmtree(tmp_path / "scratch")
+    _ingest_and_text(raw, tmp_path / "scratch")
+    assert _text_outputs(tmp_path / "copy") == _text_outputs(tmp_path / "scratch")
+
+    # The manifest edited by hand since the stage wrote it (its rows and metadata kept,
+    # one pronunciation changed): nothing of it is reused, and the edit does not survive.
+    manifest = tmp_path / "out" / "stages" / "text.parquet"
+    table = pa.parquet.read_table(manifest)
+    phones = table.column("phones").to_pylist()
+    phones[0] = ["x"]
+    pa.parquet.write_table(table.set_column(table.schema.get_field_index("phones"), "phones",
+                                            pa.array(phones, table.schema.field("phones").type)), manifest)
+    sidecar.write_text("The heron came back at dusk, twice.\n", encoding="utf-8")
     edited = _ingest_and_text(raw, tmp_path / "out")
     assert edited["transcripts_reused"] == 0
+    shutil.rmtree(tmp_path / "scratch")
+    _ingest_and_text(raw, tmp_path / "scratch")
+    assert _text_outputs(tmp_path / "out") == _text_outputs(tmp_path / "scratch")

@@ -126,3 +126,44 @@ def read(path: Path) -> pa.Table | None:
     except (OSError, ValueError, TypeError):  # pyarrow's errors derive from these
         return None
     return table if table.schema.equals(SCHEMA) else None
+
+
+def recorded_manifest(out: Path, stage: str, rel: str) -> bytes | None:
+    """The bytes of manifest ``rel`` (relative to ``out``) when their SHA-256 is the one
+    the runner recorded as it wrote the file for ``stage`` (``names.stage_manifest_facts``:
+    per manifest ``[size, mtime_ns, inode, sha256, schema, schema sha256]``), else None.
+
+    Checked by content, not by stat: a copied or moved OUT (new inodes, perhaps new
+    mtimes) keeps what the stage wrote usable, and any edit of the file is seen. The
+    bytes returned are the very ones hashed, so a caller parsing them reads what was
+    checked even if the file changes meanwhile.
+
+    Examples
+    --------
+    >>> import hashlib, json, tempfile
+    >>> out = Path(tempfile.mkdtemp())
+    >>> (out / "stages").mkdir(); (out / "cache" / "stages").mkdir(parents=True)
+    >>> _ = (out / "stages" / "x.parquet").write_bytes(b"rows")
+    >>> fact = [4, 0, 0, hashlib.sha256(b"rows").hexdigest(), "x", ""]
+    >>> _ = (out / "cache" / "stages" / "x.manifests.json").write_text(json.dumps({"stages/x.parquet": fact}))
+    >>> recorded_manifest(out, "x", "stages/x.parquet")
+    b'rows'
+    >>> _ = (out / "stages" / "x.parquet").write_bytes(b"rowz")
+    >>> recorded_manifest(out, "x", "stages/x.parquet") is None
+    True
+    >>> import shutil; shutil.rmtree(out)
+    """
+    import hashlib
+    import json
+
+    from pipeline.core.names import stage_manifest_facts
+
+    try:
+        facts = json.loads((out / stage_manifest_facts(stage)).read_text(encoding="utf-8"))
+        data = (out / rel).read_bytes()
+    except (OSError, ValueError):
+        return None
+    fact = facts.get(rel) if isinstance(facts, dict) else None
+    if not (isinstance(fact, list) and len(fact) == 6 and isinstance(fact[3], str)):
+        return None
+    return data if hashlib.sha256(data).hexdigest() == fact[3] else None

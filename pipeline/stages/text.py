@@ -43,20 +43,16 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+import pyarrow.parquet as pq
 
 from pipeline.core import outputs_record
 from pipeline.core.codeversion import code_version
 from pipeline.core.columns import counted_items, row_members
 from pipeline.core.config import Config, TextConfig, canonical_json
-from pipeline.core.errors import ManifestError, ParameterError
+from pipeline.core.errors import ParameterError
 from pipeline.core.fsio import sha256_file, write_text_atomic
-from pipeline.core.manifest import (
-    arrow_schema,
-    read_manifest,
-    read_metadata,
-    table_from_rows,
-)
-from pipeline.core.names import PREDICTED_LEXICON, stage_manifest, stage_outputs_record
+from pipeline.core.manifest import arrow_schema, table_from_rows
+from pipeline.core.names import PREDICTED_LEXICON, stage_manifest
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.stages.languages import (
     LANGUAGE_TAG,
@@ -332,38 +328,29 @@ def rows_key(ctx: StageContext, *, cache_dir: Path | None) -> str:
     return hashlib.sha256(canonical_json(parts)).hexdigest()
 
 
-def _as_written(out: Path, rel: str) -> bool:
-    """Whether ``rel`` still has the size, mtime and inode the runner recorded when this
-    stage wrote it (a file edited since is not trusted)."""
-    record = outputs_record.read(out / stage_outputs_record(NAME))
-    if record is None:
-        return False
-    recorded = record.filter(pc.equal(record.column("path"), rel)).to_pylist()
-    try:
-        st = (out / rel).stat()
-    except OSError:
-        return False
-    return recorded == [{"path": rel, "st_size": st.st_size, "st_mtime_ns": st.st_mtime_ns, "st_ino": st.st_ino}]
-
-
 def reusable_rows(out: Path, items: list[dict[str, Any]], cells: list[str], *,
                   key: str) -> tuple[np.ndarray | None, pa.Table | None]:
     """Which ``items`` (clip_id, transcript, origin) the previous run's manifest in
     ``out`` already holds, and those rows.
 
-    A row is reused when the manifest is as this stage last wrote it (its stat as the
-    runner recorded it), under the same :func:`rows_key`, and has the item's clip with
+    A row is reused when the manifest holds the bytes this stage last wrote (their
+    SHA-256 as the runner recorded it: a copied or moved OUT still qualifies, an edited
+    manifest does not), under the same :func:`rows_key`, and has the item's clip with
     the same transcript, origin and language (its cell as a tag). The runner checks the whole
     table against the schema before writing it, reused rows included.
     Transcripts the previous run rejected are processed again, like new ones: their
     rejects are not kept. Returns (None, None) when nothing can be reused.
     """
+    data = outputs_record.recorded_manifest(out, NAME, MAIN_MANIFEST)
+    if data is None:
+        return None, None
     try:
-        if not (_as_written(out, MAIN_MANIFEST) and read_metadata(out / MAIN_MANIFEST).get("text.rows_key") == key):
+        previous = pq.ParquetFile(pa.BufferReader(data)).read()
+        if (previous.schema.metadata or {}).get(b"loam.text.rows_key") != key.encode():
             return None, None
-        previous = read_manifest(out / MAIN_MANIFEST).select([f.name for f in arrow_schema(NAME)])
+        previous = previous.select([f.name for f in arrow_schema(NAME)])
         previous = previous.cast(arrow_schema(NAME))  # Parquet names list items "element"
-    except (ManifestError, KeyError, ValueError, pa.ArrowException):
+    except (KeyError, ValueError, pa.ArrowException):
         return None, None
     if not items or not previous.num_rows:
         return None, None
