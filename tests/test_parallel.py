@@ -148,6 +148,15 @@ def test_on_break_clears_what_a_stopped_neighbour_left(tmp_path: Path) -> None:
     assert sorted(p.name for p in tmp_path.iterdir()) == ["crashed-before", "item1"]
 
 
+def test_on_break_is_not_called_when_no_worker_died() -> None:
+    # It clears a broken pool's debris (the audio stage walks OUT/audio for it): a pool
+    # that finished its work left none.
+    breaks: list[int] = []
+    assert map_ordered(abs, [-1, 2, -3], workers=2, on_crash=lambda i, how: 0,
+                       on_break=lambda: breaks.append(1)) == [1, 2, 3]
+    assert breaks == []
+
+
 def _mark_after_batch(folder: str) -> None:
     """Runs on the worker after each batch: one file per call, named by the files the
     batch's items wrote so far (so the test sees that it ran after them)."""

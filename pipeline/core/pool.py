@@ -269,7 +269,7 @@ def run_pool(
             raise BrokenProcessPool("a worker process died while running no item (was it killed from outside?)")
         if suspects and on_crash is None:
             raise BrokenProcessPool(f"a worker process died while running item(s) {sorted(suspects)}")
-        if on_break is not None:
+        if suspects and on_break is not None:  # a pool that did not break left nothing half done
             on_break()
         for i in sorted(suspects):
             ok, value = run_alone(func, items[i])
