@@ -454,3 +454,34 @@ def test_later_outcomes_of_a_source_replace_earlier_ones():
     rows = {key: list(range(first[run], first[run] + lengths[run]))
             for key, run in zip(distinct.to_pylist(), last_run, strict=True)}
     assert rows == {"a": [3], "b": [2]}
+
+
+def test_the_cache_follows_the_config_the_code_and_each_source(first_run, raw: Path, tmp_path: Path, monkeypatch):
+    # Each change reconditions what it reaches, and the rows are those of a run without
+    # the cache: another audio config or code version, every source; a source whose
+    # ingest row changes a field its clips carry (its speaker), that source alone.
+    import pyarrow.compute as pc
+
+    out, result = first_run
+    copy = tmp_path / "out"
+    shutil.copytree(out, copy)
+    louder = run_stage(raw, copy, overrides={"audio.target_lufs": -20.0})
+    assert louder.run_stats["sources_processed"] == 8
+    assert rows_of(louder) == rows_of(run_stage(raw, tmp_path / "fresh", overrides={"audio.target_lufs": -20.0}))
+    monkeypatch.setattr(audio, "code_version", lambda *args, **kwargs: "another version")
+    assert run_stage(raw, copy).run_stats["sources_processed"] == 8
+    assert rows_of(run_stage(raw, copy)) == rows_of(result)
+    ingest = ingest_table(raw)
+    moved = pc.equal(ingest.column("source_path"), "ana/take22.flac")
+    ingest = ingest.set_column(ingest.schema.get_field_index("speaker"), "speaker",
+                               pc.if_else(moved, "dora", ingest.column("speaker")))
+
+    def run_with(where: Path):
+        cfg = build_config({}, overrides={"audio.align": "off"})
+        return audio.run(StageContext(raw=raw, out=where, config=cfg, inputs={"ingest": ingest}, workers=1,
+                                      log=logging.getLogger("loam.test")))
+
+    renamed = run_with(copy)
+    assert renamed.run_stats["sources_processed"] == 1
+    assert rows_of(renamed) == rows_of(run_with(tmp_path / "scratch"))
+    assert "audio/dora/" in " ".join(r["audio_path"] for r in rows_of(renamed))

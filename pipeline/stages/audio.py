@@ -834,7 +834,7 @@ def run(ctx: StageContext) -> StageResult:
     transcribed = ingest.filter(pc.is_valid(ingest.column("transcript")))
     voices = alignment_voices(ctx, transcribed.select(["source_id", "source_path", "transcript", "transcript_origin",
                                                        "metadata_line"]).to_pylist())
-    keys = source_keys(ingest, section=section, code=code, long=_long_sources(transcribed, voices, cfg.max_clip_s))
+    keys = source_keys(ingest, long=_long_sources(transcribed, voices, cfg.max_clip_s))
     cache = OutcomeCache(ctx.cache_dir, section=section, code=code, enabled=ctx.use_cache)
     # Rows go straight into Arrow batches as each outcome arrives (reused ones as
     # columns); no list of every outcome is kept. Rejects are few, kept in source order.
@@ -852,7 +852,7 @@ def run(ctx: StageContext) -> StageResult:
         # A decoder error may be passing (a file still being copied), and a crash may be
         # the library's fault (fixed by an upgrade): neither is remembered.
         if not any(r["reason"] in ("undecodable", "decoder_crashed") for r in outcome.rejects):
-            cache.add(keys[todo[j]], outcome.rows, outcome.rejects, outcome.written)
+            cache.add(keys[todo[j]].as_py(), outcome.rows, outcome.rejects, outcome.written)
         builder.extend(outcome.rows)
         if outcome.rejects:
             rejects_at[todo[j]] = outcome.rejects
