@@ -801,18 +801,41 @@ def _scrub_rejects(rejects: list[dict[str, Any]], real: dict[str, str], *, raw: 
     return [{**r, "detail": scrub(r["detail"], sources=sources, pattern=pattern)} for r in rejects]
 
 
-def _long_sources(transcribed: Any, voices: dict[str, tuple[str | None, str]],
-                  max_clip_s: float) -> dict[str, tuple[str, str]]:
-    """source_id -> (transcript, voice) of the transcribed sources an alignment may cut:
-    longer than ``max_clip_s`` with a voice. Their transcript and voice decide how they are
-    cut (pipeline.stages.alignment), so both are in their cache key; a short source's
-    transcript text does not reach its clips."""
+_VOICE_COLUMNS = ["source_id", "source_path", "transcript", "transcript_origin", "metadata_line"]
+
+
+def _voices(ctx: StageContext, rows: Any) -> dict[str, tuple[str | None, str]]:
+    """``alignment_voices`` of the transcribed rows of table ``rows`` (few: the long
+    sources, or those to condition), without a Python row per other source."""
     import pyarrow.compute as pc  # here: the workers never need it
 
-    long = transcribed.filter(pc.fill_null(pc.greater(transcribed.column("duration_s"), max_clip_s), False))
+    from pipeline.stages.alignment import alignment_voices
+
+    rows = rows.filter(pc.is_valid(rows.column("transcript")))
+    return alignment_voices(ctx, rows.select(_VOICE_COLUMNS).to_pylist()) if rows.num_rows else {}
+
+
+def _long_sources(long: Any, voices: dict[str, tuple[str | None, str]]) -> dict[str, tuple[str, str]]:
+    """source_id -> (transcript, voice) of the transcribed sources an alignment may cut
+    (``long``: those longer than ``audio.max_clip_s``) that have a voice. Their transcript
+    and voice decide how they are cut (pipeline.stages.alignment), so both are in their
+    cache key; a short source's transcript text does not reach its clips."""
     return {sid: (text, voices[sid][0]) for sid, text in zip(long.column("source_id").to_pylist(),
                                                              long.column("transcript").to_pylist(), strict=True)
             if voices.get(sid, (None, ""))[0] is not None}
+
+
+def _aligned_sources(table: Any, transcribed: Any) -> dict[str, dict[str, Any]]:
+    """``alignment_summary`` of the clips cut from a source (clip_id not its source_id)
+    and the transcribed sources they come from: Python sees only those rows."""
+    import pyarrow.compute as pc  # here: the workers never need it
+
+    from pipeline.stages.alignment import alignment_summary
+
+    cut = table.filter(pc.not_equal(table.column("clip_id"), table.column("source_id")))
+    sources = transcribed.filter(pc.is_in(transcribed.column("source_id"), value_set=cut.column("source_id")))
+    return alignment_summary(cut.select(["source_id", "clip_id", "duration_s", "aligned_transcript"]).to_pylist(),
+                             sources.select(["source_id", "source_path", "transcript", "duration_s"]).to_pylist())
 
 
 def run(ctx: StageContext) -> StageResult:
@@ -826,22 +849,26 @@ def run(ctx: StageContext) -> StageResult:
     raw = Path(os.path.abspath(ctx.raw))
     ingest = ctx.inputs["ingest"]
     code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
-    import pyarrow.compute as pc  # here: the workers never need it
-
-    from pipeline.stages.alignment import alignment_summary, alignment_voices
+    import pyarrow as pa  # here: the workers never need it
+    import pyarrow.compute as pc
 
     section = ctx.config.section(NAME)
     transcribed = ingest.filter(pc.is_valid(ingest.column("transcript")))
-    voices = alignment_voices(ctx, transcribed.select(["source_id", "source_path", "transcript", "transcript_origin",
-                                                       "metadata_line"]).to_pylist())
-    keys = source_keys(ingest, long=_long_sources(transcribed, voices, cfg.max_clip_s))
+    long = transcribed.filter(pc.fill_null(pc.greater(transcribed.column("duration_s"), cfg.max_clip_s), False))
+    # The voice of each long source (its cache key holds it), then of each source to condition.
+    voices = _voices(ctx, long)
+    keys = source_keys(ingest, long=_long_sources(long, voices))
     cache = OutcomeCache(ctx.cache_dir, section=section, code=code, enabled=ctx.use_cache)
     # Rows go straight into Arrow batches as each outcome arrives (reused ones as
     # columns); no list of every outcome is kept. Rejects are few, kept in source order.
     builder = ManifestBuilder(NAME)
     listing = file_listing(out / AUDIO_DIR, base=out)
     todo, rejects_at = cache.reuse(keys, listing=listing, builder=builder)
-    sources = ingest.take(todo).to_pylist() if todo else []
+    chosen = ingest.take(pa.array(todo, pa.int64()))
+    sources = chosen.to_pylist() if todo else []
+    if todo:
+        voices.update(_voices(ctx, chosen.filter(pc.invert(pc.is_in(chosen.column("source_id"),
+                                                                      value_set=long.column("source_id"))))))
     real = _real_paths(ctx, out)
     jobs = [AudioJob(row, str(raw / real.get(row["source_path"], row["source_path"])), str(out), str(out / TMP_DIR),
                      cfg, *voices.get(row["source_id"], (None, "")), durable=False) for row in sources]
@@ -879,9 +906,7 @@ def run(ctx: StageContext) -> StageResult:
         rejects = _scrub_rejects(rejects, real, raw=raw)
     removed = _clean_up(ctx, out, table, listing)
     summary = _summary(table, rejects, sources=len(keys))
-    summary["aligned_sources"] = alignment_summary(
-        table.select(["source_id", "clip_id", "duration_s", "aligned_transcript"]).to_pylist(),
-        transcribed.select(["source_id", "source_path", "transcript", "duration_s"]).to_pylist())
+    summary["aligned_sources"] = _aligned_sources(table, transcribed)
     for path, figures in summary["aligned_sources"].items():
         ctx.log.info("audio: %s aligned to its transcript: %.0f%% of its audio in %d transcribed clips, "
                      "%.0f%% of its transcript placed", path, 100 * figures["audio_share_transcribed"],
