@@ -127,21 +127,22 @@ def file_listing(folder: Path, *, base: Path) -> pa.Table:
                         names=["path", "st_size", "st_mtime_ns", "st_ino", "st_mode"])
 
 
-def _intact(table: pa.Table, listing: pa.Table) -> np.ndarray:
-    """Per cached row: a reject row, or a clip row whose file ``listing`` holds with the
-    size, mtime and inode the table recorded."""
+def _intact(table: pa.Table, listing: pa.Table) -> tuple[np.ndarray, np.ndarray]:
+    """Per cached row: whether it is a reject row, or a clip row whose file ``listing``
+    holds with the size, mtime and inode the table recorded; and the row of ``listing``
+    naming its file (-1 for none)."""
     where = pc.index_in(table.column("audio_path"), value_set=listing.column("path"))
-    index = np.asarray(where.fill_null(-1), dtype=np.int64)
-    found = index >= 0
-    index = np.where(found, index, 0)
+    at = np.asarray(where.fill_null(-1), dtype=np.int64)
+    found = at >= 0
+    index = np.where(found, at, 0)
+    rejected = np.asarray(table.column("reject_reason").is_valid(), dtype=bool)
+    if not listing.num_rows:
+        return rejected, at
     intact = found.copy()
     for column in ("st_size", "st_mtime_ns", "st_ino"):
-        listed = listing.column(column).to_numpy()
-        if not len(listed):
-            return np.asarray(table.column("reject_reason").is_valid(), dtype=bool)
         recorded = table.column(column).fill_null(0).to_numpy()
-        intact &= listed[index] == recorded
-    return intact | np.asarray(table.column("reject_reason").is_valid(), dtype=bool)
+        intact &= listing.column(column).to_numpy()[index] == recorded
+    return intact | rejected, at
 
 
 def _outcome_runs(keys: pa.ChunkedArray) -> tuple[pa.Array, np.ndarray, np.ndarray, np.ndarray]:
@@ -171,9 +172,11 @@ class OutcomeCache:
         self._fresh: list[pa.Table] = []
         self._pending: list[dict[str, Any]] = []
         self._changed = False
-        # The listing of OUT/audio reuse was given, and the mode of each fresh clip: the
-        # snapshot's digest of OUT/audio is taken from them (file_stats).
+        # The listing of OUT/audio reuse was given, the row of it naming each kept row's
+        # file, and the mode of each fresh clip: the snapshot's digest of OUT/audio is
+        # taken from them (file_stats).
         self._listing: pa.Table | None = None
+        self._kept_listed_at = np.zeros(0, dtype=np.int64)
         self._fresh_modes: dict[str, int] = {}
 
     def reuse(self, keys: pa.Array, *, listing: pa.Table,
@@ -189,7 +192,7 @@ class OutcomeCache:
             return list(range(len(keys))), {}
         self._stored_rows = table.num_rows
         distinct, last_run, first, lengths = _outcome_runs(table.column("cache_key"))
-        intact = _intact(table, listing)
+        intact, listed_at = _intact(table, listing)
         run_intact = np.logical_and.reduceat(intact, first) if len(first) else np.zeros(0, dtype=bool)
         code = np.asarray(pc.index_in(keys, value_set=distinct).fill_null(-1), dtype=np.int64)
         run = np.where(code >= 0, last_run[np.maximum(code, 0)], -1)
@@ -197,13 +200,18 @@ class OutcomeCache:
         runs = run[reused]
         ends = np.cumsum(lengths[runs])
         kept = np.repeat(first[runs] - ends + lengths[runs], lengths[runs]) + np.arange(ends[-1] if len(ends) else 0)
-        # Every stored row kept in its order (a rebuild that only adds): no copy.
+        source_of = np.repeat(reused, lengths[runs])
+        # The kept rows in their stored order (the manifest is sorted by clip_id whatever
+        # the order its rows come in): when every stored row is kept, as in a rebuild
+        # that only adds sources, the table is handed on without a copy.
+        order = np.argsort(kept, kind="stable")
+        kept, source_of = kept[order], source_of[order]
         whole = len(kept) == table.num_rows and bool(np.all(kept == np.arange(len(kept))))
         self._kept = table if whole else table.take(pa.array(kept, pa.int64()))
+        self._kept_listed_at = listed_at if whole else listed_at[kept]
         self._changed = self._kept.num_rows != table.num_rows or self.table.has_parts
         rejected = np.asarray(self._kept.column("reject_reason").is_valid(), dtype=bool)
         rejects_at: dict[int, list[dict[str, Any]]] = {}
-        source_of = np.repeat(reused, lengths[runs])
         for position in np.flatnonzero(rejected).tolist():
             rejects_at.setdefault(int(source_of[position]), []).append(_reject_row(self._kept, position))
         builder.extend_table(self._kept.filter(pa.array(~rejected)) if rejected.any() else self._kept)
@@ -222,11 +230,13 @@ class OutcomeCache:
         clip). In Arrow: no Python work per reused clip."""
         self._flush()
         kept = self._kept if self._kept is not None else self.schema.empty_table()
-        kept = kept.filter(kept.column("reject_reason").is_null())
-        # Kept clips exist only after reuse, which was given the listing.
-        kept_modes = (self._listing.column("st_mode").take(pc.index_in(kept.column("audio_path"),
-                                                                       value_set=self._listing.column("path")))
-                      if self._listing is not None else pa.nulls(kept.num_rows, pa.int64()))
+        clips = np.asarray(kept.column("reject_reason").is_null(), dtype=bool)
+        if not clips.all():
+            kept = kept.filter(pa.array(clips))
+        # Kept clips exist only after reuse, which was given the listing and found each
+        # kept clip's file in it.
+        kept_modes = (self._listing.column("st_mode").combine_chunks().take(pa.array(self._kept_listed_at[clips]))
+                      if self._listing is not None and kept.num_rows else pa.nulls(kept.num_rows, pa.int64()))
         fresh = pa.concat_tables(self._fresh) if self._fresh else self.schema.empty_table()
         fresh = fresh.filter(fresh.column("reject_reason").is_null())
         modes = [self._fresh_modes.get(path) for path in fresh.column("audio_path").to_pylist()]
@@ -235,7 +245,7 @@ class OutcomeCache:
                                       fresh.column("audio_path").combine_chunks()]),
             **{c: pa.chunked_array([kept.column(c).combine_chunks(), fresh.column(c).combine_chunks()])
                for c in ("st_size", "st_mtime_ns", "st_ino")},
-            "st_mode": pa.chunked_array([kept_modes.combine_chunks(), pa.array(modes, pa.int64())], pa.int64()),
+            "st_mode": pa.chunked_array([kept_modes, pa.array(modes, pa.int64())], pa.int64()),
         })
 
     def add(self, key: str, rows: list[dict[str, Any]], rejects: list[dict[str, Any]],
