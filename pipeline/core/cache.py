@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.core.config import canonical_json
-from pipeline.core.fsio import atomic_output
+from pipeline.core.fsio import atomic_output, sha256_file, write_text_atomic
 
 # Parts a table may gather before a run folds them into it (TableCache.compaction_due).
 MAX_PARTS = 16
@@ -44,6 +44,9 @@ class TableCache:
     loses at most the results since the last part; :meth:`load` reads the table and
     its parts, in the order written, and :meth:`save` replaces all of them by one table.
 
+    With ``mapped``, the files are Arrow IPC (``<name>.arrow``) read by mapping them into
+    memory: a table a rebuild reuses whole costs no decoding, only a check of its bytes.
+
     Examples
     --------
     >>> import tempfile, pyarrow as pa
@@ -57,11 +60,20 @@ class TableCache:
     ['a.wav', 'b.wav']
     >>> TableCache(Path(folder), "ingest", "probes", scope="v2").load() is None
     True
+    >>> mapped = TableCache(Path(folder), "audio", "outcomes", scope="v1", mapped=True)
+    >>> mapped.save(pa.table({"path": ["a.wav"], "frames": [16000]}))
+    >>> mapped.path.name, mapped.load().to_pylist()
+    ('outcomes.arrow', [{'path': 'a.wav', 'frames': 16000}])
     >>> import shutil; shutil.rmtree(folder)
     """
 
-    def __init__(self, root: Path, namespace: str, name: str, *, scope: str, enabled: bool = True) -> None:
-        self.path = Path(root) / namespace / f"{name}.parquet"
+    def __init__(self, root: Path, namespace: str, name: str, *, scope: str, enabled: bool = True,
+                 mapped: bool = False) -> None:
+        # mapped: Arrow IPC files, memory-mapped when read, instead of Parquet: no decoding
+        # at all when the table is loaded (0.19 to 0.26 CPU s for the audio stage's 100,000
+        # outcomes in Parquet), twice the bytes on disk (73 MB against 37 MB there).
+        self.mapped = mapped
+        self.path = Path(root) / namespace / f"{name}.{'arrow' if mapped else 'parquet'}"
         self.scope = scope
         self.enabled = enabled
         # Whether the last load found parts, which a save would fold into the table, how
@@ -72,7 +84,7 @@ class TableCache:
 
     def _files(self) -> list[Path]:
         """The table, then its parts in the order they were written."""
-        parts = sorted(self.path.parent.glob(f"{self.path.stem}.part-*.parquet"))
+        parts = sorted(self.path.parent.glob(f"{self.path.stem}.part-*{self.path.suffix}"))
         return [self.path, *parts]
 
     def load(self) -> Any | None:
@@ -98,9 +110,12 @@ class TableCache:
         import pyarrow.parquet as pq
 
         try:
-            table = pq.ParquetFile(path).read()  # not read_table: see manifest.read_manifest
+            # Not read_table for Parquet: see manifest.read_manifest.
+            table = _read_mapped(path) if self.mapped else pq.ParquetFile(path).read()
         except (OSError, ValueError, TypeError):
             # Missing, or damaged (pyarrow's errors derive from these): only a miss.
+            return None
+        if table is None:  # a mapped file whose bytes are not the ones written
             return None
         meta = table.schema.metadata or {}
         if meta.get(b"loam_cache_scope") != self.scope.encode():
@@ -108,17 +123,24 @@ class TableCache:
         return table.replace_schema_metadata(None)
 
     def _write(self, path: Path, table: Any) -> None:
+        import pyarrow.feather as feather
         import pyarrow.parquet as pq
 
         table = table.replace_schema_metadata({"loam_cache_scope": self.scope})
         with atomic_output(path, durable=False) as tmp:
-            pq.write_table(table, tmp, compression="zstd")
+            if self.mapped:
+                feather.write_feather(table, tmp, compression="uncompressed")
+            else:
+                pq.write_table(table, tmp, compression="zstd")
+        if self.mapped:
+            # Written after the table: a run stopped between the two leaves a mismatch, a miss.
+            write_text_atomic(_digest_path(path), sha256_file(path) + "\n")
 
     def append(self, table: Any) -> None:
         """Write ``table`` as one more part (a run's fresh results so far)."""
         if self.enabled and table.num_rows:
             parts = len(self._files()) - 1
-            self._write(self.path.with_name(f"{self.path.stem}.part-{parts:06d}.parquet"), table)
+            self._write(self.path.with_name(f"{self.path.stem}.part-{parts:06d}{self.path.suffix}"), table)
             self.part_rows += table.num_rows
 
     def compaction_due(self, *, stored: int, used: int) -> bool:
@@ -148,3 +170,32 @@ class TableCache:
         for part in parts:
             with contextlib.suppress(OSError):
                 part.unlink()
+            with contextlib.suppress(OSError):
+                _digest_path(part).unlink()
+
+
+def _digest_path(path: Path) -> Path:
+    """Where the SHA-256 of a mapped table file is kept: ``<file>.sha256`` beside it."""
+    return path.with_name(path.name + ".sha256")
+
+
+def _read_mapped(path: Path) -> Any | None:
+    """The Arrow IPC file at ``path``, mapped into memory, when its bytes have the SHA-256
+    recorded beside it; else None.
+
+    Parquet decodes (and so checks) every page it reads; a mapped file is used as it is,
+    so a damaged byte would reach the outcomes unseen, and damaged offsets would read
+    out of bounds. Its digest (36 ms for the audio stage's 73 MB at 100,000 sources, on a
+    CPU with SHA instructions) is taken from the very mapping the table is read from.
+    """
+    import hashlib
+
+    import pyarrow as pa
+
+    expected = _digest_path(path).read_text(encoding="utf-8").strip()
+    data = pa.memory_map(str(path)).read_buffer()  # the buffer keeps the mapping open
+    if hashlib.sha256(data).hexdigest() != expected:
+        return None
+    table = pa.ipc.open_file(data).read_all()
+    table.validate(full=True)
+    return table

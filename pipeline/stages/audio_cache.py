@@ -5,9 +5,9 @@ rejects) is stored under a key holding what the outcome depends on per source: t
 source's content hash and the ingest fields copied into the rows (:func:`source_keys`);
 the audio section of the config and the stage's code version are the scope of the
 whole table, which another scope leaves unread. The outcomes of the last run are one Parquet
-table (``OUT/cache/audio/outcomes.parquet``, see ``pipeline.core.cache.TableCache``):
-one row per clip or reject, so reusing 100,000 sources reads one file and hands the
-reused clip rows to the manifest as Arrow columns. Whether each clip file is still the
+table (``OUT/cache/audio/outcomes.arrow``, see ``pipeline.core.cache.TableCache``):
+one row per clip or reject, so reusing 100,000 sources maps one file into memory and
+hands the reused clip rows to the manifest as Arrow columns, with nothing decoded. Whether each clip file is still the
 one written is settled by one listing of ``OUT/audio`` (:func:`file_listing`, one
 ``lstat`` per file) joined to the table in Arrow: no Python work per reused source.
 """
@@ -165,7 +165,7 @@ class OutcomeCache:
 
     def __init__(self, root: Path, *, section: dict[str, Any], code: str, enabled: bool) -> None:
         self.table = TableCache(root, "audio", "outcomes", scope=cache_key("audio-outcomes", section, code),
-                                enabled=enabled)
+                                enabled=enabled, mapped=True)
         self.schema = cache_schema()
         self._kept: pa.Table | None = None
         self._stored_rows = 0
