@@ -338,3 +338,31 @@ def test_a_rebuild_reuses_the_rows_of_unchanged_transcripts_and_writes_the_same_
     shutil.rmtree(tmp_path / "scratch")
     _ingest_and_text(raw, tmp_path / "scratch")
     assert _text_outputs(tmp_path / "out") == _text_outputs(tmp_path / "scratch")
+
+
+def test_per_clip_items_follow_the_clips_the_audio_stage_cut() -> None:
+    # A source kept whole has its own transcript; one cut by alignment has one item per
+    # clip that holds sentences, in clip order at the source's place; one whose
+    # transcript placed no clip has none. The rule stated row by row, for comparison.
+    from pipeline.stages.text import _per_clip
+
+    items = pa.table({"source_id": ["ab", "ab-x", "c", "d", "e"], "transcript": ["T ab", "T abx", "T c", "T d", "T e"],
+                      "origin": ["sidecar"] * 5, "cell": ["en"] * 5})
+    audio = pa.table({
+        "clip_id": ["ab_00002000", "ab_00000000", "ab_00004000", "ab-x", "c", "d_00000000", "f"],
+        "source_id": ["ab", "ab", "ab", "ab-x", "c", "d", "f"],
+        "aligned_transcript": ["Two.", "One.", None, None, None, None, None]})
+    cut = {"ab", "d"}
+    aligned: dict[str, list[tuple[str, str]]] = {}
+    for r in audio.to_pylist():
+        if r["aligned_transcript"] is not None:
+            aligned.setdefault(r["source_id"], []).append((r["clip_id"], r["aligned_transcript"]))
+    expected = []
+    for item in items.to_pylist():
+        if item["source_id"] not in cut:
+            expected.append({**item, "clip_id": item["source_id"]})
+        else:
+            expected.extend({**item, "clip_id": c, "transcript": t} for c, t in sorted(aligned.get(item["source_id"], [])))
+    got = _per_clip(items, audio).to_pylist()
+    assert got == expected
+    assert [r["clip_id"] for r in got] == ["ab_00000000", "ab_00002000", "ab-x", "c", "e"]

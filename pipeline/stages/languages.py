@@ -12,6 +12,7 @@ the number reader of :mod:`pipeline.text.numbers` (never English number words).
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, replace
 from typing import Any
 
@@ -21,12 +22,19 @@ import pyarrow as pa
 from pipeline.core.columns import counted_items, list_lengths, row_members
 from pipeline.core.config import Config, TextConfig
 from pipeline.core.errors import ParameterError
-from pipeline.stages.tags import LANGUAGE_TAG, canonical_tag, file_languages, metadata_table
+from pipeline.stages.tags import (
+    LANGUAGE_TAG,
+    canonical_tag,
+    file_languages,
+    language_cells,
+    metadata_table,
+)
 from pipeline.text.numbers import NumberReader, missing_sentence
 from pipeline.text.pronounce import Pronouncer
 from pipeline.text.rules import RulePhones
 
-__all__ = ["LANGUAGE_TAG", "LanguageTools", "Toolbox", "canonical_tag", "file_languages", "metadata_table"]
+__all__ = ["LANGUAGE_TAG", "LanguageTools", "Toolbox", "canonical_tag", "file_languages", "language_cells",
+           "metadata_table"]
 
 
 def rule_phones(cfg: TextConfig) -> RulePhones | None:
@@ -139,16 +147,16 @@ def process_in_language(source: str, transcript: str, language: str, *, toolbox:
     return outcome
 
 
-def language_summary(table: pa.Table, languages: dict[str, str], toolbox: Toolbox) -> dict[str, Any]:
+def language_summary(table: pa.Table, languages: Mapping[str, int], toolbox: Toolbox) -> dict[str, Any]:
     """Per language: transcripts, accepted, word tokens, OOV tokens and rate, backend, engine
-    (``table``: the accepted rows; ``languages``: each transcript's language cell)."""
+    (``table``: the accepted rows; ``languages``: how many transcripts have each language cell)."""
     from collections import Counter
 
     from pipeline.text.guard import oov_rate
 
     # Each distinct cell canonicalised once, not once per transcript.
     transcripts: Counter[str] = Counter()
-    for cell, count in Counter(languages.values()).items():
+    for cell, count in languages.items():
         transcripts[canonical_tag(cell) if LANGUAGE_TAG.match(cell) else cell] += count
     words = table.column("words").combine_chunks()
     rows, flat = counted_items(words)

@@ -13,6 +13,9 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
+import pyarrow as pa
+import pyarrow.compute as pc
+
 from pipeline.core.stage import StageContext, reject
 from pipeline.stages.decisions import (
     TEXT_KINDS,
@@ -55,14 +58,16 @@ def text_digest(ctx: StageContext) -> bytes:
     return json.dumps([asdict(d) for d in (*verdicts, *words)], sort_keys=True, ensure_ascii=False).encode()
 
 
-def plan_text(ctx: StageContext, ingest: Sequence[Mapping[str, Any]]) -> TextPlan:
-    """Match the text stage's decisions against the ingest rows: what it will apply, and
-    (counted in its tally) what it cannot apply. The split stage counts the lines nobody
-    could read and those a later line superseded."""
+def plan_text(ctx: StageContext, ingest: Sequence[Mapping[str, Any]] | pa.Table) -> TextPlan:
+    """Match the text stage's decisions against the ingest rows (dicts, or a table read
+    only when there are clip verdicts): what it will apply, and (counted in its tally)
+    what it cannot apply. The split stage counts the lines nobody could read and those a
+    later line superseded."""
     verdicts, words = text_decisions(ctx)
     plan = TextPlan(path=shown_path(ctx, decisions_file(ctx)))
-    by_id = {r["source_id"]: r for r in ingest}
-    by_path = {r["source_path"]: r["source_id"] for r in ingest}
+    rows = (ingest.to_pylist() if isinstance(ingest, pa.Table) else ingest) if verdicts else []
+    by_id = {r["source_id"]: r for r in rows}
+    by_path = {r["source_path"]: r["source_id"] for r in rows}
     for d in verdicts:
         row = by_id.get(d.clip_id)
         if row is None:
@@ -83,13 +88,26 @@ def plan_text(ctx: StageContext, ingest: Sequence[Mapping[str, Any]]) -> TextPla
     return plan
 
 
-def review_items(ingest: Iterable[Mapping[str, Any]], plan: TextPlan) -> tuple[list[dict[str, Any]],
-                                                                                list[dict[str, Any]]]:
+def review_items(ingest: pa.Table, plan: TextPlan) -> tuple[pa.Table, list[dict[str, Any]]]:
     """The transcripts to process (fixed ones replacing the found ones; ``origin`` is where
     the transcript now comes from, ``review`` for those, while ``transcript_origin`` stays
-    ingest's, which says where the file's language cell is) and the ``review_transcript_wrong`` rejects, each sorted by source id."""
+    ingest's, which says where the file's language cell is) as a table of ``ingest``'s
+    columns and ``origin``, and the ``review_transcript_wrong`` rejects, each sorted by
+    source id. Without a verdict to apply, all in Arrow."""
+    ingest = ingest.sort_by("source_id")
+    schema = ingest.schema.append(pa.field("origin", pa.string()))
+    if not plan.wrong and not plan.fixes:
+        items = ingest.filter(pc.is_valid(ingest.column("transcript")))
+        return items.append_column("origin", items.column("transcript_origin").cast(pa.string())), []
+    listed, rejects = _reviewed_items(ingest.to_pylist(), plan)
+    return pa.Table.from_pylist(listed, schema=schema), rejects
+
+
+def _reviewed_items(ingest: Iterable[Mapping[str, Any]], plan: TextPlan) -> tuple[list[dict[str, Any]],
+                                                                                    list[dict[str, Any]]]:
+    """:func:`review_items` row by row, for the verdicts to apply."""
     items, rejects = [], []
-    for r in sorted(ingest, key=lambda r: r["source_id"]):
+    for r in ingest:
         sid = r["source_id"]
         if sid in plan.wrong:
             d = plan.wrong[sid]

@@ -16,7 +16,7 @@ from typing import Any
 from pipeline.core.config import Config
 from pipeline.core.stage import StageContext
 
-__all__ = ["LANGUAGE_TAG", "canonical_tag", "file_languages", "metadata_table"]
+__all__ = ["LANGUAGE_TAG", "canonical_tag", "file_languages", "language_cells", "metadata_table"]
 
 # A language cell that is a BCP-47 tag in form (any case).
 LANGUAGE_TAG = re.compile(r"^[A-Za-z]{2,3}(-[A-Za-z0-9]{1,8})*$")
@@ -72,14 +72,32 @@ def _language_cells(path: Path, column: str, *, encoding: str) -> dict[int, str]
 
 def file_languages(ctx: StageContext, rows: list[dict[str, Any]]) -> dict[str, str]:
     """source_id -> the raw language cell or ``text.language`` (not yet checked)."""
+    import pyarrow as pa
+
+    table = pa.table({"metadata_line": pa.array([r.get("metadata_line") for r in rows], pa.int64()),
+                      "transcript_origin": pa.array([r.get("transcript_origin") for r in rows], pa.string())})
+    return dict(zip([r["source_id"] for r in rows], language_cells(ctx, table).to_pylist(), strict=True))
+
+
+def language_cells(ctx: StageContext, rows: Any) -> Any:
+    """Per row of the table ``rows`` (its ``metadata_line`` and ``transcript_origin``): the
+    raw language cell of the metadata table row it took its transcript from, or
+    ``text.language`` for none or an empty one (not yet checked); a pyarrow string array.
+    Columnar: a rebuild reading 33,000 transcripts looks none of them up in Python."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
     default = ctx.config.text.language
     table = metadata_table(ctx.config, ctx.raw)
     cells: dict[int, str] = {}
     if table is not None:
         cells = _language_cells(table, ctx.config.ingest.metadata_language_column,
                                 encoding=ctx.config.ingest.transcript_encoding)
-    out = {}
-    for row in rows:
-        cell = cells.get(row["metadata_line"], "") if row.get("transcript_origin") == "metadata" else ""
-        out[row["source_id"]] = cell or default
-    return out
+    if not cells:
+        return pa.array([default] * rows.num_rows, pa.string())
+    lines = rows.column("metadata_line").combine_chunks().cast(pa.int64())
+    at = pc.index_in(lines, value_set=pa.array(list(cells), pa.int64()))
+    cell = pa.array(list(cells.values()), pa.string()).take(at)
+    from_metadata = pc.fill_null(pc.equal(rows.column("transcript_origin").combine_chunks(), "metadata"), False)
+    cell = pc.fill_null(pc.if_else(from_metadata, cell, None), "")
+    return pc.if_else(pc.equal(cell, ""), default, cell)

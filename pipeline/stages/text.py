@@ -58,7 +58,7 @@ from pipeline.stages.languages import (
     LANGUAGE_TAG,
     Toolbox,
     canonical_tag,
-    file_languages,
+    language_cells,
     language_metadata,
     language_summary,
     metadata_table,
@@ -225,34 +225,35 @@ def process_transcript(source: str, transcript: str, *, pronouncer: Pronouncer, 
 def run(ctx: StageContext) -> StageResult:
     cfg = ctx.config.text
     cache_dir = ctx.cache_dir if ctx.use_cache else None
-    ingest = _ingest_rows(ctx)
+    ingest = _ingest_table(ctx)
     review = plan_text(ctx, ingest)
     toolbox = Toolbox(ctx.config, make_pronouncer=lambda text_cfg: build_pronouncer(
         replace(ctx.config, text=text_cfg), cache_dir=cache_dir, review=review), make_options=normalise_options)
     pronouncer = toolbox.get(cfg.language).pronouncer  # ParameterError: no engine for text.language
-    # Fixed transcripts replace the found ones; those marked wrong become rejects.
+    # Fixed transcripts replace the found ones; those marked wrong become rejects. The
+    # items stay columns: Python sees only those whose rows are not reused.
     items, rejects = review_items(ingest, review)
-    languages = file_languages(ctx, items)
+    items = items.append_column("cell", language_cells(ctx, items))
+    languages = _counts(items.column("cell").combine_chunks())  # transcripts per language cell
     if "audio" in ctx.inputs:  # the runner always gives it; a caller of run() alone may not
         items = _per_clip(items, ctx.inputs["audio"])
     else:
-        items = [{**item, "clip_id": item["source_id"]} for item in items]
-    cells = [languages[item["source_id"]] for item in items]
-    for cell in sorted(set(cells)):
+        items = items.append_column("clip_id", items.column("source_id"))
+    for cell in sorted(languages):
         # Every language gets its tools, as if each transcript were processed; one with
         # none has its transcripts rejected below, naming the reason.
         with contextlib.suppress(ParameterError):
             toolbox.get(cell)
     key = rows_key(ctx, cache_dir=cache_dir)
-    reused, previous = reusable_rows(ctx.out, items, cells, key=key) if cache_dir else (None, None)
+    reused, previous = reusable_rows(ctx.out, items, key=key) if cache_dir else (None, None)
 
     rows: list[dict[str, Any]] = []
     oov_counts: Counter[str] = Counter()
     oov_phones: dict[str, tuple[str, tuple[tuple[str, ...], str]]] = {}  # word -> (first clip, listing)
-    todo = range(len(items)) if reused is None else np.flatnonzero(~reused).tolist()
-    picked = [items[k] for k in todo]
+    todo = np.arange(items.num_rows) if reused is None else np.flatnonzero(~reused)
+    picked = items.take(pa.array(todo, pa.int64())).to_pylist()
     for item in picked:
-        outcome = process_in_language(item["source_path"], item["transcript"], languages[item["source_id"]],
+        outcome = process_in_language(item["source_path"], item["transcript"], item["cell"],
                                       toolbox=toolbox, cfg=cfg)
         pronouncer = toolbox.tools[outcome.language].pronouncer if outcome.language in toolbox.tools else pronouncer
         for word, pron in outcome.oov:
@@ -283,7 +284,7 @@ def run(ctx: StageContext) -> StageResult:
                      len(pronouncer.cache_misses), len(pronouncer.cache_hits))
     _write_predicted(ctx.out / PREDICTED_LEXICON, oov_counts, {w: v[1] for w, v in oov_phones.items()},
                      backend=cfg.backend)
-    summary = _summary(table, rejects, len(items) + len(review.wrong), cfg)
+    summary = _summary(table, rejects, items.num_rows + len(review.wrong), cfg)
     summary.update(language_summary(table, languages, toolbox))
     warn_wrong_language(summary["languages"], ctx.log)
     summary["review"] = review.tally.summary(review.path)
@@ -302,16 +303,15 @@ def run(ctx: StageContext) -> StageResult:
     )
 
 
-def _ingest_rows(ctx: StageContext) -> list[dict[str, Any]]:
-    """The ingest rows the stage reads: every one when a review verdict may name a clip
-    (a fixed transcript can give one to a file found without), else only the transcribed
-    ones, the others left in Arrow (at 100,000 sources, two thirds untranscribed, they were
-    most of a rebuild's per-row cost here)."""
+def _ingest_table(ctx: StageContext) -> pa.Table:
+    """The ingest columns the stage reads: of every row when a review verdict may name a
+    clip (a fixed transcript can give one to a file found without), else of the
+    transcribed ones (at 100,000 sources, two thirds untranscribed)."""
     table = ctx.inputs["ingest"].select(["source_id", "source_path", "sha256", "transcript", "transcript_origin",
                                          "metadata_line"])
     if not text_decisions(ctx)[0]:
         table = table.filter(pc.is_valid(table.column("transcript")))
-    return table.to_pylist()
+    return table
 
 
 def rows_key(ctx: StageContext, *, cache_dir: Path | None) -> str:
@@ -328,10 +328,9 @@ def rows_key(ctx: StageContext, *, cache_dir: Path | None) -> str:
     return hashlib.sha256(canonical_json(parts)).hexdigest()
 
 
-def reusable_rows(out: Path, items: list[dict[str, Any]], cells: list[str], *,
-                  key: str) -> tuple[np.ndarray | None, pa.Table | None]:
-    """Which ``items`` (clip_id, transcript, origin) the previous run's manifest in
-    ``out`` already holds, and those rows.
+def reusable_rows(out: Path, items: pa.Table, *, key: str) -> tuple[np.ndarray | None, pa.Table | None]:
+    """Which ``items`` (columns clip_id, transcript, origin and cell, the language cell)
+    the previous run's manifest in ``out`` already holds, and those rows.
 
     A row is reused when the manifest holds the bytes this stage last wrote (their
     SHA-256 as the runner recorded it: a copied or moved OUT still qualifies, an edited
@@ -352,21 +351,23 @@ def reusable_rows(out: Path, items: list[dict[str, Any]], cells: list[str], *,
         previous = previous.cast(arrow_schema(NAME))  # Parquet names list items "element"
     except (KeyError, ValueError, pa.ArrowException):
         return None, None
-    if not items or not previous.num_rows:
+    if not items.num_rows or not previous.num_rows:
         return None, None
-    at = pc.index_in(pa.array([i["clip_id"] for i in items], pa.string()),
-                     value_set=previous.column("clip_id").combine_chunks())
+    at = pc.index_in(items.column("clip_id").combine_chunks(), value_set=previous.column("clip_id").combine_chunks())
     found = np.asarray(pc.is_valid(at), dtype=bool)
-    index = np.asarray(at.fill_null(0), dtype=np.int64)
+    index = pa.array(np.asarray(at.fill_null(0), dtype=np.int64))
 
-    def same(column: str, wanted: list[Any]) -> np.ndarray:
-        equal = pc.equal(pa.array(wanted, pa.string()), previous.column(column).take(index))
+    def same(column: str, wanted: Any) -> np.ndarray:
+        equal = pc.equal(wanted, previous.column(column).take(index))
         return np.asarray(pc.fill_null(equal, False), dtype=bool)
 
-    tags = {c: canonical_tag(c) if LANGUAGE_TAG.match(c) else None for c in set(cells)}
-    reused = (found & same("transcript", [i["transcript"] for i in items])
-              & same("transcript_origin", [i["origin"] for i in items]) & same("language", [tags[c] for c in cells]))
-    return reused, previous.take(pa.array(index[reused]))
+    cells = items.column("cell").combine_chunks()
+    distinct = pc.unique(cells)
+    tags = pa.array([canonical_tag(c) if LANGUAGE_TAG.match(c) else None for c in distinct.to_pylist()], pa.string())
+    tag = tags.take(pc.index_in(cells, value_set=distinct))
+    reused = (found & same("transcript", items.column("transcript")) & same("transcript_origin", items.column("origin"))
+              & same("language", tag))
+    return reused, previous.take(pa.array(np.asarray(index)[reused]))
 
 
 def _reused_oov(previous: pa.Table, counts: Counter[str], listed: dict[str, tuple[str, Any]],
@@ -392,27 +393,30 @@ def _reused_oov(previous: pa.Table, counts: Counter[str], listed: dict[str, tupl
             listed[word] = (clip, _listed(word, pronouncer.pronounce([word])[0], pronouncer))
 
 
-def _per_clip(items: list[dict[str, Any]], audio: pa.Table) -> list[dict[str, Any]]:
-    """The transcripts to pronounce, one per clip: a source's own (its clip has the source's
-    id) or, for a long source cut by aligning its transcript, each transcribed clip's
-    sentences (pipeline.stages.alignment); a long source whose transcript placed no clip
-    has none. Columnar until the few cut sources: a rebuild's cost per existing clip stays
-    in Arrow."""
-    table = audio.select(["clip_id", "source_id", "aligned_transcript"])
-    sources = table.column("source_id")
-    whole = pc.equal(table.column("clip_id"), sources)
-    cut = set(pc.unique(sources).to_pylist()) - set(pc.unique(pc.filter(sources, whole)).to_pylist())
-    aligned: dict[str, list[tuple[str, str]]] = {}
-    if cut:
-        for r in table.filter(pc.is_valid(table.column("aligned_transcript"))).to_pylist():
-            aligned.setdefault(r["source_id"], []).append((r["clip_id"], r["aligned_transcript"]))
-    out = []
-    for item in items:
-        if item["source_id"] not in cut:
-            out.append({**item, "clip_id": item["source_id"]})
-        else:
-            out.extend({**item, "clip_id": c, "transcript": t} for c, t in sorted(aligned.get(item["source_id"], [])))
-    return out
+def _per_clip(items: pa.Table, audio: pa.Table) -> pa.Table:
+    """The transcripts to pronounce, one per clip (a ``clip_id`` column added): a source's
+    own (its clip has the source's id) or, for a long source cut by aligning its
+    transcript, each transcribed clip's sentences (pipeline.stages.alignment), in clip
+    order at the source's place; a long source whose transcript placed no clip has none.
+    Columnar: a rebuild's cost per existing clip stays in Arrow."""
+    table = audio.select(["clip_id", "source_id", "aligned_transcript"]).combine_chunks()
+    sources = table.column("source_id").combine_chunks()
+    whole = pc.filter(sources, pc.equal(table.column("clip_id").combine_chunks(), sources))
+    cut = pc.unique(pc.filter(sources, pc.invert(pc.is_in(sources, value_set=whole))))
+    ids = items.column("source_id").combine_chunks()
+    own = items.filter(pc.invert(pc.is_in(ids, value_set=cut)))
+    own = own.append_column("clip_id", own.column("source_id"))
+    if not len(cut):
+        return own
+    placed = table.filter(pc.and_(pc.is_in(sources, value_set=cut), pc.is_valid(table.column("aligned_transcript"))))
+    at = pc.index_in(placed.column("source_id").combine_chunks(), value_set=ids)
+    placed = placed.filter(pc.is_valid(at))
+    clips = items.take(pc.drop_null(at)).set_column(items.schema.get_field_index("transcript"), "transcript",
+                                                    placed.column("aligned_transcript"))
+    clips = clips.append_column("clip_id", placed.column("clip_id"))
+    # The items are in source_id order; each source keeps its place, its clips in clip order.
+    return pa.concat_tables([own, clips.cast(own.schema)]).sort_by([("source_id", "ascending"),
+                                                                   ("clip_id", "ascending")])
 
 
 def _listed(word: str, pron: Pronunciation | None, pronouncer: Pronouncer) -> tuple[tuple[str, ...], str]:
