@@ -4,12 +4,14 @@ Each source's outcome (its clip rows, the stat of each clip file it wrote, and i
 rejects) is stored under a key holding what the outcome depends on per source: the
 source's content hash and the ingest fields copied into the rows (:func:`source_keys`);
 the audio section of the config and the stage's code version are the scope of the
-whole table, which another scope leaves unread. The outcomes of the last run are one Parquet
-table (``OUT/cache/audio/outcomes.arrow``, see ``pipeline.core.cache.TableCache``):
-one row per clip or reject, so reusing 100,000 sources maps one file into memory and
-hands the reused clip rows to the manifest as Arrow columns, with nothing decoded. Whether each clip file is still the
-one written is settled by one listing of ``OUT/audio`` (:func:`file_listing`, one
-``lstat`` per file) joined to the table in Arrow: no Python work per reused source.
+whole table, which another scope leaves unread. The outcomes of the last run are one
+Arrow IPC table (``OUT/cache/audio/outcomes.arrow``, see
+``pipeline.core.cache.TableCache``): one row per clip or reject, so reusing 100,000
+sources maps one file into memory (checked against its SHA-256) and hands the reused
+clip rows to the manifest as Arrow columns, with nothing decoded. Whether each clip
+file is still the one written is settled by one listing of ``OUT/audio``
+(:func:`file_listing`, one ``lstat`` per file) joined to the table in Arrow: no Python
+work per reused source.
 """
 
 from __future__ import annotations

@@ -239,7 +239,7 @@ def run(ctx: StageContext) -> StageResult:
         items = _per_clip(items, ctx.inputs["audio"])
     else:
         items = items.append_column("clip_id", items.column("source_id"))
-    for cell in sorted(languages):
+    for cell in sorted(pc.unique(items.column("cell").combine_chunks()).to_pylist()):
         # Every language gets its tools, as if each transcript were processed; one with
         # none has its transcripts rejected below, naming the reason.
         with contextlib.suppress(ParameterError):
