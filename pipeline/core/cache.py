@@ -61,9 +61,13 @@ class TableCache:
     >>> TableCache(Path(folder), "ingest", "probes", scope="v2").load() is None
     True
     >>> mapped = TableCache(Path(folder), "audio", "outcomes", scope="v1", mapped=True)
+    >>> (Path(folder) / "audio").mkdir()
+    >>> _ = (Path(folder) / "audio" / "outcomes.parquet").write_bytes(b"an older layout")
     >>> mapped.save(pa.table({"path": ["a.wav"], "frames": [16000]}))
     >>> mapped.path.name, mapped.load().to_pylist()
     ('outcomes.arrow', [{'path': 'a.wav', 'frames': 16000}])
+    >>> sorted(p.name for p in (Path(folder) / "audio").iterdir())
+    ['outcomes.arrow', 'outcomes.arrow.sha256']
     >>> import shutil; shutil.rmtree(folder)
     """
 
@@ -166,6 +170,9 @@ class TableCache:
         if not self.enabled:
             return
         parts = self._files()[1:]
+        if self.mapped:  # the Parquet table and parts an older Loam left: never read again
+            parts += sorted(self.path.parent.glob(f"{self.path.stem}.parquet"))
+            parts += sorted(self.path.parent.glob(f"{self.path.stem}.part-*.parquet"))
         self._write(self.path, table)
         for part in parts:
             with contextlib.suppress(OSError):
