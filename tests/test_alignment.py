@@ -145,6 +145,30 @@ def test_mel_bank_matches_librosa(rate: int, n_fft: int) -> None:
     np.testing.assert_allclose(ours, theirs, rtol=1e-5, atol=1e-7)
 
 
+@pytest.mark.parametrize(("rate", "hop_ms"), [(16000, 20), (22050, 10)])
+def test_mfcc_matches_a_scipy_reference(rate: int, hop_ms: int) -> None:
+    # Reference: the same MFCCs assembled from scipy and librosa: scipy.signal.get_window's
+    # periodic Hann, scipy.fft.rfft zero-padded to n_fft, librosa.filters.mel's bank (as
+    # above) and scipy.fft.dct(type=2, norm="ortho") of the log mel energies, first 13.
+    import librosa
+    import scipy.fft
+    import scipy.signal
+
+    from pipeline.signal.features import POWER_FLOOR, FeatureFrames, mfcc
+
+    rng = np.random.default_rng(7)
+    t = np.arange(rate) / rate
+    x = (0.1 * rng.standard_normal(rate) + 0.3 * np.sin(2 * np.pi * 440 * t) * t).astype(np.float32)
+    f = FeatureFrames(sample_rate=rate, hop_ms=hop_ms)
+    frames = np.lib.stride_tricks.sliding_window_view(x.astype(np.float64), f.window)[:: f.hop][: f.count(x.size)]
+    window = scipy.signal.get_window("hann", f.window)
+    power = np.abs(scipy.fft.rfft(frames * window, n=f.n_fft, axis=1)) ** 2
+    bank = librosa.filters.mel(sr=rate, n_fft=f.n_fft, n_mels=40, fmin=0.0, fmax=min(7600.0, rate / 2 - 200),
+                               dtype=np.float64)
+    theirs = scipy.fft.dct(np.log(np.maximum(power @ bank.T, POWER_FLOOR)), type=2, norm="ortho", axis=1)[:, :13]
+    np.testing.assert_allclose(mfcc(x, sample_rate=rate, hop_ms=hop_ms), theirs, rtol=1e-5, atol=1e-4)
+
+
 def test_damaged_region_goes_to_untranscribed_clips(readings, tmp_path) -> None:
     texts, reading = readings[0]
     transcript = texts[:10] + texts[11:18] + [EXTRA] + texts[18:]

@@ -21,6 +21,10 @@ DEFAULT_DROP_DB = 50.0
 DEFAULT_SMOOTHING_HZ = 300.0
 _WELCH_SEGMENT_S = 0.032
 _WELCH_BLOCK_SEGMENTS = 256
+# Samples per FFT call (float64 temporaries of 256 KiB, which stay in cache: 256
+# segments of 512 at once took three times as long); a power of two, so a block of
+# whole segments divides a group.
+_FFT_BLOCK_SAMPLES = 1 << 15
 
 
 def long_term_psd(samples: np.ndarray, *, sample_rate: int) -> tuple[np.ndarray, np.ndarray]:
@@ -31,8 +35,9 @@ def long_term_psd(samples: np.ndarray, *, sample_rate: int) -> tuple[np.ndarray,
     segments). Welch's usual half overlap only lowers the variance of each bin, and a
     long-term spectrum averages hundreds of segments (312 in ten seconds), so it would
     double the cost for no visible change in a bandwidth reading. Computed
-    here in float32 blocks: scipy's float64 path took 11 times as long on a minute of
-    16 kHz audio, which alone would have cost most of the time budget of these gates.
+    here in blocks of segments with ``numpy.fft``: scipy.signal.welch took 11 times as
+    long as the blocks (then float32, with scipy.fft) on a minute of 16 kHz audio, which
+    alone would have cost most of the time budget of these gates.
     The segment length in samples is the power of two nearest to 32 ms, so PSDs of
     blocks or files at one sample rate share their frequency grid and can be averaged
     (weighted by their segment counts) before :func:`bandwidth_from_psd`.
@@ -113,26 +118,29 @@ class WelchStream:
         self._held = data.size - whole
 
     def _add(self, data: np.ndarray) -> None:
-        """Sum the power spectra of the whole segments of ``data``, a group at a time."""
-        import scipy.fft
-
+        """Sum the power spectra of the whole segments of ``data`` (whole groups but for
+        the stream's last), a block of segments at a time."""
         count = data.size // self.segment
         frames = data[: count * self.segment].reshape(count, self.segment)
-        window = periodic_hann(self.segment)
-        for start in range(0, count, _WELCH_BLOCK_SEGMENTS):
-            windowed = frames[start : start + _WELCH_BLOCK_SEGMENTS] * window
-            # The spectrum as interleaved (re, im) float32 pairs, squared in place: no
+        # numpy.fft in float64 (its float32 transform gave exactly the float64 result
+        # rounded to float32, and took longer than the float64 one): the segments are
+        # windowed in float64, a block at a time. The blocks start at fixed places in each
+        # group, so the sums meet the same numbers in the same order however the stream
+        # was fed.
+        block = min(_WELCH_BLOCK_SEGMENTS, max(1, _FFT_BLOCK_SAMPLES // self.segment))
+        window = periodic_hann(self.segment).astype(np.float64)
+        for start in range(0, count, block):
+            windowed = frames[start : start + block] * window
+            # The spectrum as interleaved (re, im) pairs, squared in place: no
             # complex-magnitude temporaries.
-            pairs = scipy.fft.rfft(windowed, axis=1, overwrite_x=True).view(np.float32)
+            pairs = np.fft.rfft(windowed, axis=1).view(np.float64)
             np.square(pairs, out=pairs)
-            self._power += pairs.sum(axis=0, dtype=np.float64).reshape(-1, 2).sum(axis=1)
+            self._power += pairs.sum(axis=0).reshape(-1, 2).sum(axis=1)
         self._count += count
 
     def result(self) -> tuple[np.ndarray, np.ndarray]:
         """Frequencies (Hz) and PSD of everything pushed, as :func:`long_term_psd` returns
         them; both empty when the stream is shorter than one segment. Ends the stream."""
-        import scipy.fft
-
         if self._held >= self.segment:
             self._add(np.concatenate(self._pending))
         self._pending, self._held = [], 0
@@ -144,7 +152,7 @@ class WelchStream:
         power *= 2.0 / (self._count * self.sample_rate * float(np.sum(window.astype(np.float64) ** 2)))
         power[0] /= 2.0
         power[-1] /= 2.0
-        return scipy.fft.rfftfreq(self.segment, d=1.0 / self.sample_rate), power
+        return np.fft.rfftfreq(self.segment, d=1.0 / self.sample_rate), power
 
 
 def bandwidth_from_psd(

@@ -4,11 +4,13 @@ Mel-frequency cepstral coefficients (Davis and Mermelstein, 1980) with the mel f
 bank ``librosa.filters.mel`` builds by default (Slaney's mel scale, area-normalised
 triangles; rebuilt here in numpy, since importing librosa costs about 90 MB in every
 worker, and checked against librosa by tests/test_alignment.py), the
-power spectrum from ``scipy.fft`` and the type-II orthonormal DCT, computed frame by
-frame without centring, so a long recording can be done in blocks whose features join
-exactly. No number goes through a BLAS product (the filter bank is applied filter by
-filter with ``np.einsum(optimize=False)``), so the features do not depend on the BLAS
-library's threads or kernel. Mean and variance normalisation per coefficient (over the
+power spectrum from ``numpy.fft`` (in float64) and the first 13 coefficients of the
+type-II orthonormal DCT (as ``scipy.fft.dct(type=2, norm="ortho")``, checked against it
+by the same tests, taken as sums against a cosine table: importing scipy.fft costs a
+worker about 0.16 CPU s), computed frame by frame without centring, so a long recording
+can be done in blocks whose features join exactly. No number goes through a BLAS product
+(the filter bank and the DCT are applied with ``np.einsum(optimize=False)``), so the
+features do not depend on the BLAS library's threads or kernel. Mean and variance normalisation per coefficient (over the
 whole recording) removes the level, channel and voice differences that would otherwise
 dominate a distance between a synthetic and a real recording.
 """
@@ -104,6 +106,19 @@ def _filters(sample_rate: int, n_fft: int) -> tuple[tuple[int, int, np.ndarray],
     return tuple(out)
 
 
+@functools.cache
+def _dct_table(n_in: int, n_out: int) -> np.ndarray:
+    """The type-II orthonormal DCT's first ``n_out`` basis vectors over ``n_in`` inputs,
+    as columns: out[k] = sum over n of x[n] * table[n, k] (``scipy.fft.dct`` with
+    ``type=2, norm="ortho"``)."""
+    n = np.arange(n_in)[:, None]
+    k = np.arange(n_out)[None, :]
+    table = np.cos(np.pi * k * (2 * n + 1) / (2 * n_in)) * np.sqrt(2.0 / n_in)
+    table[:, 0] = np.sqrt(1.0 / n_in)
+    table.flags.writeable = False
+    return table
+
+
 def mfcc(samples: np.ndarray, *, sample_rate: int, hop_ms: int = 20) -> np.ndarray:
     """MFCCs of every whole frame of ``samples`` (frame t starts at sample t * hop).
 
@@ -127,21 +142,27 @@ def mfcc(samples: np.ndarray, *, sample_rate: int, hop_ms: int = 20) -> np.ndarr
     >>> mfcc(tone, sample_rate=16000).shape
     (49, 13)
     """
-    import scipy.fft
-
     x = mono_float(samples)
     frames = FeatureFrames(sample_rate=sample_rate, hop_ms=hop_ms)
     count = frames.count(len(x))
     if count == 0:
         return np.zeros((0, N_MFCC), dtype=np.float32)
     view = np.lib.stride_tricks.sliding_window_view(x, frames.window)[::frames.hop][:count]
-    spectrum = scipy.fft.rfft(view * periodic_hann(frames.window), n=frames.n_fft, axis=1)
-    power = spectrum.real.astype(np.float64) ** 2 + spectrum.imag.astype(np.float64) ** 2
+    # Windowed in float64: numpy.fft's float64 transform is faster than its float32 one
+    # (which gave exactly the float64 result rounded), and the power is summed in float64.
+    window = periodic_hann(frames.window).astype(np.float64)
+    spectrum = np.fft.rfft(view * window, n=frames.n_fft, axis=1)
+    power = spectrum.real**2 + spectrum.imag**2
     mel = np.empty((count, N_MELS), dtype=np.float64)
     for m, (lo, hi, weights) in enumerate(_filters(sample_rate, frames.n_fft)):
         mel[:, m] = np.einsum("fb,b->f", power[:, lo:hi], weights, optimize=False)
     log_mel = np.log(np.maximum(mel, POWER_FLOOR))
-    return scipy.fft.dct(log_mel, type=2, norm="ortho", axis=1)[:, :N_MFCC].astype(np.float32)
+    # The DCT a coefficient at a time, like the filter bank: each frame's sums the same
+    # whatever the block's length.
+    cepstrum = np.empty((count, N_MFCC), dtype=np.float32)
+    for k, basis in enumerate(_dct_table(N_MELS, N_MFCC).T):
+        cepstrum[:, k] = np.einsum("fm,m->f", log_mel, basis, optimize=False)
+    return cepstrum
 
 
 def normalise(features: np.ndarray) -> np.ndarray:

@@ -69,9 +69,13 @@ def frame_length(*, sample_rate: int, frame_ms: int) -> int:
     return sample_rate * frame_ms // 1000
 
 
+# Frames per block of the spectral flatness's FFT (its float64 temporaries fit in cache).
+_FLATNESS_BLOCK_FRAMES = 128
+
+
 @functools.cache
-def _hann32(length: int) -> np.ndarray:
-    return np.hanning(length).astype(np.float32)
+def _hann64(length: int) -> np.ndarray:
+    return np.hanning(length)
 
 
 def spectral_flatness(frames: np.ndarray) -> np.ndarray:
@@ -91,18 +95,22 @@ def spectral_flatness(frames: np.ndarray) -> np.ndarray:
     >>> bool(spectral_flatness(rng.standard_normal((1, 480)))[0] > 0.45)
     True
     """
-    # float32 spectra (sums in float64): the ratio moves by about 1e-6, well inside the
-    # margin of the 0.45 threshold, at 60 % of the float64 cost.
-    # scipy.fft rather than numpy.fft: it transforms many short rows about three times
-    # faster, and the quality gates import it anyway.
-    import scipy.fft
-
     frames = np.atleast_2d(np.asarray(frames, dtype=np.float32))
-    # The spectrum as interleaved (re, im) float32 pairs, squared in place, then each
-    # bin's pair added: re**2 + im**2 without the complex parts' temporaries.
-    pairs = scipy.fft.rfft(frames * _hann32(frames.shape[1]), axis=1, overwrite_x=True).view(np.float32)
-    np.square(pairs, out=pairs)
-    power = pairs[:, 2::2] + pairs[:, 3::2]  # bins 1 and up: DC left out
+    window = _hann64(frames.shape[1])
+    # numpy.fft in float64 (its float32 transform gave exactly the float64 result
+    # rounded to float32, and took longer than the float64 one): frames are windowed in
+    # float64 a block at a time, the float64 temporaries staying in cache, and each
+    # bin's power re**2 + im**2 is rounded to float32, whose logarithm costs a tenth of
+    # float64's. On six minutes of the bench speech the ratio stays within 2e-6 of an
+    # all-float64 computation (float32 spectra from scipy.fft were off by up to 0.03 on
+    # frames whose weakest bins fell below their rounding error).
+    power = np.empty((len(frames), frames.shape[1] // 2), dtype=np.float32)  # bins 1 and up: no DC
+    for start in range(0, len(frames), _FLATNESS_BLOCK_FRAMES):
+        # The spectrum as interleaved (re, im) pairs, squared in place, then each bin's
+        # pair added: no complex-magnitude temporaries.
+        pairs = np.fft.rfft(frames[start : start + _FLATNESS_BLOCK_FRAMES] * window, axis=1).view(np.float64)
+        np.square(pairs, out=pairs)
+        np.add(pairs[:, 2::2], pairs[:, 3::2], out=power[start : start + _FLATNESS_BLOCK_FRAMES])
     mean = power.mean(axis=1, dtype=np.float64)
     out = np.zeros(len(frames))
     live = mean > 0

@@ -724,7 +724,6 @@ def warm_up(cfg: AudioConfig) -> None:
     Worker processes are forked from here, so they start with all of it in memory
     instead of each paying about 3 s of imports and table building per process.
     """
-    import scipy.fft  # noqa: F401  (the VAD's noise veto and the quality gates)
     import soundfile  # noqa: F401
     import soxr  # noqa: F401
     import webrtcvad  # noqa: F401
