@@ -130,6 +130,27 @@ def test_recorded_manifest_hashes_are_the_files_and_a_replaced_file_is_checked_a
     assert "stages/audio.parquet breaks schemas/audio.schema.json" in capsys.readouterr().err
 
 
+def test_a_later_stage_gets_exactly_the_table_the_file_holds(small_raw: Path, tmp_path: Path) -> None:
+    # The runner hands a later stage the main manifest it has just written from memory,
+    # not read back from the file: it must be the table reading the file gives, schema
+    # (list item names, nullability), metadata and values alike. Reference: pyarrow's
+    # Parquet reader on the file.
+    from pipeline.core.config import load_config
+    from pipeline.core.manifest import read_manifest
+    from pipeline.core.runner import Runner
+    from pipeline.stages import STAGES
+
+    out = tmp_path / "out"
+    runner = Runner(small_raw, out, load_config(None), stages=STAGES, workers=1)
+    runner.prepare()
+    held = runner._tables
+    assert sorted(held) == sorted(STAGES[name].main_manifest for name in STAGES.order)
+    for rel, table in held.items():
+        from_file = read_manifest(out / rel)
+        assert table.schema.to_string() == from_file.schema.to_string(), rel
+        assert table.equals(from_file, check_metadata=True), rel
+
+
 def test_a_replaced_manifest_with_a_stale_record_changes_the_input_hash(
         small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     # The same rows written again (a new file, another inode): the recorded hash is not
