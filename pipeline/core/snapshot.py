@@ -19,6 +19,7 @@ from __future__ import annotations
 import contextlib
 import hashlib
 import json
+import operator
 import os
 import stat
 import sys
@@ -79,47 +80,89 @@ def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset(),
         if given and rel_folder in given:
             digest.update(given[rel_folder])
             continue
-        try:
-            with os.scandir(folder) as it:
-                entries = sorted(it, key=lambda e: e.name)
-        except OSError:
+        listed = _folder_lines(folder, rel_folder, ignored, stats)
+        if listed is None:
             digest.update(f"{rel_folder}\0unlistable\n".encode("utf-8", "surrogateescape"))
             simple = False
             continue
-        lines = []
-        subfolders = []
-        for entry in entries:
-            if not rel_folder and entry.name in ignored:
-                continue
-            rel = f"{rel_folder}{entry.name}"
-            if entry.is_dir(follow_symlinks=False):
-                lines.append(f"{rel}\0d")
-                subfolders.append((entry.path, rel + "/"))
-                continue
-            try:
-                st = entry.stat(follow_symlinks=False)
-            except OSError:
-                lines.append(f"{rel}\0gone")
-                simple = False
-                continue
-            line = f"{rel}\0{st.st_mode}\0{st.st_size}\0{st.st_mtime_ns}\0{st.st_ino}"
-            if not stat.S_ISREG(st.st_mode):
-                simple = False
-            elif stats is not None:
-                stats[rel] = (st.st_size, st.st_mtime_ns, st.st_ino)
-            if stat.S_ISLNK(st.st_mode):
-                try:
-                    target = os.stat(entry.path)
-                    line += f"\0{target.st_mode}\0{target.st_size}\0{target.st_mtime_ns}\0{target.st_ino}"
-                except OSError:
-                    line += "\0dangling"
-            lines.append(line)
+        lines, subfolders, whole = listed
+        simple = simple and whole
         digest.update(("\n".join(lines) + "\n\n").encode("utf-8", "surrogateescape"))
         # Reversed onto the stack, so the subfolders are visited in sorted order.
         stack.extend(reversed(subfolders))
     if isinstance(stats, Listing):
         stats.complete = simple
     return digest.hexdigest()
+
+
+# Folders are opened, listed by descriptor and their entries stat'ed relative to it
+# (``fstatat``): the kernel then resolves one name per file instead of the whole path.
+# RAW's 134,667 entries at 100,000 sources: 0.35 to 0.30 CPU s for the listing and stats
+# alone. Where ``scandir`` cannot take a descriptor, paths are used.
+_BY_FD = os.scandir in os.supports_fd and os.stat in os.supports_dir_fd
+_FOLDER_FLAGS = os.O_RDONLY | getattr(os, "O_DIRECTORY", 0)
+_BY_NAME = operator.attrgetter("name")
+_FILE_TYPE, _REGULAR = 0o170000, 0o100000  # stat.S_IFMT's mask and S_IFREG, inline
+
+
+def _folder_lines(folder: str, rel_folder: str, ignored: frozenset[str],
+                  stats: dict[str, tuple[int, int, int]] | None) -> tuple[list[str], list[tuple[str, str]], bool] | None:
+    """One folder's lines for :func:`tree_digest`, its subfolders (path, relative path)
+    in sorted order, and whether it held only folders and regular files; None when it
+    cannot be listed."""
+    try:
+        fd = os.open(folder, _FOLDER_FLAGS) if _BY_FD else None
+    except OSError:
+        return None
+    try:
+        try:
+            with os.scandir(folder if fd is None else fd) as it:
+                entries = sorted(it, key=_BY_NAME)
+        except OSError:
+            return None
+        return _entry_lines(entries, folder, fd, rel_folder, ignored, stats)
+    finally:
+        if fd is not None:
+            os.close(fd)
+
+
+def _entry_lines(entries: list[os.DirEntry[str]], folder: str, fd: int | None, rel_folder: str,
+                 ignored: frozenset[str], stats: dict[str, tuple[int, int, int]] | None,
+                 ) -> tuple[list[str], list[tuple[str, str]], bool]:
+    """:func:`_folder_lines` for the sorted ``entries`` of ``folder`` (open as ``fd``,
+    whose entries stat relative to it, or None)."""
+    whole = True
+    lines: list[str] = []
+    subfolders: list[tuple[str, str]] = []
+    for entry in entries:
+        name = entry.name
+        if not rel_folder and name in ignored:
+            continue
+        rel = rel_folder + name
+        if entry.is_dir(follow_symlinks=False):
+            lines.append(f"{rel}\0d")
+            subfolders.append((os.path.join(folder, name), rel + "/"))
+            continue
+        try:
+            st = entry.stat(follow_symlinks=False)
+        except OSError:
+            lines.append(f"{rel}\0gone")
+            whole = False
+            continue
+        mode = st.st_mode
+        line = f"{rel}\0{mode}\0{st.st_size}\0{st.st_mtime_ns}\0{st.st_ino}"
+        if mode & _FILE_TYPE != _REGULAR:
+            whole = False
+            if stat.S_ISLNK(mode):
+                try:
+                    target = os.stat(entry.path) if fd is None else os.stat(name, dir_fd=fd)
+                    line += f"\0{target.st_mode}\0{target.st_size}\0{target.st_mtime_ns}\0{target.st_ino}"
+                except OSError:
+                    line += "\0dangling"
+        elif stats is not None:
+            stats[rel] = (st.st_size, st.st_mtime_ns, st.st_ino)
+        lines.append(line)
+    return lines, subfolders, whole
 
 
 def _digest(value: Any) -> str:
