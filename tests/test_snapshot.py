@@ -98,6 +98,34 @@ def test_any_change_makes_a_full_run(change: str, small_raw: Path, tmp_path: Pat
         assert not (out / names.SNAPSHOT_STATE).exists()
 
 
+def test_a_rebuild_in_place_lists_raw_once_and_its_snapshot_is_a_fresh_walk(
+        small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch) -> None:
+    # The no-change check walks RAW when the command is the same; the full run it then
+    # leads to takes that listing instead of walking RAW again. Reference: a walk of
+    # RAW made after the run (nothing changed meanwhile) gives the digest recorded.
+    import soundfile as sf
+
+    from tests.conftest import speechlike
+
+    out = tmp_path / "out"
+    _run(small_raw, out, capsys)
+    sf.write(small_raw / "spk_a" / "a3.wav", speechlike(1.5, 16000, seed=9), 16000)
+    walked: list[Path] = []
+    walk = snapshot.tree_digest
+
+    def counted(root: Path, **kwargs: object) -> str:
+        walked.append(Path(root))
+        return walk(root, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(snapshot, "tree_digest", counted)
+    log = _run(small_raw, out, capsys)
+    assert NOTHING not in log and "ingest running" in log
+    assert walked.count(small_raw) == 1
+    state = snapshot.load(out)
+    assert state is not None and state["raw"] == walk(small_raw)
+    assert NOTHING in _run(small_raw, out, capsys)
+
+
 def test_a_changed_config_file_or_ledger_makes_a_full_run(small_raw: Path, tmp_path: Path,
                                                           capsys: pytest.CaptureFixture[str]) -> None:
     out = tmp_path / "out"

@@ -11,11 +11,14 @@ import json
 import sys
 import traceback
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from pipeline import __version__
 from pipeline.core.errors import LoamError, UsageError
 from pipeline.core.startup import exit_without_teardown, limit_blas_threads
+
+if TYPE_CHECKING:
+    from pipeline.core.snapshot import Listing
 
 EPILOG = """\
 exit codes: 0 done; 1 data problems stopped the run (validate: errors found);
@@ -156,9 +159,10 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def _nothing_changed(args: argparse.Namespace, invocation: str) -> bool:
+def _nothing_changed(args: argparse.Namespace, invocation: str, listing: Listing | None = None) -> bool:
     """End a ``prepare`` at once when RAW, OUT, config and code are exactly as the last
-    finished run left them (``pipeline.core.snapshot``); False means do the full run."""
+    finished run left them (``pipeline.core.snapshot``); False means do the full run.
+    ``listing`` receives RAW's listing if the check walked it."""
     from pipeline.core import snapshot
     from pipeline.core.fsio import write_text_atomic
     from pipeline.core.lock import output_lock
@@ -168,7 +172,7 @@ def _nothing_changed(args: argparse.Namespace, invocation: str) -> bool:
     if state is None:
         return False
     with output_lock(args.out):
-        if not snapshot.unchanged(state, invocation=invocation, raw=args.raw, out=args.out):
+        if not snapshot.unchanged(state, invocation=invocation, raw=args.raw, out=args.out, listing=listing):
             return False
         log, log_path = setup_logging(args.out, args.command)
         log.info("loam %s %s %s -> %s (log: %s)", __version__, args.command, args.raw, args.out, log_path)
@@ -187,13 +191,15 @@ def _cmd_prepare(args: argparse.Namespace, stages: tuple[str, ...] | None = None
     if args.out.resolve() == args.raw.resolve() or args.raw.resolve() in args.out.resolve().parents:
         raise UsageError(f"OUT {str(args.out)!r} must not be inside RAW {str(args.raw)!r}: the raw dump is never written to")
     overrides, override_flags = _overrides(args)
-    invocation = None
+    invocation: str | None = None
+    raw_listing: Listing | None = None
     if stages is None and not args.fresh and not args.no_cache and (args.config is None or args.config.is_file()):
         from pipeline.core import snapshot
 
         invocation = snapshot.invocation_digest(raw=args.raw, out=args.out, config_path=args.config,
                                                 overrides=overrides, version=__version__)
-        if _nothing_changed(args, invocation):
+        raw_listing = snapshot.Listing()
+        if _nothing_changed(args, invocation, raw_listing):
             return 0
 
     from pipeline.core import names
@@ -213,7 +219,7 @@ def _cmd_prepare(args: argparse.Namespace, stages: tuple[str, ...] | None = None
     runner = Runner(args.raw, args.out, config, stages=STAGES, workers=config.run.workers,
                     scheduler=config.run.scheduler,
                     use_cache=not args.no_cache, options={"fresh": getattr(args, "fresh", False)}, log=log,
-                    invocation=invocation)
+                    invocation=invocation, raw_listing=raw_listing)
     runner.prepare(stages)
     return 0
 

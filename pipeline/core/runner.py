@@ -127,6 +127,7 @@ class Runner:
         options: dict[str, Any] | None = None,
         log: logging.Logger | None = None,
         invocation: str | None = None,
+        raw_listing: snapshot.Listing | None = None,
     ) -> None:
         # Absolute from here on: every path handed to a worker, which may run in another
         # working folder or on another machine, must mean the same file there.
@@ -149,6 +150,9 @@ class Runner:
         self.watched: set[str] = set()
         # RAW's files as the snapshot listed them when the run began (StageContext.raw_stats).
         self.raw_stats: dict[str, tuple[int, int, int]] | None = None
+        # RAW as the no-change check (snapshot.unchanged) just listed it, if it did: the
+        # run takes it as its own listing instead of walking RAW a second time.
+        self.raw_listing = raw_listing
         # Stages finished (run or reused) in this invocation, and those under way.
         self.done: set[str] = set()
         self.running: list[str] = []
@@ -483,9 +487,11 @@ class Runner:
             # RAW is listed before any work, so a file that arrives during the run
             # makes the next run a full one.
             record_snapshot = self.invocation is not None and tuple(stages) == order
+            raw_listing = ""
             if record_snapshot:
-                self.raw_stats = snapshot.Listing()
-            raw_listing = snapshot.raw_digest(self.raw, stats=self.raw_stats) if record_snapshot else ""
+                listed = self.raw_listing
+                self.raw_stats = listed if listed is not None and listed.digest else snapshot.Listing()
+                raw_listing = self.raw_stats.digest or snapshot.raw_digest(self.raw, stats=self.raw_stats)
             snapshot.forget(self.out)
             removed = remove_stale_temporaries(self.out)
             if removed:

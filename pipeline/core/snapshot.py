@@ -43,9 +43,11 @@ class Listing(dict):  # type: ignore[type-arg]
     """RAW's regular files by '/'-separated relative path, with their ``(size, mtime_ns,
     inode)``, as :func:`tree_digest` found them; ``complete`` says whether that is all
     there was: no link, no other kind of file, no folder it could not list and no entry
-    gone while it looked (a stage may then take its listing of RAW from here)."""
+    gone while it looked (a stage may then take its listing of RAW from here).
+    ``digest`` is the walk's digest once :func:`raw_digest` has filled it."""
 
     complete = False
+    digest = ""
 
 
 def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset(),
@@ -237,7 +239,10 @@ def _files_state(paths: list[str]) -> list[list[Any]]:
 
 
 def raw_digest(raw: Path, *, stats: dict[str, tuple[int, int, int]] | None = None) -> str:
-    return tree_digest(raw, stats=stats)
+    digest = tree_digest(raw, stats=stats)
+    if isinstance(stats, Listing):
+        stats.digest = digest
+    return digest
 
 
 def capture(*, invocation: str, raw_digest: str, out: Path, watched: list[str], notes: list[str],
@@ -262,14 +267,19 @@ def load(out: Path) -> dict[str, Any] | None:
     return state if isinstance(state, dict) and state.get("format") == FORMAT else None
 
 
-def unchanged(state: dict[str, Any] | None, *, invocation: str, raw: Path, out: Path) -> bool:
-    """Whether RAW, OUT, the watched files and the invocation are as ``state`` recorded."""
+def unchanged(state: dict[str, Any] | None, *, invocation: str, raw: Path, out: Path,
+              listing: Listing | None = None) -> bool:
+    """Whether RAW, OUT, the watched files and the invocation are as ``state`` recorded.
+
+    ``listing``, when given, receives RAW's listing and digest if RAW was walked, so
+    that the full run this check may lead to need not walk it again (0.44 CPU s at
+    100,000 sources, paid twice by a rebuild in place)."""
     if state is None or state.get("invocation") != invocation:
         return False
     watched = [entry[0] for entry in state.get("watched", []) if isinstance(entry, list) and entry]
     if _files_state(watched) != state.get("watched"):
         return False
-    return (state.get("raw") == raw_digest(raw)
+    return (state.get("raw") == raw_digest(raw, stats=listing)
             and state.get("out") == tree_digest(out, ignored=OUT_IGNORED))
 
 
