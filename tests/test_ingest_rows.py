@@ -242,3 +242,23 @@ def test_sidecars_paired_in_arrow_as_one_by_one() -> None:
     python = ingest.pair_sidecars(paths, sidecars, columnar=False)
     assert arrow[:2] == python[:2] and arrow[2].tolist() == python[2].tolist()
     assert arrow[0] == ["a/x.TXT", "a/x.y.txt", None, "b.c/z.txt", "é/ü.Txt", "top.txt", "a/.h.txt"]
+
+
+def test_the_probes_follow_the_probe_code_alone(raw: Path, tmp_path: Path,
+                                                caplog: pytest.LogCaptureFixture) -> None:
+    """An edit to the stage outside the probe's reach keeps the probes (their results depend
+    on the bytes and the probe's code); an edit within it probes every file again."""
+    out = tmp_path / "out"
+    run(raw, out)
+    real = ingest.code_version
+
+    def edited(module: str) -> object:
+        return lambda stage, **kw: "edited" if stage == module else real(stage, **kw)
+
+    for module, probed in (("ingest", 0), (ingest.PROBE_MODULE, 12)):
+        caplog.clear()
+        with mock.patch.object(ingest, "code_version", edited(module)), \
+                mock.patch.object(ingest_rows, "code_version", edited(module)), \
+                caplog.at_level(logging.INFO, logger="loam"):
+            assert run(raw, out) == uncached(raw, tmp_path)
+        assert f"ingest: {probed} files probed, {12 - probed} reused from cache" in caplog.text

@@ -17,7 +17,7 @@ from pipeline.core.config import build_config
 from pipeline.signal.declared import DataExtent, mp3_length_is_exact, wav_data_extent
 from pipeline.signal.decode import BLOCK_SAMPLES, read_blocks
 from pipeline.stages import audio
-from pipeline.stages.ingest import ProbeJob, probe_file
+from pipeline.stages.ingest_probe import ProbeJob, probe_file
 from tests.conftest import speechlike
 
 SR = 16000

@@ -24,7 +24,7 @@ from pipeline.core.config import build_config
 from pipeline.core.runner import Runner
 from pipeline.stages import STAGES
 from pipeline.stages.audio import AudioJob, FileOutcome, condition_file
-from pipeline.stages.ingest import ProbeJob, probe_file
+from pipeline.stages.ingest_probe import ProbeJob, probe_file
 from tests.conftest import REPO, speechlike, tree_hash
 
 CRASHING = "spk1/take04.wav"
@@ -126,7 +126,7 @@ def test_a_file_that_crashes_the_probe_is_rejected_at_ingest_and_not_remembered(
     _write_raw(raw, files=6, seconds=1.0)
     cfg = build_config({})
     with monkeypatch.context() as patch:
-        patch.setattr("pipeline.stages.ingest.probe_file", probe_crashing_on_one_file)
+        patch.setattr("pipeline.stages.ingest_probe.probe_file", probe_crashing_on_one_file)
         Runner(raw, out, cfg, stages=STAGES, workers=2).prepare(("ingest",))
     (row,) = pq.read_table(out / "stages" / "ingest.rejects.parquet").to_pylist()
     assert row["source_path"] == CRASHING and row["reason"] == "decoder_crashed"

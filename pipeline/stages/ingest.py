@@ -27,13 +27,22 @@ import numpy as np
 from pipeline.core import names
 from pipeline.core.cache import TableCache, cache_key
 from pipeline.core.codeversion import code_version
-from pipeline.core.fsio import sha256_file, write_text_atomic
+from pipeline.core.fsio import write_text_atomic
 from pipeline.core.manifest import arrow_schema, table_from_columns
 from pipeline.core.names import stage_manifest
 from pipeline.core.parallel import map_ordered
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.core.startup import pandas_left_unloaded
-from pipeline.stages import ingest_rows
+from pipeline.stages import ingest_probe, ingest_rows
+from pipeline.stages.ingest_probe import (
+    PROBE_FIELDS,
+    STAT_FIELDS,
+    UNCACHED,
+    ProbeJob,
+    cacheable,
+    probe_schema,
+    probe_table,
+)
 from pipeline.stages.paths import check_relative_path, is_inside
 from pipeline.stages.speaker_source import SpeakerRule, path_speaker, speaker_rule
 from pipeline.stages.speakers import speaker_id
@@ -46,6 +55,8 @@ from pipeline.stages.transcripts import (
 )
 
 NAME = "ingest"
+# The module of the per-file probe, whose code version scopes the probe cache.
+PROBE_MODULE = "ingest_probe"
 # Reasons for which ingest sets aside a transcript and keeps its audio.
 TRANSCRIPT_REASONS = frozenset({"transcript_encoding", "transcript_unreadable", "empty_transcript",
                                 "conflicting_transcripts"})
@@ -64,93 +75,6 @@ def slug(text: str, *, max_chars: int = 40) -> str:
 def source_id(stem: str, sha256: str) -> str:
     """Stable source id: a readable slug plus the content hash, so renames are visible."""
     return f"{slug(stem)}-{sha256[:10]}"
-
-
-# Containers libsndfile may have been built without, by file extension.
-_EXTENSION_FORMATS = {".mp3": "MP3", ".ogg": "OGG", ".flac": "FLAC", ".opus": "OGG"}
-
-
-# Source sample rates taken as audio. Below 4 kHz no speech band is left (half the
-# 8 kHz telephone rate of ITU-T G.711); 768 kHz is the highest rate of common audio
-# converters (from memory). A damaged header outside these would make the resampler
-# produce hours of samples from seconds of data, or none at all.
-SOURCE_RATE_RANGE_HZ = (4000, 768000)
-
-
-@dataclass(frozen=True)
-class ProbeJob:
-    path: str
-    rel: str
-
-
-def probe_file(job: ProbeJob) -> dict[str, Any]:
-    """Header facts and content hash of one file, or ``{"error": (reason, sentence)}``."""
-    import soundfile as sf
-
-    try:
-        size = os.path.getsize(job.path)
-    except OSError as exc:
-        return {"error": ("unreadable", f"{job.rel}: cannot read the file ({exc.strerror})")}
-    if size == 0:
-        return {"error": ("empty", f"{job.rel}: the file is empty (0 bytes); expected audio data")}
-    container = _EXTENSION_FORMATS.get(os.path.splitext(job.rel)[1].lower())
-    if container and container not in sf.available_formats():
-        return {"error": ("unsupported_format",
-                          f"{job.rel}: this libsndfile build ({sf.__libsndfile_version__}) cannot read {container}; "
-                          "expected a build that can (libsndfile 1.1 or newer reads MP3)")}
-    try:
-        digest = sha256_file(job.path)
-        info = sf.info(job.path)
-    except OSError as exc:
-        return {"error": ("unreadable", f"{job.rel}: cannot read the file ({exc.strerror})")}
-    except (RuntimeError, sf.LibsndfileError) as exc:  # libsndfile's own errors
-        message = str(exc).replace(job.path, job.rel)
-        return {"error": ("undecodable", f"{job.rel}: not a decodable audio file ({message})")}
-    if info.frames <= 0 or info.samplerate <= 0 or info.channels <= 0:
-        return {"error": ("empty", f"{job.rel}: the audio holds no samples (frames={info.frames}); expected at least one")}
-    low, high = SOURCE_RATE_RANGE_HZ
-    if not low <= info.samplerate <= high:
-        return {"error": ("unsupported_sample_rate",
-                          f"{job.rel}: the header gives a sample rate of {info.samplerate} Hz; expected "
-                          f"{low} to {high} Hz (a damaged header, or not a recording)")}
-    cut = _truncation(job, info)
-    if cut:
-        return {"error": ("truncated", cut)}
-    return {
-        "format": info.format,
-        "subtype": info.subtype or "unknown",
-        "channels": int(info.channels),
-        "sample_rate": int(info.samplerate),
-        "num_frames": int(info.frames),
-        "duration_s": info.frames / info.samplerate,
-        "size_bytes": size,
-        "sha256": digest,
-    }
-
-
-def _truncation(job: ProbeJob, info: Any) -> str | None:
-    """A sentence when a WAV's data chunk declares more than the file holds, else None.
-
-    Only WAV needs this here: libsndfile reads its length from the file size. Other
-    containers give a length the audio stage checks against what it decodes.
-    """
-    if info.format not in ("WAV", "WAVEX"):
-        return None
-    from pipeline.signal.declared import declared_frames, wav_data_extent
-
-    try:
-        with open(job.path, "rb") as fh:
-            extent = wav_data_extent(fh)
-    except OSError:
-        return None  # the probe above read the file; a vanished file shows up later
-    if extent is None or not extent.truncated:
-        return None
-    declared = declared_frames(extent, subtype=info.subtype or "", channels=info.channels, frames_present=info.frames)
-    if declared <= info.frames:
-        return None  # less than one frame missing
-    return (f"{job.rel}: the header declares {declared} frames ({extent.declared_bytes} bytes of data) but the "
-            f"file holds {info.frames} ({extent.present_bytes} bytes); expected the whole recording "
-            "(the file was probably cut short)")
 
 
 def _storable(text: str) -> bool:
@@ -286,12 +210,6 @@ def scan_listing(listing: Any, extensions: tuple[str, ...], sidecar_extension: s
     return found, (stat[:, 0].copy(), stat[:, 1].copy(), stat[:, 2].astype(np.uint64), np.ones(len(at), dtype=bool))
 
 
-# The probe cache's columns (pipeline.core.cache.TableCache): the file's path and stat,
-# then what probe_file returned, an error as its reason and sentence.
-_PROBE_FIELDS = (("format", "string"), ("subtype", "string"), ("channels", "int64"), ("sample_rate", "int64"),
-                 ("num_frames", "int64"), ("duration_s", "float64"), ("size_bytes", "int64"), ("sha256", "string"))
-_STAT_FIELDS = (("path", "string"), ("st_size", "int64"), ("st_mtime_ns", "int64"), ("st_ino", "uint64"))
-_ERROR_FIELDS = (("error_reason", "string"), ("error_detail", "string"))
 # Fresh probes are written to the cache in parts of this many, so an interrupted run
 # keeps most of what it probed.
 _PROBE_PART_ROWS = 4096
@@ -305,42 +223,6 @@ _PROBE_BYTES_PER_WORKER = 64 * 2**20
 # 0.5 ms of a worker's time each, of which hashing their bytes is under a fifth. Without
 # it a rebuild's 1,000 new short files (61 MB) would get one worker.
 _PROBE_FILE_BYTES = 384 * 2**10
-
-
-def _probe_schema() -> Any:
-    import pyarrow as pa
-
-    return pa.schema([(name, getattr(pa, kind)()) for name, kind in (*_STAT_FIELDS, *_PROBE_FIELDS, *_ERROR_FIELDS)])
-
-
-def _probe_table(entries: list[tuple[str, tuple[Any, Any, Any], dict[str, Any]]]) -> Any:
-    """The probe cache's table of ``(path, (size, mtime_ns, inode), probe result)``
-    (a stat of Nones for a file that could not be stat'ed)."""
-    import pyarrow as pa
-
-    schema = _probe_schema()
-    columns: dict[str, list[Any]] = {f.name: [] for f in schema}
-    for rel, st, res in entries:
-        for name, value in zip(("path", "st_size", "st_mtime_ns", "st_ino"), (rel, *st), strict=True):
-            columns[name].append(value)
-        for name, _ in _PROBE_FIELDS:
-            columns[name].append(res.get(name))
-        error = res.get("error") or (None, None)
-        columns["error_reason"].append(error[0])
-        columns["error_detail"].append(error[1])
-    with pandas_left_unloaded():
-        return pa.table([pa.array(columns[f.name], f.type) for f in schema], schema=schema)
-
-
-# Failures are cached too: they depend only on the bytes, like successes. Not a crash,
-# which may be the library's fault (fixed by an upgrade), nor an unreadable file, which
-# says something about this run's machine (a permission, a worker that does not see
-# RAW): the next run must look again.
-_UNCACHED = ("decoder_crashed", "unreadable")
-
-
-def _cacheable(res: dict[str, Any]) -> bool:
-    return res.get("error", ("",))[0] not in _UNCACHED
 
 
 def _stats(root: str, paths: list[str], known: Mapping[str, tuple[int, int, int]] | None = None,
@@ -406,8 +288,9 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.nd
     import pyarrow as pa
     import pyarrow.compute as pc
 
-    # The stage's code version: any edit within its reach probes every file again.
-    code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
+    # The probe's own code version (pipeline.stages.ingest_probe): an edit within its
+    # reach probes every file again, an edit elsewhere in the stage does not.
+    code = code_version(PROBE_MODULE, cache_dir=ctx.cache_dir if ctx.use_cache else None)
     cache = TableCache(ctx.cache_dir, NAME, "probes", scope=cache_key("probe", code), enabled=ctx.use_cache)
     previous = cache.load()
     size, mtime, inode, statted = stat = stat if stat is not None else _stats(os.fspath(raw), paths, ctx.raw_stats)
@@ -421,10 +304,10 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.nd
 
     def remember(j: int, res: dict[str, Any]) -> None:
         i = todo[j]
-        if statted[i] and _cacheable(res):
+        if statted[i] and cacheable(res):
             pending.append((paths[i], stat_of(i), res))
         if len(pending) >= _PROBE_PART_ROWS:
-            cache.append(_probe_table(pending))
+            cache.append(probe_table(pending))
             pending.clear()
 
     def crashed(j: int, how: str) -> dict[str, Any]:
@@ -432,32 +315,32 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.nd
         return {"error": ("decoder_crashed", f"{rel}: the worker process probing it died ({how}), also when it "
                           "ran alone; expected a file the audio library can read without crashing")}
 
-    fresh = map_ordered(probe_file, [ProbeJob(str(raw / paths[i]), paths[i]) for i in todo],
+    fresh = map_ordered(ingest_probe.probe_file, [ProbeJob(str(raw / paths[i]), paths[i]) for i in todo],
                         workers=ctx.workers, scheduler=ctx.scheduler, desc="probe", progress=ctx.progress,
                         costs=[(int(size[i]) if statted[i] else 0) + _PROBE_FILE_BYTES for i in todo],
                         cost_per_worker=_PROBE_BYTES_PER_WORKER,
                         meanwhile=ctx.meanwhile, on_result=remember, on_crash=crashed)
     reused = np.flatnonzero(hit)
-    table = _probe_table([(paths[i], stat_of(i), res) for i, res in zip(todo, fresh, strict=True)])
+    table = probe_table([(paths[i], stat_of(i), res) for i, res in zip(todo, fresh, strict=True)])
     if previous is not None and len(reused):
         # One take in path order from the cached rows followed by the fresh ones.
         at = np.empty(len(paths), dtype=np.int64)
         at[reused] = row[reused]
         at[todo] = previous.num_rows + np.arange(len(todo))
         with pandas_left_unloaded():
-            table = pa.concat_tables([previous.cast(_probe_schema()), table]).take(pa.array(at))
+            table = pa.concat_tables([previous.cast(probe_schema()), table]).take(pa.array(at))
     if cache.compaction_due(stored=0 if previous is None else previous.num_rows, used=len(reused)):
         # The rewritten table holds this run's files only: what left RAW leaves the cache.
         with pandas_left_unloaded():
-            uncached = pc.fill_null(pc.is_in(table.column("error_reason"), value_set=pa.array(_UNCACHED)), False)
+            uncached = pc.fill_null(pc.is_in(table.column("error_reason"), value_set=pa.array(UNCACHED)), False)
         cache.save(table.filter(pc.and_(pc.is_valid(table.column("st_size")), pc.invert(uncached))))
     elif pending:
-        cache.append(_probe_table(pending))
+        cache.append(probe_table(pending))
     ctx.log.info("ingest: %d files probed, %d reused from cache", len(todo), len(paths) - len(todo))
     return table
 
 
-_SIDECAR_FIELDS = (*_STAT_FIELDS, ("text", "string"), ("reason", "string"), ("sentence", "string"),
+_SIDECAR_FIELDS = (*STAT_FIELDS, ("text", "string"), ("reason", "string"), ("sentence", "string"),
                    ("fix", "string"))
 SidecarRead = tuple[str | None, tuple[str, str, str] | None]
 
@@ -875,7 +758,7 @@ def _ingest_table(columns: dict[str, Any], probed: Any, *, reorder: bool) -> Any
 
     schema = arrow_schema(NAME)
     columns = dict(columns)
-    columns.update({name: probed.column(name).cast(schema.field(name).type) for name, _ in _PROBE_FIELDS})
+    columns.update({name: probed.column(name).cast(schema.field(name).type) for name, _ in PROBE_FIELDS})
     table = table_from_columns(NAME, columns)
     if not reorder:
         return table
