@@ -16,7 +16,7 @@ import posixpath
 import re
 import unicodedata
 from collections import defaultdict
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from itertools import chain
 from pathlib import Path
@@ -30,7 +30,8 @@ from pipeline.core.codeversion import code_version
 from pipeline.core.fsio import write_text_atomic
 from pipeline.core.manifest import arrow_schema, table_from_columns
 from pipeline.core.names import stage_manifest
-from pipeline.core.parallel import map_ordered
+from pipeline.core.parallel import batches, each_result, resolve_workers
+from pipeline.core.pool import run_alone
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.core.startup import pandas_left_unloaded
 from pipeline.stages import ingest_probe, ingest_rows
@@ -252,15 +253,17 @@ def _stats(root: str, paths: list[str], known: Mapping[str, tuple[int, int, int]
     return size, np.array(mtimes, dtype=np.int64), np.array(inodes, dtype=np.uint64), size >= 0
 
 
-def _reusable(previous: Any, paths: list[str], stat: tuple[np.ndarray, ...]) -> tuple[np.ndarray, np.ndarray]:
-    """Per path: the row of ``previous`` (the probe cache; a later row wins) holding its
-    result, and whether that row's stat is the file's now. Columnar: no Python per file."""
+def _reusable(previous: Any, paths: list[str], stat: tuple[np.ndarray, ...],
+              ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per path: the row of ``previous`` (a cache of results by path and stat; a later row
+    wins) holding its result, whether that row's stat is the file's now, and whether only
+    its inode differs (a moved or copied RAW). Columnar: no Python per file."""
     import pyarrow as pa
     import pyarrow.compute as pc
 
     size, mtime, inode, statted = stat
     if previous is None or not previous.num_rows or not paths:
-        return np.zeros(len(paths), dtype=np.int64), np.zeros(len(paths), dtype=bool)
+        return np.zeros(len(paths), dtype=np.int64), np.zeros(len(paths), dtype=bool), np.zeros(len(paths), dtype=bool)
     # index_in finds a value's first row: look the paths up in the table reversed, so the
     # last row written for a path (a part after the table) is the one found.
     last = previous.num_rows - 1
@@ -271,19 +274,22 @@ def _reusable(previous: Any, paths: list[str], stat: tuple[np.ndarray, ...]) -> 
         row = last - np.asarray(found.fill_null(last + 1), dtype=np.int64)
         hit = row >= 0
         row = np.where(hit, row, 0)
-        for column, now in (("st_size", size), ("st_mtime_ns", mtime), ("st_ino", inode)):
+        for column, now in (("st_size", size), ("st_mtime_ns", mtime)):
             hit &= previous.column(column).fill_null(0).to_numpy()[row] == now
-    return row, hit & statted
+        same_inode = previous.column("st_ino").fill_null(0).to_numpy()[row] == inode
+    return row, hit & statted & same_inode, hit & statted & ~same_inode
 
 
 def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.ndarray, ...] | None = None) -> Any:
     """Probe results for ``paths`` as a table in their order (the probe cache's columns),
     reusing earlier results for files whose size, modification time and inode are
-    unchanged (hashing is most of ingest's cost).
+    unchanged (hashing is most of ingest's cost), and for files of unchanged size and
+    modification time whose bytes still hash to the cached hash (a moved or copied RAW
+    gives every file a new inode: such a file costs its hash, not its probe).
 
     The results live in one table (``OUT/cache/ingest/probes.parquet``), read once and
-    joined to this run's listing in Arrow: a file reused costs a ``stat`` and no other
-    Python work; only the new and changed files are probed, in workers.
+    joined to this run's listing in Arrow: a file reused costs no Python work of its own;
+    only the new and changed files are probed, in workers (:func:`_probe_fresh`).
     """
     import pyarrow as pa
     import pyarrow.compute as pc
@@ -294,32 +300,33 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.nd
     cache = TableCache(ctx.cache_dir, NAME, "probes", scope=cache_key("probe", code), enabled=ctx.use_cache)
     previous = cache.load()
     size, mtime, inode, statted = stat = stat if stat is not None else _stats(os.fspath(raw), paths, ctx.raw_stats)
-    row, hit = _reusable(previous, paths, stat)
+    row, hit, moved = _reusable(previous, paths, stat)
     todo = np.flatnonzero(~hit).tolist()
+    known: dict[int, str] = {}
+    if moved.any():
+        at = np.flatnonzero(moved)
+        known = dict(zip(at.tolist(), previous.column("sha256").take(pa.array(row[at])).to_pylist(), strict=True))
 
     def stat_of(i: int) -> tuple[Any, Any, Any]:
         return (int(size[i]), int(mtime[i]), int(inode[i])) if statted[i] else (None, None, None)
 
     pending: list[tuple[str, tuple[Any, Any, Any], dict[str, Any]]] = []
+    confirmed: list[int] = []
 
-    def remember(j: int, res: dict[str, Any]) -> None:
+    def remember(j: int, res: dict[str, Any]) -> dict[str, Any]:
         i = todo[j]
+        if res == ingest_probe.SAME_BYTES:  # a result from a worker is a copy
+            confirmed.append(i)
+            res = _cached_result(previous, int(row[i]))
         if statted[i] and cacheable(res):
             pending.append((paths[i], stat_of(i), res))
         if len(pending) >= _PROBE_PART_ROWS:
             cache.append(probe_table(pending))
             pending.clear()
+        return res
 
-    def crashed(j: int, how: str) -> dict[str, Any]:
-        rel = paths[todo[j]]
-        return {"error": ("decoder_crashed", f"{rel}: the worker process probing it died ({how}), also when it "
-                          "ran alone; expected a file the audio library can read without crashing")}
-
-    fresh = map_ordered(ingest_probe.probe_file, [ProbeJob(str(raw / paths[i]), paths[i]) for i in todo],
-                        workers=ctx.workers, scheduler=ctx.scheduler, desc="probe", progress=ctx.progress,
-                        costs=[(int(size[i]) if statted[i] else 0) + _PROBE_FILE_BYTES for i in todo],
-                        cost_per_worker=_PROBE_BYTES_PER_WORKER,
-                        meanwhile=ctx.meanwhile, on_result=remember, on_crash=crashed)
+    jobs = [ProbeJob(str(raw / paths[i]), paths[i], known.get(i)) for i in todo]
+    fresh = _probe_fresh(ctx, jobs, [(int(size[i]) if statted[i] else 0) for i in todo], remember)
     reused = np.flatnonzero(hit)
     table = probe_table([(paths[i], stat_of(i), res) for i, res in zip(todo, fresh, strict=True)])
     if previous is not None and len(reused):
@@ -329,15 +336,60 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.nd
         at[todo] = previous.num_rows + np.arange(len(todo))
         with pandas_left_unloaded():
             table = pa.concat_tables([previous.cast(probe_schema()), table]).take(pa.array(at))
-    if cache.compaction_due(stored=0 if previous is None else previous.num_rows, used=len(reused)):
+    if cache.compaction_due(stored=0 if previous is None else previous.num_rows, used=len(reused) + len(confirmed)):
         # The rewritten table holds this run's files only: what left RAW leaves the cache.
         with pandas_left_unloaded():
             uncached = pc.fill_null(pc.is_in(table.column("error_reason"), value_set=pa.array(UNCACHED)), False)
         cache.save(table.filter(pc.and_(pc.is_valid(table.column("st_size")), pc.invert(uncached))))
     elif pending:
         cache.append(probe_table(pending))
-    ctx.log.info("ingest: %d files probed, %d reused from cache", len(todo), len(paths) - len(todo))
+    if known:
+        ctx.log.info("ingest: %d files of unchanged size and time but a new inode (RAW moved or copied?) hashed "
+                     "again: %d hold the bytes cached for them", len(known), len(confirmed))
+    ctx.log.info("ingest: %d files probed, %d reused from cache", len(todo) - len(confirmed),
+                 len(reused) + len(confirmed))
     return table
+
+
+def _cached_result(previous: Any, row: int) -> dict[str, Any]:
+    """Row ``row`` of the probe cache as probe_file gave it (an error as its reason and sentence)."""
+    cached = previous.slice(row, 1).to_pylist()[0]
+    if cached["error_reason"] is not None:
+        return {"error": (cached["error_reason"], cached["error_detail"])}
+    return {name: cached[name] for name, _ in PROBE_FIELDS}
+
+
+def _probe_fresh(ctx: StageContext, jobs: list[ProbeJob], sizes: list[int],
+                 remember: Callable[[int, dict[str, Any]], dict[str, Any]]) -> list[dict[str, Any]]:
+    """Probe results for ``jobs`` (files of ``sizes`` bytes) in their order, each passed
+    through ``remember(index, result)`` as it arrives, which gives the result to keep.
+
+    Files travel to the workers in batches (``parallel.batches``): one task, one message
+    and one future per batch instead of per file. A batch whose worker died twice, the
+    second time alone, is probed again file by file, each alone, so only the file that
+    crashes the library is rejected (``decoder_crashed``), whoever shared its batch.
+    """
+    groups = batches(range(len(jobs)), threads=resolve_workers(ctx.workers))
+    fresh: list[dict[str, Any]] = [{}] * len(jobs)
+
+    def arrived(b: int, results: list[dict[str, Any]]) -> None:
+        for j, res in zip(groups[b], results, strict=True):
+            fresh[j] = remember(j, res)
+
+    def crashed(b: int, how: str) -> list[dict[str, Any]]:
+        results = []
+        for j in groups[b]:
+            ok, value = run_alone(ingest_probe.probe_files, [jobs[j]])
+            results.append(value[0] if ok else {"error": (
+                "decoder_crashed", f"{jobs[j].rel}: the worker process probing it died ({value}), also when it "
+                "ran alone; expected a file the audio library can read without crashing")})
+        return results
+
+    each_result(ingest_probe.probe_files, [[jobs[j] for j in group] for group in groups], arrived,
+                workers=ctx.workers, scheduler=ctx.scheduler, desc="probe", progress=ctx.progress,
+                costs=[sum(sizes[j] + _PROBE_FILE_BYTES for j in group) for group in groups],
+                cost_per_worker=_PROBE_BYTES_PER_WORKER, meanwhile=ctx.meanwhile, on_crash=crashed)
+    return fresh
 
 
 _SIDECAR_FIELDS = (*STAT_FIELDS, ("text", "string"), ("reason", "string"), ("sentence", "string"),
@@ -393,7 +445,7 @@ def _read_sidecars(ctx: StageContext, needed: list[str], links: set[str]) -> Sid
         for column, values in zip(full, stat, strict=True):
             column[at] = values
         stat = full  # type: ignore[assignment]
-    row, hit = _reusable(table, needed, stat)
+    row, hit, _ = _reusable(table, needed, stat)
     fresh: dict[str, SidecarRead] = {}
     for i in np.flatnonzero(~hit).tolist():
         rel = needed[i]

@@ -11,6 +11,7 @@ but not the probes, keeps them (100,000 files took 26 s of two workers to probe)
 from __future__ import annotations
 
 import os
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -29,10 +30,47 @@ SOURCE_RATE_RANGE_HZ = (4000, 768000)
 
 @dataclass(frozen=True)
 class ProbeJob:
-    """One file to probe: its absolute ``path`` and its path relative to RAW (``rel``)."""
+    """One file to probe: its absolute ``path``, its path relative to RAW (``rel``) and,
+    for a file the probe cache knows by path, size and mtime but not by inode (a moved or
+    copied RAW), the content hash cached for it (``cached_sha256``)."""
 
     path: str
     rel: str
+    cached_sha256: str | None = None
+
+
+# What probe_files gives for a file whose bytes hash to its cached_sha256.
+SAME_BYTES: dict[str, Any] = {"same_bytes": True}
+
+
+def probe_files(jobs: Sequence[ProbeJob]) -> list[dict[str, Any]]:
+    """:func:`probe_file` for each job, in order (one task of a pool for several files),
+    or :data:`SAME_BYTES` for a job whose file still holds the bytes of its
+    ``cached_sha256``: the probe is a function of the bytes, so the cached result stands
+    for it, and only the hash was paid (under a fifth of a short file's probe).
+
+    Examples
+    --------
+    >>> import hashlib, tempfile
+    >>> with tempfile.NamedTemporaryFile(suffix=".wav") as fh:
+    ...     empty = ProbeJob(fh.name, "a.wav", cached_sha256=hashlib.sha256(b"").hexdigest())
+    ...     probe_files([empty, ProbeJob(fh.name, "a.wav")])
+    [{'same_bytes': True}, {'error': ('empty', 'a.wav: the file is empty (0 bytes); expected audio data')}]
+    """
+    results = []
+    for job in jobs:
+        if job.cached_sha256 is not None and _hash_or_none(job.path) == job.cached_sha256:
+            results.append(SAME_BYTES)
+        else:
+            results.append(probe_file(job))
+    return results
+
+
+def _hash_or_none(path: str) -> str | None:
+    try:
+        return sha256_file(path)
+    except OSError:
+        return None  # the probe that follows words it
 
 
 # The formats the loaded libsndfile reads, with the function that listed them: asking

@@ -1,0 +1,128 @@
+"""Ingest's probes: batched on the workers, confirmed by content when only the inode
+changed; either way the rows and rejects a run without any cache gives."""
+
+from __future__ import annotations
+
+import hashlib
+import logging
+import os
+import re
+import shutil
+from pathlib import Path
+
+import pyarrow.parquet as pq
+import pytest
+
+from pipeline.core.config import build_config
+from pipeline.core.parallel import batches
+from pipeline.core.runner import Runner
+from pipeline.stages import STAGES
+from tests.test_ingest_rows import run, uncached, write_wav
+from tests.test_worker_deaths import CRASHING, probe_crashing_on_one_file
+
+
+@pytest.fixture(autouse=True)
+def logs_reach_caplog(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(logging.getLogger("loam"), "propagate", True)
+
+
+def make_raw(root: Path, files: int) -> Path:
+    """``files`` short WAVs of three speakers (``spk<i % 3>/take<i>.wav``), every fourth with a sidecar."""
+    for i in range(files):
+        rel = f"spk{i % 3}/take{i:02d}.wav"
+        write_wav(root / rel, seed=i)
+        if i % 4 == 0:
+            (root / rel).with_suffix(".txt").write_text(f"take {i}\n", encoding="utf-8")
+    return root
+
+
+def probed(caplog: pytest.LogCaptureFixture) -> tuple[int, int]:
+    found = re.findall(r"ingest: (\d+) files probed, (\d+) reused from cache", caplog.text)[-1]
+    return int(found[0]), int(found[1])
+
+
+def test_a_crash_costs_its_file_and_not_its_batch(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    raw = make_raw(tmp_path / "raw", 40)
+    assert max(len(b) for b in batches(range(40), threads=2)) > 1  # the crashing file shares a batch
+    expected_rows, expected_rejects = uncached(raw, tmp_path)
+    out = tmp_path / "out"
+    with monkeypatch.context() as patch:
+        patch.setattr("pipeline.stages.ingest_probe.probe_file", probe_crashing_on_one_file)
+        Runner(raw, out, build_config({}), stages=STAGES, workers=2).prepare(("ingest",))
+    (row,) = pq.read_table(out / "stages" / "ingest.rejects.parquet").to_pylist()
+    assert row["source_path"] == CRASHING and row["reason"] == "decoder_crashed"
+    assert row["detail"].startswith(f"{CRASHING}: the worker process probing it died (killed by signal SIGSEGV), "
+                                  "also when it ran alone")
+    rows = pq.read_table(out / "stages" / "ingest.parquet").to_pylist()
+    assert rows == [r for r in expected_rows if r["source_path"] != CRASHING] and not expected_rejects
+
+
+def test_worker_count_and_batches_do_not_change_the_rows(tmp_path: Path) -> None:
+    raw = make_raw(tmp_path / "raw", 40)
+    results = []
+    for workers in (1, 2, 3):
+        out = tmp_path / f"out{workers}"
+        Runner(raw, out, build_config({}), stages=STAGES, workers=workers, use_cache=False).prepare(("ingest",))
+        results.append((out / "stages" / "ingest.parquet").read_bytes())
+    assert results[0] == results[1] == results[2]
+
+
+def replace_keeping_size_and_time(path: Path, data: bytes) -> None:
+    """Put ``data`` (of the file's size) at ``path`` as a new file (a new inode) with the old mtime."""
+    st = path.stat()
+    assert len(data) == st.st_size
+    tmp = path.with_name(path.name + ".new")
+    tmp.write_bytes(data)
+    os.utime(tmp, ns=(st.st_atime_ns, st.st_mtime_ns))
+    tmp.replace(path)
+
+
+def test_a_copied_raw_is_hashed_not_probed_and_other_bytes_are_probed(tmp_path: Path,
+                                                                      caplog: pytest.LogCaptureFixture) -> None:
+    raw = make_raw(tmp_path / "raw", 12)
+    out = tmp_path / "out"
+    run(raw, out)
+    copy = tmp_path / "copy"
+    shutil.copytree(raw, copy)  # copy2: the same sizes and mtimes, new inodes
+    assert all(os.stat(p).st_ino != os.stat(copy / p.relative_to(raw)).st_ino for p in raw.rglob("*.wav"))
+    with caplog.at_level(logging.INFO, logger="loam"):
+        result = run(copy, out)
+    assert probed(caplog) == (0, 12)
+    assert result == uncached(copy, tmp_path)
+    assert "12 files of unchanged size and time but a new inode" in caplog.text
+    assert "12 hold the bytes cached for them" in caplog.text
+
+    # Other bytes of the same size, with the old mtime and a new inode: probed again.
+    changed = copy / "spk1" / "take01.wav"
+    data = bytearray(changed.read_bytes())
+    data[-2:] = bytes([data[-2] ^ 0x55, data[-1] ^ 0x55])
+    replace_keeping_size_and_time(changed, bytes(data))
+    caplog.clear()
+    with caplog.at_level(logging.INFO, logger="loam"):
+        rows, rejects = run(copy, out)
+    assert probed(caplog) == (1, 11)
+    assert "1 files of unchanged size and time but a new inode" in caplog.text and "0 hold the bytes" in caplog.text
+    assert (rows, rejects) == uncached(copy, tmp_path)
+    by_path = {r["source_path"]: r for r in rows}
+    assert by_path["spk1/take01.wav"]["sha256"] == hashlib.sha256(bytes(data)).hexdigest()  # hashlib reference
+
+
+def test_a_cached_hash_that_is_not_the_files_is_probed_again(tmp_path: Path, caplog: pytest.LogCaptureFixture) -> None:
+    """A tampered probe cache (a wrong hash for a file whose inode changed) costs a probe, not a wrong row."""
+    import pyarrow as pa
+
+    raw = make_raw(tmp_path / "raw", 12)
+    out = tmp_path / "out"
+    run(raw, out)
+    cache = out / "cache" / "ingest" / "probes.parquet"
+    table = pq.read_table(cache)
+    sha = table.column("sha256").to_pylist()
+    sha[3] = "0" * 64
+    table = table.set_column(table.schema.get_field_index("sha256"), "sha256", pa.array(sha))
+    pq.write_table(table, cache)  # the scope stays in the schema's metadata
+    path = raw / table.column("path")[3].as_py()
+    replace_keeping_size_and_time(path, path.read_bytes())
+    with caplog.at_level(logging.INFO, logger="loam"):
+        result = run(raw, out)
+    assert probed(caplog) == (1, 11)
+    assert result == uncached(raw, tmp_path)
