@@ -126,3 +126,33 @@ def test_a_cached_hash_that_is_not_the_files_is_probed_again(tmp_path: Path, cap
         result = run(raw, out)
     assert probed(caplog) == (1, 11)
     assert result == uncached(raw, tmp_path)
+
+
+def test_flat_folder_is_the_one_folder_of_every_path() -> None:
+    """The early-stopping loop gives what the set of every path's folder gives."""
+    import random
+
+    from pipeline.stages.speaker_source import flat_folder
+
+    rng = random.Random(5)
+    for _ in range(300):
+        folders = rng.sample(["", "a", "a/b", "b", "wavs"], rng.randint(1, 2))
+        paths = sorted(f"{rng.choice(folders)}/{i}.wav".lstrip("/") for i in range(rng.randint(1, 6)))
+        every = {p.rpartition("/")[0] for p in paths}
+        assert flat_folder(paths) == (every.pop() if len(every) == 1 else None)
+
+
+def test_sidecar_stats_from_the_listing_are_those_of_os_stat(tmp_path: Path) -> None:
+    from pipeline.core import snapshot
+    from pipeline.stages import ingest
+
+    raw = make_raw(tmp_path / "raw", 12)
+    listing = snapshot.Listing()
+    snapshot.raw_digest(raw, stats=listing)
+    found, _ = ingest.scan_listing(listing, ("wav",), "txt")
+    needed = sorted(found.sidecars) + ["spk0/none.txt"]
+    listed = ingest._listed_stats(needed, found.sidecar_listing)
+    statted = ingest._stats(str(raw), needed)
+    for a, b in zip(listed, statted, strict=True):
+        assert a.dtype == b.dtype and a.tolist() == b.tolist()
+    assert listed[3].tolist() == [True] * (len(needed) - 1) + [False]

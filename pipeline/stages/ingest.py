@@ -101,6 +101,9 @@ class Scan:
     sidecars: set[str]  # relative paths of sidecar transcripts
     links: set[str]  # the relative paths among those that are symbolic links
     rejects: list[dict[str, Any]]  # links that leave RAW, names that are not UTF-8
+    # From the run's listing (scan_listing): the sidecars' paths as Arrow strings, with
+    # their size, mtime_ns and inode row for row (None: take them from os.stat).
+    sidecar_listing: tuple[Any, np.ndarray] | None = None
 
 
 def _walk(raw: Path) -> Any:
@@ -205,9 +208,11 @@ def scan_listing(listing: Any, extensions: tuple[str, ...], sidecar_extension: s
         at = np.flatnonzero(audio)
         at = at[np.asarray(pc.sort_indices(arr.take(pa.array(at))), dtype=np.int64)]
         paths = arr.take(pa.array(at)).to_pylist()
-        sidecars = set(arr.filter(pa.array(sidecar)).to_pylist())
+        side_at = pa.array(np.flatnonzero(sidecar))
+        sidecar_names = arr.take(side_at)
+        sidecars = set(sidecar_names.to_pylist())
     stat = values[at]
-    found = Scan(paths, sidecars, set(), [])
+    found = Scan(paths, sidecars, set(), [], (sidecar_names, values[np.asarray(side_at, dtype=np.int64)]))
     return found, (stat[:, 0].copy(), stat[:, 1].copy(), stat[:, 2].astype(np.uint64), np.ones(len(at), dtype=bool))
 
 
@@ -424,13 +429,30 @@ class Sidecars:
         return text, None if reason is None else (reason, sentence, fix)
 
 
-def _read_sidecars(ctx: StageContext, needed: list[str], links: set[str]) -> Sidecars:
+def _listed_stats(paths: list[str], listing: tuple[Any, np.ndarray]) -> tuple[np.ndarray, ...]:
+    """What :func:`_stats` gives for ``paths``, looked up in Arrow in a listing of
+    ``(paths, stats)`` (``Scan.sidecar_listing``) instead of a dict per path."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    listed, values = listing
+    with pandas_left_unloaded():
+        at = np.asarray(pc.index_in(pa.array(paths, pa.string()), value_set=listed).fill_null(-1), dtype=np.int64)
+    found = at >= 0
+    taken = values[np.maximum(at, 0)] if len(values) else np.zeros((len(paths), 3), dtype=np.int64)
+    size = np.where(found, taken[:, 0], -1)
+    return size, np.where(found, taken[:, 1], -1), np.where(found, taken[:, 2], 0).astype(np.uint64), found
+
+
+def _read_sidecars(ctx: StageContext, needed: list[str], links: set[str],
+                   listing: tuple[Any, np.ndarray] | None = None) -> Sidecars:
     """What ``read_sidecar`` gives for each sidecar in ``needed``, reusing the last run's
     reading of a sidecar whose size, mtime and inode are unchanged (a ``stat`` instead
     of an open and a read: reading sidecars took a third of a 20,000-file rebuild's
     ingest), matched in Arrow like the probes. Links are always read (where they lead is
     checked each time), and so is a sidecar that could not be read (a permission says
-    something about this machine)."""
+    something about this machine). ``listing`` (``Scan.sidecar_listing``) gives the
+    stats when the run's listing of RAW stood for the walk (no links then)."""
 
     cfg = ctx.config.ingest
     code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
@@ -438,7 +460,8 @@ def _read_sidecars(ctx: StageContext, needed: list[str], links: set[str]) -> Sid
                        enabled=ctx.use_cache)
     table = cache.load()
     unlinked = [rel for rel in needed if rel not in links] if links else needed
-    stat = _stats(os.fspath(ctx.raw), unlinked, ctx.raw_stats)
+    stat = (_listed_stats(unlinked, listing) if listing is not None
+            else _stats(os.fspath(ctx.raw), unlinked, ctx.raw_stats))
     if len(unlinked) != len(needed):  # links: no stat, read again every run
         at = np.array([i for i, rel in enumerate(needed) if rel not in links], dtype=np.int64)
         full = tuple(np.zeros(len(needed), dtype=a.dtype) for a in stat)
@@ -706,7 +729,7 @@ def run(ctx: StageContext) -> StageResult:
         ctx.log.info("%s", rule.note)
     probes = _probe_all(ctx, ctx.raw, paths, stat)
     paired, needed, sidecar_at = pair_sidecars(paths, sidecars, columnar=listed is not None)
-    readings = _read_sidecars(ctx, needed, found.links)
+    readings = _read_sidecars(ctx, needed, found.links, found.sidecar_listing)
     keys = ingest_rows.key_columns(paths, probes.column("sha256"),
                                    [repr(by_audio[rel]) if rel in by_audio else None for rel in paths] if by_audio
                                    else None, paired, sidecar_at, readings.stat)

@@ -52,11 +52,21 @@ def flat_folder(paths: Sequence[str]) -> str | None:
     ''
     >>> flat_folder(["ana/a.wav", "ben/b.wav"]) is None
     True
+    >>> flat_folder(["a/x.wav", "a/y.wav", "a/b/z.wav"]) is None, flat_folder([]) is None
+    (True, True)
     """
+    if not paths:
+        return None
     # rpartition is posixpath.dirname for such paths (relative, single slashes), at a
-    # fifth of its cost: at 100,000 files this set was a sizeable part of a rebuild's ingest.
-    folders = {p.rpartition("/")[0] for p in paths}
-    return folders.pop() if len(folders) == 1 else None
+    # fifth of its cost. A dump of several folders is told at its first file in another
+    # folder than the first file's: at 100,000 files of 500 speakers the set of every
+    # file's folder was 0.13 s of a rebuild's ingest (under the profiler), the loop now stops
+    # at the second speaker; only a flat dump is looked at whole.
+    first = paths[0].rpartition("/")[0]
+    for path in paths:
+        if path.rpartition("/")[0] != first:
+            return None
+    return first
 
 
 @dataclass(frozen=True)
