@@ -104,6 +104,8 @@ class Scan:
     # From the run's listing (scan_listing): the sidecars' paths as Arrow strings, with
     # their size, mtime_ns and inode row for row (None: take them from os.stat).
     sidecar_listing: tuple[Any, np.ndarray] | None = None
+    # The audio paths as Arrow strings (scan_listing has them; None: build them from ``audio``).
+    audio_array: Any = None
 
 
 def _walk(raw: Path) -> Any:
@@ -207,12 +209,13 @@ def scan_listing(listing: Any, extensions: tuple[str, ...], sidecar_extension: s
             audio[i], sidecar[i] = name_ext in wanted, name_ext == side and name_ext not in wanted
         at = np.flatnonzero(audio)
         at = at[np.asarray(pc.sort_indices(arr.take(pa.array(at))), dtype=np.int64)]
-        paths = arr.take(pa.array(at)).to_pylist()
+        audio_array = arr.take(pa.array(at))
+        paths = audio_array.to_pylist()
         side_at = pa.array(np.flatnonzero(sidecar))
         sidecar_names = arr.take(side_at)
         sidecars = set(sidecar_names.to_pylist())
     stat = values[at]
-    found = Scan(paths, sidecars, set(), [], (sidecar_names, values[np.asarray(side_at, dtype=np.int64)]))
+    found = Scan(paths, sidecars, set(), [], (sidecar_names, values[np.asarray(side_at, dtype=np.int64)]), audio_array)
     return found, (stat[:, 0].copy(), stat[:, 1].copy(), stat[:, 2].astype(np.uint64), np.ones(len(at), dtype=bool))
 
 
@@ -258,11 +261,12 @@ def _stats(root: str, paths: list[str], known: Mapping[str, tuple[int, int, int]
     return size, np.array(mtimes, dtype=np.int64), np.array(inodes, dtype=np.uint64), size >= 0
 
 
-def _reusable(previous: Any, paths: list[str], stat: tuple[np.ndarray, ...],
+def _reusable(previous: Any, paths: list[str], stat: tuple[np.ndarray, ...], *, names: Any = None,
               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per path: the row of ``previous`` (a cache of results by path and stat; a later row
     wins) holding its result, whether that row's stat is the file's now, and whether only
-    its inode differs (a moved or copied RAW). Columnar: no Python per file."""
+    its inode differs (a moved or copied RAW). Columnar: no Python per file (``names``:
+    ``paths`` as Arrow strings, when the caller has them)."""
     import pyarrow as pa
     import pyarrow.compute as pc
 
@@ -274,7 +278,7 @@ def _reusable(previous: Any, paths: list[str], stat: tuple[np.ndarray, ...],
     last = previous.num_rows - 1
     with pandas_left_unloaded():
         reversed_paths = previous.column("path").take(pa.array(np.arange(last, -1, -1)))
-        found = pc.index_in(pa.array(paths, pa.string()), value_set=reversed_paths)
+        found = pc.index_in(pa.array(paths, pa.string()) if names is None else names, value_set=reversed_paths)
         # Arrow to numpy imports pandas too (0.17 s, a third of a 20,000-file rerun's ingest).
         row = last - np.asarray(found.fill_null(last + 1), dtype=np.int64)
         hit = row >= 0
@@ -285,7 +289,8 @@ def _reusable(previous: Any, paths: list[str], stat: tuple[np.ndarray, ...],
     return row, hit & statted & same_inode, hit & statted & ~same_inode
 
 
-def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.ndarray, ...] | None = None) -> Any:
+def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.ndarray, ...] | None = None, *,
+               names: Any = None) -> Any:
     """Probe results for ``paths`` as a table in their order (the probe cache's columns),
     reusing earlier results for files whose size, modification time and inode are
     unchanged (hashing is most of ingest's cost), and for files of unchanged size and
@@ -305,7 +310,7 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.nd
     cache = TableCache(ctx.cache_dir, NAME, "probes", scope=cache_key("probe", code), enabled=ctx.use_cache)
     previous = cache.load()
     size, mtime, inode, statted = stat = stat if stat is not None else _stats(os.fspath(raw), paths, ctx.raw_stats)
-    row, hit, moved = _reusable(previous, paths, stat)
+    row, hit, moved = _reusable(previous, paths, stat, names=names)
     todo = np.flatnonzero(~hit).tolist()
     known: dict[int, str] = {}
     if moved.any():
@@ -613,10 +618,12 @@ def _sidecars_by_stem(sidecars: set[str]) -> dict[str, str]:
 _WITHOUT_EXTENSION = (r"\.[^./]*$", "")
 
 
-def pair_sidecars(paths: list[str], sidecars: set[str], *, columnar: bool) -> tuple[list[str | None], list[str], np.ndarray]:
+def pair_sidecars(paths: list[str], sidecars: set[str], *, columnar: bool, names: Any = None,
+                  ) -> tuple[list[str | None], list[str], np.ndarray]:
     """Each audio file's sidecar (see :func:`_sidecars_by_stem`), the sidecars paired
     (sorted) and each file's sidecar as an index into them (-1: none). ``columnar`` (every
-    name is UTF-8, as from :func:`scan_listing`) matches stems in Arrow.
+    name is UTF-8, as from :func:`scan_listing`) matches stems in Arrow (``names``:
+    ``paths`` as Arrow strings, when the caller has them).
 
     Examples
     --------
@@ -635,17 +642,18 @@ def pair_sidecars(paths: list[str], sidecars: set[str], *, columnar: bool) -> tu
         needed = sorted({s for s in paired if s is not None})
         index = {rel: i for i, rel in enumerate(needed)}
         return paired, needed, np.fromiter((index.get(s, -1) for s in paired), dtype=np.int64, count=len(paths))
-    names = sorted(sidecars)
+    ordered = sorted(sidecars)
     with pandas_left_unloaded():
-        side = pa.array(names, pa.string())
-        stems = pc.replace_substring_regex(pa.array(paths, pa.string()), *_WITHOUT_EXTENSION)
+        side = pa.array(ordered, pa.string())
+        stems = pc.replace_substring_regex(pa.array(paths, pa.string()) if names is None else names,
+                                           *_WITHOUT_EXTENSION)
         # index_in finds a stem's first sidecar in sorted order, as _sidecars_by_stem keeps.
         found = pc.index_in(stems, value_set=pc.replace_substring_regex(side, *_WITHOUT_EXTENSION))
         valid = np.asarray(pc.is_valid(found), dtype=bool)
         at = np.asarray(found.fill_null(0), dtype=np.int64)
         paired = side.take(found).to_pylist()
     used = np.unique(at[valid])
-    needed = [names[i] for i in used.tolist()]
+    needed = [ordered[i] for i in used.tolist()]
     return paired, needed, np.where(valid, np.searchsorted(used, at), -1)
 
 
@@ -727,10 +735,10 @@ def run(ctx: StageContext) -> StageResult:
     rule = speaker_rule(paths, speaker=cfg.speaker, speaker_from=cfg.speaker_from)
     if rule.note:
         ctx.log.info("%s", rule.note)
-    probes = _probe_all(ctx, ctx.raw, paths, stat)
-    paired, needed, sidecar_at = pair_sidecars(paths, sidecars, columnar=listed is not None)
+    probes = _probe_all(ctx, ctx.raw, paths, stat, names=found.audio_array)
+    paired, needed, sidecar_at = pair_sidecars(paths, sidecars, columnar=listed is not None, names=found.audio_array)
     readings = _read_sidecars(ctx, needed, found.links, found.sidecar_listing)
-    keys = ingest_rows.key_columns(paths, probes.column("sha256"),
+    keys = ingest_rows.key_columns(paths if found.audio_array is None else found.audio_array, probes.column("sha256"),
                                    [repr(by_audio[rel]) if rel in by_audio else None for rel in paths] if by_audio
                                    else None, paired, sidecar_at, readings.stat)
     inputs = _Inputs(paths, by_audio, paired, readings, found.links, rule)

@@ -49,12 +49,13 @@ def rows_cache(ctx: StageContext, *, rule: tuple[str | None, str]) -> TableCache
                       enabled=ctx.use_cache and not ctx.config.privacy.pseudonymise)
 
 
-def key_columns(paths: Sequence[str], sha256: pa.ChunkedArray, metadata: Sequence[str | None] | None,
+def key_columns(paths: Sequence[str] | pa.Array, sha256: pa.ChunkedArray, metadata: Sequence[str | None] | None,
                 sidecars: Sequence[str | None], sidecar_at: np.ndarray,
                 sidecar_stat: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]) -> dict[str, Any]:
-    """Each file's inputs as Arrow arrays: ``metadata`` (None: no file has rows), its
-    sidecar, and that sidecar's stat, ``sidecar_stat[k][sidecar_at[i]]`` (-1: no sidecar;
-    a sidecar not stat'ed, a link, has none)."""
+    """Each file's inputs as Arrow arrays (``paths`` given as a list or as Arrow strings):
+    ``metadata`` (None: no file has rows), its sidecar, and that sidecar's stat,
+    ``sidecar_stat[k][sidecar_at[i]]`` (-1: no sidecar; a sidecar not stat'ed, a link,
+    has none)."""
     size, mtime, inode, statted = sidecar_stat
     at = np.maximum(sidecar_at, 0)
     missing = (sidecar_at < 0) | ~(statted[at] if len(statted) else np.zeros(len(at), dtype=bool))
@@ -64,7 +65,7 @@ def key_columns(paths: Sequence[str], sha256: pa.ChunkedArray, metadata: Sequenc
             taken = values[at] if len(values) else np.zeros(n, dtype=values.dtype)
             return pa.array(taken, kind, mask=missing)
 
-        return {"path": pa.array(paths, pa.string()), "sha256": sha256.cast(pa.string()).combine_chunks(),
+        return {"path": paths if isinstance(paths, pa.Array) else pa.array(paths, pa.string()), "sha256": sha256.cast(pa.string()).combine_chunks(),
                 "metadata": pa.nulls(n, pa.string()) if metadata is None else pa.array(metadata, pa.string()),
                 "sidecar": pa.array(sidecars, pa.string()), "sidecar_size": stat_column(size, pa.int64()),
                 "sidecar_mtime_ns": stat_column(mtime, pa.int64()), "sidecar_ino": stat_column(inode, pa.uint64())}
@@ -116,7 +117,7 @@ def reusable(previous: pa.Table | None, keys: dict[str, Any]) -> tuple[np.ndarra
         found = pc.index_in(keys["path"], value_set=reversed_paths)
         hit = np.asarray(pc.is_valid(found), dtype=bool)
         row = last - np.asarray(found.fill_null(last), dtype=np.int64)
-        then = previous.take(pa.array(row))
+        then = previous.select([name for name, _ in KEY_FIELDS[1:]]).take(pa.array(row))
         hit &= np.asarray(pc.fill_null(pc.equal(keys["sha256"], then.column("sha256").combine_chunks()), False),
                           dtype=bool)
         for name, _ in KEY_FIELDS[2:]:
