@@ -248,9 +248,17 @@ def test_editing_a_helper_reruns_its_stage_and_only_its_stage(small_raw: Path, t
     assert _reused(log) == set()
     assert re.search(r"audio: [1-9]\d* files processed, 0 reused from cache", log)
 
-    # An ingest-only helper: every file is probed again. Its manifest records the new code
-    # version, so the later stages run, but audio's per-file cache still holds.
+    # An ingest-only helper outside the probe's reach: the probes stand (they depend on the
+    # bytes and on pipeline/stages/ingest_probe.py's reach), every row is decided again.
+    # Its manifest records the new code version, so the later stages run, but audio's
+    # per-file cache still holds.
     _edit(package / "stages/transcripts.py")
+    log = _prepare(src, small_raw, out)
+    assert re.search(r"ingest: 0 files probed, [1-9]\d* reused from cache", log)
+    assert re.search(r"ingest: 0 rows reused, [1-9]\d* files followed one by one", log)
+    assert re.search(r"audio: 0 files processed, [1-9]\d* reused from cache", log)
+    # The probe's own module: every file is probed again.
+    _edit(package / "stages/ingest_probe.py")
     log = _prepare(src, small_raw, out)
     assert re.search(r"ingest: [1-9]\d* files probed, 0 reused from cache", log)
     assert re.search(r"audio: 0 files processed, [1-9]\d* reused from cache", log)

@@ -302,7 +302,6 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.nd
     only the new and changed files are probed, in workers (:func:`_probe_fresh`).
     """
     import pyarrow as pa
-    import pyarrow.compute as pc
 
     # The probe's own code version (pipeline.stages.ingest_probe): an edit within its
     # reach probes every file again, an edit elsewhere in the stage does not.
@@ -312,10 +311,7 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.nd
     size, mtime, inode, statted = stat = stat if stat is not None else _stats(os.fspath(raw), paths, ctx.raw_stats)
     row, hit, moved = _reusable(previous, paths, stat, names=names)
     todo = np.flatnonzero(~hit).tolist()
-    known: dict[int, str] = {}
-    if moved.any():
-        at = np.flatnonzero(moved)
-        known = dict(zip(at.tolist(), previous.column("sha256").take(pa.array(row[at])).to_pylist(), strict=True))
+    known = _cached_hashes(previous, row, moved)
 
     def stat_of(i: int) -> tuple[Any, Any, Any]:
         return (int(size[i]), int(mtime[i]), int(inode[i])) if statted[i] else (None, None, None)
@@ -346,19 +342,40 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.nd
         at[todo] = previous.num_rows + np.arange(len(todo))
         with pandas_left_unloaded():
             table = pa.concat_tables([previous.cast(probe_schema()), table]).take(pa.array(at))
-    if cache.compaction_due(stored=0 if previous is None else previous.num_rows, used=len(reused) + len(confirmed)):
-        # The rewritten table holds this run's files only: what left RAW leaves the cache.
-        with pandas_left_unloaded():
-            uncached = pc.fill_null(pc.is_in(table.column("error_reason"), value_set=pa.array(UNCACHED)), False)
-        cache.save(table.filter(pc.and_(pc.is_valid(table.column("st_size")), pc.invert(uncached))))
-    elif pending:
-        cache.append(probe_table(pending))
+    _save_probes(cache, table, pending, stored=0 if previous is None else previous.num_rows,
+                 used=len(reused) + len(confirmed))
     if known:
         ctx.log.info("ingest: %d files of unchanged size and time but a new inode (RAW moved or copied?) hashed "
                      "again: %d hold the bytes cached for them", len(known), len(confirmed))
     ctx.log.info("ingest: %d files probed, %d reused from cache", len(todo) - len(confirmed),
                  len(reused) + len(confirmed))
     return table
+
+
+def _cached_hashes(previous: Any, row: np.ndarray, moved: np.ndarray) -> dict[int, str]:
+    """The cached content hash (None for a cached error) of each file ``moved`` marks, by
+    its index, from its row ``row[i]`` of the probe cache ``previous``."""
+    import pyarrow as pa
+
+    if not moved.any():
+        return {}
+    at = np.flatnonzero(moved)
+    return dict(zip(at.tolist(), previous.column("sha256").take(pa.array(row[at])).to_pylist(), strict=True))
+
+
+def _save_probes(cache: TableCache, table: Any, pending: list[Any], *, stored: int, used: int) -> None:
+    """Rewrite the probe cache from this run's ``table`` when due (TableCache.compaction_due),
+    else add the fresh results not yet written (``pending``) as a part."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    if cache.compaction_due(stored=stored, used=used):
+        # The rewritten table holds this run's files only: what left RAW leaves the cache.
+        with pandas_left_unloaded():
+            uncached = pc.fill_null(pc.is_in(table.column("error_reason"), value_set=pa.array(UNCACHED)), False)
+        cache.save(table.filter(pc.and_(pc.is_valid(table.column("st_size")), pc.invert(uncached))))
+    elif pending:
+        cache.append(probe_table(pending))
 
 
 def _cached_result(previous: Any, row: int) -> dict[str, Any]:
