@@ -372,8 +372,11 @@ class Runner:
         rejects_rel = names.stage_rejects(stage.name)
         validate_table("rejected", rejects, where=str(self.out / rejects_rel))
         write_manifest(self.out / rejects_rel, "rejected", rejects, metadata=meta, checked=True)
-        write_text_atomic(self.out / names.stage_summary(stage.name),
-                          json.dumps(result.summary, indent=2, sort_keys=True, ensure_ascii=False) + "\n")
+        # The text of json.dumps(indent=2, sort_keys=True, ensure_ascii=False), built per
+        # column: 0.06 CPU s against 0.17 for the split summary at 100,000 clips.
+        from pipeline.core.json_text import dumps_indented
+
+        write_text_atomic(self.out / names.stage_summary(stage.name), dumps_indented(result.summary) + "\n")
         # The main manifest goes last: its metadata is what marks the stage up to date.
         # Each table was checked by _set_aside_invalid_rows, which kept only valid rows.
         for rel, (schema, table) in sorted(result.manifests.items(), key=lambda kv: kv[0] == stage.main_manifest):
