@@ -1,7 +1,7 @@
 """The search after clips were added equals a search of the whole corpus.
 
 The reference is a search of the whole corpus, :func:`search_pairs` (which
-:func:`pipeline.signal.fingerprint.find_near_duplicates_flat` returns as a list; its
+:func:`find_near_duplicates_flat` returns as a list; its
 candidate search is checked against a per-clip search, its results against analytic
 cases and brute force, in tests/test_fingerprint.py). Small alphabets make
 keys shared by many clips, so adding clips takes keys over the cap and unmakes
@@ -13,8 +13,12 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from pipeline.signal.added_search import Pairs, search_added, search_pairs
-from pipeline.signal.fingerprint import find_near_duplicates_flat
+from pipeline.signal.added_search import (
+    Pairs,
+    find_near_duplicates_flat,
+    search_added,
+    search_pairs,
+)
 
 
 def _corpus(rng: np.random.Generator, clips: int, alphabet: int) -> list[np.ndarray]:

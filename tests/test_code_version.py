@@ -148,6 +148,9 @@ EDITS = [
     ("signal/snr.py", None, {"audio"}),
     ("signal/bandwidth.py", None, {"audio"}),
     ("signal/fingerprint.py", None, {"audio", "split"}),
+    # The search for pairs is the split stage's alone: the audio stage computes fingerprints only.
+    ("signal/added_search.py", None, {"split"}),
+    ("signal/pair_similarity.py", None, {"split"}),
     ("signal/arrays.py", None, {"audio", "split"}),
     ("core/manifest.py", None, set(STAGES)),
     ("__init__.py", None, set(STAGES)),

@@ -1,5 +1,5 @@
 """Tests of the band-energy fingerprint after Haitsma and Kalker and the near-duplicate
-search in pipeline.signal.fingerprint.
+search in pipeline.signal.added_search.
 
 References used: the bit rule of Haitsma and Kalker (ISMIR 2002) on Welch-averaged band
 energies (Welch 1967), recomputed with scipy.signal's window and numpy's FFT, Python's
@@ -20,7 +20,7 @@ import soundfile as sf
 import soxr
 
 from pipeline.core.errors import ParameterError
-from pipeline.signal import fingerprint
+from pipeline.signal import added_search, fingerprint
 from tests.conftest import DEMO, FIXTURES, speech_only
 
 # The default of quality.near_duplicate_min_similarity in schemas/config.schema.json.
@@ -214,7 +214,7 @@ def test_near_duplicates_survive_resampling_codecs_and_gain(distinct_clips: list
     corpus += [fingerprint.fingerprint(x, sample_rate=r) for x, r in distinct_clips[:20]]
     for name, fp in zip(variants, corpus[1:5], strict=True):
         assert fingerprint.fingerprint_similarity(reference, fp) >= 0.95, name
-    pairs = fingerprint.find_near_duplicates(corpus, min_similarity=CONFIG_MIN_SIMILARITY)
+    pairs = added_search.find_near_duplicates(corpus, min_similarity=CONFIG_MIN_SIMILARITY)
     # Exactly the five versions of the clip pair up with each other, nothing else.
     assert [(i, j) for i, j, _ in pairs] == [(i, j) for i in range(5) for j in range(i + 1, 5)]
     assert all(sim >= CONFIG_MIN_SIMILARITY for _, _, sim in pairs)
@@ -232,14 +232,14 @@ def test_copies_trimmed_later_and_mp3_coded_are_found(distinct_clips: list[tuple
         a = fingerprint.fingerprint(at_16k, sample_rate=16000)
         b = fingerprint.fingerprint(copy, sample_rate=16000)
         assert fingerprint.fingerprint_similarity(a, b) >= 0.88
-        assert [(i, j) for i, j, _ in fingerprint.find_near_duplicates([a, b], min_similarity=CONFIG_MIN_SIMILARITY)] == [(0, 1)]
+        assert [(i, j) for i, j, _ in added_search.find_near_duplicates([a, b], min_similarity=CONFIG_MIN_SIMILARITY)] == [(0, 1)]
 
 
 def test_distinct_clips_give_no_pair(distinct_clips: list[tuple[np.ndarray, int]]) -> None:
     # Reference: 100 different utterances (random word strings, 5 voices); any pair found
     # is false. Measured over all 4950 pairs: highest similarity 0.66, median 0.54.
     fps = [fingerprint.fingerprint(x, sample_rate=r) for x, r in distinct_clips]
-    assert fingerprint.find_near_duplicates(fps, min_similarity=CONFIG_MIN_SIMILARITY) == []
+    assert added_search.find_near_duplicates(fps, min_similarity=CONFIG_MIN_SIMILARITY) == []
     # The empty result must not come from the index skipping pairs: brute force over
     # about 700 of the pairs, without the index, stays below the threshold as well.
     best = max(
@@ -253,15 +253,15 @@ def test_near_duplicate_pairs_sorted_and_key_cap() -> None:
     rng = np.random.default_rng(4)
     base = [rng.integers(1, 2**32, size=150, dtype=np.uint32) for _ in range(6)]
     corpus = [base[0], base[1], base[2], base[1].copy(), base[0][3:], base[3]]
-    pairs = fingerprint.find_near_duplicates(corpus, min_similarity=0.9)
+    pairs = added_search.find_near_duplicates(corpus, min_similarity=0.9)
     assert pairs == [(0, 4, 1.0), (1, 3, 1.0)]
     # Documented cap: a key held by more than max_clips_per_key clips yields no candidates.
     copies = [base[5]] * 10
-    assert fingerprint.find_near_duplicates(copies, min_similarity=0.9, max_clips_per_key=9) == []
-    assert len(fingerprint.find_near_duplicates(copies, min_similarity=0.9, max_clips_per_key=10)) == 45
-    assert fingerprint.find_near_duplicates([np.zeros(0, np.uint32)] * 3, min_similarity=0.9) == []
+    assert added_search.find_near_duplicates(copies, min_similarity=0.9, max_clips_per_key=9) == []
+    assert len(added_search.find_near_duplicates(copies, min_similarity=0.9, max_clips_per_key=10)) == 45
+    assert added_search.find_near_duplicates([np.zeros(0, np.uint32)] * 3, min_similarity=0.9) == []
     with pytest.raises(ParameterError, match="min_similarity"):
-        fingerprint.find_near_duplicates(corpus, min_similarity=0.0)
+        added_search.find_near_duplicates(corpus, min_similarity=0.0)
 
 
 def _candidate_pairs_per_clip(fps: list[np.ndarray], *, max_clips_per_key: int, min_shared_keys: int) -> set:

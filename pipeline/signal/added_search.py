@@ -1,6 +1,7 @@
 """Near-duplicate search after clips were added to a corpus already searched.
 
-:func:`search_pairs` is :func:`pipeline.signal.fingerprint.find_near_duplicates_flat`
+:func:`find_near_duplicates` finds all similar pairs of a corpus (on fingerprints of
+:mod:`pipeline.signal.fingerprint`); :func:`search_pairs` is :func:`find_near_duplicates_flat`
 that also returns, for each pair found, how many candidate keys its two clips share.
 :func:`search_added` gives the same pairs as a search of the whole corpus when clips
 were only added since an earlier search whose pairs (and their shared keys) are kept,
@@ -8,7 +9,7 @@ touching only the sub-fingerprints equal to a key of a new clip.
 
 Why the earlier pairs need only a count. Candidates share at least ``min_shared_keys``
 keys, each held by 2 to ``max_clips_per_key`` clips (see
-:func:`~pipeline.signal.fingerprint.find_near_duplicates`). Adding clips only raises
+:func:`find_near_duplicates`). Adding clips only raises
 the number of clips holding a key, and only for keys a new clip holds. So a pair of two
 earlier clips can never become a candidate (a key that reached two holders through a
 new clip has one earlier holder), and it stops being one only when keys it shares go
@@ -18,6 +19,7 @@ keys of that new clip. Both follow from the keys of the new clips alone.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -32,7 +34,7 @@ from pipeline.signal.fingerprint import (
 )
 from pipeline.signal.pair_similarity import pair_similarities
 
-__all__ = ["Pairs", "search_added", "search_pairs"]
+__all__ = ["Pairs", "find_near_duplicates", "find_near_duplicates_flat", "search_added", "search_pairs"]
 
 
 @dataclass(frozen=True)
@@ -68,7 +70,7 @@ def search_pairs(values: np.ndarray, offsets: np.ndarray, *, min_similarity: flo
                  max_offset_frames: int = DEFAULT_MAX_OFFSET_FRAMES,
                  min_overlap_frames: int = DEFAULT_MIN_OVERLAP_FRAMES,
                  max_clips_per_key: int = DEFAULT_MAX_CLIPS_PER_KEY, min_shared_keys: int = 2) -> Pairs:
-    """:func:`~pipeline.signal.fingerprint.find_near_duplicates_flat` with each pair's shared keys.
+    """:func:`find_near_duplicates_flat` with each pair's shared keys.
 
     Examples
     --------
@@ -86,6 +88,103 @@ def search_pairs(values: np.ndarray, offsets: np.ndarray, *, min_similarity: flo
                                      min_shared_keys=min_shared_keys, with_shared=True)
     return _verified(values, offsets, codes, shared, min_similarity=min_similarity,
                      max_offset_frames=max_offset_frames, min_overlap_frames=min_overlap_frames)
+
+
+
+def find_near_duplicates(
+    fingerprints: Sequence[np.ndarray],
+    *,
+    min_similarity: float,
+    max_offset_frames: int = DEFAULT_MAX_OFFSET_FRAMES,
+    min_overlap_frames: int = DEFAULT_MIN_OVERLAP_FRAMES,
+    max_clips_per_key: int = DEFAULT_MAX_CLIPS_PER_KEY,
+    min_shared_keys: int = 2,
+) -> list[tuple[int, int, float]]:
+    """All pairs of clips whose fingerprints agree at or above ``min_similarity``.
+
+    As in Haitsma and Kalker (ISMIR 2002), candidates come from exact matches of
+    32-bit sub-fingerprints: every distinct non-zero sub-fingerprint of every clip goes
+    into a table keyed by its value, and two clips become a candidate pair when they
+    share at least ``min_shared_keys`` keys. Distorted copies keep many bit-exact
+    sub-fingerprints (over half of them after Vorbis or MP3 coding in the tests), while
+    a single shared key is mostly chance: among 100 unrelated synthetic utterances,
+    requiring two cut the candidate pairs from 292 to 66 (of 4950). Keys held by more than
+    ``max_clips_per_key`` clips (near-silence and other patterns common to much of a
+    corpus) are skipped, which bounds the pairs per key; 0, the silence pattern, is
+    never a key. Each candidate is then verified with :func:`~pipeline.signal.fingerprint.fingerprint_similarity`.
+
+    Complexity: building and sorting the table is O(F log F) for F sub-fingerprints in
+    total (sorting is the only super-linear step). A key held by k clips yields
+    k (k - 1) / 2 pairs with k <= ``max_clips_per_key``, so there are at most
+    F * max_clips_per_key / 2 candidate entries: linear in F, and in practice far
+    fewer because unrelated clips rarely share a key. Each verification costs
+    O((2 * max_offset_frames + 1) * frames). Memory is that of the candidate entries.
+
+    A group of more than ``max_clips_per_key`` copies of one recording has all its keys
+    skipped and is not found here; exact copies are cheaper to find by content hash.
+
+    Parameters
+    ----------
+    fingerprints : Sequence[np.ndarray]
+        One fingerprint per clip (empty arrays allowed; they never match).
+    min_similarity : float
+        Threshold in (0, 1] on :func:`~pipeline.signal.fingerprint.fingerprint_similarity`.
+    max_offset_frames, min_overlap_frames : int
+        Passed to :func:`~pipeline.signal.fingerprint.fingerprint_similarity`.
+    max_clips_per_key : int
+        Keys shared by more clips than this generate no candidates.
+    min_shared_keys : int
+        Distinct shared keys a pair needs to be verified.
+
+    Returns
+    -------
+    list of (int, int, float)
+        ``(i, j, similarity)`` with ``i < j`` indices into ``fingerprints``, sorted by
+        ``i`` then ``j``.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> fps = [rng.integers(1, 2**32, size=200, dtype=np.uint32) for _ in range(3)]
+    >>> fps.append(fps[0].copy())
+    >>> find_near_duplicates(fps, min_similarity=0.85)
+    [(0, 3, 1.0)]
+    """
+    fps = [np.asarray(fp, dtype=np.uint32) for fp in fingerprints]
+    offsets = np.zeros(len(fps) + 1, dtype=np.int64)
+    np.cumsum([fp.size for fp in fps], out=offsets[1:])
+    return find_near_duplicates_flat(np.concatenate(fps) if fps else np.zeros(0, np.uint32), offsets,
+                                     min_similarity=min_similarity, max_offset_frames=max_offset_frames,
+                                     min_overlap_frames=min_overlap_frames, max_clips_per_key=max_clips_per_key,
+                                     min_shared_keys=min_shared_keys)
+
+
+def find_near_duplicates_flat(
+    values: np.ndarray,
+    offsets: np.ndarray,
+    *,
+    min_similarity: float,
+    max_offset_frames: int = DEFAULT_MAX_OFFSET_FRAMES,
+    min_overlap_frames: int = DEFAULT_MIN_OVERLAP_FRAMES,
+    max_clips_per_key: int = DEFAULT_MAX_CLIPS_PER_KEY,
+    min_shared_keys: int = 2,
+) -> list[tuple[int, int, float]]:
+    """:func:`find_near_duplicates` on fingerprints held one after the other, as
+    :func:`~pipeline.signal.fingerprint.decode_fingerprints` gives them (fingerprint ``k`` is
+    ``values[offsets[k]:offsets[k + 1]]``): the same pairs, without one array per clip.
+
+    Examples
+    --------
+    >>> fp = np.random.default_rng(0).integers(1, 2**32, size=200, dtype=np.uint32)
+    >>> other = np.random.default_rng(1).integers(1, 2**32, size=200, dtype=np.uint32)
+    >>> find_near_duplicates_flat(np.concatenate([fp, other, fp]), np.array([0, 200, 400, 600]), min_similarity=0.85)
+    [(0, 2, 1.0)]
+    """
+    # One search for both: search_pairs also keeps each pair's shared keys for a
+    # rebuild's search of added clips.
+    return search_pairs(values, offsets, min_similarity=min_similarity, max_offset_frames=max_offset_frames,
+                        min_overlap_frames=min_overlap_frames, max_clips_per_key=max_clips_per_key,
+                        min_shared_keys=min_shared_keys).as_list()
 
 
 # Slots of the filter that finds the sub-fingerprints equal to a new clip's key (16 MB):

@@ -7,9 +7,13 @@ search for copies.
   IEEE Trans. Audio Electroacoustics 15(2), 1967) instead of the paper's long frames;
   :func:`encode_fingerprint` and :func:`decode_fingerprint` keep them in a string
   column.
-- :func:`fingerprint_similarity` compares two fingerprints over small shifts, and
-  :func:`find_near_duplicates` finds all similar pairs of a corpus: clips that are the
-  same recording after resampling, re-encoding or a gain change.
+- :func:`fingerprint_similarity` compares two fingerprints over small shifts: clips that
+  are the same recording after resampling, re-encoding or a gain change agree closely.
+- The candidate pairs of a corpus (``_candidate_pairs``: clips sharing keys) and the
+  search's parameters. The search itself, which verifies and lists the pairs, is
+  :func:`pipeline.signal.added_search.find_near_duplicates`: the audio stage, which
+  computes fingerprints, does not reach it, so its code version (which covers every
+  module a stage can execute, :mod:`pipeline.core.codeversion`) does not change with it.
 
 Pure functions on numpy arrays. librosa is deliberately not used: its first call in a
 process spends seconds on JIT compilation, which a per-file worker pays again and
@@ -21,7 +25,6 @@ from __future__ import annotations
 import base64
 import binascii
 import functools
-from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
@@ -33,7 +36,6 @@ from pipeline.signal.arrays import check_sample_rate, mono_float, periodic_hann
 __all__ = [
     "decode_fingerprint",
     "encode_fingerprint",
-    "find_near_duplicates",
     "fingerprint",
     "fingerprint_similarity",
 ]
@@ -327,75 +329,6 @@ def fingerprint_similarity(
 
 DEFAULT_MAX_CLIPS_PER_KEY = 64
 
-
-def find_near_duplicates(
-    fingerprints: Sequence[np.ndarray],
-    *,
-    min_similarity: float,
-    max_offset_frames: int = DEFAULT_MAX_OFFSET_FRAMES,
-    min_overlap_frames: int = DEFAULT_MIN_OVERLAP_FRAMES,
-    max_clips_per_key: int = DEFAULT_MAX_CLIPS_PER_KEY,
-    min_shared_keys: int = 2,
-) -> list[tuple[int, int, float]]:
-    """All pairs of clips whose fingerprints agree at or above ``min_similarity``.
-
-    As in Haitsma and Kalker (ISMIR 2002), candidates come from exact matches of
-    32-bit sub-fingerprints: every distinct non-zero sub-fingerprint of every clip goes
-    into a table keyed by its value, and two clips become a candidate pair when they
-    share at least ``min_shared_keys`` keys. Distorted copies keep many bit-exact
-    sub-fingerprints (over half of them after Vorbis or MP3 coding in the tests), while
-    a single shared key is mostly chance: among 100 unrelated synthetic utterances,
-    requiring two cut the candidate pairs from 292 to 66 (of 4950). Keys held by more than
-    ``max_clips_per_key`` clips (near-silence and other patterns common to much of a
-    corpus) are skipped, which bounds the pairs per key; 0, the silence pattern, is
-    never a key. Each candidate is then verified with :func:`fingerprint_similarity`.
-
-    Complexity: building and sorting the table is O(F log F) for F sub-fingerprints in
-    total (sorting is the only super-linear step). A key held by k clips yields
-    k (k - 1) / 2 pairs with k <= ``max_clips_per_key``, so there are at most
-    F * max_clips_per_key / 2 candidate entries: linear in F, and in practice far
-    fewer because unrelated clips rarely share a key. Each verification costs
-    O((2 * max_offset_frames + 1) * frames). Memory is that of the candidate entries.
-
-    A group of more than ``max_clips_per_key`` copies of one recording has all its keys
-    skipped and is not found here; exact copies are cheaper to find by content hash.
-
-    Parameters
-    ----------
-    fingerprints : Sequence[np.ndarray]
-        One fingerprint per clip (empty arrays allowed; they never match).
-    min_similarity : float
-        Threshold in (0, 1] on :func:`fingerprint_similarity`.
-    max_offset_frames, min_overlap_frames : int
-        Passed to :func:`fingerprint_similarity`.
-    max_clips_per_key : int
-        Keys shared by more clips than this generate no candidates.
-    min_shared_keys : int
-        Distinct shared keys a pair needs to be verified.
-
-    Returns
-    -------
-    list of (int, int, float)
-        ``(i, j, similarity)`` with ``i < j`` indices into ``fingerprints``, sorted by
-        ``i`` then ``j``.
-
-    Examples
-    --------
-    >>> rng = np.random.default_rng(0)
-    >>> fps = [rng.integers(1, 2**32, size=200, dtype=np.uint32) for _ in range(3)]
-    >>> fps.append(fps[0].copy())
-    >>> find_near_duplicates(fps, min_similarity=0.85)
-    [(0, 3, 1.0)]
-    """
-    fps = [np.asarray(fp, dtype=np.uint32) for fp in fingerprints]
-    offsets = np.zeros(len(fps) + 1, dtype=np.int64)
-    np.cumsum([fp.size for fp in fps], out=offsets[1:])
-    return find_near_duplicates_flat(np.concatenate(fps) if fps else np.zeros(0, np.uint32), offsets,
-                                     min_similarity=min_similarity, max_offset_frames=max_offset_frames,
-                                     min_overlap_frames=min_overlap_frames, max_clips_per_key=max_clips_per_key,
-                                     min_shared_keys=min_shared_keys)
-
-
 # Sub-fingerprints are grouped by key in shards of their top bits, one shard at a time, so
 # the working arrays hold a sixteenth of a corpus's sub-fingerprints at once.
 _SHARD_BITS = 4
@@ -526,36 +459,6 @@ def _raise_for_first_bad(chars: np.ndarray, offsets: np.ndarray) -> None:
     for k in range(len(offsets) - 1):
         decode_fingerprint(bytes(chars[offsets[k]:offsets[k + 1]]).decode("latin-1"))
     raise ParameterError("a fingerprint text is not base64 of uint32 values")
-
-
-def find_near_duplicates_flat(
-    values: np.ndarray,
-    offsets: np.ndarray,
-    *,
-    min_similarity: float,
-    max_offset_frames: int = DEFAULT_MAX_OFFSET_FRAMES,
-    min_overlap_frames: int = DEFAULT_MIN_OVERLAP_FRAMES,
-    max_clips_per_key: int = DEFAULT_MAX_CLIPS_PER_KEY,
-    min_shared_keys: int = 2,
-) -> list[tuple[int, int, float]]:
-    """:func:`find_near_duplicates` on fingerprints held one after the other, as
-    :func:`decode_fingerprints` gives them (fingerprint ``k`` is
-    ``values[offsets[k]:offsets[k + 1]]``): the same pairs, without one array per clip.
-
-    Examples
-    --------
-    >>> fp = np.random.default_rng(0).integers(1, 2**32, size=200, dtype=np.uint32)
-    >>> other = np.random.default_rng(1).integers(1, 2**32, size=200, dtype=np.uint32)
-    >>> find_near_duplicates_flat(np.concatenate([fp, other, fp]), np.array([0, 200, 400, 600]), min_similarity=0.85)
-    [(0, 2, 1.0)]
-    """
-    # One search for both: pipeline.signal.added_search keeps each pair's shared keys
-    # for a rebuild's search of added clips (imported here, as it imports this module).
-    from pipeline.signal.added_search import search_pairs
-
-    return search_pairs(values, offsets, min_similarity=min_similarity, max_offset_frames=max_offset_frames,
-                        min_overlap_frames=min_overlap_frames, max_clips_per_key=max_clips_per_key,
-                        min_shared_keys=min_shared_keys).as_list()
 
 
 def check_search_parameters(*, min_similarity: float, max_clips_per_key: int, min_shared_keys: int) -> None:
