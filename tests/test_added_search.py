@@ -107,6 +107,37 @@ def test_cache_serves_an_added_clip_and_misses_a_changed_one(tmp_path, caplog) -
     assert run(30, sha[:3] + ["f" * 64] + sha[4:], [0] + chars[1:]) == "all"  # fingerprint now empty
 
 
+def test_cache_misses_clips_in_another_order(tmp_path, caplog) -> None:
+    """Cached pairs hold indices with first < second: clips given in another order than
+    the cached search's (the stage gives them by clip_id) mean a whole search."""
+    import logging
+    from types import SimpleNamespace
+
+    import pyarrow as pa
+
+    from pipeline.stages.duplicate_cache import cache_keys, near_duplicates
+
+    fps = _corpus(np.random.default_rng(7), 30, 12)
+    ctx = SimpleNamespace(cache_dir=tmp_path, use_cache=True)
+    log = logging.getLogger("test-duplicate-cache-order")
+    ids = [f"c{k:02d}" for k in range(30)]
+
+    def run(order: list[int]) -> str:
+        caplog.clear()
+        keys = cache_keys(pa.chunked_array([[ids[k] for k in order]]), pa.chunked_array([[f"{k:064x}" for k in order]]),
+                          np.array([fps[k].size for k in order]))
+        chosen = [fps[k] for k in order]
+        with caplog.at_level(logging.INFO, logger=log.name):
+            found = near_duplicates(ctx, keys, _flat(chosen), min_similarity=0.6, log=log)
+        assert found.as_list() == search_pairs(*_flat(chosen), min_similarity=0.6).as_list()
+        return "added since" if "added since" in caplog.text else "all"
+
+    assert run(list(range(30))) == "all"
+    assert run(list(range(30))) == "added since"
+    assert search_pairs(*_flat(fps), min_similarity=0.6).as_list()  # pairs to renumber
+    assert run(list(range(29, -1, -1))) == "all"
+
+
 def test_positions_of_equals_isin_when_keys_share_filter_slots() -> None:
     """The filter's slots and tags only narrow the exact lookup: with 3 million keys in
     its 16 million slots many slots hold two keys of different tags (and some of the

@@ -185,6 +185,24 @@ def test_an_edit_changes_exactly_the_versions_of_the_stages_that_reach_it(
     assert _versions(package) == after
 
 
+@pytest.mark.parametrize(("rel", "changes"), [
+    ("stages/split.py", False), ("stages/selection.py", False), ("stages/audio.py", False),
+    ("stages/duplicate_cache.py", True), ("signal/added_search.py", True),
+    ("signal/pair_similarity.py", True), ("signal/fingerprint.py", True),
+])
+def test_the_near_duplicate_cache_scope_covers_the_search_not_the_split_stage(
+        rel: str, changes: bool, tmp_path: Path) -> None:
+    # pipeline/stages/duplicate_cache.py puts the version of its own reach in its cache's scope.
+    from pipeline.stages.duplicate_cache import SCOPE_MODULE
+
+    package = _copy_package(tmp_path)
+    codeversion.forget()
+    before = code_version(SCOPE_MODULE, package_dir=package)
+    (package / rel).write_text((package / rel).read_text(encoding="utf-8") + "\n# edited\n", encoding="utf-8")
+    codeversion.forget()
+    assert (code_version(SCOPE_MODULE, package_dir=package) != before) is changes
+
+
 def test_a_damaged_facts_file_is_rebuilt(tmp_path: Path) -> None:
     package = _copy_package(tmp_path)
     fresh = _versions(package)

@@ -61,10 +61,9 @@ from pipeline.core.names import (
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.core.startup import pandas_left_unloaded
 from pipeline.signal.added_search import Pairs, search_pairs
-from pipeline.signal.fingerprint import decode_fingerprints
 from pipeline.stages import gates
 from pipeline.stages.attributes import Attributes, read_attributes
-from pipeline.stages.duplicate_cache import cache_keys, near_duplicates
+from pipeline.stages.duplicate_cache import cache_keys, decoded_fingerprints, near_duplicates
 from pipeline.stages.heldout import (
     TRAINING,
     GroupFacts,
@@ -287,23 +286,6 @@ class Joined:
         return self.audio.column(column).to_numpy().astype(np.float64, copy=False)
 
 
-def _decoded_fingerprints(column: pa.ChunkedArray, order: np.ndarray
-                          ) -> tuple[tuple[np.ndarray, np.ndarray], np.ndarray]:
-    """The fingerprint column decoded at once from its Arrow buffers (values, offsets) in
-    the row order ``order``: no Python string or array per clip (245,725 clips: 16 s and
-    two objects each before), no sorted copy of the texts; and each text's length in
-    characters, in the same order."""
-    # One chunk (a manifest of one row group) is used as it is: combining copies it.
-    texts = column.chunk(0) if column.num_chunks == 1 else column.combine_chunks()
-    if texts.null_count:
-        raise DataError(f"{stage_manifest('audio')}: a clip has no fingerprint; expected one per clip")
-    _, offsets, data = texts.buffers()
-    width = np.int64 if pa.types.is_large_string(texts.type) else np.int32
-    bounds = np.frombuffer(offsets, width)[texts.offset: texts.offset + len(texts) + 1].astype(np.int64)
-    chars = np.frombuffer(data, np.uint8) if data is not None else np.zeros(0, np.uint8)
-    return decode_fingerprints(chars, bounds, order=order), np.diff(bounds)[order]
-
-
 def _first_repeat(ids: pa.ChunkedArray) -> str | None:
     """The first id equal to the one before it in ``ids`` (sorted), or None."""
     if len(ids) < 2:
@@ -326,7 +308,7 @@ def join_rows(audio: pa.Table, text: pa.Table, *, keys: bool = False) -> Joined:
     # Sorted without the fingerprints, which are decoded in sorted order from the
     # input's own buffers (a sorted copy of them peaked 0.5 GB higher at 233,161 clips).
     order = pc.sort_indices(audio, sort_keys=[("clip_id", "ascending")])
-    fingerprints, fingerprint_chars = _decoded_fingerprints(audio.column("fingerprint"), order.to_numpy())
+    fingerprints, fingerprint_chars = decoded_fingerprints(audio.column("fingerprint"), order.to_numpy())
     audio = audio.drop_columns(["fingerprint"]).take(order)
     twice = _first_repeat(text.column("clip_id").sort())
     if twice is not None:
