@@ -30,9 +30,7 @@ letter (a spelled initialism: "n b a", "a m") is read as the letter name.
 
 from __future__ import annotations
 
-import difflib
 import functools
-import importlib.metadata
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -85,11 +83,18 @@ def _homographs() -> dict[str, tuple[tuple[str, ...], tuple[str, ...]]]:
 
 def _closest(target: tuple[str, ...], choices: Sequence[tuple[str, ...]]) -> tuple[str, ...]:
     """The choice most like ``target`` (difflib ratio over phones); ties go to the earlier one."""
+    import difflib  # here: only a homograph after a part-of-speech cue needs it
+
     best = max(range(len(choices)), key=lambda i: (difflib.SequenceMatcher(None, target, choices[i]).ratio(), -i))
     return choices[best]
 
 
 def _version(distribution: str) -> str:
+    # Imported here, not with the module: importlib.metadata (with email and zipfile)
+    # cost every run's start-up about 7 ms before its first stage, and only provenance
+    # needs it.
+    import importlib.metadata
+
     try:
         return importlib.metadata.version(distribution)
     except importlib.metadata.PackageNotFoundError:
