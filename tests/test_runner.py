@@ -79,6 +79,27 @@ def test_a_full_prepare_never_loads_pandas_or_scipy(small_raw: Path, tmp_path: P
     assert (tmp_path / "out" / "manifests" / "labelled.parquet").is_file()
 
 
+def test_loading_the_stages_leaves_the_per_file_libraries_for_later() -> None:
+    # A run imports every stage's module before its first stage starts, with nothing
+    # else to do meanwhile; the per-file libraries load in the audio stage's warm-up,
+    # which runs while ingest's workers probe, or not at all when no file is new, and
+    # provenance's importlib.metadata when the text stage asks for it (DEVELOPERS.md,
+    # start-up cost). A fresh interpreter, since this test process holds them all.
+    import subprocess
+    import sys
+
+    script = (
+        "import sys\n"
+        "import pipeline.commands.cli, pipeline.core.runner\n"
+        "from pipeline.stages import STAGES\n"
+        "print([stage.name for stage in STAGES])\n"
+        "print(sorted(m for m in ('soundfile', 'soxr', 'webrtcvad', 'importlib.metadata', 'difflib')\n"
+        "             if m in sys.modules))\n"
+    )
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, check=True)
+    assert done.stdout.splitlines() == ["['ingest', 'audio', 'text', 'split']", "[]"]
+
+
 def test_ingest_reusing_its_probe_cache_leaves_pandas_unloaded(small_raw: Path, tmp_path: Path) -> None:
     # A rebuild's ingest joins the probe cache to RAW's listing in Arrow; turning the
     # join's result into numpy imports pandas unless refused (0.17 s of a 20,000-file

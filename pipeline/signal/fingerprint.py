@@ -28,7 +28,6 @@ import functools
 from typing import Any
 
 import numpy as np
-import soxr
 
 from pipeline.core.errors import ParameterError
 from pipeline.signal.arrays import check_sample_rate, mono_float, periodic_hann
@@ -158,6 +157,10 @@ def fingerprint(samples: np.ndarray, *, sample_rate: int) -> np.ndarray:
     check_sample_rate(sample_rate)
     x = mono_float(samples).astype(np.float32, copy=False)
     if sample_rate != FP_SAMPLE_RATE and x.size:
+        # Imported here: the split stage imports this module for its other functions,
+        # which need no soxr; the audio stage's warm-up imports it for the workers.
+        import soxr
+
         x = soxr.resample(x, sample_rate, FP_SAMPLE_RATE)
     if x.size < FP_SPAN + FP_HOP:
         return np.zeros(0, dtype=np.uint32)

@@ -728,7 +728,8 @@ def warm_up(cfg: AudioConfig) -> None:
     import soxr  # noqa: F401
     import webrtcvad  # noqa: F401
 
-    from pipeline.signal import fingerprint, loudness, snr
+    # bandwidth: each file's LongTermPsd imports it; imported here, no worker does.
+    from pipeline.signal import bandwidth, fingerprint, loudness, snr  # noqa: F401
 
     loudness.k_weighting_sos(sample_rate=cfg.sample_rate)
     if cfg.quality_measures:
