@@ -80,10 +80,10 @@ def test_a_full_prepare_never_loads_pandas_or_scipy(small_raw: Path, tmp_path: P
 
 
 def test_loading_the_stages_leaves_the_per_file_libraries_for_later() -> None:
-    # A run imports every stage's module before its first stage starts, with nothing
-    # else to do meanwhile; the per-file libraries load in the audio stage's warm-up,
-    # which runs while ingest's workers probe, or not at all when no file is new, and
-    # provenance's importlib.metadata when the text stage asks for it (DEVELOPERS.md,
+    # A run imports each stage's module before it runs, or while ingest's workers probe
+    # (which on a rebuild finish first, so the driver's imports are what it waits for);
+    # the per-file libraries load in the audio stage's warm-up only when some file is new,
+    # and importlib.metadata when the pronouncer's provenance asks for it (DEVELOPERS.md,
     # start-up cost). A fresh interpreter, since this test process holds them all.
     import subprocess
     import sys
