@@ -40,6 +40,7 @@ import soxr
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
+from pipeline.signal import added_search  # noqa: E402
 from pipeline.signal import fingerprint as fpmod  # noqa: E402
 from pipeline.signal.arrays import periodic_hann  # noqa: E402
 
@@ -134,14 +135,14 @@ def measure(func: Callable[..., np.ndarray], versions: list[dict[str, np.ndarray
     for kind in versions[0]:
         if kind == "original":
             continue
-        found = [bool(fpmod.find_near_duplicates([f["original"], f[kind]], min_similarity=MIN_SIMILARITY, **shift))
+        found = [bool(added_search.find_near_duplicates([f["original"], f[kind]], min_similarity=MIN_SIMILARITY, **shift))
                  for f in fps]
         sims = [fpmod.fingerprint_similarity(f["original"], f[kind], **shift) for f in fps]
         out[kind] = {"recall": float(np.mean(found)), "lowest_similarity": float(min(sims))}
     originals = [f["original"] for f in fps]
     same = [(i, j) for i, j in itertools.combinations(range(len(originals)), 2) if speakers[i] == speakers[j]]
     sims = [fpmod.fingerprint_similarity(originals[i], originals[j], **shift) for i, j in same]
-    indexed = fpmod.find_near_duplicates(originals, min_similarity=MIN_SIMILARITY, **shift)
+    indexed = added_search.find_near_duplicates(originals, min_similarity=MIN_SIMILARITY, **shift)
     out["same_speaker_pairs"] = len(same)
     out["false_matches"] = int(sum(s >= MIN_SIMILARITY for s in sims))
     out["highest_unrelated_similarity"] = float(max(sims))
