@@ -498,3 +498,85 @@ def test_the_cache_follows_the_config_the_code_and_each_source(first_run, raw: P
     assert renamed.run_stats["sources_processed"] == 1
     assert rows_of(renamed) == rows_of(run_with(tmp_path / "scratch"))
     assert "audio/dora/" in " ".join(r["audio_path"] for r in rows_of(renamed))
+
+
+def digests(out: Path) -> dict[str, str]:
+    """SHA-256 of every manifest and stage output under ``out``, by path, but the split
+    summary: it counts the clips the split run added to the ledger, and a copied OUT
+    reruns the split stage (its outputs have new inodes), which adds none."""
+    files = [p for folder in ("manifests", "stages") for p in sorted((out / folder).rglob("*"))
+             if p.is_file() and p.name != "split.summary.json"]
+    return {str(p.relative_to(out)): hashlib.sha256(p.read_bytes()).hexdigest() for p in files}
+
+
+def test_a_copied_out_keeps_every_clip_by_content(demo_build: Path, tmp_path: Path, monkeypatch, caplog):
+    # cp -a of OUT: the same bytes and mtimes in new inodes. Each clip is hashed and kept
+    # (its bytes are the audio_sha256 recorded for it), nothing is conditioned again, the
+    # outputs are those of a rerun without the copy, and the next run finds the new
+    # inodes recorded.
+    from pipeline.core.config import load_config
+    from pipeline.core.runner import Runner
+    from pipeline.stages import STAGES
+
+    def prepare(out: Path) -> None:
+        Runner(DEMO, out, load_config(DEMO / "corpus.toml"), stages=STAGES, workers=2).prepare()
+
+    # The same files (hard links: Loam replaces a file by rename, so the build stays as it
+    # is) rerun in place: what the copy must give.
+    same = tmp_path / "same"
+    shutil.copytree(demo_build, same, copy_function=os.link)
+    prepare(same)
+    copy = tmp_path / "copy"
+    shutil.copytree(demo_build, copy)  # copy2: sizes and mtimes kept, new inodes
+    clips = pa.parquet.read_table(demo_build / "stages" / "audio.parquet").num_rows
+    monkeypatch.setattr(logging.getLogger("loam"), "propagate", True)
+    monkeypatch.setattr(audio, "condition_file", lambda job: pytest.fail(f"conditioned {job.row['source_path']}"))
+    with caplog.at_level(logging.INFO, logger="loam"):
+        prepare(copy)
+    assert f"audio: {clips} clip files of unchanged size and time but a new inode" in caplog.text
+    assert f"hashed again: {clips} hold the bytes recorded for them" in caplog.text
+    assert "audio  this run: sources_processed=0" in caplog.text
+    assert digests(copy) == digests(same)
+    caplog.clear()
+    with caplog.at_level(logging.INFO, logger="loam"):
+        prepare(copy)
+    assert "hashed again" not in caplog.text
+    assert digests(copy) == digests(same)
+
+
+def rechecked(caplog) -> tuple[int, int]:
+    import re
+
+    (found,) = re.findall(r"audio: (\d+) clip files .* hashed again: (\d+) hold", caplog.text)
+    return int(found[0]), int(found[1])
+
+
+@pytest.mark.parametrize("change", ["same size and time", "another size"])
+def test_a_changed_clip_in_a_copied_out_reconditions_its_source(first_run, raw: Path, tmp_path: Path, caplog,
+                                                              change: str):
+    # Other bytes of the recorded size and mtime fail the hash; another size is not
+    # hashed at all: either way that source alone is conditioned again.
+    from tests.test_ingest_probe import replace_keeping_size_and_time
+
+    out, result = first_run
+    copy = tmp_path / "out"
+    shutil.copytree(out, copy)
+    rows = rows_of(result)
+    single = [r for r in rows if sum(o["source_path"] == r["source_path"] for o in rows) == 1][0]
+    clip = copy / single["audio_path"]
+    data = bytearray(clip.read_bytes())
+    data[-1] ^= 0x55
+    if change == "same size and time":
+        replace_keeping_size_and_time(clip, bytes(data))
+    else:
+        st = clip.stat()
+        clip.write_bytes(bytes(data) + b"\0")
+        os.utime(clip, ns=(st.st_atime_ns, st.st_mtime_ns))
+    with caplog.at_level(logging.INFO, logger="loam.test"):
+        again = run_stage(raw, copy)
+    assert again.run_stats["sources_processed"] == 1
+    hashed = len(rows) if change == "same size and time" else len(rows) - 1
+    assert rechecked(caplog) == (hashed, len(rows) - 1)
+    assert rows_of(again) == rows_of(result)
+    assert again.rejects == result.rejects
+    assert clip.read_bytes() != bytes(data)  # written again

@@ -11,13 +11,16 @@ sources maps one file into memory (checked against its SHA-256) and hands the re
 clip rows to the manifest as Arrow columns, with nothing decoded. Whether each clip
 file is still the one written is settled by one listing of ``OUT/audio``
 (:func:`file_listing`, one ``lstat`` per file) joined to the table in Arrow: no Python
-work per reused source.
+work per reused source. A clip file of the recorded size and mtime but another inode (a
+copied or moved OUT) is hashed, and stands when its bytes have the ``audio_sha256``
+recorded for it (:func:`same_bytes`); its new inode is recorded.
 """
 
 from __future__ import annotations
 
 import os
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
 
@@ -26,6 +29,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from pipeline.core.cache import TableCache, cache_key
+from pipeline.core.fsio import sha256_file
 from pipeline.core.manifest import ManifestBuilder, arrow_schema
 from pipeline.core.stage import reject
 from pipeline.core.startup import pandas_left_unloaded
@@ -129,22 +133,57 @@ def file_listing(folder: Path, *, base: Path) -> pa.Table:
                         names=["path", "st_size", "st_mtime_ns", "st_ino", "st_mode"])
 
 
-def _intact(table: pa.Table, listing: pa.Table) -> tuple[np.ndarray, np.ndarray]:
+def _intact(table: pa.Table, listing: pa.Table) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per cached row: whether it is a reject row, or a clip row whose file ``listing``
-    holds with the size, mtime and inode the table recorded; and the row of ``listing``
-    naming its file (-1 for none)."""
+    holds with the size, mtime and inode the table recorded; the row of ``listing``
+    naming its file (-1 for none); and whether it is a clip row whose file ``listing``
+    holds with the recorded size and mtime but another inode (a copied or moved OUT)."""
     where = pc.index_in(table.column("audio_path"), value_set=listing.column("path"))
     at = np.asarray(where.fill_null(-1), dtype=np.int64)
     found = at >= 0
     index = np.where(found, at, 0)
     rejected = np.asarray(table.column("reject_reason").is_valid(), dtype=bool)
     if not listing.num_rows:
-        return rejected, at
-    intact = found.copy()
-    for column in ("st_size", "st_mtime_ns", "st_ino"):
+        return rejected, at, np.zeros(len(at), dtype=bool)
+    same = found & ~rejected
+    for column in ("st_size", "st_mtime_ns"):
         recorded = table.column(column).fill_null(0).to_numpy()
-        intact &= listing.column(column).to_numpy()[index] == recorded
-    return intact | rejected, at
+        same &= listing.column(column).to_numpy()[index] == recorded
+    same_inode = listing.column("st_ino").to_numpy()[index] == table.column("st_ino").fill_null(0).to_numpy()
+    return (same & same_inode) | rejected, at, same & ~same_inode
+
+
+def same_bytes(paths: Sequence[str], sha256: Sequence[str | None], *, base: Path, threads: int) -> np.ndarray:
+    """Whether each file (``paths``, '/'-separated, relative to ``base``) holds bytes of
+    the hex SHA-256 ``sha256`` gives for it; False for a file that cannot be read.
+
+    Hashed on ``threads`` threads of this process: hashlib releases the GIL while it
+    hashes a block, so the threads hash at once, with no worker to start and nothing to
+    send but the path.
+
+    Examples
+    --------
+    >>> import hashlib, tempfile
+    >>> base = Path(tempfile.mkdtemp())
+    >>> _ = (base / "a.flac").write_bytes(b"abc")
+    >>> same_bytes(["a.flac", "a.flac", "gone.flac"], [hashlib.sha256(b"abc").hexdigest(), "00", "00"],
+    ...            base=base, threads=2).tolist()
+    [True, False, False]
+    >>> import shutil; shutil.rmtree(base)
+    """
+    root = os.fspath(base)
+
+    def check(job: tuple[str, str | None]) -> bool:
+        try:
+            return job[1] is not None and sha256_file(os.path.join(root, job[0])) == job[1]
+        except OSError:
+            return False  # gone or unreadable: the source is processed again
+
+    jobs = list(zip(paths, sha256, strict=True))
+    if threads <= 1 or len(jobs) <= 1:
+        return np.array([check(job) for job in jobs], dtype=bool)
+    with ThreadPoolExecutor(max_workers=threads) as pool:
+        return np.fromiter(pool.map(check, jobs), dtype=bool, count=len(jobs))
 
 
 def _outcome_runs(keys: pa.ChunkedArray) -> tuple[pa.Array, np.ndarray, np.ndarray, np.ndarray]:
@@ -180,13 +219,19 @@ class OutcomeCache:
         self._listing: pa.Table | None = None
         self._kept_listed_at = np.zeros(0, dtype=np.int64)
         self._fresh_modes: dict[str, int] = {}
+        # Clips of another inode hashed by reuse, and how many held their recorded bytes
+        # (whose new inode the table then records: ``_restat``).
+        self.rechecked = (0, 0)
+        self._restat = False
 
-    def reuse(self, keys: pa.Array, *, listing: pa.Table,
-              builder: ManifestBuilder) -> tuple[list[int], dict[int, list[dict[str, Any]]]]:
+    def reuse(self, keys: pa.Array, *, listing: pa.Table, builder: ManifestBuilder, base: Path,
+              threads: int = 1) -> tuple[list[int], dict[int, list[dict[str, Any]]]]:
         """Put the clip rows of every source whose outcome is cached, with its clip files
-        intact (as ``listing``, :func:`file_listing` of OUT/audio, finds them), into
-        ``builder``; return the indices of the other sources and the cached rejects by
-        source index. Columnar: Python touches only the rejects."""
+        intact (as ``listing``, :func:`file_listing` of OUT/audio, finds them, or of
+        another inode but the recorded bytes: :meth:`_recheck`, on ``threads`` threads,
+        the paths relative to ``base``), into ``builder``; return the indices of the other
+        sources and the cached rejects by source index. Columnar: Python touches only the
+        rejects and the rechecked clips."""
         self._listing = listing
         table = self.table.load()
         if table is None or not len(keys):
@@ -194,10 +239,13 @@ class OutcomeCache:
             return list(range(len(keys))), {}
         self._stored_rows = table.num_rows
         distinct, last_run, first, lengths = _outcome_runs(table.column("cache_key"))
-        intact, listed_at = _intact(table, listing)
-        run_intact = np.logical_and.reduceat(intact, first) if len(first) else np.zeros(0, dtype=bool)
+        intact, listed_at, moved = _intact(table, listing)
         code = np.asarray(pc.index_in(keys, value_set=distinct).fill_null(-1), dtype=np.int64)
         run = np.where(code >= 0, last_run[np.maximum(code, 0)], -1)
+        if moved.any():
+            table = self._recheck(table, intact, moved, listed_at, runs=(run[run >= 0], first, lengths),
+                                  base=base, threads=threads)
+        run_intact = np.logical_and.reduceat(intact, first) if len(first) else np.zeros(0, dtype=bool)
         reused = np.flatnonzero((run >= 0) & run_intact[np.maximum(run, 0)])
         runs = run[reused]
         ends = np.cumsum(lengths[runs])
@@ -211,7 +259,7 @@ class OutcomeCache:
         whole = len(kept) == table.num_rows and bool(np.all(kept == np.arange(len(kept))))
         self._kept = table if whole else table.take(pa.array(kept, pa.int64()))
         self._kept_listed_at = listed_at if whole else listed_at[kept]
-        self._changed = self._kept.num_rows != table.num_rows or self.table.has_parts
+        self._changed = self._kept.num_rows != table.num_rows or self.table.has_parts or self._restat
         rejected = np.asarray(self._kept.column("reject_reason").is_valid(), dtype=bool)
         rejects_at: dict[int, list[dict[str, Any]]] = {}
         for position in np.flatnonzero(rejected).tolist():
@@ -220,6 +268,36 @@ class OutcomeCache:
         todo = np.ones(len(keys), dtype=bool)
         todo[reused] = False
         return np.flatnonzero(todo).tolist(), rejects_at
+
+    def _recheck(self, table: pa.Table, intact: np.ndarray, moved: np.ndarray, listed_at: np.ndarray, *,
+                 runs: tuple[np.ndarray, np.ndarray, np.ndarray], base: Path, threads: int) -> pa.Table:
+        """Hash the clip files ``moved`` marks (recorded size and mtime, another inode) of
+        the outcomes this run wants (``runs``: the wanted runs, each run's first row and
+        length) whose other rows are intact; mark in ``intact`` those holding the bytes
+        recorded for them, and return ``table`` with their new inodes."""
+        wanted, first, lengths = runs
+        run_of = np.repeat(np.arange(len(first)), lengths)
+        candidate = np.zeros(len(first), dtype=bool)
+        candidate[wanted] = True
+        if len(first):
+            candidate &= np.logical_and.reduceat(intact | moved, first)
+        rows = np.flatnonzero(moved & candidate[run_of])
+        at = pa.array(rows, pa.int64())
+        held = same_bytes(table.column("audio_path").take(at).to_pylist(),
+                          table.column("audio_sha256").take(at).to_pylist(), base=base, threads=threads)
+        confirmed = rows[held]
+        self.rechecked = (len(rows), len(confirmed))
+        if not len(confirmed):
+            return table
+        intact[confirmed] = True
+        self._restat = True
+        mask = np.zeros(table.num_rows, dtype=bool)
+        mask[confirmed] = True
+        inodes = np.zeros(table.num_rows, dtype=np.uint64)
+        assert self._listing is not None  # reuse set it
+        inodes[confirmed] = self._listing.column("st_ino").to_numpy()[listed_at[confirmed]]
+        column = pc.if_else(pa.array(mask), pa.array(inodes, pa.uint64()), table.column("st_ino"))
+        return table.set_column(table.schema.get_field_index("st_ino"), "st_ino", column)
 
     def _fresh_rows(self) -> int:
         return sum(part.num_rows for part in self._fresh)
@@ -284,7 +362,8 @@ class OutcomeCache:
         if not self._changed:
             return
         every_one_reused = self._kept is not None and self._kept.num_rows == self._stored_rows
-        if every_one_reused and self.table.part_rows <= PARTS_SHARE * (self._stored_rows + self._fresh_rows()):
+        # Rechecked clips' new inodes are in the kept rows only: the table is rewritten.
+        if every_one_reused and not self._restat and self.table.part_rows <= PARTS_SHARE * (self._stored_rows + self._fresh_rows()):
             return
         tables = ([self._kept] if self._kept is not None else []) + self._fresh
         self.table.save(pa.concat_tables(tables) if tables else self.schema.empty_table())
