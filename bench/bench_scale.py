@@ -7,7 +7,10 @@ Measures, on one generated dump:
 - the rebuild after 1 % new files added in place (hard links keep the old files' inodes
   and mtimes, the new ones are copies), and what it costs beyond the new files' own
   processing, per existing source: ``(rebuild - cold * new / all) / existing``, the cold
-  run's cost per source standing for a new file's own processing;
+  run's cost per source standing for a new file's own processing. The rebuild runs
+  ``--rebuild-rounds`` times from the same state and the fastest is the figure, as
+  ``make bench`` takes the fastest of its rounds (one run varied by a second and more
+  between benchmarks on this shared machine);
 - the no-change rerun of the grown dump;
 - the split stage alone on generated stage manifests (``bench/bench_split.py``): cold
   CPU seconds and peak memory, and a rebuild's CPU per existing source;
@@ -27,6 +30,7 @@ import os
 import shutil
 import sys
 from pathlib import Path
+from typing import Any
 
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
@@ -67,6 +71,54 @@ def grow(raw: Path, extra: Path, grown: Path) -> None:
             shutil.copy2(src, dst)
 
 
+def stat_listing(root: Path) -> list[tuple[str, int, int, int]]:
+    """(path under ``root``, size, mtime in ns, inode) of every file under ``root``, sorted."""
+    found = []
+    for folder, _, files in os.walk(root):
+        for name in files:
+            st = os.lstat(os.path.join(folder, name))
+            found.append((os.path.relpath(os.path.join(folder, name), root), st.st_size, st.st_mtime_ns, st.st_ino))
+    return sorted(found)
+
+
+def _reuse(out: Path) -> list[Any]:
+    """What each stage of the last run reused and processed (its run log's counts)."""
+    log = json.loads((out / "logs" / "last-run.json").read_text())
+    return [s.get("run_stats") for s in log["stages"]]
+
+
+def rebuild_rounds(grown: Path, out: Path, workers: int, rounds: int) -> dict[str, Any]:
+    """The rebuild of ``out`` on ``grown``, ``rounds`` times from the same state: the
+    fastest round's figures, with every round's wall seconds (``all_wall_s``).
+
+    Before each round but the last, OUT is kept as hard links beside it, and put back
+    after the round. Loam replaces every file it writes by a rename and never writes one
+    in place, so the links keep the starting state's bytes, mtimes and inodes; the
+    benchmark checks that (a stat of every file) and that every round reused and
+    processed the same, and stops if not, rather than time rounds that differ.
+    """
+    kept = out.with_name(out.name + ".before-rebuild")
+    before = stat_listing(out)
+    figures, reuse = [], []
+    for i in range(rounds):
+        last = i == rounds - 1
+        if not last:
+            shutil.rmtree(kept, ignore_errors=True)
+            shutil.copytree(out, kept, copy_function=os.link, symlinks=True)
+        figures.append(prepare(grown, out, workers))
+        reuse.append(_reuse(out))
+        if not last:
+            shutil.rmtree(out)
+            kept.rename(out)
+            if stat_listing(out) != before:
+                raise SystemExit(f"bench: a rebuild changed a file under {out} in place; rounds cannot restart")
+    if any(r != reuse[0] for r in reuse):
+        raise SystemExit(f"bench: the rebuild rounds reused different work: {reuse}")
+    best = min(figures, key=lambda f: f["wall_s"])
+    best["all_wall_s"] = [f["wall_s"] for f in figures]  # type: ignore[assignment]
+    return best
+
+
 def cluster_cold(raw: Path, out: Path, workers: int) -> dict[str, float]:
     """A cold run against a LocalCluster of ``workers`` single-threaded processes
     (started by this script, so the run's own peak RSS is the driver's)."""
@@ -83,6 +135,7 @@ def main() -> int:
     parser.add_argument("--speakers", type=int, default=500)
     parser.add_argument("--workers", type=int, default=2)
     parser.add_argument("--cluster", action="store_true", help="the cold run on a dask LocalCluster")
+    parser.add_argument("--rebuild-rounds", type=int, default=3, help="rebuilds from the same state; the fastest counts")
     args = parser.parse_args()
     work = args.out.resolve()
     work.mkdir(parents=True, exist_ok=True)
@@ -109,7 +162,7 @@ def main() -> int:
         results["cold_on"] = f"local pool, {args.workers} workers"
     rerun = prepare(raw, out, args.workers)
     grow(raw, raw.parent / "extra", grown)
-    rebuild = prepare(grown, out, args.workers)
+    rebuild = rebuild_rounds(grown, out, args.workers, max(1, args.rebuild_rounds))
     rerun_grown = prepare(grown, out, args.workers)
     shutil.rmtree(grown, ignore_errors=True)
     results["outputs"] = output_figures(out)  # validate --manifests-only and report on the grown build
@@ -139,6 +192,8 @@ def print_table(r: dict) -> None:
             continue
         fig = r[key]
         note = "target < 2 s: " + ("met" if fig["wall_s"] < 2 else "MISSED") if key.startswith("rerun") else ""
+        if "all_wall_s" in fig:
+            note = "fastest of " + ", ".join(f"{w:.2f}" for w in fig["all_wall_s"])
         rows.append((f"{label} (s)", f"{fig['wall_s']:.2f}", note))
         if "driver_peak_rss_mb" in fig:
             ok = fig["driver_peak_rss_mb"] < 2048
