@@ -207,6 +207,8 @@ def print_table(r: dict) -> None:
         rows.append(("validate --manifests-only (s)", f"{o['validate_manifests_only_s']:.2f}",
                      f"{o['validate_rows_per_s_subsets']} subset rows/s, target >= 100,000: "
                      + ("met" if o["validate_rows_per_s_subsets"] >= 100_000 else "MISSED")))
+        rows.append(("  validate's findings on the grown build", f"{o['validate_errors']}",
+                     f"errors, {o['validate_warnings']} warnings (loam validate OUT lists them)"))
         rows.append(("loam report (s)", f"{o['report_s']:.2f}",
                      "target < 30 s: " + ("met" if o["report_s"] < 30 else "MISSED")))
     if "split_alone" in r:

@@ -69,3 +69,16 @@ def test_a_file_changed_in_place_stops_the_rounds(tmp_path: Path, monkeypatch: A
     monkeypatch.setattr(bench_scale, "prepare", _runs([7.0, 7.0], in_place=True))
     with pytest.raises(SystemExit, match="in place"):
         bench_scale.rebuild_rounds(tmp_path / "raw", out, 2, 2)
+
+
+def test_an_exit_status_named_as_a_result_is_timed_and_another_stops_the_benchmark() -> None:
+    # loam validate exits 1 when the build it checked has errors: a verdict, still timed.
+    import sys
+
+    from bench.run import measured
+
+    verdict = [sys.executable, "-c", "raise SystemExit(1)"]
+    wall, rss = measured(verdict, exit_codes=(0, 1))
+    assert wall > 0 and rss > 0
+    with pytest.raises(SystemExit, match="exit code 1"):
+        measured(verdict)
