@@ -24,9 +24,11 @@ from pipeline.core.manifest import empty_table, write_manifest
 from pipeline.core.names import REJECTED, RESOLVED_CONFIG, subset_manifest
 from pipeline.core.stage import StageResult
 from pipeline.stages import split
+from pipeline.stages.decisions import append_decision
 from pipeline.stages.heldout import GroupFacts, PartTarget, choose_parts
 from pipeline.stages.ledger import MAGIC, MAGIC_V1, read_ledger
 from pipeline.stages.prompts import prompt_key
+from pipeline.stages.review_apply import decisions_file
 from tests.test_split import Corpus, all_rows, make_ctx, random_fingerprint, rows_by_subset
 
 # Invented speaker names.
@@ -339,6 +341,30 @@ def test_a_new_near_duplicate_binding_dev_and_test_moves_nothing_and_is_reported
     assert result.summary["changes"]["straddling_parts_groups"] == [bound]
     problems = validate_out(write_out(tmp_path, result, data), audio_files=False).problems
     assert {(p.check, p.column) for p in problems} == {("part_leak", "group")}
+
+
+def test_excluding_the_new_copy_at_review_unbinds_dev_and_test(tmp_path: Path) -> None:
+    # The remedy docs/split.md names for a new near-duplicate binding two parts: a
+    # reviewer keeps one copy (the other is excluded). An excluded clip is no longer in
+    # the corpus, so it binds no groups: the parts are apart again, nothing moved, and
+    # validate is clean.
+    corpus = prompted_corpus()
+    data = {"split": {"heldout": "34%", "labelled_budgets": ["1m"]}}
+    before = places(split.run(make_ctx(tmp_path, corpus, data)))
+    speakers = {p: sorted({r["speaker"] for r in corpus.audio if before[r["clip_id"]] == p}) for p in ("dev", "test")}
+    copied = next(r for r in corpus.audio if r["speaker"] == speakers["dev"][0])
+    new = corpus.add(speakers["test"][0], copied["duration_s"], transcribed=False,
+                     fingerprint=random_fingerprint(copied["clip_id"], copied["duration_s"]))
+    assert split.run(make_ctx(tmp_path, corpus, data)).summary["changes"]["straddling_parts_groups"]
+    ctx = make_ctx(tmp_path, corpus, data)
+    append_decision(decisions_file(ctx), {"decision": "exclude", "clip_id": new, "reason": "duplicate"})
+    result = split.run(ctx)
+    after = places(result)
+    assert new not in after and {c for c in before if before[c] != after.get(c)
+                                 and not {before[c], after[c]} <= {"labelled", "unlabelled"}} == set()
+    assert result.summary["changes"]["straddling_parts_groups"] == []
+    assert [r["reason"] for r in result.rejects] == ["review_excluded"]
+    assert validate_out(write_out(tmp_path, result, data), audio_files=False).problems == []
 
 
 def test_version_1_ledger_gets_parts_without_moving_anything(tmp_path: Path) -> None:

@@ -33,6 +33,15 @@ def shown_path(ctx: StageContext, path: Path) -> str:
     return str(path.relative_to(ctx.out)) if path.is_relative_to(ctx.out) else str(path)
 
 
+def excluded_clips(ctx: StageContext) -> set[str]:
+    """The clips whose last verdict is an exclusion. The split stage leaves them out of
+    the pairs that bind groups: an excluded clip is no longer in the corpus, so a copy
+    that a reviewer set aside no longer ties the groups of its near-duplicates together
+    (keeping one copy of a near-duplicate that bound two held-out parts parts them again)."""
+    found, _ = read_decisions(decisions_file(ctx))
+    return {cid for cid, d in effective(found)[0].items() if d.decision == "exclude"}
+
+
 def split_exclusions(ctx: StageContext, clips: Sequence[Any]) -> tuple[list[dict[str, Any]], set[str], Tally,
                                                                        str]:
     """The split stage's share: a ``review_excluded`` reject per excluded clip (its

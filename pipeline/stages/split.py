@@ -34,7 +34,7 @@ import gc
 import math
 import re
 from collections import Counter, defaultdict
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Collection, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from operator import attrgetter, countOf
 from pathlib import Path
@@ -85,7 +85,7 @@ from pipeline.stages.ledger import (
     write_ledger,
 )
 from pipeline.stages.prompts import DEMOTED, UNSCORED, prompt_key, prompt_set
-from pipeline.stages.review_apply import decisions_file, log_tally, split_exclusions
+from pipeline.stages.review_apply import decisions_file, excluded_clips, log_tally, split_exclusions
 from pipeline.stages.selection import Candidate, TierOutcome, TierPlan, fill_tiers
 from pipeline.stages.speakers import speaker_id
 
@@ -463,13 +463,14 @@ def _flag_sets(masks: Mapping[str, np.ndarray], count: int) -> list[frozenset[st
     return [distinct[c] for c in code.tolist()]
 
 
-def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None
+def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None, unbound: Collection[str] = ()
                 ) -> tuple[list[Clip], DuplicatePairs]:
     """Every joined row as a Clip: groups bound by duplicates, gate measures and flags.
 
     ``near`` holds the near-duplicate pairs when the caller searched already (through
-    the cache of :mod:`pipeline.stages.duplicate_cache`). Returns the clips in clip_id
-    order and the duplicate pairs (indices into them).
+    the cache of :mod:`pipeline.stages.duplicate_cache`). A clip of ``unbound`` (excluded
+    at review) binds no groups; it keeps its pairs and flag. Returns the clips in
+    clip_id order and the duplicate pairs (indices into them).
     """
     qc, group_by = cfg.quality, cfg.split.group_by
     audio, texts = joined.audio, joined.texts
@@ -482,8 +483,9 @@ def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None
     pairs, partners = find_duplicates(clip_ids, audio.column("audio_sha256"), near)
     base = {"speaker": speakers, "recording": audio.column("source_id").to_pylist(), "clip": clip_ids}[group_by]
     # A pair within one group binds nothing: most pairs, when grouping by speaker.
+    out = {i for i, cid in enumerate(clip_ids) if cid in unbound} if unbound else set()
     merged = merge_groups(base, [(i, j) for i, j in zip(pairs.first.tolist(), pairs.second.tolist(), strict=True)
-                                 if base[i] != base[j]])
+                                 if base[i] != base[j] and i not in out and j not in out])
     measured = measure_gates(joined, phones, min_snr_db=qc.min_snr_db,
                              min_bandwidth_hz=qc.min_bandwidth_hz, rate_max_abs_z=qc.rate_max_abs_z,
                              rate_min_clips=qc.rate_min_clips, rate_min_spread=qc.rate_min_spread,
@@ -954,11 +956,13 @@ def _log_changes(ctx: StageContext, changes: dict[str, Any], ledger_path: str, u
                  fmt(changes["moved"]), changes["gone_sources"], changes["returned_sources"])
     if changes["straddling_groups"]:
         ctx.log.warning("split: %d groups have ledger clips on both sides since new near-duplicates bound them "
-                        "(%s); earlier clips keep their subsets and new ones go to held-out; --fresh regroups",
+                        "(%s); earlier clips keep their subsets and new ones go to held-out; excluding the new copy at "
+                        "review (loam review) unbinds them, --fresh regroups",
                         len(changes["straddling_groups"]), ", ".join(changes["straddling_groups"][:5]))
     if changes["straddling_parts_groups"]:
         ctx.log.warning("split: %d held-out groups have clips in two parts since new near-duplicates bound them "
-                        "(%s); earlier clips keep their parts and new ones follow their own %s; --fresh regroups",
+                        "(%s); earlier clips keep their parts and new ones follow their own %s; excluding the new copy "
+                        "at review (loam review) unbinds them, --fresh regroups",
                         len(changes["straddling_parts_groups"]), ", ".join(changes["straddling_parts_groups"][:5]),
                         ctx.config.split.group_by)
     if changes["parts_moved"]:
@@ -1127,7 +1131,7 @@ def _run(ctx: StageContext) -> StageResult:
     pa.default_memory_pool().release_unused()
     near = near_duplicates(ctx, joined.cache_keys, joined.fingerprints,
                            min_similarity=cfg.quality.near_duplicate_min_similarity, log=ctx.log)
-    clips, pairs = build_clips(joined, cfg, near=near)
+    clips, pairs = build_clips(joined, cfg, near=near, unbound=excluded_clips(ctx))
     orphans = joined.orphans
     # Clips excluded at review are set aside first: the reviewer's reason is the one recorded.
     rejects, excluded, review, review_path = split_exclusions(ctx, clips)
