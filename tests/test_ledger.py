@@ -18,6 +18,7 @@ from pipeline.stages.ledger import (
     MAGIC_V1,
     ClipRecord,
     Ledger,
+    _Parser,
     format_ledger,
     locate_ledger,
     parse_ledger,
@@ -67,6 +68,33 @@ def test_round_trip(ledger: Ledger) -> None:
     keys = [(ln.split("\t")[0], ln.split("\t")[1]) for ln in lines[1:]]
     assert keys == sorted(keys)  # sorted by kind, then id
     assert all(len(ln.split("\t")) == (6 if ln.startswith("clip\t") else 4) for ln in lines[1:])
+
+
+@settings(max_examples=examples(100), deadline=None)
+@given(ledger=ledgers())
+def test_reading_by_kind_equals_reading_line_by_line(ledger: Ledger) -> None:
+    # The fast reading of a well-formed ledger (a regular expression per kind of row)
+    # must give what the line-by-line reading gives; CRLF line ends take the latter.
+    text = format_ledger(ledger)
+    first, _, body = text.partition("\n")
+    parser = _Parser("x.tsv")
+    fast = parser.parse_plain(body, parser.header(first))
+    assert fast == ledger
+    assert parse_ledger(text.replace("\n", "\r\n"), source="x.tsv") == ledger
+    # Rows out of kind order, or a last row without its newline, are read line by line.
+    lines = text.splitlines()
+    shuffled = "\n".join([lines[0], *reversed(lines[1:])]) + "\n"
+    assert parse_ledger(shuffled, source="x.tsv") == ledger
+    assert parse_ledger(text.rstrip("\n"), source="x.tsv") == ledger
+
+
+def test_rows_out_of_kind_order_are_read_line_by_line() -> None:
+    body = "group\talder\ttraining\t-\nclip\ta-1\tunlabelled\t-\talder\t-\n"
+    parser = _Parser("x.tsv")
+    assert parser.parse_plain(body, parser.header(HEADER)) is None
+    found = parse_ledger(HEADER + "\n" + body, source="x.tsv")
+    assert found.clips == {"a-1": ClipRecord("unlabelled", (), "alder", "")}
+    assert found.groups == {"alder": "training"}
 
 
 @pytest.mark.parametrize(("body", "line", "expected"), [

@@ -64,6 +64,12 @@ _PART = re.compile(r"^[a-z][a-z0-9_]{0,31}$")
 SIDES = ("heldout", "training")
 SOURCE_STATES = ("present", "gone")
 _SOURCE_KEY = re.compile(r"^[0-9a-f]{10}$")
+# One whole row of each kind (multi-line mode: "^" starts any line), for the reading of
+# a well-formed ledger (_Parser.parse_plain): a clip's id and the fields after it, a
+# group's fields after "group", a source's key and state.
+_CLIP_ROW = re.compile(r"^clip\t([^\t\n]+)\t([^\n]*)\n", re.M)
+_GROUP_ROW = re.compile(r"^group\t([^\n]*)\n", re.M)
+_SOURCE_ROW = re.compile(r"^source\t([0-9a-f]{10})\t([^\t\n]*)\n", re.M)
 NO_TIERS = "-"
 _BUDGET = re.compile(r"^[0-9]+(\.[0-9]+)?(s|m|h)$")
 _HEADER_EXAMPLE = f"{MAGIC}<TAB>group_by=...<TAB>seed=...<TAB>heldout=...<TAB>budgets=...<TAB>selection=...<TAB>parts=..."
@@ -266,16 +272,17 @@ class _Parser:
         return text
 
     def parse(self, text: str) -> Ledger:
-        lines = text.split("\n")
-        if lines and lines[-1] == "":
-            lines.pop()
-        if not lines:
+        if not text:
             raise self.fail(1, "", f"the header line {_HEADER_EXAMPLE!r}")
-        settings = self.header(lines[0].rstrip("\r"))
-        budgets = _split_list(settings["budgets"])
-        fast = self.parse_plain(lines, settings) if "\r" not in text else None
+        first, _, body = text.partition("\n")
+        settings = self.header(first.rstrip("\r"))
+        fast = self.parse_plain(body, settings) if "\r" not in text else None
         if fast is not None:
             return fast
+        lines = text.split("\n")
+        if lines[-1] == "":
+            lines.pop()
+        budgets = _split_list(settings["budgets"])
         groups: dict[str, str] = {}
         parts: dict[str, str] = {}
         clips: dict[str, ClipRecord] = {}
@@ -334,24 +341,56 @@ class _Parser:
                 raise self.fail(clip_lines[cid], rec.group, "a group that has its own 'group' row")
         return Ledger(settings, groups, clips, sources, parts)
 
-    def parse_plain(self, lines: list[str], settings: dict[str, str]) -> Ledger | None:
-        """The body of a well-formed ledger read a kind of row at a time (a third of the
-        cost of :meth:`parse`'s loop on 337,000 rows), or None at anything unusual (a
-        blank line, a CR, a row that fails a check), which :meth:`parse` then reads line
-        by line to name the first problem.
+    def parse_plain(self, body: str, settings: dict[str, str]) -> Ledger | None:
+        """The rows of a well-formed ledger (``body``: the text after the header line)
+        read a kind of row at a time by one regular expression each, or None at anything
+        unusual (a blank line, a row that fails a check, no final newline), which
+        :meth:`parse` then reads line by line to name the first problem.
 
         Each check of :meth:`parse` holds here too: the fields of a clip row after its
-        id are checked once per distinct text (a corpus has few groups and tiers)."""
-        body = lines[1:]
-        clip_rows = [line[5:] for line in body if line[:5] == "clip\t"]
-        group_rows = [line[6:].split("\t") for line in body if line[:6] == "group\t"]
-        source_rows = [line[7:] for line in body if line[:7] == "source\t"]
-        if len(clip_rows) + len(group_rows) + len(source_rows) != len(body):
+        id are checked once per distinct text (a corpus has few groups and tiers). Every
+        match is one whole line, so the matches of the three kinds cover the body when
+        they add up to its lines. At 100,000 clips and sources: 0.04 against 0.12 CPU s
+        splitting every line (best of 5, one idle core)."""
+        if body and not body.endswith("\n"):
             return None
+        # The rows come sorted by kind (format_ledger): each expression reads its own
+        # kind's lines only (over the whole body, 0.14 against 0.05 CPU s). A row out of
+        # that order matches nothing in its section, and the count below fails.
+        source_at = _first_row(body, "source\t")
+        group_at = min(_first_row(body, "group\t"), source_at)
+        clip_rows = _CLIP_ROW.findall(body, 0, group_at)
+        group_rows = _GROUP_ROW.findall(body, group_at, source_at)
+        source_rows = _SOURCE_ROW.findall(body, source_at)
+        if len(clip_rows) + len(group_rows) + len(source_rows) != body.count("\n"):
+            return None
+        groups = self.plain_groups(group_rows)
+        if groups is None:
+            return None
+        groups, parts = groups
+        records: dict[str, ClipRecord] = {}
+        budgets = _split_list(settings["budgets"])
+        extra = 0 if self.v1 else 1
+        for tail in {tail for _, tail in clip_rows}:
+            rec = self.plain_record(tail, extra, budgets)
+            if rec is None or rec.group not in groups:
+                return None
+            records[tail] = rec
+        clips = {cid: records[tail] for cid, tail in clip_rows}
+        sources = dict(source_rows)
+        if (len(clips) != len(clip_rows) or len(sources) != len(source_rows)
+                or not set(sources.values()) <= set(SOURCE_STATES)):
+            return None
+        return Ledger(settings, groups, clips, sources, parts)
+
+    def plain_groups(self, rows: list[str]) -> tuple[dict[str, str], dict[str, str]] | None:
+        """The sides and parts of the group rows' fields after ``group``, or None when
+        one fails a check or a group id comes twice."""
         extra = 0 if self.v1 else 1
         groups: dict[str, str] = {}
         parts: dict[str, str] = {}
-        for fields in group_rows:
+        for row in rows:
+            fields = row.split("\t")
             if len(fields) != 2 + extra or not fields[0] or fields[1] not in SIDES:
                 return None
             part = fields[2] if extra else NO_TIERS
@@ -360,22 +399,7 @@ class _Parser:
             groups[fields[0]] = fields[1]
             if part != NO_TIERS:
                 parts[fields[0]] = part
-        split_rows = [row.split("\t", 1) for row in clip_rows]
-        if any(len(pair) != 2 or not pair[0] for pair in split_rows):
-            return None
-        records: dict[str, ClipRecord] = {}
-        budgets = _split_list(settings["budgets"])
-        for tail in {pair[1] for pair in split_rows}:
-            rec = self.plain_record(tail, extra, budgets)
-            if rec is None or rec.group not in groups:
-                return None
-            records[tail] = rec
-        clips = {cid: records[tail] for cid, tail in split_rows}
-        sources = dict(row.split("\t", 1) for row in source_rows if row.count("\t") == 1)
-        if (len(groups) != len(group_rows) or len(clips) != len(clip_rows) or len(sources) != len(source_rows)
-                or not all(map(_SOURCE_KEY.match, sources)) or not set(sources.values()) <= set(SOURCE_STATES)):
-            return None
-        return Ledger(settings, groups, clips, sources, parts)
+        return (groups, parts) if len(groups) == len(rows) else None
 
     def plain_record(self, tail: str, extra: int, budgets: tuple[str, ...]) -> ClipRecord | None:
         """The record of a clip row's fields after its id, or None when they fail a check."""
@@ -403,6 +427,20 @@ class _Parser:
             raise self.fail(line_no, text, f"the largest budgets of the header ({_join_list(budgets)}), "
                                            "smallest first, as tiers are nested")
         return tiers
+
+
+def _first_row(body: str, prefix: str) -> int:
+    """Where the first line of ``body`` starting with ``prefix`` starts; ``len(body)`` when none.
+
+    Examples
+    --------
+    >>> _first_row("clip\\ta\\ngroup\\tg\\n", "group\\t"), _first_row("clip\\ta\\n", "group\\t")
+    (7, 7)
+    """
+    if body.startswith(prefix):
+        return 0
+    at = body.find("\n" + prefix)
+    return at + 1 if at >= 0 else len(body)
 
 
 def parse_ledger(text: str, *, source: str) -> Ledger:
