@@ -138,6 +138,39 @@ def test_cache_misses_clips_in_another_order(tmp_path, caplog) -> None:
     assert run(list(range(29, -1, -1))) == "all"
 
 
+@pytest.mark.parametrize("damaged", ["fingerprints.arrow", "near-duplicates.arrow"])
+def test_a_damaged_cache_table_is_a_miss(tmp_path, caplog, damaged: str) -> None:
+    """The cache tables are mapped Arrow files checked against the SHA-256 kept beside
+    them: a changed byte in either means a whole search, with the same pairs."""
+    import logging
+    from types import SimpleNamespace
+
+    import pyarrow as pa
+
+    from pipeline.stages.duplicate_cache import NAMESPACE, cache_keys, near_duplicates
+
+    fps = _corpus(np.random.default_rng(11), 30, 12)
+    ctx = SimpleNamespace(cache_dir=tmp_path, use_cache=True)
+    log = logging.getLogger("test-duplicate-cache-damaged")
+
+    def run(count: int) -> str:
+        caplog.clear()
+        keys = cache_keys(pa.chunked_array([[f"c{k:02d}" for k in range(count)]]),
+                          pa.chunked_array([[f"{k:064x}" for k in range(count)]]), np.array([fp.size for fp in fps[:count]]))
+        with caplog.at_level(logging.INFO, logger=log.name):
+            found = near_duplicates(ctx, keys, _flat(fps[:count]), min_similarity=0.6, log=log)
+        assert found.as_list() == search_pairs(*_flat(fps[:count]), min_similarity=0.6).as_list()
+        return "added since" if "added since" in caplog.text else "all"
+
+    assert run(25) == "all"
+    path = tmp_path / NAMESPACE / damaged
+    data = bytearray(path.read_bytes())
+    data[len(data) // 2] ^= 0xFF
+    path.write_bytes(bytes(data))
+    assert run(30) == "all"
+    assert run(30) == "added since"  # the whole search rewrote both tables
+
+
 def test_positions_of_equals_isin_when_keys_share_filter_slots() -> None:
     """The filter's slots and tags only narrow the exact lookup: with 3 million keys in
     its 16 million slots many slots hold two keys of different tags (and some of the

@@ -137,13 +137,17 @@ def near_duplicates(ctx: StageContext, keys: pa.Table | None, fingerprints: tupl
     scope = cache_key("near-duplicates", "audio_sha256,fingerprint_chars",
                       code_version(SCOPE_MODULE, cache_dir=ctx.cache_dir),
                       code_version("audio", cache_dir=ctx.cache_dir), min_similarity)
-    clip_cache = TableCache(ctx.cache_dir, NAMESPACE, "fingerprints", scope=scope, enabled=ctx.use_cache)
+    # Mapped Arrow files, not Parquet: a rebuild reads and rewrites both tables whole, and
+    # Parquet's compression cost 0.05 of the 0.08 CPU s this function spends besides the
+    # search at 101,000 clips (the tables take twice the bytes: 9 against 4.5 MB).
+    clip_cache = TableCache(ctx.cache_dir, NAMESPACE, "fingerprints", scope=scope, enabled=ctx.use_cache,
+                            mapped=True)
     cached_clips = clip_cache.load()
     cached_pairs = None
     if cached_clips is not None:
         pairs_scope = cache_key(scope, _clips_digest(cached_clips))
         cached_pairs = TableCache(ctx.cache_dir, NAMESPACE, "near-duplicates", scope=pairs_scope,
-                                  enabled=ctx.use_cache).load()
+                                  enabled=ctx.use_cache, mapped=True).load()
     earlier = _earlier(cached_clips, cached_pairs, keys)
     if earlier is None:
         found = search_pairs(*fingerprints, min_similarity=min_similarity)
@@ -155,6 +159,7 @@ def near_duplicates(ctx: StageContext, keys: pa.Table | None, fingerprints: tupl
                  int(added.sum()), len(found.first))
     clip_cache.save(keys)
     pairs_scope = cache_key(scope, _clips_digest(keys))
-    TableCache(ctx.cache_dir, NAMESPACE, "near-duplicates", scope=pairs_scope, enabled=ctx.use_cache).save(
+    TableCache(ctx.cache_dir, NAMESPACE, "near-duplicates", scope=pairs_scope, enabled=ctx.use_cache,
+               mapped=True).save(
         pa.table([pa.array(getattr(found, f.name), f.type) for f in _PAIRS], schema=_PAIRS))
     return found

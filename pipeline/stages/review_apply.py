@@ -51,8 +51,10 @@ def split_exclusions(ctx: StageContext, clips: Sequence[Any]) -> tuple[list[dict
     path = decisions_file(ctx)
     found, bad = read_decisions(path)
     verdicts, _, superseded = effective(found)
-    by_id = {c.clip_id: c for c in clips}
-    by_path = {c.source_path: c.clip_id for c in clips}
+    # Built only when the file holds a decision: two dicts over every clip cost 0.015
+    # CPU s of a rebuild at 101,000 clips that has none.
+    by_id = {c.clip_id: c for c in clips} if verdicts else {}
+    by_path = {c.source_path: c.clip_id for c in clips} if verdicts else {}
     tally, rejects, excluded = Tally(), [], set()
     for line, why in bad:
         tally.skip(None, "unreadable", f"line {line}: not applied: {why}")

@@ -828,47 +828,68 @@ def _subset_table(joined: Joined, clips: Sequence[Clip], subset: str, assignment
     (``split.text_overlap = "demote"``) loses its transcript whatever
     ``split.keep_transcripts`` says; an unscored one keeps it but is not scorable."""
     schema = arrow_schema("subset")
-    rows = pa.array(list(map(_ROW, clips)), pa.int64())
+    rows = np.fromiter(map(_ROW, clips), np.int64, count=len(clips))
     demoted = assignment.demoted if subset == UNLABELLED else frozenset()
-    carried = [c.text is not None and keep_text and c.clip_id not in demoted for c in clips]
-    text_rows = pa.array([int(joined.text_rows[c.row]) if keep else None for c, keep in zip(clips, carried, strict=True)],
-                         pa.int64())
+    # A row has a transcript row exactly when its clip has a transcript (join_rows).
+    found = joined.text_rows[rows]
+    carried = (found >= 0) & keep_text
+    if demoted:
+        carried &= ~np.fromiter((c.clip_id in demoted for c in clips), bool, count=len(clips))
     audio = joined.audio.select(list(_AUDIO_COLUMNS)).take(rows)
-    text = joined.text.select(list(_TEXT_COLUMNS)).take(text_rows)
+    text = joined.text.select(list(_TEXT_COLUMNS)).take(pa.array(found, pa.int64(), mask=~carried))
     columns: dict[str, Any] = {name: audio.column(name) for name in _AUDIO_COLUMNS}
     columns.update({name: text.column(name) for name in _TEXT_COLUMNS})
     picked = joined.audio.select(["snr_db", "bandwidth_hz"]).take(rows)
     columns.update({name: _finite_column(picked.column(name)) for name in ("snr_db", "bandwidth_hz")})
-    # A few combinations of flags recur (a clip's own flags are one shared frozenset per
-    # combination): each is listed in FLAGS order once, and its rows share the list.
-    listed: dict[tuple[frozenset[str], bool, bool, bool], list[str]] = {}
-    flags = []
-    for c in clips:
-        key = (c.flags, subset == HELDOUT and not c.transcribed, c.clip_id in assignment.unscored,
-               c.clip_id in demoted)
-        found = listed.get(key)
-        if found is None:
-            mine = set(c.flags) | {f for f, on in zip(("heldout_untranscribed", UNSCORED, DEMOTED), key[1:],
-                                                      strict=True) if on}
-            found = listed[key] = [f for f in FLAGS if f in mine]
-        flags.append(found)
+    unscored = assignment.unscored
+    scorable = carried & np.fromiter((c.eligible and bool(c.plain_phones) and c.clip_id not in unscored
+                                      for c in clips), bool, count=len(clips))
     columns.update({
         "group": list(map(_GROUP, clips)),
         "subset": [subset] * len(clips),
-        "tiers": [list(assignment.tiers.get(c.clip_id, ())) for c in clips],
+        "tiers": _shared_lists([tuple(assignment.tiers.get(c.clip_id, ())) for c in clips],
+                               schema.field("tiers").type),
         "speaking_rate": list(map(attrgetter("speaking_rate"), clips)),
         "rate_z": list(map(attrgetter("rate_z"), clips)),
         "near_duplicate_of": list(map(attrgetter("near_duplicate_of"), clips)),
-        "quality_flags": flags,
+        "quality_flags": _shared_lists(_row_flags(clips, subset, unscored, demoted),
+                                       schema.field("quality_flags").type),
         # Eligible means transcribed and not held back by a gate; the row must also
         # carry its transcript and phones (unlabelled rows may drop them).
-        "scorable": [bool(c.eligible and keep and c.plain_phones and c.clip_id not in assignment.unscored)
-                     for c, keep in zip(clips, carried, strict=True)],
+        "scorable": pa.array(scorable, pa.bool_()),
         PART: [assignment.parts.get(c.clip_id) if subset == HELDOUT else None for c in clips],
     })
     arrays = {f.name: pa.array(columns[f.name], f.type) if isinstance(columns[f.name], list)
               else columns[f.name].cast(f.type) for f in schema}
     return pa.table(arrays, schema=schema).combine_chunks()
+
+
+def _row_flags(clips: Sequence[Clip], subset: str, unscored: frozenset[str],
+               demoted: frozenset[str]) -> list[tuple[str, ...]]:
+    """Each row's quality flags in FLAGS order: its clip's own, and those its subset adds.
+
+    A few combinations recur (a clip's own flags are one shared frozenset per
+    combination): each is listed once, and its rows share the tuple."""
+    listed: dict[tuple[frozenset[str], bool, bool, bool], tuple[str, ...]] = {}
+    flags = []
+    for c in clips:
+        key = (c.flags, subset == HELDOUT and c.text is None, c.clip_id in unscored, c.clip_id in demoted)
+        found = listed.get(key)
+        if found is None:
+            mine = set(c.flags) | {f for f, on in zip(("heldout_untranscribed", UNSCORED, DEMOTED), key[1:],
+                                                      strict=True) if on}
+            found = listed[key] = tuple(f for f in FLAGS if f in mine)
+        flags.append(found)
+    return flags
+
+
+def _shared_lists(values: list[tuple[str, ...]], kind: pa.DataType) -> pa.Array:
+    """A list column of ``values``, of which few are distinct: each distinct tuple is
+    converted once and the rows take it by index (converting a Python list per row
+    took 0.040 against 0.012 CPU s for the tiers and flags of 101,000 clips)."""
+    index: dict[tuple[str, ...], int] = {}
+    at = np.fromiter((index.setdefault(v, len(index)) for v in values), np.int64, count=len(values))
+    return pa.array([list(v) for v in index], kind).take(pa.array(at, pa.int64()))
 
 
 def _hours(seconds: float) -> float:
@@ -1083,7 +1104,8 @@ def _subset_tables(ctx: StageContext, by_subset: Mapping[str, list[Clip]], assig
 
 def _log_tiers(ctx: StageContext, assignment: Assignment, kept: Sequence[Clip]) -> list[dict[str, Any]]:
     """Log the clips shrunk budgets dropped and the tiers short of their budget; the shortfalls."""
-    durations = {c.clip_id: c.duration_s for c in kept}
+    # Only a shrunk budget reads the durations (a dict over every clip: 0.01 CPU s at 101,000).
+    durations = {c.clip_id: c.duration_s for c in kept} if any(o.dropped for o in assignment.outcomes) else {}
     for outcome in assignment.outcomes:
         if outcome.dropped:
             ctx.log.info("split: budget %s is smaller than the ledger's %s: %d clips (%.1f s) left tier %s, "
@@ -1274,7 +1296,8 @@ def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment
     scored = [c for c in by_subset[HELDOUT] if c.eligible and c.clip_id not in assignment.unscored]
     subsets[HELDOUT]["scored_clips"] = len(scored)
     subsets[HELDOUT]["scored_hours"] = _hours(math.fsum(c.duration_s for c in scored))
-    by_id = {c.clip_id: c for c in kept}
+    # Every clip of a tier is labelled: look them up among the labelled clips alone.
+    by_id = {c.clip_id: c for c in by_subset[LABELLED]}
     tiers = {}
     for outcome in assignment.outcomes:
         row = _describe([by_id[cid] for cid in sorted(outcome.clips)], inventory)
