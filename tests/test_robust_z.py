@@ -94,3 +94,18 @@ def test_robust_z_labels_factorised_like_pandas() -> None:
     labels = np.array(["b", None, "a", "b", float("nan"), "a", 3, 3], dtype=object)
     want, _ = pd.factorize(labels, use_na_sentinel=True)
     np.testing.assert_array_equal(gates._factorize(labels), want)
+
+
+def test_integer_labels_factorised_like_pandas_and_scored_as_their_text() -> None:
+    # The split stage passes the speakers as integer codes: the same groups as the names.
+    import pandas as pd
+
+    rng = np.random.default_rng(3)
+    codes = rng.integers(0, 7, size=400) * 5 + 2
+    want, _ = pd.factorize(codes)
+    np.testing.assert_array_equal(gates._factorize(codes), want)
+    rates = rng.normal(12.0, 2.0, size=400)
+    rates[::17] = np.nan
+    names = np.array([f"speaker {c}" for c in codes], dtype=object)
+    np.testing.assert_array_equal(gates.robust_z_scores(rates, codes, min_group_size=60),
+                                  gates.robust_z_scores(rates, names, min_group_size=60))

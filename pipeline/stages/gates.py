@@ -215,7 +215,20 @@ def _modified_z(x: np.ndarray, ref: np.ndarray, min_mad_fraction: float = 0.0) -
 
 def _factorize(labels: np.ndarray) -> np.ndarray:
     """Integer codes in order of first appearance; -1 for None and NaN (what
-    ``pandas.factorize`` gives, without importing pandas for it)."""
+    ``pandas.factorize`` gives, without importing pandas for it).
+
+    Examples
+    --------
+    >>> _factorize(np.array(["b", None, "a", "b"], dtype=object)).tolist(), _factorize(np.array([7, 3, 7])).tolist()
+    ([0, -1, 1, 0], [0, 1, 0])
+    """
+    if labels.dtype.kind in "iub":
+        # Integers (such as a column's dictionary codes) are never missing: numpy alone,
+        # where a Python step per label cost 0.05 CPU s for 101,000 speakers.
+        _, first, inverse = np.unique(labels, return_index=True, return_inverse=True)
+        rank = np.empty(first.size, dtype=np.int64)
+        rank[np.argsort(first, kind="stable")] = np.arange(first.size)
+        return rank[inverse.reshape(labels.shape)]
     codes = np.full(labels.shape, -1, dtype=np.int64)
     seen: dict[object, int] = {}
     for i, label in enumerate(labels.tolist()):
