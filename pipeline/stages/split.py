@@ -703,12 +703,18 @@ def group_facts(groups: Mapping[str, list[Clip]], balance: Balance) -> dict[str,
     """Per group: eligible transcribed seconds, seconds per prompt, and the balance
     attributes of its speaker (the one with the most eligible seconds in the group)."""
     facts = {}
+    # Prompts repeat in a read-speech corpus: each distinct text is keyed once.
+    keyed: dict[Any, str | None] = {}
     for g, members in groups.items():
         eligible = [c for c in members if c.eligible]
         prompts: dict[str, float] = defaultdict(float)
         speakers: Counter[str] = Counter()
         for c in eligible:
-            key = prompt_key(c.text["norm_text"]) if c.text else None
+            if c.text:
+                norm = c.text["norm_text"]
+                key = keyed[norm] if norm in keyed else keyed.setdefault(norm, prompt_key(norm))
+            else:
+                key = None
             if key is not None:
                 prompts[key] += c.duration_s
             speakers[c.speaker] += c.duration_s
@@ -1249,18 +1255,18 @@ def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[C
     records: dict[tuple[str, tuple[str, ...], str, str], ClipRecord] = {}
     clips: dict[str, ClipRecord] = {}
     subset, tiers, clip_parts = assignment.subset, assignment.tiers, assignment.parts
-    # An unlabelled clip has no tiers and no part: its record depends on its group alone.
-    unlabelled: dict[str, ClipRecord] = {}
-    for c in kept:
-        cid = c.clip_id
-        mine = subset[cid]
+    # An unlabelled clip (most of them) has no tiers and no part: its record depends on
+    # its group alone, and its row is one comprehension (a loop over every clip took
+    # 0.08 against 0.05 CPU s at 101,000 clips).
+    ids, groups_of = list(map(_ID, kept)), list(map(_GROUP, kept))
+    subsets = list(map(subset.__getitem__, ids))
+    unlabelled = {g: ClipRecord(UNLABELLED, (), g, "") for g in set(groups_of)}
+    clips.update({cid: unlabelled[g] for cid, g, mine in zip(ids, groups_of, subsets, strict=True)
+                  if mine == UNLABELLED})
+    for cid, g, mine in zip(ids, groups_of, subsets, strict=True):
         if mine == UNLABELLED:
-            rec = unlabelled.get(c.group)
-            if rec is None:
-                rec = unlabelled[c.group] = ClipRecord(UNLABELLED, (), c.group, "")
-            clips[cid] = rec
             continue
-        key = (mine, tiers.get(cid, ()), c.group, clip_parts.get(cid, ""))
+        key = (mine, tiers.get(cid, ()), g, clip_parts.get(cid, ""))
         rec = records.get(key)
         clips[cid] = rec if rec is not None else records.setdefault(key, ClipRecord(*key))
     known = dict.fromkeys(sorted(sources), "present")
