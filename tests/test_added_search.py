@@ -183,3 +183,16 @@ def test_positions_of_equals_isin_when_keys_share_filter_slots() -> None:
     values[rng.integers(0, values.size, size=50_000)] = keys[rng.integers(0, keys.size, size=50_000)]
     np.testing.assert_array_equal(_positions_of(values, keys), np.flatnonzero(np.isin(values, keys)))
     np.testing.assert_array_equal(_positions_of(values[:0], keys), np.zeros(0, np.int64))
+
+
+@pytest.mark.parametrize("count", [1, 3, 5_000, 70_000])
+def test_positions_of_equals_isin_for_tables_of_every_size(count: int) -> None:
+    """The filter's table is sized to the keys (16 slots each, 2**16 to 2**24): small and
+    crowded tables, and values over several blocks, still give exactly numpy's ``isin``."""
+    from pipeline.signal.added_search import _positions_of
+
+    rng = np.random.default_rng(count)
+    keys = np.unique(rng.integers(0, 2**32, size=count, dtype=np.uint32))
+    values = rng.integers(0, 2**32, size=600_000, dtype=np.uint32)
+    values[rng.integers(0, values.size, size=20_000)] = keys[rng.integers(0, keys.size, size=20_000)]
+    np.testing.assert_array_equal(_positions_of(values, keys), np.flatnonzero(np.isin(values, keys)))

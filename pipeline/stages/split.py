@@ -303,13 +303,12 @@ def join_rows(audio: pa.Table, text: pa.Table, *, keys: bool = False) -> Joined:
     clip's key in the near-duplicate cache (:func:`duplicate_cache.cache_keys`)."""
     # Sorted without the fingerprints, which are decoded in sorted order from the
     # input's own buffers (a sorted copy of them peaked 0.5 GB higher at 233,161 clips).
-    order = pc.sort_indices(audio, sort_keys=[("clip_id", "ascending")]).to_numpy()
-    fingerprints, fingerprint_chars = decoded_fingerprints(audio.column("fingerprint"), order)
-    audio = audio.drop_columns(["fingerprint"])
-    # The audio stage writes its rows by clip_id: a copy in the same order cost 0.016 CPU s
-    # and 30 MB of fresh pages at 101,000 clips.
-    if order.size > 1 and not (order[1:] > order[:-1]).all():
-        audio = audio.take(order)
+    order = pc.sort_indices(audio, sort_keys=[("clip_id", "ascending")])
+    fingerprints, fingerprint_chars = decoded_fingerprints(audio.column("fingerprint"), order.to_numpy())
+    # Taken even when the rows are already in order: the copy lets the manifest read's
+    # buffers go (without it the split stage alone peaked at 1.93 against 1.42 GB on
+    # 233,161 generated clips, bench/bench_split.py).
+    audio = audio.drop_columns(["fingerprint"]).take(order)
     twice = _first_repeat(text.column("clip_id").sort())
     if twice is not None:
         raise DataError(f"{stage_manifest('text')}: clip {twice} has two transcript rows; expected one")
