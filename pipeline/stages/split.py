@@ -256,8 +256,8 @@ class Clip:
 
 
 # Clip fields read over every clip, by attrgetter: map() then runs in C.
-_ID, _ROW, _GROUP, _SPEAKER, _TEXT, _FLAGS, _DURATION, _PHONES = map(
-    attrgetter, ("clip_id", "row", "group", "speaker", "text", "flags", "duration_s", "plain_phones"))
+_ID, _ROW, _GROUP, _SPEAKER, _TEXT, _FLAGS, _DURATION, _PHONES, _BASE = map(
+    attrgetter, ("clip_id", "row", "group", "speaker", "text", "flags", "duration_s", "plain_phones", "base_group"))
 
 
 @dataclass(frozen=True)
@@ -1272,7 +1272,7 @@ def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[C
     budgets = _budget_names(cfg_settings["budgets"])
     if ledger is not None:
         # Keep the side of a group whose clips are all gone, so it returns to the same side.
-        current = set(groups) | {c.base_group for c in kept}
+        current = set(groups) | set(map(_BASE, kept))
         groups.update({g: side for g, side in ledger.groups.items() if g not in current})
         parts.update({g: part for g, part in ledger.parts.items() if g not in current})
         for cid in sorted(ledger.clips.keys() - clips.keys()):  # the gone clips, a set difference in C
@@ -1282,8 +1282,10 @@ def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[C
             groups.setdefault(rec.group, ledger.groups[rec.group])
             if rec.group in ledger.parts:
                 parts.setdefault(rec.group, ledger.parts[rec.group])
-        known.update({k: "gone" for k in ledger.sources if k not in known})
-    return Ledger(cfg_settings, groups, clips, dict(sorted(known.items())), parts)
+        gone = {k: "gone" for k in ledger.sources if k not in known}
+        if gone:  # sorted again only when gone sources joined the sorted present ones
+            known = dict(sorted({**known, **gone}.items()))
+    return Ledger(cfg_settings, groups, clips, known, parts)
 
 
 def _budget_names(text: str) -> tuple[str, ...]:
