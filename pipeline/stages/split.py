@@ -1354,7 +1354,7 @@ def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment
 
 
 def _ids_at(clips: Sequence[Clip], at: np.ndarray) -> list[str]:
-    return [clips[k].clip_id for k in at.tolist()]
+    return list(map(_ID, map(clips.__getitem__, at.tolist())))
 
 
 def sizes(clips: Sequence[Clip], scorable: set[str]) -> dict[str, Any]:
