@@ -36,6 +36,7 @@ import re
 from collections import Counter, defaultdict
 from collections.abc import Collection, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
+from itertools import repeat
 from operator import attrgetter, countOf
 from pathlib import Path
 from typing import Any
@@ -861,7 +862,7 @@ def _subset_table(joined: Joined, clips: Sequence[Clip], subset: str, assignment
     columns.update({
         "group": list(map(_GROUP, clips)),
         "subset": [subset] * len(clips),
-        "tiers": _shared_lists([tuple(assignment.tiers.get(c.clip_id, ())) for c in clips],
+        "tiers": _shared_lists(list(map(assignment.tiers.get, map(_ID, clips), repeat(()))),
                                schema.field("tiers").type),
         "speaking_rate": list(map(attrgetter("speaking_rate"), clips)),
         "rate_z": list(map(attrgetter("rate_z"), clips)),
@@ -901,8 +902,9 @@ def _shared_lists(values: list[tuple[str, ...]], kind: pa.DataType) -> pa.Array:
     """A list column of ``values``, of which few are distinct: each distinct tuple is
     converted once and the rows take it by index (converting a Python list per row
     took 0.040 against 0.012 CPU s for the tiers and flags of 101,000 clips)."""
-    index: dict[tuple[str, ...], int] = {}
-    at = np.fromiter((index.setdefault(v, len(index)) for v in values), np.int64, count=len(values))
+    # dict.fromkeys and map run in C: a generator calling setdefault per row cost twice as much.
+    index = {v: k for k, v in enumerate(dict.fromkeys(values))}
+    at = np.fromiter(map(index.__getitem__, values), np.int64, count=len(values))
     return pa.array([list(v) for v in index], kind).take(pa.array(at, pa.int64()))
 
 
