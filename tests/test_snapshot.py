@@ -177,6 +177,43 @@ def test_listing_sees_symlink_targets(tmp_path: Path) -> None:
     assert snapshot.tree_digest(root) != before
 
 
+def test_the_listing_holds_every_regular_file_with_its_stat(tmp_path: Path) -> None:
+    # Reference: os.lstat of each regular file. Folder "a" holds a folder and files (packed
+    # as numbers), "c" a link (hashed as lines of text): both give their files.
+    root = tmp_path / "root"
+    for rel in ("a/x.wav", "a/b/y.txt", "c/z.wav", "line\nbreak/\u00e9.wav"):
+        (root / rel).parent.mkdir(parents=True, exist_ok=True)
+        (root / rel).write_bytes(rel.encode())
+    (root / "c" / "link.wav").symlink_to(root / "a" / "x.wav")
+    (root / "empty").mkdir()
+    listing = snapshot.Listing()
+    digest = snapshot.tree_digest(root, stats=listing)
+    expected = {str(p.relative_to(root)): (p.lstat().st_size, p.lstat().st_mtime_ns, p.lstat().st_ino)
+                for p in root.rglob("*") if p.is_file() and not p.is_symlink()}
+    assert dict(listing) == expected and sorted(listing) == sorted(expected) and not listing.complete
+    plain: dict[str, tuple[int, int, int]] = {}
+    assert snapshot.tree_digest(root, stats=plain) == digest and plain == expected
+    # Any number of a file changes the digest: its mode, its mtime, its inode (a copy).
+    (root / "a" / "x.wav").chmod(0o600)
+    changed = snapshot.tree_digest(root)
+    assert changed != digest
+    st = (root / "a" / "b" / "y.txt").stat()
+    os.utime(root / "a" / "b" / "y.txt", ns=(st.st_atime_ns, st.st_mtime_ns + 1))
+    assert snapshot.tree_digest(root) not in (digest, changed)
+    touched = snapshot.tree_digest(root)
+    # A copy renamed over the file (made while the file exists: another inode), with
+    # the same size and mtime.
+    old = (root / "c" / "z.wav").stat()
+    (root / "c" / "z.copy").write_bytes((root / "c" / "z.wav").read_bytes())
+    os.utime(root / "c" / "z.copy", ns=(old.st_atime_ns, old.st_mtime_ns))
+    os.replace(root / "c" / "z.copy", root / "c" / "z.wav")
+    assert snapshot.tree_digest(root) != touched
+    (root / "c" / "link.wav").unlink()
+    listing = snapshot.Listing()
+    snapshot.tree_digest(root, stats=listing)
+    assert listing.complete
+
+
 @pytest.mark.parametrize("change", ["touch_clip", "chmod_clip", "add_file", "add_folder", "remove_clip"])
 def test_the_snapshot_of_audio_taken_from_the_stage_sees_any_change(
         change: str, small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str],

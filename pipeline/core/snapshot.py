@@ -23,12 +23,15 @@ import operator
 import os
 import stat
 import sys
+from array import array
+from collections.abc import Iterator, Mapping
+from itertools import chain, compress
 from pathlib import Path
 from typing import Any
 
 from pipeline.core import names
 
-FORMAT = 2
+FORMAT = 3
 # What prepare does not own in OUT: its own logs and caches, the report (written by
 # ``loam report``) and the run lock.
 OUT_IGNORED = frozenset({names.LOGS, names.CACHE, names.REPORT, names.LOCK})
@@ -39,30 +42,80 @@ def _stat_entry(st: os.stat_result) -> list[int]:
     return [st.st_mode, st.st_size, st.st_mtime_ns, st.st_ino]
 
 
-class Listing(dict):  # type: ignore[type-arg]
-    """RAW's regular files by '/'-separated relative path, with their ``(size, mtime_ns,
-    inode)``, as :func:`tree_digest` found them; ``complete`` says whether that is all
-    there was: no link, no other kind of file, no folder it could not list and no entry
-    gone while it looked (a stage may then take its listing of RAW from here).
-    ``digest`` is the walk's digest once :func:`raw_digest` has filled it."""
+class Listing(Mapping[str, tuple[int, int, int]]):
+    """RAW's regular files as :func:`tree_digest` found them: '/'-separated relative path
+    -> ``(size, mtime_ns, inode)``; ``complete`` says whether that is all there was: no
+    link, no other kind of file, no folder it could not list and no entry gone while it
+    looked (a stage may then take its listing of RAW from here). ``digest`` is the
+    walk's digest once :func:`raw_digest` has filled it.
+
+    Held as columns (:meth:`columns`: standard-library arrays a stage maps into numpy
+    without a copy), in the walk's order; the index a look-up by path needs is built
+    on the first one. A dict of 134,667 tuples cost 0.03 to 0.04 CPU s of the walk, for
+    a reader (the ingest stage) that wants columns.
+
+    Examples
+    --------
+    >>> listing = Listing()
+    >>> listing.add("a/", ["x.wav", "y.txt"], array("q", [0o100644, 3, 9, 0o100644, 4, 8]), array("Q", [11, 12]))
+    >>> listing["a/y.txt"], len(listing), "a/z" in listing, list(listing)
+    ((4, 8, 12), 2, False, ['a/x.wav', 'a/y.txt'])
+    >>> paths, numbers, inodes = listing.columns()
+    >>> list(numbers[1::3]), list(inodes)
+    ([3, 4], [11, 12])
+    """
 
     complete = False
     digest = ""
 
+    def __init__(self) -> None:
+        self._paths: list[str] = []
+        self._numbers = array("q")
+        self._inodes = array("Q")
+        self._index: dict[str, int] | None = None
+
+    def add(self, folder: str, names: list[str], numbers: array, inodes: array) -> None:  # type: ignore[type-arg]
+        """Add the regular files ``names`` of ``folder`` (relative, ending in '/'):
+        ``numbers`` holds each one's mode, size and mtime_ns, ``inodes`` its inode."""
+        self._paths += map(folder.__add__, names)
+        self._numbers += numbers
+        self._inodes += inodes
+        self._index = None
+
+    def columns(self) -> tuple[list[str], array, array]:  # type: ignore[type-arg]
+        """The paths, then mode, size and mtime_ns of each (three int64 per file, in
+        one array), then the inodes (uint64)."""
+        return self._paths, self._numbers, self._inodes
+
+    def __getitem__(self, rel: str) -> tuple[int, int, int]:
+        if self._index is None:
+            self._index = {path: i for i, path in enumerate(self._paths)}
+        i = self._index[rel]
+        return self._numbers[3 * i + 1], self._numbers[3 * i + 2], self._inodes[i]
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._paths)
+
+    def __len__(self) -> int:
+        return len(self._paths)
+
 
 def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset(),
-                stats: dict[str, tuple[int, int, int]] | None = None,
+                stats: dict[str, tuple[int, int, int]] | Listing | None = None,
                 given: dict[str, bytes] | None = None) -> str:
     """A hash of every entry under ``root``: relative path, mode, size, mtime_ns and
     inode (symlinks not followed, but their targets stat'ed too; a folder counts by
-    its name and mode, its entries being hashed anyway). Top-level names in
-    ``ignored`` are left out.
+    its name, its entries being hashed anyway). Top-level names in ``ignored`` are
+    left out.
 
     Each folder's entries are taken in sorted order and its subfolders visited in
     that order, so the hash does not depend on the order the file system lists them.
-    One ``lstat`` per entry (``os.scandir`` already knows which entries are folders)
-    and one hash update per folder: 100,000 files cost a fraction of a second, where
-    a list of every entry serialised as JSON cost several times that.
+    One ``lstat`` per entry that is not a folder (``os.scandir`` already knows which
+    entries are folders) and one hash update per folder. A folder of folders and
+    regular files only (RAW's, OUT's) is hashed as its names, then its files' numbers
+    packed as 64-bit integers (:func:`_packed_folder`): no text per file. Other folders
+    (a link, a special file, an entry gone while listed) are hashed as one line of
+    text per entry (:func:`_entry_lines`).
 
     ``stats``, when given, receives ``(size, mtime_ns, inode)`` by '/'-separated relative
     path of every regular file (not of links), so a stage can reuse the listing instead
@@ -82,14 +135,13 @@ def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset(),
         if given and rel_folder in given:
             digest.update(given[rel_folder])
             continue
-        listed = _folder_lines(folder, rel_folder, ignored, stats)
+        listed = _folder_digest(folder, rel_folder, ignored if not rel_folder else frozenset(), stats, digest)
         if listed is None:
-            digest.update(f"{rel_folder}\0unlistable\n".encode("utf-8", "surrogateescape"))
+            digest.update(f"{rel_folder}\0u\n".encode("utf-8", "surrogateescape"))
             simple = False
             continue
-        lines, subfolders, whole = listed
+        subfolders, whole = listed
         simple = simple and whole
-        digest.update(("\n".join(lines) + "\n\n").encode("utf-8", "surrogateescape"))
         # Reversed onto the stack, so the subfolders are visited in sorted order.
         stack.extend(reversed(subfolders))
     if isinstance(stats, Listing):
@@ -105,13 +157,19 @@ _BY_FD = os.scandir in os.supports_fd and os.stat in os.supports_dir_fd
 _FOLDER_FLAGS = os.O_RDONLY | getattr(os, "O_DIRECTORY", 0)
 _BY_NAME = operator.attrgetter("name")
 _FILE_TYPE, _REGULAR = 0o170000, 0o100000  # stat.S_IFMT's mask and S_IFREG, inline
+_IS_FOLDER = operator.methodcaller("is_dir", follow_symlinks=False)
+_LSTAT = operator.methodcaller("stat", follow_symlinks=False)
+_NUMBERS = operator.attrgetter("st_mode", "st_size", "st_mtime_ns")
+_INODE = operator.attrgetter("st_ino")
+_KIND = ("f", "d")  # by is_dir: a regular file's name, a folder's
 
 
-def _folder_lines(folder: str, rel_folder: str, ignored: frozenset[str],
-                  stats: dict[str, tuple[int, int, int]] | None) -> tuple[list[str], list[tuple[str, str]], bool] | None:
-    """One folder's lines for :func:`tree_digest`, its subfolders (path, relative path)
-    in sorted order, and whether it held only folders and regular files; None when it
-    cannot be listed."""
+def _folder_digest(folder: str, rel_folder: str, ignored: frozenset[str],
+                   stats: dict[str, tuple[int, int, int]] | Listing | None,
+                   digest: Any) -> tuple[list[tuple[str, str]], bool] | None:
+    """Hash one folder's entries into ``digest`` for :func:`tree_digest`; its subfolders
+    (path, relative path) in sorted order, and whether it held only folders and regular
+    files; None when it cannot be listed."""
     try:
         fd = os.open(folder, _FOLDER_FLAGS) if _BY_FD else None
     except OSError:
@@ -122,28 +180,80 @@ def _folder_lines(folder: str, rel_folder: str, ignored: frozenset[str],
                 entries = sorted(it, key=_BY_NAME)
         except OSError:
             return None
-        return _entry_lines(entries, folder, fd, rel_folder, ignored, stats)
+        if ignored:
+            entries = [entry for entry in entries if entry.name not in ignored]
+        folders = list(map(_IS_FOLDER, entries))
+        subfolders = [(os.path.join(folder, entry.name), f"{rel_folder}{entry.name}/")
+                      for entry in compress(entries, folders)]
+        packed = _packed_folder(entries, folders, rel_folder, stats)
+        if packed is not None:
+            digest.update(packed)
+            return subfolders, True
+        lines, whole = _entry_lines(entries, folder, fd, rel_folder, stats)
+        digest.update(("\n".join([f"{rel_folder}\0t", *lines]) + "\n\n").encode("utf-8", "surrogateescape"))
+        return subfolders, whole
     finally:
         if fd is not None:
             os.close(fd)
 
 
+def _packed_folder(entries: list[os.DirEntry[str]], folders: list[bool], rel_folder: str,
+                   stats: dict[str, tuple[int, int, int]] | Listing | None) -> bytes | None:
+    """What :func:`tree_digest` hashes for a folder of folders and regular files only
+    (``entries`` sorted by name, ``folders`` telling which are folders): its relative
+    path and each entry's kind and name, NUL-separated (no name holds a NUL) and ended
+    by NUL and newline, then the mode, size and mtime_ns of each file as int64, then
+    their inodes as uint64, in native byte order (``tree_listing.folder_bytes`` builds
+    the same bytes from a table). None for a folder holding anything else, an entry
+    gone while it was stat'ed, or a number out of range: the caller hashes lines of
+    text instead. Python touches no number of its own: RAW's 134,667 entries at 100,000
+    sources took 0.36 against 0.42 CPU s as text lines."""
+    names = list(map(_BY_NAME, entries))
+    leaf = not any(folders)
+    files = entries if leaf else list(compress(entries, map(operator.not_, folders)))
+    try:
+        stat_results = list(map(_LSTAT, files))
+        numbers = array("q", chain.from_iterable(map(_NUMBERS, stat_results)))
+        inodes = array("Q", map(_INODE, stat_results))
+    except (OSError, OverflowError):
+        return None
+    if not all(map(stat.S_ISREG, numbers[::3])):
+        return None
+    if stats is not None:
+        _keep(stats, rel_folder, names if leaf else list(compress(names, map(operator.not_, folders))),
+              numbers, inodes)
+    if leaf:  # no folder in it (RAW's and OUT/audio's speakers): every entry is an "f"
+        text = "\0f".join([rel_folder, *names]) + "\0\n" if names else rel_folder + "\0\n"
+    else:
+        text = "\0".join([rel_folder, *map(str.__add__, map(_KIND.__getitem__, folders), names)]) + "\0\n"
+    return text.encode("utf-8", "surrogateescape") + numbers.tobytes() + inodes.tobytes()
+
+
+def _keep(stats: dict[str, tuple[int, int, int]] | Listing, rel_folder: str, names: list[str],
+          numbers: array, inodes: array) -> None:  # type: ignore[type-arg]
+    """Record regular files ``names`` of ``rel_folder`` (``numbers``: mode, size and
+    mtime_ns of each; ``inodes``) in ``stats``."""
+    if isinstance(stats, Listing):
+        stats.add(rel_folder, names, numbers, inodes)
+    else:
+        stats.update((rel_folder + name, (numbers[3 * i + 1], numbers[3 * i + 2], inodes[i]))
+                     for i, name in enumerate(names))
+
+
 def _entry_lines(entries: list[os.DirEntry[str]], folder: str, fd: int | None, rel_folder: str,
-                 ignored: frozenset[str], stats: dict[str, tuple[int, int, int]] | None,
-                 ) -> tuple[list[str], list[tuple[str, str]], bool]:
-    """:func:`_folder_lines` for the sorted ``entries`` of ``folder`` (open as ``fd``,
-    whose entries stat relative to it, or None)."""
+                 stats: dict[str, tuple[int, int, int]] | Listing | None) -> tuple[list[str], bool]:
+    """One line per entry of ``folder`` (open as ``fd``, whose entries stat relative to
+    it, or None), for a folder :func:`_packed_folder` cannot pack, and whether it held
+    only folders and regular files."""
     whole = True
     lines: list[str] = []
-    subfolders: list[tuple[str, str]] = []
+    file_names: list[str] = []
+    numbers, inodes = array("q"), array("Q")
     for entry in entries:
         name = entry.name
-        if not rel_folder and name in ignored:
-            continue
         rel = rel_folder + name
         if entry.is_dir(follow_symlinks=False):
             lines.append(f"{rel}\0d")
-            subfolders.append((os.path.join(folder, name), rel + "/"))
             continue
         try:
             st = entry.stat(follow_symlinks=False)
@@ -162,9 +272,18 @@ def _entry_lines(entries: list[os.DirEntry[str]], folder: str, fd: int | None, r
                 except OSError:
                     line += "\0dangling"
         elif stats is not None:
-            stats[rel] = (st.st_size, st.st_mtime_ns, st.st_ino)
+            try:
+                packed = array("q", (mode, st.st_size, st.st_mtime_ns)), array("Q", (st.st_ino,))
+            except OverflowError:  # an mtime past 2262: not in the listing, which is then partial
+                whole = False
+            else:
+                numbers += packed[0]
+                inodes += packed[1]
+                file_names.append(name)
         lines.append(line)
-    return lines, subfolders, whole
+    if stats is not None:
+        _keep(stats, rel_folder, file_names, numbers, inodes)
+    return lines, whole
 
 
 def _digest(value: Any) -> str:
@@ -238,7 +357,7 @@ def _files_state(paths: list[str]) -> list[list[Any]]:
     return state
 
 
-def raw_digest(raw: Path, *, stats: dict[str, tuple[int, int, int]] | None = None) -> str:
+def raw_digest(raw: Path, *, stats: dict[str, tuple[int, int, int]] | Listing | None = None) -> str:
     digest = tree_digest(raw, stats=stats)
     if isinstance(stats, Listing):
         stats.digest = digest

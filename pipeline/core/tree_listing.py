@@ -41,13 +41,13 @@ def folder_bytes(folder: str, files: pa.Table) -> bytes | None:
     >>> tree_digest(out, given={"audio/": folder_bytes("audio", files)}) == tree_digest(out)
     True
     >>> folder_bytes("audio", files.slice(0, 0))
-    b'\\n\\n'
+    b'audio/\\x00\\n'
     >>> import shutil; shutil.rmtree(out)
     """
     paths = files.column("path").combine_chunks()
     parts = pc.split_pattern(paths, pattern="/")
     if len(paths) == 0:
-        return b"\n\n"
+        return f"{folder}/\0\n".encode()
     stats = ("st_mode", "st_size", "st_mtime_ns", "st_ino")
     if (files.column("path").null_count or any(files.column(c).null_count for c in stats)
             or not pc.all(pc.equal(pc.list_value_length(parts), 3)).as_py()
@@ -62,18 +62,18 @@ def folder_bytes(folder: str, files: pa.Table) -> bytes | None:
     order = pc.sort_indices(pa.table({"sub": sub, "name": name}), sort_keys=[("sub", "ascending"),
                                                                             ("name", "ascending")])
     sub = sub.take(order)
-    columns = [paths.take(order), *(files.column(c).combine_chunks().take(order).cast(pa.string()) for c in stats)]
-    lines = pc.binary_join_element_wise(*columns, "\0")
-    codes = np.asarray(pc.dictionary_encode(sub).indices, dtype=np.int64) if len(sub) else np.zeros(0, np.int64)
-    last = np.r_[codes[1:] != codes[:-1], True]
-    ends = pa.array(np.where(last, "\n\n", "\n"), pa.string())
-    subfolders = pc.unique(sub)
-    top = "\n".join(f"{folder}/{s}\0d" for s in subfolders.to_pylist()) + "\n\n"
-    return top.encode("utf-8") + _concatenated(pc.binary_join_element_wise(lines, ends, ""))
-
-
-def _concatenated(strings: pa.Array) -> bytes:
-    """The bytes of every string of ``strings``, one after the other."""
-    strings = strings.cast(pa.large_string())
-    offsets = np.frombuffer(strings.buffers()[1], dtype=np.int64)[strings.offset:strings.offset + len(strings) + 1]
-    return strings.buffers()[2].to_pybytes()[offsets[0]:offsets[-1]]
+    names = name.take(order).to_pylist()
+    numbers = np.column_stack([np.asarray(files.column(c).combine_chunks().take(order), dtype=np.int64)
+                               for c in stats[:3]])
+    inodes = np.asarray(files.column("st_ino").combine_chunks().take(order), dtype=np.uint64)
+    # Where each subfolder's files begin and end in that order.
+    codes = np.asarray(pc.dictionary_encode(sub).indices, dtype=np.int64)
+    starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]]).tolist()
+    subs = pc.unique(sub).to_pylist()
+    # The bytes snapshot._packed_folder hashes: the folder's name and its entries' kinds
+    # and names, NUL-separated, then (for files) their numbers as int64 and uint64.
+    parts = ["\0".join([f"{folder}/", *(f"d{s}" for s in subs)]).encode() + b"\0\n"]
+    for s, first, end in zip(subs, starts, [*starts[1:], len(names)], strict=True):
+        text = "\0".join([f"{folder}/{s}/", *(f"f{n}" for n in names[first:end])]) + "\0\n"
+        parts += [text.encode(), numbers[first:end].tobytes(), inodes[first:end].tobytes()]
+    return b"".join(parts)

@@ -18,7 +18,6 @@ import unicodedata
 from collections import defaultdict
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
-from itertools import chain
 from pathlib import Path
 from typing import Any
 
@@ -183,11 +182,13 @@ def scan_listing(listing: Any, extensions: tuple[str, ...], sidecar_extension: s
 
     if not getattr(listing, "complete", False):
         return None
-    names = list(listing)
+    # The listing's columns (mode, size and mtime_ns of each file, then the inodes),
+    # mapped into numpy without a copy: no Python value per file.
+    names, numbers, inodes = listing.columns()
+    values = np.column_stack([np.frombuffer(numbers, dtype=np.int64).reshape(-1, 3)[:, 1:],
+                              np.frombuffer(inodes, dtype=np.uint64).view(np.int64)])
     try:
         with pandas_left_unloaded():
-            values = np.fromiter(chain.from_iterable(listing.values()), dtype=np.int64,
-                                 count=3 * len(names)).reshape(-1, 3)
             arr = pa.array(names, pa.string())
     except (UnicodeEncodeError, OverflowError, ValueError):
         return None
