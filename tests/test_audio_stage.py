@@ -469,6 +469,39 @@ def test_later_outcomes_of_a_source_replace_earlier_ones():
     assert rows == {"a": [3], "b": [2]}
 
 
+def test_the_listing_of_clips_is_the_lstat_of_each_file(tmp_path: Path, monkeypatch):
+    # Reference: os.lstat of every file under the folder, nested folders included; a file
+    # gone between the listing and its stat is left out, its neighbours kept.
+    from pipeline.stages import audio_cache
+
+    out = tmp_path / "out"
+    for rel in ("audio/ana/a.flac", "audio/ana/b.flac", "audio/ben/c.flac", "audio/ben/deep/d.flac"):
+        (out / rel).parent.mkdir(parents=True, exist_ok=True)
+        (out / rel).write_bytes(rel.encode())
+    (out / "audio" / "ana" / "link.flac").symlink_to(out / "audio" / "ana" / "a.flac")
+
+    def expected() -> dict[str, tuple[int, int, int, int]]:
+        return {str(p.relative_to(out)): (p.lstat().st_size, p.lstat().st_mtime_ns, p.lstat().st_ino,
+                                          p.lstat().st_mode)
+                for p in (out / "audio").rglob("*") if not p.is_dir() or p.is_symlink()}
+
+    def listed() -> dict[str, tuple[int, int, int, int]]:
+        table = audio_cache.file_listing(out / "audio", base=out).to_pydict()
+        return {path: (table["st_size"][i], table["st_mtime_ns"][i], table["st_ino"][i], table["st_mode"][i])
+                for i, path in enumerate(table["path"])}
+
+    assert listed() == expected() and len(expected()) == 5
+    stat = audio_cache._LSTAT
+
+    def gone_meanwhile(entry: os.DirEntry[str]) -> os.stat_result:
+        if entry.name == "b.flac":
+            (out / "audio" / "ana" / "b.flac").unlink()
+        return stat(entry)
+
+    monkeypatch.setattr(audio_cache, "_LSTAT", gone_meanwhile)
+    assert listed() == expected() and "audio/ana/b.flac" not in expected()
+
+
 def test_the_cache_follows_the_config_the_code_and_each_source(first_run, raw: Path, tmp_path: Path, monkeypatch):
     # Each change reconditions what it reaches, and the rows are those of a run without
     # the cache: another audio config or code version, every source; a source whose
