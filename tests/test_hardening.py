@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import errno
+import io
 import json
 import os
 import random
@@ -75,24 +76,41 @@ def test_full_disk_midway_leaves_old_manifest_intact(small_raw: Path, tmp_path: 
     args = ["stage", "ingest", str(small_raw), str(out), "--set", 'ingest.metadata="meta.csv"']
     assert main(args) == 0
     before = (out / "stages" / "ingest.parquet").read_bytes()
-    (small_raw / "spk_a" / "new.txt").write_text("changes nothing audible")
-    real_write = pq.write_table
+    # A new transcript: the manifest's bytes change (a file that would keep its bytes is
+    # not written at all).
+    (small_raw / "spk_a" / "a1.txt").write_text("a transcript that changed")
+    # The manifest's bytes are made in memory, then written to a temporary beside it
+    # (pipeline.core.fsio.write_bytes_atomic): the temporary of ingest.parquet takes
+    # half of them, then the disk is full.
+    from pipeline.core import fsio
+
+    real_create, real_open = fsio._create_temporary, open
+    failing: set[int] = set()
     calls = {"n": 0}
 
-    def failing_write(table, where, *a, **k):  # type: ignore[no-untyped-def]
-        calls["n"] += 1
-        with open(where, "wb") as fh:  # half a file, then the disk is full
-            fh.write(b"PAR1" + b"\0" * 100)
-        raise OSError(errno.ENOSPC, "No space left on device", str(where))
+    def create(target: str) -> tuple[str, int]:
+        tmp, fd = real_create(target)
+        if target.endswith("ingest.parquet"):
+            failing.add(fd)
+        return tmp, fd
 
-    with mock.patch("pipeline.core.manifest.pq.write_table", failing_write):
+    class HalfWriter(io.FileIO):
+        def write(self, data):  # type: ignore[no-untyped-def]
+            calls["n"] += 1
+            super().write(bytes(data)[: len(data) // 2])
+            raise OSError(errno.ENOSPC, "No space left on device")
+
+    def fake_open(file, *a, **k):  # type: ignore[no-untyped-def]
+        return HalfWriter(file, "wb") if isinstance(file, int) and file in failing else real_open(file, *a, **k)
+
+    with mock.patch.object(fsio, "_create_temporary", create), \
+            mock.patch("pipeline.core.fsio.open", fake_open, create=True):
         code = main(args)
-    assert code == 1 and calls["n"] >= 1
+    assert code == 1 and calls["n"] == 1
     assert "No space left on device" in capsys.readouterr().err
     assert (out / "stages" / "ingest.parquet").read_bytes() == before
     assert not list(out.rglob(".loam-*.tmp"))
     pq.read_table(out / "stages" / "ingest.parquet")
-    assert real_write is pq.write_table
 
 
 def test_unwritable_out_is_a_clear_error(small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:

@@ -378,7 +378,7 @@ def build_summary(out: Path, *, clips: pd.DataFrame | None = None) -> dict[str, 
     >>> import tempfile
     >>> from pipeline.core.manifest import empty_table, write_manifest
     >>> with tempfile.TemporaryDirectory() as tmp:
-    ...     write_manifest(Path(tmp, REJECTED), "rejected", empty_table("rejected"), metadata={})
+    ...     _ = write_manifest(Path(tmp, REJECTED), "rejected", empty_table("rejected"), metadata={})
     ...     summary = build_summary(Path(tmp))
     >>> summary["totals"]["clips"], summary["rejects"]["total"], summary["subsets"][LABELLED]["file_present"]
     (0, 0, False)
@@ -923,7 +923,7 @@ def write_report(out: Path) -> Path:
     >>> import tempfile
     >>> from pipeline.core.manifest import empty_table, write_manifest
     >>> with tempfile.TemporaryDirectory() as tmp:
-    ...     write_manifest(Path(tmp, REJECTED), "rejected", empty_table("rejected"), metadata={})
+    ...     _ = write_manifest(Path(tmp, REJECTED), "rejected", empty_table("rejected"), metadata={})
     ...     page = write_report(Path(tmp))
     ...     print(page.relative_to(tmp), "<h2>Subsets</h2>" in page.read_text(encoding="utf-8"))
     report/index.html True

@@ -1317,8 +1317,8 @@ def validate_out(out: Path, *, deep: bool = False, audio_files: bool = True) -> 
     >>> from pipeline.core.manifest import empty_table, write_manifest
     >>> with tempfile.TemporaryDirectory() as tmp:
     ...     for name in SUBSETS:
-    ...         write_manifest(Path(tmp, subset_manifest(name)), "subset", empty_table("subset"), metadata={})
-    ...     write_manifest(Path(tmp, REJECTED), "rejected", empty_table("rejected"), metadata={})
+    ...         _ = write_manifest(Path(tmp, subset_manifest(name)), "subset", empty_table("subset"), metadata={})
+    ...     _ = write_manifest(Path(tmp, REJECTED), "rejected", empty_table("rejected"), metadata={})
     ...     result = validate_out(Path(tmp))
     >>> [(p.check, p.file) for p in result.problems]
     [('config', 'config.resolved.json'), ('subset_empty', 'manifests/labelled.parquet'), ('subset_empty', 'manifests/heldout.parquet')]

@@ -106,7 +106,8 @@ def _same_bytes(a: Path, b: Path) -> bool:
                 return True
 
 
-def write_bytes_atomic(path: str | os.PathLike[str], data: bytes, *, durable: bool = True) -> os.stat_result:
+def write_bytes_atomic(path: str | os.PathLike[str], data: bytes | memoryview, *,
+                       durable: bool = True) -> os.stat_result:
     """Write ``data`` to ``path`` atomically (see :func:`atomic_output`); the file's stat.
 
     The same guarantees as ``atomic_output`` in fewer system calls, for the many small
@@ -163,7 +164,7 @@ def write_bytes_atomic(path: str | os.PathLike[str], data: bytes, *, durable: bo
     return st
 
 
-def _holds(path: str, data: bytes) -> bool:
+def _holds(path: str, data: bytes | memoryview) -> bool:
     """Whether the file at ``path`` (known to be ``len(data)`` bytes) holds ``data``."""
     with open(path, "rb") as fh:
         return fh.read(len(data) + 1) == data

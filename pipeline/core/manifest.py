@@ -15,7 +15,9 @@ row (the tests assert both paths agree).
 from __future__ import annotations
 
 import functools
+import hashlib
 import json
+import os
 from collections.abc import Iterable
 from dataclasses import asdict, dataclass
 from pathlib import Path
@@ -27,7 +29,7 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from pipeline.core.errors import ManifestError
-from pipeline.core.fsio import atomic_output
+from pipeline.core.fsio import write_bytes_atomic
 from pipeline.core.schemas_io import load_schema, row_validator
 from pipeline.core.startup import pandas_left_unloaded
 
@@ -398,21 +400,39 @@ def validate_table(name: str, table: pa.Table, *, where: str) -> None:
         raise ManifestError(f"manifest {where} breaks schemas/{name}.schema.json:\n  {lines}")
 
 
+@dataclass(frozen=True)
+class Written:
+    """A manifest as :func:`write_manifest` left it: the hex SHA-256 of its bytes and
+    the ``stat`` of the file holding them (``st_size``, ``st_mtime_ns``, ``st_ino``)."""
+
+    sha256: str
+    stat: os.stat_result
+
+
 def write_manifest(path: str | Path, name: str, table: pa.Table, *, metadata: dict[str, str],
-                   checked: bool = False) -> None:
-    """Validate, then write ``table`` atomically with key-value metadata.
+                   checked: bool = False) -> Written:
+    """Validate, then write ``table`` atomically with key-value metadata; what was written.
 
     ``checked``: the caller has just checked this very table against schema ``name``
     (:func:`partition_rows` found no failing row), so the check is not repeated (it
     cost 0.05 CPU seconds per 100,000 clips of the audio manifest).
+
+    The Parquet bytes are made in memory, hashed there and written by
+    ``fsio.write_bytes_atomic`` (flushed to disk before the rename; a file already
+    holding them is left alone): the caller gets their hash without reading the file
+    back (the 32 MB audio manifest of 100,000 sources), and the stat of the very file
+    written.
     """
     if not checked:
         validate_table(name, table, where=str(path))
     meta = {b"loam.schema": name.encode()}
     meta.update({f"loam.{k}".encode(): str(v).encode() for k, v in sorted(metadata.items())})
     table = table.replace_schema_metadata(meta)
-    with atomic_output(path) as tmp:
-        pq.write_table(table, tmp, compression="zstd", write_statistics=True)
+    sink = pa.BufferOutputStream()
+    pq.write_table(table, sink, compression="zstd", write_statistics=True)
+    # Unsigned bytes: a view of signed ones would never compare equal to a file's bytes.
+    data = memoryview(sink.getvalue()).cast("B")
+    return Written(hashlib.sha256(data).hexdigest(), write_bytes_atomic(path, data))
 
 
 def read_manifest(path: str | Path) -> pa.Table:
@@ -495,7 +515,7 @@ def read_checked(path: str | Path, name: str, *, where: str,
     >>> rows = [{"source_path": "a.wav", "reason": "empty", "detail": "a.wav: empty", "stage": "ingest",
     ...          "clip_id": None}]
     >>> with tempfile.TemporaryDirectory() as tmp:
-    ...     write_manifest(Path(tmp, "r.parquet"), "rejected", table_from_rows("rejected", rows), metadata={})
+    ...     _ = write_manifest(Path(tmp, "r.parquet"), "rejected", table_from_rows("rejected", rows), metadata={})
     ...     table, problems = read_checked(Path(tmp, "r.parquet"), "rejected", where="r.parquet")
     >>> table.num_rows, problems
     (1, [])

@@ -26,6 +26,7 @@ from pipeline.core.errors import DataError
 from pipeline.core.fsio import remove_stale_temporaries, sha256_file, write_text_atomic
 from pipeline.core.lock import output_lock
 from pipeline.core.manifest import (
+    Written,
     partition_rows,
     read_manifest,
     read_metadata,
@@ -258,17 +259,24 @@ class Runner:
         fact = self._manifest_fact(rel)
         return fact[3] if fact is not None else sha256_file(self.out / rel)
 
-    def _record_main_manifest(self, stage: Stage) -> None:
+    def _record_main_manifest(self, stage: Stage, written: Written | None = None) -> None:
         """Record the stat, content hash and schema of the stage's main manifest, just
         written and checked against that schema, in ``names.stage_manifest_facts`` (only
-        main manifests are ever a stage's input). Nothing is recorded for a file whose stat
-        moved while it was hashed."""
+        main manifests are ever a stage's input): as ``write_manifest`` gave them
+        (``written``: the hash of the bytes it wrote and the stat of the file holding
+        them), else hashed now. Nothing is recorded for a file whose stat moved while it
+        was hashed."""
         rel, schema = stage.main_manifest, stage.outputs[0].schema
         path = self.out / rel
-        before = _file_stat(path)
-        digest = sha256_file(path)
+        if written is not None:
+            before: list[int] | None = [written.stat.st_size, written.stat.st_mtime_ns, written.stat.st_ino]
+            digest, after = written.sha256, before
+        else:
+            before = _file_stat(path)
+            digest = sha256_file(path)
+            after = _file_stat(path)
         facts = ({rel: [*before, digest, schema, schema_sha256(schema)]}
-                 if before is not None and before == _file_stat(path) else {})
+                 if before is not None and before == after else {})
         self._loaded_facts().pop(rel, None)
         self._loaded_facts().update(facts)
         write_text_atomic(self.out / names.stage_manifest_facts(stage.name), json.dumps(facts) + "\n")
@@ -380,11 +388,11 @@ class Runner:
         # The main manifest goes last: its metadata is what marks the stage up to date.
         # Each table was checked by _set_aside_invalid_rows, which kept only valid rows.
         for rel, (schema, table) in sorted(result.manifests.items(), key=lambda kv: kv[0] == stage.main_manifest):
-            write_manifest(self.out / rel, schema, table, metadata=meta, checked=True)
+            main = write_manifest(self.out / rel, schema, table, metadata=meta, checked=True)
         self._hold(stage.main_manifest, result.manifests[stage.main_manifest][1])
         written = self._record_outputs(stage, list(result.manifests), result.manifests[stage.main_manifest][1],
                                        result.file_stats)
-        self._record_main_manifest(stage)
+        self._record_main_manifest(stage, main)
         self._keep_listing(result, written)
 
     def _hold(self, rel: str, table: pa.Table) -> None:
