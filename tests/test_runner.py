@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import os
 import shutil
 from pathlib import Path
 
@@ -233,3 +234,36 @@ def test_the_record_of_written_files_is_columnar_and_an_older_json_record_is_a_m
     assert not old.exists() and (out / stage_outputs_record("audio")).is_file()
     assert main(stage_audio) == 0
     assert "audio  reused" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("audio_runs", [False, True])
+def test_temporaries_of_an_interrupted_run_are_removed_whether_the_audio_stage_runs_or_not(
+        audio_runs: bool, small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # The runner's sweep leaves OUT/audio to the audio stage (Stage.cleans_folder), which
+    # removes every file there no row names; a reused audio stage's folder is swept by
+    # the runner after the stages.
+    import soundfile as sf
+
+    from tests.conftest import speechlike
+
+    out = tmp_path / "out"
+    args = ["prepare", str(small_raw), str(out), "--workers", "1", "--no-progress"]
+    assert main(args) == 0
+    clips = sorted((out / "audio").rglob("*.flac"))
+    planted = [clips[0].parent / f".loam-{clips[0].name}.0a1b2c3d4e5f.tmp", out / "stages" / ".loam-x.parquet.tmp",
+               out / ".loam-config.resolved.json.0a1b2c3d4e5f.tmp"]
+    for path in planted:
+        path.write_bytes(b"half a file")
+    if audio_runs:  # a new file: ingest's manifest changes, the audio stage runs
+        sf.write(small_raw / "spk_a" / "a3.wav", speechlike(1.5, 16000, seed=9), 16000)
+    else:  # a touched transcript: ingest runs again, its manifest's bytes do not change
+        st = (small_raw / "spk_a" / "a1.txt").stat()
+        os.utime(small_raw / "spk_a" / "a1.txt", ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000))
+    capsys.readouterr()
+    assert main(args) == 0
+    log = capsys.readouterr().err
+    assert ("audio  reused" in log) is not audio_runs
+    assert not [path for path in planted if path.exists()]
+    assert not list(out.rglob(".loam-*.tmp"))
+    # The clips themselves stay (one more for the new file).
+    assert set(clips) <= set((out / "audio").rglob("*.flac"))

@@ -235,14 +235,30 @@ def write_text_atomic(path: str | os.PathLike[str], text: str) -> None:
     write_bytes_atomic(path, text.encode("utf-8"))
 
 
-def remove_stale_temporaries(folder: str | os.PathLike[str]) -> int:
-    """Delete ``.loam-*.tmp`` files a killed run left behind; returns how many.
+def remove_stale_temporaries(folder: str | os.PathLike[str], *, skip: frozenset[str] = frozenset()) -> int:
+    """Delete ``.loam-*.tmp`` files a killed run left behind; returns how many. The
+    subfolders of ``folder`` named in ``skip`` are left alone.
 
     ``os.walk`` with a test on each name, no Path object per file: over an OUT of
     20,000 clips 0.10 to 0.11 s, where ``Path.rglob`` took 0.20 to 0.23 s.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> folder = tempfile.mkdtemp()
+    >>> for name in ("a/.loam-x.flac.1.tmp", "b/.loam-y.tmp", "a/.loam-z.flac", ".loam-t.tmp"):
+    ...     os.makedirs(os.path.dirname(os.path.join(folder, name)), exist_ok=True)
+    ...     open(os.path.join(folder, name), "w").close()
+    >>> remove_stale_temporaries(folder, skip=frozenset({"b"})), sorted(os.listdir(os.path.join(folder, "a")))
+    (2, ['.loam-z.flac'])
+    >>> os.listdir(os.path.join(folder, "b"))
+    ['.loam-y.tmp']
+    >>> import shutil; shutil.rmtree(folder)
     """
     count = 0
-    for parent, _dirs, files in os.walk(folder):
+    for parent, dirs, files in os.walk(folder):
+        if skip and parent == os.fspath(folder):
+            dirs[:] = [d for d in dirs if d not in skip]
         for name in files:
             if name.startswith(".loam-") and name.endswith(".tmp"):
                 with contextlib.suppress(FileNotFoundError):

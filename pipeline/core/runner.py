@@ -478,6 +478,13 @@ class Runner:
             self._record_outputs(stage, [o.path for o in stage.outputs])
             self._record_main_manifest(stage)
 
+    def _sweep(self, skip: frozenset[str] = frozenset(), *, folder: str = "") -> None:
+        """Remove the temporaries an interrupted run left in OUT (in its ``folder`` only,
+        when given), but in the top-level folders of ``skip``."""
+        removed = remove_stale_temporaries(self.out / folder if folder else self.out, skip=skip)
+        if removed:
+            self.log.info("removed %d temporary files left by an interrupted run", removed)
+
     def write_rejected(self) -> int:
         """Gather every stage's rejects into ``manifests/rejected.parquet``."""
         tables = []
@@ -504,9 +511,10 @@ class Runner:
                 self.raw_stats = listed if listed is not None and listed.digest else snapshot.Listing()
                 raw_listing = self.raw_stats.digest or snapshot.raw_digest(self.raw, stats=self.raw_stats)
             snapshot.forget(self.out)
-            removed = remove_stale_temporaries(self.out)
-            if removed:
-                self.log.info("removed %d temporary files left by an interrupted run", removed)
+            # A folder a stage of this run clears itself (Stage.cleans_folder) is swept
+            # by that stage's run, or below if it does not run.
+            cleaned = frozenset(folder for name in stages if (folder := self.stages[name].cleans_folder))
+            self._sweep(cleaned)
             write_text_atomic(self.out / names.RESOLVED_CONFIG,
                               json.dumps(self.config.to_json(), indent=2, sort_keys=True, ensure_ascii=False) + "\n")
             if self.scheduler:
@@ -516,6 +524,10 @@ class Runner:
                 self.run_stage(pending.pop(0), meanwhile=self._ready_stages(pending))
             # Stages may finish out of order (see _ready_stages); logs list them in order.
             self.records.sort(key=lambda r: order.index(r.name))
+            ran = {r.name for r in self.records if r.ran}
+            for name in stages:
+                if (folder := self.stages[name].cleans_folder) and name not in ran:
+                    self._sweep(folder=folder)
             n = self.write_rejected()
             self.log.info("rejected: %d rows in %s", n, self.out / names.REJECTED)
             # Timings live under logs/, never in a manifest, so manifests stay byte-identical.

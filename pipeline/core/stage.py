@@ -102,6 +102,13 @@ class Stage:
         ``prepare_driver(config) -> None``: loads into this process what the stage's
         workers will need (imports, tables), called while an earlier stage waits for its
         pool; only a stage with a pool of its own needs it.
+    cleans_folder : str
+        A top-level folder of OUT whose every file the stage's run lists as it begins and
+        removes at its end unless a row names it (the audio stage's clips): the stale
+        ``.loam-*.tmp`` files of an interrupted run there go with them, so the runner's
+        sweep for those leaves the folder to the run, and sweeps it itself only when the
+        stage does not run (OUT/audio holds 100,000 clips at 100,000 sources: listed
+        once per rebuild instead of twice).
 
     Raises
     ------
@@ -135,6 +142,7 @@ class Stage:
     written_files: Callable[[Path, pa.Table], list[str]] | None = None
     reuse_note: Callable[[dict[str, Any]], str] | None = None
     prepare_driver: Callable[[Config], None] | None = None
+    cleans_folder: str = ""
 
     def __post_init__(self) -> None:
         if self.name not in names.STAGES:
@@ -154,6 +162,10 @@ class Stage:
             if not isinstance(getattr(self, flag), bool):
                 self._fail(f"{flag}={getattr(self, flag)!r}: expected True or False")
         self._check_callables()
+        folder = self.cleans_folder
+        if not (isinstance(folder, str) and (not folder or (folder not in (".", "..") and "/" not in folder
+                                                             and "\\" not in folder))):
+            self._fail(f"cleans_folder={folder!r}: expected the name of a top-level folder of OUT, or ''")
         if self.inputs_after_run and self.extra_inputs is None:
             self._fail("inputs_after_run=True without extra_inputs: there is no file to hash after the run")
 

@@ -931,4 +931,7 @@ STAGE = Stage(
     run=run,
     written_files=written_files,
     prepare_driver=prepare_driver,
+    # _clean_up removes every file of OUT/audio listed as the stage began that no row
+    # names: a killed run's temporaries there too.
+    cleans_folder=AUDIO_DIR,
 )
