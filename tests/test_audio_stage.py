@@ -462,11 +462,14 @@ def test_later_outcomes_of_a_source_replace_earlier_ones():
 
     from pipeline.stages.audio_cache import _outcome_runs
 
-    # a's outcome (two rows), b's, then a newer outcome of a (a part written later).
-    distinct, last_run, first, lengths = _outcome_runs(pa.chunked_array([["a", "a", "b", "a"]]))
-    rows = {key: list(range(first[run], first[run] + lengths[run]))
-            for key, run in zip(distinct.to_pylist(), last_run, strict=True)}
-    assert rows == {"a": [3], "b": [2]}
+    # a's outcome (two rows), b's, then a newer outcome of a (a part written later);
+    # rows written by an older Loam without a key; c never stored.
+    keys = pa.chunked_array([["a", "a"], ["b", "a", None, None]])
+    wanted = ["a", "b", "c", ""]
+    last_run, first, lengths = _outcome_runs(keys, pa.array(wanted))
+    rows = {key: list(range(first[run], first[run] + lengths[run])) if run >= 0 else None
+            for key, run in zip(wanted, last_run, strict=True)}
+    assert rows == {"a": [3], "b": [2], "c": None, "": [4, 5]}
 
 
 def test_the_listing_of_clips_is_the_lstat_of_each_file(tmp_path: Path, monkeypatch):
