@@ -29,9 +29,11 @@ _STATS = ("st_size", "st_mtime_ns", "st_ino")
 
 
 def stat_table(out: Path, rels: list[str] | pa.Array, known: pa.Table | None = None) -> pa.Table:
-    """The record of ``rels`` (paths relative to ``out``), sorted by path, each once: a
-    path in ``known`` (a table of :data:`SCHEMA`'s columns, one row per path, e.g. the
-    stage's StageResult.file_stats) taken as given there, the others stat'ed now.
+    """The record of ``rels`` (paths relative to ``out``), each once, those in ``known``
+    first (in the order of ``rels``): a path in ``known`` (a table of :data:`SCHEMA`'s
+    columns, one row per path, e.g. the stage's StageResult.file_stats) taken as given
+    there, the others stat'ed now. Not sorted: :func:`unchanged` looks paths up, and
+    sorting the 101,000 clips of a rebuild by path cost 0.015 CPU s.
 
     Examples
     --------
@@ -39,8 +41,9 @@ def stat_table(out: Path, rels: list[str] | pa.Array, known: pa.Table | None = N
     >>> out = Path(tempfile.mkdtemp())
     >>> _ = (out / "a.txt").write_bytes(b"abc")
     >>> known = pa.table({"path": ["b.flac"], "st_size": [7], "st_mtime_ns": [1], "st_ino": [2]}, schema=SCHEMA)
-    >>> stat_table(out, ["gone.txt", "b.flac", "a.txt", "b.flac"], known).to_pydict()["st_size"]
-    [3, 7, None]
+    >>> record = stat_table(out, ["gone.txt", "b.flac", "a.txt", "b.flac"], known).to_pydict()
+    >>> record["path"], record["st_size"]
+    (['b.flac', 'gone.txt', 'a.txt'], [7, None, 3])
     >>> import shutil; shutil.rmtree(out)
     """
     rels = pc.unique(pa.array(rels, pa.string()) if isinstance(rels, list) else rels)
@@ -48,11 +51,12 @@ def stat_table(out: Path, rels: list[str] | pa.Array, known: pa.Table | None = N
     if known is not None and known.num_rows:
         known = known.select(SCHEMA.names).cast(SCHEMA)
         if pc.count_distinct(known.column("path")).as_py() == known.num_rows:
-            parts.append(known.filter(pc.is_in(known.column("path"), value_set=rels)))
-            rels = rels.filter(pc.invert(pc.is_in(rels, value_set=known.column("path"))))
+            # One look-up of each path among the known ones: their row, or null.
+            row = pc.index_in(rels, value_set=known.column("path"))
+            parts.append(known.take(row.drop_null()))
+            rels = rels.filter(row.is_null())
     parts.append(_stat_now(out, rels.to_pylist()))
-    table = pa.concat_tables(parts)
-    return table.take(pc.sort_indices(table, sort_keys=[("path", "ascending")]))
+    return pa.concat_tables(parts)
 
 
 def _stat_now(out: Path, rels: list[str]) -> pa.Table:
