@@ -181,6 +181,9 @@ GOOD = {"name": "text", "inputs": ("ingest",), "config_sections": ("text",), "ru
     ({"reuse_note": "split changes: none"}, "reuse_note='split changes: none': expected a function or None"),
     ({"always_run": 1}, "always_run=1: expected True or False"),
     ({"inputs_after_run": True}, "inputs_after_run=True without extra_inputs"),
+    ({"cleans_folder": "audio/ana"}, "cleans_folder='audio/ana': expected the name of a top-level folder"),
+    ({"cleans_folder": ".."}, "cleans_folder='..': expected the name of a top-level folder"),
+    ({"cleans_folder": None}, "cleans_folder=None: expected the name of a top-level folder"),
 ])
 def test_a_wrong_declaration_is_named(change: dict[str, object], message: str) -> None:
     with pytest.raises(ParameterError, match=re.escape(message)):
