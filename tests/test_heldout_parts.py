@@ -319,23 +319,38 @@ def test_three_batches_of_arriving_audio_move_no_clip_between_subsets_or_parts(t
     assert {"dev", "test"} <= set(seen.values())
 
 
+_BINDING = {"split": {"heldout": "34%", "labelled_budgets": ["1m"]}}
+
+
+def _bind_dev_and_test(tmp_path: Path) -> tuple[Corpus, dict[str, str], str]:
+    """A split, then a clip from a test speaker that is a copy of a dev speaker's clip:
+    the corpus, the places before the copy arrived, and the copy's clip id."""
+    corpus = prompted_corpus()
+    before = places(split.run(make_ctx(tmp_path, corpus, _BINDING)))
+    speakers = {p: sorted({r["speaker"] for r in corpus.audio if before[r["clip_id"]] == p}) for p in ("dev", "test")}
+    copied = next(r for r in corpus.audio if r["speaker"] == speakers["dev"][0])
+    new = corpus.add(speakers["test"][0], copied["duration_s"], transcribed=False,
+                     fingerprint=random_fingerprint(copied["clip_id"], copied["duration_s"]))
+    return corpus, before, new
+
+
+def _moved(before: dict[str, str], after: dict[str, str]) -> dict[str, tuple[str, str | None]]:
+    """Clips whose place changed, other than between labelled and unlabelled."""
+    return {c: (before[c], after.get(c)) for c in before if c in after and before[c] != after[c]
+            and not {before[c], after[c]} <= {"labelled", "unlabelled"}}
+
+
 def test_a_new_near_duplicate_binding_dev_and_test_moves_nothing_and_is_reported(tmp_path: Path) -> None:
     # A clip arrives from a test speaker that is a copy of a dev speaker's clip: the
     # near-duplicate binds the two groups, which the ledger holds in different parts.
     # Nothing moves (docs/split.md, The ledger), the new clip stays with its own
     # speaker's part, the split reports the bound group, and validate still says that
     # dev and test now share a near-duplicate.
-    corpus = prompted_corpus()
-    data = {"split": {"heldout": "34%", "labelled_budgets": ["1m"]}}
-    before = places(split.run(make_ctx(tmp_path, corpus, data)))
-    speakers = {p: sorted({r["speaker"] for r in corpus.audio if before[r["clip_id"]] == p}) for p in ("dev", "test")}
-    copied = next(r for r in corpus.audio if r["speaker"] == speakers["dev"][0])
-    new = corpus.add(speakers["test"][0], copied["duration_s"], transcribed=False,
-                     fingerprint=random_fingerprint(copied["clip_id"], copied["duration_s"]))
+    corpus, before, new = _bind_dev_and_test(tmp_path)
+    data = _BINDING
     result = split.run(make_ctx(tmp_path, corpus, data))
     after = places(result)
-    assert {c: (before[c], after[c]) for c in before if before[c] != after[c]
-            and not {before[c], after[c]} <= {"labelled", "unlabelled"}} == {}
+    assert set(before) <= set(after) and _moved(before, after) == {}
     assert after[new] == "test"
     bound = all_rows(result)[new]["group"]
     assert result.summary["changes"]["straddling_parts_groups"] == [bound]
@@ -348,20 +363,14 @@ def test_excluding_the_new_copy_at_review_unbinds_dev_and_test(tmp_path: Path) -
     # reviewer keeps one copy (the other is excluded). An excluded clip is no longer in
     # the corpus, so it binds no groups: the parts are apart again, nothing moved, and
     # validate is clean.
-    corpus = prompted_corpus()
-    data = {"split": {"heldout": "34%", "labelled_budgets": ["1m"]}}
-    before = places(split.run(make_ctx(tmp_path, corpus, data)))
-    speakers = {p: sorted({r["speaker"] for r in corpus.audio if before[r["clip_id"]] == p}) for p in ("dev", "test")}
-    copied = next(r for r in corpus.audio if r["speaker"] == speakers["dev"][0])
-    new = corpus.add(speakers["test"][0], copied["duration_s"], transcribed=False,
-                     fingerprint=random_fingerprint(copied["clip_id"], copied["duration_s"]))
+    corpus, before, new = _bind_dev_and_test(tmp_path)
+    data = _BINDING
     assert split.run(make_ctx(tmp_path, corpus, data)).summary["changes"]["straddling_parts_groups"]
     ctx = make_ctx(tmp_path, corpus, data)
     append_decision(decisions_file(ctx), {"decision": "exclude", "clip_id": new, "reason": "duplicate"})
     result = split.run(ctx)
     after = places(result)
-    assert new not in after and {c for c in before if before[c] != after.get(c)
-                                 and not {before[c], after[c]} <= {"labelled", "unlabelled"}} == set()
+    assert new not in after and set(after) == set(before) and _moved(before, after) == {}
     assert result.summary["changes"]["straddling_parts_groups"] == []
     assert [r["reason"] for r in result.rejects] == ["review_excluded"]
     assert validate_out(write_out(tmp_path, result, data), audio_files=False).problems == []
