@@ -10,13 +10,16 @@ from __future__ import annotations
 
 import math
 from collections import Counter, defaultdict
+from dataclasses import replace
 from typing import Any
 
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from pipeline.core.names import HELDOUT, LABELLED, SUBSETS, UNLABELLED
 from pipeline.stages import split
 from pipeline.stages.heldout import GroupFacts
+from pipeline.stages.ledger import ClipRecord, Ledger
 from pipeline.stages.prompts import prompt_key
 
 SPEAKERS = ("alder", "heron", "otter", "wren")
@@ -77,3 +80,150 @@ def test_group_facts_equal_a_loop_over_clips(clips: list[split.Clip]) -> None:
         assert got.seconds == want.seconds
         assert list(got.prompts.items()) == list(want.prompts.items())  # sorted, float for float
         assert got.attributes == want.attributes
+
+
+@st.composite
+def ledgers(draw: Any, clips: list[split.Clip]) -> Ledger:
+    """A random ledger over some of the clips (others are new), with clips the run no
+    longer has, group rows for some groups only, and parts configured or not (a part
+    of an older config, "", or none)."""
+    records: dict[str, ClipRecord] = {}
+    for c in clips:
+        if draw(st.booleans()):
+            subset = draw(st.sampled_from(SUBSETS))
+            part = draw(st.sampled_from(PARTS + ("old", ""))) if subset == HELDOUT else ""
+            # A moved clip: its ledger group may differ from this run's group.
+            group = draw(st.sampled_from((c.group, *GROUPS)))
+            records[c.clip_id] = ClipRecord(subset, ("1m",) if subset == LABELLED else (), group, part)
+    for k in range(draw(st.integers(0, 3))):  # clips gone since
+        records[f"gone{k}"] = ClipRecord(UNLABELLED, (), draw(st.sampled_from(GROUPS)), "")
+    groups = {g: draw(st.sampled_from(("heldout", "training"))) for g in GROUPS if draw(st.booleans())}
+    parts = {g: draw(st.sampled_from(PARTS + ("old",))) for g, side in groups.items()
+             if side == "heldout" and draw(st.booleans())}
+    return Ledger({}, groups, records, {}, parts)
+
+
+PARTS = ("dev", "test")
+
+
+def bound(clips: list[split.Clip], data: Any) -> list[split.Clip]:
+    """The clips with some groups bound together (as near-duplicates bind them): a
+    clip's group then differs from its base group."""
+    merged = {g: data.draw(st.sampled_from(GROUPS)) for g in GROUPS}
+    return [replace(c, group=min(c.base_group, merged[c.base_group])) for c in clips]
+
+
+def reference_known_sides(clips: list[split.Clip], ledger: Ledger) -> dict[str, set[str]]:
+    groups: dict[str, list[split.Clip]] = defaultdict(list)
+    for c in clips:
+        groups[c.group].append(c)
+    fixed = {}
+    for g, members in groups.items():
+        sides = {"heldout" if ledger.clips[c.clip_id].subset == HELDOUT else "training"
+                 for c in members if c.clip_id in ledger.clips}
+        if not sides:
+            sides = {ledger.groups[i] for i in {g} | {c.base_group for c in members} if i in ledger.groups}
+        if sides:
+            fixed[g] = sides
+    return fixed
+
+
+def reference_sorted(clips: list[split.Clip], sides: dict[str, str], known: dict[str, ClipRecord]) -> tuple:
+    subset, labelled_before, new, reopened, items = {}, [], [], [], {}
+    lost = gated = 0
+    for c in clips:
+        rec = known.get(c.clip_id)
+        if (rec.subset if rec is not None else sides[c.group]) == HELDOUT:
+            subset[c.clip_id] = HELDOUT
+            continue
+        subset[c.clip_id] = UNLABELLED
+        if c.text is not None:
+            items[c.clip_id] = (c.speaker, c.duration_s, c.plain_phones)
+        if rec is not None and rec.subset == LABELLED:
+            if c.text is None:
+                lost += 1
+            elif not c.eligible:
+                gated += 1
+            else:
+                labelled_before.append(c.clip_id)
+        elif c.eligible:
+            (reopened if rec is not None else new).append(c.clip_id)
+    return subset, items, labelled_before, new, reopened, gated, lost
+
+
+def reference_parts(clips: list[split.Clip], subset: dict[str, str], places: dict[str, str],
+                    known: dict[str, ClipRecord]) -> dict[str, str]:
+    base_parts: dict[str, set[str]] = defaultdict(set)
+    for c in clips:
+        rec = known.get(c.clip_id)
+        if rec is not None and rec.part in PARTS:
+            base_parts[c.base_group].add(rec.part)
+    parts = {}
+    for c in clips:
+        if subset[c.clip_id] == HELDOUT:
+            rec = known.get(c.clip_id)
+            mine = rec.part if rec is not None and rec.part in PARTS else ""
+            base = next((p for p in PARTS if p in base_parts.get(c.base_group, ())), "")
+            place = places.get(c.group, "training")
+            parts[c.clip_id] = mine or base or (place if place != "training" else PARTS[0])
+    return parts
+
+
+@settings(max_examples=200, deadline=None)
+@given(clip_lists(), st.data())
+def test_clip_decisions_equal_a_loop_over_clips(clips: list[split.Clip], data: Any) -> None:
+    """The sides the ledger fixes, each clip's subset before the tiers and its pool, and
+    each held-out clip's part, on random ledgers: clips new, moved between groups, gone,
+    groups bound by near-duplicates."""
+    clips = bound(clips, data)
+    ledger = data.draw(ledgers(clips))
+    past = split.Past.of(clips, ledger.clips)
+    fixed, straddling = split._known_sides(past, ledger)
+    assert fixed == reference_known_sides(clips, ledger)
+    assert straddling == sorted(g for g, s in fixed.items() if len(s) > 1)
+    places = {g: data.draw(st.sampled_from(("training", *PARTS))) for g in GROUPS}
+    sides = {g: "training" if p == "training" else HELDOUT for g, p in places.items()}
+    found = split._sort_clips(clips, past, sides)
+    subset, items, labelled_before, new, reopened, gated, lost = reference_sorted(clips, sides, dict(ledger.clips))
+    assert list(found.subset.items()) == list(subset.items())
+    assert {k: (v.speaker, v.duration_s, v.phones) for k, v in found.items.items()} == items
+    assert list(found.items) == list(items)
+    assert (found.labelled_before, found.new, found.reopened) == (labelled_before, new, reopened)
+    assert (found.gated_out, found.lost_transcript) == (gated, lost)
+    assert split._clip_parts(past, found.heldout, places, PARTS) == reference_parts(clips, subset, places,
+                                                                                    dict(ledger.clips))
+
+
+def reference_fixed(clips: list[split.Clip], ledger: Ledger) -> tuple[dict[str, str], list[str], int]:
+    """_fixed_places one clip at a time: the parts the ledger fixes, the held-out groups
+    it leaves without a part, and the groups with an eligible clip that trains."""
+    groups: dict[str, list[split.Clip]] = defaultdict(list)
+    for c in clips:
+        groups[c.group].append(c)
+    known = ledger.clips
+    fixed, pending, training_groups = {}, [], 0
+    for g, side_set in reference_known_sides(clips, ledger).items():
+        side = HELDOUT if HELDOUT in side_set else "training"
+        if side == HELDOUT:
+            found = {known[c.clip_id].part for c in groups[g] if c.clip_id in known}
+            if not found - {""}:
+                found = {ledger.parts.get(i, "") for i in {g} | {c.base_group for c in groups[g]}}
+            part = next((p for p in PARTS if p in found), "")
+            if part:
+                fixed[g] = part
+            else:
+                pending.append(g)
+        else:
+            fixed[g] = "training"
+        training_groups += any((known[c.clip_id].subset if c.clip_id in known else side) != HELDOUT
+                               for c in groups[g] if c.eligible)
+    return fixed, pending, training_groups
+
+
+@settings(max_examples=300, deadline=None)
+@given(clip_lists(), st.data())
+def test_fixed_places_equal_a_loop_over_clips(clips: list[split.Clip], data: Any) -> None:
+    clips = bound(clips, data)
+    ledger = data.draw(ledgers(clips))
+    fixed, pending, training_groups, _ = split._fixed_places(split.Past.of(clips, ledger.clips), ledger, PARTS)
+    assert (fixed, pending, training_groups) == reference_fixed(clips, ledger)
