@@ -46,6 +46,7 @@ import re
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TypeVar
 
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -56,6 +57,7 @@ from pipeline.core.fsio import write_text_atomic
 from pipeline.core.names import LABELLED, LEDGER_IN_OUT, SUBSETS
 from pipeline.stages.paths import is_inside
 
+T = TypeVar("T")
 MAGIC = "# loam split ledger v2"
 MAGIC_V1 = "# loam split ledger v1"
 SETTING_KEYS = ("group_by", "seed", "heldout", "budgets", "selection", "parts")
@@ -105,21 +107,37 @@ def source_key(source_id: str) -> str:
 
 
 def source_keys(source_ids: pa.Array | pa.ChunkedArray) -> set[str]:
-    """:func:`source_key` of each id, as a set, computed in Arrow for the ids ingest
-    writes (101,000 ids: 0.06 CPU s one :func:`source_key` call each); any other id
-    goes through :func:`source_key` itself.
+    """:func:`source_key` of each id, as a set (see :func:`sorted_source_keys`).
 
     Examples
     --------
     >>> sorted(source_keys(pa.array(["alder_01-0123456789", "abcdef0123", "alder_01-0123456789"])))
     ['0123456789', 'abcdef0123']
     """
+    return set(sorted_source_keys(source_ids))
+
+
+def sorted_source_keys(source_ids: pa.Array | pa.ChunkedArray) -> list[str]:
+    """:func:`source_key` of each id, distinct and sorted, computed and sorted in Arrow
+    for the ids ingest writes (101,000 ids: 0.06 CPU s one :func:`source_key` call
+    each; sorting the Python strings took 0.04 s more); any other id goes through
+    :func:`source_key` itself.
+
+    Examples
+    --------
+    >>> sorted_source_keys(pa.array(["alder_01-0123456789", "abcdef0123", "alder_01-0123456789"]))
+    ['0123456789', 'abcdef0123']
+    """
     ids = pc.unique(source_ids)
     # RE2's "$" ends the text (Python's also matches before a final newline: such ids
     # take the per-id path).
     usual = pc.match_substring_regex(ids, r"(?:^|-)[0-9a-f]{10}$").fill_null(False)
-    keys = set(pc.utf8_slice_codeunits(ids.filter(usual), -10).to_pylist())
-    return keys | {source_key(s) for s in ids.filter(pc.invert(usual)).to_pylist()}
+    keys = pc.utf8_slice_codeunits(ids.filter(usual), -10)
+    others = pa.array([source_key(s) for s in ids.filter(pc.invert(usual)).to_pylist()], pa.string())
+    found = pc.unique(pa.concat_arrays([keys.cast(pa.string()), others]))
+    # Arrow orders strings by their UTF-8 bytes, which is the order of their code points
+    # (Python's); a key is ten hex digits anyway.
+    return found.take(pc.sort_indices(found)).to_pylist()
 
 
 def corpus_id(keys: Iterable[str]) -> str:
@@ -219,10 +237,25 @@ def format_ledger(ledger: Ledger) -> str:
     for rec in {id(rec): rec for rec in clips.values()}.values():
         tails[id(rec)] = f"{rec.subset}\t{_join_list(rec.tiers)}\t{rec.group}\t{rec.part or NO_TIERS}"
     rows = [header]
-    rows += [f"clip\t{cid}\t{tails[id(clips[cid])]}" for cid in sorted(clips)]
-    rows += [f"group\t{gid}\t{ledger.groups[gid]}\t{ledger.parts.get(gid) or NO_TIERS}" for gid in sorted(ledger.groups)]
-    rows += [f"source\t{key}\t{ledger.sources[key]}" for key in sorted(ledger.sources)]
+    rows += [f"clip\t{cid}\t{tails[id(rec)]}" for cid, rec in _sorted_items(clips)]
+    rows += [f"group\t{gid}\t{side}\t{ledger.parts.get(gid) or NO_TIERS}" for gid, side in _sorted_items(ledger.groups)]
+    rows += [f"source\t{key}\t{state}" for key, state in _sorted_items(ledger.sources)]
     return "\n".join(rows) + "\n"
+
+
+def _sorted_items(mapping: Mapping[str, T]) -> Iterable[tuple[str, T]]:
+    """The items of ``mapping`` sorted by key. A mapping that holds them in that order
+    already (a ledger read from its file; the split stage writes its next one in clip
+    order) gives its own items, with no lookup per key: at 101,000 clips and sources the
+    whole text took 0.044 against 0.069 CPU s.
+
+    Examples
+    --------
+    >>> list(_sorted_items({"b": 1, "a": 2})), list(_sorted_items({"a": 2, "b": 1}))
+    ([('a', 2), ('b', 1)], [('a', 2), ('b', 1)])
+    """
+    keys = sorted(mapping)
+    return mapping.items() if keys == list(mapping) else zip(keys, map(mapping.__getitem__, keys), strict=True)
 
 
 class _Parser:

@@ -83,7 +83,7 @@ from pipeline.stages.ledger import (
     locate_ledger,
     read_ledger,
     shares_corpus,
-    source_keys,
+    sorted_source_keys,
     write_ledger,
 )
 from pipeline.stages.prompts import DEMOTED, UNSCORED, prompt_key, prompt_set
@@ -1225,12 +1225,12 @@ class LedgerUse:
     ledger: Ledger | None
 
 
-def _check_corpus(ctx: StageContext, ledger: Ledger, path: Path, sources: set[str]) -> None:
+def _check_corpus(ctx: StageContext, ledger: Ledger, path: Path, sources: Collection[str]) -> None:
     """UsageError (exit 2) when the ledger describes another corpus (see
     :func:`pipeline.stages.ledger.shares_corpus`); the ledger is left as it is."""
     if shares_corpus(ledger.sources, sources):
         return
-    shared = len(set(ledger.sources) & sources)
+    shared = len(set(ledger.sources) & set(sources))
     raise UsageError(
         f"{path}: this split ledger describes corpus {corpus_id(ledger.sources)} ({len(ledger.sources)} sources), "
         f"but RAW {ctx.raw} is corpus {corpus_id(sources)} ({len(sources)} sources), sharing {shared}; "
@@ -1239,7 +1239,7 @@ def _check_corpus(ctx: StageContext, ledger: Ledger, path: Path, sources: set[st
     )
 
 
-def _open_ledger(ctx: StageContext, sources: set[str]) -> LedgerUse:
+def _open_ledger(ctx: StageContext, sources: Collection[str]) -> LedgerUse:
     """Find and read the split ledger (unless --fresh), refusing one of another corpus
     and warning when its settings differ."""
     cfg = ctx.config
@@ -1332,7 +1332,7 @@ def _run(ctx: StageContext) -> StageResult:
     gate_rejects, kept = _gate_rejects([c for c in clips if c.clip_id not in excluded], cfg, joined)
     rejects += gate_rejects
     eligible_s, target_s, targets = _heldout_target(ctx, kept)
-    sources = source_keys(joined.audio.column("source_id"))
+    sources = sorted_source_keys(joined.audio.column("source_id"))
     use = _open_ledger(ctx, sources)
     ledger = use.ledger
     balance = read_balance(ctx)
@@ -1395,7 +1395,7 @@ def _log_parts(ctx: StageContext, summary: Mapping[str, Any]) -> None:
                         "(see balance in the report)", summary["balance"]["tolerance"])
 
 
-def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[Clip], sources: set[str],
+def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[Clip], sources: Sequence[str],
                  *, cfg_settings: dict[str, str]) -> Ledger:
     """The ledger to write: this run's assignment and sources, and every row of the old
     ledger whose clip, group or source is gone.
@@ -1410,23 +1410,22 @@ def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[C
     parts = {g: place for g, place in assignment.places.items() if place != TRAINING}
     # Records are immutable: one per distinct (subset, tiers, group, part), shared.
     records: dict[tuple[str, tuple[str, ...], str, str], ClipRecord] = {}
-    clips: dict[str, ClipRecord] = {}
     subset, tiers, clip_parts = assignment.subset, assignment.tiers, assignment.parts
+
+    def record(cid: str, g: str, mine: str) -> ClipRecord:
+        key = (mine, tiers.get(cid, ()), g, clip_parts.get(cid, ""))
+        rec = records.get(key)
+        return rec if rec is not None else records.setdefault(key, ClipRecord(*key))
+
     # An unlabelled clip (most of them) has no tiers and no part: its record depends on
-    # its group alone, and its row is one comprehension (a loop over every clip took
-    # 0.08 against 0.05 CPU s at 101,000 clips).
+    # its group alone (a call per clip took 0.08 against 0.05 CPU s at 101,000 clips).
+    # The clips come in clip_id order, so format_ledger finds its rows in order.
     ids, groups_of = list(map(_ID, kept)), list(map(_GROUP, kept))
     subsets = list(map(subset.__getitem__, ids))
     unlabelled = {g: ClipRecord(UNLABELLED, (), g, "") for g in set(groups_of)}
-    clips.update({cid: unlabelled[g] for cid, g, mine in zip(ids, groups_of, subsets, strict=True)
-                  if mine == UNLABELLED})
-    for cid, g, mine in zip(ids, groups_of, subsets, strict=True):
-        if mine == UNLABELLED:
-            continue
-        key = (mine, tiers.get(cid, ()), g, clip_parts.get(cid, ""))
-        rec = records.get(key)
-        clips[cid] = rec if rec is not None else records.setdefault(key, ClipRecord(*key))
-    known = dict.fromkeys(sorted(sources), "present")
+    clips = {cid: unlabelled[g] if mine == UNLABELLED else record(cid, g, mine)
+             for cid, g, mine in zip(ids, groups_of, subsets, strict=True)}
+    known = dict.fromkeys(sorted(sources), "present")  # sorted already: one pass
     budgets = _budget_names(cfg_settings["budgets"])
     if ledger is not None:
         # Keep the side of a group whose clips are all gone, so it returns to the same side.
