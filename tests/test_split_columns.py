@@ -227,3 +227,49 @@ def test_fixed_places_equal_a_loop_over_clips(clips: list[split.Clip], data: Any
     ledger = data.draw(ledgers(clips))
     fixed, pending, training_groups, _ = split._fixed_places(split.Past.of(clips, ledger.clips), ledger, PARTS)
     assert (fixed, pending, training_groups) == reference_fixed(clips, ledger)
+
+
+def reference_changes(ledger: Ledger, assignment: split.Assignment, present: set[str]) -> dict[str, Any]:
+    """The counts of _changes one clip at a time."""
+    old, renamed = ledger.clips, {o: n for n, o in assignment.continues.items()}
+    added, removed, moved, joined, left, part_moves = (Counter() for _ in range(6))
+    for cid, subset in assignment.subset.items():
+        rec = old.get(cid)
+        if rec is None:
+            added[subset] += 1
+            continue
+        if rec.subset != subset:
+            moved[f"{rec.subset}->{subset}"] += 1
+        if rec.subset == HELDOUT and rec.part != assignment.parts.get(cid, ""):
+            part_moves[f"{rec.part or '(none)'}->{assignment.parts.get(cid, '')}"] += 1
+        now, before = set(assignment.tiers.get(cid, ())), {renamed.get(t, t) for t in rec.tiers}
+        for t in now - before:
+            joined[t] += 1
+        for t in before - now:
+            left[t] += 1
+    for cid in old.keys() - present:
+        removed[old[cid].subset] += 1
+    return {"added": {s: added[s] for s in SUBSETS}, "removed": {s: removed[s] for s in SUBSETS},
+            "moved": dict(sorted(moved.items())), "parts_moved": dict(sorted(part_moves.items())),
+            "tiers_joined": dict(sorted(joined.items())), "tiers_left": dict(sorted(left.items()))}
+
+
+@settings(max_examples=200, deadline=None)
+@given(clip_lists(), st.data())
+def test_changes_equal_a_loop_over_clips(clips: list[split.Clip], data: Any) -> None:
+    """The changes against the ledger (added, moved, parts and tiers joined and left,
+    under a renamed budget too) on random ledgers and assignments."""
+    ledger = data.draw(ledgers(clips))
+    subset, tiers, parts = {}, {}, {}
+    for c in clips:
+        subset[c.clip_id] = data.draw(st.sampled_from(SUBSETS))
+        if subset[c.clip_id] == LABELLED:
+            tiers[c.clip_id] = data.draw(st.sampled_from((("1m",), ("2m",), ("1m", "2m"))))
+        elif subset[c.clip_id] == HELDOUT:
+            parts[c.clip_id] = data.draw(st.sampled_from(PARTS))
+    continues = data.draw(st.sampled_from(({"1m": "1m"}, {"2m": "1m"}, {})))
+    assignment = split.Assignment(subset, tiers, {}, [], [], continues, 0, 0, 0, parts=parts)
+    present = set(subset)
+    found = split._changes(ledger, assignment, present)
+    assert {k: found[k] for k in reference_changes(ledger, assignment, present)} == \
+        reference_changes(ledger, assignment, present)

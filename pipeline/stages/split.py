@@ -514,7 +514,7 @@ def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None, unbou
     if near is None:
         near = search_pairs(*joined.fingerprints, min_similarity=qc.near_duplicate_min_similarity)
     pairs, partner = find_duplicates(clip_ids, audio.column("audio_sha256"), near)
-    base = {"speaker": speakers, "recording": audio.column("source_id").to_pylist(), "clip": clip_ids}[group_by]
+    base = {"speaker": speakers, "clip": clip_ids}.get(group_by) or audio.column("source_id").to_pylist()
     # A pair within one group binds nothing: most pairs, when grouping by speaker.
     out = {i for i, cid in enumerate(clip_ids) if cid in unbound} if unbound else set()
     merged = merge_groups(base, [(i, j) for i, j in zip(pairs.first.tolist(), pairs.second.tolist(), strict=True)
@@ -1339,9 +1339,7 @@ def _run(ctx: StageContext) -> StageResult:
     assignment = assign(kept, ledger=ledger, seed=cfg.seed, targets=targets, budgets=budgets,
                         method=sc.selection, text_overlap=sc.text_overlap, balance=balance)
 
-    by_subset: dict[str, list[Clip]] = {s: [] for s in SUBSETS}
-    for c in kept:
-        by_subset[assignment.subset[c.clip_id]].append(c)
+    by_subset = _by_subset(kept, assignment.subset)
     tables = _subset_tables(ctx, by_subset, assignment, joined, columns)
     shortfalls = _log_tiers(ctx, assignment, kept)
 
@@ -1375,6 +1373,14 @@ def _run(ctx: StageContext) -> StageResult:
     shown = use.path.relative_to(ctx.out) if use.path.is_relative_to(ctx.out) else use.path
     summary["ledger"] = {"path": str(shown), "where": use.where, "read": ledger is not None, "fresh": use.fresh}
     return StageResult(manifests=tables, rejects=rejects, summary=summary)
+
+
+def _by_subset(kept: Sequence[Clip], subset: Mapping[str, str]) -> dict[str, list[Clip]]:
+    """The kept clips of each subset, in clip order (as codes and masks: a Python loop
+    appending each clip took 0.025 CPU s at 101,000 clips)."""
+    codes, names = _codes(list(map(subset.__getitem__, map(_ID, kept))))
+    return {s: list(map(kept.__getitem__, np.flatnonzero(codes == names.index(s)).tolist())) if s in names else []
+            for s in SUBSETS}
 
 
 def _log_parts(ctx: StageContext, summary: Mapping[str, Any]) -> None:
