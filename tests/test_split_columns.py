@@ -186,7 +186,7 @@ def test_clip_decisions_equal_a_loop_over_clips(clips: list[split.Clip], data: A
     found = split._sort_clips(clips, past, sides)
     subset, items, labelled_before, new, reopened, gated, lost = reference_sorted(clips, sides, dict(ledger.clips))
     assert list(found.subset.items()) == list(subset.items())
-    assert {k: (v.speaker, v.duration_s, v.phones) for k, v in found.items.items()} == items
+    assert {k: (v.speaker, v.duration_s, v.plain_phones) for k, v in found.items.items()} == items
     assert list(found.items) == list(items)
     assert (found.labelled_before, found.new, found.reopened) == (labelled_before, new, reopened)
     assert (found.gated_out, found.lost_transcript) == (gated, lost)
