@@ -925,12 +925,13 @@ def _demote(found: Sorted, clips: Sequence[Clip], parts: Mapping[str, str],
             demoted, len(found.labelled_before) - len(kept))
 
 
-def _unscore(clips: Sequence[Clip], parts: Mapping[str, str], tiers: Mapping[str, tuple[str, ...]],
+def _unscore(held: Sequence[Clip], labelled: Iterable[Clip], parts: Mapping[str, str],
              disjoint: set[str]) -> frozenset[str]:
-    """``split.text_overlap = "unscore"``: clips of text-disjoint parts whose prompt labelled holds."""
-    labelled = prompt_set(c.text["norm_text"] for c in clips if c.clip_id in tiers and c.text)
-    return frozenset(c.clip_id for c in clips if parts.get(c.clip_id) in disjoint and c.eligible and c.text
-                     and prompt_key(c.text["norm_text"]) in labelled)
+    """``split.text_overlap = "unscore"``: the held-out clips of text-disjoint parts whose
+    prompt a labelled clip reads."""
+    prompts = prompt_set(c.text["norm_text"] for c in labelled if c.text)
+    return frozenset(c.clip_id for c in held if parts.get(c.clip_id) in disjoint and c.eligible and c.text
+                     and prompt_key(c.text["norm_text"]) in prompts)
 
 
 def assign(clips: Sequence[Clip], *, ledger: Ledger | None, seed: int, targets: Sequence[PartTarget],
@@ -966,11 +967,15 @@ def assign(clips: Sequence[Clip], *, ledger: Ledger | None, seed: int, targets: 
         subset[cid] = LABELLED
     short = any(o.shortfall_s > 0 for o in outcomes)
     waiting = sum(1 for cid in found.reopened if cid not in tiers) if short else 0
-    unscored = _unscore(clips, parts, tiers, disjoint) if text_overlap == "unscore" else frozenset()
+    # The held-out clips (each has a part) and the labelled ones (all training candidates)
+    # alone, not a pass over every clip.
+    held = list(map(clips.__getitem__, np.flatnonzero(found.heldout).tolist()))
+    unscored = (_unscore(held, map(found.items.__getitem__, tiers), parts, disjoint) if text_overlap == "unscore"
+                else frozenset())
     return Assignment(subset, tiers, sides, outcomes, straddling, continues, found.gated_out, waiting,
                       found.lost_transcript, places=places, parts=parts, unscored=unscored, demoted=demoted,
                       demoted_labelled=demoted_labelled, facts=facts,
-                      straddling_parts=_straddling_parts(clips, parts))
+                      straddling_parts=_straddling_parts(held, parts))
 
 
 # The subset columns copied from the audio row as they are.
