@@ -18,7 +18,7 @@ from pipeline.core.errors import LoamError, UsageError
 from pipeline.core.startup import exit_without_teardown, limit_blas_threads
 
 if TYPE_CHECKING:
-    from pipeline.core.snapshot import Listing
+    from pipeline.core.raw_walk import RawWalk
 
 EPILOG = """\
 exit codes: 0 done; 1 data problems stopped the run (validate: errors found);
@@ -159,10 +159,10 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def _nothing_changed(args: argparse.Namespace, invocation: str, listing: Listing | None = None) -> bool:
+def _nothing_changed(args: argparse.Namespace, invocation: str, raw_walk: RawWalk | None = None) -> bool:
     """End a ``prepare`` at once when RAW, OUT, config and code are exactly as the last
     finished run left them (``pipeline.core.snapshot``); False means do the full run.
-    ``listing`` receives RAW's listing if the check walked it."""
+    ``raw_walk`` gives RAW's listing when the check needs it."""
     from pipeline.core import snapshot
     from pipeline.core.fsio import write_text_atomic
     from pipeline.core.lock import output_lock
@@ -172,7 +172,8 @@ def _nothing_changed(args: argparse.Namespace, invocation: str, listing: Listing
     if state is None:
         return False
     with output_lock(args.out):
-        if not snapshot.unchanged(state, invocation=invocation, raw=args.raw, out=args.out, listing=listing):
+        if not snapshot.unchanged(state, invocation=invocation, raw=args.raw, out=args.out,
+                                  raw_listing=None if raw_walk is None else raw_walk.listing):
             return False
         log, log_path = setup_logging(args.out, args.command)
         log.info("loam %s %s %s -> %s (log: %s)", __version__, args.command, args.raw, args.out, log_path)
@@ -191,17 +192,28 @@ def _cmd_prepare(args: argparse.Namespace, stages: tuple[str, ...] | None = None
     if args.out.resolve() == args.raw.resolve() or args.raw.resolve() in args.out.resolve().parents:
         raise UsageError(f"OUT {str(args.out)!r} must not be inside RAW {str(args.raw)!r}: the raw dump is never written to")
     overrides, override_flags = _overrides(args)
-    invocation: str | None = None
-    raw_listing: Listing | None = None
     if stages is None and not args.fresh and not args.no_cache and (args.config is None or args.config.is_file()):
         from pipeline.core import snapshot
+        from pipeline.core.raw_walk import RawWalk
 
         invocation = snapshot.invocation_digest(raw=args.raw, out=args.out, config_path=args.config,
                                                 overrides=overrides, version=__version__)
-        raw_listing = snapshot.Listing()
-        if _nothing_changed(args, invocation, raw_listing):
-            return 0
+        # RAW's listing begins now, in a helper process, while this one imports and
+        # loads what the run needs (pipeline.core.raw_walk).
+        raw_walk = RawWalk(args.raw)
+        try:
+            if _nothing_changed(args, invocation, raw_walk):
+                return 0
+            return _run_prepare(args, stages, overrides, override_flags, invocation=invocation, raw_walk=raw_walk)
+        finally:
+            raw_walk.close()
+    return _run_prepare(args, stages, overrides, override_flags)
 
+
+def _run_prepare(args: argparse.Namespace, stages: tuple[str, ...] | None, overrides: dict[str, Any],
+                 override_flags: dict[str, str], *, invocation: str | None = None,
+                 raw_walk: RawWalk | None = None) -> int:
+    """The full run (``invocation`` and ``raw_walk``: a snapshot is recorded at its end)."""
     from pipeline.core import names
     from pipeline.core.config import load_config
     from pipeline.core.runlog import setup_logging
@@ -219,7 +231,7 @@ def _cmd_prepare(args: argparse.Namespace, stages: tuple[str, ...] | None = None
     runner = Runner(args.raw, args.out, config, stages=STAGES, workers=config.run.workers,
                     scheduler=config.run.scheduler,
                     use_cache=not args.no_cache, options={"fresh": getattr(args, "fresh", False)}, log=log,
-                    invocation=invocation, raw_listing=raw_listing)
+                    invocation=invocation, raw_listing=None if raw_walk is None else raw_walk.listing)
     runner.prepare(stages)
     return 0
 

@@ -128,7 +128,7 @@ class Runner:
         options: dict[str, Any] | None = None,
         log: logging.Logger | None = None,
         invocation: str | None = None,
-        raw_listing: snapshot.Listing | None = None,
+        raw_listing: Callable[[], snapshot.Listing] | None = None,
     ) -> None:
         # Absolute from here on: every path handed to a worker, which may run in another
         # working folder or on another machine, must mean the same file there.
@@ -151,8 +151,9 @@ class Runner:
         self.watched: set[str] = set()
         # RAW's files as the snapshot listed them when the run began (StageContext.raw_stats).
         self.raw_stats: dict[str, tuple[int, int, int]] | None = None
-        # RAW as the no-change check (snapshot.unchanged) just listed it, if it did: the
-        # run takes it as its own listing instead of walking RAW a second time.
+        # Gives RAW's listing with its digest, begun as the command began
+        # (pipeline.core.raw_walk.RawWalk.listing; the no-change check may have asked for
+        # it already); by default the run walks RAW itself.
         self.raw_listing = raw_listing
         # Stages finished (run or reused) in this invocation, and those under way.
         self.done: set[str] = set()
@@ -505,11 +506,6 @@ class Runner:
             # RAW is listed before any work, so a file that arrives during the run
             # makes the next run a full one.
             record_snapshot = self.invocation is not None and tuple(stages) == order
-            raw_listing = ""
-            if record_snapshot:
-                listed = self.raw_listing
-                self.raw_stats = listed if listed is not None and listed.digest else snapshot.Listing()
-                raw_listing = self.raw_stats.digest or snapshot.raw_digest(self.raw, stats=self.raw_stats)
             snapshot.forget(self.out)
             # A folder a stage of this run clears itself (Stage.cleans_folder) is swept
             # by that stage's run, or below if it does not run.
@@ -517,6 +513,16 @@ class Runner:
             self._sweep(cleaned)
             write_text_atomic(self.out / names.RESOLVED_CONFIG,
                               json.dumps(self.config.to_json(), indent=2, sort_keys=True, ensure_ascii=False) + "\n")
+            # Only OUT has been touched so far: the listing (whose walk may have begun
+            # with the command, see raw_listing) is taken before any stage reads RAW.
+            raw_listing = ""
+            if record_snapshot:
+                if self.raw_listing is not None:
+                    self.raw_stats = self.raw_listing()
+                else:
+                    self.raw_stats = snapshot.Listing()
+                    snapshot.raw_digest(self.raw, stats=self.raw_stats)
+                raw_listing = self.raw_stats.digest
             if self.scheduler:
                 self._check_cluster()
             pending = list(stages)

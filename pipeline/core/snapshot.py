@@ -24,7 +24,7 @@ import os
 import stat
 import sys
 from array import array
-from collections.abc import Iterator, Mapping
+from collections.abc import Callable, Iterator, Mapping
 from itertools import chain, compress
 from pathlib import Path
 from typing import Any
@@ -128,25 +128,37 @@ def tree_digest(root: Path, *, ignored: frozenset[str] = frozenset(),
     (the snapshot of OUT; its files are then not in ``stats``).
     """
     digest = hashlib.sha256()
+    simple = walk_folders([(os.fspath(root), "")], digest, ignored=ignored, stats=stats, given=given)
+    if isinstance(stats, Listing):
+        stats.complete = simple
+    return digest.hexdigest()
+
+
+def walk_folders(folders: list[tuple[str, str]], digest: Any, *, ignored: frozenset[str] = frozenset(),
+                 stats: dict[str, tuple[int, int, int]] | Listing | None = None,
+                 given: dict[str, bytes] | None = None) -> bool:
+    """Feed ``digest`` (anything with an ``update(bytes)``) what :func:`tree_digest`
+    hashes for ``folders`` (path, relative path with its trailing '/', or "" for the
+    root, whose top-level names in ``ignored`` are left out) and all under them, in
+    that order; whether they held only folders and regular files. ``stats`` and
+    ``given`` as for :func:`tree_digest`."""
     simple = True  # only folders and regular files so far
-    stack = [(os.fspath(root), "")]
+    # Reversed onto the stack, so that folders are visited in the order given.
+    stack = folders[::-1]
     while stack:
         folder, rel_folder = stack.pop()
         if given and rel_folder in given:
             digest.update(given[rel_folder])
             continue
-        listed = _folder_digest(folder, rel_folder, ignored if not rel_folder else frozenset(), stats, digest)
+        listed = folder_digest(folder, rel_folder, ignored if not rel_folder else frozenset(), stats, digest)
         if listed is None:
             digest.update(f"{rel_folder}\0u\n".encode("utf-8", "surrogateescape"))
             simple = False
             continue
         subfolders, whole = listed
         simple = simple and whole
-        # Reversed onto the stack, so the subfolders are visited in sorted order.
         stack.extend(reversed(subfolders))
-    if isinstance(stats, Listing):
-        stats.complete = simple
-    return digest.hexdigest()
+    return simple
 
 
 # Folders are opened, listed by descriptor and their entries stat'ed relative to it
@@ -164,9 +176,9 @@ _INODE = operator.attrgetter("st_ino")
 _KIND = ("f", "d")  # by is_dir: a regular file's name, a folder's
 
 
-def _folder_digest(folder: str, rel_folder: str, ignored: frozenset[str],
-                   stats: dict[str, tuple[int, int, int]] | Listing | None,
-                   digest: Any) -> tuple[list[tuple[str, str]], bool] | None:
+def folder_digest(folder: str, rel_folder: str, ignored: frozenset[str],
+                  stats: dict[str, tuple[int, int, int]] | Listing | None,
+                  digest: Any) -> tuple[list[tuple[str, str]], bool] | None:
     """Hash one folder's entries into ``digest`` for :func:`tree_digest`; its subfolders
     (path, relative path) in sorted order, and whether it held only folders and regular
     files; None when it cannot be listed."""
@@ -388,19 +400,21 @@ def load(out: Path) -> dict[str, Any] | None:
 
 
 def unchanged(state: dict[str, Any] | None, *, invocation: str, raw: Path, out: Path,
-              listing: Listing | None = None) -> bool:
+              raw_listing: Callable[[], Listing] | None = None) -> bool:
     """Whether RAW, OUT, the watched files and the invocation are as ``state`` recorded.
 
-    ``listing``, when given, receives RAW's listing and digest if RAW was walked, so
-    that the full run this check may lead to need not walk it again (0.44 CPU s at
-    100,000 sources, paid twice by a rebuild in place)."""
+    ``raw_listing``, when given, gives RAW's listing with its digest
+    (``pipeline.core.raw_walk.RawWalk.listing``), asked for only when the invocation
+    and the watched files agree; the full run this check may lead to takes the same
+    listing instead of walking RAW again (0.44 CPU s at 100,000 sources, paid twice by
+    a rebuild in place). Without it RAW is walked here."""
     if state is None or state.get("invocation") != invocation:
         return False
     watched = [entry[0] for entry in state.get("watched", []) if isinstance(entry, list) and entry]
     if _files_state(watched) != state.get("watched"):
         return False
-    return (state.get("raw") == raw_digest(raw, stats=listing)
-            and state.get("out") == tree_digest(out, ignored=OUT_IGNORED))
+    digest = raw_listing().digest if raw_listing is not None else raw_digest(raw)
+    return state.get("raw") == digest and state.get("out") == tree_digest(out, ignored=OUT_IGNORED)
 
 
 def save(out: Path, state: dict[str, Any]) -> None:
