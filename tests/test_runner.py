@@ -267,3 +267,54 @@ def test_temporaries_of_an_interrupted_run_are_removed_whether_the_audio_stage_r
     assert not list(out.rglob(".loam-*.tmp"))
     # The clips themselves stay (one more for the new file).
     assert set(clips) <= set((out / "audio").rglob("*.flac"))
+
+
+def test_a_stage_main_manifest_lands_after_its_files_and_after_the_stage_before(
+        small_raw: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # The writer thread puts a stage's files in place while the next stage computes: the
+    # main manifest, whose metadata marks the stage up to date, must still land after
+    # the stage's rejects and summary, and after every file of the stages finished
+    # before it, as when the driver wrote them all in turn.
+    from pipeline.core import runner as runner_module
+    from pipeline.core.config import load_config
+    from pipeline.core.names import stage_outputs_record, stage_rejects, stage_summary
+    from pipeline.stages import STAGES
+
+    out = tmp_path / "out"  # new: a file there was written by this run
+    put, seen = runner_module._put_in_place, []
+
+    def spy(staged: Path, target: Path, written: object) -> object:
+        name = next(n for n in STAGES.order if out / STAGES[n].main_manifest == target)
+        assert (out / stage_rejects(name)).is_file() and (out / stage_summary(name)).is_file(), name
+        for earlier in seen:
+            assert (out / STAGES[earlier].main_manifest).is_file(), (name, earlier)
+            assert (out / stage_outputs_record(earlier)).is_file(), (name, earlier)
+        seen.append(name)
+        return put(staged, target, written)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(runner_module, "_put_in_place", spy)
+    runner_module.Runner(small_raw, out, load_config(None), stages=STAGES, workers=1).prepare()
+    assert seen == ["ingest", "audio", "text", "split"]
+    assert not list(out.rglob(".loam-*.tmp"))
+
+
+def test_a_file_the_writer_thread_cannot_write_stops_the_run_and_nothing_lands_after_it(
+        small_raw: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from pipeline.core import runner as runner_module
+    from pipeline.core.config import load_config
+    from pipeline.stages import STAGES
+
+    out = tmp_path / "out"
+    put = runner_module._put_in_place
+
+    def failing(staged: Path, target: Path, written: object) -> object:
+        if target.name == "audio.parquet":
+            raise OSError(28, "No space left on device", str(target))
+        return put(staged, target, written)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(runner_module, "_put_in_place", failing)
+    with pytest.raises(OSError, match="No space left"):
+        runner_module.Runner(small_raw, out, load_config(None), stages=STAGES, workers=1).prepare()
+    assert (out / STAGES["ingest"].main_manifest).is_file()
+    assert not any((out / STAGES[name].main_manifest).exists() for name in ("audio", "text", "split"))
+    assert not list(out.rglob(".loam-*.tmp"))

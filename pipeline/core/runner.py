@@ -11,6 +11,7 @@ import os
 import sys
 import time
 from collections.abc import Callable
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -174,6 +175,14 @@ class Runner:
         # for the five inputs of a 100,000-source rebuild). Held until the run ends:
         # the last stage reads every earlier one's anyway.
         self._tables: dict[str, pa.Table] = {}
+        # The hex SHA-256 of each main manifest this run wrote, by path relative to OUT,
+        # from the moment its bytes exist (under a temporary name until the writer
+        # thread puts them in place, see _write_result).
+        self._written: dict[str, str] = {}
+        # The thread that writes a stage's files while the next stage computes (one at
+        # a time, in order), and what it has been given and not yet finished.
+        self._writer: ThreadPoolExecutor | None = None
+        self._writing: list[Future[None]] = []
 
     def _check_cluster(self) -> None:
         """Before any per-file work on a cluster: every worker must see RAW and OUT
@@ -217,9 +226,11 @@ class Runner:
         already holds for that file, if any."""
         rel = self.stages[name].main_manifest
         path = self.out / rel
+        held = self._tables.get(rel)
+        if held is not None and rel in self._written:
+            return held
         fact = self._manifest_fact(rel)
         recorded = fact is not None and fact[4:] == [name, schema_sha256(name)]
-        held = self._tables.get(rel)
         if held is not None and recorded:
             return held
         if not path.exists():
@@ -256,7 +267,10 @@ class Runner:
         """Hex SHA-256 of manifest ``rel``'s bytes: the one recorded when the runner wrote
         it, while the file is that one (``_manifest_fact``), else hashed now. A rebuild
         hashed each upstream manifest once per stage reading it (ingest's three times);
-        now each is hashed once, as it is written."""
+        now each is hashed once, as it is written. One this run wrote is known from its
+        bytes, even before the writer thread has put it in place."""
+        if rel in self._written:
+            return self._written[rel]
         fact = self._manifest_fact(rel)
         return fact[3] if fact is not None else sha256_file(self.out / rel)
 
@@ -373,34 +387,82 @@ class Runner:
         return record
 
     def _write_result(self, stage: Stage, result: StageResult, params: str, inputs: str) -> None:
+        """Check the stage's tables, then write its files: the main manifest's bytes
+        here, under a temporary name (a later stage's input hash needs their SHA-256,
+        and reads the table from memory), the rest on the writer thread
+        (:meth:`_write_files`) while the next stage computes. A stage's files are
+        written after the previous stage's, and its main manifest is put in place after
+        its other files, so the metadata that marks a stage up to date lands last, as
+        when all was written here."""
         meta = self._metadata(stage, params, inputs, result.metadata)
         _check_declared(stage, result)
         # Validate everything before writing anything, so a bad table leaves the old files.
         self._set_aside_invalid_rows(stage, result)
         rejects = result.rejects_table()
-        rejects_rel = names.stage_rejects(stage.name)
-        validate_table("rejected", rejects, where=str(self.out / rejects_rel))
-        write_manifest(self.out / rejects_rel, "rejected", rejects, metadata=meta, checked=True)
+        validate_table("rejected", rejects, where=str(self.out / names.stage_rejects(stage.name)))
+        # Each table was checked by _set_aside_invalid_rows, which kept only valid rows.
+        rel = stage.main_manifest
+        schema, table = result.manifests[rel]
+        staged = _temporary_beside(self.out / rel)
+        try:
+            main = write_manifest(staged, schema, table, metadata=meta, checked=True)
+            self._hold(rel, table, staged)
+            self._loaded_facts()  # read here, before the writer thread updates them
+            for earlier in self._writing:
+                if earlier.done():
+                    earlier.result()  # an earlier stage's files could not be written: stop here
+        except BaseException:
+            staged.unlink(missing_ok=True)
+            raise
+        self._written[rel] = main.sha256
+        job = functools.partial(self._write_files, stage, result, rejects, meta, staged, main,
+                                after=list(self._writing))
+        if self._writer is None:
+            job()
+        else:
+            self._writing.append(self._writer.submit(job))
+
+    def _write_files(self, stage: Stage, result: StageResult, rejects: pa.Table, meta: dict[str, str],
+                     staged: Path, main: Written, *, after: list[Future[None]] | None = None) -> None:
+        """The stage's rejects, summary and other manifests, then its main manifest
+        (``main``, written to ``staged``) put in place, then the runner's records of them;
+        nothing when an earlier stage's files (``after``, done first: the thread takes its
+        work in order) could not be written."""
+        try:
+            if any(earlier.exception() is not None for earlier in after or []):
+                raise RuntimeError(f"{stage.name}: not written, as an earlier stage's files could not be")
+            self._write_staged(stage, result, rejects, meta, staged, main)
+        except BaseException:
+            staged.unlink(missing_ok=True)
+            raise
+
+    def _write_staged(self, stage: Stage, result: StageResult, rejects: pa.Table, meta: dict[str, str],
+                      staged: Path, main: Written) -> None:
+        write_manifest(self.out / names.stage_rejects(stage.name), "rejected", rejects, metadata=meta, checked=True)
         # The text of json.dumps(indent=2, sort_keys=True, ensure_ascii=False), built per
         # column: 0.06 CPU s against 0.17 for the split summary at 100,000 clips.
         from pipeline.core.json_text import dumps_indented
 
         write_text_atomic(self.out / names.stage_summary(stage.name), dumps_indented(result.summary) + "\n")
-        # The main manifest goes last: its metadata is what marks the stage up to date.
-        # Each table was checked by _set_aside_invalid_rows, which kept only valid rows.
-        for rel, (schema, table) in sorted(result.manifests.items(), key=lambda kv: kv[0] == stage.main_manifest):
-            main = write_manifest(self.out / rel, schema, table, metadata=meta, checked=True)
-        self._hold(stage.main_manifest, result.manifests[stage.main_manifest][1])
+        for rel, (schema, table) in sorted(result.manifests.items()):
+            if rel != stage.main_manifest:
+                write_manifest(self.out / rel, schema, table, metadata=meta, checked=True)
+        main = _put_in_place(staged, self.out / stage.main_manifest, main)
         written = self._record_outputs(stage, list(result.manifests), result.manifests[stage.main_manifest][1],
                                        result.file_stats)
         self._record_main_manifest(stage, main)
         self._keep_listing(result, written)
 
-    def _hold(self, rel: str, table: pa.Table) -> None:
-        """Keep ``table``, just written to manifest ``rel``, as reading the file back
-        would give it: the file's schema (from its footer alone; a list's item field is
-        named 'element' there), metadata included."""
-        schema = _file_schema(self.out / rel)
+    def _finish_writes(self) -> None:
+        """Wait for the writer thread's work (and raise the first error it met, if any)."""
+        while self._writing:
+            self._writing.pop(0).result()
+
+    def _hold(self, rel: str, table: pa.Table, path: Path) -> None:
+        """Keep ``table``, just written to ``path`` for manifest ``rel``, as reading the
+        file back would give it: the file's schema (from its footer alone; a list's item
+        field is named 'element' there), metadata included."""
+        schema = _file_schema(path)
         # A cast, not a comparison: Arrow's type equality ignores the item field's name.
         # It renames without copying the data.
         self._tables[rel] = table.cast(schema).replace_schema_metadata(schema.metadata)
@@ -461,6 +523,7 @@ class Runner:
         """A reused stage's manifests still record the hash of the config in force now
         (a change in a section the stage does not read)."""
         current = self.config.sha256()
+        self._finish_writes()  # the earlier stages' files are in place before these change
         # The main manifest goes last, as in _write_result.
         manifests = [(names.stage_rejects(stage.name), "rejected"),
                      *((o.path, o.schema) for o in reversed(stage.outputs))]
@@ -526,8 +589,15 @@ class Runner:
             if self.scheduler:
                 self._check_cluster()
             pending = list(stages)
-            while pending and not self.stop_reason:
-                self.run_stage(pending.pop(0), meanwhile=self._ready_stages(pending))
+            self._writer = ThreadPoolExecutor(max_workers=1, thread_name_prefix="loam-writer")
+            try:
+                while pending and not self.stop_reason:
+                    self.run_stage(pending.pop(0), meanwhile=self._ready_stages(pending))
+                self._finish_writes()
+            finally:
+                # Whatever happened, nothing is left writing when the lock is let go.
+                self._writer.shutdown(wait=True)
+                self._writer = None
             # Stages may finish out of order (see _ready_stages); logs list them in order.
             self.records.sort(key=lambda r: order.index(r.name))
             ran = {r.name for r in self.records if r.ran}
@@ -566,6 +636,27 @@ def _check_declared(stage: Stage, result: StageResult) -> None:
     if returned != declared:
         raise RuntimeError(f"stage {stage.name} returned manifests {sorted(returned.items())}; "
                            f"its Stage declares outputs {sorted(declared.items())}")
+
+
+def _temporary_beside(path: Path) -> Path:
+    """A new hidden name in ``path``'s folder, which a killed run's sweep removes
+    (``fsio.remove_stale_temporaries``: ``.loam-*.tmp``)."""
+    return path.with_name(f".loam-{path.name}.{os.urandom(6).hex()}.tmp")
+
+
+def _put_in_place(staged: Path, target: Path, written: Written) -> Written:
+    """Rename ``staged`` (``written``: its hash and stat) over ``target``, unless
+    ``target`` already holds those bytes: then it is left alone, its mtime with it, as
+    ``fsio.write_bytes_atomic`` does. What ``target`` holds afterwards."""
+    try:
+        st = os.stat(target)
+        if st.st_size == written.stat.st_size and sha256_file(target) == written.sha256:
+            staged.unlink()
+            return Written(written.sha256, st)
+    except FileNotFoundError:
+        pass
+    os.replace(staged, target)  # a rename keeps the size, mtime and inode
+    return written
 
 
 def _file_schema(path: Path) -> pa.Schema:
