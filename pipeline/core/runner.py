@@ -438,15 +438,22 @@ class Runner:
 
     def _write_staged(self, stage: Stage, result: StageResult, rejects: pa.Table, meta: dict[str, str],
                       staged: Path, main: Written) -> None:
-        write_manifest(self.out / names.stage_rejects(stage.name), "rejected", rejects, metadata=meta, checked=True)
         # The text of json.dumps(indent=2, sort_keys=True, ensure_ascii=False), built per
         # column: 0.06 CPU s against 0.17 for the split summary at 100,000 clips.
         from pipeline.core.json_text import dumps_indented
 
-        write_text_atomic(self.out / names.stage_summary(stage.name), dumps_indented(result.summary) + "\n")
-        for rel, (schema, table) in sorted(result.manifests.items()):
-            if rel != stage.main_manifest:
-                write_manifest(self.out / rel, schema, table, metadata=meta, checked=True)
+        others = [(self.out / names.stage_rejects(stage.name), "rejected", rejects),
+                  *((self.out / rel, schema, table) for rel, (schema, table) in sorted(result.manifests.items())
+                    if rel != stage.main_manifest)]
+        # Parquet is made without the GIL: the other manifests on two threads of their own
+        # while this one builds the summary's text (the split stage's writes, which
+        # nothing follows, 0.18 s on this thread alone).
+        with ThreadPoolExecutor(max_workers=2, thread_name_prefix="loam-encoder") as pool:
+            jobs = [pool.submit(write_manifest, path, schema, table, metadata=meta, checked=True)
+                    for path, schema, table in others]
+            write_text_atomic(self.out / names.stage_summary(stage.name), dumps_indented(result.summary) + "\n")
+            for job in jobs:
+                job.result()
         main = _put_in_place(staged, self.out / stage.main_manifest, main)
         written = self._record_outputs(stage, list(result.manifests), result.manifests[stage.main_manifest][1],
                                        result.file_stats)
