@@ -28,16 +28,17 @@ import signal
 import sys
 from array import array
 from pathlib import Path
-from typing import Any
 
 from pipeline.core.snapshot import Listing, folder_digest, raw_digest, walk_folders
 
 # At most this many runs of top-level folders: one byte each in the pipe, far below the
 # pipe's atomic write size; enough for the two processes to finish close together.
 SHARES = 64
-# A run the helper walked: (index, bytes hashed, paths, numbers' bytes, inodes' bytes,
-# whether it held only folders and regular files).
-_Walked = tuple[int, bytes, list[str], bytes, bytes, bool]
+# A run walked: (index, bytes hashed, paths, numbers, inodes, whether it held only
+# folders and regular files); the helper sends the paths as one NUL-separated string
+# and the arrays as their bytes (marshal of a list of 67,000 strings cost more).
+_Walked = tuple[int, bytes, list[str], array, array, bool]  # type: ignore[type-arg]
+_Sent = tuple[int, bytes, bytes, bytes, bytes, bool]
 
 
 class _Chunks:
@@ -101,7 +102,7 @@ class RawWalk:
             try:
                 os.close(results_read)
                 signal.signal(signal.SIGINT, signal.SIG_DFL)
-                data = marshal.dumps(self._take(tokens_read))
+                data = marshal.dumps([_sendable(walked) for walked in self._take(tokens_read)])
                 with open(results_write, "wb", closefd=True) as fh:
                     fh.write(data)
                 code = 0
@@ -121,7 +122,7 @@ class RawWalk:
         stats, chunks = Listing(), _Chunks()
         simple = walk_folders(self._folders[self._bounds[index]:self._bounds[index + 1]], chunks, stats=stats)
         paths, numbers, inodes = stats.columns()
-        return index, b"".join(chunks.parts), paths, numbers.tobytes(), inodes.tobytes(), simple
+        return index, b"".join(chunks.parts), paths, numbers, inodes, simple
 
     def listing(self) -> Listing:
         """RAW's listing, its ``digest`` set (as ``snapshot.raw_digest`` gives them);
@@ -142,10 +143,7 @@ class RawWalk:
         listing.add("", paths, numbers, inodes)
         digest.update(b"".join(self._root.parts))
         for index in range(len(self._bounds) - 1):
-            _, data, paths, number_bytes, inode_bytes, whole = walked.get(index) or self._walk_run(index)
-            numbers, inodes = array("q"), array("Q")
-            numbers.frombytes(number_bytes)
-            inodes.frombytes(inode_bytes)
+            _, data, paths, numbers, inodes, whole = walked.get(index) or self._walk_run(index)
             listing.add("", paths, numbers, inodes)
             digest.update(data)
             simple = simple and whole
@@ -160,10 +158,9 @@ class RawWalk:
         self._results = -1
         self._end_helper(kill=False)
         try:
-            walked: Any = marshal.loads(data)
-        except (EOFError, ValueError, TypeError):
+            return [_received(sent) for sent in marshal.loads(data)]
+        except (EOFError, ValueError, TypeError):  # the helper failed: its runs are walked here
             return []
-        return walked if isinstance(walked, list) else []
 
     def _end_helper(self, *, kill: bool) -> None:
         for fd in (self._tokens, self._results):
@@ -181,6 +178,20 @@ class RawWalk:
     def close(self) -> None:
         """Stop the helper if the listing was never asked for (the command ended first)."""
         self._end_helper(kill=True)
+
+
+def _sendable(walked: _Walked) -> _Sent:
+    index, data, paths, numbers, inodes, simple = walked
+    return index, data, "\0".join(paths).encode("utf-8", "surrogateescape"), numbers.tobytes(), inodes.tobytes(), simple
+
+
+def _received(sent: _Sent) -> _Walked:
+    index, data, joined, number_bytes, inode_bytes, simple = sent
+    numbers, inodes = array("q"), array("Q")
+    numbers.frombytes(number_bytes)
+    inodes.frombytes(inode_bytes)
+    paths = joined.decode("utf-8", "surrogateescape").split("\0") if joined else []
+    return index, data, paths, numbers, inodes, simple
 
 
 def _can_fork() -> bool:

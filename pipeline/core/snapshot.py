@@ -77,7 +77,7 @@ class Listing(Mapping[str, tuple[int, int, int]]):
     def add(self, folder: str, names: list[str], numbers: array, inodes: array) -> None:  # type: ignore[type-arg]
         """Add the regular files ``names`` of ``folder`` (relative, ending in '/'):
         ``numbers`` holds each one's mode, size and mtime_ns, ``inodes`` its inode."""
-        self._paths += map(folder.__add__, names)
+        self._paths += map(folder.__add__, names) if folder else names
         self._numbers += numbers
         self._inodes += inodes
         self._index = None
