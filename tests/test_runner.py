@@ -320,3 +320,29 @@ def test_a_file_the_writer_thread_cannot_write_stops_the_run_and_nothing_lands_a
     assert (out / STAGES["ingest"].main_manifest).is_file()
     assert not any((out / STAGES[name].main_manifest).exists() for name in ("audio", "text", "split"))
     assert not list(out.rglob(".loam-*.tmp"))
+
+
+def test_a_stage_that_fails_leaves_the_records_of_those_before_it(
+        small_raw: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # The records of written files are made at the end of the run: a run a later stage
+    # stops must still make those of the stages whose files are in place, so that the
+    # next run reuses them instead of running them again.
+    from pipeline.core import runner as runner_module
+    from pipeline.core.config import load_config
+    from pipeline.core.errors import DataError
+    from pipeline.stages import STAGES
+
+    out = tmp_path / "out"
+    original = runner_module.Runner._write_result
+
+    def failing(self: runner_module.Runner, stage: object, *args: object) -> None:
+        if getattr(stage, "name", "") == "split":
+            raise DataError("split: the ledger could not be read")
+        original(self, stage, *args)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(runner_module.Runner, "_write_result", failing)
+    with pytest.raises(DataError, match="ledger could not be read"):
+        runner_module.Runner(small_raw, out, load_config(None), stages=STAGES, workers=1).prepare()
+    monkeypatch.setattr(runner_module.Runner, "_write_result", original)
+    records = runner_module.Runner(small_raw, out, load_config(None), stages=STAGES, workers=1).prepare()
+    assert {r.name: r.ran for r in records} == {"ingest": True, "audio": False, "text": False, "split": True}

@@ -3,6 +3,7 @@ whose inputs, parameters and code are unchanged since its manifest was written."
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import hashlib
 import json
@@ -495,6 +496,16 @@ class Runner:
             future, records = self._writing.pop(0)
             records(future.result())
 
+    def _record_finished(self) -> None:
+        """Record the files of each stage the writer finished, in order, up to the first
+        it could not write (whose error was raised already, or is being raised)."""
+        while self._writing:
+            future, records = self._writing.pop(0)
+            if not future.done() or future.exception() is not None:
+                self._writing.clear()
+                return
+            records(future.result())
+
     def _hold(self, rel: str, table: pa.Table, path: Path) -> None:
         """Keep ``table``, just written to ``path`` for manifest ``rel``, as reading the
         file back would give it: the file's schema (from its footer alone; a list's item
@@ -631,6 +642,13 @@ class Runner:
                 while pending and not self.stop_reason:
                     self.run_stage(pending.pop(0), meanwhile=self._ready_stages(pending))
                 self._finish_writes()
+            except BaseException:
+                # The stages whose files are in place still get their records, so the
+                # next run reuses them; the error raised is the one that stopped this run.
+                self._writer.shutdown(wait=True)
+                with contextlib.suppress(Exception):
+                    self._record_finished()
+                raise
             finally:
                 # Whatever happened, nothing is left writing when the lock is let go.
                 self._writer.shutdown(wait=True)
