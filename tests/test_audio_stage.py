@@ -433,6 +433,47 @@ def test_a_rebuild_that_reused_everything_adds_its_outcomes_as_a_part(first_run,
     assert rows_of(stale) == rows_of(grown)
 
 
+def test_new_sources_start_on_the_workers_before_the_clips_are_listed(first_run, raw: Path, tmp_path: Path,
+                                                                     monkeypatch):
+    # A source with no stored outcome is conditioned whatever OUT/audio holds, so its work
+    # starts first and the listing and reuse check run while the workers do (with the
+    # runner's other work after them, once); a source whose clip file changed is found by
+    # that check and conditioned after it. The rows are those of a fresh run.
+    out, result = first_run
+    some = tmp_path / "some"
+    shutil.copytree(raw, some, copy_function=os.link)
+    (some / "ana" / "stereo44.wav").unlink()
+    copy = tmp_path / "out"
+    run_stage(some, copy)
+    os.link(raw / "ana" / "stereo44.wav", some / "ana" / "stereo44.wav")
+    touched = next(r for r in rows_of(result) if r["source_path"] != "ana/stereo44.wav")
+    clip = copy / touched["audio_path"]
+    data = clip.read_bytes()
+    clip.unlink()
+    clip.write_bytes(data)  # the same bytes in a new file: not the file the cache recorded
+    events: list[Any] = []
+    each_result, file_listing = audio.each_result, audio.file_listing
+
+    def recording_each_result(func, items, on_result, **kwargs):
+        events.append(("pool", sorted(job.row["source_path"] for job in items)))
+        return each_result(func, items, on_result, **kwargs)
+
+    def recording_listing(folder, *, base):
+        events.append("listing")
+        return file_listing(folder, base=base)
+
+    monkeypatch.setattr(audio, "each_result", recording_each_result)
+    monkeypatch.setattr(audio, "file_listing", recording_listing)
+    cfg = build_config({}, overrides={"audio.align": "off"})
+    ctx = StageContext(raw=some, out=copy, config=cfg, inputs={"ingest": ingest_table(some)}, workers=1,
+                       log=logging.getLogger("loam.test"), meanwhile=lambda: events.append("meanwhile"))
+    grown = audio.run(ctx)
+    assert events == [("pool", ["ana/stereo44.wav"]), "listing", "meanwhile", ("pool", [touched["source_path"]])]
+    assert grown.run_stats["sources_processed"] == 2
+    assert rows_of(grown) == rows_of(result)
+    assert grown.rejects == result.rejects
+
+
 @pytest.mark.parametrize("damage", ["garbage", "one byte", "digest gone"])
 def test_a_damaged_cache_is_only_a_miss(first_run, raw: Path, tmp_path: Path, damage: str):
     # The table is used as mapped, nothing decodes it: one changed byte of a value (the

@@ -26,7 +26,9 @@ import io
 import math
 import os
 import posixpath
+import threading
 from collections import Counter
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -668,9 +670,11 @@ def remove_orphans(listed: Any, keep: Any, *, base: Path) -> int:
     ----------
     listed : pyarrow.Array of str
         '/'-separated paths relative to ``base`` of the files found under OUT/audio
-        (:func:`pipeline.stages.audio_cache.file_listing`, taken as the stage began).
+        (:func:`pipeline.stages.audio_cache.file_listing`, taken before the stage's
+        workers ended).
     keep : pyarrow.Array of str
-        The paths that stay (the audio manifest's ``audio_path``).
+        The paths that stay (the audio manifest's ``audio_path``, or those of its rows
+        ``listed`` may hold besides the ones already left out of it).
     base : Path
         The folder both are relative to (OUT).
 
@@ -743,13 +747,17 @@ def prepare_driver(config: Any) -> None:
     warm_up(config.audio)
 
 
-def _clean_up(ctx: StageContext, out: Path, table: Any, listing: Any) -> int:
-    """Remove the clip files (of ``listing``, OUT/audio as the stage began) no row names,
-    and spool debris; how many clip files went. A file written since is a row's clip:
-    this run's workers write nothing else there but temporaries of an atomic write cut
-    short: a worker stopped when its pool broke leaves one, removed before the work goes
-    on (each_result's on_break); a killed run's are removed by the next run first."""
-    removed = remove_orphans(listing.column("path"), table.column("audio_path"), base=out)
+def _clean_up(ctx: StageContext, out: Path, unnamed: Any, fresh: list[str]) -> int:
+    """Remove the clip files no row names (``unnamed``: those of OUT/audio, listed as the
+    stage began its reuse check, that no reused row names, less ``fresh``: this run's
+    clips) and spool debris; how many clip files went. A file written since the listing
+    is a row's clip: this run's workers write nothing else there but temporaries of an
+    atomic write cut short: a worker stopped when its pool broke leaves one, removed
+    before the work goes on (each_result's on_break); a killed run's are removed by the
+    next run first."""
+    import pyarrow as pa  # here: the workers never need it
+
+    removed = remove_orphans(unnamed, pa.array(fresh, pa.string()), base=out)
     if removed:
         ctx.log.info("audio: removed %s no current row refers to", _plural(removed, "clip file"))
     # A worker stopped mid-file (the neighbour of a crash) leaves its spool file behind;
@@ -838,6 +846,134 @@ def _aligned_sources(table: Any, transcribed: Any) -> dict[str, dict[str, Any]]:
                              sources.select(["source_id", "source_path", "transcript", "duration_s"]).to_pylist())
 
 
+@dataclass
+class _Conditioning:
+    """What turns sources (rows of the ingest table, by index) into worker jobs and
+    their outcomes into the stage's rows, cache entries and rejects: the stage runs it
+    for the sources with no stored outcome, then for those whose clip files were not
+    intact (few, usually none)."""
+
+    ctx: StageContext
+    ingest: Any
+    long: Any  # the long transcribed ingest rows, whose voices ``voices`` holds
+    voices: dict[str, tuple[str | None, str]]
+    keys: Any  # the cache key of each ingest row (audio_cache.source_keys)
+    cache: OutcomeCache
+    builder: ManifestBuilder
+    real: dict[str, str]  # a pseudonymised build's RAW path of each source reference (_real_paths)
+    rejects_at: dict[int, list[dict[str, Any]]] = field(default_factory=dict)
+    fresh_paths: list[str] = field(default_factory=list)  # the audio_path of each fresh clip row
+
+    def jobs(self, todo: list[int]) -> list[AudioJob]:
+        """One job per source index of ``todo``, its voice looked up first when it is a
+        transcribed source that is not long."""
+        import pyarrow as pa  # here: the workers never need it
+        import pyarrow.compute as pc
+
+        ctx, cfg = self.ctx, self.ctx.config.audio
+        out, raw = Path(os.path.abspath(ctx.out)), Path(os.path.abspath(ctx.raw))
+        chosen = self.ingest.take(pa.array(todo, pa.int64()))
+        self.voices.update(_voices(ctx, chosen.filter(pc.invert(pc.is_in(chosen.column("source_id"),
+                                                                          value_set=self.long.column("source_id"))))))
+        return [AudioJob(row, str(raw / self.real.get(row["source_path"], row["source_path"])), str(out),
+                         str(out / TMP_DIR), cfg, *self.voices.get(row["source_id"], (None, "")),
+                         durable=False) for row in chosen.to_pylist()]
+
+    def run(self, todo: list[int], *, meanwhile: Callable[[], None] | None) -> bool:
+        """Condition the sources ``todo`` on the workers (``each_result``, which calls
+        ``meanwhile`` while they run); whether there was a pool to call it for."""
+        if not todo:
+            return False
+        jobs = self.jobs(todo)
+        warm_up(self.ctx.config.audio)
+        called = []
+
+        def waiting() -> None:
+            called.append(True)
+            if meanwhile is not None:
+                meanwhile()
+
+        def arrived(j: int, outcome: FileOutcome) -> None:
+            # A decoder error may be passing (a file still being copied), and a crash may
+            # be the library's fault (fixed by an upgrade): neither is remembered.
+            if not any(r["reason"] in ("undecodable", "decoder_crashed") for r in outcome.rejects):
+                self.cache.add(self.keys[todo[j]].as_py(), outcome.rows, outcome.rejects, outcome.written)
+            self.builder.extend(outcome.rows)
+            self.fresh_paths.extend(row["audio_path"] for row in outcome.rows)
+            if outcome.rejects:
+                self.rejects_at[todo[j]] = outcome.rejects
+
+        out = Path(os.path.abspath(self.ctx.out))
+        each_result(condition_file, jobs, arrived, workers=self.ctx.workers, scheduler=self.ctx.scheduler,
+                    desc="audio", progress=self.ctx.progress,
+                    costs=[job.row["num_frames"] * job.row["channels"] for job in jobs],
+                    meanwhile=waiting, on_crash=lambda j, how: crashed_outcome(jobs[j], how),
+                    after_batch=functools.partial(sync_file_system, str(out)),
+                    # The pool's other workers, stopped mid-file when one died, may have left an
+                    # atomic write's temporary beside a clip; their files run again, so it is debris.
+                    on_break=functools.partial(remove_stale_temporaries, out / AUDIO_DIR))
+        return bool(called)
+
+
+def _reuse_check(work: _Conditioning) -> list[int]:
+    """List OUT/audio and put the stored outcomes whose clip files are intact into the
+    manifest (``OutcomeCache.reuse``); the indices of the sources to condition again."""
+    out = Path(os.path.abspath(work.ctx.out))
+    stale, cached_rejects = work.cache.reuse(listing=file_listing(out / AUDIO_DIR, base=out),
+                                             builder=work.builder, base=out)
+    work.rejects_at.update(cached_rejects)
+    if work.cache.rechecked[0]:
+        work.ctx.log.info("audio: %d clip files of unchanged size and time but a new inode (OUT moved or "
+                          "copied?) hashed again: %d hold the bytes recorded for them", *work.cache.rechecked)
+    return stale
+
+
+def _condition_all(work: _Conditioning, unknown: list[int]) -> list[int]:
+    """Condition the sources ``unknown`` (no stored outcome) and those the reuse check
+    finds with clip files not intact; the indices of both, sorted.
+
+    The first start on the workers before OUT/audio is listed: the listing and the
+    reuse check (about 0.4 CPU s for 100,000 sources) run while the workers do, then
+    the runner's other work (``ctx.meanwhile``), which waits for a pool otherwise."""
+    others = [work.ctx.meanwhile]
+    stale: list[list[int]] = []
+
+    def meanwhile() -> None:
+        stale.append(_reuse_check(work))
+        later = others.pop()
+        if later is not None:
+            later()
+
+    if not work.run(unknown, meanwhile=meanwhile):
+        stale.append(_reuse_check(work))
+    # A clip file changed or gone since it was written: its source runs again, in a
+    # pool of its own (the runner's work, if still waiting, meanwhile).
+    work.run(stale[0], meanwhile=others.pop() if others else None)
+    return sorted(unknown + stale[0])
+
+
+def _flushing(out: Path) -> Callable[[], None]:
+    """Start flushing OUT's file system (``sync_file_system``) in a thread; the function
+    that waits for it to end (and raises what it raised). The flush waits on the disk,
+    not the processor: the stage sorts its rows and cleans up meanwhile."""
+    failed: list[BaseException] = []
+
+    def flush() -> None:
+        try:
+            sync_file_system(out)
+        except BaseException as exc:  # raised in the stage's thread, by join
+            failed.append(exc)
+
+    thread = threading.Thread(target=flush, name="loam-audio-flush")
+    thread.start()
+
+    def join() -> None:
+        thread.join()
+        if failed:
+            raise failed[0]
+    return join
+
+
 def run(ctx: StageContext) -> StageResult:
     """Condition every ingest row (cached per file), then drop clip files no row names.
 
@@ -849,67 +985,31 @@ def run(ctx: StageContext) -> StageResult:
     raw = Path(os.path.abspath(ctx.raw))
     ingest = ctx.inputs["ingest"]
     code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
-    import pyarrow as pa  # here: the workers never need it
-    import pyarrow.compute as pc
+    import pyarrow.compute as pc  # here: the workers never need it
 
-    section = ctx.config.section(NAME)
     transcribed = ingest.filter(pc.is_valid(ingest.column("transcript")))
     long = transcribed.filter(pc.fill_null(pc.greater(transcribed.column("duration_s"), cfg.max_clip_s), False))
     # The voice of each long source (its cache key holds it), then of each source to condition.
     voices = _voices(ctx, long)
     keys = source_keys(ingest, long=_long_sources(long, voices))
-    cache = OutcomeCache(ctx.cache_dir, section=section, code=code, enabled=ctx.use_cache)
+    cache = OutcomeCache(ctx.cache_dir, section=ctx.config.section(NAME), code=code, enabled=ctx.use_cache)
     # Rows go straight into Arrow batches as each outcome arrives (reused ones as
     # columns); no list of every outcome is kept. Rejects are few, kept in source order.
-    builder = ManifestBuilder(NAME)
-    listing = file_listing(out / AUDIO_DIR, base=out)
-    # A clip of another inode (a copied or moved OUT) is hashed here, in the driver: a
-    # copy of 100,000 sources costs 2.5 CPU s of hashing (audio_cache.same_bytes).
-    todo, rejects_at = cache.reuse(keys, listing=listing, builder=builder, base=out)
-    if cache.rechecked[0]:
-        ctx.log.info("audio: %d clip files of unchanged size and time but a new inode (OUT moved or copied?) "
-                     "hashed again: %d hold the bytes recorded for them", *cache.rechecked)
-    chosen = ingest.take(pa.array(todo, pa.int64()))
-    sources = chosen.to_pylist() if todo else []
-    if todo:
-        voices.update(_voices(ctx, chosen.filter(pc.invert(pc.is_in(chosen.column("source_id"),
-                                                                      value_set=long.column("source_id"))))))
-    real = _real_paths(ctx, out)
-    jobs = [AudioJob(row, str(raw / real.get(row["source_path"], row["source_path"])), str(out), str(out / TMP_DIR),
-                     cfg, *voices.get(row["source_id"], (None, "")), durable=False) for row in sources]
-    if jobs:
-        warm_up(cfg)
-
-    def arrived(j: int, outcome: FileOutcome) -> None:
-        # A decoder error may be passing (a file still being copied), and a crash may be
-        # the library's fault (fixed by an upgrade): neither is remembered.
-        if not any(r["reason"] in ("undecodable", "decoder_crashed") for r in outcome.rejects):
-            cache.add(keys[todo[j]].as_py(), outcome.rows, outcome.rejects, outcome.written)
-        builder.extend(outcome.rows)
-        if outcome.rejects:
-            rejects_at[todo[j]] = outcome.rejects
-
-    each_result(condition_file, jobs, arrived, workers=ctx.workers, scheduler=ctx.scheduler,
-                desc="audio", progress=ctx.progress,
-                costs=[row["num_frames"] * row["channels"] for row in sources],
-                meanwhile=ctx.meanwhile, on_crash=lambda j, how: crashed_outcome(jobs[j], how),
-                after_batch=functools.partial(sync_file_system, str(out)),
-                # The pool's other workers, stopped mid-file when one died, may have left an
-                # atomic write's temporary beside a clip; their files run again, so it is debris.
-                on_break=functools.partial(remove_stale_temporaries, out / AUDIO_DIR))
+    work = _Conditioning(ctx, ingest, long, voices, keys, cache, ManifestBuilder(NAME), _real_paths(ctx, out))
+    todo = _condition_all(work, cache.stored(keys))
     # The clips were written without an fsync each: one flush makes them durable before
     # the manifest that names them is written (reused ones too, which a run stopped
     # before its flush may have left in the cache). On a cluster each worker has also
     # flushed its own after every batch.
-    sync_file_system(out)
+    flushed = _flushing(out)
     cache.save()
     ctx.log.info("audio: %d files processed, %d reused from cache", len(todo), len(keys) - len(todo))
 
-    table = builder.table(sort_by="clip_id")
-    rejects = [r for i in sorted(rejects_at) for r in rejects_at[i]]
-    if real:
-        rejects = _scrub_rejects(rejects, real, raw=raw)
-    removed = _clean_up(ctx, out, table, listing)
+    table = work.builder.table(sort_by="clip_id")
+    rejects = [r for i in sorted(work.rejects_at) for r in work.rejects_at[i]]
+    if work.real:
+        rejects = _scrub_rejects(rejects, work.real, raw=raw)
+    removed = _clean_up(ctx, out, cache.unnamed(), work.fresh_paths)
     summary = _summary(table, rejects, sources=len(keys))
     summary["aligned_sources"] = _aligned_sources(table, transcribed)
     for path, figures in summary["aligned_sources"].items():
@@ -919,8 +1019,10 @@ def run(ctx: StageContext) -> StageResult:
     # These depend on what earlier runs left in the cache and under audio/: the log's.
     run_stats = {"sources_processed": len(todo), "sources_reused": len(keys) - len(todo),
                  "orphans_removed": removed}
+    file_stats = cache.file_stats()
+    flushed()
     return StageResult(manifests={stage_manifest(NAME): (NAME, table)}, rejects=rejects, summary=summary,
-                       run_stats=run_stats, file_stats=cache.file_stats(), listed_folder=AUDIO_DIR)
+                       run_stats=run_stats, file_stats=file_stats, listed_folder=AUDIO_DIR)
 
 
 STAGE = Stage(

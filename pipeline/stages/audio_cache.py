@@ -249,6 +249,10 @@ class OutcomeCache:
                                 enabled=enabled, mapped=True)
         self.schema = cache_schema()
         self._kept: pa.Table | None = None
+        # What stored() found for reuse(): the stored table, and the last run of each
+        # source's key, each run's first row and length (_outcome_runs).
+        self._stored: pa.Table | None = None
+        self._runs: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
         self._stored_rows = 0
         self._fresh: list[pa.Table] = []
         self._pending: list[dict[str, Any]] = []
@@ -264,21 +268,35 @@ class OutcomeCache:
         self.rechecked = (0, 0)
         self._restat = False
 
-    def reuse(self, keys: pa.Array, *, listing: pa.Table, builder: ManifestBuilder,
-              base: Path) -> tuple[list[int], dict[int, list[dict[str, Any]]]]:
-        """Put the clip rows of every source whose outcome is cached, with its clip files
-        intact (as ``listing``, :func:`file_listing` of OUT/audio, finds them, or of
-        another inode but the recorded bytes: :meth:`_recheck`, the paths relative to
-        ``base``), into ``builder``; return the indices of the other
-        sources and the cached rejects by source index. Columnar: Python touches only the
-        rejects and the rechecked clips."""
-        self._listing = listing
+    def stored(self, keys: pa.Array) -> list[int]:
+        """Load the stored outcomes and find the last one of each source (``keys``:
+        :func:`source_keys`, one per ingest row); return the indices of the sources with
+        none. Those are conditioned whatever :meth:`reuse` finds of the others' clip
+        files, so the stage starts their work before it lists OUT/audio: the check
+        that needs no listing comes first."""
         table = self.table.load()
         if table is None or not len(keys):
-            self._changed = True
-            return list(range(len(keys))), {}
+            return list(range(len(keys)))
+        self._stored = table
         self._stored_rows = table.num_rows
-        run, first, lengths = _outcome_runs(table.column("cache_key"), keys)
+        self._runs = _outcome_runs(table.column("cache_key"), keys)
+        return np.flatnonzero(self._runs[0] < 0).tolist()
+
+    def reuse(self, *, listing: pa.Table, builder: ManifestBuilder,
+              base: Path) -> tuple[list[int], dict[int, list[dict[str, Any]]]]:
+        """Put the clip rows of every source whose outcome :meth:`stored` found, with its
+        clip files intact (as ``listing``, :func:`file_listing` of OUT/audio, finds them,
+        or of another inode but the recorded bytes: :meth:`_recheck`, the paths relative
+        to ``base``), into ``builder``; return the indices of the sources found whose
+        files are not intact (conditioned again, as those with no outcome) and the cached
+        rejects by source index. Columnar: Python touches only the rejects and the
+        rechecked clips."""
+        self._listing = listing
+        table, self._stored = self._stored, None
+        if table is None or self._runs is None:
+            self._changed = True
+            return [], {}
+        run, first, lengths = self._runs
         intact, listed_at, moved = _intact(table, listing)
         if moved.any():
             table = self._recheck(table, intact, moved, listed_at, runs=(run[run >= 0], first, lengths),
@@ -297,15 +315,26 @@ class OutcomeCache:
         whole = len(kept) == table.num_rows and bool(np.all(kept == np.arange(len(kept))))
         self._kept = table if whole else table.take(pa.array(kept, pa.int64()))
         self._kept_listed_at = listed_at if whole else listed_at[kept]
-        self._changed = self._kept.num_rows != table.num_rows or self.table.has_parts or self._restat
+        # Fresh outcomes may have been recorded already (_flush set _changed).
+        self._changed |= self._kept.num_rows != table.num_rows or self.table.has_parts or self._restat
         rejected = np.asarray(self._kept.column("reject_reason").is_valid(), dtype=bool)
         rejects_at: dict[int, list[dict[str, Any]]] = {}
         for position in np.flatnonzero(rejected).tolist():
             rejects_at.setdefault(int(source_of[position]), []).append(_reject_row(self._kept, position))
         builder.extend_table(self._kept.filter(pa.array(~rejected)) if rejected.any() else self._kept)
-        todo = np.ones(len(keys), dtype=bool)
-        todo[reused] = False
-        return np.flatnonzero(todo).tolist(), rejects_at
+        stale = run >= 0
+        stale[reused] = False
+        return np.flatnonzero(stale).tolist(), rejects_at
+
+    def unnamed(self) -> pa.Array:
+        """The paths of the listing :meth:`reuse` was given that no kept row names: the
+        clip files of OUT/audio no reused outcome holds (this run's fresh clips among
+        them when they were written before the listing)."""
+        if self._listing is None:
+            return pa.array([], pa.string())
+        named = np.zeros(self._listing.num_rows, dtype=bool)
+        named[self._kept_listed_at[self._kept_listed_at >= 0]] = True
+        return self._listing.column("path").filter(pa.array(~named)).combine_chunks()
 
     def _recheck(self, table: pa.Table, intact: np.ndarray, moved: np.ndarray, listed_at: np.ndarray, *,
                  runs: tuple[np.ndarray, np.ndarray, np.ndarray], base: Path) -> pa.Table:
