@@ -521,3 +521,30 @@ def test_sidecar_readings_are_reused_until_the_sidecar_changes(small_raw: Path, 
     assert again[row["source_path"]]["transcript"] == new_text
     assert {r["source_path"]: r["transcript"] for r in rows if r is not row} == {
         p: r["transcript"] for p, r in again.items() if p != row["source_path"]}
+
+
+def test_sidecars_are_read_while_the_workers_probe(small_raw: Path, tmp_path: Path,
+                                                  monkeypatch: pytest.MonkeyPatch) -> None:
+    # The sidecars need no probe: they are paired and read while the workers probe, before
+    # the runner's other work, and after the probes when no file needs one.
+    events: list[str] = []
+    each_result, read_sidecars = ingest.each_result, ingest._read_sidecars
+
+    def recording_each_result(*args, **kwargs):  # type: ignore[no-untyped-def]
+        events.append("pool")
+        each_result(*args, **kwargs)
+        events.append("pool done")
+
+    def recording_read_sidecars(*args, **kwargs):  # type: ignore[no-untyped-def]
+        events.append("sidecars")
+        return read_sidecars(*args, **kwargs)
+
+    monkeypatch.setattr(ingest, "each_result", recording_each_result)
+    monkeypatch.setattr(ingest, "_read_sidecars", recording_read_sidecars)
+    rows, rejects = run_ingest(small_raw, tmp_path / "out", workers=2)
+    assert events == ["pool", "sidecars", "pool done"]
+    events.clear()
+    assert run_ingest(small_raw, tmp_path / "out", workers=2) == (rows, rejects)
+    assert events == ["pool", "pool done", "sidecars"]  # nothing to probe, no pool
+    monkeypatch.undo()
+    assert run_ingest(small_raw, tmp_path / "fresh", workers=1) == (rows, rejects)
