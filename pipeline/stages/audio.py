@@ -952,19 +952,20 @@ def _condition_all(work: _Conditioning, unknown: list[int]) -> list[int]:
     return sorted(unknown + stale[0])
 
 
-def _flushing(out: Path) -> Callable[[], None]:
-    """Start flushing OUT's file system (``sync_file_system``) in a thread; the function
-    that waits for it to end (and raises what it raised). The flush waits on the disk,
-    not the processor: the stage sorts its rows and cleans up meanwhile."""
+def _in_background(work: Callable[[], None]) -> Callable[[], None]:
+    """Start ``work`` in a thread; the function that waits for it to end (and raises
+    what it raised). For work that waits on the disk rather than the processor (OUT's
+    flush, the cache's write and its digest's fsync: 0.1 to 0.25 s of wall time for 0.02
+    CPU s at 100,000 sources), while the stage sorts its rows and counts them."""
     failed: list[BaseException] = []
 
-    def flush() -> None:
+    def guarded() -> None:
         try:
-            sync_file_system(out)
+            work()
         except BaseException as exc:  # raised in the stage's thread, by join
             failed.append(exc)
 
-    thread = threading.Thread(target=flush, name="loam-audio-flush")
+    thread = threading.Thread(target=guarded, name="loam-audio-write")
     thread.start()
 
     def join() -> None:
@@ -1001,8 +1002,11 @@ def run(ctx: StageContext) -> StageResult:
     # the manifest that names them is written (reused ones too, which a run stopped
     # before its flush may have left in the cache). On a cluster each worker has also
     # flushed its own after every batch.
-    flushed = _flushing(out)
-    cache.save()
+    def save_and_flush() -> None:
+        cache.save()  # first, so that the flush covers it too (a torn cache is only a miss)
+        sync_file_system(out)
+
+    written = _in_background(save_and_flush)
     ctx.log.info("audio: %d files processed, %d reused from cache", len(todo), len(keys) - len(todo))
 
     table = work.builder.table(sort_by="clip_id")
@@ -1019,10 +1023,9 @@ def run(ctx: StageContext) -> StageResult:
     # These depend on what earlier runs left in the cache and under audio/: the log's.
     run_stats = {"sources_processed": len(todo), "sources_reused": len(keys) - len(todo),
                  "orphans_removed": removed}
-    file_stats = cache.file_stats()
-    flushed()
+    written()
     return StageResult(manifests={stage_manifest(NAME): (NAME, table)}, rejects=rejects, summary=summary,
-                       run_stats=run_stats, file_stats=file_stats, listed_folder=AUDIO_DIR)
+                       run_stats=run_stats, file_stats=cache.file_stats(), listed_folder=AUDIO_DIR)
 
 
 STAGE = Stage(
