@@ -33,6 +33,15 @@ def _walk(root: Path) -> snapshot.Listing:
     return listing
 
 
+def _listed(root: Path) -> snapshot.Listing:
+    """RAW's listing as the shared walk gives it, its helper ended after."""
+    walk = RawWalk(root)
+    try:
+        return walk.listing()
+    finally:
+        walk.close()
+
+
 def _same(found: snapshot.Listing, expected: snapshot.Listing) -> None:
     assert found.digest == expected.digest
     assert found.complete == expected.complete
@@ -58,14 +67,9 @@ def test_a_link_makes_the_listing_partial_as_in_one_walk(tmp_path: Path) -> None
     root.mkdir()
     _tree(root, folders=9)
     (root / "spk005" / "link.wav").symlink_to(root / "spk001" / "a.wav")
-    walk = RawWalk(root)
-    try:
-        listing = walk.listing()
-    finally:
-        walk.close()
     expected = _walk(root)
     assert not expected.complete
-    _same(listing, expected)
+    _same(_listed(root), expected)
 
 
 def test_what_a_dead_helper_took_is_walked_here(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
@@ -81,11 +85,7 @@ def test_what_a_dead_helper_took_is_walked_here(tmp_path: Path, monkeypatch: pyt
         return take(self, tokens)
 
     monkeypatch.setattr(RawWalk, "_take", dying)
-    walk = RawWalk(root)
-    try:
-        _same(walk.listing(), _walk(root))
-    finally:
-        walk.close()
+    _same(_listed(root), _walk(root))
 
 
 def test_close_ends_a_helper_never_asked(tmp_path: Path) -> None:

@@ -230,25 +230,18 @@ def test_fixed_places_equal_a_loop_over_clips(clips: list[split.Clip], data: Any
 
 
 def reference_changes(ledger: Ledger, assignment: split.Assignment, present: set[str]) -> dict[str, Any]:
-    """The counts of _changes one clip at a time."""
+    """The counts of _changes as comprehensions over every clip (no shared records)."""
     old, renamed = ledger.clips, {o: n for n, o in assignment.continues.items()}
-    added, removed, moved, joined, left, part_moves = (Counter() for _ in range(6))
-    for cid, subset in assignment.subset.items():
-        rec = old.get(cid)
-        if rec is None:
-            added[subset] += 1
-            continue
-        if rec.subset != subset:
-            moved[f"{rec.subset}->{subset}"] += 1
-        if rec.subset == HELDOUT and rec.part != assignment.parts.get(cid, ""):
-            part_moves[f"{rec.part or '(none)'}->{assignment.parts.get(cid, '')}"] += 1
-        now, before = set(assignment.tiers.get(cid, ())), {renamed.get(t, t) for t in rec.tiers}
-        for t in now - before:
-            joined[t] += 1
-        for t in before - now:
-            left[t] += 1
-    for cid in old.keys() - present:
-        removed[old[cid].subset] += 1
+    parts, tiers = assignment.parts, assignment.tiers
+    kept = [(cid, old[cid], now) for cid, now in assignment.subset.items() if cid in old]
+    before = {cid: {renamed.get(t, t) for t in rec.tiers} for cid, rec, _ in kept}
+    added = Counter(now for cid, now in assignment.subset.items() if cid not in old)
+    removed = Counter(old[cid].subset for cid in old.keys() - present)
+    moved = Counter(f"{rec.subset}->{now}" for _, rec, now in kept if rec.subset != now)
+    part_moves = Counter(f"{rec.part or '(none)'}->{parts.get(cid, '')}" for cid, rec, _ in kept
+                         if rec.subset == HELDOUT and rec.part != parts.get(cid, ""))
+    joined = Counter(t for cid, _, _ in kept for t in set(tiers.get(cid, ())) - before[cid])
+    left = Counter(t for cid, _, _ in kept for t in before[cid] - set(tiers.get(cid, ())))
     return {"added": {s: added[s] for s in SUBSETS}, "removed": {s: removed[s] for s in SUBSETS},
             "moved": dict(sorted(moved.items())), "parts_moved": dict(sorted(part_moves.items())),
             "tiers_joined": dict(sorted(joined.items())), "tiers_left": dict(sorted(left.items()))}
