@@ -263,6 +263,8 @@ def test_temporaries_of_an_interrupted_run_are_removed_whether_the_audio_stage_r
     assert main(args) == 0
     log = capsys.readouterr().err
     assert ("audio  reused" in log) is not audio_runs
+    # The audio stage counts what it removed as files, not clips (the temporary is one).
+    assert ("audio: removed 1 file under OUT/audio that no row refers to" in log) is audio_runs
     assert not [path for path in planted if path.exists()]
     assert not list(out.rglob(".loam-*.tmp"))
     # The clips themselves stay (one more for the new file).

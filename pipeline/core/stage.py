@@ -103,8 +103,9 @@ class Stage:
         workers will need (imports, tables), called while an earlier stage waits for its
         pool; only a stage with a pool of its own needs it.
     cleans_folder : str
-        A top-level folder of OUT whose every file the stage's run lists as it begins and
-        removes at its end unless a row names it (the audio stage's clips): the stale
+        A top-level folder of OUT whose every file the stage's run lists (the audio stage:
+        while its workers condition the new sources) and removes at its end unless a row
+        names it or the run wrote it (the audio stage's clips): the stale
         ``.loam-*.tmp`` files of an interrupted run there go with them, so the runner's
         sweep for those leaves the folder to the run, and sweeps it itself only when the
         stage does not run (OUT/audio holds 100,000 clips at 100,000 sources: listed

@@ -759,7 +759,8 @@ def _clean_up(ctx: StageContext, out: Path, unnamed: Any, fresh: list[str]) -> i
 
     removed = remove_orphans(unnamed, pa.array(fresh, pa.string()), base=out)
     if removed:
-        ctx.log.info("audio: removed %s no current row refers to", _plural(removed, "clip file"))
+        # Counted as files, not clips: a killed run's temporaries there go too.
+        ctx.log.info("audio: removed %s under OUT/%s that no row refers to", _plural(removed, "file"), AUDIO_DIR)
     # A worker stopped mid-file (the neighbour of a crash) leaves its spool file behind;
     # no worker runs any more, so whatever is left is debris.
     remove_stale_temporaries(out / TMP_DIR)
