@@ -121,11 +121,32 @@ def rebuild_rounds(grown: Path, out: Path, workers: int, rounds: int) -> dict[st
 
 def cluster_cold(raw: Path, out: Path, workers: int) -> dict[str, float]:
     """A cold run against a LocalCluster of ``workers`` single-threaded processes
-    (started by this script, so the run's own peak RSS is the driver's)."""
+    (started by this script, so the run's own peak RSS is the driver's).
+
+    Starting the cluster sets variables in this process's environment for its workers
+    (here MALLOC_TRIM_THRESHOLD_=65536, OMP_NUM_THREADS, MKL_NUM_THREADS and
+    OPENBLAS_NUM_THREADS=1, PYTHONHASHSEED) and leaves them set. Every ``loam`` this
+    script started afterwards inherited them: the 100,000-source rebuild's split stage
+    took 2.42 s against 1.46 s without them (glibc giving memory back at every free
+    above 64 KiB). The environment is put back as soon as the workers have started,
+    so the driver, like every later run, has the one a user's shell gives it.
+    """
     from distributed import LocalCluster
 
-    with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
-        return prepare(raw, out, workers, "--scheduler", cluster.scheduler_address)
+    environ = dict(os.environ)
+    try:
+        with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
+            _restore_environ(environ)
+            return prepare(raw, out, workers, "--scheduler", cluster.scheduler_address)
+    finally:
+        _restore_environ(environ)
+
+
+def _restore_environ(environ: dict[str, str]) -> None:
+    """Make ``os.environ`` equal to ``environ`` again."""
+    for name in set(os.environ) - set(environ):
+        del os.environ[name]
+    os.environ.update(environ)
 
 
 def main() -> int:

@@ -82,3 +82,38 @@ def test_an_exit_status_named_as_a_result_is_timed_and_another_stops_the_benchma
     assert wall > 0 and rss > 0
     with pytest.raises(SystemExit, match="exit code 1"):
         measured(verdict)
+
+
+def test_the_cluster_leaves_no_variable_in_the_environment_of_the_runs(tmp_path: Path,
+                                                                        monkeypatch: pytest.MonkeyPatch) -> None:
+    """A LocalCluster sets variables for its workers in the starting process's
+    environment (MALLOC_TRIM_THRESHOLD_ among them) and leaves them; neither the cold
+    run's driver nor any later run may inherit them."""
+    import distributed
+
+    seen: list[dict[str, str]] = []
+
+    class Cluster:  # a stand-in that changes the environment as starting one does
+        scheduler_address = "tcp://127.0.0.1:1"
+
+        def __enter__(self) -> Cluster:
+            os.environ["MALLOC_TRIM_THRESHOLD_"] = "65536"
+            os.environ["OMP_NUM_THREADS"] = "1"
+            return self
+
+        def __exit__(self, *exc: object) -> None:
+            os.environ["PYTHONHASHSEED"] = "6640"
+
+    def prepare(raw: Path, out: Path, workers: int, *extra: str) -> dict[str, Any]:
+        seen.append(dict(os.environ))
+        return {"wall_s": 1.0}
+
+    monkeypatch.delenv("MALLOC_TRIM_THRESHOLD_", raising=False)
+    monkeypatch.delenv("OMP_NUM_THREADS", raising=False)
+    monkeypatch.delenv("PYTHONHASHSEED", raising=False)
+    monkeypatch.setattr(distributed, "LocalCluster", lambda **kwargs: Cluster())
+    monkeypatch.setattr(bench_scale, "prepare", prepare)
+    before = dict(os.environ)
+    assert bench_scale.cluster_cold(tmp_path / "raw", tmp_path / "out", 2) == {"wall_s": 1.0}
+    assert seen == [before]
+    assert dict(os.environ) == before
