@@ -88,6 +88,64 @@ def test_reading_by_kind_equals_reading_line_by_line(ledger: Ledger) -> None:
     assert parse_ledger(text.rstrip("\n"), source="x.tsv") == ledger
 
 
+# Any text but a tab or a line end: quotes, spaces, commas, "NA", non-ASCII letters.
+odd_ids = st.text(st.characters(blacklist_characters="\t\n\r", blacklist_categories=("Cs",)), min_size=1,
+                  max_size=8)
+
+
+@st.composite
+def odd_ledger_texts(draw: st.DrawFn) -> tuple[str, bool]:
+    """Ledger text with odd clip ids, and whether every row is well formed; a broken row
+    (a field too many or too few, an empty id, a bad source key or state) when not."""
+    tails = [("unlabelled", "-", "alder", "-"), ("heldout", "-", "wren", "test"), ("labelled", "1h", "alder", "-")]
+    rows = sorted((cid, draw(st.sampled_from(tails))) for cid in draw(st.lists(odd_ids, unique=True, max_size=12)))
+    lines = [HEADER, *(f"clip\t{cid}\t" + "\t".join(tail) for cid, tail in rows),
+             "group\talder\ttraining\t-", "group\twren\theldout\ttest"]
+    lines += [f"source\t{key:010x}\t{state}" for key, state in
+              sorted(draw(st.dictionaries(st.integers(0, 2**40 - 1), st.sampled_from(["present", "gone"]),
+                                          max_size=6)).items())]
+    broken = draw(st.sampled_from(["", "extra field", "missing field", "empty id", "source key", "source state"]))
+    at = draw(st.integers(1, len(lines) - 1))
+    clip_at = next((k for k, line in enumerate(lines) if line.startswith("clip\t")), None)
+    source_at = next((k for k, line in enumerate(lines) if line.startswith("source\t")), None)
+    if broken == "extra field":
+        lines[at] += "\t-"
+    elif broken == "missing field":
+        lines[at] = lines[at].rsplit("\t", 1)[0]
+    elif broken == "empty id" and clip_at is not None:
+        lines[clip_at] = "clip\t\t" + lines[clip_at].split("\t", 2)[2]
+    elif broken in ("source key", "source state") and source_at is not None:
+        kind, key, state = lines[source_at].split("\t")
+        lines[source_at] = "\t".join([kind, key[:9] + "G", state] if broken == "source key" else [kind, key, "lost"])
+    else:
+        broken = ""
+    return "\n".join(lines) + "\n", not broken
+
+
+def _read(text: str) -> Ledger | str:
+    try:
+        return parse_ledger(text, source="x.tsv")
+    except UsageError as exc:
+        return str(exc)
+
+
+@settings(max_examples=examples(200), deadline=None)
+@given(case=odd_ledger_texts())
+def test_reading_by_columns_equals_reading_line_by_line_on_odd_rows(case: tuple[str, bool]) -> None:
+    # The clip and source rows are read as tab-separated columns (no quoting, no
+    # escapes, no nulls): a quote, "NA" or an empty field must read as the line-by-line
+    # reading reads it, and a row of another shape must leave the reading to it.
+    text, well_formed = case
+    parser = _Parser("x.tsv")
+    first, _, body = text.partition("\n")
+    fast = parser.parse_plain(body, parser.header(first))
+    assert (fast is not None) == well_formed
+    # CRLF line ends take the line-by-line reading.
+    assert _read(text) == _read(text.replace("\n", "\r\n"))
+    if fast is not None:
+        assert fast == _read(text.replace("\n", "\r\n"))
+
+
 def test_rows_out_of_kind_order_are_read_line_by_line() -> None:
     body = "group\talder\ttraining\t-\nclip\ta-1\tunlabelled\t-\talder\t-\n"
     parser = _Parser("x.tsv")
