@@ -183,7 +183,8 @@ def merge_groups(base_groups: Sequence[str], pairs: Iterable[tuple[int, int]]) -
     """
     # Union-find with path halving: near-linear, and for a few thousand pairs cheaper
     # than importing scipy.sparse.csgraph for connected_components.
-    parent = {g: g for g in base_groups}
+    # Over the distinct groups only (dict.fromkeys runs in C over the items).
+    parent = {g: g for g in dict.fromkeys(base_groups)}
 
     def root(g: str) -> str:
         while parent[g] != g:
@@ -198,7 +199,7 @@ def merge_groups(base_groups: Sequence[str], pairs: Iterable[tuple[int, int]]) -
             parent[max(a, b)] = min(a, b)
     # One root per group, not per item: a few distinct groups stand for many items.
     roots = {g: root(g) for g in parent}
-    return [roots[g] for g in base_groups]
+    return list(map(roots.__getitem__, base_groups))
 
 
 def match_tiers(old: Sequence[str], new: Sequence[str], *, seconds: Mapping[str, float]) -> dict[str, str]:
@@ -521,13 +522,19 @@ def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None, unbou
     pairs, partner = find_duplicates(clip_ids, audio.column("audio_sha256"), near)
     base = {"speaker": speakers, "clip": clip_ids}.get(group_by) or audio.column("source_id").to_pylist()
     # A pair within one group binds nothing: most pairs, when grouping by speaker. The
-    # pairs that bind are picked by codes, not one Python comparison per pair.
-    base_code = _codes(base)[0]
+    # pairs that bind are picked by codes, not one Python comparison per pair, and
+    # bind the distinct pairs of groups they join (at 101,000 clips, 37,000 pairs
+    # joining speakers took 0.05 CPU s one at a time, clip by clip).
+    base_code, base_names = _codes(base)
     binds = base_code[pairs.first] != base_code[pairs.second]
     if unbound:
         out = np.fromiter(map(set(unbound).__contains__, clip_ids), bool, count=len(clip_ids))
         binds &= ~out[pairs.first] & ~out[pairs.second]
-    merged = merge_groups(base, zip(pairs.first[binds].tolist(), pairs.second[binds].tolist(), strict=True))
+    width = np.int64(max(len(base_names), 1))
+    joined_groups = np.unique(base_code[pairs.first[binds]] * width + base_code[pairs.second[binds]])
+    merged_names = merge_groups(base_names, zip((joined_groups // width).tolist(), (joined_groups % width).tolist(),
+                                                strict=True))
+    merged = list(map(merged_names.__getitem__, base_code.tolist()))
     measured = measure_gates(joined, phones, min_snr_db=qc.min_snr_db,
                              min_bandwidth_hz=qc.min_bandwidth_hz, rate_max_abs_z=qc.rate_max_abs_z,
                              rate_min_clips=qc.rate_min_clips, rate_min_spread=qc.rate_min_spread,
@@ -1530,15 +1537,24 @@ def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment
         "tiers": tiers,
         "gates": gate_counts,
         "notes": notes,
-        "near_duplicate_pairs": [
-            {"clips": [first, second], "similarity": round(sim, 4), "identical": same}
-            for first, second, sim, same in zip(_ids_at(clips, pairs.first), _ids_at(clips, pairs.second),
-                                                pairs.similarity.tolist(), pairs.identical.tolist(), strict=True)],
+        "near_duplicate_pairs": _pair_rows(clips, pairs),
     }
 
 
-def _ids_at(clips: Sequence[Clip], at: np.ndarray) -> list[str]:
-    return list(map(_ID, map(clips.__getitem__, at.tolist())))
+def _pair_rows(clips: Sequence[Clip], pairs: DuplicatePairs) -> list[dict[str, Any]]:
+    """The summary's row of each duplicate pair. Pairs share few similarities (counts
+    of bits over counts of positions): each distinct one is rounded once (45,869 pairs
+    took 0.03 CPU s rounding each)."""
+    ids = list(map(_ID, clips))
+    distinct, at = np.unique(pairs.similarity, return_inverse=True)
+    # Similarities are positive (the search keeps those above a positive threshold;
+    # identical audio is 1.0), so np.unique merges no 0.0 with a -0.0.
+    rounded = [round(sim, 4) for sim in distinct.tolist()]
+    return [{"clips": [first, second], "similarity": sim, "identical": same}
+            for first, second, sim, same in zip(map(ids.__getitem__, pairs.first.tolist()),
+                                                map(ids.__getitem__, pairs.second.tolist()),
+                                                map(rounded.__getitem__, at.ravel().tolist()),
+                                                pairs.identical.tolist(), strict=True)]
 
 
 def sizes(clips: Sequence[Clip], scorable: set[str]) -> dict[str, Any]:
