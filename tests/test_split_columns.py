@@ -74,6 +74,10 @@ def reference_facts(clips: list[split.Clip], balance: split.Balance) -> dict[str
 def test_group_facts_equal_a_loop_over_clips(clips: list[split.Clip]) -> None:
     balance = split.Balance(("gender",), 0.1, {"alder": {"gender": "f"}, "otter": {"gender": "m"}})
     found, expected = split.group_facts(clips, balance), reference_facts(clips, balance)
+    # With the group codes and eligibility Past read already, as the stage calls it.
+    with_past = split.group_facts(clips, balance, split.Past.of(clips, {}))
+    assert [(g, f.seconds, list(f.prompts.items()), f.attributes) for g, f in with_past.items()] == \
+        [(g, f.seconds, list(f.prompts.items()), f.attributes) for g, f in found.items()]
     assert list(found) == list(expected)  # the groups in order of first appearance
     for g, want in expected.items():
         got = found[g]

@@ -660,14 +660,21 @@ class Past:
         base, base_names = _codes(list(map(_BASE, clips)))
         # map() over the dict's get with a default record runs in C: no None to test per clip.
         records = list(map(known.get, ids, repeat(_UNKNOWN)))
-        subsets, subset_names = _codes(list(map(_SUBSET_OF, records)))
-        part, part_names = _codes(list(map(_PART_OF, records)))
+        # Records are shared (one per distinct ledger row text): each clip's subset and
+        # part are its record's, read once per record.
+        identities = list(map(id, records))
+        record_code, record_ids = _codes(identities)
+        distinct = dict(zip(identities, records, strict=True))
+        subset_of, subset_names = _codes([distinct[r].subset for r in record_ids])
+        part_of, part_names = _codes([distinct[r].part for r in record_ids])
+        subsets, part = subset_of[record_code], part_of[record_code]
         code = {name: k for k, name in enumerate(subset_names)}
         return cls(ids, group, group_names, base, base_names, records,
                    known=subsets != code.get("", -1), held=subsets == code.get(HELDOUT, -1),
                    labelled=subsets == code.get(LABELLED, -1), part=part, part_names=part_names,
-                   eligible=np.fromiter(map(attrgetter("eligible"), clips), bool, count=len(clips)),
-                   transcribed=np.fromiter((t is not None for t in map(_TEXT, clips)), bool, count=len(clips)))
+                   eligible=np.fromiter(map(_ELIGIBLE, clips), bool, count=len(clips)),
+                   transcribed=np.fromiter(map(operator.is_not, map(_TEXT, clips), repeat(None)), bool,
+                                           count=len(clips)))
 
     def any_by_group(self, mask: np.ndarray) -> np.ndarray:
         """Per group, whether any of its clips is in ``mask``."""
@@ -848,15 +855,19 @@ def _sums_by_pair(outer: np.ndarray, inner: np.ndarray, weights: np.ndarray
     return pairs // width, pairs % width, sums
 
 
-def group_facts(clips: Sequence[Clip], balance: Balance) -> dict[str, GroupFacts]:
+def group_facts(clips: Sequence[Clip], balance: Balance, past: Past | None = None) -> dict[str, GroupFacts]:
     """Per group: eligible transcribed seconds, seconds per prompt, and the balance
     attributes of its speaker (the one with the most eligible seconds in the group,
     ties to the smaller id); the groups in order of first appearance in ``clips``.
 
     Columnar: codes per clip and sums by code, a Python call per distinct prompt text
-    only (at 101,000 clips: 0.10 CPU s with a loop over every clip before)."""
-    group, names = _codes(list(map(_GROUP, clips)))
-    eligible = np.fromiter(map(attrgetter("eligible"), clips), bool, count=len(clips))
+    only (at 101,000 clips: 0.10 CPU s with a loop over every clip before). ``past``,
+    :class:`Past` of the same clips, gives the group codes and eligibility already read."""
+    if past is not None:
+        group, names, eligible = past.group, past.group_names, past.eligible
+    else:
+        group, names = _codes(list(map(_GROUP, clips)))
+        eligible = np.fromiter(map(_ELIGIBLE, clips), bool, count=len(clips))
     picked = np.flatnonzero(eligible)
     chosen = [clips[k] for k in picked.tolist()]
     durations = np.fromiter(map(_DURATION, chosen), np.float64, count=len(chosen))
@@ -964,8 +975,8 @@ def assign(clips: Sequence[Clip], *, ledger: Ledger | None, seed: int, targets: 
            balance: Balance | None = None) -> Assignment:
     """Places for groups, subsets and parts for clips, tiers for labelled clips (see the module docstring)."""
     balance = balance or Balance()
-    facts = group_facts(clips, balance)
     past = Past.of(clips, ledger.clips if ledger is not None else {})
+    facts = group_facts(clips, balance, past)
     places, straddling = _choose_places(past, ledger, facts, seed=seed, targets=targets, balance=balance)
     sides = {g: "training" if place == TRAINING else HELDOUT for g, place in places.items()}
     found = _sort_clips(clips, past, sides)
@@ -1102,15 +1113,37 @@ def _hours(seconds: float) -> float:
     return round(seconds / 3600.0, 4)
 
 
-def _describe(clips: Sequence[Clip], inventory: set[str]) -> dict[str, Any]:
-    phones = set().union(*map(_PHONES, clips))
-    seconds = math.fsum(map(_DURATION, clips))
+@dataclass(frozen=True)
+class ClipFacts:
+    """What the summary counts of a list of clips: their durations, speakers, groups,
+    phones and untranscribed clips. The summary describes each subset twice (its
+    ``subsets`` and ``sizes`` sections) and the corpus as their union: each subset's
+    facts are read once (a pass over the 90,000 unlabelled clips of a 101,000-clip
+    corpus costs a few ms for each)."""
+
+    durations: list[float]
+    speakers: set[str]
+    groups: set[str]
+    phones: set[str]
+    untranscribed: list[Clip]
+
+    @classmethod
+    def of(cls, clips: Sequence[Clip]) -> ClipFacts:
+        return cls(list(map(_DURATION, clips)), set(map(_SPEAKER, clips)), set(map(_GROUP, clips)),
+                   set().union(*map(_PHONES, clips)),
+                   list(compress(clips, map(operator.is_, map(_TEXT, clips), repeat(None)))))
+
+
+def _describe(clips: Sequence[Clip], inventory: set[str], facts: ClipFacts | None = None) -> dict[str, Any]:
+    found = facts or ClipFacts.of(clips)
+    phones = found.phones
+    seconds = math.fsum(found.durations)
     return {
         "clips": len(clips),
         "hours": _hours(seconds),
-        "speakers": len(set(map(_SPEAKER, clips))),
-        "groups": len(set(map(_GROUP, clips))),
-        "transcribed_clips": len(clips) - countOf(map(_TEXT, clips), None),
+        "speakers": len(found.speakers),
+        "groups": len(found.groups),
+        "transcribed_clips": len(clips) - len(found.untranscribed),
         "phones": len(phones),
         "phone_share": round(len(phones) / len(inventory), 4) if inventory else 0.0,
     }
@@ -1394,14 +1427,15 @@ def _run(ctx: StageContext) -> StageResult:
     changes["returned_sources"] = countOf(map(ledger.sources.get, sources), "gone") if ledger else 0
     _log_changes(ctx, changes, str(use.path), ledger is not None)
 
+    facts = {s: ClipFacts.of(by_subset[s]) for s in SUBSETS}
     summary = _summary(kept, clips, assignment, pairs, by_subset, target_s=target_s, eligible_s=eligible_s,
-                       group_by=sc.group_by, orphans=orphans,
+                       group_by=sc.group_by, orphans=orphans, facts=facts,
                        rejected={f"rejected_{g}": sum(r["reason"] == g for r in rejects)
                                  for g in gates.GATES if "reject" in gates.ACTIONS[g]})
-    scorable = {cid for _, table in tables.values()
-                for cid in table.filter(table.column("scorable")).column("clip_id").to_pylist()}
+    scorable = set().union(*(table.filter(table.column("scorable")).column("clip_id").to_pylist()
+                             for _, table in tables.values()))
     summary.update(parts_summary(by_subset, assignment, targets, balance, text_overlap=sc.text_overlap,
-                                 scorable=scorable))
+                                 scorable=scorable, facts=facts))
     _log_parts(ctx, summary)
     summary["changes"] = changes
     summary["shortfalls"] = shortfalls
@@ -1510,9 +1544,12 @@ def _gone_record(rec: ClipRecord, budgets: tuple[str, ...], continues: Mapping[s
 
 def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment, pairs: DuplicatePairs,
              by_subset: Mapping[str, list[Clip]], *, target_s: float, eligible_s: float, group_by: str,
-             orphans: int, rejected: dict[str, int]) -> dict[str, Any]:
-    inventory = set().union(*map(_PHONES, kept))
-    subsets = {s: _describe(by_subset[s], inventory) for s in SUBSETS}
+             orphans: int, rejected: dict[str, int], facts: Mapping[str, ClipFacts] | None = None) -> dict[str, Any]:
+    # The subsets hold every kept clip once: the corpus's phones, groups and seconds are
+    # those of the subsets together.
+    facts = facts or {s: ClipFacts.of(by_subset[s]) for s in SUBSETS}
+    inventory = set().union(*(facts[s].phones for s in SUBSETS))
+    subsets = {s: _describe(by_subset[s], inventory, facts[s]) for s in SUBSETS}
     scored = [c for c in by_subset[HELDOUT] if c.eligible and c.clip_id not in assignment.unscored]
     subsets[HELDOUT]["scored_clips"] = len(scored)
     subsets[HELDOUT]["scored_hours"] = _hours(math.fsum(c.duration_s for c in scored))
@@ -1533,11 +1570,12 @@ def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment
              for f in ("upsampled", "peak_limited", "transcript_rejected")}
     notes["heldout_untranscribed"] = countOf(map(_TEXT, by_subset[HELDOUT]), None)
     notes["orphan_transcripts"] = orphans
-    groups = set(map(_GROUP, kept))
+    groups = set().union(*(facts[s].groups for s in SUBSETS))
     sides = Counter(assignment.sides[g] for g in groups)
     return {
         "clips": len(kept),
-        "hours": _hours(math.fsum(map(_DURATION, kept))),
+        # fsum is exact: the subsets' durations one after the other give the same sum.
+        "hours": _hours(math.fsum(itertools.chain.from_iterable(facts[s].durations for s in SUBSETS))),
         "group_by": group_by,
         "groups": len(groups),
         "heldout_groups": sides["heldout"],
@@ -1570,26 +1608,28 @@ def _pair_rows(clips: Sequence[Clip], pairs: DuplicatePairs) -> list[dict[str, A
                                                 pairs.identical.tolist(), strict=True)]
 
 
-def sizes(clips: Sequence[Clip], scorable: set[str]) -> dict[str, Any]:
+def sizes(clips: Sequence[Clip], scorable: set[str], facts: ClipFacts | None = None) -> dict[str, Any]:
     """Clips, hours, scorable clips and hours, speakers and groups, and the untranscribed
     audio among them (in held-out: audio of held-out speakers withheld from training)."""
-    seconds = math.fsum(map(_DURATION, clips))
+    found = facts or ClipFacts.of(clips)
+    seconds = math.fsum(found.durations)
     # compress() and map() pick the clips in C: a comprehension over the 90,000
     # unlabelled clips of a 101,000-clip corpus took 0.01 CPU s for each list.
     counted = list(compress(clips, map(scorable.__contains__, map(_ID, clips))))
     scored = math.fsum(map(_DURATION, counted))
-    untranscribed = list(compress(clips, map(operator.is_, map(_TEXT, clips), repeat(None))))
+    untranscribed = found.untranscribed
     return {
         "clips": len(clips), "seconds": round(seconds, 3), "hours": _hours(seconds),
         "scorable_clips": len(counted), "scorable_seconds": round(scored, 3),
-        "scorable_hours": _hours(scored), "speakers": len(set(map(_SPEAKER, clips))),
-        "groups": len(set(map(_GROUP, clips))), "untranscribed_clips": len(untranscribed),
+        "scorable_hours": _hours(scored), "speakers": len(found.speakers),
+        "groups": len(found.groups), "untranscribed_clips": len(untranscribed),
         "untranscribed_seconds": round(math.fsum(map(_DURATION, untranscribed)), 3),
     }
 
 
 def parts_summary(by_subset: Mapping[str, list[Clip]], assignment: Assignment, targets: Sequence[PartTarget],
-                  balance: Balance, *, text_overlap: str, scorable: set[str]) -> dict[str, Any]:
+                  balance: Balance, *, text_overlap: str, scorable: set[str],
+                  facts: Mapping[str, ClipFacts] | None = None) -> dict[str, Any]:
     """The summary's ``sizes`` (per subset), ``parts`` (per held-out part, with its target),
     ``text_overlap`` (what keeping test prompts apart cost) and ``balance`` sections."""
     held = by_subset[HELDOUT]
@@ -1598,8 +1638,9 @@ def parts_summary(by_subset: Mapping[str, list[Clip]], assignment: Assignment, t
         members = [c for c in held if assignment.parts.get(c.clip_id) == t.name]
         parts[t.name] = {**sizes(members, scorable), "target_s": round(t.target_s, 3),
                          "text_disjoint": t.text_disjoint}
-    unscored = [c for c in held if c.clip_id in assignment.unscored]
-    demoted = [c for c in by_subset[UNLABELLED] if c.clip_id in assignment.demoted]
+    # Most runs unscore and demote nothing: no pass over the clips then.
+    unscored = [c for c in held if c.clip_id in assignment.unscored] if assignment.unscored else []
+    demoted = [c for c in by_subset[UNLABELLED] if c.clip_id in assignment.demoted] if assignment.demoted else []
     cost = {
         "mode": text_overlap,
         "parts": [t.name for t in targets if t.text_disjoint],
@@ -1612,7 +1653,7 @@ def parts_summary(by_subset: Mapping[str, list[Clip]], assignment: Assignment, t
     rows = balance_table(assignment.facts, assignment.places, parts=[t.name for t in targets],
                          columns=balance.columns, tolerance=balance.tolerance)
     return {
-        "sizes": {s: sizes(by_subset[s], scorable) for s in SUBSETS},
+        "sizes": {s: sizes(by_subset[s], scorable, facts[s] if facts else None) for s in SUBSETS},
         "parts": parts,
         "text_overlap": cost,
         "balance": {"columns": list(balance.columns), "tolerance": balance.tolerance, "rows": rows,
