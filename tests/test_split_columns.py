@@ -13,6 +13,8 @@ from collections import Counter, defaultdict
 from dataclasses import replace
 from typing import Any
 
+import numpy as np
+import pyarrow as pa
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -270,3 +272,70 @@ def test_changes_equal_a_loop_over_clips(clips: list[split.Clip], data: Any) -> 
     found = split._changes(ledger, assignment, present)
     assert {k: found[k] for k in reference_changes(ledger, assignment, present)} == \
         reference_changes(ledger, assignment, present)
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.sampled_from("abcdefg"), max_size=30), st.data())
+def test_bound_groups_equal_merging_pair_by_pair(base: list[str], data: Any) -> None:
+    """Groups bound by the distinct pairs of groups equal merge_groups over every pair
+    (one clip pair at a time), and their codes equal numbering the merged groups in
+    order of first appearance."""
+    count = len(base)
+    pairs = data.draw(st.lists(st.tuples(st.integers(0, max(count - 1, 0)), st.integers(0, max(count - 1, 0))),
+                               max_size=40)) if count else []
+    unbound = np.array(data.draw(st.lists(st.booleans(), min_size=count, max_size=count)), dtype=bool)
+    first = np.array([i for i, _ in pairs], np.int64)
+    second = np.array([j for _, j in pairs], np.int64)
+    merged, codes, names = split.bound_groups(base, first, second, unbound=unbound)
+    expected = split.merge_groups(base, [(i, j) for i, j in pairs if not unbound[i] and not unbound[j]])
+    assert merged == expected
+    want_codes, want_names = split._codes(expected)
+    assert codes.tolist() == want_codes.tolist() and names == want_names
+    assert split.bound_groups(base, first, second)[0] == split.merge_groups(base, pairs)
+
+
+@settings(max_examples=200, deadline=None)
+@given(clip_lists(), st.data())
+def test_subset_facts_add_up_to_the_corpus(clips: list[split.Clip], data: Any) -> None:
+    """The summary reads each subset's facts once and the corpus's as their union:
+    phones, groups and seconds (fsum over the subsets' durations one after the other)
+    equal those read over every clip, and each section equals its reading without facts."""
+    subset = {c.clip_id: data.draw(st.sampled_from(SUBSETS)) for c in clips}
+    by_subset = split._by_subset(clips, subset)
+    facts = {s: split.ClipFacts.of(by_subset[s]) for s in SUBSETS}
+    assert set().union(*(facts[s].phones for s in SUBSETS)) == set().union(*(c.plain_phones for c in clips))
+    assert set().union(*(facts[s].groups for s in SUBSETS)) == {c.group for c in clips}
+    chained = [d for s in SUBSETS for d in facts[s].durations]
+    assert math.fsum(chained) == math.fsum(c.duration_s for c in clips)
+    inventory = {"AA", "B"}
+    scorable = {c.clip_id for c in clips if c.eligible}
+    for s in SUBSETS:
+        members = by_subset[s]
+        assert [c.clip_id for c in members] == [c.clip_id for c in clips if subset[c.clip_id] == s]
+        assert split._describe(members, inventory, facts[s]) == split._describe(members, inventory)
+        assert split.sizes(members, scorable, facts[s]) == split.sizes(members, scorable)
+        assert facts[s].untranscribed == [c for c in members if c.text is None]
+        assert len(facts[s].speakers) == len({c.speaker for c in members})
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.tuples(st.sampled_from([0.85, 0.8531249999999999, 0.86, 0.921875, 1.0, 0.99995, 0.98765, 0.91235]),
+                          st.booleans()), max_size=30))
+def test_pair_rows_equal_one_row_per_pair(rows: list[tuple[float, bool]]) -> None:
+    """The summary's pair rows, each distinct similarity rounded once, equal rounding
+    each pair's (repeats included, values that round half way)."""
+    clips = [split.Clip(k, f"c{k:03d}", "alder", 1.0, "s.wav", None, "g", "g", frozenset(), (), None, None, None,
+                        False) for k in range(len(rows) + 1)]
+    pairs = split.DuplicatePairs(np.arange(len(rows), dtype=np.int64), np.arange(1, len(rows) + 1, dtype=np.int64),
+                                 np.array([r[0] for r in rows], np.float64), np.array([r[1] for r in rows], bool))
+    expected = [{"clips": [f"c{k:03d}", f"c{k + 1:03d}"], "similarity": round(sim, 4), "identical": same}
+                for k, (sim, same) in enumerate(rows)]
+    assert split._pair_rows(clips, pairs) == expected
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.lists(st.lists(st.one_of(st.none(), st.sampled_from(["wren", "alder", "", "héron"])), max_size=8),
+                min_size=1, max_size=3))
+def test_shared_strings_equal_the_column_values(chunks: list[list[str | None]]) -> None:
+    column = pa.chunked_array(chunks, pa.string())
+    assert split._shared_strings(column) == column.to_pylist()

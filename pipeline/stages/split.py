@@ -203,6 +203,38 @@ def merge_groups(base_groups: Sequence[str], pairs: Iterable[tuple[int, int]]) -
     return list(map(roots.__getitem__, base_groups))
 
 
+def bound_groups(base_groups: list[str], first: np.ndarray, second: np.ndarray, *,
+                 unbound: np.ndarray | None = None) -> tuple[list[str], np.ndarray, list[str]]:
+    """:func:`merge_groups` of the items paired ``first[p]``, ``second[p]`` (but those
+    ``unbound``), and the merged groups numbered in order of first appearance: each
+    item's merged group, its code, and the groups by code.
+
+    A pair within one group binds nothing (most pairs, when grouping by speaker): the
+    pairs that bind are picked by codes, and bind the distinct pairs of groups they
+    join (at 101,000 clips, 37,000 pairs joining speakers took 0.05 CPU s one at a time,
+    item by item). The codes follow from the base groups' own: those are numbered in
+    order of first appearance, and a merged group first appears with the first base
+    group merged into it.
+
+    Examples
+    --------
+    >>> bound_groups(["b", "c", "a", "d", "c"], np.array([0, 1, 3]), np.array([1, 2, 4]),
+    ...              unbound=np.array([False, False, False, True, False]))
+    (['a', 'a', 'a', 'd', 'a'], array([0, 0, 0, 1, 0]), ['a', 'd'])
+    """
+    base_code, base_names = _codes(base_groups)
+    first, second = np.asarray(first, np.int64), np.asarray(second, np.int64)
+    binds = base_code[first] != base_code[second]
+    if unbound is not None:
+        binds &= ~unbound[first] & ~unbound[second]
+    width = np.int64(max(len(base_names), 1))
+    joined = np.unique(base_code[first[binds]] * width + base_code[second[binds]])
+    merged_names = merge_groups(base_names, zip((joined // width).tolist(), (joined % width).tolist(), strict=True))
+    merged_code, names = _codes(merged_names)
+    return (list(map(merged_names.__getitem__, base_code.tolist())),
+            np.asarray(merged_code, np.int64)[base_code] if base_names else np.zeros(0, np.int64), names)
+
+
 def match_tiers(old: Sequence[str], new: Sequence[str], *, seconds: Mapping[str, float]) -> dict[str, str]:
     """Which ledger tier each configured tier continues: ``{new name: old name}``.
 
@@ -544,25 +576,8 @@ def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None, unbou
         near = search_pairs(*joined.fingerprints, min_similarity=qc.near_duplicate_min_similarity)
     pairs, partner = find_duplicates(clip_ids, audio.column("audio_sha256"), near)
     base = {"speaker": speakers, "clip": clip_ids}.get(group_by) or audio.column("source_id").to_pylist()
-    # A pair within one group binds nothing: most pairs, when grouping by speaker. The
-    # pairs that bind are picked by codes, not one Python comparison per pair, and
-    # bind the distinct pairs of groups they join (at 101,000 clips, 37,000 pairs
-    # joining speakers took 0.05 CPU s one at a time, clip by clip).
-    base_code, base_names = _codes(base)
-    binds = base_code[pairs.first] != base_code[pairs.second]
-    if unbound:
-        out = np.fromiter(map(set(unbound).__contains__, clip_ids), bool, count=len(clip_ids))
-        binds &= ~out[pairs.first] & ~out[pairs.second]
-    width = np.int64(max(len(base_names), 1))
-    joined_groups = np.unique(base_code[pairs.first[binds]] * width + base_code[pairs.second[binds]])
-    merged_names = merge_groups(base_names, zip((joined_groups // width).tolist(), (joined_groups % width).tolist(),
-                                                strict=True))
-    merged = list(map(merged_names.__getitem__, base_code.tolist()))
-    # The merged groups numbered in order of first appearance, as _codes(merged) would:
-    # the base groups are numbered so already, and each merged group first appears
-    # with the first base group merged into it.
-    merged_code, group_names = _codes(merged_names)
-    group = np.asarray(merged_code, np.int64)[base_code] if base_names else np.zeros(0, np.int64)
+    out = np.fromiter(map(set(unbound).__contains__, clip_ids), bool, count=len(clip_ids)) if unbound else None
+    merged, group, group_names = bound_groups(base, pairs.first, pairs.second, unbound=out)
     measured = measure_gates(joined, phones, min_snr_db=qc.min_snr_db,
                              min_bandwidth_hz=qc.min_bandwidth_hz, rate_max_abs_z=qc.rate_max_abs_z,
                              rate_min_clips=qc.rate_min_clips, rate_min_spread=qc.rate_min_spread,
