@@ -286,12 +286,37 @@ def test_bound_groups_equal_merging_pair_by_pair(base: list[str], data: Any) -> 
     unbound = np.array(data.draw(st.lists(st.booleans(), min_size=count, max_size=count)), dtype=bool)
     first = np.array([i for i, _ in pairs], np.int64)
     second = np.array([j for _, j in pairs], np.int64)
-    merged, codes, names = split.bound_groups(base, first, second, unbound=unbound)
+    found = split.bound_groups(base, first, second, unbound=unbound)
     expected = split.merge_groups(base, [(i, j) for i, j in pairs if not unbound[i] and not unbound[j]])
-    assert merged == expected
+    assert found.merged == expected
     want_codes, want_names = split._codes(expected)
-    assert codes.tolist() == want_codes.tolist() and names == want_names
-    assert split.bound_groups(base, first, second)[0] == split.merge_groups(base, pairs)
+    assert found.group.tolist() == want_codes.tolist() and found.group_names == want_names
+    base_codes, base_names = split._codes(base)
+    assert found.base.tolist() == base_codes.tolist() and found.base_names == base_names
+    assert split.bound_groups(base, first, second).merged == split.merge_groups(base, pairs)
+
+
+@settings(max_examples=200, deadline=None)
+@given(clip_lists(), st.data())
+def test_past_from_the_clips_columns_equals_past_from_the_clips(clips: list[split.Clip], data: Any) -> None:
+    """Past given build_clips' columns (group and base codes, eligibility, transcripts)
+    equals Past read from the clips one by one; columns of other clips are not used."""
+    clips = bound(clips, data)
+    ledger = data.draw(ledgers(clips))
+    group, group_names = split._codes([c.group for c in clips])
+    base, base_names = split._codes([c.base_group for c in clips])
+    none = np.zeros(len(clips))
+    columns = split.Columns(group, pa.array(group_names, pa.string()), none, none.astype(bool), none,
+                            none.astype(bool), none.astype(np.int64), none.astype(np.int64), [frozenset()],
+                            np.array([c.eligible for c in clips], bool), none.astype(bool), base, base_names,
+                            group_names, np.array([c.text is not None for c in clips], bool))
+    plain = split.Past.of(clips, ledger.clips)
+    for past in (split.Past.of(clips, ledger.clips, columns), split.Past.of(clips, ledger.clips, replace(
+            columns, group=group[:-1]) if clips else columns)):
+        for name in ("ids", "group_names", "base_names", "records", "part_names"):
+            assert getattr(past, name) == getattr(plain, name), name
+        for name in ("group", "base", "known", "held", "labelled", "part", "eligible", "transcribed"):
+            assert getattr(past, name).tolist() == getattr(plain, name).tolist(), name
 
 
 @settings(max_examples=200, deadline=None)

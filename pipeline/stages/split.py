@@ -41,7 +41,7 @@ from dataclasses import dataclass, field, replace
 from itertools import compress, repeat
 from operator import attrgetter, countOf
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 import pyarrow as pa
@@ -203,11 +203,23 @@ def merge_groups(base_groups: Sequence[str], pairs: Iterable[tuple[int, int]]) -
     return list(map(roots.__getitem__, base_groups))
 
 
+class Bound(NamedTuple):
+    """Groups bound by pairs (:func:`bound_groups`): each item's merged group, its code
+    and the merged groups by code; each item's base group code and the base groups by
+    code (both numbered in order of first appearance)."""
+
+    merged: list[str]
+    group: np.ndarray
+    group_names: list[str]
+    base: np.ndarray
+    base_names: list[str]
+
+
 def bound_groups(base_groups: list[str], first: np.ndarray, second: np.ndarray, *,
-                 unbound: np.ndarray | None = None) -> tuple[list[str], np.ndarray, list[str]]:
+                 unbound: np.ndarray | None = None) -> Bound:
     """:func:`merge_groups` of the items paired ``first[p]``, ``second[p]`` (but those
     ``unbound``), and the merged groups numbered in order of first appearance: each
-    item's merged group, its code, and the groups by code.
+    item's merged group, its code, and the groups by code (see :class:`Bound`).
 
     A pair within one group binds nothing (most pairs, when grouping by speaker): the
     pairs that bind are picked by codes, and bind the distinct pairs of groups they
@@ -218,9 +230,10 @@ def bound_groups(base_groups: list[str], first: np.ndarray, second: np.ndarray, 
 
     Examples
     --------
-    >>> bound_groups(["b", "c", "a", "d", "c"], np.array([0, 1, 3]), np.array([1, 2, 4]),
-    ...              unbound=np.array([False, False, False, True, False]))
-    (['a', 'a', 'a', 'd', 'a'], array([0, 0, 0, 1, 0]), ['a', 'd'])
+    >>> found = bound_groups(["b", "c", "a", "d", "c"], np.array([0, 1, 3]), np.array([1, 2, 4]),
+    ...                      unbound=np.array([False, False, False, True, False]))
+    >>> found.merged, found.group.tolist(), found.group_names
+    (['a', 'a', 'a', 'd', 'a'], [0, 0, 0, 1, 0], ['a', 'd'])
     """
     base_code, base_names = _codes(base_groups)
     first, second = np.asarray(first, np.int64), np.asarray(second, np.int64)
@@ -231,8 +244,9 @@ def bound_groups(base_groups: list[str], first: np.ndarray, second: np.ndarray, 
     joined = np.unique(base_code[first[binds]] * width + base_code[second[binds]])
     merged_names = merge_groups(base_names, zip((joined // width).tolist(), (joined % width).tolist(), strict=True))
     merged_code, names = _codes(merged_names)
-    return (list(map(merged_names.__getitem__, base_code.tolist())),
-            np.asarray(merged_code, np.int64)[base_code] if base_names else np.zeros(0, np.int64), names)
+    return Bound(list(map(merged_names.__getitem__, base_code.tolist())),
+                 np.asarray(merged_code, np.int64)[base_code] if base_names else np.zeros(0, np.int64), names,
+                 base_code, base_names)
 
 
 def match_tiers(old: Sequence[str], new: Sequence[str], *, seconds: Mapping[str, float]) -> dict[str, str]:
@@ -538,7 +552,9 @@ class Columns:
     ``k``), as arrays the subset manifests take rows from: the merged group (codes into
     ``group_names``), the speaking rate and its z-score (``rated``, ``scored``: False
     where the manifest says null), the best near-duplicate partner's row (-1 for none),
-    the flags (codes into ``flag_sets``), eligibility and whether the clip has phones."""
+    the flags (codes into ``flag_sets``), eligibility and whether the clip has phones;
+    the base group (codes into ``base_names``), the merged groups' names as a list, and
+    whether the clip has a transcript. Groups are numbered in order of first appearance."""
 
     group: np.ndarray
     group_names: pa.Array
@@ -551,6 +567,10 @@ class Columns:
     flag_sets: list[frozenset[str]]
     eligible: np.ndarray
     phoned: np.ndarray
+    base: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    base_names: list[str] = field(default_factory=list)
+    group_list: list[str] = field(default_factory=list)
+    transcribed: np.ndarray = field(default_factory=lambda: np.zeros(0, bool))
 
 
 def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None, unbound: Collection[str] = ()
@@ -577,7 +597,8 @@ def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None, unbou
     pairs, partner = find_duplicates(clip_ids, audio.column("audio_sha256"), near)
     base = {"speaker": speakers, "clip": clip_ids}.get(group_by) or audio.column("source_id").to_pylist()
     out = np.fromiter(map(set(unbound).__contains__, clip_ids), bool, count=len(clip_ids)) if unbound else None
-    merged, group, group_names = bound_groups(base, pairs.first, pairs.second, unbound=out)
+    bound = bound_groups(base, pairs.first, pairs.second, unbound=out)
+    merged = bound.merged
     measured = measure_gates(joined, phones, min_snr_db=qc.min_snr_db,
                              min_bandwidth_hz=qc.min_bandwidth_hz, rate_max_abs_z=qc.rate_max_abs_z,
                              rate_min_clips=qc.rate_min_clips, rate_min_spread=qc.rate_min_spread,
@@ -597,9 +618,10 @@ def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None, unbou
                      map(flag_sets.__getitem__, flag_codes.tolist()), phones,
                      _floats_or_none(measured.rates, measured.rated), _floats_or_none(measured.z, measured.scored),
                      partners.tolist(), measured.eligible.tolist()))
-    columns = Columns(group, pa.array(group_names, pa.string()), measured.rates, measured.rated, measured.z,
-                      measured.scored, partner, flag_codes, flag_sets, measured.eligible,
-                      np.fromiter(map(bool, phones), bool, count=len(phones)))
+    columns = Columns(bound.group, pa.array(bound.group_names, pa.string()), measured.rates, measured.rated,
+                      measured.z, measured.scored, partner, flag_codes, flag_sets, measured.eligible,
+                      np.fromiter(map(bool, phones), bool, count=len(phones)), bound.base, bound.base_names,
+                      bound.group_names, joined.text_rows >= 0)
     return clips, pairs, columns
 
 
@@ -689,10 +711,16 @@ class Past:
     transcribed: np.ndarray
 
     @classmethod
-    def of(cls, clips: Sequence[Clip], known: Mapping[str, ClipRecord]) -> Past:
+    def of(cls, clips: Sequence[Clip], known: Mapping[str, ClipRecord], columns: Columns | None = None) -> Past:
+        """``columns``, :func:`build_clips`'s of the same clips (every clip of it, in its
+        order), gives the group and base codes, eligibility and transcripts already read."""
         ids = list(map(_ID, clips))
-        group, group_names = _codes(list(map(_GROUP, clips)))
-        base, base_names = _codes(list(map(_BASE, clips)))
+        whole = columns is not None and columns.group.size == len(clips) and columns.transcribed.size == len(clips)
+        if whole:
+            group, group_names, base, base_names = columns.group, columns.group_list, columns.base, columns.base_names
+        else:
+            group, group_names = _codes(list(map(_GROUP, clips)))
+            base, base_names = _codes(list(map(_BASE, clips)))
         # map() over the dict's get with a default record runs in C: no None to test per clip.
         records = list(map(known.get, ids, repeat(_UNKNOWN)))
         # Records are shared (one per distinct ledger row text): each clip's subset and
@@ -704,12 +732,15 @@ class Past:
         part_of, part_names = _codes([distinct[r].part for r in record_ids])
         subsets, part = subset_of[record_code], part_of[record_code]
         code = {name: k for k, name in enumerate(subset_names)}
+        if whole:
+            eligible, transcribed = columns.eligible, columns.transcribed
+        else:
+            eligible = np.fromiter(map(_ELIGIBLE, clips), bool, count=len(clips))
+            transcribed = np.fromiter(map(operator.is_not, map(_TEXT, clips), repeat(None)), bool, count=len(clips))
         return cls(ids, group, group_names, base, base_names, records,
                    known=subsets != code.get("", -1), held=subsets == code.get(HELDOUT, -1),
                    labelled=subsets == code.get(LABELLED, -1), part=part, part_names=part_names,
-                   eligible=np.fromiter(map(_ELIGIBLE, clips), bool, count=len(clips)),
-                   transcribed=np.fromiter(map(operator.is_not, map(_TEXT, clips), repeat(None)), bool,
-                                           count=len(clips)))
+                   eligible=eligible, transcribed=transcribed)
 
     def any_by_group(self, mask: np.ndarray) -> np.ndarray:
         """Per group, whether any of its clips is in ``mask``."""
@@ -1007,10 +1038,11 @@ def _unscore(held: Sequence[Clip], labelled: Iterable[Clip], parts: Mapping[str,
 
 def assign(clips: Sequence[Clip], *, ledger: Ledger | None, seed: int, targets: Sequence[PartTarget],
            budgets: list[tuple[str, float]], method: str, text_overlap: str = "unscore",
-           balance: Balance | None = None) -> Assignment:
-    """Places for groups, subsets and parts for clips, tiers for labelled clips (see the module docstring)."""
+           balance: Balance | None = None, columns: Columns | None = None) -> Assignment:
+    """Places for groups, subsets and parts for clips, tiers for labelled clips (see the
+    module docstring). ``columns``: see :meth:`Past.of`."""
     balance = balance or Balance()
-    past = Past.of(clips, ledger.clips if ledger is not None else {})
+    past = Past.of(clips, ledger.clips if ledger is not None else {}, columns)
     facts = group_facts(clips, balance, past)
     places, straddling = _choose_places(past, ledger, facts, seed=seed, targets=targets, balance=balance)
     sides = {g: "training" if place == TRAINING else HELDOUT for g, place in places.items()}
@@ -1442,8 +1474,9 @@ def _run(ctx: StageContext) -> StageResult:
     use = _open_ledger(ctx, sources)
     ledger = use.ledger
     balance = read_balance(ctx)
+    # Kept clips are all the clips unless some were set aside: then Past reads its own codes.
     assignment = assign(kept, ledger=ledger, seed=cfg.seed, targets=targets, budgets=budgets,
-                        method=sc.selection, text_overlap=sc.text_overlap, balance=balance)
+                        method=sc.selection, text_overlap=sc.text_overlap, balance=balance, columns=columns)
 
     by_subset = _by_subset(kept, assignment.subset)
     tables = _subset_tables(ctx, by_subset, assignment, joined, columns)
