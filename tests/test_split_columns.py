@@ -20,7 +20,7 @@ from hypothesis import strategies as st
 
 from pipeline.core.names import HELDOUT, LABELLED, SUBSETS, UNLABELLED
 from pipeline.stages import split
-from pipeline.stages.heldout import GroupFacts
+from pipeline.stages.heldout import GroupFacts, PartTarget
 from pipeline.stages.ledger import ClipRecord, Ledger
 from pipeline.stages.prompts import prompt_key
 
@@ -364,3 +364,23 @@ def test_pair_rows_equal_one_row_per_pair(rows: list[tuple[float, bool]]) -> Non
 def test_shared_strings_equal_the_column_values(chunks: list[list[str | None]]) -> None:
     column = pa.chunked_array(chunks, pa.string())
     assert split._shared_strings(column) == column.to_pylist()
+
+
+@settings(max_examples=200, deadline=None)
+@given(clip_lists(), st.data())
+def test_places_read_prompts_only_when_a_group_is_ranked(clips: list[split.Clip], data: Any) -> None:
+    """Group facts without prompts equal the full ones but for the prompts, and the
+    places chosen from them (prompts read only when a group is ranked) equal the places
+    chosen from the full facts, with and without a ledger."""
+    clips = bound(clips, data)
+    ledger = data.draw(st.one_of(st.none(), ledgers(clips)))
+    past = split.Past.of(clips, ledger.clips if ledger is not None else {})
+    balance = split.Balance()
+    full = split.group_facts(clips, balance, past)
+    lean = split.group_facts(clips, balance, past, prompts=False)
+    assert {g: replace(f, prompts={}) for g, f in full.items()} == lean
+    targets = [PartTarget("dev", data.draw(st.sampled_from([0.0, 1.0, 3.0])), text_disjoint=data.draw(st.booleans())),
+               PartTarget("test", data.draw(st.sampled_from([0.5, 2.0, 8.0])))]
+    want = split._choose_places(past, ledger, full, seed=3, targets=targets, balance=balance)
+    got = split._choose_places(past, ledger, lean, seed=3, targets=targets, balance=balance, with_prompts=lambda: full)
+    assert got[:2] == want[:2]
