@@ -46,7 +46,7 @@ t0 = time.perf_counter()
 from pipeline.stages import audio
 from pipeline.core.config import build_config
 if sys.argv[1] == "imports-only":
-    import pipeline.signal.bandwidth, pipeline.signal.fingerprint, pipeline.signal.loudness, pipeline.signal.snr, soundfile, soxr, webrtcvad  # what the work imports
+    import pipeline.signal.bandwidth, pipeline.signal.fingerprint, pipeline.signal.loudness, pipeline.signal.snr, soundfile, soxr, _webrtcvad  # what the work imports
     print(json.dumps({"rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
     raise SystemExit
 row, source, out = json.loads(sys.argv[2]), sys.argv[3], sys.argv[4]

@@ -156,8 +156,11 @@ class VoiceActivityStream:
 
     def __init__(self, *, sample_rate: int, frame_ms: int, aggressiveness: int,
                  max_flatness: float = NOISE_FLATNESS, lead_in_ms: int = LEAD_IN_MS) -> None:
-        import _webrtcvad  # webrtcvad's extension (see _is_speech)
-        import webrtcvad
+        # webrtcvad's extension, not its Python module: importing that module looks up
+        # its distribution's version in the installed packages' metadata, which took
+        # 26-80 ms (load about 3), once per run, for a string never read. Its Vad class
+        # is these three calls.
+        import _webrtcvad
 
         self.frame_samples = frame_length(sample_rate=sample_rate, frame_ms=frame_ms)
         if aggressiveness not in (0, 1, 2, 3):
@@ -169,8 +172,10 @@ class VoiceActivityStream:
         self.sample_rate = sample_rate
         self.frame_ms = frame_ms
         self.max_flatness = max_flatness
-        self._vad = webrtcvad.Vad(aggressiveness)
-        self._process, self._handle = _webrtcvad.process, self._vad._vad
+        self._handle = _webrtcvad.create()
+        _webrtcvad.init(self._handle)
+        _webrtcvad.set_mode(self._handle, aggressiveness)
+        self._process = _webrtcvad.process
         # Whole frames of lead-in; the stream holds its input back until it has them.
         self._lead_in = ms_to_frames(lead_in_ms, frame_ms=frame_ms) * self.frame_samples
         self._primed = self._lead_in == 0

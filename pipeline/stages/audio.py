@@ -728,9 +728,9 @@ def warm_up(cfg: AudioConfig) -> None:
     Worker processes are forked from here, so they start with all of it in memory
     instead of each paying about 3 s of imports and table building per process.
     """
+    import _webrtcvad  # noqa: F401  (webrtcvad's extension: see pipeline.signal.vad)
     import soundfile  # noqa: F401
     import soxr  # noqa: F401
-    import webrtcvad  # noqa: F401
 
     # bandwidth: each file's LongTermPsd imports it; imported here, no worker does.
     from pipeline.signal import bandwidth, fingerprint, loudness, snr  # noqa: F401
