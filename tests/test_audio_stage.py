@@ -657,3 +657,24 @@ def test_a_changed_clip_in_a_copied_out_reconditions_its_source(first_run, raw: 
     assert rows_of(again) == rows_of(result)
     assert again.rejects == result.rejects
     assert clip.read_bytes() != bytes(data)  # written again
+
+
+def test_the_stats_of_the_clips_come_in_the_manifest_order(first_run, raw: Path, tmp_path: Path):
+    # StageResult.file_stats holds one row per clip, in the manifest's row order, so the
+    # runner's records take it whole (outputs_record.stat_table): a rebuild that reuses
+    # the stored outcomes and adds a fresh one included. Reference: os.lstat of each clip.
+    out, result = first_run
+    some = tmp_path / "some"
+    shutil.copytree(raw, some, copy_function=os.link)
+    (some / "ana" / "stereo44.wav").unlink()
+    copy = tmp_path / "out"
+    run_stage(some, copy)
+    os.link(raw / "ana" / "stereo44.wav", some / "ana" / "stereo44.wav")
+    for folder, res in ((out, result), (copy, run_stage(some, copy))):
+        table = res.manifests["stages/audio.parquet"][1]
+        stats = res.file_stats
+        assert stats.column("path").to_pylist() == table.column("audio_path").to_pylist()
+        for row in stats.to_pylist():
+            st = os.lstat(folder / row["path"])
+            assert (row["st_size"], row["st_mtime_ns"], row["st_ino"], row["st_mode"]) == \
+                (st.st_size, st.st_mtime_ns, st.st_ino, st.st_mode)

@@ -55,7 +55,8 @@ def stage_files(out: Path, stage: Stage) -> list[str]:
     """Every file the stage wrote: its manifests, rejects, summary and written files."""
     rels = [o.path for o in stage.outputs] + [names.stage_rejects(stage.name), names.stage_summary(stage.name)]
     if stage.written_files is not None:
-        rels += stage.written_files(out, read_manifest(out / stage.main_manifest))
+        written = stage.written_files(out, read_manifest(out / stage.main_manifest))
+        rels += written if isinstance(written, list) else written.to_pylist()
     return sorted(set(rels))
 
 

@@ -348,3 +348,27 @@ def test_a_stage_that_fails_leaves_the_records_of_those_before_it(
     monkeypatch.setattr(runner_module.Runner, "_write_result", original)
     records = runner_module.Runner(small_raw, out, load_config(None), stages=STAGES, workers=1).prepare()
     assert {r.name: r.ran for r in records} == {"ingest": True, "audio": False, "text": False, "split": True}
+
+
+def test_stats_handed_over_in_order_are_taken_whole_and_others_looked_up(tmp_path: Path) -> None:
+    # outputs_record.stat_table: stats a stage hands over for the last paths, in their
+    # order, are taken as they are; any other case (another order, a path twice, a path
+    # among the manifests too) goes through the look-up, whose record has each path once.
+    # Reference: the look-up itself, and os.stat for the files not handed over.
+    import pyarrow as pa
+
+    from pipeline.core import outputs_record
+
+    (tmp_path / "m.parquet").write_bytes(b"abc")
+    known = pa.table({"path": ["audio/a", "audio/b"], "st_size": [1, 2], "st_mtime_ns": [5, 6],
+                      "st_ino": pa.array([7, 8], pa.uint64())}, schema=outputs_record.SCHEMA)
+    st = os.stat(tmp_path / "m.parquet")
+    whole = outputs_record.stat_table(tmp_path, ["m.parquet", "audio/a", "audio/b"], known)
+    assert whole.to_pylist() == [*known.to_pylist(), {"path": "m.parquet", "st_size": st.st_size,
+                                                      "st_mtime_ns": st.st_mtime_ns, "st_ino": st.st_ino}]
+    looked_up = outputs_record.stat_table(tmp_path, ["m.parquet", "audio/b", "audio/a"], known)
+    assert sorted(looked_up.to_pylist(), key=str) == sorted(whole.to_pylist(), key=str)
+    twice = outputs_record.stat_table(tmp_path, ["audio/a", "audio/a", "audio/b"], known)
+    assert twice.column("path").to_pylist() == ["audio/a", "audio/b"]
+    assert outputs_record._given_last(pa.array(["audio/b", "audio/a", "audio/b"]), known) is None
+    assert outputs_record._given_last(pa.array(["m.parquet", "audio/a", "audio/b"]), known) is not None

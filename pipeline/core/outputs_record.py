@@ -47,7 +47,13 @@ def stat_table(out: Path, rels: list[str] | pa.Array, known: pa.Table | None = N
     (['b.flac', 'gone.txt', 'a.txt'], [7, None, 3])
     >>> import shutil; shutil.rmtree(out)
     """
-    rels = pc.unique(pa.array(rels, pa.string()) if isinstance(rels, list) else rels)
+    rels = pa.array(rels, pa.string()) if isinstance(rels, list) else rels
+    if isinstance(rels, pa.ChunkedArray):
+        rels = rels.combine_chunks()
+    given = _given_last(rels, known)
+    if given is not None:
+        return pa.concat_tables([given, _stat_now(out, rels.slice(0, len(rels) - given.num_rows).to_pylist())])
+    rels = pc.unique(rels)
     parts = []
     if known is not None and known.num_rows:
         known = known.select(SCHEMA.names).cast(SCHEMA)
@@ -58,6 +64,20 @@ def stat_table(out: Path, rels: list[str] | pa.Array, known: pa.Table | None = N
             rels = rels.filter(row.is_null())
     parts.append(_stat_now(out, rels.to_pylist()))
     return pa.concat_tables(parts)
+
+
+def _given_last(rels: pa.Array, known: pa.Table | None) -> pa.Table | None:
+    """``known`` (as :data:`SCHEMA`) when its paths are the last of ``rels``, in the same
+    order, and no path of ``rels`` is there twice: then the record is ``known`` followed
+    by the others stat'ed, as :func:`stat_table` would order it, found with one hash of
+    the paths instead of four (the audio stage's 101,000 clips, whose stats it hands
+    over in its manifest's order); else None."""
+    if known is None or not known.num_rows or len(rels) < known.num_rows:
+        return None
+    paths = known.column("path").combine_chunks().cast(pa.string())
+    if not rels.slice(len(rels) - known.num_rows).equals(paths) or pc.count_distinct(rels).as_py() != len(rels):
+        return None
+    return known.select(SCHEMA.names).cast(SCHEMA)
 
 
 def _stat_now(out: Path, rels: list[str]) -> pa.Table:

@@ -92,8 +92,9 @@ class Stage:
         decisions); the bytes join the input hash. The file itself must be in some
         stage's ``extra_inputs``, so the snapshot watches it.
     written_files : callable or None
-        ``written_files(out, table) -> list[str]``: files besides manifests the stage
-        wrote (paths relative to OUT, like its clips), given its main manifest's table.
+        ``written_files(out, table)``: files besides manifests the stage wrote (paths
+        relative to OUT, like its clips), given its main manifest's table: a list of
+        str, or an Arrow string column (no Python string per clip).
         The runner records their stat and reuses the stage only while they all match,
         and deletes those of a row it sets aside.
     reuse_note : callable or None
@@ -140,7 +141,7 @@ class Stage:
     inputs_after_run: bool = False
     extra_inputs: Callable[[StageContext], list[Path]] | None = None
     extra_digest: Callable[[StageContext], bytes] | None = None
-    written_files: Callable[[Path, pa.Table], list[str]] | None = None
+    written_files: Callable[[Path, pa.Table], list[str] | pa.Array | pa.ChunkedArray] | None = None
     reuse_note: Callable[[dict[str, Any]], str] | None = None
     prepare_driver: Callable[[Config], None] | None = None
     cleans_folder: str = ""

@@ -658,9 +658,11 @@ def _encode_and_write(job: AudioJob, pcm: np.ndarray, placed: dict[str, Any]) ->
     return audio_path, data, [st.st_size, st.st_mtime_ns, st.st_ino, st.st_mode]
 
 
-def written_files(out: Path, table: Any) -> list[str]:
-    """The clip files the audio manifest names (see pipeline.core.stage)."""
-    return [str(p) for p in table.column("audio_path").to_pylist()]
+def written_files(out: Path, table: Any) -> Any:
+    """The clip files the audio manifest names, its ``audio_path`` column (see
+    pipeline.core.stage): no Python string per clip (a list of the 101,000 of a
+    100,000-source rebuild cost 0.09 to 0.11 s of the runner's records)."""
+    return table.column("audio_path")
 
 
 def remove_orphans(listed: Any, keep: Any, *, base: Path) -> int:
@@ -955,6 +957,39 @@ def _condition_all(work: _Conditioning, unknown: list[int]) -> list[int]:
     return sorted(unknown + stale[0])
 
 
+def _sorted_by_clip(table: Any) -> tuple[Any, Any]:
+    """The manifest's rows (``table``, as they came: the reused, then the fresh) sorted by
+    ``clip_id`` (a stable sort and one take, as ``Table.sort_by`` does), and the order
+    taken (for :func:`_stats_in_order`)."""
+    import pyarrow.compute as pc  # here: the workers never need it
+
+    order = pc.sort_indices(table, sort_keys=[("clip_id", "ascending")])
+    return table.take(order).combine_chunks(), order
+
+
+def _stats_in_order(stats: Any, paths: Any, order: Any) -> Any:
+    """The stat of each clip file (``stats``: OutcomeCache.file_stats, one row per clip
+    row as the rows came, whose ``audio_path`` is ``paths``) in the manifest's order
+    (``order``: :func:`_sorted_by_clip`'s), so that the runner's records take them whole
+    instead of looking each path up (see ``outputs_record.stat_table``). Stats in
+    another order (not expected) are left as they are: the runner looks them up.
+
+    Examples
+    --------
+    >>> import pyarrow as pa
+    >>> rows, order = _sorted_by_clip(pa.table({"clip_id": ["b", "a", "c"], "audio_path": ["b.f", "a.f", "c.f"]}))
+    >>> stats = pa.table({"path": ["b.f", "a.f", "c.f"], "st_size": [2, 1, 3]})
+    >>> _stats_in_order(stats, pa.array(["b.f", "a.f", "c.f"]), order).column("st_size").to_pylist()
+    [1, 2, 3]
+    >>> _stats_in_order(stats, pa.array(["a.f", "b.f", "c.f"]), order).column("st_size").to_pylist()
+    [2, 1, 3]
+    """
+    paths = paths.combine_chunks() if hasattr(paths, "combine_chunks") else paths
+    if stats.num_rows != len(paths) or not stats.column("path").combine_chunks().equals(paths):
+        return stats
+    return stats.take(order).combine_chunks()
+
+
 def _in_background(work: Callable[[], None]) -> Callable[[], None]:
     """Start ``work`` in a thread; the function that waits for it to end (and raises
     what it raised). For work that waits on the disk rather than the processor (OUT's
@@ -1012,7 +1047,8 @@ def run(ctx: StageContext) -> StageResult:
     written = _in_background(save_and_flush)
     ctx.log.info("audio: %d files processed, %d reused from cache", len(todo), len(keys) - len(todo))
 
-    table = work.builder.table(sort_by="clip_id")
+    arrived = work.builder.table()
+    table, order = _sorted_by_clip(arrived)
     rejects = [r for i in sorted(work.rejects_at) for r in work.rejects_at[i]]
     if work.real:
         rejects = _scrub_rejects(rejects, work.real, raw=raw)
@@ -1027,8 +1063,10 @@ def run(ctx: StageContext) -> StageResult:
     run_stats = {"sources_processed": len(todo), "sources_reused": len(keys) - len(todo),
                  "orphans_removed": removed}
     written()
+    # After the save: file_stats writes the outcomes still pending, as the save does.
+    file_stats = _stats_in_order(cache.file_stats(), arrived.column("audio_path"), order)
     return StageResult(manifests={stage_manifest(NAME): (NAME, table)}, rejects=rejects, summary=summary,
-                       run_stats=run_stats, file_stats=cache.file_stats(), listed_folder=AUDIO_DIR)
+                       run_stats=run_stats, file_stats=file_stats, listed_folder=AUDIO_DIR)
 
 
 STAGE = Stage(
