@@ -433,6 +433,18 @@ def test_a_rebuild_that_reused_everything_adds_its_outcomes_as_a_part(first_run,
     assert rows_of(stale) == rows_of(grown)
 
 
+def _built_without_one_source(raw: Path, tmp_path: Path) -> tuple[Path, Path]:
+    """A copy of RAW (hard links) and an OUT built from it while one source was missing;
+    the source is back in the copy, so the next run of it has one new source."""
+    some = tmp_path / "some"
+    shutil.copytree(raw, some, copy_function=os.link)
+    (some / "ana" / "stereo44.wav").unlink()
+    copy = tmp_path / "out"
+    run_stage(some, copy)
+    os.link(raw / "ana" / "stereo44.wav", some / "ana" / "stereo44.wav")
+    return some, copy
+
+
 def test_new_sources_start_on_the_workers_before_the_clips_are_listed(first_run, raw: Path, tmp_path: Path,
                                                                      monkeypatch):
     # A source with no stored outcome is conditioned whatever OUT/audio holds, so its work
@@ -440,12 +452,7 @@ def test_new_sources_start_on_the_workers_before_the_clips_are_listed(first_run,
     # runner's other work after them, once); a source whose clip file changed is found by
     # that check and conditioned after it. The rows are those of a fresh run.
     out, result = first_run
-    some = tmp_path / "some"
-    shutil.copytree(raw, some, copy_function=os.link)
-    (some / "ana" / "stereo44.wav").unlink()
-    copy = tmp_path / "out"
-    run_stage(some, copy)
-    os.link(raw / "ana" / "stereo44.wav", some / "ana" / "stereo44.wav")
+    some, copy = _built_without_one_source(raw, tmp_path)
     touched = next(r for r in rows_of(result) if r["source_path"] != "ana/stereo44.wav")
     clip = copy / touched["audio_path"]
     data = clip.read_bytes()
@@ -664,12 +671,7 @@ def test_the_stats_of_the_clips_come_in_the_manifest_order(first_run, raw: Path,
     # runner's records take it whole (outputs_record.stat_table): a rebuild that reuses
     # the stored outcomes and adds a fresh one included. Reference: os.lstat of each clip.
     out, result = first_run
-    some = tmp_path / "some"
-    shutil.copytree(raw, some, copy_function=os.link)
-    (some / "ana" / "stereo44.wav").unlink()
-    copy = tmp_path / "out"
-    run_stage(some, copy)
-    os.link(raw / "ana" / "stereo44.wav", some / "ana" / "stereo44.wav")
+    some, copy = _built_without_one_source(raw, tmp_path)
     for folder, res in ((out, result), (copy, run_stage(some, copy))):
         table = res.manifests["stages/audio.parquet"][1]
         stats = res.file_stats
