@@ -567,10 +567,10 @@ class Columns:
     flag_sets: list[frozenset[str]]
     eligible: np.ndarray
     phoned: np.ndarray
-    base: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
-    base_names: list[str] = field(default_factory=list)
-    group_list: list[str] = field(default_factory=list)
-    transcribed: np.ndarray = field(default_factory=lambda: np.zeros(0, bool))
+    base: np.ndarray
+    base_names: list[str]
+    group_list: list[str]
+    transcribed: np.ndarray
 
 
 def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None, unbound: Collection[str] = ()
