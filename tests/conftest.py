@@ -8,6 +8,7 @@ import os
 from pathlib import Path
 
 import numpy as np
+import pyarrow as pa
 import pytest
 from hypothesis import settings
 
@@ -89,6 +90,22 @@ def tree_hash(root: Path) -> dict[str, str]:
             rel = str(p.relative_to(root))
             out[rel] = ("link:" + os.readlink(p)) if p.is_symlink() else hashlib.sha256(p.read_bytes()).hexdigest()
     return out
+
+
+def cache_table(path: Path) -> pa.Table:
+    """A mapped cache table (``TableCache(mapped=True)``, an Arrow IPC file) as written,
+    its scope in the schema's metadata."""
+    return pa.ipc.open_file(pa.py_buffer(path.read_bytes())).read_all()
+
+
+def rewrite_cache_table(path: Path, table: pa.Table) -> None:
+    """Replace the mapped cache table at ``path`` by ``table``, under the scope it was
+    written with and with its digest beside it, as ``TableCache.save`` writes one."""
+    from pipeline.core.cache import TableCache
+
+    scope = cache_table(path).schema.metadata[b"loam_cache_scope"].decode()
+    TableCache(path.parent.parent, path.parent.name, path.stem, scope=scope, mapped=True).save(
+        table.replace_schema_metadata(None))
 
 
 @pytest.fixture

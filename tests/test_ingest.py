@@ -16,6 +16,7 @@ import pytest
 from pipeline.core.config import build_config
 from pipeline.core.runner import Runner
 from pipeline.stages import STAGES, ingest
+from tests.conftest import cache_table
 
 META = {"ingest": {"metadata": "meta.csv"}}
 
@@ -482,8 +483,8 @@ def test_probe_cache_follows_the_files(small_raw: Path, tmp_path: Path, caplog: 
         rows, _ = run_ingest(small_raw, out)
     found = int(re.search(r"ingest: (\d+) files probed, 0 reused", caplog.text).group(1))
     caplog.clear()
-    cache = out / "cache" / "ingest" / "probes.parquet"
-    cached = set(pq.read_table(cache).column("path").to_pylist())
+    cache = out / "cache" / "ingest" / "probes.arrow"
+    cached = set(cache_table(cache).column("path").to_pylist())
     assert {r["source_path"] for r in rows} <= cached
     # A file rewritten with other bytes of the same size is probed again (its mtime
     # moved); a file removed leaves the cache; the rest is reused.
@@ -499,9 +500,9 @@ def test_probe_cache_follows_the_files(small_raw: Path, tmp_path: Path, caplog: 
     assert f"ingest: 1 files probed, {found - 2} reused from cache" in caplog.text
     again = {r["source_path"]: r for r in rows2}
     assert again[changed["source_path"]]["sha256"] == hashlib.sha256(bytes(data)).hexdigest()  # hashlib reference
-    assert gone["source_path"] not in set(pq.read_table(cache).column("path").to_pylist())
+    assert gone["source_path"] not in set(cache_table(cache).column("path").to_pylist())
     # A damaged cache is only a miss: everything is probed again, to the same rows.
-    cache.write_bytes(b"not parquet")
+    cache.write_bytes(b"not an Arrow file")
     rows3, _ = run_ingest(small_raw, out)
     assert rows3 == rows2
 
@@ -511,7 +512,7 @@ def test_sidecar_readings_are_reused_until_the_sidecar_changes(small_raw: Path, 
     rows, _ = run_ingest(small_raw, out)
     row = next(r for r in rows if r["transcript_origin"] == "sidecar")
     sidecar = small_raw / (row["source_path"].rsplit(".", 1)[0] + ".txt")
-    cached = pq.read_table(out / "cache" / "ingest" / "sidecars.parquet").to_pylist()
+    cached = cache_table(out / "cache" / "ingest" / "sidecars.arrow").to_pylist()
     assert {"path": sidecar.relative_to(small_raw).as_posix(), "text": row["transcript"]}.items() <= next(
         c for c in cached if c["path"] == sidecar.relative_to(small_raw).as_posix()).items()
     # Same length, other words: the stat changes, so the sidecar is read again.

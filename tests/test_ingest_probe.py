@@ -17,6 +17,7 @@ from pipeline.core.config import build_config
 from pipeline.core.parallel import batches
 from pipeline.core.runner import Runner
 from pipeline.stages import STAGES
+from tests.conftest import cache_table, rewrite_cache_table
 from tests.test_ingest_rows import run, uncached, write_wav
 from tests.test_worker_deaths import CRASHING, probe_crashing_on_one_file
 
@@ -114,18 +115,46 @@ def test_a_cached_hash_that_is_not_the_files_is_probed_again(tmp_path: Path, cap
     raw = make_raw(tmp_path / "raw", 12)
     out = tmp_path / "out"
     run(raw, out)
-    cache = out / "cache" / "ingest" / "probes.parquet"
-    table = pq.read_table(cache)
+    cache = out / "cache" / "ingest" / "probes.arrow"
+    table = cache_table(cache)
     sha = table.column("sha256").to_pylist()
     sha[3] = "0" * 64
     table = table.set_column(table.schema.get_field_index("sha256"), "sha256", pa.array(sha))
-    pq.write_table(table, cache)  # the scope stays in the schema's metadata
+    rewrite_cache_table(cache, table)  # under the scope and with the digest it had: read as written
     path = raw / table.column("path")[3].as_py()
     replace_keeping_size_and_time(path, path.read_bytes())
     with caplog.at_level(logging.INFO, logger="loam"):
         result = run(raw, out)
     assert probed(caplog) == (1, 11)
     assert result == uncached(raw, tmp_path)
+
+
+def test_the_parquet_probe_table_of_an_older_layout_serves_once(tmp_path: Path,
+                                                                 caplog: pytest.LogCaptureFixture) -> None:
+    """Probes an older Loam kept as Parquet (a table and a part, same scope) stand: the
+    first run with mapped tables probes only what they lack, then writes the mapped
+    table and removes the Parquet files."""
+    from pipeline.core.cache import TableCache
+
+    raw = make_raw(tmp_path / "raw", 12)
+    out = tmp_path / "out"
+    run(raw, out)
+    folder = out / "cache" / "ingest"
+    table = cache_table(folder / "probes.arrow")
+    older = TableCache(out / "cache", "ingest", "probes", scope=table.schema.metadata[b"loam_cache_scope"].decode())
+    older.save(table.slice(0, 9).replace_schema_metadata(None))
+    older.append(table.slice(9, 2).replace_schema_metadata(None))  # the last file's probe is not there
+    for name in ("probes.arrow", "probes.arrow.sha256"):
+        (folder / name).unlink()
+    with caplog.at_level(logging.INFO, logger="loam"):
+        result = run(raw, out)
+    assert probed(caplog) == (1, 11)
+    assert result == uncached(raw, tmp_path)
+    assert sorted(p.name for p in folder.glob("probes*")) == ["probes.arrow", "probes.arrow.sha256"]
+    caplog.clear()
+    with caplog.at_level(logging.INFO, logger="loam"):
+        run(raw, out)
+    assert probed(caplog) == (0, 12)
 
 
 def test_flat_folder_is_the_one_folder_of_every_path() -> None:

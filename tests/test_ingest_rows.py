@@ -20,8 +20,9 @@ from pipeline.core import snapshot
 from pipeline.core.config import build_config
 from pipeline.core.runner import Runner
 from pipeline.stages import STAGES, ingest, ingest_rows
+from tests.conftest import cache_table, rewrite_cache_table
 
-ROWS = Path("cache") / "ingest" / "rows.parquet"
+ROWS = Path("cache") / "ingest" / "rows.arrow"
 
 
 def write_wav(path: Path, *, seed: int, frames: int = 800) -> None:
@@ -130,8 +131,7 @@ def test_a_row_recorded_for_other_inputs_is_not_used(raw: Path, tmp_path: Path,
     whatever it says."""
     out = tmp_path / "out"
     expected = run(raw, out)
-    table = pq.read_table(out / ROWS)
-    meta = table.schema.metadata
+    table = cache_table(out / ROWS)
     table = table.set_column(table.schema.get_field_index("speaker"), "speaker",
                              pa.array(["someone-else"] * table.num_rows))
     sha = table.column("sha256").to_pylist()
@@ -141,7 +141,7 @@ def test_a_row_recorded_for_other_inputs_is_not_used(raw: Path, tmp_path: Path,
     size[with_sidecar] += 1
     table = table.set_column(table.schema.get_field_index("sha256"), "sha256", pa.array(sha))
     table = table.set_column(table.schema.get_field_index("sidecar_size"), "sidecar_size", pa.array(size, pa.int64()))
-    pq.write_table(table.replace_schema_metadata(meta), out / ROWS)
+    rewrite_cache_table(out / ROWS, table)
     with caplog.at_level(logging.INFO, logger="loam"):
         rows, _ = run(raw, out)
     assert reused(caplog) == 10
@@ -183,8 +183,8 @@ def test_fresh_rows_go_in_a_part_and_the_latest_wins(raw: Path, tmp_path: Path,
         assert by_path["cyd/take20.wav"]["transcript"] == words
         assert by_path["cyd/take21.wav"]["sha256"] == hashlib.sha256(audio.read_bytes()).hexdigest()  # hashlib reference
     for name in ("rows", "probes"):
-        assert sorted(p.name for p in (out / ROWS).parent.glob(f"{name}*.parquet")) == [
-            f"{name}.parquet", f"{name}.part-000000.parquet", f"{name}.part-000001.parquet"]
+        assert sorted(p.name for p in (out / ROWS).parent.glob(f"{name}*.arrow")) == [
+            f"{name}.arrow", f"{name}.part-000000.arrow", f"{name}.part-000001.arrow"]
     with caplog.at_level(logging.INFO, logger="loam"):
         assert run(raw, out) == (rows, rejects)  # the parts' rows serve: nothing probed or followed again
         assert "ingest: 0 files probed, 40 reused from cache" in caplog.text

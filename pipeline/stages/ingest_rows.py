@@ -46,7 +46,7 @@ def rows_cache(ctx: StageContext, *, rule: tuple[str | None, str]) -> TableCache
     code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
     scope = cache_key("rows", code, ctx.config.section("ingest"), *rule)
     return TableCache(ctx.cache_dir, NAME, "rows", scope=scope,
-                      enabled=ctx.use_cache and not ctx.config.privacy.pseudonymise)
+                      enabled=ctx.use_cache and not ctx.config.privacy.pseudonymise, mapped=True)
 
 
 def key_columns(paths: Sequence[str] | pa.Array, sha256: pa.ChunkedArray, metadata: Sequence[str | None] | None,
