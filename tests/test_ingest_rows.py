@@ -238,10 +238,36 @@ def test_a_changed_metadata_row_misses(raw: Path, tmp_path: Path, caplog: pytest
 def test_sidecars_paired_in_arrow_as_one_by_one() -> None:
     paths = ["a/x.wav", "a/x.y.flac", "a/y.wav", "b.c/z.ogg", "é/ü.mp3", "top.wav", "a/.h.wav"]
     sidecars = {"a/x.txt", "a/x.TXT", "a/x.y.txt", "b.c/z.txt", "b.txt", "é/ü.Txt", "top.txt", "a/.h.txt", "a/y/x.txt"}
-    arrow = ingest.pair_sidecars(paths, sidecars, columnar=True)
-    python = ingest.pair_sidecars(paths, sidecars, columnar=False)
-    assert arrow[:2] == python[:2] and arrow[2].tolist() == python[2].tolist()
+    arrow = paired_as_lists(ingest.pair_sidecars(paths, sidecars, columnar=True))
+    python = paired_as_lists(ingest.pair_sidecars(paths, sidecars, columnar=False))
+    assert arrow == python
     assert arrow[0] == ["a/x.TXT", "a/x.y.txt", None, "b.c/z.txt", "é/ü.Txt", "top.txt", "a/.h.txt"]
+
+
+def paired_as_lists(paired: tuple) -> tuple[list, list, list]:
+    return paired[0].to_pylist(), paired[1].to_pylist(), paired[2].tolist()
+
+
+def test_sidecars_paired_in_arrow_as_one_by_one_on_random_names() -> None:
+    """Random dumps: stems shared or not, extensions in any case, dots in folders and
+    stems, names outside ASCII; the sidecars given sorted in Arrow (as the listing gives
+    them) or as a set. The one-by-one pairing (a dict of stems) is the reference."""
+    rng = np.random.default_rng(18)
+    parts = ["a", "b.c", "é", "x.y", ".h", "ü", "k"]
+    for _ in range(300):
+        def name(extension: str) -> str:
+            folders = "/".join(rng.choice(parts, size=rng.integers(0, 3)))
+            stem = "".join(rng.choice(parts, size=rng.integers(1, 3)))
+            return f"{folders}/{stem}.{extension}".lstrip("/")
+
+        paths = sorted({name(str(rng.choice(["wav", "WAV", "flac", "Mp3"]))) for _ in range(rng.integers(0, 12))})
+        sidecars = {name(str(rng.choice(["txt", "TXT", "Txt"]))) for _ in range(rng.integers(0, 12))}
+        sidecars |= {p[:p.rfind(".")] + "." + str(rng.choice(["txt", "TXT"])) for p in paths if rng.random() < 0.5}
+        python = paired_as_lists(ingest.pair_sidecars(paths, sidecars, columnar=False))
+        assert paired_as_lists(ingest.pair_sidecars(paths, sidecars, columnar=True)) == python
+        given = pa.array(sorted(sidecars), pa.string())
+        assert paired_as_lists(ingest.pair_sidecars(paths, sidecars, columnar=True, names=pa.array(paths, pa.string()),
+                                                    sorted_sidecars=given)) == python
 
 
 def test_the_probes_follow_the_probe_code_alone(raw: Path, tmp_path: Path,

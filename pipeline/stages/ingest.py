@@ -100,8 +100,8 @@ class Scan:
     sidecars: set[str]  # relative paths of sidecar transcripts
     links: set[str]  # the relative paths among those that are symbolic links
     rejects: list[dict[str, Any]]  # links that leave RAW, names that are not UTF-8
-    # From the run's listing (scan_listing): the sidecars' paths as Arrow strings, with
-    # their size, mtime_ns and inode row for row (None: take them from os.stat).
+    # From the run's listing (scan_listing): the sidecars' paths as Arrow strings, sorted,
+    # with their size, mtime_ns and inode row for row (None: take them from os.stat).
     sidecar_listing: tuple[Any, np.ndarray] | None = None
     # The audio paths as Arrow strings (scan_listing has them; None: build them from ``audio``).
     audio_array: Any = None
@@ -212,11 +212,12 @@ def scan_listing(listing: Any, extensions: tuple[str, ...], sidecar_extension: s
         at = at[np.asarray(pc.sort_indices(arr.take(pa.array(at))), dtype=np.int64)]
         audio_array = arr.take(pa.array(at))
         paths = audio_array.to_pylist()
-        side_at = pa.array(np.flatnonzero(sidecar))
-        sidecar_names = arr.take(side_at)
+        side_at = np.flatnonzero(sidecar)
+        side_at = side_at[np.asarray(pc.sort_indices(arr.take(pa.array(side_at))), dtype=np.int64)]
+        sidecar_names = arr.take(pa.array(side_at))
         sidecars = set(sidecar_names.to_pylist())
     stat = values[at]
-    found = Scan(paths, sidecars, set(), [], (sidecar_names, values[np.asarray(side_at, dtype=np.int64)]), audio_array)
+    found = Scan(paths, sidecars, set(), [], (sidecar_names, values[side_at]), audio_array)
     return found, (stat[:, 0].copy(), stat[:, 1].copy(), stat[:, 2].astype(np.uint64), np.ones(len(at), dtype=bool))
 
 
@@ -290,15 +291,39 @@ def _reusable(previous: Any, paths: list[str], stat: tuple[np.ndarray, ...], *, 
     return row, hit & statted & same_inode, hit & statted & ~same_inode
 
 
+@dataclass(frozen=True)
+class Probes:
+    """Each file's probe result, in the order of the paths: row ``at[i]`` of ``table``
+    (the probe cache's columns: the rows it held, then this run's). The rows are taken
+    only for the columns and files asked for: at 100,000 files, a take of every column
+    of every row, as a table in path order, cost more than the cache's whole load."""
+
+    table: Any
+    at: np.ndarray
+
+    def column(self, name: str) -> Any:
+        """Column ``name`` for every file, in order."""
+        import pyarrow as pa
+
+        with pandas_left_unloaded():
+            return self.table.column(name).take(pa.array(self.at))
+
+    def of(self, files: np.ndarray) -> Any:
+        """The rows of the files at indices ``files``, in that order, as a table."""
+        import pyarrow as pa
+
+        with pandas_left_unloaded():
+            return self.table.take(pa.array(self.at[files]))
+
+
 def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.ndarray, ...] | None = None, *,
-               names: Any = None, meanwhile: Callable[[], None] | None = None) -> Any:
-    """Probe results for ``paths`` as a table in their order (the probe cache's columns),
-    reusing earlier results for files whose size, modification time and inode are
+               names: Any = None, meanwhile: Callable[[], None] | None = None) -> Probes:
+    """Probe results for ``paths`` (:class:`Probes`, the probe cache's columns), reusing earlier results for files whose size, modification time and inode are
     unchanged (hashing is most of ingest's cost), and for files of unchanged size and
     modification time whose bytes still hash to the cached hash (a moved or copied RAW
     gives every file a new inode: such a file costs its hash, not its probe).
 
-    The results live in one table (``OUT/cache/ingest/probes.parquet``), read once and
+    The results live in one table (``OUT/cache/ingest/probes.arrow``), read once and
     joined to this run's listing in Arrow: a file reused costs no Python work of its own;
     only the new and changed files are probed, in workers (:func:`_probe_fresh`, which
     calls ``meanwhile`` while they run).
@@ -333,21 +358,22 @@ def _probe_all(ctx: StageContext, raw: Path, paths: list[str], stat: tuple[np.nd
     fresh = _probe_fresh(ctx, jobs, [(int(size[i]) if statted[i] else 0) for i in todo], remember,
                          meanwhile=meanwhile)
     reused = np.flatnonzero(hit)
-    table = probe_table([(paths[i], stat_of(i), res) for i, res in zip(todo, fresh, strict=True)])
+    probes = Probes(probe_table([(paths[i], stat_of(i), res) for i, res in zip(todo, fresh, strict=True)]),
+                    np.arange(len(paths)))
     if previous is not None and len(reused):
-        # One take in path order from the cached rows followed by the fresh ones.
+        # The cached rows followed by the fresh ones.
         at = np.empty(len(paths), dtype=np.int64)
         at[reused] = row[reused]
         at[todo] = previous.num_rows + np.arange(len(todo))
         with pandas_left_unloaded():
-            table = pa.concat_tables([previous.cast(probe_schema()), table]).take(pa.array(at))
-    _save_probes(cache, table, pending, stored=stored, used=len(reused) + len(confirmed))
+            probes = Probes(pa.concat_tables([previous.cast(probe_schema()), probes.table]), at)
+    _save_probes(cache, probes, pending, stored=stored, used=len(reused) + len(confirmed))
     if known:
         ctx.log.info("ingest: %d files of unchanged size and time but a new inode (RAW moved or copied?) hashed "
                      "again: %d hold the bytes cached for them", len(known), len(confirmed))
     ctx.log.info("ingest: %d files probed, %d reused from cache", len(todo) - len(confirmed),
                  len(reused) + len(confirmed))
-    return table
+    return probes
 
 
 def _probe_cache(ctx: StageContext) -> tuple[TableCache, Any, int]:
@@ -382,14 +408,15 @@ def _cached_hashes(previous: Any, row: np.ndarray, moved: np.ndarray) -> dict[in
     return dict(zip(at.tolist(), previous.column("sha256").take(pa.array(row[at])).to_pylist(), strict=True))
 
 
-def _save_probes(cache: TableCache, table: Any, pending: list[Any], *, stored: int, used: int) -> None:
-    """Rewrite the probe cache from this run's ``table`` when due (TableCache.compaction_due),
+def _save_probes(cache: TableCache, probes: Probes, pending: list[Any], *, stored: int, used: int) -> None:
+    """Rewrite the probe cache from this run's ``probes`` when due (TableCache.compaction_due),
     else add the fresh results not yet written (``pending``) as a part."""
     import pyarrow as pa
     import pyarrow.compute as pc
 
     if cache.compaction_due(stored=stored, used=used):
         # The rewritten table holds this run's files only: what left RAW leaves the cache.
+        table = probes.of(np.arange(len(probes.at)))
         with pandas_left_unloaded():
             uncached = pc.fill_null(pc.is_in(table.column("error_reason"), value_set=pa.array(UNCACHED)), False)
         cache.save(table.filter(pc.and_(pc.is_valid(table.column("st_size")), pc.invert(uncached))))
@@ -447,49 +474,46 @@ SidecarRead = tuple[str | None, tuple[str, str, str] | None]
 
 @dataclass
 class Sidecars:
-    """The sidecars a run pairs (``needed``, sorted), their stats as arrays (``statted``
-    False for a link or a sidecar that could not be stat'ed) and what ``read_sidecar``
-    gives for each: read this run (``fresh``) or taken on demand from the cache table's
-    row ``row[i]`` where ``hit[i]``."""
+    """The sidecars a run pairs (``needed``, sorted Arrow strings), their stats as arrays
+    (``statted`` False for a link or a sidecar that could not be stat'ed) and what
+    ``read_sidecar`` gives for each: read this run (``fresh``, by index in ``needed``) or
+    taken on demand from the cache table's row ``row[i]`` where ``hit[i]``."""
 
-    needed: list[str]
+    needed: Any
     stat: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]
     hit: np.ndarray
     row: np.ndarray
     table: Any
-    fresh: dict[str, SidecarRead]
-    index: dict[str, int]
+    fresh: dict[int, SidecarRead]
 
-    def get(self, rel: str, default: SidecarRead | None = None) -> SidecarRead | None:
-        """The reading of sidecar ``rel`` (``default`` for one not needed)."""
-        if rel in self.fresh:
-            return self.fresh[rel]
-        i = self.index.get(rel)
-        if i is None or not self.hit[i]:
-            return default
+    def get(self, i: int) -> SidecarRead | None:
+        """The reading of sidecar ``needed[i]`` (None for ``i`` -1: no sidecar)."""
+        if i < 0:
+            return None
+        if i in self.fresh:
+            return self.fresh[i]
         text, reason, sentence, fix = (self.table.column(name)[int(self.row[i])].as_py()
                                        for name in ("text", "reason", "sentence", "fix"))
         return text, None if reason is None else (reason, sentence, fix)
 
 
-def _listed_stats(paths: list[str], listing: tuple[Any, np.ndarray]) -> tuple[np.ndarray, ...]:
-    """What :func:`_stats` gives for ``paths``, looked up in Arrow in a listing of
-    ``(paths, stats)`` (``Scan.sidecar_listing``) instead of a dict per path."""
-    import pyarrow as pa
+def _listed_stats(paths: Any, listing: tuple[Any, np.ndarray]) -> tuple[np.ndarray, ...]:
+    """What :func:`_stats` gives for ``paths`` (Arrow strings), looked up in Arrow in a
+    listing of ``(paths, stats)`` (``Scan.sidecar_listing``) instead of a dict per path."""
     import pyarrow.compute as pc
 
     listed, values = listing
     with pandas_left_unloaded():
-        at = np.asarray(pc.index_in(pa.array(paths, pa.string()), value_set=listed).fill_null(-1), dtype=np.int64)
+        at = np.asarray(pc.index_in(paths, value_set=listed).fill_null(-1), dtype=np.int64)
     found = at >= 0
     taken = values[np.maximum(at, 0)] if len(values) else np.zeros((len(paths), 3), dtype=np.int64)
     size = np.where(found, taken[:, 0], -1)
     return size, np.where(found, taken[:, 1], -1), np.where(found, taken[:, 2], 0).astype(np.uint64), found
 
 
-def _read_sidecars(ctx: StageContext, needed: list[str], links: set[str],
+def _read_sidecars(ctx: StageContext, needed: Any, links: set[str],
                    listing: tuple[Any, np.ndarray] | None = None) -> Sidecars:
-    """What ``read_sidecar`` gives for each sidecar in ``needed``, reusing the last run's
+    """What ``read_sidecar`` gives for each sidecar in ``needed`` (Arrow strings), reusing the last run's
     reading of a sidecar whose size, mtime and inode are unchanged (a ``stat`` instead
     of an open and a read: reading sidecars took a third of a 20,000-file rebuild's
     ingest), matched in Arrow like the probes. Links are always read (where they lead is
@@ -502,23 +526,29 @@ def _read_sidecars(ctx: StageContext, needed: list[str], links: set[str],
     cache = TableCache(ctx.cache_dir, NAME, "sidecars", scope=cache_key("sidecar", code, cfg.transcript_encoding),
                        enabled=ctx.use_cache, mapped=True)
     table = cache.load()
-    unlinked = [rel for rel in needed if rel not in links] if links else needed
-    stat = (_listed_stats(unlinked, listing) if listing is not None
-            else _stats(os.fspath(ctx.raw), unlinked, ctx.raw_stats))
-    if len(unlinked) != len(needed):  # links: no stat, read again every run
-        at = np.array([i for i, rel in enumerate(needed) if rel not in links], dtype=np.int64)
-        full = tuple(np.zeros(len(needed), dtype=a.dtype) for a in stat)
-        for column, values in zip(full, stat, strict=True):
-            column[at] = values
-        stat = full  # type: ignore[assignment]
-    row, hit, _ = _reusable(table, needed, stat)
-    fresh: dict[str, SidecarRead] = {}
+    stat = _listed_stats(needed, listing) if listing is not None else _walked_stats(ctx, needed.to_pylist(), links)
+    row, hit, _ = _reusable(table, needed, stat, names=needed)
+    fresh: dict[int, SidecarRead] = {}
     for i in np.flatnonzero(~hit).tolist():
-        rel = needed[i]
-        fresh[rel] = read_sidecar(ctx.raw, rel, encoding=cfg.transcript_encoding, link=rel in links)
-    found = Sidecars(needed, stat, hit, row, table, fresh, {rel: i for i, rel in enumerate(needed)})
+        rel = needed[i].as_py()
+        fresh[i] = read_sidecar(ctx.raw, rel, encoding=cfg.transcript_encoding, link=rel in links)
+    found = Sidecars(needed, stat, hit, row, table, fresh)
     _save_sidecars(cache, found)
     return found
+
+
+def _walked_stats(ctx: StageContext, needed: list[str], links: set[str]) -> tuple[np.ndarray, ...]:
+    """The stats of the sidecars ``needed`` when RAW was walked (:func:`_stats`), none for
+    a link (read again every run)."""
+    unlinked = [rel for rel in needed if rel not in links] if links else needed
+    stat = _stats(os.fspath(ctx.raw), unlinked, ctx.raw_stats)
+    if len(unlinked) == len(needed):
+        return stat
+    at = np.array([i for i, rel in enumerate(needed) if rel not in links], dtype=np.int64)
+    full = tuple(np.zeros(len(needed), dtype=a.dtype) for a in stat)
+    for column, values in zip(full, stat, strict=True):
+        column[at] = values
+    return full
 
 
 def _save_sidecars(cache: TableCache, found: Sidecars) -> None:
@@ -527,16 +557,17 @@ def _save_sidecars(cache: TableCache, found: Sidecars) -> None:
     import pyarrow as pa
 
     size, mtime, inode, statted = found.stat
-    keep = [rel for rel, (_, problem) in found.fresh.items()
-            if statted[found.index[rel]] and (problem is None or problem[0] != "transcript_unreadable")]
+    keep = [i for i, (_, problem) in found.fresh.items()
+            if statted[i] and (problem is None or problem[0] != "transcript_unreadable")]
     compact = cache.compaction_due(stored=0 if found.table is None else found.table.num_rows,
                                    used=int(found.hit.sum()))
     if not keep and not compact:
         return
     rows = []
-    for rel in keep:
-        i, (text, problem) = found.index[rel], found.fresh[rel]
-        rows.append((rel, int(size[i]), int(mtime[i]), int(inode[i]), text, *(problem or (None, None, None))))
+    for i in keep:
+        text, problem = found.fresh[i]
+        rows.append((found.needed[i].as_py(), int(size[i]), int(mtime[i]), int(inode[i]), text,
+                     *(problem or (None, None, None))))
     schema = pa.schema([(name, getattr(pa, kind)()) for name, kind in _SIDECAR_FIELDS])
     with pandas_left_unloaded():
         part = pa.table([pa.array([r[i] for r in rows], f.type) for i, f in enumerate(schema)], schema=schema)
@@ -657,42 +688,43 @@ _WITHOUT_EXTENSION = (r"\.[^./]*$", "")
 
 
 def pair_sidecars(paths: list[str], sidecars: set[str], *, columnar: bool, names: Any = None,
-                  ) -> tuple[list[str | None], list[str], np.ndarray]:
-    """Each audio file's sidecar (see :func:`_sidecars_by_stem`), the sidecars paired
-    (sorted) and each file's sidecar as an index into them (-1: none). ``columnar`` (every
-    name is UTF-8, as from :func:`scan_listing`) matches stems in Arrow (``names``:
-    ``paths`` as Arrow strings, when the caller has them).
+                  sorted_sidecars: Any = None) -> tuple[Any, Any, np.ndarray]:
+    """Each audio file's sidecar (see :func:`_sidecars_by_stem`; null: none), the sidecars
+    paired (sorted), both as Arrow strings, and each file's sidecar as an index into them
+    (-1: none). ``columnar`` (every name is UTF-8, as from :func:`scan_listing`) matches
+    stems in Arrow (``names``: ``paths`` as Arrow strings, ``sorted_sidecars``:
+    ``sidecars`` so, sorted, when the caller has them).
 
     Examples
     --------
-    >>> pair_sidecars(["a/x.wav", "a/y.flac"], {"a/x.txt", "a/x.TXT", "b.txt"}, columnar=True)
+    >>> paired, needed, at = pair_sidecars(["a/x.wav", "a/y.flac"], {"a/x.txt", "a/x.TXT", "b.txt"}, columnar=True)
+    >>> paired.to_pylist(), needed.to_pylist(), at
     (['a/x.TXT', None], ['a/x.TXT'], array([ 0, -1]))
     """
     import pyarrow as pa
     import pyarrow.compute as pc
 
     if not sidecars or not paths:
-        return [None] * len(paths), [], np.full(len(paths), -1, dtype=np.int64)
+        return pa.nulls(len(paths), pa.string()), pa.array([], pa.string()), np.full(len(paths), -1, dtype=np.int64)
     if not columnar:
         by_stem = _sidecars_by_stem(sidecars)
         # An audio path has an extension: its stem ends at its last dot.
         paired = [by_stem.get(rel[:rel.rfind(".")]) for rel in paths]
         needed = sorted({s for s in paired if s is not None})
         index = {rel: i for i, rel in enumerate(needed)}
-        return paired, needed, np.fromiter((index.get(s, -1) for s in paired), dtype=np.int64, count=len(paths))
-    ordered = sorted(sidecars)
+        # A paired sidecar's name is UTF-8: its stem is an audio path's, its extension the configured one.
+        return (pa.array(paired, pa.string()), pa.array(needed, pa.string()),
+                np.fromiter((index.get(s, -1) for s in paired), dtype=np.int64, count=len(paths)))
     with pandas_left_unloaded():
-        side = pa.array(ordered, pa.string())
+        side = pa.array(sorted(sidecars), pa.string()) if sorted_sidecars is None else sorted_sidecars
         stems = pc.replace_substring_regex(pa.array(paths, pa.string()) if names is None else names,
                                            *_WITHOUT_EXTENSION)
         # index_in finds a stem's first sidecar in sorted order, as _sidecars_by_stem keeps.
         found = pc.index_in(stems, value_set=pc.replace_substring_regex(side, *_WITHOUT_EXTENSION))
         valid = np.asarray(pc.is_valid(found), dtype=bool)
         at = np.asarray(found.fill_null(0), dtype=np.int64)
-        paired = side.take(found).to_pylist()
-    used = np.unique(at[valid])
-    needed = [ordered[i] for i in used.tolist()]
-    return paired, needed, np.where(valid, np.searchsorted(used, at), -1)
+        used = np.unique(at[valid])
+        return side.take(found), side.take(pa.array(used)), np.where(valid, np.searchsorted(used, at), -1)
 
 
 @dataclass(frozen=True)
@@ -706,12 +738,13 @@ class Fate:
 
 def _ingest_file(ctx: StageContext, rel: str, probe: tuple[str | None, str | None, str | None],
                  rows: list[MetadataRow], *, kept_by_hash: dict[str, str], sidecar: str | None, rule: SpeakerRule,
-                 links: set[str], readings: Sidecars) -> Fate:
+                 links: set[str], reading: SidecarRead | None) -> Fate:
     """One audio file's fate: probe error, duplicate content, no speaker, or an ingest
     row with its transcript paired. ``probe`` is the file's content hash, or its probe
     error's reason and sentence; the row holds the fields ingest adds to the probe's
     (the stage takes the probe's columns from its table). ``kept_by_hash`` maps the
-    hashes of the files kept so far to their paths, and gains this one when it is kept."""
+    hashes of the files kept so far to their paths, and gains this one when it is kept;
+    ``reading`` is what ``read_sidecar`` gave for ``sidecar``."""
     cfg, table_rel = ctx.config.ingest, ctx.config.ingest.metadata
     via = f" (named on line {', '.join(str(r.line) for r in rows)} of {table_rel})" if rows else ""
     sha256, reason, sentence = probe
@@ -729,7 +762,7 @@ def _ingest_file(ctx: StageContext, rel: str, probe: tuple[str | None, str | Non
     pairing = pair_transcript(ctx.raw, rel, rows, sidecar, table_rel=table_rel,
                               transcript_column=cfg.metadata_transcript_column, encoding=cfg.transcript_encoding,
                               speaker_from_metadata=cfg.speaker_from == "metadata",
-                              sidecar_link=sidecar in links, sidecar_read=readings.get(sidecar or ""))
+                              sidecar_link=sidecar in links, sidecar_read=reading)
     return Fate({
         "source_id": source_id(posixpath.basename(posixpath.splitext(rel)[0]), sha256),
         "source_path": rel,
@@ -790,10 +823,10 @@ def run(ctx: StageContext) -> StageResult:
     keys = ingest_rows.key_columns(paths if found.audio_array is None else found.audio_array, probes.column("sha256"),
                                    [repr(by_audio[rel]) if rel in by_audio else None for rel in paths] if by_audio
                                    else None, paired, sidecar_at, readings.stat)
-    inputs = _Inputs(paths, by_audio, paired, readings, found.links, rule)
+    inputs = _Inputs(paths, by_audio, paired, sidecar_at, readings, found.links, rule)
     own, kept, fate_rejects = _fates(ctx, inputs, probes, keys, rows=(unprobed[0].rows, unprobed[0].previous))
     rejects.extend(fate_rejects)
-    probed = probes.take(kept)
+    probed = probes.of(kept)
 
     summary = {**_summary(own, rejects, paths=path_set, metadata_rows=metadata_rows,
                           durations=probed.column("duration_s").to_pylist()),
@@ -826,7 +859,7 @@ class _Unprobed:
     sidecar (``paired``, ``sidecar_at``: see :func:`pair_sidecars`), their readings, and
     the rows cache with what it loaded (None: nothing)."""
 
-    paired: list[str | None]
+    paired: Any
     sidecar_at: np.ndarray
     readings: Sidecars
     rows: TableCache
@@ -835,8 +868,8 @@ class _Unprobed:
 
 def _unprobed(ctx: StageContext, found: Scan, *, columnar: bool, rule: SpeakerRule) -> _Unprobed:
     """Pair and read the sidecars of ``found`` and load the rows cache (:class:`_Unprobed`)."""
-    paired, needed, sidecar_at = pair_sidecars(found.audio, found.sidecars, columnar=columnar,
-                                               names=found.audio_array)
+    paired, needed, sidecar_at = pair_sidecars(found.audio, found.sidecars, columnar=columnar, names=found.audio_array,
+                                               sorted_sidecars=None if found.sidecar_listing is None else found.sidecar_listing[0])
     readings = _read_sidecars(ctx, needed, found.links, found.sidecar_listing)
     rows = ingest_rows.rows_cache(ctx, rule=(rule.constant, rule.origin))
     return _Unprobed(paired, sidecar_at, readings, rows, rows.load())
@@ -844,17 +877,19 @@ def _unprobed(ctx: StageContext, found: Scan, *, columnar: bool, rule: SpeakerRu
 
 @dataclass(frozen=True)
 class _Inputs:
-    """What every file's fate is decided from, besides its probe (lists row for row with paths)."""
+    """What every file's fate is decided from, besides its probe (row for row with paths:
+    each file's sidecar, as Arrow strings, and its index in ``readings.needed``)."""
 
     paths: list[str]
     by_audio: dict[str, list[MetadataRow]]
-    paired: list[str | None]
+    paired: Any
+    sidecar_at: np.ndarray
     readings: Sidecars
     links: set[str]
     rule: SpeakerRule
 
 
-def _fates(ctx: StageContext, inputs: _Inputs, probes: Any, keys: dict[str, Any], *,
+def _fates(ctx: StageContext, inputs: _Inputs, probes: Probes, keys: dict[str, Any], *,
            rows: tuple[TableCache, Any]) -> tuple[Any, np.ndarray, list[dict[str, Any]]]:
     """Every file's fate: the accepted rows' own fields (in path order), their files'
     indices in ``inputs.paths`` and the rejects. Files whose inputs are those of a row
@@ -865,12 +900,13 @@ def _fates(ctx: StageContext, inputs: _Inputs, probes: Any, keys: dict[str, Any]
 
     paths = inputs.paths
     cache, previous = rows
-    first = ingest_rows.first_of_content(probes.column("sha256"))
+    first = ingest_rows.first_of_content(keys["sha256"])
     row, hit = ingest_rows.reusable(previous, keys)
     hit &= first == np.arange(len(paths))
     todo = np.flatnonzero(~hit)
-    facts = list(zip(*(probes.column(c).take(pa.array(todo)).to_pylist()
-                       for c in ("sha256", "error_reason", "error_detail")), strict=True))
+    done = probes.of(todo)
+    facts = list(zip(*(done.column(c).to_pylist() for c in ("sha256", "error_reason", "error_detail")), strict=True))
+    sidecars = inputs.paired.take(pa.array(todo)).to_pylist()
     # A reused file is the first of its content: a later file to do with the same bytes is its duplicate.
     kept_by_hash = {probe[0]: paths[first[i]] for i, probe in zip(todo.tolist(), facts, strict=True)
                     if first[i] >= 0 and hit[first[i]]}
@@ -878,10 +914,11 @@ def _fates(ctx: StageContext, inputs: _Inputs, probes: Any, keys: dict[str, Any]
     fresh: list[int] = []
     rejects: list[dict[str, Any]] = []
     clean = hit.copy()
-    for i, probe in zip(todo.tolist(), facts, strict=True):
-        rel, sidecar = paths[i], inputs.paired[i]
+    for i, probe, sidecar in zip(todo.tolist(), facts, sidecars, strict=True):
+        rel = paths[i]
         fate = _ingest_file(ctx, rel, probe, inputs.by_audio.get(rel, []), kept_by_hash=kept_by_hash,
-                            sidecar=sidecar, rule=inputs.rule, links=inputs.links, readings=inputs.readings)
+                            sidecar=sidecar, rule=inputs.rule, links=inputs.links,
+                            reading=inputs.readings.get(int(inputs.sidecar_at[i])))
         rejects.extend(fate.rejects)
         if fate.row is not None:
             accepted.append(fate.row)

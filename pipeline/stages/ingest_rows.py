@@ -50,10 +50,10 @@ def rows_cache(ctx: StageContext, *, rule: tuple[str | None, str]) -> TableCache
 
 
 def key_columns(paths: Sequence[str] | pa.Array, sha256: pa.ChunkedArray, metadata: Sequence[str | None] | None,
-                sidecars: Sequence[str | None], sidecar_at: np.ndarray,
+                sidecars: pa.Array, sidecar_at: np.ndarray,
                 sidecar_stat: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]) -> dict[str, Any]:
     """Each file's inputs as Arrow arrays (``paths`` given as a list or as Arrow strings):
-    ``metadata`` (None: no file has rows), its sidecar, and that sidecar's stat,
+    ``metadata`` (None: no file has rows), its sidecar (Arrow strings), and that sidecar's stat,
     ``sidecar_stat[k][sidecar_at[i]]`` (-1: no sidecar; a sidecar not stat'ed, a link,
     has none)."""
     size, mtime, inode, statted = sidecar_stat
@@ -67,11 +67,11 @@ def key_columns(paths: Sequence[str] | pa.Array, sha256: pa.ChunkedArray, metada
 
         return {"path": paths if isinstance(paths, pa.Array) else pa.array(paths, pa.string()), "sha256": sha256.cast(pa.string()).combine_chunks(),
                 "metadata": pa.nulls(n, pa.string()) if metadata is None else pa.array(metadata, pa.string()),
-                "sidecar": pa.array(sidecars, pa.string()), "sidecar_size": stat_column(size, pa.int64()),
+                "sidecar": sidecars, "sidecar_size": stat_column(size, pa.int64()),
                 "sidecar_mtime_ns": stat_column(mtime, pa.int64()), "sidecar_ino": stat_column(inode, pa.uint64())}
 
 
-def first_of_content(sha256: pa.ChunkedArray) -> np.ndarray:
+def first_of_content(sha256: pa.Array | pa.ChunkedArray) -> np.ndarray:
     """Per file, the index of the first file (in order) with the same hash; -1 for a file
     without one (its probe failed). A file with ``first[i] == i`` is no duplicate.
 
@@ -83,7 +83,8 @@ def first_of_content(sha256: pa.ChunkedArray) -> np.ndarray:
     with pandas_left_unloaded():
         # Arrow numbers the distinct values in the order they first appear, so the files
         # where a code first appears are where it exceeds every earlier code (no sort).
-        codes = np.asarray(pc.dictionary_encode(sha256.combine_chunks()).indices.fill_null(-1), dtype=np.int64)
+        whole = sha256.combine_chunks() if isinstance(sha256, pa.ChunkedArray) else sha256
+        codes = np.asarray(pc.dictionary_encode(whole).indices.fill_null(-1), dtype=np.int64)
     if not len(codes):
         return np.full(0, -1, dtype=np.int64)
     before = np.maximum.accumulate(np.concatenate([[-1], codes[:-1]]))
