@@ -288,3 +288,16 @@ def test_the_probes_follow_the_probe_code_alone(raw: Path, tmp_path: Path,
                 caplog.at_level(logging.INFO, logger="loam"):
             assert run(raw, out) == uncached(raw, tmp_path)
         assert f"ingest: {probed} files probed, {12 - probed} reused from cache" in caplog.text
+
+
+def test_sorted_paths_hold_what_a_set_holds() -> None:
+    """Membership by bisection in the sorted audio paths against a set (the reference),
+    on random names outside ASCII too, and on names that sort between or beyond them."""
+    rng = np.random.default_rng(7)
+    alphabet = list("ab/._-é\u212aİz0")
+    for _ in range(300):
+        names = {"".join(rng.choice(alphabet, size=rng.integers(1, 6))) for _ in range(rng.integers(0, 20))}
+        found = ingest.SortedPaths(sorted(names))
+        asked = names | {"".join(rng.choice(alphabet, size=rng.integers(0, 6))) for _ in range(20)}
+        assert {rel for rel in asked if rel in found} == names
+        assert len(found) == len(names) and list(found) == sorted(names)

@@ -11,12 +11,13 @@ the audio goes on as untranscribed audio.
 
 from __future__ import annotations
 
+import bisect
 import os
 import posixpath
 import re
 import unicodedata
 from collections import defaultdict
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Collection, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -90,6 +91,33 @@ def _storable(text: str) -> bool:
 def _shown_path(text: str) -> str:
     """A path that is not UTF-8, with its undecodable bytes written as \\xNN."""
     return os.fsencode(text).decode("utf-8", "backslashreplace")
+
+
+@dataclass(frozen=True)
+class SortedPaths(Collection[str]):
+    """Sorted paths (``Scan.audio``) asked whether they hold a path by bisection: the
+    few rejects ask, where a set of 100,000 paths took 6 to 13 ms to build.
+
+    Examples
+    --------
+    >>> found = SortedPaths(["a/x.wav", "b/y.wav"])
+    >>> "b/y.wav" in found, "b/z.wav" in found, "" in found, len(found)
+    (True, False, False, 2)
+    """
+
+    paths: list[str]
+
+    def __contains__(self, rel: object) -> bool:
+        if not isinstance(rel, str):
+            return False
+        i = bisect.bisect_left(self.paths, rel)
+        return i < len(self.paths) and self.paths[i] == rel
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self.paths)
+
+    def __len__(self) -> int:
+        return len(self.paths)
 
 
 @dataclass
@@ -625,7 +653,7 @@ def _pseudonymise(ctx: StageContext, rows: list[dict[str, Any]], rejects: list[d
         write_mapping(ctx.config.resolve_path(privacy.mapping_file), speakers, sources, out=ctx.out)
 
 
-def _metadata_by_audio(ctx: StageContext, path_set: set[str]) -> tuple[dict[str, list[MetadataRow]], int, list[dict[str, Any]]]:
+def _metadata_by_audio(ctx: StageContext, paths: list[str]) -> tuple[dict[str, list[MetadataRow]], int, list[dict[str, Any]]]:
     """Metadata rows by the audio file they name, the number of rows read, and the
     rejects of rows that cannot be used; bad paths are rejected before any open."""
     cfg, raw, table_rel = ctx.config.ingest, ctx.raw, ctx.config.ingest.metadata
@@ -637,6 +665,7 @@ def _metadata_by_audio(ctx: StageContext, path_set: set[str]) -> tuple[dict[str,
         speaker_column=cfg.metadata_speaker_column, need_speaker=cfg.speaker_from == "metadata",
         encoding=cfg.transcript_encoding, origin=ctx.config.origin)
     count = len(meta_rows) + len(rejects)
+    path_set = set(paths)
     for row in meta_rows:
         where = f"{table_rel}:{row.line}"
         rel, problem = check_relative_path(raw, row.path)
@@ -774,7 +803,7 @@ def _ingest_file(ctx: StageContext, rel: str, probe: tuple[str | None, str | Non
     }, (*repeats, *pairing.rejects))
 
 
-def _summary(own: Any, rejects: list[dict[str, Any]], *, paths: set[str], metadata_rows: int,
+def _summary(own: Any, rejects: list[dict[str, Any]], *, paths: Collection[str], metadata_rows: int,
              durations: list[float]) -> dict[str, Any]:
     """Counts of files, rows, transcripts and hours for the report (``own``: the accepted
     rows' own fields; ``durations``: the accepted files' seconds, in their order)."""
@@ -799,8 +828,8 @@ def run(ctx: StageContext) -> StageResult:
     listed = scan_listing(ctx.raw_stats, cfg.extensions, cfg.sidecar_extension)
     found, stat = listed or (scan(ctx.raw, cfg.extensions, cfg.sidecar_extension), None)
     paths, rejects = found.audio, found.rejects
-    path_set = set(paths)
-    by_audio, metadata_rows, meta_rejects = _metadata_by_audio(ctx, path_set)
+    path_set = SortedPaths(paths)
+    by_audio, metadata_rows, meta_rejects = _metadata_by_audio(ctx, paths)
     rejects.extend(meta_rejects)
 
     rule = speaker_rule(paths, speaker=cfg.speaker, speaker_from=cfg.speaker_from)
@@ -967,7 +996,7 @@ def _scrubbed(ctx: StageContext, sentence: str) -> str:
     return scrub(sentence, sources=mapping["source"], pattern=pattern)
 
 
-def environment_failure(rejects: list[dict[str, Any]], *, paths: set[str], metadata_rows: int,
+def environment_failure(rejects: list[dict[str, Any]], *, paths: Collection[str], metadata_rows: int,
                         accepted: int) -> str:
     """A sentence when no audio file got through and every one was rejected for a
     reason that points at the machine rather than the files: all unreadable, or (no

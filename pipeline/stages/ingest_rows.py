@@ -1,5 +1,5 @@
 """The ingest rows cache: each audio file's row from the last run, reused when nothing it
-depends on has changed (``OUT/cache/ingest/rows.parquet``).
+depends on has changed (``OUT/cache/ingest/rows.arrow``).
 
 A file's ingest row is a function of its path, its content hash, its metadata table rows,
 the sidecar paired with it and what that sidecar holds, the speaker rule and the ingest
