@@ -155,6 +155,14 @@ def test_the_parquet_probe_table_of_an_older_layout_serves_once(tmp_path: Path,
     with caplog.at_level(logging.INFO, logger="loam"):
         run(raw, out)
     assert probed(caplog) == (0, 12)
+    # One of another scope (another probe code) is not used: every file is probed again.
+    TableCache(out / "cache", "ingest", "probes", scope="another probe").save(table.replace_schema_metadata(None))
+    for name in ("probes.arrow", "probes.arrow.sha256"):
+        (folder / name).unlink()
+    caplog.clear()
+    with caplog.at_level(logging.INFO, logger="loam"):
+        run(raw, out)
+    assert probed(caplog) == (12, 0)
 
 
 def test_flat_folder_is_the_one_folder_of_every_path() -> None:
