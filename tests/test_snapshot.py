@@ -222,6 +222,41 @@ def test_the_listing_holds_every_regular_file_with_its_stat(tmp_path: Path) -> N
     assert listing.complete
 
 
+def test_the_bytes_made_from_a_table_of_files_are_those_a_walk_hashes(tmp_path: Path) -> None:
+    """tree_listing.folder_bytes against the walk itself (snapshot.tree_digest lists the
+    folder): names that sort differently as whole paths ("a-b/" before "a/"), names
+    outside ASCII, one file or many per subfolder, the rows in any order and chunks."""
+    import random
+
+    import pyarrow as pa
+
+    from pipeline.core.tree_listing import folder_bytes
+
+    rng = random.Random(7)
+    alphabet = "ab-._0Zé語"
+    out = tmp_path / "out"
+    rels = set()
+    for sub in ("a", "a-b", "a.b", "b", "é", "語x", "Z"):
+        for _ in range(rng.randint(1, 6)):
+            rels.add(f"audio/{sub}/{''.join(rng.choices(alphabet, k=rng.randint(1, 8)))}.flac")
+    for rel in rels:
+        (out / rel).parent.mkdir(parents=True, exist_ok=True)
+        (out / rel).write_bytes(rel.encode())
+    shuffled = sorted(rels)
+    rng.shuffle(shuffled)
+    stats = [os.lstat(out / rel) for rel in shuffled]
+    columns = {"path": shuffled, **{k: [getattr(st, k) for st in stats]
+                                     for k in ("st_mode", "st_size", "st_mtime_ns", "st_ino")}}
+    whole = pa.table(columns)
+    chunked = pa.concat_tables([whole.slice(0, 3), whole.slice(3)])
+    for files in (whole, chunked):
+        given = folder_bytes("audio", files)
+        assert given is not None
+        assert snapshot.tree_digest(out, given={"audio/": given}) == snapshot.tree_digest(out)
+    # A path named twice is not one file per row: the caller walks the folder.
+    assert folder_bytes("audio", pa.concat_tables([whole, whole.slice(0, 1)])) is None
+
+
 @pytest.mark.parametrize("change", ["touch_clip", "chmod_clip", "add_file", "add_folder", "remove_clip"])
 def test_the_snapshot_of_audio_taken_from_the_stage_sees_any_change(
         change: str, small_raw: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str],

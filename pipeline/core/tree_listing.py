@@ -49,10 +49,12 @@ def folder_bytes(folder: str, files: pa.Table) -> bytes | None:
     if len(paths) == 0:
         return f"{folder}/\0\n".encode()
     stats = ("st_mode", "st_size", "st_mtime_ns", "st_ino")
+    # len(unique) rather than count_distinct (no nulls here): 0.008 against 0.026 CPU s
+    # for 101,000 paths.
     if (files.column("path").null_count or any(files.column(c).null_count for c in stats)
             or not pc.all(pc.equal(pc.list_value_length(parts), 3)).as_py()
             or not pc.all(pc.equal(pc.list_element(parts, 0), folder)).as_py()
-            or pc.count_distinct(paths).as_py() != len(paths)):
+            or len(pc.unique(paths)) != len(paths)):
         return None
     sub, name = pc.list_element(parts, 1), pc.list_element(parts, 2)
     if not (pc.all(pc.greater(pc.utf8_length(sub), 0)).as_py() and pc.all(pc.greater(pc.utf8_length(name), 0)).as_py()):
@@ -62,18 +64,24 @@ def folder_bytes(folder: str, files: pa.Table) -> bytes | None:
     order = pc.sort_indices(pa.table({"sub": sub, "name": name}), sort_keys=[("sub", "ascending"),
                                                                             ("name", "ascending")])
     sub = sub.take(order)
-    names = name.take(order).to_pylist()
     numbers = np.column_stack([np.asarray(files.column(c).combine_chunks().take(order), dtype=np.int64)
                                for c in stats[:3]])
     inodes = np.asarray(files.column("st_ino").combine_chunks().take(order), dtype=np.uint64)
     # Where each subfolder's files begin and end in that order.
     codes = np.asarray(pc.dictionary_encode(sub).indices, dtype=np.int64)
     starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]]).tolist()
+    ends = [*starts[1:], len(codes)]
     subs = pc.unique(sub).to_pylist()
+    # Each file's entry ("f", its name, NUL) in that order, as one run of UTF-8 bytes:
+    # a folder's entries are a slice of it (no Python string per file: 0.03 CPU s for
+    # 101,000 clips).
+    entries = pc.binary_join_element_wise("f", name.take(order), "\0", "")
+    ends_at = np.frombuffer(entries.buffers()[1], dtype=np.int32)[entries.offset:entries.offset + len(entries) + 1]
+    text = memoryview(entries.buffers()[2])
     # The bytes snapshot._packed_folder hashes: the folder's name and its entries' kinds
     # and names, NUL-separated, then (for files) their numbers as int64 and uint64.
-    parts = ["\0".join([f"{folder}/", *(f"d{s}" for s in subs)]).encode() + b"\0\n"]
-    for s, first, end in zip(subs, starts, [*starts[1:], len(names)], strict=True):
-        text = "\0".join([f"{folder}/{s}/", *(f"f{n}" for n in names[first:end])]) + "\0\n"
-        parts += [text.encode(), numbers[first:end].tobytes(), inodes[first:end].tobytes()]
-    return b"".join(parts)
+    chunks = ["\0".join([f"{folder}/", *(f"d{s}" for s in subs)]).encode() + b"\0\n"]
+    for s, first, end in zip(subs, starts, ends, strict=True):
+        chunks += [f"{folder}/{s}/\0".encode(), text[ends_at[first]:ends_at[end]], b"\n",
+                   numbers[first:end].tobytes(), inodes[first:end].tobytes()]
+    return b"".join(chunks)
