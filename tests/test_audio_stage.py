@@ -520,6 +520,44 @@ def test_later_outcomes_of_a_source_replace_earlier_ones():
     assert rows == {"a": [3], "b": [2], "c": None, "": [4, 5]}
 
 
+@pytest.mark.parametrize("seed", range(20))
+def test_the_runs_found_are_those_a_row_by_row_reading_finds(seed: int):
+    import pyarrow as pa
+
+    from pipeline.stages.audio_cache import _outcome_runs
+
+    # Reference: the stored rows read one by one, in order; a run is a stretch of one key,
+    # and a key's outcome is the last run holding it (a later part replaces an earlier
+    # outcome). Keys repeat in runs, come back after others, are missing (None) or
+    # unwanted; the rows come in chunks as a mapped table's do.
+    rng = np.random.default_rng(seed)
+    keys = [None if rng.random() < 0.05 else f"k{rng.integers(12)}" for _ in range(rng.integers(1, 60))]
+    keys = [k for k in keys for _ in range(rng.integers(1, 3))]
+    wanted = [f"k{i}" for i in rng.permutation(15)] + ([""] if rng.random() < 0.5 else [])
+    cuts = sorted(rng.choice(np.arange(1, len(keys)), size=min(3, len(keys) - 1), replace=False).tolist())
+    bounds = [0, *cuts, len(keys)]
+    chunked = pa.chunked_array([keys[a:b] for a, b in zip(bounds[:-1], bounds[1:], strict=True)], pa.string())
+    starts = [i for i in range(len(keys)) if i == 0 or keys[i] != keys[i - 1]]
+    last = {("" if keys[start] is None else keys[start]): run for run, start in enumerate(starts)}
+    run, first, lengths = _outcome_runs(chunked, pa.array(wanted))
+    assert first.tolist() == starts
+    assert lengths.tolist() == np.diff([*starts, len(keys)]).tolist()
+    assert run.tolist() == [last.get(key, -1) for key in wanted]
+
+
+def test_distinct_counts_as_count_distinct():
+    import pyarrow.compute as pc
+
+    # Reference: pyarrow's count_distinct (nulls not counted), on chunks with and
+    # without nulls, and empty.
+    rng = np.random.default_rng(3)
+    for n in (0, 1, 50, 400):
+        values = [None if rng.random() < 0.1 else f"s{rng.integers(40)}" for _ in range(n)]
+        for column in (pa.array(values, pa.string()), pa.chunked_array([values[: n // 2], values[n // 2:]], pa.string()),
+                       pa.array([v for v in values if v is not None], pa.string())):
+            assert audio._distinct(column) == pc.count_distinct(column).as_py()
+
+
 def test_the_listing_of_clips_is_the_lstat_of_each_file(tmp_path: Path, monkeypatch):
     # Reference: os.lstat of every file under the folder, nested folders included; a file
     # gone between the listing and its stat is left out, its neighbours kept.
