@@ -75,7 +75,13 @@ def _given_last(rels: pa.Array, known: pa.Table | None) -> pa.Table | None:
     if known is None or not known.num_rows or len(rels) < known.num_rows:
         return None
     paths = known.column("path").combine_chunks().cast(pa.string())
-    if not rels.slice(len(rels) - known.num_rows).equals(paths) or pc.count_distinct(rels).as_py() != len(rels):
+    if not rels.slice(len(rels) - known.num_rows).equals(paths):
+        return None
+    # len(unique) rather than count_distinct: for the 101,000 paths at the end of the
+    # 100,000-source rebuild count_distinct took 0.153 s under a profiler, and 112 to
+    # 148 ms against 6 to 20 ms for unique as the first call in a fresh process (10 to
+    # 37 ms against 6 to 15 ms after).
+    if rels.null_count or len(pc.unique(rels)) != len(rels):
         return None
     return known.select(SCHEMA.names).cast(SCHEMA)
 
