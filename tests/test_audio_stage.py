@@ -545,19 +545,6 @@ def test_the_runs_found_are_those_a_row_by_row_reading_finds(seed: int):
     assert run.tolist() == [last.get(key, -1) for key in wanted]
 
 
-def test_distinct_counts_as_count_distinct():
-    import pyarrow.compute as pc
-
-    # Reference: pyarrow's count_distinct (nulls not counted), on chunks with and
-    # without nulls, and empty.
-    rng = np.random.default_rng(3)
-    for n in (0, 1, 50, 400):
-        values = [None if rng.random() < 0.1 else f"s{rng.integers(40)}" for _ in range(n)]
-        for column in (pa.array(values, pa.string()), pa.chunked_array([values[: n // 2], values[n // 2:]], pa.string()),
-                       pa.array([v for v in values if v is not None], pa.string())):
-            assert audio._distinct(column) == pc.count_distinct(column).as_py()
-
-
 def test_the_listing_of_clips_is_the_lstat_of_each_file(tmp_path: Path, monkeypatch):
     # Reference: os.lstat of every file under the folder, nested folders included; a file
     # gone between the listing and its stat is left out, its neighbours kept.

@@ -17,6 +17,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from pipeline.core.columns import distinct_count
+
 
 def folder_bytes(folder: str, files: pa.Table) -> bytes | None:
     """What ``snapshot.tree_digest`` hashes for top-level ``folder`` and all under it,
@@ -49,12 +51,10 @@ def folder_bytes(folder: str, files: pa.Table) -> bytes | None:
     if len(paths) == 0:
         return f"{folder}/\0\n".encode()
     stats = ("st_mode", "st_size", "st_mtime_ns", "st_ino")
-    # len(unique) rather than count_distinct (no nulls here): 0.008 against 0.026 CPU s
-    # for 101,000 paths.
     if (files.column("path").null_count or any(files.column(c).null_count for c in stats)
             or not pc.all(pc.equal(pc.list_value_length(parts), 3)).as_py()
             or not pc.all(pc.equal(pc.list_element(parts, 0), folder)).as_py()
-            or len(pc.unique(paths)) != len(paths)):
+            or distinct_count(paths) != len(paths)):
         return None
     sub, name = pc.list_element(parts, 1), pc.list_element(parts, 2)
     if not (pc.all(pc.greater(pc.utf8_length(sub), 0)).as_py() and pc.all(pc.greater(pc.utf8_length(name), 0)).as_py()):

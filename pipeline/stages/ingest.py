@@ -27,6 +27,7 @@ import numpy as np
 from pipeline.core import names
 from pipeline.core.cache import TableCache, cache_key
 from pipeline.core.codeversion import code_version
+from pipeline.core.columns import distinct_count
 from pipeline.core.fsio import write_text_atomic
 from pipeline.core.manifest import arrow_schema, table_from_columns
 from pipeline.core.names import stage_manifest
@@ -807,8 +808,6 @@ def _summary(own: Any, rejects: list[dict[str, Any]], *, paths: Collection[str],
              durations: list[float]) -> dict[str, Any]:
     """Counts of files, rows, transcripts and hours for the report (``own``: the accepted
     rows' own fields; ``durations``: the accepted files' seconds, in their order)."""
-    import pyarrow.compute as pc
-
     return {
         "audio_files_found": len(paths),
         "audio_files_accepted": own.num_rows,
@@ -817,7 +816,7 @@ def _summary(own: Any, rejects: list[dict[str, Any]], *, paths: Collection[str],
         "transcribed": own.num_rows - own.column("transcript").null_count,
         "transcripts_set_aside": sum(1 for r in rejects if r["reason"] in TRANSCRIPT_REASONS),
         "hours": sum(durations) / 3600,
-        "speakers": pc.count_distinct(own.column("speaker")).as_py() if own.num_rows else 0,
+        "speakers": distinct_count(own.column("speaker")),
     }
 
 
