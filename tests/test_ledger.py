@@ -446,3 +446,33 @@ def test_source_keys_equal_source_key_of_each_id() -> None:
            "a-b-c-fedcba9876", "-0011223344", "00112233445", "x-0011223344-", "no-hash-here", "alder_01-0123456789"]
     assert source_keys(pa.chunked_array([ids[:5], ids[5:]])) == {source_key(i) for i in ids}
     assert source_keys(pa.array([], pa.string())) == set()
+
+
+# An id in ingest's shape (ten hex digits after a hyphen) or near it: upper case, a
+# non-hex letter, a final newline or hyphen, no hyphen, too few digits, non-ASCII.
+_HEX = "0123456789abcdef"
+_near_ids = st.one_of(
+    st.builds(lambda head, sep, key, tail: head + sep + key + tail,
+              st.text("ab_ü-", max_size=4), st.sampled_from(["-", "", "x", "--"]),
+              st.text(_HEX, min_size=8, max_size=11), st.sampled_from(["", "", "", "\n", "-", "g", "A"])),
+    st.text(_HEX + "ABCDEFg-_\nü ", max_size=14))
+
+
+_usual_ids = st.builds(lambda head, key: f"{head}-{key}", st.text("ab_ü", max_size=3),
+                       st.text(_HEX, min_size=10, max_size=10))
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(_usual_ids, max_size=30), st.lists(_near_ids, max_size=10), st.integers(0, 40), st.booleans())
+def test_sorted_source_keys_equal_sorting_source_key_of_each_id(usual: list[str], near: list[str], cut: int,
+                                                                sliced: bool) -> None:
+    """The keys read as numbers equal :func:`source_key` of each id, distinct and sorted
+    by Python, for chunked and sliced arrays too (an Arrow slice keeps its parent's buffers)."""
+    import pyarrow as pa
+
+    from pipeline.stages.ledger import sorted_source_keys, source_key
+
+    ids = usual + near + usual[:3]
+    chunks = pa.chunked_array([ids[:cut], ids[cut:]], pa.string())
+    array = pa.array(["0123456789"] + ids, pa.string()).slice(1) if sliced else chunks
+    assert sorted_source_keys(array) == sorted({source_key(i) for i in ids})

@@ -48,6 +48,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TypeVar
 
+import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.csv as pa_csv
@@ -116,26 +117,72 @@ def source_keys(source_ids: pa.Array | pa.ChunkedArray) -> set[str]:
 
 
 def sorted_source_keys(source_ids: pa.Array | pa.ChunkedArray) -> list[str]:
-    """:func:`source_key` of each id, distinct and sorted, computed and sorted in Arrow
-    for the ids ingest writes (101,000 ids: 0.06 CPU s one :func:`source_key` call
-    each; sorting the Python strings took 0.04 s more); any other id goes through
-    :func:`source_key` itself.
+    """:func:`source_key` of each id, distinct and sorted: the ids ingest writes are
+    keyed and sorted as numbers (ten hex digits are a 40-bit number, in the same order
+    as their text), any other id goes through :func:`source_key` itself.
+
+    At 101,000 ids: 0.06 CPU s one :func:`source_key` call each and 0.04 s more to sort
+    the strings; in Arrow (a regular expression, then sorting the strings) 0.030 s; as
+    numbers 0.009 s.
 
     Examples
     --------
     >>> sorted_source_keys(pa.array(["alder_01-0123456789", "abcdef0123", "alder_01-0123456789"]))
     ['0123456789', 'abcdef0123']
     """
-    ids = pc.unique(source_ids)
-    # RE2's "$" ends the text (Python's also matches before a final newline: such ids
-    # take the per-id path).
-    usual = pc.match_substring_regex(ids, r"(?:^|-)[0-9a-f]{10}$").fill_null(False)
-    keys = pc.utf8_slice_codeunits(ids.filter(usual), -10)
-    others = pa.array([source_key(s) for s in ids.filter(pc.invert(usual)).to_pylist()], pa.string())
-    found = pc.unique(pa.concat_arrays([keys.cast(pa.string()), others]))
-    # Arrow orders strings by their UTF-8 bytes, which is the order of their code points
-    # (Python's); a key is ten hex digits anyway.
-    return found.take(pc.sort_indices(found)).to_pylist()
+    ids = source_ids.combine_chunks() if isinstance(source_ids, pa.ChunkedArray) else source_ids
+    ids = ids.cast(pa.binary())
+    usual = _usual_keys(ids)
+    tails = pc.binary_slice(ids.filter(usual), -10)
+    # Every usual tail is ten bytes: the data buffer from the first offset holds them one after the other.
+    count = len(tails)
+    start = int(np.frombuffer(tails.buffers()[1], np.int32, 1, tails.offset * 4)[0]) if count else 0
+    digits = np.frombuffer(tails.buffers()[2], np.uint8, 10 * count, start).reshape(count, 10) if count else \
+        np.zeros((0, 10), np.uint8)
+    values = np.zeros(count, np.uint64)
+    for k in range(10):
+        values = (values << np.uint64(4)) | _HEX_VALUE[digits[:, k]]
+    order = np.argsort(values)
+    ordered = values[order]
+    # One row of each distinct value (equal values are equal keys).
+    at = order[np.concatenate(([True], ordered[1:] != ordered[:-1]))] if count else order
+    found = tails.take(pa.array(at)).cast(pa.string()).to_pylist()
+    others = ids.filter(pc.invert(usual)).cast(pa.string()).to_pylist()
+    if not others:
+        return found
+    return sorted(set(found).union(map(source_key, others)))
+
+
+# Each byte's value as a hex digit (lower-case only, as ingest writes them); 16 for any other.
+_HEX_VALUE = np.full(256, 16, np.uint64)
+_HEX_VALUE[np.frombuffer(b"0123456789abcdef", np.uint8)] = np.arange(16, dtype=np.uint64)
+
+
+def _usual_keys(ids: pa.BinaryArray) -> pa.BooleanArray:
+    """Whether each id (as bytes) ends in ten lower-case hex digits, after a hyphen or
+    alone: the ids whose :func:`source_key` is their last ten characters. A null is not,
+    nor an id ending in a newline (Python's ``$`` matches before it: :func:`source_key`
+    decides).
+
+    Examples
+    --------
+    >>> _usual_keys(pa.array([b"a-0123456789", b"0123456789", b"a0123456789", b"a-012345678g", None])).to_pylist()
+    [True, True, False, False, False]
+    """
+    count = len(ids)
+    data = np.frombuffer(ids.buffers()[2], np.uint8) if count and ids.buffers()[2] is not None else None
+    if data is None or not data.size:  # no id, or every one empty
+        return pa.array(np.zeros(count, bool), pa.bool_())
+    offsets = np.frombuffer(ids.buffers()[1], np.int32, count + 1, ids.offset * 4).astype(np.int64)
+    ends, lengths = offsets[1:], np.diff(offsets)
+    ok = lengths >= 10
+    # An id already failed reads byte 0 instead of its own (a short one would read outside itself).
+    for back in range(1, 11):
+        ok &= _HEX_VALUE[data[np.where(ok, ends - back, 0)]] < 16
+    ok &= (lengths == 10) | (data[np.where(lengths >= 11, ends - 11, 0)] == ord("-"))
+    if ids.null_count:
+        ok &= ids.is_valid().to_numpy(zero_copy_only=False)
+    return pa.array(ok, pa.bool_())
 
 
 def corpus_id(keys: Iterable[str]) -> str:
