@@ -269,9 +269,14 @@ def test_changes_equal_a_loop_over_clips(clips: list[split.Clip], data: Any) -> 
     continues = data.draw(st.sampled_from(({"1m": "1m"}, {"2m": "1m"}, {})))
     assignment = split.Assignment(subset, tiers, {}, [], [], continues, 0, 0, 0, parts=parts)
     present = set(subset)
-    found = split._changes(ledger, assignment, present)
-    assert {k: found[k] for k in reference_changes(ledger, assignment, present)} == \
-        reference_changes(ledger, assignment, present)
+    expected = reference_changes(ledger, assignment, present)
+    found = split._changes(ledger, assignment)
+    assert {k: found[k] for k in expected} == expected
+    # With the clips' ledger records as arrays, visiting the clips that may have changed.
+    past = split.Past.of(clips, ledger.clips)
+    found = split._changes(ledger, replace(assignment, past=past))
+    assert past.ids == list(subset) or len(set(past.ids)) < len(past.ids)
+    assert {k: found[k] for k in expected} == expected
 
 
 @settings(max_examples=200, deadline=None)

@@ -663,7 +663,8 @@ class Assignment:
     ``"training"``; ``parts`` each held-out clip's part; ``unscored`` and ``demoted`` the
     clips ``split.text_overlap`` took off scoring or out of labelled; ``facts`` the group
     facts the places were chosen by (their prompts empty when no group needed them:
-    see :func:`_choose_places`)."""
+    see :func:`_choose_places`); ``past`` the clips as :class:`Past` read them (the
+    order of ``subset``), for :func:`_changes`."""
 
     subset: dict[str, str]
     tiers: dict[str, tuple[str, ...]]
@@ -681,6 +682,7 @@ class Assignment:
     demoted_labelled: int = 0
     facts: Mapping[str, GroupFacts] = field(default_factory=dict)
     straddling_parts: list[str] = field(default_factory=list)
+    past: Past | None = None
 
 
 # A clip the ledger has no row for reads this record: no subset, no part.
@@ -1097,7 +1099,7 @@ def assign(clips: Sequence[Clip], *, ledger: Ledger | None, seed: int, targets: 
     return Assignment(subset, tiers, sides, outcomes, straddling, continues, found.gated_out, waiting,
                       found.lost_transcript, places=places, parts=parts, unscored=unscored, demoted=demoted,
                       demoted_labelled=demoted_labelled, facts=facts,
-                      straddling_parts=_straddling_parts(held, parts))
+                      straddling_parts=_straddling_parts(held, parts), past=past)
 
 
 # The subset columns copied from the audio row as they are.
@@ -1235,7 +1237,15 @@ def _describe(clips: Sequence[Clip], inventory: set[str], facts: ClipFacts | Non
     }
 
 
-def _changes(ledger: Ledger | None, assignment: Assignment, present: set[str]) -> dict[str, Any]:
+def _changes(ledger: Ledger | None, assignment: Assignment) -> dict[str, Any]:
+    """What moved against the ledger. Every clip of ``assignment.subset`` is present; a
+    ledger clip missing there is counted as removed.
+
+    A clip the ledger holds as unlabelled (no tiers) that is unlabelled now changed in
+    nothing: with :attr:`Assignment.past` (the clips' ledger records as arrays) only the
+    others are visited, those that are new, were held out or labelled, or are now (at
+    101,000 clips 0.024 CPU s for a loop over every clip and 0.007 s more for a set of
+    the present ids, against 0.005 s)."""
     old = ledger.clips if ledger is not None else {}
     # Tier changes are counted against the tier a ledger tier continues as, so a
     # renamed budget is not reported as every clip leaving and joining.
@@ -1246,17 +1256,27 @@ def _changes(ledger: Ledger | None, assignment: Assignment, present: set[str]) -
     joined: Counter[str] = Counter()
     left: Counter[str] = Counter()
     part_moves: Counter[str] = Counter()
-    tiers, parts = assignment.tiers, assignment.parts
+    tiers, parts, subset = assignment.tiers, assignment.parts, assignment.subset
+    past = assignment.past
+    if past is not None and past.ids == list(subset):
+        # The clips that may have changed: not unlabelled in the ledger, or not now.
+        quiet = past.known & ~past.held & ~past.labelled
+        visit = [past.ids[k] for k in np.flatnonzero(~quiet).tolist()]
+        visit += [cid for cid in (*tiers, *parts) if (rec := old.get(cid)) is not None and rec.subset == UNLABELLED]
+        known = int(np.count_nonzero(past.known))
+    else:
+        visit, known = list(subset), -1
     # Ledger records are shared (one per distinct row text): each one's tiers in this
     # run's names are worked out once.
     renamed_tiers: dict[int, set[str]] = {}
-    for cid, subset in assignment.subset.items():
+    for cid in dict.fromkeys(visit):
+        now_subset = subset[cid]
         rec = old.get(cid)
         if rec is None:
-            added[subset] += 1
+            added[now_subset] += 1
             continue
-        if rec.subset != subset:
-            moved[f"{rec.subset}->{subset}"] += 1
+        if rec.subset != now_subset:
+            moved[f"{rec.subset}->{now_subset}"] += 1
         if rec.subset == HELDOUT:
             part = parts.get(cid, "")
             if rec.part != part:
@@ -1273,8 +1293,9 @@ def _changes(ledger: Ledger | None, assignment: Assignment, present: set[str]) -
             joined[t] += 1
         for t in before - now:
             left[t] += 1
-    for cid in old.keys() - present:
-        removed[old[cid].subset] += 1
+    if known != len(old):  # some ledger clip is not present (the present ones are distinct)
+        for cid in old.keys() - subset.keys():
+            removed[old[cid].subset] += 1
     return {
         "added": {s: added[s] for s in SUBSETS},
         "removed": {s: removed[s] for s in SUBSETS},
@@ -1501,7 +1522,6 @@ def _run(ctx: StageContext) -> StageResult:
     tables = _subset_tables(ctx, by_subset, assignment, joined, columns)
     shortfalls = _log_tiers(ctx, assignment, kept)
 
-    present = set(map(_ID, kept))
     new_ledger = _next_ledger(ledger, assignment, kept, sources, cfg_settings={
         "group_by": sc.group_by, "seed": str(cfg.seed), "heldout": sc.heldout,
         "budgets": ",".join(b for b, _ in budgets) or "-", "selection": sc.selection,
@@ -1509,7 +1529,7 @@ def _run(ctx: StageContext) -> StageResult:
     write_ledger(use.path, new_ledger)
     write_inventory(ctx.out, use.path, subset_phones(tables), boundary=cfg.text.word_boundary,
                     classify=cfg.text.backend != "graphemes")
-    changes = _changes(ledger, assignment, present)
+    changes = _changes(ledger, assignment)
     changes["gone_sources"] = countOf(new_ledger.sources.values(), "gone")
     changes["returned_sources"] = countOf(map(ledger.sources.get, sources), "gone") if ledger else 0
     _log_changes(ctx, changes, str(use.path), ledger is not None)
