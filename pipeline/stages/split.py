@@ -1510,7 +1510,9 @@ def _run(ctx: StageContext) -> StageResult:
                                        joined)
     rejects += gate_rejects
     eligible_s, target_s, targets = _heldout_target(ctx, kept)
-    sources = sorted_source_keys(joined.audio.column("source_id"))
+    # The present sources, sorted: the next ledger's source rows (a mapping: the ledger's
+    # corpus check looks each of its sources up there).
+    sources = dict.fromkeys(sorted_source_keys(joined.audio.column("source_id")), "present")
     use = _open_ledger(ctx, sources)
     ledger = use.ledger
     balance = read_balance(ctx)
@@ -1531,7 +1533,9 @@ def _run(ctx: StageContext) -> StageResult:
                     classify=cfg.text.backend != "graphemes")
     changes = _changes(ledger, assignment)
     changes["gone_sources"] = countOf(new_ledger.sources.values(), "gone")
-    changes["returned_sources"] = countOf(map(ledger.sources.get, sources), "gone") if ledger else 0
+    # A source returns from "gone": none can when the ledger holds none.
+    changes["returned_sources"] = countOf(map(ledger.sources.get, sources), "gone") \
+        if ledger and "gone" in ledger.sources.values() else 0
     _log_changes(ctx, changes, str(use.path), ledger is not None)
 
     facts = {s: ClipFacts.of(by_subset[s]) for s in SUBSETS}
@@ -1595,10 +1599,11 @@ def _log_parts(ctx: StageContext, summary: Mapping[str, Any]) -> None:
                         "(see balance in the report)", summary["balance"]["tolerance"])
 
 
-def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[Clip], sources: Sequence[str],
+def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[Clip], sources: Mapping[str, str],
                  *, cfg_settings: dict[str, str]) -> Ledger:
-    """The ledger to write: this run's assignment and sources, and every row of the old
-    ledger whose clip, group or source is gone.
+    """The ledger to write: this run's assignment and sources (``sources``: the present
+    ones, each ``present``), and every row of the old ledger whose clip, group or
+    source is gone.
 
     A clip can leave the input for a run (its file removed, the audio stage rejecting
     it, a gate whose action is "reject" setting it aside) and come back later. Its
@@ -1628,14 +1633,17 @@ def _next_ledger(ledger: Ledger | None, assignment: Assignment, kept: Sequence[C
     for k in compress(range(len(ids)), map(UNLABELLED.__ne__, subsets)):
         records_of[k] = record(ids[k], groups_of[k], subsets[k])
     clips = dict(zip(ids, records_of, strict=True))
-    known = dict.fromkeys(sorted(sources), "present")  # sorted already: one pass
+    known = dict(sources)
     budgets = _budget_names(cfg_settings["budgets"])
+    past = assignment.past if assignment.past is not None and assignment.past.ids == ids else None
     if ledger is not None:
         # Keep the side of a group whose clips are all gone, so it returns to the same side.
-        current = set(groups) | set(map(_BASE, kept))
+        current = set(groups) | set(past.base_names if past is not None else map(_BASE, kept))
         groups.update({g: side for g, side in ledger.groups.items() if g not in current})
         parts.update({g: part for g, part in ledger.parts.items() if g not in current})
-        for cid in sorted(ledger.clips.keys() - clips.keys()):  # the gone clips, a set difference in C
+        # No clip is gone when every ledger clip is among the (distinct) present ones.
+        every = past is not None and len(clips) == len(ids) and np.count_nonzero(past.known) == len(ledger.clips)
+        for cid in () if every else sorted(ledger.clips.keys() - clips.keys()):  # a set difference in C
             rec = ledger.clips[cid]
             clips[cid] = _gone_record(rec, budgets, assignment.continues)
             # Every clip row names a group that has a row (the parser checks).
