@@ -16,10 +16,15 @@ never given to another symbol.
 
 from __future__ import annotations
 
+import itertools
 import math
+import re
 from collections import Counter
+from itertools import chain
 from pathlib import Path
 from typing import Any
+
+import numpy as np
 
 from pipeline.core.errors import UsageError
 from pipeline.core.fsio import write_text_atomic
@@ -54,10 +59,17 @@ def read_ids(path: Path) -> dict[str, int]:
     return ids
 
 
+# Upper-case ASCII letters and digits (ARPAbet's symbols, stress digits and all) make
+# no segment of panphon's table, whose ASCII segments are lower-case letters (a test
+# checks): such a symbol has no class, and the table is not loaded for it (0.024 CPU s,
+# once per process).
+_NOT_IPA = re.compile(r"[A-Z][A-Z0-9]*")
+
+
 def _class(symbol: str, boundary: str, classify: bool) -> str:
     if boundary and symbol == boundary:
         return "boundary"
-    if not classify:
+    if not classify or _NOT_IPA.fullmatch(symbol):
         return ""
     from pipeline.text.ipa import feature_table, phone_class, table_units
 
@@ -74,18 +86,47 @@ def build_inventory(clips: list[tuple[list[str], float]], *, boundary: str,
     >>> [(r["symbol"], r["id"], r["count"], r["seconds"], r["class"]) for r in rows]
     [('b', 0, 1, 0.5, 'consonant'), ('a', 1, 1, 0.5, 'vowel'), ('|', 2, 1, 0.0, 'boundary')]
     """
-    counts: Counter[str] = Counter()
-    seconds: dict[str, list[float]] = {}
-    for phones, duration_s in clips:
-        sounds = [p for p in phones if not (boundary and p == boundary)]
-        counts.update(phones)
-        for p in sounds:
-            seconds.setdefault(p, []).append(duration_s / len(sounds))
+    counts, seconds = _tally(clips, boundary=boundary)
     ids = dict(known)
     for symbol in sorted(set(counts) - set(ids)):
         ids[symbol] = max(ids.values(), default=-1) + 1
-    return [{"symbol": s, "id": i, "count": counts.get(s, 0), "seconds": round(math.fsum(seconds.get(s, [])), 3),
+    return [{"symbol": s, "id": i, "count": counts.get(s, 0), "seconds": round(seconds.get(s, 0.0), 3),
              "class": _class(s, boundary, classify)} for s, i in sorted(ids.items(), key=lambda kv: kv[1])]
+
+
+def _tally(clips: list[tuple[list[str], float]], *, boundary: str) -> tuple[Counter[str], dict[str, float]]:
+    """Each symbol's occurrences, and its seconds: each clip's duration shared equally
+    among its phones (the boundary symbol takes no share), summed by ``math.fsum``.
+
+    By codes and arrays, a Python call per distinct symbol: fsum's sum is correctly
+    rounded whatever the order, so summing a symbol's shares together gives the float
+    of a sum clip by clip (0.009 CPU s for the 3,700 clips, 52,000 phones of the
+    100,000-source rebuild; 0.002 s so).
+
+    Examples
+    --------
+    >>> _tally([(["a", "|", "b"], 1.0), (["a"], 0.3)], boundary="|")
+    (Counter({'a': 2, '|': 1, 'b': 1}), {'a': 0.8, 'b': 0.5})
+    """
+    phones = [p for p, _ in clips]
+    flat = list(chain.from_iterable(phones))
+    counts = Counter(flat)
+    if not flat:
+        return counts, {}
+    index = {p: k for k, p in enumerate(counts)}
+    codes = np.fromiter(map(index.__getitem__, flat), np.int64, count=len(flat))
+    sizes = np.fromiter(map(len, phones), np.int64, count=len(phones))
+    sounds = sizes - (np.fromiter((p.count(boundary) for p in phones), np.int64, count=len(phones)) if boundary
+                      else 0)
+    durations = np.fromiter((d for _, d in clips), np.float64, count=len(clips))
+    share = np.repeat(np.divide(durations, sounds, out=np.zeros(len(clips)), where=sounds > 0), sizes)
+    keep = codes != index[boundary] if boundary and boundary in index else np.ones(len(flat), bool)
+    order = np.argsort(codes[keep], kind="stable")
+    ordered_codes, ordered = codes[keep][order], share[keep][order].tolist()
+    cuts = np.searchsorted(ordered_codes, np.arange(len(index) + 1)).tolist()
+    names = list(index)
+    seconds = {names[k]: math.fsum(ordered[a:b]) for k, (a, b) in enumerate(itertools.pairwise(cuts)) if b > a}
+    return counts, seconds
 
 
 def format_inventory(rows: list[dict[str, Any]]) -> str:
