@@ -45,7 +45,7 @@ def clip_lists(draw: Any) -> list[split.Clip]:
             row=k, clip_id=f"c{k:03d}", speaker=draw(st.sampled_from(SPEAKERS)), duration_s=duration,
             source_path=f"s{k}.wav", text=None if text is None else {"norm_text": text, "phones": ["AA"]},
             base_group=group, group=group, flags=frozenset(), plain_phones=("AA",) if text else (),
-            speaking_rate=None, rate_z=None, near_duplicate_of=None, eligible=eligible))
+            eligible=eligible))
     return clips
 
 
@@ -354,8 +354,8 @@ def test_subset_facts_add_up_to_the_corpus(clips: list[split.Clip], data: Any) -
 def test_pair_rows_equal_one_row_per_pair(rows: list[tuple[float, bool]]) -> None:
     """The summary's pair rows, each distinct similarity rounded once, equal rounding
     each pair's (repeats included, values that round half way)."""
-    clips = [split.Clip(k, f"c{k:03d}", "alder", 1.0, "s.wav", None, "g", "g", frozenset(), (), None, None, None,
-                        False) for k in range(len(rows) + 1)]
+    clips = [split.Clip(k, f"c{k:03d}", "alder", 1.0, "s.wav", None, "g", "g", frozenset(), (), False)
+             for k in range(len(rows) + 1)]
     pairs = split.DuplicatePairs(np.arange(len(rows), dtype=np.int64), np.arange(1, len(rows) + 1, dtype=np.int64),
                                  np.array([r[0] for r in rows], np.float64), np.array([r[1] for r in rows], bool))
     expected = [{"clips": [f"c{k:03d}", f"c{k + 1:03d}"], "similarity": round(sim, 4), "identical": same}

@@ -282,7 +282,9 @@ class Clip:
     after (not frozen only because a frozen dataclass sets each field through
     ``object.__setattr__``: 0.60 against 0.26 CPU s for 235,000 clips). The audio row
     itself stays in the stage's Arrow table (row ``row`` of :attr:`Joined.audio`); a
-    clip carries the few values the assignment reads.
+    clip carries the few values the assignment reads. The values only the subset
+    manifests read (speaking rate, its z-score, the best near-duplicate) are in
+    :class:`Columns` alone.
     """
 
     row: int
@@ -295,9 +297,6 @@ class Clip:
     group: str
     flags: frozenset[str]
     plain_phones: tuple[str, ...]
-    speaking_rate: float | None
-    rate_z: float | None
-    near_duplicate_of: str | None
     eligible: bool
 
     @property
@@ -527,14 +526,6 @@ def measure_gates(joined: Joined, phones: Sequence[tuple[str, ...]], *, min_snr_
         eligible=transcribed & ~held)
 
 
-def _floats_or_none(values: np.ndarray, keep: np.ndarray) -> list[float | None]:
-    """``values`` as Python floats, None where ``keep`` is False, in one pass in C (a
-    Python call per clip took 0.013 against 0.003 CPU s for 101,000 values)."""
-    out = np.asarray(values, dtype=np.float64).astype(object)
-    out[~np.asarray(keep, dtype=bool)] = None
-    return out.tolist()
-
-
 def _flag_sets(masks: Mapping[str, np.ndarray], count: int) -> tuple[np.ndarray, list[frozenset[str]]]:
     """Each clip's flags as a code into the distinct combinations, and those as frozensets."""
     names = sorted(masks)
@@ -607,17 +598,11 @@ def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None, unbou
     near[pairs.first] = near[pairs.second] = True
     flag_codes, flag_sets = _flag_sets({**row_flags(joined), **measured.flags, "near_duplicate": near},
                                        len(clip_ids))
-    # Each clip's best partner's id, None for none: object arrays, no Python loop per pair.
-    partners = np.full(len(clip_ids), None, dtype=object)
-    paired = np.flatnonzero(partner >= 0)
-    partners[paired] = np.array(list(map(clip_ids.__getitem__, partner[paired].tolist())), dtype=object)
     # Positional, in the order of Clip's fields (keywords took 0.14 against 0.05 s per
     # 235,000), and called by map() from C over the columns (one list each, of equal length).
     clips = list(map(Clip, range(len(clip_ids)), clip_ids, speakers, joined.numbers("duration_s").tolist(),
                      audio.column("source_path").to_pylist(), texts, base, merged,
-                     map(flag_sets.__getitem__, flag_codes.tolist()), phones,
-                     _floats_or_none(measured.rates, measured.rated), _floats_or_none(measured.z, measured.scored),
-                     partners.tolist(), measured.eligible.tolist()))
+                     map(flag_sets.__getitem__, flag_codes.tolist()), phones, measured.eligible.tolist()))
     columns = Columns(bound.group, pa.array(bound.group_names, pa.string()), measured.rates, measured.rated,
                       measured.z, measured.scored, partner, flag_codes, flag_sets, measured.eligible,
                       np.fromiter(map(bool, phones), bool, count=len(phones)), bound.base, bound.base_names,
