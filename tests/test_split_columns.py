@@ -324,28 +324,89 @@ def test_past_from_the_clips_columns_equals_past_from_the_clips(clips: list[spli
             assert getattr(past, name).tolist() == getattr(plain, name).tolist(), name
 
 
+def columns_of(clips: list[split.Clip], flags: list[frozenset[str]] | None = None) -> split.Columns:
+    """build_clips' columns of the clips (clip ``k`` at row ``k``), with each clip's flags."""
+    group, group_names = split._codes([c.group for c in clips])
+    base, base_names = split._codes([c.base_group for c in clips])
+    speaker, speaker_names = split._codes([c.speaker for c in clips])
+    flag_code, flag_sets = split._codes(flags if flags is not None else [c.flags for c in clips])
+    none = np.zeros(len(clips))
+    return split.Columns(group, pa.array(group_names, pa.string()), none, none.astype(bool), none, none.astype(bool),
+                         none.astype(np.int64), flag_code, flag_sets, np.array([c.eligible for c in clips], bool),
+                         np.array([bool(c.plain_phones) for c in clips], bool), base, base_names, group_names,
+                         np.array([c.text is not None for c in clips], bool),
+                         np.array([c.duration_s for c in clips], np.float64), speaker, len(speaker_names),
+                         [c.plain_phones for c in clips])
+
+
+def reference_describe(clips: list[split.Clip], inventory: set[str]) -> dict[str, Any]:
+    """A subset's or tier's description read one clip at a time."""
+    phones = set().union(*(c.plain_phones for c in clips))
+    return {"clips": len(clips), "hours": round(math.fsum(c.duration_s for c in clips) / 3600.0, 4),
+            "speakers": len({c.speaker for c in clips}), "groups": len({c.group for c in clips}),
+            "transcribed_clips": sum(c.text is not None for c in clips), "phones": len(phones),
+            "phone_share": round(len(phones) / len(inventory), 4) if inventory else 0.0}
+
+
+def reference_sizes(clips: list[split.Clip], scorable: set[str]) -> dict[str, Any]:
+    """A subset's or part's sizes read one clip at a time."""
+    seconds = math.fsum(c.duration_s for c in clips)
+    scored = [c.duration_s for c in clips if c.clip_id in scorable]
+    untranscribed = [c.duration_s for c in clips if c.text is None]
+    return {"clips": len(clips), "seconds": round(seconds, 3), "hours": round(seconds / 3600.0, 4),
+            "scorable_clips": len(scored), "scorable_seconds": round(math.fsum(scored), 3),
+            "scorable_hours": round(math.fsum(scored) / 3600.0, 4), "speakers": len({c.speaker for c in clips}),
+            "groups": len({c.group for c in clips}), "untranscribed_clips": len(untranscribed),
+            "untranscribed_seconds": round(math.fsum(untranscribed), 3)}
+
+
+PHONE_SETS = ((), ("AA",), ("AA", "B"), ("K", "AA", "K"), ("SH",))
+
+
 @settings(max_examples=200, deadline=None)
 @given(clip_lists(), st.data())
-def test_subset_facts_add_up_to_the_corpus(clips: list[split.Clip], data: Any) -> None:
-    """The summary reads each subset's facts once and the corpus's as their union:
-    phones, groups and seconds (fsum over the subsets' durations one after the other)
-    equal those read over every clip, and each section equals its reading without facts."""
-    subset = {c.clip_id: data.draw(st.sampled_from(SUBSETS)) for c in clips}
-    by_subset = split._by_subset(clips, subset)
-    facts = {s: split.ClipFacts.of(by_subset[s]) for s in SUBSETS}
-    assert set().union(*(facts[s].phones for s in SUBSETS)) == set().union(*(c.plain_phones for c in clips))
-    assert set().union(*(facts[s].groups for s in SUBSETS)) == {c.group for c in clips}
-    chained = [d for s in SUBSETS for d in facts[s].durations]
-    assert math.fsum(chained) == math.fsum(c.duration_s for c in clips)
-    inventory = {"AA", "B"}
-    scorable = {c.clip_id for c in clips if c.eligible}
+def test_subset_facts_from_columns_equal_a_loop_over_clips(clips: list[split.Clip], data: Any) -> None:
+    """The summary reads each subset's facts from build_clips' columns by row, and the
+    corpus's as their union: the rows of each subset (some clips set aside), the
+    descriptions and sizes equal those read one clip at a time, and the union's phones,
+    groups and seconds (fsum over the subsets' durations one after the other) those of
+    every kept clip."""
+    clips = [replace(c, plain_phones=data.draw(st.sampled_from(PHONE_SETS)) if c.text else ()) for c in clips]
+    columns = columns_of(clips)
+    kept = [c for c in clips if data.draw(st.booleans())] if data.draw(st.booleans()) else list(clips)
+    subset = {c.clip_id: data.draw(st.sampled_from(SUBSETS)) for c in kept}
+    by_subset = split._by_subset(kept, subset, count=len(clips))
+    facts = {s: split.ClipFacts.of(columns, by_subset[s]) for s in SUBSETS}
+    assert frozenset().union(*(facts[s].phones for s in SUBSETS)) == set().union(*(c.plain_phones for c in kept))
+    groups = np.logical_or.reduce([facts[s].groups for s in SUBSETS])
+    assert {columns.group_list[g] for g in np.flatnonzero(groups).tolist()} == {c.group for c in kept}
+    chained = [d for s in SUBSETS for d in facts[s].durations.tolist()]
+    assert math.fsum(chained) == math.fsum(c.duration_s for c in kept)
+    inventory = {"AA", "B", "K", "SH"}
     for s in SUBSETS:
-        members = by_subset[s]
-        assert [c.clip_id for c in members] == [c.clip_id for c in clips if subset[c.clip_id] == s]
-        assert split._describe(members, inventory, facts[s]) == split._describe(members, inventory)
-        assert split.sizes(members, scorable, facts[s]) == split.sizes(members, scorable)
-        assert facts[s].untranscribed == [c for c in members if c.text is None]
-        assert len(facts[s].speakers) == len({c.speaker for c in members})
+        members = [c for c in kept if subset[c.clip_id] == s]
+        assert by_subset[s].tolist() == [c.row for c in members]
+        scorable = np.array([data.draw(st.booleans()) for _ in members], bool)
+        named = {c.clip_id for c, on in zip(members, scorable.tolist(), strict=True) if on}
+        assert split._describe(facts[s], inventory) == reference_describe(members, inventory)
+        assert split.sizes(facts[s], scorable) == reference_sizes(members, named)
+
+
+FLAG_NAMES = ("noisy", "upsampled", "near_duplicate", "peak_limited")
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.frozensets(st.sampled_from(FLAG_NAMES)), max_size=30), st.data())
+def test_flag_counts_equal_a_count_per_clip(flags: list[frozenset[str]], data: Any) -> None:
+    """The clips carrying each flag, counted by flag combination, equal a count clip by
+    clip, over every clip and over some rows."""
+    clips = [split.Clip(k, f"c{k:03d}", "alder", 1.0, "s.wav", None, "g", "g", f, (), False)
+             for k, f in enumerate(flags)]
+    columns = columns_of(clips, flags)
+    rows = np.array([k for k in range(len(flags)) if data.draw(st.booleans())], np.int64)
+    assert split._flag_counts(columns, None, FLAG_NAMES) == {f: sum(f in c for c in flags) for f in FLAG_NAMES}
+    assert split._flag_counts(columns, rows, FLAG_NAMES) == \
+        {f: sum(f in flags[k] for k in rows.tolist()) for f in FLAG_NAMES}
 
 
 @settings(max_examples=200, deadline=None)
@@ -366,9 +427,11 @@ def test_pair_rows_equal_one_row_per_pair(rows: list[tuple[float, bool]]) -> Non
 @settings(max_examples=100, deadline=None)
 @given(st.lists(st.lists(st.one_of(st.none(), st.sampled_from(["wren", "alder", "", "héron"])), max_size=8),
                 min_size=1, max_size=3))
-def test_shared_strings_equal_the_column_values(chunks: list[list[str | None]]) -> None:
+def test_string_codes_equal_the_codes_of_the_column_values(chunks: list[list[str | None]]) -> None:
     column = pa.chunked_array(chunks, pa.string())
-    assert split._shared_strings(column) == column.to_pylist()
+    codes, names = split._string_codes(column)
+    want_codes, want_names = split._codes(column.to_pylist())
+    assert codes.dtype == np.int64 and codes.tolist() == want_codes.tolist() and names == want_names
 
 
 @settings(max_examples=200, deadline=None)

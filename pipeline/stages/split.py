@@ -380,21 +380,22 @@ def join_rows(audio: pa.Table, text: pa.Table, *, keys: bool = False) -> Joined:
     return Joined(audio, text, texts, text_rows, fingerprints, orphans, found)
 
 
-def _shared_strings(column: pa.ChunkedArray) -> list[str]:
-    """A string column's values as a list, one Python string per distinct value (a
-    speaker's name, repeated over its clips): fewer objects to make and free, and each
-    hashed once where sets and dicts take them.
+def _string_codes(column: pa.ChunkedArray) -> tuple[np.ndarray, list[Any]]:
+    """A column's values as codes and the distinct values by code, numbered in order of
+    first appearance as :func:`_codes` gives them, from one hash pass in Arrow: a
+    speaker's name, repeated over its clips, becomes one Python string (fewer objects
+    to make and free, each hashed once where sets and dicts take it).
 
     Examples
     --------
-    >>> names = _shared_strings(pa.chunked_array([["wren", "alder", "wren"]]))
-    >>> names, names[0] is names[2]
-    (['wren', 'alder', 'wren'], True)
+    >>> codes, names = _string_codes(pa.chunked_array([["wren", "alder", "wren"]]))
+    >>> codes.tolist(), names
+    ([0, 1, 0], ['wren', 'alder'])
     """
     encoded = column.combine_chunks().dictionary_encode() if len(column) else None
     if encoded is None or encoded.null_count:
-        return column.to_pylist()
-    return list(map(encoded.dictionary.to_pylist().__getitem__, encoded.indices.to_numpy().tolist()))
+        return _codes(column.to_pylist())
+    return encoded.indices.to_numpy().astype(np.int64), encoded.dictionary.to_pylist()
 
 
 def plain_phones(text: dict[str, Any] | None, *, word_boundary: str) -> tuple[str, ...]:
@@ -491,7 +492,7 @@ class GateMeasures:
 def measure_gates(joined: Joined, phones: Sequence[tuple[str, ...]], *, min_snr_db: float,
                   min_bandwidth_hz: float, rate_max_abs_z: float, rate_min_clips: int,
                   actions: Mapping[str, str], rate_min_spread: float = 0.0,
-                  max_clipped_fraction: float = 1.0) -> GateMeasures:
+                  max_clipped_fraction: float = 1.0, speakers: np.ndarray | None = None) -> GateMeasures:
     """Speaking rate and its robust z-score per speaker, the gate flags, and eligibility.
 
     ``speaking_rate`` is phones (word boundaries left out) per second of speech;
@@ -501,6 +502,7 @@ def measure_gates(joined: Joined, phones: Sequence[tuple[str, ...]], *, min_snr_
     :mod:`pipeline.stages.gates`, which ``loam validate`` checks with too: a clip is eligible
     for labelled and held-out scoring when it has a transcript and no gate whose
     action (``actions``, gate to "flag", "demote" or "reject") holds it back flagged it.
+    ``speakers``, the speaker column as integer codes, spares reading it again.
     """
     transcribed = joined.text_rows >= 0
     speech_s = joined.numbers("speech_s")
@@ -510,9 +512,10 @@ def measure_gates(joined: Joined, phones: Sequence[tuple[str, ...]], *, min_snr_
     rates[rated] = n_phones[rated] / speech_s[rated]
     # The speakers as integer codes (the schema allows no missing speaker): a Python
     # string per clip and their factorizing cost 0.07 CPU s at 101,000 clips.
-    column = joined.audio.column("speaker")
-    speakers = (pc.index_in(column, value_set=pc.unique(column)).to_numpy(zero_copy_only=False).astype(np.int64)
-                if not column.null_count else np.array(column.to_pylist(), dtype=object))
+    if speakers is None:
+        column = joined.audio.column("speaker")
+        speakers = (pc.index_in(column, value_set=pc.unique(column)).to_numpy(zero_copy_only=False).astype(np.int64)
+                    if not column.null_count else np.array(column.to_pylist(), dtype=object))
     z = (gates.robust_z_scores(rates, speakers, min_group_size=rate_min_clips, min_mad_fraction=rate_min_spread)
          if len(phones) else np.zeros(0))
     flags = gates.gate_flags(
@@ -544,8 +547,11 @@ class Columns:
     ``group_names``), the speaking rate and its z-score (``rated``, ``scored``: False
     where the manifest says null), the best near-duplicate partner's row (-1 for none),
     the flags (codes into ``flag_sets``), eligibility and whether the clip has phones;
-    the base group (codes into ``base_names``), the merged groups' names as a list, and
-    whether the clip has a transcript. Groups are numbered in order of first appearance."""
+    the base group (codes into ``base_names``), the merged groups' names as a list,
+    whether the clip has a transcript, its duration, its speaker (codes, ``speaker_count``
+    of them) and its phones without word boundaries (as :attr:`Clip.plain_phones`): the
+    summary reads these by row. Groups and speakers are numbered in order of first
+    appearance."""
 
     group: np.ndarray
     group_names: pa.Array
@@ -562,6 +568,10 @@ class Columns:
     base_names: list[str]
     group_list: list[str]
     transcribed: np.ndarray
+    duration_s: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    speaker: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    speaker_count: int = 0
+    plain_phones: list[tuple[str, ...]] = field(default_factory=list)
 
 
 def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None, unbound: Collection[str] = ()
@@ -577,7 +587,8 @@ def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None, unbou
     qc, group_by = cfg.quality, cfg.split.group_by
     audio, texts = joined.audio, joined.texts
     clip_ids = audio.column("clip_id").to_pylist()
-    speakers = _shared_strings(audio.column("speaker"))
+    speaker_codes, speaker_names = _string_codes(audio.column("speaker"))
+    speakers = list(map(speaker_names.__getitem__, speaker_codes.tolist()))
     boundary = cfg.text.word_boundary
     # Only the transcribed clips (a third or so) have phones to read.
     phones: list[tuple[str, ...]] = [()] * len(texts)
@@ -593,20 +604,22 @@ def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None, unbou
     measured = measure_gates(joined, phones, min_snr_db=qc.min_snr_db,
                              min_bandwidth_hz=qc.min_bandwidth_hz, rate_max_abs_z=qc.rate_max_abs_z,
                              rate_min_clips=qc.rate_min_clips, rate_min_spread=qc.rate_min_spread,
-                             actions=qc.gate_actions, max_clipped_fraction=cfg.audio.max_clipped_fraction)
+                             actions=qc.gate_actions, max_clipped_fraction=cfg.audio.max_clipped_fraction,
+                             speakers=speaker_codes)
     near = np.zeros(len(clip_ids), dtype=bool)
     near[pairs.first] = near[pairs.second] = True
     flag_codes, flag_sets = _flag_sets({**row_flags(joined), **measured.flags, "near_duplicate": near},
                                        len(clip_ids))
     # Positional, in the order of Clip's fields (keywords took 0.14 against 0.05 s per
     # 235,000), and called by map() from C over the columns (one list each, of equal length).
-    clips = list(map(Clip, range(len(clip_ids)), clip_ids, speakers, joined.numbers("duration_s").tolist(),
+    durations = joined.numbers("duration_s")
+    clips = list(map(Clip, range(len(clip_ids)), clip_ids, speakers, durations.tolist(),
                      audio.column("source_path").to_pylist(), texts, base, merged,
                      map(flag_sets.__getitem__, flag_codes.tolist()), phones, measured.eligible.tolist()))
     columns = Columns(bound.group, pa.array(bound.group_names, pa.string()), measured.rates, measured.rated,
                       measured.z, measured.scored, partner, flag_codes, flag_sets, measured.eligible,
                       np.fromiter(map(bool, phones), bool, count=len(phones)), bound.base, bound.base_names,
-                      bound.group_names, joined.text_rows >= 0)
+                      bound.group_names, joined.text_rows >= 0, durations, speaker_codes, len(speaker_names), phones)
     return clips, pairs, columns
 
 
@@ -1100,16 +1113,15 @@ def _finite_column(column: pa.ChunkedArray) -> pa.ChunkedArray:
     return pc.if_else(pc.is_finite(column), column, pa.scalar(None, column.type))
 
 
-def _subset_table(joined: Joined, columns: Columns, clips: Sequence[Clip], subset: str, assignment: Assignment, *,
+def _subset_table(joined: Joined, columns: Columns, rows: np.ndarray, subset: str, assignment: Assignment, *,
                   keep_text: bool) -> pa.Table:
     """One subset's manifest: the audio and transcript columns taken from the stage's
     Arrow tables by row, the stage's own columns from :class:`Columns` by row (a
     Python value per clip for each took 0.15 against 0.05 CPU s for the three
     manifests of 101,000 clips). A demoted clip (``split.text_overlap = "demote"``)
     loses its transcript whatever ``split.keep_transcripts`` says; an unscored one
-    keeps it but is not scorable."""
+    keeps it but is not scorable. ``rows``: the subset's clips, rows of :attr:`Joined.audio`."""
     schema = arrow_schema("subset")
-    rows = np.fromiter(map(_ROW, clips), np.int64, count=len(clips))
     audio = joined.audio.select(list(_AUDIO_COLUMNS)).take(rows)
     ids = audio.column("clip_id")
     demoted = _members(ids, assignment.demoted if subset == UNLABELLED else frozenset())
@@ -1188,35 +1200,50 @@ def _hours(seconds: float) -> float:
 
 @dataclass(frozen=True)
 class ClipFacts:
-    """What the summary counts of a list of clips: their durations, speakers, groups,
-    phones and untranscribed clips. The summary describes each subset twice (its
-    ``subsets`` and ``sizes`` sections) and the corpus as their union: each subset's
-    facts are read once (a pass over the 90,000 unlabelled clips of a 101,000-clip
-    corpus costs a few ms for each)."""
+    """What the summary counts of some clips (rows of :attr:`Joined.audio`), read from
+    :class:`Columns` by row: their durations, the speakers and groups among them (a mask
+    over the codes of each), their phones, and which of them have no transcript.
 
-    durations: list[float]
-    speakers: set[str]
-    groups: set[str]
-    phones: set[str]
-    untranscribed: list[Clip]
+    The summary describes each subset twice (its ``subsets`` and ``sizes`` sections) and
+    the corpus as their union: each subset's facts are read once. Arrays by row rather
+    than a Python value per clip: for the 101,000 clips of the 100,000-source rebuild the
+    three subsets' facts took 0.028 CPU s from Clip records, the summary sections read
+    from them and the subsets' clips 0.08 s in all."""
+
+    durations: np.ndarray
+    speakers: np.ndarray
+    groups: np.ndarray
+    phones: frozenset[str]
+    untranscribed: np.ndarray
 
     @classmethod
-    def of(cls, clips: Sequence[Clip]) -> ClipFacts:
-        return cls(list(map(_DURATION, clips)), set(map(_SPEAKER, clips)), set(map(_GROUP, clips)),
-                   set().union(*map(_PHONES, clips)),
-                   list(compress(clips, map(operator.is_, map(_TEXT, clips), repeat(None)))))
+    def of(cls, columns: Columns, rows: np.ndarray) -> ClipFacts:
+        """The facts of the clips at ``rows`` (indices into ``columns``' arrays)."""
+        transcribed = columns.transcribed[rows]
+        # Only transcribed clips have phones: a third or so of them.
+        phones = frozenset().union(*map(columns.plain_phones.__getitem__, rows[transcribed].tolist()))
+        return cls(columns.duration_s[rows], _present(columns.speaker[rows], columns.speaker_count),
+                   _present(columns.group[rows], len(columns.group_list)), phones, ~transcribed)
+
+    @property
+    def seconds(self) -> float:
+        # fsum is exact: the same sum whatever the order of the clips.
+        return math.fsum(self.durations.tolist())
 
 
-def _describe(clips: Sequence[Clip], inventory: set[str], facts: ClipFacts | None = None) -> dict[str, Any]:
-    found = facts or ClipFacts.of(clips)
-    phones = found.phones
-    seconds = math.fsum(found.durations)
+def _present(codes: np.ndarray, count: int) -> np.ndarray:
+    """Which of ``count`` codes occur in ``codes``, a mask (a count per code, in C)."""
+    return np.bincount(codes, minlength=count) > 0
+
+
+def _describe(facts: ClipFacts, inventory: Collection[str]) -> dict[str, Any]:
+    phones = facts.phones
     return {
-        "clips": len(clips),
-        "hours": _hours(seconds),
-        "speakers": len(found.speakers),
-        "groups": len(found.groups),
-        "transcribed_clips": len(clips) - len(found.untranscribed),
+        "clips": int(facts.durations.size),
+        "hours": _hours(facts.seconds),
+        "speakers": int(np.count_nonzero(facts.speakers)),
+        "groups": int(np.count_nonzero(facts.groups)),
+        "transcribed_clips": int(facts.durations.size - np.count_nonzero(facts.untranscribed)),
         "phones": len(phones),
         "phone_share": round(len(phones) / len(inventory), 4) if inventory else 0.0,
     }
@@ -1422,7 +1449,7 @@ def _open_ledger(ctx: StageContext, sources: Collection[str]) -> LedgerUse:
     return LedgerUse(ledger_path, where, fresh, ledger)
 
 
-def _subset_tables(ctx: StageContext, by_subset: Mapping[str, list[Clip]], assignment: Assignment,
+def _subset_tables(ctx: StageContext, by_subset: Mapping[str, np.ndarray], assignment: Assignment,
                    joined: Joined, columns: Columns) -> dict[str, tuple[str, pa.Table]]:
     """The subset manifests, checked against their schema before the ledger records them
     (the runner writes them later)."""
@@ -1505,7 +1532,7 @@ def _run(ctx: StageContext) -> StageResult:
     assignment = assign(kept, ledger=ledger, seed=cfg.seed, targets=targets, budgets=budgets,
                         method=sc.selection, text_overlap=sc.text_overlap, balance=balance, columns=columns)
 
-    by_subset = _by_subset(kept, assignment.subset)
+    by_subset = _by_subset(kept, assignment.subset, count=len(clips))
     tables = _subset_tables(ctx, by_subset, assignment, joined, columns)
     shortfalls = _log_tiers(ctx, assignment, kept)
 
@@ -1523,15 +1550,14 @@ def _run(ctx: StageContext) -> StageResult:
         if ledger and "gone" in ledger.sources.values() else 0
     _log_changes(ctx, changes, str(use.path), ledger is not None)
 
-    facts = {s: ClipFacts.of(by_subset[s]) for s in SUBSETS}
-    summary = _summary(kept, clips, assignment, pairs, by_subset, target_s=target_s, eligible_s=eligible_s,
-                       group_by=sc.group_by, orphans=orphans, facts=facts,
+    facts = {s: ClipFacts.of(columns, by_subset[s]) for s in SUBSETS}
+    made = {s: tables[SUBSET_PATHS[s]][1] for s in SUBSETS}
+    summary = _summary(clips, columns, assignment, pairs, by_subset, made, target_s=target_s,
+                       eligible_s=eligible_s, group_by=sc.group_by, orphans=orphans, facts=facts,
                        rejected={f"rejected_{g}": sum(r["reason"] == g for r in rejects)
                                  for g in gates.GATES if "reject" in gates.ACTIONS[g]})
-    scorable = set().union(*(table.filter(table.column("scorable")).column("clip_id").to_pylist()
-                             for _, table in tables.values()))
-    summary.update(parts_summary(by_subset, assignment, targets, balance, text_overlap=sc.text_overlap,
-                                 scorable=scorable, facts=facts))
+    summary.update(parts_summary(columns, by_subset, made, assignment, targets, balance,
+                                 text_overlap=sc.text_overlap, facts=facts))
     _log_parts(ctx, summary)
     summary["changes"] = changes
     summary["shortfalls"] = shortfalls
@@ -1558,12 +1584,15 @@ def _subsets_of(subset: Mapping[str, str], ids: list[str]) -> list[str]:
     return list(map(subset.__getitem__, ids))
 
 
-def _by_subset(kept: Sequence[Clip], subset: Mapping[str, str]) -> dict[str, list[Clip]]:
-    """The kept clips of each subset, in clip order (as codes and masks: a Python loop
-    appending each clip took 0.025 CPU s at 101,000 clips)."""
+def _by_subset(kept: Sequence[Clip], subset: Mapping[str, str], *, count: int) -> dict[str, np.ndarray]:
+    """The rows (of :attr:`Joined.audio`, ``count`` of them) of the kept clips of each
+    subset, in clip order (as codes and masks: a Python loop appending each clip took
+    0.025 CPU s at 101,000 clips). Kept clips are every clip unless some were set aside:
+    then their rows are read from them."""
     codes, names = _codes(_subsets_of(subset, list(map(_ID, kept))))
-    return {s: list(map(kept.__getitem__, np.flatnonzero(codes == names.index(s)).tolist())) if s in names else []
-            for s in SUBSETS}
+    rows = np.arange(count, dtype=np.int64) if len(kept) == count else \
+        np.fromiter(map(_ROW, kept), np.int64, count=len(kept))
+    return {s: rows[codes == names.index(s)] if s in names else np.zeros(0, np.int64) for s in SUBSETS}
 
 
 def _log_parts(ctx: StageContext, summary: Mapping[str, Any]) -> None:
@@ -1657,47 +1686,65 @@ def _gone_record(rec: ClipRecord, budgets: tuple[str, ...], continues: Mapping[s
     return ClipRecord(LABELLED, budgets[kept[0]:], rec.group)
 
 
-def _summary(kept: Sequence[Clip], clips: Sequence[Clip], assignment: Assignment, pairs: DuplicatePairs,
-             by_subset: Mapping[str, list[Clip]], *, target_s: float, eligible_s: float, group_by: str,
-             orphans: int, rejected: dict[str, int], facts: Mapping[str, ClipFacts] | None = None) -> dict[str, Any]:
+def _flag_counts(columns: Columns, rows: np.ndarray | None, flags: Iterable[str]) -> dict[str, int]:
+    """How many of the clips at ``rows`` (None: every clip) carry each of ``flags``: clips
+    share one flag set per combination, so the combinations are counted, then the flags."""
+    codes = columns.flags if rows is None else columns.flags[rows]
+    counts = np.bincount(codes, minlength=len(columns.flag_sets)).tolist()
+    return {f: sum(n for found, n in zip(columns.flag_sets, counts, strict=True) if f in found) for f in flags}
+
+
+def _summary(clips: Sequence[Clip], columns: Columns, assignment: Assignment, pairs: DuplicatePairs,
+             by_subset: Mapping[str, np.ndarray], tables: Mapping[str, pa.Table], *, target_s: float,
+             eligible_s: float, group_by: str, orphans: int, rejected: dict[str, int],
+             facts: Mapping[str, ClipFacts] | None = None) -> dict[str, Any]:
+    """The summary's corpus, subset, tier, gate and pair sections. ``clips``: every clip
+    (set aside or kept), whose flags the gates count; ``by_subset``: the kept clips'
+    rows by subset, whose manifests are ``tables`` (by subset)."""
     # The subsets hold every kept clip once: the corpus's phones, groups and seconds are
     # those of the subsets together.
-    facts = facts or {s: ClipFacts.of(by_subset[s]) for s in SUBSETS}
-    inventory = set().union(*(facts[s].phones for s in SUBSETS))
-    subsets = {s: _describe(by_subset[s], inventory, facts[s]) for s in SUBSETS}
-    scored = [c for c in by_subset[HELDOUT] if c.eligible and c.clip_id not in assignment.unscored]
-    subsets[HELDOUT]["scored_clips"] = len(scored)
-    subsets[HELDOUT]["scored_hours"] = _hours(math.fsum(c.duration_s for c in scored))
+    facts = facts or {s: ClipFacts.of(columns, by_subset[s]) for s in SUBSETS}
+    inventory = frozenset().union(*(facts[s].phones for s in SUBSETS))
+    subsets = {s: _describe(facts[s], inventory) for s in SUBSETS}
+    held = by_subset[HELDOUT]
+    scored = columns.duration_s[held[columns.eligible[held] & ~_members(tables[HELDOUT].column("clip_id"),
+                                                                         assignment.unscored)]]
+    scored_s = math.fsum(scored.tolist())
+    subsets[HELDOUT]["scored_clips"] = int(scored.size)
+    subsets[HELDOUT]["scored_hours"] = _hours(scored_s)
     # Every clip of a tier is labelled: look them up among the labelled clips alone.
-    by_id = {c.clip_id: c for c in by_subset[LABELLED]}
+    labelled = by_subset[LABELLED]
+    at = {cid: k for k, cid in enumerate(tables[LABELLED].column("clip_id").to_pylist())} if assignment.outcomes \
+        else {}
     tiers = {}
     for outcome in assignment.outcomes:
-        row = _describe([by_id[cid] for cid in sorted(outcome.clips)], inventory)
+        mine = labelled[np.fromiter(map(at.__getitem__, outcome.clips), np.int64, count=len(outcome.clips))]
+        row = _describe(ClipFacts.of(columns, mine), inventory)
         row.update({"budget_s": round(outcome.budget_s, 3), "selected_s": round(outcome.total_s, 3),
                     "shortfall_s": round(outcome.shortfall_s, 3)})
         tiers[outcome.name] = row
-    # Clips share one flag set per combination: count the combinations, then the flags.
-    combinations = Counter(map(_FLAGS, clips))
-    gate_counts = {g: sum(n for flags, n in combinations.items() if g in flags) for g in GATES}
+    gate_counts = _flag_counts(columns, None if len(clips) == columns.flags.size else
+                               np.fromiter(map(_ROW, clips), np.int64, count=len(clips)), GATES)
     gate_counts.update(rejected)
-    combinations = Counter(map(_FLAGS, kept))
-    notes = {f: sum(n for flags, n in combinations.items() if f in flags)
-             for f in ("upsampled", "peak_limited", "transcript_rejected")}
-    notes["heldout_untranscribed"] = countOf(map(_TEXT, by_subset[HELDOUT]), None)
+    notes: dict[str, int] = _flag_counts(columns, np.concatenate([by_subset[s] for s in SUBSETS]),
+                                         ("upsampled", "peak_limited", "transcript_rejected"))
+    notes["heldout_untranscribed"] = int(np.count_nonzero(facts[HELDOUT].untranscribed))
     notes["orphan_transcripts"] = orphans
-    groups = set().union(*(facts[s].groups for s in SUBSETS))
-    sides = Counter(assignment.sides[g] for g in groups)
+    groups = np.logical_or.reduce([facts[s].groups for s in SUBSETS])
+    sides = Counter(map(assignment.sides.__getitem__, map(columns.group_list.__getitem__,
+                                                         np.flatnonzero(groups).tolist())))
+    kept = sum(facts[s].durations.size for s in SUBSETS)
     return {
-        "clips": len(kept),
+        "clips": kept,
         # fsum is exact: the subsets' durations one after the other give the same sum.
-        "hours": _hours(math.fsum(itertools.chain.from_iterable(facts[s].durations for s in SUBSETS))),
+        "hours": _hours(math.fsum(itertools.chain.from_iterable(facts[s].durations.tolist() for s in SUBSETS))),
         "group_by": group_by,
-        "groups": len(groups),
+        "groups": int(np.count_nonzero(groups)),
         "heldout_groups": sides["heldout"],
         "training_groups": sides["training"],
         "eligible_hours": _hours(eligible_s),
         "heldout_target_s": round(target_s, 3),
-        "heldout_scored_s": round(math.fsum(c.duration_s for c in scored), 3),
+        "heldout_scored_s": round(scored_s, 3),
         "phone_inventory": len(inventory),
         "subsets": subsets,
         "tiers": tiers,
@@ -1723,52 +1770,61 @@ def _pair_rows(clips: Sequence[Clip], pairs: DuplicatePairs) -> list[dict[str, A
                                                 pairs.identical.tolist(), strict=True)]
 
 
-def sizes(clips: Sequence[Clip], scorable: set[str], facts: ClipFacts | None = None) -> dict[str, Any]:
+def sizes(facts: ClipFacts, scorable: np.ndarray) -> dict[str, Any]:
     """Clips, hours, scorable clips and hours, speakers and groups, and the untranscribed
-    audio among them (in held-out: audio of held-out speakers withheld from training)."""
-    found = facts or ClipFacts.of(clips)
-    seconds = math.fsum(found.durations)
-    # compress() and map() pick the clips in C: a comprehension over the 90,000
-    # unlabelled clips of a 101,000-clip corpus took 0.01 CPU s for each list.
-    counted = list(compress(clips, map(scorable.__contains__, map(_ID, clips))))
-    scored = math.fsum(map(_DURATION, counted))
-    untranscribed = found.untranscribed
+    audio among the clips of ``facts`` (in held-out: audio of held-out speakers withheld
+    from training); ``scorable`` says which of them are (a mask, in their order)."""
+    durations = facts.durations
+    seconds = facts.seconds
+    scored = math.fsum(durations[scorable].tolist())
     return {
-        "clips": len(clips), "seconds": round(seconds, 3), "hours": _hours(seconds),
-        "scorable_clips": len(counted), "scorable_seconds": round(scored, 3),
-        "scorable_hours": _hours(scored), "speakers": len(found.speakers),
-        "groups": len(found.groups), "untranscribed_clips": len(untranscribed),
-        "untranscribed_seconds": round(math.fsum(map(_DURATION, untranscribed)), 3),
+        "clips": int(durations.size), "seconds": round(seconds, 3), "hours": _hours(seconds),
+        "scorable_clips": int(np.count_nonzero(scorable)), "scorable_seconds": round(scored, 3),
+        "scorable_hours": _hours(scored), "speakers": int(np.count_nonzero(facts.speakers)),
+        "groups": int(np.count_nonzero(facts.groups)),
+        "untranscribed_clips": int(np.count_nonzero(facts.untranscribed)),
+        "untranscribed_seconds": round(math.fsum(durations[facts.untranscribed].tolist()), 3),
     }
 
 
-def parts_summary(by_subset: Mapping[str, list[Clip]], assignment: Assignment, targets: Sequence[PartTarget],
-                  balance: Balance, *, text_overlap: str, scorable: set[str],
+def _scorable(table: pa.Table) -> np.ndarray:
+    """A subset manifest's scorable column as a mask."""
+    return table.column("scorable").to_numpy().astype(bool, copy=False)
+
+
+def parts_summary(columns: Columns, by_subset: Mapping[str, np.ndarray], tables: Mapping[str, pa.Table],
+                  assignment: Assignment, targets: Sequence[PartTarget], balance: Balance, *, text_overlap: str,
                   facts: Mapping[str, ClipFacts] | None = None) -> dict[str, Any]:
     """The summary's ``sizes`` (per subset), ``parts`` (per held-out part, with its target),
-    ``text_overlap`` (what keeping test prompts apart cost) and ``balance`` sections."""
-    held = by_subset[HELDOUT]
+    ``text_overlap`` (what keeping test prompts apart cost) and ``balance`` sections, from
+    the kept clips' rows by subset and the subset manifests (``tables``, by subset), which
+    say which clips are scorable and each held-out clip's part."""
+    facts = facts or {s: ClipFacts.of(columns, by_subset[s]) for s in SUBSETS}
+    held, held_table = by_subset[HELDOUT], tables[HELDOUT]
+    scorable = {s: _scorable(tables[s]) for s in SUBSETS}
+    part = held_table.column(PART).to_numpy(zero_copy_only=False) if targets else None
     parts = {}
     for t in targets:
-        members = [c for c in held if assignment.parts.get(c.clip_id) == t.name]
-        parts[t.name] = {**sizes(members, scorable), "target_s": round(t.target_s, 3),
-                         "text_disjoint": t.text_disjoint}
+        mine = part == t.name
+        parts[t.name] = {**sizes(ClipFacts.of(columns, held[mine]), scorable[HELDOUT][mine]),
+                         "target_s": round(t.target_s, 3), "text_disjoint": t.text_disjoint}
     # Most runs unscore and demote nothing: no pass over the clips then.
-    unscored = [c for c in held if c.clip_id in assignment.unscored] if assignment.unscored else []
-    demoted = [c for c in by_subset[UNLABELLED] if c.clip_id in assignment.demoted] if assignment.demoted else []
+    unscored = columns.duration_s[held[_members(held_table.column("clip_id"), assignment.unscored)]]
+    unlabelled = by_subset[UNLABELLED]
+    demoted = columns.duration_s[unlabelled[_members(tables[UNLABELLED].column("clip_id"), assignment.demoted)]]
     cost = {
         "mode": text_overlap,
         "parts": [t.name for t in targets if t.text_disjoint],
-        "unscored_clips": len(unscored),
-        "unscored_hours": _hours(math.fsum(c.duration_s for c in unscored)),
-        "demoted_clips": len(demoted),
-        "demoted_hours": _hours(math.fsum(c.duration_s for c in demoted)),
+        "unscored_clips": int(unscored.size),
+        "unscored_hours": _hours(math.fsum(unscored.tolist())),
+        "demoted_clips": int(demoted.size),
+        "demoted_hours": _hours(math.fsum(demoted.tolist())),
         "demoted_were_labelled": assignment.demoted_labelled,
     }
     rows = balance_table(assignment.facts, assignment.places, parts=[t.name for t in targets],
                          columns=balance.columns, tolerance=balance.tolerance)
     return {
-        "sizes": {s: sizes(by_subset[s], scorable, facts[s] if facts else None) for s in SUBSETS},
+        "sizes": {s: sizes(facts[s], scorable[s]) for s in SUBSETS},
         "parts": parts,
         "text_overlap": cost,
         "balance": {"columns": list(balance.columns), "tolerance": balance.tolerance, "rows": rows,
