@@ -452,3 +452,19 @@ def test_places_read_prompts_only_when_a_group_is_ranked(clips: list[split.Clip]
     want = split._choose_places(past, ledger, full, seed=3, targets=targets, balance=balance)
     got = split._choose_places(past, ledger, lean, seed=3, targets=targets, balance=balance, with_prompts=lambda: full)
     assert got[:2] == want[:2]
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.integers(0, 300), max_size=60))
+def test_small_unique_equals_numpy_unique(values: list[int]) -> None:
+    codes = np.array(values, np.int64)
+    distinct, at = split._small_unique(codes)
+    want, want_at = np.unique(codes, return_inverse=True)
+    assert distinct.tolist() == want.tolist() and at.tolist() == want_at.ravel().tolist()
+
+
+@settings(max_examples=50, deadline=None)
+@given(st.integers(0, 40))
+def test_empty_lists_equal_converted_empty_lists(count: int) -> None:
+    kind = pa.list_(pa.string())
+    assert split._empty_lists(count, kind).equals(pa.array([[] for _ in range(count)], kind))
