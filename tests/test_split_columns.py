@@ -468,3 +468,16 @@ def test_small_unique_equals_numpy_unique(values: list[int]) -> None:
 def test_empty_lists_equal_converted_empty_lists(count: int) -> None:
     kind = pa.list_(pa.string())
     assert split._empty_lists(count, kind).equals(pa.array([[] for _ in range(count)], kind))
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.lists(st.lists(st.sampled_from(["K", "AE", "T", "|", "ʃ", ""]), max_size=6), max_size=6),
+                min_size=1, max_size=3), st.sampled_from(["", "|", "T"]), st.integers(0, 3), st.data())
+def test_plain_phones_equal_each_row_filtered(chunks: list[list[list[str]]], boundary: str, start: int,
+                                              data: Any) -> None:
+    """Each row's phones without word boundaries, from codes and slices of one list, equal
+    each row's list filtered one phone at a time; chunked and sliced columns too."""
+    column = pa.chunked_array(chunks, pa.list_(pa.string()))
+    column = column.slice(min(start, len(column)), data.draw(st.integers(0, len(column))))
+    expected = [tuple(p for p in row if not boundary or p != boundary) for row in column.to_pylist()]
+    assert split.plain_phones(column, word_boundary=boundary) == expected
