@@ -8,6 +8,7 @@ straightforward way, one clip at a time, and checks that both give the same valu
 
 from __future__ import annotations
 
+import itertools
 import math
 from collections import Counter, defaultdict
 from dataclasses import replace
@@ -481,3 +482,27 @@ def test_plain_phones_equal_each_row_filtered(chunks: list[list[list[str]]], bou
     column = column.slice(min(start, len(column)), data.draw(st.integers(0, len(column))))
     expected = [tuple(p for p in row if not boundary or p != boundary) for row in column.to_pylist()]
     assert split.plain_phones(column, word_boundary=boundary) == expected
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 7), st.integers(0, 7), st.sampled_from([0.5, 0.75, 0.9, 1.0])),
+                max_size=30))
+def test_best_partners_equal_a_sort_of_the_pairs(entries: list[tuple[int, int, float]]) -> None:
+    """Each item's partner of highest similarity, ties to the smaller partner, equals the
+    first entry per item of the entries sorted by item, descending similarity, partner."""
+    me = np.array([e[0] for e in entries], np.int64)
+    other = np.array([e[1] for e in entries], np.int64)
+    similarity = np.array([e[2] for e in entries], np.float64)
+    expected = [-1] * 8
+    for item, partner, _ in sorted(entries, key=lambda e: (e[0], -e[2], e[1])):
+        if expected[item] == -1:
+            expected[item] = partner
+    assert split.best_partners(me, other, similarity, count=8).tolist() == expected
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 5), st.integers(0, 5)), max_size=12))
+def test_strictly_sorted_equals_comparing_the_pairs(pairs: list[tuple[int, int]]) -> None:
+    first = np.array([p[0] for p in pairs], np.int64)
+    second = np.array([p[1] for p in pairs], np.int64)
+    assert split._strictly_sorted(first, second) == all(a < b for a, b in itertools.pairwise(pairs))

