@@ -213,6 +213,59 @@ def _modified_z(x: np.ndarray, ref: np.ndarray, min_mad_fraction: float = 0.0) -
     return np.zeros_like(dev)  # every reference value equals the median, and so does x
 
 
+def _sorted_medians(values: np.ndarray, starts: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """The median of each run ``values[starts[k]:starts[k] + counts[k]]`` (sorted, not
+    empty) as ``np.median`` gives it: the middle value, or the mean of the two middle ones."""
+    low, high = values[starts + (counts - 1) // 2], values[starts + counts // 2]
+    return np.where(counts % 2 == 1, low, (low + high) / 2)
+
+
+def grouped_modified_z(x: np.ndarray, codes: np.ndarray, *, min_mad_fraction: float = 0.0) -> np.ndarray:
+    """Each group's modified z-scores against its own values (``_modified_z``), for every
+    group at once: one sort by group and value, one by group and absolute deviation, and
+    the medians picked from them, rather than two ``np.median`` calls per group (the
+    speaking rates of the 100,000-source rebuild, 33,000 clips of 500 speakers: 0.017 CPU
+    s one speaker at a time). The few groups whose MAD is 0 take the fallback of
+    ``_modified_z`` one by one.
+
+    Parameters
+    ----------
+    x : np.ndarray
+        Finite values, one per item.
+    codes : np.ndarray
+        Each item's group, a non-negative integer.
+    min_mad_fraction : float
+        As for :func:`robust_z_scores`.
+
+    Returns
+    -------
+    np.ndarray
+        float64 scores in the items' order, each the float ``_modified_z`` gives.
+
+    Examples
+    --------
+    >>> grouped_modified_z(np.array([10.0, 1.0, 11, 12, 2.0, 13, 40, 3.0]), np.array([0, 1, 0, 0, 1, 0, 0, 1])).tolist()
+    [-1.349, -0.6745, -0.6745, 0.0, 0.0, 0.6745, 18.886, 0.6745]
+    """
+    order = np.lexsort((x, codes))
+    values, groups = x[order], codes[order]
+    starts = np.flatnonzero(np.r_[True, groups[1:] != groups[:-1]]) if groups.size else np.zeros(0, np.int64)
+    counts = np.diff(np.r_[starts, groups.size])
+    member = np.repeat(np.arange(starts.size), counts)
+    med = _sorted_medians(values, starts, counts)
+    dev = values - med[member]
+    spread = np.abs(dev)
+    mad = np.maximum(_sorted_medians(spread[np.lexsort((spread, member))], starts, counts),
+                     min_mad_fraction * np.abs(med))
+    scores = np.empty(x.shape)
+    scores[order] = _MAD_TO_Z * dev / np.where(mad > 0, mad, 1.0)[member]
+    for k in np.flatnonzero(mad <= 0).tolist():  # every value of the group's lower half is its median
+        # In the items' order: the fallback's mean adds them in the order given.
+        mine = np.sort(order[starts[k]:starts[k] + counts[k]])
+        scores[mine] = _modified_z(x[mine], x[mine], min_mad_fraction)
+    return scores
+
+
 def _factorize(labels: np.ndarray) -> np.ndarray:
     """Integer codes in order of first appearance; -1 for None and NaN (what
     ``pandas.factorize`` gives, without importing pandas for it).
@@ -297,17 +350,15 @@ def robust_z_scores(values: np.ndarray, groups: np.ndarray, *, min_group_size: i
     finite = ~np.isnan(x)
     if not finite.any():
         return out
-    codes = _factorize(labels)
+    # Small non-negative integers (such as a column's dictionary codes) are codes already:
+    # only which items share a group matters, not how groups are numbered.
+    small = labels.dtype.kind in "iu" and labels.size and labels.min() >= 0 and labels.max() < 2 * labels.size
+    codes = labels.astype(np.int64, copy=False) if small else _factorize(labels)
     sizes = np.bincount(codes[finite & (codes >= 0)], minlength=max(int(codes.max()) + 1, 1))
     own = finite & (codes >= 0) & (sizes[np.maximum(codes, 0)] >= min_group_size)
 
-    # Sort once and cut into groups: a mask per group would cost groups x items.
     index = np.flatnonzero(own)
-    index = index[np.argsort(codes[index], kind="stable")]
-    cuts = np.flatnonzero(np.diff(codes[index])) + 1
-    for members in np.split(index, cuts):
-        if members.size:
-            out[members] = _modified_z(x[members], x[members], min_mad_fraction)
+    out[index] = grouped_modified_z(x[index], codes[index], min_mad_fraction=min_mad_fraction)
     rest = finite & ~own
     if rest.any():
         out[rest] = _modified_z(x[rest], x[finite], min_mad_fraction)
