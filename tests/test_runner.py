@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import os
 import shutil
+import time
 from pathlib import Path
 
 import pytest
@@ -372,3 +373,151 @@ def test_stats_handed_over_in_order_are_taken_whole_and_others_looked_up(tmp_pat
     assert twice.column("path").to_pylist() == ["audio/a", "audio/b"]
     assert outputs_record._given_last(pa.array(["audio/b", "audio/a", "audio/b"]), known) is None
     assert outputs_record._given_last(pa.array(["m.parquet", "audio/a", "audio/b"]), known) is not None
+
+
+def _add_source(raw: Path) -> None:
+    """A new recording in RAW: the ingest manifest gains a row, so every stage runs."""
+    import soundfile as sf
+
+    from tests.conftest import speechlike
+
+    sf.write(raw / "spk_a" / "a3.wav", speechlike(1.5, 16000, seed=9), 16000)
+
+
+def test_a_stage_starts_before_its_inputs_bytes_are_made_only_when_it_must_run(
+        small_raw: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # The encoder thread makes a stage's main manifest while the next stage starts:
+    # the next one need not wait for the new bytes' hash when its manifest records the
+    # input hash of the files being replaced, whose bytes the new ones cannot be
+    # (Runner._stale_while_encoding). Reference: the plain path, which waits for the
+    # new bytes and compares the input hashes; the outputs must be byte-identical.
+    from pipeline.core import runner as runner_module
+    from pipeline.core.config import load_config
+    from pipeline.core.stage import Stage
+    from pipeline.stages import STAGES
+
+    out, first = tmp_path / "out", tmp_path / "first"
+    runner_module.Runner(small_raw, out, load_config(None), stages=STAGES, workers=1).prepare()
+    shutil.copytree(out, first, symlinks=True)
+    _add_source(small_raw)
+    monkeypatch.setattr(runner_module.Runner, "_stale_while_encoding", lambda *args: False)
+    plain = runner_module.Runner(small_raw, out, load_config(None), stages=STAGES, workers=1).prepare()
+    assert all(record.ran for record in plain)
+    reference = _outputs(out)
+    monkeypatch.undo()
+
+    shutil.rmtree(out)
+    shutil.copytree(first, out, symlinks=True)  # other inodes: the replaced files are hashed
+    write, stale, seen = runner_module.write_manifest, runner_module.Runner._stale_while_encoding, {}
+
+    def slow(path: Path, *args: object, **kwargs: object) -> object:
+        if Path(path).name.startswith(".loam-"):  # a main manifest, on the encoder thread
+            time.sleep(0.3)
+        return write(path, *args, **kwargs)  # type: ignore[arg-type]
+
+    def spy(self: runner_module.Runner, stage: Stage, *args: object) -> bool:
+        seen[stage.name] = answer = stale(self, stage, *args)  # type: ignore[arg-type]
+        return answer
+
+    monkeypatch.setattr(runner_module, "write_manifest", slow)
+    monkeypatch.setattr(runner_module.Runner, "_stale_while_encoding", spy)
+    runner_module.Runner(small_raw, out, load_config(None), stages=STAGES, workers=1).prepare()
+    assert seen == {"ingest": False, "audio": True, "text": True, "split": True}
+    assert _outputs(out) == reference
+
+
+def test_the_proof_that_a_stage_must_run_holds_only_for_the_files_its_manifest_records(
+        small_raw: Path, tmp_path: Path) -> None:
+    # Reference for the input hash: inputs_sha256 hashing each input file.
+    from concurrent.futures import Future
+
+    import pyarrow.parquet as pq
+
+    from pipeline.core import runner as runner_module
+    from pipeline.core.config import load_config
+    from pipeline.core.fsio import sha256_file
+    from pipeline.core.manifest import read_metadata
+    from pipeline.stages import STAGES
+
+    out = tmp_path / "out"
+    runner_module.Runner(small_raw, out, load_config(None), stages=STAGES, workers=1).prepare()
+    runner = runner_module.Runner(small_raw, out, load_config(None), stages=STAGES, workers=1)
+    text, audio = STAGES["text"], STAGES["audio"].main_manifest
+    ctx = runner._context({})
+    extras = runner_module.extra_parts(text, ctx, set())
+    recorded = read_metadata(out / text.main_manifest)["inputs_sha256"]
+    assert recorded == runner_module.inputs_sha256(out, text, ctx, STAGES)
+
+    def stale() -> bool:
+        return runner._stale_while_encoding(text, ctx, extras)
+
+    making: Future[object] = Future()
+    runner._written[audio] = making  # type: ignore[assignment]
+    assert not stale()  # no digest of the file replaced: unknown
+    runner._replaced[audio] = sha256_file(out / audio)  # the file the text manifest records
+    assert stale()
+    runner._replaced[audio] = "0" * 64  # another file: the text stage may be up to date
+    assert not stale()
+    runner._replaced[audio] = sha256_file(out / audio)
+    making.set_result(None)  # the new bytes made: the input hash decides, as ever
+    assert not stale()
+    runner._written[audio] = Future()  # type: ignore[assignment]
+    path = out / text.main_manifest  # the text manifest records another input hash
+    table = pq.ParquetFile(path).read()
+    metadata = {**table.schema.metadata, b"loam.inputs_sha256": b"1" * 64}
+    pq.write_table(table.replace_schema_metadata(metadata), path)
+    assert not stale()
+
+
+def test_a_replaced_manifest_digest_is_given_only_when_the_new_bytes_cannot_be_the_old(
+        small_raw: Path, tmp_path: Path) -> None:
+    # Reference: hashlib over the file's bytes; the footer's row count and schema.
+    import hashlib
+
+    import pyarrow.parquet as pq
+
+    from pipeline.core import runner as runner_module
+    from pipeline.core.config import load_config
+    from pipeline.stages import STAGES
+
+    out = tmp_path / "out"
+    runner_module.Runner(small_raw, out, load_config(None), stages=STAGES, workers=1).prepare()
+    runner = runner_module.Runner(small_raw, out, load_config(None), stages=STAGES, workers=1)
+    rel = STAGES["audio"].main_manifest
+    file = pq.ParquetFile(out / rel)
+    schema, rows = file.schema_arrow, file.metadata.num_rows
+    digest = hashlib.sha256((out / rel).read_bytes()).hexdigest()
+    assert runner._replaced_digest(rel, schema, rows) is None  # the same footer: maybe the same bytes
+    assert runner._replaced_digest(rel, schema, rows + 1) == digest
+    other = schema.with_metadata({**schema.metadata, b"loam.inputs_sha256": b"0" * 64})
+    assert runner._replaced_digest(rel, other, rows) == digest
+    shutil.copy2(out / rel, tmp_path / "copy.parquet")  # a copied OUT: no record holds, hashed
+    os.replace(tmp_path / "copy.parquet", out / rel)
+    assert runner._manifest_fact(rel) is None
+    assert runner._replaced_digest(rel, schema, rows + 1) == digest
+    (out / rel).unlink()
+    assert runner._replaced_digest(rel, schema, rows + 1) is None
+
+
+def test_a_main_manifest_whose_file_reads_back_otherwise_than_the_table_held_stops_the_run(
+        small_raw: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # Later stages get the table with the schema its file will read back as, predicted
+    # before the file exists (_read_back_schema): a file that reads otherwise stops the
+    # run before it lands, and nothing after it lands either.
+    from pipeline.core import runner as runner_module
+    from pipeline.core.config import load_config
+    from pipeline.stages import STAGES
+
+    out = tmp_path / "out"
+    predict = runner_module._read_back_schema
+
+    def wrong(name: str, *args: object) -> object:
+        schema = predict(name, *args)  # type: ignore[arg-type]
+        return schema.with_metadata({**schema.metadata, b"loam.extra": b"x"}) if name == "audio" else schema
+
+    monkeypatch.setattr(runner_module, "_read_back_schema", wrong)
+    with pytest.raises(RuntimeError, match="stages/audio.parquet: the file's schema is not the one"):
+        runner_module.Runner(small_raw, out, load_config(None), stages=STAGES, workers=1).prepare()
+    assert (out / STAGES["ingest"].main_manifest).is_file()
+    assert not any((out / STAGES[name].main_manifest).exists() for name in ("audio", "text", "split"))
+    assert not list(out.rglob(".loam-*.tmp"))
