@@ -6,8 +6,7 @@ of 0.15 to 1.5 s, -55 dBFS noise, 16 kHz FLAC) and its whole text, then, in a fr
 process pinned to one core, runs the audio stage's per-file work
 (``pipeline.stages.audio.condition_file``) on it, timing the alignment itself
 (``pipeline.stages.alignment.align``) apart. Reports the alignment's times real time, the
-whole file's, the child's peak resident memory (``VmHWM`` of /proc/self/status; ``ru_maxrss``
-would carry the parent's footprint across the child's execve) and the boundary errors
+whole file's, the child's peak resident memory (``bench.memory.peak_rss_mb``) and the boundary errors
 against the true pause centres. Prints a table, then the figures as one JSON line.
 
     python bench/bench_align.py                # 30 minutes, as in the issue
@@ -28,17 +27,9 @@ REPO = Path(__file__).resolve().parent.parent
 CHILD = r"""
 import json, os, sys, time
 
-def peak_mb():
-    # VmHWM, the peak of this process's own memory: ru_maxrss survives execve and would
-    # report the parent's footprint at fork (the parent holds the generated reading).
-    for line in open("/proc/self/status"):
-        if line.startswith("VmHWM:"):
-            return int(line.split()[1]) / 1024
-    import resource
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-
 os.sched_setaffinity(0, {sorted(os.sched_getaffinity(0))[0]})
 sys.path.insert(0, sys.argv[3])
+from bench.memory import peak_rss_mb
 import numpy as np
 from pipeline.core.config import load_config
 from pipeline.stages import alignment
@@ -63,7 +54,7 @@ row = {"source_path": "reader/reading.flac", "source_id": "reading-0a1b2c3d4e", 
 t = time.perf_counter()
 outcome = condition_file(AudioJob(row, folder + "/reading.flac", folder, folder, cfg, "en", ""))
 total = time.perf_counter() - t
-print(json.dumps({"align_s": seconds[0], "align_cpu_s": cpu[0], "file_s": total, "peak_mb": peak_mb(),
+print(json.dumps({"align_s": seconds[0], "align_cpu_s": cpu[0], "file_s": total, "peak_mb": peak_rss_mb(),
                   "rejects": [r["reason"] for r in outcome.rejects],
                   "clips": len(outcome.rows), "transcribed_clips": sum(r["transcribed"] for r in outcome.rows),
                   "ends": [timed.offset + p.end_s for p in timed.places],

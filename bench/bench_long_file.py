@@ -4,7 +4,7 @@ Generates (in a temporary folder) a recording of ``--minutes`` minutes at 48 kHz
 stereo, 16-bit WAV: espeak-ng sentences in several voices, looped with pauses of
 0.2 to 2.5 s over a -60 dBFS noise floor. Then runs ``pipeline.stages.audio.condition_file``
 on it in a fresh child process and reports wall time, times real time, and the
-child's peak resident memory (``ru_maxrss``), next to the same child doing only its
+child's peak resident memory (``bench.memory.peak_rss_mb``), next to the same child doing only its
 imports. Prints a table, then the same figures as one JSON line.
 
     python bench/bench_long_file.py            # 60 minutes, as in the issue
@@ -16,7 +16,6 @@ from __future__ import annotations
 import argparse
 import hashlib
 import json
-import resource
 import shutil
 import subprocess
 import sys
@@ -41,13 +40,14 @@ LINES = [
 VOICES = ["en-us", "en", "en-us+f3", "en+m3"]
 
 CHILD = r"""
-import json, resource, sys, time
+import json, sys, time
+from bench.memory import peak_rss_mb
 t0 = time.perf_counter()
 from pipeline.stages import audio
 from pipeline.core.config import build_config
 if sys.argv[1] == "imports-only":
     import pipeline.signal.bandwidth, pipeline.signal.fingerprint, pipeline.signal.loudness, pipeline.signal.snr, soundfile, soxr, _webrtcvad  # what the work imports
-    print(json.dumps({"rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
+    print(json.dumps({"rss_mb": peak_rss_mb()}))
     raise SystemExit
 row, source, out = json.loads(sys.argv[2]), sys.argv[3], sys.argv[4]
 cfg = build_config({}).audio
@@ -60,7 +60,7 @@ print(json.dumps({
     "clips": len(outcome.rows), "rejects": [r["reason"] for r in outcome.rejects],
     "details": [r["detail"] for r in outcome.rejects][:3],
     "clip_seconds": sum(r["duration_s"] for r in outcome.rows),
-    "rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+    "rss_mb": peak_rss_mb(),
 }))
 """
 
@@ -96,14 +96,14 @@ def make_recording(path: Path, *, minutes: float, seed: int = 2026) -> float:
     return written / RATE
 
 
-def run_child(*args: str) -> tuple[dict, float, float]:
-    """Run the child; its JSON, wall seconds, and ru_maxrss of the largest child so far (MB)."""
+def run_child(*args: str) -> tuple[dict, float]:
+    """Run the child; its JSON and wall seconds."""
     start = time.perf_counter()
     done = subprocess.run([sys.executable, "-c", CHILD, *args], capture_output=True, text=True, cwd=REPO)
     wall = time.perf_counter() - start
     if done.returncode != 0:
         raise SystemExit(f"bench child failed:\n{done.stderr[-3000:]}")
-    return json.loads(done.stdout.strip().splitlines()[-1]), wall, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    return json.loads(done.stdout.strip().splitlines()[-1]), wall
 
 
 def main() -> None:
@@ -126,8 +126,8 @@ def main() -> None:
         row = {"source_id": f"night-shift-{digest[:10]}", "source_path": "harbour/night-shift.wav",
                "speaker": "harbour", "sha256": digest, "transcript": None}
 
-        base, _, _ = run_child("imports-only")
-        res, wall, maxrss = run_child("work", json.dumps(row), str(source), str(folder / "out"))
+        base, _ = run_child("imports-only")
+        res, wall = run_child("work", json.dumps(row), str(source), str(folder / "out"))
         figures = {
             "audio_minutes": seconds / 60,
             "source": "48 kHz stereo PCM_16 WAV",
@@ -140,7 +140,6 @@ def main() -> None:
             "clip_minutes": res["clip_seconds"] / 60,
             "rejected_segments": len(res["rejects"]),
             "peak_rss_mb": res["rss_mb"],
-            "peak_rss_children_mb": maxrss,
             "imports_only_rss_mb": base["rss_mb"],
             "limit_mb": 500,
         }
@@ -148,7 +147,7 @@ def main() -> None:
             ("audio", f"{figures['audio_minutes']:.1f} min, {figures['source']}, {figures['source_mb']:.0f} MB"),
             ("condition_file", f"{figures['condition_file_s']:.1f} s ({figures['x_real_time']:.0f}x real time)"),
             ("clips written", f"{figures['clips']} ({figures['clip_minutes']:.1f} min); {figures['rejected_segments']} segments rejected"),
-            ("peak RSS (child)", f"{figures['peak_rss_mb']:.0f} MB (ru_maxrss; imports alone {figures['imports_only_rss_mb']:.0f} MB)"),
+            ("peak RSS (child)", f"{figures['peak_rss_mb']:.0f} MB (VmHWM; imports alone {figures['imports_only_rss_mb']:.0f} MB)"),
             ("limit", f"{figures['limit_mb']} MB: {'ok' if figures['peak_rss_mb'] < 500 else 'EXCEEDED'}"),
         ]
         width = max(len(k) for k, _ in rows)

@@ -14,7 +14,7 @@ and 0.3 % are byte-identical copies. Transcripts read two or three words of a
 
 Each measurement reads the manifests as the runner does (``read_manifest``), runs
 ``pipeline.stages.split.run`` in a fresh process and reads its
-``ru_maxrss`` and CPU seconds (user + system; on a shared machine they move far less
+peak memory (``bench.memory.peak_rss_mb``) and CPU seconds (user + system; on a shared machine they move far less
 than wall time). The rebuild adds ``--extra-share`` new sources to the same manifests
 and runs again with the ledger the cold run wrote; its cost per existing source is its
 CPU seconds over the sources that were there before (the split stage has no per-file
@@ -30,7 +30,6 @@ import argparse
 import hashlib
 import json
 import logging
-import resource
 import shutil
 import subprocess
 import sys
@@ -44,6 +43,8 @@ import pyarrow.parquet as pq
 
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
+
+from bench.memory import peak_rss_mb  # noqa: E402
 
 WORDS = 128
 FRAMES_PER_S = 5000 / 116  # sub-fingerprints per second (pipeline.signal.fingerprint)
@@ -178,7 +179,7 @@ def run_once(folder: Path, *, grown: bool, fresh: bool, keep: str = "") -> dict[
             pq.write_table(table, folder / f"{keep}-{Path(rel).name}")
         shutil.copyfile(folder / "out" / "ledger.tsv", folder / f"{keep}-ledger.tsv")
     return {"cpu_s": round(cpu, 2), "wall_s": round(wall, 2),
-            "peak_rss_mb": round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1),
+            "peak_rss_mb": round(peak_rss_mb(), 1),
             "clips": inputs["audio"].num_rows}
 
 
