@@ -320,9 +320,7 @@ def test_a_file_the_writer_thread_cannot_write_stops_the_run_and_nothing_lands_a
     monkeypatch.setattr(runner_module, "_put_in_place", failing)
     with pytest.raises(OSError, match="No space left"):
         runner_module.Runner(small_raw, out, load_config(None), stages=STAGES, workers=1).prepare()
-    assert (out / STAGES["ingest"].main_manifest).is_file()
-    assert not any((out / STAGES[name].main_manifest).exists() for name in ("audio", "text", "split"))
-    assert not list(out.rglob(".loam-*.tmp"))
+    _assert_stopped_after_ingest(out)
 
 
 def test_a_stage_that_fails_leaves_the_records_of_those_before_it(
@@ -518,6 +516,14 @@ def test_a_main_manifest_whose_file_reads_back_otherwise_than_the_table_held_sto
     monkeypatch.setattr(runner_module, "_read_back_schema", wrong)
     with pytest.raises(RuntimeError, match="stages/audio.parquet: the file's schema is not the one"):
         runner_module.Runner(small_raw, out, load_config(None), stages=STAGES, workers=1).prepare()
+    _assert_stopped_after_ingest(out)
+
+
+def _assert_stopped_after_ingest(out: Path) -> None:
+    """A run stopped while the audio stage's files were written: ingest's main manifest
+    landed, no later one did, and no temporary file is left."""
+    from pipeline.stages import STAGES
+
     assert (out / STAGES["ingest"].main_manifest).is_file()
     assert not any((out / STAGES[name].main_manifest).exists() for name in ("audio", "text", "split"))
     assert not list(out.rglob(".loam-*.tmp"))
