@@ -120,10 +120,15 @@ def _block(values: np.ndarray, offsets: np.ndarray, first: np.ndarray, second: n
     np.bitwise_xor(windows, a[:, None], out=windows)
     bits = np.add.reduceat(_popcount(windows), row_start, axis=0, dtype=np.int64)
     # Positions where a and b are both 0 are few (silence): count them on a's zeros alone.
+    # Summed per pair by reduceat over each pair's run of silent rows (rows come in pair
+    # order), not np.add.at: with a tenth of the values 0, 50,766 pairs of short clips
+    # took 0.34 of 0.65 CPU s in add.at, against 0.32 s for the whole call this way.
     silent = np.flatnonzero(a == 0)
     both_zero = np.zeros((pairs, 2 * k + 1), dtype=np.int64)
     if silent.size:
-        np.add.at(both_zero, pair_of_row[silent], windows[silent] == 0)
+        owner = pair_of_row[silent]
+        runs = np.flatnonzero(np.r_[True, owner[1:] != owner[:-1]])
+        both_zero[owner[runs]] = np.add.reduceat(windows[silent] == 0, runs, axis=0, dtype=np.int64)
     live = la[:, None] - both_zero
     # Prefix sums over a: a position's bits and whether it is live, by pair.
     a_bits = np.r_[0, np.cumsum(_popcount(a), dtype=np.int64)]
