@@ -16,11 +16,10 @@ never given to another symbol.
 
 from __future__ import annotations
 
-import itertools
 import math
 import re
 from collections import Counter
-from itertools import chain
+from itertools import chain, pairwise
 from pathlib import Path
 from typing import Any
 
@@ -125,7 +124,7 @@ def _tally(clips: list[tuple[list[str], float]], *, boundary: str) -> tuple[Coun
     ordered_codes, ordered = codes[keep][order], share[keep][order].tolist()
     cuts = np.searchsorted(ordered_codes, np.arange(len(index) + 1)).tolist()
     names = list(index)
-    seconds = {names[k]: math.fsum(ordered[a:b]) for k, (a, b) in enumerate(itertools.pairwise(cuts)) if b > a}
+    seconds = {names[k]: math.fsum(ordered[a:b]) for k, (a, b) in enumerate(pairwise(cuts)) if b > a}
     return counts, seconds
 
 
