@@ -196,9 +196,9 @@ def main() -> int:
 
     shutil.rmtree(out, ignore_errors=True)
     # The allowance for the new files' own processing is the local cold run's cost per
-    # source: a cluster's cold run is slower (289 s against 222 to 238 s locally on the
-    # same machine, 2026-12-03), and an allowance taken from it hides a quarter of the
-    # rebuild's cost beyond the new files.
+    # source: a cluster's cold run is slower (310 s against 223 s locally in one run of
+    # this benchmark, 2026-12-03), and an allowance taken from it would count 0.9 s of
+    # the 1 % rebuild's cost beyond the new files as theirs.
     cold = prepare(raw, out, args.workers)
     results["cold_on"] = f"local pool, {args.workers} workers"
     if args.cluster:
