@@ -4,7 +4,7 @@ Builds (in a temporary folder) a ``--minutes``-minute reading of known sentences
 ``tests/fixtures/long_reading.py`` (espeak-ng en-us voice, 150 words per minute, pauses
 of 0.15 to 1.5 s, -55 dBFS noise, 16 kHz FLAC) and its whole text, then, in a fresh child
 process pinned to one core, runs the audio stage's per-file work
-(``pipeline.stages.audio.condition_file``) on it, timing the alignment itself
+(``pipeline.stages.audio_file.condition_file``) on it, timing the alignment itself
 (``pipeline.stages.alignment.align``) apart. Reports the alignment's times real time, the
 whole file's, the child's peak resident memory (``bench.memory.peak_rss_mb``) and the boundary errors
 against the true pause centres. Prints a table, then the figures as one JSON line.
@@ -33,7 +33,7 @@ from bench.memory import peak_rss_mb
 import numpy as np
 from pipeline.core.config import load_config
 from pipeline.stages import alignment
-from pipeline.stages.audio import AudioJob, condition_file, warm_up
+from pipeline.stages.audio_file import AudioJob, condition_file, warm_up
 
 folder, transcript = sys.argv[1], open(sys.argv[2], encoding="utf-8").read()
 cfg = load_config(None).audio

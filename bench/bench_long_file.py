@@ -2,7 +2,7 @@
 
 Generates (in a temporary folder) a recording of ``--minutes`` minutes at 48 kHz
 stereo, 16-bit WAV: espeak-ng sentences in several voices, looped with pauses of
-0.2 to 2.5 s over a -60 dBFS noise floor. Then runs ``pipeline.stages.audio.condition_file``
+0.2 to 2.5 s over a -60 dBFS noise floor. Then runs ``pipeline.stages.audio_file.condition_file``
 on it in a fresh child process and reports wall time, times real time, and the
 child's peak resident memory (``bench.memory.peak_rss_mb``), next to the same child doing only its
 imports. Prints a table, then the same figures as one JSON line.
@@ -43,7 +43,7 @@ CHILD = r"""
 import json, sys, time
 from bench.memory import peak_rss_mb
 t0 = time.perf_counter()
-from pipeline.stages import audio
+from pipeline.stages import audio_file
 from pipeline.core.config import build_config
 if sys.argv[1] == "imports-only":
     import pipeline.signal.bandwidth, pipeline.signal.fingerprint, pipeline.signal.loudness, pipeline.signal.snr, soundfile, soxr, _webrtcvad  # what the work imports
@@ -51,9 +51,9 @@ if sys.argv[1] == "imports-only":
     raise SystemExit
 row, source, out = json.loads(sys.argv[2]), sys.argv[3], sys.argv[4]
 cfg = build_config({}).audio
-job = audio.AudioJob(row, source, out, out + "/tmp", cfg)
+job = audio_file.AudioJob(row, source, out, out + "/tmp", cfg)
 t1 = time.perf_counter()
-outcome = audio.condition_file(job)
+outcome = audio_file.condition_file(job)
 t2 = time.perf_counter()
 print(json.dumps({
     "seconds": t2 - t1, "import_seconds": t1 - t0,

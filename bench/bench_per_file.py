@@ -6,8 +6,8 @@ conditioned three ways in one process, one after another, and its CPU time
 (``time.process_time``) is taken for each:
 
 ``floor``     ``bench.floor.floor_one``: decode, downmix, resample, encode;
-``no gates``  ``audio.condition_file`` with ``audio.quality_measures = false``;
-``pipeline``  ``audio.condition_file`` as configured.
+``no gates``  ``audio_file.condition_file`` with ``audio.quality_measures = false``;
+``pipeline``  ``audio_file.condition_file`` as configured.
 
 Clips are written as a local run writes them, without an fsync each (the stage
 flushes the file system once at its end, which is not per-file work).
@@ -42,7 +42,7 @@ limit_blas_threads()
 from bench.floor import FloorJob, floor_one  # noqa: E402
 from pipeline.core.config import load_config  # noqa: E402
 from pipeline.core.manifest import read_manifest  # noqa: E402
-from pipeline.stages import audio  # noqa: E402
+from pipeline.stages import audio_file  # noqa: E402
 
 
 def main() -> int:
@@ -57,7 +57,7 @@ def main() -> int:
     plain = dataclasses.replace(cfg, quality_measures=False)
     rows = read_manifest(args.out / "stages" / "ingest.parquet").to_pylist()
     raw = args.raw.resolve()
-    audio.warm_up(cfg)
+    audio_file.warm_up(cfg)
     best = {"floor": [float("inf")] * len(rows), "no gates": [float("inf")] * len(rows),
             "pipeline": [float("inf")] * len(rows)}
     with tempfile.TemporaryDirectory() as scratch:
@@ -68,11 +68,11 @@ def main() -> int:
                 runs = {
                     "floor": (floor_one, FloorJob(source, str(work / "floor.flac"), cfg.sample_rate,
                                                   cfg.resample_quality)),
-                    "no gates": (audio.condition_file,
-                                 audio.AudioJob(row, source, str(work / "a"), str(work / "a" / "tmp"), plain,
+                    "no gates": (audio_file.condition_file,
+                                 audio_file.AudioJob(row, source, str(work / "a"), str(work / "a" / "tmp"), plain,
                                                 durable=False)),
-                    "pipeline": (audio.condition_file,
-                                 audio.AudioJob(row, source, str(work / "b"), str(work / "b" / "tmp"), cfg,
+                    "pipeline": (audio_file.condition_file,
+                                 audio_file.AudioJob(row, source, str(work / "b"), str(work / "b" / "tmp"), cfg,
                                                 durable=False)),
                 }
                 for kind, (func, job) in runs.items():

@@ -19,7 +19,7 @@ from pipeline.core.config import load_config
 from pipeline.signal.decode import Spool
 from pipeline.signal.vad import frame_decisions
 from pipeline.stages import alignment
-from pipeline.stages.audio import AudioJob, condition_file
+from pipeline.stages.audio_file import AudioJob, condition_file
 from pipeline.text.sentences import split_sentences
 from tests.conftest import FIXTURES
 

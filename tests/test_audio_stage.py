@@ -27,7 +27,7 @@ from pipeline.core.manifest import table_from_rows, validate_table
 from pipeline.core.stage import StageContext
 from pipeline.signal.bandwidth import effective_bandwidth_hz
 from pipeline.signal.fingerprint import encode_fingerprint, fingerprint
-from pipeline.stages import audio
+from pipeline.stages import audio, audio_file
 from tests.conftest import DEMO, DEMO_CLEAN, FIXTURE_SPEECH, FIXTURES, speech_only
 
 VOICES = {FIXTURES / "speech" / f"{name}.flac": text for name, text in FIXTURE_SPEECH.items()}
@@ -274,7 +274,7 @@ def test_local_run_flushes_its_clips_once_before_returning(raw: Path, tmp_path: 
     # last clip is written and before the runner can write the manifest naming them
     # (on a cluster each worker also flushes after every batch: tests/test_parallel.py).
     flushes: list[tuple[str, list[str]]] = []
-    jobs: list[audio.AudioJob] = []
+    jobs: list[audio_file.AudioJob] = []
     each_result = audio.each_result
 
     def recording_each_result(func, items, *args, **kwargs):
@@ -289,17 +289,17 @@ def test_local_run_flushes_its_clips_once_before_returning(raw: Path, tmp_path: 
     assert flushes == [(str(tmp_path / "out"), sorted(r["audio_path"] for r in rows_of(result)))]
 
 
-def job_for(raw: Path, out: Path, rel: str, **overrides: Any) -> audio.AudioJob:
+def job_for(raw: Path, out: Path, rel: str, **overrides: Any) -> audio_file.AudioJob:
     table = ingest_table(raw)
     row = next(r for r in table.to_pylist() if r["source_path"] == rel)
     cfg = build_config({}, overrides={f"audio.{k}": v for k, v in overrides.items()}).audio
-    return audio.AudioJob(row, str(raw / rel), str(out), str(out / "tmp"), cfg)
+    return audio_file.AudioJob(row, str(raw / rel), str(out), str(out / "tmp"), cfg)
 
 
 @pytest.mark.parametrize("true_peak", [False, True])
 def test_peak_limited_clip_stays_under_the_ceiling(raw: Path, tmp_path: Path, true_peak: bool):
     job = job_for(raw, tmp_path, "ana/stereo44.wav", target_lufs=-8.0, true_peak=true_peak)
-    outcome = audio.condition_file(job)
+    outcome = audio_file.condition_file(job)
     (row,) = outcome.rows
     assert row["peak_limited_db"] > 1.0
     samples, rate = sf.read(tmp_path / row["audio_path"], dtype="float64")
@@ -321,18 +321,18 @@ def test_unusable_inputs_become_rejects(raw: Path, tmp_path: Path):
     shutil.copy(raw / "ana/phone8k.wav", garbage / "ana/phone8k.wav")
     job = job_for(garbage, tmp_path, "ana/phone8k.wav")
     (garbage / "ana/phone8k.wav").write_bytes(b"RIFF0000WAVEnot really audio")
-    (rej,) = audio.condition_file(job).rejects
+    (rej,) = audio_file.condition_file(job).rejects
     assert rej["reason"] == "undecodable" and "Error" in rej["detail"]
 
     short = tmp_path / "short"
     (short / "ana").mkdir(parents=True)
     sf.write(short / "ana/blip.wav", 0.3 * np.sin(np.arange(3200) * 0.3), 16000, subtype="PCM_16")
-    (rej,) = audio.condition_file(job_for(short, tmp_path, "ana/blip.wav")).rejects
+    (rej,) = audio_file.condition_file(job_for(short, tmp_path, "ana/blip.wav")).rejects
     assert rej["reason"] == "too_short" and "0.20 s" in rej["detail"]  # 3200 samples at 16 kHz
 
-    (rej,) = audio.condition_file(job_for(raw, tmp_path, "ana/stereo44.wav", channel=3)).rejects
+    (rej,) = audio_file.condition_file(job_for(raw, tmp_path, "ana/stereo44.wav", channel=3)).rejects
     assert rej["reason"] == "undecodable" and "audio.channel is 3 but the file has 2 channels" in rej["detail"]
-    (rej,) = audio.condition_file(job_for(raw, tmp_path, "ana/phone8k.wav", upsampled="reject")).rejects
+    (rej,) = audio_file.condition_file(job_for(raw, tmp_path, "ana/phone8k.wav", upsampled="reject")).rejects
     assert rej["reason"] == "upsampled" and "8000 Hz" in rej["detail"]
 
     # Clipped beyond audio.unusable_clipped_fraction: speech overdriven by 60 dB is
@@ -341,15 +341,15 @@ def test_unusable_inputs_become_rejects(raw: Path, tmp_path: Path):
     (railed / "ben").mkdir(parents=True)
     hot, rate = sf.read(raw / "ben/hot.wav", dtype="float64")
     sf.write(railed / "ben/rail.wav", np.clip(1000 * hot, -1, 1), rate, subtype="PCM_16")
-    (rej,) = audio.condition_file(job_for(railed, tmp_path, "ben/rail.wav")).rejects
+    (rej,) = audio_file.condition_file(job_for(railed, tmp_path, "ben/rail.wav")).rejects
     assert rej["reason"] == "clipped" and "(audio.unusable_clipped_fraction)" in rej["detail"]
     # ben/hot.wav is kept by default, and rejected when its share is declared unusable.
-    (rej,) = audio.condition_file(job_for(raw, tmp_path, "ben/hot.wav", unusable_clipped_fraction=0.01)).rejects
+    (rej,) = audio_file.condition_file(job_for(raw, tmp_path, "ben/hot.wav", unusable_clipped_fraction=0.01)).rejects
     assert rej["reason"] == "clipped" and "at most 1.000%" in rej["detail"]
 
 
 def test_picking_one_channel_and_wav_output(raw: Path, tmp_path: Path):
-    outcome = audio.condition_file(job_for(raw, tmp_path, "ana/stereo44.wav", channel=1, format="wav"))
+    outcome = audio_file.condition_file(job_for(raw, tmp_path, "ana/stereo44.wav", channel=1, format="wav"))
     (row,) = outcome.rows
     assert row["audio_path"].endswith(".wav")
     info = sf.info(tmp_path / row["audio_path"])
@@ -364,7 +364,7 @@ def test_pcm16_peak_equals_the_float_sample_peak():
     rng = np.random.default_rng(2)
     for pcm in (rng.integers(-32768, 32768, 999).astype(np.int16), np.array([-32768, 5], dtype=np.int16),
                 np.array([3, -7, 0], dtype=np.int16), np.zeros(4, dtype=np.int16)):
-        assert audio._pcm16_peak_dbfs(pcm) == sample_peak_dbfs(pcm.astype(np.float32) / np.float32(32768))
+        assert audio_file._pcm16_peak_dbfs(pcm) == sample_peak_dbfs(pcm.astype(np.float32) / np.float32(32768))
 
 
 def test_a_touched_clip_file_reconditions_its_source_only(first_run, raw: Path, tmp_path: Path):

@@ -105,7 +105,7 @@ def test_bandwidth_median_smoothing_matches_scipy_ndimage() -> None:
 def test_streamed_psd_equals_the_whole_signal_psd() -> None:
     # The audio stage feeds blocks of any size; the segment-count-weighted average must be
     # the PSD of the whole signal (which test_long_term_psd_equals_scipy_welch pins down).
-    from pipeline.stages.audio import LongTermPsd
+    from pipeline.stages.audio_file import LongTermPsd
 
     rng = np.random.default_rng(12)
     x = rng.normal(size=16000 * 3).astype(np.float32)

@@ -17,7 +17,7 @@ from pipeline.commands.cli import main
 from pipeline.commands.validate import validate_out
 from pipeline.core.errors import ManifestError
 from pipeline.core.manifest import partition_rows, table_from_rows
-from pipeline.stages import audio
+from pipeline.stages import audio_file
 from tests.conftest import speechlike
 
 SR = 16000
@@ -67,7 +67,7 @@ def test_one_source_with_an_impossible_loudness_is_rejected_and_the_run_goes_on(
     measures above the audio schema's 10 LUFS maximum (about +20 LUFS). With the sample bound lifted
     (forked workers inherit the patch) the row reaches the schema check, and only
     that source is set aside."""
-    monkeypatch.setattr(audio, "MAX_SAMPLE_MAGNITUDE", 1e6)
+    monkeypatch.setattr(audio_file, "MAX_SAMPLE_MAGNITUDE", 1e6)
     raw = tmp_path / "raw"
     (raw / "spk").mkdir(parents=True)
     for i in range(4):

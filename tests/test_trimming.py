@@ -10,7 +10,7 @@ edges to within a few samples).
 Each case puts 0.3-2 s of silence before and after the speech, sets the speech peak
 40-55 dB above a white-noise floor of -70 to -50 dBFS RMS (or digital silence), and is
 written as 16-bit WAV at one of the input rates the stage supports. It then goes through
-the real per-file path, ``pipeline.stages.audio.condition_file``, with the default settings.
+the real per-file path, ``pipeline.stages.audio_file.condition_file``, with the default settings.
 
 Target (the project's requirement for trimming): every edge within ``pad_ms`` + 0.25 s of
 the true speech edge, and no speech cut by more than 30 ms.
@@ -27,7 +27,7 @@ import soundfile as sf
 import soxr
 
 from pipeline.core.config import build_config
-from pipeline.stages import audio
+from pipeline.stages import audio_file
 from tests.conftest import DEMO, DEMO_CLEAN, FIXTURE_SPEECH, FIXTURES, speech_only
 
 RATES = (8000, 11025, 16000, 22050, 44100, 48000)
@@ -77,7 +77,7 @@ def run_case(tmp: Path, name: str, speech: np.ndarray, *, rate: int, noise_dbfs:
     sf.write(path, signal, rate, subtype="PCM_16")
     row = {"source_path": path.name, "source_id": name, "speaker": "spk", "transcript": None}
     cfg = build_config({}).audio
-    outcome = audio.condition_file(audio.AudioJob(row, str(path), str(tmp / "out"), str(tmp), cfg))
+    outcome = audio_file.condition_file(audio_file.AudioJob(row, str(path), str(tmp / "out"), str(tmp), cfg))
     assert len(outcome.rows) == 1 and not outcome.rejects, (name, outcome.rejects)
     kept = outcome.rows[0]
     return Case(name, rate, noise_dbfs, lead / rate, (lead + len(speech)) / rate,

@@ -16,7 +16,7 @@ import soundfile as sf
 from pipeline.core.config import build_config
 from pipeline.signal.declared import DataExtent, mp3_length_is_exact, wav_data_extent
 from pipeline.signal.decode import BLOCK_SAMPLES, read_blocks
-from pipeline.stages import audio
+from pipeline.stages import audio_file
 from pipeline.stages.ingest_probe import ProbeJob, probe_file
 from tests.conftest import speechlike
 
@@ -40,14 +40,14 @@ def probe(path: Path) -> dict[str, Any]:
     return probe_file(ProbeJob(str(path), f"spk/{path.name}"))
 
 
-def condition(path: Path, out: Path) -> audio.FileOutcome:
+def condition(path: Path, out: Path) -> audio_file.FileOutcome:
     row = probe(path)
     assert "error" not in row, row
     row.update(source_id="take-0123456789", source_path=f"spk/{path.name}", speaker="spk", transcript=None)
     cfg = build_config({}).audio
     with warnings.catch_warnings():
         warnings.simplefilter("error")  # an overflow warning would fail the test
-        return audio.condition_file(audio.AudioJob(row, str(path), str(out), str(out / "tmp"), cfg))
+        return audio_file.condition_file(audio_file.AudioJob(row, str(path), str(out), str(out / "tmp"), cfg))
 
 
 def test_wav_cut_mid_transfer_is_truncated_with_declared_and_present_frames(tmp_path: Path) -> None:

@@ -23,7 +23,7 @@ from pipeline.commands.cli import main
 from pipeline.core.config import build_config
 from pipeline.core.runner import Runner
 from pipeline.stages import STAGES
-from pipeline.stages.audio import AudioJob, FileOutcome, condition_file
+from pipeline.stages.audio_file import AudioJob, FileOutcome, condition_file
 from pipeline.stages.ingest_probe import ProbeJob, probe_file
 from tests.conftest import REPO, speechlike, tree_hash
 
