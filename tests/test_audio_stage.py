@@ -590,7 +590,7 @@ def test_the_cache_follows_the_config_the_code_and_each_source(first_run, raw: P
     louder = run_stage(raw, copy, overrides={"audio.target_lufs": -20.0})
     assert louder.run_stats["sources_processed"] == 8
     assert rows_of(louder) == rows_of(run_stage(raw, tmp_path / "fresh", overrides={"audio.target_lufs": -20.0}))
-    monkeypatch.setattr(audio, "code_version", lambda *args, **kwargs: "another version")
+    monkeypatch.setattr(audio, "outcome_code", lambda *args, **kwargs: "another version")
     assert run_stage(raw, copy).run_stats["sources_processed"] == 8
     assert rows_of(run_stage(raw, copy)) == rows_of(result)
     ingest = ingest_table(raw)

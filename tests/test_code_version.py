@@ -188,21 +188,67 @@ def test_an_edit_changes_exactly_the_versions_of_the_stages_that_reach_it(
 
 
 @pytest.mark.parametrize(("rel", "changes"), [
-    ("stages/split.py", False), ("stages/selection.py", False), ("stages/audio.py", False),
+    ("stages/split.py", False), ("stages/selection.py", False),
     ("stages/duplicate_cache.py", True), ("signal/added_search.py", True),
     ("signal/pair_similarity.py", True), ("signal/fingerprint.py", True),
+    # The fingerprints are made by the audio stage's per-file work, not its driver or cache.
+    ("stages/audio.py", False), ("stages/audio_cache.py", False), ("stages/audio_file.py", True),
+    ("signal/loudness.py", True),
 ])
 def test_the_near_duplicate_cache_scope_covers_the_search_not_the_split_stage(
         rel: str, changes: bool, tmp_path: Path) -> None:
-    # pipeline/stages/duplicate_cache.py puts the version of its own reach in its cache's scope.
-    from pipeline.stages.duplicate_cache import SCOPE_MODULE
+    # pipeline/stages/duplicate_cache.py puts the versions of its own reach and of the
+    # fingerprints' maker in its cache's scope.
+    from pipeline.stages.duplicate_cache import FINGERPRINT_MODULE, SCOPE_MODULE
+
+    def scope() -> tuple[str, str]:
+        codeversion.forget()
+        return (code_version(SCOPE_MODULE, package_dir=package), code_version(FINGERPRINT_MODULE, package_dir=package))
+
+    package = _copy_package(tmp_path)
+    before = scope()
+    (package / rel).write_text((package / rel).read_text(encoding="utf-8") + "\n# edited\n", encoding="utf-8")
+    assert (scope() != before) is changes
+
+
+# (file edited, whether the audio outcome cache's scope changes): the per-file work
+# and all it reaches, not the stage's driver, its cache code or the worker pool.
+OUTCOME_SCOPE_EDITS = [
+    ("stages/audio_file.py", True), ("signal/iir.py", True), ("signal/loudness.py", True),
+    ("signal/fingerprint.py", True), ("signal/decode.py", True), ("stages/alignment.py", True),
+    ("text/speech.py", True), ("core/config.py", True), ("core/stage.py", True),
+    ("stages/audio.py", False), ("stages/audio_cache.py", False), ("core/pool.py", False),
+    ("core/parallel.py", False), ("core/cache.py", False), ("stages/privacy.py", False),
+    ("core/runner.py", False), ("stages/split.py", False),
+]
+
+
+@pytest.mark.parametrize(("rel", "changes"), OUTCOME_SCOPE_EDITS, ids=[e[0] for e in OUTCOME_SCOPE_EDITS])
+def test_the_audio_outcome_scope_covers_the_per_file_work_not_the_driver(
+        rel: str, changes: bool, tmp_path: Path) -> None:
+    # pipeline/stages/audio_cache.outcome_code puts the version of PER_FILE_MODULE's reach
+    # (with the table's schema) in the outcome table's scope.
+    from pipeline.stages.audio_cache import PER_FILE_MODULE
 
     package = _copy_package(tmp_path)
     codeversion.forget()
-    before = code_version(SCOPE_MODULE, package_dir=package)
-    (package / rel).write_text((package / rel).read_text(encoding="utf-8") + "\n# edited\n", encoding="utf-8")
+    before = code_version(PER_FILE_MODULE, package_dir=package), code_version("audio", package_dir=package)
+    _edit(package / rel)
     codeversion.forget()
-    assert (code_version(SCOPE_MODULE, package_dir=package) != before) is changes
+    after = code_version(PER_FILE_MODULE, package_dir=package), code_version("audio", package_dir=package)
+    assert (after[0] != before[0]) is changes
+    # Whatever the per-file work reaches, the stage reaches: its version changes too.
+    assert not changes or after[1] != before[1]
+
+
+def test_the_fingerprints_scope_names_the_audio_per_file_module() -> None:
+    # duplicate_cache spells the module's name rather than import audio_cache (whose code
+    # would then be in the near-duplicate cache's scope): the two must agree.
+    from pipeline.stages.audio_cache import PER_FILE_MODULE
+    from pipeline.stages.duplicate_cache import FINGERPRINT_MODULE
+
+    assert FINGERPRINT_MODULE == PER_FILE_MODULE
+    assert {"signal/fingerprint.py", f"stages/{PER_FILE_MODULE}.py"} <= set(dict(stage_code(PER_FILE_MODULE).modules))
 
 
 def test_a_damaged_facts_file_is_rebuilt(tmp_path: Path) -> None:
@@ -270,6 +316,16 @@ def test_editing_a_helper_reruns_its_stage_and_only_its_stage(small_raw: Path, t
     log = _prepare(src, small_raw, out)
     assert _reused(log) == set()
     assert re.search(r"audio: [1-9]\d* files processed, 0 reused from cache", log)
+
+    # The audio stage's driver (how it lists, reuses and records): audio runs, as its
+    # version changed, but conditions nothing again (its outcome cache's scope is the
+    # per-file work's reach, pipeline/stages/audio_file.py); its manifest holds the same
+    # rows (its metadata records the new code version).
+    rows = pq.read_table(out / "stages/audio.parquet").replace_schema_metadata(None)
+    _edit(package / "stages/audio.py")
+    log = _prepare(src, small_raw, out)
+    assert re.search(r"audio: 0 files processed, [1-9]\d* reused from cache", log)
+    assert pq.read_table(out / "stages/audio.parquet").replace_schema_metadata(None).equals(rows)
 
     # An ingest-only helper outside the probe's reach: the probes stand (they depend on the
     # bytes and on pipeline/stages/ingest_probe.py's reach), every row is decided again.

@@ -18,7 +18,6 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.core import names
-from pipeline.core.codeversion import code_version
 from pipeline.core.fsio import (
     remove_stale_temporaries,
     sync_file_system,
@@ -27,7 +26,7 @@ from pipeline.core.manifest import ManifestBuilder
 from pipeline.core.names import stage_manifest
 from pipeline.core.parallel import each_result
 from pipeline.core.stage import Output, Stage, StageContext, StageResult
-from pipeline.stages.audio_cache import OutcomeCache, file_listing, source_keys
+from pipeline.stages.audio_cache import OutcomeCache, file_listing, outcome_code, source_keys
 from pipeline.stages.audio_file import (
     AUDIO_DIR,
     NAME,
@@ -407,7 +406,7 @@ def run(ctx: StageContext) -> StageResult:
     out = Path(os.path.abspath(ctx.out))
     raw = Path(os.path.abspath(ctx.raw))
     ingest = ctx.inputs["ingest"]
-    code = code_version(NAME, cache_dir=ctx.cache_dir if ctx.use_cache else None)
+    code = outcome_code(cache_dir=ctx.cache_dir if ctx.use_cache else None)
     import pyarrow.compute as pc  # here: the workers never need it
 
     transcribed = ingest.filter(pc.is_valid(ingest.column("transcript")))

@@ -3,8 +3,9 @@
 Each source's outcome (its clip rows, the stat of each clip file it wrote, and its
 rejects) is stored under a key holding what the outcome depends on per source: the
 source's content hash and the ingest fields copied into the rows (:func:`source_keys`);
-the audio section of the config and the stage's code version are the scope of the
-whole table, which another scope leaves unread. The outcomes of the last run are one
+the audio section of the config, the code version of the per-file work
+(``pipeline.stages.audio_file``) and the table's schema are the scope of the whole
+table, which another scope leaves unread (:func:`outcome_code`). The outcomes of the last run are one
 Arrow IPC table (``OUT/cache/audio/outcomes.arrow``, see
 ``pipeline.core.cache.TableCache``): one row per clip or reject, so reusing 100,000
 sources maps one file into memory (checked against its SHA-256) and hands the reused
@@ -32,6 +33,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from pipeline.core.cache import TableCache, cache_key
+from pipeline.core.codeversion import code_version
 from pipeline.core.fsio import sha256_file
 from pipeline.core.manifest import arrow_schema
 from pipeline.core.stage import reject
@@ -44,6 +46,9 @@ PART_ROWS = 2048
 # outcomes in their parts, until the parts hold this share of all rows: rewriting the
 # 33 MB table of 100,000 sources cost 0.34 CPU seconds of a rebuild adding 1,000.
 PARTS_SHARE = 0.25
+# The module of the per-file work, by its name under pipeline/stages: its code version
+# (codeversion.stage_code) covers it and every module it reaches.
+PER_FILE_MODULE = "audio_file"
 _EXTRA = (("cache_key", pa.string()), ("reject_reason", pa.string()), ("reject_detail", pa.string()),
           ("reject_stage", pa.string()), ("st_size", pa.int64()), ("st_mtime_ns", pa.int64()),
           ("st_ino", pa.uint64()))
@@ -56,12 +61,29 @@ def cache_schema() -> pa.Schema:
     return pa.schema([*fields, *(pa.field(name, kind) for name, kind in _EXTRA)])
 
 
+def outcome_code(*, cache_dir: Path | None) -> str:
+    """What every stored outcome depends on besides its source (:func:`source_keys`)
+    and the audio section: the code version of the per-file work (:data:`PER_FILE_MODULE`:
+    its module, every module it reaches, the libraries they use) and the table's schema
+    (:func:`cache_schema`). The stage's driver (``pipeline.stages.audio``) and this
+    module are left out: how the stage lists, reuses, sorts and records outcomes makes
+    none of them, so an upgrade that edits only those conditions no source again.
+    ``cache_dir`` is where codeversion keeps what it parsed (None: parse again).
+
+    Examples
+    --------
+    >>> outcome_code(cache_dir=None) == outcome_code(cache_dir=None), len(outcome_code(cache_dir=None))
+    (True, 64)
+    """
+    return cache_key(code_version(PER_FILE_MODULE, cache_dir=cache_dir), str(cache_schema()))
+
+
 def source_keys(ingest: pa.Table, *, long: Mapping[str, tuple[str, str]] | None = None) -> pa.Array:
     """One cache key per ingest row: its content hash and the fields copied into its
     rows (source_id, source_path, speaker, whether it has a transcript), joined by NUL;
     for a source in ``long`` (source_id -> transcript, voice: a long transcribed source
     the alignment cuts) also its transcript and voice. The audio section and the code
-    version are the table's scope (:class:`OutcomeCache`), not part of each key.
+    version of the per-file work are the table's scope (:class:`OutcomeCache`), not part of each key.
 
     Built in Arrow: a rebuild's 100,000 keys cost no Python work per source (hashing
     each in Python cost 0.18 CPU s).

@@ -36,6 +36,11 @@ NAMESPACE = "split"
 # This module, by its name under pipeline/stages: its code version (codeversion.stage_code)
 # covers it and every module it reaches.
 SCOPE_MODULE = "duplicate_cache"
+# The audio stage's per-file work, which makes the fingerprints, by its name under
+# pipeline/stages (``audio_cache.PER_FILE_MODULE``, a test checks they agree). Spelled
+# here rather than imported: importing audio_cache would bring the audio stage's cache
+# and listing code into this module's code version.
+FINGERPRINT_MODULE = "audio_file"
 _PAIRS = pa.schema([("first", pa.int64()), ("second", pa.int64()), ("similarity", pa.float64()),
                     ("shared", pa.int64())])
 
@@ -129,14 +134,14 @@ def near_duplicates(ctx: StageContext, keys: pa.Table | None, fingerprints: tupl
     ``keys`` (:func:`cache_keys`) is None when the cache is disabled."""
     if keys is None:
         return search_pairs(*fingerprints, min_similarity=min_similarity)
-    # The audio stage's code version stands for the fingerprint method: a new method
-    # keeps each clip's audio bytes but changes its fingerprint. This module's own stands
+    # The audio stage's per-file code version stands for the fingerprint method: a new
+    # method keeps each clip's audio bytes but changes its fingerprint. This module's own stands
     # for what turns the texts into pairs: the decoding, the search (added_search,
     # pair_similarity, fingerprint) and the cache, not the rest of the split stage,
     # whose edits leave the pairs as they are.
     scope = cache_key("near-duplicates", "audio_sha256,fingerprint_chars",
                       code_version(SCOPE_MODULE, cache_dir=ctx.cache_dir),
-                      code_version("audio", cache_dir=ctx.cache_dir), min_similarity)
+                      code_version(FINGERPRINT_MODULE, cache_dir=ctx.cache_dir), min_similarity)
     # Mapped Arrow files, not Parquet: a rebuild reads and rewrites both tables whole, and
     # Parquet's compression cost 0.05 of the 0.08 CPU s this function spends besides the
     # search at 101,000 clips (the tables take twice the bytes: 9 against 4.5 MB).
