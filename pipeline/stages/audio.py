@@ -239,7 +239,14 @@ class _Conditioning:
 
     def jobs(self, todo: list[int]) -> list[AudioJob]:
         """One job per source index of ``todo``, its voice looked up first when it is a
-        transcribed source that is not long."""
+        transcribed source that is not long.
+
+        A job's outcome is stored under the source's key (``source_keys``: its content
+        hash, the ingest fields its clips carry, and a long source's transcript and
+        voice) and a scope that covers the per-file work's code, not this module's
+        (``audio_cache.outcome_code``). So anything added to a job here that can change
+        its outcome must go into the key as well, or an outcome made without it would
+        be reused."""
         import pyarrow as pa  # here: the workers never need it
         import pyarrow.compute as pc
 
