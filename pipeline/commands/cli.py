@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from pipeline import __version__
+from pipeline.core.collector import collect_less_often
 from pipeline.core.errors import LoamError, UsageError
 from pipeline.core.startup import exit_without_teardown, limit_blas_threads
 
@@ -330,6 +331,7 @@ def main(argv: list[str] | None = None) -> int:
     (2, "loam: error: OUT '/nonexistent/out' does not exist")
     """
     limit_blas_threads()
+    collect_less_often()
     parser = build_parser()
     try:
         args = parser.parse_args(argv)
