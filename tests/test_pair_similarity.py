@@ -33,7 +33,7 @@ def _corpus(rng: np.random.Generator) -> list[np.ndarray]:
 def test_equals_one_pair_at_a_time(seed: int, monkeypatch: pytest.MonkeyPatch) -> None:
     rng = np.random.default_rng(seed)
     # Small blocks too, so a block boundary falls between pairs.
-    monkeypatch.setattr(pair_similarity, "_BLOCK_POSITIONS", int(rng.choice([1, 64, 1 << 13])))
+    monkeypatch.setattr(pair_similarity, "_BLOCK_ELEMENTS", int(rng.choice([1, 200 * 33, 1 << 21])))
     fps = _corpus(rng)
     offsets = np.r_[0, np.cumsum([fp.size for fp in fps])].astype(np.int64)
     values = np.concatenate(fps).astype(np.uint32)
@@ -43,6 +43,24 @@ def test_equals_one_pair_at_a_time(seed: int, monkeypatch: pytest.MonkeyPatch) -
     want = [fingerprint_similarity(fps[i], fps[j], **shift) for i, j in zip(first, second, strict=True)]
     assert got.dtype == np.float64
     assert got.tolist() == want  # exactly: the same integer counts and the same division
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_long_clips_and_clips_at_the_ends_of_values(seed: int) -> None:
+    # Clips of 2,100 frames count more than 16 bits of errors; the first clip starts at
+    # values[0] and the last is shorter than the offsets, so its window runs past the end.
+    rng = np.random.default_rng(seed)
+    long = rng.integers(0, 2**32, size=2100, dtype=np.uint32)
+    long[rng.integers(0, long.size, size=300)] = 0
+    fps = [long[5:], rng.integers(0, 2**32, size=40, dtype=np.uint32), long, long[::-1].copy(), long[:9].copy()]
+    offsets = np.r_[0, np.cumsum([fp.size for fp in fps])].astype(np.int64)
+    values = np.concatenate(fps)
+    first, second = np.array([(i, j) for i in range(len(fps)) for j in range(len(fps))]).T
+    for shift in ({}, {"max_offset_frames": 3, "min_overlap_frames": 8}):
+        got = pair_similarities(values, offsets, first, second, **shift)
+        assert got.tolist() == [fingerprint_similarity(fps[i], fps[j], **shift) for i, j in zip(first, second, strict=True)]
+    alone = pair_similarities(fps[4], np.array([0, 9]), np.array([0]), np.array([0]))  # values shorter than 9 + 16
+    assert alone.tolist() == [fingerprint_similarity(fps[4], fps[4])]
 
 
 def test_empty_clips_and_no_pairs_score_zero() -> None:
