@@ -37,17 +37,6 @@ def _flat(fps: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
     return (np.concatenate(fps) if fps else np.zeros(0, np.uint32)).astype(np.uint32), offsets
 
 
-def _texts(fps: list[np.ndarray]):
-    """The clips' fingerprint texts, as the split stage gives them to the near-duplicate cache."""
-    import pyarrow as pa
-
-    from pipeline.signal.fingerprint import encode_fingerprint
-    from pipeline.stages.duplicate_cache import FingerprintTexts
-
-    return FingerprintTexts.of(pa.chunked_array([[encode_fingerprint(fp) for fp in fps]], pa.string()),
-                               np.arange(len(fps)))
-
-
 def _in(earlier: Pairs, index: np.ndarray) -> Pairs:
     """Earlier pairs renumbered into the grown corpus."""
     return Pairs(index[earlier.first], index[earlier.second], earlier.similarity, earlier.shared)
@@ -105,7 +94,7 @@ def test_cache_serves_an_added_clip_and_misses_a_changed_one(tmp_path, caplog) -
         keys = cache_keys(pa.chunked_array([[f"c{k:02d}" for k in range(count)]]), pa.chunked_array([sha[:count]]),
                           np.array(chars[:count]))
         with caplog.at_level(logging.INFO, logger=log.name):
-            found = near_duplicates(ctx, keys, _texts(fps[:count]), min_similarity=0.6, log=log)
+            found = near_duplicates(ctx, keys, _flat(fps[:count]), min_similarity=0.6, log=log)
         assert found.as_list() == search_pairs(*_flat(fps[:count]), min_similarity=0.6).as_list()
         return "added since" if "added since" in caplog.text else "all"
 
@@ -139,7 +128,7 @@ def test_cache_misses_clips_in_another_order(tmp_path, caplog) -> None:
                           np.array([fps[k].size for k in order]))
         chosen = [fps[k] for k in order]
         with caplog.at_level(logging.INFO, logger=log.name):
-            found = near_duplicates(ctx, keys, _texts(chosen), min_similarity=0.6, log=log)
+            found = near_duplicates(ctx, keys, _flat(chosen), min_similarity=0.6, log=log)
         assert found.as_list() == search_pairs(*_flat(chosen), min_similarity=0.6).as_list()
         return "added since" if "added since" in caplog.text else "all"
 
@@ -169,7 +158,7 @@ def test_a_damaged_cache_table_is_a_miss(tmp_path, caplog, damaged: str) -> None
         keys = cache_keys(pa.chunked_array([[f"c{k:02d}" for k in range(count)]]),
                           pa.chunked_array([[f"{k:064x}" for k in range(count)]]), np.array([fp.size for fp in fps[:count]]))
         with caplog.at_level(logging.INFO, logger=log.name):
-            found = near_duplicates(ctx, keys, _texts(fps[:count]), min_similarity=0.6, log=log)
+            found = near_duplicates(ctx, keys, _flat(fps[:count]), min_similarity=0.6, log=log)
         assert found.as_list() == search_pairs(*_flat(fps[:count]), min_similarity=0.6).as_list()
         return "added since" if "added since" in caplog.text else "all"
 
@@ -207,52 +196,3 @@ def test_positions_of_equals_isin_for_tables_of_every_size(count: int) -> None:
     values = rng.integers(0, 2**32, size=600_000, dtype=np.uint32)
     values[rng.integers(0, values.size, size=20_000)] = keys[rng.integers(0, keys.size, size=20_000)]
     np.testing.assert_array_equal(_positions_of(values, keys), np.flatnonzero(np.isin(values, keys)))
-
-
-def test_cache_takes_earlier_values_around_added_clips(tmp_path, caplog, monkeypatch) -> None:
-    """Clips added between cached ones (ids sorting among theirs): the searched values
-    are the cached clips' from the cache and the added clips' decoded, each in its
-    place, so the pairs equal a whole search; the texts are let go once decoded."""
-    import logging
-    from types import SimpleNamespace
-
-    import pyarrow as pa
-
-    from pipeline.stages import duplicate_cache
-    from pipeline.stages.duplicate_cache import cache_keys, near_duplicates
-
-    fps = _corpus(np.random.default_rng(13), 40, 12)
-    ctx = SimpleNamespace(cache_dir=tmp_path, use_cache=True)
-    log = logging.getLogger("test-duplicate-cache-between")
-    seen = []
-    real = duplicate_cache.search_added
-
-    def spy(values, offsets, *args, **kwargs):
-        seen.append((values.copy(), offsets.copy()))
-        return real(values, offsets, *args, **kwargs)
-
-    def run(chosen: list[int]) -> str:
-        caplog.clear()
-        keys = cache_keys(pa.chunked_array([[f"c{k:02d}" for k in chosen]]),
-                          pa.chunked_array([[f"{k:064x}" for k in chosen]]), np.array([fps[k].size * 2 for k in chosen]))
-        texts = _texts([fps[k] for k in chosen])
-        with caplog.at_level(logging.INFO, logger=log.name):
-            found = near_duplicates(ctx, keys, texts, min_similarity=0.6, log=log)
-        assert texts.texts is None
-        assert found.as_list() == search_pairs(*_flat([fps[k] for k in chosen]), min_similarity=0.6).as_list()
-        return "added since" if "added since" in caplog.text else "all"
-
-    decoded = []
-    real_decode = duplicate_cache.decode_fingerprints
-
-    def counting(chars, bounds, *, order):
-        decoded.append(len(order))
-        return real_decode(chars, bounds, order=order)
-
-    monkeypatch.setattr(duplicate_cache, "search_added", spy)
-    monkeypatch.setattr(duplicate_cache, "decode_fingerprints", counting)
-    assert run([k for k in range(40) if k % 3]) == "all"
-    assert run(list(range(40))) == "added since"  # 0, 3, 6, ... among the cached clips
-    assert decoded == [26, 14]  # all 26 texts, then the 14 added clips' alone
-    values, offsets = _flat(fps)
-    assert np.array_equal(seen[-1][0], values) and np.array_equal(seen[-1][1], offsets)

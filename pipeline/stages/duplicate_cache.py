@@ -1,27 +1,24 @@
 """The split stage's near-duplicate search, kept between runs under ``OUT/cache/split/``.
 
-Two cache tables: each clip's id, ``audio_sha256``, the length of its fingerprint text
-(:func:`cache_keys`) and its decoded sub-fingerprints; and the pairs the search found
-with the keys each pair shares (see :mod:`pipeline.signal.added_search`). When every
-clip of the cached search is still there with the same audio and fingerprint length,
-only the added clips are searched, and only their texts decoded; otherwise (a clip gone
-or changed, another code version or threshold, no cache) the whole corpus is. Either
-way the pairs equal a search of the whole corpus, so the manifests do not depend on the
-run history. The cache's scope holds the code version of this module and what it
-reaches (the decoding of the texts, the search, the cache), not the split stage's: an
-edit elsewhere in the stage keeps the pairs. The audio bytes stand for the fingerprint
-(the audio stage takes it from the clip as written) under the same audio stage code
-version, which is in the cache's scope; the length tells a fingerprint from none (audio
-quality measures turned off), since that setting leaves the bytes as they are. The
-pairs table's scope includes a digest of the clips table, so a run interrupted between
-the two writes leaves a miss, never a mismatch.
+Two cache tables: each clip's id, ``audio_sha256`` and the length of its fingerprint
+text (:func:`cache_keys`), and the pairs the search found with the keys each pair shares (see
+:mod:`pipeline.signal.added_search`). When every clip of the cached search is still
+there with the same audio and fingerprint length, only the added clips are searched; otherwise (a clip
+gone or changed, another code version or threshold, no cache) the whole corpus is.
+Either way the pairs equal a search of the whole corpus, so the manifests do not
+depend on the run history. The cache's scope holds the code version of this module and
+what it reaches (the decoding of the texts, the search, the cache), not the split
+stage's: an edit elsewhere in the stage keeps the pairs. The audio bytes stand for the fingerprint (the audio
+stage takes it from the clip as written) under the same audio stage code version, which
+is in the cache's scope; the length tells a fingerprint from none (audio quality
+measures turned off), since that setting leaves the bytes as they are. The pairs table's scope includes a digest of the clips
+table, so a run interrupted between the two writes leaves a miss, never a mismatch.
 """
 
 from __future__ import annotations
 
 import hashlib
 import logging
-from dataclasses import dataclass
 
 import numpy as np
 import pyarrow as pa
@@ -46,9 +43,6 @@ SCOPE_MODULE = "duplicate_cache"
 FINGERPRINT_MODULE = "audio_file"
 _PAIRS = pa.schema([("first", pa.int64()), ("second", pa.int64()), ("similarity", pa.float64()),
                     ("shared", pa.int64())])
-# The clips table's column of each clip's sub-fingerprints (a rebuild decodes only the
-# added clips' texts).
-_VALUES = "fingerprint_values"
 
 
 def cache_keys(clip_ids: pa.ChunkedArray, audio_sha256: pa.ChunkedArray, fingerprint_chars: np.ndarray) -> pa.Table:
@@ -65,67 +59,32 @@ def cache_keys(clip_ids: pa.ChunkedArray, audio_sha256: pa.ChunkedArray, fingerp
                      "fingerprint_chars": pa.array(np.asarray(fingerprint_chars, dtype=np.int64), pa.int64())})
 
 
-@dataclass
-class FingerprintTexts:
-    """The audio manifest's fingerprint texts (``texts``, one Arrow array) numbered in the
-    search's order: clip ``k`` is text ``order[k]``. Decoded only where needed: a rebuild
-    decodes the added clips' texts and takes the others' values from the cache (the
-    101,000 clips of the 100,000-source rebuild: 0.10 to 0.13 s to decode them all, one C
-    call per text). Here rather than in the split stage's module, so the code that turns
-    the audio manifest's texts into the searched values is in the cache's scope.
-    :meth:`release` lets the texts go once decoded (342 MB at 233,161 clips), before the
-    search allocates its own arrays.
+def decoded_fingerprints(column: pa.ChunkedArray, order: np.ndarray
+                         ) -> tuple[tuple[np.ndarray, np.ndarray], np.ndarray]:
+    """The fingerprint column decoded at once from its Arrow buffers (values, offsets) in
+    the row order ``order``: no Python string or array per clip (245,725 clips: 16 s and
+    two objects each before), no sorted copy of the texts; and each text's length in
+    characters, in the same order. Here rather than in the split stage's module, so the
+    code that turns the audio manifest's texts into the searched values is in the
+    cache's scope.
 
     Examples
     --------
     >>> from pipeline.signal.fingerprint import encode_fingerprint
-    >>> texts = pa.chunked_array([[encode_fingerprint(np.array([7, 8], np.uint32)),
-    ...                            encode_fingerprint(np.array([9], np.uint32))]])
-    >>> fps = FingerprintTexts.of(texts, np.array([1, 0]))
-    >>> [a.tolist() for a in fps.decoded()], fps.chars().tolist()
-    ([[9, 7, 8], [0, 1, 3]], [8, 12])
-    >>> [a.tolist() for a in fps.decoded(np.array([1]))]
-    [[7, 8], [0, 2]]
+    >>> texts = pa.chunked_array([[encode_fingerprint(np.array([7, 8], np.uint32)), encode_fingerprint(np.array([9], np.uint32))]])
+    >>> (values, offsets), chars = decoded_fingerprints(texts, np.array([1, 0]))
+    >>> values.tolist(), offsets.tolist(), chars.tolist()
+    ([9, 7, 8], [0, 1, 3], [8, 12])
     """
-
-    texts: pa.Array | None
-    order: np.ndarray
-
-    @classmethod
-    def of(cls, column: pa.ChunkedArray, order: np.ndarray) -> FingerprintTexts:
-        """The texts of ``column`` in the row order ``order``; DataError for a missing one."""
-        # One chunk (a manifest of one row group) is used as it is: combining copies it.
-        texts = column.chunk(0) if column.num_chunks == 1 else column.combine_chunks()
-        if texts.null_count:
-            raise DataError(f"{stage_manifest('audio')}: a clip has no fingerprint; expected one per clip")
-        return cls(texts, np.asarray(order, dtype=np.int64))
-
-    def _buffers(self) -> tuple[np.ndarray, np.ndarray]:
-        """The texts' characters and their bounds, from the Arrow buffers: no Python string
-        per clip (245,725 clips: 16 s and two objects each before), no sorted copy."""
-        texts = self.texts
-        if texts is None:
-            raise ValueError("the fingerprint texts were released")
-        _, offsets, data = texts.buffers()
-        width = np.int64 if pa.types.is_large_string(texts.type) else np.int32
-        bounds = np.frombuffer(offsets, width)[texts.offset: texts.offset + len(texts) + 1].astype(np.int64)
-        return (np.frombuffer(data, np.uint8) if data is not None else np.zeros(0, np.uint8)), bounds
-
-    def chars(self) -> np.ndarray:
-        """Each clip's text length in characters."""
-        return np.diff(self._buffers()[1])[self.order]
-
-    def decoded(self, clips: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-        """The sub-fingerprints of the clips ``clips`` (all by default), one after the
-        other, and their offsets (see :func:`~pipeline.signal.fingerprint.decode_fingerprints`)."""
-        chars, bounds = self._buffers()
-        return decode_fingerprints(chars, bounds, order=self.order if clips is None else self.order[clips])
-
-    def release(self) -> None:
-        """Let the texts go, and hand the freed pages back: Arrow's allocator keeps them
-        otherwise, and the search allocates through numpy."""
-        self.texts = None
-        pa.default_memory_pool().release_unused()
+    # One chunk (a manifest of one row group) is used as it is: combining copies it.
+    texts = column.chunk(0) if column.num_chunks == 1 else column.combine_chunks()
+    if texts.null_count:
+        raise DataError(f"{stage_manifest('audio')}: a clip has no fingerprint; expected one per clip")
+    _, offsets, data = texts.buffers()
+    width = np.int64 if pa.types.is_large_string(texts.type) else np.int32
+    bounds = np.frombuffer(offsets, width)[texts.offset: texts.offset + len(texts) + 1].astype(np.int64)
+    chars = np.frombuffer(data, np.uint8) if data is not None else np.zeros(0, np.uint8)
+    return decode_fingerprints(chars, bounds, order=order), np.diff(bounds)[order]
 
 
 def _clips_digest(keys: pa.Table) -> str:
@@ -146,11 +105,9 @@ def _clips_digest(keys: pa.Table) -> str:
     return h.hexdigest()
 
 
-def _earlier(clips: pa.Table | None, pairs: pa.Table | None, keys: pa.Table
-             ) -> tuple[np.ndarray, np.ndarray, Pairs] | None:
-    """Where this run numbers the clips of the cached search (ascending), the clips added
-    since, and its pairs in this run's numbering; or None when the cache cannot serve (a
-    cached clip gone or changed)."""
+def _earlier(clips: pa.Table | None, pairs: pa.Table | None, keys: pa.Table) -> tuple[np.ndarray, Pairs] | None:
+    """The clips added since the cached search and its pairs in this run's numbering, or
+    None when the cache cannot serve (a cached clip gone or changed)."""
     if clips is None or pairs is None or clips.num_rows > keys.num_rows:
         return None
     where = pc.index_in(clips.column("clip_id"), value_set=keys.column("clip_id").combine_chunks())
@@ -165,57 +122,24 @@ def _earlier(clips: pa.Table | None, pairs: pa.Table | None, keys: pa.Table
     added = np.ones(keys.num_rows, dtype=bool)
     added[at] = False
     col = {name: pairs.column(name).to_numpy() for name in _PAIRS.names}
-    return at, np.flatnonzero(added), Pairs(at[col["first"]], at[col["second"]], col["similarity"].astype(np.float64),
-                                            col["shared"].astype(np.int64))
+    return added, Pairs(at[col["first"]], at[col["second"]], col["similarity"].astype(np.float64),
+                        col["shared"].astype(np.int64))
 
 
-def _assembled(cached: pa.Table, at: np.ndarray, added: np.ndarray, texts: FingerprintTexts
-               ) -> tuple[np.ndarray, np.ndarray]:
-    """Every clip's sub-fingerprints in this run's numbering: the cached clips' (``at``,
-    ascending) from the cache's values, the ``added`` clips' decoded from their texts.
-
-    Each run of clips that follow one another in both numberings is one copy, so the
-    copies are about as many as the added clips."""
-    lists = cached.column(_VALUES).combine_chunks()
-    old_values = lists.values.to_numpy(zero_copy_only=False)
-    old_offsets = lists.offsets.to_numpy()
-    new_values, new_offsets = texts.decoded(added)
-    lengths = np.empty(len(at) + len(added), dtype=np.int64)
-    lengths[at], lengths[added] = np.diff(old_offsets), np.diff(new_offsets)
-    offsets = np.zeros(lengths.size + 1, dtype=np.int64)
-    np.cumsum(lengths, out=offsets[1:])
-    values = np.empty(int(offsets[-1]), dtype=np.uint32)
-    for where, source, bounds in ((at, old_values, old_offsets), (added, new_values, new_offsets)):
-        cuts = np.flatnonzero(np.diff(where) != 1) + 1
-        for first, last in zip(np.r_[0, cuts].tolist(), np.r_[cuts, where.size].tolist(), strict=True):
-            if first < last:
-                values[offsets[where[first]]:offsets[where[last - 1] + 1]] = source[bounds[first]:bounds[last]]
-    return values, offsets
-
-
-def _with_values(keys: pa.Table, fingerprints: tuple[np.ndarray, np.ndarray]) -> pa.Table:
-    """The clips table to save: the keys and each clip's sub-fingerprints."""
-    values, offsets = fingerprints
-    lists = pa.LargeListArray.from_arrays(pa.array(offsets, pa.int64()), pa.array(values, pa.uint32()))
-    return keys.append_column(_VALUES, lists)
-
-
-def near_duplicates(ctx: StageContext, keys: pa.Table | None, texts: FingerprintTexts, *,
+def near_duplicates(ctx: StageContext, keys: pa.Table | None, fingerprints: tuple[np.ndarray, np.ndarray], *,
                     min_similarity: float, log: logging.Logger) -> Pairs:
-    """The near-duplicate pairs of the clips (indices in ``texts``' numbering),
+    """The near-duplicate pairs of the clips (indices in clip_id order),
     searching only the added clips when the cache allows; the cache is then rewritten.
 
-    ``keys`` (:func:`cache_keys`, in the same numbering) is None when the cache is disabled."""
+    ``keys`` (:func:`cache_keys`) is None when the cache is disabled."""
     if keys is None:
-        fingerprints = texts.decoded()
-        texts.release()
         return search_pairs(*fingerprints, min_similarity=min_similarity)
     # The audio stage's per-file code version stands for the fingerprint method: a new
     # method keeps each clip's audio bytes but changes its fingerprint. This module's own stands
     # for what turns the texts into pairs: the decoding, the search (added_search,
     # pair_similarity, fingerprint) and the cache, not the rest of the split stage,
     # whose edits leave the pairs as they are.
-    scope = cache_key("near-duplicates", f"audio_sha256,fingerprint_chars,{_VALUES}",
+    scope = cache_key("near-duplicates", "audio_sha256,fingerprint_chars",
                       code_version(SCOPE_MODULE, cache_dir=ctx.cache_dir),
                       code_version(FINGERPRINT_MODULE, cache_dir=ctx.cache_dir), min_similarity)
     # Mapped Arrow files, not Parquet: a rebuild reads and rewrites both tables whole, and
@@ -230,19 +154,15 @@ def near_duplicates(ctx: StageContext, keys: pa.Table | None, texts: Fingerprint
         cached_pairs = TableCache(ctx.cache_dir, NAMESPACE, "near-duplicates", scope=pairs_scope,
                                   enabled=ctx.use_cache, mapped=True).load()
     earlier = _earlier(cached_clips, cached_pairs, keys)
-    fingerprints = texts.decoded() if earlier is None else _assembled(cached_clips, *earlier[:2], texts)
-    texts.release()
     if earlier is None:
         found = search_pairs(*fingerprints, min_similarity=min_similarity)
         log.info("split: near-duplicate search over all %d clips: %d pairs", keys.num_rows, len(found.first))
     else:
-        _, added, before = earlier
-        is_added = np.zeros(keys.num_rows, dtype=bool)
-        is_added[added] = True
-        found = search_added(*fingerprints, is_added, before, min_similarity=min_similarity)
+        added, before = earlier
+        found = search_added(*fingerprints, added, before, min_similarity=min_similarity)
         log.info("split: near-duplicate search over the %d clips added since the cached search: %d pairs in all",
-                 added.size, len(found.first))
-    clip_cache.save(_with_values(keys, fingerprints))
+                 int(added.sum()), len(found.first))
+    clip_cache.save(keys)
     pairs_scope = cache_key(scope, _clips_digest(keys))
     TableCache(ctx.cache_dir, NAMESPACE, "near-duplicates", scope=pairs_scope, enabled=ctx.use_cache,
                mapped=True).save(

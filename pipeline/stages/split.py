@@ -66,7 +66,7 @@ from pipeline.core.startup import pandas_left_unloaded
 from pipeline.signal.added_search import Pairs, search_pairs
 from pipeline.stages import gates
 from pipeline.stages.attributes import Attributes, read_attributes
-from pipeline.stages.duplicate_cache import FingerprintTexts, cache_keys, near_duplicates
+from pipeline.stages.duplicate_cache import cache_keys, decoded_fingerprints, near_duplicates
 from pipeline.stages.heldout import (
     TRAINING,
     GroupFacts,
@@ -314,16 +314,16 @@ _ID, _ROW, _GROUP, _SPEAKER, _TEXT, _FLAGS, _DURATION, _PHONES, _BASE, _ELIGIBLE
 class Joined:
     """The audio stage's table sorted by clip_id without its fingerprints, and for each
     of its rows the transcript's norm_text (``texts``, None without one) and its
-    row in the text table (``text_rows``, -1 without); their fingerprint texts in the
-    same order (decoded by the near-duplicate search, then let go: None after it);
-    ``orphans`` counts the text rows whose clip has no audio row (their audio was
-    rejected upstream)."""
+    row in the text table (``text_rows``, -1 without); their decoded fingerprints one
+    after the other (clip ``k``'s are ``fingerprints[0][o[k]:o[k + 1]]`` with
+    ``o = fingerprints[1]``); ``orphans`` counts the text rows whose clip has no audio
+    row (their audio was rejected upstream)."""
 
     audio: pa.Table
     text: pa.Table
     texts: list[dict[str, Any] | None]
     text_rows: np.ndarray
-    fingerprints: FingerprintTexts | None
+    fingerprints: tuple[np.ndarray, np.ndarray]
     orphans: int
     cache_keys: pa.Table | None = None
 
@@ -351,10 +351,10 @@ def join_rows(audio: pa.Table, text: pa.Table, *, keys: bool = False) -> Joined:
     Columnar: the audio rows stay an Arrow table; only the transcripts (a fraction of
     the clips) become Python rows. With ``keys``, :attr:`Joined.cache_keys` holds each
     clip's key in the near-duplicate cache (:func:`duplicate_cache.cache_keys`)."""
-    # Sorted without the fingerprints, which are read in sorted order from the input's
-    # own buffers (a sorted copy of them peaked 0.5 GB higher at 233,161 clips).
+    # Sorted without the fingerprints, which are decoded in sorted order from the
+    # input's own buffers (a sorted copy of them peaked 0.5 GB higher at 233,161 clips).
     order = pc.sort_indices(audio, sort_keys=[("clip_id", "ascending")])
-    fingerprints = FingerprintTexts.of(audio.column("fingerprint"), order.to_numpy())
+    fingerprints, fingerprint_chars = decoded_fingerprints(audio.column("fingerprint"), order.to_numpy())
     # Taken even when the rows are already in order: the copy lets the manifest read's
     # buffers go (without it the split stage alone peaked at 1.93 against 1.42 GB on
     # 233,161 generated clips, bench/bench_split.py).
@@ -378,7 +378,7 @@ def join_rows(audio: pa.Table, text: pa.Table, *, keys: bool = False) -> Joined:
     orphans = len(by_row) - int(np.count_nonzero(text_rows >= 0))
     # Row -1 (no transcript) reads the None put last, in C: no Python call per clip.
     texts = list(map([*by_row, None].__getitem__, text_rows.tolist()))
-    found = cache_keys(ids, audio.column("audio_sha256"), fingerprints.chars()) if keys else None
+    found = cache_keys(ids, audio.column("audio_sha256"), fingerprint_chars) if keys else None
     return Joined(audio, text, texts, text_rows, fingerprints, orphans, found)
 
 
@@ -645,9 +645,7 @@ def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None, unbou
     phones = list(map([*plain_phones(joined.text.column("phones"), word_boundary=boundary), ()].__getitem__,
                       joined.text_rows.tolist()))
     if near is None:
-        if joined.fingerprints is None:
-            raise ValueError("build_clips: the fingerprints were let go; pass the pairs found (near)")
-        near = search_pairs(*joined.fingerprints.decoded(), min_similarity=qc.near_duplicate_min_similarity)
+        near = search_pairs(*joined.fingerprints, min_similarity=qc.near_duplicate_min_similarity)
     pairs, partner = find_duplicates(clip_ids, audio.column("audio_sha256"), near)
     base = {"speaker": speakers, "clip": clip_ids}.get(group_by) or audio.column("source_id").to_pylist()
     out = np.fromiter(map(set(unbound).__contains__, clip_ids), bool, count=len(clip_ids)) if unbound else None
@@ -1585,9 +1583,8 @@ def _run(ctx: StageContext) -> StageResult:
     sc = cfg.split
     budgets = _budgets(sc.labelled_budgets)
     joined = join_rows(ctx.inputs["audio"], ctx.inputs["text"], keys=ctx.use_cache)
-    # The input table keeps the other columns only: the fingerprint texts' buffers (342 MB
-    # at 233,161 clips), held by joined.fingerprints until the search has decoded them,
-    # are then freed before it runs.
+    # The fingerprint texts are decoded: the input table keeps the other columns only, so
+    # their buffers (342 MB at 233,161 clips) are freed before the search.
     ctx.inputs["audio"] = ctx.inputs["audio"].drop_columns(["fingerprint"])
     # Arrow's allocator keeps freed pages (the Parquet read's working buffers among them,
     # 0.8 GB at 233,161 clips); the search allocates through numpy, so hand them back.
