@@ -494,6 +494,44 @@ def test_near_duplicates_bind_groups(tmp_path: Path) -> None:
     assert all(len(v) == 1 for v in sides.values())
 
 
+@pytest.mark.parametrize("cached", [False, True])
+def test_the_search_in_a_forked_process_gives_what_it_gives_here(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                                                 cached: bool) -> None:
+    """The stage searches in a forked process (pipeline.core.forked) while it reads the
+    ledger; the same search in this process gives the same manifests and ledger, with
+    or without the near-duplicate cache (which then serves a clip added later)."""
+    import copy
+
+    import pipeline.core.forked as forked
+
+    corpus, _ = random_corpus([3, 4, 5, 2, 6], 11, dup_share=0.3)
+    grown = copy.deepcopy(corpus)
+    grown.add(SPEAKERS[0], 5.5, transcribed=False, fingerprint=decode_fingerprint(corpus.audio[0]["fingerprint"]))
+    seen = []
+
+    def run(root: Path, fork: bool) -> tuple[dict[str, Any], ...]:
+        def begin(func: Any, *args: Any) -> Any:
+            seen.append(fork)
+            return forked.begin(func, *args, fork=fork)
+
+        monkeypatch.setattr(split, "begin", begin)
+        results = []
+        for c in (corpus, grown):
+            ctx = make_ctx(root, c, {"split": {"heldout": "30%"}})
+            ctx.use_cache = cached
+            result = split.run(ctx)
+            results.append({"rows": all_rows(result), "pairs": result.summary["near_duplicate_pairs"],
+                            "ledger": (root / "out" / "ledger.tsv").read_text()})
+        return tuple(results)
+
+    forked_run = run(tmp_path / "forked", True)
+    assert forked_run == run(tmp_path / "here", False)
+    assert seen == [True, True, False, False]
+    assert (tmp_path / "forked" / "out" / "cache" / "split").exists() == cached
+    assert any(p["clips"][1] == grown.audio[-1]["clip_id"] or p["clips"][0] == grown.audio[-1]["clip_id"]
+               for p in forked_run[1]["pairs"])
+
+
 # ---------------------------------------------------------------------------------------
 # Quality gates
 # ---------------------------------------------------------------------------------------

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import hashlib
 import logging
+from dataclasses import dataclass
 
 import numpy as np
 import pyarrow as pa
@@ -76,6 +77,21 @@ def decoded_fingerprints(column: pa.ChunkedArray, order: np.ndarray
     >>> values.tolist(), offsets.tolist(), chars.tolist()
     ([9, 7, 8], [0, 1, 3], [8, 12])
     """
+    chars, bounds = fingerprint_texts(column)
+    return decode_fingerprints(chars, bounds, order=order), np.diff(bounds)[order]
+
+
+def fingerprint_texts(column: pa.ChunkedArray) -> tuple[np.ndarray, np.ndarray]:
+    """The fingerprint column's ASCII bytes (a view of its Arrow buffer, no copy) and
+    each text's bounds in them (text ``k`` is ``chars[bounds[k]:bounds[k + 1]]``);
+    DataError for a clip without one.
+
+    Examples
+    --------
+    >>> chars, bounds = fingerprint_texts(pa.chunked_array([["AAAA", "BBBBCCCC"]]))
+    >>> bytes(chars[bounds[1]:bounds[2]]), bounds.tolist()
+    (b'BBBBCCCC', [0, 4, 12])
+    """
     # One chunk (a manifest of one row group) is used as it is: combining copies it.
     texts = column.chunk(0) if column.num_chunks == 1 else column.combine_chunks()
     if texts.null_count:
@@ -84,7 +100,7 @@ def decoded_fingerprints(column: pa.ChunkedArray, order: np.ndarray
     width = np.int64 if pa.types.is_large_string(texts.type) else np.int32
     bounds = np.frombuffer(offsets, width)[texts.offset: texts.offset + len(texts) + 1].astype(np.int64)
     chars = np.frombuffer(data, np.uint8) if data is not None else np.zeros(0, np.uint8)
-    return decode_fingerprints(chars, bounds, order=order), np.diff(bounds)[order]
+    return chars, bounds
 
 
 def _clips_digest(keys: pa.Table) -> str:
@@ -126,14 +142,25 @@ def _earlier(clips: pa.Table | None, pairs: pa.Table | None, keys: pa.Table) -> 
                         col["shared"].astype(np.int64))
 
 
-def near_duplicates(ctx: StageContext, keys: pa.Table | None, fingerprints: tuple[np.ndarray, np.ndarray], *,
-                    min_similarity: float, log: logging.Logger) -> Pairs:
-    """The near-duplicate pairs of the clips (indices in clip_id order),
-    searching only the added clips when the cache allows; the cache is then rewritten.
+@dataclass(frozen=True)
+class Planned:
+    """A near-duplicate search made ready by :func:`plan_search`: the clips' cache keys
+    (None: no cache), the clips added since the cached search and its pairs in this
+    run's numbering (None: the whole corpus is searched), the threshold and the
+    cache's scope."""
 
-    ``keys`` (:func:`cache_keys`) is None when the cache is disabled."""
+    keys: pa.Table | None
+    earlier: tuple[np.ndarray, Pairs] | None
+    min_similarity: float
+    scope: str = ""
+
+
+def plan_search(ctx: StageContext, keys: pa.Table | None, *, min_similarity: float) -> Planned:
+    """Read the cache and tell what :func:`searched` must search: the clips added since
+    the cached search when the cache can serve, else all. ``keys`` (:func:`cache_keys`)
+    is None when the cache is disabled."""
     if keys is None:
-        return search_pairs(*fingerprints, min_similarity=min_similarity)
+        return Planned(None, None, min_similarity)
     # The audio stage's per-file code version stands for the fingerprint method: a new
     # method keeps each clip's audio bytes but changes its fingerprint. This module's own stands
     # for what turns the texts into pairs: the decoding, the search (added_search,
@@ -142,29 +169,63 @@ def near_duplicates(ctx: StageContext, keys: pa.Table | None, fingerprints: tupl
     scope = cache_key("near-duplicates", "audio_sha256,fingerprint_chars",
                       code_version(SCOPE_MODULE, cache_dir=ctx.cache_dir),
                       code_version(FINGERPRINT_MODULE, cache_dir=ctx.cache_dir), min_similarity)
-    # Mapped Arrow files, not Parquet: a rebuild reads and rewrites both tables whole, and
-    # Parquet's compression cost 0.05 of the 0.08 CPU s this function spends besides the
-    # search at 101,000 clips (the tables take twice the bytes: 9 against 4.5 MB).
-    clip_cache = TableCache(ctx.cache_dir, NAMESPACE, "fingerprints", scope=scope, enabled=ctx.use_cache,
-                            mapped=True)
-    cached_clips = clip_cache.load()
+    cached_clips = _clip_cache(ctx, scope).load()
     cached_pairs = None
     if cached_clips is not None:
-        pairs_scope = cache_key(scope, _clips_digest(cached_clips))
-        cached_pairs = TableCache(ctx.cache_dir, NAMESPACE, "near-duplicates", scope=pairs_scope,
-                                  enabled=ctx.use_cache, mapped=True).load()
-    earlier = _earlier(cached_clips, cached_pairs, keys)
-    if earlier is None:
-        found = search_pairs(*fingerprints, min_similarity=min_similarity)
-        log.info("split: near-duplicate search over all %d clips: %d pairs", keys.num_rows, len(found.first))
+        cached_pairs = _pairs_cache(ctx, scope, cached_clips).load()
+    return Planned(keys, _earlier(cached_clips, cached_pairs, keys), min_similarity, scope)
+
+
+def searched(planned: Planned, texts: tuple[np.ndarray, np.ndarray], order: np.ndarray) -> Pairs:
+    """The pairs of the planned search (indices in clip_id order) on the clips'
+    fingerprint ``texts`` (:func:`fingerprint_texts`), decoded in the row ``order``
+    (clip ``k`` is text ``order[k]``): numpy work alone, which a forked process can do
+    (:mod:`pipeline.core.forked`)."""
+    return _search(planned, decode_fingerprints(*texts, order=order))
+
+
+def _search(planned: Planned, fingerprints: tuple[np.ndarray, np.ndarray]) -> Pairs:
+    if planned.earlier is None:
+        return search_pairs(*fingerprints, min_similarity=planned.min_similarity)
+    added, before = planned.earlier
+    return search_added(*fingerprints, added, before, min_similarity=planned.min_similarity)
+
+
+def save_search(ctx: StageContext, planned: Planned, found: Pairs, *, log: logging.Logger) -> None:
+    """Log what the search covered and rewrite the cache with its clips and pairs."""
+    if planned.keys is None:
+        return
+    if planned.earlier is None:
+        log.info("split: near-duplicate search over all %d clips: %d pairs", planned.keys.num_rows, len(found.first))
     else:
-        added, before = earlier
-        found = search_added(*fingerprints, added, before, min_similarity=min_similarity)
         log.info("split: near-duplicate search over the %d clips added since the cached search: %d pairs in all",
-                 int(added.sum()), len(found.first))
-    clip_cache.save(keys)
-    pairs_scope = cache_key(scope, _clips_digest(keys))
-    TableCache(ctx.cache_dir, NAMESPACE, "near-duplicates", scope=pairs_scope, enabled=ctx.use_cache,
-               mapped=True).save(
+                 int(planned.earlier[0].sum()), len(found.first))
+    _clip_cache(ctx, planned.scope).save(planned.keys)
+    _pairs_cache(ctx, planned.scope, planned.keys).save(
         pa.table([pa.array(getattr(found, f.name), f.type) for f in _PAIRS], schema=_PAIRS))
+
+
+# Mapped Arrow files, not Parquet: a rebuild reads and rewrites both tables whole, and
+# Parquet's compression cost 0.05 of the 0.08 CPU s this module spends besides the
+# search at 101,000 clips (the tables take twice the bytes: 9 against 4.5 MB).
+def _clip_cache(ctx: StageContext, scope: str) -> TableCache:
+    return TableCache(ctx.cache_dir, NAMESPACE, "fingerprints", scope=scope, enabled=ctx.use_cache, mapped=True)
+
+
+def _pairs_cache(ctx: StageContext, scope: str, clips: pa.Table) -> TableCache:
+    return TableCache(ctx.cache_dir, NAMESPACE, "near-duplicates", scope=cache_key(scope, _clips_digest(clips)),
+                      enabled=ctx.use_cache, mapped=True)
+
+
+def near_duplicates(ctx: StageContext, keys: pa.Table | None, fingerprints: tuple[np.ndarray, np.ndarray], *,
+                    min_similarity: float, log: logging.Logger) -> Pairs:
+    """The near-duplicate pairs of the clips (indices in clip_id order),
+    searching only the added clips when the cache allows; the cache is then rewritten:
+    :func:`plan_search`, the search of :func:`searched` on fingerprints decoded
+    already and :func:`save_search`, in turn.
+
+    ``keys`` (:func:`cache_keys`) is None when the cache is disabled."""
+    planned = plan_search(ctx, keys, min_similarity=min_similarity)
+    found = _search(planned, fingerprints)
+    save_search(ctx, planned, found, log=log)
     return found

@@ -50,6 +50,7 @@ import pyarrow.compute as pc
 from pipeline.core import names
 from pipeline.core.config import Config, parse_duration_s
 from pipeline.core.errors import DataError, UsageError
+from pipeline.core.forked import begin
 from pipeline.core.manifest import arrow_schema, validate_table
 from pipeline.core.names import (
     FLAGS,
@@ -63,10 +64,16 @@ from pipeline.core.names import (
 )
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.core.startup import pandas_left_unloaded
-from pipeline.signal.added_search import Pairs, search_pairs
+from pipeline.signal.added_search import Pairs
 from pipeline.stages import gates
 from pipeline.stages.attributes import Attributes, read_attributes
-from pipeline.stages.duplicate_cache import cache_keys, decoded_fingerprints, near_duplicates
+from pipeline.stages.duplicate_cache import (
+    cache_keys,
+    fingerprint_texts,
+    plan_search,
+    save_search,
+    searched,
+)
 from pipeline.stages.heldout import (
     TRAINING,
     GroupFacts,
@@ -314,18 +321,14 @@ _ID, _ROW, _GROUP, _SPEAKER, _TEXT, _FLAGS, _DURATION, _PHONES, _BASE, _ELIGIBLE
 class Joined:
     """The audio stage's table sorted by clip_id without its fingerprints, and for each
     of its rows the transcript's norm_text (``texts``, None without one) and its
-    row in the text table (``text_rows``, -1 without); their decoded fingerprints one
-    after the other (clip ``k``'s are ``fingerprints[0][o[k]:o[k + 1]]`` with
-    ``o = fingerprints[1]``); ``orphans`` counts the text rows whose clip has no audio
-    row (their audio was rejected upstream)."""
+    row in the text table (``text_rows``, -1 without); ``orphans`` counts the text rows
+    whose clip has no audio row (their audio was rejected upstream)."""
 
     audio: pa.Table
     text: pa.Table
     texts: list[dict[str, Any] | None]
     text_rows: np.ndarray
-    fingerprints: tuple[np.ndarray, np.ndarray]
     orphans: int
-    cache_keys: pa.Table | None = None
 
     def numbers(self, column: str) -> np.ndarray:
         """A numeric audio column as float64, NaN where null."""
@@ -345,16 +348,19 @@ def _first_repeat(ids: pa.ChunkedArray) -> str | None:
 _TEXT_READ = ("norm_text",)
 
 
-def join_rows(audio: pa.Table, text: pa.Table, *, keys: bool = False) -> Joined:
+def clip_order(audio: pa.Table) -> pa.Array:
+    """The audio table's rows in clip_id order (:func:`join_rows` takes them so)."""
+    return pc.sort_indices(audio, sort_keys=[("clip_id", "ascending")])
+
+
+def join_rows(audio: pa.Table, text: pa.Table, *, order: pa.Array | None = None) -> Joined:
     """Join the audio and text stages' rows by clip_id; DataError for a clip listed twice.
 
-    Columnar: the audio rows stay an Arrow table; only the transcripts (a fraction of
-    the clips) become Python rows. With ``keys``, :attr:`Joined.cache_keys` holds each
-    clip's key in the near-duplicate cache (:func:`duplicate_cache.cache_keys`)."""
-    # Sorted without the fingerprints, which are decoded in sorted order from the
-    # input's own buffers (a sorted copy of them peaked 0.5 GB higher at 233,161 clips).
-    order = pc.sort_indices(audio, sort_keys=[("clip_id", "ascending")])
-    fingerprints, fingerprint_chars = decoded_fingerprints(audio.column("fingerprint"), order.to_numpy())
+    Columnar: the audio rows stay an Arrow table, without the fingerprints (the
+    near-duplicate search decodes them from the input's own buffers); only the
+    transcripts (a fraction of the clips) become Python rows. ``order`` is
+    :func:`clip_order` of ``audio`` when the caller has it."""
+    order = clip_order(audio) if order is None else order
     # Taken even when the rows are already in order: the copy lets the manifest read's
     # buffers go (without it the split stage alone peaked at 1.93 against 1.42 GB on
     # 233,161 generated clips, bench/bench_split.py).
@@ -378,8 +384,7 @@ def join_rows(audio: pa.Table, text: pa.Table, *, keys: bool = False) -> Joined:
     orphans = len(by_row) - int(np.count_nonzero(text_rows >= 0))
     # Row -1 (no transcript) reads the None put last, in C: no Python call per clip.
     texts = list(map([*by_row, None].__getitem__, text_rows.tolist()))
-    found = cache_keys(ids, audio.column("audio_sha256"), fingerprint_chars) if keys else None
-    return Joined(audio, text, texts, text_rows, fingerprints, orphans, found)
+    return Joined(audio, text, texts, text_rows, orphans)
 
 
 def _string_codes(column: pa.ChunkedArray) -> tuple[np.ndarray, list[Any]]:
@@ -625,12 +630,13 @@ class Columns:
     plain_phones: list[tuple[str, ...]] = field(default_factory=list)
 
 
-def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None, unbound: Collection[str] = ()
+def build_clips(joined: Joined, cfg: Config, *, near: Pairs | Callable[[], Pairs], unbound: Collection[str] = ()
                 ) -> tuple[list[Clip], DuplicatePairs, Columns]:
     """Every joined row as a Clip: groups bound by duplicates, gate measures and flags.
 
-    ``near`` holds the near-duplicate pairs when the caller searched already (through
-    the cache of :mod:`pipeline.stages.duplicate_cache`). A clip of ``unbound`` (excluded
+    ``near`` holds the near-duplicate pairs (:mod:`pipeline.stages.duplicate_cache`), or
+    gives them when called: only once the measures that need none are taken, so a
+    search in another process goes on meanwhile. A clip of ``unbound`` (excluded
     at review) binds no groups; it keeps its pairs and flag. Returns the clips in
     clip_id order, the duplicate pairs (indices into them) and the same values as
     :class:`Columns`.
@@ -644,22 +650,20 @@ def build_clips(joined: Joined, cfg: Config, *, near: Pairs | None = None, unbou
     # Each transcript's phones, and () for a clip without one (row -1 reads the () put last).
     phones = list(map([*plain_phones(joined.text.column("phones"), word_boundary=boundary), ()].__getitem__,
                       joined.text_rows.tolist()))
-    if near is None:
-        near = search_pairs(*joined.fingerprints, min_similarity=qc.near_duplicate_min_similarity)
-    pairs, partner = find_duplicates(clip_ids, audio.column("audio_sha256"), near)
     base = {"speaker": speakers, "clip": clip_ids}.get(group_by) or audio.column("source_id").to_pylist()
     out = np.fromiter(map(set(unbound).__contains__, clip_ids), bool, count=len(clip_ids)) if unbound else None
-    bound = bound_groups(base, pairs.first, pairs.second, unbound=out)
-    merged = bound.merged
     measured = measure_gates(joined, phones, min_snr_db=qc.min_snr_db,
                              min_bandwidth_hz=qc.min_bandwidth_hz, rate_max_abs_z=qc.rate_max_abs_z,
                              rate_min_clips=qc.rate_min_clips, rate_min_spread=qc.rate_min_spread,
                              actions=qc.gate_actions, max_clipped_fraction=cfg.audio.max_clipped_fraction,
                              speakers=speaker_codes)
-    near = np.zeros(len(clip_ids), dtype=bool)
-    near[pairs.first] = near[pairs.second] = True
-    flag_codes, flag_sets = _flag_sets({**row_flags(joined), **measured.flags, "near_duplicate": near},
-                                       len(clip_ids))
+    flags = row_flags(joined)
+    pairs, partner = find_duplicates(clip_ids, audio.column("audio_sha256"), near() if callable(near) else near)
+    bound = bound_groups(base, pairs.first, pairs.second, unbound=out)
+    merged = bound.merged
+    paired = np.zeros(len(clip_ids), dtype=bool)
+    paired[pairs.first] = paired[pairs.second] = True
+    flag_codes, flag_sets = _flag_sets({**flags, **measured.flags, "near_duplicate": paired}, len(clip_ids))
     # Positional, in the order of Clip's fields (keywords took 0.14 against 0.05 s per
     # 235,000), and called by map() from C over the columns (one list each, of equal length).
     durations = joined.numbers("duration_s")
@@ -1582,16 +1586,40 @@ def _run(ctx: StageContext) -> StageResult:
     cfg = ctx.config
     sc = cfg.split
     budgets = _budgets(sc.labelled_budgets)
-    joined = join_rows(ctx.inputs["audio"], ctx.inputs["text"], keys=ctx.use_cache)
-    # The fingerprint texts are decoded: the input table keeps the other columns only, so
-    # their buffers (342 MB at 233,161 clips) are freed before the search.
-    ctx.inputs["audio"] = ctx.inputs["audio"].drop_columns(["fingerprint"])
-    # Arrow's allocator keeps freed pages (the Parquet read's working buffers among them,
-    # 0.8 GB at 233,161 clips); the search allocates through numpy, so hand them back.
-    pa.default_memory_pool().release_unused()
-    near = near_duplicates(ctx, joined.cache_keys, joined.fingerprints,
-                           min_similarity=cfg.quality.near_duplicate_min_similarity, log=ctx.log)
-    clips, pairs, columns = build_clips(joined, cfg, near=near, unbound=excluded_clips(ctx))
+    audio = ctx.inputs["audio"]
+    order = clip_order(audio)
+    texts: tuple[np.ndarray, np.ndarray] | None = fingerprint_texts(audio.column("fingerprint"))
+    keys = cache_keys(audio.column("clip_id").take(order), audio.column("audio_sha256").take(order),
+                      np.diff(texts[1])[order.to_numpy()]) if ctx.use_cache else None
+    planned = plan_search(ctx, keys, min_similarity=cfg.quality.near_duplicate_min_similarity)
+    # The near-duplicate search (its decoding of the fingerprints included) goes on in a
+    # forked process while this one joins the rows and reads the ledger: in a rebuild
+    # at 101,000 clips it took 0.45 s of the stage's 1.1, with the other core idle.
+    search = begin(searched, planned, texts, order.to_numpy())
+    try:
+        joined = join_rows(audio, ctx.inputs["text"], order=order)
+        # The input table keeps the other columns only, so the fingerprint texts' buffers
+        # (342 MB at 233,161 clips) are freed once the search has them.
+        ctx.inputs["audio"] = audio = audio.drop_columns(["fingerprint"])
+        # The present sources, sorted: the next ledger's source rows (a mapping: the
+        # ledger's corpus check looks each of its sources up there).
+        sources = dict.fromkeys(sorted_source_keys(joined.audio.column("source_id")), "present")
+        use = _open_ledger(ctx, sources)
+        balance = read_balance(ctx)
+
+        def near() -> Pairs:
+            nonlocal texts
+            found = search.result()
+            texts = None  # the search's input, kept until now should it run here
+            # Arrow's allocator keeps freed pages (the Parquet read's working buffers among
+            # them, 0.8 GB at 233,161 clips); the clips are built through numpy, so hand them back.
+            pa.default_memory_pool().release_unused()
+            save_search(ctx, planned, found, log=ctx.log)
+            return found
+
+        clips, pairs, columns = build_clips(joined, cfg, near=near, unbound=excluded_clips(ctx))
+    finally:
+        search.cancel()
     orphans = joined.orphans
     # Clips excluded at review are set aside first: the reviewer's reason is the one recorded.
     rejects, excluded, review, review_path = split_exclusions(ctx, clips)
@@ -1599,12 +1627,7 @@ def _run(ctx: StageContext) -> StageResult:
                                        joined)
     rejects += gate_rejects
     eligible_s, target_s, targets = _heldout_target(ctx, kept)
-    # The present sources, sorted: the next ledger's source rows (a mapping: the ledger's
-    # corpus check looks each of its sources up there).
-    sources = dict.fromkeys(sorted_source_keys(joined.audio.column("source_id")), "present")
-    use = _open_ledger(ctx, sources)
     ledger = use.ledger
-    balance = read_balance(ctx)
     # Kept clips are all the clips unless some were set aside: then Past reads its own codes.
     assignment = assign(kept, ledger=ledger, seed=cfg.seed, targets=targets, budgets=budgets,
                         method=sc.selection, text_overlap=sc.text_overlap, balance=balance, columns=columns)
