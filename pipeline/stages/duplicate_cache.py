@@ -181,10 +181,12 @@ def searched(planned: Planned, texts: tuple[np.ndarray, np.ndarray], order: np.n
     fingerprint ``texts`` (:func:`fingerprint_texts`), decoded in the row ``order``
     (clip ``k`` is text ``order[k]``): numpy work alone, which a forked process can do
     (:mod:`pipeline.core.forked`)."""
-    return _search(planned, decode_fingerprints(*texts, order=order))
+    return search_fingerprints(planned, decode_fingerprints(*texts, order=order))
 
 
-def _search(planned: Planned, fingerprints: tuple[np.ndarray, np.ndarray]) -> Pairs:
+def search_fingerprints(planned: Planned, fingerprints: tuple[np.ndarray, np.ndarray]) -> Pairs:
+    """The pairs of the planned search on the clips' decoded ``fingerprints`` (values,
+    offsets), in clip_id order."""
     if planned.earlier is None:
         return search_pairs(*fingerprints, min_similarity=planned.min_similarity)
     added, before = planned.earlier
@@ -226,6 +228,6 @@ def near_duplicates(ctx: StageContext, keys: pa.Table | None, fingerprints: tupl
 
     ``keys`` (:func:`cache_keys`) is None when the cache is disabled."""
     planned = plan_search(ctx, keys, min_similarity=min_similarity)
-    found = _search(planned, fingerprints)
+    found = search_fingerprints(planned, fingerprints)
     save_search(ctx, planned, found, log=log)
     return found

@@ -50,7 +50,7 @@ import pyarrow.compute as pc
 from pipeline.core import names
 from pipeline.core.config import Config, parse_duration_s
 from pipeline.core.errors import DataError, UsageError
-from pipeline.core.forked import begin
+from pipeline.core.forked import Begun, begin
 from pipeline.core.manifest import arrow_schema, validate_table
 from pipeline.core.names import (
     FLAGS,
@@ -65,13 +65,16 @@ from pipeline.core.names import (
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.core.startup import pandas_left_unloaded
 from pipeline.signal.added_search import Pairs
+from pipeline.signal.fingerprint import decode_fingerprints
 from pipeline.stages import gates
 from pipeline.stages.attributes import Attributes, read_attributes
 from pipeline.stages.duplicate_cache import (
+    Planned,
     cache_keys,
     fingerprint_texts,
     plan_search,
     save_search,
+    search_fingerprints,
     searched,
 )
 from pipeline.stages.heldout import (
@@ -364,7 +367,7 @@ def join_rows(audio: pa.Table, text: pa.Table, *, order: pa.Array | None = None)
     # Taken even when the rows are already in order: the copy lets the manifest read's
     # buffers go (without it the split stage alone peaked at 1.93 against 1.42 GB on
     # 233,161 generated clips, bench/bench_split.py).
-    audio = audio.drop_columns(["fingerprint"]).take(order)
+    audio = (audio.drop_columns(["fingerprint"]) if "fingerprint" in audio.column_names else audio).take(order)
     twice = _first_repeat(text.column("clip_id").sort())
     if twice is not None:
         raise DataError(f"{stage_manifest('text')}: clip {twice} has two transcript rows; expected one")
@@ -1592,34 +1595,45 @@ def _run(ctx: StageContext) -> StageResult:
     keys = cache_keys(audio.column("clip_id").take(order), audio.column("audio_sha256").take(order),
                       np.diff(texts[1])[order.to_numpy()]) if ctx.use_cache else None
     planned = plan_search(ctx, keys, min_similarity=cfg.quality.near_duplicate_min_similarity)
-    # The near-duplicate search (its decoding of the fingerprints included) goes on in a
-    # forked process while this one joins the rows and reads the ledger: in a rebuild
-    # at 101,000 clips it took 0.45 s of the stage's 1.1, with the other core idle.
-    search = begin(searched, planned, texts, order.to_numpy())
-    try:
-        joined = join_rows(audio, ctx.inputs["text"], order=order)
-        # The input table keeps the other columns only, so the fingerprint texts' buffers
-        # (342 MB at 233,161 clips) are freed once the search has them.
-        ctx.inputs["audio"] = audio = audio.drop_columns(["fingerprint"])
-        # The present sources, sorted: the next ledger's source rows (a mapping: the
-        # ledger's corpus check looks each of its sources up there).
-        sources = dict.fromkeys(sorted_source_keys(joined.audio.column("source_id")), "present")
-        use = _open_ledger(ctx, sources)
-        balance = read_balance(ctx)
+    # The input table keeps the other columns only, so the fingerprint texts' buffers
+    # (342 MB at 233,161 clips) are freed once the search no longer needs them.
+    ctx.inputs["audio"] = audio = audio.drop_columns(["fingerprint"])
+    near: Pairs | Callable[[], Pairs]
+    search: Begun[Pairs] | None = None
+    if planned.earlier is None:
+        # A whole search (no cache, or one that cannot serve) runs here, first: in a
+        # forked process its working memory came on top of this one's (at 233,161 clips,
+        # cold, the machine's peak rose from 1.40 to 1.64-1.86 GB) for 0.1-0.4 s of 10.
+        fingerprints = decode_fingerprints(*texts, order=order.to_numpy())
+        texts = None
+        near = _search_here(ctx, planned, fingerprints)
+    else:
+        # A search of the clips added since the cached one (its decoding of the
+        # fingerprints included) goes on in a forked process while this one joins the
+        # rows and reads the ledger: 0.38 s of a rebuild at 101,000 clips, the other
+        # core idle meanwhile.
+        search = begun = begin(searched, planned, texts, order.to_numpy())
 
         def near() -> Pairs:
             nonlocal texts
-            found = search.result()
+            found = begun.result()
             texts = None  # the search's input, kept until now should it run here
             # Arrow's allocator keeps freed pages (the Parquet read's working buffers among
             # them, 0.8 GB at 233,161 clips); the clips are built through numpy, so hand them back.
             pa.default_memory_pool().release_unused()
             save_search(ctx, planned, found, log=ctx.log)
             return found
-
+    try:
+        joined = join_rows(audio, ctx.inputs["text"], order=order)
+        # The present sources, sorted: the next ledger's source rows (a mapping: the
+        # ledger's corpus check looks each of its sources up there).
+        sources = dict.fromkeys(sorted_source_keys(joined.audio.column("source_id")), "present")
+        use = _open_ledger(ctx, sources)
+        balance = read_balance(ctx)
         clips, pairs, columns = build_clips(joined, cfg, near=near, unbound=excluded_clips(ctx))
     finally:
-        search.cancel()
+        if search is not None:
+            search.cancel()
     orphans = joined.orphans
     # Clips excluded at review are set aside first: the reviewer's reason is the one recorded.
     rejects, excluded, review, review_path = split_exclusions(ctx, clips)
@@ -1667,6 +1681,17 @@ def _run(ctx: StageContext) -> StageResult:
     shown = use.path.relative_to(ctx.out) if use.path.is_relative_to(ctx.out) else use.path
     summary["ledger"] = {"path": str(shown), "where": use.where, "read": ledger is not None, "fresh": use.fresh}
     return StageResult(manifests=tables, rejects=rejects, summary=summary)
+
+
+def _search_here(ctx: StageContext, planned: Planned, fingerprints: tuple[np.ndarray, np.ndarray]) -> Pairs:
+    """The planned search in this process, on fingerprints decoded already (their texts
+    let go) and the cache written."""
+    # Arrow's allocator keeps freed pages (the Parquet read's working buffers among them,
+    # 0.8 GB at 233,161 clips); the search allocates through numpy, so hand them back.
+    pa.default_memory_pool().release_unused()
+    found = search_fingerprints(planned, fingerprints)
+    save_search(ctx, planned, found, log=ctx.log)
+    return found
 
 
 def _subsets_of(subset: Mapping[str, str], ids: list[str]) -> list[str]:
