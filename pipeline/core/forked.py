@@ -18,12 +18,9 @@ from __future__ import annotations
 
 import contextlib
 import os
-import pickle
 import signal
 from collections.abc import Callable
-from typing import Any, Generic, TypeVar
-
-from pipeline.core.pool import guard_worker, start_method
+from typing import Any, Generic, NoReturn, TypeVar
 
 T = TypeVar("T")
 
@@ -41,20 +38,19 @@ class Begun(Generic[T]):
         read, write = os.pipe()
         parent = os.getpid()
         pid = os.fork()
-        if pid == 0:  # the child: compute, send, leave without cleanup
-            code = 1
-            try:
-                os.close(read)
-                signal.signal(signal.SIGINT, signal.SIG_DFL)
-                guard_worker(parent)
-                data = pickle.dumps(self._func(*self._args), protocol=pickle.HIGHEST_PROTOCOL)
-                with open(write, "wb", closefd=True) as fh:
-                    fh.write(data)
-                code = 0
-            finally:
-                os._exit(code)
+        if pid == 0:
+            child_sends(read, write, lambda: self._computed(parent))
         os.close(write)
         self._pid, self._read = pid, read
+
+    def _computed(self, parent: int) -> bytes:
+        """In the child: the call's value, pickled; the child ends with its parent."""
+        import pickle  # here, as below: RawWalk's helper, at every command's start, needs neither
+
+        from pipeline.core.pool import guard_worker
+
+        guard_worker(parent)
+        return pickle.dumps(self._func(*self._args), protocol=pickle.HIGHEST_PROTOCOL)
 
     def result(self) -> T:
         """The call's value: the child's, or computed here when it sent none."""
@@ -65,6 +61,8 @@ class Begun(Generic[T]):
             _, status = os.waitpid(self._pid, 0)
             self._pid = 0
             if status == 0 and data:
+                import pickle
+
                 with contextlib.suppress(Exception):
                     value: T = pickle.loads(data)
                     self._func, self._args = _done, ()  # the arguments are let go
@@ -84,6 +82,23 @@ class Begun(Generic[T]):
             with contextlib.suppress(ChildProcessError):
                 os.waitpid(self._pid, 0)
             self._pid = 0
+
+
+def child_sends(read: int, write: int, data: Callable[[], bytes]) -> NoReturn:
+    """In a forked child: close the pipe's read end ``read``, take SIGINT's default action
+    back, write what ``data()`` gives to the write end ``write`` and end without cleanup
+    (status 1, with nothing written, if ``data`` raised). No example: it ends the process.
+    """
+    code = 1
+    try:
+        os.close(read)
+        signal.signal(signal.SIGINT, signal.SIG_DFL)
+        payload = data()
+        with open(write, "wb", closefd=True) as fh:
+            fh.write(payload)
+        code = 0
+    finally:
+        os._exit(code)
 
 
 def _done() -> Any:
@@ -117,4 +132,8 @@ def begin(func: Callable[..., T], *args: Any, fork: bool | None = None) -> Begun
     >>> begin(divmod, 7, 2, fork=False).result()
     (3, 1)
     """
-    return Begun(func, args, fork=start_method() == "fork" if fork is None else fork)
+    if fork is None:
+        from pipeline.core.pool import start_method
+
+        fork = start_method() == "fork"
+    return Begun(func, args, fork=fork)

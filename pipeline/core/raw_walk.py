@@ -29,6 +29,7 @@ import sys
 from array import array
 from pathlib import Path
 
+from pipeline.core.forked import child_sends
 from pipeline.core.snapshot import Listing, folder_digest, raw_digest, walk_folders
 
 # At most this many runs of top-level folders: one byte each in the pipe, far below the
@@ -98,16 +99,8 @@ class RawWalk:
         os.close(tokens_write)  # the pipe ends when both processes have emptied it
         pid = os.fork()
         if pid == 0:  # the helper: walk what it can take, send it, leave without cleanup
-            code = 1
-            try:
-                os.close(results_read)
-                signal.signal(signal.SIGINT, signal.SIG_DFL)
-                data = marshal.dumps([_sendable(walked) for walked in self._take(tokens_read)])
-                with open(results_write, "wb", closefd=True) as fh:
-                    fh.write(data)
-                code = 0
-            finally:
-                os._exit(code)
+            child_sends(results_read, results_write,
+                        lambda: marshal.dumps([_sendable(walked) for walked in self._take(tokens_read)]))
         os.close(results_write)
         self._pid, self._tokens, self._results = pid, tokens_read, results_read
 
