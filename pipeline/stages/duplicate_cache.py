@@ -60,25 +60,23 @@ def cache_keys(clip_ids: pa.ChunkedArray, audio_sha256: pa.ChunkedArray, fingerp
                      "fingerprint_chars": pa.array(np.asarray(fingerprint_chars, dtype=np.int64), pa.int64())})
 
 
-def decoded_fingerprints(column: pa.ChunkedArray, order: np.ndarray
-                         ) -> tuple[tuple[np.ndarray, np.ndarray], np.ndarray]:
-    """The fingerprint column decoded at once from its Arrow buffers (values, offsets) in
-    the row order ``order``: no Python string or array per clip (245,725 clips: 16 s and
-    two objects each before), no sorted copy of the texts; and each text's length in
-    characters, in the same order. Here rather than in the split stage's module, so the
-    code that turns the audio manifest's texts into the searched values is in the
-    cache's scope.
+def decoded(texts: tuple[np.ndarray, np.ndarray], order: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The fingerprint texts (:func:`fingerprint_texts`) decoded at once in the row order
+    ``order`` (clip ``k`` is text ``order[k]``): the values one after the other and their
+    offsets, with no Python string or array per clip (245,725 clips: 16 s and two objects
+    each before) and no sorted copy of the texts. Here rather than in the split stage's
+    module, so the code that turns the audio manifest's texts into the searched values is
+    in the cache's scope.
 
     Examples
     --------
     >>> from pipeline.signal.fingerprint import encode_fingerprint
     >>> texts = pa.chunked_array([[encode_fingerprint(np.array([7, 8], np.uint32)), encode_fingerprint(np.array([9], np.uint32))]])
-    >>> (values, offsets), chars = decoded_fingerprints(texts, np.array([1, 0]))
-    >>> values.tolist(), offsets.tolist(), chars.tolist()
-    ([9, 7, 8], [0, 1, 3], [8, 12])
+    >>> values, offsets = decoded(fingerprint_texts(texts), np.array([1, 0]))
+    >>> values.tolist(), offsets.tolist()
+    ([9, 7, 8], [0, 1, 3])
     """
-    chars, bounds = fingerprint_texts(column)
-    return decode_fingerprints(chars, bounds, order=order), np.diff(bounds)[order]
+    return decode_fingerprints(*texts, order=order)
 
 
 def fingerprint_texts(column: pa.ChunkedArray) -> tuple[np.ndarray, np.ndarray]:
@@ -181,7 +179,7 @@ def searched(planned: Planned, texts: tuple[np.ndarray, np.ndarray], order: np.n
     fingerprint ``texts`` (:func:`fingerprint_texts`), decoded in the row ``order``
     (clip ``k`` is text ``order[k]``): numpy work alone, which a forked process can do
     (:mod:`pipeline.core.forked`)."""
-    return search_fingerprints(planned, decode_fingerprints(*texts, order=order))
+    return search_fingerprints(planned, decoded(texts, order))
 
 
 def search_fingerprints(planned: Planned, fingerprints: tuple[np.ndarray, np.ndarray]) -> Pairs:

@@ -65,12 +65,12 @@ from pipeline.core.names import (
 from pipeline.core.stage import Output, Stage, StageContext, StageResult, reject
 from pipeline.core.startup import pandas_left_unloaded
 from pipeline.signal.added_search import Pairs
-from pipeline.signal.fingerprint import decode_fingerprints
 from pipeline.stages import gates
 from pipeline.stages.attributes import Attributes, read_attributes
 from pipeline.stages.duplicate_cache import (
     Planned,
     cache_keys,
+    decoded,
     fingerprint_texts,
     plan_search,
     save_search,
@@ -1604,7 +1604,7 @@ def _run(ctx: StageContext) -> StageResult:
         # A whole search (no cache, or one that cannot serve) runs here, first: in a
         # forked process its working memory came on top of this one's (at 233,161 clips,
         # cold, the machine's peak rose from 1.40 to 1.64-1.86 GB) for 0.1-0.4 s of 10.
-        fingerprints = decode_fingerprints(*texts, order=order.to_numpy())
+        fingerprints = decoded(texts, order.to_numpy())
         texts = None
         near = _search_here(ctx, planned, fingerprints)
     else:
