@@ -52,9 +52,11 @@ def dask_cluster(folder: Path) -> Iterator[str]:
                                        "--nthreads", "1", "--host", "127.0.0.1", *common],
                                       cwd=folder, env=env, stdout=log, stderr=log))
         deadline = time.monotonic() + 60
-        while not scheduler_file.exists() and time.monotonic() < deadline:
+        address = _scheduler_address(scheduler_file)
+        while address is None and time.monotonic() < deadline:
             time.sleep(0.2)
-        address = json.loads(scheduler_file.read_text(encoding="utf-8"))["address"]
+            address = _scheduler_address(scheduler_file)
+        assert address is not None, f"no scheduler address in {scheduler_file} after 60 s"
         with distributed.Client(address, set_as_default=False) as client:
             client.wait_for_workers(WORKERS, timeout=120)
         yield address
@@ -67,6 +69,15 @@ def dask_cluster(folder: Path) -> Iterator[str]:
                 proc.kill()
                 proc.wait()
         log.close()
+
+
+def _scheduler_address(scheduler_file: Path) -> str | None:
+    """The address the scheduler wrote, or None while the file is missing or not yet
+    whole JSON (the scheduler writes it in place: it was once read empty)."""
+    try:
+        return json.loads(scheduler_file.read_text(encoding="utf-8"))["address"]
+    except (OSError, ValueError, KeyError):
+        return None
 
 
 @pytest.fixture(scope="module")
