@@ -217,15 +217,19 @@ def _pairs_cache(ctx: StageContext, scope: str, clips: pa.Table) -> TableCache:
                       enabled=ctx.use_cache, mapped=True)
 
 
+def search_and_save(ctx: StageContext, planned: Planned, fingerprints: tuple[np.ndarray, np.ndarray], *,
+                    log: logging.Logger) -> Pairs:
+    """:func:`search_fingerprints` in this process, then :func:`save_search`."""
+    found = search_fingerprints(planned, fingerprints)
+    save_search(ctx, planned, found, log=log)
+    return found
+
+
 def near_duplicates(ctx: StageContext, keys: pa.Table | None, fingerprints: tuple[np.ndarray, np.ndarray], *,
                     min_similarity: float, log: logging.Logger) -> Pairs:
     """The near-duplicate pairs of the clips (indices in clip_id order),
     searching only the added clips when the cache allows; the cache is then rewritten:
-    :func:`plan_search`, the search of :func:`searched` on fingerprints decoded
-    already and :func:`save_search`, in turn.
+    :func:`plan_search`, then :func:`search_and_save` on fingerprints decoded already.
 
     ``keys`` (:func:`cache_keys`) is None when the cache is disabled."""
-    planned = plan_search(ctx, keys, min_similarity=min_similarity)
-    found = search_fingerprints(planned, fingerprints)
-    save_search(ctx, planned, found, log=log)
-    return found
+    return search_and_save(ctx, plan_search(ctx, keys, min_similarity=min_similarity), fingerprints, log=log)

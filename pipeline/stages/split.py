@@ -68,13 +68,12 @@ from pipeline.signal.added_search import Pairs
 from pipeline.stages import gates
 from pipeline.stages.attributes import Attributes, read_attributes
 from pipeline.stages.duplicate_cache import (
-    Planned,
     cache_keys,
     decoded,
     fingerprint_texts,
     plan_search,
     save_search,
-    search_fingerprints,
+    search_and_save,
     searched,
 )
 from pipeline.stages.heldout import (
@@ -1606,7 +1605,10 @@ def _run(ctx: StageContext) -> StageResult:
         # cold, the machine's peak rose from 1.40 to 1.64-1.86 GB) for 0.1-0.4 s of 10.
         fingerprints = decoded(texts, order.to_numpy())
         texts = None
-        near = _search_here(ctx, planned, fingerprints)
+        # Arrow's allocator keeps freed pages (the Parquet read's working buffers among
+        # them, 0.8 GB at 233,161 clips); the search allocates through numpy, so hand them back.
+        pa.default_memory_pool().release_unused()
+        near = search_and_save(ctx, planned, fingerprints, log=ctx.log)
     else:
         # A search of the clips added since the cached one (its decoding of the
         # fingerprints included) goes on in a forked process while this one joins the
@@ -1681,17 +1683,6 @@ def _run(ctx: StageContext) -> StageResult:
     shown = use.path.relative_to(ctx.out) if use.path.is_relative_to(ctx.out) else use.path
     summary["ledger"] = {"path": str(shown), "where": use.where, "read": ledger is not None, "fresh": use.fresh}
     return StageResult(manifests=tables, rejects=rejects, summary=summary)
-
-
-def _search_here(ctx: StageContext, planned: Planned, fingerprints: tuple[np.ndarray, np.ndarray]) -> Pairs:
-    """The planned search in this process, on fingerprints decoded already (their texts
-    let go) and the cache written."""
-    # Arrow's allocator keeps freed pages (the Parquet read's working buffers among them,
-    # 0.8 GB at 233,161 clips); the search allocates through numpy, so hand them back.
-    pa.default_memory_pool().release_unused()
-    found = search_fingerprints(planned, fingerprints)
-    save_search(ctx, planned, found, log=ctx.log)
-    return found
 
 
 def _subsets_of(subset: Mapping[str, str], ids: list[str]) -> list[str]:
