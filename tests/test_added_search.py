@@ -171,6 +171,118 @@ def test_a_damaged_cache_table_is_a_miss(tmp_path, caplog, damaged: str) -> None
     assert run(30) == "added since"  # the whole search rewrote both tables
 
 
+def _texts(fps: list[np.ndarray], order: list[int]) -> tuple[np.ndarray, np.ndarray]:
+    """The fingerprint texts of ``fps`` in ``order``, as the split stage reads them."""
+    import pyarrow as pa
+
+    from pipeline.signal.fingerprint import encode_fingerprint
+    from pipeline.stages.duplicate_cache import fingerprint_texts
+
+    return fingerprint_texts(pa.chunked_array([[encode_fingerprint(fps[k]) for k in order]]))
+
+
+def test_cached_fingerprints_interleaved_with_the_added_equal_every_text_decoded(tmp_path) -> None:
+    """A rebuild decodes only the added clips' texts and copies the others from the cache
+    (pipeline.stages.duplicate_cache.fingerprints): the values and offsets equal every
+    text decoded, whatever the rows' order in the manifest and wherever the added clips
+    fall, and the search on them equals a whole one."""
+    import logging
+    from types import SimpleNamespace
+
+    import pyarrow as pa
+
+    from pipeline.stages.duplicate_cache import (
+        cache_keys,
+        decoded,
+        fingerprints,
+        plan_search,
+        search_and_save,
+    )
+
+    rng = np.random.default_rng(13)
+    fps = _corpus(rng, 60, 12)
+    ctx = SimpleNamespace(cache_dir=tmp_path, use_cache=True)
+    log = logging.getLogger("test-duplicate-cache-values")
+    ids = [f"c{k:02d}" for k in range(60)]
+    earlier = sorted(rng.choice(60, size=45, replace=False).tolist())  # the added fall anywhere, ends included
+    for clips in (earlier, list(range(60))):
+        rows = rng.permutation(len(clips))  # the manifest's rows, in no order: ``order`` sorts them
+        texts = _texts(fps, [clips[r] for r in rows])
+        order = np.argsort(rows)
+        keys = cache_keys(pa.chunked_array([[ids[k] for k in clips]]), pa.chunked_array([[f"{k:064x}" for k in clips]]),
+                          np.diff(texts[1])[order])
+        planned = plan_search(ctx, keys, min_similarity=0.6)
+        got = fingerprints(planned, texts, order)
+        assert (planned.cached is not None) == (clips != earlier)
+        want = decoded(texts, order)
+        np.testing.assert_array_equal(got[0], want[0])
+        np.testing.assert_array_equal(got[1], want[1])
+        found = search_and_save(ctx, planned, got, log=log)
+        assert found.as_list() == search_pairs(*_flat([fps[k] for k in clips]), min_similarity=0.6).as_list()
+
+
+def test_cached_fingerprints_in_many_chunks_and_sliced_ones() -> None:
+    """The cached column as a mapped file gives it (chunks of 65,536 rows), and chunks
+    that are slices of a larger list array: each clip's values come from its own row."""
+    import pyarrow as pa
+
+    from pipeline.signal.added_search import Pairs
+    from pipeline.stages.duplicate_cache import Planned, decoded, fingerprints
+
+    rng = np.random.default_rng(17)
+    fps = _corpus(rng, 40, 50)
+    added = np.zeros(40, dtype=bool)
+    added[[0, 5, 6, 7, 20, 39]] = True
+    kept = [fps[k] for k in np.flatnonzero(~added)]
+    whole = pa.array([fp.tolist() for fp in [fps[0], *kept, fps[1]]], pa.large_list(pa.uint32()))
+    cached = pa.chunked_array([whole.slice(1, 10), whole.slice(11, 0), whole.slice(11, len(kept) - 10)])
+    none = np.zeros(0, np.int64)
+    planned = Planned(None, (added, Pairs(none, none, none.astype(float), none)), 0.6, "", cached)
+    texts = _texts(fps, list(range(40)))
+    got, want = fingerprints(planned, texts, np.arange(40)), decoded(texts, np.arange(40))
+    np.testing.assert_array_equal(got[0], want[0])
+    np.testing.assert_array_equal(got[1], want[1])
+
+
+def test_a_damaged_values_table_means_decoding_every_text(tmp_path) -> None:
+    """The decoded fingerprints are a mapped table checked like the others: a changed byte
+    means every text is decoded again; the search still covers only the added clips."""
+    import logging
+    from types import SimpleNamespace
+
+    import pyarrow as pa
+
+    from pipeline.stages.duplicate_cache import (
+        NAMESPACE,
+        cache_keys,
+        fingerprints,
+        plan_search,
+        search_and_save,
+    )
+
+    fps = _corpus(np.random.default_rng(19), 30, 12)
+    ctx = SimpleNamespace(cache_dir=tmp_path, use_cache=True)
+    log = logging.getLogger("test-duplicate-cache-values-damaged")
+
+    def plan(count: int) -> tuple[object, tuple[np.ndarray, np.ndarray]]:
+        texts = _texts(fps, list(range(count)))
+        keys = cache_keys(pa.chunked_array([[f"c{k:02d}" for k in range(count)]]),
+                          pa.chunked_array([[f"{k:064x}" for k in range(count)]]), np.diff(texts[1]))
+        planned = plan_search(ctx, keys, min_similarity=0.6)
+        return planned, fingerprints(planned, texts, np.arange(count))
+
+    planned, got = plan(25)
+    search_and_save(ctx, planned, got, log=log)
+    path = tmp_path / NAMESPACE / "fingerprint-values.arrow"
+    data = bytearray(path.read_bytes())
+    data[len(data) // 2] ^= 0xFF
+    path.write_bytes(bytes(data))
+    planned, got = plan(30)
+    assert planned.earlier is not None and planned.cached is None
+    assert search_and_save(ctx, planned, got, log=log).as_list() == search_pairs(*_flat(fps), min_similarity=0.6).as_list()
+    assert plan(30)[0].cached is not None  # written again whole
+
+
 def test_positions_of_equals_isin_when_keys_share_filter_slots() -> None:
     """The filter's slots and tags only narrow the exact lookup: with 3 million keys in
     its 16 million slots many slots hold two keys of different tags (and some of the

@@ -1,8 +1,9 @@
 """The split stage's near-duplicate search, kept between runs under ``OUT/cache/split/``.
 
-Two cache tables: each clip's id, ``audio_sha256`` and the length of its fingerprint
-text (:func:`cache_keys`), and the pairs the search found with the keys each pair shares (see
-:mod:`pipeline.signal.added_search`). When every clip of the cached search is still
+Three cache tables: each clip's id, ``audio_sha256`` and the length of its fingerprint
+text (:func:`cache_keys`); the pairs the search found with the keys each pair shares (see
+:mod:`pipeline.signal.added_search`); and each clip's fingerprint as decoded, so a
+rebuild decodes the texts of its added clips alone (:func:`fingerprints`). When every clip of the cached search is still
 there with the same audio and fingerprint length, only the added clips are searched; otherwise (a clip
 gone or changed, another code version or threshold, no cache) the whole corpus is.
 Either way the pairs equal a search of the whole corpus, so the manifests do not
@@ -11,8 +12,9 @@ what it reaches (the decoding of the texts, the search, the cache), not the spli
 stage's: an edit elsewhere in the stage keeps the pairs. The audio bytes stand for the fingerprint (the audio
 stage takes it from the clip as written) under the same audio stage code version, which
 is in the cache's scope; the length tells a fingerprint from none (audio quality
-measures turned off), since that setting leaves the bytes as they are. The pairs table's scope includes a digest of the clips
-table, so a run interrupted between the two writes leaves a miss, never a mismatch.
+measures turned off), since that setting leaves the bytes as they are. The scopes of the
+pairs and the decoded fingerprints include a digest of the clips table, so a run
+interrupted between the writes leaves a miss, never a mismatch.
 """
 
 from __future__ import annotations
@@ -144,13 +146,15 @@ def _earlier(clips: pa.Table | None, pairs: pa.Table | None, keys: pa.Table) -> 
 class Planned:
     """A near-duplicate search made ready by :func:`plan_search`: the clips' cache keys
     (None: no cache), the clips added since the cached search and its pairs in this
-    run's numbering (None: the whole corpus is searched), the threshold and the
-    cache's scope."""
+    run's numbering (None: the whole corpus is searched), the threshold, the cache's
+    scope, and the cached clips' decoded fingerprints (a ``large_list<uint32>`` column
+    as mapped, a row per cached clip; None: every text is decoded)."""
 
     keys: pa.Table | None
     earlier: tuple[np.ndarray, Pairs] | None
     min_similarity: float
     scope: str = ""
+    cached: pa.ChunkedArray | None = None
 
 
 def plan_search(ctx: StageContext, keys: pa.Table | None, *, min_similarity: float) -> Planned:
@@ -168,18 +172,74 @@ def plan_search(ctx: StageContext, keys: pa.Table | None, *, min_similarity: flo
                       code_version(SCOPE_MODULE, cache_dir=ctx.cache_dir),
                       code_version(FINGERPRINT_MODULE, cache_dir=ctx.cache_dir), min_similarity)
     cached_clips = _clip_cache(ctx, scope).load()
-    cached_pairs = None
+    earlier, cached = None, None
     if cached_clips is not None:
-        cached_pairs = _pairs_cache(ctx, scope, cached_clips).load()
-    return Planned(keys, _earlier(cached_clips, cached_pairs, keys), min_similarity, scope)
+        digest = _clips_digest(cached_clips)
+        earlier = _earlier(cached_clips, _pairs_cache(ctx, scope, digest).load(), keys)
+    if earlier is not None:
+        table = _values_cache(ctx, scope, digest).load()
+        if table is not None and table.num_rows == cached_clips.num_rows:
+            cached = table.column("values")
+    return Planned(keys, earlier, min_similarity, scope, cached)
+
+
+def fingerprints(planned: Planned, texts: tuple[np.ndarray, np.ndarray], order: np.ndarray
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """Every clip's decoded fingerprint in the row ``order`` (clip ``k`` is text
+    ``order[k]`` of ``texts``, :func:`fingerprint_texts`): the values one after the other
+    and their offsets, as :func:`decoded` gives them. When the planned search has the
+    cached clips' fingerprints, only the added clips' texts are decoded and the others
+    copied from the cache, a run of neighbouring clips at a time: at 101,000 clips
+    decoding every text took 0.12 s of the rebuild's critical path.
+
+    Examples
+    --------
+    >>> from pipeline.signal.fingerprint import encode_fingerprint
+    >>> texts = pa.chunked_array([[encode_fingerprint(np.array([7, 8], np.uint32))]])
+    >>> values, offsets = fingerprints(Planned(None, None, 0.9), fingerprint_texts(texts), np.array([0]))
+    >>> values.tolist(), offsets.tolist()
+    ([7, 8], [0, 2])
+    """
+    if planned.earlier is None or planned.cached is None:
+        return decoded(texts, order)
+    added = planned.earlier[0]
+    return _interleaved(planned.cached, decoded(texts, order[added]), added)
+
+
+def _interleaved(cached: pa.ChunkedArray, fresh: tuple[np.ndarray, np.ndarray], added: np.ndarray
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """The fingerprints of the clips ``~added`` (``cached``: a list per clip, in their
+    order, in chunks) and of the clips ``added`` (``fresh``: values and offsets, in their
+    order) interleaved in one numbering: one copy per run of clips that neighbour each
+    other in both."""
+    chunks = cached.chunks
+    sources = [(chunk.values.to_numpy(), chunk.offsets.to_numpy()) for chunk in chunks] + [fresh]
+    kept = ~added
+    # Each clip's source (a chunk of the cache, or the fresh ones) and its row there.
+    bounds = np.r_[0, np.cumsum([len(chunk) for chunk in chunks], dtype=np.int64)]
+    source, row = np.empty(added.size, dtype=np.int64), np.empty(added.size, dtype=np.int64)
+    cached_rows = np.arange(int(kept.sum()))
+    source[kept] = np.searchsorted(bounds, cached_rows, side="right") - 1
+    row[kept] = cached_rows - bounds[source[kept]]
+    source[added], row[added] = len(chunks), np.arange(int(added.sum()))
+    lengths = np.empty(added.size, dtype=np.int64)
+    lengths[kept] = np.concatenate([np.diff(at) for _, at in sources[:-1]] or [np.zeros(0, np.int64)])
+    lengths[added] = np.diff(fresh[1])
+    offsets = np.zeros(added.size + 1, dtype=np.int64)
+    np.cumsum(lengths, out=offsets[1:])
+    values = np.empty(int(offsets[-1]), dtype=np.uint32)
+    runs = np.flatnonzero(np.r_[True, source[1:] != source[:-1], True]) if added.size else np.zeros(1, np.int64)
+    for a, b in zip(runs[:-1].tolist(), runs[1:].tolist(), strict=True):
+        data, at = sources[source[a]]
+        values[offsets[a]:offsets[b]] = data[at[row[a]]:at[row[b - 1] + 1]]
+    return values, offsets
 
 
 def searched(planned: Planned, texts: tuple[np.ndarray, np.ndarray], order: np.ndarray) -> Pairs:
     """The pairs of the planned search (indices in clip_id order) on the clips'
-    fingerprint ``texts`` (:func:`fingerprint_texts`), decoded in the row ``order``
-    (clip ``k`` is text ``order[k]``): numpy work alone, which a forked process can do
-    (:mod:`pipeline.core.forked`)."""
-    return search_fingerprints(planned, decoded(texts, order))
+    fingerprint ``texts`` in the row ``order``, decoded by :func:`fingerprints`: numpy
+    work alone, which a forked process can do (:mod:`pipeline.core.forked`)."""
+    return search_fingerprints(planned, fingerprints(planned, texts, order))
 
 
 def search_fingerprints(planned: Planned, fingerprints: tuple[np.ndarray, np.ndarray]) -> Pairs:
@@ -191,8 +251,10 @@ def search_fingerprints(planned: Planned, fingerprints: tuple[np.ndarray, np.nda
     return search_added(*fingerprints, added, before, min_similarity=planned.min_similarity)
 
 
-def save_search(ctx: StageContext, planned: Planned, found: Pairs, *, log: logging.Logger) -> None:
-    """Log what the search covered and rewrite the cache with its clips and pairs."""
+def save_search(ctx: StageContext, planned: Planned, found: Pairs, fingerprints: tuple[np.ndarray, np.ndarray], *,
+                log: logging.Logger) -> None:
+    """Log what the search covered and rewrite the cache with its clips, its pairs and
+    the clips' decoded ``fingerprints`` (values, offsets)."""
     if planned.keys is None:
         return
     if planned.earlier is None:
@@ -201,8 +263,12 @@ def save_search(ctx: StageContext, planned: Planned, found: Pairs, *, log: loggi
         log.info("split: near-duplicate search over the %d clips added since the cached search: %d pairs in all",
                  int(planned.earlier[0].sum()), len(found.first))
     _clip_cache(ctx, planned.scope).save(planned.keys)
-    _pairs_cache(ctx, planned.scope, planned.keys).save(
+    digest = _clips_digest(planned.keys)
+    _pairs_cache(ctx, planned.scope, digest).save(
         pa.table([pa.array(getattr(found, f.name), f.type) for f in _PAIRS], schema=_PAIRS))
+    values, offsets = fingerprints
+    _values_cache(ctx, planned.scope, digest).save(pa.table({"values": pa.LargeListArray.from_arrays(
+        pa.array(offsets, pa.int64()), pa.array(values, pa.uint32()))}))
 
 
 # Mapped Arrow files, not Parquet: a rebuild reads and rewrites both tables whole, and
@@ -212,8 +278,14 @@ def _clip_cache(ctx: StageContext, scope: str) -> TableCache:
     return TableCache(ctx.cache_dir, NAMESPACE, "fingerprints", scope=scope, enabled=ctx.use_cache, mapped=True)
 
 
-def _pairs_cache(ctx: StageContext, scope: str, clips: pa.Table) -> TableCache:
-    return TableCache(ctx.cache_dir, NAMESPACE, "near-duplicates", scope=cache_key(scope, _clips_digest(clips)),
+# Both scoped by the clips table's digest (:func:`_clips_digest`) besides the search's.
+def _pairs_cache(ctx: StageContext, scope: str, clips_digest: str) -> TableCache:
+    return TableCache(ctx.cache_dir, NAMESPACE, "near-duplicates", scope=cache_key(scope, clips_digest),
+                      enabled=ctx.use_cache, mapped=True)
+
+
+def _values_cache(ctx: StageContext, scope: str, clips_digest: str) -> TableCache:
+    return TableCache(ctx.cache_dir, NAMESPACE, "fingerprint-values", scope=cache_key(scope, "values", clips_digest),
                       enabled=ctx.use_cache, mapped=True)
 
 
@@ -221,7 +293,7 @@ def search_and_save(ctx: StageContext, planned: Planned, fingerprints: tuple[np.
                     log: logging.Logger) -> Pairs:
     """:func:`search_fingerprints` in this process, then :func:`save_search`."""
     found = search_fingerprints(planned, fingerprints)
-    save_search(ctx, planned, found, log=log)
+    save_search(ctx, planned, found, fingerprints, log=log)
     return found
 
 

@@ -37,6 +37,7 @@ import operator
 import re
 from collections import Counter, defaultdict
 from collections.abc import Callable, Collection, Iterable, Mapping, Sequence
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
 from itertools import compress, repeat
 from operator import attrgetter, countOf
@@ -69,11 +70,11 @@ from pipeline.stages import gates
 from pipeline.stages.attributes import Attributes, read_attributes
 from pipeline.stages.duplicate_cache import (
     cache_keys,
-    decoded,
     fingerprint_texts,
+    fingerprints,
     plan_search,
     save_search,
-    search_and_save,
+    search_fingerprints,
     searched,
 )
 from pipeline.stages.heldout import (
@@ -1577,53 +1578,60 @@ def run(ctx: StageContext) -> StageResult:
     try:
         # The stage's first conversion of Python values to Arrow would import pandas
         # (0.25 CPU s of a rebuild at 233,161 clips) only to ask whether they are pandas ones.
-        with pandas_left_unloaded():
-            return _run(ctx)
+        # The near-duplicate cache is written on a thread of its own (see _run); leaving
+        # this block waits for it.
+        with pandas_left_unloaded(), ThreadPoolExecutor(1, thread_name_prefix="loam-split-cache") as background:
+            return _run(ctx, background)
     finally:
         if collecting:
             gc.enable()
 
 
-def _run(ctx: StageContext) -> StageResult:
+def _run(ctx: StageContext, background: ThreadPoolExecutor) -> StageResult:
     cfg = ctx.config
     sc = cfg.split
     budgets = _budgets(sc.labelled_budgets)
     audio = ctx.inputs["audio"]
     order = clip_order(audio)
-    texts: tuple[np.ndarray, np.ndarray] | None = fingerprint_texts(audio.column("fingerprint"))
+    texts = fingerprint_texts(audio.column("fingerprint"))
     keys = cache_keys(audio.column("clip_id").take(order), audio.column("audio_sha256").take(order),
                       np.diff(texts[1])[order.to_numpy()]) if ctx.use_cache else None
     planned = plan_search(ctx, keys, min_similarity=cfg.quality.near_duplicate_min_similarity)
     # The input table keeps the other columns only, so the fingerprint texts' buffers
     # (342 MB at 233,161 clips) are freed once the search no longer needs them.
     ctx.inputs["audio"] = audio = audio.drop_columns(["fingerprint"])
+    # The near-duplicate cache is written on a thread, while this one builds the clips
+    # and assigns them (0.07 s at 101,000 clips, mostly in Arrow and hashlib, which let
+    # go of the interpreter); the stage waits for it before it returns.
+    saved: list[Future[None]] = []
     near: Pairs | Callable[[], Pairs]
     search: Begun[Pairs] | None = None
     if planned.earlier is None:
         # A whole search (no cache, or one that cannot serve) runs here, first: in a
         # forked process its working memory came on top of this one's (at 233,161 clips,
         # cold, the machine's peak rose from 1.40 to 1.64-1.86 GB) for 0.1-0.4 s of 10.
-        fingerprints = decoded(texts, order.to_numpy())
-        texts = None
+        decoded = fingerprints(planned, texts, order.to_numpy())
+        del texts
         # Arrow's allocator keeps freed pages (the Parquet read's working buffers among
         # them, 0.8 GB at 233,161 clips); the search allocates through numpy, so hand them back.
         pa.default_memory_pool().release_unused()
-        near = search_and_save(ctx, planned, fingerprints, log=ctx.log)
+        near = search_fingerprints(planned, decoded)
+        saved.append(background.submit(save_search, ctx, planned, near, decoded, log=ctx.log))
     else:
-        # A search of the clips added since the cached one (its decoding of the
-        # fingerprints included) goes on in a forked process while this one joins the
-        # rows and reads the ledger: 0.38 s of a rebuild at 101,000 clips, the other
-        # core idle meanwhile.
-        search = begun = begin(searched, planned, texts, order.to_numpy())
+        # A search of the clips added since the cached one (with the decoding of their
+        # fingerprints) goes on in a forked process while this one joins the rows and
+        # reads the ledger: 0.28 s of a rebuild at 101,000 clips, the other core idle
+        # meanwhile. The cache's writer decodes them again for itself.
+        held = [texts]
+        del texts
+        search = begun = begin(searched, planned, held[0], order.to_numpy())
 
         def near() -> Pairs:
-            nonlocal texts
             found = begun.result()
-            texts = None  # the search's input, kept until now should it run here
-            # Arrow's allocator keeps freed pages (the Parquet read's working buffers among
-            # them, 0.8 GB at 233,161 clips); the clips are built through numpy, so hand them back.
-            pa.default_memory_pool().release_unused()
-            save_search(ctx, planned, found, log=ctx.log)
+            pa.default_memory_pool().release_unused()  # as above
+            saved.append(background.submit(
+                lambda texts: save_search(ctx, planned, found, fingerprints(planned, texts, order.to_numpy()),
+                                          log=ctx.log), held.pop()))
             return found
     try:
         joined = join_rows(audio, ctx.inputs["text"], order=order)
@@ -1682,6 +1690,8 @@ def _run(ctx: StageContext) -> StageResult:
     # Inside OUT the path is given from OUT, so the summary does not change with where OUT is.
     shown = use.path.relative_to(ctx.out) if use.path.is_relative_to(ctx.out) else use.path
     summary["ledger"] = {"path": str(shown), "where": use.where, "read": ledger is not None, "fresh": use.fresh}
+    for writing in saved:
+        writing.result()  # its error, if any, is the stage's
     return StageResult(manifests=tables, rejects=rejects, summary=summary)
 
 
