@@ -200,10 +200,25 @@ def fingerprints(planned: Planned, texts: tuple[np.ndarray, np.ndarray], order: 
     >>> values.tolist(), offsets.tolist()
     ([7, 8], [0, 2])
     """
+    return with_cached(planned, uncached(planned, texts, order))
+
+
+def uncached(planned: Planned, texts: tuple[np.ndarray, np.ndarray], order: np.ndarray
+             ) -> tuple[np.ndarray, np.ndarray]:
+    """The first step of :func:`fingerprints`: the fingerprints the cache does not hold
+    decoded (the added clips' when it holds the others', else every clip's), so the
+    texts can be let go before :func:`with_cached` makes the whole."""
     if planned.earlier is None or planned.cached is None:
         return decoded(texts, order)
-    added = planned.earlier[0]
-    return _interleaved(planned.cached, decoded(texts, order[added]), added)
+    return decoded(texts, order[planned.earlier[0]])
+
+
+def with_cached(planned: Planned, fresh: tuple[np.ndarray, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """The second step of :func:`fingerprints`: every clip's fingerprint from what
+    :func:`uncached` gave for the same plan."""
+    if planned.earlier is None or planned.cached is None:
+        return fresh
+    return _interleaved(planned.cached, fresh, planned.earlier[0])
 
 
 def _interleaved(cached: pa.ChunkedArray, fresh: tuple[np.ndarray, np.ndarray], added: np.ndarray

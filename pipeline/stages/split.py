@@ -76,6 +76,8 @@ from pipeline.stages.duplicate_cache import (
     save_search,
     search_fingerprints,
     searched,
+    uncached,
+    with_cached,
 )
 from pipeline.stages.heldout import (
     TRAINING,
@@ -1621,17 +1623,18 @@ def _run(ctx: StageContext, background: ThreadPoolExecutor) -> StageResult:
         # A search of the clips added since the cached one (with the decoding of their
         # fingerprints) goes on in a forked process while this one joins the rows and
         # reads the ledger: 0.28 s of a rebuild at 101,000 clips, the other core idle
-        # meanwhile. The cache's writer decodes them again for itself.
+        # meanwhile. For the cache, this one then decodes the added clips' texts again
+        # (a few ms), lets the texts go, and the writer joins them to the cached ones.
         held = [texts]
         del texts
         search = begun = begin(searched, planned, held[0], order.to_numpy())
 
         def near() -> Pairs:
             found = begun.result()
+            fresh = uncached(planned, held.pop(), order.to_numpy())
             pa.default_memory_pool().release_unused()  # as above
             saved.append(background.submit(
-                lambda texts: save_search(ctx, planned, found, fingerprints(planned, texts, order.to_numpy()),
-                                          log=ctx.log), held.pop()))
+                lambda: save_search(ctx, planned, found, with_cached(planned, fresh), log=ctx.log)))
             return found
     try:
         joined = join_rows(audio, ctx.inputs["text"], order=order)
