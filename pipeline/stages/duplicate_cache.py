@@ -3,9 +3,10 @@
 Three cache tables: each clip's id, ``audio_sha256`` and the length of its fingerprint
 text (:func:`cache_keys`); the pairs the search found with the keys each pair shares (see
 :mod:`pipeline.signal.added_search`); and each clip's fingerprint as decoded, so a
-rebuild decodes the texts of its added clips alone (:func:`fingerprints`). When every clip of the cached search is still
-there with the same audio and fingerprint length, only the added clips are searched; otherwise (a clip
-gone or changed, another code version or threshold, no cache) the whole corpus is.
+rebuild decodes the texts of its added clips alone (:func:`fingerprints`). When every
+clip of the cached search is still there with the same audio and fingerprint length,
+only the added clips are searched; otherwise (a clip gone or changed, another code
+version or threshold, no cache) the whole corpus is.
 Either way the pairs equal a search of the whole corpus, so the manifests do not
 depend on the run history. The cache's scope holds the code version of this module and
 what it reaches (the decoding of the texts, the search, the cache), not the split
@@ -286,7 +287,7 @@ def save_search(ctx: StageContext, planned: Planned, found: Pairs, fingerprints:
         pa.array(offsets, pa.int64()), pa.array(values, pa.uint32()))}))
 
 
-# Mapped Arrow files, not Parquet: a rebuild reads and rewrites both tables whole, and
+# Mapped Arrow files, not Parquet: a rebuild reads and rewrites the tables whole, and
 # Parquet's compression cost 0.05 of the 0.08 CPU s this module spends besides the
 # search at 101,000 clips (the tables take twice the bytes: 9 against 4.5 MB).
 def _clip_cache(ctx: StageContext, scope: str) -> TableCache:
