@@ -205,7 +205,8 @@ def test_cached_fingerprints_interleaved_with_the_added_equal_every_text_decoded
     log = logging.getLogger("test-duplicate-cache-values")
     ids = [f"c{k:02d}" for k in range(60)]
     earlier = sorted(rng.choice(60, size=45, replace=False).tolist())  # the added fall anywhere, ends included
-    for clips in (earlier, list(range(60))):
+    # A whole search, then one of the added clips, then one with none added (another input changed).
+    for clips in (earlier, list(range(60)), list(range(60))):
         rows = rng.permutation(len(clips))  # the manifest's rows, in no order: ``order`` sorts them
         texts = _texts(fps, [clips[r] for r in rows])
         order = np.argsort(rows)
