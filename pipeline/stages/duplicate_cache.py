@@ -157,6 +157,12 @@ class Planned:
     scope: str = ""
     cached: pa.ChunkedArray | None = None
 
+    @property
+    def copies_cached(self) -> np.ndarray | None:
+        """The clips added since the cached search (``bool`` per clip) when the others'
+        fingerprints are copied from the cache, else None (every text is decoded)."""
+        return None if self.earlier is None or self.cached is None else self.earlier[0]
+
 
 def plan_search(ctx: StageContext, keys: pa.Table | None, *, min_similarity: float) -> Planned:
     """Read the cache and tell what :func:`searched` must search: the clips added since
@@ -209,17 +215,17 @@ def uncached(planned: Planned, texts: tuple[np.ndarray, np.ndarray], order: np.n
     """The first step of :func:`fingerprints`: the fingerprints the cache does not hold
     decoded (the added clips' when it holds the others', else every clip's), so the
     texts can be let go before :func:`with_cached` makes the whole."""
-    if planned.earlier is None or planned.cached is None:
+    if planned.copies_cached is None:
         return decoded(texts, order)
-    return decoded(texts, order[planned.earlier[0]])
+    return decoded(texts, order[planned.copies_cached])
 
 
 def with_cached(planned: Planned, fresh: tuple[np.ndarray, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
     """The second step of :func:`fingerprints`: every clip's fingerprint from what
     :func:`uncached` gave for the same plan."""
-    if planned.earlier is None or planned.cached is None:
+    if planned.copies_cached is None:
         return fresh
-    return _interleaved(planned.cached, fresh, planned.earlier[0])
+    return _interleaved(planned.cached, fresh, planned.copies_cached)
 
 
 def _interleaved(cached: pa.ChunkedArray, fresh: tuple[np.ndarray, np.ndarray], added: np.ndarray
@@ -258,19 +264,19 @@ def searched(planned: Planned, texts: tuple[np.ndarray, np.ndarray], order: np.n
     return search_fingerprints(planned, fingerprints(planned, texts, order))
 
 
-def search_fingerprints(planned: Planned, fingerprints: tuple[np.ndarray, np.ndarray]) -> Pairs:
-    """The pairs of the planned search on the clips' decoded ``fingerprints`` (values,
-    offsets), in clip_id order."""
+def search_fingerprints(planned: Planned, decoded_values: tuple[np.ndarray, np.ndarray]) -> Pairs:
+    """The pairs of the planned search on the clips' decoded fingerprints
+    ``decoded_values`` (values, offsets), in clip_id order."""
     if planned.earlier is None:
-        return search_pairs(*fingerprints, min_similarity=planned.min_similarity)
+        return search_pairs(*decoded_values, min_similarity=planned.min_similarity)
     added, before = planned.earlier
-    return search_added(*fingerprints, added, before, min_similarity=planned.min_similarity)
+    return search_added(*decoded_values, added, before, min_similarity=planned.min_similarity)
 
 
-def save_search(ctx: StageContext, planned: Planned, found: Pairs, fingerprints: tuple[np.ndarray, np.ndarray], *,
+def save_search(ctx: StageContext, planned: Planned, found: Pairs, decoded_values: tuple[np.ndarray, np.ndarray], *,
                 log: logging.Logger) -> None:
     """Log what the search covered and rewrite the cache with its clips, its pairs and
-    the clips' decoded ``fingerprints`` (values, offsets)."""
+    the clips' decoded fingerprints ``decoded_values`` (values, offsets)."""
     if planned.keys is None:
         return
     if planned.earlier is None:
@@ -282,7 +288,7 @@ def save_search(ctx: StageContext, planned: Planned, found: Pairs, fingerprints:
     digest = _clips_digest(planned.keys)
     _pairs_cache(ctx, planned.scope, digest).save(
         pa.table([pa.array(getattr(found, f.name), f.type) for f in _PAIRS], schema=_PAIRS))
-    values, offsets = fingerprints
+    values, offsets = decoded_values
     _values_cache(ctx, planned.scope, digest).save(pa.table({"values": pa.LargeListArray.from_arrays(
         pa.array(offsets, pa.int64()), pa.array(values, pa.uint32()))}))
 
@@ -305,19 +311,19 @@ def _values_cache(ctx: StageContext, scope: str, clips_digest: str) -> TableCach
                       enabled=ctx.use_cache, mapped=True)
 
 
-def search_and_save(ctx: StageContext, planned: Planned, fingerprints: tuple[np.ndarray, np.ndarray], *,
+def search_and_save(ctx: StageContext, planned: Planned, decoded_values: tuple[np.ndarray, np.ndarray], *,
                     log: logging.Logger) -> Pairs:
     """:func:`search_fingerprints` in this process, then :func:`save_search`."""
-    found = search_fingerprints(planned, fingerprints)
-    save_search(ctx, planned, found, fingerprints, log=log)
+    found = search_fingerprints(planned, decoded_values)
+    save_search(ctx, planned, found, decoded_values, log=log)
     return found
 
 
-def near_duplicates(ctx: StageContext, keys: pa.Table | None, fingerprints: tuple[np.ndarray, np.ndarray], *,
+def near_duplicates(ctx: StageContext, keys: pa.Table | None, decoded_values: tuple[np.ndarray, np.ndarray], *,
                     min_similarity: float, log: logging.Logger) -> Pairs:
     """The near-duplicate pairs of the clips (indices in clip_id order),
     searching only the added clips when the cache allows; the cache is then rewritten:
     :func:`plan_search`, then :func:`search_and_save` on fingerprints decoded already.
 
     ``keys`` (:func:`cache_keys`) is None when the cache is disabled."""
-    return search_and_save(ctx, plan_search(ctx, keys, min_similarity=min_similarity), fingerprints, log=log)
+    return search_and_save(ctx, plan_search(ctx, keys, min_similarity=min_similarity), decoded_values, log=log)
