@@ -527,3 +527,37 @@ def _assert_stopped_after_ingest(out: Path) -> None:
     assert (out / STAGES["ingest"].main_manifest).is_file()
     assert not any((out / STAGES[name].main_manifest).exists() for name in ("audio", "text", "split"))
     assert not list(out.rglob(".loam-*.tmp"))
+
+
+def test_a_table_the_stage_checked_is_not_checked_again_and_every_other_is(
+        small_raw: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    import pyarrow as pa
+
+    from pipeline.core import checked_tables, runner
+
+    seen: list[str] = []
+    partition = runner.partition_rows
+
+    def counted(name: str, table: pa.Table, *, where: str) -> tuple[pa.Table, list[object]]:
+        seen.append(Path(where).name)
+        return partition(name, table, where=where)
+
+    monkeypatch.setattr(runner, "partition_rows", counted)
+    assert main(["prepare", str(small_raw), str(tmp_path / "out"), "--workers", "1", "--no-progress"]) == 0
+    # The split stage checks its three subset manifests itself (checked_tables.check),
+    # before its ledger names their clips; the runner checks every other manifest.
+    assert sorted(seen) == ["audio.parquet", "ingest.parquet", "text.parquet"]
+
+    # Only the very table checked counts: an equal copy, or the table against another
+    # schema, is checked again; a table that is gone is forgotten.
+    table = pa.table({"source_path": ["a.wav"], "reason": ["empty"], "detail": ["a.wav: empty"],
+                      "stage": ["ingest"], "clip_id": pa.array([None], pa.string())})
+    checked_tables.check("rejected", table, where="rejected.parquet")
+    assert checked_tables.was_checked("rejected", table)
+    assert not checked_tables.was_checked("rejected", pa.concat_tables([table]))
+    assert not checked_tables.was_checked("subset", table)
+    held = len(checked_tables._checked)
+    del table
+    assert len(checked_tables._checked) == held - 1
+    with pytest.raises(Exception, match="breaks schemas/rejected.schema.json"):
+        checked_tables.check("rejected", pa.table({"source_path": ["a.wav"]}), where="r.parquet")

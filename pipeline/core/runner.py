@@ -21,7 +21,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from pipeline import __version__
-from pipeline.core import names, outputs_record, snapshot
+from pipeline.core import checked_tables, names, outputs_record, snapshot
 from pipeline.core.codeversion import code_version
 from pipeline.core.config import Config, canonical_json
 from pipeline.core.errors import DataError
@@ -648,6 +648,8 @@ class Runner:
         """
         set_aside = 0
         for rel, (schema, table) in sorted(result.manifests.items()):
+            if checked_tables.was_checked(schema, table):
+                continue  # the stage checked this very table (the split stage's subset manifests)
             kept, invalid = partition_rows(schema, table, where=str(self.out / rel))
             if not invalid:
                 continue

@@ -48,11 +48,11 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from pipeline.core import names
+from pipeline.core import checked_tables, names
 from pipeline.core.config import Config, parse_duration_s
 from pipeline.core.errors import DataError, UsageError
 from pipeline.core.forked import Begun, begin
-from pipeline.core.manifest import arrow_schema, validate_table
+from pipeline.core.manifest import arrow_schema
 from pipeline.core.names import (
     FLAGS,
     HELDOUT,
@@ -1545,7 +1545,7 @@ def _subset_tables(ctx: StageContext, by_subset: Mapping[str, np.ndarray], assig
         tables[subset_manifest(s)] = ("subset", _subset_table(joined, columns, by_subset[s], s, assignment,
                                                               keep_text=keep))
     for rel, (schema, table) in tables.items():
-        validate_table(schema, table, where=str(ctx.out / rel))
+        checked_tables.check(schema, table, where=str(ctx.out / rel))  # the runner does not check them again
     return tables
 
 
