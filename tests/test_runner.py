@@ -534,6 +534,7 @@ def test_a_table_the_stage_checked_is_not_checked_again_and_every_other_is(
     import pyarrow as pa
 
     from pipeline.core import checked_tables, runner
+    from pipeline.core.errors import ManifestError
 
     seen: list[str] = []
     partition = runner.partition_rows
@@ -559,5 +560,5 @@ def test_a_table_the_stage_checked_is_not_checked_again_and_every_other_is(
     held = len(checked_tables._checked)
     del table
     assert len(checked_tables._checked) == held - 1
-    with pytest.raises(Exception, match="breaks schemas/rejected.schema.json"):
+    with pytest.raises(ManifestError, match="breaks schemas/rejected.schema.json"):
         checked_tables.check("rejected", pa.table({"source_path": ["a.wav"]}), where="r.parquet")
