@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from pipeline import __version__
+from pipeline.core.allocator import adapt_process
 from pipeline.core.collector import collect_less_often
 from pipeline.core.errors import LoamError, UsageError
 from pipeline.core.startup import exit_without_teardown, limit_blas_threads
@@ -332,6 +333,7 @@ def main(argv: list[str] | None = None) -> int:
     """
     limit_blas_threads()
     collect_less_often()
+    adapt_process()  # glibc's malloc thresholds, when the environment fixed them (pipeline.core.allocator)
     parser = build_parser()
     try:
         args = parser.parse_args(argv)

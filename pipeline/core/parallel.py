@@ -203,10 +203,15 @@ def batches(order: Sequence[int], *, threads: int) -> list[list[int]]:
 
 
 def _run_batch(func: Callable[[T], R], items: list[T], after: Callable[[], None] | None = None) -> list[R]:
-    """Run on a dask worker: ``func`` over one batch of items, in order, then ``after``."""
-    results = [func(item) for item in items]
-    if after is not None:
-        after()
+    """Run on a dask worker: ``func`` over one batch of items, in order, then ``after``;
+    with glibc's malloc thresholds where its own adaptation takes them
+    (:mod:`pipeline.core.allocator`: dask starts its workers with them fixed low)."""
+    from pipeline.core.allocator import adapted
+
+    with adapted():
+        results = [func(item) for item in items]
+        if after is not None:
+            after()
     return results
 
 
