@@ -4,7 +4,9 @@ environment fixed them.
 glibc maps every block above a threshold with mmap and gives free memory at the top of
 the heap back above another. It raises both by itself as a program frees large blocks,
 up to 32 MiB for mapping and twice that for giving back (mallopt(3), "M_MMAP_THRESHOLD":
-the dynamic threshold; "DEFAULT_MMAP_THRESHOLD_MAX" is 4 * 1024 * 1024 * sizeof(long)).
+the dynamic threshold; "DEFAULT_MMAP_THRESHOLD_MAX" is 4 * 1024 * 1024 * sizeof(long);
+these values are the manual page's as remembered, and tests/test_allocator.py checks
+the behaviour they describe, not the numbers).
 Setting any of these parameters, in the environment (``MALLOC_TRIM_THRESHOLD_``,
 ``MALLOC_MMAP_THRESHOLD_``, ``MALLOC_TOP_PAD_``, ``MALLOC_MMAP_MAX_``, or the same as
 ``GLIBC_TUNABLES``) or by ``mallopt``, turns that adaptation off for the process.
