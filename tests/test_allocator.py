@@ -45,6 +45,8 @@ out["in_a_batch"] = parallel._run_batch(faults, [None])[0]
 out["after_the_batch"] = faults()
 cli.main(["validate", "/nonexistent/out"])
 out["after_loam_started"] = faults()
+out["in_a_batch_run_by_loam"] = parallel._run_batch(faults, [None])[0]
+out["after_that_batch"] = faults()
 print(json.dumps(out))
 """
 
@@ -72,6 +74,9 @@ def test_with_the_threshold_dask_sets_loams_work_reuses_its_pages_and_the_worker
     assert got["in_a_batch"] < reused  # a cluster worker's batch
     assert got["after_the_batch"] > fresh
     assert got["after_loam_started"] < reused  # `loam` itself, for the rest of its run
+    # A batch in loam's own process (a cluster of threads) does not set them back.
+    assert got["in_a_batch_run_by_loam"] < reused
+    assert got["after_that_batch"] < reused
 
 
 @glibc

@@ -30,6 +30,7 @@ where the C library is not glibc.
 from __future__ import annotations
 
 import contextlib
+import functools
 import os
 import threading
 from collections.abc import Iterator, Mapping
@@ -81,8 +82,9 @@ def fixed_thresholds(environ: Mapping[str, str]) -> dict[int, int] | None:
     return values
 
 
+@functools.cache
 def _mallopt() -> Any:
-    """glibc's mallopt, or None where the C library is another."""
+    """glibc's mallopt, or None where the C library is another (looked up once)."""
     try:
         if not os.confstr("CS_GNU_LIBC_VERSION").startswith("glibc"):
             return None
@@ -100,24 +102,30 @@ def _set(values: Mapping[int, int]) -> bool:
     return all(mallopt(param, value) == 1 for param, value in values.items())
 
 
+_lock = threading.Lock()
+_holders = 0
+_whole_process = False  # adapt_process has set them for good: adapted() leaves them so
+
+
 def adapt_process(environ: Mapping[str, str] = os.environ) -> bool:
     """For the rest of this process (and the processes it forks), the thresholds at the
     ceiling of glibc's adaptation, when the environment fixed them; whether it did so."""
-    return fixed_thresholds(environ) is not None and _set(ADAPTED)
-
-
-_lock = threading.Lock()
-_holders = 0
+    global _whole_process
+    done = fixed_thresholds(environ) is not None and _set(ADAPTED)
+    _whole_process = _whole_process or done
+    return done
 
 
 @contextlib.contextmanager
 def adapted(environ: Mapping[str, str] = os.environ) -> Iterator[None]:
     """Within the block, the thresholds at the ceiling of glibc's adaptation when the
     environment fixed them; after the last of the blocks that overlap in this process
-    (a worker may run several threads), the environment's values again."""
+    (a worker may run several threads), the environment's values again; nothing in a
+    process that :func:`adapt_process` set for good (``loam`` itself, whose batches run
+    in the same process on a cluster of threads)."""
     global _holders
     fixed = fixed_thresholds(environ)
-    if fixed is None:
+    if fixed is None or _whole_process:
         yield
         return
     with _lock:
